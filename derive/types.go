@@ -1,0 +1,267 @@
+package derive
+
+import (
+	"time"
+)
+
+// AlgorithmVersion names the rules in this package. It is part of every
+// derived value's identity: a change to an equation, a default or a pairing
+// rule must change it, so that results computed under different rules are
+// never mistaken for one another.
+const AlgorithmVersion = "1.0.0"
+
+// Kind is what a reading measures. Each kind has one canonical unit, and
+// every [Reading] value is in it; unit conversion is the adapter's job.
+type Kind uint8
+
+// The kinds of input. The canonical unit of each is in its comment and in
+// [Kind.Unit].
+const (
+	KindUnknown         Kind = iota
+	KindPaCO2                // arterial PCO2, mm[Hg]
+	KindEtCO2                // end-tidal PCO2, mm[Hg]
+	KindMixedExpiredCO2      // measured mixed-expired PCO2 (PĒCO2), mm[Hg]
+	KindVCO2                 // CO2 production, mL/min STPD
+	KindTidalVolume          // tidal volume, mL
+	KindMinuteVolume         // expired minute volume, L/min BTPS
+	KindRespRate             // respiratory rate, /min
+	KindHeight               // body height, cm
+	kindCount
+)
+
+var kindInfo = [kindCount]struct {
+	name, unit string
+}{
+	KindUnknown:         {"unknown", ""},
+	KindPaCO2:           {"paco2", "mm[Hg]"},
+	KindEtCO2:           {"etco2", "mm[Hg]"},
+	KindMixedExpiredCO2: {"mixed-expired-co2", "mm[Hg]"},
+	KindVCO2:            {"vco2", "mL/min"},
+	KindTidalVolume:     {"tidal-volume", "mL"},
+	KindMinuteVolume:    {"minute-volume", "L/min"},
+	KindRespRate:        {"respiratory-rate", "/min"},
+	KindHeight:          {"body-height", "cm"},
+}
+
+// String returns the kind's stable name, used in configuration files and
+// explanations.
+func (k Kind) String() string {
+	if k >= kindCount {
+		return "unknown"
+	}
+	return kindInfo[k].name
+}
+
+// Unit returns the UCUM code of the kind's canonical unit.
+func (k Kind) Unit() string {
+	if k >= kindCount {
+		return ""
+	}
+	return kindInfo[k].unit
+}
+
+// ParseKind is the inverse of [Kind.String].
+func ParseKind(s string) (Kind, bool) {
+	for k := KindPaCO2; k < kindCount; k++ {
+		if kindInfo[k].name == s {
+			return k, true
+		}
+	}
+	return KindUnknown, false
+}
+
+// Kinds lists every known kind, in declaration order.
+func Kinds() []Kind {
+	out := make([]Kind, 0, kindCount-1)
+	for k := KindPaCO2; k < kindCount; k++ {
+		out = append(out, k)
+	}
+	return out
+}
+
+// Reading is one accepted measurement, already in its kind's canonical unit.
+// It is deliberately small: a monitored patient buffers hours of
+// minute-by-minute readings.
+type Reading struct {
+	// Ref is the versioned reference of the source resource,
+	// "Observation/abc/_history/2". It is what derived values cite.
+	Ref string
+	// Encounter is the encounter reference of the source, or "".
+	Encounter string
+	// AtMillis is the effective (physiological) time in Unix milliseconds.
+	AtMillis int64
+	Value    float64
+	Kind     Kind
+}
+
+// At returns the effective time.
+func (r Reading) At() time.Time { return time.UnixMilli(r.AtMillis).UTC() }
+
+// Sex is the administrative sex used by the predicted body weight equation.
+type Sex uint8
+
+// The sexes the predicted body weight equation distinguishes.
+const (
+	SexUnknown Sex = iota
+	SexMale
+	SexFemale
+)
+
+// Patient holds the facts about a patient that some equations need.
+type Patient struct {
+	// Ref is the versioned reference of the Patient resource, or "" when
+	// nothing is known about the patient.
+	Ref string
+	Sex Sex
+	// BirthDate is zero when unknown.
+	BirthDate time.Time
+}
+
+// Code names a derived value. The strings are the codes of the project's
+// own CodeSystem and never change meaning.
+type Code string
+
+// The derived values.
+const (
+	CodeGradient          Code = "paco2-etco2-gradient"
+	CodeAlveolarFraction  Code = "alveolar-dead-space-fraction"
+	CodePhysiologic       Code = "physiologic-dead-space-fraction"
+	CodeAirwayFraction    Code = "airway-dead-space-fraction"
+	CodeDeadSpaceVolume   Code = "physiologic-dead-space-volume"
+	CodeAlveolarVent      Code = "alveolar-minute-ventilation"
+	CodeVentilatoryRatio  Code = "ventilatory-ratio"
+	CodeEstimatedFraction Code = "estimated-dead-space-fraction"
+	CodeMixedExpiredCO2   Code = "mixed-expired-co2"
+	CodeEtCO2Drop         Code = "etco2-drop-from-baseline"
+)
+
+// Flag is an interpretation against a published or common-practice
+// threshold. FlagNone means no threshold applies or none was crossed.
+type Flag uint8
+
+// The interpretations a derived value can carry.
+const (
+	FlagNone Flag = iota
+	FlagNormal
+	FlagHigh
+	FlagLow
+)
+
+// Range is a reference range. A nil bound is open. Source says where the
+// bounds come from.
+type Range struct {
+	Low, High *float64
+	Text      string
+	Source    string
+}
+
+// Term is a named intermediate value of a computation, kept so an auditor
+// can follow the arithmetic.
+type Term struct {
+	Name  string
+	Value float64
+	Unit  string
+}
+
+// Value is one derived number.
+type Value struct {
+	Code  Code
+	Value float64
+	// Unit is a UCUM code; fractions use "1".
+	Unit string
+	// Inputs are the kinds this value was computed from; the readings behind
+	// each are in the owning Derivation's Used.
+	Inputs []Kind
+	// UsesPatient is true when the patient's sex or age entered the value.
+	UsesPatient bool
+	// Equation names the equation and its published source.
+	Equation string
+	Terms    []Term
+	Flag     Flag
+	Range    *Range
+	// Estimate marks a value from a regression rather than a measurement.
+	Estimate bool
+	Notes    []string
+}
+
+// Summary is the robust summary of one kind's readings around a blood gas.
+type Summary struct {
+	Kind   Kind
+	Median float64
+	// Readings are the readings the median was taken over, in time order.
+	Readings []Reading
+	// Rule says how the readings were chosen, for explanations.
+	Rule string
+}
+
+// Omission is a value that was not emitted, or an input that was not used,
+// with the reason.
+type Omission struct {
+	// Code is the value not emitted; empty when the omission is of an input.
+	Code Code
+	// Ref is the input not used; empty when the omission is of a value.
+	Ref    string
+	Reason Reason
+	Detail string
+}
+
+// Derivation is everything computed for one blood gas.
+type Derivation struct {
+	Gas     Reading
+	Patient Patient
+	// Used holds one summary per kind that was found, in Kind order. The
+	// blood gas itself is not repeated here.
+	Used    []Summary
+	Values  []Value
+	Omitted []Omission
+}
+
+// Fall is one episode of end-tidal CO2 falling below the patient's own
+// trailing baseline.
+type Fall struct {
+	// Onset is the time of the first reading below the threshold.
+	Onset time.Time
+	// Confirmed is when the fall had lasted the sustain time; the finding is
+	// fixed from this moment, so a streaming caller and a batch caller agree.
+	Confirmed time.Time
+	// Baseline is the median of the baseline readings, mm[Hg].
+	Baseline float64
+	// Level is the median of the readings from onset to confirmation, mm[Hg].
+	Level float64
+	// Change is Level - Baseline, negative for a fall, mm[Hg].
+	Change float64
+	// BaselineReadings and EpisodeReadings are what the finding cites.
+	BaselineReadings []Reading
+	EpisodeReadings  []Reading
+	Notes            []string
+}
+
+// Config holds the tunable rules. Start from [DefaultConfig].
+type Config struct {
+	// Window is the half-width of the pairing window around a blood gas's
+	// sample time.
+	Window time.Duration
+	// HeightMaxAge is how old the latest height may be at the sample time.
+	HeightMaxAge time.Duration
+	Fall         FallConfig
+}
+
+// FallConfig tunes the end-tidal CO2 fall detector.
+type FallConfig struct {
+	// Baseline is how far back the trailing baseline reaches.
+	Baseline time.Duration
+	// MinBaselineReadings is how many readings a baseline needs.
+	MinBaselineReadings int
+	// Drop is the fall below baseline, in mm[Hg], that counts.
+	Drop float64
+	// DropFraction is the same as a fraction of the baseline; a reading
+	// counts as fallen when it is below baseline by Drop or by DropFraction,
+	// whichever is smaller.
+	DropFraction float64
+	// Sustain is how long the fall must last before it is a finding.
+	Sustain time.Duration
+	// Recover ends an episode: a reading back within this fraction of the
+	// drop threshold from the baseline closes it, so one episode gives one
+	// finding however long it lasts.
+	Recover float64
+}
