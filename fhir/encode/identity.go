@@ -1,0 +1,220 @@
+package encode
+
+import (
+	"crypto/sha256"
+	"encoding/hex"
+	"fmt"
+	"strings"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// Identity holds the two identifier values of one derived Observation.
+type Identity struct {
+	// Key is identifier[0].value: "sha256:" and the hex digest of the
+	// algorithm version, the output code and the sorted versioned references
+	// of every input used (the blood gas, every reading cited, and the
+	// Patient when the value used the patient's sex or age). It changes
+	// whenever any input version or the rules change.
+	Key string
+	// Series is identifier[1].value: "sha256:" and the hex digest of the
+	// output code and the unversioned blood gas reference (for a fall, the
+	// patient and the onset time). It stays the same across corrections of
+	// the inputs.
+	Series string
+}
+
+// ID returns the resource id of the Observation: "ds-" and the first 32 hex
+// digits of the series digest. It follows the series, not the key, so an
+// updated derivation overwrites its earlier version instead of standing
+// beside it.
+func (id Identity) ID() string { return seriesID(id.Series) }
+
+func seriesID(series string) string {
+	return "ds-" + strings.TrimPrefix(series, "sha256:")[:32]
+}
+
+const hashPrefix = "sha256:"
+
+// digest hashes one field per line. The first line names the scheme, so a
+// future change of the layout can never collide with today's digests.
+func digest(scheme string, fields ...string) (string, error) {
+	h := sha256.New()
+	for _, f := range append([]string{scheme}, fields...) {
+		if err := noNewline(f); err != nil {
+			return "", fmt.Errorf("identity field: %w", err)
+		}
+		h.Write([]byte(f))
+		h.Write([]byte{'\n'})
+	}
+	return hashPrefix + hex.EncodeToString(h.Sum(nil)), nil
+}
+
+// ValueIdentity computes both identifiers of the Observation that encodes v,
+// one of d.Values, without encoding it. It fails when a cited reference is
+// malformed or unversioned, or when v cites an input kind d has no summary
+// for.
+func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
+	gas, err := versioned(d.Gas.Ref, "Observation")
+	if err != nil {
+		return Identity{}, fmt.Errorf("blood gas: %w", err)
+	}
+	used, err := valueReadings(d, v)
+	if err != nil {
+		return Identity{}, err
+	}
+	refs := make([]string, 0, len(used)+1)
+	for _, r := range used {
+		refs = append(refs, r.Ref)
+	}
+	if v.UsesPatient {
+		p, err := versioned(d.Patient.Ref, "Patient")
+		if err != nil {
+			return Identity{}, fmt.Errorf("%s uses the patient: %w", v.Code, err)
+		}
+		refs = append(refs, p.String())
+	}
+	key, err := valueKey(v.Code, refs)
+	if err != nil {
+		return Identity{}, err
+	}
+	series, err := gasSeries(v.Code, gas)
+	if err != nil {
+		return Identity{}, err
+	}
+	return Identity{Key: key, Series: series}, nil
+}
+
+// GasSeries returns the series identifier value of the Observation for code
+// derived from the blood gas gasRef, versioned or not. The live service uses
+// it to find what it derived from a blood gas that has since been amended.
+func GasSeries(code derive.Code, gasRef string) (string, error) {
+	r, err := parseRef(gasRef)
+	if err != nil {
+		return "", fmt.Errorf("blood gas: %w", err)
+	}
+	if r.Type != "Observation" {
+		return "", fmt.Errorf("blood gas %q: want an Observation", gasRef)
+	}
+	return gasSeries(code, r)
+}
+
+// ObservationID returns the resource id of the Observation whose series
+// identifier value is series, as [Identity.ID] does.
+func ObservationID(series string) (string, error) {
+	hexPart, ok := strings.CutPrefix(series, hashPrefix)
+	if !ok || len(hexPart) != 2*sha256.Size {
+		return "", fmt.Errorf("series %q: want sha256: and 64 hex digits", series)
+	}
+	if _, err := hex.DecodeString(hexPart); err != nil {
+		return "", fmt.Errorf("series %q: %w", series, err)
+	}
+	return seriesID(series), nil
+}
+
+func gasSeries(code derive.Code, gas ref) (string, error) {
+	if _, ok := precisions[code]; !ok {
+		return "", fmt.Errorf("unknown code %q", code)
+	}
+	return digest("deadspace value series 1", "code="+string(code), "gas="+gas.Logical())
+}
+
+func valueKey(code derive.Code, refs []string) (string, error) {
+	if _, ok := precisions[code]; !ok {
+		return "", fmt.Errorf("unknown code %q", code)
+	}
+	fields := []string{"algorithm=" + derive.AlgorithmVersion, "code=" + string(code)}
+	for _, r := range sortedUnique(refs) {
+		fields = append(fields, "input="+r)
+	}
+	return digest("deadspace value key 1", fields...)
+}
+
+// FallIdentity computes both identifiers of the Observation that encodes f
+// for the patient subject ("Patient/id").
+func FallIdentity(subject string, f derive.Fall) (Identity, error) {
+	s, err := logical(subject, "Patient")
+	if err != nil {
+		return Identity{}, fmt.Errorf("subject: %w", err)
+	}
+	used, err := fallReadings(f)
+	if err != nil {
+		return Identity{}, err
+	}
+	refs := make([]string, 0, len(used))
+	for _, r := range used {
+		refs = append(refs, r.Ref)
+	}
+	key, err := valueKey(derive.CodeEtCO2Drop, refs)
+	if err != nil {
+		return Identity{}, err
+	}
+	series, err := FallSeries(s.String(), f.Onset)
+	if err != nil {
+		return Identity{}, err
+	}
+	return Identity{Key: key, Series: series}, nil
+}
+
+// FallSeries returns the series identifier value of the fall that began at
+// onset for the patient subject.
+func FallSeries(subject string, onset time.Time) (string, error) {
+	s, err := logical(subject, "Patient")
+	if err != nil {
+		return "", fmt.Errorf("subject: %w", err)
+	}
+	if onset.IsZero() {
+		return "", fmt.Errorf("fall has no onset time")
+	}
+	return digest("deadspace fall series 1", "code="+string(derive.CodeEtCO2Drop),
+		"subject="+s.String(), "onset="+onset.UTC().Format(time.RFC3339Nano))
+}
+
+// valueReadings returns the blood gas and every reading in the summaries
+// of the kinds v used, each checked to be a versioned Observation reference.
+func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
+	if _, err := versioned(d.Gas.Ref, "Observation"); err != nil {
+		return nil, fmt.Errorf("blood gas: %w", err)
+	}
+	out := []derive.Reading{d.Gas}
+	for _, k := range v.Inputs {
+		if k == derive.KindPaCO2 {
+			continue // the blood gas itself, never summarised
+		}
+		found := false
+		for _, s := range d.Used {
+			if s.Kind != k {
+				continue
+			}
+			found = true
+			for _, r := range s.Readings {
+				if _, err := versioned(r.Ref, "Observation"); err != nil {
+					return nil, fmt.Errorf("%s input %s: %w", v.Code, k, err)
+				}
+				out = append(out, r)
+			}
+		}
+		if !found {
+			return nil, fmt.Errorf("%s cites input %s, but the derivation has no summary of it", v.Code, k)
+		}
+	}
+	return out, nil
+}
+
+// fallReadings returns every reading a fall cites, each checked.
+func fallReadings(f derive.Fall) ([]derive.Reading, error) {
+	out := make([]derive.Reading, 0, len(f.BaselineReadings)+len(f.EpisodeReadings))
+	for _, set := range [][]derive.Reading{f.BaselineReadings, f.EpisodeReadings} {
+		for _, r := range set {
+			if _, err := versioned(r.Ref, "Observation"); err != nil {
+				return nil, fmt.Errorf("fall reading: %w", err)
+			}
+			out = append(out, r)
+		}
+	}
+	if len(f.EpisodeReadings) == 0 {
+		return nil, fmt.Errorf("fall cites no episode readings")
+	}
+	return out, nil
+}

@@ -1,0 +1,81 @@
+package encode
+
+import (
+	"fmt"
+	"regexp"
+	"slices"
+	"strings"
+)
+
+// refPattern is a relative literal reference, optionally versioned. The id
+// and version patterns are FHIR's id type, [A-Za-z0-9\-\.]{1,64} (R4
+// datatypes.html#id).
+var refPattern = regexp.MustCompile(`^([A-Z][A-Za-z]{1,63})/([A-Za-z0-9\-.]{1,64})(?:/_history/([A-Za-z0-9\-.]{1,64}))?$`)
+
+// ref is a parsed relative reference.
+type ref struct {
+	Type, ID, Version string
+}
+
+func parseRef(s string) (ref, error) {
+	m := refPattern.FindStringSubmatch(s)
+	if m == nil {
+		return ref{}, fmt.Errorf("reference %q is not of the form Type/id[/_history/version]", s)
+	}
+	return ref{Type: m[1], ID: m[2], Version: m[3]}, nil
+}
+
+// String returns the reference as written.
+func (r ref) String() string {
+	if r.Version == "" {
+		return r.Type + "/" + r.ID
+	}
+	return r.Type + "/" + r.ID + "/_history/" + r.Version
+}
+
+// Logical returns the unversioned reference.
+func (r ref) Logical() string { return r.Type + "/" + r.ID }
+
+// versioned parses s and requires a version and the given resource type.
+func versioned(s, typ string) (ref, error) {
+	r, err := parseRef(s)
+	if err != nil {
+		return ref{}, err
+	}
+	if r.Type != typ {
+		return ref{}, fmt.Errorf("reference %q: want a reference to %s", s, typ)
+	}
+	if r.Version == "" {
+		return ref{}, fmt.Errorf("reference %q has no version: derived values cite the exact version they used", s)
+	}
+	return r, nil
+}
+
+// logical parses s and requires an unversioned reference of type typ.
+func logical(s, typ string) (ref, error) {
+	r, err := parseRef(s)
+	if err != nil {
+		return ref{}, err
+	}
+	if r.Type != typ || r.Version != "" {
+		return ref{}, fmt.Errorf("reference %q: want an unversioned %s/id", s, typ)
+	}
+	return r, nil
+}
+
+// sortedUnique sorts refs and drops repeats; a reading in two summaries is
+// cited once.
+func sortedUnique(refs []string) []string {
+	out := slices.Clone(refs)
+	slices.Sort(out)
+	return slices.Compact(out)
+}
+
+// noNewline guards the line-based hash input against a field that could
+// forge another field.
+func noNewline(s string) error {
+	if strings.ContainsAny(s, "\n\r") {
+		return fmt.Errorf("%q contains a line break", s)
+	}
+	return nil
+}
