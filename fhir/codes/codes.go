@@ -1,0 +1,405 @@
+// Package codes says which coded FHIR Observations this service reads, and as
+// what. Recognition is a data table, not code: each row maps a coding
+// (system and code) to a [derive.Kind], or rejects it with a reason, so a
+// site can add its local codes or overrule a default without a rebuild.
+//
+// The default table is embedded from default.json. Its rows come from the
+// LOINC and ISO/IEEE 11073-10101 (MDC) codes collected in the project's
+// reference material; each row's "note" keeps that material's status for the
+// code (FOUND, FOUND-2 or from memory), because no code was checked on
+// loinc.org. Mixed-expired PCO2 has no default row: no LOINC code for it was
+// found, so a site that records it adds its own row with kind
+// "mixed-expired-co2".
+//
+// # File format
+//
+// A table file is a JSON object with one member, "rows", an array of rows:
+//
+//	{"rows": [
+//	  {"system": "http://loinc.org", "code": "2019-8", "display": "…",
+//	   "kind": "paco2", "priority": 20, "note": "…"},
+//	  {"system": "http://loinc.org", "code": "2021-4", "action": "reject",
+//	   "reason": "specimen-not-arterial"},
+//	  {"system": "http://loinc.org", "code": "9279-1", "action": "ignore"}
+//	]}
+//
+// "action" is "accept" (the default), "reject" or "ignore". An accepted row
+// needs a "kind" (a [derive.Kind] name). A rejected row needs a "reason" (a
+// [derive.Reason]); Observations with its code are reported as omitted with
+// that reason. An "ignore" row in a site file removes the default row with
+// the same system and code, so such Observations are unrelated to this
+// service. "co2Basis" ("wet" or "dry") is allowed on expired-gas CO2 rows
+// only and overrides the site's default basis for converting a percent to a
+// partial pressure (see package units).
+//
+// # Priority
+//
+// Several codes can measure one kind at once: a ventilator sends both the set
+// and the measured tidal volume. The decoder does not choose between them: it
+// copies the row's priority (higher is preferred) into each item's Priority,
+// and the pairing caller may keep, per kind and window, only the readings of
+// the highest priority present, reporting the others with
+// [derive.ReasonLowerPriority].
+// Default priorities: measured expired values 30 (tidal volume) or 20,
+// other measurements 20, settings, inspired volumes and partial rates 10–15.
+package codes
+
+import (
+	"bytes"
+	_ "embed"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"slices"
+	"strings"
+	"sync"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// Code system URIs.
+const (
+	LOINC = "http://loinc.org"
+	MDC   = "urn:iso:std:iso:11073:10101"
+	UCUM  = "http://unitsofmeasure.org"
+)
+
+// Action says what the decoder does with an Observation whose coding matches
+// a row.
+type Action uint8
+
+// The actions. ActionAccept is the zero value, so a row without "action"
+// accepts.
+const (
+	ActionAccept Action = iota
+	ActionReject
+	ActionIgnore
+)
+
+var actionNames = [...]string{ActionAccept: "accept", ActionReject: "reject", ActionIgnore: "ignore"}
+
+// String returns the action's name as written in table files.
+func (a Action) String() string {
+	if int(a) < len(actionNames) {
+		return actionNames[a]
+	}
+	return fmt.Sprintf("Action(%d)", a)
+}
+
+// Row is one recognised coding.
+type Row struct {
+	System  string
+	Code    string
+	Display string
+	// Kind is what an accepted row measures. Rejected rows may leave it
+	// KindUnknown.
+	Kind   derive.Kind
+	Action Action
+	// Reason is set on rejected rows only.
+	Reason derive.Reason
+	// CO2Basis is "", "wet" or "dry"; "" means the site default.
+	CO2Basis string
+	// Priority ranks rows of the same kind; higher is preferred.
+	Priority int
+	// Note records where the code comes from and how sure we are of it.
+	Note string
+}
+
+// Token returns the row's FHIR search token, "system|code".
+func (r Row) Token() string { return r.System + "|" + r.Code }
+
+type key struct{ system, code string }
+
+// Table is an immutable set of rows, keyed by system and code. It is safe for
+// concurrent use.
+type Table struct {
+	rows map[key]Row
+}
+
+//go:embed default.json
+var defaultJSON []byte
+
+var defaultTable = sync.OnceValue(func() *Table {
+	t, err := Parse(bytes.NewReader(defaultJSON))
+	if err != nil {
+		// The embedded file is tested; reaching this is a build defect.
+		panic(fmt.Sprintf("codes: embedded default.json: %v", err))
+	}
+	return t
+})
+
+// Default returns the embedded default table. The same *Table is returned
+// on every call; tables are immutable.
+func Default() *Table { return defaultTable() }
+
+// Load reads a site table and merges it over the default table, as
+// [Table.Merge] describes.
+func Load(r io.Reader) (*Table, error) {
+	site, err := Parse(r)
+	if err != nil {
+		return nil, fmt.Errorf("codes.Load: %w", err)
+	}
+	return Default().Merge(site), nil
+}
+
+// Merge returns a new table with the rows of t, overridden and extended by
+// the rows of site: a site row replaces the row with the same system and
+// code, and a site row with [ActionIgnore] removes it.
+func (t *Table) Merge(site *Table) *Table {
+	out := &Table{rows: make(map[key]Row, len(t.rows)+len(site.rows))}
+	for k, r := range t.rows {
+		if r.Action != ActionIgnore {
+			out.rows[k] = r
+		}
+	}
+	for k, r := range site.rows {
+		if r.Action == ActionIgnore {
+			delete(out.rows, k)
+			continue
+		}
+		out.rows[k] = r
+	}
+	return out
+}
+
+// Lookup returns the row for a coding. Ignore rows (present only in a table
+// from [Parse] that was not merged) are returned too; callers treat them as
+// absent.
+func (t *Table) Lookup(system, code string) (Row, bool) {
+	r, ok := t.rows[key{system, code}]
+	return r, ok
+}
+
+// Rows returns every row, sorted by system then code.
+func (t *Table) Rows() []Row {
+	out := make([]Row, 0, len(t.rows))
+	for _, r := range t.rows {
+		out = append(out, r)
+	}
+	slices.SortFunc(out, func(a, b Row) int {
+		if c := strings.Compare(a.System, b.System); c != 0 {
+			return c
+		}
+		return strings.Compare(a.Code, b.Code)
+	})
+	return out
+}
+
+// Codes returns the distinct code strings of the accepted and rejected rows,
+// sorted. A bulk reader uses them to skip lines that cannot be relevant
+// without decoding them; rejected codes are included because their lines
+// are reported as omissions.
+func (t *Table) Codes() []string {
+	seen := make(map[string]struct{}, len(t.rows))
+	for _, r := range t.rows {
+		if r.Action != ActionIgnore {
+			seen[r.Code] = struct{}{}
+		}
+	}
+	out := make([]string, 0, len(seen))
+	for c := range seen {
+		out = append(out, c)
+	}
+	slices.Sort(out)
+	return out
+}
+
+// SearchTokens returns "system|code" tokens of the accepted rows of the
+// given kinds (of every kind when none is given), sorted, for a FHIR search
+// such as Observation?code=a,b. Rejected rows are left out: fetching them
+// would only produce omissions.
+func (t *Table) SearchTokens(kinds ...derive.Kind) []string {
+	var out []string
+	for _, r := range t.Rows() {
+		if r.Action != ActionAccept {
+			continue
+		}
+		if len(kinds) > 0 && !slices.Contains(kinds, r.Kind) {
+			continue
+		}
+		out = append(out, r.Token())
+	}
+	return out
+}
+
+// fileJSON and rowJSON are the file format. Strings, not typed values, so
+// that every bad value can be reported together with its row.
+type fileJSON struct {
+	Rows json.RawMessage `json:"rows"`
+}
+
+type rowJSON struct {
+	System   string `json:"system"`
+	Code     string `json:"code"`
+	Display  string `json:"display"`
+	Kind     string `json:"kind"`
+	Action   string `json:"action"`
+	Reason   string `json:"reason"`
+	CO2Basis string `json:"co2Basis"`
+	Priority int    `json:"priority"`
+	Note     string `json:"note"`
+}
+
+// Parse reads one table file on its own, without merging it over the
+// default. Decoding is strict: an unknown member is an error. Every bad row
+// is reported, each with its line, in one joined error.
+func Parse(r io.Reader) (*Table, error) {
+	data, err := io.ReadAll(r)
+	if err != nil {
+		return nil, fmt.Errorf("read code table: %w", err)
+	}
+	dec := json.NewDecoder(bytes.NewReader(data))
+	dec.DisallowUnknownFields()
+	var f fileJSON
+	if err := dec.Decode(&f); err != nil {
+		return nil, fmt.Errorf("code table: %w", describe(data, 0, err))
+	}
+	if dec.More() {
+		return nil, fmt.Errorf("code table line %d: data after the table object", lineAt(data, int(dec.InputOffset())))
+	}
+	if f.Rows == nil {
+		return nil, errors.New(`code table: no "rows" member`)
+	}
+	// The offset of the rows array in data, so row errors can name lines.
+	base := bytes.Index(data, f.Rows)
+	return parseRows(data, base, f.Rows)
+}
+
+func parseRows(data []byte, base int, raw json.RawMessage) (*Table, error) {
+	dec := json.NewDecoder(bytes.NewReader(raw))
+	dec.DisallowUnknownFields()
+	if tok, err := dec.Token(); err != nil || tok != json.Delim('[') {
+		return nil, fmt.Errorf("code table line %d: \"rows\" must be an array", lineAt(data, base))
+	}
+	t := &Table{rows: make(map[key]Row)}
+	firstLine := make(map[key]int)
+	var errs []error
+	for n := 1; dec.More(); n++ {
+		start := base + skipSpace(raw, int(dec.InputOffset()))
+		var rj rowJSON
+		if err := dec.Decode(&rj); err != nil {
+			var syn *json.SyntaxError
+			if errors.As(err, &syn) {
+				return nil, fmt.Errorf("code table: %w", describe(data, start, err))
+			}
+			errs = append(errs, fmt.Errorf("row %d: %w", n, describe(data, start, err)))
+			continue
+		}
+		line := lineAt(data, start)
+		row, rowErrs := rj.row()
+		for _, e := range rowErrs {
+			errs = append(errs, fmt.Errorf("row %d (line %d, %s|%s): %w", n, line, rj.System, rj.Code, e))
+		}
+		if len(rowErrs) > 0 {
+			continue
+		}
+		k := key{row.System, row.Code}
+		if prev, dup := firstLine[k]; dup {
+			errs = append(errs, fmt.Errorf("row %d (line %d, %s|%s): duplicate of the row on line %d", n, line, rj.System, rj.Code, prev))
+			continue
+		}
+		firstLine[k] = line
+		t.rows[k] = row
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, fmt.Errorf("code table: %w", err)
+	}
+	return t, nil
+}
+
+// row converts and checks one decoded row, returning every problem.
+func (rj rowJSON) row() (Row, []error) {
+	var errs []error
+	r := Row{System: rj.System, Code: rj.Code, Display: rj.Display, CO2Basis: rj.CO2Basis, Priority: rj.Priority, Note: rj.Note}
+	if rj.System == "" {
+		errs = append(errs, errors.New(`"system" is required`))
+	}
+	if rj.Code == "" {
+		errs = append(errs, errors.New(`"code" is required`))
+	}
+	switch rj.Action {
+	case "", "accept":
+		r.Action = ActionAccept
+	case "reject":
+		r.Action = ActionReject
+	case "ignore":
+		r.Action = ActionIgnore
+	default:
+		errs = append(errs, fmt.Errorf(`"action" must be accept, reject or ignore, got %q`, rj.Action))
+	}
+	if rj.Kind != "" {
+		k, ok := derive.ParseKind(rj.Kind)
+		if !ok {
+			errs = append(errs, fmt.Errorf(`unknown "kind" %q`, rj.Kind))
+		}
+		r.Kind = k
+	}
+	if rj.Reason != "" {
+		if !slices.Contains(derive.AllReasons(), derive.Reason(rj.Reason)) {
+			errs = append(errs, fmt.Errorf(`unknown "reason" %q`, rj.Reason))
+		}
+		r.Reason = derive.Reason(rj.Reason)
+	}
+	switch r.Action {
+	case ActionAccept:
+		if rj.Kind == "" {
+			errs = append(errs, errors.New(`an accepted row needs a "kind"`))
+		}
+		if rj.Reason != "" {
+			errs = append(errs, errors.New(`"reason" is for rejected rows only`))
+		}
+	case ActionReject:
+		if rj.Reason == "" {
+			errs = append(errs, errors.New(`a rejected row needs a "reason"`))
+		}
+	}
+	switch rj.CO2Basis {
+	case "":
+	case "wet", "dry":
+		if r.Action != ActionAccept || (r.Kind != derive.KindEtCO2 && r.Kind != derive.KindMixedExpiredCO2) {
+			errs = append(errs, errors.New(`"co2Basis" applies only to accepted etco2 and mixed-expired-co2 rows`))
+		}
+	default:
+		errs = append(errs, fmt.Errorf(`"co2Basis" must be wet or dry, got %q`, rj.CO2Basis))
+	}
+	if rj.Priority < 0 {
+		errs = append(errs, fmt.Errorf(`"priority" must not be negative, got %d`, rj.Priority))
+	}
+	return r, errs
+}
+
+// describe adds the line (and, for unknown members, the member's own line)
+// to a decoding error. start is where the value being decoded begins.
+func describe(data []byte, start int, err error) error {
+	var syn *json.SyntaxError
+	var typ *json.UnmarshalTypeError
+	switch {
+	case errors.As(err, &syn):
+		return fmt.Errorf("line %d: %w", lineAt(data, start+int(syn.Offset)), err)
+	case errors.As(err, &typ):
+		return fmt.Errorf("line %d: member %q: %w", lineAt(data, start+int(typ.Offset)), typ.Field, err)
+	}
+	const prefix = `json: unknown field "`
+	if msg := err.Error(); strings.HasPrefix(msg, prefix) {
+		name := strings.TrimSuffix(strings.TrimPrefix(msg, prefix), `"`)
+		line := lineAt(data, start)
+		if i := bytes.Index(data[start:], []byte(`"`+name+`"`)); i >= 0 {
+			line = lineAt(data, start+i)
+		}
+		return fmt.Errorf("line %d: unknown member %q", line, name)
+	}
+	return fmt.Errorf("line %d: %w", lineAt(data, start), err)
+}
+
+func lineAt(data []byte, off int) int {
+	off = min(max(off, 0), len(data))
+	return 1 + bytes.Count(data[:off], []byte("\n"))
+}
+
+func skipSpace(b []byte, i int) int {
+	for i < len(b) && (b[i] == ' ' || b[i] == '\t' || b[i] == '\n' || b[i] == '\r' || b[i] == ',') {
+		i++
+	}
+	return i
+}
