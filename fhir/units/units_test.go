@@ -1,0 +1,354 @@
+package units_test
+
+import (
+	"bytes"
+	"encoding/json"
+	"errors"
+	"flag"
+	"math"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+var update = flag.Bool("update", false, "regenerate testdata/ucum-lhc-7.1.10.json with node")
+
+const (
+	referenceFile   = "testdata/ucum-lhc-7.1.10.json"
+	referenceScript = "testdata/ucum-reference.mjs"
+)
+
+// referenceTable is the output of referenceScript: the verdicts of the UCUM
+// reference library @lhncbc/ucum-lhc 7.1.10.
+type referenceTable struct {
+	Library string `json:"library"`
+	Version string `json:"version"`
+	Units   []struct {
+		Unit   string `json:"unit"`
+		Status string `json:"status"`
+	} `json:"units"`
+	Conversions []struct {
+		From   string   `json:"from"`
+		To     string   `json:"to"`
+		Value  float64  `json:"value"`
+		Status string   `json:"status"`
+		ToVal  *float64 `json:"toVal"`
+	} `json:"conversions"`
+}
+
+func loadReference(t *testing.T) referenceTable {
+	t.Helper()
+	data, err := os.ReadFile(referenceFile)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var ref referenceTable
+	if err := json.Unmarshal(data, &ref); err != nil {
+		t.Fatal(err)
+	}
+	if ref.Library != "@lhncbc/ucum-lhc" || ref.Version != "7.1.10" {
+		t.Fatalf("reference is %s %s, want @lhncbc/ucum-lhc 7.1.10", ref.Library, ref.Version)
+	}
+	return ref
+}
+
+func relDiff(a, b float64) float64 {
+	if a == b {
+		return 0
+	}
+	return math.Abs(a-b) / math.Max(math.Abs(a), math.Abs(b))
+}
+
+// Every unit string we accept must be valid UCUM according to ucum-lhc
+// 7.1.10, and every string ucum-lhc refuses we must refuse. (We may refuse
+// valid UCUM that we do not convert, such as cm[H2O] or ML, a megalitre.)
+func TestUnitStringsAgainstUcumLhc(t *testing.T) {
+	ref := loadReference(t)
+	listed := map[string]bool{}
+	for _, u := range ref.Units {
+		t.Run(u.Unit, func(t *testing.T) {
+			parsed, err := units.Parse(u.Unit)
+			if err == nil {
+				listed[parsed.Bare] = true
+			}
+			switch {
+			case err == nil && u.Status != "valid":
+				t.Errorf("we accept %q (as %q), ucum-lhc says %s", u.Unit, parsed.Bare, u.Status)
+			case err != nil:
+				var ue *units.Error
+				if !errors.As(err, &ue) || ue.Reason != derive.ReasonUnitUnknown {
+					t.Errorf("refusal of %q is %v, want an *Error with %s", u.Unit, err, derive.ReasonUnitUnknown)
+				}
+			}
+		})
+	}
+	for _, u := range units.SupportedUnits() {
+		if !listed[u] {
+			t.Errorf("supported unit %q is not in the reference table; add it to %s", u, referenceScript)
+		}
+	}
+}
+
+// Every conversion ucum-lhc 7.1.10 performs to a kind's canonical unit we
+// must perform with the same result (relative 1e-9), and every one it refuses
+// we must refuse as a mismatch. The kind for each canonical unit is one whose
+// Unit() it is; for mm[Hg] it is PaCO2, for which ucum-lhc and we both refuse
+// a percent (the expired-gas percent conversion is checked separately).
+func TestConversionsAgainstUcumLhc(t *testing.T) {
+	ref := loadReference(t)
+	kindFor := map[string]derive.Kind{
+		"mm[Hg]": derive.KindPaCO2, "mL": derive.KindTidalVolume, "L/min": derive.KindMinuteVolume,
+		"mL/min": derive.KindVCO2, "/min": derive.KindRespRate, "cm": derive.KindHeight,
+	}
+	for _, c := range ref.Conversions {
+		k, ok := kindFor[c.To]
+		if !ok || k.Unit() != c.To {
+			t.Fatalf("no kind with canonical unit %q", c.To)
+		}
+		got, err := units.Convert(k, c.Value, c.From, units.Options{})
+		switch {
+		case c.Status == "succeeded":
+			if err != nil {
+				t.Errorf("%v %q → %q: ucum-lhc gives %v, we fail: %v", c.Value, c.From, c.To, *c.ToVal, err)
+			} else if d := relDiff(got.ToValue, *c.ToVal); d > 1e-9 {
+				t.Errorf("%v %q → %q = %v, ucum-lhc gives %v (rel diff %.2g)", c.Value, c.From, c.To, got.ToValue, *c.ToVal, d)
+			}
+		default:
+			var ue *units.Error
+			if !errors.As(err, &ue) || ue.Reason != derive.ReasonUnitMismatch {
+				t.Errorf("%v %q → %q: ucum-lhc refuses, we give %+v, %v; want %s", c.Value, c.From, c.To, got, err, derive.ReasonUnitMismatch)
+			}
+		}
+	}
+}
+
+// The committed table must be what the script prints with the installed
+// library. CI installs testdata/node, so this runs there.
+func TestReferenceTableCurrent(t *testing.T) {
+	node, err := exec.LookPath("node")
+	if err != nil {
+		t.Skip("node not installed: cannot check the ucum-lhc reference table is current")
+	}
+	if _, err := os.Stat(filepath.Join("..", "..", "testdata", "node", "node_modules", "@lhncbc", "ucum-lhc")); err != nil {
+		t.Skip("testdata/node/node_modules not installed (run npm ci in testdata/node): cannot check the ucum-lhc reference table is current")
+	}
+	out, err := exec.Command(node, referenceScript).Output()
+	if err != nil {
+		t.Fatalf("%s: %v", referenceScript, err)
+	}
+	if *update {
+		if err := os.WriteFile(referenceFile, out, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		return
+	}
+	want, err := os.ReadFile(referenceFile)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(out, want) {
+		t.Errorf("%s is stale; regenerate with go test ./fhir/units -run TestReferenceTableCurrent -update", referenceFile)
+	}
+}
+
+func TestConvert(t *testing.T) {
+	cases := []struct {
+		name     string
+		kind     derive.Kind
+		value    float64
+		unit     string
+		opts     units.Options
+		want     float64
+		wantText string
+		// source of the expected value
+		source string
+	}{
+		{"kPa to mm[Hg]", derive.KindPaCO2, 5.3, "kPa", units.Options{}, 39.75337903721817,
+			"5.3 kPa × 7.50064 = 39.7534 mm[Hg]", "ucum-lhc 7.1.10 convertUnitTo (reference E16a)"},
+		{"canonical unit unchanged", derive.KindPaCO2, 40, "mm[Hg]", units.Options{}, 40,
+			"40 mm[Hg] (canonical unit, no conversion)", "identity"},
+		{"percent EtCO2 wet basis", derive.KindEtCO2, 5.0, "%", units.Options{BarometricPressure: 760, PercentBasis: units.BasisWet}, 35.65,
+			"5 % × (760 − 47) mm[Hg] / 100 = 35.65 mm[Hg] (wet basis, BTPS)",
+			"reference W6, own arithmetic from E17 (Intensive Care Med 2004, doi 10.1007/s00134-004-2194-8)"},
+		{"percent EtCO2 dry basis", derive.KindEtCO2, 5.0, "%", units.Options{BarometricPressure: 760, PercentBasis: units.BasisDry}, 38.0,
+			"5 % × 760 mm[Hg] / 100 = 38 mm[Hg] (dry basis, ambient pressure)", "reference W6, own arithmetic from E17"},
+		{"percent default is dry at 760", derive.KindEtCO2, 5.0, "%", units.Options{}, 38.0, "", "reference W6 (dry), package default"},
+		{"percent mixed-expired wet", derive.KindMixedExpiredCO2, 5.0, "%{CO2}", units.Options{PercentBasis: units.BasisWet}, 35.65, "", "reference W6"},
+		{"inches to cm", derive.KindHeight, 70, "[in_i]", units.Options{}, 177.8, "", "ucum-lhc 7.1.10: 70 [in_i] = 177.8 cm"},
+		{"L/min to mL/min for VCO2", derive.KindVCO2, 0.25, "L/min", units.Options{}, 250, "", "UCUM: L = 10^3 mL"},
+		{"annotated rate", derive.KindRespRate, 14, "{breaths}/min", units.Options{}, 14, "", "ucum-lhc 7.1.10: annotations carry no dimension"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			got, err := units.Convert(tc.kind, tc.value, tc.unit, tc.opts)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if d := relDiff(got.ToValue, tc.want); d > 1e-9 {
+				t.Errorf("ToValue = %v, want %v (%s)", got.ToValue, tc.want, tc.source)
+			}
+			if relDiff(got.Factor*tc.value, got.ToValue) > 1e-12 {
+				t.Errorf("Factor %v × %v ≠ %v", got.Factor, tc.value, got.ToValue)
+			}
+			if got.ToUnit != tc.kind.Unit() || got.FromUnit != tc.unit || got.FromValue != tc.value {
+				t.Errorf("conversion = %+v", got)
+			}
+			if tc.wantText != "" && got.Text != tc.wantText {
+				t.Errorf("Text = %q, want %q", got.Text, tc.wantText)
+			}
+		})
+	}
+}
+
+func TestConvertRefusals(t *testing.T) {
+	cases := []struct {
+		name   string
+		kind   derive.Kind
+		unit   string
+		reason derive.Reason
+	}{
+		{"mmHg is not UCUM", derive.KindPaCO2, "mmHg", derive.ReasonUnitUnknown},
+		{"kpa is not UCUM (case-sensitive)", derive.KindPaCO2, "kpa", derive.ReasonUnitUnknown},
+		{"ML is a megalitre, not converted", derive.KindTidalVolume, "ML", derive.ReasonUnitUnknown},
+		{"cm[H2O] is valid UCUM but not converted", derive.KindPaCO2, "cm[H2O]", derive.ReasonUnitUnknown},
+		{"annotation before a symbol", derive.KindPaCO2, "{x}mm[Hg]", derive.ReasonUnitUnknown},
+		{"space inside a unit", derive.KindPaCO2, "mm Hg", derive.ReasonUnitUnknown},
+		{"empty", derive.KindPaCO2, "", derive.ReasonUnitUnknown},
+		{"volume for a pressure", derive.KindPaCO2, "mL", derive.ReasonUnitMismatch},
+		{"percent PaCO2", derive.KindPaCO2, "%", derive.ReasonUnitMismatch},
+		{"percent tidal volume", derive.KindTidalVolume, "%", derive.ReasonUnitMismatch},
+		{"concentration for a pressure", derive.KindPaCO2, "mmol/L", derive.ReasonUnitMismatch},
+		{"mass for a height", derive.KindHeight, "kg", derive.ReasonUnitMismatch},
+		{"bare annotation for a rate", derive.KindRespRate, "{breaths}", derive.ReasonUnitMismatch},
+		{"volume for a flow", derive.KindMinuteVolume, "L", derive.ReasonUnitMismatch},
+		{"unknown kind", derive.KindUnknown, "mL", derive.ReasonUnitMismatch},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			_, err := units.Convert(tc.kind, 1, tc.unit, units.Options{})
+			var ue *units.Error
+			if !errors.As(err, &ue) {
+				t.Fatalf("err = %v, want *units.Error", err)
+			}
+			if ue.Reason != tc.reason {
+				t.Errorf("reason = %s, want %s (%v)", ue.Reason, tc.reason, err)
+			}
+		})
+	}
+}
+
+func TestFromQuantity(t *testing.T) {
+	cases := []struct {
+		name       string
+		q          units.Quantity
+		want       float64
+		wantSource string
+		reason     derive.Reason
+	}{
+		{"code wins over unit", units.Quantity{System: codes.UCUM, Code: "kPa", Unit: "mmHg"}, 39.75337903721817, "code", ""},
+		{"code without system read as UCUM", units.Quantity{Code: "kPa"}, 39.75337903721817, "code", ""},
+		{"unit used when code absent", units.Quantity{Unit: "kPa"}, 39.75337903721817, "unit", ""},
+		{"non-UCUM system refused", units.Quantity{System: "http://example.org/units", Code: "kPa"}, 0, "", derive.ReasonUnitUnknown},
+		{"display-only unit not UCUM", units.Quantity{Unit: "mmHg"}, 0, "", derive.ReasonUnitUnknown},
+		{"no unit at all", units.Quantity{}, 0, "", derive.ReasonUnitUnknown},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			got, err := units.FromQuantity(derive.KindPaCO2, 5.3, tc.q, units.Options{})
+			if tc.reason != "" {
+				var ue *units.Error
+				if !errors.As(err, &ue) || ue.Reason != tc.reason {
+					t.Fatalf("err = %v, want reason %s", err, tc.reason)
+				}
+				return
+			}
+			if err != nil {
+				t.Fatal(err)
+			}
+			if relDiff(got.ToValue, tc.want) > 1e-9 || got.Source != tc.wantSource {
+				t.Errorf("got %v from %q, want %v from %q", got.ToValue, got.Source, tc.want, tc.wantSource)
+			}
+			if tc.wantSource == "unit" && !strings.Contains(got.Text, "Quantity.unit") {
+				t.Errorf("Text %q does not say the unit came from Quantity.unit", got.Text)
+			}
+		})
+	}
+}
+
+// UCUM's mm[Hg] (133.3220 Pa, reference E16a, ucum-lhc baseFactor) is about
+// 3 ppm below the conventional 133.322387415 Pa (reference E16, "1 mmHg
+// equals exactly 133.322387415 pascals").
+func TestMMHgConstant(t *testing.T) {
+	const conventional = 133.322387415
+	d := 1 - units.MMHgPascal/conventional
+	if d < 2e-6 || d > 4e-6 {
+		t.Errorf("MMHgPascal differs from the conventional value by %.3g, documented as about 3 ppm", d)
+	}
+}
+
+func TestOptionsValidate(t *testing.T) {
+	cases := []struct {
+		name string
+		o    units.Options
+		ok   bool
+	}{
+		{"zero value is the defaults", units.Options{}, true},
+		{"high altitude", units.Options{BarometricPressure: 500, PercentBasis: units.BasisWet}, true},
+		{"kPa typed by mistake", units.Options{BarometricPressure: 101.3}, false},
+		{"negative", units.Options{BarometricPressure: -760}, false},
+		{"NaN", units.Options{BarometricPressure: math.NaN()}, false},
+		{"unknown basis", units.Options{PercentBasis: 9}, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			if err := tc.o.Validate(); (err == nil) != tc.ok {
+				t.Errorf("Validate() = %v, want ok=%v", err, tc.ok)
+			}
+		})
+	}
+}
+
+func TestParseBasis(t *testing.T) {
+	for _, b := range []units.Basis{units.BasisDry, units.BasisWet} {
+		got, err := units.ParseBasis(b.String())
+		if err != nil || got != b {
+			t.Errorf("ParseBasis(%q) = %v, %v", b, got, err)
+		}
+	}
+	if _, err := units.ParseBasis("damp"); err == nil {
+		t.Error("ParseBasis(damp) succeeded")
+	}
+}
+
+func FuzzParse(f *testing.F) {
+	for _, s := range []string{"mm[Hg]", "{breaths}/min", "L/min{BTPS}", "mL{a}{b}", "{x}mm[Hg]", " mL", "%{CO2}", "{", "}", "{}", "[in_i]{h}"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		u, err := units.Parse(s)
+		if err != nil {
+			return
+		}
+		if strings.ContainsAny(u.Bare, "{} \t\r\n") {
+			t.Fatalf("Parse(%q).Bare = %q still has annotations or space", s, u.Bare)
+		}
+		if u.Bare != "" {
+			again, err := units.Parse(u.Bare)
+			if err != nil || again.Bare != u.Bare || again.Dimension() != u.Dimension() {
+				t.Fatalf("Parse(%q) = %q, but Parse(%q) = %+v, %v", s, u.Bare, u.Bare, again, err)
+			}
+		}
+		for _, k := range derive.Kinds() {
+			c, err := units.Convert(k, 1, s, units.Options{})
+			if err == nil && (math.IsNaN(c.ToValue) || c.ToValue <= 0) {
+				t.Fatalf("Convert(%v, 1, %q) = %v", k, s, c.ToValue)
+			}
+		}
+	})
+}
