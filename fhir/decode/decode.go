@@ -1,0 +1,635 @@
+// Package decode turns one FHIR R4 JSON resource (a line of an NDJSON bulk
+// export, a notification entry, a search result entry) into an [Item]: a
+// [derive.Reading] in its kind's canonical unit, a [derive.Patient], a
+// [derive.Omission] saying why a relevant resource cannot be used, or a note
+// that the resource is unrelated to this service.
+//
+// # Rules for Observations, in the order they apply
+//
+//  1. Code: the first coding, in document order, whose system and code have
+//     a row in the code table decides the kind; an Observation with none is
+//     [ItemUnrelated], not an omission. A rejected row gives its reason
+//     (venous PCO2: [derive.ReasonNotArterial]) after steps 2–4.
+//  2. id: required ([derive.ReasonMalformed], "no id"). meta.versionId, when
+//     present, makes the reference versioned: "Observation/{id}/_history/{vid}".
+//  3. status entered-in-error: [derive.ReasonEnteredInError], with ID,
+//     VersionID, Ref and Subject filled so the caller can withdraw what was
+//     derived from the resource.
+//  4. A member of the wrong JSON type: [derive.ReasonMalformed].
+//  5. status other than final, amended or corrected: [derive.ReasonStatus].
+//  6. subject must be a literal Patient reference ("Patient/{id}" or an
+//     absolute URL ending so): [derive.ReasonNoSubject].
+//  7. Value: valueQuantity with a numeric value is required
+//     ([derive.ReasonNoValue], with the dataAbsentReason or the value[x]
+//     type in the detail); a comparator makes it [derive.ReasonCensored].
+//  8. Unit: see package units ([derive.ReasonUnitUnknown],
+//     [derive.ReasonUnitMismatch]).
+//  9. Time: effectiveDateTime, effectiveInstant or effectivePeriod.start,
+//     which must carry a time of day and a timezone; `issued` (when the
+//     result was reported) is never used, because pairing needs the sample
+//     time. Otherwise [derive.ReasonNoTime].
+//  10. [derive.Plausible] for the kind, else [derive.ReasonImplausible] with
+//     the range in the detail.
+//
+// Observations with components (an arterial blood gas panel, 24336-0, with
+// PaCO2 as a component) are not read: a component has no id of its own, so
+// a reading from it could not be cited by a versioned reference.
+//
+// Patients give Sex from gender (male, female; anything else unknown) and
+// BirthDate from birthDate. A partial birth date is taken at the middle of
+// the period it names, YYYY as 1 July and YYYY-MM as the 15th, which halves
+// the worst error of an age in years compared with taking the first day.
+//
+// A Bundle line (unusual in an NDJSON export, which holds one resource type
+// per file) is [ItemUnrelated] with ResourceType "Bundle"; unpacking bundles
+// is the caller's job.
+//
+// # Speed
+//
+// A bulk file is mostly Observations this service has no use for. Before
+// decoding, a single pass over the bytes (the prefilter) validates the JSON,
+// reads resourceType and checks whether any "code" member holds a code of
+// the table; only Patients and Observations that pass are decoded. The
+// prefilter is exact: it gives the same [Item] as decoding every line.
+//
+// Observations are decoded with encoding/json into small structs (checked
+// against the samply R4 model in the tests), which match member names
+// case-insensitively, unlike FHIR; resourceType itself is matched exactly.
+// A decimal written as a JSON string is refused (samply accepts it).
+package decode
+
+import (
+	"encoding/json"
+	"errors"
+	"fmt"
+	"math"
+	"strconv"
+	"strings"
+	"time"
+	"unicode/utf8"
+	"unique"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+// Errors returned by [Decoder.Decode]. Both mean the line is
+// [derive.ReasonMalformed] for the caller.
+var (
+	ErrNotJSON     = errors.New("not JSON")
+	ErrNotResource = errors.New("not a FHIR resource")
+)
+
+// ItemType says what an [Item] holds.
+type ItemType uint8
+
+// The item types. The zero value is not a valid type.
+const (
+	ItemReading   ItemType = iota + 1 // Reading is usable
+	ItemPatient                       // Patient is filled
+	ItemOmitted                       // a relevant resource that cannot be used; see Omission
+	ItemUnrelated                     // a resource this service has no use for
+)
+
+func (t ItemType) String() string {
+	switch t {
+	case ItemReading:
+		return "reading"
+	case ItemPatient:
+		return "patient"
+	case ItemOmitted:
+		return "omitted"
+	case ItemUnrelated:
+		return "unrelated"
+	}
+	return fmt.Sprintf("ItemType(%d)", t)
+}
+
+// Item is the result of decoding one resource. For [ItemUnrelated] only
+// Type and ResourceType are set.
+type Item struct {
+	Type         ItemType
+	ResourceType string
+	ID           string
+	VersionID    string
+	// Ref is "Observation/{id}/_history/{vid}", or "Observation/{id}" when
+	// meta.versionId is absent (likewise for Patients).
+	Ref string
+	// Subject is the unversioned patient reference as written, for grouping:
+	// "Patient/123". For a Patient item it is "Patient/{id}".
+	Subject     string
+	Status      string
+	LastUpdated time.Time
+	// Reading is complete for ItemReading. For an omitted Observation only
+	// Ref and Kind are reliable (Kind is KindUnknown for a rejected row
+	// without a kind).
+	Reading derive.Reading
+	// Priority is the code table row's priority; the pairing step prefers
+	// the highest among readings of one kind (see package codes).
+	Priority   int
+	Original   Original
+	Conversion units.Conversion
+	Patient    derive.Patient
+	// Omission is set for ItemOmitted.
+	Omission derive.Omission
+}
+
+// Original is the value as the resource wrote it.
+type Original struct {
+	// Value is the JSON number's text, so 40.0 stays "40.0".
+	Value              string
+	Unit, System, Code string
+}
+
+// Options configure a [Decoder].
+type Options struct {
+	// Table is the code table; nil means [codes.Default].
+	Table *codes.Table
+	// Units are the site's unit settings; the zero value means the defaults.
+	Units units.Options
+}
+
+// Decoder decodes resources. It is safe for concurrent use.
+type Decoder struct {
+	table   *codes.Table
+	units   units.Options
+	codeSet map[string]struct{}
+	// noPrefilter makes every Observation take the full decode, so tests
+	// can compare the two paths.
+	noPrefilter bool
+}
+
+// New returns a Decoder. It panics if opts.Units fails [units.Options.Validate];
+// validate configuration before calling it.
+func New(opts Options) *Decoder {
+	if err := opts.Units.Validate(); err != nil {
+		panic(fmt.Sprintf("decode.New: %v", err))
+	}
+	t := opts.Table
+	if t == nil {
+		t = codes.Default()
+	}
+	set := make(map[string]struct{})
+	for _, c := range t.Codes() {
+		set[c] = struct{}{}
+	}
+	return &Decoder{table: t, units: opts.Units, codeSet: set}
+}
+
+// Decode decodes one resource. The error is non-nil only when line is not
+// JSON ([ErrNotJSON]) or not a FHIR resource, that is not an object with a
+// resourceType string ([ErrNotResource]).
+func (d *Decoder) Decode(line []byte) (Item, error) {
+	sr, err := scan(line, d.codeSet)
+	switch {
+	case err != nil:
+		return Item{}, fmt.Errorf("decode: %w: %w", ErrNotJSON, err)
+	case !sr.object:
+		return Item{}, fmt.Errorf("decode: %w: not a JSON object", ErrNotResource)
+	case sr.rtBad:
+		return Item{}, fmt.Errorf("decode: %w: resourceType is not a string", ErrNotResource)
+	case !sr.hasRT || len(sr.rt) == 0:
+		return Item{}, fmt.Errorf("decode: %w: no resourceType", ErrNotResource)
+	}
+	switch string(sr.rt) {
+	case "Observation":
+		if !sr.candidate && !d.noPrefilter {
+			return Item{Type: ItemUnrelated, ResourceType: "Observation"}, nil
+		}
+		return d.observation(line), nil
+	case "Patient":
+		return d.patient(line), nil
+	}
+	return Item{Type: ItemUnrelated, ResourceType: resourceTypeName(sr.rt)}, nil
+}
+
+// resourceTypeName avoids an allocation for the usual neighbours of
+// Observations in a bulk export.
+func resourceTypeName(rt []byte) string {
+	for _, n := range [...]string{"Bundle", "Encounter", "Device", "Condition", "MedicationAdministration", "Procedure", "Provenance"} {
+		if string(rt) == n {
+			return n
+		}
+	}
+	return string(rt)
+}
+
+// The JSON shapes read. Only the members this service uses are declared.
+
+type metaJSON struct {
+	VersionID   string `json:"versionId"`
+	LastUpdated string `json:"lastUpdated"`
+}
+
+type codingJSON struct {
+	System string `json:"system"`
+	Code   string `json:"code"`
+}
+
+type conceptJSON struct {
+	Coding []codingJSON `json:"coding"`
+	Text   string       `json:"text"`
+}
+
+type referenceJSON struct {
+	Reference  string          `json:"reference"`
+	Identifier json.RawMessage `json:"identifier"`
+}
+
+type quantityJSON struct {
+	Value      json.RawMessage `json:"value"`
+	Comparator string          `json:"comparator"`
+	Unit       string          `json:"unit"`
+	System     string          `json:"system"`
+	Code       string          `json:"code"`
+}
+
+type periodJSON struct {
+	Start string `json:"start"`
+	End   string `json:"end"`
+}
+
+type observationJSON struct {
+	ID                string          `json:"id"`
+	Meta              *metaJSON       `json:"meta"`
+	Status            string          `json:"status"`
+	Code              conceptJSON     `json:"code"`
+	Subject           *referenceJSON  `json:"subject"`
+	Encounter         *referenceJSON  `json:"encounter"`
+	EffectiveDateTime *string         `json:"effectiveDateTime"`
+	EffectiveInstant  *string         `json:"effectiveInstant"`
+	EffectivePeriod   *periodJSON     `json:"effectivePeriod"`
+	EffectiveTiming   json.RawMessage `json:"effectiveTiming"`
+	ValueQuantity     *quantityJSON   `json:"valueQuantity"`
+	DataAbsentReason  *conceptJSON    `json:"dataAbsentReason"`
+	// The other value[x] types, only to say which one was sent.
+	ValueCodeableConcept json.RawMessage `json:"valueCodeableConcept"`
+	ValueString          json.RawMessage `json:"valueString"`
+	ValueBoolean         json.RawMessage `json:"valueBoolean"`
+	ValueInteger         json.RawMessage `json:"valueInteger"`
+	ValueRange           json.RawMessage `json:"valueRange"`
+	ValueRatio           json.RawMessage `json:"valueRatio"`
+	ValueSampledData     json.RawMessage `json:"valueSampledData"`
+	ValueTime            json.RawMessage `json:"valueTime"`
+	ValueDateTime        json.RawMessage `json:"valueDateTime"`
+	ValuePeriod          json.RawMessage `json:"valuePeriod"`
+}
+
+func present(raw json.RawMessage) bool { return len(raw) > 0 && string(raw) != "null" }
+
+func (o *observationJSON) otherValues() []string {
+	var out []string
+	for _, v := range []struct {
+		name string
+		raw  json.RawMessage
+	}{
+		{"valueCodeableConcept", o.ValueCodeableConcept}, {"valueString", o.ValueString},
+		{"valueBoolean", o.ValueBoolean}, {"valueInteger", o.ValueInteger}, {"valueRange", o.ValueRange},
+		{"valueRatio", o.ValueRatio}, {"valueSampledData", o.ValueSampledData}, {"valueTime", o.ValueTime},
+		{"valueDateTime", o.ValueDateTime}, {"valuePeriod", o.ValuePeriod},
+	} {
+		if present(v.raw) {
+			out = append(out, v.name)
+		}
+	}
+	return out
+}
+
+type patientJSON struct {
+	ID        string    `json:"id"`
+	Meta      *metaJSON `json:"meta"`
+	Gender    string    `json:"gender"`
+	BirthDate string    `json:"birthDate"`
+}
+
+func (d *Decoder) lookup(c conceptJSON) (codes.Row, bool) {
+	for _, cd := range c.Coding {
+		if r, ok := d.table.Lookup(cd.System, cd.Code); ok && r.Action != codes.ActionIgnore {
+			return r, true
+		}
+	}
+	return codes.Row{}, false
+}
+
+func (d *Decoder) observation(line []byte) Item {
+	var o observationJSON
+	// The line is valid JSON, so the only possible errors are members of the
+	// wrong type; encoding/json still fills the rest.
+	typeErr := json.Unmarshal(line, &o)
+	row, ok := d.lookup(o.Code)
+	if !ok {
+		return Item{Type: ItemUnrelated, ResourceType: "Observation"}
+	}
+	it := Item{Type: ItemOmitted, ResourceType: "Observation", Status: o.Status, Priority: row.Priority}
+	it.Reading.Kind = row.Kind
+	omit := func(reason derive.Reason, detail string) Item {
+		it.Type = ItemOmitted
+		it.Reading.Ref = it.Ref
+		it.Omission = derive.Omission{Ref: it.Ref, Reason: reason, Detail: detail}
+		return it
+	}
+	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
+		return omit(derive.ReasonMalformed, problem)
+	}
+	subject, subjectProblem := patientSubject(o.Subject)
+	it.Subject = subject
+	if o.Status == "entered-in-error" {
+		return omit(derive.ReasonEnteredInError, "status entered-in-error")
+	}
+	if typeErr != nil {
+		return omit(derive.ReasonMalformed, describeTypeError(typeErr))
+	}
+	if row.Action == codes.ActionReject {
+		return omit(row.Reason, fmt.Sprintf("code %s|%s (%s)", row.System, row.Code, row.Display))
+	}
+	switch o.Status {
+	case "final", "amended", "corrected":
+	case "":
+		return omit(derive.ReasonStatus, "no status")
+	default:
+		return omit(derive.ReasonStatus, fmt.Sprintf("status %q", clip(o.Status)))
+	}
+	if subjectProblem != "" {
+		return omit(derive.ReasonNoSubject, subjectProblem)
+	}
+	if o.Encounter != nil && o.Encounter.Reference != "" {
+		it.Reading.Encounter = intern(o.Encounter.Reference)
+	}
+
+	// Value.
+	others := o.otherValues()
+	q := o.ValueQuantity
+	switch {
+	case len(others)+btoi(q != nil) > 1:
+		return omit(derive.ReasonMalformed, "more than one value[x]")
+	case o.DataAbsentReason != nil && (q != nil || len(others) > 0):
+		return omit(derive.ReasonMalformed, "both a value and a dataAbsentReason (obs-6)")
+	case o.DataAbsentReason != nil:
+		return omit(derive.ReasonNoValue, "dataAbsentReason "+conceptText(*o.DataAbsentReason))
+	case q == nil && len(others) > 0:
+		return omit(derive.ReasonNoValue, others[0]+" is not a Quantity")
+	case q == nil:
+		return omit(derive.ReasonNoValue, "no value")
+	case !present(q.Value):
+		return omit(derive.ReasonNoValue, "valueQuantity has no value")
+	}
+	it.Original = Original{Value: string(q.Value), Unit: q.Unit, System: q.System, Code: q.Code}
+	if c := q.Value[0]; c != '-' && (c < '0' || c > '9') {
+		return omit(derive.ReasonMalformed, "valueQuantity.value is not a JSON number")
+	}
+	v, err := strconv.ParseFloat(string(q.Value), 64)
+	if err != nil {
+		return omit(derive.ReasonMalformed, "valueQuantity.value is out of range")
+	}
+	if q.Comparator != "" {
+		return omit(derive.ReasonCensored, fmt.Sprintf("comparator %q", clip(q.Comparator)))
+	}
+
+	// Unit.
+	uopts := d.units
+	if row.CO2Basis != "" {
+		if b, err := units.ParseBasis(row.CO2Basis); err == nil {
+			uopts.PercentBasis = b
+		}
+	}
+	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, uopts)
+	if err != nil {
+		var ue *units.Error
+		if errors.As(err, &ue) {
+			return omit(ue.Reason, fmt.Sprintf("unit %q: %s", clip(ue.Unit), ue.Detail))
+		}
+		return omit(derive.ReasonUnitUnknown, clip(err.Error()))
+	}
+	it.Conversion = conv
+
+	// Time.
+	at, reason, problem := effectiveTime(&o)
+	if problem != "" {
+		return omit(reason, problem)
+	}
+
+	if ok, lo, hi := derive.Plausible(row.Kind, conv.ToValue); !ok {
+		return omit(derive.ReasonImplausible, fmt.Sprintf("%s %s is outside the plausible range %s–%s %s for %s",
+			fmtNum(conv.ToValue), conv.ToUnit, fmtNum(lo), fmtNum(hi), conv.ToUnit, row.Kind))
+	}
+	it.Type = ItemReading
+	it.Reading.Ref = it.Ref
+	it.Reading.AtMillis = at.UnixMilli()
+	it.Reading.Value = conv.ToValue
+	return it
+}
+
+// identify fills ID, VersionID, Ref and LastUpdated, or says what is wrong.
+func (d *Decoder) identify(it *Item, resourceType, id string, meta *metaJSON) string {
+	switch {
+	case id == "":
+		return "no id"
+	case !validID(id):
+		return "id is not a FHIR id"
+	}
+	it.ID = id
+	it.Ref = resourceType + "/" + id
+	if meta == nil {
+		return ""
+	}
+	if t, err := time.Parse(time.RFC3339Nano, meta.LastUpdated); err == nil {
+		it.LastUpdated = t
+	}
+	if meta.VersionID != "" {
+		if !validID(meta.VersionID) {
+			it.Ref = ""
+			return "meta.versionId is not a FHIR id"
+		}
+		it.VersionID = meta.VersionID
+		it.Ref += "/_history/" + meta.VersionID
+	}
+	return ""
+}
+
+// validID checks the FHIR id type: [A-Za-z0-9\-\.]{1,64}.
+func validID(s string) bool {
+	if len(s) == 0 || len(s) > 64 {
+		return false
+	}
+	for i := 0; i < len(s); i++ {
+		c := s[i]
+		if !(c >= 'A' && c <= 'Z' || c >= 'a' && c <= 'z' || c >= '0' && c <= '9' || c == '-' || c == '.') {
+			return false
+		}
+	}
+	return true
+}
+
+// patientSubject returns the unversioned Patient reference, or a problem.
+func patientSubject(r *referenceJSON) (string, string) {
+	if r == nil {
+		return "", "no subject"
+	}
+	ref := r.Reference
+	if ref == "" {
+		if present(r.Identifier) {
+			return "", "subject has an identifier but no literal reference"
+		}
+		return "", "subject has no reference"
+	}
+	if i := strings.Index(ref, "/_history/"); i >= 0 {
+		ref = ref[:i]
+	}
+	j := strings.LastIndexByte(ref, '/')
+	if j < 0 {
+		return "", "subject is not a Patient/{id} reference"
+	}
+	typ, id := ref[:j], ref[j+1:]
+	if k := strings.LastIndexByte(typ, '/'); k >= 0 {
+		typ = typ[k+1:]
+	}
+	if typ != "Patient" {
+		return "", fmt.Sprintf("subject is a %q reference, not a Patient", clip(typ))
+	}
+	if !validID(id) {
+		return "", "subject id is not a FHIR id"
+	}
+	return intern(ref), ""
+}
+
+// effectiveTime applies rule 9 of the package documentation. Two
+// effective[x] members break FHIR's choice-type rule and are malformed.
+func effectiveTime(o *observationJSON) (time.Time, derive.Reason, string) {
+	n := btoi(o.EffectiveDateTime != nil) + btoi(o.EffectiveInstant != nil) + btoi(o.EffectivePeriod != nil) + btoi(present(o.EffectiveTiming))
+	var t time.Time
+	var problem string
+	switch {
+	case n > 1:
+		return time.Time{}, derive.ReasonMalformed, "more than one effective[x]"
+	case o.EffectiveDateTime != nil:
+		t, problem = parseTime("effectiveDateTime", *o.EffectiveDateTime)
+	case o.EffectiveInstant != nil:
+		t, problem = parseTime("effectiveInstant", *o.EffectiveInstant)
+	case o.EffectivePeriod != nil && o.EffectivePeriod.Start == "":
+		problem = "effectivePeriod has no start"
+	case o.EffectivePeriod != nil:
+		t, problem = parseTime("effectivePeriod.start", o.EffectivePeriod.Start)
+	case n == 1:
+		problem = "effectiveTiming cannot place a reading in time"
+	default:
+		problem = "no effective time (issued is not used: it is when the result was reported)"
+	}
+	return t, derive.ReasonNoTime, problem
+}
+
+// parseTime needs a time of day and a timezone: without them a reading
+// cannot be placed within minutes of a blood gas.
+func parseTime(field, s string) (time.Time, string) {
+	if t, err := time.Parse(time.RFC3339Nano, s); err == nil {
+		return t, ""
+	}
+	tpos := strings.IndexByte(s, 'T')
+	switch {
+	case tpos < 0 && len(s) <= 10:
+		return time.Time{}, field + " is a date without a time of day"
+	case tpos >= 0 && !strings.ContainsAny(s[tpos:], "Z+-"):
+		return time.Time{}, field + " has no timezone"
+	}
+	return time.Time{}, field + " is not a FHIR dateTime with seconds and timezone"
+}
+
+func (d *Decoder) patient(line []byte) Item {
+	var p patientJSON
+	typeErr := json.Unmarshal(line, &p)
+	it := Item{Type: ItemPatient, ResourceType: "Patient"}
+	omit := func(reason derive.Reason, detail string) Item {
+		it.Type = ItemOmitted
+		it.Omission = derive.Omission{Ref: it.Ref, Reason: reason, Detail: detail}
+		return it
+	}
+	if problem := d.identify(&it, "Patient", p.ID, p.Meta); problem != "" {
+		return omit(derive.ReasonMalformed, problem)
+	}
+	it.Subject = intern("Patient/" + p.ID)
+	if typeErr != nil {
+		return omit(derive.ReasonMalformed, describeTypeError(typeErr))
+	}
+	it.Patient.Ref = it.Ref
+	switch p.Gender {
+	case "male":
+		it.Patient.Sex = derive.SexMale
+	case "female":
+		it.Patient.Sex = derive.SexFemale
+	}
+	it.Patient.BirthDate = birthDate(p.BirthDate)
+	return it
+}
+
+// birthDate reads a FHIR date, taking a partial date at the middle of the
+// period it names; see the package documentation.
+func birthDate(s string) time.Time {
+	switch len(s) {
+	case 4:
+		if t, err := time.Parse("2006", s); err == nil {
+			return t.AddDate(0, 6, 0) // 1 July
+		}
+	case 7:
+		if t, err := time.Parse("2006-01", s); err == nil {
+			return t.AddDate(0, 0, 14) // the 15th
+		}
+	case 10:
+		if t, err := time.Parse(time.DateOnly, s); err == nil {
+			return t
+		}
+	}
+	return time.Time{}
+}
+
+func describeTypeError(err error) string {
+	var te *json.UnmarshalTypeError
+	if errors.As(err, &te) {
+		field := te.Field
+		if field == "" {
+			field = "the resource"
+		}
+		return fmt.Sprintf("%s is a JSON %s, not the type FHIR defines", clip(field), te.Value)
+	}
+	return clip(err.Error())
+}
+
+func conceptText(c conceptJSON) string {
+	for _, cd := range c.Coding {
+		if cd.Code != "" {
+			return clip(cd.Code)
+		}
+	}
+	if c.Text != "" {
+		return clip(c.Text)
+	}
+	return "(no code)"
+}
+
+// clip bounds strings copied from a resource into a detail.
+func clip(s string) string {
+	const n = 64
+	if len(s) <= n {
+		return s
+	}
+	cut := n
+	for cut > 0 && !utf8.RuneStart(s[cut]) {
+		cut--
+	}
+	return s[:cut] + "…"
+}
+
+func intern(s string) string { return unique.Make(s).Value() }
+
+func btoi(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
+}
+
+func fmtNum(v float64) string {
+	if math.IsInf(v, 0) || math.IsNaN(v) {
+		return fmt.Sprint(v)
+	}
+	return strconv.FormatFloat(v, 'g', 6, 64)
+}
