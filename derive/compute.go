@@ -305,7 +305,7 @@ func (b *builder) values() {
 			Equation: "PaCO2 − PetCO2 (Malley WJ, Clinical Blood Gases, 2nd ed., 2005)",
 			Terms:    []Term{{"PaCO2", pa, "mm[Hg]"}, {"PetCO2", et, "mm[Hg]"}},
 			Flag:     FlagNormal,
-			Range:    &Range{High: ptr(5), Text: "common practice: below 5 mm[Hg]", Source: "Malley 2005"},
+			Range:    &Range{High: ptr(5), Text: "normally below 5 mm[Hg]", Source: "common practice; Malley WJ, Clinical Blood Gases, 2005"},
 		}
 		if g >= 5 {
 			v.Flag = FlagHigh
@@ -436,7 +436,7 @@ func (b *builder) physiologic(pa float64) {
 		Range: &Range{
 			Low: ptr(0.2), High: ptr(0.35),
 			Text:   "healthy adult at rest (about 0.3)",
-			Source: `common practice (board-review text: "VD/VT is approximately 0.3")`,
+			Source: "common practice",
 		},
 	}
 	switch {

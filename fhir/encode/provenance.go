@@ -180,3 +180,39 @@ func numberPtr(s string) *json.Number {
 	n := json.Number(s)
 	return &n
 }
+
+// Subset narrows b to the Observations keep selects, with a Provenance
+// (activity CREATE) that cites only what those Observations were derived
+// from, plus the Patient when b's Provenance cited one. The live service
+// uses it when only some values of a derivation are new: each write then
+// says exactly what it carries. It returns ErrNoValues when keep selects
+// nothing.
+func (e *Encoder) Subset(b Bundle, keep func(fhir.Observation) bool) (Bundle, error) {
+	var out Bundle
+	var inputs []string
+	for _, o := range b.Observations {
+		if !keep(o) {
+			continue
+		}
+		out.Observations = append(out.Observations, o)
+		for _, r := range o.DerivedFrom {
+			if r.Reference != nil {
+				inputs = append(inputs, *r.Reference)
+			}
+		}
+	}
+	if len(out.Observations) == 0 {
+		return Bundle{}, ErrNoValues
+	}
+	for _, en := range b.Provenance.Entity {
+		if en.Role == fhir.ProvenanceEntityRoleDerivation && en.What.Reference != nil && strings.HasPrefix(*en.What.Reference, "Patient/") {
+			inputs = append(inputs, *en.What.Reference)
+		}
+	}
+	var err error
+	out.Provenance, err = e.provenance(out.Observations, activityCreate, inputs, nil, b.Provenance.Recorded)
+	if err != nil {
+		return Bundle{}, fmt.Errorf("encode subset: %w", err)
+	}
+	return out, nil
+}

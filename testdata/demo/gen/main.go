@@ -78,6 +78,15 @@ type patient struct {
 }
 
 // kind describes how one feed codes and scales a measurement.
+type encounter struct {
+	ResourceType string    `json:"resourceType"`
+	ID           string    `json:"id"`
+	Meta         meta      `json:"meta"`
+	Status       string    `json:"status"`
+	Class        coding    `json:"class"`
+	Subject      reference `json:"subject"`
+}
+
 type kind struct {
 	system, code, display, unit, category string
 }
@@ -171,9 +180,11 @@ func main() {
 		},
 	}
 
-	var patients, gases, devices []any
+	var patients, encounters, gases, devices []any
 	for _, b := range beds {
 		patients = append(patients, patient{"Patient", b.id, meta{"1", stamp(nightStart.Add(-72 * time.Hour))}, b.gender, b.birth})
+		encounters = append(encounters, encounter{"Encounter", b.enc, meta{"1", stamp(nightStart.Add(-72 * time.Hour))}, "in-progress",
+			coding{"http://terminology.hl7.org/CodeSystem/v3-ActCode", "IMP", "inpatient encounter"}, reference{"Patient/" + b.id}})
 		h := b.heightCm
 		devices = append(devices, obs(b, height, fmt.Sprintf("%s-height", b.id), nightStart.Add(-48*time.Hour), num(h, 2), b.heightUnit, "1", "final"))
 		n := 0
@@ -186,7 +197,7 @@ func main() {
 			case "kPa":
 				eVal = num(e/7.50062, 2)
 			case "%":
-				eVal = num(e/(760-47)*100, 2) // the capnograph reports percent on a wet basis
+				eVal = num(e/760*100, 2) // percent of dry gas at sea-level pressure
 			default:
 				eVal = num(e, 0)
 			}
@@ -242,6 +253,7 @@ func main() {
 	gases = append(gases, obs(b4, paco2, "bed4-percent-abg-poc", nightStart.Add(6*time.Hour), "41", "mm[Hg]", "1", "preliminary"))
 
 	write(filepath.Join(dir, "Patient.ndjson"), patients)
+	write(filepath.Join(dir, "Encounter.ndjson"), encounters)
 	write(filepath.Join(dir, "Observation.bloodgas.ndjson"), gases)
 	write(filepath.Join(dir, "Observation.devices.ndjson"), devices)
 }

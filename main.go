@@ -1,0 +1,233 @@
+// Command deadspace derives the dead-space picture of ventilated patients
+// from FHIR Observations: arterial blood gases paired with ventilator and
+// capnography readings, written back as derived Observations that cite their
+// inputs.
+//
+// Usage:
+//
+//	deadspace replay [flags] FILE...   derive from NDJSON files, offline
+//	deadspace version                  print the version
+//
+// Run "deadspace replay -h" for the flags.
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"os/signal"
+	"syscall"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/replay"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+// version is stamped at build time with -ldflags "-X main.version=…".
+var version = "dev"
+
+// Exit codes: 0 all well, 1 the run failed, 2 bad usage, 3 the run finished
+// but skipped input lines.
+const (
+	exitOK      = 0
+	exitFailed  = 1
+	exitUsage   = 2
+	exitSkipped = 3
+)
+
+func main() {
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	os.Exit(run(ctx, os.Args[1:], os.Stdout, os.Stderr))
+}
+
+func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	if len(args) == 0 {
+		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace version")
+		return exitUsage
+	}
+	switch args[0] {
+	case "replay":
+		return runReplay(ctx, args[1:], stdout, stderr)
+	case "version":
+		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
+		return exitOK
+	case "-h", "-help", "--help", "help":
+		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace version")
+		return exitOK
+	}
+	fmt.Fprintf(stderr, "deadspace: unknown command %q\n", args[0])
+	return exitUsage
+}
+
+// commonFlags are the derivation settings shared by every command.
+type commonFlags struct {
+	window       time.Duration
+	codesFile    string
+	barometric   float64
+	co2Basis     string
+	codeSystem   string
+	fallDrop     float64
+	fallSustain  time.Duration
+	fallBaseline time.Duration
+}
+
+func (c *commonFlags) register(fs *flag.FlagSet) {
+	d := derive.DefaultConfig()
+	fs.DurationVar(&c.window, "window", d.Window, "pairing window on each side of a blood gas's sample time")
+	fs.StringVar(&c.codesFile, "codes", "", "site code table (JSON) merged over the built-in LOINC and MDC table")
+	fs.Float64Var(&c.barometric, "barometric-pressure", units.DefaultBarometricPressure, "barometric pressure in mm[Hg], for CO2 reported in percent")
+	fs.StringVar(&c.co2Basis, "co2-basis", units.BasisDry.String(), "how percent CO2 becomes a pressure where the code table sets no basis: dry (F x PB) or wet (F x (PB - 47))")
+	fs.StringVar(&c.codeSystem, "code-system", encode.DefaultOptions().CodeSystem, "canonical URL of the CodeSystem of the derived codes")
+	fs.Float64Var(&c.fallDrop, "fall-drop", d.Fall.Drop, "EtCO2 fall below baseline, in mm[Hg], that counts")
+	fs.DurationVar(&c.fallSustain, "fall-sustain", d.Fall.Sustain, "how long an EtCO2 fall must last to be reported")
+	fs.DurationVar(&c.fallBaseline, "fall-baseline", d.Fall.Baseline, "how far back the EtCO2 baseline reaches")
+}
+
+// options checks every setting and reports all problems at once.
+func (c *commonFlags) options() (derive.Config, decode.Options, encode.Options, error) {
+	var errs []error
+	cfg := derive.DefaultConfig()
+	cfg.Window = c.window
+	cfg.Fall.Drop = c.fallDrop
+	cfg.Fall.Sustain = c.fallSustain
+	cfg.Fall.Baseline = c.fallBaseline
+	if err := cfg.Validate(); err != nil {
+		errs = append(errs, err)
+	}
+	table := codes.Default()
+	if c.codesFile != "" {
+		f, err := os.Open(c.codesFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--codes: %w", err))
+		} else {
+			site, err := codes.Load(f)
+			f.Close()
+			if err != nil {
+				errs = append(errs, fmt.Errorf("--codes %s: %w", c.codesFile, err))
+			} else {
+				table = site
+			}
+		}
+	}
+	u := units.Options{BarometricPressure: c.barometric}
+	basis, err := units.ParseBasis(c.co2Basis)
+	if err != nil {
+		errs = append(errs, fmt.Errorf("--co2-basis: %w", err))
+	}
+	u.PercentBasis = basis
+	if err := u.Validate(); err != nil {
+		errs = append(errs, err)
+	}
+	enc := encode.DefaultOptions()
+	enc.CodeSystem = c.codeSystem
+	enc.SoftwareVersion = version
+	return cfg, decode.Options{Table: table, Units: u}, enc, errors.Join(errs...)
+}
+
+func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE...\n\nReads NDJSON files of FHIR R4 resources (Observation and Patient, any order),\nderives, and writes the derived resources as NDJSON, or a table with --format table.\nA summary of counts goes to stderr. Exit status 3 means some lines were skipped.\n\nFlags:")
+		fs.PrintDefaults()
+	}
+	var common commonFlags
+	common.register(fs)
+	outPath := fs.String("out", "", "write the output to this file instead of stdout")
+	format := fs.String("format", "ndjson", "output format: ndjson (FHIR resources) or table (a readable summary)")
+	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
+	files, err := parseInterspersed(fs, args)
+	if err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		return exitUsage
+	}
+	cfg, decOpts, encOpts, err := common.options()
+	var errs []error
+	if err != nil {
+		errs = append(errs, err)
+	}
+	if *format != "ndjson" && *format != "table" {
+		errs = append(errs, fmt.Errorf("--format must be ndjson or table, got %q", *format))
+	}
+	encOpts.Issued = time.Now().UTC().Truncate(time.Second)
+	if *issued != "" {
+		t, err := time.Parse(time.RFC3339, *issued)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--issued: %w", err))
+		}
+		encOpts.Issued = t.UTC()
+	}
+	if len(files) == 0 {
+		errs = append(errs, errors.New("no input files"))
+	}
+	if len(errs) > 0 {
+		fmt.Fprintf(stderr, "deadspace replay: %v\n", errors.Join(errs...))
+		return exitUsage
+	}
+
+	out, err := replay.Run(ctx, replay.Options{Derive: cfg, Decode: decOpts, Encode: encOpts}, files)
+	if err != nil {
+		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
+		return exitFailed
+	}
+	w := stdout
+	var file *os.File
+	if *outPath != "" {
+		file, err = os.Create(*outPath)
+		if err != nil {
+			fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
+			return exitFailed
+		}
+		w = file
+	}
+	if *format == "table" {
+		err = replay.WriteTable(w, out)
+	} else {
+		err = replay.WriteNDJSON(w, out)
+	}
+	if file != nil {
+		if cerr := file.Close(); err == nil {
+			err = cerr
+		}
+	}
+	if err != nil {
+		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
+		return exitFailed
+	}
+	_ = replay.WriteSummary(stderr, out)
+	if len(out.Skipped) > 0 {
+		return exitSkipped
+	}
+	return exitOK
+}
+
+// parseInterspersed parses flags that may come before, between or after the
+// positional arguments, as in "replay a.ndjson b.ndjson --format table", and
+// returns the positional arguments. "--" ends the flags.
+func parseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
+	var positional []string
+	for {
+		if err := fs.Parse(args); err != nil {
+			return nil, err
+		}
+		rest := fs.Args()
+		if len(rest) == 0 {
+			return positional, nil
+		}
+		if len(args) > len(rest) && args[len(args)-len(rest)-1] == "--" {
+			return append(positional, rest...), nil
+		}
+		positional = append(positional, rest[0])
+		args = rest[1:]
+	}
+}
