@@ -143,78 +143,158 @@ func preferSources(inputs []Input) ([]derive.Reading, []derive.Omission) {
 	return kept, omitted
 }
 
-// Collector gathers decoded items from a whole export, in any order, keeping
-// the latest version of each resource.
+// Collector gathers decoded items from a whole export, in any order. It
+// keeps every version it is given and picks the latest of each resource in
+// [Collector.Finish], so it needs no index while reading: an export holds
+// millions of readings, and each one costs only a compact record.
 type Collector struct {
-	latest   map[string]decode.Item // by logical reference, "Observation/x"
+	bySubject map[string][]record
+	// omitted are relevant resources that cannot be used. Those with a
+	// subject still take part in version selection: an entered-in-error
+	// version must hide the reading it withdraws.
+	omitted  []omittedRecord
 	patients map[string]decode.Item // Patient resources by logical reference
-	omitted  []derive.Omission
 	// unrecognised counts Observations with no code this service uses. They
 	// are only counted: a bulk export is mostly such lines, and keeping a
 	// record of each would cost memory for no audit value.
 	unrecognised int
 }
 
-// NewCollector returns an empty collector.
-func NewCollector() *Collector {
-	return &Collector{latest: make(map[string]decode.Item), patients: make(map[string]decode.Item)}
+// record is one buffered reading, flattened so that it packs into 64 bytes
+// plus its reference's text (derive.Reading embedded would pad to 72).
+type record struct {
+	ref, encounter string
+	atMillis       int64
+	value          float64
+	lastUpdated    int64 // Unix milliseconds
+	kind           derive.Kind
+	priority       int16
 }
 
-// Add takes one decoded item. Unrelated items are ignored.
+type omittedRecord struct {
+	subject     string
+	ref         string
+	lastUpdated int64
+	omission    derive.Omission
+}
+
+// NewCollector returns an empty collector.
+func NewCollector() *Collector {
+	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item)}
+}
+
+// Add takes one decoded item. Unrelated items are only counted.
 func (c *Collector) Add(it decode.Item) {
 	switch it.Type {
 	case decode.ItemUnrelated:
 		if it.ResourceType == "Observation" {
 			c.unrecognised++
 		}
-		return
 	case decode.ItemPatient:
 		key := "Patient/" + it.ID
-		if prev, ok := c.patients[key]; !ok || newer(it, prev) {
+		if prev, ok := c.patients[key]; !ok || newer(it.LastUpdated.UnixMilli(), it.VersionID, prev.LastUpdated.UnixMilli(), prev.VersionID) {
 			c.patients[key] = it
 		}
-		return
-	}
-	if it.ID == "" {
-		// Without an id nothing can supersede it, and nothing can cite it.
-		c.omitted = append(c.omitted, it.Omission)
-		return
-	}
-	key := it.ResourceType + "/" + it.ID
-	prev, ok := c.latest[key]
-	switch {
-	case !ok:
-		c.latest[key] = it
-	case newer(it, prev):
-		c.omitted = append(c.omitted, derive.Omission{Ref: refOf(prev), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + it.VersionID})
-		c.latest[key] = it
-	case prev.VersionID == it.VersionID:
-		// The same version twice (overlapping export files): nothing to do.
+	case decode.ItemReading:
+		r := it.Reading
+		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
+			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
+			lastUpdated: it.LastUpdated.UnixMilli(), kind: r.Kind, priority: int16(it.Priority),
+		})
 	default:
-		c.omitted = append(c.omitted, derive.Omission{Ref: refOf(it), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + prev.VersionID})
+		ref := it.Ref
+		if ref == "" {
+			ref = it.Omission.Ref
+		}
+		c.omitted = append(c.omitted, omittedRecord{subject: it.Subject, ref: ref, lastUpdated: it.LastUpdated.UnixMilli(), omission: it.Omission})
 	}
 }
 
-func refOf(it decode.Item) string {
-	if it.Ref != "" {
-		return it.Ref
-	}
-	return it.Omission.Ref
+// version is one version of one resource during selection.
+type version struct {
+	logical, versionID string
+	lastUpdated        int64
+	rec                *record        // nil for an omitted version
+	omitted            *omittedRecord // nil for a reading
 }
 
-// newer reports whether a is a later version than b. FHIR fixes no order
-// for version ids, so the last-updated time decides, and version ids that
-// are both numbers break ties.
-func newer(a, b decode.Item) bool {
-	if !a.LastUpdated.Equal(b.LastUpdated) {
-		return a.LastUpdated.After(b.LastUpdated)
+func (v version) ref() string {
+	if v.rec != nil {
+		return v.rec.ref
 	}
-	na, errA := strconv.ParseUint(a.VersionID, 10, 64)
-	nb, errB := strconv.ParseUint(b.VersionID, 10, 64)
+	return v.omitted.ref
+}
+
+// splitRef turns "Observation/x/_history/2" into ("Observation/x", "2").
+func splitRef(ref string) (logical, versionID string) {
+	if i := strings.Index(ref, "/_history/"); i >= 0 {
+		return ref[:i], ref[i+len("/_history/"):]
+	}
+	return ref, ""
+}
+
+// newer reports whether version (atA, vidA) is later than (atB, vidB). FHIR
+// fixes no order for version ids, so the last-updated time decides, and
+// version ids that are both numbers break ties.
+func newer(atA int64, vidA string, atB int64, vidB string) bool {
+	if atA != atB {
+		return atA > atB
+	}
+	na, errA := strconv.ParseUint(vidA, 10, 64)
+	nb, errB := strconv.ParseUint(vidB, 10, 64)
 	if errA == nil && errB == nil {
 		return na > nb
 	}
-	return a.VersionID > b.VersionID
+	return vidA > vidB
+}
+
+// latest keeps the newest version of each resource among a subject's
+// readings and omitted versions. It returns the readings kept and an
+// omission for every version set aside: superseded ones, and the newest
+// version when it is itself an omission.
+func latest(recs []record, omitted []*omittedRecord) ([]Input, []derive.Omission) {
+	vs := make([]version, 0, len(recs)+len(omitted))
+	for i := range recs {
+		l, vid := splitRef(recs[i].ref)
+		vs = append(vs, version{logical: l, versionID: vid, lastUpdated: recs[i].lastUpdated, rec: &recs[i]})
+	}
+	for _, o := range omitted {
+		l, vid := splitRef(o.ref)
+		vs = append(vs, version{logical: l, versionID: vid, lastUpdated: o.lastUpdated, omitted: o})
+	}
+	slices.SortStableFunc(vs, func(a, b version) int {
+		if c := strings.Compare(a.logical, b.logical); c != 0 {
+			return c
+		}
+		switch {
+		case newer(a.lastUpdated, a.versionID, b.lastUpdated, b.versionID):
+			return -1
+		case newer(b.lastUpdated, b.versionID, a.lastUpdated, a.versionID):
+			return 1
+		}
+		return 0
+	})
+	var inputs []Input
+	var om []derive.Omission
+	for i, v := range vs {
+		if i > 0 && vs[i-1].logical == v.logical {
+			if vs[i-1].versionID == v.versionID && vs[i-1].ref() == v.ref() {
+				continue // the same version twice, from overlapping files
+			}
+			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + vs[i-1].versionID})
+			continue
+		}
+		if v.omitted != nil {
+			om = append(om, v.omitted.omission)
+			continue
+		}
+		r := v.rec
+		inputs = append(inputs, Input{
+			Reading:  derive.Reading{Ref: r.ref, Encounter: r.encounter, AtMillis: r.atMillis, Value: r.value, Kind: r.kind},
+			Priority: int(r.priority),
+		})
+	}
+	return inputs, om
 }
 
 // Report is what a whole export produced.
@@ -231,27 +311,37 @@ type Report struct {
 // Finish derives every patient's results. Patients are processed in order
 // of their reference, so the output is deterministic.
 func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, error) {
-	bySubject := make(map[string][]Input)
-	rep := Report{Inputs: slices.Clone(c.omitted), Unrecognised: c.unrecognised}
-	for _, it := range c.latest {
-		switch it.Type {
-		case decode.ItemReading:
-			bySubject[it.Subject] = append(bySubject[it.Subject], Input{Reading: it.Reading, Priority: it.Priority})
-		default:
-			rep.Inputs = append(rep.Inputs, it.Omission)
+	rep := Report{Unrecognised: c.unrecognised}
+	omittedBySubject := make(map[string][]*omittedRecord)
+	for i := range c.omitted {
+		o := &c.omitted[i]
+		if o.subject == "" || splitRefOK(o.ref) == "" {
+			rep.Inputs = append(rep.Inputs, o.omission)
+			continue
 		}
+		omittedBySubject[o.subject] = append(omittedBySubject[o.subject], o)
 	}
-	subjects := make([]string, 0, len(bySubject))
-	for s := range bySubject {
+	subjects := make([]string, 0, len(c.bySubject))
+	for s := range c.bySubject {
 		subjects = append(subjects, s)
+	}
+	for s := range omittedBySubject {
+		if _, ok := c.bySubject[s]; !ok {
+			subjects = append(subjects, s)
+		}
 	}
 	sort.Strings(subjects)
 	for _, s := range subjects {
+		inputs, om := latest(c.bySubject[s], omittedBySubject[s])
+		rep.Inputs = append(rep.Inputs, om...)
+		if len(inputs) == 0 {
+			continue
+		}
 		facts := derive.Patient{}
 		if p, ok := c.patients[s]; ok {
 			facts = p.Patient
 		}
-		results, omitted, err := Evaluate(cfg, enc, s, facts, bySubject[s])
+		results, omitted, err := Evaluate(cfg, enc, s, facts, inputs)
 		if err != nil {
 			return Report{}, err
 		}
@@ -271,6 +361,12 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 		return strings.Compare(string(a.Reason), string(b.Reason))
 	})
 	return rep, nil
+}
+
+// splitRefOK returns the logical part of ref, or "" when ref is empty.
+func splitRefOK(ref string) string {
+	l, _ := splitRef(ref)
+	return l
 }
 
 func cmpInt(a, b int64) int {
