@@ -77,8 +77,8 @@ func (c Config) Validate() error {
 // plausibleRange holds the physiological range of each kind, inclusive.
 // These are design choices, wide enough for any live patient (a neonate's
 // height, an exercising adult's minute volume) and narrow enough to catch a
-// wrong unit, such as kPa read as mm[Hg] or mL as L. The range rules in the
-// reference material are from memory, so nothing here is a published limit.
+// wrong unit, such as kPa read as mm[Hg] or mL as L. The range rules we know
+// of are from memory, so nothing here is a published limit.
 // EtCO2 includes 0 on purpose: a disconnected circuit reads 0 and the fall
 // detector must see it.
 var plausibleRange = [kindCount]struct {

@@ -16,8 +16,10 @@ func TestDefaultConfig(t *testing.T) {
 	if err := c.Validate(); err != nil {
 		t.Fatalf("DefaultConfig().Validate() = %v", err)
 	}
-	// Design choices documented on DefaultConfig; REFERENCE 1.3 suggests a
-	// pairing window of at most 5–10 min.
+	// Design choices documented on DefaultConfig. No published maximum
+	// offset between blood gas and capnography was found; Enghoff's method
+	// needs the two measured simultaneously, so the window is short (design
+	// choice, at most 5–10 min).
 	if c.Window != 5*time.Minute || c.HeightMaxAge != 365*24*time.Hour {
 		t.Errorf("Window %v, HeightMaxAge %v", c.Window, c.HeightMaxAge)
 	}

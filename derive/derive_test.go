@@ -80,11 +80,13 @@ func with(rs []derive.Reading, more ...derive.Reading) []derive.Reading {
 
 func TestDerive(t *testing.T) {
 	t.Parallel()
-	// VR for the full set, own arithmetic: W5 PBW of a 175 cm man
-	// (70.566 kg), Sinha 2009 formula with VE 7000 mL/min, PaCO2 40.
+	// VR for the full set, own arithmetic: ARDS Network PBW (NEJM
+	// 2000;342:1301) of a 175 cm man (70.566 kg), Sinha 2009 formula with
+	// VE 7000 mL/min, PaCO2 40.
 	vrFull := 7000 * 40 / (70.566 * 100 * 37.5)
-	// W3, own arithmetic: PĒCO2 = 0.863 × 200 / 6.
-	peW3 := 0.863 * 200 / 6
+	// Own arithmetic on the published formula of Siddiki et al. (Crit Care
+	// 2010;14:R141): PĒCO2 = 0.863 × 200 / 6.
+	peSiddiki := 0.863 * 200 / 6
 
 	cases := []struct {
 		name     string
@@ -97,8 +99,10 @@ func TestDerive(t *testing.T) {
 	}{
 		{
 			// Classroom case (common practice): PaCO2 40, PĒCO2 28,
-			// VT 500 → VD/VT 0.30, VD 150 mL; W2 (FOUND): VE 7 and VD/VT
-			// 0.3 → VA 4.9 L/min. Gradient 40 − 35 = 5 is at Malley's
+			// VT 500 → VD/VT 0.30, VD 150 mL; worked example: VT 500 mL ×
+			// 14 /min, VD 150 mL → VE 7 L/min, VA 4.9 L/min (a published
+			// teaching example; VA = (VT − VD) × RR, Medbullets), so VE 7 and
+			// VD/VT 0.3 → VA 4.9 L/min. Gradient 40 − 35 = 5 is at Malley's
 			// limit; AVDSF 5/40 and Bohr (35 − 28)/35 are own arithmetic.
 			name: "full set with measured PĒCO2", gas: 40, patient: man60, readings: measured(),
 			values: map[derive.Code]float64{
@@ -142,7 +146,8 @@ func TestDerive(t *testing.T) {
 			},
 		},
 		{
-			// W3 (own arithmetic re-deriving E3/E4): VCO2 200, VE 6,
+			// Own arithmetic on the published formula of Siddiki et al.
+			// (Crit Care 2010;14:R141), constant 0.863: VCO2 200, VE 6,
 			// PaCO2 40 → PĒCO2 28.767, VD/VT 0.2808.
 			name: "PĒCO2 computed from VCO2 and VE", gas: 40, patient: man60,
 			readings: []derive.Reading{
@@ -151,10 +156,10 @@ func TestDerive(t *testing.T) {
 			values: map[derive.Code]float64{
 				derive.CodeGradient:         5,
 				derive.CodeAlveolarFraction: 0.125,
-				derive.CodeMixedExpiredCO2:  peW3,
-				derive.CodePhysiologic:      1 - peW3/40,
-				derive.CodeAirwayFraction:   (35 - peW3) / 35,
-				derive.CodeAlveolarVent:     6 * peW3 / 40,
+				derive.CodeMixedExpiredCO2:  peSiddiki,
+				derive.CodePhysiologic:      1 - peSiddiki/40,
+				derive.CodeAirwayFraction:   (35 - peSiddiki) / 35,
+				derive.CodeAlveolarVent:     6 * peSiddiki / 40,
 			},
 			omitted: map[derive.Code]derive.Reason{
 				derive.CodeDeadSpaceVolume:   derive.ReasonMissingInput,
@@ -163,7 +168,7 @@ func TestDerive(t *testing.T) {
 			},
 			check: func(t *testing.T, d derive.Derivation) {
 				if got := value(d, derive.CodePhysiologic).Value; !near(got, 0.2808, 5e-5) {
-					t.Errorf("W3 VD/VT %v, want 0.2808", got)
+					t.Errorf("Siddiki-form VD/VT %v, want 0.2808", got)
 				}
 				want := []derive.Kind{derive.KindPaCO2, derive.KindVCO2, derive.KindMinuteVolume}
 				for _, c := range []derive.Code{derive.CodePhysiologic, derive.CodeAlveolarVent} {
@@ -180,8 +185,9 @@ func TestDerive(t *testing.T) {
 			},
 		},
 		{
-			// W8: own arithmetic on a formula from memory (believed
-			// Frankenfield 2010): gradient 10, RR 20, age 60 → 0.576.
+			// Own arithmetic on a formula recalled from memory (believed
+			// Frankenfield DC et al., Crit Care Med 2010;38:288): gradient
+			// 10, RR 20, age 60 → 0.576.
 			name: "no expired CO2: estimated fraction", gas: 40, patient: man60,
 			readings: []derive.Reading{rd(derive.KindEtCO2, 0, 30), rd(derive.KindRespRate, 0, 20)},
 			values: map[derive.Code]float64{
@@ -249,9 +255,9 @@ func TestDerive(t *testing.T) {
 			},
 		},
 		{
-			// REFERENCE 1.3 range rule (from memory): 0 < PĒCO2 < PaCO2.
-			// With no physiologic fraction the estimate is computed: W8
-			// inputs again.
+			// Range rule, from memory: 0 < PĒCO2 < PaCO2. With no
+			// physiologic fraction the estimate is computed: the inputs of
+			// the Frankenfield case above again (gradient 10, RR 20, age 60).
 			name: "PĒCO2 above PaCO2", gas: 40, patient: man60,
 			readings: []derive.Reading{
 				rd(derive.KindEtCO2, 0, 30), rd(derive.KindMixedExpiredCO2, 0, 42), rd(derive.KindRespRate, 0, 20),

@@ -18,40 +18,39 @@ func TestEquations(t *testing.T) {
 		got, want float64
 		tol       float64
 	}{
-		// W1, a standard worked example (common practice; REFERENCE 1.2):
-		// PaCO2 40, PĒCO2 27 mm[Hg] → VD/VT 0.325, and with VT 500 mL,
-		// "0.325 x 500 … 162.5 ml". Enghoff form from Anderson & Breen,
-		// Crit Care 2000;4:207.
-		{"W1 Enghoff fraction", derive.EnghoffFraction(40, 27), 0.325, 1e-12},
-		{"W1 dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 27), 500), 162.5, 1e-9},
+		// Worked example: PaCO2 40, PĒCO2 27, VT 500 → 0.325, 162.5 mL (a
+		// published teaching example: "0.325 x 500 … 162.5 ml"). Enghoff
+		// form from Anderson & Breen, Crit Care 2000;4:207.
+		{"teaching example Enghoff fraction", derive.EnghoffFraction(40, 27), 0.325, 1e-12},
+		{"teaching example dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 27), 500), 162.5, 1e-9},
 		// The classroom case, common practice: PaCO2 40, PĒCO2 28 → 0.30,
 		// and 150 mL of a 500 mL breath.
 		{"classroom Enghoff fraction", derive.EnghoffFraction(40, 28), 0.30, 1e-12},
 		{"classroom dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 28), 500), 150, 1e-9},
-		// W2, a standard worked example (common practice): VT 500 mL × 14 /min with
-		// VD 150 mL gives VE 7 L/min and VA = (VT − VD) × RR = 4.9 L/min
-		// (Medbullets: "VA = (TV - VD) x RR"). Our per-minute form with
+		// Worked example: VT 500 mL × 14 /min with VD 150 mL gives VE 7 L/min
+		// and VA = (VT − VD) × RR = 4.9 L/min (a published teaching example;
+		// formula from Medbullets: "VA = (TV - VD) x RR"). Our per-minute form with
 		// VE 7 and VD/VT 0.3 must give the same.
-		{"W2 alveolar ventilation", derive.AlveolarVentilation(7, 0.3), 4.9, 1e-12},
-		{"W2 (VT-VD)*RR cross-check", derive.AlveolarVentilation(500*14/1000.0, 150.0/500), (500 - 150) * 14 / 1000.0, 1e-12},
-		// W3: own arithmetic re-deriving E3/E4 (constant 0.863 common
-		// practice; Siddiki 2010 Crit Care 14:R141 form
-		// "1 − [(0.86 × VCO2)/(VE × PaCO2)]"): VCO2 200, VE 6, PaCO2 40
-		// → PĒCO2 28.767, VD/VT 0.2808.
-		{"W3 mixed-expired PCO2", derive.MixedExpiredFromVCO2(200, 6), 28.767, 5e-4},
-		{"W3 Enghoff from computed PĒCO2", derive.EnghoffFraction(40, derive.MixedExpiredFromVCO2(200, 6)), 0.2808, 5e-5},
-		{"W3 equals Siddiki's closed form", derive.EnghoffFraction(40, derive.MixedExpiredFromVCO2(200, 6)), 1 - 0.863*200/(6*40), 1e-12},
-		// W4: own arithmetic re-deriving Sinha 2009 (Br J Anaesth
-		// 102:692): VE 10 000 mL/min, PaCO2 50, PBW 70 → 1.905.
-		{"W4 ventilatory ratio", derive.VentilatoryRatio(10000, 50, 70), 1.905, 5e-4},
+		{"teaching example alveolar ventilation", derive.AlveolarVentilation(7, 0.3), 4.9, 1e-12},
+		{"teaching example (VT-VD)*RR cross-check", derive.AlveolarVentilation(500*14/1000.0, 150.0/500), (500 - 150) * 14 / 1000.0, 1e-12},
+		// Own arithmetic on the published formula of Siddiki et al. (Crit
+		// Care 2010;14:R141), "1 − [(0.86 × VCO2)/(VE × PaCO2)]", with the
+		// constant 0.863 (common practice): VCO2 200, VE 6, PaCO2 40 →
+		// PĒCO2 28.767, VD/VT 0.2808.
+		{"Siddiki mixed-expired PCO2", derive.MixedExpiredFromVCO2(200, 6), 28.767, 5e-4},
+		{"Siddiki Enghoff from computed PĒCO2", derive.EnghoffFraction(40, derive.MixedExpiredFromVCO2(200, 6)), 0.2808, 5e-5},
+		{"computed PĒCO2 equals Siddiki's closed form", derive.EnghoffFraction(40, derive.MixedExpiredFromVCO2(200, 6)), 1 - 0.863*200/(6*40), 1e-12},
+		// Own arithmetic on the published formula of Sinha et al. (Br J
+		// Anaesth 2009;102:692): VE 10 000 mL/min, PaCO2 50, PBW 70 → 1.905.
+		{"Sinha ventilatory ratio", derive.VentilatoryRatio(10000, 50, 70), 1.905, 5e-4},
 		// Sinha 2009: "A value close to 1 is predicted for normal
 		// individuals": predicted VE (100 mL/kg/min) at predicted PaCO2
 		// (37.5 mm[Hg]) is exactly 1 by construction.
 		{"Sinha normal is 1", derive.VentilatoryRatio(100*70, 37.5, 70), 1, 1e-12},
-		// W8: own arithmetic on a formula recalled from memory (believed
-		// Frankenfield 2010, Crit Care Med 38:288): gradient 10, RR 20,
-		// age 60 → 0.576.
-		{"W8 estimated fraction (from memory)", derive.EstimatedFraction(10, 20, 60), 0.576, 1e-12},
+		// Own arithmetic on a formula recalled from memory (believed
+		// Frankenfield DC et al., Crit Care Med 2010;38:288): gradient 10,
+		// RR 20, age 60 → 0.576.
+		{"Frankenfield estimated fraction (from memory)", derive.EstimatedFraction(10, 20, 60), 0.576, 1e-12},
 		// Malley 2005: "Normally, the gradient is less than 5 mm Hg".
 		// The gradient is a plain difference; 40 − 36 = 4 is own arithmetic.
 		{"gradient", derive.Gradient(40, 36), 4, 0},
@@ -61,7 +60,8 @@ func TestEquations(t *testing.T) {
 		// Bohr with PetCO2 (Tusman 2012, Anesth Analg 114:866); own
 		// arithmetic: (35 − 28)/35 = 0.2.
 		{"Bohr airway fraction", derive.BohrAirwayFraction(35, 28), 0.2, 1e-12},
-		// E3 constant: derivation from memory, 760 × (310/273)/1000.
+		// The mixed-expired constant 0.863: derivation from memory,
+		// 760 × (310/273)/1000.
 		{"0.863 derivation (from memory)", derive.MixedExpiredConstant, 760 * (310.0 / 273) / 1000, 1e-4},
 	}
 	for _, tc := range cases {
@@ -103,11 +103,12 @@ func TestPredictedBodyWeight(t *testing.T) {
 		tol     float64
 		wantErr error
 	}{
-		// W5: own arithmetic re-deriving the ARDS Network cm form (NEJM
-		// 2000;342:1301; cm form FOUND-2): male 175 cm → 70.566 kg.
-		{name: "W5 male 175 cm", sex: derive.SexMale, height: 175, want: 70.566, tol: 1e-9},
-		// W5: female 165 cm → 56.966 kg.
-		{name: "W5 female 165 cm", sex: derive.SexFemale, height: 165, want: 56.966, tol: 1e-9},
+		// Own arithmetic on the published formula of the ARDS Network (NEJM
+		// 2000;342:1301; the cm form seen only in a secondary source, its
+		// wording in the paper from memory): male 175 cm → 70.566 kg.
+		{name: "ARDSNet male 175 cm", sex: derive.SexMale, height: 175, want: 70.566, tol: 1e-9},
+		// Same formula, female 165 cm → 56.966 kg.
+		{name: "ARDSNet female 165 cm", sex: derive.SexFemale, height: 165, want: 56.966, tol: 1e-9},
 		// ARDSNet protocol card, inch form: "Male PBW = 50 + 2.3[height
 		// (inches) − 60]": a 70-inch man is 50 + 2.3·10 = 73 kg. 70 in is
 		// 177.8 cm; the cm form gives 73.114 because the card rounds

@@ -12,10 +12,9 @@ import (
 
 // The fall rules are our own design (see DetectFalls), so the expectations
 // below follow from the documented defaults, not from a published
-// detector. The causes named in the notes are REFERENCE 1.3 "Acute EtCO2
-// fall": disconnection and sampling faults (common practice), pulmonary
-// embolism (Courtney 2002, Resuscitation 53:83), low cardiac output (Grmec
-// 2003, Crit Care 7:R139).
+// detector. The causes named in the notes of a fall are disconnection and
+// sampling faults (common practice), pulmonary embolism (Courtney 2002,
+// Resuscitation 53:83), low cardiac output (Grmec 2003, Crit Care 7:R139).
 
 // minutes builds one EtCO2 reading a minute from sampleTime.
 func minutes(vals ...float64) []derive.Reading {

@@ -3,13 +3,14 @@
 // (system and code) to a [derive.Kind], or rejects it with a reason, so a
 // site can add its local codes or overrule a default without a rebuild.
 //
-// The default table is embedded from default.json. Its rows come from the
-// LOINC and ISO/IEEE 11073-10101 (MDC) codes collected in the project's
-// reference material; each row's "note" keeps that material's status for the
-// code (FOUND, FOUND-2 or from memory), because no code was checked on
-// loinc.org. Mixed-expired PCO2 has no default row: no LOINC code for it was
-// found, so a site that records it adds its own row with kind
-// "mixed-expired-co2".
+// The default table is embedded from default.json. Its rows are LOINC and
+// ISO/IEEE 11073-10101 (MDC) codes seen in published FHIR profiles and code
+// lists, mostly the Medizininformatik-Initiative ICU module. Each row's
+// "note" names where the code was seen, whether only in a secondary source,
+// and what is from memory, because no LOINC code was checked on loinc.org
+// and no MDC code against the 11073-10101 nomenclature itself.
+// Mixed-expired PCO2 has no default row: no LOINC code for it was found, so
+// a site that records it adds its own row with kind "mixed-expired-co2".
 //
 // # File format
 //

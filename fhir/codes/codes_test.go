@@ -11,11 +11,13 @@ import (
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
 )
 
-// The expected rows are the codes of the project reference, section 1.4,
-// which collects them from the MII ICU module (github.com/
-// medizininformatik-initiative/kerndatensatzmodul-intensivmedizin), the HL7
-// MCC and mHealth guides, HL7 SANER, HL7 DK Core and an OMOP mapping. None was
-// checked on loinc.org; the rows' notes keep each code's status.
+// The expected rows are codes seen in the Medizininformatik-Initiative ICU
+// module profiles (github.com/medizininformatik-initiative/
+// kerndatensatzmodul-intensivmedizin, input/fsh/profiles/Beatmungswerte/),
+// the HL7 MCC and mHealth implementation guides, HL7 SANER, HL7 Denmark DK
+// Core, the INDICATE data dictionary, an OMOP mapping and other secondary
+// code lists. No LOINC code was checked on loinc.org; each case name says
+// where its code was seen, and the rows' notes say the same.
 func TestDefaultRows(t *testing.T) {
 	cases := []struct {
 		name, system, code string
@@ -23,39 +25,39 @@ func TestDefaultRows(t *testing.T) {
 		action             codes.Action
 		reason             derive.Reason
 	}{
-		{"PaCO2 (LOINC 2019-8, FOUND-2)", codes.LOINC, "2019-8", derive.KindPaCO2, codes.ActionAccept, ""},
-		{"PaCO2 temperature-adjusted (32771-8, FOUND-2)", codes.LOINC, "32771-8", derive.KindPaCO2, codes.ActionAccept, ""},
-		{"venous PCO2 rejected (2021-4, FOUND-2)", codes.LOINC, "2021-4", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"capillary PCO2 rejected (2020-6, FOUND-2)", codes.LOINC, "2020-6", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"unspecified blood PCO2 rejected (11557-6, FOUND)", codes.LOINC, "11557-6", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"transcutaneous PCO2 rejected (33022-5, FOUND-2)", codes.LOINC, "33022-5", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"cord PCO2 rejected (28644-3, FOUND-2)", codes.LOINC, "28644-3", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"cord PCO2 rejected (28645-0, FOUND-2)", codes.LOINC, "28645-0", 0, codes.ActionReject, derive.ReasonNotArterial},
-		{"PetCO2 pressure (19891-1, FOUND MII)", codes.LOINC, "19891-1", derive.KindEtCO2, codes.ActionAccept, ""},
-		{"FetCO2 fraction (19889-5, FOUND-2 OMOP)", codes.LOINC, "19889-5", derive.KindEtCO2, codes.ActionAccept, ""},
-		{"MDC EtCO2 (151708, FOUND MII)", codes.MDC, "151708", derive.KindEtCO2, codes.ActionAccept, ""},
-		{"VCO2 (60825-7, FOUND-2)", codes.LOINC, "60825-7", derive.KindVCO2, codes.ActionAccept, ""},
-		{"VT setting (20112-9, FOUND MII)", codes.LOINC, "20112-9", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"VT ventilator (76222-9, FOUND MII)", codes.LOINC, "76222-9", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"VT expired (75958-9, FOUND-2)", codes.LOINC, "75958-9", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"VT expired on ventilator (76007-4, FOUND-2)", codes.LOINC, "76007-4", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"VT spont+mech (20118-6, FOUND MII)", codes.LOINC, "20118-6", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"MDC VT (151868, FOUND-2)", codes.MDC, "151868", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"MDC VT delivered (151980, FOUND MII)", codes.MDC, "151980", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"MDC VT setting (16929196, FOUND MII)", codes.MDC, "16929196", derive.KindTidalVolume, codes.ActionAccept, ""},
-		{"VE expired (76008-2, FOUND-2)", codes.LOINC, "76008-2", derive.KindMinuteVolume, codes.ActionAccept, ""},
-		{"VE inspired (76009-0, FOUND MII)", codes.LOINC, "76009-0", derive.KindMinuteVolume, codes.ActionAccept, ""},
-		{"MDC VE (151880, FOUND-2)", codes.MDC, "151880", derive.KindMinuteVolume, codes.ActionAccept, ""},
-		{"MDC VE inspired (152004, FOUND MII)", codes.MDC, "152004", derive.KindMinuteVolume, codes.ActionAccept, ""},
-		{"RR (9279-1, FOUND mHealth)", codes.LOINC, "9279-1", derive.KindRespRate, codes.ActionAccept, ""},
-		{"RR mechanical (33438-3, FOUND MII)", codes.LOINC, "33438-3", derive.KindRespRate, codes.ActionAccept, ""},
-		{"RR total (19840-8, FOUND MII)", codes.LOINC, "19840-8", derive.KindRespRate, codes.ActionAccept, ""},
-		{"RR spontaneous (19839-0, FOUND MII)", codes.LOINC, "19839-0", derive.KindRespRate, codes.ActionAccept, ""},
-		{"MDC RR (151562, FOUND DK Core)", codes.MDC, "151562", derive.KindRespRate, codes.ActionAccept, ""},
-		{"MDC vent rate (151586, FOUND MII)", codes.MDC, "151586", derive.KindRespRate, codes.ActionAccept, ""},
-		{"MDC total rate (152490, FOUND MII)", codes.MDC, "152490", derive.KindRespRate, codes.ActionAccept, ""},
-		{"MDC spontaneous rate (152498, FOUND MII)", codes.MDC, "152498", derive.KindRespRate, codes.ActionAccept, ""},
-		{"height (8302-2, FOUND MII)", codes.LOINC, "8302-2", derive.KindHeight, codes.ActionAccept, ""},
+		{"PaCO2 (LOINC 2019-8, secondary sources; name in HL7 MCC IG)", codes.LOINC, "2019-8", derive.KindPaCO2, codes.ActionAccept, ""},
+		{"PaCO2 temperature-adjusted (32771-8, secondary sources only)", codes.LOINC, "32771-8", derive.KindPaCO2, codes.ActionAccept, ""},
+		{"venous PCO2 rejected (2021-4, secondary sources only)", codes.LOINC, "2021-4", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"capillary PCO2 rejected (2020-6, secondary sources only)", codes.LOINC, "2020-6", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"unspecified blood PCO2 rejected (11557-6, unnamed published source)", codes.LOINC, "11557-6", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"transcutaneous PCO2 rejected (33022-5, secondary sources only)", codes.LOINC, "33022-5", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"cord PCO2 rejected (28644-3, secondary sources only)", codes.LOINC, "28644-3", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"cord PCO2 rejected (28645-0, secondary sources only)", codes.LOINC, "28645-0", 0, codes.ActionReject, derive.ReasonNotArterial},
+		{"PetCO2 pressure (19891-1, MII ICU module)", codes.LOINC, "19891-1", derive.KindEtCO2, codes.ActionAccept, ""},
+		{"FetCO2 fraction (19889-5, OMOP mapping only)", codes.LOINC, "19889-5", derive.KindEtCO2, codes.ActionAccept, ""},
+		{"MDC EtCO2 (151708, MII ICU module)", codes.MDC, "151708", derive.KindEtCO2, codes.ActionAccept, ""},
+		{"VCO2 (60825-7, secondary sources only)", codes.LOINC, "60825-7", derive.KindVCO2, codes.ActionAccept, ""},
+		{"VT setting (20112-9, MII ICU module)", codes.LOINC, "20112-9", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"VT ventilator (76222-9, MII ICU module)", codes.LOINC, "76222-9", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"VT expired (75958-9, secondary sources only)", codes.LOINC, "75958-9", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"VT expired on ventilator (76007-4, secondary sources only)", codes.LOINC, "76007-4", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"VT spont+mech (20118-6, MII ICU module)", codes.LOINC, "20118-6", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"MDC VT (151868, secondary sources only)", codes.MDC, "151868", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"MDC VT delivered (151980, MII ICU module)", codes.MDC, "151980", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"MDC VT setting (16929196, MII ICU module)", codes.MDC, "16929196", derive.KindTidalVolume, codes.ActionAccept, ""},
+		{"VE expired (76008-2, secondary sources only)", codes.LOINC, "76008-2", derive.KindMinuteVolume, codes.ActionAccept, ""},
+		{"VE inspired (76009-0, MII ICU module)", codes.LOINC, "76009-0", derive.KindMinuteVolume, codes.ActionAccept, ""},
+		{"MDC VE (151880, secondary sources only)", codes.MDC, "151880", derive.KindMinuteVolume, codes.ActionAccept, ""},
+		{"MDC VE inspired (152004, MII ICU module)", codes.MDC, "152004", derive.KindMinuteVolume, codes.ActionAccept, ""},
+		{"RR (9279-1, HL7 mHealth IG)", codes.LOINC, "9279-1", derive.KindRespRate, codes.ActionAccept, ""},
+		{"RR mechanical (33438-3, MII ICU module)", codes.LOINC, "33438-3", derive.KindRespRate, codes.ActionAccept, ""},
+		{"RR total (19840-8, MII ICU module)", codes.LOINC, "19840-8", derive.KindRespRate, codes.ActionAccept, ""},
+		{"RR spontaneous (19839-0, MII ICU module)", codes.LOINC, "19839-0", derive.KindRespRate, codes.ActionAccept, ""},
+		{"MDC RR (151562, HL7 DK Core)", codes.MDC, "151562", derive.KindRespRate, codes.ActionAccept, ""},
+		{"MDC vent rate (151586, MII ICU module)", codes.MDC, "151586", derive.KindRespRate, codes.ActionAccept, ""},
+		{"MDC total rate (152490, MII ICU module)", codes.MDC, "152490", derive.KindRespRate, codes.ActionAccept, ""},
+		{"MDC spontaneous rate (152498, MII ICU module)", codes.MDC, "152498", derive.KindRespRate, codes.ActionAccept, ""},
+		{"height (8302-2, MII ICU module)", codes.LOINC, "8302-2", derive.KindHeight, codes.ActionAccept, ""},
 	}
 	tab := codes.Default()
 	for _, tc := range cases {
@@ -74,12 +76,12 @@ func TestDefaultRows(t *testing.T) {
 		})
 	}
 	if got, want := len(tab.Rows()), len(cases); got != want {
-		t.Errorf("default table has %d rows, the reference lists %d", got, want)
+		t.Errorf("default table has %d rows, the test lists %d", got, want)
 	}
 }
 
-// The reference (section 1.4) found no LOINC code for mixed-expired PCO2, so
-// the default must not invent one.
+// No LOINC code for mixed-expired PCO2 was found in any of the sources above,
+// so the default must not invent one.
 func TestDefaultHasNoMixedExpiredRow(t *testing.T) {
 	if got := codes.Default().SearchTokens(derive.KindMixedExpiredCO2); len(got) != 0 {
 		t.Errorf("default rows for mixed-expired CO2: %v", got)
@@ -87,8 +89,8 @@ func TestDefaultHasNoMixedExpiredRow(t *testing.T) {
 }
 
 // Measured values are preferred over settings and partial measurements
-// (design choice; the set/measured distinction is in the code names in the
-// reference, section 1.4).
+// (design choice; the set/measured distinction is in the LOINC and MDC code
+// names themselves).
 func TestPriorities(t *testing.T) {
 	tab := codes.Default()
 	prio := func(system, code string) int {

@@ -66,15 +66,18 @@ func fixtures(t testing.TB) []fixture {
 				t.Errorf("Priority %d, Conversion %+v", it.Priority, it.Conversion)
 			}
 		}},
-		// 5.3 kPa = 39.75337903721817 mm[Hg]: ucum-lhc 7.1.10 (reference E16a).
+		// 5.3 kPa = 39.75337903721817 mm[Hg]: measured with ucum-lhc 7.1.10
+		// convertUnitTo.
 		{name: "PaCO2 in kPa", line: abg(set("valueQuantity", quantity("5.3", "kPa", "kPa"))), typ: ItemReading,
 			check: func(t *testing.T, it Item) {
 				if !near(it.Reading.Value, 39.75337903721817) || it.Conversion.Text != "5.3 kPa × 7.50064 = 39.7534 mm[Hg]" {
 					t.Errorf("value %v, conversion %q", it.Reading.Value, it.Conversion.Text)
 				}
 			}},
-		// 5.0 %, PB 760: 38.0 dry, 35.65 wet (reference W6, own arithmetic from
-		// E17, Intensive Care Med 2004, doi 10.1007/s00134-004-2194-8).
+		// 5.0 %, PB 760: 35.65 wet, own arithmetic on the published formula
+		// of the Intensive Care Med 2004 dead-space review (doi
+		// 10.1007/s00134-004-2194-8), PCO2 = FCO2 × (PB − 47); 38.0 dry,
+		// FCO2 × PB (common practice).
 		{name: "EtCO2 in percent, default dry basis", line: fetco2("5.0"), typ: ItemReading, check: func(t *testing.T, it Item) {
 			if !near(it.Reading.Value, 38.0) || it.Reading.Kind != derive.KindEtCO2 || it.Priority != 10 {
 				t.Errorf("Reading %+v, priority %d", it.Reading, it.Priority)
@@ -83,13 +86,13 @@ func fixtures(t testing.TB) []fixture {
 		{name: "EtCO2 in percent, site wet basis", line: fetco2("5.0"), opts: Options{Units: wet}, typ: ItemReading,
 			check: func(t *testing.T, it Item) {
 				if !near(it.Reading.Value, 35.65) {
-					t.Errorf("value %v, want 35.65 (W6 wet)", it.Reading.Value)
+					t.Errorf("value %v, want 35.65 (wet basis)", it.Reading.Value)
 				}
 			}},
 		{name: "EtCO2 in percent, code row says wet", line: fetco2("5.0"), opts: Options{Table: percentRow}, typ: ItemReading,
 			check: func(t *testing.T, it Item) {
 				if !near(it.Reading.Value, 35.65) || !strings.Contains(it.Conversion.Text, "wet basis") {
-					t.Errorf("value %v, text %q; want 35.65 (W6 wet)", it.Reading.Value, it.Conversion.Text)
+					t.Errorf("value %v, text %q; want 35.65 (wet basis)", it.Reading.Value, it.Conversion.Text)
 				}
 			}},
 		{name: "EtCO2 with timezone offset", line: etco2(), typ: ItemReading, check: func(t *testing.T, it Item) {

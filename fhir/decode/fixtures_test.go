@@ -12,7 +12,7 @@ import (
 // Fixtures are built from realistic base resources with one change each, so
 // every case shows the one thing it tests. Structures follow the R4
 // Observation and Patient definitions (https://hl7.org/fhir/R4/observation.html);
-// codes are from the project reference, section 1.4.
+// codes are the defaults of package codes, whose notes say where each was seen.
 
 type mod func(m map[string]any)
 

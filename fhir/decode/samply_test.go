@@ -75,8 +75,8 @@ func TestStructsMatchSamplyModel(t *testing.T) {
 				t.Fatalf("valueQuantity presence differs")
 			}
 			if q, rq := got.ValueQuantity, ref.ValueQuantity; q != nil {
-				// samply accepts a decimal written as a JSON string (the
-				// project reference, section 3.1, measured this); FHIR JSON
+				// samply golang-fhir-models v0.3.2 accepts a decimal written
+				// as a JSON string (measured on this machine); FHIR JSON
 				// writes decimals as numbers, so we refuse it on purpose.
 				if rq.Value != nil && (len(q.Value) == 0 || q.Value[0] != '"') {
 					check("value", string(q.Value), rq.Value.String())

@@ -239,8 +239,10 @@ func TestObservationContent(t *testing.T) {
 func TestUnitsAndRounding(t *testing.T) {
 	got := byCode(t, encodeFull(t, fullDerivation()))
 	// want values are the fixture values rounded by hand to the documented
-	// decimals; UCUM codes per REFERENCE.md §5 ("1" for a dimensionless
-	// ratio is UCUM's unity, from memory).
+	// decimals; UCUM codes are case-sensitive (UCUM specification,
+	// unitsofmeasure.org, from memory) and each one below is accepted as
+	// valid by ucum-lhc 7.1.10 (fhir/units/testdata/ucum-lhc-7.1.10.json);
+	// "1" for a dimensionless ratio is UCUM's unity, from memory.
 	cases := []struct {
 		code              derive.Code
 		value, ucum, unit string
@@ -309,7 +311,9 @@ func TestNotesAndFlags(t *testing.T) {
 	if len(vr.Note) != 2 || vr.Note[1].Text != "Predicted body weight from height and sex." {
 		t.Errorf("VR notes %+v", vr.Note)
 	}
-	// v3-ObservationInterpretation codes H and N (REFERENCE.md §2.4: FOUND).
+	// Codes H and N of the HL7 v3-ObservationInterpretation code system, as
+	// bound by FHIR R4 Observation.interpretation (an R4 core Observation
+	// example uses H).
 	for code, want := range map[derive.Code]string{derive.CodeGradient: "H", derive.CodePhysiologic: "N"} {
 		c := got[code].Interpretation[0].Coding[0]
 		if *c.Code != want || *c.System != "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation" {

@@ -10,8 +10,8 @@ import (
 
 // The fixtures are inputs to the encoder, not checks of the physiology:
 // package derive owns the arithmetic. Where a number has a published or
-// reproducible origin it is named (REFERENCE.md §1.2 worked examples);
-// the rest only need to be plausible.
+// reproducible origin (own arithmetic on a published formula) the paper is
+// named beside it; the rest only need to be plausible.
 
 var (
 	sampleTime = time.Date(2025, 3, 1, 10, 15, 0, 0, time.UTC)
@@ -41,7 +41,9 @@ func fullDerivation() derive.Derivation {
 				reading("Observation/etco2-2/_history/1", enc, m(0), 30, derive.KindEtCO2),
 				reading("Observation/etco2-3/_history/1", enc, m(2), 31, derive.KindEtCO2),
 			}},
-			// W3: VCO2 200 mL/min, VE 6 L/min, PaCO2 40 → PĒCO2 28.767, VD/VT 0.2808.
+			// Own arithmetic on the published formula of Siddiki et al. (Crit
+			// Care 2010;14:R141): VCO2 200 mL/min, VE 6 L/min, PaCO2 40 →
+			// PĒCO2 28.767, VD/VT 0.2808.
 			{Kind: derive.KindVCO2, Median: 200, Readings: []derive.Reading{
 				reading("Observation/vco2-1/_history/1", enc, m(-1), 200, derive.KindVCO2),
 			}},

@@ -170,16 +170,16 @@ func TestConvert(t *testing.T) {
 		source string
 	}{
 		{"kPa to mm[Hg]", derive.KindPaCO2, 5.3, "kPa", units.Options{}, 39.75337903721817,
-			"5.3 kPa × 7.50064 = 39.7534 mm[Hg]", "ucum-lhc 7.1.10 convertUnitTo (reference E16a)"},
+			"5.3 kPa × 7.50064 = 39.7534 mm[Hg]", "measured with ucum-lhc 7.1.10 convertUnitTo"},
 		{"canonical unit unchanged", derive.KindPaCO2, 40, "mm[Hg]", units.Options{}, 40,
 			"40 mm[Hg] (canonical unit, no conversion)", "identity"},
 		{"percent EtCO2 wet basis", derive.KindEtCO2, 5.0, "%", units.Options{BarometricPressure: 760, PercentBasis: units.BasisWet}, 35.65,
 			"5 % × (760 − 47) mm[Hg] / 100 = 35.65 mm[Hg] (wet basis, BTPS)",
-			"reference W6, own arithmetic from E17 (Intensive Care Med 2004, doi 10.1007/s00134-004-2194-8)"},
+			"own arithmetic on the published formula PCO2 = FCO2 × (PB − 47) of the Intensive Care Med 2004 dead-space review (doi 10.1007/s00134-004-2194-8)"},
 		{"percent EtCO2 dry basis", derive.KindEtCO2, 5.0, "%", units.Options{BarometricPressure: 760, PercentBasis: units.BasisDry}, 38.0,
-			"5 % × 760 mm[Hg] / 100 = 38 mm[Hg] (dry basis, ambient pressure)", "reference W6, own arithmetic from E17"},
-		{"percent default is dry at 760", derive.KindEtCO2, 5.0, "%", units.Options{}, 38.0, "", "reference W6 (dry), package default"},
-		{"percent mixed-expired wet", derive.KindMixedExpiredCO2, 5.0, "%{CO2}", units.Options{PercentBasis: units.BasisWet}, 35.65, "", "reference W6"},
+			"5 % × 760 mm[Hg] / 100 = 38 mm[Hg] (dry basis, ambient pressure)", "own arithmetic, dry basis PCO2 = FCO2 × PB (common practice)"},
+		{"percent default is dry at 760", derive.KindEtCO2, 5.0, "%", units.Options{}, 38.0, "", "own arithmetic, dry basis FCO2 × PB (common practice), package default"},
+		{"percent mixed-expired wet", derive.KindMixedExpiredCO2, 5.0, "%{CO2}", units.Options{PercentBasis: units.BasisWet}, 35.65, "", "own arithmetic on the Intensive Care Med 2004 review formula FCO2 × (PB − 47)"},
 		{"inches to cm", derive.KindHeight, 70, "[in_i]", units.Options{}, 177.8, "", "ucum-lhc 7.1.10: 70 [in_i] = 177.8 cm"},
 		{"L/min to mL/min for VCO2", derive.KindVCO2, 0.25, "L/min", units.Options{}, 250, "", "UCUM: L = 10^3 mL"},
 		{"annotated rate", derive.KindRespRate, 14, "{breaths}/min", units.Options{}, 14, "", "ucum-lhc 7.1.10: annotations carry no dimension"},
@@ -281,9 +281,10 @@ func TestFromQuantity(t *testing.T) {
 	}
 }
 
-// UCUM's mm[Hg] (133.3220 Pa, reference E16a, ucum-lhc baseFactor) is about
-// 3 ppm below the conventional 133.322387415 Pa (reference E16, "1 mmHg
-// equals exactly 133.322387415 pascals").
+// UCUM's mm[Hg] (133.3220 Pa, the ucum-lhc 7.1.10 baseFactor, measured) is
+// about 3 ppm below the conventional 133.322387415 Pa, as unit-conversion
+// references state it: "1 mmHg equals exactly 133.322387415 pascals"
+// (13.5951 g/cm³ × 9.80665 m/s² × 1 mm; the density and gravity from memory).
 func TestMMHgConstant(t *testing.T) {
 	const conventional = 133.322387415
 	d := 1 - units.MMHgPascal/conventional
