@@ -98,7 +98,7 @@ func TestDerive(t *testing.T) {
 		check    func(t *testing.T, d derive.Derivation)
 	}{
 		{
-			// Classroom case (common practice): PaCO2 40, PĒCO2 28,
+			// The common-practice check case: PaCO2 40, PĒCO2 28,
 			// VT 500 → VD/VT 0.30, VD 150 mL; worked example: VT 500 mL ×
 			// 14 /min, VD 150 mL → VE 7 L/min, VA 4.9 L/min (a published
 			// teaching example; VA = (VT − VD) × RR, Medbullets), so VE 7 and

@@ -23,10 +23,10 @@ func TestEquations(t *testing.T) {
 		// form from Anderson & Breen, Crit Care 2000;4:207.
 		{"teaching example Enghoff fraction", derive.EnghoffFraction(40, 27), 0.325, 1e-12},
 		{"teaching example dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 27), 500), 162.5, 1e-9},
-		// The classroom case, common practice: PaCO2 40, PĒCO2 28 → 0.30,
+		// The common-practice check case: PaCO2 40, PĒCO2 28 → 0.30,
 		// and 150 mL of a 500 mL breath.
-		{"classroom Enghoff fraction", derive.EnghoffFraction(40, 28), 0.30, 1e-12},
-		{"classroom dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 28), 500), 150, 1e-9},
+		{"common-practice Enghoff fraction", derive.EnghoffFraction(40, 28), 0.30, 1e-12},
+		{"common-practice dead-space volume", derive.DeadSpaceVolume(derive.EnghoffFraction(40, 28), 500), 150, 1e-9},
 		// Worked example: VT 500 mL × 14 /min with VD 150 mL gives VE 7 L/min
 		// and VA = (VT − VD) × RR = 4.9 L/min (a published teaching example;
 		// formula from Medbullets: "VA = (TV - VD) x RR"). Our per-minute form with

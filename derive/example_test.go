@@ -8,7 +8,7 @@ import (
 )
 
 // A blood gas with capnography and ventilator readings around its sample
-// time. The numbers are the classroom case (common practice): PaCO2 40,
+// time. The numbers are the common-practice check case: PaCO2 40,
 // PĒCO2 28, VT 500 mL gives VD/VT 0.30 and 150 mL of dead space.
 func ExampleDerive() {
 	sample := time.Date(2024, 3, 1, 10, 0, 0, 0, time.UTC)

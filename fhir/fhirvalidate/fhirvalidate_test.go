@@ -10,8 +10,8 @@ import (
 // The accepted resources are shaped after the R4 Observation and Provenance
 // definitions (hl7.org/fhir/R4/observation.html, provenance.html). The
 // rejected ones each break one rule, named beside the case with its source;
-// want is a fragment of the message google/fhir v0.7.4 gives (measured, see
-// REFERENCE.md part 3 §2) or of our own checks.
+// want is a fragment of the message google/fhir v0.7.4 gives (measured on
+// this project's machine) or of our own checks.
 func TestResource(t *testing.T) {
 	const valid = `{"resourceType":"Observation","status":"final","code":{"text":"x"}` // closed by each case
 	cases := []struct {
