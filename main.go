@@ -6,9 +6,10 @@
 // Usage:
 //
 //	deadspace replay [flags] FILE...   derive from NDJSON files, offline
+//	deadspace serve [flags]            the live service
 //	deadspace version                  print the version
 //
-// Run "deadspace replay -h" for the flags.
+// Run "deadspace replay -h" or "deadspace serve -h" for the flags.
 package main
 
 import (
@@ -17,12 +18,14 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"log/slog"
 	"os"
 	"os/signal"
 	"syscall"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/replay"
+	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
@@ -50,17 +53,19 @@ func main() {
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
-		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace version")
+		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace version")
 		return exitUsage
 	}
 	switch args[0] {
 	case "replay":
 		return runReplay(ctx, args[1:], stdout, stderr)
+	case "serve":
+		return runServe(ctx, args[1:], os.Getenv, stderr)
 	case "version":
 		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
 		return exitOK
 	case "-h", "-help", "--help", "help":
-		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace version")
+		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace version")
 		return exitOK
 	}
 	fmt.Fprintf(stderr, "deadspace: unknown command %q\n", args[0])
@@ -230,4 +235,52 @@ func parseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
 		positional = append(positional, rest[0])
 		args = rest[1:]
 	}
+}
+
+func runServe(ctx context.Context, args []string, getenv func(string) string, stderr io.Writer) int {
+	fs := flag.NewFlagSet("serve", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	var cfg serve.Config
+	cfg.Bind(fs)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: deadspace serve [flags]\n\nRuns the live service. Every flag can also be set by an environment variable:\nDEADSPACE_ and the flag name in upper case, dashes as underscores (--fhir-base is DEADSPACE_FHIR_BASE).\nThe FHIR bearer token comes only from DEADSPACE_FHIR_TOKEN or --fhir-token-file.\n\nFlags:")
+		fs.PrintDefaults()
+	}
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		return exitUsage
+	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(stderr, "deadspace serve: unexpected arguments %q\n", fs.Args())
+		return exitUsage
+	}
+	err := cfg.ApplyEnv(fs, getenv)
+	if verr := cfg.Validate(); verr != nil {
+		err = errors.Join(err, verr)
+	}
+	if err != nil {
+		fmt.Fprintf(stderr, "deadspace serve: configuration:\n%v\n", err)
+		return exitUsage
+	}
+	log := newLogger(stderr, cfg.LogLevel)
+	svc, err := serve.New(cfg, version, log)
+	if err != nil {
+		log.Error("start-up failed", "err", err)
+		return exitFailed
+	}
+	if err := svc.Run(ctx); err != nil {
+		log.Error("service failed", "err", err)
+		return exitFailed
+	}
+	return exitOK
+}
+
+// newLogger writes JSON lines. Nothing that identifies a patient is ever
+// given to it: log lines carry counts, reasons and request ids.
+func newLogger(w io.Writer, level string) *slog.Logger {
+	var l slog.Level
+	_ = l.UnmarshalText([]byte(level))
+	return slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: l}))
 }

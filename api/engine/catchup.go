@@ -1,0 +1,247 @@
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"net/url"
+	"strings"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/notify"
+)
+
+// cursorSearch names the polling cursor: the latest meta.lastUpdated taken
+// in by a completed search.
+const cursorSearch = "search.lastUpdated"
+
+// searchPage is the page size asked of the server; servers may return
+// fewer, and only a missing next link ends a search.
+const searchPage = 100
+
+func (e *Engine) catchUpLoop(ctx context.Context) {
+	var poll <-chan time.Time
+	if e.cfg.PollInterval > 0 {
+		t := time.NewTicker(e.cfg.PollInterval)
+		defer t.Stop()
+		poll = t.C
+	}
+	var heartbeat <-chan time.Time
+	if e.cfg.HeartbeatTimeout > 0 {
+		t := time.NewTicker(e.cfg.HeartbeatTimeout / 2)
+		defer t.Stop()
+		heartbeat = t.C
+	}
+	for {
+		trigger := ""
+		select {
+		case <-ctx.Done():
+			return
+		case trigger = <-e.catch:
+		case <-poll:
+			trigger = "poll"
+		case <-heartbeat:
+			e.mu.Lock()
+			silent := !e.lastNotified.IsZero() && e.now().Sub(e.lastNotified) > e.cfg.HeartbeatTimeout
+			e.mu.Unlock()
+			if !silent {
+				continue
+			}
+			trigger = "heartbeat-missed"
+		}
+		if err := e.CatchUp(ctx, trigger); err != nil && ctx.Err() == nil {
+			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", err)
+			go func() {
+				if sleep(ctx, 5*time.Second) {
+					e.RequestCatchUp("retry")
+				}
+			}()
+		}
+	}
+}
+
+// CatchUp searches the server for recognised Observations updated since the
+// cursor, less the overlap, and ingests them. The cursor moves only after
+// everything found is stored, and searches use ge, not gt, so an equal
+// timestamp is never skipped; ingest is idempotent, so the overlap costs
+// only a re-read.
+func (e *Engine) CatchUp(ctx context.Context, trigger string) error {
+	if e.cfg.Client == nil {
+		return nil
+	}
+	if e.cfg.Hooks.CatchUp != nil {
+		e.cfg.Hooks.CatchUp(trigger)
+	}
+	cur, err := e.cfg.Store.Cursor(ctx, cursorSearch)
+	if err != nil {
+		return fmt.Errorf("engine: catch-up: %w", err)
+	}
+	since := e.now().Add(-e.cfg.Retention)
+	var latest time.Time
+	if cur != "" {
+		t, err := time.Parse(time.RFC3339Nano, cur)
+		if err != nil {
+			return fmt.Errorf("engine: catch-up: bad cursor %q: %w", cur, err)
+		}
+		latest = t
+		since = t.Add(-e.cfg.Overlap)
+	}
+	q := url.Values{
+		"_lastUpdated": {"ge" + since.UTC().Format(time.RFC3339Nano)},
+		"_count":       {fmt.Sprint(searchPage)},
+	}
+	if len(e.cfg.SearchCodes) > 0 {
+		q.Set("code", strings.Join(e.cfg.SearchCodes, ","))
+	}
+	var batch []json.RawMessage
+	flush := func() error {
+		if len(batch) == 0 {
+			return nil
+		}
+		_, err := e.Ingest(ctx, "poll", batch)
+		batch = batch[:0]
+		return err
+	}
+	found := 0
+	err = e.cfg.Client.Search(ctx, "Observation", q, func(entry json.RawMessage) error {
+		var en struct {
+			Resource json.RawMessage `json:"resource"`
+			Search   struct {
+				Mode string `json:"mode"`
+			} `json:"search"`
+		}
+		if err := json.Unmarshal(entry, &en); err != nil || len(en.Resource) == 0 || en.Search.Mode == "outcome" {
+			return nil
+		}
+		var m struct {
+			Meta struct {
+				LastUpdated string `json:"lastUpdated"`
+			} `json:"meta"`
+		}
+		if json.Unmarshal(en.Resource, &m) == nil {
+			if t, err := time.Parse(time.RFC3339Nano, m.Meta.LastUpdated); err == nil && t.After(latest) {
+				latest = t
+			}
+		}
+		found++
+		batch = append(batch, en.Resource)
+		if len(batch) >= searchPage {
+			return flush()
+		}
+		return nil
+	})
+	if err == nil {
+		err = flush()
+	}
+	if err != nil {
+		return fmt.Errorf("engine: catch-up: %w", err)
+	}
+	e.serverAnswered()
+	if !latest.IsZero() {
+		if err := e.cfg.Store.SetCursor(ctx, cursorSearch, latest.UTC().Format(time.RFC3339Nano)); err != nil {
+			return fmt.Errorf("engine: catch-up: %w", err)
+		}
+	}
+	e.log.InfoContext(ctx, "catch-up search done", "trigger", trigger, "resources", found)
+	return nil
+}
+
+// Notified records a notification's counters and asks for a catch-up when
+// events are missing: an event number that skips ahead of the last one
+// seen, or a count of events since the subscription started that is ahead
+// of it (a heartbeat after lost events).
+func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
+	e.mu.Lock()
+	e.lastNotified = e.now()
+	e.mu.Unlock()
+	if n.Subscription == "" {
+		return nil
+	}
+	var lowest, highest uint64
+	for _, ev := range n.Events {
+		if ev.Number == 0 {
+			continue
+		}
+		if lowest == 0 || ev.Number < lowest {
+			lowest = ev.Number
+		}
+		highest = max(highest, ev.Number)
+	}
+	if n.HasEventsSinceStart {
+		highest = max(highest, n.EventsSinceStart)
+	}
+	if highest == 0 {
+		return nil
+	}
+	previous, err := e.cfg.Store.SeenEvent(ctx, n.Subscription, highest)
+	if err != nil {
+		return fmt.Errorf("engine: notification: %w", err)
+	}
+	gap := false
+	switch {
+	case lowest > 0 && lowest > previous+1:
+		gap = true // events between previous and lowest never came
+	case lowest == 0 && highest > previous:
+		gap = true // a heartbeat counts events we never received
+	}
+	if gap {
+		if e.cfg.Hooks.Gap != nil {
+			e.cfg.Hooks.Gap()
+		}
+		e.log.WarnContext(ctx, "subscription events missing; catching up by search", "last_seen", previous, "now_at", highest)
+		e.RequestCatchUp("gap")
+	}
+	return nil
+}
+
+// Fetch reads resources named by an id-only notification from the server
+// and ingests them. It returns only after they are stored, so the sender is
+// answered 2xx only when nothing can be lost.
+func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
+	if e.cfg.Client == nil {
+		return Receipt{}, fmt.Errorf("%w: id-only notifications need a FHIR server to read from (--fhir-base)", ErrInvalid)
+	}
+	var resources []json.RawMessage
+	for _, ref := range refs {
+		typ, id, ok := notify.RelativeRef(ref, "")
+		if !ok {
+			return Receipt{}, fmt.Errorf("%w: focus %q is not a resource reference", ErrInvalid, ref)
+		}
+		if typ != "Observation" && typ != "Patient" {
+			continue
+		}
+		body, _, err := e.cfg.Client.Read(ctx, typ, id)
+		if err != nil {
+			return Receipt{}, fmt.Errorf("engine: fetch focus: %w", err)
+		}
+		e.serverAnswered()
+		resources = append(resources, body)
+	}
+	return e.Ingest(ctx, "notification-id-only", resources)
+}
+
+// fetchPatient reads a patient's demographics from the server when the
+// stream never carried them. A failure is logged and leaves the facts
+// unknown: the values that need them are omitted with a reason and
+// derived when they arrive.
+func (e *Engine) fetchPatient(ctx context.Context, subject string) derive.Patient {
+	id := strings.TrimPrefix(subject, "Patient/")
+	body, _, err := e.cfg.Client.Read(ctx, "Patient", id)
+	if err != nil {
+		e.log.WarnContext(ctx, "reading patient facts failed", "err", err)
+		return derive.Patient{}
+	}
+	e.serverAnswered()
+	it, err := e.cfg.Decoder.Decode(body)
+	if err != nil || it.Type != decode.ItemPatient {
+		e.log.WarnContext(ctx, "the server's Patient resource could not be read", "err", errors.Join(err))
+		return derive.Patient{}
+	}
+	if err := e.putPatient(ctx, it, e.now(), e.now()); err != nil {
+		e.log.WarnContext(ctx, "storing patient facts failed", "err", err)
+	}
+	return it.Patient
+}

@@ -1,0 +1,381 @@
+// Package engine is the live service's core. Every input mode (subscription
+// notifications, classic rest-hooks, polling, the gRPC submit call) hands it
+// FHIR resources; it stores them durably, re-evaluates the patients they
+// belong to once their data has settled, records each derived value in a
+// ledger, and queues what must be written back to the FHIR server in an
+// outbox that a writer drains with retries. Corrections are carried
+// through: an amended input re-derives and updates the derived Observation,
+// an entered-in-error one withdraws it.
+//
+// Exactly once, end to end: inputs are idempotent by (id, version); each
+// derived value has a series identity that survives re-derivation and a key
+// that changes with any input version, so the ledger knows whether a result
+// is new, changed or already written; and every write is a transaction of
+// conditional creates keyed on those identifiers, so a write repeated after
+// a crash or a lost response leaves one copy on the server.
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"log/slog"
+	"sync"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/client"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+)
+
+// ErrInvalid marks input the engine refuses as a whole; callers answer it
+// as a client error.
+var ErrInvalid = errors.New("invalid input")
+
+// Hooks let the caller count what the engine does without the engine
+// knowing how it is exported. Any nil field is skipped.
+type Hooks struct {
+	Received    func(mode, resourceType string)
+	LeftOut     func(reason derive.Reason)
+	Emitted     func(code string, status string)
+	Gap         func()
+	CatchUp     func(trigger string)
+	DeadLetter  func()
+	WriteResult func(outcome string)
+}
+
+// Config configures an Engine.
+type Config struct {
+	Store   store.Store
+	Decoder *decode.Decoder
+	Encoder *encode.Encoder
+	Derive  derive.Config
+	// Client is the FHIR server; nil runs standalone: results stay in the
+	// store and nothing is written back.
+	Client *client.Client
+	// Settle is how long a patient's new data waits before it is derived,
+	// so readings that arrive just after a blood gas are included.
+	Settle time.Duration
+	// Retention is how long inputs are kept, measured back from now by
+	// their effective time. Results older than Retention minus Freeze are
+	// never re-derived or withdrawn, so pruning cannot rewrite history.
+	Retention time.Duration
+	Freeze    time.Duration
+	// PollInterval is how often to search the server for changes; zero
+	// means only on gaps, empty rest-hooks and at start.
+	PollInterval time.Duration
+	// Overlap is subtracted from the polling cursor to cover clock skew and
+	// late commits.
+	Overlap time.Duration
+	// HeartbeatTimeout triggers a catch-up when no notification arrived for
+	// that long; zero disables it.
+	HeartbeatTimeout time.Duration
+	// SearchCodes are the "system|code" tokens polling searches for.
+	SearchCodes []string
+	// ProvenanceTagSystem tags each Provenance so a repeated write can be
+	// made conditional on it (R4 Provenance has no identifier).
+	ProvenanceTagSystem string
+	Logger              *slog.Logger
+	Now                 func() time.Time
+	Hooks               Hooks
+}
+
+// DefaultProvenanceTagSystem is the system of the tag that makes a
+// Provenance write conditional.
+const DefaultProvenanceTagSystem = "https://deadspace-fhir.github.io/fhir/sid/provenance"
+
+// Engine is safe for concurrent use.
+type Engine struct {
+	cfg   Config
+	log   *slog.Logger
+	now   func() time.Time
+	wake  chan struct{} // evaluation wanted
+	flush chan struct{} // outbox has writes
+	catch chan string   // catch-up wanted, with the trigger
+
+	mu            sync.Mutex
+	lastNotified  time.Time
+	outboxBlocked time.Time // when the head write last failed, for readiness
+	lastServerOK  time.Time
+}
+
+// New checks the configuration and returns an Engine. Nothing runs until
+// [Engine.Run].
+func New(cfg Config) (*Engine, error) {
+	var errs []error
+	if cfg.Store == nil {
+		errs = append(errs, errors.New("engine: a store is required"))
+	}
+	if cfg.Decoder == nil {
+		errs = append(errs, errors.New("engine: a decoder is required"))
+	}
+	if cfg.Encoder == nil {
+		errs = append(errs, errors.New("engine: an encoder is required"))
+	}
+	if err := cfg.Derive.Validate(); err != nil {
+		errs = append(errs, fmt.Errorf("engine: %w", err))
+	}
+	if cfg.Settle < 0 {
+		errs = append(errs, fmt.Errorf("engine: settle delay must not be negative, got %v", cfg.Settle))
+	}
+	if cfg.Retention <= 0 {
+		cfg.Retention = 24 * time.Hour
+	}
+	if cfg.Freeze <= 0 {
+		cfg.Freeze = time.Hour
+	}
+	if cfg.Freeze >= cfg.Retention {
+		errs = append(errs, fmt.Errorf("engine: retention (%v) must be longer than the freeze margin (%v)", cfg.Retention, cfg.Freeze))
+	}
+	if cfg.Overlap <= 0 {
+		cfg.Overlap = 5 * time.Minute
+	}
+	if cfg.ProvenanceTagSystem == "" {
+		cfg.ProvenanceTagSystem = DefaultProvenanceTagSystem
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+	if cfg.Logger == nil {
+		cfg.Logger = slog.New(slog.DiscardHandler)
+	}
+	if cfg.Now == nil {
+		cfg.Now = time.Now
+	}
+	return &Engine{
+		cfg: cfg, log: cfg.Logger, now: cfg.Now,
+		wake: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
+	}, nil
+}
+
+func signal(ch chan struct{}) {
+	select {
+	case ch <- struct{}{}:
+	default:
+	}
+}
+
+// RequestCatchUp asks for a search of the server from the cursor. It does
+// not block; requests made while one is pending merge.
+func (e *Engine) RequestCatchUp(trigger string) {
+	if e.cfg.Client == nil {
+		return
+	}
+	select {
+	case e.catch <- trigger:
+	default:
+	}
+}
+
+// Rejection is one resource that was not taken, with the reason.
+type Rejection struct {
+	Index  int
+	Reason derive.Reason
+	Detail string
+}
+
+// Receipt says what an ingest took.
+type Receipt struct {
+	Accepted int
+	// Ignored counts resources this service has no use for.
+	Ignored  int
+	Rejected []Rejection
+}
+
+// storedInput is the engine's encoding of one input version in the store.
+type storedInput struct {
+	Item decode.Item `json:"item"`
+}
+
+// Ingest decodes resources, stores the usable ones and the versions that
+// withdraw earlier usable ones, and marks their patients for evaluation.
+// It returns after the store has made them durable.
+func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMessage) (Receipt, error) {
+	var rec Receipt
+	var inputs []store.Input
+	now := e.now()
+	for i, raw := range resources {
+		it, err := e.cfg.Decoder.Decode(raw)
+		if err != nil {
+			rec.Rejected = append(rec.Rejected, Rejection{i, derive.ReasonMalformed, err.Error()})
+			e.leftOut(derive.ReasonMalformed)
+			continue
+		}
+		e.received(mode, it.ResourceType)
+		switch it.Type {
+		case decode.ItemUnrelated:
+			rec.Ignored++
+			if it.ResourceType == "Observation" {
+				e.leftOut(derive.ReasonUnrecognised)
+			}
+		case decode.ItemPatient:
+			if err := e.putPatient(ctx, it, now, time.Time{}); err != nil {
+				return Receipt{}, err
+			}
+			rec.Accepted++
+		case decode.ItemReading:
+			in, err := toStored(it)
+			if err != nil {
+				return Receipt{}, err
+			}
+			inputs = append(inputs, in)
+			rec.Accepted++
+		case decode.ItemOmitted:
+			e.leftOut(it.Omission.Reason)
+			// An unusable version is kept only when it replaces a usable
+			// one: an amended result that fails a check, or a withdrawal,
+			// must hide the version it supersedes. A venous gas that was
+			// never usable leaves nothing behind.
+			if it.ID == "" || it.Subject == "" {
+				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+				continue
+			}
+			logical := it.ResourceType + "/" + it.ID
+			if _, err := e.cfg.Store.Input(ctx, it.Subject, logical); errors.Is(err, store.ErrNotFound) {
+				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+				continue
+			} else if err != nil {
+				return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
+			}
+			in, err := toStored(it)
+			if err != nil {
+				return Receipt{}, err
+			}
+			inputs = append(inputs, in)
+			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+		}
+	}
+	if len(inputs) > 0 {
+		if _, err := e.cfg.Store.PutInputs(ctx, inputs, now); err != nil {
+			return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
+		}
+		signal(e.wake)
+	}
+	return rec, nil
+}
+
+func toStored(it decode.Item) (store.Input, error) {
+	payload, err := json.Marshal(storedInput{Item: it})
+	if err != nil {
+		return store.Input{}, fmt.Errorf("engine: encode input: %w", err)
+	}
+	return store.Input{
+		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
+		LastUpdated: it.LastUpdated, EffectiveAt: it.Reading.At(), Payload: payload,
+	}, nil
+}
+
+func (e *Engine) putPatient(ctx context.Context, it decode.Item, now, fetched time.Time) error {
+	payload, err := json.Marshal(it.Patient)
+	if err != nil {
+		return fmt.Errorf("engine: encode patient: %w", err)
+	}
+	_, err = e.cfg.Store.PutPatient(ctx, store.Patient{
+		Subject: "Patient/" + it.ID, VersionID: it.VersionID, LastUpdated: it.LastUpdated,
+		Payload: payload, FetchedAt: fetched,
+	}, now)
+	if err != nil {
+		return fmt.Errorf("engine: store patient: %w", err)
+	}
+	signal(e.wake)
+	return nil
+}
+
+func (e *Engine) received(mode, rt string) {
+	if e.cfg.Hooks.Received != nil {
+		e.cfg.Hooks.Received(mode, rt)
+	}
+}
+
+func (e *Engine) leftOut(r derive.Reason) {
+	if e.cfg.Hooks.LeftOut != nil {
+		e.cfg.Hooks.LeftOut(r)
+	}
+}
+
+// Run evaluates, writes and catches up until ctx is done. On return every
+// evaluation in progress has been committed or abandoned before its commit
+// (the store's dirty marks bring it back on the next start), and no write is
+// half-recorded.
+func (e *Engine) Run(ctx context.Context) error {
+	var wg sync.WaitGroup
+	loops := []func(context.Context){e.evaluateLoop, e.pruneLoop}
+	if e.cfg.Client != nil {
+		loops = append(loops, e.writeLoop, e.catchUpLoop)
+		e.RequestCatchUp("start")
+	}
+	for _, loop := range loops {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			loop(ctx)
+		}()
+	}
+	signal(e.wake)
+	signal(e.flush)
+	wg.Wait()
+	return nil
+}
+
+// sleep waits for d or ctx; it reports false when ctx ended.
+func sleep(ctx context.Context, d time.Duration) bool {
+	t := time.NewTimer(d)
+	defer t.Stop()
+	select {
+	case <-ctx.Done():
+		return false
+	case <-t.C:
+		return true
+	}
+}
+
+func (e *Engine) pruneLoop(ctx context.Context) {
+	for {
+		n, err := e.cfg.Store.Prune(ctx, e.now().Add(-e.cfg.Retention))
+		if err != nil && ctx.Err() == nil {
+			e.log.ErrorContext(ctx, "prune failed", "err", err)
+		} else if n > 0 {
+			e.log.InfoContext(ctx, "pruned inputs past retention", "inputs", n)
+		}
+		if !sleep(ctx, 10*time.Minute) {
+			return
+		}
+	}
+}
+
+// Health is what readiness needs to know.
+type Health struct {
+	// ServerOK is when the FHIR server last answered (zero when never or
+	// when standalone).
+	ServerOK time.Time
+	// OutboxBlockedSince is when the oldest pending write first failed and
+	// has kept failing; zero when it is flowing.
+	OutboxBlockedSince time.Time
+	Stats              store.Stats
+}
+
+// Health reports the engine's state.
+func (e *Engine) Health(ctx context.Context) (Health, error) {
+	st, err := e.cfg.Store.Stats(ctx)
+	if err != nil {
+		return Health{}, fmt.Errorf("engine: health: %w", err)
+	}
+	e.mu.Lock()
+	defer e.mu.Unlock()
+	return Health{ServerOK: e.lastServerOK, OutboxBlockedSince: e.outboxBlocked, Stats: st}, nil
+}
+
+// Standalone reports whether the engine writes to no server.
+func (e *Engine) Standalone() bool { return e.cfg.Client == nil }
+
+func (e *Engine) serverAnswered() {
+	e.mu.Lock()
+	e.lastServerOK = e.now()
+	e.mu.Unlock()
+}
+
+// SearchCodes returns the "system|code" tokens the engine searches for.
+func (e *Engine) SearchCodes() []string { return append([]string(nil), e.cfg.SearchCodes...) }

@@ -1,0 +1,176 @@
+// Package serve assembles the live service: configuration from flags and
+// environment variables, the embedded store, the engine, the webhook and
+// health endpoints, optional registration of the Subscription on the FHIR
+// server, and an orderly shutdown.
+package serve
+
+import (
+	"errors"
+	"flag"
+	"fmt"
+	"net"
+	"net/url"
+	"os"
+	"strings"
+	"time"
+)
+
+// Config is every setting of deadspace serve. Each field has a flag and an
+// environment variable: --fhir-base and DEADSPACE_FHIR_BASE, and so on.
+type Config struct {
+	FHIRBase       string
+	FHIRToken      string // secret: from DEADSPACE_FHIR_TOKEN or --fhir-token-file only
+	FHIRTokenFile  string
+	Listen         string
+	DataDir        string
+	WebhookSecret  string // secret: from the flag, DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file
+	WebhookSecFile string
+	WebhookHeader  string
+	MaxBodyBytes   int64
+	Window         time.Duration
+	PollInterval   time.Duration
+	Settle         time.Duration
+	Retention      time.Duration
+	Heartbeat      time.Duration
+	Register       bool
+	PublicURL      string
+	CodesFile      string
+	Barometric     float64
+	CO2Basis       string
+	CodeSystem     string
+	LogLevel       string
+}
+
+// Bind registers every flag on fs with its default.
+func (c *Config) Bind(fs *flag.FlagSet) {
+	fs.StringVar(&c.FHIRBase, "fhir-base", "", "FHIR server base URL; without it the service runs standalone and keeps results in its store")
+	fs.StringVar(&c.FHIRTokenFile, "fhir-token-file", "", "file holding a bearer token for the FHIR server (or set DEADSPACE_FHIR_TOKEN)")
+	fs.StringVar(&c.Listen, "listen", "127.0.0.1:8080", "HTTP address for the webhook, /healthz and /readyz")
+	fs.StringVar(&c.DataDir, "data-dir", "deadspace-data", "directory of the embedded store")
+	fs.StringVar(&c.WebhookSecret, "webhook-secret", "", "shared secret the FHIR server sends with each notification (prefer DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file)")
+	fs.StringVar(&c.WebhookSecFile, "webhook-secret-file", "", "file holding the webhook secret")
+	fs.StringVar(&c.WebhookHeader, "webhook-header", "Authorization", "header carrying the secret: Authorization means \"Bearer <secret>\"; any other header carries the secret itself")
+	fs.Int64Var(&c.MaxBodyBytes, "max-body-bytes", 4<<20, "largest webhook request body accepted")
+	fs.DurationVar(&c.Window, "window", 5*time.Minute, "pairing window on each side of a blood gas's sample time")
+	fs.DurationVar(&c.PollInterval, "poll-interval", 0, "search the FHIR server for changes this often (0: only at start, on gaps and on empty rest-hooks)")
+	fs.DurationVar(&c.Settle, "settle", 30*time.Second, "how long new data waits before it is derived, so late readings are included")
+	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
+	fs.DurationVar(&c.Heartbeat, "heartbeat-timeout", 0, "catch up by search when no notification arrived for this long (0: off)")
+	fs.BoolVar(&c.Register, "register-subscription", false, "create or re-activate the rest-hook Subscription on the FHIR server at start-up")
+	fs.StringVar(&c.PublicURL, "public-url", "", "URL the FHIR server reaches this service at (for --register-subscription), e.g. https://deadspace.example/")
+	fs.StringVar(&c.CodesFile, "codes", "", "site code table (JSON) merged over the built-in LOINC and MDC table")
+	fs.Float64Var(&c.Barometric, "barometric-pressure", 760, "barometric pressure in mm[Hg], for CO2 reported in percent")
+	fs.StringVar(&c.CO2Basis, "co2-basis", "dry", "how percent CO2 becomes a pressure where the code table sets no basis: dry or wet")
+	fs.StringVar(&c.CodeSystem, "code-system", "https://deadspace-fhir.github.io/fhir/CodeSystem/dead-space", "canonical URL of the CodeSystem of the derived codes")
+	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
+}
+
+// EnvName is the environment variable of a flag: DEADSPACE_ and the flag's
+// name in upper case with dashes as underscores.
+func EnvName(flagName string) string {
+	return "DEADSPACE_" + strings.ToUpper(strings.ReplaceAll(flagName, "-", "_"))
+}
+
+// ApplyEnv sets every flag not given on the command line from its
+// environment variable, and reads the secrets that come only from the
+// environment. It reports every bad value at once.
+func (c *Config) ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
+	set := make(map[string]bool)
+	fs.Visit(func(f *flag.Flag) { set[f.Name] = true })
+	var errs []error
+	fs.VisitAll(func(f *flag.Flag) {
+		if set[f.Name] {
+			return
+		}
+		if v := getenv(EnvName(f.Name)); v != "" {
+			if err := f.Value.Set(v); err != nil {
+				errs = append(errs, fmt.Errorf("%s=%q: %w", EnvName(f.Name), v, err))
+			}
+		}
+	})
+	if c.FHIRToken == "" {
+		c.FHIRToken = getenv("DEADSPACE_FHIR_TOKEN")
+	}
+	return errors.Join(errs...)
+}
+
+// readSecret reads a secret file, trimming one trailing newline.
+func readSecret(path string) (string, error) {
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return "", err
+	}
+	return strings.TrimRight(string(b), "\r\n"), nil
+}
+
+// Validate checks every setting and reports all problems at once. It also
+// loads secrets from their files.
+func (c *Config) Validate() error {
+	var errs []error
+	if c.FHIRBase != "" {
+		u, err := url.Parse(c.FHIRBase)
+		if err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" {
+			errs = append(errs, fmt.Errorf("--fhir-base must be an http or https URL, got %q", c.FHIRBase))
+		}
+	}
+	if c.FHIRTokenFile != "" {
+		tok, err := readSecret(c.FHIRTokenFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--fhir-token-file: %w", err))
+		}
+		c.FHIRToken = tok
+	}
+	if c.WebhookSecFile != "" {
+		s, err := readSecret(c.WebhookSecFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--webhook-secret-file: %w", err))
+		}
+		c.WebhookSecret = s
+	}
+	if c.WebhookSecret == "" {
+		errs = append(errs, errors.New("a webhook secret is required (--webhook-secret, DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file): the webhook writes into the clinical record and must be authenticated"))
+	} else if len(c.WebhookSecret) < 16 {
+		errs = append(errs, errors.New("the webhook secret must be at least 16 characters"))
+	}
+	if _, _, err := net.SplitHostPort(c.Listen); err != nil {
+		errs = append(errs, fmt.Errorf("--listen: %w", err))
+	}
+	if c.DataDir == "" {
+		errs = append(errs, errors.New("--data-dir is required"))
+	}
+	if c.WebhookHeader == "" || strings.ContainsAny(c.WebhookHeader, " :\r\n") {
+		errs = append(errs, fmt.Errorf("--webhook-header must be a header name, got %q", c.WebhookHeader))
+	}
+	if c.MaxBodyBytes < 1024 {
+		errs = append(errs, fmt.Errorf("--max-body-bytes must be at least 1024, got %d", c.MaxBodyBytes))
+	}
+	if c.PollInterval < 0 {
+		errs = append(errs, fmt.Errorf("--poll-interval must not be negative, got %v", c.PollInterval))
+	}
+	if c.PollInterval > 0 && c.PollInterval < time.Second {
+		errs = append(errs, fmt.Errorf("--poll-interval must be at least 1s, got %v", c.PollInterval))
+	}
+	if c.Settle < 0 {
+		errs = append(errs, fmt.Errorf("--settle must not be negative, got %v", c.Settle))
+	}
+	if c.Retention < 2*time.Hour {
+		errs = append(errs, fmt.Errorf("--retention must be at least 2h, got %v", c.Retention))
+	}
+	if c.Heartbeat < 0 {
+		errs = append(errs, fmt.Errorf("--heartbeat-timeout must not be negative, got %v", c.Heartbeat))
+	}
+	if c.Register {
+		if c.FHIRBase == "" {
+			errs = append(errs, errors.New("--register-subscription needs --fhir-base"))
+		}
+		if u, err := url.Parse(c.PublicURL); c.PublicURL == "" || err != nil || u.Host == "" {
+			errs = append(errs, errors.New("--register-subscription needs --public-url, the URL the FHIR server reaches this service at"))
+		}
+	}
+	switch c.LogLevel {
+	case "debug", "info", "warn", "error":
+	default:
+		errs = append(errs, fmt.Errorf("--log-level must be debug, info, warn or error, got %q", c.LogLevel))
+	}
+	return errors.Join(errs...)
+}

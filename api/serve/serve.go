@@ -1,0 +1,312 @@
+package serve
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"path/filepath"
+	"strings"
+	"sync"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/api/webhook"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/client"
+	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	"github.com/deadspace-fhir/deadspace/fhir/notify"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+// Service is a running deadspace serve.
+type Service struct {
+	cfg    Config
+	log    *slog.Logger
+	engine *engine.Engine
+	store  *boltstore.Store
+	http   *http.Server
+	ln     net.Listener
+	client *client.Client
+}
+
+// New opens the store, builds the engine and binds the HTTP listener, so
+// that a bad address or a locked store fails here, before anything runs.
+// cfg must have passed Validate.
+func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
+	dcfg := derive.DefaultConfig()
+	dcfg.Window = cfg.Window
+	if err := dcfg.Validate(); err != nil {
+		return nil, err
+	}
+	table := codes.Default()
+	if cfg.CodesFile != "" {
+		f, err := os.Open(cfg.CodesFile)
+		if err != nil {
+			return nil, fmt.Errorf("--codes: %w", err)
+		}
+		table, err = codes.Load(f)
+		f.Close()
+		if err != nil {
+			return nil, fmt.Errorf("--codes %s: %w", cfg.CodesFile, err)
+		}
+	}
+	basis, err := units.ParseBasis(cfg.CO2Basis)
+	if err != nil {
+		return nil, fmt.Errorf("--co2-basis: %w", err)
+	}
+	u := units.Options{BarometricPressure: cfg.Barometric, PercentBasis: basis}
+	if err := u.Validate(); err != nil {
+		return nil, err
+	}
+	encOpts := encode.DefaultOptions()
+	encOpts.CodeSystem = cfg.CodeSystem
+	encOpts.SoftwareVersion = version
+	enc, err := encode.New(encOpts)
+	if err != nil {
+		return nil, err
+	}
+	s := &Service{cfg: cfg, log: log}
+	if cfg.FHIRBase != "" {
+		var auth client.Authorizer
+		if cfg.FHIRToken != "" {
+			auth = client.BearerToken(cfg.FHIRToken)
+		}
+		s.client, err = client.New(client.Config{
+			BaseURL: cfg.FHIRBase, Auth: auth, UserAgent: "deadspace/" + version, Logger: log,
+		})
+		if err != nil {
+			return nil, err
+		}
+	}
+	s.store, err = boltstore.Open(filepath.Join(cfg.DataDir, "deadspace.db"), boltstore.Options{})
+	if err != nil {
+		return nil, err
+	}
+	var search []string
+	for _, tok := range table.SearchTokens() {
+		search = append(search, tok)
+	}
+	e, err := engine.New(engine.Config{
+		Store: s.store, Decoder: decode.New(decode.Options{Table: table, Units: u}), Encoder: enc,
+		Derive: dcfg, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
+		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
+	})
+	if err != nil {
+		s.store.Close()
+		return nil, err
+	}
+	s.engine = e
+	hook, err := webhook.New(webhook.Config{
+		Sink: sink{e}, Secret: cfg.WebhookSecret, Header: cfg.WebhookHeader, MaxBodyBytes: cfg.MaxBodyBytes, Logger: log,
+	})
+	if err != nil {
+		s.store.Close()
+		return nil, err
+	}
+	mux := http.NewServeMux()
+	mux.Handle("/notify", hook)
+	mux.Handle("/notify/", hook)
+	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
+		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+		fmt.Fprintln(w, "ok")
+	})
+	mux.HandleFunc("GET /readyz", s.ready)
+	s.ln, err = net.Listen("tcp", cfg.Listen)
+	if err != nil {
+		s.store.Close()
+		return nil, fmt.Errorf("--listen: %w", err)
+	}
+	s.http = &http.Server{
+		Handler:           mux,
+		ReadHeaderTimeout: 10 * time.Second,
+		ReadTimeout:       30 * time.Second,
+		WriteTimeout:      60 * time.Second,
+		IdleTimeout:       2 * time.Minute,
+		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelWarn),
+	}
+	return s, nil
+}
+
+// Addr is the bound HTTP address.
+func (s *Service) Addr() string { return s.ln.Addr().String() }
+
+// Engine is the service's engine, for the gRPC API and tests.
+func (s *Service) Engine() *engine.Engine { return s.engine }
+
+// Run serves until ctx is done, then stops taking input, lets in-flight
+// requests finish, stops the engine and closes the store.
+func (s *Service) Run(ctx context.Context) error {
+	if s.cfg.Register {
+		if err := s.register(ctx); err != nil {
+			s.log.ErrorContext(ctx, "registering the subscription failed; polling and catch-up still run", "err", err)
+		}
+	}
+	engineCtx, stopEngine := context.WithCancel(context.WithoutCancel(ctx))
+	var wg sync.WaitGroup
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		_ = s.engine.Run(engineCtx)
+	}()
+	serveErr := make(chan error, 1)
+	go func() { serveErr <- s.http.Serve(s.ln) }()
+	s.log.InfoContext(ctx, "serving", "addr", s.Addr(), "standalone", s.engine.Standalone())
+
+	var err error
+	select {
+	case <-ctx.Done():
+	case err = <-serveErr:
+	}
+	shutdownCtx, cancel := context.WithTimeout(context.Background(), 15*time.Second)
+	defer cancel()
+	if serr := s.http.Shutdown(shutdownCtx); serr != nil && err == nil {
+		err = serr
+	}
+	stopEngine()
+	wg.Wait()
+	if cerr := s.store.Close(); cerr != nil && err == nil {
+		err = cerr
+	}
+	if errors.Is(err, http.ErrServerClosed) {
+		err = nil
+	}
+	s.log.Info("stopped")
+	return err
+}
+
+// ready answers 200 when the store answers, the FHIR server (when one is
+// configured) answered within the last five minutes, and the outbox has
+// not been stuck for five minutes.
+func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
+	h, err := s.engine.Health(r.Context())
+	var problems []string
+	if err != nil {
+		problems = append(problems, "store: "+err.Error())
+	}
+	now := time.Now()
+	if !s.engine.Standalone() {
+		if h.ServerOK.IsZero() || now.Sub(h.ServerOK) > 5*time.Minute {
+			problems = append(problems, "FHIR server has not answered recently")
+		}
+		if !h.OutboxBlockedSince.IsZero() && now.Sub(h.OutboxBlockedSince) > 5*time.Minute {
+			problems = append(problems, "outbox is not draining")
+		}
+	}
+	w.Header().Set("Content-Type", "application/json")
+	status := http.StatusOK
+	if len(problems) > 0 {
+		status = http.StatusServiceUnavailable
+	}
+	w.WriteHeader(status)
+	_ = json.NewEncoder(w).Encode(map[string]any{
+		"ready": len(problems) == 0, "problems": problems,
+		"outboxDepth": h.Stats.OutboxDepth, "deadLetters": h.Stats.DeadLetters, "pendingPatients": h.Stats.DirtyPatients,
+	})
+}
+
+// sink adapts the engine to the webhook.
+type sink struct{ e *engine.Engine }
+
+func (k sink) Resources(ctx context.Context, src webhook.Source, resources []json.RawMessage) (webhook.Receipt, error) {
+	r, err := k.e.Ingest(ctx, src.Mode, resources)
+	return receipt(r), invalid(err)
+}
+
+func (k sink) Fetch(ctx context.Context, src webhook.Source, refs []string) error {
+	_, err := k.e.Fetch(ctx, refs)
+	return invalid(err)
+}
+
+func (k sink) Status(ctx context.Context, src webhook.Source, n notify.Notification) error {
+	return invalid(k.e.Notified(ctx, n))
+}
+
+func (k sink) Changed(ctx context.Context, src webhook.Source) error {
+	k.e.RequestCatchUp("rest-hook")
+	return nil
+}
+
+func receipt(r engine.Receipt) webhook.Receipt {
+	out := webhook.Receipt{Accepted: r.Accepted}
+	for _, x := range r.Rejected {
+		out.Rejected = append(out.Rejected, webhook.Rejection{Index: x.Index, Reason: string(x.Reason), Detail: x.Detail})
+	}
+	return out
+}
+
+func invalid(err error) error {
+	if errors.Is(err, engine.ErrInvalid) {
+		return fmt.Errorf("%w: %w", webhook.ErrInvalid, err)
+	}
+	return err
+}
+
+// register creates the rest-hook Subscription on the FHIR server, or finds
+// the one this service created before (same endpoint) and re-activates it.
+func (s *Service) register(ctx context.Context) error {
+	endpoint := strings.TrimRight(s.cfg.PublicURL, "/") + "/notify"
+	criteria := "Observation?code=" + strings.Join(s.searchCodes(), ",")
+	header := s.cfg.WebhookHeader + ": " + s.cfg.WebhookSecret
+	if s.cfg.WebhookHeader == "Authorization" {
+		header = "Authorization: Bearer " + s.cfg.WebhookSecret
+	}
+	var existing []json.RawMessage
+	err := s.client.Search(ctx, "Subscription", map[string][]string{"url": {endpoint}}, func(entry json.RawMessage) error {
+		var en struct {
+			Resource json.RawMessage `json:"resource"`
+		}
+		if json.Unmarshal(entry, &en) == nil && len(en.Resource) > 0 {
+			existing = append(existing, en.Resource)
+		}
+		return nil
+	})
+	if err != nil {
+		return fmt.Errorf("register: search: %w", err)
+	}
+	sub := map[string]any{
+		"resourceType": "Subscription", "status": "requested",
+		"reason":   "deadspace: derive dead-space values from blood gases and ventilator readings",
+		"criteria": criteria,
+		"channel": map[string]any{
+			"type": "rest-hook", "endpoint": endpoint, "payload": "application/fhir+json", "header": []string{header},
+		},
+	}
+	for _, raw := range existing {
+		var cur struct {
+			ID     string `json:"id"`
+			Status string `json:"status"`
+		}
+		if json.Unmarshal(raw, &cur) != nil || cur.ID == "" {
+			continue
+		}
+		if cur.Status == "active" || cur.Status == "requested" {
+			s.log.InfoContext(ctx, "subscription already registered", "status", cur.Status)
+			return nil
+		}
+		sub["id"] = cur.ID
+		body, _ := json.Marshal(sub)
+		if _, _, err := s.client.Update(ctx, "Subscription", cur.ID, body, ""); err != nil {
+			return fmt.Errorf("register: re-activate: %w", err)
+		}
+		s.log.InfoContext(ctx, "subscription re-activated", "previous_status", cur.Status)
+		return nil
+	}
+	body, _ := json.Marshal(sub)
+	if _, _, err := s.client.Create(ctx, "Subscription", body); err != nil {
+		return fmt.Errorf("register: create: %w", err)
+	}
+	s.log.InfoContext(ctx, "subscription registered")
+	return nil
+}
+
+func (s *Service) searchCodes() []string {
+	return s.engine.SearchCodes()
+}
