@@ -4,6 +4,7 @@ go 1.26.0
 
 require (
 	bitbucket.org/creachadair/stringset v0.0.9 // indirect
+	github.com/go-jose/go-jose/v4 v4.1.9 // indirect
 	github.com/golang/protobuf v1.5.4 // indirect
 	github.com/google/fhir/go v0.7.4 // indirect
 	github.com/json-iterator/go v1.1.12 // indirect
