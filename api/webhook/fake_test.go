@@ -1,0 +1,77 @@
+package webhook_test
+
+import (
+	"context"
+	"encoding/json"
+	"sync"
+
+	"github.com/deadspace-fhir/deadspace/api/webhook"
+	"github.com/deadspace-fhir/deadspace/fhir/notify"
+)
+
+// fakeSink records calls and, unless an Fn says otherwise, accepts
+// everything. It does not check that resources are valid FHIR: that is the
+// engine's job, not the webhook's.
+type fakeSink struct {
+	ResourcesFn func(ctx context.Context, src webhook.Source, rs []json.RawMessage) (webhook.Receipt, error)
+	FetchFn     func(ctx context.Context, src webhook.Source, refs []string) error
+	StatusFn    func(ctx context.Context, src webhook.Source, n notify.Notification) error
+	ChangedFn   func(ctx context.Context, src webhook.Source) error
+
+	mu    sync.Mutex
+	calls []call
+}
+
+var _ webhook.Sink = (*fakeSink)(nil)
+
+type call struct {
+	method    string
+	src       webhook.Source
+	resources []json.RawMessage
+	refs      []string
+	n         notify.Notification
+}
+
+func (f *fakeSink) record(c call) {
+	f.mu.Lock()
+	defer f.mu.Unlock()
+	f.calls = append(f.calls, c)
+}
+
+func (f *fakeSink) Calls() []call {
+	f.mu.Lock()
+	defer f.mu.Unlock()
+	return append([]call(nil), f.calls...)
+}
+
+func (f *fakeSink) Resources(ctx context.Context, src webhook.Source, rs []json.RawMessage) (webhook.Receipt, error) {
+	f.record(call{method: "Resources", src: src, resources: rs})
+	if f.ResourcesFn != nil {
+		return f.ResourcesFn(ctx, src, rs)
+	}
+	return webhook.Receipt{Accepted: len(rs)}, nil
+}
+
+func (f *fakeSink) Fetch(ctx context.Context, src webhook.Source, refs []string) error {
+	f.record(call{method: "Fetch", src: src, refs: refs})
+	if f.FetchFn != nil {
+		return f.FetchFn(ctx, src, refs)
+	}
+	return nil
+}
+
+func (f *fakeSink) Status(ctx context.Context, src webhook.Source, n notify.Notification) error {
+	f.record(call{method: "Status", src: src, n: n})
+	if f.StatusFn != nil {
+		return f.StatusFn(ctx, src, n)
+	}
+	return nil
+}
+
+func (f *fakeSink) Changed(ctx context.Context, src webhook.Source) error {
+	f.record(call{method: "Changed", src: src})
+	if f.ChangedFn != nil {
+		return f.ChangedFn(ctx, src)
+	}
+	return nil
+}

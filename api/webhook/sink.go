@@ -1,0 +1,76 @@
+package webhook
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+
+	"github.com/deadspace-fhir/deadspace/fhir/notify"
+)
+
+// Sink receives what the webhook accepted. Every method returns only after
+// what it was given is durably stored, so a 2xx answer means nothing is lost.
+//
+// Senders retry whatever was not acknowledged, and a request may fail after
+// some of its calls succeeded, so every method must accept the same content
+// again without harm.
+type Sink interface {
+	// Resources takes FHIR resources (raw JSON, each an object with a
+	// resourceType) delivered in full.
+	Resources(ctx context.Context, src Source, resources []json.RawMessage) (Receipt, error)
+	// Fetch records references to resources that must be read from the
+	// FHIR server (id-only content). References are as the sender wrote
+	// them, possibly absolute or versioned; see [notify.RelativeRef].
+	Fetch(ctx context.Context, src Source, refs []string) error
+	// Status records a notification's status part (counters, type) for gap
+	// detection.
+	Status(ctx context.Context, src Source, n notify.Notification) error
+	// Changed records that something changed without saying what (classic
+	// empty rest-hook POST).
+	Changed(ctx context.Context, src Source) error
+}
+
+// Source says how a request arrived.
+type Source struct {
+	// Mode is ModeNotification, ModeRestHook or ModeRestHookPut.
+	Mode string
+	// RequestID is the request's id, echoed in X-Request-Id.
+	RequestID string
+}
+
+// Delivery modes.
+const (
+	// ModeNotification: a topic-based notification Bundle (R4 backport,
+	// R4B, R5).
+	ModeNotification = "notification"
+	// ModeRestHook: a classic R4 rest-hook POST to the endpoint itself:
+	// empty, a single resource, or a non-notification Bundle.
+	ModeRestHook = "rest-hook"
+	// ModeRestHookPut: a classic R4 rest-hook with payload, addressed to
+	// [endpoint]/[type]/[id].
+	ModeRestHookPut = "rest-hook-put"
+)
+
+// Receipt is what [Sink.Resources] did with the resources it was given.
+type Receipt struct {
+	Accepted int
+	Rejected []Rejection
+}
+
+// Rejection is a resource the sink will not use. Rejections are permanent:
+// the webhook still answers 200, because sending the same resource again
+// would not change the answer.
+type Rejection struct {
+	// Index is the resource's position in the slice given to Resources.
+	Index int
+	// Reason is a short code from the engine's vocabulary.
+	Reason string
+	// Detail is a human explanation. It is sent back to the FHIR server
+	// but never logged.
+	Detail string
+}
+
+// ErrInvalid is wrapped by a Sink error that blames the request: the
+// webhook answers 400 with the error's text, and the sender should not
+// retry. Any other Sink error is taken as transient and answered 503.
+var ErrInvalid = errors.New("invalid content")

@@ -1,0 +1,556 @@
+package webhook
+
+import (
+	"bytes"
+	"context"
+	"crypto/rand"
+	"crypto/sha256"
+	"crypto/subtle"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"mime"
+	"net/http"
+	"net/textproto"
+	"strings"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/fhir/notify"
+)
+
+// DefaultMaxBodyBytes is the body limit when Config.MaxBodyBytes is 0.
+const DefaultMaxBodyBytes = 4 << 20
+
+// MinSecretLen is the shortest secret New accepts.
+const MinSecretLen = 16
+
+// Config configures [New].
+type Config struct {
+	// Sink receives what the webhook accepts. Required.
+	Sink Sink
+	// Secret is the shared secret the FHIR server sends with every request
+	// (Subscription.channel.header). Required, at least MinSecretLen bytes.
+	Secret string
+	// Header is the request header that carries the secret, "Authorization"
+	// by default. With Authorization the value is "Bearer <secret>"; with
+	// any other header the value is the secret itself.
+	Header string
+	// MaxBodyBytes limits the request body; 0 means DefaultMaxBodyBytes.
+	MaxBodyBytes int64
+	// Prefix is the path the handler answers under, "/notify" by default.
+	Prefix string
+	// Logger receives one line per request; nil means slog.Default().
+	Logger *slog.Logger
+	// Now is the clock for the elapsed time in log lines; nil means time.Now.
+	Now func() time.Time
+}
+
+// Handler is the webhook. Build it with [New].
+type Handler struct {
+	sink    Sink
+	secret  [sha256.Size]byte
+	header  string
+	bearer  bool
+	maxBody int64
+	prefix  string
+	log     *slog.Logger
+	now     func() time.Time
+}
+
+// New checks cfg and builds the handler. It refuses a missing or short
+// secret: the endpoint accepts clinical data, and there is deliberately no
+// switch to run it unauthenticated, not even for tests.
+func New(cfg Config) (*Handler, error) {
+	var errs []error
+	if cfg.Sink == nil {
+		errs = append(errs, errors.New("webhook: Sink is required"))
+	}
+	switch {
+	case cfg.Secret == "":
+		errs = append(errs, errors.New("webhook: Secret is required"))
+	case len(cfg.Secret) < MinSecretLen:
+		errs = append(errs, fmt.Errorf("webhook: Secret must be at least %d bytes, got %d", MinSecretLen, len(cfg.Secret)))
+	case strings.TrimSpace(cfg.Secret) != cfg.Secret || strings.ContainsAny(cfg.Secret, "\r\n\x00"):
+		// net/http trims header values, so such a secret could never match.
+		errs = append(errs, errors.New("webhook: Secret must not start or end with white space or hold control characters"))
+	}
+	h := &Handler{
+		sink:    cfg.Sink,
+		secret:  sha256.Sum256([]byte(cfg.Secret)),
+		header:  textproto.CanonicalMIMEHeaderKey(cfg.Header),
+		maxBody: cfg.MaxBodyBytes,
+		prefix:  strings.TrimRight(cfg.Prefix, "/"),
+		log:     cfg.Logger,
+		now:     cfg.Now,
+	}
+	if h.header == "" {
+		h.header = "Authorization"
+	} else if !isToken(h.header) {
+		errs = append(errs, errors.New("webhook: Header is not a valid header name"))
+	}
+	h.bearer = h.header == "Authorization"
+	if h.maxBody == 0 {
+		h.maxBody = DefaultMaxBodyBytes
+	} else if h.maxBody < 0 {
+		errs = append(errs, fmt.Errorf("webhook: MaxBodyBytes must be >= 0, got %d", h.maxBody))
+	}
+	if cfg.Prefix == "" {
+		h.prefix = "/notify"
+	} else if !strings.HasPrefix(h.prefix, "/") {
+		errs = append(errs, errors.New(`webhook: Prefix must start with "/"`))
+	}
+	if h.log == nil {
+		h.log = slog.Default()
+	}
+	if h.now == nil {
+		h.now = time.Now
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+	return h, nil
+}
+
+// result is what one request did, for the response and the log line.
+type result struct {
+	mode     string
+	ntype    notify.Type
+	content  notify.Content
+	events   int
+	offered  int // resources given to the sink
+	receipt  Receipt
+	fetch    int
+	unusable int // focus references that name no readable resource
+	status   bool
+	changed  bool
+}
+
+// route is a path template, logged instead of the path because the path
+// holds a resource id.
+type route string
+
+// Routes, relative to Config.Prefix.
+const (
+	routeRoot    route = "/"
+	routeTyped   route = "/{type}/{id}"
+	routeUnknown route = "other"
+)
+
+func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	start := h.now()
+	id := requestID(r.Header.Get("X-Request-Id"))
+	w.Header().Set("X-Request-Id", id)
+	log := h.log.With("request_id", id)
+
+	rt, typ, rid := h.route(r.URL.Path)
+	res, err := h.serve(r, id, rt, typ, rid)
+	code := http.StatusOK
+	if err != nil {
+		var out outcome
+		code, out = answer(err)
+		for k, v := range out.headers {
+			w.Header().Set(k, v)
+		}
+		writeOutcome(w, code, out.issues)
+	} else {
+		writeOutcome(w, code, res.issues())
+	}
+
+	attrs := []any{"method", r.Method, "route", string(rt), "status", code,
+		"elapsed", h.now().Sub(start)}
+	if res.mode != "" {
+		attrs = append(attrs, "mode", res.mode)
+	}
+	if res.ntype != "" {
+		attrs = append(attrs, "notification_type", string(res.ntype), "content", string(res.content), "events", res.events)
+	}
+	if res.offered > 0 {
+		attrs = append(attrs, "accepted", res.receipt.Accepted, "rejected", len(res.receipt.Rejected))
+	}
+	if res.fetch > 0 {
+		attrs = append(attrs, "fetch", res.fetch)
+	}
+	switch {
+	case code >= 500:
+		// Sink errors are the engine's own text, which by project rule holds
+		// no patient identifiers; 4xx texts go to the sender only.
+		log.ErrorContext(r.Context(), "webhook request failed", append(attrs, "err", err)...)
+	case code >= 400:
+		log.WarnContext(r.Context(), "webhook request refused", attrs...)
+	default:
+		log.InfoContext(r.Context(), "webhook request", attrs...)
+	}
+}
+
+func (h *Handler) route(path string) (rt route, typ, id string) {
+	if path == h.prefix || path == h.prefix+"/" {
+		return routeRoot, "", ""
+	}
+	rest, ok := strings.CutPrefix(path, h.prefix+"/")
+	if !ok {
+		return routeUnknown, "", ""
+	}
+	typ, id, ok = strings.Cut(rest, "/")
+	if !ok || typ == "" || id == "" || strings.Contains(id, "/") {
+		return routeUnknown, "", ""
+	}
+	return routeTyped, typ, id
+}
+
+// serve does the work; every failure comes back as an error for answer.
+func (h *Handler) serve(r *http.Request, id string, rt route, typ, rid string) (result, error) {
+	// Authentication comes before anything that depends on the request, so
+	// an unauthenticated caller learns nothing about paths or formats.
+	if !h.authorized(r.Header) {
+		return result{}, &requestError{status: http.StatusUnauthorized, code: "login",
+			msg: "missing or wrong credentials", authenticate: true}
+	}
+	var allow string
+	switch rt {
+	case routeRoot:
+		allow = "POST, PUT"
+	case routeTyped:
+		allow = "PUT, POST"
+	default:
+		return result{}, &requestError{status: http.StatusNotFound, code: "not-found",
+			msg: "no such endpoint: use " + h.prefix + " or " + h.prefix + "/{type}/{id}"}
+	}
+	if r.Method != http.MethodPost && r.Method != http.MethodPut {
+		return result{}, &requestError{status: http.StatusMethodNotAllowed, code: "not-supported",
+			msg: "method not allowed", allow: allow}
+	}
+	body, err := h.readBody(r)
+	if err != nil {
+		return result{}, err
+	}
+	ctx := r.Context()
+	if rt == routeTyped {
+		return h.typed(ctx, id, typ, rid, body)
+	}
+	return h.root(ctx, id, body)
+}
+
+func (h *Handler) authorized(hd http.Header) bool {
+	vals := hd.Values(h.header)
+	if len(vals) != 1 {
+		return false
+	}
+	got := strings.TrimSpace(vals[0])
+	if h.bearer {
+		scheme, cred, ok := strings.Cut(got, " ")
+		if !ok || !strings.EqualFold(scheme, "Bearer") {
+			return false
+		}
+		got = strings.TrimSpace(cred)
+	}
+	// Comparing digests keeps the comparison constant-time in the length
+	// of the secret as well as its content.
+	sum := sha256.Sum256([]byte(got))
+	return subtle.ConstantTimeCompare(sum[:], h.secret[:]) == 1
+}
+
+func (h *Handler) readBody(r *http.Request) ([]byte, error) {
+	tooBig := &requestError{status: http.StatusRequestEntityTooLarge, code: "too-costly",
+		msg: fmt.Sprintf("body larger than %d bytes", h.maxBody)}
+	if r.ContentLength > h.maxBody {
+		return nil, tooBig
+	}
+	if ce := r.Header.Get("Content-Encoding"); ce != "" && !strings.EqualFold(ce, "identity") {
+		return nil, &requestError{status: http.StatusUnsupportedMediaType, code: "not-supported",
+			msg: "content encodings are not supported"}
+	}
+	var body []byte
+	if r.Body != nil {
+		var err error
+		body, err = io.ReadAll(http.MaxBytesReader(nil, r.Body, h.maxBody))
+		if err != nil {
+			if _, ok := errors.AsType[*http.MaxBytesError](err); ok {
+				return nil, tooBig
+			}
+			return nil, &requestError{status: http.StatusBadRequest, code: "incomplete", msg: "could not read the body"}
+		}
+	}
+	// The media type matters only when there is something to interpret:
+	// classic servers send the empty "go and search" POST with whatever
+	// Content-Type they have.
+	if len(bytes.TrimSpace(body)) > 0 {
+		if err := checkMediaType(r.Header.Get("Content-Type")); err != nil {
+			return nil, err
+		}
+	}
+	return body, nil
+}
+
+// checkMediaType accepts FHIR JSON under its R4 name, plain JSON, and the
+// DSTU2 name application/json+fhir that older servers still send.
+func checkMediaType(ct string) error {
+	if ct == "" {
+		return nil
+	}
+	unsupported := &requestError{status: http.StatusUnsupportedMediaType, code: "not-supported",
+		msg: "Content-Type must be application/fhir+json or application/json"}
+	mt, params, err := mime.ParseMediaType(ct)
+	if err != nil {
+		return unsupported
+	}
+	switch mt {
+	case "application/fhir+json", "application/json", "application/json+fhir":
+	default:
+		return unsupported
+	}
+	if cs, ok := params["charset"]; ok && !strings.EqualFold(cs, "utf-8") && !strings.EqualFold(cs, "utf8") {
+		return &requestError{status: http.StatusUnsupportedMediaType, code: "not-supported", msg: "charset must be UTF-8"}
+	}
+	return nil
+}
+
+type head struct {
+	ResourceType *string `json:"resourceType"`
+	ID           *string `json:"id"`
+}
+
+// classify reads the body's resourceType and id. empty is true for a
+// blank body and for "{}", which some servers send instead of nothing.
+func classify(body []byte) (h head, empty bool, err error) {
+	t := bytes.TrimSpace(body)
+	if len(t) == 0 {
+		return head{}, true, nil
+	}
+	if !json.Valid(t) {
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not valid JSON"}
+	}
+	if t[0] != '{' {
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
+	}
+	var m map[string]json.RawMessage
+	if err := json.Unmarshal(t, &m); err != nil {
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
+	}
+	if len(m) == 0 {
+		return head{}, true, nil
+	}
+	if err := json.Unmarshal(t, &h); err != nil || h.ResourceType == nil || *h.ResourceType == "" {
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
+			msg: "body is not a FHIR resource: no resourceType"}
+	}
+	return h, false, nil
+}
+
+func (h *Handler) root(ctx context.Context, id string, body []byte) (result, error) {
+	res := result{mode: ModeRestHook}
+	src := Source{Mode: ModeRestHook, RequestID: id}
+	hd, empty, err := classify(body)
+	if err != nil {
+		return res, err
+	}
+	if empty {
+		res.changed = true
+		return res, h.sink.Changed(ctx, src)
+	}
+	if *hd.ResourceType != "Bundle" {
+		// Some servers POST the changed resource itself to the endpoint.
+		return res, h.resources(ctx, src, &res, []json.RawMessage{bytes.TrimSpace(body)})
+	}
+	n, err := notify.Parse(body)
+	switch {
+	case err == nil:
+		return h.notification(ctx, id, n)
+	case errors.Is(err, notify.ErrNotNotification):
+		return res, h.bundle(ctx, src, &res, body)
+	default:
+		return res, &requestError{status: http.StatusBadRequest, code: "invalid", msg: err.Error()}
+	}
+}
+
+// notification stores a topic-based notification. The status is recorded
+// last: if storing the content fails, the counters stay behind, so the next
+// notification shows a gap instead of the loss going unseen.
+func (h *Handler) notification(ctx context.Context, id string, n notify.Notification) (result, error) {
+	src := Source{Mode: ModeNotification, RequestID: id}
+	res := result{mode: ModeNotification, ntype: n.Type, content: n.Content, events: len(n.Events)}
+	if n.Type != notify.TypeHandshake && n.Type != notify.TypeHeartbeat {
+		if len(n.Resources) > 0 {
+			rs := make([]json.RawMessage, len(n.Resources))
+			for i, e := range n.Resources {
+				rs[i] = e.Resource
+			}
+			if err := h.resources(ctx, src, &res, rs); err != nil {
+				return res, err
+			}
+		}
+		var refs []string
+		seen := map[string]bool{}
+		for _, ev := range n.Events {
+			if ev.Focus == "" || ev.Resource != nil || seen[ev.Focus] {
+				continue
+			}
+			seen[ev.Focus] = true
+			// The IG lets a focus name "a non-FHIR object"; nothing can be
+			// read for those.
+			if _, _, ok := notify.RelativeRef(ev.Focus, ""); !ok {
+				res.unusable++
+				continue
+			}
+			refs = append(refs, ev.Focus)
+		}
+		if len(refs) > 0 {
+			res.fetch = len(refs)
+			if err := h.sink.Fetch(ctx, src, refs); err != nil {
+				return res, fmt.Errorf("webhook: fetch: %w", err)
+			}
+		}
+		// Empty content (or focus references nobody can read) says only that
+		// events happened: the engine has to go and search.
+		if res.offered == 0 && res.fetch == 0 && (n.Type == notify.TypeEvent || n.Type == notify.TypeQueryEvent || res.unusable > 0) {
+			res.changed = true
+			if err := h.sink.Changed(ctx, src); err != nil {
+				return res, fmt.Errorf("webhook: changed: %w", err)
+			}
+		}
+	}
+	res.status = true
+	if err := h.sink.Status(ctx, src, n); err != nil {
+		return res, fmt.Errorf("webhook: status: %w", err)
+	}
+	return res, nil
+}
+
+type rawBundle struct {
+	Entry []struct {
+		Resource json.RawMessage `json:"resource"`
+	} `json:"entry"`
+}
+
+// bundle takes the resources of a Bundle that is not a notification
+// (batch, transaction, searchset, collection, plain history): some servers
+// forward what they stored that way. Entries without a resource (deletes,
+// id-only history entries) say only that something changed.
+func (h *Handler) bundle(ctx context.Context, src Source, res *result, body []byte) error {
+	var b rawBundle
+	if err := json.Unmarshal(body, &b); err != nil {
+		return &requestError{status: http.StatusBadRequest, code: "structure", msg: "Bundle.entry is not a list of entries"}
+	}
+	var rs []json.RawMessage
+	for i, e := range b.Entry {
+		t := bytes.TrimSpace(e.Resource)
+		if len(t) == 0 || bytes.Equal(t, []byte("null")) {
+			continue
+		}
+		hd, empty, err := classify(t)
+		if err != nil || empty || hd.ResourceType == nil {
+			return &requestError{status: http.StatusBadRequest, code: "structure",
+				msg: fmt.Sprintf("Bundle.entry[%d].resource is not a FHIR resource", i)}
+		}
+		rs = append(rs, t)
+	}
+	if len(rs) == 0 {
+		res.changed = true
+		return h.sink.Changed(ctx, src)
+	}
+	return h.resources(ctx, src, res, rs)
+}
+
+func (h *Handler) resources(ctx context.Context, src Source, res *result, rs []json.RawMessage) error {
+	res.offered = len(rs)
+	rc, err := h.sink.Resources(ctx, src, rs)
+	if err != nil {
+		return fmt.Errorf("webhook: resources: %w", err)
+	}
+	res.receipt = rc
+	return nil
+}
+
+// typed handles [prefix]/[type]/[id], where a classic R4 rest-hook with a
+// payload PUTs the resource ("the URL is interpreted as the service base,
+// and an update (PUT) is made", R4 subscription-channel-type rest-hook).
+func (h *Handler) typed(ctx context.Context, id, typ, rid string, body []byte) (result, error) {
+	res := result{mode: ModeRestHookPut}
+	src := Source{Mode: ModeRestHookPut, RequestID: id}
+	if typ != "Observation" && typ != "Patient" {
+		return res, &requestError{status: http.StatusBadRequest, code: "not-supported",
+			msg: "only Observation and Patient resources are accepted here"}
+	}
+	if !validID(rid) {
+		return res, &requestError{status: http.StatusBadRequest, code: "value", msg: "the id in the path is not a FHIR id"}
+	}
+	hd, empty, err := classify(body)
+	if err != nil {
+		return res, err
+	}
+	if empty {
+		// A PUT without a body still says exactly what changed.
+		res.fetch = 1
+		if err := h.sink.Fetch(ctx, src, []string{typ + "/" + rid}); err != nil {
+			return res, fmt.Errorf("webhook: fetch: %w", err)
+		}
+		return res, nil
+	}
+	article := "a"
+	if typ == "Observation" {
+		article = "an"
+	}
+	if *hd.ResourceType != typ {
+		return res, &requestError{status: http.StatusBadRequest, code: "invalid",
+			msg: fmt.Sprintf("expected %s %s", article, typ)}
+	}
+	// R4 update: the body's id must be present and equal the id in the URL
+	// (https://hl7.org/fhir/R4/http.html#update).
+	if hd.ID == nil || *hd.ID == "" {
+		return res, &requestError{status: http.StatusBadRequest, code: "required", msg: "the resource has no id"}
+	}
+	if *hd.ID != rid {
+		return res, &requestError{status: http.StatusBadRequest, code: "invalid", msg: "the resource id does not match the id in the path"}
+	}
+	return res, h.resources(ctx, src, &res, []json.RawMessage{bytes.TrimSpace(body)})
+}
+
+// requestID keeps a caller's X-Request-Id when it is a plain token, so
+// that it can be logged and echoed safely, and otherwise makes one.
+func requestID(in string) string {
+	if len(in) > 0 && len(in) <= 128 {
+		ok := true
+		for i := 0; i < len(in); i++ {
+			c := in[i]
+			if !(c >= 'a' && c <= 'z' || c >= 'A' && c <= 'Z' || c >= '0' && c <= '9' || c == '-' || c == '_' || c == '.') {
+				ok = false
+				break
+			}
+		}
+		if ok {
+			return in
+		}
+	}
+	var b [16]byte
+	_, _ = rand.Read(b[:]) // crypto/rand.Read never fails since Go 1.24
+	return hex.EncodeToString(b[:])
+}
+
+func validID(s string) bool {
+	if len(s) == 0 || len(s) > 64 {
+		return false
+	}
+	for i := 0; i < len(s); i++ {
+		c := s[i]
+		if !(c >= 'a' && c <= 'z' || c >= 'A' && c <= 'Z' || c >= '0' && c <= '9' || c == '-' || c == '.') {
+			return false
+		}
+	}
+	return true
+}
+
+// isToken checks an RFC 9110 field name.
+func isToken(s string) bool {
+	if s == "" {
+		return false
+	}
+	for i := 0; i < len(s); i++ {
+		c := s[i]
+		if !(c >= 'a' && c <= 'z' || c >= 'A' && c <= 'Z' || c >= '0' && c <= '9' || strings.IndexByte("!#$%&'*+-.^_`|~", c) >= 0) {
+			return false
+		}
+	}
+	return true
+}
