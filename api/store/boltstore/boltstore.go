@@ -1,0 +1,289 @@
+// Package boltstore is the embedded [store.Store]: one bbolt file, written
+// by one process, every method one bbolt transaction, every change synced
+// to disk before the method returns.
+//
+// # Layout
+//
+// Top-level buckets, with their keys (⧺ is concatenation, 0 the byte 0x00
+// that ends a subject, t a 12-byte time key whose byte order is time
+// order, n an 8-byte big-endian number):
+//
+//	meta            "schema" → n, and the counters Stats reads
+//	inputs          subject 0 logical → input          (Inputs: prefix scan)
+//	inputs_by_time  t(EffectiveAt) ⧺ subject 0 logical → ∅  (Prune)
+//	patients        subject → patient facts
+//	dirty           subject → since, generation  (bucket sequence = generation)
+//	ledger          series → entry
+//	ledger_by_subj  subject 0 series → ∅             (Ledger)
+//	ledger_by_time  subject 0 t(EffectiveAt) ⧺ series → ∅  (EntriesBetween)
+//	ledger_by_key   key → series, for the current and every previous key
+//	outbox          n(write id) → write  (bucket sequence = write ids)
+//	dead            n(burial sequence) → dead letter
+//	cursors         name → value
+//	subscriptions   subscription → n(highest event number)
+//	feed            n(Seq) → event  (bucket sequence = Seq)
+//
+// DueWrites scans the outbox in id order instead of keeping an index by
+// NotBefore: the outbox holds only unacknowledged writes, each record
+// starts with its NotBefore, so writes that are not due are skipped
+// without decoding their bodies, and the scan returns them in the order
+// the spec asks for (oldest first) with no sort.
+//
+// Stats reads three counters kept in meta and updated in the same
+// transaction as the change they count, so it costs three reads however
+// large the outbox or the dead letters grow.
+//
+// Generations come from one sequence shared by all patients. They are
+// therefore strictly increasing per patient, as [store.Dirty] asks, and a
+// patient whose mark was cleared never gets back a generation an
+// evaluation still in flight may hold.
+package boltstore
+
+import (
+	"context"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"os"
+	"path/filepath"
+	"time"
+
+	bolt "go.etcd.io/bbolt"
+	bolterrors "go.etcd.io/bbolt/errors"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+var _ store.Store = (*Store)(nil)
+
+// schemaVersion is the layout this build writes. Raise it with every
+// change to a bucket or a record layout, and add the migration to
+// migrate.
+const schemaVersion = 1
+
+// Errors of Open, to be matched with errors.Is.
+var (
+	// ErrLocked means another process holds the file open.
+	ErrLocked = errors.New("boltstore: file is locked by another process")
+	// ErrCorrupt means the file is not a readable store.
+	ErrCorrupt = errors.New("boltstore: file is corrupt or not a store")
+	// ErrNewerSchema means the file was written by a newer build.
+	ErrNewerSchema = errors.New("boltstore: file has a newer schema version")
+)
+
+// DefaultTimeout is how long Open waits for the file lock when
+// Options.Timeout is zero. It is short so that a second process started by
+// mistake fails with ErrLocked instead of hanging.
+const DefaultTimeout = 5 * time.Second
+
+// Options tune Open.
+type Options struct {
+	// Timeout is how long to wait for the file lock (DefaultTimeout when
+	// zero).
+	Timeout time.Duration
+	// NoSync skips fsync on commit. It breaks the durability the store
+	// promises and exists only for benchmarks.
+	NoSync bool
+}
+
+// Store is the bbolt implementation of [store.Store].
+type Store struct {
+	db *bolt.DB
+}
+
+var (
+	bMeta         = []byte("meta")
+	bInputs       = []byte("inputs")
+	bInputsByTime = []byte("inputs_by_time")
+	bPatients     = []byte("patients")
+	bDirty        = []byte("dirty")
+	bLedger       = []byte("ledger")
+	bLedgerBySubj = []byte("ledger_by_subj")
+	bLedgerByTime = []byte("ledger_by_time")
+	bLedgerByKey  = []byte("ledger_by_key")
+	bOutbox       = []byte("outbox")
+	bDead         = []byte("dead")
+	bCursors      = []byte("cursors")
+	bSubs         = []byte("subscriptions")
+	bFeed         = []byte("feed")
+
+	allBuckets = [][]byte{
+		bMeta, bInputs, bInputsByTime, bPatients, bDirty, bLedger,
+		bLedgerBySubj, bLedgerByTime, bLedgerByKey, bOutbox, bDead,
+		bCursors, bSubs, bFeed,
+	}
+
+	kSchema = []byte("schema")
+	// Counters read by Stats.
+	kOutboxN = []byte("outbox_n")
+	kDeadN   = []byte("dead_n")
+	kDirtyN  = []byte("dirty_n")
+)
+
+// Open opens or creates the store file at path, creating its directory
+// (0700) and the file (0600) when missing.
+func Open(path string, opts Options) (*Store, error) {
+	if opts.Timeout <= 0 {
+		opts.Timeout = DefaultTimeout
+	}
+	if err := os.MkdirAll(filepath.Dir(path), 0o700); err != nil {
+		return nil, fmt.Errorf("boltstore.Open: %w", err)
+	}
+	db, err := openDB(path, opts)
+	if err != nil {
+		return nil, err
+	}
+	s := &Store{db: db}
+	if err := s.init(); err != nil {
+		_ = db.Close()
+		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
+	}
+	return s, nil
+}
+
+func openDB(path string, opts Options) (db *bolt.DB, err error) {
+	// bbolt validates the meta pages on open but trusts the freelist,
+	// and panics on a damaged one; a damaged file must be an error the
+	// operator can read, not a crash loop.
+	defer func() {
+		if r := recover(); r != nil {
+			db, err = nil, fmt.Errorf("boltstore.Open: %s: %w: %v", path, ErrCorrupt, r)
+		}
+	}()
+	db, err = bolt.Open(path, 0o600, &bolt.Options{Timeout: opts.Timeout, NoSync: opts.NoSync})
+	switch {
+	case err == nil:
+		return db, nil
+	case errors.Is(err, bolterrors.ErrTimeout):
+		return nil, fmt.Errorf("boltstore.Open: %s (waited %v): %w: %w", path, opts.Timeout, ErrLocked, err)
+	case errors.Is(err, bolterrors.ErrInvalid), errors.Is(err, bolterrors.ErrChecksum),
+		errors.Is(err, bolterrors.ErrVersionMismatch), errors.Is(err, bolterrors.ErrInvalidMapping):
+		return nil, fmt.Errorf("boltstore.Open: %s: %w: %w", path, ErrCorrupt, err)
+	default:
+		// bbolt reports a file too short to hold its meta pages with an
+		// unexported error; it is damage too, but os errors (permission)
+		// are not, so tell them apart.
+		var pe *os.PathError
+		if errors.As(err, &pe) {
+			return nil, fmt.Errorf("boltstore.Open: %w", err)
+		}
+		return nil, fmt.Errorf("boltstore.Open: %s: %w: %w", path, ErrCorrupt, err)
+	}
+}
+
+// init creates the buckets of a new file, or checks the schema version of
+// an existing one.
+func (s *Store) init() error {
+	return s.db.Update(func(tx *bolt.Tx) error {
+		meta := tx.Bucket(bMeta)
+		if meta == nil {
+			// A file with buckets but no meta was written by something
+			// else; adding ours beside them would hide the mistake.
+			if err := tx.ForEach(func(name []byte, _ *bolt.Bucket) error {
+				return fmt.Errorf("%w: unknown bucket %q and no schema version", ErrCorrupt, name)
+			}); err != nil {
+				return err
+			}
+			for _, name := range allBuckets {
+				if _, err := tx.CreateBucket(name); err != nil {
+					return fmt.Errorf("create bucket %s: %w", name, err)
+				}
+			}
+			return tx.Bucket(bMeta).Put(kSchema, u64(schemaVersion))
+		}
+		v := meta.Get(kSchema)
+		if len(v) != 8 {
+			return fmt.Errorf("%w: schema version missing", ErrCorrupt)
+		}
+		version := binary.BigEndian.Uint64(v)
+		if version > schemaVersion {
+			return fmt.Errorf("%w: file has version %d, this build knows up to %d", ErrNewerSchema, version, schemaVersion)
+		}
+		return migrate(tx, version)
+	})
+}
+
+// migrate brings a file of an older schema version up to date. There is
+// only version 1 so far; the check that every bucket exists catches a
+// file damaged by hand.
+func migrate(tx *bolt.Tx, from uint64) error {
+	_ = from
+	for _, name := range allBuckets {
+		if tx.Bucket(name) == nil {
+			return fmt.Errorf("%w: bucket %s missing", ErrCorrupt, name)
+		}
+	}
+	return nil
+}
+
+// Close releases the file. It waits for transactions in progress.
+func (s *Store) Close() error {
+	if err := s.db.Close(); err != nil {
+		return fmt.Errorf("boltstore.Close: %w", err)
+	}
+	return nil
+}
+
+// update runs fn in a read-write transaction after checking ctx, and
+// prefixes errors with the operation name.
+func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) error) error {
+	if err := ctx.Err(); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	if err := s.db.Update(fn); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	return nil
+}
+
+func (s *Store) view(ctx context.Context, op string, fn func(tx *bolt.Tx) error) error {
+	if err := ctx.Err(); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	if err := s.db.View(fn); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	return nil
+}
+
+func getU64(b *bolt.Bucket, k []byte) uint64 {
+	v := b.Get(k)
+	if len(v) != 8 {
+		return 0
+	}
+	return binary.BigEndian.Uint64(v)
+}
+
+// addCounter changes a Stats counter; it never goes below zero so that a
+// bug elsewhere shows as a wrong count, not as a huge one.
+func addCounter(tx *bolt.Tx, k []byte, delta int) error {
+	meta := tx.Bucket(bMeta)
+	n := int64(getU64(meta, k)) + int64(delta)
+	if n < 0 {
+		n = 0
+	}
+	return meta.Put(k, u64(uint64(n)))
+}
+
+func checkSubject(subject string) error {
+	if subject == "" {
+		return errors.New("empty subject")
+	}
+	for i := range len(subject) {
+		if subject[i] == sep {
+			return errors.New("subject contains a NUL byte")
+		}
+	}
+	return nil
+}
+
+func checkLimit(limit int) error {
+	if limit <= 0 {
+		return fmt.Errorf("limit %d: must be positive", limit)
+	}
+	return nil
+}
+
+// notFound names the kind of record only: errors reach logs, and subjects,
+// references and series identify patients.
+func notFound(what string) error { return fmt.Errorf("%s: %w", what, store.ErrNotFound) }

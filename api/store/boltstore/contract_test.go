@@ -1,0 +1,121 @@
+package boltstore
+
+import (
+	"bytes"
+	"encoding/binary"
+	"fmt"
+	"path/filepath"
+	"slices"
+	"testing"
+
+	bolt "go.etcd.io/bbolt"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/api/store/storetest"
+)
+
+// TestContract runs the shared contract, and after every case checks that
+// the indexes and counters agree with the records they are derived from:
+// the contract sees only results, and a stale index key can hide behind a
+// correct result until a later operation trips on it.
+func TestContract(t *testing.T) {
+	storetest.Run(t, func(t *testing.T) store.Store {
+		s, err := Open(filepath.Join(t.TempDir(), "deadspace.db"), Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() {
+			if err := s.db.View(checkConsistent); err != nil {
+				t.Errorf("after %s: %v", t.Name(), err)
+			}
+			if err := s.Close(); err != nil {
+				t.Error(err)
+			}
+		})
+		return s
+	})
+}
+
+func keysOf(b *bolt.Bucket) [][]byte {
+	var ks [][]byte
+	_ = b.ForEach(func(k, _ []byte) error {
+		ks = append(ks, bytes.Clone(k))
+		return nil
+	})
+	return ks
+}
+
+func sameKeys(name string, got [][]byte, want [][]byte) error {
+	slices.SortFunc(want, bytes.Compare)
+	if !slices.EqualFunc(got, want, bytes.Equal) {
+		return fmt.Errorf("%s has %d keys %q, the records imply %d %q", name, len(got), got, len(want), want)
+	}
+	return nil
+}
+
+func checkConsistent(tx *bolt.Tx) error {
+	var want [][]byte
+	err := tx.Bucket(bInputs).ForEach(func(k, v []byte) error {
+		_, _, eff, err := decodeInputHead(v)
+		want = append(want, append(appendTimeKey(nil, eff), k...))
+		return err
+	})
+	if err != nil {
+		return err
+	}
+	if err := sameKeys("inputs_by_time", keysOf(tx.Bucket(bInputsByTime)), want); err != nil {
+		return err
+	}
+
+	var bySubj, byTime [][]byte
+	byKey := map[string]string{}
+	err = tx.Bucket(bLedger).ForEach(func(k, v []byte) error {
+		en, err := decodeEntry(string(k), v)
+		if err != nil {
+			return err
+		}
+		bySubj = append(bySubj, subjectKey(en.Subject, en.Series))
+		byTime = append(byTime, ledgerTimeKey(en))
+		for _, key := range append([]string{en.Key}, en.Revisions...) {
+			byKey[key] = en.Series
+		}
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	if err := sameKeys("ledger_by_subj", keysOf(tx.Bucket(bLedgerBySubj)), bySubj); err != nil {
+		return err
+	}
+	if err := sameKeys("ledger_by_time", keysOf(tx.Bucket(bLedgerByTime)), byTime); err != nil {
+		return err
+	}
+	err = tx.Bucket(bLedgerByKey).ForEach(func(k, v []byte) error {
+		if byKey[string(k)] != string(v) {
+			return fmt.Errorf("ledger_by_key %q → %q, the ledger says %q", k, v, byKey[string(k)])
+		}
+		delete(byKey, string(k))
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	if len(byKey) != 0 {
+		return fmt.Errorf("keys missing from ledger_by_key: %v", byKey)
+	}
+
+	meta := tx.Bucket(bMeta)
+	for _, c := range []struct {
+		counter []byte
+		bucket  []byte
+	}{{kOutboxN, bOutbox}, {kDeadN, bDead}, {kDirtyN, bDirty}} {
+		if got, want := getU64(meta, c.counter), uint64(tx.Bucket(c.bucket).Stats().KeyN); got != want {
+			return fmt.Errorf("counter %s = %d, bucket %s holds %d", c.counter, got, c.bucket, want)
+		}
+	}
+	feed := tx.Bucket(bFeed)
+	if k, _ := feed.Cursor().Last(); k != nil && binary.BigEndian.Uint64(k) != feed.Sequence() {
+		return fmt.Errorf("last feed key %d, sequence %d", binary.BigEndian.Uint64(k), feed.Sequence())
+	}
+	return nil
+}

@@ -1,0 +1,314 @@
+package boltstore
+
+import (
+	"bytes"
+	"cmp"
+	"context"
+	"fmt"
+	"slices"
+	"strings"
+	"time"
+
+	bolt "go.etcd.io/bbolt"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+// compareVersions orders two versions of one resource by the rule of
+// [store.Store.PutInputs]: later LastUpdated first; at equal instants,
+// version ids that are both decimal numbers compare as numbers (servers
+// that count versions write "9" before "10"), any others as strings. It
+// returns +1 when a is newer than b, -1 when older, 0 when neither is.
+func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
+	if c := aTime.Compare(bTime); c != 0 {
+		return c
+	}
+	if isDecimal(aID) && isDecimal(bID) {
+		// Compare as numbers of any length: no overflow at 20 digits.
+		a, b := strings.TrimLeft(aID, "0"), strings.TrimLeft(bID, "0")
+		if c := cmp.Compare(len(a), len(b)); c != 0 {
+			return c
+		}
+		return strings.Compare(a, b)
+	}
+	return strings.Compare(aID, bID)
+}
+
+func isDecimal(s string) bool {
+	if s == "" {
+		return false
+	}
+	for i := range len(s) {
+		if s[i] < '0' || s[i] > '9' {
+			return false
+		}
+	}
+	return true
+}
+
+func putResult(exists bool, c int) store.PutResult {
+	switch {
+	case !exists:
+		return store.PutNew
+	case c > 0:
+		return store.PutNewer
+	case c == 0:
+		return store.PutSame
+	default:
+		return store.PutOlder
+	}
+}
+
+// markDirty gives the patient a new generation and keeps the earliest
+// Since of the marks not yet cleared.
+func markDirty(tx *bolt.Tx, subject string, now time.Time) error {
+	b := tx.Bucket(bDirty)
+	gen, err := b.NextSequence()
+	if err != nil {
+		return fmt.Errorf("dirty generation: %w", err)
+	}
+	dt := store.Dirty{Subject: subject, Since: now, Generation: gen}
+	if v := b.Get([]byte(subject)); v != nil {
+		old, err := decodeDirty(subject, v)
+		if err != nil {
+			return err
+		}
+		if old.Since.Before(now) {
+			dt.Since = old.Since
+		}
+	} else if err := addCounter(tx, kDirtyN, 1); err != nil {
+		return err
+	}
+	return b.Put([]byte(subject), encodeDirty(dt))
+}
+
+// PutInputs stores the newer versions and marks their patients dirty,
+// each patient once per call.
+func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Time) ([]store.PutResult, error) {
+	results := make([]store.PutResult, len(inputs))
+	if len(inputs) == 0 {
+		if err := ctx.Err(); err != nil {
+			return nil, fmt.Errorf("boltstore.PutInputs: %w", err)
+		}
+		return results, nil
+	}
+	err := s.update(ctx, "PutInputs", func(tx *bolt.Tx) error {
+		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
+		var changed []string
+		for i, in := range inputs {
+			if err := checkSubject(in.Subject); err != nil {
+				return fmt.Errorf("input %d: %w", i, err)
+			}
+			if in.Logical == "" {
+				return fmt.Errorf("input %d: empty logical reference", i)
+			}
+			key := subjectKey(in.Subject, in.Logical)
+			var c int
+			old := b.Get(key)
+			if old != nil {
+				oldID, oldTime, oldEff, err := decodeInputHead(old)
+				if err != nil {
+					return fmt.Errorf("input %d: %w", i, err)
+				}
+				c = compareVersions(in.LastUpdated, in.VersionID, oldTime, oldID)
+				if c > 0 {
+					if err := byTime.Delete(append(appendTimeKey(nil, oldEff), key...)); err != nil {
+						return err
+					}
+				}
+			}
+			results[i] = putResult(old != nil, c)
+			if results[i] != store.PutNew && results[i] != store.PutNewer {
+				continue
+			}
+			if err := b.Put(key, encodeInput(in)); err != nil {
+				return err
+			}
+			if err := byTime.Put(append(appendTimeKey(nil, in.EffectiveAt), key...), nil); err != nil {
+				return err
+			}
+			if !slices.Contains(changed, in.Subject) {
+				changed = append(changed, in.Subject)
+			}
+		}
+		for _, subject := range changed {
+			if err := markDirty(tx, subject, now); err != nil {
+				return err
+			}
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return results, nil
+}
+
+// Inputs returns the patient's inputs by a prefix scan of subject+0.
+func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
+	var out []store.Input
+	err := s.view(ctx, "Inputs", func(tx *bolt.Tx) error {
+		prefix := subjectPrefix(subject)
+		c := tx.Bucket(bInputs).Cursor()
+		for k, v := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
+			in, err := decodeInput(subject, string(k[len(prefix):]), v)
+			if err != nil {
+				return err
+			}
+			out = append(out, in)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Input returns one stored input, or ErrNotFound.
+func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input, error) {
+	var in store.Input
+	err := s.view(ctx, "Input", func(tx *bolt.Tx) error {
+		v := tx.Bucket(bInputs).Get(subjectKey(subject, logical))
+		if v == nil {
+			return notFound("input")
+		}
+		var err error
+		in, err = decodeInput(subject, logical, v)
+		return err
+	})
+	return in, err
+}
+
+// PutPatient stores newer facts and marks the patient dirty. A fetch that
+// brings nothing newer still advances FetchedAt: it records when the
+// service last read the resource, and a caller refreshing stale facts
+// would otherwise fetch again and again.
+func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) (store.PutResult, error) {
+	var res store.PutResult
+	err := s.update(ctx, "PutPatient", func(tx *bolt.Tx) error {
+		if err := checkSubject(p.Subject); err != nil {
+			return err
+		}
+		b := tx.Bucket(bPatients)
+		key := []byte(p.Subject)
+		v := b.Get(key)
+		var c int
+		if v != nil {
+			old, err := decodePatient(p.Subject, v)
+			if err != nil {
+				return err
+			}
+			c = compareVersions(p.LastUpdated, p.VersionID, old.LastUpdated, old.VersionID)
+			if c <= 0 {
+				res = putResult(true, c)
+				if !p.FetchedAt.After(old.FetchedAt) {
+					return nil
+				}
+				old.FetchedAt = p.FetchedAt
+				return b.Put(key, encodePatient(old))
+			}
+		}
+		res = putResult(v != nil, c)
+		if err := b.Put(key, encodePatient(p)); err != nil {
+			return err
+		}
+		return markDirty(tx, p.Subject, now)
+	})
+	if err != nil {
+		return 0, err
+	}
+	return res, nil
+}
+
+// Patient returns stored facts, or ErrNotFound.
+func (s *Store) Patient(ctx context.Context, subject string) (store.Patient, error) {
+	var p store.Patient
+	err := s.view(ctx, "Patient", func(tx *bolt.Tx) error {
+		v := tx.Bucket(bPatients).Get([]byte(subject))
+		if v == nil {
+			return notFound("patient")
+		}
+		var err error
+		p, err = decodePatient(subject, v)
+		return err
+	})
+	return p, err
+}
+
+// MarkDirty always counts as a change: it is how a caller asks for one
+// more evaluation, so it must also defeat a Commit of an evaluation that
+// started before it.
+func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) error {
+	return s.update(ctx, "MarkDirty", func(tx *bolt.Tx) error {
+		if err := checkSubject(subject); err != nil {
+			return err
+		}
+		return markDirty(tx, subject, now)
+	})
+}
+
+// DirtyPatients lists the marks by Since, then Subject. The bucket holds
+// only patients awaiting evaluation, so it is read whole and sorted.
+func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
+	var out []store.Dirty
+	err := s.view(ctx, "DirtyPatients", func(tx *bolt.Tx) error {
+		return tx.Bucket(bDirty).ForEach(func(k, v []byte) error {
+			dt, err := decodeDirty(string(k), v)
+			if err != nil {
+				return err
+			}
+			out = append(out, dt)
+			return nil
+		})
+	})
+	if err != nil {
+		return nil, err
+	}
+	slices.SortStableFunc(out, func(a, b store.Dirty) int {
+		return cmp.Or(a.Since.Compare(b.Since), strings.Compare(a.Subject, b.Subject))
+	})
+	return out, nil
+}
+
+// Prune walks the EffectiveAt index up to the horizon. It rechecks each
+// input's own EffectiveAt so that an index key left behind by a bug can
+// never delete a newer version; such a key is removed.
+func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
+	var n int
+	err := s.update(ctx, "Prune", func(tx *bolt.Tx) error {
+		n = 0
+		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
+		var stale [][]byte
+		c := byTime.Cursor()
+		for k, _ := c.First(); k != nil && len(k) >= timeKeyLen && parseTimeKey(k).Before(horizon); k, _ = c.Next() {
+			stale = append(stale, bytes.Clone(k))
+		}
+		for _, k := range stale {
+			if err := byTime.Delete(k); err != nil {
+				return err
+			}
+			key := k[timeKeyLen:]
+			v := b.Get(key)
+			if v == nil {
+				continue
+			}
+			_, _, eff, err := decodeInputHead(v)
+			if err != nil {
+				return err
+			}
+			if !eff.Before(horizon) {
+				continue
+			}
+			if err := b.Delete(key); err != nil {
+				return err
+			}
+			n++
+		}
+		return nil
+	})
+	if err != nil {
+		return 0, err
+	}
+	return n, nil
+}

@@ -1,0 +1,298 @@
+package boltstore
+
+import (
+	"bytes"
+	"context"
+	"encoding/binary"
+	"fmt"
+	"math"
+	"time"
+
+	bolt "go.etcd.io/bbolt"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+// Commit applies one evaluation in one transaction. Entries are checked
+// one by one inside it, so an invalid entry after valid ones rolls back
+// everything before it.
+func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) error {
+	return s.update(ctx, "Commit", func(tx *bolt.Tx) error {
+		if err := checkSubject(change.Subject); err != nil {
+			return err
+		}
+		feed := tx.Bucket(bFeed)
+		for i, en := range change.Entries {
+			switch {
+			case en.Subject == "":
+				en.Subject = change.Subject
+			case en.Subject != change.Subject:
+				return fmt.Errorf("entry %d: subject differs from the change's", i)
+			}
+			if en.Series == "" || en.Key == "" {
+				return fmt.Errorf("entry %d: empty series or key", i)
+			}
+			en, err := upsertEntry(tx, en, now)
+			if err != nil {
+				return fmt.Errorf("entry %d: %w", i, err)
+			}
+			seq, err := feed.NextSequence()
+			if err != nil {
+				return fmt.Errorf("feed sequence: %w", err)
+			}
+			ev := store.Event{Seq: seq, Series: en.Series, Subject: en.Subject, Key: en.Key, Status: en.Status, At: now}
+			if err := feed.Put(u64(seq), encodeEvent(ev)); err != nil {
+				return err
+			}
+		}
+		outbox := tx.Bucket(bOutbox)
+		for _, w := range change.Writes {
+			id, err := outbox.NextSequence()
+			if err != nil {
+				return fmt.Errorf("write id: %w", err)
+			}
+			w.ID, w.CreatedAt = id, now
+			if w.NotBefore.IsZero() {
+				w.NotBefore = now
+			}
+			if w.Subject == "" {
+				w.Subject = change.Subject
+			}
+			if err := outbox.Put(u64(id), encodeWrite(w)); err != nil {
+				return err
+			}
+		}
+		if err := addCounter(tx, kOutboxN, len(change.Writes)); err != nil {
+			return err
+		}
+		dirty := tx.Bucket(bDirty)
+		v := dirty.Get([]byte(change.Subject))
+		if v == nil {
+			return nil
+		}
+		dt, err := decodeDirty(change.Subject, v)
+		if err != nil {
+			return err
+		}
+		if dt.Generation != change.Generation {
+			// A change arrived after the evaluation read its generation:
+			// the patient stays dirty so that change is evaluated too.
+			return nil
+		}
+		if err := dirty.Delete([]byte(change.Subject)); err != nil {
+			return err
+		}
+		return addCounter(tx, kDirtyN, -1)
+	})
+}
+
+// upsertEntry stores en and its index keys, replacing those of the version
+// it supersedes. The store keeps what it already knows: previous keys the
+// caller left out of Revisions are kept (EntryByKey must still find them),
+// and server ids stay until a caller sets new ones, since a corrected
+// value is an update of the same server resource.
+func upsertEntry(tx *bolt.Tx, en store.Entry, now time.Time) (store.Entry, error) {
+	ledger := tx.Bucket(bLedger)
+	bySubj, byTime, byKey := tx.Bucket(bLedgerBySubj), tx.Bucket(bLedgerByTime), tx.Bucket(bLedgerByKey)
+	if en.UpdatedAt.IsZero() {
+		en.UpdatedAt = now
+	}
+	if v := ledger.Get([]byte(en.Series)); v != nil {
+		old, err := decodeEntry(en.Series, v)
+		if err != nil {
+			return en, err
+		}
+		en.Revisions = mergeRevisions(old, en)
+		if en.ServerID == "" {
+			en.ServerID, en.ServerVersion = old.ServerID, old.ServerVersion
+		}
+		if err := bySubj.Delete(subjectKey(old.Subject, old.Series)); err != nil {
+			return en, err
+		}
+		if err := byTime.Delete(ledgerTimeKey(old)); err != nil {
+			return en, err
+		}
+	}
+	if err := ledger.Put([]byte(en.Series), encodeEntry(en)); err != nil {
+		return en, err
+	}
+	if err := bySubj.Put(subjectKey(en.Subject, en.Series), nil); err != nil {
+		return en, err
+	}
+	if err := byTime.Put(ledgerTimeKey(en), nil); err != nil {
+		return en, err
+	}
+	for _, k := range append([]string{en.Key}, en.Revisions...) {
+		if err := byKey.Put([]byte(k), []byte(en.Series)); err != nil {
+			return en, err
+		}
+	}
+	return en, nil
+}
+
+// mergeRevisions lists the previous keys oldest first: the old entry's
+// revisions, the old key, then any the caller added, each once, never the
+// current key.
+func mergeRevisions(old, en store.Entry) []string {
+	all := append(append(append([]string(nil), old.Revisions...), old.Key), en.Revisions...)
+	out := make([]string, 0, len(all))
+	seen := map[string]bool{en.Key: true}
+	for _, k := range all {
+		if !seen[k] {
+			seen[k] = true
+			out = append(out, k)
+		}
+	}
+	if len(out) == 0 {
+		return nil
+	}
+	return out
+}
+
+func ledgerTimeKey(en store.Entry) []byte {
+	k := appendTimeKey(subjectPrefix(en.Subject), en.EffectiveAt)
+	return append(k, en.Series...)
+}
+
+func getEntry(tx *bolt.Tx, series []byte) (store.Entry, error) {
+	v := tx.Bucket(bLedger).Get(series)
+	if v == nil {
+		return store.Entry{}, notFound("ledger entry")
+	}
+	return decodeEntry(string(series), v)
+}
+
+// Ledger returns the patient's entries in Series order.
+func (s *Store) Ledger(ctx context.Context, subject string) ([]store.Entry, error) {
+	var out []store.Entry
+	err := s.view(ctx, "Ledger", func(tx *bolt.Tx) error {
+		prefix := subjectPrefix(subject)
+		c := tx.Bucket(bLedgerBySubj).Cursor()
+		for k, _ := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, _ = c.Next() {
+			en, err := getEntry(tx, k[len(prefix):])
+			if err != nil {
+				return fmt.Errorf("index points to a missing entry: %w: %w", ErrCorrupt, err)
+			}
+			out = append(out, en)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Entry returns one entry by series, or ErrNotFound.
+func (s *Store) Entry(ctx context.Context, series string) (store.Entry, error) {
+	var en store.Entry
+	err := s.view(ctx, "Entry", func(tx *bolt.Tx) error {
+		var err error
+		en, err = getEntry(tx, []byte(series))
+		return err
+	})
+	return en, err
+}
+
+// EntryByKey finds an entry by its current or a previous key.
+func (s *Store) EntryByKey(ctx context.Context, key string) (store.Entry, error) {
+	var en store.Entry
+	err := s.view(ctx, "EntryByKey", func(tx *bolt.Tx) error {
+		series := tx.Bucket(bLedgerByKey).Get([]byte(key))
+		if series == nil {
+			return notFound("ledger key")
+		}
+		var err error
+		en, err = getEntry(tx, series)
+		return err
+	})
+	return en, err
+}
+
+// EntriesBetween pages through the (subject, EffectiveAt, series) index.
+// The page token is a series, so the position is found again from that
+// entry's current EffectiveAt; an unknown series (or one of another
+// patient) is ErrNotFound rather than a silent restart from the top.
+func (s *Store) EntriesBetween(ctx context.Context, subject string, from, to time.Time, after string, limit int) ([]store.Entry, error) {
+	if err := checkLimit(limit); err != nil {
+		return nil, fmt.Errorf("boltstore.EntriesBetween: %w", err)
+	}
+	var out []store.Entry
+	err := s.view(ctx, "EntriesBetween", func(tx *bolt.Tx) error {
+		prefix := subjectPrefix(subject)
+		start := appendTimeKey(bytes.Clone(prefix), from)
+		end := appendTimeKey(bytes.Clone(prefix), to)
+		var skip []byte
+		if after != "" {
+			last, err := getEntry(tx, []byte(after))
+			if err != nil {
+				return fmt.Errorf("paging series: %w", err)
+			}
+			if last.Subject != subject {
+				return fmt.Errorf("paging series belongs to another patient: %w", store.ErrNotFound)
+			}
+			if k := ledgerTimeKey(last); bytes.Compare(k, start) >= 0 {
+				start, skip = k, k
+			}
+		}
+		c := tx.Bucket(bLedgerByTime).Cursor()
+		for k, _ := c.Seek(start); k != nil && bytes.Compare(k, end) < 0 && len(out) < limit; k, _ = c.Next() {
+			if skip != nil && bytes.Equal(k, skip) {
+				continue
+			}
+			en, err := getEntry(tx, k[len(prefix)+timeKeyLen:])
+			if err != nil {
+				return fmt.Errorf("index points to a missing entry: %w: %w", ErrCorrupt, err)
+			}
+			out = append(out, en)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Events reads the feed from after+1.
+func (s *Store) Events(ctx context.Context, after uint64, limit int) ([]store.Event, error) {
+	if err := checkLimit(limit); err != nil {
+		return nil, fmt.Errorf("boltstore.Events: %w", err)
+	}
+	if after == math.MaxUint64 {
+		if err := ctx.Err(); err != nil {
+			return nil, fmt.Errorf("boltstore.Events: %w", err)
+		}
+		return nil, nil
+	}
+	var out []store.Event
+	err := s.view(ctx, "Events", func(tx *bolt.Tx) error {
+		c := tx.Bucket(bFeed).Cursor()
+		for k, v := c.Seek(u64(after + 1)); k != nil && len(out) < limit; k, v = c.Next() {
+			if len(k) != 8 {
+				return fmt.Errorf("%w: feed key of %d bytes", ErrCorrupt, len(k))
+			}
+			ev, err := decodeEvent(binary.BigEndian.Uint64(k), v)
+			if err != nil {
+				return err
+			}
+			out = append(out, ev)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// LastEvent is the feed bucket's sequence: the last Seq handed out, which
+// is also the last key because events are only ever appended.
+func (s *Store) LastEvent(ctx context.Context) (uint64, error) {
+	var seq uint64
+	err := s.view(ctx, "LastEvent", func(tx *bolt.Tx) error {
+		seq = tx.Bucket(bFeed).Sequence()
+		return nil
+	})
+	return seq, err
+}
