@@ -1,0 +1,214 @@
+// Package store is the live service's durable state: the latest version of
+// every input per patient, the patient facts the equations need, the ledger
+// of derivations already made, the outbox of writes the FHIR server has not
+// yet acknowledged, dead letters, polling cursors, subscription event
+// counters, and the feed of new derivations that watchers resume from.
+//
+// The interface is narrow on purpose: every method is one transaction, and
+// no method leaks the technology behind it, so a PostgreSQL implementation
+// serving several replicas can follow the embedded one (package
+// store/boltstore). Every method that changes state returns only after the
+// change is durable.
+package store
+
+import (
+	"context"
+	"errors"
+	"time"
+)
+
+// ErrNotFound is returned, wrapped, when a requested record does not exist.
+var ErrNotFound = errors.New("store: not found")
+
+// Input is the latest known version of one input resource. Payload is the
+// engine's own encoding of everything it needs (the decoded reading, the
+// original value and unit, the conversion); the store does not look inside.
+type Input struct {
+	Subject     string // "Patient/x"
+	Logical     string // "Observation/x"
+	VersionID   string
+	LastUpdated time.Time
+	// EffectiveAt is the physiological time, used for retention.
+	EffectiveAt time.Time
+	Payload     []byte
+}
+
+// PutResult says what [Store.PutInputs] did with each input, in order.
+type PutResult int
+
+// What happened to one input.
+const (
+	PutNew   PutResult = iota + 1 // first version seen
+	PutNewer                      // replaced an older version
+	PutSame                       // the same version again: nothing changed
+	PutOlder                      // an older version than the stored one: ignored
+)
+
+// Patient is what is known about a patient's demographics.
+type Patient struct {
+	Subject     string // "Patient/x"
+	VersionID   string
+	LastUpdated time.Time
+	Payload     []byte
+	// FetchedAt is when the service last read it from the FHIR server.
+	FetchedAt time.Time
+}
+
+// Dirty is a patient whose inputs changed since the last evaluation.
+type Dirty struct {
+	Subject string
+	// Since is when the patient first became dirty after the last
+	// evaluation; the engine waits a settle delay from it.
+	Since time.Time
+	// Generation increases with every change; [Store.Commit] clears the
+	// dirty mark only if no change arrived after the generation it read.
+	Generation uint64
+}
+
+// Entry is one derived Observation in the ledger, keyed by its series (the
+// identity that stays stable when inputs are corrected).
+type Entry struct {
+	Series  string
+	Subject string
+	// Key is the version-specific identifier: it changes when any input
+	// version changes.
+	Key string
+	// Status is the FHIR status last decided for it: final, amended or
+	// entered-in-error.
+	Status string
+	// ServerID and ServerVersion are the resource's id and versionId on the
+	// FHIR server once a write was acknowledged; empty before, and always
+	// empty in standalone mode.
+	ServerID, ServerVersion string
+	// Revisions are the previous Keys, oldest first.
+	Revisions []string
+	// EffectiveAt is the physiological time of the value.
+	EffectiveAt time.Time
+	UpdatedAt   time.Time
+	// Payload is the engine's encoding of the result (resources and the
+	// explanation), opaque to the store.
+	Payload []byte
+}
+
+// Write is one transaction the FHIR server has not yet acknowledged.
+type Write struct {
+	ID uint64 // assigned by the store
+	// Series are the ledger entries this write carries.
+	Series   []string
+	Subject  string
+	Body     []byte // the engine's encoding of the write
+	Attempts int
+	// NotBefore is the earliest time of the next attempt.
+	NotBefore time.Time
+	CreatedAt time.Time
+	LastError string
+}
+
+// DeadLetter is a write the server refused for good.
+type DeadLetter struct {
+	Write
+	Reason string
+	At     time.Time
+}
+
+// Event is one entry of the derivation feed. Seq is the resume token:
+// strictly increasing, never reused.
+type Event struct {
+	Seq     uint64
+	Series  string
+	Subject string
+	Key     string
+	Status  string
+	At      time.Time
+}
+
+// Change is what one evaluation of a patient decided.
+type Change struct {
+	Subject string
+	// Generation is the Dirty.Generation the evaluation read.
+	Generation uint64
+	// Entries are ledger entries to create or replace.
+	Entries []Entry
+	// Writes are appended to the outbox (IDs are assigned).
+	Writes []Write
+}
+
+// Stats is the outbox's state, for readiness and metrics.
+type Stats struct {
+	OutboxDepth   int
+	OldestWrite   time.Time // zero when the outbox is empty
+	DeadLetters   int
+	DirtyPatients int
+}
+
+// Store is the service's durable state. Implementations are safe for
+// concurrent use.
+type Store interface {
+	// PutInputs stores the latest version of each input and marks every
+	// patient with a new or newer input dirty, in one transaction. A version
+	// is newer when its LastUpdated is later, or, at equal times, when both
+	// version ids are numbers and it is larger, or else when it sorts later.
+	PutInputs(ctx context.Context, inputs []Input, now time.Time) ([]PutResult, error)
+	// Inputs returns a patient's stored inputs, in Logical order.
+	Inputs(ctx context.Context, subject string) ([]Input, error)
+	// Input returns one stored input by its logical reference.
+	Input(ctx context.Context, subject, logical string) (Input, error)
+
+	// PutPatient stores patient facts (the newer version wins as for inputs)
+	// and marks the patient dirty when they changed.
+	PutPatient(ctx context.Context, p Patient, now time.Time) (PutResult, error)
+	// Patient returns stored facts, or ErrNotFound.
+	Patient(ctx context.Context, subject string) (Patient, error)
+
+	// MarkDirty marks a patient for evaluation without a new input (after
+	// a restart, or when a settle delay has passed).
+	MarkDirty(ctx context.Context, subject string, now time.Time) error
+	// DirtyPatients lists dirty patients, oldest first.
+	DirtyPatients(ctx context.Context) ([]Dirty, error)
+	// Commit applies one evaluation atomically: ledger entries, outbox
+	// writes and feed events for every entry; it clears the dirty mark only
+	// when the patient's generation is still change.Generation.
+	Commit(ctx context.Context, change Change, now time.Time) error
+
+	// Ledger returns a patient's ledger entries, in Series order.
+	Ledger(ctx context.Context, subject string) ([]Entry, error)
+	// Entry returns one ledger entry by series, or ErrNotFound.
+	Entry(ctx context.Context, series string) (Entry, error)
+	// EntryByKey finds a ledger entry by its current or a previous Key.
+	EntryByKey(ctx context.Context, key string) (Entry, error)
+	// EntriesBetween lists a patient's entries with EffectiveAt in
+	// [from, to), in EffectiveAt then Series order, starting after the
+	// given Series (for paging), at most limit.
+	EntriesBetween(ctx context.Context, subject string, from, to time.Time, after string, limit int) ([]Entry, error)
+
+	// DueWrites returns up to limit outbox writes with NotBefore <= now,
+	// oldest first.
+	DueWrites(ctx context.Context, now time.Time, limit int) ([]Write, error)
+	// Acknowledge removes a write from the outbox and records the server ids
+	// of its entries (series → id, version), in one transaction.
+	Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error
+	// Reschedule records a failed attempt and the time of the next one.
+	Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error
+	// Bury moves a write to the dead letters.
+	Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error
+	// DeadLetters lists dead letters, oldest first, at most limit.
+	DeadLetters(ctx context.Context, limit int) ([]DeadLetter, error)
+	Stats(ctx context.Context) (Stats, error)
+
+	// Cursor returns a named value ("" when unset); SetCursor sets it.
+	Cursor(ctx context.Context, name string) (string, error)
+	SetCursor(ctx context.Context, name, value string) error
+	// SeenEvent records the highest event number seen for a subscription
+	// and returns the previous highest (0 when none).
+	SeenEvent(ctx context.Context, subscription string, number uint64) (previous uint64, err error)
+
+	// Events returns feed events with Seq > after, at most limit, in order.
+	Events(ctx context.Context, after uint64, limit int) ([]Event, error)
+	// LastEvent returns the highest Seq (0 when the feed is empty).
+	LastEvent(ctx context.Context) (uint64, error)
+
+	// Prune removes inputs whose EffectiveAt is before the horizon, and
+	// returns how many went.
+	Prune(ctx context.Context, horizon time.Time) (int, error)
+	Close() error
+}
