@@ -1,0 +1,78 @@
+package metrics
+
+import (
+	"strconv"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+)
+
+// other stands in for any label value outside a known set. Hook arguments
+// partly come from the wire (a resourceType is whatever the sender wrote),
+// so every label goes through a closed set: that keeps the series count
+// fixed and makes it impossible for an identifier to become a label.
+const other = "other"
+
+// The known label values. A value the engine starts to pass that is not
+// listed here is counted under "other" until it is added.
+var (
+	// modes are the engine's input modes (webhook.Mode* and the engine's
+	// own polling and id-only notification fetches).
+	modes = []string{"notification", "notification-id-only", "rest-hook", "rest-hook-put", "poll", "grpc"}
+	// resourceTypes are the types the service reads; any other resource
+	// type received is counted as "other".
+	resourceTypes = []string{"Observation", "Patient"}
+	// entryStatuses are the FHIR statuses the engine decides for a derived
+	// Observation.
+	entryStatuses = []string{"final", "amended", "entered-in-error"}
+	// triggers are the reasons the engine searches the server.
+	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "retry", "rest-hook"}
+	// outcomes are what happened to one outbox write attempt.
+	outcomes = []string{"acknowledged", "retry", "dead-letter"}
+	// operations are the client.Observer operations.
+	operations = []string{"read", "vread", "search", "create", "conditional-create", "update", "transaction", "batch"}
+)
+
+func codes() []string {
+	var out []string
+	for _, c := range encode.Codes() {
+		out = append(out, string(c))
+	}
+	return out
+}
+
+func reasons() []string {
+	var out []string
+	for _, r := range derive.AllReasons() {
+		out = append(out, string(r))
+	}
+	return out
+}
+
+// set is a closed set of label values.
+type set map[string]bool
+
+func newSet(values []string) set {
+	s := make(set, len(values))
+	for _, v := range values {
+		s[v] = true
+	}
+	return s
+}
+
+// of returns v when it is in the set, else "other".
+func (s set) of(v string) string {
+	if s[v] {
+		return v
+	}
+	return other
+}
+
+// httpStatus renders a status code as a label: the number when it is a
+// valid HTTP status, else the given fallback.
+func httpStatus(code int, fallback string) string {
+	if code < 100 || code > 599 {
+		return fallback
+	}
+	return strconv.Itoa(code)
+}

@@ -1,0 +1,376 @@
+// Package metrics exports the live service's Prometheus metrics. It owns a
+// registry of its own, so nothing is registered globally and tests can build
+// as many as they like. The engine, the FHIR client and the webhook are
+// instrumented through the plain funcs they already accept
+// ([Metrics.EngineHooks], [Metrics.ClientObserver],
+// [Metrics.InstrumentWebhook]); the outbox gauges are read from the store
+// when Prometheus scrapes ([Metrics.SetStats]), so they are never stale.
+//
+// Every label takes its value from a closed set and anything else is
+// counted as "other". Hook arguments partly come from senders, and no label
+// may ever carry a patient, encounter or observation identifier.
+//
+// # Metrics
+//
+//	| Metric                                     | Type      | Labels             | Meaning                                                                                   |
+//	|--------------------------------------------|-----------|--------------------|-------------------------------------------------------------------------------------------|
+//	| deadspace_build_info                       | gauge     | version, goversion | Always 1; the labels say which build is running.                                          |
+//	| deadspace_resources_received_total         | counter   | mode, resource_type| Resources decoded, by input mode and resource type (Observation, Patient, other).         |
+//	| deadspace_inputs_left_out_total            | counter   | reason             | Inputs not used, by reason code; every reason exists from start at 0.                     |
+//	| deadspace_derived_values_total             | counter   | code, status       | Derived Observations recorded, by code and FHIR status (final, amended, entered-in-error).|
+//	| deadspace_fhir_request_duration_seconds    | histogram | operation, status  | FHIR request attempts and their latency; status is the HTTP code or "error" (no response).|
+//	| deadspace_outbox_attempts_total            | counter   | outcome            | Outbox write attempts: acknowledged, retry, dead-letter.                                  |
+//	| deadspace_outbox_writes                    | gauge     |                    | Writes waiting in the outbox (read from the store at scrape).                             |
+//	| deadspace_outbox_oldest_age_seconds        | gauge     |                    | Age of the oldest waiting write; 0 when the outbox is empty.                              |
+//	| deadspace_dead_letters                     | gauge     |                    | Writes the server refused for good, held for an operator (read at scrape).                |
+//	| deadspace_dead_lettered_total              | counter   |                    | Writes moved to the dead letters since the process started.                               |
+//	| deadspace_pending_patients                 | gauge     |                    | Patients with new data waiting to be evaluated (read at scrape).                          |
+//	| deadspace_stats_errors_total               | counter   |                    | Scrapes where reading the store's stats failed; the four store gauges are then absent.    |
+//	| deadspace_subscription_gaps_total          | counter   |                    | Gaps in subscription event numbers, i.e. notifications that never arrived.                |
+//	| deadspace_catchups_total                   | counter   | trigger            | Catch-up searches started: start, poll, heartbeat-missed, gap, retry, rest-hook.          |
+//	| deadspace_watch_subscribers                | gauge     |                    | Clients currently watching the derivation feed.                                           |
+//	| deadspace_webhook_requests_total           | counter   | status             | Webhook requests answered, by HTTP status code.                                           |
+//	| deadspace_webhook_request_duration_seconds | histogram |                    | Time to answer a webhook request.                                                         |
+//	| deadspace_webhook_requests_in_flight       | gauge     |                    | Webhook requests being handled now.                                                       |
+//
+// The Go runtime (go_*) and process (process_*) collectors are included, and
+// promhttp_metric_handler_errors_total counts failed scrapes.
+package metrics
+
+import (
+	"context"
+	"net/http"
+	"runtime"
+	"runtime/debug"
+	"sync/atomic"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/client"
+)
+
+const namespace = "deadspace"
+
+// statsTimeout bounds the store read a scrape makes; Prometheus's own
+// default scrape timeout is 10 s, and a scrape should answer well within it.
+const statsTimeout = 5 * time.Second
+
+// fhirBuckets span a fast local server up to the client's default 60 s
+// timeout (client.DefaultTimeout).
+var fhirBuckets = []float64{0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60}
+
+// StatsFunc reads the outbox state; the store's Stats method fits.
+type StatsFunc func(ctx context.Context) (store.Stats, error)
+
+// Metrics is safe for concurrent use. A nil *Metrics is valid and
+// instruments nothing, so callers need no branches when metrics are off.
+type Metrics struct {
+	reg *prometheus.Registry
+
+	received      *prometheus.CounterVec
+	leftOut       *prometheus.CounterVec
+	derived       *prometheus.CounterVec
+	fhirDuration  *prometheus.HistogramVec
+	attempts      *prometheus.CounterVec
+	deadLettered  prometheus.Counter
+	gaps          prometheus.Counter
+	catchUps      *prometheus.CounterVec
+	watchers      prometheus.Gauge
+	webhookCount  *prometheus.CounterVec
+	webhookDur    prometheus.Histogram
+	webhookActive prometheus.Gauge
+	// statsErrors is reported by statsCollector itself, so a failure shows
+	// in the very scrape it happened in.
+	statsErrors atomic.Uint64
+
+	stats atomic.Pointer[StatsFunc]
+	now   func() time.Time
+
+	modes, resourceTypes, reasons, codes, statuses, triggers, outcomes, operations set
+}
+
+// New returns metrics registered in a registry of their own. version is
+// the build's version; when empty, the main module's version from the
+// build info is used.
+func New(version string) *Metrics {
+	m := &Metrics{
+		reg: prometheus.NewRegistry(),
+		now: time.Now,
+
+		modes: newSet(modes), resourceTypes: newSet(resourceTypes), reasons: newSet(reasons()),
+		codes: newSet(codes()), statuses: newSet(entryStatuses), triggers: newSet(triggers),
+		outcomes: newSet(outcomes), operations: newSet(operations),
+	}
+	counterVec := func(name, help string, labels ...string) *prometheus.CounterVec {
+		return prometheus.NewCounterVec(prometheus.CounterOpts{Namespace: namespace, Name: name, Help: help}, labels)
+	}
+	counter := func(name, help string) prometheus.Counter {
+		return prometheus.NewCounter(prometheus.CounterOpts{Namespace: namespace, Name: name, Help: help})
+	}
+	gauge := func(name, help string) prometheus.Gauge {
+		return prometheus.NewGauge(prometheus.GaugeOpts{Namespace: namespace, Name: name, Help: help})
+	}
+
+	m.received = counterVec("resources_received_total",
+		"Resources decoded by the engine, by input mode and resource type.", "mode", "resource_type")
+	m.leftOut = counterVec("inputs_left_out_total",
+		"Inputs not used, by reason code.", "reason")
+	m.derived = counterVec("derived_values_total",
+		"Derived Observations recorded in the ledger, by code and FHIR status.", "code", "status")
+	m.fhirDuration = prometheus.NewHistogramVec(prometheus.HistogramOpts{
+		Namespace: namespace, Name: "fhir_request_duration_seconds",
+		Help:    "FHIR request attempts and their latency, by operation and HTTP status (\"error\" when no response arrived).",
+		Buckets: fhirBuckets,
+	}, []string{"operation", "status"})
+	m.attempts = counterVec("outbox_attempts_total",
+		"Outbox write attempts, by outcome.", "outcome")
+	m.deadLettered = counter("dead_lettered_total",
+		"Writes moved to the dead letters.")
+	m.gaps = counter("subscription_gaps_total",
+		"Gaps detected in subscription event numbers.")
+	m.catchUps = counterVec("catchups_total",
+		"Catch-up searches started, by trigger.", "trigger")
+	m.watchers = gauge("watch_subscribers",
+		"Clients currently watching the derivation feed.")
+	m.webhookCount = counterVec("webhook_requests_total",
+		"Webhook requests answered, by HTTP status.", "status")
+	m.webhookDur = prometheus.NewHistogram(prometheus.HistogramOpts{
+		Namespace: namespace, Name: "webhook_request_duration_seconds",
+		Help:    "Time to answer a webhook request.",
+		Buckets: prometheus.DefBuckets,
+	})
+	m.webhookActive = gauge("webhook_requests_in_flight",
+		"Webhook requests being handled now.")
+
+	if version == "" {
+		version = "unknown"
+		if bi, ok := debug.ReadBuildInfo(); ok && bi.Main.Version != "" {
+			version = bi.Main.Version
+		}
+	}
+	buildInfo := prometheus.NewGaugeVec(prometheus.GaugeOpts{
+		Namespace: namespace, Name: "build_info",
+		Help: "Always 1; the labels say which build is running.",
+	}, []string{"version", "goversion"})
+	buildInfo.WithLabelValues(version, runtime.Version()).Set(1)
+
+	m.reg.MustRegister(
+		collectors.NewGoCollector(),
+		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
+		buildInfo,
+		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
+		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
+		statsCollector{m},
+	)
+	m.predeclare()
+	return m
+}
+
+// predeclare creates the series whose label values are known, so a rate
+// or an alert on them has a 0 to start from instead of no data.
+func (m *Metrics) predeclare() {
+	for _, mode := range modes {
+		for _, rt := range resourceTypes {
+			m.received.WithLabelValues(mode, rt)
+		}
+	}
+	for _, r := range reasons() {
+		m.leftOut.WithLabelValues(r)
+	}
+	for _, c := range codes() {
+		for _, s := range entryStatuses {
+			m.derived.WithLabelValues(c, s)
+		}
+	}
+	for _, o := range outcomes {
+		m.attempts.WithLabelValues(o)
+	}
+	for _, t := range triggers {
+		m.catchUps.WithLabelValues(t)
+	}
+}
+
+// Registry is the registry the metrics live in, for callers that gather
+// directly or add collectors of their own.
+func (m *Metrics) Registry() *prometheus.Registry { return m.reg }
+
+// Handler serves the registry in the Prometheus text format (or another
+// format the scraper asks for). A collector that fails leaves its metrics
+// out of that scrape rather than failing the whole page.
+func (m *Metrics) Handler() http.Handler {
+	return promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{
+		Registry:      m.reg,
+		ErrorHandling: promhttp.ContinueOnError,
+	})
+}
+
+// EngineHooks returns hooks that count what the engine reports.
+func (m *Metrics) EngineHooks() engine.Hooks {
+	if m == nil {
+		return engine.Hooks{}
+	}
+	return engine.Hooks{
+		Received: func(mode, resourceType string) {
+			m.received.WithLabelValues(m.modes.of(mode), m.resourceTypes.of(resourceType)).Inc()
+		},
+		LeftOut: func(reason derive.Reason) {
+			m.leftOut.WithLabelValues(m.reasons.of(string(reason))).Inc()
+		},
+		Emitted: func(code, status string) {
+			m.derived.WithLabelValues(m.codes.of(code), m.statuses.of(status)).Inc()
+		},
+		Gap:        m.gaps.Inc,
+		CatchUp:    func(trigger string) { m.catchUps.WithLabelValues(m.triggers.of(trigger)).Inc() },
+		DeadLetter: m.deadLettered.Inc,
+		WriteResult: func(outcome string) {
+			m.attempts.WithLabelValues(m.outcomes.of(outcome)).Inc()
+		},
+	}
+}
+
+// ClientObserver returns an observer that records each FHIR request
+// attempt. Status 0 (no response: a network failure or timeout) is
+// labelled "error".
+func (m *Metrics) ClientObserver() client.Observer {
+	if m == nil {
+		return nil
+	}
+	return func(op string, status int, dur time.Duration) {
+		m.fhirDuration.WithLabelValues(m.operations.of(op), httpStatus(status, "error")).Observe(dur.Seconds())
+	}
+}
+
+// SetStats sets the function the outbox gauges are read from at scrape
+// time. Until it is set, those gauges are absent.
+func (m *Metrics) SetStats(f func(ctx context.Context) (store.Stats, error)) {
+	if m == nil {
+		return
+	}
+	if f == nil {
+		m.stats.Store(nil)
+		return
+	}
+	sf := StatsFunc(f)
+	m.stats.Store(&sf)
+}
+
+// IncWatchSubscribers counts a client that started watching the feed.
+func (m *Metrics) IncWatchSubscribers() {
+	if m != nil {
+		m.watchers.Inc()
+	}
+}
+
+// DecWatchSubscribers counts a client that stopped watching the feed.
+func (m *Metrics) DecWatchSubscribers() {
+	if m != nil {
+		m.watchers.Dec()
+	}
+}
+
+// InstrumentWebhook counts and times the requests h answers. Nothing about
+// the request (path, query, headers) becomes a label: a rest-hook path can
+// carry a resource id.
+func (m *Metrics) InstrumentWebhook(h http.Handler) http.Handler {
+	if m == nil {
+		return h
+	}
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		m.webhookActive.Inc()
+		defer m.webhookActive.Dec()
+		start := time.Now()
+		sw := &statusWriter{ResponseWriter: w}
+		h.ServeHTTP(sw, r)
+		// Counted only on a normal return: a panicking handler has its
+		// connection aborted by net/http, so no status was ever sent.
+		status := sw.status
+		if status == 0 {
+			status = http.StatusOK // what net/http sends when the handler writes nothing
+		}
+		m.webhookCount.WithLabelValues(httpStatus(status, other)).Inc()
+		m.webhookDur.Observe(time.Since(start).Seconds())
+	})
+}
+
+// statusWriter remembers the status sent. Unwrap lets
+// http.ResponseController reach the underlying writer's Flush and
+// deadlines.
+type statusWriter struct {
+	http.ResponseWriter
+	status int
+}
+
+func (w *statusWriter) WriteHeader(code int) {
+	// 1xx responses are informational; the final status comes after them.
+	if w.status == 0 && code >= 200 {
+		w.status = code
+	}
+	w.ResponseWriter.WriteHeader(code)
+}
+
+func (w *statusWriter) Write(b []byte) (int, error) {
+	if w.status == 0 {
+		w.status = http.StatusOK
+	}
+	return w.ResponseWriter.Write(b)
+}
+
+func (w *statusWriter) Unwrap() http.ResponseWriter { return w.ResponseWriter }
+
+// statsCollector reads the store once per scrape and reports the outbox
+// gauges from that one reading, so they agree with each other.
+type statsCollector struct{ m *Metrics }
+
+var (
+	descOutboxWrites = prometheus.NewDesc(namespace+"_outbox_writes",
+		"Writes waiting in the outbox.", nil, nil)
+	descOutboxAge = prometheus.NewDesc(namespace+"_outbox_oldest_age_seconds",
+		"Age of the oldest write waiting in the outbox; 0 when it is empty.", nil, nil)
+	descDeadLetters = prometheus.NewDesc(namespace+"_dead_letters",
+		"Writes the FHIR server refused for good, held for an operator.", nil, nil)
+	descPending = prometheus.NewDesc(namespace+"_pending_patients",
+		"Patients with new data waiting to be evaluated.", nil, nil)
+	descStatsErrors = prometheus.NewDesc(namespace+"_stats_errors_total",
+		"Scrapes where reading the store's outbox stats failed.", nil, nil)
+)
+
+func (c statsCollector) Describe(ch chan<- *prometheus.Desc) {
+	ch <- descOutboxWrites
+	ch <- descOutboxAge
+	ch <- descDeadLetters
+	ch <- descPending
+	ch <- descStatsErrors
+}
+
+func (c statsCollector) Collect(ch chan<- prometheus.Metric) {
+	f := c.m.stats.Load()
+	if f == nil {
+		ch <- prometheus.MustNewConstMetric(descStatsErrors, prometheus.CounterValue, float64(c.m.statsErrors.Load()))
+		return
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), statsTimeout)
+	defer cancel()
+	s, err := (*f)(ctx)
+	if err != nil {
+		// Leaving the gauges out, rather than reporting zeros, keeps an
+		// alert on a growing outbox from clearing because the store is
+		// unreadable; the error counter says why they are missing.
+		ch <- prometheus.MustNewConstMetric(descStatsErrors, prometheus.CounterValue, float64(c.m.statsErrors.Add(1)))
+		return
+	}
+	ch <- prometheus.MustNewConstMetric(descStatsErrors, prometheus.CounterValue, float64(c.m.statsErrors.Load()))
+	age := 0.0
+	if !s.OldestWrite.IsZero() {
+		age = max(c.m.now().Sub(s.OldestWrite).Seconds(), 0)
+	}
+	ch <- prometheus.MustNewConstMetric(descOutboxWrites, prometheus.GaugeValue, float64(s.OutboxDepth))
+	ch <- prometheus.MustNewConstMetric(descOutboxAge, prometheus.GaugeValue, age)
+	ch <- prometheus.MustNewConstMetric(descDeadLetters, prometheus.GaugeValue, float64(s.DeadLetters))
+	ch <- prometheus.MustNewConstMetric(descPending, prometheus.GaugeValue, float64(s.DirtyPatients))
+}
