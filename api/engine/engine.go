@@ -75,6 +75,9 @@ type Config struct {
 	HeartbeatTimeout time.Duration
 	// SearchCodes are the "system|code" tokens polling searches for.
 	SearchCodes []string
+	// MaxTransactionEntries caps the entries of one transaction; zero means
+	// DefaultMaxTransactionEntries.
+	MaxTransactionEntries int
 	// ProvenanceTagSystem tags each Provenance so a repeated write can be
 	// made conditional on it (R4 Provenance has no identifier).
 	ProvenanceTagSystem string
@@ -86,6 +89,11 @@ type Config struct {
 // DefaultProvenanceTagSystem is the system of the tag that makes a
 // Provenance write conditional.
 const DefaultProvenanceTagSystem = "https://deadspace-fhir.github.io/fhir/sid/provenance"
+
+// DefaultMaxTransactionEntries is the largest transaction Medplum accepts
+// when entries are conditional (it needs strict isolation for them); other
+// servers allow more, and --fhir-max-transaction-entries raises it.
+const DefaultMaxTransactionEntries = 8
 
 // Engine is safe for concurrent use.
 type Engine struct {
@@ -100,6 +108,7 @@ type Engine struct {
 	lastNotified  time.Time
 	outboxBlocked time.Time // when the head write last failed, for readiness
 	lastServerOK  time.Time
+	deviceRef     string // the server's "Device/<id>" of the software Device
 }
 
 // New checks the configuration and returns an Engine. Nothing runs until
@@ -264,8 +273,20 @@ func toStored(it decode.Item) (store.Input, error) {
 	}
 	return store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
-		LastUpdated: it.LastUpdated, EffectiveAt: it.Reading.At(), Payload: payload,
+		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it), Payload: payload,
 	}, nil
+}
+
+// retentionTime is the time the store prunes an input by. A body height is
+// a patient fact, not a reading: it stays usable for a year (the derive
+// package's HeightMaxAge), so it is kept as if it had been measured a year
+// later; otherwise a long stay would lose the ventilatory ratio after one
+// retention period.
+func retentionTime(it decode.Item) time.Time {
+	if it.Reading.Kind == derive.KindHeight {
+		return it.Reading.At().Add(derive.DefaultConfig().HeightMaxAge)
+	}
+	return it.Reading.At()
 }
 
 func (e *Engine) putPatient(ctx context.Context, it decode.Item, now, fetched time.Time) error {

@@ -10,6 +10,7 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"net/http"
+	"net/url"
 	"time"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
@@ -171,8 +172,15 @@ type txRequest struct {
 	IfNoneExist string `json:"ifNoneExist,omitempty"`
 }
 
-// send builds the write's transaction, posts it, and returns the server's
-// id and version of each series it carried.
+// send builds the write's transactions, posts them, and returns the
+// server's id and version of each series it carried.
+//
+// A server may cap the entries of a transaction that needs strict isolation
+// (conditional creates do): Medplum's cap is 8. When a write fits, it is one
+// transaction of Observations and Provenance; when it does not, the
+// Observations go in transactions of at most MaxTransactionEntries and the
+// Provenance follows on its own. Every request is conditional, so a crash
+// between them is mended by sending the write again.
 func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string, error) {
 	var body writeBody
 	if err := json.Unmarshal(w.Body, &body); err != nil {
@@ -180,75 +188,17 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 	}
 	enc := e.cfg.Encoder
 	opts := enc.Options()
-	device := enc.Device()
-	deviceURN := urn(enc.DeviceRef())
-	rewrite := map[string]string{enc.DeviceRef(): deviceURN}
-	device.Id = nil
-	deviceJSON, err := json.Marshal(device)
+	deviceRef, err := e.serverDevice(ctx)
 	if err != nil {
-		return nil, fmt.Errorf("engine: encode device: %w", err)
+		return nil, err
 	}
-	entries := []txEntry{{
-		FullURL: deviceURN, Resource: deviceJSON,
-		Request: txRequest{Method: "POST", URL: "Device", IfNoneExist: "identifier=" + *device.Identifier[0].System + "|" + *device.Identifier[0].Value},
-	}}
+	rewrite := map[string]string{enc.DeviceRef(): deviceRef}
 
-	var bundle encode.Bundle
-	observations := make([]fhir.Observation, len(body.Observations))
-	for i, raw := range body.Observations {
-		o, err := fhir.UnmarshalObservation(raw)
-		if err != nil {
-			return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
-		}
-		observations[i] = o
+	bundle, err := e.bundleOf(ctx, body)
+	if err != nil {
+		return nil, err
 	}
-	switch body.Kind {
-	case writeCreate:
-		prov, err := fhir.UnmarshalProvenance(body.Provenance)
-		if err != nil {
-			return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
-		}
-		for i := range observations {
-			rewrite["Observation/"+*observations[i].Id] = urn(body.Series[i])
-		}
-		bundle = encode.Bundle{Observations: observations, Provenance: prov}
-	case writeRevise, writeWithdraw:
-		var previous []string
-		for i := range observations {
-			en, err := e.cfg.Store.Entry(ctx, body.Series[i])
-			if err != nil {
-				return nil, fmt.Errorf("engine: %w", err)
-			}
-			if en.ServerID == "" {
-				return nil, errWaiting
-			}
-			observations[i].Id = &en.ServerID
-			observations[i].Meta = nil
-			if en.ServerVersion != "" {
-				v := en.ServerVersion
-				observations[i].Meta = &fhir.Meta{VersionId: &v}
-				previous = append(previous, "Observation/"+en.ServerID+"/_history/"+en.ServerVersion)
-			}
-		}
-		if body.Kind == writeWithdraw {
-			bundle, err = enc.Withdrawal(observations[0], body.Why)
-		} else {
-			prov, perr := fhir.UnmarshalProvenance(body.Provenance)
-			if perr != nil {
-				return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: perr.Error()}
-			}
-			bundle = encode.Bundle{Observations: observations, Provenance: prov}
-			if len(previous) > 0 {
-				bundle, err = enc.Revision(bundle, previous)
-			}
-		}
-		if err != nil {
-			return nil, &client.Error{Op: "encode revision", Status: http.StatusBadRequest, Outcome: err.Error()}
-		}
-	default:
-		return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: "unknown write kind " + body.Kind}
-	}
-
+	var obsEntries []txEntry
 	for i, o := range bundle.Observations {
 		req := txRequest{Method: "PUT", URL: "Observation/" + *o.Id}
 		fullURL := ""
@@ -256,6 +206,7 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 			key, _ := identifiers(o)
 			req = txRequest{Method: "POST", URL: "Observation", IfNoneExist: "identifier=" + opts.IdentifierSystem + "|" + key}
 			fullURL = urn(body.Series[i])
+			rewrite["Observation/"+*o.Id] = fullURL
 			o.Id = nil
 		} else {
 			o.Meta = nil
@@ -264,27 +215,85 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 		if err != nil {
 			return nil, err
 		}
-		entries = append(entries, txEntry{FullURL: fullURL, Resource: raw, Request: req})
+		obsEntries = append(obsEntries, txEntry{FullURL: fullURL, Resource: raw, Request: req})
 	}
 	prov := bundle.Provenance
 	tag := *prov.Id
 	prov.Id = nil
 	prov.Meta = &fhir.Meta{Tag: []fhir.Coding{{System: &e.cfg.ProvenanceTagSystem, Code: &tag}}}
+	provQuery := "_tag=" + e.cfg.ProvenanceTagSystem + "|" + tag
+
+	server := make(map[string][2]string, len(body.Series))
+	if len(obsEntries)+1 <= e.maxEntries() {
+		provJSON, err := marshalRewritten(prov, rewrite)
+		if err != nil {
+			return nil, err
+		}
+		entries := append(obsEntries, txEntry{
+			FullURL: urn("Provenance/" + tag), Resource: provJSON,
+			Request: txRequest{Method: "POST", URL: "Provenance", IfNoneExist: provQuery},
+		})
+		resp, err := e.transaction(ctx, entries)
+		if err != nil {
+			return nil, err
+		}
+		for i, s := range body.Series {
+			server[s] = [2]string{resp.Entries[i].ID, resp.Entries[i].VersionID}
+		}
+		return server, nil
+	}
+	for from := 0; from < len(obsEntries); from += e.maxEntries() {
+		to := min(from+e.maxEntries(), len(obsEntries))
+		resp, err := e.transaction(ctx, obsEntries[from:to])
+		if err != nil {
+			return nil, err
+		}
+		for i := from; i < to; i++ {
+			r := resp.Entries[i-from]
+			server[body.Series[i]] = [2]string{r.ID, r.VersionID}
+			if body.Kind == writeCreate {
+				rewrite["Observation/"+idOf(bundle.Observations[i])] = "Observation/" + r.ID
+			}
+		}
+	}
 	provJSON, err := marshalRewritten(prov, rewrite)
 	if err != nil {
 		return nil, err
 	}
-	entries = append(entries, txEntry{
-		FullURL: urn("Provenance/" + tag), Resource: provJSON,
-		Request: txRequest{Method: "POST", URL: "Provenance", IfNoneExist: "_tag=" + e.cfg.ProvenanceTagSystem + "|" + tag},
-	})
+	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", provJSON, mustQuery(provQuery)); err != nil {
+		return nil, err
+	}
+	return server, nil
+}
+
+func idOf(o fhir.Observation) string {
+	if o.Id == nil {
+		return ""
+	}
+	return *o.Id
+}
+
+func mustQuery(q string) url.Values {
+	v, _ := url.ParseQuery(q)
+	return v
+}
+
+func (e *Engine) maxEntries() int {
+	if e.cfg.MaxTransactionEntries > 0 {
+		return e.cfg.MaxTransactionEntries
+	}
+	return DefaultMaxTransactionEntries
+}
+
+// transaction posts entries as one transaction Bundle.
+func (e *Engine) transaction(ctx context.Context, entries []txEntry) (client.TransactionResponse, error) {
 	tx, err := json.Marshal(struct {
 		ResourceType string    `json:"resourceType"`
 		Type         string    `json:"type"`
 		Entry        []txEntry `json:"entry"`
 	}{"Bundle", "transaction", entries})
 	if err != nil {
-		return nil, fmt.Errorf("engine: encode transaction: %w", err)
+		return client.TransactionResponse{}, fmt.Errorf("engine: encode transaction: %w", err)
 	}
 	resp, err := e.cfg.Client.Transaction(ctx, tx)
 	if err != nil {
@@ -292,18 +301,111 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 		if errors.As(err, &ce) && ce.Status > 0 {
 			e.serverAnswered()
 		}
-		return nil, err
+		return client.TransactionResponse{}, err
 	}
 	e.serverAnswered()
 	if len(resp.Entries) != len(entries) {
-		return nil, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), len(entries))
+		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), len(entries))
 	}
-	server := make(map[string][2]string, len(body.Series))
-	for i, s := range body.Series {
-		r := resp.Entries[i+1]
-		server[s] = [2]string{r.ID, r.VersionID}
+	return resp, nil
+}
+
+// bundleOf turns a write back into resources, resolving server ids for
+// updates and withdrawals.
+func (e *Engine) bundleOf(ctx context.Context, body writeBody) (encode.Bundle, error) {
+	enc := e.cfg.Encoder
+	observations := make([]fhir.Observation, len(body.Observations))
+	for i, raw := range body.Observations {
+		o, err := fhir.UnmarshalObservation(raw)
+		if err != nil {
+			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
+		}
+		observations[i] = o
 	}
-	return server, nil
+	if body.Kind == writeCreate {
+		prov, err := fhir.UnmarshalProvenance(body.Provenance)
+		if err != nil {
+			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
+		}
+		return encode.Bundle{Observations: observations, Provenance: prov}, nil
+	}
+	if body.Kind != writeRevise && body.Kind != writeWithdraw {
+		return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: "unknown write kind " + body.Kind}
+	}
+	var previous []string
+	for i := range observations {
+		en, err := e.cfg.Store.Entry(ctx, body.Series[i])
+		if err != nil {
+			return encode.Bundle{}, fmt.Errorf("engine: %w", err)
+		}
+		if en.ServerID == "" {
+			return encode.Bundle{}, errWaiting
+		}
+		observations[i].Id = &en.ServerID
+		observations[i].Meta = nil
+		if en.ServerVersion != "" {
+			v := en.ServerVersion
+			observations[i].Meta = &fhir.Meta{VersionId: &v}
+			previous = append(previous, "Observation/"+en.ServerID+"/_history/"+en.ServerVersion)
+		}
+	}
+	var b encode.Bundle
+	var err error
+	if body.Kind == writeWithdraw {
+		b, err = enc.Withdrawal(observations[0], body.Why)
+	} else {
+		prov, perr := fhir.UnmarshalProvenance(body.Provenance)
+		if perr != nil {
+			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: perr.Error()}
+		}
+		b = encode.Bundle{Observations: observations, Provenance: prov}
+		if len(previous) > 0 {
+			b, err = enc.Revision(b, previous)
+		}
+	}
+	if err != nil {
+		return encode.Bundle{}, &client.Error{Op: "encode revision", Status: http.StatusBadRequest, Outcome: err.Error()}
+	}
+	return b, nil
+}
+
+// serverDevice returns the server's reference to the software Device,
+// creating it (conditionally on its identifier) the first time.
+func (e *Engine) serverDevice(ctx context.Context) (string, error) {
+	e.mu.Lock()
+	ref := e.deviceRef
+	e.mu.Unlock()
+	if ref != "" {
+		return ref, nil
+	}
+	cursor := "device." + e.cfg.Encoder.DeviceRef()
+	if v, err := e.cfg.Store.Cursor(ctx, cursor); err == nil && v != "" {
+		ref = v
+	} else {
+		device := e.cfg.Encoder.Device()
+		device.Id = nil
+		raw, err := json.Marshal(device)
+		if err != nil {
+			return "", fmt.Errorf("engine: encode device: %w", err)
+		}
+		q := url.Values{"identifier": {*device.Identifier[0].System + "|" + *device.Identifier[0].Value}}
+		_, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Device", raw, q)
+		if err != nil {
+			return "", err
+		}
+		e.serverAnswered()
+		if meta.ID == "" {
+			return "", fmt.Errorf("engine: the server gave no id for the software Device")
+		}
+		ref = "Device/" + meta.ID
+		if err := e.cfg.Store.SetCursor(ctx, cursor, ref); err != nil {
+			return "", fmt.Errorf("engine: %w", err)
+		}
+	}
+	e.mu.Lock()
+	e.deviceRef = ref
+	e.mu.Unlock()
+	return ref, nil
 }
 
 // marshalRewritten encodes a resource with every reference named in rewrite
