@@ -719,4 +719,3 @@ func TestBadWebhookInput(t *testing.T) {
 		t.Errorf("logs carry a patient identifier or the secret:\n%s", s.logs.String())
 	}
 }
-
