@@ -310,7 +310,7 @@ func (e *Engine) Explain(ctx context.Context, rec Record) (Explanation, error) {
 	default:
 		return Explanation{}, fmt.Errorf("engine: ledger entry holds neither a derivation nor a fall")
 	}
-	if ex.AlgorithmVersion == "" {
+	if ex.AlgorithmVersion == "" && len(ex.Values) == 1 && (ex.Fall != nil || ex.Values[0].Value != nil) {
 		ex.Notes = append(ex.Notes, "the stored key differs from one computed under algorithm "+derive.AlgorithmVersion+
 			": an earlier version of the rules computed this value")
 	}
