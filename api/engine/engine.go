@@ -267,9 +267,9 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 }
 
 func toStored(it decode.Item) (store.Input, error) {
-	payload, err := json.Marshal(storedInput{Item: it})
+	payload, err := encodeStored(it)
 	if err != nil {
-		return store.Input{}, fmt.Errorf("engine: encode input: %w", err)
+		return store.Input{}, err
 	}
 	return store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,

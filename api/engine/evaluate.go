@@ -5,6 +5,8 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"runtime"
+	"sync"
 	"time"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
@@ -22,6 +24,9 @@ const (
 	statusAmended   = "amended"
 	statusWithdrawn = "entered-in-error"
 )
+
+// evaluators is how many patients are evaluated at once.
+var evaluators = max(2, runtime.NumCPU())
 
 // Write kinds.
 const (
@@ -98,21 +103,43 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) time.Duration {
 	}
 	wait := idle
 	now := e.now()
+	var due []store.Dirty
 	for _, d := range dirty {
-		if ctx.Err() != nil {
-			return wait
-		}
-		if due := d.Since.Add(e.cfg.Settle); !all && due.After(now) {
-			wait = min(wait, due.Sub(now))
+		if at := d.Since.Add(e.cfg.Settle); !all && at.After(now) {
+			wait = min(wait, at.Sub(now))
 			continue
 		}
-		if err := e.evaluatePatient(ctx, d); err != nil {
-			if ctx.Err() == nil {
-				e.log.ErrorContext(ctx, "evaluation failed; it stays pending", "err", err)
-			}
-			wait = min(wait, 5*time.Second)
-		}
+		due = append(due, d)
 	}
+	// Patients are independent, so several are evaluated at once; their
+	// commits share fsyncs through the store's batching.
+	var mu sync.Mutex
+	var wg sync.WaitGroup
+	work := make(chan store.Dirty)
+	for range min(len(due), evaluators) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for d := range work {
+				if err := e.evaluatePatient(ctx, d); err != nil {
+					if ctx.Err() == nil {
+						e.log.ErrorContext(ctx, "evaluation failed; it stays pending", "err", err)
+					}
+					mu.Lock()
+					wait = min(wait, 5*time.Second)
+					mu.Unlock()
+				}
+			}
+		}()
+	}
+	for _, d := range due {
+		if ctx.Err() != nil {
+			break
+		}
+		work <- d
+	}
+	close(work)
+	wg.Wait()
 	return max(wait, 10*time.Millisecond)
 }
 
@@ -124,14 +151,16 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	}
 	inputs := make([]pipeline.Input, 0, len(stored))
 	for _, in := range stored {
-		var si storedInput
-		if err := json.Unmarshal(in.Payload, &si); err != nil {
+		// Only what pairing needs is decoded; the rest of the stored item
+		// (original value, conversion) is for explanations.
+		h, _, err := decodeHead(in.Payload)
+		if err != nil {
 			return fmt.Errorf("engine: evaluate: stored input %s: %w", in.Logical, err)
 		}
-		if si.Item.Type != decode.ItemReading {
+		if h.Type != decode.ItemReading {
 			continue // a version that withdraws or invalidates an earlier one
 		}
-		inputs = append(inputs, pipeline.Input{Reading: si.Item.Reading, Priority: si.Item.Priority})
+		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
 	}
 	facts, err := e.patientFacts(ctx, d.Subject)
 	if err != nil {

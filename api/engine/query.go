@@ -327,8 +327,8 @@ func (e *Engine) ExplainBloodGas(ctx context.Context, subject, ref string) (Expl
 	if err != nil {
 		return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)
 	}
-	var si storedInput
-	if err := json.Unmarshal(in.Payload, &si); err != nil {
+	si, err := decodeStored(in.Payload)
+	if err != nil {
 		return Explanation{}, fmt.Errorf("engine: explain blood gas: stored input: %w", err)
 	}
 	ex := Explanation{Recomputed: true, Subject: subject, AlgorithmVersion: derive.AlgorithmVersion}
@@ -402,8 +402,8 @@ func (e *Engine) recompute(ctx context.Context, subject string) ([]pipeline.Resu
 	}
 	inputs := make([]pipeline.Input, 0, len(stored))
 	for _, in := range stored {
-		var si storedInput
-		if err := json.Unmarshal(in.Payload, &si); err != nil {
+		si, err := decodeStored(in.Payload)
+		if err != nil {
 			return nil, nil, derive.Patient{}, fmt.Errorf("engine: recompute: stored input: %w", err)
 		}
 		if si.Item.Type == decode.ItemReading {
@@ -483,8 +483,8 @@ func (e *Engine) explainInput(ctx context.Context, ex *Explanation, subject stri
 		ex.Notes = append(ex.Notes, fmt.Sprintf("%s: the store holds version %s now; the original of the cited version is not kept", r.Ref, in.VersionID))
 		return out
 	}
-	var si storedInput
-	if err := json.Unmarshal(in.Payload, &si); err != nil {
+	si, err := decodeStored(in.Payload)
+	if err != nil {
 		e.log.WarnContext(ctx, "a stored input could not be decoded for an explanation", "err", err)
 		ex.Notes = append(ex.Notes, r.Ref+": the stored input could not be read")
 		return out

@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/metrics"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/derive"
@@ -35,6 +36,8 @@ type Service struct {
 	http   *http.Server
 	ln     net.Listener
 	client *client.Client
+	// Metrics is the service's Prometheus registry and instruments.
+	Metrics *metrics.Metrics
 }
 
 // New opens the store, builds the engine and binds the HTTP listener, so
@@ -73,7 +76,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Service{cfg: cfg, log: log}
+	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
 	if cfg.FHIRBase != "" {
 		var auth client.Authorizer
 		if cfg.FHIRToken != "" {
@@ -81,6 +84,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		}
 		s.client, err = client.New(client.Config{
 			BaseURL: cfg.FHIRBase, Auth: auth, UserAgent: "deadspace/" + version, Logger: log,
+			Observer: s.Metrics.ClientObserver(),
 		})
 		if err != nil {
 			return nil, err
@@ -90,20 +94,19 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	if err != nil {
 		return nil, err
 	}
-	var search []string
-	for _, tok := range table.SearchTokens() {
-		search = append(search, tok)
-	}
+	search := table.SearchTokens()
 	e, err := engine.New(engine.Config{
 		Store: s.store, Decoder: decode.New(decode.Options{Table: table, Units: u}), Encoder: enc,
 		Derive: dcfg, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
+		Hooks: s.Metrics.EngineHooks(),
 	})
 	if err != nil {
 		s.store.Close()
 		return nil, err
 	}
 	s.engine = e
+	s.Metrics.SetStats(s.store.Stats)
 	hook, err := webhook.New(webhook.Config{
 		Sink: sink{e}, Secret: cfg.WebhookSecret, Header: cfg.WebhookHeader, MaxBodyBytes: cfg.MaxBodyBytes, Logger: log,
 	})
@@ -112,8 +115,10 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	mux := http.NewServeMux()
-	mux.Handle("/notify", hook)
-	mux.Handle("/notify/", hook)
+	instrumented := s.Metrics.InstrumentWebhook(hook)
+	mux.Handle("/notify", instrumented)
+	mux.Handle("/notify/", instrumented)
+	mux.Handle("GET /metrics", s.Metrics.Handler())
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
 		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
 		fmt.Fprintln(w, "ok")

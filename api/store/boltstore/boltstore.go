@@ -236,6 +236,21 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 	return nil
 }
 
+// batch is update for transactions that may be merged with concurrent
+// ones into a single commit (bbolt's Batch): one fsync then covers many
+// webhook requests, which is what lets ingest keep up with a busy feed.
+// fn may run more than once, so it must leave nothing behind outside the
+// transaction but what it recomputes on every run.
+func (s *Store) batch(ctx context.Context, op string, fn func(tx *bolt.Tx) error) error {
+	if err := ctx.Err(); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	if err := s.db.Batch(fn); err != nil {
+		return fmt.Errorf("boltstore.%s: %w", op, err)
+	}
+	return nil
+}
+
 func (s *Store) view(ctx context.Context, op string, fn func(tx *bolt.Tx) error) error {
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)

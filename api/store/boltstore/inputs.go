@@ -92,7 +92,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		}
 		return results, nil
 	}
-	err := s.update(ctx, "PutInputs", func(tx *bolt.Tx) error {
+	err := s.batch(ctx, "PutInputs", func(tx *bolt.Tx) error {
 		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
 		var changed []string
 		for i, in := range inputs {
@@ -186,7 +186,7 @@ func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input
 // would otherwise fetch again and again.
 func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) (store.PutResult, error) {
 	var res store.PutResult
-	err := s.update(ctx, "PutPatient", func(tx *bolt.Tx) error {
+	err := s.batch(ctx, "PutPatient", func(tx *bolt.Tx) error {
 		if err := checkSubject(p.Subject); err != nil {
 			return err
 		}
@@ -240,7 +240,7 @@ func (s *Store) Patient(ctx context.Context, subject string) (store.Patient, err
 // more evaluation, so it must also defeat a Commit of an evaluation that
 // started before it.
 func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) error {
-	return s.update(ctx, "MarkDirty", func(tx *bolt.Tx) error {
+	return s.batch(ctx, "MarkDirty", func(tx *bolt.Tx) error {
 		if err := checkSubject(subject); err != nil {
 			return err
 		}

@@ -17,7 +17,7 @@ import (
 // one by one inside it, so an invalid entry after valid ones rolls back
 // everything before it.
 func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) error {
-	return s.update(ctx, "Commit", func(tx *bolt.Tx) error {
+	return s.batch(ctx, "Commit", func(tx *bolt.Tx) error {
 		if err := checkSubject(change.Subject); err != nil {
 			return err
 		}

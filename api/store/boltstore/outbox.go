@@ -193,7 +193,7 @@ func (s *Store) SetCursor(ctx context.Context, name, value string) error {
 // (a redelivery) leaves it alone.
 func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
 	var prev uint64
-	err := s.update(ctx, "SeenEvent", func(tx *bolt.Tx) error {
+	err := s.batch(ctx, "SeenEvent", func(tx *bolt.Tx) error {
 		if subscription == "" {
 			return errors.New("empty subscription")
 		}

@@ -1,0 +1,249 @@
+package serve_test
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"log/slog"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"path/filepath"
+	"regexp"
+	"runtime"
+	"slices"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/serve"
+)
+
+// sink is a minimal FHIR endpoint for the benchmark: it acknowledges
+// transactions and conditional creates at once and records when each
+// patient's derived values arrived. The Medplum peer checks correctness;
+// this one keeps the server's own cost out of the service's figures.
+var gasRef = regexp.MustCompile(`"Observation/(g-[0-9]+)/_history/`)
+
+type sink struct {
+	mu      sync.Mutex
+	arrived map[string]time.Time // blood gas id → first transaction citing it
+	next    atomic.Int64
+}
+
+func (s *sink) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	body, _ := io.ReadAll(r.Body)
+	w.Header().Set("Content-Type", "application/fhir+json")
+	switch {
+	case r.Method == http.MethodGet:
+		fmt.Fprint(w, `{"resourceType":"Bundle","type":"searchset","total":0}`)
+	case r.Method == http.MethodPost && (r.URL.Path == "/fhir" || r.URL.Path == "/fhir/"):
+		var b struct {
+			Entry []struct {
+				Resource json.RawMessage `json:"resource"`
+			} `json:"entry"`
+		}
+		_ = json.Unmarshal(body, &b)
+		now := time.Now()
+		s.mu.Lock()
+		for _, m := range gasRef.FindAllSubmatch(body, -1) {
+			if _, ok := s.arrived[string(m[1])]; !ok {
+				s.arrived[string(m[1])] = now
+			}
+		}
+		s.mu.Unlock()
+		var out []string
+		for _, e := range b.Entry {
+			var m struct{ ResourceType string }
+			_ = json.Unmarshal(e.Resource, &m)
+			id := s.next.Add(1)
+			out = append(out, fmt.Sprintf(`{"response":{"status":"201","location":"%s/%d/_history/1"},"resource":{"resourceType":"%s","id":"%d","meta":{"versionId":"1"}}}`, m.ResourceType, id, m.ResourceType, id))
+		}
+		fmt.Fprintf(w, `{"resourceType":"Bundle","type":"transaction-response","entry":[%s]}`, strings.Join(out, ","))
+	default:
+		id := s.next.Add(1)
+		w.WriteHeader(http.StatusCreated)
+		fmt.Fprintf(w, `{"resourceType":"Device","id":"%d","meta":{"versionId":"1"}}`, id)
+	}
+}
+
+// BenchmarkWebhookToOutbox measures sustained notifications per second
+// through the webhook into the store, and for blood gases among them the
+// time from the webhook receiving the notification to the derived
+// transaction reaching the FHIR server, on the embedded store with fsync.
+// Each patient carries 6 hours of minute-by-minute readings of five kinds.
+func BenchmarkWebhookToOutbox(b *testing.B) {
+	const (
+		patients    = 20
+		notes       = 6000
+		senders     = 32
+		gasEvery    = 50
+		readingsPer = 6 * 60
+	)
+	for i := 0; i < b.N; i++ {
+		dir := b.TempDir()
+		fake := &sink{arrived: make(map[string]time.Time)}
+		srv := httptest.NewServer(fake)
+		cfg := testConfig(srv.URL+"/fhir", dir)
+		svc, err := serve.New(cfg, "bench", slog.New(slog.DiscardHandler))
+		if err != nil {
+			b.Fatal(err)
+		}
+		ctx, cancel := context.WithCancel(context.Background())
+		done := make(chan error, 1)
+		go func() { done <- svc.Run(ctx) }()
+		base := "http://" + svc.Addr()
+		now := time.Now().UTC().Truncate(time.Minute)
+
+		// Six hours of readings for every patient, loaded through the engine.
+		var heapBefore runtime.MemStats
+		runtime.GC()
+		runtime.ReadMemStats(&heapBefore)
+		for p := 0; p < patients; p++ {
+			subject := fmt.Sprintf("Patient/bench-%d", p)
+			batch := []json.RawMessage{json.RawMessage(fmt.Sprintf(`{"resourceType":"Patient","id":"bench-%d","meta":{"versionId":"1","lastUpdated":"2026-01-01T00:00:00Z"},"gender":"male","birthDate":"1960-01-01"}`, p)),
+				benchObs(subject, fmt.Sprintf("h-%d", p), "8302-2", "cm", 175, now.Add(-7*time.Hour))}
+			for m := readingsPer; m > 0; m-- {
+				at := now.Add(-time.Duration(m) * time.Minute)
+				for k, c := range []struct {
+					code, unit string
+					v          float64
+				}{{"19891-1", "mm[Hg]", 36}, {"76222-9", "mL", 480}, {"19840-8", "/min", 16}, {"76008-2", "L/min", 7.7}, {"60825-7", "mL/min", 210}} {
+					batch = append(batch, benchObs(subject, fmt.Sprintf("r-%d-%d-%d", p, m, k), c.code, c.unit, c.v, at))
+				}
+			}
+			if _, err := svc.Engine().Ingest(ctx, "bench", batch); err != nil {
+				b.Fatal(err)
+			}
+		}
+		waitQuiet(b, svc)
+		var heapAfter runtime.MemStats
+		runtime.GC()
+		runtime.ReadMemStats(&heapAfter)
+		diskBytes := dirSize(dir)
+
+		// The load: senders POST notifications of one resource each, mostly a
+		// new end-tidal reading, every gasEvery-th a blood gas.
+		type gasSent struct {
+			subject string
+			at      time.Time
+		}
+		var sentMu sync.Mutex
+		var gases []gasSent
+		var n atomic.Int64
+		var failures atomic.Int64
+		client := &http.Client{Transport: &http.Transport{MaxIdleConnsPerHost: senders}}
+		b.ResetTimer()
+		start := time.Now()
+		var wg sync.WaitGroup
+		for s := 0; s < senders; s++ {
+			wg.Add(1)
+			go func() {
+				defer wg.Done()
+				for {
+					k := n.Add(1)
+					if k > notes {
+						return
+					}
+					p := int(k) % patients
+					subject := fmt.Sprintf("Patient/bench-%d", p)
+					var res json.RawMessage
+					isGas := k%gasEvery == 0
+					if isGas {
+						res = benchObs(subject, fmt.Sprintf("g-%d", k), "2019-8", "mm[Hg]", 42, now.Add(-time.Duration(k%300+10)*time.Minute))
+						subject = fmt.Sprintf("g-%d", k)
+					} else {
+						res = benchObs(subject, fmt.Sprintf("n-%d", k), "19891-1", "mm[Hg]", 36, now.Add(time.Duration(k)*time.Millisecond))
+					}
+					body := notification("Subscription/bench", int(k), []json.RawMessage{res})
+					t0 := time.Now()
+					req, _ := http.NewRequest(http.MethodPost, base+"/notify", bytes.NewReader(body))
+					req.Header.Set("Authorization", "Bearer "+secret)
+					req.Header.Set("Content-Type", "application/fhir+json")
+					resp, err := client.Do(req)
+					if err != nil || resp.StatusCode != http.StatusOK {
+						failures.Add(1)
+						if resp != nil {
+							resp.Body.Close()
+						}
+						continue
+					}
+					io.Copy(io.Discard, resp.Body)
+					resp.Body.Close()
+					if isGas {
+						sentMu.Lock()
+						gases = append(gases, gasSent{subject, t0})
+						sentMu.Unlock()
+					}
+				}
+			}()
+		}
+		wg.Wait()
+		elapsed := time.Since(start)
+		b.StopTimer()
+
+		// Wait for every blood gas's transaction, then compute latencies.
+		deadline := time.Now().Add(2 * time.Minute)
+		var lat []time.Duration
+		for {
+			lat = lat[:0]
+			fake.mu.Lock()
+			for _, g := range gases {
+				if at, ok := fake.arrived[g.subject]; ok {
+					lat = append(lat, at.Sub(g.at))
+				}
+			}
+			fake.mu.Unlock()
+			if len(lat) == len(gases) || time.Now().After(deadline) {
+				break
+			}
+			time.Sleep(50 * time.Millisecond)
+		}
+		cancel()
+		<-done
+		srv.Close()
+		if failures.Load() > 0 || len(lat) != len(gases) {
+			b.Fatalf("%d failed notifications; %d of %d blood gases reached the server", failures.Load(), len(lat), len(gases))
+		}
+		slices.Sort(lat)
+		b.ReportMetric(float64(notes)/elapsed.Seconds(), "notifications/s")
+		b.ReportMetric(float64(lat[len(lat)/2].Microseconds())/1000, "p50-ms")
+		b.ReportMetric(float64(lat[len(lat)*99/100].Microseconds())/1000, "p99-ms")
+		b.ReportMetric(float64(int64(heapAfter.HeapAlloc)-int64(heapBefore.HeapAlloc))/patients, "heap-B/patient")
+		b.ReportMetric(float64(diskBytes)/patients, "disk-B/patient")
+	}
+}
+
+func benchObs(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {
+	return json.RawMessage(fmt.Sprintf(`{"resourceType":"Observation","id":"%s","meta":{"versionId":"1","lastUpdated":"%s"},"status":"final",`+
+		`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"effectiveDateTime":"%s",`+
+		`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
+		id, at.Format(time.RFC3339), code, subject, at.Format(time.RFC3339), v, unit, unit))
+}
+
+func waitQuiet(b *testing.B, svc *serve.Service) {
+	deadline := time.Now().Add(5 * time.Minute)
+	for time.Now().Before(deadline) {
+		h, err := svc.Engine().Health(context.Background())
+		if err == nil && h.Stats.DirtyPatients == 0 && h.Stats.OutboxDepth == 0 {
+			return
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	b.Fatal("the service did not settle")
+}
+
+func dirSize(dir string) int64 {
+	var n int64
+	_ = filepath.Walk(dir, func(_ string, info os.FileInfo, err error) error {
+		if err == nil && !info.IsDir() {
+			n += info.Size()
+		}
+		return nil
+	})
+	return n
+}
