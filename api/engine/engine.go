@@ -400,3 +400,13 @@ func (e *Engine) serverAnswered() {
 
 // SearchCodes returns the "system|code" tokens the engine searches for.
 func (e *Engine) SearchCodes() []string { return append([]string(nil), e.cfg.SearchCodes...) }
+
+// InputCount returns how many inputs the store holds for a patient, for
+// audits and tests that must show nothing was stored.
+func (e *Engine) InputCount(ctx context.Context, subject string) (int, error) {
+	ins, err := e.cfg.Store.Inputs(ctx, subject)
+	if err != nil {
+		return 0, fmt.Errorf("engine: %w", err)
+	}
+	return len(ins), nil
+}

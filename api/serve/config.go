@@ -39,6 +39,17 @@ type Config struct {
 	CO2Basis       string
 	CodeSystem     string
 	LogLevel       string
+	GRPCListen     string
+	TLSCert        string
+	TLSKey         string
+	GRPCClientCA   string
+	FHIRTokenURL   string
+	FHIRClientID   string
+	FHIRScope      string
+	FHIRKeyFile    string
+	FHIRKeyID      string
+	MaxTxEntries   int
+	ReadyGrace     time.Duration
 }
 
 // Bind registers every flag on fs with its default.
@@ -63,6 +74,17 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.CO2Basis, "co2-basis", "dry", "how percent CO2 becomes a pressure where the code table sets no basis: dry or wet")
 	fs.StringVar(&c.CodeSystem, "code-system", "https://deadspace-fhir.github.io/fhir/CodeSystem/dead-space", "canonical URL of the CodeSystem of the derived codes")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
+	fs.StringVar(&c.GRPCListen, "grpc-listen", "127.0.0.1:9090", "gRPC address (empty: no gRPC)")
+	fs.StringVar(&c.TLSCert, "tls-cert", "", "PEM certificate for HTTPS and gRPC TLS (with --tls-key)")
+	fs.StringVar(&c.TLSKey, "tls-key", "", "PEM private key for --tls-cert")
+	fs.StringVar(&c.GRPCClientCA, "grpc-client-ca", "", "PEM CA bundle: gRPC clients must present a certificate it signed (mutual TLS)")
+	fs.StringVar(&c.FHIRTokenURL, "fhir-token-url", "", "OAuth 2.0 token endpoint for SMART Backend Services (client credentials with a signed JWT)")
+	fs.StringVar(&c.FHIRClientID, "fhir-client-id", "", "registered client_id for --fhir-token-url")
+	fs.StringVar(&c.FHIRScope, "fhir-scope", "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru", "scopes to request from --fhir-token-url")
+	fs.StringVar(&c.FHIRKeyFile, "fhir-private-key-file", "", "PEM private key (RSA for RS384, P-384 for ES384) that signs the client assertion")
+	fs.StringVar(&c.FHIRKeyID, "fhir-key-id", "", "kid of the matching public key registered with the authorization server")
+	fs.DurationVar(&c.ReadyGrace, "ready-grace", 30*time.Second, "how long the FHIR server may fail before /readyz reports not ready")
+	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", 8, "largest transaction sent to the FHIR server; larger writes are split")
 }
 
 // EnvName is the environment variable of a flag: DEADSPACE_ and the flag's
@@ -166,6 +188,34 @@ func (c *Config) Validate() error {
 		if u, err := url.Parse(c.PublicURL); c.PublicURL == "" || err != nil || u.Host == "" {
 			errs = append(errs, errors.New("--register-subscription needs --public-url, the URL the FHIR server reaches this service at"))
 		}
+	}
+	if (c.TLSCert == "") != (c.TLSKey == "") {
+		errs = append(errs, errors.New("--tls-cert and --tls-key go together"))
+	}
+	if c.GRPCClientCA != "" && c.TLSCert == "" {
+		errs = append(errs, errors.New("--grpc-client-ca needs --tls-cert and --tls-key"))
+	}
+	if c.GRPCListen != "" {
+		if _, _, err := net.SplitHostPort(c.GRPCListen); err != nil {
+			errs = append(errs, fmt.Errorf("--grpc-listen: %w", err))
+		}
+	}
+	if c.FHIRTokenURL != "" {
+		if c.FHIRBase == "" {
+			errs = append(errs, errors.New("--fhir-token-url needs --fhir-base"))
+		}
+		if c.FHIRClientID == "" || c.FHIRKeyFile == "" {
+			errs = append(errs, errors.New("--fhir-token-url needs --fhir-client-id and --fhir-private-key-file"))
+		}
+		if c.FHIRToken != "" {
+			errs = append(errs, errors.New("use either a static FHIR token or --fhir-token-url, not both"))
+		}
+	}
+	if c.ReadyGrace < 0 {
+		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))
+	}
+	if c.MaxTxEntries < 2 {
+		errs = append(errs, fmt.Errorf("--fhir-max-transaction-entries must be at least 2, got %d", c.MaxTxEntries))
 	}
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":

@@ -2,6 +2,7 @@ package serve
 
 import (
 	"context"
+	"crypto/tls"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -14,9 +15,13 @@ import (
 	"sync"
 	"time"
 
+	"google.golang.org/grpc/credentials"
+
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/grpcapi"
 	"github.com/deadspace-fhir/deadspace/api/metrics"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -38,6 +43,38 @@ type Service struct {
 	client *client.Client
 	// Metrics is the service's Prometheus registry and instruments.
 	Metrics *metrics.Metrics
+	grpc    *grpcapi.Server
+	grpcLn  net.Listener
+	tls     *tls.Config
+	up      upstream
+}
+
+// upstream tracks whether the FHIR server is answering, from every request
+// the client makes.
+type upstream struct {
+	mu          sync.Mutex
+	lastOK      time.Time
+	failedSince time.Time // zero while the last request succeeded
+}
+
+func (u *upstream) observe(_ string, status int, _ time.Duration) {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	now := time.Now()
+	if status == 0 || status >= 500 || status == http.StatusTooManyRequests {
+		if u.failedSince.IsZero() {
+			u.failedSince = now
+		}
+		return
+	}
+	u.lastOK = now
+	u.failedSince = time.Time{}
+}
+
+func (u *upstream) state() (lastOK, failedSince time.Time) {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	return u.lastOK, u.failedSince
 }
 
 // New opens the store, builds the engine and binds the HTTP listener, so
@@ -79,12 +116,26 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
 	if cfg.FHIRBase != "" {
 		var auth client.Authorizer
-		if cfg.FHIRToken != "" {
+		switch {
+		case cfg.FHIRTokenURL != "":
+			key, err := client.LoadPrivateKeyPEM(cfg.FHIRKeyFile)
+			if err != nil {
+				return nil, fmt.Errorf("--fhir-private-key-file: %w", err)
+			}
+			ba, err := client.NewBackendAuth(client.BackendConfig{
+				TokenURL: cfg.FHIRTokenURL, ClientID: cfg.FHIRClientID, Scope: cfg.FHIRScope,
+				Key: key, KeyID: cfg.FHIRKeyID, Logger: log,
+			})
+			if err != nil {
+				return nil, err
+			}
+			auth = ba
+		case cfg.FHIRToken != "":
 			auth = client.BearerToken(cfg.FHIRToken)
 		}
 		s.client, err = client.New(client.Config{
 			BaseURL: cfg.FHIRBase, Auth: auth, UserAgent: "deadspace/" + version, Logger: log,
-			Observer: s.Metrics.ClientObserver(),
+			Observer: s.observeFHIR,
 		})
 		if err != nil {
 			return nil, err
@@ -99,7 +150,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		Store: s.store, Decoder: decode.New(decode.Options{Table: table, Units: u}), Encoder: enc,
 		Derive: dcfg, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
-		Hooks: s.Metrics.EngineHooks(),
+		Hooks: s.Metrics.EngineHooks(), MaxTransactionEntries: cfg.MaxTxEntries,
 	})
 	if err != nil {
 		s.store.Close()
@@ -124,10 +175,29 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		fmt.Fprintln(w, "ok")
 	})
 	mux.HandleFunc("GET /readyz", s.ready)
+	if cfg.TLSCert != "" {
+		s.tls, err = tlsconf.ServerConfig(cfg.TLSCert, cfg.TLSKey, "")
+		if err != nil {
+			s.store.Close()
+			return nil, fmt.Errorf("--tls-cert: %w", err)
+		}
+	}
 	s.ln, err = net.Listen("tcp", cfg.Listen)
 	if err != nil {
 		s.store.Close()
 		return nil, fmt.Errorf("--listen: %w", err)
+	}
+	if s.tls != nil {
+		s.ln = tls.NewListener(s.ln, s.tls)
+	}
+	if cfg.GRPCListen != "" {
+		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log})
+		s.grpcLn, err = net.Listen("tcp", cfg.GRPCListen)
+		if err != nil {
+			s.ln.Close()
+			s.store.Close()
+			return nil, fmt.Errorf("--grpc-listen: %w", err)
+		}
 	}
 	s.http = &http.Server{
 		Handler:           mux,
@@ -140,8 +210,37 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	return s, nil
 }
 
+// observeFHIR feeds every FHIR request to the metrics and to readiness.
+func (s *Service) observeFHIR(op string, status int, dur time.Duration) {
+	s.up.observe(op, status, dur)
+	if o := s.Metrics.ClientObserver(); o != nil {
+		o(op, status, dur)
+	}
+}
+
 // Addr is the bound HTTP address.
 func (s *Service) Addr() string { return s.ln.Addr().String() }
+
+// GRPCAddr is the bound gRPC address, or "" without gRPC.
+func (s *Service) GRPCAddr() string {
+	if s.grpcLn == nil {
+		return ""
+	}
+	return s.grpcLn.Addr().String()
+}
+
+// grpcCredentials are TLS, with client certificates required when a client
+// CA is configured, or nil for plaintext on a loopback address.
+func (s *Service) grpcCredentials() (credentials.TransportCredentials, error) {
+	if s.cfg.TLSCert == "" {
+		return nil, nil
+	}
+	c, err := tlsconf.ServerConfig(s.cfg.TLSCert, s.cfg.TLSKey, s.cfg.GRPCClientCA)
+	if err != nil {
+		return nil, err
+	}
+	return credentials.NewTLS(c), nil
+}
 
 // Engine is the service's engine, for the gRPC API and tests.
 func (s *Service) Engine() *engine.Engine { return s.engine }
@@ -161,9 +260,29 @@ func (s *Service) Run(ctx context.Context) error {
 		defer wg.Done()
 		_ = s.engine.Run(engineCtx)
 	}()
-	serveErr := make(chan error, 1)
+	serveErr := make(chan error, 2)
 	go func() { serveErr <- s.http.Serve(s.ln) }()
-	s.log.InfoContext(ctx, "serving", "addr", s.Addr(), "standalone", s.engine.Standalone())
+	grpcCtx, stopGRPC := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopGRPC()
+	var grpcDone chan struct{}
+	if s.grpc != nil {
+		creds, err := s.grpcCredentials()
+		if err != nil {
+			stopEngine()
+			wg.Wait()
+			_ = s.http.Close()
+			_ = s.store.Close()
+			return fmt.Errorf("gRPC TLS: %w", err)
+		}
+		grpcDone = make(chan struct{})
+		go func() {
+			defer close(grpcDone)
+			if err := s.grpc.Serve(grpcCtx, s.grpcLn, creds); err != nil {
+				serveErr <- fmt.Errorf("gRPC: %w", err)
+			}
+		}()
+	}
+	s.log.InfoContext(ctx, "serving", "addr", s.Addr(), "grpc", s.GRPCAddr(), "tls", s.tls != nil, "standalone", s.engine.Standalone())
 
 	var err error
 	select {
@@ -174,6 +293,10 @@ func (s *Service) Run(ctx context.Context) error {
 	defer cancel()
 	if serr := s.http.Shutdown(shutdownCtx); serr != nil && err == nil {
 		err = serr
+	}
+	stopGRPC()
+	if grpcDone != nil {
+		<-grpcDone
 	}
 	stopEngine()
 	wg.Wait()
@@ -188,8 +311,8 @@ func (s *Service) Run(ctx context.Context) error {
 }
 
 // ready answers 200 when the store answers, the FHIR server (when one is
-// configured) answered within the last five minutes, and the outbox has
-// not been stuck for five minutes.
+// configured) has answered and has not been failing for longer than the
+// ready grace, and the outbox has not been stuck for five minutes.
 func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
 	h, err := s.engine.Health(r.Context())
 	var problems []string
@@ -198,8 +321,12 @@ func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
 	}
 	now := time.Now()
 	if !s.engine.Standalone() {
-		if h.ServerOK.IsZero() || now.Sub(h.ServerOK) > 5*time.Minute {
-			problems = append(problems, "FHIR server has not answered recently")
+		lastOK, failedSince := s.up.state()
+		switch {
+		case lastOK.IsZero() && h.ServerOK.IsZero():
+			problems = append(problems, "FHIR server has not answered yet")
+		case !failedSince.IsZero() && now.Sub(failedSince) >= s.cfg.ReadyGrace:
+			problems = append(problems, "FHIR server is not answering")
 		}
 		if !h.OutboxBlockedSince.IsZero() && now.Sub(h.OutboxBlockedSince) > 5*time.Minute {
 			problems = append(problems, "outbox is not draining")

@@ -193,6 +193,7 @@ type response struct {
 // do runs the attempts. It returns a 2xx response, an *Error, or an error wrapping ctx.Err().
 func (c *Client) do(ctx context.Context, rq request) (*response, error) {
 	var last *Error
+	reauthorized := false
 	for attempt := 0; ; attempt++ {
 		if err := ctx.Err(); err != nil {
 			return nil, c.ctxErr(rq, err, last)
@@ -206,6 +207,15 @@ func (c *Client) do(ctx context.Context, rq request) (*response, error) {
 		}
 		fe.Attempts = attempt + 1
 		last = fe
+		if fe.Status == http.StatusUnauthorized && !reauthorized && attempt < c.maxRetries {
+			if inv, ok := c.auth.(Invalidator); ok {
+				// The server refused the credentials, not the request (a token revoked or
+				// rotated before its expiry): retry once, at once, with a fresh token.
+				inv.Invalidate()
+				reauthorized = true
+				continue
+			}
+		}
 		if !fe.Retryable || attempt >= c.maxRetries {
 			return nil, fe
 		}

@@ -1,0 +1,302 @@
+package serve_test
+
+import (
+	"bufio"
+	"context"
+	"crypto/tls"
+	"fmt"
+	"net/http"
+	"os"
+	"path/filepath"
+	"regexp"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus/testutil/promlint"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
+
+	"github.com/deadspace-fhir/deadspace/api/tlsconf"
+	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
+)
+
+func readyz(t *testing.T, base string, client *http.Client) int {
+	t.Helper()
+	if client == nil {
+		client = http.DefaultClient
+	}
+	resp, err := client.Get(base + "/readyz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	return resp.StatusCode
+}
+
+func TestReadinessFollowsTheFHIRServer(t *testing.T) {
+	peer := fhirtest.Start(t)
+	cfg := testConfig(peer.BaseURL, t.TempDir())
+	cfg.ReadyGrace = 0
+	s := start(t, cfg)
+	waitFor(t, "ready", func() bool { return readyz(t, s.url, nil) == http.StatusOK })
+	peer.Down()
+	// An empty rest-hook POST makes the service search the server, which
+	// now fails.
+	post(t, s.url, http.MethodPost, "/notify", nil, secret)
+	waitFor(t, "not ready while the FHIR server is down", func() bool { return readyz(t, s.url, nil) == http.StatusServiceUnavailable })
+	if code := func() int { r, _ := http.Get(s.url + "/healthz"); r.Body.Close(); return r.StatusCode }(); code != http.StatusOK {
+		t.Errorf("/healthz = %d while the FHIR server is down; liveness must not depend on it", code)
+	}
+	peer.Up()
+	post(t, s.url, http.MethodPost, "/notify", nil, secret)
+	waitFor(t, "ready again", func() bool { return readyz(t, s.url, nil) == http.StatusOK })
+}
+
+func TestMetricsCountWhatWasSentAndPassPromlint(t *testing.T) {
+	peer := fhirtest.Start(t)
+	s := start(t, testConfig(peer.BaseURL, t.TempDir()))
+	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/m", 1, b.resources), secret)
+	post(t, s.url, http.MethodPost, "/notify", []byte(`{}`), "wrong-secret-wrong-secret")
+	waitIdle(t, s)
+	resp, err := http.Get(s.url + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	raw, err := readAll(resp)
+	if err != nil {
+		t.Fatal(err)
+	}
+	problems, err := promlint.New(strings.NewReader(raw)).Lint()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, p := range problems {
+		t.Errorf("promlint: %s: %s", p.Metric, p.Text)
+	}
+	sum := func(name string, match string) float64 {
+		var total float64
+		for _, line := range strings.Split(raw, "\n") {
+			if strings.HasPrefix(line, name) && strings.Contains(line, match) {
+				var v float64
+				fields := strings.Fields(line)
+				fmt.Sscan(fields[len(fields)-1], &v)
+				total += v
+			}
+		}
+		return total
+	}
+	if got := sum("deadspace_derived_values_total{", `status="final"`); got != wantValues {
+		t.Errorf("deadspace_derived_values_total{status=final} sums to %v, want %d", got, wantValues)
+	}
+	if got, want := sum("deadspace_resources_received_total{", `mode="notification"`), float64(len(b.resources)); got != want {
+		t.Errorf("resources received by notification = %v, want %v", got, want)
+	}
+	if got := sum("deadspace_webhook_requests_total{", `status="401"`); got != 1 {
+		t.Errorf("webhook 401s = %v, want 1", got)
+	}
+	for _, id := range []string{b.subject, b.gasID} {
+		if strings.Contains(raw, strings.TrimPrefix(id, "Patient/")) {
+			t.Errorf("a metric carries the identifier %s", id)
+		}
+	}
+}
+
+func readAll(resp *http.Response) (string, error) {
+	var sb strings.Builder
+	sc := bufio.NewScanner(resp.Body)
+	sc.Buffer(make([]byte, 1<<20), 1<<24)
+	for sc.Scan() {
+		sb.WriteString(sc.Text())
+		sb.WriteByte('\n')
+	}
+	return sb.String(), sc.Err()
+}
+
+// TestDemoLogsCarryNoIdentifiers runs the demo data through the standalone
+// service with debug logs and searches every log line for every patient,
+// encounter and observation identifier and birth date in it.
+func TestDemoLogsCarryNoIdentifiers(t *testing.T) {
+	cfg := testConfig("", t.TempDir())
+	cfg.Retention = 10 * 365 * 24 * time.Hour
+	cfg.LogLevel = "debug"
+	s := start(t, cfg)
+	files, _ := filepath.Glob(filepath.Join("..", "..", "testdata", "demo", "*.ndjson"))
+	if len(files) == 0 {
+		t.Fatal("no demo files")
+	}
+	var secrets []string
+	var chunk []string
+	send := func() {
+		if len(chunk) == 0 {
+			return
+		}
+		body := `{"resourceType":"Bundle","type":"collection","entry":[` + strings.Join(chunk, ",") + `]}`
+		if code, out := post(t, s.url, http.MethodPost, "/notify", []byte(body), secret); code != http.StatusOK {
+			t.Fatalf("HTTP %d: %.300s", code, out)
+		}
+		chunk = chunk[:0]
+	}
+	idPattern := regexp.MustCompile(`"(?:id|reference|birthDate)":"([^"]+)"`)
+	for _, f := range files {
+		fh, err := os.Open(f)
+		if err != nil {
+			t.Fatal(err)
+		}
+		sc := bufio.NewScanner(fh)
+		sc.Buffer(make([]byte, 1<<20), 1<<24)
+		for sc.Scan() {
+			line := sc.Text()
+			for _, m := range idPattern.FindAllStringSubmatch(line, -1) {
+				secrets = append(secrets, m[1])
+			}
+			chunk = append(chunk, `{"resource":`+line+`}`)
+			if len(chunk) == 500 {
+				send()
+			}
+		}
+		fh.Close()
+		send()
+	}
+	waitIdle(t, s)
+	entries, err := s.svc.Engine().Derivations(context.Background(), "Patient/bed1-stable", time.Time{}, time.Now().Add(time.Hour), "", 100)
+	if err != nil || len(entries) == 0 {
+		t.Fatalf("the demo derived nothing through the service (%v)", err)
+	}
+	s.stop()
+	logs := s.logs.String()
+	if !strings.Contains(logs, "webhook request") {
+		t.Fatalf("no request logs captured:\n%.500s", logs)
+	}
+	seen := map[string]bool{}
+	for _, id := range secrets {
+		id = strings.TrimPrefix(strings.TrimPrefix(strings.TrimPrefix(id, "Patient/"), "Encounter/"), "Device/")
+		if seen[id] || len(id) < 6 {
+			continue
+		}
+		seen[id] = true
+		if strings.Contains(logs, id) {
+			t.Errorf("the logs carry the identifier or birth date %q", id)
+		}
+	}
+	if len(seen) < 100 {
+		t.Fatalf("only %d identifiers searched for; the demo scan is broken", len(seen))
+	}
+}
+
+func TestTLSForHTTPAndMutualTLSForGRPC(t *testing.T) {
+	ca := tlstest.NewCA(t)
+	server := ca.Server(t, "127.0.0.1")
+	clientCert := ca.Client(t, "early-warning-score")
+	cfg := testConfig("", t.TempDir())
+	cfg.TLSCert, cfg.TLSKey, cfg.GRPCClientCA = server.CertFile, server.KeyFile, ca.CertFile
+	s := start(t, cfg)
+	base := strings.Replace(s.url, "http://", "https://", 1)
+
+	https := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: ca.Pool(), MinVersion: tls.VersionTLS12}}}
+	if code := readyz(t, base, https); code != http.StatusOK {
+		t.Errorf("HTTPS /readyz = %d", code)
+	}
+	if resp, err := http.Get(s.url + "/healthz"); err == nil {
+		resp.Body.Close()
+		if resp.StatusCode == http.StatusOK {
+			t.Error("plain HTTP was served on the TLS listener")
+		}
+	}
+
+	health := func(c *tls.Config) error {
+		conn, err := grpc.NewClient(s.svc.GRPCAddr(), grpc.WithTransportCredentials(credentials.NewTLS(c)))
+		if err != nil {
+			return err
+		}
+		defer conn.Close()
+		ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+		defer cancel()
+		r, err := healthpb.NewHealthClient(conn).Check(ctx, &healthpb.HealthCheckRequest{})
+		if err != nil {
+			return err
+		}
+		if r.Status != healthpb.HealthCheckResponse_SERVING {
+			return fmt.Errorf("status %v", r.Status)
+		}
+		return nil
+	}
+	withCert, err := tlsconf.ClientConfig(ca.CertFile, clientCert.CertFile, clientCert.KeyFile)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := health(withCert); err != nil {
+		t.Errorf("gRPC health with a client certificate: %v", err)
+	}
+	withoutCert, err := tlsconf.ClientConfig(ca.CertFile, "", "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := health(withoutCert); err == nil {
+		t.Error("gRPC answered a client without a certificate under mutual TLS")
+	}
+}
+
+// TestHostileWebhookInput sends what an attacker or a broken sender might:
+// each gets a clear status, nothing is stored, and the service keeps
+// serving.
+func TestHostileWebhookInput(t *testing.T) {
+	cfg := testConfig("", t.TempDir())
+	cfg.MaxBodyBytes = 8 << 20
+	s := start(t, cfg)
+	obs := func(id, value string) string {
+		return `{"resourceType":"Observation","id":"` + id + `","meta":{"versionId":"1","lastUpdated":"2026-11-30T10:00:00Z"},"status":"final",` +
+			`"code":{"coding":[{"system":"http://loinc.org","code":"2019-8"}]},"subject":{"reference":"Patient/hostile"},` +
+			`"effectiveDateTime":"2026-11-30T09:50:00Z","valueQuantity":{"value":` + value + `,"unit":"mm[Hg]","system":"http://unitsofmeasure.org","code":"mm[Hg]"}}`
+	}
+	var big strings.Builder
+	big.WriteString(`{"resourceType":"Bundle","type":"collection","entry":[`)
+	for i := 0; i < 100000; i++ {
+		if i > 0 {
+			big.WriteByte(',')
+		}
+		big.WriteString(`{"fullUrl":"urn:uuid:x"}`)
+	}
+	big.WriteString(`]}`)
+	cases := []struct {
+		name, method, path, body string
+		want                     []int
+		wantText                 string
+	}{
+		{"truncated JSON", http.MethodPost, "/notify", `{"resourceType":"Bundle","entry":[{"resource":{"resourceType":"Obs`, []int{400}, "OperationOutcome"},
+		{"deep nesting", http.MethodPost, "/notify", strings.Repeat(`{"a":`, 20000) + `1` + strings.Repeat(`}`, 20000), []int{400}, "OperationOutcome"},
+		{"a huge number", http.MethodPut, "/notify/Observation/huge", obs("huge", "1e400"), []int{200, 400}, ""},
+		{"a value of the wrong type", http.MethodPut, "/notify/Observation/wrongtype", obs("wrongtype", `"forty"`), []int{200, 400}, ""},
+		{"a Bundle of 100,000 entries", http.MethodPost, "/notify", big.String(), []int{200, 400}, "OperationOutcome"},
+		{"unicode in identifiers", http.MethodPut, "/notify/Observation/%E2%98%83", obs("☃", "40"), []int{400}, "OperationOutcome"},
+		{"a PUT to a path that is not an Observation", http.MethodPut, "/notify/Medication/m1", `{"resourceType":"Medication","id":"m1"}`, []int{400, 404}, "OperationOutcome"},
+		{"a PUT to a nested path", http.MethodPut, "/notify/Observation/a/b", obs("a", "40"), []int{400, 404}, "OperationOutcome"},
+		{"a method not allowed", http.MethodDelete, "/notify", ``, []int{405}, ""},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			code, body := post(t, s.url, tc.method, tc.path, []byte(tc.body), secret)
+			ok := false
+			for _, w := range tc.want {
+				ok = ok || code == w
+			}
+			if !ok || !strings.Contains(body, tc.wantText) {
+				t.Errorf("HTTP %d %.200q, want one of %v containing %q", code, body, tc.want, tc.wantText)
+			}
+		})
+	}
+	waitIdle(t, s)
+	// The huge-number and wrong-type Observations are refused as values,
+	// the snowman id fails the id rules: nothing is kept for the patient.
+	n, err := s.svc.Engine().InputCount(context.Background(), "Patient/hostile")
+	if err != nil || n != 0 {
+		t.Errorf("stored %d inputs from hostile requests (%v)", n, err)
+	}
+	if resp, err := http.Get(s.url + "/healthz"); err != nil || resp.StatusCode != http.StatusOK {
+		t.Fatalf("the service stopped serving: %v", err)
+	}
+}
