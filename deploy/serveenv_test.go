@@ -28,9 +28,7 @@ var envOnly = map[string]bool{
 // does not know is ignored by ApplyEnv, so setting it early is harmless.
 // Delete an entry once the flag exists (TestPendingFlagsStillPending says
 // when).
-var pendingFlags = map[string]bool{
-	"grpc-listen": true,
-}
+var pendingFlags = map[string]bool{}
 
 // runtimeEnv are variables for the Go runtime, not the service.
 var runtimeEnv = map[string]bool{"GOMEMLIMIT": true, "GOMAXPROCS": true, "GOGC": true}
