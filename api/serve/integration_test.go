@@ -720,3 +720,48 @@ func TestBadWebhookInput(t *testing.T) {
 		t.Errorf("logs carry a patient identifier or the secret:\n%s", s.logs.String())
 	}
 }
+
+func TestRegisterSubscriptionCreatesOnceAndReactivates(t *testing.T) {
+	peer := fhirtest.Start(t)
+	cfg := testConfig(peer.BaseURL, t.TempDir())
+	cfg.Register = true
+	cfg.PublicURL = "https://deadspace.invalid/"
+	subs := func() []map[string]any {
+		var out []map[string]any
+		for _, raw := range peer.Search(t, "Subscription") {
+			var m map[string]any
+			_ = json.Unmarshal(raw, &m)
+			out = append(out, m)
+		}
+		return out
+	}
+	s := start(t, cfg)
+	waitFor(t, "the subscription", func() bool { return len(subs()) == 1 })
+	s.stop()
+	got := subs()[0]
+	ch := got["channel"].(map[string]any)
+	if ch["endpoint"] != "https://deadspace.invalid/notify" || ch["type"] != "rest-hook" {
+		t.Errorf("channel %v: want a rest-hook to the public URL's /notify", ch)
+	}
+	if hs, _ := ch["header"].([]any); len(hs) != 1 || hs[0] != "Authorization: Bearer "+secret {
+		t.Errorf("channel headers %v: want the webhook secret as a bearer token", ch["header"])
+	}
+	if c, _ := got["criteria"].(string); !strings.Contains(c, "http://loinc.org|2019-8") {
+		t.Errorf("criteria %q does not name the PaCO2 code", c)
+	}
+	// The server turns it off; a restart re-activates the same one.
+	got["status"] = "off"
+	body, _ := json.Marshal(got)
+	if code, _, out := peer.Do(t, http.MethodPut, "Subscription/"+got["id"].(string), body, nil); code != http.StatusOK {
+		t.Fatalf("turn off: HTTP %d %s", code, out)
+	}
+	s = start(t, cfg)
+	waitFor(t, "the subscription to be re-activated", func() bool {
+		all := subs()
+		return len(all) == 1 && all[0]["status"] == "requested"
+	})
+	s.stop()
+	if n := len(subs()); n != 1 {
+		t.Errorf("%d Subscriptions after a restart, want 1", n)
+	}
+}
