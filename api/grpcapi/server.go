@@ -55,6 +55,9 @@ type Config struct {
 	// ShutdownGrace is how long [Server.Serve] waits for calls in flight
 	// once its context ends.
 	ShutdownGrace time.Duration
+	// Watchers, when set, is told +1 when a watch stream starts and -1 when
+	// it ends, for the watch-subscribers gauge.
+	Watchers func(delta int)
 }
 
 // Server implements the API. Create it with [New].

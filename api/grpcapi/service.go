@@ -311,6 +311,10 @@ func resumeToken(seq uint64) string { return strconv.FormatUint(seq, 10) }
 // events are found by polling the feed every WatchPoll.
 func (s *Server) WatchDerivations(req *pb.WatchDerivationsRequest, stream pb.DeadSpace_WatchDerivationsServer) error {
 	ctx := stream.Context()
+	if w := s.cfg.Watchers; w != nil {
+		w(1)
+		defer w(-1)
+	}
 	filter := ""
 	if req.GetSubject() != "" {
 		subj, err := subject(req.GetSubject())

@@ -77,6 +77,12 @@ func (s *sink) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 // transaction reaching the FHIR server, on the embedded store with fsync.
 // Each patient carries 6 hours of minute-by-minute readings of five kinds.
 func BenchmarkWebhookToOutbox(b *testing.B) {
+	for _, settle := range []time.Duration{0, time.Second} {
+		b.Run("settle="+settle.String(), func(b *testing.B) { benchWebhook(b, settle) })
+	}
+}
+
+func benchWebhook(b *testing.B, settle time.Duration) {
 	const (
 		patients    = 20
 		notes       = 6000
@@ -89,6 +95,7 @@ func BenchmarkWebhookToOutbox(b *testing.B) {
 		fake := &sink{arrived: make(map[string]time.Time)}
 		srv := httptest.NewServer(fake)
 		cfg := testConfig(srv.URL+"/fhir", dir)
+		cfg.Settle = settle
 		svc, err := serve.New(cfg, "bench", slog.New(slog.DiscardHandler))
 		if err != nil {
 			b.Fatal(err)

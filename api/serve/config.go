@@ -50,6 +50,7 @@ type Config struct {
 	FHIRKeyID      string
 	MaxTxEntries   int
 	ReadyGrace     time.Duration
+	MaxConcurrent  int
 }
 
 // Bind registers every flag on fs with its default.
@@ -83,6 +84,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.FHIRScope, "fhir-scope", "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru", "scopes to request from --fhir-token-url")
 	fs.StringVar(&c.FHIRKeyFile, "fhir-private-key-file", "", "PEM private key (RSA for RS384, P-384 for ES384) that signs the client assertion")
 	fs.StringVar(&c.FHIRKeyID, "fhir-key-id", "", "kid of the matching public key registered with the authorization server")
+	fs.IntVar(&c.MaxConcurrent, "max-concurrent-requests", 256, "webhook requests handled at once; more are answered 503 with Retry-After")
 	fs.DurationVar(&c.ReadyGrace, "ready-grace", 30*time.Second, "how long the FHIR server may fail before /readyz reports not ready")
 	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", 8, "largest transaction sent to the FHIR server; larger writes are split")
 }
@@ -210,6 +212,9 @@ func (c *Config) Validate() error {
 		if c.FHIRToken != "" {
 			errs = append(errs, errors.New("use either a static FHIR token or --fhir-token-url, not both"))
 		}
+	}
+	if c.MaxConcurrent < 1 {
+		errs = append(errs, fmt.Errorf("--max-concurrent-requests must be at least 1, got %d", c.MaxConcurrent))
 	}
 	if c.ReadyGrace < 0 {
 		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))

@@ -68,7 +68,7 @@ func testConfig(base, dir string) serve.Config {
 		FHIRBase: base, Listen: "127.0.0.1:0", DataDir: dir, WebhookSecret: secret, WebhookHeader: "Authorization",
 		MaxBodyBytes: 4 << 20, Window: 5 * time.Minute, Settle: 0, Retention: 24 * time.Hour,
 		Barometric: 760, CO2Basis: "dry", CodeSystem: encode.DefaultCodeSystem, LogLevel: "info",
-		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8,
+		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256,
 	}
 }
 

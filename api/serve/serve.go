@@ -166,7 +166,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	mux := http.NewServeMux()
-	instrumented := s.Metrics.InstrumentWebhook(hook)
+	instrumented := s.Metrics.InstrumentWebhook(limitConcurrency(hook, cfg.MaxConcurrent))
 	mux.Handle("/notify", instrumented)
 	mux.Handle("/notify/", instrumented)
 	mux.Handle("GET /metrics", s.Metrics.Handler())
@@ -191,7 +191,13 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		s.ln = tls.NewListener(s.ln, s.tls)
 	}
 	if cfg.GRPCListen != "" {
-		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log})
+		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, Watchers: func(delta int) {
+			if delta > 0 {
+				s.Metrics.IncWatchSubscribers()
+			} else {
+				s.Metrics.DecWatchSubscribers()
+			}
+		}})
 		s.grpcLn, err = net.Listen("tcp", cfg.GRPCListen)
 		if err != nil {
 			s.ln.Close()
@@ -441,4 +447,26 @@ func (s *Service) register(ctx context.Context) error {
 
 func (s *Service) searchCodes() []string {
 	return s.engine.SearchCodes()
+}
+
+// limitConcurrency answers 503 with Retry-After when max requests are
+// already in flight, so a flood cannot exhaust memory or file handles; the
+// sender retries, and nothing was accepted, so nothing is lost.
+func limitConcurrency(h http.Handler, max int) http.Handler {
+	if max <= 0 {
+		return h
+	}
+	slots := make(chan struct{}, max)
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		select {
+		case slots <- struct{}{}:
+			defer func() { <-slots }()
+			h.ServeHTTP(w, r)
+		default:
+			w.Header().Set("Retry-After", "1")
+			w.Header().Set("Content-Type", "application/fhir+json")
+			w.WriteHeader(http.StatusServiceUnavailable)
+			fmt.Fprint(w, `{"resourceType":"OperationOutcome","issue":[{"severity":"error","code":"throttled","diagnostics":"too many requests in flight; retry"}]}`)
+		}
+	})
 }
