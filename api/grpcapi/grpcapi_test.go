@@ -437,7 +437,7 @@ func TestSubmitListExplain(t *testing.T) {
 		}
 		// UCUM (Schadow and McDonald, The Unified Code for Units of
 		// Measure) defines m[Hg] as 133.3220 kPa, so 1 kPa =
-		// 1000/133.3220 = 7.50064 mm[Hg] (REFERENCE.md E16a).
+		// 1000/133.3220 = 7.50064 mm[Hg] (UCUM defines m[Hg] as 133.3220 kPa).
 		if !strings.Contains(gas.Conversion, "5.99 kPa × 7.50064") || !strings.Contains(gas.Conversion, "mm[Hg]") {
 			t.Errorf("conversion = %q, want the kPa to mm[Hg] factor 7.50064", gas.Conversion)
 		}

@@ -34,7 +34,7 @@ func igFixture(t testing.TB, name string) string {
 	return string(b)
 }
 
-// obs is an arterial PaCO2 result (LOINC 2019-8, REFERENCE part 1 §1.4).
+// obs is an arterial PaCO2 result (LOINC 2019-8, as coded in the HL7 MCC IG; not checked on loinc.org).
 const obs = `{"resourceType":"Observation","id":"abg-1","status":"final",
  "code":{"coding":[{"system":"http://loinc.org","code":"2019-8"}]},
  "subject":{"reference":"Patient/p1"},"effectiveDateTime":"2025-03-01T10:15:00Z",

@@ -189,8 +189,8 @@ func TestParseVariants(t *testing.T) {
 		check func(t *testing.T, n notify.Notification)
 	}{
 		{
-			// integer64 is the R5 type of the counters (REFERENCE part 2
-			// §2, R4B→R5 diff); unsignedInt is our guess at what a server
+			// integer64 is the R5 type of the counters (the FHIR R4B to R5
+			// differences); unsignedInt is our guess at what a server
 			// built on R4 datatypes would pick. Either must be read.
 			name: "counters in other value types",
 			body: func(t *testing.T) []byte {
@@ -210,7 +210,7 @@ func TestParseVariants(t *testing.T) {
 			},
 		},
 		{
-			// eventsInNotification exists only in drafts (REFERENCE part 2 §2).
+			// eventsInNotification exists only in drafts (FHIR R4B to R5 differences §2).
 			name: "draft eventsInNotification ignored",
 			body: func(t *testing.T) []byte {
 				return edit(t, "r4-id-only.json", func(b map[string]any) {

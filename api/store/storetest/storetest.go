@@ -119,10 +119,10 @@ func sameInput(t *testing.T, got, want store.Input) {
 
 // versionCases are the ordering rule of store.Store.PutInputs. FHIR R4
 // says there is "no fixed order for version ids" (quoted in
-// shared/REFERENCE.md §3), which is why LastUpdated decides first and ids
+// FHIR R4 http.html), which is why LastUpdated decides first and ids
 // only break ties. HAPI FHIR counts versions "1", "2", … (common practice,
 // from memory), so "10" must beat "9"; Medplum writes UUIDs (measured with
-// @medplum/fhir-router 5.2.13, shared/REFERENCE.md §5), so ids that are
+// @medplum/fhir-router 5.2.13, measured), so ids that are
 // not numbers fall back to string order.
 var versionCases = []struct {
 	name                   string
