@@ -145,22 +145,9 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) time.Duration {
 
 // evaluatePatient re-derives one patient and commits what changed.
 func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
-	stored, err := e.cfg.Store.Inputs(ctx, d.Subject)
+	inputs, err := e.loadInputs(ctx, d.Subject)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
-	}
-	inputs := make([]pipeline.Input, 0, len(stored))
-	for _, in := range stored {
-		// Only what pairing needs is decoded; the rest of the stored item
-		// (original value, conversion) is for explanations.
-		h, _, err := decodeHead(in.Payload)
-		if err != nil {
-			return fmt.Errorf("engine: evaluate: stored input %s: %w", in.Logical, err)
-		}
-		if h.Type != decode.ItemReading {
-			continue // a version that withdraws or invalidates an earlier one
-		}
-		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
 	}
 	facts, err := e.patientFacts(ctx, d.Subject)
 	if err != nil {
@@ -202,6 +189,28 @@ func codeOf(en store.Entry) string {
 		return ""
 	}
 	return *obs.Code.Coding[0].Code
+}
+
+// loadInputs returns a patient's stored readings as pairing takes them.
+// Only the binary head of each is decoded; the rest of the stored item
+// (original value, conversion) is for explanations.
+func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Input, error) {
+	stored, err := e.cfg.Store.Inputs(ctx, subject)
+	if err != nil {
+		return nil, err
+	}
+	inputs := make([]pipeline.Input, 0, len(stored))
+	for _, in := range stored {
+		h, _, err := decodeHead(in.Payload)
+		if err != nil {
+			return nil, fmt.Errorf("stored input %s: %w", in.Logical, err)
+		}
+		if h.Type != decode.ItemReading {
+			continue // a version that withdraws or invalidates an earlier one
+		}
+		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+	}
+	return inputs, nil
 }
 
 // diff compares fresh results with the ledger and decides the entries to

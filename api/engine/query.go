@@ -396,19 +396,9 @@ func (e *Engine) ExplainBloodGas(ctx context.Context, subject, ref string) (Expl
 // does, without committing anything. Unlike the loop it never reads the
 // Patient from the FHIR server: a read call must not have side effects.
 func (e *Engine) recompute(ctx context.Context, subject string) ([]pipeline.Result, []derive.Omission, derive.Patient, error) {
-	stored, err := e.cfg.Store.Inputs(ctx, subject)
+	inputs, err := e.loadInputs(ctx, subject)
 	if err != nil {
 		return nil, nil, derive.Patient{}, fmt.Errorf("engine: recompute: %w", err)
-	}
-	inputs := make([]pipeline.Input, 0, len(stored))
-	for _, in := range stored {
-		si, err := decodeStored(in.Payload)
-		if err != nil {
-			return nil, nil, derive.Patient{}, fmt.Errorf("engine: recompute: stored input: %w", err)
-		}
-		if si.Item.Type == decode.ItemReading {
-			inputs = append(inputs, pipeline.Input{Reading: si.Item.Reading, Priority: si.Item.Priority})
-		}
 	}
 	var facts derive.Patient
 	p, err := e.cfg.Store.Patient(ctx, subject)

@@ -473,7 +473,7 @@ func (h *Handler) typed(ctx context.Context, id, typ, rid string, body []byte) (
 		return res, &requestError{status: http.StatusBadRequest, code: "not-supported",
 			msg: "only Observation and Patient resources are accepted here"}
 	}
-	if !validID(rid) {
+	if !notify.IsID(rid) {
 		return res, &requestError{status: http.StatusBadRequest, code: "value", msg: "the id in the path is not a FHIR id"}
 	}
 	hd, empty, err := classify(body)
@@ -526,19 +526,6 @@ func requestID(in string) string {
 	var b [16]byte
 	_, _ = rand.Read(b[:]) // crypto/rand.Read never fails since Go 1.24
 	return hex.EncodeToString(b[:])
-}
-
-func validID(s string) bool {
-	if len(s) == 0 || len(s) > 64 {
-		return false
-	}
-	for i := 0; i < len(s); i++ {
-		c := s[i]
-		if !(c >= 'a' && c <= 'z' || c >= 'A' && c <= 'Z' || c >= '0' && c <= '9' || c == '-' || c == '.') {
-			return false
-		}
-	}
-	return true
 }
 
 // isToken checks an RFC 9110 field name.

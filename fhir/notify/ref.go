@@ -48,7 +48,7 @@ func RelativeRef(ref, base string) (typ, id string, ok bool) {
 	n := len(segs)
 	switch {
 	case n >= 4 && segs[n-2] == "_history" && (!exact || n == 4):
-		if !isID(segs[n-1]) {
+		if !IsID(segs[n-1]) {
 			return "", "", false
 		}
 		typ, id = segs[n-4], segs[n-3]
@@ -57,7 +57,7 @@ func RelativeRef(ref, base string) (typ, id string, ok bool) {
 	default:
 		return "", "", false
 	}
-	if !isType(typ) || !isID(id) {
+	if !isType(typ) || !IsID(id) {
 		return "", "", false
 	}
 	return typ, id, true
@@ -78,9 +78,9 @@ func isType(s string) bool {
 	return true
 }
 
-// isID checks the R4 id datatype: [A-Za-z0-9\-\.]{1,64}
+// IsID checks the R4 id datatype: [A-Za-z0-9\-\.]{1,64}
 // (https://hl7.org/fhir/R4/datatypes.html#id).
-func isID(s string) bool {
+func IsID(s string) bool {
 	if len(s) == 0 || len(s) > 64 {
 		return false
 	}
