@@ -167,7 +167,9 @@ type Store interface {
 	DirtyPatients(ctx context.Context) ([]Dirty, error)
 	// Commit applies one evaluation atomically: ledger entries, outbox
 	// writes and feed events for every entry; it clears the dirty mark only
-	// when the patient's generation is still change.Generation.
+	// when the patient's generation is still change.Generation. Otherwise
+	// the patient stays dirty and its Since becomes now: the changes that
+	// arrived during the evaluation have waited only since it ended.
 	Commit(ctx context.Context, change Change, now time.Time) error
 
 	// Ledger returns a patient's ledger entries, in Series order.

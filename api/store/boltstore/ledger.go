@@ -76,8 +76,13 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 		}
 		if dt.Generation != change.Generation {
 			// A change arrived after the evaluation read its generation:
-			// the patient stays dirty so that change is evaluated too.
-			return nil
+			// the patient stays dirty so that change is evaluated too. Its
+			// Since restarts now, because Since means "first dirty after the
+			// last evaluation": keeping the old one would make a patient
+			// with a steady feed due at once, forever, and the settle delay
+			// would never coalesce anything.
+			dt.Since = now
+			return dirty.Put([]byte(change.Subject), encodeDirty(dt))
 		}
 		if err := dirty.Delete([]byte(change.Subject)); err != nil {
 			return err
