@@ -10,6 +10,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
 )
@@ -53,7 +54,7 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			trigger = "heartbeat-missed"
 		}
 		if err := e.CatchUp(ctx, trigger); err != nil && ctx.Err() == nil {
-			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", err)
+			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", redact(err.Error()))
 			go func() {
 				if sleep(ctx, 5*time.Second) {
 					e.RequestCatchUp("retry")
@@ -224,24 +225,27 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 }
 
 // fetchPatient reads a patient's demographics from the server when the
-// stream never carried them. A failure is logged and leaves the facts
-// unknown: the values that need them are omitted with a reason and
-// derived when they arrive.
-func (e *Engine) fetchPatient(ctx context.Context, subject string) derive.Patient {
+// stream never carried them. A patient the server does not have gives
+// empty facts: the values that need them are omitted with a reason and
+// derived when they arrive. Any other failure is an error, so the patient
+// stays pending and is evaluated again, rather than committed without facts.
+func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patient, error) {
 	id := strings.TrimPrefix(subject, "Patient/")
 	body, _, err := e.cfg.Client.Read(ctx, "Patient", id)
+	if errors.Is(err, client.ErrNotFound) {
+		return derive.Patient{}, nil
+	}
 	if err != nil {
-		e.log.WarnContext(ctx, "reading patient facts failed", "err", err)
-		return derive.Patient{}
+		return derive.Patient{}, fmt.Errorf("engine: read patient facts: %s", redact(err.Error()))
 	}
 	e.serverAnswered()
 	it, err := e.cfg.Decoder.Decode(body)
 	if err != nil || it.Type != decode.ItemPatient {
-		e.log.WarnContext(ctx, "the server's Patient resource could not be read", "err", errors.Join(err))
-		return derive.Patient{}
+		e.log.WarnContext(ctx, "the server's Patient resource could not be read; its facts stay unknown")
+		return derive.Patient{}, nil
 	}
 	if err := e.putPatient(ctx, it, e.now(), e.now()); err != nil {
-		e.log.WarnContext(ctx, "storing patient facts failed", "err", err)
+		return derive.Patient{}, err
 	}
-	return it.Patient
+	return it.Patient, nil
 }

@@ -136,6 +136,9 @@ func New(cfg Config) (*Engine, error) {
 	if cfg.Freeze <= 0 {
 		cfg.Freeze = time.Hour
 	}
+	if need := cfg.Derive.Window + cfg.Derive.Fall.Baseline + cfg.Derive.Fall.Sustain; cfg.Freeze < need {
+		errs = append(errs, fmt.Errorf("engine: the freeze margin (%v) must cover the pairing window and the fall look-back (%v), or pruning could change results", cfg.Freeze, need))
+	}
 	if cfg.Freeze >= cfg.Retention {
 		errs = append(errs, fmt.Errorf("engine: retention (%v) must be longer than the freeze margin (%v)", cfg.Retention, cfg.Freeze))
 	}
@@ -242,12 +245,17 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 				continue
 			}
+			// A withdrawal is always kept, even before the version it
+			// withdraws arrives, so a late or repeated earlier version can
+			// never bring it back.
 			logical := it.ResourceType + "/" + it.ID
-			if _, err := e.cfg.Store.Input(ctx, it.Subject, logical); errors.Is(err, store.ErrNotFound) {
-				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
-				continue
-			} else if err != nil {
-				return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
+			if it.Omission.Reason != derive.ReasonEnteredInError {
+				if _, err := e.cfg.Store.Input(ctx, it.Subject, logical); errors.Is(err, store.ErrNotFound) {
+					rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+					continue
+				} else if err != nil {
+					return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
+				}
 			}
 			in, err := toStored(it)
 			if err != nil {
@@ -273,7 +281,7 @@ func toStored(it decode.Item) (store.Input, error) {
 	}
 	return store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
-		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it), Payload: payload,
+		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
 	}, nil
 }
 
@@ -282,8 +290,18 @@ func toStored(it decode.Item) (store.Input, error) {
 // package's HeightMaxAge), so it is kept as if it had been measured a year
 // later; otherwise a long stay would lose the ventilatory ratio after one
 // retention period.
-func retentionTime(it decode.Item) time.Time {
-	if it.Reading.Kind == derive.KindHeight {
+//
+// A version that cannot be used carries no effective time; it is kept by
+// its last-updated time (or its arrival), so a withdrawal outlives, by the
+// retention, the readings it hides.
+func retentionTime(it decode.Item, now time.Time) time.Time {
+	switch {
+	case it.Type != decode.ItemReading:
+		if it.LastUpdated.After(now) {
+			return it.LastUpdated
+		}
+		return now
+	case it.Reading.Kind == derive.KindHeight:
 		return it.Reading.At().Add(derive.DefaultConfig().HeightMaxAge)
 	}
 	return it.Reading.At()

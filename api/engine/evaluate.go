@@ -315,7 +315,8 @@ func (e *Engine) record(change *store.Change, r pipeline.Result, sub encode.Bund
 			EffectiveAt: r.Time(), UpdatedAt: now, Payload: payload,
 		}
 		if prev, ok := bySeries[series]; ok {
-			en.ServerID, en.ServerVersion = prev.ServerID, prev.ServerVersion
+			// The server ids are left empty: the store keeps its own, which
+			// the writer may have updated since this evaluation read them.
 			en.Revisions = append(append([]string(nil), prev.Revisions...), prev.Key)
 		}
 		change.Entries = append(change.Entries, en)
@@ -338,6 +339,7 @@ func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) e
 		return fmt.Errorf("engine: encode entry: %w", err)
 	}
 	out := en
+	out.ServerID, out.ServerVersion = "", "" // the store keeps the current ones
 	out.Status = statusWithdrawn
 	out.UpdatedAt = now
 	out.Payload = payload
@@ -375,5 +377,5 @@ func (e *Engine) patientFacts(ctx context.Context, subject string) (derive.Patie
 	case e.cfg.Client == nil:
 		return derive.Patient{}, nil
 	}
-	return e.fetchPatient(ctx, subject), nil
+	return e.fetchPatient(ctx, subject)
 }

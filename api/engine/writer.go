@@ -11,6 +11,7 @@ import (
 	"math/rand/v2"
 	"net/http"
 	"net/url"
+	"regexp"
 	"time"
 
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
@@ -20,9 +21,10 @@ import (
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
-// errWaiting means a write depends on an earlier one that the server has not
-// acknowledged yet (an update of an Observation whose create is pending).
-var errWaiting = errors.New("waiting for an earlier write")
+// errOrphan means a write updates a derived Observation the server never
+// acknowledged creating: its create was refused. Writes of one series go in
+// order, so by the time this write is sent no create can still be pending.
+var errOrphan = errors.New("the derived Observation was never created on the server (its create was refused; see the dead letters)")
 
 // Backoff bounds for outbox retries. The client already retries each call a
 // few times; these are the longer waits between outbox attempts.
@@ -50,35 +52,67 @@ func (e *Engine) writeLoop(ctx context.Context) {
 func (e *Engine) FlushNow(ctx context.Context) { e.drain(ctx) }
 
 // drain sends due writes until none is due and returns how long to wait.
+//
+// Writes of one series go in the order they were queued: a write waits
+// while an earlier write that carries any of its series is still in the
+// outbox (not yet due, or failed in this pass). Otherwise a revision
+// retried after an outage could overtake, and undo, a later withdrawal.
 func (e *Engine) drain(ctx context.Context) time.Duration {
 	for ctx.Err() == nil {
-		due, err := e.cfg.Store.DueWrites(ctx, e.now(), 16)
+		pending, err := e.cfg.Store.DueWrites(ctx, farFuture, outboxScan)
 		if err != nil {
 			e.log.ErrorContext(ctx, "reading the outbox failed", "err", err)
 			return time.Second
 		}
-		if len(due) == 0 {
-			st, err := e.cfg.Store.Stats(ctx)
-			if err == nil && st.OutboxDepth == 0 {
-				e.mu.Lock()
-				e.outboxBlocked = time.Time{}
-				e.mu.Unlock()
-				return 30 * time.Second
-			}
-			return 250 * time.Millisecond
+		if len(pending) == 0 {
+			e.mu.Lock()
+			e.outboxBlocked = time.Time{}
+			e.mu.Unlock()
+			return 30 * time.Second
 		}
-		for _, w := range due {
+		now := e.now()
+		blocked := make(map[string]bool)
+		progressed := false
+		for _, w := range pending {
 			if ctx.Err() != nil {
 				return 0
 			}
-			e.attempt(ctx, w)
+			waits := w.NotBefore.After(now)
+			for _, s := range w.Series {
+				waits = waits || blocked[s]
+			}
+			if !waits {
+				ok, err := e.attempt(ctx, w)
+				if err != nil {
+					e.log.ErrorContext(ctx, "recording a write's outcome failed; backing off", "write", w.ID, "err", err)
+					return time.Second
+				}
+				if ok {
+					progressed = true
+					continue
+				}
+			}
+			for _, s := range w.Series {
+				blocked[s] = true
+			}
+		}
+		if !progressed {
+			return 250 * time.Millisecond
 		}
 	}
 	return 0
 }
 
-// attempt sends one write and records the outcome.
-func (e *Engine) attempt(ctx context.Context, w store.Write) {
+// farFuture makes DueWrites list the whole outbox, due or not.
+var farFuture = time.Date(9999, 1, 1, 0, 0, 0, 0, time.UTC)
+
+// outboxScan bounds one pass over the outbox.
+const outboxScan = 512
+
+// attempt sends one write and records the outcome. It reports whether the
+// write left the outbox (acknowledged or buried); an error means the store
+// could not record the outcome.
+func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 	server, err := e.send(ctx, w)
 	now := e.now()
 	switch {
@@ -86,44 +120,54 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) {
 		if aerr := e.cfg.Store.Acknowledge(ctx, w.ID, server); aerr != nil {
 			// The server has it; the next attempt's conditional creates
 			// will find it again rather than write it twice.
-			e.log.ErrorContext(ctx, "recording an acknowledged write failed", "write", w.ID, "err", aerr)
-			return
+			return false, aerr
 		}
 		e.writeResult("acknowledged")
 		e.mu.Lock()
 		e.outboxBlocked = time.Time{}
 		e.mu.Unlock()
-	case errors.Is(err, errWaiting):
-		_ = e.cfg.Store.Reschedule(ctx, w.ID, now.Add(time.Second), err.Error())
+		return true, nil
 	case ctx.Err() != nil:
 		// Shutting down: the write stays in the outbox as it was.
+		return false, nil
 	case permanent(err):
 		reason := err.Error()
 		if berr := e.cfg.Store.Bury(ctx, w.ID, reason, now); berr != nil {
-			e.log.ErrorContext(ctx, "moving a refused write to the dead letters failed", "write", w.ID, "err", berr)
-			return
+			return false, berr
 		}
 		e.writeResult("dead-letter")
 		if e.cfg.Hooks.DeadLetter != nil {
 			e.cfg.Hooks.DeadLetter()
 		}
-		e.log.ErrorContext(ctx, "the FHIR server refused a write; moved to the dead letters", "write", w.ID, "reason", reason)
+		e.log.ErrorContext(ctx, "the FHIR server refused a write; moved to the dead letters", "write", w.ID, "reason", redact(reason))
+		return true, nil
 	default:
 		wait := backoff(w.Attempts)
 		var ce *client.Error
 		if errors.As(err, &ce) && ce.RetryAfter > wait {
 			wait = ce.RetryAfter
 		}
-		_ = e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error())
+		if rerr := e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error()); rerr != nil {
+			return false, rerr
+		}
 		e.writeResult("retry")
 		e.mu.Lock()
 		if e.outboxBlocked.IsZero() {
 			e.outboxBlocked = now
 		}
 		e.mu.Unlock()
-		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", err)
+		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", redact(err.Error()))
+		return false, nil
 	}
 }
+
+// refPattern matches FHIR references, which can name a patient.
+var refPattern = regexp.MustCompile(`\b([A-Z][A-Za-z]{1,63})/[A-Za-z0-9\-.]{1,64}`)
+
+// redact hides the ids in references inside a server's error text before it
+// is logged: an OperationOutcome may say "Patient/123 not found". The
+// dead-letter record keeps the text whole for the operator.
+func redact(s string) string { return refPattern.ReplaceAllString(s, "$1/[redacted]") }
 
 func (e *Engine) writeResult(outcome string) {
 	if e.cfg.Hooks.WriteResult != nil {
@@ -132,13 +176,24 @@ func (e *Engine) writeResult(outcome string) {
 }
 
 // permanent reports whether the server refused the write for a reason a
-// retry cannot change: a 4xx other than 408 and 429.
+// retry cannot change: the content (400, 422), the resource (404, 405,
+// 410), or a create this write depends on that was itself refused.
+// Authentication (401, 403) and conflicts (409, 412) are retried: a
+// rotated credential or a concurrent edit must not send a whole backlog
+// to the dead letters.
 func permanent(err error) bool {
+	if errors.Is(err, errOrphan) {
+		return true
+	}
 	var ce *client.Error
 	if !errors.As(err, &ce) {
 		return false
 	}
-	return ce.Status >= 400 && ce.Status < 500 && ce.Status != http.StatusRequestTimeout && ce.Status != http.StatusTooManyRequests
+	switch ce.Status {
+	case http.StatusBadRequest, http.StatusNotFound, http.StatusMethodNotAllowed, http.StatusGone, http.StatusUnprocessableEntity:
+		return true
+	}
+	return false
 }
 
 // backoff is exponential with full jitter.
@@ -240,7 +295,7 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 		for i, s := range body.Series {
 			server[s] = [2]string{resp.Entries[i].ID, resp.Entries[i].VersionID}
 		}
-		return server, nil
+		return server, checkIDs(server)
 	}
 	for from := 0; from < len(obsEntries); from += e.maxEntries() {
 		to := min(from+e.maxEntries(), len(obsEntries))
@@ -263,7 +318,19 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", provJSON, mustQuery(provQuery)); err != nil {
 		return nil, err
 	}
-	return server, nil
+	return server, checkIDs(server)
+}
+
+// checkIDs refuses an acknowledgement without a server id: every later
+// update of the series would have nothing to address. The write is sent
+// again; its conditional creates find the resources and return their ids.
+func checkIDs(server map[string][2]string) error {
+	for s, id := range server {
+		if id[0] == "" {
+			return fmt.Errorf("engine: the server gave no id for the Observation of series %s", s)
+		}
+	}
+	return nil
 }
 
 func idOf(o fhir.Observation) string {
@@ -339,7 +406,7 @@ func (e *Engine) bundleOf(ctx context.Context, body writeBody) (encode.Bundle, e
 			return encode.Bundle{}, fmt.Errorf("engine: %w", err)
 		}
 		if en.ServerID == "" {
-			return encode.Bundle{}, errWaiting
+			return encode.Bundle{}, errOrphan
 		}
 		observations[i].Id = &en.ServerID
 		observations[i].Meta = nil

@@ -61,7 +61,7 @@ func (u *upstream) observe(_ string, status int, _ time.Duration) {
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	now := time.Now()
-	if status == 0 || status >= 500 || status == http.StatusTooManyRequests {
+	if status == 0 || status >= 500 || status == http.StatusTooManyRequests || status == http.StatusUnauthorized || status == http.StatusForbidden {
 		if u.failedSince.IsZero() {
 			u.failedSince = now
 		}
