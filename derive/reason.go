@@ -8,21 +8,22 @@ type Reason string
 // Reasons an input is left out. The adapters assign most of these while
 // reading resources; they live here so the whole vocabulary is in one place.
 const (
-	ReasonMalformed      Reason = "resource-malformed"       // not JSON, or not a FHIR resource of the expected type
-	ReasonUnrecognised   Reason = "code-not-recognised"      // an Observation this service has no use for
-	ReasonStatus         Reason = "status-not-usable"        // status is not final, amended or corrected
-	ReasonEnteredInError Reason = "entered-in-error"         // the input was withdrawn
-	ReasonNotArterial    Reason = "specimen-not-arterial"    // venous, capillary, unspecified or transcutaneous PCO2
-	ReasonNoValue        Reason = "value-absent"             // no valueQuantity (or a dataAbsentReason)
-	ReasonCensored       Reason = "value-censored"           // a comparator such as "<" or ">" on the value
-	ReasonUnitUnknown    Reason = "unit-not-recognised"      // a unit this service does not know
-	ReasonUnitMismatch   Reason = "unit-wrong-dimension"     // a known unit that cannot measure this kind
-	ReasonNoTime         Reason = "time-absent"              // no usable effective time
-	ReasonNoSubject      Reason = "subject-absent"           // no Patient subject
-	ReasonImplausible    Reason = "value-implausible"        // outside the physiological range of its kind
-	ReasonSuperseded     Reason = "version-superseded"       // a newer version of the same resource was seen
-	ReasonUnpaired       Reason = "no-blood-gas-nearby"      // a reading in no blood gas's window, and not part of a fall finding
-	ReasonLowerPriority  Reason = "preferred-source-present" // e.g. a set tidal volume where a measured one exists
+	ReasonMalformed      Reason = "resource-malformed"          // not JSON, or not a FHIR resource of the expected type
+	ReasonUnrecognised   Reason = "code-not-recognised"         // an Observation this service has no use for
+	ReasonStatus         Reason = "status-not-usable"           // status is not final, amended or corrected
+	ReasonEnteredInError Reason = "entered-in-error"            // the input was withdrawn
+	ReasonNotArterial    Reason = "specimen-not-arterial"       // venous, capillary, unspecified or transcutaneous PCO2
+	ReasonNoValue        Reason = "value-absent"                // no valueQuantity (or a dataAbsentReason)
+	ReasonCensored       Reason = "value-censored"              // a comparator such as "<" or ">" on the value
+	ReasonUnitUnknown    Reason = "unit-not-recognised"         // a unit this service does not know
+	ReasonUnitMismatch   Reason = "unit-wrong-dimension"        // a known unit that cannot measure this kind
+	ReasonNoTime         Reason = "time-absent"                 // no usable effective time
+	ReasonNoSubject      Reason = "subject-absent"              // no Patient subject
+	ReasonImplausible    Reason = "value-implausible"           // outside the physiological range of its kind
+	ReasonSuperseded     Reason = "version-superseded"          // a newer version of the same resource was seen
+	ReasonUnpaired       Reason = "no-blood-gas-nearby"         // a reading in no blood gas's window, and not part of a fall finding
+	ReasonLowerPriority  Reason = "preferred-source-present"    // e.g. a set tidal volume where a measured one exists
+	ReasonRefiled        Reason = "filed-under-another-patient" // a newer version of the input names another patient
 )
 
 // Reasons a derived value is not emitted.
@@ -41,7 +42,7 @@ func AllReasons() []Reason {
 		ReasonMalformed, ReasonUnrecognised, ReasonStatus, ReasonEnteredInError,
 		ReasonNotArterial, ReasonNoValue, ReasonCensored, ReasonUnitUnknown,
 		ReasonUnitMismatch, ReasonNoTime, ReasonNoSubject, ReasonImplausible,
-		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority,
+		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority, ReasonRefiled,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
 		ReasonInconsistent, ReasonNotApplicable,
 	}

@@ -21,6 +21,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"strings"
 	"sync"
 	"time"
 
@@ -265,6 +266,10 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 		}
 	}
+	inputs, err := e.refiled(ctx, inputs)
+	if err != nil {
+		return Receipt{}, err
+	}
 	if len(inputs) > 0 {
 		if _, err := e.cfg.Store.PutInputs(ctx, inputs, now); err != nil {
 			return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
@@ -272,6 +277,42 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 		signal(e.wake)
 	}
 	return rec, nil
+}
+
+// refiled puts, before each input that now names another patient than its
+// stored latest version did, a withdrawal of the copy under the first
+// patient: a result corrected to the right patient must leave nothing
+// derived from it under the wrong one. The withdrawal carries the new
+// version's id and time, so it supersedes the old copy; it comes first in
+// the batch, so the owner index ends on the new patient.
+func (e *Engine) refiled(ctx context.Context, inputs []store.Input) ([]store.Input, error) {
+	out := inputs[:0:0]
+	for _, in := range inputs {
+		owner, err := e.cfg.Store.Owner(ctx, in.Logical)
+		switch {
+		case errors.Is(err, store.ErrNotFound):
+		case err != nil:
+			return nil, fmt.Errorf("engine: ingest: %w", err)
+		case owner != in.Subject:
+			typ, id, _ := strings.Cut(in.Logical, "/")
+			ref := in.Logical
+			if in.VersionID != "" {
+				ref += "/_history/" + in.VersionID
+			}
+			tomb, err := toStored(decode.Item{
+				Type: decode.ItemOmitted, ResourceType: typ, ID: id, VersionID: in.VersionID, Ref: ref,
+				Subject: owner, LastUpdated: in.LastUpdated,
+				Omission: derive.Omission{Ref: ref, Reason: derive.ReasonRefiled, Detail: "a newer version names another patient"},
+			})
+			if err != nil {
+				return nil, err
+			}
+			e.leftOut(derive.ReasonRefiled)
+			out = append(out, tomb)
+		}
+		out = append(out, in)
+	}
+	return out, nil
 }
 
 func toStored(it decode.Item) (store.Input, error) {

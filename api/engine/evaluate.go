@@ -161,7 +161,7 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	change, err := e.diff(d, results, ledger)
+	change, err := e.diff(ctx, d, results, ledger)
 	if err != nil {
 		return err
 	}
@@ -215,7 +215,7 @@ func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Inp
 
 // diff compares fresh results with the ledger and decides the entries to
 // record and the writes to queue.
-func (e *Engine) diff(d store.Dirty, results []pipeline.Result, ledger []store.Entry) (store.Change, error) {
+func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry) (store.Change, error) {
 	now := e.now()
 	frozen := now.Add(-(e.cfg.Retention - e.cfg.Freeze))
 	bySeries := make(map[string]store.Entry, len(ledger))
@@ -234,7 +234,20 @@ func (e *Engine) diff(d store.Dirty, results []pipeline.Result, ledger []store.E
 			case r.Time().Before(frozen):
 				// Too old to touch: its inputs may already be pruned.
 			case !ok:
-				fresh = append(fresh, o)
+				// The series may be filed under another patient: its blood
+				// gas was corrected to name this one. Then the Observation
+				// on the server is updated, not created again, so the
+				// wrong patient keeps nothing.
+				other, err := e.cfg.Store.Entry(ctx, series)
+				switch {
+				case errors.Is(err, store.ErrNotFound):
+					fresh = append(fresh, o)
+				case err != nil:
+					return store.Change{}, fmt.Errorf("engine: %w", err)
+				default:
+					bySeries[series] = other
+					changed = append(changed, o)
+				}
 			case prev.Key == key && prev.Status != statusWithdrawn:
 				// Already recorded as it is.
 			default:

@@ -251,3 +251,62 @@ func TestRefusalsThatRetryAndRefusalsThatBury(t *testing.T) {
 		})
 	}
 }
+
+// TestRefiledInputWithdrawsWhatTheFirstPatientGot: a blood gas corrected
+// in place to name the right patient must leave nothing derived from it
+// under the wrong one.
+func TestRefiledInputWithdrawsWhatTheFirstPatientGot(t *testing.T) {
+	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	enc, _ := encode.New(encode.DefaultOptions())
+	eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	at := time.Now().Add(-time.Hour).Truncate(time.Minute)
+	inputs := []json.RawMessage{obs("gas", "1", "final", "2019-8", "mm[Hg]", 44, at, at)}
+	for _, p := range []string{"w1", "w2"} {
+		et := strings.Replace(string(obs("et-"+p, "1", "final", "19891-1", "mm[Hg]", 36, at, at)), "Patient/w1", "Patient/"+p, 1)
+		inputs = append(inputs, json.RawMessage(et))
+	}
+	if _, err := eng.Ingest(ctx, "test", inputs); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	statuses := func(subject string) map[string]int {
+		recs, err := eng.Derivations(ctx, subject, time.Time{}, time.Now(), "", 100)
+		if err != nil {
+			t.Fatal(err)
+		}
+		out := map[string]int{}
+		for _, r := range recs {
+			out[r.Status]++
+		}
+		return out
+	}
+	if got := statuses("Patient/w1"); got["final"] != 2 {
+		t.Fatalf("before the correction Patient/w1 has %v, want 2 final values", got)
+	}
+	moved := strings.Replace(string(obs("gas", "2", "corrected", "2019-8", "mm[Hg]", 44, at, at.Add(time.Minute))), "Patient/w1", "Patient/w2", 1)
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{json.RawMessage(moved)}); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	// The derived Observations follow their blood gas: the same series, now
+	// filed under Patient/w2 and amended, so the server updates them in
+	// place and the wrong patient keeps no live value.
+	if got := statuses("Patient/w1"); got["final"]+got["amended"] != 0 {
+		t.Errorf("after the correction Patient/w1 still has live values %v", got)
+	}
+	if got := statuses("Patient/w2"); got["amended"] != 2 {
+		t.Errorf("after the correction Patient/w2 has %v, want the 2 values moved to it, amended", got)
+	}
+}

@@ -153,6 +153,10 @@ type Store interface {
 	Inputs(ctx context.Context, subject string) ([]Input, error)
 	// Input returns one stored input by its logical reference.
 	Input(ctx context.Context, subject, logical string) (Input, error)
+	// Owner returns the subject the latest stored version of an input was
+	// filed under (ErrNotFound when none), so a version that moves the
+	// input to another patient can withdraw the copy under the first.
+	Owner(ctx context.Context, logical string) (string, error)
 
 	// PutPatient stores patient facts (the newer version wins as for inputs)
 	// and marks the patient dirty when they changed.

@@ -40,6 +40,7 @@
 package boltstore
 
 import (
+	"bytes"
 	"context"
 	"encoding/binary"
 	"errors"
@@ -59,7 +60,7 @@ var _ store.Store = (*Store)(nil)
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
 // migrate.
-const schemaVersion = 1
+const schemaVersion = 2
 
 // Errors of Open, to be matched with errors.Is.
 var (
@@ -106,11 +107,14 @@ var (
 	bCursors      = []byte("cursors")
 	bSubs         = []byte("subscriptions")
 	bFeed         = []byte("feed")
+	// bInputOwner maps a logical reference to the subject whose latest
+	// stored version it is (schema 2).
+	bInputOwner = []byte("input_owner")
 
 	allBuckets = [][]byte{
 		bMeta, bInputs, bInputsByTime, bPatients, bDirty, bLedger,
 		bLedgerBySubj, bLedgerByTime, bLedgerByKey, bOutbox, bDead,
-		bCursors, bSubs, bFeed,
+		bCursors, bSubs, bFeed, bInputOwner,
 	}
 
 	kSchema = []byte("schema")
@@ -207,11 +211,29 @@ func (s *Store) init() error {
 	})
 }
 
-// migrate brings a file of an older schema version up to date. There is
-// only version 1 so far; the check that every bucket exists catches a
-// file damaged by hand.
+// migrate brings a file of an older schema version up to date; the check
+// that every bucket exists then catches a file damaged by hand.
+//
+// Version 2 adds the owner index of inputs, built here from the inputs.
 func migrate(tx *bolt.Tx, from uint64) error {
-	_ = from
+	if from < 2 {
+		owner, err := tx.CreateBucketIfNotExists(bInputOwner)
+		if err != nil {
+			return fmt.Errorf("migrate to schema 2: %w", err)
+		}
+		if err := tx.Bucket(bInputs).ForEach(func(k, _ []byte) error {
+			i := bytes.IndexByte(k, sep)
+			if i < 0 {
+				return fmt.Errorf("%w: input key without a subject", ErrCorrupt)
+			}
+			return owner.Put(bytes.Clone(k[i+1:]), bytes.Clone(k[:i]))
+		}); err != nil {
+			return fmt.Errorf("migrate to schema 2: %w", err)
+		}
+		if err := tx.Bucket(bMeta).Put(kSchema, u64(2)); err != nil {
+			return fmt.Errorf("migrate to schema 2: %w", err)
+		}
+	}
 	for _, name := range allBuckets {
 		if tx.Bucket(name) == nil {
 			return fmt.Errorf("%w: bucket %s missing", ErrCorrupt, name)

@@ -127,6 +127,9 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			if err := byTime.Put(append(appendTimeKey(nil, in.EffectiveAt), key...), nil); err != nil {
 				return err
 			}
+			if err := tx.Bucket(bInputOwner).Put([]byte(in.Logical), []byte(in.Subject)); err != nil {
+				return err
+			}
 			if !slices.Contains(changed, in.Subject) {
 				changed = append(changed, in.Subject)
 			}
@@ -303,6 +306,17 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 			if err := b.Delete(key); err != nil {
 				return err
 			}
+			// The owner index follows the latest version only: drop it
+			// when the pruned copy was that one.
+			i := bytes.IndexByte(key, sep)
+			if i >= 0 {
+				owner := tx.Bucket(bInputOwner)
+				if o := owner.Get(key[i+1:]); o != nil && bytes.Equal(o, key[:i]) {
+					if err := owner.Delete(key[i+1:]); err != nil {
+						return err
+					}
+				}
+			}
 			n++
 		}
 		return nil
@@ -311,4 +325,22 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 		return 0, err
 	}
 	return n, nil
+}
+
+// Owner returns the subject under which the latest stored version of an
+// input was filed, or ErrNotFound.
+func (s *Store) Owner(ctx context.Context, logical string) (string, error) {
+	var subject string
+	err := s.view(ctx, "Owner", func(tx *bolt.Tx) error {
+		v := tx.Bucket(bInputOwner).Get([]byte(logical))
+		if v == nil {
+			return store.ErrNotFound
+		}
+		subject = string(v)
+		return nil
+	})
+	if err != nil {
+		return "", err
+	}
+	return subject, nil
 }
