@@ -107,20 +107,9 @@ func (c *commonFlags) options() (derive.Config, decode.Options, encode.Options, 
 	if err := cfg.Validate(); err != nil {
 		errs = append(errs, err)
 	}
-	table := codes.Default()
-	if c.codesFile != "" {
-		f, err := os.Open(c.codesFile)
-		if err != nil {
-			errs = append(errs, fmt.Errorf("--codes: %w", err))
-		} else {
-			site, err := codes.Load(f)
-			f.Close()
-			if err != nil {
-				errs = append(errs, fmt.Errorf("--codes %s: %w", c.codesFile, err))
-			} else {
-				table = site
-			}
-		}
+	table, err := codes.LoadFile(c.codesFile)
+	if err != nil {
+		errs = append(errs, fmt.Errorf("--codes: %w", err))
 	}
 	u := units.Options{BarometricPressure: c.barometric}
 	basis, err := units.ParseBasis(c.co2Basis)

@@ -13,6 +13,8 @@ import (
 	"os"
 	"strings"
 	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
 )
 
 // Config is every setting of deadspace serve. Each field has a flag and an
@@ -51,6 +53,20 @@ type Config struct {
 	MaxTxEntries   int
 	ReadyGrace     time.Duration
 	MaxConcurrent  int
+	FallDrop       float64
+	FallSustain    time.Duration
+	FallBaseline   time.Duration
+}
+
+// deriveConfig is the derivation rules the flags select; replay takes the
+// same flags, so a live service and an offline replay of its data agree.
+func (c *Config) deriveConfig() derive.Config {
+	d := derive.DefaultConfig()
+	d.Window = c.Window
+	d.Fall.Drop = c.FallDrop
+	d.Fall.Sustain = c.FallSustain
+	d.Fall.Baseline = c.FallBaseline
+	return d
 }
 
 // Bind registers every flag on fs with its default.
@@ -63,7 +79,11 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.WebhookSecFile, "webhook-secret-file", "", "file holding the webhook secret")
 	fs.StringVar(&c.WebhookHeader, "webhook-header", "Authorization", "header carrying the secret: Authorization means \"Bearer <secret>\"; any other header carries the secret itself")
 	fs.Int64Var(&c.MaxBodyBytes, "max-body-bytes", 4<<20, "largest webhook request body accepted")
-	fs.DurationVar(&c.Window, "window", 5*time.Minute, "pairing window on each side of a blood gas's sample time")
+	d := derive.DefaultConfig()
+	fs.DurationVar(&c.Window, "window", d.Window, "pairing window on each side of a blood gas's sample time")
+	fs.Float64Var(&c.FallDrop, "fall-drop", d.Fall.Drop, "EtCO2 fall below baseline, in mm[Hg], that counts")
+	fs.DurationVar(&c.FallSustain, "fall-sustain", d.Fall.Sustain, "how long an EtCO2 fall must last to be reported")
+	fs.DurationVar(&c.FallBaseline, "fall-baseline", d.Fall.Baseline, "how far back the EtCO2 baseline reaches")
 	fs.DurationVar(&c.PollInterval, "poll-interval", 0, "search the FHIR server for changes this often (0: only at start, on gaps and on empty rest-hooks)")
 	fs.DurationVar(&c.Settle, "settle", 30*time.Second, "how long new data waits before it is derived, so late readings are included")
 	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
@@ -221,6 +241,9 @@ func (c *Config) Validate() error {
 	}
 	if c.MaxTxEntries < 2 {
 		errs = append(errs, fmt.Errorf("--fhir-max-transaction-entries must be at least 2, got %d", c.MaxTxEntries))
+	}
+	if err := c.deriveConfig().Validate(); err != nil {
+		errs = append(errs, err)
 	}
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":

@@ -69,6 +69,7 @@ func testConfig(base, dir string) serve.Config {
 		MaxBodyBytes: 4 << 20, Window: 5 * time.Minute, Settle: 0, Retention: 24 * time.Hour,
 		Barometric: 760, CO2Basis: "dry", CodeSystem: encode.DefaultCodeSystem, LogLevel: "info",
 		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256,
+		FallDrop: 8, FallSustain: 3 * time.Minute, FallBaseline: 30 * time.Minute,
 	}
 }
 

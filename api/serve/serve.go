@@ -9,7 +9,6 @@ import (
 	"log/slog"
 	"net"
 	"net/http"
-	"os"
 	"path/filepath"
 	"strings"
 	"sync"
@@ -23,7 +22,6 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
-	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
@@ -81,22 +79,13 @@ func (u *upstream) state() (lastOK, failedSince time.Time) {
 // that a bad address or a locked store fails here, before anything runs.
 // cfg must have passed Validate.
 func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
-	dcfg := derive.DefaultConfig()
-	dcfg.Window = cfg.Window
+	dcfg := cfg.deriveConfig()
 	if err := dcfg.Validate(); err != nil {
 		return nil, err
 	}
-	table := codes.Default()
-	if cfg.CodesFile != "" {
-		f, err := os.Open(cfg.CodesFile)
-		if err != nil {
-			return nil, fmt.Errorf("--codes: %w", err)
-		}
-		table, err = codes.Load(f)
-		f.Close()
-		if err != nil {
-			return nil, fmt.Errorf("--codes %s: %w", cfg.CodesFile, err)
-		}
+	table, err := codes.LoadFile(cfg.CodesFile)
+	if err != nil {
+		return nil, fmt.Errorf("--codes: %w", err)
 	}
 	basis, err := units.ParseBasis(cfg.CO2Basis)
 	if err != nil {

@@ -52,6 +52,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"os"
 	"slices"
 	"strings"
 	"sync"
@@ -133,6 +134,24 @@ var defaultTable = sync.OnceValue(func() *Table {
 // Default returns the embedded default table. The same *Table is returned
 // on every call; tables are immutable.
 func Default() *Table { return defaultTable() }
+
+// LoadFile is Load for a site file by path; an empty path means the
+// default table alone. Both commands read the --codes flag through it.
+func LoadFile(path string) (*Table, error) {
+	if path == "" {
+		return Default(), nil
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, fmt.Errorf("codes.LoadFile: %w", err)
+	}
+	defer f.Close()
+	t, err := Load(f)
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", path, err)
+	}
+	return t, nil
+}
 
 // Load reads a site table and merges it over the default table, as
 // [Table.Merge] describes.
