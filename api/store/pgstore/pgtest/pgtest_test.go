@@ -36,3 +36,29 @@ func TestNewDatabaseIsolated(t *testing.T) {
 		t.Fatalf("a table made in one test database is visible in another")
 	}
 }
+
+// A table made through one schema's URL lands in that schema only.
+func TestNewSchemaIsolated(t *testing.T) {
+	ctx := context.Background()
+	first, second := NewSchema(t), NewSchema(t)
+	a, err := pgx.Connect(ctx, first)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer a.Close(ctx)
+	if _, err := a.Exec(ctx, "CREATE TABLE only_here (x int)"); err != nil {
+		t.Fatal(err)
+	}
+	b, err := pgx.Connect(ctx, second)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer b.Close(ctx)
+	if _, err := b.Exec(ctx, "SELECT * FROM only_here"); err == nil {
+		t.Fatalf("a table made in one test schema is visible from another")
+	}
+	// And the second can make its own of the same name.
+	if _, err := b.Exec(ctx, "CREATE TABLE only_here (x int)"); err != nil {
+		t.Fatal(err)
+	}
+}

@@ -1,0 +1,132 @@
+package pgstore
+
+import (
+	"cmp"
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"strings"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+// querier is what both the pool and a transaction offer, so that helpers
+// run inside or outside one.
+type querier interface {
+	Exec(ctx context.Context, sql string, args ...any) (pgconn.CommandTag, error)
+	Query(ctx context.Context, sql string, args ...any) (pgx.Rows, error)
+	QueryRow(ctx context.Context, sql string, args ...any) pgx.Row
+}
+
+// markDirty marks a patient dirty: the earliest Since stands, the
+// generation is a new one. A claim on the patient stays: the replica
+// evaluating it finds on commit that the generation moved, and leaves the
+// mark for the next evaluation.
+func markDirty(ctx context.Context, q querier, subject string, now time.Time) error {
+	_, err := q.Exec(ctx, `
+		INSERT INTO dirty (subject, since_ns, generation) VALUES ($1, $2, nextval('dirty_generation'))
+		ON CONFLICT (subject) DO UPDATE
+		   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation`,
+		subject, nanos(now))
+	return err
+}
+
+// MarkDirty marks a patient for evaluation without a new input.
+func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) error {
+	if err := checkSubject(subject); err != nil {
+		return fmt.Errorf("pgstore.MarkDirty: %w", err)
+	}
+	if err := markDirty(ctx, s.pool, subject, now); err != nil {
+		return wrap("MarkDirty", err)
+	}
+	return nil
+}
+
+// DirtyPatients lists every dirty patient, claimed or not, by Since then
+// Subject.
+func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
+	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation FROM dirty ORDER BY since_ns, subject`)
+	if err != nil {
+		return nil, wrap("DirtyPatients", err)
+	}
+	out, err := pgx.CollectRows(rows, scanDirty)
+	if err != nil {
+		return nil, wrap("DirtyPatients", err)
+	}
+	return out, nil
+}
+
+func scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
+	var d store.Dirty
+	var since, gen int64
+	err := row.Scan(&d.Subject, &since, &gen)
+	d.Since, d.Generation = fromNanos(since), uint64(gen)
+	return d, err
+}
+
+// ClaimDirty claims for this replica, for ttl, up to limit dirty patients
+// marked at or before settledBefore that no replica holds an unexpired
+// claim on, oldest first. Replicas claiming at the same time get disjoint
+// patients and do not wait for each other (FOR UPDATE SKIP LOCKED); a
+// claim whose replica died lapses after ttl and the patient is claimed
+// again. A patient this replica already claims is not returned twice.
+//
+// The claim keeps two replicas from evaluating one patient at once; the
+// compare-and-swap of Commit still decides, so a replica that outlived its
+// claim cannot overwrite a newer evaluation.
+func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit int, ttl time.Duration) ([]store.Dirty, error) {
+	if limit <= 0 || ttl <= 0 {
+		return nil, fmt.Errorf("pgstore.ClaimDirty: limit %d and ttl %v must be positive", limit, ttl)
+	}
+	rows, err := s.pool.Query(ctx, `
+		WITH picked AS (
+			SELECT subject FROM dirty
+			 WHERE since_ns <= $1 AND (claimed_by IS NULL OR claim_expires <= clock_timestamp())
+			 ORDER BY since_ns, subject
+			 LIMIT $2
+			 FOR UPDATE SKIP LOCKED)
+		UPDATE dirty d
+		   SET claimed_by = $3, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
+		  FROM picked
+		 WHERE d.subject = picked.subject
+		RETURNING d.subject, d.since_ns, d.generation`,
+		nanos(settledBefore), limit, s.holder, ttl.Microseconds())
+	if err != nil {
+		return nil, wrap("ClaimDirty", err)
+	}
+	out, err := pgx.CollectRows(rows, scanDirty)
+	if err != nil {
+		return nil, wrap("ClaimDirty", err)
+	}
+	slices.SortFunc(out, func(a, b store.Dirty) int {
+		return cmp.Or(a.Since.Compare(b.Since), strings.Compare(a.Subject, b.Subject))
+	})
+	return out, nil
+}
+
+// ReleaseClaim gives up this replica's claim on a patient that stays dirty
+// (an evaluation that failed or was put off), so that any replica may take
+// it at once. Commit releases the claim itself.
+func (s *Store) ReleaseClaim(ctx context.Context, subject string) error {
+	_, err := s.pool.Exec(ctx, `UPDATE dirty SET claimed_by = NULL, claim_expires = NULL WHERE subject = $1 AND claimed_by = $2`,
+		subject, s.holder)
+	if err != nil {
+		return wrap("ReleaseClaim", err)
+	}
+	return nil
+}
+
+func checkSubject(subject string) error {
+	if subject == "" {
+		return errors.New("empty subject")
+	}
+	if strings.IndexByte(subject, 0) >= 0 {
+		return errors.New("subject contains a NUL byte")
+	}
+	return nil
+}
