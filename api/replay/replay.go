@@ -16,13 +16,14 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/bulk"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // MaxLineBytes bounds one NDJSON line. A longer line is reported and
 // skipped rather than read into memory whole.
-const MaxLineBytes = 16 << 20
+const MaxLineBytes = bulk.MaxLineBytes
 
 // Options configures a replay.
 type Options struct {
@@ -121,28 +122,10 @@ func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, out *Ou
 	}
 }
 
-// readLine returns the next line without its newline. A line over
+// readLine returns the next line without its newline; a line over
 // MaxLineBytes is consumed and reported as too long.
 func readLine(r *bufio.Reader) (line []byte, tooLong bool, err error) {
-	var buf []byte
-	for {
-		chunk, err := r.ReadSlice('\n')
-		if buf == nil && !tooLong && !errors.Is(err, bufio.ErrBufferFull) {
-			// The common case: the whole line is in the reader's buffer and
-			// the decoder copies what it keeps, so no copy is needed here.
-			return bytes.TrimRight(chunk, "\r\n"), false, err
-		}
-		if len(buf)+len(chunk) > MaxLineBytes {
-			tooLong = true
-			buf = buf[:0]
-		} else if !tooLong {
-			buf = append(buf, chunk...)
-		}
-		if errors.Is(err, bufio.ErrBufferFull) {
-			continue
-		}
-		return bytes.TrimRight(buf, "\r\n"), tooLong, err
-	}
+	return bulk.ReadLine(r, MaxLineBytes)
 }
 
 // ReasonCounts counts omissions by reason, in the vocabulary's order.

@@ -97,6 +97,7 @@ func (c Config) Validate() error {
 type Client struct {
 	base        *url.URL
 	hc          *http.Client
+	stream      *http.Client // hc without its overall timeout, for Stream
 	auth        Authorizer
 	ua          string
 	maxRetries  int
@@ -136,6 +137,7 @@ func New(cfg Config) (*Client, error) {
 	if c.hc == nil {
 		c.hc = &http.Client{Timeout: DefaultTimeout}
 	}
+	c.stream = &http.Client{Transport: c.hc.Transport, CheckRedirect: c.hc.CheckRedirect, Jar: c.hc.Jar}
 	if c.ua == "" {
 		c.ua = DefaultUserAgent
 	}
