@@ -7,9 +7,12 @@
 //
 //	deadspace replay [flags] FILE...   derive from NDJSON files, offline
 //	deadspace serve [flags]            the live service
+//	deadspace backfill [flags] [FILE...] derive history (a Bulk Data export
+//	                                   or NDJSON files) and write it back
 //	deadspace version                  print the version
 //
-// Run "deadspace replay -h" or "deadspace serve -h" for the flags.
+// Run "deadspace replay -h", "deadspace serve -h" or "deadspace backfill -h"
+// for the flags.
 package main
 
 import (
@@ -24,9 +27,11 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/backfill"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/bulk"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
@@ -53,7 +58,7 @@ func main() {
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
-		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace version")
+		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace backfill [flags] [FILE...] | deadspace version")
 		return exitUsage
 	}
 	switch args[0] {
@@ -61,11 +66,13 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runReplay(ctx, args[1:], stdout, stderr)
 	case "serve":
 		return runServe(ctx, args[1:], os.Getenv, stderr)
+	case "backfill":
+		return runBackfill(ctx, args[1:], os.Getenv, stderr)
 	case "version":
 		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
 		return exitOK
 	case "-h", "-help", "--help", "help":
-		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace version")
+		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace backfill [flags] [FILE...] | deadspace version")
 		return exitOK
 	}
 	fmt.Fprintf(stderr, "deadspace: unknown command %q\n", args[0])
@@ -272,4 +279,95 @@ func newLogger(w io.Writer, level string) *slog.Logger {
 	var l slog.Level
 	_ = l.UnmarshalText([]byte(level))
 	return slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: l}))
+}
+
+func runBackfill(ctx context.Context, args []string, getenv func(string) string, stderr io.Writer) int {
+	fs := flag.NewFlagSet("backfill", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: deadspace backfill [flags] [FILE...]\n\nDerives a unit's history and writes it to the FHIR server as serve would, exactly once.\nWithout files it runs a Bulk Data export on the server (--export system, patient or\ngroup with --group); with files it reads NDJSON as replay does. Interrupted, it resumes\nwhen run again with the same arguments and --state-dir. Every flag can also be set by\nan environment variable, as for serve (DEADSPACE_STATE_DIR, DEADSPACE_FHIR_TOKEN, ...).\n\nFlags:")
+		fs.PrintDefaults()
+	}
+	var common commonFlags
+	common.register(fs)
+	var conn serve.Config
+	conn.BindFHIR(fs)
+	exportBase := fs.String("export-base", "", "base URL of the Bulk Data server when it is not --fhir-base (same credentials)")
+	level := fs.String("export", "system", "export level when no files are given: system, patient or group")
+	group := fs.String("group", "", "Group id for --export group (setting it implies --export group)")
+	since := fs.String("since", "", "RFC 3339 instant: export only resources changed after it (_since)")
+	typeFilter := fs.Bool("type-filter", true, "ask the server for only the Observation codes this service recognises (_typeFilter; dropped if the server refuses it)")
+	stateDir := fs.String("state-dir", "deadspace-backfill", "directory of the resumable state (an embedded store) and the downloads")
+	dryRun := fs.Bool("dry-run", false, "derive and report counts without writing to the FHIR server")
+	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
+	files, err := parseInterspersed(fs, args)
+	if err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		return exitUsage
+	}
+	errs := []error{conn.ApplyEnv(fs, getenv), conn.ValidateFHIR()}
+	cfg, decOpts, encOpts, err := common.options()
+	errs = append(errs, err)
+	opts := backfill.Options{
+		Derive: cfg, Decode: decOpts, Encode: encOpts, Files: files, TypeFilter: *typeFilter,
+		StateDir: *stateDir, DryRun: *dryRun, MaxTransactionEntries: conn.MaxTxEntries,
+	}
+	if len(files) == 0 {
+		req := bulk.Request{Level: bulk.Level(*level), GroupID: *group}
+		if *group != "" {
+			req.Level = bulk.Group
+		}
+		if *since != "" {
+			t, err := time.Parse(time.RFC3339Nano, *since)
+			errs = append(errs, err)
+			req.Since = t
+		}
+		opts.Export = &req
+		if conn.FHIRBase == "" && *exportBase == "" {
+			errs = append(errs, errors.New("give NDJSON files, or --fhir-base (or --export-base) to run an export"))
+		}
+	}
+	if conn.FHIRBase == "" && !*dryRun {
+		errs = append(errs, errors.New("--fhir-base is required to write (or use --dry-run)"))
+	}
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace backfill: configuration:\n%v\n", err)
+		return exitUsage
+	}
+	terminal := stderr == io.Writer(os.Stderr) && isTerminal(os.Stderr)
+	log := newLogger(stderr, *logLevel)
+	if conn.FHIRBase != "" {
+		if opts.Client, err = serve.FHIRClient(conn, version, log, nil); err != nil {
+			log.Error("start-up failed", "err", err)
+			return exitFailed
+		}
+	}
+	if *exportBase != "" {
+		exp := conn
+		exp.FHIRBase = *exportBase
+		if opts.ExportClient, err = serve.FHIRClient(exp, version, log, nil); err != nil {
+			log.Error("start-up failed", "err", err)
+			return exitFailed
+		}
+	}
+	opts.Logger, opts.Progress, opts.Terminal = log, stderr, terminal
+	sum, err := backfill.Run(ctx, opts)
+	_ = backfill.WriteSummary(stderr, sum)
+	if err != nil {
+		fmt.Fprintf(stderr, "deadspace backfill: %v\n", err)
+		return exitFailed
+	}
+	if sum.SkippedLines > 0 {
+		return exitSkipped
+	}
+	return exitOK
+}
+
+// isTerminal reports whether f is a character device (a terminal), without
+// a dependency: progress is redrawn in place only there.
+func isTerminal(f *os.File) bool {
+	fi, err := f.Stat()
+	return err == nil && fi.Mode()&os.ModeCharDevice != 0
 }

@@ -71,8 +71,7 @@ func (c *Config) deriveConfig() derive.Config {
 
 // Bind registers every flag on fs with its default.
 func (c *Config) Bind(fs *flag.FlagSet) {
-	fs.StringVar(&c.FHIRBase, "fhir-base", "", "FHIR server base URL; without it the service runs standalone and keeps results in its store")
-	fs.StringVar(&c.FHIRTokenFile, "fhir-token-file", "", "file holding a bearer token for the FHIR server (or set DEADSPACE_FHIR_TOKEN)")
+	c.BindFHIR(fs)
 	fs.StringVar(&c.Listen, "listen", "127.0.0.1:8080", "HTTP address for the webhook, /healthz and /readyz")
 	fs.StringVar(&c.DataDir, "data-dir", "deadspace-data", "directory of the embedded store")
 	fs.StringVar(&c.WebhookSecret, "webhook-secret", "", "shared secret the FHIR server sends with each notification (prefer DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file)")
@@ -99,13 +98,21 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.TLSCert, "tls-cert", "", "PEM certificate for HTTPS and gRPC TLS (with --tls-key)")
 	fs.StringVar(&c.TLSKey, "tls-key", "", "PEM private key for --tls-cert")
 	fs.StringVar(&c.GRPCClientCA, "grpc-client-ca", "", "PEM CA bundle: gRPC clients must present a certificate it signed (mutual TLS)")
+	fs.IntVar(&c.MaxConcurrent, "max-concurrent-requests", 256, "webhook requests handled at once; more are answered 503 with Retry-After")
+	fs.DurationVar(&c.ReadyGrace, "ready-grace", 30*time.Second, "how long the FHIR server may fail before /readyz reports not ready")
+}
+
+// BindFHIR registers the flags of the FHIR server connection: its base,
+// the bearer token or SMART Backend Services credentials, and the
+// transaction size. deadspace backfill takes the same ones.
+func (c *Config) BindFHIR(fs *flag.FlagSet) {
+	fs.StringVar(&c.FHIRBase, "fhir-base", "", "FHIR server base URL; without it the service runs standalone and keeps results in its store")
+	fs.StringVar(&c.FHIRTokenFile, "fhir-token-file", "", "file holding a bearer token for the FHIR server (or set DEADSPACE_FHIR_TOKEN)")
 	fs.StringVar(&c.FHIRTokenURL, "fhir-token-url", "", "OAuth 2.0 token endpoint for SMART Backend Services (client credentials with a signed JWT)")
 	fs.StringVar(&c.FHIRClientID, "fhir-client-id", "", "registered client_id for --fhir-token-url")
 	fs.StringVar(&c.FHIRScope, "fhir-scope", "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru", "scopes to request from --fhir-token-url")
 	fs.StringVar(&c.FHIRKeyFile, "fhir-private-key-file", "", "PEM private key (RSA for RS384, P-384 for ES384) that signs the client assertion")
 	fs.StringVar(&c.FHIRKeyID, "fhir-key-id", "", "kid of the matching public key registered with the authorization server")
-	fs.IntVar(&c.MaxConcurrent, "max-concurrent-requests", 256, "webhook requests handled at once; more are answered 503 with Retry-After")
-	fs.DurationVar(&c.ReadyGrace, "ready-grace", 30*time.Second, "how long the FHIR server may fail before /readyz reports not ready")
 	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", 8, "largest transaction sent to the FHIR server; larger writes are split")
 }
 
@@ -151,19 +158,7 @@ func readSecret(path string) (string, error) {
 // loads secrets from their files.
 func (c *Config) Validate() error {
 	var errs []error
-	if c.FHIRBase != "" {
-		u, err := url.Parse(c.FHIRBase)
-		if err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" {
-			errs = append(errs, fmt.Errorf("--fhir-base must be an http or https URL, got %q", c.FHIRBase))
-		}
-	}
-	if c.FHIRTokenFile != "" {
-		tok, err := readSecret(c.FHIRTokenFile)
-		if err != nil {
-			errs = append(errs, fmt.Errorf("--fhir-token-file: %w", err))
-		}
-		c.FHIRToken = tok
-	}
+	errs = append(errs, c.validateFHIR()...)
 	if c.WebhookSecFile != "" {
 		s, err := readSecret(c.WebhookSecFile)
 		if err != nil {
@@ -222,6 +217,42 @@ func (c *Config) Validate() error {
 			errs = append(errs, fmt.Errorf("--grpc-listen: %w", err))
 		}
 	}
+	if c.MaxConcurrent < 1 {
+		errs = append(errs, fmt.Errorf("--max-concurrent-requests must be at least 1, got %d", c.MaxConcurrent))
+	}
+	if c.ReadyGrace < 0 {
+		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))
+	}
+	if err := c.deriveConfig().Validate(); err != nil {
+		errs = append(errs, err)
+	}
+	switch c.LogLevel {
+	case "debug", "info", "warn", "error":
+	default:
+		errs = append(errs, fmt.Errorf("--log-level must be debug, info, warn or error, got %q", c.LogLevel))
+	}
+	return errors.Join(errs...)
+}
+
+// ValidateFHIR checks the FHIR connection settings only, reporting every
+// problem at once, and reads the token file.
+func (c *Config) ValidateFHIR() error { return errors.Join(c.validateFHIR()...) }
+
+func (c *Config) validateFHIR() []error {
+	var errs []error
+	if c.FHIRBase != "" {
+		u, err := url.Parse(c.FHIRBase)
+		if err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" {
+			errs = append(errs, fmt.Errorf("--fhir-base must be an http or https URL, got %q", c.FHIRBase))
+		}
+	}
+	if c.FHIRTokenFile != "" {
+		tok, err := readSecret(c.FHIRTokenFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--fhir-token-file: %w", err))
+		}
+		c.FHIRToken = tok
+	}
 	if c.FHIRTokenURL != "" {
 		if c.FHIRBase == "" {
 			errs = append(errs, errors.New("--fhir-token-url needs --fhir-base"))
@@ -233,22 +264,8 @@ func (c *Config) Validate() error {
 			errs = append(errs, errors.New("use either a static FHIR token or --fhir-token-url, not both"))
 		}
 	}
-	if c.MaxConcurrent < 1 {
-		errs = append(errs, fmt.Errorf("--max-concurrent-requests must be at least 1, got %d", c.MaxConcurrent))
-	}
-	if c.ReadyGrace < 0 {
-		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))
-	}
 	if c.MaxTxEntries < 2 {
 		errs = append(errs, fmt.Errorf("--fhir-max-transaction-entries must be at least 2, got %d", c.MaxTxEntries))
 	}
-	if err := c.deriveConfig().Validate(); err != nil {
-		errs = append(errs, err)
-	}
-	switch c.LogLevel {
-	case "debug", "info", "warn", "error":
-	default:
-		errs = append(errs, fmt.Errorf("--log-level must be debug, info, warn or error, got %q", c.LogLevel))
-	}
-	return errors.Join(errs...)
+	return errs
 }

@@ -104,28 +104,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	}
 	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
 	if cfg.FHIRBase != "" {
-		var auth client.Authorizer
-		switch {
-		case cfg.FHIRTokenURL != "":
-			key, err := client.LoadPrivateKeyPEM(cfg.FHIRKeyFile)
-			if err != nil {
-				return nil, fmt.Errorf("--fhir-private-key-file: %w", err)
-			}
-			ba, err := client.NewBackendAuth(client.BackendConfig{
-				TokenURL: cfg.FHIRTokenURL, ClientID: cfg.FHIRClientID, Scope: cfg.FHIRScope,
-				Key: key, KeyID: cfg.FHIRKeyID, Logger: log,
-			})
-			if err != nil {
-				return nil, err
-			}
-			auth = ba
-		case cfg.FHIRToken != "":
-			auth = client.BearerToken(cfg.FHIRToken)
-		}
-		s.client, err = client.New(client.Config{
-			BaseURL: cfg.FHIRBase, Auth: auth, UserAgent: "deadspace/" + version, Logger: log,
-			Observer: s.observeFHIR,
-		})
+		s.client, err = FHIRClient(cfg, version, log, s.observeFHIR)
 		if err != nil {
 			return nil, err
 		}
@@ -203,6 +182,33 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelWarn),
 	}
 	return s, nil
+}
+
+// FHIRClient builds the client of the FHIR server the settings name, with
+// a static bearer token or SMART Backend Services credentials (or none).
+// cfg must have passed Validate or ValidateFHIR.
+func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Observer) (*client.Client, error) {
+	var auth client.Authorizer
+	switch {
+	case cfg.FHIRTokenURL != "":
+		key, err := client.LoadPrivateKeyPEM(cfg.FHIRKeyFile)
+		if err != nil {
+			return nil, fmt.Errorf("--fhir-private-key-file: %w", err)
+		}
+		ba, err := client.NewBackendAuth(client.BackendConfig{
+			TokenURL: cfg.FHIRTokenURL, ClientID: cfg.FHIRClientID, Scope: cfg.FHIRScope,
+			Key: key, KeyID: cfg.FHIRKeyID, Logger: log,
+		})
+		if err != nil {
+			return nil, err
+		}
+		auth = ba
+	case cfg.FHIRToken != "":
+		auth = client.BearerToken(cfg.FHIRToken)
+	}
+	return client.New(client.Config{
+		BaseURL: cfg.FHIRBase, Auth: auth, UserAgent: "deadspace/" + version, Logger: log, Observer: observe,
+	})
 }
 
 // observeFHIR feeds every FHIR request to the metrics and to readiness.
