@@ -7,14 +7,20 @@ package bulk_test
 
 import (
 	"context"
+	"crypto/ecdsa"
+	"crypto/elliptic"
+	"crypto/rand"
 	"encoding/json"
 	"errors"
 	"fmt"
+	"net/http"
+	"net/http/httptest"
 	"net/url"
 	"os"
 	"path/filepath"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -358,5 +364,57 @@ func TestRequestValidate(t *testing.T) {
 				t.Errorf("Validate() = %v, want ok=%v", err, tc.ok)
 			}
 		})
+	}
+}
+
+// The export with SMART Backend Services credentials (the authorizer serve
+// uses): every kick-off, status and file request carries the access token
+// the token endpoint issued for a signed client assertion.
+func TestExportWithBackendServicesAuth(t *testing.T) {
+	const issued = "smart-access-token-1"
+	var assertions atomic.Int32
+	tokenSrv := httptest.NewTLSServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		if err := r.ParseForm(); err != nil || r.Form.Get("grant_type") != "client_credentials" ||
+			r.Form.Get("client_assertion_type") != "urn:ietf:params:oauth:client-assertion-type:jwt-bearer" || r.Form.Get("client_assertion") == "" {
+			http.Error(w, `{"error":"invalid_request"}`, http.StatusBadRequest)
+			return
+		}
+		assertions.Add(1)
+		w.Header().Set("Content-Type", "application/json")
+		fmt.Fprintf(w, `{"access_token":%q,"token_type":"bearer","expires_in":300,"scope":"system/Observation.rs system/Patient.rs"}`, issued)
+	}))
+	defer tokenSrv.Close()
+	key, err := ecdsa.GenerateKey(elliptic.P384(), rand.Reader)
+	if err != nil {
+		t.Fatal(err)
+	}
+	auth, err := client.NewBackendAuth(client.BackendConfig{
+		TokenURL: tokenSrv.URL + "/token", ClientID: "deadspace", Scope: "system/Observation.rs system/Patient.rs",
+		Key: key, KeyID: "k1", HTTPClient: tokenSrv.Client(),
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	srv := bulkfake.Start(t, bulkfake.Options{Resources: resources(), Token: issued, RequiresAccessToken: true, Polls: 1})
+	rec := &recorder{}
+	c, err := client.New(client.Config{BaseURL: srv.URL, Auth: auth, Sleep: rec.sleep})
+	if err != nil {
+		t.Fatal(err)
+	}
+	x, err := bulk.New(bulk.Config{Client: c, Dir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	res, err := x.Export(context.Background(), request, []string{"Observation", "Patient"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(res.Files) != 2 || assertions.Load() != 1 {
+		t.Errorf("files %d, token requests %d", len(res.Files), assertions.Load())
+	}
+	for _, r := range srv.Requests() {
+		if r.Header.Get("Authorization") != "Bearer "+issued {
+			t.Errorf("%s %s without the access token", r.Method, r.Path)
+		}
 	}
 }
