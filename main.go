@@ -314,7 +314,14 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 		Derive: cfg, Decode: decOpts, Encode: encOpts, Files: files, TypeFilter: *typeFilter,
 		StateDir: *stateDir, DryRun: *dryRun, MaxTransactionEntries: conn.MaxTxEntries,
 	}
-	if len(files) == 0 {
+	if len(files) > 0 {
+		fs.Visit(func(f *flag.Flag) {
+			switch f.Name {
+			case "export", "group", "since", "type-filter", "export-base":
+				errs = append(errs, fmt.Errorf("--%s applies to an export, not to NDJSON files", f.Name))
+			}
+		})
+	} else {
 		req := bulk.Request{Level: bulk.Level(*level), GroupID: *group}
 		if *group != "" {
 			req.Level = bulk.Group

@@ -119,6 +119,7 @@ func BenchmarkBackfillMemory(b *testing.B) {
 	}{
 		{"1 patient x 24h", 1, 24},
 		{"8 patients x 24h", 8, 24},
+		{"32 patients x 24h", 32, 24},
 		{"1 patient x 192h", 1, 192},
 	}
 	for _, tc := range cases {
