@@ -40,6 +40,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
@@ -550,33 +551,7 @@ func (s *Summary) skip(what string) {
 }
 
 // ReasonCounts lists rejected inputs by reason, in the vocabulary's order.
-func (s Summary) ReasonCounts() []ReasonCount {
-	var out []ReasonCount
-	seen := map[derive.Reason]bool{}
-	for _, r := range derive.AllReasons() {
-		if n := s.Rejected[r]; n > 0 {
-			out = append(out, ReasonCount{r, n})
-			seen[r] = true
-		}
-	}
-	var rest []string
-	for r := range s.Rejected {
-		if !seen[r] {
-			rest = append(rest, string(r))
-		}
-	}
-	sort.Strings(rest)
-	for _, r := range rest {
-		out = append(out, ReasonCount{derive.Reason(r), s.Rejected[derive.Reason(r)]})
-	}
-	return out
-}
-
-// ReasonCount is one reason and how often it was given.
-type ReasonCount struct {
-	Reason derive.Reason
-	N      int
-}
+func (s Summary) ReasonCounts() []replay.ReasonCount { return replay.CountsInOrder(s.Rejected) }
 
 // WriteSummary prints the summary for a person.
 func WriteSummary(w io.Writer, s Summary) error {

@@ -134,16 +134,25 @@ func ReasonCounts(om []derive.Omission) []ReasonCount {
 	for _, o := range om {
 		counts[o.Reason]++
 	}
+	return CountsInOrder(counts)
+}
+
+// CountsInOrder lists counts by reason in the vocabulary's order, then any
+// reason outside it alphabetically; zero counts are left out.
+func CountsInOrder(counts map[derive.Reason]int) []ReasonCount {
 	var out []ReasonCount
+	seen := make(map[derive.Reason]bool)
 	for _, r := range derive.AllReasons() {
 		if counts[r] > 0 {
 			out = append(out, ReasonCount{r, counts[r]})
-			delete(counts, r)
 		}
+		seen[r] = true
 	}
 	rest := make([]string, 0, len(counts))
-	for r := range counts {
-		rest = append(rest, string(r))
+	for r, n := range counts {
+		if !seen[r] && n > 0 {
+			rest = append(rest, string(r))
+		}
 	}
 	sort.Strings(rest)
 	for _, r := range rest {

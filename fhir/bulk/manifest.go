@@ -8,6 +8,8 @@ import (
 	"strings"
 	"time"
 	"unicode"
+
+	"github.com/deadspace-fhir/deadspace/fhir/client"
 )
 
 // Manifest is the body of a complete status response (Bulk Data Access IG
@@ -168,11 +170,7 @@ func clip(s string) string {
 
 // Issue is one OperationOutcome issue, as the IG's error responses and
 // error files carry them.
-type Issue struct {
-	Severity string
-	Code     string
-	Text     string
-}
+type Issue = client.Issue
 
 // Outcome is a parsed OperationOutcome.
 type Outcome struct {
@@ -213,32 +211,11 @@ func (o Outcome) Transient() bool {
 var ErrNotOutcome = errors.New("bulk: not an OperationOutcome")
 
 // ParseOutcome reads an OperationOutcome in JSON: each issue's severity,
-// code, and diagnostics or else details.text.
+// code and text, read as the FHIR client reads error bodies.
 func ParseOutcome(body []byte) (Outcome, error) {
-	var w struct {
-		ResourceType string `json:"resourceType"`
-		Issue        []struct {
-			Severity    string `json:"severity"`
-			Code        string `json:"code"`
-			Diagnostics string `json:"diagnostics"`
-			Details     *struct {
-				Text string `json:"text"`
-			} `json:"details"`
-		} `json:"issue"`
+	issues, ok := client.OutcomeIssues(body)
+	if !ok {
+		return Outcome{}, ErrNotOutcome
 	}
-	if err := json.Unmarshal(body, &w); err != nil {
-		return Outcome{}, fmt.Errorf("%w: %w", ErrNotOutcome, err)
-	}
-	if w.ResourceType != "OperationOutcome" {
-		return Outcome{}, fmt.Errorf("%w: resourceType is %q", ErrNotOutcome, clip(w.ResourceType))
-	}
-	var o Outcome
-	for _, is := range w.Issue {
-		t := is.Diagnostics
-		if t == "" && is.Details != nil {
-			t = is.Details.Text
-		}
-		o.Issues = append(o.Issues, Issue{Severity: clip(is.Severity), Code: clip(is.Code), Text: clip(t)})
-	}
-	return o, nil
+	return Outcome{Issues: issues}, nil
 }

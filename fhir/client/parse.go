@@ -104,16 +104,46 @@ func parseOutcome(contentType string, body []byte) outcomeInfo {
 }
 
 func outcomeFromJSON(body []byte) (outcomeInfo, bool) {
-	var oo wireOutcome
-	if err := json.Unmarshal(body, &oo); err != nil || oo.ResourceType != "OperationOutcome" {
+	issues, ok := OutcomeIssues(body)
+	if !ok {
 		return outcomeInfo{}, false
 	}
 	var oi outcomeInfo
 	var texts []string
-	for _, is := range oo.Issue {
+	for _, is := range issues {
 		if oi.Code == "" {
-			oi.Code = cleanPrefix([]byte(is.Code), 64)
+			oi.Code = is.Code
 		}
+		t := is.Text
+		if t == "" {
+			t = is.Code
+		}
+		if t != "" {
+			texts = append(texts, t)
+		}
+	}
+	oi.Text = cleanPrefix([]byte(strings.Join(texts, "; ")), maxOutcomeText)
+	return oi, true
+}
+
+// Issue is one OperationOutcome issue: its severity, its code, and its text
+// (diagnostics, else details.text, else a details coding's display or
+// code), each cleaned to one short line of printable text.
+type Issue struct {
+	Severity string
+	Code     string
+	Text     string
+}
+
+// OutcomeIssues reads an OperationOutcome in JSON; ok is false when body is
+// not one. Codes are read as plain strings, so a server's non-standard
+// issue code never loses its text.
+func OutcomeIssues(body []byte) (issues []Issue, ok bool) {
+	var oo wireOutcome
+	if err := json.Unmarshal(body, &oo); err != nil || oo.ResourceType != "OperationOutcome" {
+		return nil, false
+	}
+	for _, is := range oo.Issue {
 		t := is.Diagnostics
 		if t == "" && is.Details != nil {
 			t = is.Details.Text
@@ -127,15 +157,13 @@ func outcomeFromJSON(body []byte) (outcomeInfo, bool) {
 				}
 			}
 		}
-		if t == "" {
-			t = is.Code
-		}
-		if t = cleanPrefix([]byte(t), maxOutcomeText); t != "" {
-			texts = append(texts, t)
-		}
+		issues = append(issues, Issue{
+			Severity: cleanPrefix([]byte(is.Severity), 64),
+			Code:     cleanPrefix([]byte(is.Code), 64),
+			Text:     cleanPrefix([]byte(t), maxOutcomeText),
+		})
 	}
-	oi.Text = cleanPrefix([]byte(strings.Join(texts, "; ")), maxOutcomeText)
-	return oi, true
+	return issues, true
 }
 
 // cleanPrefix returns at most n bytes of b as one line of valid UTF-8: control characters and
