@@ -136,9 +136,12 @@ type Summary struct {
 }
 
 const (
-	cursorInput = "backfill.input" // source fingerprint whose input is fully stored
-	cursorSince = "backfill.since" // the last export's transactionTime
-	mode        = "backfill"       // the engine's input mode
+	// inputMarker, in the state directory, holds the fingerprint of the
+	// input that an unfinished run stored completely. It is a file beside
+	// the store, not a record in it, so backfill needs nothing of the store
+	// but what the engine uses.
+	inputMarker = "input-read"
+	mode        = "backfill" // the engine's input mode
 	retention   = 100 * 365 * 24 * time.Hour
 )
 
@@ -225,22 +228,20 @@ func Run(ctx context.Context, opts Options) (Summary, error) {
 	defer stopProgress()
 
 	fp := opts.fingerprint()
-	done, err := st.Cursor(ctx, cursorInput)
-	if err != nil {
+	marker := filepath.Join(dir, inputMarker)
+	done, err := os.ReadFile(marker)
+	if err != nil && !errors.Is(err, os.ErrNotExist) {
 		return sum, fmt.Errorf("backfill: %w", err)
 	}
-	if done == fp {
+	if string(done) == fp {
 		sum.Resumed = true
 		log.InfoContext(ctx, "resuming: the input was read by an earlier run")
 	} else {
 		if err := readInput(ctx, opts, eng, table, dir, p, &sum, log); err != nil {
 			return sum, err
 		}
-		if err := st.SetCursor(ctx, cursorInput, fp); err != nil {
+		if err := writeFileSynced(marker, []byte(fp)); err != nil {
 			return sum, fmt.Errorf("backfill: %w", err)
-		}
-		if !sum.TransactionTime.IsZero() {
-			_ = st.SetCursor(ctx, cursorSince, sum.TransactionTime.Format(time.RFC3339Nano))
 		}
 	}
 
@@ -264,11 +265,41 @@ func Run(ctx context.Context, opts Options) (Summary, error) {
 	// Finished: the next run with the same arguments reads its input
 	// again (there may be new data), and finds everything it derives
 	// already recorded.
-	if err := st.SetCursor(ctx, cursorInput, ""); err != nil {
+	if err := os.Remove(marker); err != nil && !errors.Is(err, os.ErrNotExist) {
 		return sum, fmt.Errorf("backfill: %w", err)
 	}
 	p.setPhase("done")
 	return sum, nil
+}
+
+// writeFileSynced writes a small file durably: a temporary file, fsync,
+// rename, fsync of the directory.
+func writeFileSynced(path string, data []byte) error {
+	tmp := path + ".tmp"
+	f, err := os.OpenFile(tmp, os.O_WRONLY|os.O_CREATE|os.O_TRUNC, 0o600)
+	if err != nil {
+		return err
+	}
+	if _, err := f.Write(data); err != nil {
+		f.Close()
+		return err
+	}
+	if err := f.Sync(); err != nil {
+		f.Close()
+		return err
+	}
+	if err := f.Close(); err != nil {
+		return err
+	}
+	if err := os.Rename(tmp, path); err != nil {
+		return err
+	}
+	d, err := os.Open(filepath.Dir(path))
+	if err != nil {
+		return err
+	}
+	defer d.Close()
+	return d.Sync()
 }
 
 func (o Options) check() error {

@@ -405,3 +405,47 @@ func TestExportFailuresAreReported(t *testing.T) {
 		})
 	}
 }
+
+// A backfill interrupted while the export runs deletes the job on the
+// server; run again, it requests a fresh export and finishes.
+func TestBackfillInterruptedDuringExport(t *testing.T) {
+	peer := fhirtest.Start(t)
+	hold := make(chan struct{})
+	exp := bulkfake.Start(t, bulkfake.Options{
+		Resources: demoResources(t, func(s string) bool { return s == "Patient/bed1-stable" }), Hold: hold,
+	})
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	polls := 0
+	waiting, err := client.New(client.Config{BaseURL: exp.URL, Sleep: func(ctx context.Context, d time.Duration) error {
+		if polls++; polls == 2 {
+			cancel()
+		}
+		return ctx.Err()
+	}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	opts := options(peer, newClient(t, peer.BaseURL, nil), t.TempDir())
+	opts.Export = &bulk.Request{Level: bulk.Group, GroupID: "icu"}
+	opts.ExportClient = waiting
+	if _, err := backfill.Run(ctx, opts); !errors.Is(err, context.Canceled) {
+		t.Fatalf("interrupted run: err = %v", err)
+	}
+	if exp.Cancelled() != 1 || len(stateOf(t, peer).derived) != 0 {
+		t.Fatalf("after the interruption: %d jobs deleted, %d values written", exp.Cancelled(), len(stateOf(t, peer).derived))
+	}
+	close(hold)
+	opts.ExportClient = newClient(t, exp.URL, nil)
+	sum, err := backfill.Run(context.Background(), opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// bed1 has three blood gases in the demo night (replay's table).
+	if exp.Jobs() != 2 || sum.Resumed || sum.Writes != 3 {
+		t.Errorf("second run: %d jobs, summary %+v", exp.Jobs(), sum)
+	}
+	if st := stateOf(t, peer); len(st.derived) == 0 || st.provenances != 3 || st.devices != 1 {
+		t.Errorf("peer: %d values, %d provenances, %d devices", len(st.derived), st.provenances, st.devices)
+	}
+}
