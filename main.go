@@ -331,6 +331,7 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 			errs = append(errs, err)
 			req.Since = t
 		}
+		errs = append(errs, req.Validate())
 		opts.Export = &req
 		if conn.FHIRBase == "" && *exportBase == "" {
 			errs = append(errs, errors.New("give NDJSON files, or --fhir-base (or --export-base) to run an export"))
