@@ -145,6 +145,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	outPath := fs.String("out", "", "write the output to this file instead of stdout")
 	format := fs.String("format", "ndjson", "output format: ndjson (FHIR resources) or table (a readable summary)")
 	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
+	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
 	files, err := parseInterspersed(fs, args)
 	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
@@ -205,11 +206,31 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
 		return exitFailed
 	}
+	if *omissionsPath != "" {
+		if err := writeFile(*omissionsPath, func(w io.Writer) error { return replay.WriteOmissions(w, out) }); err != nil {
+			fmt.Fprintf(stderr, "deadspace replay: --omissions: %v\n", err)
+			return exitFailed
+		}
+	}
 	_ = replay.WriteSummary(stderr, out)
 	if len(out.Skipped) > 0 {
 		return exitSkipped
 	}
 	return exitOK
+}
+
+// writeFile creates path and writes it with write, reporting the first
+// error of writing or closing.
+func writeFile(path string, write func(io.Writer) error) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return err
+	}
+	err = write(f)
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	return err
 }
 
 // parseInterspersed parses flags that may come before, between or after the

@@ -6,6 +6,7 @@ import (
 	"math"
 	"slices"
 	"sort"
+	"strconv"
 	"strings"
 	"time"
 )
@@ -18,23 +19,58 @@ import (
 //     end of the 5–10 min we judged safe at steady ventilation.
 //   - HeightMaxAge 365 days: an adult's height does not change in a year, and
 //     a height older than that may belong to a merged or reused record.
+//   - Artefact: an end-tidal reading below 5 mm[Hg] (no expired gas reaching
+//     the sensor: disconnection, suctioning, an occluded sampling line), or
+//     below half the median of its window's other readings, is not an
+//     end-tidal value of the patient at that moment; when fewer than half of
+//     a window's readings remain, the window has no end-tidal value.
+//   - Steady: minute volume changed by 20 % or more, or end-tidal CO2 by
+//     5 mm[Hg] or more, between the 15 min before the pairing window and the
+//     window itself: the Enghoff and Bohr values carry a note.
+//   - Temperature: the nearest body temperature within 60 min of the
+//     sample; nothing changes within 37 ± 0.5 °C; otherwise
+//     PCO2(T) = PCO2(37) × 10^(0.019 × (T − 37)), the coefficient published
+//     for PCO2 of blood in vitro (J Appl Physiol 1965; Bradley, Severinghaus
+//     and Stupfel 1956 give 0.0185).
 //   - Fall: a 30 min trailing baseline of at least 5 readings; a reading is
 //     fallen when it is 8 mm[Hg] or 25 % below baseline, whichever is
 //     smaller (so a low baseline still gives a proportionate threshold); the
 //     fall must last 3 min, long enough to pass over suction, a sigh or a
 //     brief sampling artefact; and it ends when a reading is back within
 //     half the threshold of the baseline, a hysteresis that keeps a value
-//     hovering at the threshold from producing a stream of findings.
+//     hovering at the threshold from producing a stream of findings. For
+//     sparse charting (many EHRs keep a validated value every 5 to 60 min)
+//     readings may be up to 16 min apart (15 min charting and a minute of
+//     jitter), the baseline reaches back up to 90 min to find its 5
+//     readings, and an episode needs 2 readings past the threshold.
 func DefaultConfig() Config {
 	return Config{
 		Window:       5 * time.Minute,
 		HeightMaxAge: 365 * 24 * time.Hour,
+		Artefact: ArtefactConfig{
+			Floor:             5,
+			Fraction:          0.5,
+			MinUsableFraction: 0.5,
+		},
+		Steady: SteadyConfig{
+			Lookback:           15 * time.Minute,
+			MinuteVolumeChange: 0.20,
+			EtCO2Change:        5,
+		},
+		Temperature: TemperatureConfig{
+			Search:      60 * time.Minute,
+			Tolerance:   0.5,
+			Coefficient: 0.019,
+		},
 		Fall: FallConfig{
 			Baseline:            30 * time.Minute,
 			MinBaselineReadings: 5,
 			Drop:                8,
 			DropFraction:        0.25,
 			Sustain:             3 * time.Minute,
+			MaxGap:              16 * time.Minute,
+			BaselineMax:         90 * time.Minute,
+			MinEpisodeReadings:  2,
 			Recover:             0.5,
 		},
 	}
@@ -68,6 +104,33 @@ func (c Config) Validate() error {
 	}
 	fraction("Fall.DropFraction", c.Fall.DropFraction)
 	fraction("Fall.Recover", c.Fall.Recover)
+	duration("Fall.MaxGap", c.Fall.MaxGap)
+	if c.Fall.BaselineMax < c.Fall.Baseline {
+		errs = append(errs, fmt.Errorf("Fall.BaselineMax must be at least Fall.Baseline (%v), got %v", c.Fall.Baseline, c.Fall.BaselineMax))
+	}
+	if c.Fall.MinEpisodeReadings < 1 {
+		errs = append(errs, fmt.Errorf("Fall.MinEpisodeReadings must be at least 1, got %d", c.Fall.MinEpisodeReadings))
+	}
+	positive := func(name, unit string, v float64) {
+		if !(v > 0) || math.IsInf(v, 0) {
+			errs = append(errs, fmt.Errorf("%s must be a positive number%s, got %v", name, unit, v))
+		}
+	}
+	positive("Artefact.Floor", " of mm[Hg]", c.Artefact.Floor)
+	fraction("Artefact.Fraction", c.Artefact.Fraction)
+	if !(c.Artefact.MinUsableFraction > 0 && c.Artefact.MinUsableFraction <= 1) {
+		errs = append(errs, fmt.Errorf("Artefact.MinUsableFraction must be above 0 and at most 1, got %v", c.Artefact.MinUsableFraction))
+	}
+	duration("Steady.Lookback", c.Steady.Lookback)
+	positive("Steady.MinuteVolumeChange", " (a fraction)", c.Steady.MinuteVolumeChange)
+	positive("Steady.EtCO2Change", " of mm[Hg]", c.Steady.EtCO2Change)
+	duration("Temperature.Search", c.Temperature.Search)
+	if !(c.Temperature.Tolerance >= 0 && c.Temperature.Tolerance < 5) {
+		errs = append(errs, fmt.Errorf("Temperature.Tolerance must be at least 0 and below 5 °C, got %v", c.Temperature.Tolerance))
+	}
+	if !(c.Temperature.Coefficient > 0 && c.Temperature.Coefficient < 0.1) {
+		errs = append(errs, fmt.Errorf("Temperature.Coefficient must be above 0 and below 0.1 per °C, got %v", c.Temperature.Coefficient))
+	}
 	if err := errors.Join(errs...); err != nil {
 		return fmt.Errorf("derive config: %w", err)
 	}
@@ -78,21 +141,26 @@ func (c Config) Validate() error {
 // These are design choices, wide enough for any live patient (a neonate's
 // height, an exercising adult's minute volume) and narrow enough to catch a
 // wrong unit, such as kPa read as mm[Hg] or mL as L. The range rules we know
-// of are from memory, so nothing here is a published limit.
+// of are from memory, so nothing here is a published limit. The upper CO2
+// limits are wide on purpose: extreme hypercapnia (PaCO2 above 150 mm[Hg])
+// has been survived (from memory). Body temperature reaches down to 15 °C
+// for deep hypothermia during cardiac surgery.
 // EtCO2 includes 0 on purpose: a disconnected circuit reads 0 and the fall
 // detector must see it.
 var plausibleRange = [kindCount]struct {
 	lo, hi float64
 	known  bool
 }{
-	KindPaCO2:           {5, 200, true},
-	KindEtCO2:           {0, 150, true},
+	KindPaCO2:           {minPaCO2, 300, true},
+	KindEtCO2:           {0, 200, true},
 	KindMixedExpiredCO2: {0.5, 150, true},
 	KindVCO2:            {20, 2000, true},
 	KindTidalVolume:     {20, 3000, true},
 	KindMinuteVolume:    {0.5, 60, true},
 	KindRespRate:        {1, 100, true},
 	KindHeight:          {40, 250, true},
+	KindBodyTemperature: {15, 45, true},
+	KindPaCO2Adjusted:   {minPaCO2, 300, true},
 }
 
 // Plausible reports whether v is inside the physiological range of kind k,
@@ -105,15 +173,6 @@ func Plausible(k Kind, v float64) (ok bool, lo, hi float64) {
 	p := plausibleRange[k]
 	return v >= p.lo && v <= p.hi, p.lo, p.hi
 }
-
-// windowedKinds are the kinds summarised over the pairing window, in Kind
-// order. Height is chosen differently: it changes slowly and is measured
-// rarely.
-var windowedKinds = [...]Kind{
-	KindEtCO2, KindMixedExpiredCO2, KindVCO2, KindTidalVolume, KindMinuteVolume, KindRespRate,
-}
-
-func isWindowed(k Kind) bool { return slices.Contains(windowedKinds[:], k) }
 
 // Derive computes every value it can for one blood gas. readings are the
 // same patient's accepted readings of any kind, sorted by AtMillis; readings
@@ -133,6 +192,7 @@ func Derive(cfg Config, gas Reading, patient Patient, readings []Reading) Deriva
 		window: cfg.Window,
 	}
 	b.collect(cfg, readings)
+	b.d.PaCO2 = b.pa
 	b.values()
 	return b.d
 }
@@ -142,13 +202,37 @@ type builder struct {
 	d      Derivation
 	window time.Duration
 
-	med  [kindCount]float64
-	have [kindCount]bool
+	med      [kindCount]float64
+	have     [kindCount]bool
+	priority [kindCount]int16
+	// kindNotes are added to every value computed from the kind: a
+	// substitute source, artefacts left out.
+	kindNotes [kindCount][]string
+	// missing says why a windowed kind has no summary although readings
+	// were in the window, with the reason to give.
+	missing       [kindCount]string
+	missingReason [kindCount]Reason
 
 	heightWhy string // why no height was found, when none was
 
-	paOK  bool
-	paWhy string
+	// pa is the PaCO2 the equations use: the blood gas's value, or the
+	// value at the patient's temperature.
+	pa         float64
+	paAdjusted bool
+	paUsed     []Summary
+	paTerms    []Term
+	paNote     string
+	paOK       bool
+	paWhy      string
+
+	// age is the age in completed years at the sample time; ageWhy says why
+	// it is unknown.
+	age    int
+	ageOK  bool
+	ageWhy string
+
+	steadyNote  string
+	steadyTerms []Term
 
 	// The mixed-expired PCO2 used by the fractions, measured or computed.
 	pe       float64
@@ -181,6 +265,15 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		byKind[r.Kind] = append(byKind[r.Kind], r)
 	}
 
+	var reason Reason
+	reason, b.paWhy = CheckValue(KindPaCO2, b.d.Gas.Value)
+	b.paOK = reason == ""
+	if !b.paOK {
+		b.d.Omitted = append(b.d.Omitted, Omission{Ref: b.d.Gas.Ref, Reason: reason, Detail: b.paWhy})
+	}
+	b.temperature(cfg, readings)
+	b.patientAge()
+
 	var height *Summary
 	if h, rule, ok := b.findHeight(cfg, readings); ok {
 		height = &Summary{Kind: KindHeight, Median: h.Value, Readings: []Reading{h}, Rule: rule}
@@ -192,9 +285,37 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 			b.d.Used = append(b.d.Used, *height)
 			continue
 		}
+		if k == KindBodyTemperature || k == KindPaCO2Adjusted {
+			for _, s := range b.paUsed {
+				if s.Kind == k {
+					b.d.Used = append(b.d.Used, s)
+				}
+			}
+			continue
+		}
 		rs := byKind[k]
 		if len(rs) == 0 {
 			continue
+		}
+		rs, substitute := b.preferred(k, rs)
+		b.priority[k] = rs[0].Priority
+		var artefacts int
+		if k == KindEtCO2 {
+			if b.paOK && etco2InKPa(rs, b.d.Gas.Value) {
+				why := fmt.Sprintf("every etco2 reading within ±%v of the sample time is between %v and %v, as end-tidal CO2 in kPa would be, while PaCO2 is %v mm[Hg]",
+					cfg.Window, etco2KPaBand[0], etco2KPaBand[1], b.d.Gas.Value)
+				for _, r := range rs {
+					b.d.Omitted = append(b.d.Omitted, Omission{Ref: r.Ref, Reason: ReasonWrongUnit, Detail: why})
+				}
+				b.missing[k], b.missingReason[k] = why, ReasonWrongUnit
+				continue
+			}
+			var why string
+			rs, artefacts, why = b.artefacts(cfg.Artefact, rs)
+			if why != "" {
+				b.missing[k], b.missingReason[k] = why, ReasonTooFewUsable
+				continue
+			}
 		}
 		vals := make([]float64, len(rs))
 		for j, r := range rs {
@@ -206,28 +327,53 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		if len(rs) == 1 {
 			rule = fmt.Sprintf("the only reading within ±%v of sample time", cfg.Window)
 		}
-		b.d.Used = append(b.d.Used, Summary{Kind: k, Median: m, Readings: rs, Rule: rule})
+		if artefacts > 0 {
+			note := fmt.Sprintf("%d end-tidal reading(s) in the pairing window left out as artefacts (near zero or far below the rest of the window: disconnection, suctioning, an occluded sampling line)", artefacts)
+			rule += "; " + note
+			b.kindNotes[k] = append(b.kindNotes[k], note)
+		}
+		if substitute != "" {
+			rule += "; " + substitute
+			b.kindNotes[k] = append(b.kindNotes[k], substitute)
+		}
+		b.d.Used = append(b.d.Used, Summary{Kind: k, Median: m, Readings: rs, Rule: rule, Substitute: substitute, Artefacts: artefacts})
 	}
+	if b.paNote != "" {
+		b.kindNotes[KindPaCO2] = append(b.kindNotes[KindPaCO2], b.paNote)
+	}
+	b.steadyNote, b.steadyTerms = b.steady(cfg, readings)
+}
 
-	var lo, hi float64
-	b.paOK, lo, hi = Plausible(KindPaCO2, b.d.Gas.Value)
-	if !b.paOK {
-		b.paWhy = fmt.Sprintf("PaCO2 %v mm[Hg] is outside %v–%v", b.d.Gas.Value, lo, hi)
-		b.d.Omitted = append(b.d.Omitted, Omission{Ref: b.d.Gas.Ref, Reason: ReasonImplausible, Detail: b.paWhy})
+// patientAge sets the age at the sample time, or why it is unknown.
+func (b *builder) patientAge() {
+	birth := b.d.Patient.BirthDate
+	at := b.d.Gas.At()
+	switch {
+	case birth.IsZero():
+		b.ageWhy = "birth date unknown"
+	case at.Before(birth):
+		b.ageWhy = fmt.Sprintf("birth date %s is after the sample time", birth.Format(time.DateOnly))
+	default:
+		b.age, b.ageOK = ageYears(birth, at), true
 	}
 }
 
+// AdultAge is the age, in completed years, from which the adult indices
+// (predicted body weight, the ventilatory ratio, the regression estimate)
+// are computed: they were derived in adults (Sinha 2009 studied "adult
+// mechanically ventilated ICU patients"; the ARDS Network enrolled adults).
+const AdultAge = 18
+
+// child reports whether the patient is known to be under [AdultAge].
+func (b *builder) child() bool { return b.ageOK && b.age < AdultAge }
+
 // plausible checks r and records it as omitted when it is not.
 func (b *builder) plausible(r Reading) bool {
-	ok, lo, hi := Plausible(r.Kind, r.Value)
-	if !ok {
-		b.d.Omitted = append(b.d.Omitted, Omission{
-			Ref:    r.Ref,
-			Reason: ReasonImplausible,
-			Detail: fmt.Sprintf("%s %v %s is outside %v–%v", r.Kind, r.Value, r.Kind.Unit(), lo, hi),
-		})
+	reason, detail := CheckValue(r.Kind, r.Value)
+	if reason != "" {
+		b.d.Omitted = append(b.d.Omitted, Omission{Ref: r.Ref, Reason: reason, Detail: detail})
 	}
-	return ok
+	return reason == ""
 }
 
 // findHeight picks the latest plausible height at or before the sample time
@@ -263,54 +409,131 @@ func (b *builder) emit(v Value) bool {
 		b.omit(v.Code, ReasonInconsistent, "the inputs gave a non-finite result")
 		return false
 	}
+	var notes []string
+	for _, k := range v.Inputs {
+		notes = append(notes, b.kindNotes[k]...)
+	}
+	v.Notes = append(notes, v.Notes...)
 	b.d.Values = append(b.d.Values, v)
 	return true
 }
 
+// notSteady adds the steady-state note and figures to a value that assumes
+// steady ventilation.
+func (b *builder) notSteady(v *Value) {
+	if b.steadyNote == "" {
+		return
+	}
+	v.Notes = append(v.Notes, b.steadyNote)
+	v.Terms = append(v.Terms, b.steadyTerms...)
+}
+
 // need checks that the PaCO2 (when pa) and the windowed kinds are available,
-// and records an omission naming everything missing when they are not.
+// and records an omission naming everything missing when they are not. A
+// kind whose readings were all refused (artefacts, a wrong unit) gives that
+// reason rather than [ReasonMissingInput].
 func (b *builder) need(c Code, pa bool, kinds ...Kind) bool {
-	var missing []string
+	var missing, why []string
+	reason := ReasonMissingInput
+	if pa && !b.paOK {
+		why = append(why, b.paWhy)
+	}
 	for _, k := range kinds {
-		if !b.have[k] {
+		switch {
+		case b.have[k]:
+		case b.missing[k] != "":
+			why = append(why, b.missing[k])
+			if b.missingReason[k] == ReasonTooFewUsable {
+				reason = ReasonTooFewUsable
+			}
+		default:
 			missing = append(missing, k.String())
 		}
 	}
-	switch {
-	case pa && !b.paOK && len(missing) > 0:
-		b.omit(c, ReasonMissingInput, "%s; and no %s reading within ±%v of the sample time", b.paWhy, strings.Join(missing, ", "), b.window)
-	case pa && !b.paOK:
-		b.omit(c, ReasonMissingInput, "%s", b.paWhy)
-	case len(missing) > 0:
-		b.omit(c, ReasonMissingInput, "no %s reading within ±%v of the sample time", strings.Join(missing, ", "), b.window)
-	default:
+	if len(missing) > 0 {
+		why = append(why, fmt.Sprintf("no %s reading within ±%v of the sample time", strings.Join(missing, ", "), b.window))
+	}
+	if len(why) == 0 {
 		return true
 	}
+	b.omit(c, reason, "%s", strings.Join(why, "; and "))
 	return false
 }
 
 // inFraction is the bound every dead-space fraction must meet.
 func inFraction(f float64) bool { return f >= 0 && f < 1 }
 
+// asWritten rounds v to the decimals its code is written with (pressures 1,
+// fractions 3, the ventilatory ratio 2; see package fhir/encode), so that a
+// flag is decided on the number a reader sees: a gradient of 5.04 is written
+// 5.0 and must not be flagged against a range whose high is 5.
+func asWritten(v float64, decimals int) float64 {
+	// The same formatting the encoder uses, so the two cannot round apart.
+	w, err := strconv.ParseFloat(strconv.FormatFloat(v, 'f', decimals, 64), 64)
+	if err != nil {
+		return v
+	}
+	return w
+}
+
+// paInputs are the kinds behind the PaCO2 the equations use: the blood gas,
+// and the temperature or temperature-adjusted value when one was used.
+func (b *builder) paInputs(more ...Kind) []Kind {
+	out := []Kind{KindPaCO2}
+	for _, s := range b.paUsed {
+		out = append(out, s.Kind)
+	}
+	return union(out, more)
+}
+
+// paTermsWith returns the PaCO2 terms (the 37 °C value and temperature when
+// they differ from the value used) followed by more.
+func (b *builder) paTermsWith(more ...Term) []Term {
+	out := slices.Clone(b.paTerms)
+	out = append(out, Term{"PaCO2", b.pa, "mm[Hg]"})
+	return append(out, more...)
+}
+
+// GradientHigh is the upper limit of the normal arterial to end-tidal
+// gradient, mm[Hg], inclusive as FHIR's referenceRange.high is: Malley WJ,
+// Clinical Blood Gases, 2nd ed., 2005, "Normally, the gradient is less than
+// 5 mm Hg"; 2–5 mm[Hg] in other texts. Population: adults.
+const GradientHigh = 5.0
+
+// PhysiologicHigh is the physiologic VD/VT at and above which the value is
+// flagged high: "markedly elevated VD/VT (≥0.60)" (Kallet RH et al., Respir
+// Care 2014;59:1611), associated with higher mortality in ventilated adults
+// with ARDS (also Nuckton TJ et al., NEJM 2002;346:1281: non-survivors
+// 0.63 ± 0.10 vs survivors 0.54 ± 0.09).
+const PhysiologicHigh = 0.60
+
+// VentilatoryRatioHigh is the ventilatory ratio above which the value is
+// flagged high: in adults with ARDS, a ratio above 2 (the cohort median) on
+// day 1 was associated with higher mortality (ROSE trial secondary
+// analysis, Crit Care 2022, doi 10.1186/s13054-022-04179-7).
+const VentilatoryRatioHigh = 2.0
+
 func (b *builder) values() {
-	pa := b.d.Gas.Value
+	pa := b.pa
 	et := b.med[KindEtCO2]
 
-	// 1. Arterial to end-tidal gradient.
+	// 1. Arterial to end-tidal gradient. Normal from 0 to GradientHigh
+	// inclusive; a negative gradient gets no flag, only its note.
 	if b.need(CodeGradient, true, KindEtCO2) {
 		g := Gradient(pa, et)
 		v := Value{
 			Code: CodeGradient, Value: g, Unit: "mm[Hg]",
-			Inputs:   []Kind{KindPaCO2, KindEtCO2},
+			Inputs:   b.paInputs(KindEtCO2),
 			Equation: "PaCO2 − PetCO2 (Malley WJ, Clinical Blood Gases, 2nd ed., 2005)",
-			Terms:    []Term{{"PaCO2", pa, "mm[Hg]"}, {"PetCO2", et, "mm[Hg]"}},
-			Flag:     FlagNormal,
-			Range:    &Range{High: ptr(5), Text: "normally below 5 mm[Hg]", Source: "common practice; Malley WJ, Clinical Blood Gases, 2005"},
+			Terms:    b.paTermsWith(Term{"PetCO2", et, "mm[Hg]"}),
+			Range:    &Range{Low: ptr(0), High: ptr(GradientHigh), Text: "normally 0 to 5 mm[Hg] in adults", Source: "Malley WJ, Clinical Blood Gases, 2005"},
 		}
-		if g >= 5 {
+		switch gw := asWritten(g, 1); {
+		case gw > GradientHigh:
 			v.Flag = FlagHigh
-		}
-		if g < 0 {
+		case gw >= 0:
+			v.Flag = FlagNormal
+		default:
 			v.Notes = append(v.Notes, "end-tidal above arterial PCO2 occurs with low V/Q units (Malley 2005) but suggests a timing or sampling error")
 		}
 		b.emit(v)
@@ -327,9 +550,9 @@ func (b *builder) values() {
 		default:
 			b.emit(Value{
 				Code: CodeAlveolarFraction, Value: f, Unit: "1",
-				Inputs:   []Kind{KindPaCO2, KindEtCO2},
+				Inputs:   b.paInputs(KindEtCO2),
 				Equation: "(PaCO2 − PetCO2)/PaCO2, end-tidal alveolar dead-space fraction (name: Bhalla AK et al., Respir Care 2015;60:1548)",
-				Terms:    []Term{{"PaCO2", pa, "mm[Hg]"}, {"PetCO2", et, "mm[Hg]"}},
+				Terms:    b.paTermsWith(Term{"PetCO2", et, "mm[Hg]"}),
 			})
 		}
 	}
@@ -383,13 +606,15 @@ func (b *builder) mixedExpired() {
 	b.peTerms = []Term{{"VCO2", vco2, "mL/min"}, {"VE", ve, "L/min"}, {"PĒCO2", pe, "mm[Hg]"}}
 	b.peEq = "PĒCO2 = 0.863 × VCO2 (STPD) / VE (BTPS)"
 	b.pe = pe
-	b.peOK = b.emit(Value{
+	v := Value{
 		Code: CodeMixedExpiredCO2, Value: pe, Unit: "mm[Hg]",
 		Inputs:   slices.Clone(b.peInputs),
-		Equation: b.peEq + " (constant: common practice; Siddiki H et al., Crit Care 2010;14:R141 use 0.86)",
+		Equation: b.peEq + " (Siddiki H et al., Crit Care 2010;14:R141 use 0.86)",
 		Terms:    []Term{{"VCO2", vco2, "mL/min"}, {"VE", ve, "L/min"}},
 		Notes:    []string{"valid only for VCO2 at STPD and VE at BTPS"},
-	})
+	}
+	b.notSteady(&v)
+	b.peOK = b.emit(v)
 }
 
 // peMissing records why a value needing PĒCO2 cannot have it.
@@ -426,29 +651,29 @@ func (b *builder) physiologic(pa float64) {
 		b.omit(c, ReasonFractionBounds, "(PaCO2 − PĒCO2)/PaCO2 gives %v, outside [0, 1)", f)
 		return
 	}
-	inputs := union([]Kind{KindPaCO2}, b.peInputs)
+	inputs := b.paInputs(b.peInputs...)
 	v := Value{
 		Code: c, Value: f, Unit: "1",
 		Inputs:   inputs,
 		Equation: b.peEquation("Enghoff: (PaCO2 − PĒCO2)/PaCO2 (Anderson CT, Breen PH, Crit Care 2000;4:207)"),
-		Terms:    append([]Term{{"PaCO2", pa, "mm[Hg]"}}, b.peTerms...),
-		Flag:     FlagNormal,
+		Terms:    b.paTermsWith(b.peTerms...),
+		// The healthy range is shown for reference; the flag is against
+		// the outcome threshold for ventilated adults, which is above it,
+		// so the two never disagree.
 		Range: &Range{
 			Low: ptr(0.2), High: ptr(0.35),
-			Text:   "healthy adult at rest (about 0.3)",
-			Source: "common practice",
+			Text: "healthy adult at rest, about 0.3; ventilated adults commonly 0.35 to 0.6; 0.60 or more is flagged high",
 		},
 	}
 	switch {
-	case f < 0.2:
-		v.Flag = FlagLow
-	case f > 0.35:
+	case b.child():
+		v.Notes = append(v.Notes, fmt.Sprintf("no flag: the outcome threshold (0.60) was found in adults, and the patient is %d", b.age))
+	case asWritten(f, 3) >= PhysiologicHigh:
 		v.Flag = FlagHigh
-	}
-	if f >= 0.60 {
-		v.Notes = append(v.Notes, "markedly elevated (≥ 0.60; Kallet RH et al., Respir Care 2014;59:1611)")
+		v.Notes = append(v.Notes, "markedly elevated (≥ 0.60), associated with higher mortality in ventilated adults with ARDS (Kallet RH et al., Respir Care 2014;59:1611; Nuckton TJ et al., NEJM 2002;346:1281)")
 	}
 	v.Notes = append(v.Notes, "shunt raises Enghoff VD/VT as well as dead space does (Tusman G et al., Anesth Analg 2012)")
+	b.notSteady(&v)
 	if b.emit(v) {
 		b.phys, b.physOK, b.physInputs = f, true, inputs
 	}
@@ -472,12 +697,14 @@ func (b *builder) airway(et float64) {
 		b.omit(c, ReasonFractionBounds, "(PetCO2 − PĒCO2)/PetCO2 gives %v, outside [0, 1)", f)
 		return
 	}
-	b.emit(Value{
+	v := Value{
 		Code: c, Value: f, Unit: "1",
 		Inputs:   union([]Kind{KindEtCO2}, b.peInputs),
 		Equation: b.peEquation("Bohr with PetCO2 for PACO2: (PetCO2 − PĒCO2)/PetCO2 (Tusman G et al., Anesth Analg 2012;114:866)"),
 		Terms:    append([]Term{{"PetCO2", et, "mm[Hg]"}}, b.peTerms...),
-	})
+	}
+	b.notSteady(&v)
+	b.emit(v)
 }
 
 // fromPhysiologic emits a value computed from the physiologic fraction and
@@ -506,11 +733,16 @@ func (b *builder) fromPhysiologic(c Code, k Kind) {
 		v.Equation = "VA = VE × (1 − VD/VT), the per-minute form of VA = (VT − VD) × RR"
 		v.Terms = append(v.Terms, Term{"VE", x, "L/min"})
 	}
+	b.notSteady(&v)
 	b.emit(v)
 }
 
 func (b *builder) ventilatoryRatio(pa float64) {
 	const c = CodeVentilatoryRatio
+	if b.child() {
+		b.omit(c, ReasonNotAdult, "the ventilatory ratio and the ARDS Network predicted body weight are for adults; the patient is %d", b.age)
+		return
+	}
 	if !b.need(c, true, KindMinuteVolume) {
 		return
 	}
@@ -532,41 +764,74 @@ func (b *builder) ventilatoryRatio(pa float64) {
 		return
 	}
 	ve := b.med[KindMinuteVolume] * 1000
-	b.emit(Value{
-		Code: c, Value: VentilatoryRatio(ve, pa, pbw), Unit: "1",
-		Inputs:      []Kind{KindPaCO2, KindMinuteVolume, KindHeight},
+	vr := VentilatoryRatio(ve, pa, pbw)
+	v := Value{
+		Code: c, Value: vr, Unit: "1",
+		Inputs:      b.paInputs(KindMinuteVolume, KindHeight),
 		UsesPatient: true,
 		Equation: "VR = (VE × PaCO2)/(PBW × 100 × 37.5), VE in mL/min (Sinha P et al., Br J Anaesth 2009;102:692); " +
 			"PBW = 50 (male) or 45.5 (female) + 0.91 × (height − 152.4) (ARDS Network, NEJM 2000;342:1301)",
-		Terms: []Term{
-			{"VE", ve, "mL/min"}, {"PaCO2", pa, "mm[Hg]"},
-			{"height", h, "cm"}, {"PBW", pbw, "kg"},
-		},
+		Terms: b.paTermsWith(
+			Term{"VE", ve, "mL/min"},
+			Term{"height", h, "cm"}, Term{"PBW", pbw, "kg"},
+		),
+		Range: &Range{Text: "about 1 in healthy adults (Sinha 2009); above 2 is flagged high"},
 		Notes: []string{"about 1 in healthy people (Sinha 2009)"},
-	})
+	}
+	if asWritten(vr, 2) > VentilatoryRatioHigh {
+		v.Flag = FlagHigh
+		v.Notes = append(v.Notes, "above 2, associated with higher mortality in adults with ARDS (ROSE trial secondary analysis, Crit Care 2022)")
+	}
+	if h < PBWFormulaHeightCm {
+		v.Notes = append(v.Notes, fmt.Sprintf("height %v cm is below %v cm (60 in), the height the predicted body weight formula is anchored at: the predicted body weight is extrapolated", h, PBWFormulaHeightCm))
+	}
+	if !b.ageOK {
+		v.Notes = append(v.Notes, fmt.Sprintf("age unknown (%s): the ventilatory ratio and predicted body weight are defined for adults", b.ageWhy))
+	}
+	b.emit(v)
 }
 
+// PBWFormulaHeightCm is the height the ARDS Network predicted body weight
+// formula is anchored at, 60 in (152.4 cm): "height (inches) − 60". Below
+// it the formula is extrapolated; values are still computed down to
+// [MinAdultHeightCm], with a note.
+const PBWFormulaHeightCm = 152.4
+
+// estimated emits the regression estimate only inside the population it
+// was derived in (ventilated adults, a non-negative gradient) and only when
+// the measured inputs do not contradict each other.
 func (b *builder) estimated(pa, et float64) {
 	const c = CodeEstimatedFraction
 	if b.physOK {
 		b.omit(c, ReasonNotApplicable, "the physiologic VD/VT was computed from expired CO2")
 		return
 	}
+	if b.child() {
+		b.omit(c, ReasonNotAdult, "the regression estimate was derived in ventilated adults; the patient is %d", b.age)
+		return
+	}
 	if !b.need(c, true, KindEtCO2, KindRespRate) {
 		return
 	}
-	birth := b.d.Patient.BirthDate
-	if birth.IsZero() {
-		b.omit(c, ReasonPatientFacts, "the regression needs age; birth date unknown")
+	if !b.ageOK {
+		b.omit(c, ReasonPatientFacts, "the regression needs age; %s", b.ageWhy)
 		return
 	}
-	at := b.d.Gas.At()
-	if at.Before(birth) {
-		b.omit(c, ReasonPatientFacts, "birth date %s is after the sample time", birth.Format(time.DateOnly))
+	if b.have[KindMixedExpiredCO2] && b.med[KindMixedExpiredCO2] >= pa {
+		b.omit(c, ReasonInconsistent, "measured PĒCO2 %v is not below PaCO2 %v mm[Hg]: the inputs contradict each other", b.med[KindMixedExpiredCO2], pa)
 		return
 	}
-	age := float64(ageYears(birth, at))
-	g, rr := Gradient(pa, et), b.med[KindRespRate]
+	if b.peBad != "" {
+		b.omit(c, ReasonInconsistent, "%s", b.peBad)
+		return
+	}
+	g := Gradient(pa, et)
+	if g < 0 {
+		b.omit(c, ReasonInconsistent, "PetCO2 %v above PaCO2 %v mm[Hg]: outside the population the regression was derived in", et, pa)
+		return
+	}
+	age := float64(b.age)
+	rr := b.med[KindRespRate]
 	f := EstimatedFraction(g, rr, age)
 	if !inFraction(f) {
 		b.omit(c, ReasonFractionBounds, "the regression gives %v, outside [0, 1)", f)
@@ -574,14 +839,13 @@ func (b *builder) estimated(pa, et float64) {
 	}
 	b.emit(Value{
 		Code: c, Value: f, Unit: "1",
-		Inputs:      []Kind{KindPaCO2, KindEtCO2, KindRespRate},
+		Inputs:      b.paInputs(KindEtCO2, KindRespRate),
 		UsesPatient: true,
-		Equation: "VD/VT = 0.320 + 0.0106 × (PaCO2 − PetCO2) + 0.003 × RR + 0.0015 × age " +
-			"(believed Frankenfield DC et al., Crit Care Med 2010;38:288; attribution from memory)",
-		Terms: []Term{
-			{"PaCO2", pa, "mm[Hg]"}, {"PetCO2", et, "mm[Hg]"}, {"gradient", g, "mm[Hg]"},
-			{"RR", rr, "/min"}, {"age", age, "a"},
-		},
+		Equation:    "VD/VT = 0.320 + 0.0106 × (PaCO2 − PetCO2) + 0.003 × RR + 0.0015 × age, a regression estimate for ventilated adults",
+		Terms: b.paTermsWith(
+			Term{"PetCO2", et, "mm[Hg]"}, Term{"gradient", g, "mm[Hg]"},
+			Term{"RR", rr, "/min"}, Term{"age", age, "a"},
+		),
 		Estimate: true,
 		Notes:    []string{"an estimate from a regression, not a measurement"},
 	})
@@ -631,27 +895,35 @@ func days(d time.Duration) string {
 	return d.String()
 }
 
-// DetectFalls finds end-tidal CO2 fall episodes in one patient's EtCO2
-// series, sorted by AtMillis. Readings of other kinds, and readings outside
-// [Plausible], are skipped. The rules, all design choices:
+// DetectFalls finds end-tidal CO2 fall and rise episodes in one patient's
+// EtCO2 series, sorted by AtMillis. Readings of other kinds, and readings
+// outside [Plausible], are skipped. The rules, all design choices:
 //
 //   - The baseline at a reading is the median of the readings in the
 //     Baseline before it (readings at the same instant excluded), and it
-//     needs MinBaselineReadings of them. Readings that belonged to an
-//     episode, confirmed or cancelled, never enter a baseline, so a fall
-//     does not drag its own reference down.
-//   - A reading is low when it is below baseline − threshold, where
-//     threshold = min(Drop, DropFraction × baseline). The first low reading
-//     opens a candidate episode and freezes the baseline and threshold.
+//     needs MinBaselineReadings of them; with sparse charting, the last
+//     MinBaselineReadings readings within BaselineMax. No reading may be
+//     more than MaxGap from the next; a series that fails this is too
+//     sparse or gappy to judge ([DetectEpisodes] lists such readings).
+//     Readings that belonged to an episode, confirmed or cancelled, never
+//     enter a baseline, so an episode does not drag its own reference. A
+//     baseline below 10 mm[Hg] is not an end-tidal baseline and is not
+//     judged against.
+//   - A reading is low when it is below baseline − threshold, and high when
+//     it is above baseline + threshold, where
+//     threshold = min(Drop, DropFraction × baseline). The first low (high)
+//     reading opens a candidate fall (rise) and freezes the baseline and
+//     threshold.
 //   - The candidate is confirmed at the first reading at least Sustain after
-//     onset, provided every reading from onset to it was low. A reading that
-//     is not low cancels it, and so does a gap of more than Sustain between
-//     readings: the fall must have been observed throughout, not inferred
-//     across a silent monitor. After a cancellation the same reading is
-//     judged afresh, so it may open a new candidate.
-//   - A confirmed episode ends at the first reading above
-//     baseline − Recover × threshold. That reading joins the baseline but
-//     cannot open a new episode; the next can. One episode gives one
+//     onset, provided it has MinEpisodeReadings readings and every reading
+//     from onset to it was past the threshold. A reading that is not
+//     cancels it, and so does a gap of more than MaxGap between readings:
+//     the episode must have been observed throughout, not inferred across a
+//     silent monitor. After a cancellation the same reading is judged
+//     afresh, so it may open a new candidate.
+//   - A confirmed episode ends at the first reading back within
+//     Recover × threshold of the baseline. That reading joins the baseline
+//     but cannot open a new episode; the next can. One episode gives one
 //     finding however long it lasts.
 //   - After a long episode the baseline may hold too few readings; no new
 //     episode opens until it has MinBaselineReadings again.
@@ -660,4 +932,14 @@ func days(d time.Duration) string {
 // over the whole series or over any prefix that includes the confirmation
 // gives the same finding: a streaming caller may simply re-run it as
 // readings arrive.
-func DetectFalls(cfg FallConfig, series []Reading) []Fall { return detectFalls(cfg, series) }
+func DetectFalls(cfg FallConfig, series []Reading) []Fall {
+	falls, _ := detectFalls(cfg, series)
+	return falls
+}
+
+// DetectEpisodes is [DetectFalls] that also returns the readings it could
+// not judge because the series was too sparse or gappy, each with
+// [ReasonTooSparse], so that a reviewer sees why no finding was possible.
+func DetectEpisodes(cfg FallConfig, series []Reading) ([]Fall, []Omission) {
+	return detectFalls(cfg, series)
+}

@@ -23,9 +23,24 @@ func TestDefaultConfig(t *testing.T) {
 	if c.Window != 5*time.Minute || c.HeightMaxAge != 365*24*time.Hour {
 		t.Errorf("Window %v, HeightMaxAge %v", c.Window, c.HeightMaxAge)
 	}
-	want := derive.FallConfig{Baseline: 30 * time.Minute, MinBaselineReadings: 5, Drop: 8, DropFraction: 0.25, Sustain: 3 * time.Minute, Recover: 0.5}
+	// Sparse charting: many EHRs store validated end-tidal values every 5
+	// to 60 min (common practice); 15 min charting with a minute of jitter
+	// must still be judged (design choice).
+	want := derive.FallConfig{Baseline: 30 * time.Minute, MinBaselineReadings: 5, Drop: 8, DropFraction: 0.25, Sustain: 3 * time.Minute,
+		MaxGap: 16 * time.Minute, BaselineMax: 90 * time.Minute, MinEpisodeReadings: 2, Recover: 0.5}
 	if c.Fall != want {
 		t.Errorf("Fall = %+v, want %+v", c.Fall, want)
+	}
+	// The temperature coefficient of PCO2 of blood in vitro, 0.019 per °C
+	// (J Appl Physiol 1965, REFERENCE 1.6); the rest are design choices.
+	if c.Temperature != (derive.TemperatureConfig{Search: time.Hour, Tolerance: 0.5, Coefficient: 0.019}) {
+		t.Errorf("Temperature = %+v", c.Temperature)
+	}
+	if c.Artefact != (derive.ArtefactConfig{Floor: 5, Fraction: 0.5, MinUsableFraction: 0.5}) {
+		t.Errorf("Artefact = %+v", c.Artefact)
+	}
+	if c.Steady != (derive.SteadyConfig{Lookback: 15 * time.Minute, MinuteVolumeChange: 0.2, EtCO2Change: 5}) {
+		t.Errorf("Steady = %+v", c.Steady)
 	}
 }
 
@@ -44,8 +59,13 @@ func TestValidate(t *testing.T) {
 		{"NaN drop", func(c *derive.Config) { c.Fall.Drop = math.NaN() }, []string{"Fall.Drop"}},
 		{"everything at once", func(c *derive.Config) { *c = derive.Config{} }, []string{
 			"Window", "HeightMaxAge", "Fall.Baseline", "Fall.Sustain", "Fall.MinBaselineReadings",
-			"Fall.Drop", "Fall.DropFraction", "Fall.Recover",
+			"Fall.Drop", "Fall.DropFraction", "Fall.Recover", "Fall.MaxGap", "Fall.MinEpisodeReadings",
+			"Artefact.Floor", "Artefact.Fraction", "Artefact.MinUsableFraction",
+			"Steady.Lookback", "Steady.MinuteVolumeChange", "Steady.EtCO2Change",
+			"Temperature.Search", "Temperature.Coefficient",
 		}},
+		{"baseline reach shorter than the baseline", func(c *derive.Config) { c.Fall.BaselineMax = time.Minute }, []string{"Fall.BaselineMax"}},
+		{"temperature coefficient of 1", func(c *derive.Config) { c.Temperature.Coefficient = 1 }, []string{"Temperature.Coefficient"}},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -78,13 +98,20 @@ func TestPlausible(t *testing.T) {
 		v    float64
 		want bool
 	}{
-		{derive.KindPaCO2, 5, true},
-		{derive.KindPaCO2, 4.9, false},
+		// PaCO2 about 13 mm[Hg] at extreme altitude and in severe
+		// metabolic acidosis (from memory): 10 is the floor; PaCO2 above
+		// 150 has been survived (from memory): the ceiling stays wide.
+		{derive.KindPaCO2, 10, true},
+		{derive.KindPaCO2, 9.9, false},
+		{derive.KindPaCO2, 5.3, false}, // 5.3 kPa labelled mm[Hg]
 		{derive.KindPaCO2, 200, true},
+		{derive.KindPaCO2, 300, true},
 		{derive.KindPaCO2, 5.3 * 7.5, true},
 		{derive.KindEtCO2, 0, true},
 		{derive.KindEtCO2, -0.1, false},
-		{derive.KindEtCO2, 150.1, false},
+		{derive.KindEtCO2, 200.1, false},
+		{derive.KindBodyTemperature, 33, true},    // therapeutic hypothermia
+		{derive.KindBodyTemperature, 98.6, false}, // °F labelled Cel
 		{derive.KindMixedExpiredCO2, 0.4, false},
 		{derive.KindVCO2, 20, true},
 		{derive.KindVCO2, 2001, false},

@@ -1,26 +1,45 @@
 package derive
 
 import (
+	"fmt"
 	"slices"
+	"time"
 )
+
+// minBaselineEtCO2 is the lowest baseline, in mm[Hg], the detector judges
+// against: a lower one is not an end-tidal baseline of a ventilated patient
+// (a series in kPa labelled mm[Hg], or a long disconnection). A design
+// choice.
+const minBaselineEtCO2 = 10.0
 
 // detectFalls is one forward pass in which each reading is judged only on
 // itself and the readings before it, and a finding is fixed the moment it is
 // confirmed. That is what makes a streaming caller, who re-runs it over a
 // growing series, and a batch caller agree. The rules are on [DetectFalls].
-func detectFalls(cfg FallConfig, series []Reading) []Fall {
+// It also returns the readings it could not judge because the series was
+// too sparse or gappy.
+func detectFalls(cfg FallConfig, series []Reading) ([]Fall, []Omission) {
 	var (
-		falls []Fall
+		falls  []Fall
+		sparse []Omission
 		// eligible are baseline-eligible readings in time order;
-		// eligible[head:inEnd] are in the current window, and their values
-		// are in window, sorted.
-		eligible    []Reading
-		head, inEnd int
-		window      []float64
-		ep          *episode
+		// eligible[head:inEnd] are in the Baseline window, and their values
+		// are in window, sorted; eligible[far:inEnd] are within BaselineMax.
+		eligible         []Reading
+		head, inEnd, far int
+		window           []float64
+		ep               *episode
+		// seen are the times of every judged reading, episode or not, and
+		// seen[seenHead:] those within BaselineMax: sparseness is a property
+		// of the charting, not of which readings may form a baseline.
+		seen     []int64
+		seenHead int
 	)
 	span := cfg.Baseline.Milliseconds()
+	spanMax := max(cfg.BaselineMax, cfg.Baseline).Milliseconds()
 	sustain := cfg.Sustain.Milliseconds()
+	maxGap := max(cfg.MaxGap, cfg.Sustain).Milliseconds()
+	minEp := max(cfg.MinEpisodeReadings, 1)
 
 	for _, r := range series {
 		if r.Kind != KindEtCO2 {
@@ -42,19 +61,28 @@ func detectFalls(cfg FallConfig, series []Reading) []Fall {
 			window = slices.Delete(window, i, i+1)
 			head++
 		}
+		fromMax := addSat(t, -spanMax)
+		for far < inEnd && eligible[far].AtMillis < fromMax {
+			far++
+		}
+		for seenHead < len(seen) && seen[seenHead] < fromMax {
+			seenHead++
+		}
+		why := sparseness(cfg, seen, seenHead, t, maxGap, spanMax)
+		seen = append(seen, t)
 
 		if ep != nil {
 			if ep.confirmed {
-				if r.Value > ep.baseline-cfg.Recover*ep.threshold {
+				if ep.recovered(r.Value, cfg.Recover) {
 					ep = nil
 					eligible = append(eligible, r)
 				}
 				continue
 			}
 			last := ep.readings[len(ep.readings)-1].AtMillis
-			if t-last <= sustain && r.Value < ep.baseline-ep.threshold {
+			if t-last <= maxGap && ep.beyond(r.Value) {
 				ep.readings = append(ep.readings, r)
-				if t-ep.readings[0].AtMillis >= sustain {
+				if t-ep.readings[0].AtMillis >= sustain && len(ep.readings) >= minEp {
 					falls = append(falls, ep.confirm())
 				}
 				continue
@@ -62,17 +90,21 @@ func detectFalls(cfg FallConfig, series []Reading) []Fall {
 			ep = nil // cancelled; judge r afresh below
 		}
 
-		if n := inEnd - head; n >= cfg.MinBaselineReadings && n > 0 {
-			base := median(window)
+		base, baseReadings, ok := baseline(cfg, eligible, head, inEnd, far, window)
+		if why != "" {
+			sparse = append(sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
+		} else if ok && base >= minBaselineEtCO2 {
 			thr := min(cfg.Drop, cfg.DropFraction*base)
-			if r.Value < base-thr {
+			rise := r.Value > base+thr
+			if rise || r.Value < base-thr {
 				ep = &episode{
 					baseline:     base,
 					threshold:    thr,
-					baseReadings: slices.Clone(eligible[head:inEnd]),
+					rise:         rise,
+					baseReadings: baseReadings,
 					readings:     []Reading{r},
 				}
-				if sustain <= 0 {
+				if sustain <= 0 && minEp <= 1 {
 					falls = append(falls, ep.confirm())
 				}
 				continue
@@ -80,15 +112,74 @@ func detectFalls(cfg FallConfig, series []Reading) []Fall {
 		}
 		eligible = append(eligible, r)
 	}
-	return falls
+	return falls, sparse
 }
 
-// episode is an open fall, candidate or confirmed.
+// sparseness says why the charting before time t is too sparse or gappy to
+// judge, or "" when it is not. seen[seenHead:] are the times of the readings
+// within BaselineMax before t. The first readings of a series are a
+// baseline forming, not a sparse series.
+func sparseness(cfg FallConfig, seen []int64, seenHead int, t, maxGap, spanMax int64) string {
+	if len(seen) == 0 {
+		return ""
+	}
+	if gap := t - seen[len(seen)-1]; gap > maxGap {
+		return fmt.Sprintf("no end-tidal reading in the %v before this one: the series is too gappy to judge a fall or rise",
+			time.Duration(maxGap)*time.Millisecond)
+	}
+	need := max(cfg.MinBaselineReadings, 1)
+	if n := len(seen) - seenHead; n < need && seen[0] <= t-spanMax {
+		return fmt.Sprintf("%d end-tidal readings in the %v before this one, fewer than the %d a baseline needs: the series is too sparse to judge a fall or rise",
+			n, time.Duration(spanMax)*time.Millisecond, need)
+	}
+	return ""
+}
+
+// baseline returns the baseline and the readings it is the median of: the
+// Baseline window when it holds MinBaselineReadings, otherwise (sparse
+// charting) the last MinBaselineReadings eligible readings within
+// BaselineMax. ok is false when neither has enough readings: a baseline
+// still forming, or emptied by a long episode.
+func baseline(cfg FallConfig, eligible []Reading, head, inEnd, far int, window []float64) (float64, []Reading, bool) {
+	need := max(cfg.MinBaselineReadings, 1)
+	if inEnd-head >= need {
+		return median(window), slices.Clone(eligible[head:inEnd]), true
+	}
+	if inEnd-far < need {
+		return 0, nil, false
+	}
+	rs := eligible[inEnd-need : inEnd]
+	vals := make([]float64, len(rs))
+	for i, r := range rs {
+		vals[i] = r.Value
+	}
+	return Median(vals), slices.Clone(rs), true
+}
+
+// episode is an open fall or rise, candidate or confirmed.
 type episode struct {
 	baseline, threshold float64
+	rise                bool
 	baseReadings        []Reading
 	readings            []Reading // onset to the latest reading, while a candidate
 	confirmed           bool
+}
+
+// beyond reports whether v is past the threshold in the episode's direction.
+func (e *episode) beyond(v float64) bool {
+	if e.rise {
+		return v > e.baseline+e.threshold
+	}
+	return v < e.baseline-e.threshold
+}
+
+// recovered reports whether v is back within recover × threshold of the
+// baseline, which ends a confirmed episode.
+func (e *episode) recovered(v, recover float64) bool {
+	if e.rise {
+		return v < e.baseline+recover*e.threshold
+	}
+	return v > e.baseline-recover*e.threshold
 }
 
 // confirm fixes the finding from the readings so far.
@@ -99,15 +190,32 @@ func (e *episode) confirm() Fall {
 		vals[i] = r.Value
 	}
 	level := Median(vals)
+	notes := fallNotes(level)
+	if e.rise {
+		notes = riseNotes()
+	}
 	return Fall{
 		Onset:            e.readings[0].At(),
 		Confirmed:        e.readings[len(e.readings)-1].At(),
 		Baseline:         e.baseline,
 		Level:            level,
 		Change:           level - e.baseline,
+		Rise:             e.rise,
 		BaselineReadings: e.baseReadings,
 		EpisodeReadings:  slices.Clone(e.readings),
-		Notes:            fallNotes(level),
+		Notes:            notes,
+	}
+}
+
+// riseNotes names the usual causes of a sustained rise of end-tidal CO2:
+// return of spontaneous circulation after arrest (Grmec S et al., Crit Care
+// 2003;7:R139), hypoventilation, and a rise in CO2 production (fever,
+// sepsis, bicarbonate, released tourniquet; common practice).
+func riseNotes() []string {
+	return []string{
+		"consider return of circulation or a rising cardiac output (Grmec 2003)",
+		"consider hypoventilation: a lower minute volume, a leak or an obstruction",
+		"consider a rise in CO2 production: fever, sepsis, shivering, bicarbonate, a released tourniquet",
 	}
 }
 

@@ -91,14 +91,16 @@ func TestDetectFalls(t *testing.T) {
 		// before five are collected.
 		{"too little baseline", minutes(cat(rep(38, 2), rep(25, 30))...), nil},
 		{
-			// Gap of 4 min (> Sustain) after the first low reading cancels
-			// that candidate; the reading after the gap opens a new one.
+			// A gap of 17 min (> MaxGap) after the first low reading
+			// cancels that candidate, and the reading after the gap cannot
+			// be judged (the series is too gappy); the next ones can.
 			"gap cancels the candidate",
 			slices.Concat(minutes(cat(rep(38, 20), rep(25, 1))...), []derive.Reading{
-				rd(derive.KindEtCO2, 24*time.Minute, 25), rd(derive.KindEtCO2, 25*time.Minute, 25),
-				rd(derive.KindEtCO2, 26*time.Minute, 25), rd(derive.KindEtCO2, 27*time.Minute, 25),
+				rd(derive.KindEtCO2, 37*time.Minute, 25), rd(derive.KindEtCO2, 38*time.Minute, 25),
+				rd(derive.KindEtCO2, 39*time.Minute, 25), rd(derive.KindEtCO2, 40*time.Minute, 25),
+				rd(derive.KindEtCO2, 41*time.Minute, 25),
 			}),
-			[]wantFall{{24, 27, 38, 25, 0}},
+			[]wantFall{{38, 41, 38, 25, 0}},
 		},
 		{
 			"other kinds and implausible values are ignored",

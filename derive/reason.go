@@ -24,15 +24,20 @@ const (
 	ReasonUnpaired       Reason = "no-blood-gas-nearby"         // a reading in no blood gas's window, and not part of a fall finding
 	ReasonLowerPriority  Reason = "preferred-source-present"    // e.g. a set tidal volume where a measured one exists
 	ReasonRefiled        Reason = "filed-under-another-patient" // a newer version of the input names another patient
+	ReasonWrongUnit      Reason = "value-in-another-unit"       // a CO2 value only plausible in another unit, such as kPa labelled mm[Hg]
+	ReasonArtefact       Reason = "etco2-artefact"              // an end-tidal reading that cannot be the patient's end-tidal value then (near zero, or far below its window)
+	ReasonTooSparse      Reason = "series-too-sparse"           // an end-tidal series too sparse or gappy for the fall and rise detector to judge
 )
 
 // Reasons a derived value is not emitted.
 const (
-	ReasonMissingInput   Reason = "input-missing"          // a reading the equation needs was not in the window
-	ReasonFractionBounds Reason = "fraction-out-of-bounds" // a fraction outside [0, 1)
-	ReasonPatientFacts   Reason = "patient-facts-missing"  // sex, height or age unknown
-	ReasonInconsistent   Reason = "inputs-inconsistent"    // inputs that cannot both be right, such as PĒCO2 above PaCO2
-	ReasonNotApplicable  Reason = "not-applicable"         // a measured value made the estimate unnecessary
+	ReasonMissingInput   Reason = "input-missing"           // a reading the equation needs was not in the window
+	ReasonFractionBounds Reason = "fraction-out-of-bounds"  // a fraction outside [0, 1)
+	ReasonPatientFacts   Reason = "patient-facts-missing"   // sex, height or age unknown
+	ReasonInconsistent   Reason = "inputs-inconsistent"     // inputs that cannot both be right, such as PĒCO2 above PaCO2
+	ReasonNotApplicable  Reason = "not-applicable"          // a measured value made the estimate unnecessary
+	ReasonNotAdult       Reason = "patient-not-adult"       // an index defined for adults, for a patient under 18
+	ReasonTooFewUsable   Reason = "too-few-usable-readings" // too few readings of the window were usable after artefacts were left out
 )
 
 // AllReasons lists every reason, inputs first, for documentation and for
@@ -43,7 +48,8 @@ func AllReasons() []Reason {
 		ReasonNotArterial, ReasonNoValue, ReasonCensored, ReasonUnitUnknown,
 		ReasonUnitMismatch, ReasonNoTime, ReasonNoSubject, ReasonImplausible,
 		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority, ReasonRefiled,
+		ReasonWrongUnit, ReasonArtefact, ReasonTooSparse,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
-		ReasonInconsistent, ReasonNotApplicable,
+		ReasonInconsistent, ReasonNotApplicable, ReasonNotAdult, ReasonTooFewUsable,
 	}
 }

@@ -8,7 +8,7 @@ import (
 // derived value's identity: a change to an equation, a default or a pairing
 // rule must change it, so that results computed under different rules are
 // never mistaken for one another.
-const AlgorithmVersion = "1.0.0"
+const AlgorithmVersion = "2.0.0"
 
 // Kind is what a reading measures. Each kind has one canonical unit, and
 // every [Reading] value is in it; unit conversion is the adapter's job.
@@ -26,6 +26,10 @@ const (
 	KindMinuteVolume         // expired minute volume, L/min BTPS
 	KindRespRate             // respiratory rate, /min
 	KindHeight               // body height, cm
+	// Kinds added later keep the numbers above stable: stores persist a
+	// kind as its number.
+	KindBodyTemperature // body (core) temperature, Cel
+	KindPaCO2Adjusted   // arterial PCO2 reported at the patient's temperature, mm[Hg]
 	kindCount
 )
 
@@ -41,6 +45,8 @@ var kindInfo = [kindCount]struct {
 	KindMinuteVolume:    {"minute-volume", "L/min"},
 	KindRespRate:        {"respiratory-rate", "/min"},
 	KindHeight:          {"body-height", "cm"},
+	KindBodyTemperature: {"body-temperature", "Cel"},
+	KindPaCO2Adjusted:   {"paco2-temperature-adjusted", "mm[Hg]"},
 }
 
 // String returns the kind's stable name, used in configuration files and
@@ -92,6 +98,11 @@ type Reading struct {
 	AtMillis int64
 	Value    float64
 	Kind     Kind
+	// Priority is the code table row's priority (higher is preferred; see
+	// package fhir/codes). Pairing keeps, per kind and per window, only the
+	// readings of the highest priority present, and discloses a priority
+	// below [SubstitutePriority].
+	Priority int16
 }
 
 // At returns the effective time.
@@ -133,6 +144,7 @@ const (
 	CodeEstimatedFraction Code = "estimated-dead-space-fraction"
 	CodeMixedExpiredCO2   Code = "mixed-expired-co2"
 	CodeEtCO2Drop         Code = "etco2-drop-from-baseline"
+	CodeEtCO2Rise         Code = "etco2-rise-above-baseline"
 )
 
 // Flag is an interpretation against a published or common-practice
@@ -190,8 +202,14 @@ type Summary struct {
 	Median float64
 	// Readings are the readings the median was taken over, in time order.
 	Readings []Reading
-	// Rule says how the readings were chosen, for explanations.
+	// Rule says how the readings were chosen, for explanations: the window,
+	// the source priority and the artefacts left out.
 	Rule string
+	// Substitute is set when the readings came from a lower-priority source
+	// (a setting, an inspired volume, a partial rate); it says which and why.
+	Substitute string
+	// Artefacts counts the readings of the window left out as artefacts.
+	Artefacts int
 }
 
 // Omission is a value that was not emitted, or an input that was not used,
@@ -207,7 +225,11 @@ type Omission struct {
 
 // Derivation is everything computed for one blood gas.
 type Derivation struct {
-	Gas     Reading
+	Gas Reading
+	// PaCO2 is the arterial PCO2 the equations used, mm[Hg]: Gas.Value, or
+	// the value at the patient's temperature (reported, or adjusted from
+	// 37 °C) when a temperature away from 37 °C was known.
+	PaCO2   float64
 	Patient Patient
 	// Used holds one summary per kind that was found, in Kind order. The
 	// blood gas itself is not repeated here.
@@ -216,8 +238,8 @@ type Derivation struct {
 	Omitted []Omission
 }
 
-// Fall is one episode of end-tidal CO2 falling below the patient's own
-// trailing baseline.
+// Fall is one episode of end-tidal CO2 falling below, or rising above
+// (Rise), the patient's own trailing baseline.
 type Fall struct {
 	// Onset is the time of the first reading below the threshold.
 	Onset time.Time
@@ -230,6 +252,9 @@ type Fall struct {
 	Level float64
 	// Change is Level - Baseline, negative for a fall, mm[Hg].
 	Change float64
+	// Rise marks an episode above the baseline rather than below it; its
+	// code is [CodeEtCO2Rise].
+	Rise bool
 	// BaselineReadings and EpisodeReadings are what the finding cites.
 	BaselineReadings []Reading
 	EpisodeReadings  []Reading
@@ -243,7 +268,53 @@ type Config struct {
 	Window time.Duration
 	// HeightMaxAge is how old the latest height may be at the sample time.
 	HeightMaxAge time.Duration
-	Fall         FallConfig
+	// Artefact decides which end-tidal readings are artefacts.
+	Artefact ArtefactConfig
+	// Steady decides whether ventilation was at a steady state.
+	Steady SteadyConfig
+	// Temperature decides how a PaCO2 is brought to the patient's
+	// temperature.
+	Temperature TemperatureConfig
+	Fall        FallConfig
+}
+
+// ArtefactConfig tunes which end-tidal CO2 readings of a pairing window are
+// artefacts (disconnection, suctioning, an occluded sampling line) rather
+// than end-tidal values of the patient at that moment.
+type ArtefactConfig struct {
+	// Floor, in mm[Hg]: a reading below it is an artefact.
+	Floor float64
+	// Fraction: a reading below this fraction of the median of the window's
+	// readings at or above Floor is an artefact.
+	Fraction float64
+	// MinUsableFraction: when fewer than this fraction of the window's
+	// readings are usable, the window has no end-tidal value.
+	MinUsableFraction float64
+}
+
+// SteadyConfig tunes the steady-state check of the Enghoff and Bohr values.
+type SteadyConfig struct {
+	// Lookback is how far before the pairing window the earlier level is
+	// taken from: readings in [sample − Window − Lookback, sample − Window).
+	Lookback time.Duration
+	// MinuteVolumeChange is the relative change of minute volume, earlier
+	// level to the window's median, that counts as not steady.
+	MinuteVolumeChange float64
+	// EtCO2Change is the change of end-tidal CO2, in mm[Hg], that counts as
+	// not steady.
+	EtCO2Change float64
+}
+
+// TemperatureConfig tunes the temperature correction of PaCO2.
+type TemperatureConfig struct {
+	// Search is how far from the sample time a body temperature is looked
+	// for (the nearest one is used).
+	Search time.Duration
+	// Tolerance, in °C: within 37 ± Tolerance nothing is adjusted.
+	Tolerance float64
+	// Coefficient is the exponent per °C of
+	// PCO2(T) = PCO2(37) × 10^(Coefficient × (T − 37)).
+	Coefficient float64
 }
 
 // FallConfig tunes the end-tidal CO2 fall detector.
@@ -260,6 +331,17 @@ type FallConfig struct {
 	DropFraction float64
 	// Sustain is how long the fall must last before it is a finding.
 	Sustain time.Duration
+	// MaxGap is the longest silence between readings that still counts as
+	// observed; a longer gap cancels a candidate episode and makes the
+	// series too sparse to judge until a baseline forms again. It lets the
+	// detector work on charting every few seconds up to every 15 minutes.
+	MaxGap time.Duration
+	// BaselineMax is how far back the baseline may reach when Baseline holds
+	// fewer than MinBaselineReadings (sparse charting).
+	BaselineMax time.Duration
+	// MinEpisodeReadings is how many readings past the threshold an episode
+	// needs, however long it lasted.
+	MinEpisodeReadings int
 	// Recover ends an episode: a reading back within this fraction of the
 	// drop threshold from the baseline closes it, so one episode gives one
 	// finding however long it lasts.

@@ -188,9 +188,9 @@ func readGolden(t *testing.T) map[string]goldenValue {
 		}
 		out[g.Key] = g
 	}
-	if len(out) != 89 {
-		// demo.summary.golden: "wrote 89 Observations".
-		t.Fatalf("golden file has %d derived Observations, want 89", len(out))
+	if len(out) != 111 {
+		// demo.summary.golden: "wrote 111 Observations".
+		t.Fatalf("golden file has %d derived Observations, want 111", len(out))
 	}
 	return out
 }
@@ -241,16 +241,19 @@ func TestComputeMatchesReplay(t *testing.T) {
 	}
 	diffValues(t, got, withoutID(readGolden(t)))
 
-	// demo.summary.golden: 13 blood gases and 1 fall; inputs left out:
-	// status-not-usable 1, specimen-not-arterial 1, version-superseded 1,
-	// no-blood-gas-nearby 9255 and 373 code-not-recognised (counted only);
-	// values not emitted: input-missing 20, not-applicable 9.
+	// demo.summary.golden: 17 blood gases, 2 falls and 1 rise (a rise is
+	// a result of kind ETCO2_FALL with the code etco2-rise-above-baseline);
+	// inputs left out: status-not-usable 1, specimen-not-arterial 1,
+	// version-superseded 1, value-in-another-unit 1, etco2-artefact 2,
+	// no-blood-gas-nearby 11535 and 465 code-not-recognised (counted only);
+	// values not emitted: input-missing 30, not-applicable 11,
+	// patient-not-adult 4.
 	kinds := map[pb.ResultKind]int{}
 	for _, r := range resp.Results {
 		kinds[r.Kind]++
 	}
-	if kinds[pb.ResultKind_RESULT_KIND_BLOOD_GAS] != 13 || kinds[pb.ResultKind_RESULT_KIND_ETCO2_FALL] != 1 {
-		t.Errorf("results by kind = %v, want 13 blood gases and 1 fall", kinds)
+	if kinds[pb.ResultKind_RESULT_KIND_BLOOD_GAS] != 17 || kinds[pb.ResultKind_RESULT_KIND_ETCO2_FALL] != 3 {
+		t.Errorf("results by kind = %v, want 17 blood gases and 3 end-tidal findings", kinds)
 	}
 	count := func(om []*pb.Omission) map[string]int {
 		m := map[string]int{}
@@ -259,14 +262,15 @@ func TestComputeMatchesReplay(t *testing.T) {
 		}
 		return m
 	}
-	wantInputs := map[string]int{"status-not-usable": 1, "specimen-not-arterial": 1, "version-superseded": 1, "no-blood-gas-nearby": 9255}
+	wantInputs := map[string]int{"status-not-usable": 1, "specimen-not-arterial": 1, "version-superseded": 1, "no-blood-gas-nearby": 11535,
+		"value-in-another-unit": 1, "etco2-artefact": 2}
 	if got := count(resp.InputsLeftOut); !mapsEqual(got, wantInputs) {
 		t.Errorf("inputs left out = %v, want %v", got, wantInputs)
 	}
-	if resp.Unrecognised != 373 {
-		t.Errorf("unrecognised = %d, want 373", resp.Unrecognised)
+	if resp.Unrecognised != 465 {
+		t.Errorf("unrecognised = %d, want 465", resp.Unrecognised)
 	}
-	wantValues := map[string]int{"input-missing": 20, "not-applicable": 9}
+	wantValues := map[string]int{"input-missing": 30, "not-applicable": 11, "patient-not-adult": 4}
 	if got := count(resp.ValuesNotEmitted); !mapsEqual(got, wantValues) {
 		t.Errorf("values not emitted = %v, want %v", got, wantValues)
 	}
@@ -332,7 +336,7 @@ func submitDemo(t *testing.T, eng *engine.Engine, c pb.DeadSpaceClient) *pb.Subm
 	return resp
 }
 
-var demoPatients = []string{"bed1-stable", "bed2-ards", "bed3-kpa", "bed4-percent", "bed5-fall"}
+var demoPatients = []string{"bed1-stable", "bed2-ards", "bed3-kpa", "bed4-percent", "bed5-fall", "bed6-cooled", "bed7-child"}
 
 func TestSubmitListExplain(t *testing.T) {
 	eng := newEngine(t)
@@ -340,22 +344,23 @@ func TestSubmitListExplain(t *testing.T) {
 	golden := readGolden(t)
 	sub := submitDemo(t, eng, c)
 
-	// demo.summary.golden reads 10292 lines: 5 Encounters and 373
+	// demo.summary.golden reads 12852 lines: 7 Encounters and 465
 	// Observations of codes this service does not use are ignored; the
-	// non-final and the venous gas are rejected with their reasons.
-	if sub.Ignored != 5+373 {
-		t.Errorf("ignored = %d, want 378", sub.Ignored)
+	// non-final gas, the venous gas and the kPa gas labelled mm[Hg] are
+	// rejected with their reasons.
+	if sub.Ignored != 7+465 {
+		t.Errorf("ignored = %d, want 472", sub.Ignored)
 	}
 	var reasons []string
 	for _, r := range sub.Rejected {
 		reasons = append(reasons, r.Reason)
 	}
 	slices.Sort(reasons)
-	if want := []string{"specimen-not-arterial", "status-not-usable"}; !slices.Equal(reasons, want) {
+	if want := []string{"specimen-not-arterial", "status-not-usable", "value-in-another-unit"}; !slices.Equal(reasons, want) {
 		t.Errorf("rejected reasons = %v, want %v", reasons, want)
 	}
-	if n := int(sub.Accepted) + int(sub.Ignored) + len(sub.Rejected); n != 10292 {
-		t.Errorf("accepted+ignored+rejected = %d, want all 10292 resources", n)
+	if n := int(sub.Accepted) + int(sub.Ignored) + len(sub.Rejected); n != 12852 {
+		t.Errorf("accepted+ignored+rejected = %d, want all 12852 resources", n)
 	}
 
 	t.Run("list pages through every patient", func(t *testing.T) {
@@ -522,7 +527,7 @@ func TestSubmitListExplain(t *testing.T) {
 	t.Run("explain a fall", func(t *testing.T) {
 		var fall goldenValue
 		for _, g := range golden {
-			if g.Code == "etco2-drop-from-baseline" {
+			if g.Code == "etco2-drop-from-baseline" && g.Subject == "Patient/bed5-fall" {
 				fall = g
 			}
 		}

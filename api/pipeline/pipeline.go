@@ -1,7 +1,8 @@
 // Package pipeline turns decoded FHIR inputs into derived results: it keeps
-// the latest version of each input, groups inputs by patient, prefers the
-// better of two sources for one kind of reading, pairs each blood gas with the
-// readings around its sample time, finds end-tidal CO2 falls, and encodes
+// the latest version of each input, groups inputs by patient, hands each
+// blood gas to derive (which pairs it with the readings around its sample
+// time and prefers the better of two sources per window), finds end-tidal
+// CO2 falls and rises, and encodes
 // every result as FHIR resources. It also accounts for every input that did
 // not become part of a result, with a reason.
 //
@@ -54,9 +55,12 @@ type Input struct {
 // returns the results in time order, the omissions of inputs that became no
 // part of any result, and the omissions of values that were not emitted.
 func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input) ([]Result, []derive.Omission, error) {
-	kept, omitted := preferSources(inputs)
+	var omitted []derive.Omission
 	var gases, readings, etco2 []derive.Reading
-	for _, r := range kept {
+	for _, in := range inputs {
+		r := in.Reading
+		// Source priority is decided per pairing window inside derive.
+		r.Priority = int16(max(min(in.Priority, 1<<15-1), -1<<15))
 		switch r.Kind {
 		case derive.KindPaCO2:
 			gases = append(gases, r)
@@ -78,14 +82,36 @@ func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts deri
 	slices.SortFunc(etco2, byTime)
 
 	used := make(map[string]bool)
+	// why holds, for a reading not used by any result, the first reason a
+	// derivation or the fall detector gave for leaving it out (an artefact,
+	// a lower-priority source in its window, a wrong unit, a sparse series);
+	// without one it is unpaired.
+	why := make(map[string]derive.Omission)
 	var results []Result
 	for _, gas := range gases {
 		d := derive.Derive(cfg, gas, facts, readings)
 		used[gas.Ref] = true
 		for _, o := range d.Omitted {
-			omitted = append(omitted, derive.Omission{Code: o.Code, Ref: gas.Ref, Reason: o.Reason, Detail: o.Detail})
+			switch {
+			case o.Code != "":
+				omitted = append(omitted, derive.Omission{Code: o.Code, Ref: gas.Ref, Reason: o.Reason, Detail: o.Detail})
+			case o.Ref == gas.Ref:
+				omitted = append(omitted, o)
+			default:
+				if _, ok := why[o.Ref]; !ok {
+					why[o.Ref] = o
+				}
+			}
 		}
 		if len(d.Values) == 0 {
+			continue
+		}
+		b, err := enc.Derivation(subject, d)
+		if err != nil {
+			// One bad blood gas (a malformed reference, say) must not stop
+			// the patient's other results, nor other patients.
+			omitted = append(omitted, derive.Omission{Ref: gas.Ref, Reason: derive.ReasonMalformed,
+				Detail: fmt.Sprintf("its derived values could not be written: %v", err)})
 			continue
 		}
 		for _, s := range d.Used {
@@ -93,54 +119,42 @@ func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts deri
 				used[r.Ref] = true
 			}
 		}
-		b, err := enc.Derivation(subject, d)
-		if err != nil {
-			return nil, nil, fmt.Errorf("pipeline: encode derivation of %s: %w", gas.Ref, err)
-		}
 		results = append(results, Result{Subject: subject, Derivation: &d, Bundle: b})
 	}
-	for _, f := range derive.DetectFalls(cfg.Fall, etco2) {
+	series, lower := derive.PreferredSeries(cfg.Window, etco2)
+	falls, sparse := derive.DetectEpisodes(cfg.Fall, series)
+	for _, o := range slices.Concat(sparse, lower) {
+		if _, ok := why[o.Ref]; !ok {
+			why[o.Ref] = o
+		}
+	}
+	for _, f := range falls {
+		b, err := enc.Fall(subject, f)
+		if err != nil {
+			omitted = append(omitted, derive.Omission{Ref: f.EpisodeReadings[0].Ref, Reason: derive.ReasonMalformed,
+				Detail: fmt.Sprintf("the end-tidal CO2 finding starting here could not be written: %v", err)})
+			continue
+		}
 		for _, r := range f.BaselineReadings {
 			used[r.Ref] = true
 		}
 		for _, r := range f.EpisodeReadings {
 			used[r.Ref] = true
 		}
-		b, err := enc.Fall(subject, f)
-		if err != nil {
-			return nil, nil, fmt.Errorf("pipeline: encode fall: %w", err)
-		}
 		results = append(results, Result{Subject: subject, Fall: &f, Bundle: b})
 	}
 	for _, r := range readings {
-		if !used[r.Ref] {
-			omitted = append(omitted, derive.Omission{Ref: r.Ref, Reason: derive.ReasonUnpaired, Detail: r.Kind.String()})
+		if used[r.Ref] {
+			continue
 		}
+		if o, ok := why[r.Ref]; ok {
+			omitted = append(omitted, o)
+			continue
+		}
+		omitted = append(omitted, derive.Omission{Ref: r.Ref, Reason: derive.ReasonUnpaired, Detail: r.Kind.String()})
 	}
 	slices.SortStableFunc(results, func(a, b Result) int { return a.Time().Compare(b.Time()) })
 	return results, omitted, nil
-}
-
-// preferSources keeps, for each kind, only the readings from the highest
-// priority source the patient has, so a measured tidal volume is never
-// averaged with a set one.
-func preferSources(inputs []Input) ([]derive.Reading, []derive.Omission) {
-	best := make(map[derive.Kind]int)
-	for _, in := range inputs {
-		if p, ok := best[in.Reading.Kind]; !ok || in.Priority > p {
-			best[in.Reading.Kind] = in.Priority
-		}
-	}
-	kept := make([]derive.Reading, 0, len(inputs))
-	var omitted []derive.Omission
-	for _, in := range inputs {
-		if in.Priority < best[in.Reading.Kind] {
-			omitted = append(omitted, derive.Omission{Ref: in.Reading.Ref, Reason: derive.ReasonLowerPriority, Detail: in.Reading.Kind.String()})
-			continue
-		}
-		kept = append(kept, in.Reading)
-	}
-	return kept, omitted
 }
 
 // Collector gathers decoded items from a whole export, in any order. It

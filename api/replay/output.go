@@ -1,6 +1,7 @@
 package replay
 
 import (
+	"encoding/json"
 	"fmt"
 	"io"
 	"sort"
@@ -32,7 +33,7 @@ var tableColumns = []struct {
 	header string
 	digits int
 }{
-	{derive.CodeGradient, "Pa-etCO2", 1},
+	{derive.CodeGradient, "Pa-etCO2 mmHg", 1},
 	{derive.CodeAlveolarFraction, "VDalv/VT", 3},
 	{derive.CodePhysiologic, "VD/VT", 3},
 	{derive.CodeEstimatedFraction, "VD/VT est", 3},
@@ -42,12 +43,23 @@ var tableColumns = []struct {
 	{derive.CodeVentilatoryRatio, "VR", 2},
 }
 
+// tableLegend explains the table's marks; each threshold is in the
+// README's thresholds table with its source and population.
+const tableLegend = `
+Fractions (VDalv/VT, VD/VT, VDaw/VT, VR) have no unit; pressures are in mm[Hg] (mmHg).
+Flags: H high, L low, N is not shown; no flag means no published threshold applies.
+  Pa-etCO2 H: above 5 mm[Hg] (Malley 2005, adults). VD/VT H: 0.60 or more (Kallet 2014, ventilated adults with ARDS).
+  VR H: above 2 (ROSE trial secondary analysis, adults with ARDS). A negative Pa-etCO2 is never flagged.
+PaCO2 T: the value at the patient's temperature (reported, or adjusted from 37 °C); the record's note says which.
+Rows: each patient's blood gases and end-tidal CO2 findings in time order.
+`
+
 // WriteTable prints one row per blood gas and per fall finding: the time,
 // the patient, the inputs' medians, the values, and why anything was left
 // out. It is for people; the NDJSON output is for systems.
 func WriteTable(w io.Writer, out Outcome) error {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	head := []string{"sample time (UTC)", "patient", "PaCO2", "EtCO2"}
+	head := []string{"sample time (UTC)", "patient", "PaCO2 mmHg", "EtCO2 mmHg"}
 	for _, c := range tableColumns {
 		head = append(head, c.header)
 	}
@@ -65,12 +77,20 @@ func WriteTable(w io.Writer, out Outcome) error {
 			for range tableColumns {
 				row = append(row, "")
 			}
-			row = append(row, fmt.Sprintf("EtCO2 fall %+.1f mm[Hg] from baseline, confirmed %s", r.Fall.Change, r.Fall.Confirmed.Format("15:04")))
+			what := "fall"
+			if r.Fall.Rise {
+				what = "rise"
+			}
+			row = append(row, fmt.Sprintf("EtCO2 %s %+.1f mm[Hg] from baseline, confirmed %s", what, r.Fall.Change, r.Fall.Confirmed.Format("15:04")))
 			fmt.Fprintln(tw, strings.Join(row, "\t"))
 			continue
 		}
 		d := r.Derivation
-		row = append(row, strconv.FormatFloat(d.Gas.Value, 'f', 1, 64), median(d, derive.KindEtCO2))
+		pa := strconv.FormatFloat(d.PaCO2, 'f', 1, 64)
+		if d.PaCO2 != d.Gas.Value {
+			pa += " T"
+		}
+		row = append(row, pa, median(d, derive.KindEtCO2))
 		values := make(map[derive.Code]derive.Value)
 		for _, v := range d.Values {
 			values[v.Code] = v
@@ -90,7 +110,15 @@ func WriteTable(w io.Writer, out Outcome) error {
 	for _, ref := range gasesWithoutResult(out) {
 		fmt.Fprintf(tw, "%s\t%s\t%s\n", "-", ref, "no values: "+notes(omittedByGas[ref]))
 	}
-	return tw.Flush()
+	if err := tw.Flush(); err != nil {
+		return err
+	}
+	if len(out.Report.Results) == 0 && len(out.Report.Values) == 0 {
+		_, err := fmt.Fprintln(w, "\nNothing to derive: no arterial blood gas in the input (see the summary for what was read and left out).")
+		return err
+	}
+	_, err := fmt.Fprint(w, tableLegend)
+	return err
 }
 
 func gasesWithoutResult(out Outcome) []string {
@@ -169,11 +197,14 @@ func shortCodes(cs []string) []string {
 // lost: lines and resources read, results written, and every input and
 // value left out, by reason.
 func WriteSummary(w io.Writer, out Outcome) error {
-	var gases, falls, values int
+	var gases, falls, rises, values int
 	for _, r := range out.Report.Results {
-		if r.Fall != nil {
+		switch {
+		case r.Fall != nil && r.Fall.Rise:
+			rises++
+		case r.Fall != nil:
 			falls++
-		} else {
+		default:
 			gases++
 		}
 		values += len(r.Bundle.Observations)
@@ -188,7 +219,10 @@ func WriteSummary(w io.Writer, out Outcome) error {
 		read = append(read, fmt.Sprintf("%s %d", t, out.Resources[t]))
 	}
 	fmt.Fprintf(w, "read %d lines (%s), skipped %d\n", out.Lines, strings.Join(read, ", "), len(out.Skipped))
-	fmt.Fprintf(w, "derived: %d blood gases, %d end-tidal CO2 falls; wrote %d Observations, %d Provenance, 1 Device\n", gases, falls, values, len(out.Report.Results))
+	fmt.Fprintf(w, "derived: %d blood gases, end-tidal CO2 falls %d and rises %d; wrote %d Observations, %d Provenance, 1 Device\n", gases, falls, rises, values, len(out.Report.Results))
+	if gases == 0 && len(out.Report.Values) == 0 {
+		fmt.Fprintln(w, "nothing to derive: the input holds no usable arterial blood gas")
+	}
 	rc := ReasonCounts(out.Report.Inputs)
 	if n := out.Report.Unrecognised; n > 0 {
 		rc = append([]ReasonCount{{derive.ReasonUnrecognised, n}}, rc...)
@@ -207,6 +241,41 @@ func WriteSummary(w io.Writer, out Outcome) error {
 	}
 	for _, s := range out.Skipped {
 		fmt.Fprintf(w, "skipped %s\n", s)
+	}
+	return nil
+}
+
+// omissionLine is one line of the omissions listing.
+type omissionLine struct {
+	// Kind is "input" for an input left out, "value" for a value not
+	// emitted.
+	Kind string `json:"kind"`
+	// Reference is the input left out, or the blood gas whose value was
+	// not emitted.
+	Reference string `json:"reference,omitempty"`
+	// Code is the value not emitted; absent for inputs.
+	Code   string `json:"code,omitempty"`
+	Reason string `json:"reason"`
+	Detail string `json:"detail,omitempty"`
+}
+
+// WriteOmissions writes every input left out and every value not emitted,
+// one JSON object a line: {"kind", "reference", "code", "reason",
+// "detail"}, inputs first in reference order, then values in the order of
+// the blood gases. Observations with no code this service uses are counted
+// in the summary only: a bulk export is mostly such lines.
+func WriteOmissions(w io.Writer, out Outcome) error {
+	enc := json.NewEncoder(w)
+	enc.SetEscapeHTML(false)
+	for _, set := range []struct {
+		kind string
+		om   []derive.Omission
+	}{{"input", out.Report.Inputs}, {"value", out.Report.Values}} {
+		for _, o := range set.om {
+			if err := enc.Encode(omissionLine{Kind: set.kind, Reference: o.Ref, Code: string(o.Code), Reason: string(o.Reason), Detail: o.Detail}); err != nil {
+				return fmt.Errorf("replay: write omissions: %w", err)
+			}
+		}
 	}
 	return nil
 }

@@ -26,7 +26,8 @@ func TestDefaultRows(t *testing.T) {
 		reason             derive.Reason
 	}{
 		{"PaCO2 (LOINC 2019-8, secondary sources; name in HL7 MCC IG)", codes.LOINC, "2019-8", derive.KindPaCO2, codes.ActionAccept, ""},
-		{"PaCO2 temperature-adjusted (32771-8, secondary sources only)", codes.LOINC, "32771-8", derive.KindPaCO2, codes.ActionAccept, ""},
+		{"PaCO2 temperature-adjusted (32771-8, secondary sources only)", codes.LOINC, "32771-8", derive.KindPaCO2Adjusted, codes.ActionAccept, ""},
+		{"body temperature (8310-5, FHIR R4 Body Temperature profile)", codes.LOINC, "8310-5", derive.KindBodyTemperature, codes.ActionAccept, ""},
 		{"venous PCO2 rejected (2021-4, secondary sources only)", codes.LOINC, "2021-4", 0, codes.ActionReject, derive.ReasonNotArterial},
 		{"capillary PCO2 rejected (2020-6, secondary sources only)", codes.LOINC, "2020-6", 0, codes.ActionReject, derive.ReasonNotArterial},
 		{"unspecified blood PCO2 rejected (11557-6, unnamed published source)", codes.LOINC, "11557-6", 0, codes.ActionReject, derive.ReasonNotArterial},
@@ -111,7 +112,6 @@ func TestPriorities(t *testing.T) {
 		{"total RR over spontaneous", [2]string{codes.LOINC, "19840-8"}, [2]string{codes.LOINC, "19839-0"}},
 		{"general RR over spontaneous", [2]string{codes.LOINC, "9279-1"}, [2]string{codes.LOINC, "19839-0"}},
 		{"PetCO2 pressure over fraction", [2]string{codes.LOINC, "19891-1"}, [2]string{codes.LOINC, "19889-5"}},
-		{"PaCO2 at 37 °C over temperature-adjusted", [2]string{codes.LOINC, "2019-8"}, [2]string{codes.LOINC, "32771-8"}},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -133,7 +133,7 @@ func TestCodesAndSearchTokens(t *testing.T) {
 			t.Errorf("Codes lacks %s", c)
 		}
 	}
-	got := tab.SearchTokens(derive.KindPaCO2)
+	got := tab.SearchTokens(derive.KindPaCO2, derive.KindPaCO2Adjusted)
 	want := []string{"http://loinc.org|2019-8", "http://loinc.org|32771-8"}
 	if !slices.Equal(got, want) {
 		t.Errorf("SearchTokens(paco2) = %v, want %v", got, want)

@@ -22,7 +22,7 @@ type benchCode struct {
 var unrelatedCodes = []benchCode{
 	{"http://loinc.org", "8867-4", "Heart rate", "vital-signs", "/min", 50, 130},
 	{"http://loinc.org", "59408-5", "Oxygen saturation in Arterial blood by Pulse oximetry", "vital-signs", "%", 88, 100},
-	{"http://loinc.org", "8310-5", "Body temperature", "vital-signs", "Cel", 35.5, 39.5},
+	{"http://loinc.org", "8480-6", "Systolic blood pressure", "vital-signs", "mm[Hg]", 90, 160}, // body temperature (8310-5) is now read
 	{"http://loinc.org", "2823-3", "Potassium [Moles/volume] in Serum or Plasma", "laboratory", "mmol/L", 3.2, 5.4},
 	{"http://loinc.org", "2951-2", "Sodium [Moles/volume] in Serum or Plasma", "laboratory", "mmol/L", 130, 148},
 	{"http://loinc.org", "718-7", "Hemoglobin [Mass/volume] in Blood", "laboratory", "g/dL", 7, 15},

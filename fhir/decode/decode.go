@@ -28,8 +28,9 @@
 //     which must carry a time of day and a timezone; `issued` (when the
 //     result was reported) is never used, because pairing needs the sample
 //     time. Otherwise [derive.ReasonNoTime].
-//  10. [derive.Plausible] for the kind, else [derive.ReasonImplausible] with
-//     the range in the detail.
+//  10. [derive.CheckValue] for the kind: [derive.ReasonWrongUnit] for a value
+//     only plausible in another unit (a PaCO2 of 5.3 labelled mm[Hg]),
+//     else [derive.ReasonImplausible] with the range in the detail.
 //
 // Observations with components (an arterial blood gas panel, 24336-0, with
 // PaCO2 as a component) are not read: a component has no id of its own, so
@@ -409,8 +410,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(reason, problem)
 	}
 
-	if ok, lo, hi := derive.Plausible(row.Kind, conv.ToValue); !ok {
-		return omit(derive.ReasonImplausible, fmt.Sprintf("%s %s is outside the plausible range %s–%s %s for %s",
+	if reason, detail := derive.CheckValue(row.Kind, conv.ToValue); reason == derive.ReasonWrongUnit {
+		return omit(reason, detail)
+	} else if reason != "" {
+		_, lo, hi := derive.Plausible(row.Kind, conv.ToValue)
+		return omit(reason, fmt.Sprintf("%s %s is outside the plausible range %s–%s %s for %s",
 			fmtNum(conv.ToValue), conv.ToUnit, fmtNum(lo), fmtNum(hi), conv.ToUnit, row.Kind))
 	}
 	it.Type = ItemReading

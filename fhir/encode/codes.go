@@ -54,6 +54,7 @@ var precisions = map[derive.Code]Precision{
 	derive.CodeEstimatedFraction: {"Estimated dead-space fraction", "1", "1", 3},
 	derive.CodeMixedExpiredCO2:   {"Mixed-expired CO2 partial pressure (calculated)", "mm[Hg]", "mmHg", 1},
 	derive.CodeEtCO2Drop:         {"End-tidal CO2 fall from baseline", "mm[Hg]", "mmHg", 1},
+	derive.CodeEtCO2Rise:         {"End-tidal CO2 rise above baseline", "mm[Hg]", "mmHg", 1},
 }
 
 // PrecisionOf returns how code is written, and false for a code the encoder
@@ -70,7 +71,7 @@ func Codes() []derive.Code {
 		derive.CodeGradient, derive.CodeAlveolarFraction, derive.CodePhysiologic,
 		derive.CodeAirwayFraction, derive.CodeDeadSpaceVolume, derive.CodeAlveolarVent,
 		derive.CodeVentilatoryRatio, derive.CodeEstimatedFraction, derive.CodeMixedExpiredCO2,
-		derive.CodeEtCO2Drop,
+		derive.CodeEtCO2Drop, derive.CodeEtCO2Rise,
 	}
 }
 

@@ -176,7 +176,7 @@ func (e *Encoder) Derivation(subject string, d derive.Derivation) (Bundle, error
 		return Bundle{}, fmt.Errorf("encode derivation: subject: %w", err)
 	}
 	if d.Patient.Ref != "" {
-		p, err := versioned(d.Patient.Ref, "Patient")
+		p, err := cited(d.Patient.Ref, "Patient")
 		if err != nil {
 			return Bundle{}, fmt.Errorf("encode derivation: patient: %w", err)
 		}
@@ -257,7 +257,23 @@ func (e *Encoder) value(subject string, d derive.Derivation, v derive.Value, iss
 	if v.UsesPatient {
 		used = append(used, d.Patient.Ref)
 	}
+	obs.Note = unversionedNote(obs.Note, used)
 	return obs, used, nil
+}
+
+// unversionedNote adds [UnversionedNote] when any cited reference has no
+// version.
+func unversionedNote(notes []fhir.Annotation, refs []string) []fhir.Annotation {
+	n := 0
+	for _, r := range sortedUnique(refs) {
+		if !strings.Contains(r, "/_history/") {
+			n++
+		}
+	}
+	if n == 0 {
+		return notes
+	}
+	return appendNote(notes, fmt.Sprintf(UnversionedNote, n))
 }
 
 // observation builds what every derived Observation shares.

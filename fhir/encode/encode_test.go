@@ -453,8 +453,6 @@ func TestRejects(t *testing.T) {
 		{"versioned subject", "Patient/p1/_history/3", nil, nil},
 		{"subject not a patient", "Group/g1", nil, nil},
 		{"patient facts for another patient", "Patient/p2", nil, nil},
-		{"unversioned blood gas", subject, func(d *derive.Derivation) { d.Gas.Ref = "Observation/abg-1" }, nil},
-		{"unversioned reading", subject, func(d *derive.Derivation) { d.Used[0].Readings[0].Ref = "Observation/etco2-1" }, nil},
 		{"reading of another type", subject, func(d *derive.Derivation) { d.Used[0].Readings[0].Ref = "Device/x/_history/1" }, nil},
 		{"unknown code", subject, func(d *derive.Derivation) { d.Values[0].Code = "tidal-volume" }, nil},
 		{"wrong unit", subject, func(d *derive.Derivation) { d.Values[0].Unit = "kPa" }, nil},
@@ -503,7 +501,6 @@ func TestFallRejects(t *testing.T) {
 		{"confirmed before onset", func(f *derive.Fall) { f.Confirmed = f.Onset.Add(-time.Second) }},
 		{"no onset", func(f *derive.Fall) { f.Onset = time.Time{} }},
 		{"no episode readings", func(f *derive.Fall) { f.EpisodeReadings = nil }},
-		{"unversioned reading", func(f *derive.Fall) { f.BaselineReadings[0].Ref = "Observation/et-b1" }},
 		{"NaN change", func(f *derive.Fall) { f.Change = math.NaN() }},
 		{"NaN baseline", func(f *derive.Fall) { f.Baseline = math.NaN() }},
 	}
@@ -600,5 +597,63 @@ func TestMarshalNDJSON(t *testing.T) {
 	}
 	if err := encode.MarshalNDJSON(&buf, []int{1}); err == nil {
 		t.Error("a JSON array was written as a resource")
+	}
+}
+
+// FHIR R4 makes meta.versionId optional (Resource.meta.versionId 0..1), so
+// an input without a version is still used: it is cited by its logical
+// reference and the value says so in a note (rule 11 of issue 8).
+func TestUnversionedInputsAreCitedWithANote(t *testing.T) {
+	e := newEncoder(t)
+	cases := []struct {
+		name   string
+		change func(*derive.Derivation)
+		want   string
+	}{
+		{"unversioned blood gas", func(d *derive.Derivation) { d.Gas.Ref = "Observation/abg-1" }, "Observation/abg-1"},
+		{"unversioned reading", func(d *derive.Derivation) { d.Used[0].Readings[0].Ref = "Observation/etco2-1" }, "Observation/etco2-1"},
+		{"unversioned patient", func(d *derive.Derivation) { d.Patient.Ref = "Patient/p1" }, "Patient/p1"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			d := fullDerivation()
+			tc.change(&d)
+			b, err := e.Derivation(subject, d)
+			if err != nil {
+				t.Fatal(err)
+			}
+			found := false
+			for _, o := range b.Observations {
+				cites := false
+				for _, r := range o.DerivedFrom {
+					cites = cites || *r.Reference == tc.want
+				}
+				code := *o.Code.Coding[0].Code
+				cites = cites || (tc.want == "Patient/p1" && (code == string(derive.CodeVentilatoryRatio) || code == string(derive.CodeEstimatedFraction)))
+				if !cites {
+					continue
+				}
+				found = true
+				noted := false
+				for _, n := range o.Note {
+					noted = noted || strings.Contains(n.Text, "no version")
+				}
+				if !noted {
+					t.Errorf("%s cites %s without the unversioned note", *o.Code.Coding[0].Code, tc.want)
+				}
+			}
+			if !found {
+				t.Errorf("nothing cites %s", tc.want)
+			}
+		})
+	}
+	f := fall()
+	f.BaselineReadings[0].Ref = "Observation/et-b1"
+	b, err := e.Fall(subject, f)
+	if err != nil {
+		t.Fatalf("fall with an unversioned reading: %v", err)
+	}
+	if n := b.Observations[0].Note; !strings.Contains(n[len(n)-1].Text, "no version") {
+		t.Errorf("fall notes %+v lack the unversioned note", n)
 	}
 }

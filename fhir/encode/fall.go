@@ -8,9 +8,9 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
-// Fall encodes one end-tidal CO2 fall of the patient subject ("Patient/id")
-// as an Observation whose value is the change from baseline (negative for a
-// fall) and whose effective period runs from onset to confirmation, and a
+// Fall encodes one end-tidal CO2 fall or rise of the patient subject
+// ("Patient/id") as an Observation whose code is [EpisodeCode], whose value
+// is the change from baseline (negative for a fall, positive for a rise) and whose effective period runs from onset to confirmation, and a
 // Provenance citing the baseline and episode readings.
 //
 // The encounter is set as for derived values: only when every cited reading
@@ -28,14 +28,16 @@ func (e *Encoder) Fall(subject string, f derive.Fall) (Bundle, error) {
 		return Bundle{}, fmt.Errorf("encode fall: %w", err)
 	}
 	issued := e.issued()
-	p := precisions[derive.CodeEtCO2Drop]
-	obs, err := e.observation(id, derive.CodeEtCO2Drop, p.Unit, f.Change, subject, cited, issued)
+	code := EpisodeCode(f)
+	p := precisions[code]
+	obs, err := e.observation(id, code, p.Unit, f.Change, subject, cited, issued)
 	if err != nil {
 		return Bundle{}, fmt.Errorf("encode fall: %w", err)
 	}
 	obs.EffectivePeriod = &fhir.Period{Start: ptr(instant(f.Onset)), End: ptr(instant(f.Confirmed))}
 	obs.Method = &fhir.CodeableConcept{Text: ptr(methodText(
-		"Median end-tidal CO2 from onset to confirmation minus the median of the patient's trailing baseline"))}
+		"Median end-tidal CO2 from onset to confirmation minus the median of the patient's trailing baseline; " +
+			"the baseline, threshold and sustain time are the deadspace detector's documented design choices"))}
 	baseline, err := formatDecimal(f.Baseline, p.Decimals)
 	if err != nil {
 		return Bundle{}, fmt.Errorf("encode fall: baseline: %w", err)
@@ -54,6 +56,7 @@ func (e *Encoder) Fall(subject string, f derive.Fall) (Bundle, error) {
 	for _, r := range cited {
 		refs = append(refs, r.Ref)
 	}
+	obs.Note = unversionedNote(obs.Note, refs)
 	b := Bundle{Observations: []fhir.Observation{obs}}
 	b.Provenance, err = e.provenance(b.Observations, activityCreate, refs, nil, issued)
 	if err != nil {

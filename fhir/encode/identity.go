@@ -53,10 +53,10 @@ func digest(scheme string, fields ...string) (string, error) {
 
 // ValueIdentity computes both identifiers of the Observation that encodes v,
 // one of d.Values, without encoding it. It fails when a cited reference is
-// malformed or unversioned, or when v cites an input kind d has no summary
+// malformed, or when v cites an input kind d has no summary
 // for.
 func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
-	gas, err := versioned(d.Gas.Ref, "Observation")
+	gas, err := cited(d.Gas.Ref, "Observation")
 	if err != nil {
 		return Identity{}, fmt.Errorf("blood gas: %w", err)
 	}
@@ -69,7 +69,7 @@ func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 		refs = append(refs, r.Ref)
 	}
 	if v.UsesPatient {
-		p, err := versioned(d.Patient.Ref, "Patient")
+		p, err := cited(d.Patient.Ref, "Patient")
 		if err != nil {
 			return Identity{}, fmt.Errorf("%s uses the patient: %w", v.Code, err)
 		}
@@ -146,11 +146,11 @@ func FallIdentity(subject string, f derive.Fall) (Identity, error) {
 	for _, r := range used {
 		refs = append(refs, r.Ref)
 	}
-	key, err := valueKey(derive.CodeEtCO2Drop, refs)
+	key, err := valueKey(EpisodeCode(f), refs)
 	if err != nil {
 		return Identity{}, err
 	}
-	series, err := FallSeries(s.String(), f.Onset)
+	series, err := episodeSeries(s.String(), EpisodeCode(f), f.Onset)
 	if err != nil {
 		return Identity{}, err
 	}
@@ -160,6 +160,20 @@ func FallIdentity(subject string, f derive.Fall) (Identity, error) {
 // FallSeries returns the series identifier value of the fall that began at
 // onset for the patient subject.
 func FallSeries(subject string, onset time.Time) (string, error) {
+	return episodeSeries(subject, derive.CodeEtCO2Drop, onset)
+}
+
+// EpisodeCode is the code of a fall or rise finding.
+func EpisodeCode(f derive.Fall) derive.Code {
+	if f.Rise {
+		return derive.CodeEtCO2Rise
+	}
+	return derive.CodeEtCO2Drop
+}
+
+// episodeSeries is the series of a fall (code etco2-drop-from-baseline, the
+// same digest as before rises existed) or a rise.
+func episodeSeries(subject string, code derive.Code, onset time.Time) (string, error) {
 	s, err := logical(subject, "Patient")
 	if err != nil {
 		return "", fmt.Errorf("subject: %w", err)
@@ -167,14 +181,14 @@ func FallSeries(subject string, onset time.Time) (string, error) {
 	if onset.IsZero() {
 		return "", fmt.Errorf("fall has no onset time")
 	}
-	return digest("deadspace fall series 1", "code="+string(derive.CodeEtCO2Drop),
+	return digest("deadspace fall series 1", "code="+string(code),
 		"subject="+s.String(), "onset="+onset.UTC().Format(time.RFC3339Nano))
 }
 
 // valueReadings returns the blood gas and every reading in the summaries
 // of the kinds v used, each checked to be a versioned Observation reference.
 func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
-	if _, err := versioned(d.Gas.Ref, "Observation"); err != nil {
+	if _, err := cited(d.Gas.Ref, "Observation"); err != nil {
 		return nil, fmt.Errorf("blood gas: %w", err)
 	}
 	out := []derive.Reading{d.Gas}
@@ -189,7 +203,7 @@ func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error
 			}
 			found = true
 			for _, r := range s.Readings {
-				if _, err := versioned(r.Ref, "Observation"); err != nil {
+				if _, err := cited(r.Ref, "Observation"); err != nil {
 					return nil, fmt.Errorf("%s input %s: %w", v.Code, k, err)
 				}
 				out = append(out, r)
@@ -207,7 +221,7 @@ func fallReadings(f derive.Fall) ([]derive.Reading, error) {
 	out := make([]derive.Reading, 0, len(f.BaselineReadings)+len(f.EpisodeReadings))
 	for _, set := range [][]derive.Reading{f.BaselineReadings, f.EpisodeReadings} {
 		for _, r := range set {
-			if _, err := versioned(r.Ref, "Observation"); err != nil {
+			if _, err := cited(r.Ref, "Observation"); err != nil {
 				return nil, fmt.Errorf("fall reading: %w", err)
 			}
 			out = append(out, r)

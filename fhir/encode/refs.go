@@ -51,6 +51,26 @@ func versioned(s, typ string) (ref, error) {
 	return r, nil
 }
 
+// cited parses a reference to an input and requires the given resource
+// type. A version is expected but not required: FHIR R4 makes
+// meta.versionId optional, and an input without one is still used and
+// cited by its logical reference ([UnversionedNote] goes on the value).
+func cited(s, typ string) (ref, error) {
+	r, err := parseRef(s)
+	if err != nil {
+		return ref{}, err
+	}
+	if r.Type != typ {
+		return ref{}, fmt.Errorf("reference %q: want a reference to %s", s, typ)
+	}
+	return r, nil
+}
+
+// UnversionedNote is added to a derived Observation that cites an input
+// without a version: the citation then names the resource but not the
+// exact content used.
+const UnversionedNote = "Cites %d input(s) that carried no version (meta.versionId): the reference names the resource, not the exact version used, so a later change to it is not visible from this record."
+
 // logical parses s and requires an unversioned reference of type typ.
 func logical(s, typ string) (ref, error) {
 	r, err := parseRef(s)

@@ -205,6 +205,9 @@ var supported = map[string]unitDef{
 	"cm":       {dimLength, 1},
 	"m":        {dimLength, 100},
 	"[in_i]":   {dimLength, 2.54},
+	"Cel":      {dimTemperature, 1},
+	// [degF] has an offset, not only a factor; convert handles it.
+	"[degF]": {dimTemperature, 5.0 / 9},
 }
 
 // recognised are common Observation units of other dimensions, known only so
@@ -216,8 +219,6 @@ var recognised = map[string]dimension{
 	"kg":      dimMass,
 	"g":       dimMass,
 	"[lb_av]": dimMass,
-	"Cel":     dimTemperature,
-	"[degF]":  dimTemperature,
 	"K":       dimTemperature,
 	"mmol/L":  dimConcentration,
 	"mg/dL":   dimConcentration,
@@ -380,6 +381,16 @@ func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
 	case u.dim != target.dim:
 		return Conversion{}, &Error{Reason: derive.ReasonUnitMismatch, Unit: u.Code, Kind: k,
 			Detail: fmt.Sprintf("the unit measures %s, %s needs %s", u.dim, k, target.dim)}
+	}
+	if u.def.dim == dimNone {
+		return Conversion{}, &Error{Reason: derive.ReasonUnitUnknown, Unit: u.Code, Kind: k,
+			Detail: fmt.Sprintf("a %s unit this service does not convert", u.dim)}
+	}
+	if u.Bare == "[degF]" {
+		c.ToValue = (v - 32) * 5 / 9
+		c.Factor = 5.0 / 9
+		c.Text = fmt.Sprintf("(%s [degF] − 32) × 5/9 = %s Cel", num(v), num6(c.ToValue))
+		return c, nil
 	}
 	if u.def.factor == target.factor {
 		c.Factor, c.ToValue = 1, v

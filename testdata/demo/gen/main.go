@@ -93,6 +93,8 @@ type kind struct {
 
 var (
 	paco2      = kind{loinc, "2019-8", "Carbon dioxide [Partial pressure] in Arterial blood", "mm[Hg]", "laboratory"}
+	paco2Temp  = kind{loinc, "32771-8", "Carbon dioxide [Partial pressure] adjusted to patient's actual temperature in Arterial blood", "mm[Hg]", "laboratory"}
+	tidalSet   = kind{loinc, "20112-9", "Tidal volume setting Ventilator", "mL", "procedure"}
 	pvco2      = kind{loinc, "2021-4", "Carbon dioxide [Partial pressure] in Venous blood", "mm[Hg]", "laboratory"}
 	etco2      = kind{loinc, "19891-1", "Carbon dioxide [Partial pressure] in Exhaled gas --at end expiration", "mm[Hg]", "vital-signs"}
 	etco2Pct   = kind{loinc, "19889-5", "Carbon dioxide/Gas.total.at end expiration in Exhaled gas", "%", "vital-signs"}
@@ -124,9 +126,18 @@ type bed struct {
 	vt, rr, vco2mL             float64
 	paco2At                    []time.Duration // offsets of arterial samples
 	paco2kPa                   bool
-	// etco2 and gradient as a function of minutes into the night
+	// etco2 and gradient as a function of minutes into the night; the
+	// gradient is at the patient's temperature
 	etco2Fn  func(m float64) float64
 	gradient func(m float64) float64
+	// chartEvery is the charting interval of the device feeds in minutes
+	// (0: every minute); many EHRs keep a validated value every 5 min.
+	chartEvery int
+	// tempFn is the body temperature (nil: about 37.2 °C).
+	tempFn func(m float64) float64
+	// reportAdjusted lists the samples (by index) whose analyser was told
+	// the patient's temperature and reports 32771-8 as well.
+	reportAdjusted map[int]bool
 }
 
 func main() {
@@ -178,6 +189,40 @@ func main() {
 				return 4
 			},
 		},
+		{ // cooled to 33 °C after a cardiac arrest, rewarmed from 04:00; the
+			// ventilator charts only its set tidal volume; end-tidal CO2 rises
+			// as the patient rewarms
+			id: "bed6-cooled", gender: "male", birth: "1961-08-03", heightCm: 182, heightUnit: "cm", enc: "enc-bed6",
+			etco2: etco2, tidal: tidalSet, minute: minute, rate: rate, vco2: true, vt: 500, rr: 14, vco2mL: 170,
+			paco2At:        []time.Duration{time.Hour, 3 * time.Hour},
+			reportAdjusted: map[int]bool{1: true},
+			etco2Fn: func(m float64) float64 {
+				if m >= 360 {
+					return 44
+				}
+				return 32
+			},
+			gradient: func(m float64) float64 { return 4 },
+			tempFn: func(m float64) float64 {
+				if m < 360 {
+					return 33
+				}
+				return 33 + (m-360)/30
+			},
+		},
+		{ // a nine-year-old after scoliosis surgery, charted every 5 minutes;
+			// at 04:00 the end-tidal CO2 falls for 40 minutes (a kinked tube)
+			id: "bed7-child", gender: "female", birth: "2016-09-12", heightCm: 132, heightUnit: "cm", enc: "enc-bed7",
+			etco2: etco2, tidal: tidal, minute: minute, rate: rate, vt: 230, rr: 22, chartEvery: 5,
+			paco2At: []time.Duration{2 * time.Hour, 6 * time.Hour},
+			etco2Fn: func(m float64) float64 {
+				if m >= 240 && m < 280 {
+					return 24
+				}
+				return 38
+			},
+			gradient: func(m float64) float64 { return 3 },
+		},
 	}
 
 	var patients, encounters, gases, devices []any
@@ -188,10 +233,17 @@ func main() {
 		h := b.heightCm
 		devices = append(devices, obs(b, height, fmt.Sprintf("%s-height", b.id), nightStart.Add(-48*time.Hour), num(h, 2), b.heightUnit, "1", "final"))
 		n := 0
+		every := max(b.chartEvery, 1)
 		for m := 0; m < 8*60; m++ {
 			at := nightStart.Add(time.Duration(m) * time.Minute)
 			mf := float64(m)
+			if m%every != 0 {
+				continue
+			}
 			e := b.etco2Fn(mf) + rng.NormFloat64()*0.6
+			if b.id == "bed1-stable" && (m == 242 || m == 243) {
+				e = float64(m - 242) // suctioning just after the second blood gas: 0 and 1 mm[Hg]
+			}
 			var eVal string
 			switch b.etco2.unit {
 			case "kPa":
@@ -217,7 +269,11 @@ func main() {
 				devices = append(devices, obs(b, spo2, id("spo2"), at, num(95+rng.NormFloat64(), 0), "%", "1", "final"))
 			}
 			if m%60 == 0 {
-				devices = append(devices, obs(b, temp, id("temp"), at, num(37.2+rng.NormFloat64()*0.2, 1), "Cel", "1", "final"))
+				t := 37.2 + rng.NormFloat64()*0.2
+				if b.tempFn != nil {
+					t = b.tempFn(mf)
+				}
+				devices = append(devices, obs(b, temp, id("temp"), at, num(t, 1), "Cel", "1", "final"))
 			}
 		}
 		for i, off := range b.paco2At {
@@ -225,6 +281,14 @@ func main() {
 			mf := off.Minutes()
 			pa := b.etco2Fn(mf) + b.gradient(mf) + rng.NormFloat64()*0.5
 			id := fmt.Sprintf("%s-abg-%d", b.id, i+1)
+			if b.tempFn != nil {
+				// the analyser measures at 37 °C: PCO2(37) = PCO2(T) / 10^(0.019 (T − 37))
+				atTemp := pa
+				pa = atTemp / math.Pow(10, 0.019*(b.tempFn(mf)-37))
+				if b.reportAdjusted[i] {
+					gases = append(gases, obs(b, paco2Temp, id+"-temp", at, num(atTemp, 0), "mm[Hg]", "1", "final"))
+				}
+			}
 			val, unit := num(pa, 0), "mm[Hg]"
 			if b.paco2kPa {
 				val, unit = num(pa/7.50062, 2), "kPa"
@@ -251,6 +315,9 @@ func main() {
 	b4 := beds[3]
 	gases = append(gases, obs(b4, pvco2, "bed4-percent-vbg-1", nightStart.Add(3*time.Hour), "46", "mm[Hg]", "1", "final"))
 	gases = append(gases, obs(b4, paco2, "bed4-percent-abg-poc", nightStart.Add(6*time.Hour), "41", "mm[Hg]", "1", "preliminary"))
+	// bed 3: a point-of-care analyser reports kPa but the interface labels
+	// it mm[Hg]; it must be refused, never taken as 5.2 mm[Hg].
+	gases = append(gases, obs(beds[2], paco2, "bed3-kpa-abg-poc", nightStart.Add(7*time.Hour), "5.21", "mm[Hg]", "1", "final"))
 
 	write(filepath.Join(dir, "Patient.ndjson"), patients)
 	write(filepath.Join(dir, "Encounter.ndjson"), encounters)
