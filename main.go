@@ -9,7 +9,7 @@
 //	deadspace serve [flags]            the live service
 //	deadspace backfill [flags] [FILE...] derive history (a Bulk Data export
 //	                                   or NDJSON files) and write it back
-//	deadspace version                  print the version
+//	deadspace version                  print the version (also --version)
 //
 // Run "deadspace replay -h", "deadspace serve -h" or "deadspace backfill -h"
 // for the flags.
@@ -24,6 +24,7 @@ import (
 	"log/slog"
 	"os"
 	"os/signal"
+	"strings"
 	"syscall"
 	"time"
 
@@ -56,9 +57,27 @@ func main() {
 	os.Exit(run(ctx, os.Args[1:], os.Stdout, os.Stderr))
 }
 
+// usage lists the commands; each command's -h lists its flags.
+const usage = `usage: deadspace COMMAND [flags]
+
+deadspace derives the dead-space picture of ventilated patients from FHIR R4
+Observations and writes it back as derived Observations citing their inputs.
+
+Commands:
+  replay [flags] FILE...   derive from NDJSON files of FHIR resources, offline
+  serve [flags]            run the live service beside a FHIR server
+  backfill [flags] [FILE...]
+                           derive history (a Bulk Data export or NDJSON files)
+                           and write it back to the FHIR server
+  version                  print the version and the algorithm version
+
+Run "deadspace COMMAND -h" for a command's flags; "deadspace --version" also
+prints the version.
+`
+
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
-		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace backfill [flags] [FILE...] | deadspace version")
+		fmt.Fprint(stderr, usage)
 		return exitUsage
 	}
 	switch args[0] {
@@ -68,15 +87,43 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runServe(ctx, args[1:], os.Getenv, stderr)
 	case "backfill":
 		return runBackfill(ctx, args[1:], os.Getenv, stderr)
-	case "version":
+	case "version", "-version", "--version":
 		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
 		return exitOK
 	case "-h", "-help", "--help", "help":
-		fmt.Fprintln(stdout, "usage: deadspace replay [flags] FILE... | deadspace serve [flags] | deadspace backfill [flags] [FILE...] | deadspace version")
+		fmt.Fprint(stdout, usage)
 		return exitOK
 	}
-	fmt.Fprintf(stderr, "deadspace: unknown command %q\n", args[0])
+	fmt.Fprintf(stderr, "deadspace: unknown command %q\n\n%s", args[0], usage)
 	return exitUsage
+}
+
+// flagNames are the command-line flags that set derive.Config fields, so a
+// configuration error names the flag the operator typed, not a Go field.
+var flagNames = []struct{ field, flag string }{
+	{"Fall.Baseline", "--fall-baseline"},
+	{"Fall.Sustain", "--fall-sustain"},
+	{"Fall.Drop", "--fall-drop"},
+	{"Window", "--window"},
+}
+
+// nameFlags rewrites the field names of a derive.Config validation error
+// into flag names.
+func nameFlags(err error) error {
+	if err == nil {
+		return nil
+	}
+	msg := strings.TrimPrefix(err.Error(), "derive config: ")
+	lines := strings.Split(msg, "\n")
+	for i, l := range lines {
+		for _, f := range flagNames {
+			if rest, ok := strings.CutPrefix(l, f.field+" must"); ok {
+				lines[i] = f.flag + " must" + rest
+				break
+			}
+		}
+	}
+	return errors.New(strings.Join(lines, "\n"))
 }
 
 // commonFlags are the derivation settings shared by every command.
@@ -112,7 +159,7 @@ func (c *commonFlags) options() (derive.Config, decode.Options, encode.Options, 
 	cfg.Fall.Sustain = c.fallSustain
 	cfg.Fall.Baseline = c.fallBaseline
 	if err := cfg.Validate(); err != nil {
-		errs = append(errs, err)
+		errs = append(errs, nameFlags(err))
 	}
 	table, err := codes.LoadFile(c.codesFile)
 	if err != nil {
@@ -145,6 +192,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	outPath := fs.String("out", "", "write the output to this file instead of stdout")
 	format := fs.String("format", "ndjson", "output format: ndjson (FHIR resources) or table (a readable summary)")
 	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
+	codeSystemPath := fs.String("codesystem", "", "also write the project's CodeSystem (every derived code with its definition and unit, FHIR R4 JSON) to this file")
 	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
 	files, err := parseInterspersed(fs, args)
 	if err != nil {
@@ -205,6 +253,12 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	if err != nil {
 		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
 		return exitFailed
+	}
+	if *codeSystemPath != "" {
+		if err := writeFile(*codeSystemPath, func(w io.Writer) error { return replay.WriteCodeSystem(w, encOpts) }); err != nil {
+			fmt.Fprintf(stderr, "deadspace replay: --codesystem: %v\n", err)
+			return exitFailed
+		}
 	}
 	if *omissionsPath != "" {
 		if err := writeFile(*omissionsPath, func(w io.Writer) error { return replay.WriteOmissions(w, out) }); err != nil {

@@ -223,7 +223,7 @@ func TestReplayUsageErrors(t *testing.T) {
 	}{
 		{"no files", []string{"replay"}, []string{"no input files"}},
 		{"every problem at once", []string{"replay", "--format", "xml", "--window", "-1m", "--co2-basis", "damp", "x.ndjson"},
-			[]string{"--format", "Window", "--co2-basis"}},
+			[]string{"--format", "--window must", "--co2-basis"}},
 		{"missing site table", []string{"replay", "--codes", "/nonexistent/codes.json", "x.ndjson"}, []string{"--codes"}},
 		{"unknown command", []string{"frobnicate"}, []string{"unknown command"}},
 	}
@@ -246,5 +246,223 @@ func TestReplayMissingFileFails(t *testing.T) {
 	_, errOut, code := runCmd(t, "replay", filepath.Join(t.TempDir(), "absent.ndjson"))
 	if code != exitFailed || !strings.Contains(errOut, "absent.ndjson") {
 		t.Fatalf("exit %d, stderr %q: want a failure naming the file", code, errOut)
+	}
+}
+
+// TestReplayDemoRecordsAreTrustworthy checks every Observation replay
+// writes for the demo night against rules 8 and 10 of issue 8: an
+// interpretation never disagrees with the reference range (FHIR R4
+// Observation.referenceRange.low and .high are inclusive: "the value is
+// within the range if it is ≥ low and ≤ high"), a negative value is never
+// flagged Normal, and no method or note carries "from memory" or
+// "believed" into a patient's record.
+func TestReplayDemoRecordsAreTrustworthy(t *testing.T) {
+	out, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued}, demoFiles(t)...)...)
+	if code != exitOK {
+		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
+	}
+	type quantity struct {
+		Value *float64 `json:"value"`
+	}
+	var checked, flagged int
+	for i, line := range strings.Split(strings.TrimSpace(out), "\n") {
+		var o struct {
+			ResourceType   string `json:"resourceType"`
+			Code           struct{ Coding []struct{ Code string } }
+			ValueQuantity  quantity
+			Method         struct{ Text string }
+			Note           []struct{ Text string }
+			Interpretation []struct {
+				Coding []struct{ Code string }
+			}
+			ReferenceRange []struct {
+				Low, High *quantity
+				Text      string
+			}
+		}
+		if err := json.Unmarshal([]byte(line), &o); err != nil {
+			t.Fatal(err)
+		}
+		if o.ResourceType != "Observation" {
+			continue
+		}
+		checked++
+		code := o.Code.Coding[0].Code
+		text := o.Method.Text
+		for _, n := range o.Note {
+			text += " " + n.Text
+		}
+		for _, rr := range o.ReferenceRange {
+			text += " " + rr.Text
+		}
+		for _, banned := range []string{"memory", "believed"} {
+			if strings.Contains(strings.ToLower(text), banned) {
+				t.Errorf("line %d (%s) carries %q into the record", i+1, code, banned)
+			}
+		}
+		if len(o.Interpretation) == 0 {
+			continue
+		}
+		flagged++
+		v := *o.ValueQuantity.Value
+		flag := o.Interpretation[0].Coding[0].Code
+		for _, rr := range o.ReferenceRange {
+			lowOK := rr.Low == nil || v >= *rr.Low.Value
+			highOK := rr.High == nil || v <= *rr.High.Value
+			switch flag {
+			case "N":
+				if !lowOK || !highOK || v < 0 {
+					t.Errorf("line %d: %s %v flagged N outside its range", i+1, code, v)
+				}
+			case "H":
+				if rr.High == nil || highOK {
+					t.Errorf("line %d: %s %v flagged H, range high %v", i+1, code, v, rr.High)
+				}
+			case "L":
+				if rr.Low == nil || lowOK {
+					t.Errorf("line %d: %s %v flagged L, range low %v", i+1, code, v, rr.Low)
+				}
+			}
+		}
+	}
+	// demo.summary.golden: 111 Observations; the gradient and the flags
+	// of bed2's VR are among the flagged ones.
+	if checked != 111 || flagged == 0 {
+		t.Errorf("checked %d Observations (%d flagged), want the 111 of demo.summary.golden", checked, flagged)
+	}
+}
+
+// Rule 11: a resource without meta.versionId or meta.lastUpdated (both
+// optional in FHIR R4) is still used, cited by its logical reference with a
+// note, and one bad patient does not stop the others.
+func TestReplayWithoutMeta(t *testing.T) {
+	dir := t.TempDir()
+	in := filepath.Join(dir, "in.ndjson")
+	obs := func(id, patient, code, unit string, v float64, at string) string {
+		return `{"resourceType":"Observation","id":"` + id + `","status":"final","code":{"coding":[{"system":"http://loinc.org","code":"` + code +
+			`"}]},"subject":{"reference":"Patient/` + patient + `"},"effectiveDateTime":"` + at + `","valueQuantity":{"value":` +
+			strconv.FormatFloat(v, 'f', -1, 64) + `,"unit":"` + unit + `","system":"http://unitsofmeasure.org","code":"` + unit + `"}}`
+	}
+	content := strings.Join([]string{
+		`{"resourceType":"Patient","id":"p1","gender":"male","birthDate":"1970-01-01"}`,
+		obs("abg1", "p1", "2019-8", "mm[Hg]", 40, "2026-03-15T02:00:00Z"),
+		obs("et1", "p1", "19891-1", "mm[Hg]", 35, "2026-03-15T02:01:00Z"),
+		obs("vt1", "p1", "76222-9", "mL", 500, "2026-03-15T02:01:00Z"),
+		obs("rr1", "p1", "19840-8", "/min", 16, "2026-03-15T02:01:00Z"),
+		// another patient with a blood gas whose id is fine but whose
+		// encounter reference cannot be written: the run goes on
+		`{"resourceType":"Patient","id":"p2","meta":{"versionId":"1"},"gender":"female","birthDate":"1980-01-01"}`,
+		strings.Replace(obs("abg2", "p2", "2019-8", "mm[Hg]", 41, "2026-03-15T02:00:00Z"), `"status"`, `"encounter":{"reference":"icu bed 2"},"status"`, 1),
+		strings.Replace(obs("et2", "p2", "19891-1", "mm[Hg]", 36, "2026-03-15T02:00:00Z"), `"status"`, `"encounter":{"reference":"icu bed 2"},"status"`, 1),
+		`{"resourceType":"Patient","id":"p3","meta":{"versionId":"1"},"gender":"female","birthDate":"1980-01-01"}`,
+		obs("abg3", "p3", "2019-8", "mm[Hg]", 41, "2026-03-15T02:00:00Z"),
+		obs("et3", "p3", "19891-1", "mm[Hg]", 36, "2026-03-15T02:00:00Z"),
+	}, "\n")
+	if err := os.WriteFile(in, []byte(content), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errOut, code := runCmd(t, "replay", "--issued", demoIssued, in)
+	if code != exitOK {
+		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
+	}
+	if !strings.Contains(out, `"reference":"Observation/abg1"`) || !strings.Contains(out, "no version") {
+		t.Errorf("unversioned inputs not cited with a note:\n%s", clip(out))
+	}
+	if !strings.Contains(out, `"reference":"Patient/p3"`) || strings.Contains(out, `"reference":"Patient/p2"`) {
+		t.Errorf("want the third patient's values and none of the second's")
+	}
+	if !strings.Contains(errOut, "resource-malformed") {
+		t.Errorf("the second patient's blood gas is not accounted for:\n%s", errOut)
+	}
+	for i, line := range strings.Split(strings.TrimSpace(out), "\n") {
+		if err := fhirvalidate.Resource([]byte(line)); err != nil {
+			t.Errorf("line %d does not validate: %v", i+1, err)
+		}
+	}
+}
+
+// Rule 12: every input left out and every value not emitted, one NDJSON
+// line each, and the counts agree with the summary.
+func TestReplayListsOmissions(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "omissions.ndjson")
+	_, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued, "--omissions", path}, demoFiles(t)...)...)
+	if code != exitOK {
+		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
+	}
+	counts := map[string]int{}
+	for _, line := range lines(t, path) {
+		var o struct{ Kind, Reference, Code, Reason, Detail string }
+		if err := json.Unmarshal(line, &o); err != nil {
+			t.Fatal(err)
+		}
+		if o.Reference == "" || o.Reason == "" || (o.Kind == "value") != (o.Code != "") {
+			t.Errorf("incomplete line %s", line)
+		}
+		counts[o.Kind+" "+o.Reason]++
+	}
+	// demo.summary.golden: the counts by reason, code-not-recognised only
+	// counted.
+	for _, want := range []struct {
+		key string
+		n   int
+	}{
+		{"input etco2-artefact", 2}, {"input value-in-another-unit", 1}, {"input no-blood-gas-nearby", 11535},
+		{"value patient-not-adult", 4}, {"value input-missing", 30},
+	} {
+		if counts[want.key] != want.n || !strings.Contains(errOut, strconv.Itoa(want.n)) {
+			t.Errorf("%s: %d lines, want %d as in the summary", want.key, counts[want.key], want.n)
+		}
+	}
+}
+
+// Rule 14: replay writes the project's CodeSystem on request, valid FHIR R4.
+func TestReplayWritesCodeSystem(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "codesystem.json")
+	_, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued, "--codesystem", path}, demoFiles(t)...)...)
+	if code != exitOK {
+		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
+	}
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := fhirvalidate.Resource(bytes.TrimSpace(b)); err != nil {
+		t.Errorf("CodeSystem does not validate: %v", err)
+	}
+	if !bytes.Contains(b, []byte(`"etco2-rise-above-baseline"`)) || !bytes.Contains(b, []byte(`"paco2-etco2-gradient"`)) {
+		t.Errorf("CodeSystem lacks codes:\n%s", clip(string(b)))
+	}
+}
+
+// Rule 13: readable by the people who read it.
+func TestCommandsAnswerPeople(t *testing.T) {
+	out, _, code := runCmd(t, "--help")
+	if code != exitOK || !strings.Contains(out, "replay") || !strings.Contains(out, "serve") || !strings.Contains(out, "version") {
+		t.Errorf("--help: exit %d\n%s", code, out)
+	}
+	out, _, code = runCmd(t, "--version")
+	if code != exitOK || !strings.HasPrefix(out, "deadspace ") {
+		t.Errorf("--version: exit %d %q", code, out)
+	}
+	// Errors name flags, never Go field names.
+	_, errOut, code := runCmd(t, "replay", "--fall-drop", "0", "--fall-sustain", "0s", "x.ndjson")
+	if code != exitUsage || !strings.Contains(errOut, "--fall-drop must") || !strings.Contains(errOut, "--fall-sustain must") || strings.Contains(errOut, "Fall.") {
+		t.Errorf("stderr %q", errOut)
+	}
+	// An input with nothing usable says so.
+	empty := filepath.Join(t.TempDir(), "vitals.ndjson")
+	if err := os.WriteFile(empty, []byte(`{"resourceType":"Patient","id":"p1","meta":{"versionId":"1"}}`+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	out, errOut, code = runCmd(t, "replay", "--format", "table", empty)
+	if code != exitOK || !strings.Contains(out, "Nothing to derive") || !strings.Contains(errOut, "nothing to derive") {
+		t.Errorf("exit %d, stdout %q, stderr %q", code, out, errOut)
+	}
+	// The table carries units and a legend.
+	out, _, _ = runCmd(t, append([]string{"replay", "--format", "table", "--issued", demoIssued}, demoFiles(t)...)...)
+	for _, want := range []string{"PaCO2 mmHg", "Flags:", "VD/VT H: 0.60 or more"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("table lacks %q", want)
+		}
 	}
 }

@@ -775,7 +775,7 @@ func (b *builder) ventilatoryRatio(pa float64) {
 			Term{"VE", ve, "mL/min"},
 			Term{"height", h, "cm"}, Term{"PBW", pbw, "kg"},
 		),
-		Range: &Range{Text: "about 1 in healthy adults (Sinha 2009); above 2 is flagged high"},
+		Range: &Range{High: ptr(VentilatoryRatioHigh), Text: "about 1 in healthy adults (Sinha 2009); above 2 is flagged high (adults with ARDS, ROSE trial secondary analysis, Crit Care 2022)"},
 		Notes: []string{"about 1 in healthy people (Sinha 2009)"},
 	}
 	if asWritten(vr, 2) > VentilatoryRatioHigh {

@@ -139,7 +139,7 @@ func TestDerive(t *testing.T) {
 					t.Errorf("physiologic notes %q", v.Notes)
 				}
 				vr := value(d, derive.CodeVentilatoryRatio)
-				if !vr.UsesPatient || vr.Range == nil || vr.Range.High != nil || vr.Flag != derive.FlagNone || !near(term(t, vr, "PBW"), 70.566, 1e-9) || term(t, vr, "VE") != 7000 {
+				if !vr.UsesPatient || vr.Range == nil || *vr.Range.High != 2 || vr.Flag != derive.FlagNone || !near(term(t, vr, "PBW"), 70.566, 1e-9) || term(t, vr, "VE") != 7000 {
 					t.Errorf("ventilatory ratio %+v", vr)
 				}
 				if !slices.Equal(usedKinds(d), []derive.Kind{

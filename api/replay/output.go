@@ -279,3 +279,20 @@ func WriteOmissions(w io.Writer, out Outcome) error {
 	}
 	return nil
 }
+
+// WriteCodeSystem writes the project's CodeSystem resource, as JSON on one
+// line, for the encoder options of the run.
+func WriteCodeSystem(w io.Writer, opts encode.Options) error {
+	enc, err := encode.New(opts)
+	if err != nil {
+		return fmt.Errorf("replay: %w", err)
+	}
+	b, err := enc.CodeSystem()
+	if err != nil {
+		return fmt.Errorf("replay: %w", err)
+	}
+	if _, err := w.Write(append(b, '\n')); err != nil {
+		return fmt.Errorf("replay: write code system: %w", err)
+	}
+	return nil
+}

@@ -15,6 +15,7 @@ import (
 	"io"
 	"log/slog"
 	"net/http"
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -348,6 +349,27 @@ func TestNotificationWritesDerivedObservationsWithProvenance(t *testing.T) {
 	if n := len(p["target"].([]any)); n != wantValues {
 		t.Errorf("Provenance has %d targets, want %d", n, wantValues)
 	}
+	// The CodeSystem of the derived codes was published once at start, so
+	// a consumer resolves the code of every derived Observation (issue 8,
+	// rule 14).
+	system := derived[0]["code"].(map[string]any)["coding"].([]any)[0].(map[string]any)["system"].(string)
+	if n := codeSystems(t, peer, system); n != 1 {
+		t.Errorf("%d CodeSystem resources with url %s on the server, want 1", n, system)
+	}
+}
+
+// codeSystems counts the server's CodeSystem resources with the url.
+func codeSystems(t *testing.T, peer *fhirtest.Server, system string) int {
+	t.Helper()
+	code, _, body := peer.Do(t, http.MethodGet, "CodeSystem?url="+url.QueryEscape(system), nil, nil)
+	if code != http.StatusOK {
+		t.Fatalf("CodeSystem search: HTTP %d %.200s", code, body)
+	}
+	var b struct{ Entry []any }
+	if err := json.Unmarshal(body, &b); err != nil {
+		t.Fatal(err)
+	}
+	return len(b.Entry)
 }
 
 func TestRepeatsAndRestartsLeaveOneOfEach(t *testing.T) {
@@ -389,6 +411,10 @@ func TestRepeatsAndRestartsLeaveOneOfEach(t *testing.T) {
 	})
 	waitIdle(t, s)
 	check("after a replay into an empty store")
+	// Three starts published the CodeSystem once (conditional create).
+	if n := codeSystems(t, peer, encode.DefaultCodeSystem); n != 1 {
+		t.Errorf("%d CodeSystem resources after three starts, want 1", n)
+	}
 }
 
 func TestServerOutageThenRecovery(t *testing.T) {

@@ -9,6 +9,7 @@ import (
 	"log/slog"
 	"net"
 	"net/http"
+	"net/url"
 	"path/filepath"
 	"strings"
 	"sync"
@@ -45,6 +46,9 @@ type Service struct {
 	grpcLn  net.Listener
 	tls     *tls.Config
 	up      upstream
+	// codeSystem is the project's CodeSystem resource, published once at
+	// start so consumers can resolve the derived codes.
+	codeSystem []byte
 }
 
 // upstream tracks whether the FHIR server is answering, from every request
@@ -103,6 +107,9 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
+	if s.codeSystem, err = enc.CodeSystem(); err != nil {
+		return nil, err
+	}
 	if cfg.FHIRBase != "" {
 		s.client, err = FHIRClient(cfg, version, log, s.observeFHIR)
 		if err != nil {
@@ -211,6 +218,28 @@ func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Obs
 	})
 }
 
+// publishCodeSystem creates the project's CodeSystem on the FHIR server
+// unless one with its url exists (a conditional create, so restarts and
+// several instances leave one). A failure is logged, not fatal: derived
+// values are still right without it, and some servers refuse terminology
+// writes.
+func (s *Service) publishCodeSystem(ctx context.Context) {
+	if s.client == nil {
+		return
+	}
+	var cs struct{ URL, Version string }
+	if err := json.Unmarshal(s.codeSystem, &cs); err != nil {
+		s.log.ErrorContext(ctx, "the CodeSystem resource does not decode", "err", err)
+		return
+	}
+	ctx, cancel := context.WithTimeout(ctx, 30*time.Second)
+	defer cancel()
+	q := url.Values{"url": {cs.URL}, "version": {cs.Version}}
+	if _, _, err := s.client.ConditionalCreate(ctx, "CodeSystem", s.codeSystem, q); err != nil {
+		s.log.WarnContext(ctx, "publishing the CodeSystem of the derived codes failed; consumers cannot resolve the codes on this server", "err", err)
+	}
+}
+
 // observeFHIR feeds every FHIR request to the metrics and to readiness.
 func (s *Service) observeFHIR(op string, status int, dur time.Duration) {
 	s.up.observe(op, status, dur)
@@ -254,6 +283,7 @@ func (s *Service) Run(ctx context.Context) error {
 			s.log.ErrorContext(ctx, "registering the subscription failed; polling and catch-up still run", "err", err)
 		}
 	}
+	s.publishCodeSystem(ctx)
 	engineCtx, stopEngine := context.WithCancel(context.WithoutCancel(ctx))
 	var wg sync.WaitGroup
 	wg.Add(1)

@@ -1,5 +1,5 @@
 // Command gen writes the invented demo scenario in testdata/demo: one night
-// in a five-bed intensive care unit, as a FHIR bulk export would deliver it
+// in a seven-bed intensive care unit, as a FHIR bulk export would deliver it
 // (one resource a line, one resource type a file). Every patient, value and
 // identifier is invented; the scenario exists to show the job, never to check
 // it. Run it from the repository root:
