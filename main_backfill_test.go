@@ -18,9 +18,9 @@ func TestBackfillDryRunCommand(t *testing.T) {
 	if code != exitOK {
 		t.Fatalf("exit %d; stderr:\n%s", code, errOut)
 	}
-	// The demo night as replay derives it: 89 Observations from 5 patients
-	// (README, "replay ... --format table").
-	for _, want := range []string{"derived: 5 patients evaluated; 89 new values", "dry run: nothing was written", `"msg":"backfill progress"`} {
+	// The demo night as replay derives it: 111 Observations from 7 patients
+	// (demo.summary.golden).
+	for _, want := range []string{"derived: 7 patients evaluated; 111 new values", "dry run: nothing was written", `"msg":"backfill progress"`} {
 		if !strings.Contains(errOut, want) {
 			t.Errorf("stderr lacks %q:\n%s", want, errOut)
 		}
@@ -36,7 +36,7 @@ func TestBackfillUsageErrors(t *testing.T) {
 		{"nowhere to write", []string{"backfill", "x.ndjson"}, []string{"--fhir-base is required"}},
 		{"no files and no server", []string{"backfill", "--dry-run"}, []string{"give NDJSON files"}},
 		{"every problem at once", []string{"backfill", "--fhir-base", "ftp://x", "--since", "yesterday", "--window", "-1m"},
-			[]string{"--fhir-base must be", "yesterday", "Window"}},
+			[]string{"--fhir-base must be", "yesterday", "--window must"}},
 		{"bad export level", []string{"backfill", "--dry-run", "--export-base", "https://fhir.example/r4", "--export", "ward"}, []string{"export level must be system, patient or group"}},
 		{"export flags with files", []string{"backfill", "--dry-run", "--group", "icu-4", "x.ndjson"}, []string{"--group applies to an export"}},
 		{"token file missing", []string{"backfill", "--fhir-base", "https://fhir.example/r4", "--fhir-token-file", "/nonexistent/token"},
@@ -81,7 +81,9 @@ func TestBackfillCommandFromExport(t *testing.T) {
 	if code != exitOK {
 		t.Fatalf("exit %d; stderr:\n%s", code, errOut)
 	}
-	for _, want := range []string{"derived: 5 patients evaluated; 89 new values", "written: 14 transactions acknowledged, 0 refused", "use it as --since"} {
+	// One transaction per result: 17 blood gases and 3 end-tidal findings,
+	// 20 Provenance in demo.summary.golden.
+	for _, want := range []string{"derived: 7 patients evaluated; 111 new values", "written: 20 transactions acknowledged, 0 refused", "use it as --since"} {
 		if !strings.Contains(errOut, want) {
 			t.Errorf("stderr lacks %q:\n%s", want, errOut)
 		}
