@@ -179,8 +179,8 @@ func checkOneOfEach(t *testing.T, st peerState, want map[string]bool, provenance
 }
 
 // demoWrites is how many results (one Provenance each) the demo night
-// gives: replay's "derived: 13 blood gases, 1 end-tidal CO2 falls".
-const demoWrites = 14
+// gives: replay's "derived: 17 blood gases, end-tidal CO2 falls 2 and rises 1".
+const demoWrites = 20
 
 func TestBackfillDemoNightFromExport(t *testing.T) {
 	peer := fhirtest.Start(t)
@@ -200,7 +200,7 @@ func TestBackfillDemoNightFromExport(t *testing.T) {
 	}
 	st := stateOf(t, peer)
 	checkOneOfEach(t, st, want, demoWrites)
-	if sum.Writes != demoWrites || sum.Derived["final"] != len(want) || sum.Patients != 5 || sum.TransactionTime.IsZero() {
+	if sum.Writes != demoWrites || sum.Derived["final"] != len(want) || sum.Patients != 7 || sum.TransactionTime.IsZero() {
 		t.Errorf("summary: %+v", sum)
 	}
 	kick := exp.Requests()[0]
@@ -365,7 +365,7 @@ func TestDryRunWritesNothing(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if sum.Derived["final"] != len(want) || sum.Writes != 0 || sum.Patients != 5 {
+	if sum.Derived["final"] != len(want) || sum.Writes != 0 || sum.Patients != 7 {
 		t.Errorf("dry run: %+v", sum)
 	}
 	if n := peer.Counts().Total(); n != 0 {
