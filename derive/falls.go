@@ -90,7 +90,7 @@ func detectFalls(cfg FallConfig, series []Reading) ([]Fall, []Omission) {
 			ep = nil // cancelled; judge r afresh below
 		}
 
-		base, baseReadings, ok := baseline(cfg, eligible, head, inEnd, far, window)
+		base, baseFrom, ok := baseline(cfg, eligible, head, inEnd, far, window)
 		if why != "" {
 			sparse = append(sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
 		} else if ok && base >= minBaselineEtCO2 {
@@ -101,7 +101,7 @@ func detectFalls(cfg FallConfig, series []Reading) ([]Fall, []Omission) {
 					baseline:     base,
 					threshold:    thr,
 					rise:         rise,
-					baseReadings: baseReadings,
+					baseReadings: slices.Clone(eligible[baseFrom:inEnd]),
 					readings:     []Reading{r},
 				}
 				if sustain <= 0 && minEp <= 1 {
@@ -135,25 +135,27 @@ func sparseness(cfg FallConfig, seen []int64, seenHead int, t, maxGap, spanMax i
 	return ""
 }
 
-// baseline returns the baseline and the readings it is the median of: the
-// Baseline window when it holds MinBaselineReadings, otherwise (sparse
-// charting) the last MinBaselineReadings eligible readings within
-// BaselineMax. ok is false when neither has enough readings: a baseline
-// still forming, or emptied by a long episode.
-func baseline(cfg FallConfig, eligible []Reading, head, inEnd, far int, window []float64) (float64, []Reading, bool) {
+// baseline returns the baseline and the first of the readings it is the
+// median of (eligible[from:inEnd]): the Baseline window when it holds
+// MinBaselineReadings, otherwise (sparse charting) the last
+// MinBaselineReadings eligible readings within BaselineMax. ok is false
+// when neither has enough readings: a baseline still forming, or emptied
+// by a long episode. It allocates only in the sparse case, which holds a
+// handful of readings: it runs for every reading of a series.
+func baseline(cfg FallConfig, eligible []Reading, head, inEnd, far int, window []float64) (base float64, from int, ok bool) {
 	need := max(cfg.MinBaselineReadings, 1)
 	if inEnd-head >= need {
-		return median(window), slices.Clone(eligible[head:inEnd]), true
+		return median(window), head, true
 	}
 	if inEnd-far < need {
-		return 0, nil, false
+		return 0, 0, false
 	}
-	rs := eligible[inEnd-need : inEnd]
-	vals := make([]float64, len(rs))
-	for i, r := range rs {
-		vals[i] = r.Value
+	from = inEnd - need
+	vals := make([]float64, 0, need)
+	for _, r := range eligible[from:inEnd] {
+		vals = append(vals, r.Value)
 	}
-	return Median(vals), slices.Clone(rs), true
+	return Median(vals), from, true
 }
 
 // episode is an open fall or rise, candidate or confirmed.

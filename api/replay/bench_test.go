@@ -33,7 +33,7 @@ func exportLine(id, system, code, display, unit string, value float64, patient i
 var unrelatedKinds = []struct{ code, display, unit string }{
 	{"8867-4", "Heart rate", "/min"},
 	{"59408-5", "Oxygen saturation in Arterial blood by Pulse oximetry", "%"},
-	{"8310-5", "Body temperature", "Cel"},
+	{"8462-4", "Diastolic blood pressure", "mm[Hg]"}, // body temperature (8310-5) is read now
 	{"8480-6", "Systolic blood pressure", "mm[Hg]"},
 	{"2345-7", "Glucose [Mass/volume] in Serum or Plasma", "mg/dL"},
 }
