@@ -24,7 +24,6 @@ import (
 	"log/slog"
 	"os"
 	"os/signal"
-	"strings"
 	"syscall"
 	"time"
 
@@ -98,34 +97,6 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	return exitUsage
 }
 
-// flagNames are the command-line flags that set derive.Config fields, so a
-// configuration error names the flag the operator typed, not a Go field.
-var flagNames = []struct{ field, flag string }{
-	{"Fall.Baseline", "--fall-baseline"},
-	{"Fall.Sustain", "--fall-sustain"},
-	{"Fall.Drop", "--fall-drop"},
-	{"Window", "--window"},
-}
-
-// nameFlags rewrites the field names of a derive.Config validation error
-// into flag names.
-func nameFlags(err error) error {
-	if err == nil {
-		return nil
-	}
-	msg := strings.TrimPrefix(err.Error(), "derive config: ")
-	lines := strings.Split(msg, "\n")
-	for i, l := range lines {
-		for _, f := range flagNames {
-			if rest, ok := strings.CutPrefix(l, f.field+" must"); ok {
-				lines[i] = f.flag + " must" + rest
-				break
-			}
-		}
-	}
-	return errors.New(strings.Join(lines, "\n"))
-}
-
 // commonFlags are the derivation settings shared by every command.
 type commonFlags struct {
 	window       time.Duration
@@ -158,8 +129,8 @@ func (c *commonFlags) options() (derive.Config, decode.Options, encode.Options, 
 	cfg.Fall.Drop = c.fallDrop
 	cfg.Fall.Sustain = c.fallSustain
 	cfg.Fall.Baseline = c.fallBaseline
-	if err := cfg.Validate(); err != nil {
-		errs = append(errs, nameFlags(err))
+	if err := cfg.ValidateAs(serve.DeriveFlags); err != nil {
+		errs = append(errs, err)
 	}
 	table, err := codes.LoadFile(c.codesFile)
 	if err != nil {

@@ -76,6 +76,25 @@ func DefaultConfig() Config {
 	}
 }
 
+// ValidateAs is [Config.Validate] with the fields an operator sets through
+// a flag named by it: names maps a field ("Window", "Fall.Drop") to the
+// name the operator typed ("--window"), so an error never shows a Go field
+// name where a flag exists.
+func (c Config) ValidateAs(names map[string]string) error {
+	err := c.Validate()
+	if err == nil || len(names) == 0 {
+		return err
+	}
+	lines := strings.Split(strings.TrimPrefix(err.Error(), "derive config: "), "\n")
+	for i, l := range lines {
+		field, rest, ok := strings.Cut(l, " must ")
+		if n, named := names[field]; ok && named {
+			lines[i] = n + " must " + rest
+		}
+	}
+	return fmt.Errorf("derive config: %w", errors.New(strings.Join(lines, "\n")))
+}
+
 // Validate reports every problem with the configuration at once, each naming
 // its field, so an operator fixes a configuration in one pass.
 func (c Config) Validate() error {

@@ -136,3 +136,22 @@ func TestPlausible(t *testing.T) {
 		})
 	}
 }
+
+// Errors name the flag an operator typed where one exists (issue 8, rule 13).
+func TestValidateAs(t *testing.T) {
+	t.Parallel()
+	c := derive.DefaultConfig()
+	c.Window, c.Fall.Drop, c.Artefact.Floor = 0, 0, 0
+	err := c.ValidateAs(map[string]string{"Window": "--window", "Fall.Drop": "--fall-drop"})
+	for _, want := range []string{"--window must", "--fall-drop must", "Artefact.Floor must"} {
+		if err == nil || !strings.Contains(err.Error(), want) {
+			t.Errorf("error %v lacks %q", err, want)
+		}
+	}
+	if strings.Contains(err.Error(), "Window must") && !strings.Contains(err.Error(), "--window must") {
+		t.Errorf("field name left in %v", err)
+	}
+	if derive.DefaultConfig().ValidateAs(map[string]string{"Window": "--window"}) != nil {
+		t.Error("the defaults fail")
+	}
+}

@@ -60,6 +60,12 @@ type Config struct {
 
 // deriveConfig is the derivation rules the flags select; replay takes the
 // same flags, so a live service and an offline replay of its data agree.
+// DeriveFlags names the flags that set derive.Config fields, for errors
+// (derive.Config.ValidateAs); replay and backfill take the same flags.
+var DeriveFlags = map[string]string{
+	"Window": "--window", "Fall.Drop": "--fall-drop", "Fall.Sustain": "--fall-sustain", "Fall.Baseline": "--fall-baseline",
+}
+
 func (c *Config) deriveConfig() derive.Config {
 	d := derive.DefaultConfig()
 	d.Window = c.Window
@@ -223,7 +229,7 @@ func (c *Config) Validate() error {
 	if c.ReadyGrace < 0 {
 		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))
 	}
-	if err := c.deriveConfig().Validate(); err != nil {
+	if err := c.deriveConfig().ValidateAs(DeriveFlags); err != nil {
 		errs = append(errs, err)
 	}
 	switch c.LogLevel {
