@@ -591,3 +591,27 @@ func TestRuleSparseChartingFallsAndRises(t *testing.T) {
 		})
 	}
 }
+
+// Rule 5 for the fall detector's series: a capnograph's percentage
+// (priority 10) is dropped only where a pressure reading (priority 20) is
+// within the window, never across the whole history.
+func TestPreferredSeries(t *testing.T) {
+	t.Parallel()
+	series := []derive.Reading{
+		withPriority(rd(derive.KindEtCO2, 0, 36), 20),
+		withPriority(rd(derive.KindEtCO2, 0, 35), 10),
+		withPriority(rd(derive.KindEtCO2, time.Hour, 35), 10), // no pressure reading within ±5 min
+	}
+	kept, lower := derive.PreferredSeries(5*time.Minute, series)
+	if len(kept) != 2 || kept[0].Priority != 20 || kept[1].AtMillis != series[2].AtMillis {
+		t.Errorf("kept %+v", kept)
+	}
+	if len(lower) != 1 || lower[0].Ref != series[1].Ref || lower[0].Reason != derive.ReasonLowerPriority {
+		t.Errorf("left out %+v", lower)
+	}
+	// One source: returned as is.
+	one := minutes(36, 37, 38)
+	if kept, lower := derive.PreferredSeries(5*time.Minute, one); len(kept) != 3 || lower != nil {
+		t.Errorf("one source: kept %d, left out %v", len(kept), lower)
+	}
+}

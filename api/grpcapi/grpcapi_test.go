@@ -524,6 +524,32 @@ func TestSubmitListExplain(t *testing.T) {
 		checkKPa(t, ex)
 	})
 
+	// Issue 8, rules 3 and 5, in the live path: the cooled patient's first
+	// blood gas (demo night, bed6-cooled at 23:00, 33 °C, set tidal volume
+	// only) explains which PaCO2 was used and which substitute source.
+	t.Run("explain shows temperature and substitute source", func(t *testing.T) {
+		ex, err := c.Explain(t.Context(), &pb.ExplainRequest{Target: &pb.ExplainRequest_BloodGas{BloodGas: &pb.ResourceId{Subject: "Patient/bed6-cooled", Id: "Observation/bed6-cooled-abg-1"}}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		var temp, substitute, noted bool
+		for _, p := range ex.Pairings {
+			temp = temp || (p.Kind == "body-temperature" && p.Median == 33)
+			substitute = substitute || (p.Kind == "tidal-volume" && strings.Contains(p.Rule, "set tidal volume"))
+		}
+		for _, v := range ex.Values {
+			for _, n := range v.Notes {
+				noted = noted || strings.Contains(n, "adjusted from 37 °C")
+			}
+			if v.Code == "paco2-etco2-gradient" && !slices.ContainsFunc(v.Terms, func(t *pb.Term) bool { return t.Name == "PaCO2 at 37 °C" }) {
+				t.Errorf("gradient terms %v lack the 37 °C value", v.Terms)
+			}
+		}
+		if !temp || !substitute || !noted {
+			t.Errorf("temperature pairing %v, substitute rule %v, adjustment note %v; pairings %v", temp, substitute, noted, ex.Pairings)
+		}
+	})
+
 	t.Run("explain a fall", func(t *testing.T) {
 		var fall goldenValue
 		for _, g := range golden {
