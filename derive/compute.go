@@ -548,11 +548,14 @@ func (b *builder) values() {
 			Range:    &Range{Low: ptr(0), High: ptr(GradientHigh), Text: "normally 0 to 5 mm[Hg] in adults", Source: "Malley WJ, Clinical Blood Gases, 2005"},
 		}
 		switch gw := asWritten(g, 1); {
+		case b.child():
+			v.Notes = append(v.Notes, fmt.Sprintf("no flag: the normal range (Malley 2005) is given for adults, and the patient is %d", b.age))
 		case gw > GradientHigh:
 			v.Flag = FlagHigh
 		case gw >= 0:
 			v.Flag = FlagNormal
-		default:
+		}
+		if g < 0 {
 			v.Notes = append(v.Notes, "end-tidal above arterial PCO2 occurs with low V/Q units (Malley 2005) but suggests a timing or sampling error")
 		}
 		b.emit(v)

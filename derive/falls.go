@@ -209,13 +209,14 @@ func (e *episode) confirm() Fall {
 	}
 }
 
-// riseNotes names the usual causes of a sustained rise of end-tidal CO2:
-// return of spontaneous circulation after arrest (Grmec S et al., Crit Care
-// 2003;7:R139), hypoventilation, and a rise in CO2 production (fever,
-// sepsis, bicarbonate, released tourniquet; common practice).
+// riseNotes names the usual causes of a sustained rise of end-tidal CO2,
+// all common practice: return of spontaneous circulation or a rising
+// cardiac output (the mirror of the fall with low output, Grmec 2003, which
+// is not cited for the rise), hypoventilation, and a rise in CO2
+// production (fever, sepsis, bicarbonate, a released tourniquet).
 func riseNotes() []string {
 	return []string{
-		"consider return of circulation or a rising cardiac output (Grmec 2003)",
+		"consider return of circulation or a rising cardiac output",
 		"consider hypoventilation: a lower minute volume, a leak or an obstruction",
 		"consider a rise in CO2 production: fever, sepsis, shivering, bicarbonate, a released tourniquet",
 	}

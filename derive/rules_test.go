@@ -324,11 +324,15 @@ func TestRuleAdultIndices(t *testing.T) {
 			}
 		})
 	}
-	// A child's physiologic VD/VT is still a measurement, but the adult
-	// outcome threshold (Kallet 2014) is not applied to it.
-	d := derive.Derive(derive.DefaultConfig(), gasOf(40), child, []derive.Reading{rd(derive.KindMixedExpiredCO2, 0, 14)})
+	// A child's physiologic VD/VT and gradient are still measurements, but
+	// the adult threshold (Kallet 2014) and adult normal range (Malley
+	// 2005) are not applied to them.
+	d := derive.Derive(derive.DefaultConfig(), gasOf(40), child, []derive.Reading{rd(derive.KindMixedExpiredCO2, 0, 14), rd(derive.KindEtCO2, 0, 30)})
 	if v := value(d, derive.CodePhysiologic); v.Code == "" || v.Flag != derive.FlagNone || !hasNote(v, "found in adults") {
 		t.Errorf("child's physiologic VD/VT %+v", v)
+	}
+	if v := value(d, derive.CodeGradient); v.Code == "" || v.Flag != derive.FlagNone || !hasNote(v, "given for adults") {
+		t.Errorf("child's gradient %+v", v)
 	}
 }
 
@@ -557,7 +561,7 @@ func TestRuleSparseChartingFallsAndRises(t *testing.T) {
 		{"validated charting every 5 min, kinked tube", every(5*time.Minute, cat(rep(38, 10), rep(24, 4), rep(38, 4))...), 1, 0, false},
 		{"charting every 15 min, pulmonary embolism", every(15*time.Minute, cat(rep(38, 8), rep(24, 3))...), 1, 0, false},
 		{"charting every second, disconnection", every(time.Second, cat(rep(38, 1800), rep(0, 240))...), 1, 0, false},
-		// Grmec 2003: end-tidal CO2 rises with return of circulation.
+		// Common practice: end-tidal CO2 rises with return of circulation.
 		{"return of spontaneous circulation", minutes(cat(rep(20, 20), rep(38, 10))...), 0, 1, false},
 		{"hourly charting is too sparse to judge", every(time.Hour, cat(rep(38, 6), rep(20, 3))...), 0, 0, true},
 		{"one reading a minute, then silence for half an hour", slices.Concat(minutes(rep(38, 20)...), []derive.Reading{rd(derive.KindEtCO2, 50*time.Minute, 20)}), 0, 0, true},
