@@ -22,7 +22,7 @@ var fractionCodes = []derive.Code{
 func decodeReadings(data []byte) []derive.Reading {
 	var rs []derive.Reading
 	for len(data) >= 11 {
-		k := derive.Kind(data[0] % 10) // includes KindUnknown and one past the last kind
+		k := derive.Kind(data[0] % 12) // includes KindUnknown and one past the last kind
 		off := int16(binary.LittleEndian.Uint16(data[1:3]))
 		v := math.Float64frombits(binary.LittleEndian.Uint64(data[3:11]))
 		rs = append(rs, rd(k, time.Duration(off)*time.Second, v))
@@ -94,12 +94,23 @@ func FuzzDetectFalls(f *testing.F) {
 		seed = append(seed, encodeReading(derive.KindEtCO2, int16(i*60), v)...)
 	}
 	f.Add(seed)
+	var rise []byte // a rise, then charting every 5 min
+	for i := range 40 {
+		v := 20.0
+		if i >= 20 {
+			v = 38
+		}
+		rise = append(rise, encodeReading(derive.KindEtCO2, int16(i*300), v)...)
+	}
+	f.Add(rise)
 	f.Fuzz(func(t *testing.T, data []byte) {
 		series := decodeReadings(data)
 		cfg := derive.DefaultConfig().Fall
 		full := derive.DetectFalls(cfg, series)
 		for _, x := range full {
-			if !(x.Change < 0) || x.Confirmed.Sub(x.Onset) < cfg.Sustain || len(x.BaselineReadings) < cfg.MinBaselineReadings {
+			wrongSign := (x.Rise && !(x.Change > 0)) || (!x.Rise && !(x.Change < 0))
+			if wrongSign || x.Confirmed.Sub(x.Onset) < cfg.Sustain || len(x.BaselineReadings) < cfg.MinBaselineReadings ||
+				len(x.EpisodeReadings) < cfg.MinEpisodeReadings {
 				t.Errorf("finding %+v", x)
 			}
 		}
