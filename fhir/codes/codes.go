@@ -38,11 +38,14 @@
 // Several codes can measure one kind at once: a ventilator sends both the set
 // and the measured tidal volume. The decoder does not choose between them: it
 // copies the row's priority (higher is preferred) into each item's Priority,
-// and the pairing caller may keep, per kind and window, only the readings of
-// the highest priority present, reporting the others with
+// and the pairing (package derive) keeps, per kind and window, only the
+// readings of the highest priority present, reporting the others with
 // [derive.ReasonLowerPriority].
 // Default priorities: measured expired values 30 (tidal volume) or 20,
 // other measurements 20, settings, inspired volumes and partial rates 10–15.
+// The pairing chooses per window, and a priority below
+// [derive.SubstitutePriority] (20) is disclosed in the derived value's note
+// as a substitute; a site row keeps to this scale.
 package codes
 
 import (
