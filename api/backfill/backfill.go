@@ -447,9 +447,11 @@ func ingestFile(ctx context.Context, eng *engine.Engine, name string, batchSize 
 	defer f.Close()
 	if fi, err := f.Stat(); err == nil {
 		sum.Bytes += fi.Size()
-		if countBytes {
-			defer p.bytes.Add(fi.Size())
-		}
+	}
+	var r io.Reader = f
+	if countBytes {
+		// Local files: bytes count as they are read, for the time left.
+		r = bulk.CountReader(f, func(n int64) { p.bytes.Add(n) })
 	}
 	batch := make([]json.RawMessage, 0, batchSize)
 	flush := func() error {
@@ -473,7 +475,7 @@ func ingestFile(ctx context.Context, eng *engine.Engine, name string, batchSize 
 		batch = batch[:0]
 		return nil
 	}
-	err = bulk.EachLine(f, func(n int, line []byte, tooLong error) error {
+	err = bulk.EachLine(r, func(n int, line []byte, tooLong error) error {
 		if err := ctx.Err(); err != nil {
 			return err
 		}

@@ -502,6 +502,10 @@ func (x *Exporter) downloadOnce(ctx context.Context, m Manifest, f File, path st
 	return n, nil
 }
 
+// CountReader returns a reader of r that calls hook with the bytes of
+// each read, for progress.
+func CountReader(r io.Reader, hook func(n int64)) io.Reader { return &countingReader{r: r, hook: hook} }
+
 type countingReader struct {
 	r    io.Reader
 	hook func(int64)
