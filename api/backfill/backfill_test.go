@@ -26,6 +26,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/backfill"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -447,5 +448,24 @@ func TestBackfillInterruptedDuringExport(t *testing.T) {
 	}
 	if st := stateOf(t, peer); len(st.derived) == 0 || st.provenances != 3 || st.devices != 1 {
 		t.Errorf("peer: %d values, %d provenances, %d devices", len(st.derived), st.provenances, st.devices)
+	}
+}
+
+// Two backfills cannot share a state directory at once: the second fails
+// clearly instead of corrupting the first's state.
+func TestStateDirectoryIsLocked(t *testing.T) {
+	dir := t.TempDir()
+	st, err := boltstore.Open(filepath.Join(dir, "backfill.db"), boltstore.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	c, err := client.New(client.Config{BaseURL: "http://127.0.0.1:1/fhir"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	opts := backfill.Options{Derive: derive.DefaultConfig(), Encode: encOptions(), Client: c, StateDir: dir, Files: demoFiles(t)}
+	if _, err := backfill.Run(context.Background(), opts); err == nil || !strings.Contains(err.Error(), "state directory") {
+		t.Fatalf("err = %v, want a state directory error", err)
 	}
 }
