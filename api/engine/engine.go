@@ -21,7 +21,6 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
-	"strings"
 	"sync"
 	"time"
 
@@ -30,6 +29,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // ErrInvalid marks input the engine refuses as a whole; callers answer it
@@ -104,6 +104,11 @@ type Engine struct {
 	wake  chan struct{} // evaluation wanted
 	flush chan struct{} // outbox has writes
 	catch chan string   // catch-up wanted, with the trigger
+
+	// evaluating holds one lock per patient being evaluated: evaluations
+	// of one patient never overlap in this process (the store's
+	// compare-and-swap commit covers other processes).
+	evaluating sync.Map // subject → *sync.Mutex
 
 	mu            sync.Mutex
 	lastNotified  time.Time
@@ -248,71 +253,48 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 			}
 			// A withdrawal is always kept, even before the version it
 			// withdraws arrives, so a late or repeated earlier version can
-			// never bring it back.
-			logical := it.ResourceType + "/" + it.ID
-			if it.Omission.Reason != derive.ReasonEnteredInError {
-				if _, err := e.cfg.Store.Input(ctx, it.Subject, logical); errors.Is(err, store.ErrNotFound) {
-					rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
-					continue
-				} else if err != nil {
-					return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
-				}
-			}
+			// never bring it back. Any other unusable version is kept only
+			// when it replaces a stored one; the store checks that in the
+			// same transaction as the write.
 			in, err := toStored(it)
 			if err != nil {
 				return Receipt{}, err
 			}
+			in.OnlyReplaces = it.Omission.Reason != derive.ReasonEnteredInError
 			inputs = append(inputs, in)
 			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 		}
 	}
-	inputs, err := e.refiled(ctx, inputs)
-	if err != nil {
-		return Receipt{}, err
-	}
 	if len(inputs) > 0 {
-		if _, err := e.cfg.Store.PutInputs(ctx, inputs, now); err != nil {
+		res, err := e.cfg.Store.PutInputs(ctx, inputs, now)
+		if err != nil {
 			return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
+		}
+		for _, r := range res {
+			if r == store.PutMoved {
+				e.leftOut(derive.ReasonRefiled)
+			}
 		}
 		signal(e.wake)
 	}
 	return rec, nil
 }
 
-// refiled puts, before each input that now names another patient than its
-// stored latest version did, a withdrawal of the copy under the first
-// patient: a result corrected to the right patient must leave nothing
-// derived from it under the wrong one. The withdrawal carries the new
-// version's id and time, so it supersedes the old copy; it comes first in
-// the batch, so the owner index ends on the new patient.
-func (e *Engine) refiled(ctx context.Context, inputs []store.Input) ([]store.Input, error) {
-	out := inputs[:0:0]
-	for _, in := range inputs {
-		owner, err := e.cfg.Store.Owner(ctx, in.Logical)
-		switch {
-		case errors.Is(err, store.ErrNotFound):
-		case err != nil:
-			return nil, fmt.Errorf("engine: ingest: %w", err)
-		case owner != in.Subject:
-			typ, id, _ := strings.Cut(in.Logical, "/")
-			ref := in.Logical
-			if in.VersionID != "" {
-				ref += "/_history/" + in.VersionID
-			}
-			tomb, err := toStored(decode.Item{
-				Type: decode.ItemOmitted, ResourceType: typ, ID: id, VersionID: in.VersionID, Ref: ref,
-				Subject: owner, LastUpdated: in.LastUpdated,
-				Omission: derive.Omission{Ref: ref, Reason: derive.ReasonRefiled, Detail: "a newer version names another patient"},
-			})
-			if err != nil {
-				return nil, err
-			}
-			e.leftOut(derive.ReasonRefiled)
-			out = append(out, tomb)
-		}
-		out = append(out, in)
+// withdrawal is the stored payload that replaces the copy of an input
+// under the patient its earlier version named, when a newer version names
+// another patient: a result corrected to the right patient must leave
+// nothing derived from it under the wrong one. The store writes it with
+// the new version's id and time, so it supersedes the old copy.
+func withdrawal(it decode.Item) ([]byte, error) {
+	ref := it.Ref
+	if ref == "" {
+		ref = fhirref.Versioned(it.ResourceType+"/"+it.ID, it.VersionID)
 	}
-	return out, nil
+	return encodeStored(decode.Item{
+		Type: decode.ItemOmitted, ResourceType: it.ResourceType, ID: it.ID, VersionID: it.VersionID, Ref: ref,
+		LastUpdated: it.LastUpdated,
+		Omission:    derive.Omission{Ref: ref, Reason: derive.ReasonRefiled, Detail: "a newer version names another patient"},
+	})
 }
 
 func toStored(it decode.Item) (store.Input, error) {
@@ -320,9 +302,14 @@ func toStored(it decode.Item) (store.Input, error) {
 	if err != nil {
 		return store.Input{}, err
 	}
+	moved, err := withdrawal(it)
+	if err != nil {
+		return store.Input{}, err
+	}
 	return store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
 		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
+		Withdrawal: moved,
 	}, nil
 }
 

@@ -143,8 +143,29 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) time.Duration {
 	return max(wait, 10*time.Millisecond)
 }
 
-// evaluatePatient re-derives one patient and commits what changed.
+// evaluatePatient re-derives one patient and commits what changed. It
+// holds the patient's lock, so evaluations of one patient never overlap in
+// this process; the commit states what it read of every series it writes,
+// so an evaluation by another process that committed first makes this one
+// fail with a conflict, and the patient is evaluated again from what is
+// stored now.
 func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
+	lock, _ := e.evaluating.LoadOrStore(d.Subject, new(sync.Mutex))
+	lock.(*sync.Mutex).Lock()
+	defer lock.(*sync.Mutex).Unlock()
+	err := e.evaluateLocked(ctx, d)
+	if errors.Is(err, store.ErrConflict) {
+		e.log.InfoContext(ctx, "another evaluation of the patient committed first; evaluating again")
+		if merr := e.cfg.Store.MarkDirty(ctx, d.Subject, e.now()); merr != nil {
+			return fmt.Errorf("engine: evaluate: %w", merr)
+		}
+		signal(e.wake)
+		return nil
+	}
+	return err
+}
+
+func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	inputs, err := e.loadInputs(ctx, d.Subject)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
@@ -222,7 +243,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 	for _, en := range ledger {
 		bySeries[en.Series] = en
 	}
-	change := store.Change{Subject: d.Subject, Generation: d.Generation}
+	change := store.Change{Subject: d.Subject, Generation: d.Generation, Expect: make(map[string]store.Expect)}
 	produced := make(map[string]bool)
 	for _, r := range results {
 		var fresh, changed []fhir.Observation
@@ -327,7 +348,9 @@ func (e *Engine) record(change *store.Change, r pipeline.Result, sub encode.Bund
 			Series: series, Subject: r.Subject, Key: key, Status: status,
 			EffectiveAt: r.Time(), UpdatedAt: now, Payload: payload,
 		}
+		change.Expect[series] = store.Expect{}
 		if prev, ok := bySeries[series]; ok {
+			change.Expect[series] = store.Expect{Key: prev.Key, Status: prev.Status}
 			// The server ids are left empty: the store keeps its own, which
 			// the writer may have updated since this evaluation read them.
 			en.Revisions = append(append([]string(nil), prev.Revisions...), prev.Key)
@@ -351,6 +374,7 @@ func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) e
 	if err != nil {
 		return fmt.Errorf("engine: encode entry: %w", err)
 	}
+	change.Expect[en.Series] = store.Expect{Key: en.Key, Status: en.Status}
 	out := en
 	out.ServerID, out.ServerVersion = "", "" // the store keeps the current ones
 	out.Status = statusWithdrawn

@@ -20,6 +20,11 @@ import (
 // ErrNotFound is returned, wrapped, when a requested record does not exist.
 var ErrNotFound = errors.New("store: not found")
 
+// ErrConflict is returned, wrapped, by [Store.Commit] when a series is no
+// longer what the change expected: another evaluation (in this process or
+// another replica) committed first. Nothing of the change was applied.
+var ErrConflict = errors.New("store: conflict: the ledger changed since it was read")
+
 // Input is the latest known version of one input resource. Payload is the
 // engine's own encoding of everything it needs (the decoded reading, the
 // original value and unit, the conversion); the store does not look inside.
@@ -31,6 +36,15 @@ type Input struct {
 	// EffectiveAt is the physiological time, used for retention.
 	EffectiveAt time.Time
 	Payload     []byte
+	// OnlyReplaces keeps the input only when a version of the same
+	// resource is stored (under any patient): an unusable version matters
+	// only when it hides a usable one. Otherwise it is PutSkipped.
+	OnlyReplaces bool
+	// Withdrawal is the payload stored, with this input's version, under
+	// the patient the latest stored version names when this newer version
+	// names another one: the first patient must keep nothing derived from
+	// it. Empty: the copy under the first patient is left as it is.
+	Withdrawal []byte
 }
 
 // PutResult says what [Store.PutInputs] did with each input, in order.
@@ -42,6 +56,11 @@ const (
 	PutNewer                      // replaced an older version
 	PutSame                       // the same version again: nothing changed
 	PutOlder                      // an older version than the stored one: ignored
+	// PutMoved: a newer version that names another patient than the stored
+	// latest one; the copy under that patient became the Withdrawal.
+	PutMoved
+	// PutSkipped: an OnlyReplaces input with nothing to replace.
+	PutSkipped
 )
 
 // Patient is what is known about a patient's demographics.
@@ -122,11 +141,23 @@ type Event struct {
 	At      time.Time
 }
 
+// Expect is what a commit expects a series to be: the Key and Status of
+// its ledger entry as the evaluation read it. The zero Expect means the
+// series must not exist.
+type Expect struct {
+	Key, Status string
+}
+
 // Change is what one evaluation of a patient decided.
 type Change struct {
 	Subject string
 	// Generation is the Dirty.Generation the evaluation read.
 	Generation uint64
+	// Expect holds, for every series the change writes, what the
+	// evaluation read of it. A commit whose expectation does not hold
+	// fails with ErrConflict and applies nothing, so two evaluations that
+	// overlap can never both write a change of one series.
+	Expect map[string]Expect
 	// Entries are ledger entries to create or replace.
 	Entries []Entry
 	// Writes are appended to the outbox (IDs are assigned).
@@ -145,9 +176,13 @@ type Stats struct {
 // concurrent use.
 type Store interface {
 	// PutInputs stores the latest version of each input and marks every
-	// patient with a new or newer input dirty, in one transaction. A version
-	// is newer when its LastUpdated is later, or, at equal times, when both
-	// version ids are numbers and it is larger, or else when it sorts later.
+	// patient with a new or newer input dirty, in one transaction: the
+	// checks (is there a version to replace, which patient holds the
+	// latest one) and the writes cannot interleave with another call.
+	// Versions are ordered by ref.Compare, across patients: a version older
+	// than the latest stored under any patient is PutOlder, so a late
+	// earlier version never revives a state that a correction (even one
+	// that moved the input to another patient) replaced.
 	PutInputs(ctx context.Context, inputs []Input, now time.Time) ([]PutResult, error)
 	// Inputs returns a patient's stored inputs, in Logical order.
 	Inputs(ctx context.Context, subject string) ([]Input, error)
@@ -170,7 +205,8 @@ type Store interface {
 	// DirtyPatients lists dirty patients, oldest first.
 	DirtyPatients(ctx context.Context) ([]Dirty, error)
 	// Commit applies one evaluation atomically: ledger entries, outbox
-	// writes and feed events for every entry; it clears the dirty mark only
+	// writes and feed events for every entry, after checking change.Expect
+	// (ErrConflict when it does not hold); it clears the dirty mark only
 	// when the patient's generation is still change.Generation. Otherwise
 	// the patient stays dirty and its Since becomes now: the changes that
 	// arrived during the evaluation have waited only since it ended.

@@ -12,38 +12,13 @@ import (
 	bolt "go.etcd.io/bbolt"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
-// compareVersions orders two versions of one resource by the rule of
-// [store.Store.PutInputs]: later LastUpdated first; at equal instants,
-// version ids that are both decimal numbers compare as numbers (servers
-// that count versions write "9" before "10"), any others as strings. It
-// returns +1 when a is newer than b, -1 when older, 0 when neither is.
+// compareVersions orders two versions of one resource by the one rule,
+// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
 func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	if c := aTime.Compare(bTime); c != 0 {
-		return c
-	}
-	if isDecimal(aID) && isDecimal(bID) {
-		// Compare as numbers of any length: no overflow at 20 digits.
-		a, b := strings.TrimLeft(aID, "0"), strings.TrimLeft(bID, "0")
-		if c := cmp.Compare(len(a), len(b)); c != 0 {
-			return c
-		}
-		return strings.Compare(a, b)
-	}
-	return strings.Compare(aID, bID)
-}
-
-func isDecimal(s string) bool {
-	if s == "" {
-		return false
-	}
-	for i := range len(s) {
-		if s[i] < '0' || s[i] > '9' {
-			return false
-		}
-	}
-	return true
+	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
 }
 
 func putResult(exists bool, c int) store.PutResult {
@@ -83,7 +58,9 @@ func markDirty(tx *bolt.Tx, subject string, now time.Time) error {
 }
 
 // PutInputs stores the newer versions and marks their patients dirty,
-// each patient once per call.
+// each patient once per call. The version to beat is the latest stored
+// under any patient (the owner index names where it is), so the order of
+// versions is one across patients.
 func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Time) ([]store.PutResult, error) {
 	results := make([]store.PutResult, len(inputs))
 	if len(inputs) == 0 {
@@ -93,7 +70,6 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		return results, nil
 	}
 	err := s.batch(ctx, "PutInputs", func(tx *bolt.Tx) error {
-		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
 		var changed []string
 		for i, in := range inputs {
 			if err := checkSubject(in.Subject); err != nil {
@@ -102,36 +78,15 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			if in.Logical == "" {
 				return fmt.Errorf("input %d: empty logical reference", i)
 			}
-			key := subjectKey(in.Subject, in.Logical)
-			var c int
-			old := b.Get(key)
-			if old != nil {
-				oldID, oldTime, oldEff, err := decodeInputHead(old)
-				if err != nil {
-					return fmt.Errorf("input %d: %w", i, err)
+			res, touched, err := putInput(tx, in)
+			if err != nil {
+				return fmt.Errorf("input %d: %w", i, err)
+			}
+			results[i] = res
+			for _, subject := range touched {
+				if !slices.Contains(changed, subject) {
+					changed = append(changed, subject)
 				}
-				c = compareVersions(in.LastUpdated, in.VersionID, oldTime, oldID)
-				if c > 0 {
-					if err := byTime.Delete(append(appendTimeKey(nil, oldEff), key...)); err != nil {
-						return err
-					}
-				}
-			}
-			results[i] = putResult(old != nil, c)
-			if results[i] != store.PutNew && results[i] != store.PutNewer {
-				continue
-			}
-			if err := b.Put(key, encodeInput(in)); err != nil {
-				return err
-			}
-			if err := byTime.Put(append(appendTimeKey(nil, in.EffectiveAt), key...), nil); err != nil {
-				return err
-			}
-			if err := tx.Bucket(bInputOwner).Put([]byte(in.Logical), []byte(in.Subject)); err != nil {
-				return err
-			}
-			if !slices.Contains(changed, in.Subject) {
-				changed = append(changed, in.Subject)
 			}
 		}
 		for _, subject := range changed {
@@ -145,6 +100,90 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		return nil, err
 	}
 	return results, nil
+}
+
+// putInput applies one input and returns the subjects whose inputs
+// changed.
+func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, []string, error) {
+	owners := tx.Bucket(bInputOwner)
+	owner := string(owners.Get([]byte(in.Logical)))
+	// The latest version under the owner decides across patients; the copy
+	// under this subject (if the owner index lost track of it, after a
+	// prune) decides too.
+	exists := false
+	for _, subject := range []string{owner, in.Subject} {
+		if subject == "" {
+			continue
+		}
+		old, ok, err := inputHead(tx, subject, in.Logical)
+		if err != nil {
+			return 0, nil, err
+		}
+		if !ok {
+			continue
+		}
+		exists = true
+		if c := compareVersions(in.LastUpdated, in.VersionID, old.LastUpdated, old.VersionID); c <= 0 {
+			return putResult(true, c), nil, nil
+		}
+	}
+	if in.OnlyReplaces && !exists {
+		return store.PutSkipped, nil, nil
+	}
+	touched := []string{in.Subject}
+	res := putResult(exists, 1)
+	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
+		if _, ok, err := inputHead(tx, owner, in.Logical); err != nil {
+			return 0, nil, err
+		} else if ok {
+			moved := in
+			moved.Subject, moved.Payload = owner, in.Withdrawal
+			if err := writeInput(tx, moved); err != nil {
+				return 0, nil, err
+			}
+			touched = append(touched, owner)
+			res = store.PutMoved
+		}
+	}
+	if err := writeInput(tx, in); err != nil {
+		return 0, nil, err
+	}
+	if err := owners.Put([]byte(in.Logical), []byte(in.Subject)); err != nil {
+		return 0, nil, err
+	}
+	return res, touched, nil
+}
+
+// inputHead reads the version of the stored input of subject, if any.
+func inputHead(tx *bolt.Tx, subject, logical string) (store.Input, bool, error) {
+	v := tx.Bucket(bInputs).Get(subjectKey(subject, logical))
+	if v == nil {
+		return store.Input{}, false, nil
+	}
+	id, lu, eff, err := decodeInputHead(v)
+	if err != nil {
+		return store.Input{}, false, err
+	}
+	return store.Input{Subject: subject, Logical: logical, VersionID: id, LastUpdated: lu, EffectiveAt: eff}, true, nil
+}
+
+// writeInput replaces the copy under in.Subject and keeps the time index.
+func writeInput(tx *bolt.Tx, in store.Input) error {
+	b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
+	key := subjectKey(in.Subject, in.Logical)
+	if old := b.Get(key); old != nil {
+		_, _, oldEff, err := decodeInputHead(old)
+		if err != nil {
+			return err
+		}
+		if err := byTime.Delete(append(appendTimeKey(nil, oldEff), key...)); err != nil {
+			return err
+		}
+	}
+	if err := b.Put(key, encodeInput(in)); err != nil {
+		return err
+	}
+	return byTime.Put(append(appendTimeKey(nil, in.EffectiveAt), key...), nil)
 }
 
 // Inputs returns the patient's inputs by a prefix scan of subject+0.

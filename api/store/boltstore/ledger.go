@@ -21,6 +21,9 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 		if err := checkSubject(change.Subject); err != nil {
 			return err
 		}
+		if err := checkExpected(tx, change); err != nil {
+			return err
+		}
 		feed := tx.Bucket(bFeed)
 		for i, en := range change.Entries {
 			switch {
@@ -89,6 +92,34 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 		}
 		return addCounter(tx, kDirtyN, -1)
 	})
+}
+
+// checkExpected compares every series the change expects with the ledger.
+// With an expectation map, every entry written must have an expectation:
+// an entry without one would be written blind.
+func checkExpected(tx *bolt.Tx, change store.Change) error {
+	if change.Expect == nil {
+		return nil
+	}
+	for i, en := range change.Entries {
+		if _, ok := change.Expect[en.Series]; !ok {
+			return fmt.Errorf("entry %d: no expectation for its series", i)
+		}
+	}
+	for series, want := range change.Expect {
+		var got store.Expect
+		if v := tx.Bucket(bLedger).Get([]byte(series)); v != nil {
+			en, err := decodeEntry(series, v)
+			if err != nil {
+				return err
+			}
+			got = store.Expect{Key: en.Key, Status: en.Status}
+		}
+		if got != want {
+			return store.ErrConflict
+		}
+	}
+	return nil
 }
 
 // upsertEntry stores en and its index keys, replacing those of the version

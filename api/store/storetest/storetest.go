@@ -53,6 +53,10 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Prune", testPrune},
 		{"Context/Canceled", testCanceled},
 		{"Concurrent", testConcurrent},
+		{"PutInputs/VersionOrderAcrossPatients", testVersionOrderAcrossPatients},
+		{"PutInputs/OnlyReplaces", testOnlyReplaces},
+		{"Commit/ConflictAppliesNothing", testCommitConflict},
+		{"Commit/OverlappingWritersOneWins", testOverlappingWriters},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -254,9 +258,11 @@ func testPutInvalid(t *testing.T, open func(t *testing.T) store.Store) {
 func testInputsOrder(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
 	// Patient/1 is a prefix of Patient/10: a scan for one must not see
-	// the other's inputs.
+	// the other's inputs. (One logical reference names one resource,
+	// filed under one patient at a time: see
+	// testVersionOrderAcrossPatients.)
 	put(t, s, t0,
-		input("Patient/10", "Observation/a", "1", t0, t0, "ten"),
+		input("Patient/10", "Observation/a10", "1", t0, t0, "ten"),
 		input("Patient/1", "Observation/c", "1", t0, t0, "c"),
 		input("Patient/1", "Observation/a", "1", t0, t0, "a"),
 		input("Patient/1", "Observation/b", "1", t0, t0, "b"),
@@ -989,7 +995,7 @@ func testConcurrent(t *testing.T, open func(t *testing.T) store.Store) {
 		wg.Go(func() {
 			subj := fmt.Sprintf("Patient/%d", w)
 			for i := range rounds {
-				in := input(subj, fmt.Sprintf("Observation/%03d", i), "1", t0, t0.Add(time.Duration(i)*time.Minute), "x")
+				in := input(subj, fmt.Sprintf("Observation/%d-%03d", w, i), "1", t0, t0.Add(time.Duration(i)*time.Minute), "x")
 				if _, err := s.PutInputs(t.Context(), []store.Input{in}, t0); err != nil {
 					t.Error(err)
 					return

@@ -1,0 +1,195 @@
+package storetest
+
+import (
+	"errors"
+	"fmt"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+// A blood gas re-filed to another patient: the version that moved it
+// withdraws the first patient's copy, and the first version, arriving
+// late under the first patient, is older than the latest version stored
+// under any patient, so it revives nothing (issue 9: late writes never
+// win).
+func testVersionOrderAcrossPatients(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	const logical = "Observation/g"
+	v1 := input("Patient/a", logical, "1", t0, t0, "v1 under a")
+	v2 := input("Patient/b", logical, "2", t0.Add(time.Minute), t0, "v2 under b")
+	v2.Withdrawal = []byte("withdrawn from a")
+
+	// In order: v1 under a, then v2 moves it to b.
+	if got := put(t, s, t0, v1); got[0] != store.PutNew {
+		t.Fatalf("first version: %v, want PutNew", got[0])
+	}
+	if got := put(t, s, t0, v2); got[0] != store.PutMoved {
+		t.Fatalf("moving version: %v, want PutMoved", got[0])
+	}
+	a, err := s.Input(t.Context(), "Patient/a", logical)
+	must(t, err)
+	if string(a.Payload) != "withdrawn from a" || a.VersionID != "2" {
+		t.Fatalf("copy under a = %q version %s, want the withdrawal with version 2", a.Payload, a.VersionID)
+	}
+	if owner, err := s.Owner(t.Context(), logical); err != nil || owner != "Patient/b" {
+		t.Fatalf("owner = %q, %v; want Patient/b", owner, err)
+	}
+	// v1 again, late: older than v2 stored under b.
+	if got := put(t, s, t0, v1); got[0] != store.PutOlder {
+		t.Fatalf("late first version: %v, want PutOlder", got[0])
+	}
+	a, err = s.Input(t.Context(), "Patient/a", logical)
+	must(t, err)
+	if string(a.Payload) != "withdrawn from a" {
+		t.Fatalf("late first version revived the copy under a: %q", a.Payload)
+	}
+
+	// Reordered on a new store: the correction arrives first, then the
+	// first version. Nothing is stored under a.
+	s2 := open(t)
+	if got := put(t, s2, t0, v2); got[0] != store.PutNew {
+		t.Fatalf("correction first: %v, want PutNew", got[0])
+	}
+	if got := put(t, s2, t0, v1); got[0] != store.PutOlder {
+		t.Fatalf("first version after the correction: %v, want PutOlder", got[0])
+	}
+	if _, err := s2.Input(t.Context(), "Patient/a", logical); !errors.Is(err, store.ErrNotFound) {
+		t.Fatalf("the first version was stored under a after its correction: %v", err)
+	}
+}
+
+// An unusable version is kept only when it hides a stored one, and the
+// check is made in the same transaction as the write.
+func testOnlyReplaces(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	bad := input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "unusable")
+	bad.OnlyReplaces = true
+	if got := put(t, s, t0, bad); got[0] != store.PutSkipped {
+		t.Fatalf("nothing to replace: %v, want PutSkipped", got[0])
+	}
+	if _, ok := dirtyOf(t, s, "Patient/a"); ok {
+		t.Fatal("a skipped input marked its patient dirty")
+	}
+	put(t, s, t0, input("Patient/a", "Observation/x", "1", t0, t0, "usable"))
+	if got := put(t, s, t0, bad); got[0] != store.PutNewer {
+		t.Fatalf("replacing a stored version: %v, want PutNewer", got[0])
+	}
+	in, err := s.Input(t.Context(), "Patient/a", "Observation/x")
+	must(t, err)
+	if string(in.Payload) != "unusable" {
+		t.Fatalf("stored payload %q, want the unusable version", in.Payload)
+	}
+}
+
+// A commit whose expectation no longer holds fails with ErrConflict and
+// leaves the ledger, the outbox, the feed and the dirty mark as they were.
+func testCommitConflict(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	const subj = "Patient/c"
+	must(t, s.MarkDirty(ctx, subj, t0))
+	d, _ := dirtyOf(t, s, subj)
+	first := store.Change{Subject: subj, Generation: d.Generation,
+		Expect:  map[string]store.Expect{"s1": {}},
+		Entries: []store.Entry{entry(subj, "s1", "k1", t0)}, Writes: []store.Write{writeFor("s1")}}
+	must(t, s.Commit(ctx, first, t0))
+	before, err := s.LastEvent(ctx)
+	must(t, err)
+
+	for _, tc := range []struct {
+		name   string
+		expect store.Expect
+	}{
+		{"ExpectedAbsent", store.Expect{}},
+		{"OtherKey", store.Expect{Key: "k0", Status: "final"}},
+		{"OtherStatus", store.Expect{Key: "k1", Status: "entered-in-error"}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			must(t, s.MarkDirty(ctx, subj, t0))
+			d, _ := dirtyOf(t, s, subj)
+			err := s.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation,
+				Expect:  map[string]store.Expect{"s1": tc.expect},
+				Entries: []store.Entry{entry(subj, "s1", "k2", t0)}, Writes: []store.Write{writeFor("s1")}}, t0)
+			if !errors.Is(err, store.ErrConflict) {
+				t.Fatalf("err = %v, want store.ErrConflict", err)
+			}
+			en, err := s.Entry(ctx, "s1")
+			must(t, err)
+			if en.Key != "k1" {
+				t.Fatalf("entry key = %s after a conflict, want k1", en.Key)
+			}
+			if last, _ := s.LastEvent(ctx); last != before {
+				t.Fatalf("feed moved from %d to %d on a conflict", before, last)
+			}
+			wantStats(t, s, store.Stats{OutboxDepth: 1, OldestWrite: t0, DirtyPatients: 1})
+		})
+	}
+
+	// Every entry needs an expectation once any is given.
+	err = s.Commit(ctx, store.Change{Subject: subj, Expect: map[string]store.Expect{"s1": {Key: "k1", Status: "final"}},
+		Entries: []store.Entry{entry(subj, "s2", "k9", t0)}}, t0)
+	if err == nil {
+		t.Fatal("an entry without an expectation was committed")
+	}
+	// The right expectation commits.
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Expect: map[string]store.Expect{"s1": {Key: "k1", Status: "final"}},
+		Entries: []store.Entry{entry(subj, "s1", "k2", t0)}}, t0))
+}
+
+// Evaluations that overlap (two replicas, or a restart while one runs)
+// read the same ledger and commit the same change: exactly one commit
+// lands, so the outbox holds one write and the feed one event per change.
+func testOverlappingWriters(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	const writers = 8
+	for round, key := range []string{"k1", "k2", "k3"} {
+		subj := "Patient/o"
+		prev := store.Expect{}
+		if round > 0 {
+			en, err := s.Entry(ctx, "s")
+			must(t, err)
+			prev = store.Expect{Key: en.Key, Status: en.Status}
+		}
+		lastBefore, err := s.LastEvent(ctx)
+		must(t, err)
+		var wg sync.WaitGroup
+		var mu sync.Mutex
+		won, conflicts := 0, 0
+		for range writers {
+			wg.Add(1)
+			go func() {
+				defer wg.Done()
+				err := s.Commit(ctx, store.Change{Subject: subj, Expect: map[string]store.Expect{"s": prev},
+					Entries: []store.Entry{entry(subj, "s", key, t0)}, Writes: []store.Write{writeFor("s")}}, t0)
+				mu.Lock()
+				defer mu.Unlock()
+				switch {
+				case err == nil:
+					won++
+				case errors.Is(err, store.ErrConflict):
+					conflicts++
+				default:
+					t.Error(fmt.Errorf("writer: %w", err))
+				}
+			}()
+		}
+		wg.Wait()
+		if won != 1 || conflicts != writers-1 {
+			t.Fatalf("round %d: %d commits won and %d conflicted, want 1 and %d", round, won, conflicts, writers-1)
+		}
+		last, err := s.LastEvent(ctx)
+		must(t, err)
+		if last != lastBefore+1 {
+			t.Fatalf("round %d: %d feed events, want 1", round, last-lastBefore)
+		}
+		st, err := s.Stats(ctx)
+		must(t, err)
+		if st.OutboxDepth != round+1 {
+			t.Fatalf("round %d: outbox depth %d, want %d", round, st.OutboxDepth, round+1)
+		}
+	}
+}

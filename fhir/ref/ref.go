@@ -1,0 +1,126 @@
+// Package ref is the one place where relative FHIR references
+// ("Observation/x", "Observation/x/_history/2") are parsed and where two
+// versions of one resource are ordered. Replay, the live store, the engine
+// and the encoder all use it, so they cannot disagree about which version
+// of an input is the latest or what a reference names.
+package ref
+
+import (
+	"cmp"
+	"fmt"
+	"strings"
+	"time"
+)
+
+// Ref is a parsed relative literal reference, optionally versioned.
+type Ref struct {
+	Type, ID, Version string
+}
+
+// Parse reads "Type/id" or "Type/id/_history/version". Type is a FHIR
+// resource type name (an upper-case letter, then letters); id and version
+// follow FHIR's id type, [A-Za-z0-9\-\.]{1,64} (R4 datatypes.html#id).
+func Parse(s string) (Ref, error) {
+	typ, rest, ok := strings.Cut(s, "/")
+	if !ok || !IsType(typ) {
+		return Ref{}, fmt.Errorf("reference %q is not of the form Type/id[/_history/version]", s)
+	}
+	id, vid, versioned := strings.Cut(rest, "/_history/")
+	if !IsID(id) || (versioned && !IsID(vid)) {
+		return Ref{}, fmt.Errorf("reference %q is not of the form Type/id[/_history/version]", s)
+	}
+	return Ref{Type: typ, ID: id, Version: vid}, nil
+}
+
+// Split turns "Observation/x/_history/2" into ("Observation/x", "2") and
+// leaves an unversioned reference whole. It does not validate: it is for
+// references this service built itself.
+func Split(s string) (logical, version string) {
+	if i := strings.Index(s, "/_history/"); i >= 0 {
+		return s[:i], s[i+len("/_history/"):]
+	}
+	return s, ""
+}
+
+// Versioned returns "Type/id/_history/version", or "Type/id" when version
+// is empty.
+func Versioned(logical, version string) string {
+	if version == "" {
+		return logical
+	}
+	return logical + "/_history/" + version
+}
+
+// String returns the reference as written.
+func (r Ref) String() string { return Versioned(r.Logical(), r.Version) }
+
+// Logical returns the unversioned reference.
+func (r Ref) Logical() string { return r.Type + "/" + r.ID }
+
+// IsID reports whether s is a FHIR id: [A-Za-z0-9\-\.]{1,64}.
+func IsID(s string) bool {
+	if len(s) == 0 || len(s) > 64 {
+		return false
+	}
+	for i := range len(s) {
+		c := s[i]
+		if !(c >= 'A' && c <= 'Z' || c >= 'a' && c <= 'z' || c >= '0' && c <= '9' || c == '-' || c == '.') {
+			return false
+		}
+	}
+	return true
+}
+
+// IsType reports whether s has the form of a resource type name: an
+// upper-case letter and 1 to 63 more letters.
+func IsType(s string) bool {
+	if len(s) < 2 || len(s) > 64 || s[0] < 'A' || s[0] > 'Z' {
+		return false
+	}
+	for i := 1; i < len(s); i++ {
+		c := s[i]
+		if !(c >= 'A' && c <= 'Z' || c >= 'a' && c <= 'z') {
+			return false
+		}
+	}
+	return true
+}
+
+// Version is what orders two versions of one resource.
+type Version struct {
+	LastUpdated time.Time
+	ID          string
+}
+
+// Compare orders versions of one resource: the later meta.lastUpdated is
+// newer, to the nanosecond; at equal instants, version ids that are both
+// decimal numbers compare as numbers of any length (servers that count
+// versions write "9" before "10", and some ids exceed 64 bits), any others
+// as strings. FHIR fixes no order for version ids, so the time decides
+// first. It returns +1 when a is newer than b, -1 when older, 0 when
+// neither is.
+func Compare(a, b Version) int {
+	if c := a.LastUpdated.Compare(b.LastUpdated); c != 0 {
+		return c
+	}
+	if isDecimal(a.ID) && isDecimal(b.ID) {
+		x, y := strings.TrimLeft(a.ID, "0"), strings.TrimLeft(b.ID, "0")
+		if c := cmp.Compare(len(x), len(y)); c != 0 {
+			return c
+		}
+		return strings.Compare(x, y)
+	}
+	return strings.Compare(a.ID, b.ID)
+}
+
+func isDecimal(s string) bool {
+	if s == "" {
+		return false
+	}
+	for i := range len(s) {
+		if s[i] < '0' || s[i] > '9' {
+			return false
+		}
+	}
+	return true
+}

@@ -1,0 +1,89 @@
+package ref
+
+import (
+	"testing"
+	"time"
+)
+
+func TestParse(t *testing.T) {
+	for _, tc := range []struct {
+		name, in string
+		want     Ref
+		bad      bool
+	}{
+		{name: "logical", in: "Observation/x1", want: Ref{Type: "Observation", ID: "x1"}},
+		{name: "versioned", in: "Observation/x1/_history/2", want: Ref{Type: "Observation", ID: "x1", Version: "2"}},
+		{name: "uuid version", in: "Patient/a.b-c/_history/0f8a-11", want: Ref{Type: "Patient", ID: "a.b-c", Version: "0f8a-11"}},
+		{name: "lower-case type", in: "observation/x", bad: true},
+		{name: "no id", in: "Observation/", bad: true},
+		{name: "empty version", in: "Observation/x/_history/", bad: true},
+		{name: "extra segment", in: "Observation/x/y", bad: true},
+		{name: "absolute", in: "https://h/fhir/Observation/x", bad: true},
+		{name: "id too long", in: "Observation/" + string(make([]byte, 65)), bad: true},
+		{name: "conditional", in: "Observation?code=x", bad: true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			got, err := Parse(tc.in)
+			if tc.bad {
+				if err == nil {
+					t.Fatalf("Parse(%q) = %+v, want an error", tc.in, got)
+				}
+				return
+			}
+			if err != nil || got != tc.want {
+				t.Fatalf("Parse(%q) = %+v, %v; want %+v", tc.in, got, err, tc.want)
+			}
+			if got.String() != tc.in {
+				t.Fatalf("String() = %q, want %q", got.String(), tc.in)
+			}
+			l, v := Split(tc.in)
+			if l != got.Logical() || v != got.Version {
+				t.Fatalf("Split(%q) = %q, %q", tc.in, l, v)
+			}
+		})
+	}
+}
+
+func TestCompare(t *testing.T) {
+	t0 := time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
+	for _, tc := range []struct {
+		name string
+		a, b Version
+		want int
+	}{
+		{"later time wins", Version{t0.Add(time.Nanosecond), "1"}, Version{t0, "2"}, 1},
+		{"nanoseconds count", Version{t0, "9"}, Version{t0.Add(time.Nanosecond), "1"}, -1},
+		{"numbers as numbers", Version{t0, "10"}, Version{t0, "9"}, 1},
+		{"numbers past 64 bits", Version{t0, "100000000000000000000"}, Version{t0, "99999999999999999999"}, 1},
+		{"leading zeros", Version{t0, "007"}, Version{t0, "7"}, 0},
+		{"strings as strings", Version{t0, "b"}, Version{t0, "a"}, 1},
+		{"same", Version{t0, "x"}, Version{t0, "x"}, 0},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			if got := Compare(tc.a, tc.b); got != tc.want {
+				t.Fatalf("Compare = %d, want %d", got, tc.want)
+			}
+			if got := Compare(tc.b, tc.a); got != -tc.want {
+				t.Fatalf("reversed Compare = %d, want %d", got, -tc.want)
+			}
+		})
+	}
+}
+
+func FuzzParse(f *testing.F) {
+	for _, s := range []string{"Observation/x", "Observation/x/_history/2", "Patient/", "A/b/_history/c/d"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		r, err := Parse(s)
+		if err != nil {
+			return
+		}
+		if r.String() != s {
+			t.Fatalf("Parse(%q).String() = %q", s, r.String())
+		}
+		if back, err := Parse(r.String()); err != nil || back != r {
+			t.Fatalf("round trip of %q: %+v, %v", s, back, err)
+		}
+	})
+}
