@@ -9,8 +9,6 @@ import (
 	"sync"
 	"time"
 
-	"github.com/samply/golang-fhir-models/fhir-models/fhir"
-
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
@@ -28,35 +26,18 @@ const (
 // evaluators is how many patients are evaluated at once.
 var evaluators = max(2, runtime.NumCPU())
 
-// Write kinds.
-const (
-	writeCreate   = "create"
-	writeRevise   = "revise"
-	writeWithdraw = "withdraw"
-)
-
-// EntryPayload is the engine's encoding of one ledger entry: the derived
-// Observation as last decided, and what it was computed from, for
-// explanations.
+// EntryPayload is the engine's encoding of one ledger entry: the value's
+// code and the derivation or fall it belongs to, as last decided. It holds
+// no FHIR resource: Observation is encoded from it when it is read.
 type EntryPayload struct {
-	Observation json.RawMessage    `json:"observation"`
-	Derivation  *derive.Derivation `json:"derivation,omitempty"`
-	Fall        *derive.Fall       `json:"fall,omitempty"`
+	Code       derive.Code        `json:"code"`
+	Derivation *derive.Derivation `json:"derivation,omitempty"`
+	Fall       *derive.Fall       `json:"fall,omitempty"`
 	// Why is set for a withdrawal.
 	Why string `json:"why,omitempty"`
-}
-
-// writeBody is the engine's encoding of one outbox write.
-type writeBody struct {
-	Kind   string   `json:"kind"`
-	Series []string `json:"series"`
-	// Observations are the resources as encoded, parallel to Series.
-	Observations []json.RawMessage `json:"observations"`
-	// Provenance is the CREATE Provenance of the Observations; a revision
-	// turns it into an UPDATE at send time, when the server's versions of
-	// the previous Observations are known.
-	Provenance json.RawMessage `json:"provenance,omitempty"`
-	Why        string          `json:"why,omitempty"`
+	// Observation is the derived Observation as written, encoded when the
+	// entry is read; it is not stored.
+	Observation json.RawMessage `json:"-"`
 }
 
 func (e *Engine) evaluateLoop(ctx context.Context) {
@@ -191,7 +172,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	}
 	for _, en := range change.Entries {
 		if e.cfg.Hooks.Emitted != nil {
-			e.cfg.Hooks.Emitted(codeOf(en), en.Status)
+			e.cfg.Hooks.Emitted(string(codeOf(en)), en.Status)
 		}
 	}
 	if len(change.Writes) > 0 {
@@ -200,16 +181,12 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	return nil
 }
 
-func codeOf(en store.Entry) string {
+func codeOf(en store.Entry) derive.Code {
 	var p EntryPayload
 	if json.Unmarshal(en.Payload, &p) != nil {
 		return ""
 	}
-	obs, err := fhir.UnmarshalObservation(p.Observation)
-	if err != nil || len(obs.Code.Coding) == 0 || obs.Code.Coding[0].Code == nil {
-		return ""
-	}
-	return *obs.Code.Coding[0].Code
+	return p.Code
 }
 
 // loadInputs returns a patient's stored readings as pairing takes them.
@@ -234,6 +211,33 @@ func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Inp
 	return inputs, nil
 }
 
+// value is one derived value of a result with its identity.
+type value struct {
+	code derive.Code
+	id   encode.Identity
+}
+
+// valuesOf lists the values a result gives, with their identities,
+// computed without encoding any resource.
+func valuesOf(r pipeline.Result) ([]value, error) {
+	if r.Fall != nil {
+		id, err := encode.FallIdentity(r.Subject, *r.Fall)
+		if err != nil {
+			return nil, fmt.Errorf("engine: fall identity: %w", err)
+		}
+		return []value{{derive.CodeEtCO2Drop, id}}, nil
+	}
+	out := make([]value, 0, len(r.Derivation.Values))
+	for _, v := range r.Derivation.Values {
+		id, err := encode.ValueIdentity(*r.Derivation, v)
+		if err != nil {
+			return nil, fmt.Errorf("engine: value identity: %w", err)
+		}
+		out = append(out, value{v.Code, id})
+	}
+	return out, nil
+}
+
 // diff compares fresh results with the ledger and decides the entries to
 // record and the writes to queue.
 func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry) (store.Change, error) {
@@ -246,9 +250,13 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 	change := store.Change{Subject: d.Subject, Generation: d.Generation, Expect: make(map[string]store.Expect)}
 	produced := make(map[string]bool)
 	for _, r := range results {
-		var fresh, changed []fhir.Observation
-		for _, o := range r.Bundle.Observations {
-			key, series := identifiers(o)
+		vals, err := valuesOf(r)
+		if err != nil {
+			return store.Change{}, err
+		}
+		var fresh, changed []value
+		for _, v := range vals {
+			series, key := v.id.Series, v.id.Key
 			produced[series] = true
 			prev, ok := bySeries[series]
 			switch {
@@ -262,38 +270,24 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 				other, err := e.cfg.Store.Entry(ctx, series)
 				switch {
 				case errors.Is(err, store.ErrNotFound):
-					fresh = append(fresh, o)
+					fresh = append(fresh, v)
 				case err != nil:
 					return store.Change{}, fmt.Errorf("engine: %w", err)
 				default:
 					bySeries[series] = other
-					changed = append(changed, o)
+					changed = append(changed, v)
 				}
 			case prev.Key == key && prev.Status != statusWithdrawn:
 				// Already recorded as it is.
 			default:
-				changed = append(changed, o)
+				changed = append(changed, v)
 			}
 		}
-		for _, set := range []struct {
-			obs    []fhir.Observation
-			kind   string
-			status string
-		}{{fresh, writeCreate, statusFinal}, {changed, writeRevise, statusAmended}} {
-			if len(set.obs) == 0 {
-				continue
-			}
-			keep := make(map[string]bool, len(set.obs))
-			for _, o := range set.obs {
-				keep[*o.Id] = true
-			}
-			sub, err := e.cfg.Encoder.Subset(r.Bundle, func(o fhir.Observation) bool { return keep[*o.Id] })
-			if err != nil {
-				return store.Change{}, fmt.Errorf("engine: %w", err)
-			}
-			if err := e.record(&change, r, sub, set.kind, set.status, bySeries, now); err != nil {
-				return store.Change{}, err
-			}
+		if err := e.record(&change, r, fresh, encode.WriteCreate, statusFinal, bySeries, now); err != nil {
+			return store.Change{}, err
+		}
+		if err := e.record(&change, r, changed, encode.WriteRevise, statusAmended, bySeries, now); err != nil {
+			return store.Change{}, err
 		}
 	}
 	for _, en := range ledger {
@@ -307,45 +301,21 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 	return change, nil
 }
 
-func identifiers(o fhir.Observation) (key, series string) {
-	for i, id := range o.Identifier {
-		if id.Value == nil {
-			continue
-		}
-		switch i {
-		case 0:
-			key = *id.Value
-		case 1:
-			series = *id.Value
-		}
+// record adds ledger entries for vals and, when a server is configured,
+// the write that carries them.
+func (e *Engine) record(change *store.Change, r pipeline.Result, vals []value, kind, status string, bySeries map[string]store.Entry, now time.Time) error {
+	if len(vals) == 0 {
+		return nil
 	}
-	return key, series
-}
-
-// record adds ledger entries for the Observations of sub and, when a server
-// is configured, the write that carries them.
-func (e *Engine) record(change *store.Change, r pipeline.Result, sub encode.Bundle, kind, status string, bySeries map[string]store.Entry, now time.Time) error {
-	body := writeBody{Kind: kind}
-	prov, err := json.Marshal(sub.Provenance)
-	if err != nil {
-		return fmt.Errorf("engine: encode provenance: %w", err)
-	}
-	body.Provenance = prov
-	for _, o := range sub.Observations {
-		if status == statusAmended {
-			o.Status = fhir.ObservationStatusAmended
-		}
-		raw, err := json.Marshal(o)
-		if err != nil {
-			return fmt.Errorf("engine: encode observation: %w", err)
-		}
-		key, series := identifiers(o)
-		payload, err := json.Marshal(EntryPayload{Observation: raw, Derivation: r.Derivation, Fall: r.Fall})
+	w := encode.Write{Kind: kind, Subject: r.Subject, Derivation: r.Derivation, Fall: r.Fall}
+	for _, v := range vals {
+		series := v.id.Series
+		payload, err := json.Marshal(EntryPayload{Code: v.code, Derivation: r.Derivation, Fall: r.Fall})
 		if err != nil {
 			return fmt.Errorf("engine: encode entry: %w", err)
 		}
 		en := store.Entry{
-			Series: series, Subject: r.Subject, Key: key, Status: status,
+			Series: series, Subject: r.Subject, Key: v.id.Key, Status: status,
 			EffectiveAt: r.Time(), UpdatedAt: now, Payload: payload,
 		}
 		change.Expect[series] = store.Expect{}
@@ -356,10 +326,9 @@ func (e *Engine) record(change *store.Change, r pipeline.Result, sub encode.Bund
 			en.Revisions = append(append([]string(nil), prev.Revisions...), prev.Key)
 		}
 		change.Entries = append(change.Entries, en)
-		body.Series = append(body.Series, series)
-		body.Observations = append(body.Observations, raw)
+		w.Series = append(w.Series, series)
 	}
-	return e.queue(change, r.Subject, body)
+	return e.queue(change, w)
 }
 
 // withdraw marks a ledger entry entered-in-error: the inputs that supported
@@ -367,7 +336,7 @@ func (e *Engine) record(change *store.Change, r pipeline.Result, sub encode.Bund
 func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) error {
 	var p EntryPayload
 	if err := json.Unmarshal(en.Payload, &p); err != nil {
-		return fmt.Errorf("engine: ledger entry %s: %w", en.Series, err)
+		return fmt.Errorf("engine: ledger entry: %w", err)
 	}
 	p.Why = "an input it was derived from was withdrawn or no longer supports it"
 	payload, err := json.Marshal(p)
@@ -381,20 +350,22 @@ func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) e
 	out.UpdatedAt = now
 	out.Payload = payload
 	change.Entries = append(change.Entries, out)
-	return e.queue(change, en.Subject, writeBody{
-		Kind: writeWithdraw, Series: []string{en.Series}, Observations: []json.RawMessage{p.Observation}, Why: p.Why,
+	return e.queue(change, encode.Write{
+		Kind: encode.WriteWithdraw, Subject: en.Subject, Derivation: p.Derivation, Fall: p.Fall,
+		Series: []string{en.Series}, Why: p.Why,
 	})
 }
 
-func (e *Engine) queue(change *store.Change, subject string, body writeBody) error {
+// queue adds the typed write to the change's outbox records.
+func (e *Engine) queue(change *store.Change, w encode.Write) error {
 	if e.cfg.Client == nil {
 		return nil
 	}
-	raw, err := json.Marshal(body)
+	raw, err := json.Marshal(w)
 	if err != nil {
 		return fmt.Errorf("engine: encode write: %w", err)
 	}
-	change.Writes = append(change.Writes, store.Write{Series: body.Series, Subject: subject, Body: raw})
+	change.Writes = append(change.Writes, store.Write{Series: w.Series, Subject: w.Subject, Body: raw})
 	return nil
 }
 

@@ -15,8 +15,6 @@ import (
 	"strings"
 	"time"
 
-	"github.com/samply/golang-fhir-models/fhir-models/fhir"
-
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
@@ -90,8 +88,9 @@ func (e *Engine) Compute(ctx context.Context, resources []json.RawMessage) (pipe
 	return rep, nil
 }
 
-// Device returns the software Device every derived resource cites.
-func (e *Engine) Device() fhir.Device { return e.cfg.Encoder.Device() }
+// Device returns the software Device every derived resource cites, as
+// FHIR JSON.
+func (e *Engine) Device() (json.RawMessage, error) { return e.cfg.Encoder.DeviceJSON() }
 
 // Record is one ledger entry with its payload read.
 type Record struct {
@@ -110,12 +109,19 @@ func (r Record) ObservationID() string {
 	return id
 }
 
-func readRecord(en store.Entry) (Record, error) {
+// readRecord reads a ledger entry and encodes its Observation as it stands.
+func (e *Engine) readRecord(en store.Entry) (Record, error) {
 	rec := Record{Entry: en}
 	if err := json.Unmarshal(en.Payload, &rec.Payload); err != nil {
 		return Record{}, fmt.Errorf("engine: ledger entry payload: %w", err)
 	}
-	rec.Code = derive.Code(codeOf(en))
+	rec.Code = rec.Payload.Code
+	p := rec.Payload
+	obs, err := e.cfg.Encoder.ValueJSON(encode.Write{Subject: en.Subject, Derivation: p.Derivation, Fall: p.Fall, Why: p.Why}, en.Series, en.Status)
+	if err != nil {
+		return Record{}, fmt.Errorf("engine: ledger entry: %w", err)
+	}
+	rec.Payload.Observation = obs
 	return rec, nil
 }
 
@@ -144,7 +150,7 @@ func (e *Engine) Derivation(ctx context.Context, identifier string) (Record, err
 	if err != nil {
 		return Record{}, fmt.Errorf("engine: derivation: %w", err)
 	}
-	return readRecord(en)
+	return e.readRecord(en)
 }
 
 // DerivationByObservation finds a patient's ledger entry by the id of its
@@ -159,7 +165,7 @@ func (e *Engine) DerivationByObservation(ctx context.Context, subject, id string
 	for _, en := range ledger {
 		rec := Record{Entry: en}
 		if en.ServerID == id || rec.ObservationID() == id {
-			return readRecord(en)
+			return e.readRecord(en)
 		}
 	}
 	return Record{}, fmt.Errorf("engine: no derivation with that observation id: %w", store.ErrNotFound)
@@ -175,7 +181,7 @@ func (e *Engine) Derivations(ctx context.Context, subject string, from, to time.
 	}
 	out := make([]Record, 0, len(ens))
 	for _, en := range ens {
-		rec, err := readRecord(en)
+		rec, err := e.readRecord(en)
 		if err != nil {
 			return nil, err
 		}
@@ -190,7 +196,7 @@ func (e *Engine) Entry(ctx context.Context, series string) (Record, error) {
 	if err != nil {
 		return Record{}, fmt.Errorf("engine: entry: %w", err)
 	}
-	return readRecord(en)
+	return e.readRecord(en)
 }
 
 // Events returns feed events after the sequence number after, in order.
@@ -369,23 +375,20 @@ func (e *Engine) ExplainBloodGas(ctx context.Context, subject, ref string) (Expl
 		d := r.Derivation
 		ex.Derivation = d
 		ex.Pairings = d.Used
-		for _, o := range r.Bundle.Observations {
-			raw, err := json.Marshal(o)
+		for _, v := range d.Values {
+			id, err := encode.ValueIdentity(*d, v)
 			if err != nil {
 				return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)
 			}
-			ev := ExplainedValue{Observation: raw}
-			if len(o.Code.Coding) > 0 && o.Code.Coding[0].Code != nil {
-				code := derive.Code(*o.Code.Coding[0].Code)
-				if i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == code }); i >= 0 {
-					v := d.Values[i]
-					ev.Value = &v
-					if v.UsesPatient {
-						ex.Patient = &d.Patient
-					}
-				}
+			raw, err := e.cfg.Encoder.ValueJSON(encode.Write{Subject: subject, Derivation: d}, id.Series, statusFinal)
+			if err != nil {
+				return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)
 			}
-			ex.Values = append(ex.Values, ev)
+			v := v
+			if v.UsesPatient {
+				ex.Patient = &d.Patient
+			}
+			ex.Values = append(ex.Values, ExplainedValue{Observation: raw, Value: &v})
 		}
 	}
 	ex.Inputs = e.explainReadings(ctx, &ex, subject, gas, ex.Pairings)

@@ -1,20 +1,15 @@
 package engine
 
 import (
-	"bytes"
 	"context"
-	"crypto/sha256"
-	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"math/rand/v2"
 	"net/http"
-	"net/url"
 	"regexp"
+	"slices"
 	"time"
-
-	"github.com/samply/golang-fhir-models/fhir-models/fhir"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -182,7 +177,7 @@ func (e *Engine) writeResult(outcome string) {
 // rotated credential or a concurrent edit must not send a whole backlog
 // to the dead letters.
 func permanent(err error) bool {
-	if errors.Is(err, errOrphan) {
+	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) {
 		return true
 	}
 	var ce *client.Error
@@ -205,30 +200,12 @@ func backoff(attempts int) time.Duration {
 	return time.Duration(rand.Int64N(int64(d)) + 1)
 }
 
-// urn returns a stable urn:uuid for a name, so the same write always uses
-// the same fullUrls.
-func urn(name string) string {
-	h := sha256.Sum256([]byte("deadspace fullUrl\x00" + name))
-	h[6] = (h[6] & 0x0f) | 0x50 // version 5 style: name-based
-	h[8] = (h[8] & 0x3f) | 0x80
-	x := hex.EncodeToString(h[:16])
-	return "urn:uuid:" + x[0:8] + "-" + x[8:12] + "-" + x[12:16] + "-" + x[16:20] + "-" + x[20:32]
-}
+// errNewerOnServer means an update met a revision on the server that this
+// service did not write (or does not know): it is never overwritten.
+var errNewerOnServer = errors.New("the server holds a revision of the derived Observation that this service did not write; it is left as it is")
 
-type txEntry struct {
-	FullURL  string          `json:"fullUrl,omitempty"`
-	Resource json.RawMessage `json:"resource"`
-	Request  txRequest       `json:"request"`
-}
-
-type txRequest struct {
-	Method      string `json:"method"`
-	URL         string `json:"url"`
-	IfNoneExist string `json:"ifNoneExist,omitempty"`
-}
-
-// send builds the write's transactions, posts them, and returns the
-// server's id and version of each series it carried.
+// send encodes the typed write with the server's ids as known now, posts
+// it, and returns the server's id and version of each series it carried.
 //
 // A server may cap the entries of a transaction that needs strict isolation
 // (conditional creates do): Medplum's cap is 8. When a write fits, it is one
@@ -236,89 +213,160 @@ type txRequest struct {
 // Observations go in transactions of at most MaxTransactionEntries and the
 // Provenance follows on its own. Every request is conditional, so a crash
 // between them is mended by sending the write again.
+//
+// An update that fails its If-Match (412) is resolved by reading what the
+// server holds: this write's own value (a copy the server committed late,
+// or an answer lost) counts as acknowledged; an earlier value of this
+// service's for the series is updated once more against the version read;
+// anything else is a revision this service did not write, which it never
+// overwrites: the write goes to the dead letters.
 func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string, error) {
-	var body writeBody
-	if err := json.Unmarshal(w.Body, &body); err != nil {
+	var tw encode.Write
+	if err := json.Unmarshal(w.Body, &tw); err != nil {
 		return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
-	enc := e.cfg.Encoder
-	opts := enc.Options()
 	deviceRef, err := e.serverDevice(ctx)
 	if err != nil {
 		return nil, err
 	}
-	rewrite := map[string]string{enc.DeviceRef(): deviceRef}
-
-	bundle, err := e.bundleOf(ctx, body)
-	if err != nil {
-		return nil, err
+	server := make(map[string]encode.ServerRef, len(tw.Series))
+	if tw.Kind != encode.WriteCreate {
+		for _, s := range tw.Series {
+			en, err := e.cfg.Store.Entry(ctx, s)
+			if err != nil {
+				return nil, fmt.Errorf("engine: %w", err)
+			}
+			if en.ServerID == "" {
+				return nil, errOrphan
+			}
+			server[s] = encode.ServerRef{ID: en.ServerID, Version: en.ServerVersion}
+		}
 	}
-	var obsEntries []txEntry
-	for i, o := range bundle.Observations {
-		req := txRequest{Method: "PUT", URL: "Observation/" + *o.Id}
-		fullURL := ""
-		if body.Kind == writeCreate {
-			key, _ := identifiers(o)
-			req = txRequest{Method: "POST", URL: "Observation", IfNoneExist: "identifier=" + opts.IdentifierSystem + "|" + key}
-			fullURL = urn(body.Series[i])
-			rewrite["Observation/"+*o.Id] = fullURL
-			o.Id = nil
-		} else {
-			o.Meta = nil
-		}
-		raw, err := marshalRewritten(o, rewrite)
+	for attempt := 0; ; attempt++ {
+		plan, err := e.cfg.Encoder.Plan(tw, server, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
 		if err != nil {
-			return nil, err
+			return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
-		obsEntries = append(obsEntries, txEntry{FullURL: fullURL, Resource: raw, Request: req})
+		ids, err := e.sendPlan(ctx, tw.Kind, plan)
+		if err == nil || tw.Kind == encode.WriteCreate || !errors.Is(err, client.ErrPreconditionFailed) {
+			return ids, err
+		}
+		landed, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
+		switch {
+		case rerr != nil:
+			return nil, rerr
+		case landed != nil:
+			return landed, nil
+		case attempt >= 2:
+			return nil, err // retried later from the outbox
+		}
+		server = again
 	}
-	prov := bundle.Provenance
-	tag := *prov.Id
-	prov.Id = nil
-	prov.Meta = &fhir.Meta{Tag: []fhir.Coding{{System: &e.cfg.ProvenanceTagSystem, Code: &tag}}}
-	provQuery := "_tag=" + e.cfg.ProvenanceTagSystem + "|" + tag
+}
 
-	server := make(map[string][2]string, len(body.Series))
-	if len(obsEntries)+1 <= e.maxEntries() {
-		provJSON, err := marshalRewritten(prov, rewrite)
+// sendPlan posts a plan's transactions.
+func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan) (map[string][2]string, error) {
+	server := make(map[string][2]string, plan.Len())
+	if plan.Len()+1 <= e.maxEntries() {
+		tx, err := plan.Transaction(0, plan.Len(), true)
+		if err != nil {
+			return nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
+		}
+		resp, err := e.transaction(ctx, tx, plan.Len()+1)
 		if err != nil {
 			return nil, err
 		}
-		entries := append(obsEntries, txEntry{
-			FullURL: urn("Provenance/" + tag), Resource: provJSON,
-			Request: txRequest{Method: "POST", URL: "Provenance", IfNoneExist: provQuery},
-		})
-		resp, err := e.transaction(ctx, entries)
-		if err != nil {
-			return nil, err
-		}
-		for i, s := range body.Series {
-			server[s] = [2]string{resp.Entries[i].ID, resp.Entries[i].VersionID}
+		for i := range plan.Len() {
+			server[plan.Series(i)] = [2]string{resp.Entries[i].ID, resp.Entries[i].VersionID}
 		}
 		return server, checkIDs(server)
 	}
-	for from := 0; from < len(obsEntries); from += e.maxEntries() {
-		to := min(from+e.maxEntries(), len(obsEntries))
-		resp, err := e.transaction(ctx, obsEntries[from:to])
+	ids := make(map[string]string, plan.Len())
+	for from := 0; from < plan.Len(); from += e.maxEntries() {
+		to := min(from+e.maxEntries(), plan.Len())
+		tx, err := plan.Transaction(from, to, false)
+		if err != nil {
+			return nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
+		}
+		resp, err := e.transaction(ctx, tx, to-from)
 		if err != nil {
 			return nil, err
 		}
 		for i := from; i < to; i++ {
 			r := resp.Entries[i-from]
-			server[body.Series[i]] = [2]string{r.ID, r.VersionID}
-			if body.Kind == writeCreate {
-				rewrite["Observation/"+idOf(bundle.Observations[i])] = "Observation/" + r.ID
-			}
+			server[plan.Series(i)] = [2]string{r.ID, r.VersionID}
+			ids[plan.Series(i)] = r.ID
 		}
 	}
-	provJSON, err := marshalRewritten(prov, rewrite)
+	if err := checkIDs(server); err != nil {
+		return nil, err
+	}
+	prov, q, err := plan.Provenance(ids)
 	if err != nil {
+		return nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
+	}
+	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
 		return nil, err
 	}
-	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", provJSON, mustQuery(provQuery)); err != nil {
-		return nil, err
+	return server, nil
+}
+
+// afterPrecondition reads what the server holds of each series of an
+// update that failed its If-Match. It returns the server ids when this
+// write's values are already there, or the versions to try again against
+// when the server holds earlier values of this service's.
+func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]encode.ServerRef, error) {
+	opts := e.cfg.Encoder.Options()
+	landed := make(map[string][2]string, plan.Len())
+	again := make(map[string]encode.ServerRef, plan.Len())
+	for i := range plan.Len() {
+		series := plan.Series(i)
+		sr := server[series]
+		body, meta, err := e.cfg.Client.Read(ctx, "Observation", sr.ID)
+		if err != nil {
+			return nil, nil, err
+		}
+		e.serverAnswered()
+		var held struct {
+			Status     string `json:"status"`
+			Identifier []struct {
+				System string `json:"system"`
+				Value  string `json:"value"`
+			} `json:"identifier"`
+		}
+		if err := json.Unmarshal(body, &held); err != nil {
+			return nil, nil, fmt.Errorf("engine: reading the server's Observation after a failed precondition: %w", err)
+		}
+		var key, heldSeries string
+		for _, id := range held.Identifier {
+			switch id.System {
+			case opts.IdentifierSystem:
+				key = id.Value
+			case opts.SeriesSystem:
+				heldSeries = id.Value
+			}
+		}
+		en, err := e.cfg.Store.Entry(ctx, series)
+		if err != nil {
+			return nil, nil, fmt.Errorf("engine: %w", err)
+		}
+		withdrawn := held.Status == statusWithdrawn
+		switch {
+		case heldSeries != series:
+			return nil, nil, errNewerOnServer
+		case key == plan.Key(i) && withdrawn == (kind == encode.WriteWithdraw):
+			landed[series] = [2]string{sr.ID, meta.VersionID}
+		case key == plan.Key(i) || key == en.Key || slices.Contains(en.Revisions, key):
+			// An earlier value of this service's: update it once more.
+		default:
+			return nil, nil, errNewerOnServer
+		}
+		again[series] = encode.ServerRef{ID: sr.ID, Version: meta.VersionID}
 	}
-	return server, checkIDs(server)
+	if len(landed) == plan.Len() {
+		return landed, nil, nil
+	}
+	return nil, again, nil
 }
 
 // checkIDs refuses an acknowledgement without a server id: every later
@@ -333,18 +381,6 @@ func checkIDs(server map[string][2]string) error {
 	return nil
 }
 
-func idOf(o fhir.Observation) string {
-	if o.Id == nil {
-		return ""
-	}
-	return *o.Id
-}
-
-func mustQuery(q string) url.Values {
-	v, _ := url.ParseQuery(q)
-	return v
-}
-
 func (e *Engine) maxEntries() int {
 	if e.cfg.MaxTransactionEntries > 0 {
 		return e.cfg.MaxTransactionEntries
@@ -352,16 +388,8 @@ func (e *Engine) maxEntries() int {
 	return DefaultMaxTransactionEntries
 }
 
-// transaction posts entries as one transaction Bundle.
-func (e *Engine) transaction(ctx context.Context, entries []txEntry) (client.TransactionResponse, error) {
-	tx, err := json.Marshal(struct {
-		ResourceType string    `json:"resourceType"`
-		Type         string    `json:"type"`
-		Entry        []txEntry `json:"entry"`
-	}{"Bundle", "transaction", entries})
-	if err != nil {
-		return client.TransactionResponse{}, fmt.Errorf("engine: encode transaction: %w", err)
-	}
+// transaction posts one transaction Bundle of n entries.
+func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.TransactionResponse, error) {
 	resp, err := e.cfg.Client.Transaction(ctx, tx)
 	if err != nil {
 		var ce *client.Error
@@ -371,69 +399,10 @@ func (e *Engine) transaction(ctx context.Context, entries []txEntry) (client.Tra
 		return client.TransactionResponse{}, err
 	}
 	e.serverAnswered()
-	if len(resp.Entries) != len(entries) {
-		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), len(entries))
+	if len(resp.Entries) != n {
+		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), n)
 	}
 	return resp, nil
-}
-
-// bundleOf turns a write back into resources, resolving server ids for
-// updates and withdrawals.
-func (e *Engine) bundleOf(ctx context.Context, body writeBody) (encode.Bundle, error) {
-	enc := e.cfg.Encoder
-	observations := make([]fhir.Observation, len(body.Observations))
-	for i, raw := range body.Observations {
-		o, err := fhir.UnmarshalObservation(raw)
-		if err != nil {
-			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
-		}
-		observations[i] = o
-	}
-	if body.Kind == writeCreate {
-		prov, err := fhir.UnmarshalProvenance(body.Provenance)
-		if err != nil {
-			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
-		}
-		return encode.Bundle{Observations: observations, Provenance: prov}, nil
-	}
-	if body.Kind != writeRevise && body.Kind != writeWithdraw {
-		return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: "unknown write kind " + body.Kind}
-	}
-	var previous []string
-	for i := range observations {
-		en, err := e.cfg.Store.Entry(ctx, body.Series[i])
-		if err != nil {
-			return encode.Bundle{}, fmt.Errorf("engine: %w", err)
-		}
-		if en.ServerID == "" {
-			return encode.Bundle{}, errOrphan
-		}
-		observations[i].Id = &en.ServerID
-		observations[i].Meta = nil
-		if en.ServerVersion != "" {
-			v := en.ServerVersion
-			observations[i].Meta = &fhir.Meta{VersionId: &v}
-			previous = append(previous, "Observation/"+en.ServerID+"/_history/"+en.ServerVersion)
-		}
-	}
-	var b encode.Bundle
-	var err error
-	if body.Kind == writeWithdraw {
-		b, err = enc.Withdrawal(observations[0], body.Why)
-	} else {
-		prov, perr := fhir.UnmarshalProvenance(body.Provenance)
-		if perr != nil {
-			return encode.Bundle{}, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: perr.Error()}
-		}
-		b = encode.Bundle{Observations: observations, Provenance: prov}
-		if len(previous) > 0 {
-			b, err = enc.Revision(b, previous)
-		}
-	}
-	if err != nil {
-		return encode.Bundle{}, &client.Error{Op: "encode revision", Status: http.StatusBadRequest, Outcome: err.Error()}
-	}
-	return b, nil
 }
 
 // serverDevice returns the server's reference to the software Device,
@@ -449,13 +418,10 @@ func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 	if v, err := e.cfg.Store.Cursor(ctx, cursor); err == nil && v != "" {
 		ref = v
 	} else {
-		device := e.cfg.Encoder.Device()
-		device.Id = nil
-		raw, err := json.Marshal(device)
+		raw, q, err := e.cfg.Encoder.DeviceCreate()
 		if err != nil {
-			return "", fmt.Errorf("engine: encode device: %w", err)
+			return "", fmt.Errorf("engine: %w", err)
 		}
-		q := url.Values{"identifier": {*device.Identifier[0].System + "|" + *device.Identifier[0].Value}}
 		_, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Device", raw, q)
 		if err != nil {
 			return "", err
@@ -473,18 +439,4 @@ func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 	e.deviceRef = ref
 	e.mu.Unlock()
 	return ref, nil
-}
-
-// marshalRewritten encodes a resource with every reference named in rewrite
-// replaced, so references between entries of one transaction use their
-// fullUrls and the server resolves them to the ids it assigns.
-func marshalRewritten(v any, rewrite map[string]string) (json.RawMessage, error) {
-	raw, err := json.Marshal(v)
-	if err != nil {
-		return nil, fmt.Errorf("engine: encode resource: %w", err)
-	}
-	for from, to := range rewrite {
-		raw = bytes.ReplaceAll(raw, []byte(`"reference":"`+from+`"`), []byte(`"reference":"`+to+`"`))
-	}
-	return raw, nil
 }

@@ -105,7 +105,7 @@ func (s *Server) Compute(ctx context.Context, req *pb.ComputeRequest) (*pb.Compu
 		}
 		out.Results = append(out.Results, pr)
 	}
-	if out.Device, err = json.Marshal(s.eng.Device()); err != nil {
+	if out.Device, err = s.eng.Device(); err != nil {
 		return nil, s.status(ctx, err)
 	}
 	return out, nil

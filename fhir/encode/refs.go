@@ -2,39 +2,16 @@ package encode
 
 import (
 	"fmt"
-	"regexp"
 	"slices"
 	"strings"
+
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
-// refPattern is a relative literal reference, optionally versioned. The id
-// and version patterns are FHIR's id type, [A-Za-z0-9\-\.]{1,64} (R4
-// datatypes.html#id).
-var refPattern = regexp.MustCompile(`^([A-Z][A-Za-z]{1,63})/([A-Za-z0-9\-.]{1,64})(?:/_history/([A-Za-z0-9\-.]{1,64}))?$`)
+// ref is a parsed relative reference; fhir/ref is the one parser.
+type ref = fhirref.Ref
 
-// ref is a parsed relative reference.
-type ref struct {
-	Type, ID, Version string
-}
-
-func parseRef(s string) (ref, error) {
-	m := refPattern.FindStringSubmatch(s)
-	if m == nil {
-		return ref{}, fmt.Errorf("reference %q is not of the form Type/id[/_history/version]", s)
-	}
-	return ref{Type: m[1], ID: m[2], Version: m[3]}, nil
-}
-
-// String returns the reference as written.
-func (r ref) String() string {
-	if r.Version == "" {
-		return r.Type + "/" + r.ID
-	}
-	return r.Type + "/" + r.ID + "/_history/" + r.Version
-}
-
-// Logical returns the unversioned reference.
-func (r ref) Logical() string { return r.Type + "/" + r.ID }
+func parseRef(s string) (ref, error) { return fhirref.Parse(s) }
 
 // versioned parses s and requires a version and the given resource type.
 func versioned(s, typ string) (ref, error) {
