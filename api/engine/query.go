@@ -20,6 +20,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
@@ -489,9 +490,4 @@ func (e *Engine) explainInput(ctx context.Context, ex *Explanation, subject stri
 }
 
 // splitVersion turns "Observation/x/_history/2" into ("Observation/x", "2").
-func splitVersion(ref string) (logical, versionID string) {
-	if i := strings.Index(ref, "/_history/"); i >= 0 {
-		return ref[:i], ref[i+len("/_history/"):]
-	}
-	return ref, ""
-}
+func splitVersion(r string) (logical, versionID string) { return fhirref.Split(r) }

@@ -15,6 +15,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/store"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 	pb "github.com/deadspace-fhir/deadspace/proto/deadspace/v1"
 )
 
@@ -144,12 +145,11 @@ func subject(s string) (string, error) {
 // observationRef accepts "x", "Observation/x" and either with a
 // "/_history/v" suffix, and returns the reference and the bare id.
 func observationRef(s string) (ref, id string, err error) {
-	rest := strings.TrimPrefix(s, "Observation/")
-	id, vid, versioned := strings.Cut(rest, "/_history/")
-	if !fhirID.MatchString(id) || (versioned && !fhirID.MatchString(vid)) {
+	r, perr := fhirref.Parse("Observation/" + strings.TrimPrefix(s, "Observation/"))
+	if perr != nil {
 		return "", "", badRequest("observation id %q: want a FHIR id, optionally as Observation/id/_history/version", s)
 	}
-	return "Observation/" + rest, id, nil
+	return r.String(), r.ID, nil
 }
 
 // Explain implements pb.DeadSpaceServer.

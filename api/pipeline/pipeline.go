@@ -14,15 +14,16 @@ package pipeline
 
 import (
 	"fmt"
+	"math"
 	"slices"
 	"sort"
-	"strconv"
 	"strings"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // Result is one derivation (for a blood gas) or one fall finding, with the
@@ -180,7 +181,7 @@ type record struct {
 	ref, encounter string
 	atMillis       int64
 	value          float64
-	lastUpdated    int64 // Unix milliseconds
+	lastUpdated    int64 // Unix nanoseconds, as the live store orders them
 	kind           derive.Kind
 	priority       int16
 }
@@ -206,21 +207,21 @@ func (c *Collector) Add(it decode.Item) {
 		}
 	case decode.ItemPatient:
 		key := "Patient/" + it.ID
-		if prev, ok := c.patients[key]; !ok || newer(it.LastUpdated.UnixMilli(), it.VersionID, prev.LastUpdated.UnixMilli(), prev.VersionID) {
+		if prev, ok := c.patients[key]; !ok || ref.Compare(ref.Version{LastUpdated: it.LastUpdated, ID: it.VersionID}, ref.Version{LastUpdated: prev.LastUpdated, ID: prev.VersionID}) > 0 {
 			c.patients[key] = it
 		}
 	case decode.ItemReading:
 		r := it.Reading
 		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
 			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
-			lastUpdated: it.LastUpdated.UnixMilli(), kind: r.Kind, priority: int16(it.Priority),
+			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority),
 		})
 	default:
 		ref := it.Ref
 		if ref == "" {
 			ref = it.Omission.Ref
 		}
-		c.omitted = append(c.omitted, omittedRecord{subject: it.Subject, ref: ref, lastUpdated: it.LastUpdated.UnixMilli(), omission: it.Omission})
+		c.omitted = append(c.omitted, omittedRecord{subject: it.Subject, ref: ref, lastUpdated: nanos(it.LastUpdated), omission: it.Omission})
 	}
 }
 
@@ -240,33 +241,42 @@ func (v version) ref() string {
 }
 
 // splitRef turns "Observation/x/_history/2" into ("Observation/x", "2").
-func splitRef(ref string) (logical, versionID string) {
-	if i := strings.Index(ref, "/_history/"); i >= 0 {
-		return ref[:i], ref[i+len("/_history/"):]
+func splitRef(r string) (logical, versionID string) { return ref.Split(r) }
+
+// noTime stands for a missing meta.lastUpdated, which sorts before any
+// time, as the zero time.Time does in the live store.
+const noTime = math.MinInt64
+
+func nanos(t time.Time) int64 {
+	if t.IsZero() {
+		return noTime
 	}
-	return ref, ""
+	return t.UnixNano()
 }
 
-// newer reports whether version (atA, vidA) is later than (atB, vidB). FHIR
-// fixes no order for version ids, so the last-updated time decides, and
-// version ids that are both numbers break ties.
+func fromNanos(n int64) time.Time {
+	if n == noTime {
+		return time.Time{}
+	}
+	return time.Unix(0, n)
+}
+
+// newer reports whether version (atA, vidA) is later than (atB, vidB), by
+// the one version order the live store uses too (ref.Compare).
 func newer(atA int64, vidA string, atB int64, vidB string) bool {
-	if atA != atB {
-		return atA > atB
-	}
-	na, errA := strconv.ParseUint(vidA, 10, 64)
-	nb, errB := strconv.ParseUint(vidB, 10, 64)
-	if errA == nil && errB == nil {
-		return na > nb
-	}
-	return vidA > vidB
+	return ref.Compare(ref.Version{LastUpdated: fromNanos(atA), ID: vidA}, ref.Version{LastUpdated: fromNanos(atB), ID: vidB}) > 0
 }
 
 // latest keeps the newest version of each resource among a subject's
 // readings and omitted versions. It returns the readings kept and an
 // omission for every version set aside: superseded ones, and the newest
 // version when it is itself an omission.
-func latest(recs []record, omitted []*omittedRecord) ([]Input, []derive.Omission) {
+//
+// elsewhere, when set, returns the newest version of a logical reference
+// filed under another patient, if one is newer than every version under
+// this one: the input was re-filed, and this patient keeps nothing of it,
+// as in the live store, which orders versions across patients.
+func latest(recs []record, omitted []*omittedRecord, elsewhere func(logical string, at int64, vid string) bool) ([]Input, []derive.Omission) {
 	vs := make([]version, 0, len(recs)+len(omitted))
 	for i := range recs {
 		l, vid := splitRef(recs[i].ref)
@@ -296,6 +306,10 @@ func latest(recs []record, omitted []*omittedRecord) ([]Input, []derive.Omission
 				continue // the same version twice, from overlapping files
 			}
 			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + vs[i-1].versionID})
+			continue
+		}
+		if elsewhere != nil && elsewhere(v.logical, v.lastUpdated, v.versionID) {
+			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonRefiled, Detail: "a newer version names another patient"})
 			continue
 		}
 		if v.omitted != nil {
@@ -345,8 +359,13 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 		}
 	}
 	sort.Strings(subjects)
+	newest := c.newestAcrossSubjects(omittedBySubject)
 	for _, s := range subjects {
-		inputs, om := latest(c.bySubject[s], omittedBySubject[s])
+		elsewhere := func(logical string, at int64, vid string) bool {
+			n, ok := newest[logical]
+			return ok && n.subject != s && newer(n.at, n.vid, at, vid)
+		}
+		inputs, om := latest(c.bySubject[s], omittedBySubject[s], elsewhere)
 		rep.Inputs = append(rep.Inputs, om...)
 		if len(inputs) == 0 {
 			continue
@@ -375,6 +394,52 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 		return strings.Compare(string(a.Reason), string(b.Reason))
 	})
 	return rep, nil
+}
+
+type newestVersion struct {
+	subject, vid string
+	at           int64
+}
+
+// newestAcrossSubjects returns, for every logical reference seen under
+// more than one patient, its newest version and the patient it names.
+func (c *Collector) newestAcrossSubjects(omittedBySubject map[string][]*omittedRecord) map[string]newestVersion {
+	first := make(map[string]string)
+	moved := make(map[string]bool)
+	out := make(map[string]newestVersion)
+	for pass := range 2 {
+		see := func(subject, r string, at int64) {
+			l, vid := splitRef(r)
+			if pass == 0 {
+				if f, ok := first[l]; !ok {
+					first[l] = subject
+				} else if f != subject {
+					moved[l] = true
+				}
+				return
+			}
+			if !moved[l] {
+				return
+			}
+			if n, ok := out[l]; !ok || newer(at, vid, n.at, n.vid) {
+				out[l] = newestVersion{subject: subject, vid: vid, at: at}
+			}
+		}
+		for s, recs := range c.bySubject {
+			for _, r := range recs {
+				see(s, r.ref, r.lastUpdated)
+			}
+		}
+		for s, oms := range omittedBySubject {
+			for _, o := range oms {
+				see(s, o.ref, o.lastUpdated)
+			}
+		}
+		if len(moved) == 0 {
+			break
+		}
+	}
+	return out
 }
 
 // splitRefOK returns the logical part of ref, or "" when ref is empty.
