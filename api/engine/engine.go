@@ -203,10 +203,6 @@ type Receipt struct {
 	Rejected []Rejection
 }
 
-// storedInput is the engine's encoding of one input version in the store.
-type storedInput struct {
-	Item decode.Item `json:"item"`
-}
 
 // Ingest decodes resources, stores the usable ones and the versions that
 // withdraw earlier usable ones, and marks their patients for evaluation.

@@ -1,0 +1,72 @@
+package engine
+
+import (
+	"bytes"
+	"reflect"
+	"testing"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+func TestStoredRoundTrip(t *testing.T) {
+	for _, tc := range []struct {
+		name string
+		it   decode.Item
+	}{
+		{"converted reading", decode.Item{
+			Type: decode.ItemReading, Ref: "Observation/a/_history/1", Status: "final", Priority: -3,
+			Reading:    derive.Reading{Ref: "Observation/a/_history/1", Encounter: "Encounter/e", AtMillis: 1773527400000, Value: 39.75, Kind: derive.KindEtCO2},
+			Original:   decode.Original{Value: "5.30", Unit: "kPa", System: "http://unitsofmeasure.org", Code: "kPa"},
+			Conversion: units.Conversion{FromValue: 5.3, FromUnit: "kPa", ToValue: 39.75, ToUnit: "mm[Hg]", Factor: 7.5, Source: "code", Text: "5.3 kPa × 7.50064 = 39.7534 mm[Hg]"},
+		}},
+		{"withdrawal", decode.Item{
+			Type: decode.ItemOmitted, Ref: "Observation/b/_history/2",
+			Reading:  derive.Reading{Ref: "Observation/b/_history/2"},
+			Omission: derive.Omission{Ref: "Observation/b/_history/2", Reason: derive.ReasonEnteredInError, Detail: "status entered-in-error"},
+		}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			p, err := encodeStored(tc.it)
+			if err != nil {
+				t.Fatal(err)
+			}
+			got, err := decodeStored(p)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if !reflect.DeepEqual(got.Item, tc.it) {
+				t.Fatalf("round trip:\n got %+v\nwant %+v", got.Item, tc.it)
+			}
+		})
+	}
+}
+
+func FuzzDecodeStored(f *testing.F) {
+	p, _ := encodeStored(decode.Item{Type: decode.ItemReading, Ref: "Observation/a/_history/1", Status: "final",
+		Reading: derive.Reading{Ref: "Observation/a/_history/1", Value: 1, Kind: derive.KindPaCO2}})
+	f.Add(p)
+	f.Add([]byte{1, 1, 1})
+	f.Fuzz(func(t *testing.T, p []byte) {
+		si, err := decodeStored(p)
+		if err != nil || p[0] != storedVersion {
+			return
+		}
+		again, err := encodeStored(si.Item)
+		if err != nil {
+			t.Fatal(err)
+		}
+		// Bytes, not values, are compared: a NaN is never equal to itself.
+		if !bytes.Equal(again, p[:len(again)]) && len(again) == len(p) {
+			t.Fatalf("re-encoding changed the payload: %x to %x", p, again)
+		}
+		back, err := decodeStored(again)
+		if err != nil {
+			t.Fatalf("a re-encoded payload does not decode: %v", err)
+		}
+		if twice, _ := encodeStored(back.Item); !bytes.Equal(twice, again) {
+			t.Fatalf("encoding is not stable: %x then %x", again, twice)
+		}
+	})
+}
