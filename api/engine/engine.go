@@ -203,7 +203,6 @@ type Receipt struct {
 	Rejected []Rejection
 }
 
-
 // Ingest decodes resources, stores the usable ones and the versions that
 // withdraw earlier usable ones, and marks their patients for evaluation.
 // It returns after the store has made them durable.
