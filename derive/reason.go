@@ -27,6 +27,7 @@ const (
 	ReasonWrongUnit      Reason = "value-in-another-unit"       // a CO2 value only plausible in another unit, such as kPa labelled mm[Hg]
 	ReasonArtefact       Reason = "etco2-artefact"              // an end-tidal reading that cannot be the patient's end-tidal value then (near zero, or far below its window)
 	ReasonTooSparse      Reason = "series-too-sparse"           // an end-tidal series too sparse or gappy for the fall and rise detector to judge
+	ReasonPastRetention  Reason = "older-than-retention"        // the live service's retention is over for it: never derived
 )
 
 // Reasons a derived value is not emitted.
@@ -48,7 +49,7 @@ func AllReasons() []Reason {
 		ReasonNotArterial, ReasonNoValue, ReasonCensored, ReasonUnitUnknown,
 		ReasonUnitMismatch, ReasonNoTime, ReasonNoSubject, ReasonImplausible,
 		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority, ReasonRefiled,
-		ReasonWrongUnit, ReasonArtefact, ReasonTooSparse,
+		ReasonWrongUnit, ReasonArtefact, ReasonTooSparse, ReasonPastRetention,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
 		ReasonInconsistent, ReasonNotApplicable, ReasonNotAdult, ReasonTooFewUsable,
 	}

@@ -65,6 +65,14 @@ type Config struct {
 	// never re-derived or withdrawn, so pruning cannot rewrite history.
 	Retention time.Duration
 	Freeze    time.Duration
+	// HistoryRetention is how long the ledger (with earlier versions of
+	// each value and the results they came from) and the derivation feed
+	// are kept, by the value's physiological time and the event's time;
+	// DefaultHistoryRetention when zero, never shorter than Retention.
+	HistoryRetention time.Duration
+	// DeadLetterRetention is how long dead letters are kept after burial;
+	// DefaultDeadLetterRetention when zero.
+	DeadLetterRetention time.Duration
 	// PollInterval is how often to search the server for changes; zero
 	// means only on gaps, empty rest-hooks and at start.
 	PollInterval time.Duration
@@ -86,6 +94,12 @@ type Config struct {
 	Now                 func() time.Time
 	Hooks               Hooks
 }
+
+// Default retentions of what the service keeps of its own past.
+const (
+	DefaultHistoryRetention    = 7 * 24 * time.Hour
+	DefaultDeadLetterRetention = 30 * 24 * time.Hour
+)
 
 // DefaultProvenanceTagSystem is the system of the tag that makes a
 // Provenance write conditional.
@@ -147,6 +161,13 @@ func New(cfg Config) (*Engine, error) {
 	}
 	if cfg.Freeze >= cfg.Retention {
 		errs = append(errs, fmt.Errorf("engine: retention (%v) must be longer than the freeze margin (%v)", cfg.Retention, cfg.Freeze))
+	}
+	if cfg.HistoryRetention <= 0 {
+		cfg.HistoryRetention = DefaultHistoryRetention
+	}
+	cfg.HistoryRetention = max(cfg.HistoryRetention, cfg.Retention)
+	if cfg.DeadLetterRetention <= 0 {
+		cfg.DeadLetterRetention = DefaultDeadLetterRetention
 	}
 	if cfg.Overlap <= 0 {
 		cfg.Overlap = 5 * time.Minute
@@ -230,6 +251,16 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 			}
 			rec.Accepted++
 		case decode.ItemReading:
+			// A reading the retention is already over for would be pruned
+			// at once and never derived: refuse it with a reason of its
+			// own, so the sender learns to replay it or lengthen the
+			// retention instead of losing it silently.
+			if horizon := now.Add(-e.cfg.Retention); retentionTime(it, now).Before(horizon) {
+				rec.Rejected = append(rec.Rejected, Rejection{i, derive.ReasonPastRetention,
+					fmt.Sprintf("effective before the retention horizon (%v back)", e.cfg.Retention)})
+				e.leftOut(derive.ReasonPastRetention)
+				continue
+			}
 			in, err := toStored(it)
 			if err != nil {
 				return Receipt{}, err
@@ -396,11 +427,19 @@ func sleep(ctx context.Context, d time.Duration) bool {
 
 func (e *Engine) pruneLoop(ctx context.Context) {
 	for {
-		n, err := e.cfg.Store.Prune(ctx, e.now().Add(-e.cfg.Retention))
+		now := e.now()
+		n, err := e.cfg.Store.Prune(ctx, now.Add(-e.cfg.Retention))
 		if err != nil && ctx.Err() == nil {
 			e.log.ErrorContext(ctx, "prune failed", "err", err)
 		} else if n > 0 {
 			e.log.InfoContext(ctx, "pruned inputs past retention", "inputs", n)
+		}
+		history := now.Add(-e.cfg.HistoryRetention)
+		p, err := e.cfg.Store.PruneHistory(ctx, history, history, now.Add(-e.cfg.DeadLetterRetention))
+		if err != nil && ctx.Err() == nil {
+			e.log.ErrorContext(ctx, "pruning the ledger, feed and dead letters failed", "err", err)
+		} else if p != (store.Pruned{}) {
+			e.log.InfoContext(ctx, "pruned history past retention", "entries", p.Entries, "results", p.Results, "events", p.Events, "dead_letters", p.DeadLetters)
 		}
 		if !sleep(ctx, 10*time.Minute) {
 			return

@@ -2,6 +2,8 @@ package engine
 
 import (
 	"context"
+	"crypto/sha256"
+	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -14,6 +16,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // Ledger entry statuses, as FHIR Observation status codes.
@@ -27,10 +30,16 @@ const (
 var evaluators = max(2, runtime.NumCPU())
 
 // EntryPayload is the engine's encoding of one ledger entry: the value's
-// code and the derivation or fall it belongs to, as last decided. It holds
-// no FHIR resource: Observation is encoded from it when it is read.
+// code and the version of the result (derivation or fall) it belongs to,
+// which the store keeps once for all the result's values. It holds no FHIR
+// resource: Observation is encoded when the entry is read.
 type EntryPayload struct {
-	Code       derive.Code        `json:"code"`
+	Code derive.Code `json:"code"`
+	// Result and Version name the stored result.
+	Result  string `json:"result,omitempty"`
+	Version string `json:"version,omitempty"`
+	// Derivation and Fall are the result, read from the store (or held
+	// inline by entries written before results were stored apart).
 	Derivation *derive.Derivation `json:"derivation,omitempty"`
 	Fall       *derive.Fall       `json:"fall,omitempty"`
 	// Why is set for a withdrawal.
@@ -38,6 +47,50 @@ type EntryPayload struct {
 	// Observation is the derived Observation as written, encoded when the
 	// entry is read; it is not stored.
 	Observation json.RawMessage `json:"-"`
+}
+
+// resultPayload is the engine's encoding of a stored result.
+type resultPayload struct {
+	Derivation *derive.Derivation `json:"derivation,omitempty"`
+	Fall       *derive.Fall       `json:"fall,omitempty"`
+}
+
+// storedResult encodes a result for the store: its id names the blood gas
+// (or the fall's series), its version is a digest of the content, so an
+// unchanged result is stored once however often it is re-derived.
+func storedResult(r pipeline.Result, id string) (store.Result, error) {
+	payload, err := json.Marshal(resultPayload{Derivation: r.Derivation, Fall: r.Fall})
+	if err != nil {
+		return store.Result{}, fmt.Errorf("engine: encode result: %w", err)
+	}
+	sum := sha256.Sum256(payload)
+	return store.Result{ID: id, Version: hex.EncodeToString(sum[:12]), Subject: r.Subject, EffectiveAt: r.Time(), Payload: payload}, nil
+}
+
+// resultID names a result: its blood gas, unversioned, or its fall series.
+func resultID(r pipeline.Result, vals []value) string {
+	if r.Derivation != nil {
+		logical, _ := fhirref.Split(r.Derivation.Gas.Ref)
+		return "gas " + logical
+	}
+	return "fall " + vals[0].id.Series
+}
+
+// loadResult fills p's derivation or fall from the stored result.
+func (e *Engine) loadResult(ctx context.Context, p *EntryPayload) error {
+	if p.Derivation != nil || p.Fall != nil {
+		return nil // an entry that holds its result inline
+	}
+	r, err := e.cfg.Store.Result(ctx, p.Result, p.Version)
+	if err != nil {
+		return fmt.Errorf("engine: ledger entry's result: %w", err)
+	}
+	var rp resultPayload
+	if err := json.Unmarshal(r.Payload, &rp); err != nil {
+		return fmt.Errorf("engine: stored result: %w", err)
+	}
+	p.Derivation, p.Fall = rp.Derivation, rp.Fall
+	return nil
 }
 
 func (e *Engine) evaluateLoop(ctx context.Context) {
@@ -283,10 +336,18 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 				changed = append(changed, v)
 			}
 		}
-		if err := e.record(&change, r, fresh, encode.WriteCreate, statusFinal, bySeries, now); err != nil {
+		if len(fresh)+len(changed) == 0 {
+			continue
+		}
+		res, err := storedResult(r, resultID(r, vals))
+		if err != nil {
 			return store.Change{}, err
 		}
-		if err := e.record(&change, r, changed, encode.WriteRevise, statusAmended, bySeries, now); err != nil {
+		change.Results = append(change.Results, res)
+		if err := e.record(&change, r, res, fresh, encode.WriteCreate, statusFinal, bySeries, now); err != nil {
+			return store.Change{}, err
+		}
+		if err := e.record(&change, r, res, changed, encode.WriteRevise, statusAmended, bySeries, now); err != nil {
 			return store.Change{}, err
 		}
 	}
@@ -294,7 +355,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 		if produced[en.Series] || en.Status == statusWithdrawn || en.EffectiveAt.Before(frozen) {
 			continue
 		}
-		if err := e.withdraw(&change, en, now); err != nil {
+		if err := e.withdraw(ctx, &change, en, now); err != nil {
 			return store.Change{}, err
 		}
 	}
@@ -303,14 +364,14 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 
 // record adds ledger entries for vals and, when a server is configured,
 // the write that carries them.
-func (e *Engine) record(change *store.Change, r pipeline.Result, vals []value, kind, status string, bySeries map[string]store.Entry, now time.Time) error {
+func (e *Engine) record(change *store.Change, r pipeline.Result, res store.Result, vals []value, kind, status string, bySeries map[string]store.Entry, now time.Time) error {
 	if len(vals) == 0 {
 		return nil
 	}
 	w := encode.Write{Kind: kind, Subject: r.Subject, Derivation: r.Derivation, Fall: r.Fall}
 	for _, v := range vals {
 		series := v.id.Series
-		payload, err := json.Marshal(EntryPayload{Code: v.code, Derivation: r.Derivation, Fall: r.Fall})
+		payload, err := json.Marshal(EntryPayload{Code: v.code, Result: res.ID, Version: res.Version})
 		if err != nil {
 			return fmt.Errorf("engine: encode entry: %w", err)
 		}
@@ -333,7 +394,7 @@ func (e *Engine) record(change *store.Change, r pipeline.Result, vals []value, k
 
 // withdraw marks a ledger entry entered-in-error: the inputs that supported
 // it were withdrawn or no longer support it.
-func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) error {
+func (e *Engine) withdraw(ctx context.Context, change *store.Change, en store.Entry, now time.Time) error {
 	var p EntryPayload
 	if err := json.Unmarshal(en.Payload, &p); err != nil {
 		return fmt.Errorf("engine: ledger entry: %w", err)
@@ -342,6 +403,9 @@ func (e *Engine) withdraw(change *store.Change, en store.Entry, now time.Time) e
 	payload, err := json.Marshal(p)
 	if err != nil {
 		return fmt.Errorf("engine: encode entry: %w", err)
+	}
+	if err := e.loadResult(ctx, &p); err != nil {
+		return err
 	}
 	change.Expect[en.Series] = store.Expect{Key: en.Key, Status: en.Status}
 	out := en

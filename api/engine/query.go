@@ -99,6 +99,16 @@ type Record struct {
 	Payload EntryPayload
 	// Code is the code of the derived Observation ("" when it has none).
 	Code derive.Code
+	// Superseded is set when the record is an earlier version of its
+	// series, found by the key it had then.
+	Superseded *Supersession
+}
+
+// Supersession says what replaced an earlier version of a value, and why.
+type Supersession struct {
+	// Key and Status are the series' entry as it stands now.
+	Key, Status string
+	Because     string
 }
 
 // ObservationID returns the id this service gave the Observation.
@@ -110,13 +120,22 @@ func (r Record) ObservationID() string {
 	return id
 }
 
-// readRecord reads a ledger entry and encodes its Observation as it stands.
-func (e *Engine) readRecord(en store.Entry) (Record, error) {
+// readRecord reads a ledger entry, its result, and encodes its Observation
+// as it stands.
+func (e *Engine) readRecord(ctx context.Context, en store.Entry) (Record, error) {
 	rec := Record{Entry: en}
 	if err := json.Unmarshal(en.Payload, &rec.Payload); err != nil {
 		return Record{}, fmt.Errorf("engine: ledger entry payload: %w", err)
 	}
+	if err := e.loadResult(ctx, &rec.Payload); err != nil {
+		return Record{}, err
+	}
 	rec.Code = rec.Payload.Code
+	if rec.Code == "" {
+		// An entry written before entries named their code.
+		rec.Code = legacyCode(rec.Payload, en.Series)
+		rec.Payload.Code = rec.Code
+	}
 	p := rec.Payload
 	obs, err := e.cfg.Encoder.ValueJSON(encode.Write{Subject: en.Subject, Derivation: p.Derivation, Fall: p.Fall, Why: p.Why}, en.Series, en.Status)
 	if err != nil {
@@ -124,6 +143,22 @@ func (e *Engine) readRecord(en store.Entry) (Record, error) {
 	}
 	rec.Payload.Observation = obs
 	return rec, nil
+}
+
+// legacyCode finds the code of the value of series in the result.
+func legacyCode(p EntryPayload, series string) derive.Code {
+	if p.Fall != nil {
+		return derive.CodeEtCO2Drop
+	}
+	if p.Derivation == nil {
+		return ""
+	}
+	for _, v := range p.Derivation.Values {
+		if id, err := encode.ValueIdentity(*p.Derivation, v); err == nil && id.Series == series {
+			return v.Code
+		}
+	}
+	return ""
 }
 
 // validIdentifier reports whether s has the form of a key or series value.
@@ -151,7 +186,28 @@ func (e *Engine) Derivation(ctx context.Context, identifier string) (Record, err
 	if err != nil {
 		return Record{}, fmt.Errorf("engine: derivation: %w", err)
 	}
-	return e.readRecord(en)
+	if en.Key == identifier || en.Series == identifier {
+		return e.readRecord(ctx, en)
+	}
+	// An earlier key: explain the value as it was, and say what replaced it.
+	old, err := e.cfg.Store.EntryVersion(ctx, identifier)
+	if err != nil {
+		return Record{}, fmt.Errorf("engine: derivation: earlier version (kept for the retention only): %w", err)
+	}
+	rec, err := e.readRecord(ctx, old)
+	if err != nil {
+		return Record{}, err
+	}
+	cur, err := e.readRecord(ctx, en)
+	if err != nil {
+		return Record{}, err
+	}
+	because := "re-derived: an input it was derived from was corrected, or the readings in its window changed; the value with the newer key replaced it"
+	if en.Status == statusWithdrawn {
+		because = "re-derived, then withdrawn: " + cur.Payload.Why
+	}
+	rec.Superseded = &Supersession{Key: en.Key, Status: en.Status, Because: because}
+	return rec, nil
 }
 
 // DerivationByObservation finds a patient's ledger entry by the id of its
@@ -166,7 +222,7 @@ func (e *Engine) DerivationByObservation(ctx context.Context, subject, id string
 	for _, en := range ledger {
 		rec := Record{Entry: en}
 		if en.ServerID == id || rec.ObservationID() == id {
-			return e.readRecord(en)
+			return e.readRecord(ctx, en)
 		}
 	}
 	return Record{}, fmt.Errorf("engine: no derivation with that observation id: %w", store.ErrNotFound)
@@ -182,7 +238,7 @@ func (e *Engine) Derivations(ctx context.Context, subject string, from, to time.
 	}
 	out := make([]Record, 0, len(ens))
 	for _, en := range ens {
-		rec, err := e.readRecord(en)
+		rec, err := e.readRecord(ctx, en)
 		if err != nil {
 			return nil, err
 		}
@@ -197,7 +253,7 @@ func (e *Engine) Entry(ctx context.Context, series string) (Record, error) {
 	if err != nil {
 		return Record{}, fmt.Errorf("engine: entry: %w", err)
 	}
-	return e.readRecord(en)
+	return e.readRecord(ctx, en)
 }
 
 // Events returns feed events after the sequence number after, in order.

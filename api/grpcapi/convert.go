@@ -229,6 +229,9 @@ func explanation(ex engine.Explanation) (*pb.ExplainResponse, error) {
 	if ex.Record != nil {
 		out.Entry = entry(*ex.Record)
 		out.WithdrawnBecause = ex.Record.Payload.Why
+		if sp := ex.Record.Superseded; sp != nil {
+			out.Superseded = &pb.Supersession{Key: sp.Key, Status: sp.Status, Because: sp.Because}
+		}
 	}
 	switch {
 	case ex.Derivation != nil:

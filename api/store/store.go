@@ -109,6 +109,20 @@ type Entry struct {
 	Payload []byte
 }
 
+// Result is one derivation (of a blood gas) or one fall finding, in the
+// engine's encoding, shared by the ledger entries of all its values: the
+// store holds it once per version, not once per derived Observation. The
+// store keeps every version (ID, Version) until it is pruned, so a value
+// that has since been superseded can still be explained from what it was
+// computed from.
+type Result struct {
+	ID, Version string
+	Subject     string
+	// EffectiveAt is the physiological time, used for retention.
+	EffectiveAt time.Time
+	Payload     []byte
+}
+
 // Write is one transaction the FHIR server has not yet acknowledged.
 type Write struct {
 	ID uint64 // assigned by the store
@@ -160,8 +174,16 @@ type Change struct {
 	Expect map[string]Expect
 	// Entries are ledger entries to create or replace.
 	Entries []Entry
+	// Results are results the entries refer to; a version already stored
+	// is kept as it is.
+	Results []Result
 	// Writes are appended to the outbox (IDs are assigned).
 	Writes []Write
+}
+
+// Pruned counts what PruneHistory removed.
+type Pruned struct {
+	Entries, Results, Events, DeadLetters int
 }
 
 // Stats is the outbox's state, for readiness and metrics.
@@ -218,6 +240,13 @@ type Store interface {
 	Entry(ctx context.Context, series string) (Entry, error)
 	// EntryByKey finds a ledger entry by its current or a previous Key.
 	EntryByKey(ctx context.Context, key string) (Entry, error)
+	// EntryVersion returns the ledger entry as it stood while key was its
+	// Key (the last state under that key): the current entry when key is
+	// current, else the version it superseded, until pruned; ErrNotFound
+	// otherwise.
+	EntryVersion(ctx context.Context, key string) (Entry, error)
+	// Result returns one version of a result, or ErrNotFound.
+	Result(ctx context.Context, id, version string) (Result, error)
 	// EntriesBetween lists a patient's entries with EffectiveAt in
 	// [from, to), in EffectiveAt then Series order, starting after the
 	// given Series (for paging), at most limit.
@@ -252,5 +281,11 @@ type Store interface {
 	// Prune removes inputs whose EffectiveAt is before the horizon, and
 	// returns how many went.
 	Prune(ctx context.Context, horizon time.Time) (int, error)
+	// PruneHistory removes what the service keeps of its own past once it
+	// is older than the horizons: ledger entries with EffectiveAt before
+	// ledger (with their earlier versions and their results) unless a
+	// write for their series is still in the outbox, feed events recorded
+	// before feed, and dead letters buried before dead.
+	PruneHistory(ctx context.Context, ledger, feed, dead time.Time) (Pruned, error)
 	Close() error
 }

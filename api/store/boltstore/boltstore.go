@@ -22,6 +22,12 @@
 //	cursors         name → value
 //	subscriptions   subscription → n(highest event number)
 //	feed            n(Seq) → event  (bucket sequence = Seq)
+//	input_owner     logical → subject of the latest version  (schema 2)
+//	results         id 0 version → result  (schema 3)
+//	results_by_time t(EffectiveAt) ⧺ id 0 version → ∅  (PruneHistory)
+//	ledger_versions key → series 0 entry, the entry as it stood under an
+//	                earlier key  (EntryVersion)
+//	ledger_expiry   t(EffectiveAt) ⧺ series → ∅  (PruneHistory)
 //
 // DueWrites scans the outbox in id order instead of keeping an index by
 // NotBefore: the outbox holds only unacknowledged writes, each record
@@ -60,7 +66,7 @@ var _ store.Store = (*Store)(nil)
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
 // migrate.
-const schemaVersion = 2
+const schemaVersion = 3
 
 // Errors of Open, to be matched with errors.Is.
 var (
@@ -110,11 +116,18 @@ var (
 	// bInputOwner maps a logical reference to the subject whose latest
 	// stored version it is (schema 2).
 	bInputOwner = []byte("input_owner")
+	// Schema 3: results once per version, earlier entry versions, and the
+	// expiry index of the ledger.
+	bResults        = []byte("results")
+	bResultsByTime  = []byte("results_by_time")
+	bLedgerVersions = []byte("ledger_versions")
+	bLedgerExpiry   = []byte("ledger_expiry")
 
 	allBuckets = [][]byte{
 		bMeta, bInputs, bInputsByTime, bPatients, bDirty, bLedger,
 		bLedgerBySubj, bLedgerByTime, bLedgerByKey, bOutbox, bDead,
 		bCursors, bSubs, bFeed, bInputOwner,
+		bResults, bResultsByTime, bLedgerVersions, bLedgerExpiry,
 	}
 
 	kSchema = []byte("schema")
@@ -232,6 +245,26 @@ func migrate(tx *bolt.Tx, from uint64) error {
 		}
 		if err := tx.Bucket(bMeta).Put(kSchema, u64(2)); err != nil {
 			return fmt.Errorf("migrate to schema 2: %w", err)
+		}
+	}
+	if from < 3 {
+		for _, name := range [][]byte{bResults, bResultsByTime, bLedgerVersions, bLedgerExpiry} {
+			if _, err := tx.CreateBucketIfNotExists(name); err != nil {
+				return fmt.Errorf("migrate to schema 3: %w", err)
+			}
+		}
+		expiry := tx.Bucket(bLedgerExpiry)
+		if err := tx.Bucket(bLedger).ForEach(func(k, v []byte) error {
+			en, err := decodeEntry(string(k), v)
+			if err != nil {
+				return err
+			}
+			return expiry.Put(ledgerExpiryKey(en), nil)
+		}); err != nil {
+			return fmt.Errorf("migrate to schema 3: %w", err)
+		}
+		if err := tx.Bucket(bMeta).Put(kSchema, u64(3)); err != nil {
+			return fmt.Errorf("migrate to schema 3: %w", err)
 		}
 	}
 	for _, name := range allBuckets {

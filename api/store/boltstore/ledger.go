@@ -48,6 +48,14 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 				return err
 			}
 		}
+		for i, r := range change.Results {
+			if r.ID == "" || r.Version == "" {
+				return fmt.Errorf("result %d: empty id or version", i)
+			}
+			if err := storeResult(tx, r, change.Subject); err != nil {
+				return fmt.Errorf("result %d: %w", i, err)
+			}
+		}
 		outbox := tx.Bucket(bOutbox)
 		for _, w := range change.Writes {
 			id, err := outbox.NextSequence()
@@ -142,6 +150,17 @@ func upsertEntry(tx *bolt.Tx, en store.Entry, now time.Time) (store.Entry, error
 		if en.ServerID == "" {
 			en.ServerID, en.ServerVersion = old.ServerID, old.ServerVersion
 		}
+		if old.Key != en.Key {
+			// Keep the entry as it stood under its last key, for
+			// explanations of the value it superseded.
+			v := append(append([]byte(old.Series), sep), encodeEntry(old)...)
+			if err := tx.Bucket(bLedgerVersions).Put([]byte(old.Key), v); err != nil {
+				return en, err
+			}
+		}
+		if err := tx.Bucket(bLedgerExpiry).Delete(ledgerExpiryKey(old)); err != nil {
+			return en, err
+		}
 		if err := bySubj.Delete(subjectKey(old.Subject, old.Series)); err != nil {
 			return en, err
 		}
@@ -156,6 +175,9 @@ func upsertEntry(tx *bolt.Tx, en store.Entry, now time.Time) (store.Entry, error
 		return en, err
 	}
 	if err := byTime.Put(ledgerTimeKey(en), nil); err != nil {
+		return en, err
+	}
+	if err := tx.Bucket(bLedgerExpiry).Put(ledgerExpiryKey(en), nil); err != nil {
 		return en, err
 	}
 	for _, k := range append([]string{en.Key}, en.Revisions...) {
@@ -188,6 +210,81 @@ func mergeRevisions(old, en store.Entry) []string {
 func ledgerTimeKey(en store.Entry) []byte {
 	k := appendTimeKey(subjectPrefix(en.Subject), en.EffectiveAt)
 	return append(k, en.Series...)
+}
+
+func ledgerExpiryKey(en store.Entry) []byte {
+	return append(appendTimeKey(nil, en.EffectiveAt), en.Series...)
+}
+
+func resultKey(id, version string) []byte {
+	return append(append([]byte(id), sep), version...)
+}
+
+// storeResult stores a result version unless it is already there.
+func storeResult(tx *bolt.Tx, r store.Result, subject string) error {
+	if r.Subject == "" {
+		r.Subject = subject
+	}
+	k := resultKey(r.ID, r.Version)
+	b := tx.Bucket(bResults)
+	if b.Get(k) != nil {
+		return nil
+	}
+	var e encoder
+	e.str(r.Subject)
+	e.time(r.EffectiveAt)
+	e.rest(r.Payload)
+	if err := b.Put(k, e.b); err != nil {
+		return err
+	}
+	return tx.Bucket(bResultsByTime).Put(append(appendTimeKey(nil, r.EffectiveAt), k...), nil)
+}
+
+// Result returns one version of a result.
+func (s *Store) Result(ctx context.Context, id, version string) (store.Result, error) {
+	var r store.Result
+	err := s.view(ctx, "Result", func(tx *bolt.Tx) error {
+		v := tx.Bucket(bResults).Get(resultKey(id, version))
+		if v == nil {
+			return notFound("result")
+		}
+		d := decoder{b: v}
+		r = store.Result{ID: id, Version: version}
+		r.Subject = d.str()
+		r.EffectiveAt = d.time()
+		r.Payload = d.rest()
+		return d.done("result")
+	})
+	return r, err
+}
+
+// EntryVersion returns the entry as it stood under key.
+func (s *Store) EntryVersion(ctx context.Context, key string) (store.Entry, error) {
+	var en store.Entry
+	err := s.view(ctx, "EntryVersion", func(tx *bolt.Tx) error {
+		if series := tx.Bucket(bLedgerByKey).Get([]byte(key)); series != nil {
+			cur, err := getEntry(tx, series)
+			if err != nil {
+				return err
+			}
+			if cur.Key == key {
+				en = cur
+				return nil
+			}
+		}
+		v := tx.Bucket(bLedgerVersions).Get([]byte(key))
+		if v == nil {
+			return notFound("ledger entry version")
+		}
+		i := bytes.IndexByte(v, sep)
+		if i < 0 {
+			return fmt.Errorf("%w: entry version without a series", ErrCorrupt)
+		}
+		var err error
+		en, err = decodeEntry(string(v[:i]), v[i+1:])
+		return err
+	})
+	return en, err
 }
 
 func getEntry(tx *bolt.Tx, series []byte) (store.Entry, error) {

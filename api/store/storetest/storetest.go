@@ -57,6 +57,9 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PutInputs/OnlyReplaces", testOnlyReplaces},
 		{"Commit/ConflictAppliesNothing", testCommitConflict},
 		{"Commit/OverlappingWritersOneWins", testOverlappingWriters},
+		{"Result/OnePerVersion", testResults},
+		{"EntryVersion/Superseded", testEntryVersion},
+		{"PruneHistory", testPruneHistory},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {

@@ -1252,7 +1252,11 @@ type ExplainResponse struct {
 	BloodGasOmission *Omission `protobuf:"bytes,15,opt,name=blood_gas_omission,json=bloodGasOmission,proto3" json:"blood_gas_omission,omitempty"`
 	// Anything else the reader should know, e.g. an input whose stored
 	// version is newer than the one cited.
-	Notes         []string `protobuf:"bytes,16,rep,name=notes,proto3" json:"notes,omitempty"`
+	Notes []string `protobuf:"bytes,16,rep,name=notes,proto3" json:"notes,omitempty"`
+	// Set when the identifier asked for is an earlier key of its series: the
+	// explanation is of that earlier value, as it was, and this says what
+	// replaced it and why. Earlier versions are kept for the retention.
+	Superseded    *Supersession `protobuf:"bytes,17,opt,name=superseded,proto3" json:"superseded,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -1399,6 +1403,75 @@ func (x *ExplainResponse) GetNotes() []string {
 	return nil
 }
 
+func (x *ExplainResponse) GetSuperseded() *Supersession {
+	if x != nil {
+		return x.Superseded
+	}
+	return nil
+}
+
+// Supersession says what replaced an earlier value of a series.
+type Supersession struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The key and status of the series' value now.
+	Key           string `protobuf:"bytes,1,opt,name=key,proto3" json:"key,omitempty"`
+	Status        string `protobuf:"bytes,2,opt,name=status,proto3" json:"status,omitempty"`
+	Because       string `protobuf:"bytes,3,opt,name=because,proto3" json:"because,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *Supersession) Reset() {
+	*x = Supersession{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *Supersession) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*Supersession) ProtoMessage() {}
+
+func (x *Supersession) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use Supersession.ProtoReflect.Descriptor instead.
+func (*Supersession) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{14}
+}
+
+func (x *Supersession) GetKey() string {
+	if x != nil {
+		return x.Key
+	}
+	return ""
+}
+
+func (x *Supersession) GetStatus() string {
+	if x != nil {
+		return x.Status
+	}
+	return ""
+}
+
+func (x *Supersession) GetBecause() string {
+	if x != nil {
+		return x.Because
+	}
+	return ""
+}
+
 // ExplainedInput is one input as cited and as the source wrote it.
 type ExplainedInput struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1429,7 +1502,7 @@ type ExplainedInput struct {
 
 func (x *ExplainedInput) Reset() {
 	*x = ExplainedInput{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1441,7 +1514,7 @@ func (x *ExplainedInput) String() string {
 func (*ExplainedInput) ProtoMessage() {}
 
 func (x *ExplainedInput) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1454,7 +1527,7 @@ func (x *ExplainedInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ExplainedInput.ProtoReflect.Descriptor instead.
 func (*ExplainedInput) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{14}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *ExplainedInput) GetReference() string {
@@ -1563,7 +1636,7 @@ type PatientFacts struct {
 
 func (x *PatientFacts) Reset() {
 	*x = PatientFacts{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1575,7 +1648,7 @@ func (x *PatientFacts) String() string {
 func (*PatientFacts) ProtoMessage() {}
 
 func (x *PatientFacts) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1588,7 +1661,7 @@ func (x *PatientFacts) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use PatientFacts.ProtoReflect.Descriptor instead.
 func (*PatientFacts) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{15}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *PatientFacts) GetReference() string {
@@ -1634,7 +1707,7 @@ type Entry struct {
 
 func (x *Entry) Reset() {
 	*x = Entry{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1646,7 +1719,7 @@ func (x *Entry) String() string {
 func (*Entry) ProtoMessage() {}
 
 func (x *Entry) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1659,7 +1732,7 @@ func (x *Entry) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Entry.ProtoReflect.Descriptor instead.
 func (*Entry) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{16}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *Entry) GetSeries() string {
@@ -1744,7 +1817,7 @@ type ListDerivationsRequest struct {
 
 func (x *ListDerivationsRequest) Reset() {
 	*x = ListDerivationsRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1756,7 +1829,7 @@ func (x *ListDerivationsRequest) String() string {
 func (*ListDerivationsRequest) ProtoMessage() {}
 
 func (x *ListDerivationsRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1769,7 +1842,7 @@ func (x *ListDerivationsRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDerivationsRequest.ProtoReflect.Descriptor instead.
 func (*ListDerivationsRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{17}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *ListDerivationsRequest) GetSubject() string {
@@ -1819,7 +1892,7 @@ type ListDerivationsResponse struct {
 
 func (x *ListDerivationsResponse) Reset() {
 	*x = ListDerivationsResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1831,7 +1904,7 @@ func (x *ListDerivationsResponse) String() string {
 func (*ListDerivationsResponse) ProtoMessage() {}
 
 func (x *ListDerivationsResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1844,7 +1917,7 @@ func (x *ListDerivationsResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDerivationsResponse.ProtoReflect.Descriptor instead.
 func (*ListDerivationsResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{18}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *ListDerivationsResponse) GetDerivations() []*Derivation {
@@ -1874,7 +1947,7 @@ type Derivation struct {
 
 func (x *Derivation) Reset() {
 	*x = Derivation{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1886,7 +1959,7 @@ func (x *Derivation) String() string {
 func (*Derivation) ProtoMessage() {}
 
 func (x *Derivation) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1899,7 +1972,7 @@ func (x *Derivation) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Derivation.ProtoReflect.Descriptor instead.
 func (*Derivation) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{19}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *Derivation) GetEntry() *Entry {
@@ -1946,7 +2019,7 @@ type WatchDerivationsRequest struct {
 
 func (x *WatchDerivationsRequest) Reset() {
 	*x = WatchDerivationsRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1958,7 +2031,7 @@ func (x *WatchDerivationsRequest) String() string {
 func (*WatchDerivationsRequest) ProtoMessage() {}
 
 func (x *WatchDerivationsRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1971,7 +2044,7 @@ func (x *WatchDerivationsRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WatchDerivationsRequest.ProtoReflect.Descriptor instead.
 func (*WatchDerivationsRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{20}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *WatchDerivationsRequest) GetResumeToken() string {
@@ -2012,7 +2085,7 @@ type WatchDerivationsResponse struct {
 
 func (x *WatchDerivationsResponse) Reset() {
 	*x = WatchDerivationsResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2024,7 +2097,7 @@ func (x *WatchDerivationsResponse) String() string {
 func (*WatchDerivationsResponse) ProtoMessage() {}
 
 func (x *WatchDerivationsResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2037,7 +2110,7 @@ func (x *WatchDerivationsResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WatchDerivationsResponse.ProtoReflect.Descriptor instead.
 func (*WatchDerivationsResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{21}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *WatchDerivationsResponse) GetResumeToken() string {
@@ -2074,7 +2147,7 @@ type DerivationEvent struct {
 
 func (x *DerivationEvent) Reset() {
 	*x = DerivationEvent{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2086,7 +2159,7 @@ func (x *DerivationEvent) String() string {
 func (*DerivationEvent) ProtoMessage() {}
 
 func (x *DerivationEvent) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2099,7 +2172,7 @@ func (x *DerivationEvent) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use DerivationEvent.ProtoReflect.Descriptor instead.
 func (*DerivationEvent) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{22}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *DerivationEvent) GetSeries() string {
@@ -2240,7 +2313,7 @@ const file_deadspace_v1_deadspace_proto_rawDesc = "" +
 	"\n" +
 	"ResourceId\x12\x18\n" +
 	"\asubject\x18\x01 \x01(\tR\asubject\x12\x0e\n" +
-	"\x02id\x18\x02 \x01(\tR\x02id\"\xf9\x05\n" +
+	"\x02id\x18\x02 \x01(\tR\x02id\"\xb5\x06\n" +
 	"\x0fExplainResponse\x12)\n" +
 	"\x05entry\x18\x01 \x01(\v2\x13.deadspace.v1.EntryR\x05entry\x12\x1e\n" +
 	"\n" +
@@ -2260,7 +2333,14 @@ const file_deadspace_v1_deadspace_proto_rawDesc = "" +
 	"\x11algorithm_version\x18\r \x01(\tR\x10algorithmVersion\x12+\n" +
 	"\x11withdrawn_because\x18\x0e \x01(\tR\x10withdrawnBecause\x12D\n" +
 	"\x12blood_gas_omission\x18\x0f \x01(\v2\x16.deadspace.v1.OmissionR\x10bloodGasOmission\x12\x14\n" +
-	"\x05notes\x18\x10 \x03(\tR\x05notes\"\xbd\x03\n" +
+	"\x05notes\x18\x10 \x03(\tR\x05notes\x12:\n" +
+	"\n" +
+	"superseded\x18\x11 \x01(\v2\x1a.deadspace.v1.SupersessionR\n" +
+	"superseded\"R\n" +
+	"\fSupersession\x12\x10\n" +
+	"\x03key\x18\x01 \x01(\tR\x03key\x12\x16\n" +
+	"\x06status\x18\x02 \x01(\tR\x06status\x12\x18\n" +
+	"\abecause\x18\x03 \x01(\tR\abecause\"\xbd\x03\n" +
 	"\x0eExplainedInput\x12\x1c\n" +
 	"\treference\x18\x01 \x01(\tR\treference\x12\x18\n" +
 	"\aversion\x18\x02 \x01(\tR\aversion\x12\x12\n" +
@@ -2359,7 +2439,7 @@ func file_deadspace_v1_deadspace_proto_rawDescGZIP() []byte {
 }
 
 var file_deadspace_v1_deadspace_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 23)
+var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 24)
 var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(ResultKind)(0),                  // 0: deadspace.v1.ResultKind
 	(Flag)(0),                        // 1: deadspace.v1.Flag
@@ -2377,70 +2457,72 @@ var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(*ExplainRequest)(nil),           // 13: deadspace.v1.ExplainRequest
 	(*ResourceId)(nil),               // 14: deadspace.v1.ResourceId
 	(*ExplainResponse)(nil),          // 15: deadspace.v1.ExplainResponse
-	(*ExplainedInput)(nil),           // 16: deadspace.v1.ExplainedInput
-	(*PatientFacts)(nil),             // 17: deadspace.v1.PatientFacts
-	(*Entry)(nil),                    // 18: deadspace.v1.Entry
-	(*ListDerivationsRequest)(nil),   // 19: deadspace.v1.ListDerivationsRequest
-	(*ListDerivationsResponse)(nil),  // 20: deadspace.v1.ListDerivationsResponse
-	(*Derivation)(nil),               // 21: deadspace.v1.Derivation
-	(*WatchDerivationsRequest)(nil),  // 22: deadspace.v1.WatchDerivationsRequest
-	(*WatchDerivationsResponse)(nil), // 23: deadspace.v1.WatchDerivationsResponse
-	(*DerivationEvent)(nil),          // 24: deadspace.v1.DerivationEvent
-	(*timestamppb.Timestamp)(nil),    // 25: google.protobuf.Timestamp
+	(*Supersession)(nil),             // 16: deadspace.v1.Supersession
+	(*ExplainedInput)(nil),           // 17: deadspace.v1.ExplainedInput
+	(*PatientFacts)(nil),             // 18: deadspace.v1.PatientFacts
+	(*Entry)(nil),                    // 19: deadspace.v1.Entry
+	(*ListDerivationsRequest)(nil),   // 20: deadspace.v1.ListDerivationsRequest
+	(*ListDerivationsResponse)(nil),  // 21: deadspace.v1.ListDerivationsResponse
+	(*Derivation)(nil),               // 22: deadspace.v1.Derivation
+	(*WatchDerivationsRequest)(nil),  // 23: deadspace.v1.WatchDerivationsRequest
+	(*WatchDerivationsResponse)(nil), // 24: deadspace.v1.WatchDerivationsResponse
+	(*DerivationEvent)(nil),          // 25: deadspace.v1.DerivationEvent
+	(*timestamppb.Timestamp)(nil),    // 26: google.protobuf.Timestamp
 }
 var file_deadspace_v1_deadspace_proto_depIdxs = []int32{
 	4,  // 0: deadspace.v1.ComputeResponse.results:type_name -> deadspace.v1.Result
 	9,  // 1: deadspace.v1.ComputeResponse.inputs_left_out:type_name -> deadspace.v1.Omission
 	9,  // 2: deadspace.v1.ComputeResponse.values_not_emitted:type_name -> deadspace.v1.Omission
 	0,  // 3: deadspace.v1.Result.kind:type_name -> deadspace.v1.ResultKind
-	25, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
+	26, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
 	5,  // 5: deadspace.v1.Result.values:type_name -> deadspace.v1.DerivedValue
 	7,  // 6: deadspace.v1.Result.pairings:type_name -> deadspace.v1.Pairing
 	8,  // 7: deadspace.v1.Result.fall:type_name -> deadspace.v1.FallFinding
 	1,  // 8: deadspace.v1.DerivedValue.flag:type_name -> deadspace.v1.Flag
 	6,  // 9: deadspace.v1.DerivedValue.terms:type_name -> deadspace.v1.Term
-	25, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
-	25, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
+	26, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
+	26, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
 	12, // 12: deadspace.v1.SubmitResponse.rejected:type_name -> deadspace.v1.Rejection
 	14, // 13: deadspace.v1.ExplainRequest.observation:type_name -> deadspace.v1.ResourceId
 	14, // 14: deadspace.v1.ExplainRequest.blood_gas:type_name -> deadspace.v1.ResourceId
-	18, // 15: deadspace.v1.ExplainResponse.entry:type_name -> deadspace.v1.Entry
+	19, // 15: deadspace.v1.ExplainResponse.entry:type_name -> deadspace.v1.Entry
 	0,  // 16: deadspace.v1.ExplainResponse.kind:type_name -> deadspace.v1.ResultKind
-	25, // 17: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
+	26, // 17: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
 	5,  // 18: deadspace.v1.ExplainResponse.values:type_name -> deadspace.v1.DerivedValue
-	16, // 19: deadspace.v1.ExplainResponse.inputs:type_name -> deadspace.v1.ExplainedInput
+	17, // 19: deadspace.v1.ExplainResponse.inputs:type_name -> deadspace.v1.ExplainedInput
 	7,  // 20: deadspace.v1.ExplainResponse.pairings:type_name -> deadspace.v1.Pairing
 	9,  // 21: deadspace.v1.ExplainResponse.values_not_emitted:type_name -> deadspace.v1.Omission
 	8,  // 22: deadspace.v1.ExplainResponse.fall:type_name -> deadspace.v1.FallFinding
-	17, // 23: deadspace.v1.ExplainResponse.patient:type_name -> deadspace.v1.PatientFacts
+	18, // 23: deadspace.v1.ExplainResponse.patient:type_name -> deadspace.v1.PatientFacts
 	9,  // 24: deadspace.v1.ExplainResponse.blood_gas_omission:type_name -> deadspace.v1.Omission
-	25, // 25: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
-	25, // 26: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
-	25, // 27: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
-	25, // 28: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
-	25, // 29: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
-	21, // 30: deadspace.v1.ListDerivationsResponse.derivations:type_name -> deadspace.v1.Derivation
-	18, // 31: deadspace.v1.Derivation.entry:type_name -> deadspace.v1.Entry
-	0,  // 32: deadspace.v1.Derivation.kind:type_name -> deadspace.v1.ResultKind
-	5,  // 33: deadspace.v1.Derivation.value:type_name -> deadspace.v1.DerivedValue
-	24, // 34: deadspace.v1.WatchDerivationsResponse.event:type_name -> deadspace.v1.DerivationEvent
-	25, // 35: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
-	21, // 36: deadspace.v1.DerivationEvent.derivation:type_name -> deadspace.v1.Derivation
-	2,  // 37: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
-	10, // 38: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
-	13, // 39: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
-	19, // 40: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
-	22, // 41: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
-	3,  // 42: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
-	11, // 43: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
-	15, // 44: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
-	20, // 45: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
-	23, // 46: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
-	42, // [42:47] is the sub-list for method output_type
-	37, // [37:42] is the sub-list for method input_type
-	37, // [37:37] is the sub-list for extension type_name
-	37, // [37:37] is the sub-list for extension extendee
-	0,  // [0:37] is the sub-list for field type_name
+	16, // 25: deadspace.v1.ExplainResponse.superseded:type_name -> deadspace.v1.Supersession
+	26, // 26: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
+	26, // 27: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
+	26, // 28: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
+	26, // 29: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
+	26, // 30: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
+	22, // 31: deadspace.v1.ListDerivationsResponse.derivations:type_name -> deadspace.v1.Derivation
+	19, // 32: deadspace.v1.Derivation.entry:type_name -> deadspace.v1.Entry
+	0,  // 33: deadspace.v1.Derivation.kind:type_name -> deadspace.v1.ResultKind
+	5,  // 34: deadspace.v1.Derivation.value:type_name -> deadspace.v1.DerivedValue
+	25, // 35: deadspace.v1.WatchDerivationsResponse.event:type_name -> deadspace.v1.DerivationEvent
+	26, // 36: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
+	22, // 37: deadspace.v1.DerivationEvent.derivation:type_name -> deadspace.v1.Derivation
+	2,  // 38: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
+	10, // 39: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
+	13, // 40: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
+	20, // 41: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
+	23, // 42: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
+	3,  // 43: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
+	11, // 44: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
+	15, // 45: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
+	21, // 46: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
+	24, // 47: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
+	43, // [43:48] is the sub-list for method output_type
+	38, // [38:43] is the sub-list for method input_type
+	38, // [38:38] is the sub-list for extension type_name
+	38, // [38:38] is the sub-list for extension extendee
+	0,  // [0:38] is the sub-list for field type_name
 }
 
 func init() { file_deadspace_v1_deadspace_proto_init() }
@@ -2459,7 +2541,7 @@ func file_deadspace_v1_deadspace_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_deadspace_v1_deadspace_proto_rawDesc), len(file_deadspace_v1_deadspace_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   23,
+			NumMessages:   24,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

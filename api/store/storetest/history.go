@@ -1,0 +1,146 @@
+package storetest
+
+import (
+	"errors"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+// A result is stored once per version, however many entries refer to it,
+// and earlier versions stay readable.
+func testResults(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	const subj = "Patient/r"
+	r1 := store.Result{ID: "gas-a", Version: "v1", EffectiveAt: t0, Payload: []byte("derivation 1")}
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Results: []store.Result{r1, r1},
+		Entries: []store.Entry{entry(subj, "s1", "k1", t0), entry(subj, "s2", "k2", t0)}}, t0))
+	r2 := r1
+	r2.Version, r2.Payload = "v2", []byte("derivation 2")
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Results: []store.Result{r2}}, t0))
+	for _, want := range []store.Result{r1, r2} {
+		got, err := s.Result(ctx, want.ID, want.Version)
+		must(t, err)
+		if string(got.Payload) != string(want.Payload) || got.Subject != subj || !got.EffectiveAt.Equal(t0) {
+			t.Errorf("Result(%s) = %+v, want %+v under %s", want.Version, got, want, subj)
+		}
+	}
+	// The same version again keeps the first payload.
+	r1b := r1
+	r1b.Payload = []byte("other bytes")
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Results: []store.Result{r1b}}, t0))
+	if got, _ := s.Result(ctx, "gas-a", "v1"); string(got.Payload) != "derivation 1" {
+		t.Errorf("a version was overwritten: %q", got.Payload)
+	}
+	_, err := s.Result(ctx, "gas-a", "v9")
+	mustNotFound(t, "Result of an unknown version", err)
+}
+
+// An entry replaced under a new key is kept as it stood, for explaining
+// the value it was.
+func testEntryVersion(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	const subj = "Patient/v"
+	e1 := entry(subj, "s", "k1", t0)
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{e1}}, t0))
+	e2 := entry(subj, "s", "k2", t0)
+	e2.Status = "amended"
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{e2}}, t0))
+	e3 := e2
+	e3.Status, e3.Payload = "entered-in-error", []byte("withdrawn")
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{e3}}, t0))
+
+	old, err := s.EntryVersion(ctx, "k1")
+	must(t, err)
+	if old.Key != "k1" || old.Status != "final" || string(old.Payload) != "payload of k1" || old.Series != "s" {
+		t.Errorf("EntryVersion(k1) = %+v, want the final entry under k1", old)
+	}
+	cur, err := s.EntryVersion(ctx, "k2")
+	must(t, err)
+	if cur.Key != "k2" || cur.Status != "entered-in-error" {
+		t.Errorf("EntryVersion(k2) = %+v, want the current, withdrawn entry", cur)
+	}
+	_, err = s.EntryVersion(ctx, "k0")
+	mustNotFound(t, "EntryVersion of an unknown key", err)
+}
+
+// PruneHistory removes what is older than each horizon, except an entry
+// whose series still has a write in the outbox.
+func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	const subj = "Patient/h"
+	old, recent := t0, t0.Add(48*time.Hour)
+	must(t, s.Commit(ctx, store.Change{Subject: subj,
+		Results: []store.Result{{ID: "g-old", Version: "1", EffectiveAt: old, Payload: []byte("x")}, {ID: "g-new", Version: "1", EffectiveAt: recent, Payload: []byte("y")}},
+		Entries: []store.Entry{entry(subj, "s-old", "k-old", old), entry(subj, "s-pending", "k-p", old), entry(subj, "s-new", "k-new", recent)},
+		Writes:  []store.Write{writeFor("s-pending")}}, old))
+	replaced := entry(subj, "s-old", "k-old2", old)
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{replaced}}, recent))
+	// A dead letter buried long ago and one buried lately.
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Writes: []store.Write{writeFor("s-x"), writeFor("s-y")}}, old))
+	ws, err := s.DueWrites(ctx, recent, 10)
+	must(t, err)
+	var buried int
+	for _, w := range ws {
+		switch w.Series[0] {
+		case "s-x":
+			must(t, s.Bury(ctx, w.ID, "refused", old))
+			buried++
+		case "s-y":
+			must(t, s.Bury(ctx, w.ID, "refused", recent))
+			buried++
+		}
+	}
+	if buried != 2 {
+		t.Fatalf("buried %d writes, want 2", buried)
+	}
+	lastBefore, err := s.LastEvent(ctx)
+	must(t, err)
+
+	horizon := t0.Add(24 * time.Hour)
+	n, err := s.PruneHistory(ctx, horizon, horizon, horizon)
+	must(t, err)
+	if n.Entries != 1 || n.Results != 1 || n.DeadLetters != 1 || n.Events != 3 {
+		t.Errorf("pruned %+v, want 1 entry, 1 result, 1 dead letter, 3 events (those recorded before the horizon)", n)
+	}
+	for _, k := range []string{"k-old", "k-old2"} {
+		if _, err := s.EntryByKey(ctx, k); !errors.Is(err, store.ErrNotFound) {
+			t.Errorf("EntryByKey(%s) after pruning: %v, want ErrNotFound", k, err)
+		}
+		if _, err := s.EntryVersion(ctx, k); !errors.Is(err, store.ErrNotFound) {
+			t.Errorf("EntryVersion(%s) after pruning: %v, want ErrNotFound", k, err)
+		}
+	}
+	for _, series := range []string{"s-pending", "s-new"} {
+		if _, err := s.Entry(ctx, series); err != nil {
+			t.Errorf("entry %s was pruned: %v", series, err)
+		}
+	}
+	if _, err := s.Result(ctx, "g-new", "1"); err != nil {
+		t.Errorf("a recent result was pruned: %v", err)
+	}
+	dls, err := s.DeadLetters(ctx, 10)
+	must(t, err)
+	if len(dls) != 1 || dls[0].Series[0] != "s-y" {
+		t.Errorf("dead letters after pruning: %+v, want the recent one", dls)
+	}
+	st, err := s.Stats(ctx)
+	must(t, err)
+	if st.DeadLetters != 1 {
+		t.Errorf("Stats counts %d dead letters, want 1", st.DeadLetters)
+	}
+	evs, err := s.Events(ctx, 0, 100)
+	must(t, err)
+	for _, ev := range evs {
+		if ev.At.Before(horizon) {
+			t.Errorf("event %d recorded at %v survived", ev.Seq, ev.At)
+		}
+	}
+	if last, _ := s.LastEvent(ctx); last != lastBefore {
+		t.Errorf("LastEvent moved from %d to %d: resume tokens must never be reused", lastBefore, last)
+	}
+}
