@@ -332,11 +332,18 @@ func toStored(it decode.Item) (store.Input, error) {
 	if err != nil {
 		return store.Input{}, err
 	}
-	return store.Input{
+	in := store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
 		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
 		Withdrawal: moved,
-	}, nil
+	}
+	// A reading changes results from its own time on (a height, which
+	// serves a year, and a withdrawal change them at any time: zero).
+	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
+		in.ChangedAt = it.Reading.At()
+		in.Urgent = it.Reading.Kind == derive.KindPaCO2
+	}
+	return in, nil
 }
 
 // retentionTime is the time the store prunes an input by. A body height is

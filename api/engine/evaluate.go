@@ -1,6 +1,7 @@
 package engine
 
 import (
+	"bytes"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -208,7 +209,16 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return err
 	}
-	results, _, err := pipeline.Evaluate(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs)
+	// Incremental evaluation: when the mark says from when results can
+	// change, only the blood gases whose pairing window reaches that time
+	// are derived again; older ones keep their ledger entries untouched.
+	// (Sources are preferred per pairing window, so an older blood gas
+	// cannot be changed by a later reading.)
+	gasesFrom := time.Time{}
+	if !d.From.IsZero() {
+		gasesFrom = d.From.Add(-e.cfg.Derive.Window)
+	}
+	results, _, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, gasesFrom)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -216,7 +226,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	change, err := e.diff(ctx, d, results, ledger)
+	change, err := e.diff(ctx, d, results, ledger, gasesFrom)
 	if err != nil {
 		return err
 	}
@@ -233,6 +243,12 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	}
 	return nil
 }
+
+// fallCode is how a fall's entry payload names its code.
+var fallCode = []byte(`"code":"` + string(derive.CodeEtCO2Drop) + `"`)
+
+// isFall tells a fall's entry from a blood gas's without decoding it.
+func isFall(en store.Entry) bool { return bytes.Contains(en.Payload, fallCode) }
 
 func codeOf(en store.Entry) derive.Code {
 	var p EntryPayload
@@ -293,7 +309,10 @@ func valuesOf(r pipeline.Result) ([]value, error) {
 
 // diff compares fresh results with the ledger and decides the entries to
 // record and the writes to queue.
-func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry) (store.Change, error) {
+//
+// With gasesFrom set, results holds only the blood gases sampled from then
+// (and every fall): entries of earlier blood gases are left alone.
+func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time) (store.Change, error) {
 	now := e.now()
 	frozen := now.Add(-(e.cfg.Retention - e.cfg.Freeze))
 	bySeries := make(map[string]store.Entry, len(ledger))
@@ -354,6 +373,9 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 	for _, en := range ledger {
 		if produced[en.Series] || en.Status == statusWithdrawn || en.EffectiveAt.Before(frozen) {
 			continue
+		}
+		if en.EffectiveAt.Before(gasesFrom) && !isFall(en) {
+			continue // a blood gas this evaluation did not derive again
 		}
 		if err := e.withdraw(ctx, &change, en, now); err != nil {
 			return store.Change{}, err

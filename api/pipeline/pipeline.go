@@ -56,6 +56,14 @@ type Input struct {
 // returns the results in time order, the omissions of inputs that became no
 // part of any result, and the omissions of values that were not emitted.
 func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input) ([]Result, []derive.Omission, error) {
+	return EvaluateFrom(cfg, enc, subject, facts, inputs, time.Time{})
+}
+
+// EvaluateFrom is Evaluate for the blood gases sampled at gasesFrom or
+// later only (every one when it is zero); falls and rises are always all
+// found. The live engine uses it when new data can change only later
+// results. The omissions are then incomplete.
+func EvaluateFrom(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, gasesFrom time.Time) ([]Result, []derive.Omission, error) {
 	var omitted []derive.Omission
 	var gases, readings, etco2 []derive.Reading
 	for _, in := range inputs {
@@ -90,6 +98,9 @@ func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts deri
 	why := make(map[string]derive.Omission)
 	var results []Result
 	for _, gas := range gases {
+		if !gasesFrom.IsZero() && gas.At().Before(gasesFrom) {
+			continue
+		}
 		d := derive.Derive(cfg, gas, facts, readings)
 		used[gas.Ref] = true
 		for _, o := range d.Omitted {

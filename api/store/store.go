@@ -40,6 +40,13 @@ type Input struct {
 	// resource is stored (under any patient): an unusable version matters
 	// only when it hides a usable one. Otherwise it is PutSkipped.
 	OnlyReplaces bool
+	// ChangedAt is the physiological time from which results may change
+	// because of this input (the reading's time); zero means any time, and
+	// the patient is evaluated whole.
+	ChangedAt time.Time
+	// Urgent marks a blood gas: its patient is evaluated before patients
+	// with device readings only.
+	Urgent bool
 	// Withdrawal is the payload stored, with this input's version, under
 	// the patient the latest stored version names when this newer version
 	// names another one: the first patient must keep nothing derived from
@@ -82,6 +89,13 @@ type Dirty struct {
 	// Generation increases with every change; [Store.Commit] clears the
 	// dirty mark only if no change arrived after the generation it read.
 	Generation uint64
+	// From is the earliest physiological time a change since the last
+	// evaluation can affect: the earliest ChangedAt of the inputs written,
+	// and the effective time of the versions they replaced. Zero means the
+	// whole patient (patient facts, a withdrawal, a mark without an input).
+	From time.Time
+	// Urgent is set when a change was a blood gas.
+	Urgent bool
 }
 
 // Entry is one derived Observation in the ledger, keyed by its series (the
@@ -224,7 +238,8 @@ type Store interface {
 	// MarkDirty marks a patient for evaluation without a new input (after
 	// a restart, or when a settle delay has passed).
 	MarkDirty(ctx context.Context, subject string, now time.Time) error
-	// DirtyPatients lists dirty patients, oldest first.
+	// DirtyPatients lists dirty patients: urgent ones (a new blood gas)
+	// first, then oldest first.
 	DirtyPatients(ctx context.Context) ([]Dirty, error)
 	// Commit applies one evaluation atomically: ledger entries, outbox
 	// writes and feed events for every entry, after checking change.Expect

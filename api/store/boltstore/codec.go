@@ -247,6 +247,12 @@ func encodeDirty(dt store.Dirty) []byte {
 	var e encoder
 	e.time(dt.Since)
 	e.uvarint(dt.Generation)
+	e.time(dt.From)
+	urgent := uint64(0)
+	if dt.Urgent {
+		urgent = 1
+	}
+	e.uvarint(urgent)
 	return e.b
 }
 
@@ -255,6 +261,12 @@ func decodeDirty(subject string, v []byte) (store.Dirty, error) {
 	dt := store.Dirty{Subject: subject}
 	dt.Since = d.time()
 	dt.Generation = d.uvarint()
+	if len(d.b) > 0 {
+		// Marks written before schema 3 end here: From stays zero, the
+		// whole patient.
+		dt.From = d.time()
+		dt.Urgent = d.uvarint() == 1
+	}
 	return dt, d.done("dirty mark")
 }
 

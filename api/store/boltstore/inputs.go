@@ -34,15 +34,36 @@ func putResult(exists bool, c int) store.PutResult {
 	}
 }
 
+// dirtySpan is what one transaction changed of one patient.
+type dirtySpan struct {
+	from   time.Time // zero: everything
+	urgent bool
+}
+
+func (d dirtySpan) merge(o dirtySpan) dirtySpan {
+	return dirtySpan{from: earliest(d.from, o.from), urgent: d.urgent || o.urgent}
+}
+
+// earliest is the earlier time, where zero (everything) is the earliest.
+func earliest(a, b time.Time) time.Time {
+	if a.IsZero() || b.IsZero() {
+		return time.Time{}
+	}
+	if a.Before(b) {
+		return a
+	}
+	return b
+}
+
 // markDirty gives the patient a new generation and keeps the earliest
-// Since of the marks not yet cleared.
-func markDirty(tx *bolt.Tx, subject string, now time.Time) error {
+// Since and From of the marks not yet cleared.
+func markDirty(tx *bolt.Tx, subject string, now time.Time, span dirtySpan) error {
 	b := tx.Bucket(bDirty)
 	gen, err := b.NextSequence()
 	if err != nil {
 		return fmt.Errorf("dirty generation: %w", err)
 	}
-	dt := store.Dirty{Subject: subject, Since: now, Generation: gen}
+	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.from, Urgent: span.urgent}
 	if v := b.Get([]byte(subject)); v != nil {
 		old, err := decodeDirty(subject, v)
 		if err != nil {
@@ -51,6 +72,8 @@ func markDirty(tx *bolt.Tx, subject string, now time.Time) error {
 		if old.Since.Before(now) {
 			dt.Since = old.Since
 		}
+		dt.From = earliest(old.From, dt.From)
+		dt.Urgent = dt.Urgent || old.Urgent
 	} else if err := addCounter(tx, kDirtyN, 1); err != nil {
 		return err
 	}
@@ -71,6 +94,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 	}
 	err := s.batch(ctx, "PutInputs", func(tx *bolt.Tx) error {
 		var changed []string
+		spans := map[string]dirtySpan{}
 		for i, in := range inputs {
 			if err := checkSubject(in.Subject); err != nil {
 				return fmt.Errorf("input %d: %w", i, err)
@@ -83,14 +107,17 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 				return fmt.Errorf("input %d: %w", i, err)
 			}
 			results[i] = res
-			for _, subject := range touched {
-				if !slices.Contains(changed, subject) {
+			for subject, span := range touched {
+				if prev, ok := spans[subject]; ok {
+					span = prev.merge(span)
+				} else {
 					changed = append(changed, subject)
 				}
+				spans[subject] = span
 			}
 		}
 		for _, subject := range changed {
-			if err := markDirty(tx, subject, now); err != nil {
+			if err := markDirty(tx, subject, now, spans[subject]); err != nil {
 				return err
 			}
 		}
@@ -103,14 +130,15 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 }
 
 // putInput applies one input and returns the subjects whose inputs
-// changed.
-func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, []string, error) {
+// changed, with the span of each change.
+func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]dirtySpan, error) {
 	owners := tx.Bucket(bInputOwner)
 	owner := string(owners.Get([]byte(in.Logical)))
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner index lost track of it, after a
 	// prune) decides too.
 	exists := false
+	span := dirtySpan{from: in.ChangedAt, urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
@@ -126,11 +154,15 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, []string, error) {
 		if c := compareVersions(in.LastUpdated, in.VersionID, old.LastUpdated, old.VersionID); c <= 0 {
 			return putResult(true, c), nil, nil
 		}
+		if subject == in.Subject {
+			// The replaced version's results change too.
+			span.from = earliest(span.from, old.EffectiveAt)
+		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	touched := []string{in.Subject}
+	touched := map[string]dirtySpan{in.Subject: span}
 	res := putResult(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
 		if _, ok, err := inputHead(tx, owner, in.Logical); err != nil {
@@ -141,7 +173,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, []string, error) {
 			if err := writeInput(tx, moved); err != nil {
 				return 0, nil, err
 			}
-			touched = append(touched, owner)
+			touched[owner] = dirtySpan{} // the whole first patient
 			res = store.PutMoved
 		}
 	}
@@ -255,7 +287,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		if err := b.Put(key, encodePatient(p)); err != nil {
 			return err
 		}
-		return markDirty(tx, p.Subject, now)
+		return markDirty(tx, p.Subject, now, dirtySpan{})
 	})
 	if err != nil {
 		return 0, err
@@ -286,7 +318,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 		if err := checkSubject(subject); err != nil {
 			return err
 		}
-		return markDirty(tx, subject, now)
+		return markDirty(tx, subject, now, dirtySpan{})
 	})
 }
 
@@ -308,6 +340,12 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 		return nil, err
 	}
 	slices.SortStableFunc(out, func(a, b store.Dirty) int {
+		if a.Urgent != b.Urgent {
+			if a.Urgent {
+				return -1
+			}
+			return 1
+		}
 		return cmp.Or(a.Since.Compare(b.Since), strings.Compare(a.Subject, b.Subject))
 	})
 	return out, nil

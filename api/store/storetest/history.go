@@ -144,3 +144,56 @@ func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
 		t.Errorf("LastEvent moved from %d to %d: resume tokens must never be reused", lastBefore, last)
 	}
 }
+
+// A dirty mark says from when results can change, so an evaluation can
+// leave older results alone, and puts patients with a new blood gas first.
+func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	in := func(subject, logical, version string, changed, eff time.Time) store.Input {
+		i := input(subject, logical, version, t0.Add(time.Duration(len(version))*time.Minute), eff, "x")
+		i.ChangedAt = changed
+		return i
+	}
+	put(t, s, t0, in("Patient/a", "Observation/a1", "1", t0.Add(10*time.Minute), t0.Add(10*time.Minute)),
+		in("Patient/a", "Observation/a2", "1", t0.Add(5*time.Minute), t0.Add(5*time.Minute)))
+	d, _ := dirtyOf(t, s, "Patient/a")
+	if !d.From.Equal(t0.Add(5 * time.Minute)) {
+		t.Errorf("From = %v, want the earliest change, %v", d.From, t0.Add(5*time.Minute))
+	}
+	// A newer version that moves the reading later still changes results
+	// from the time of the version it replaced.
+	put(t, s, t0, in("Patient/b", "Observation/b1", "1", t0.Add(time.Hour), t0.Add(time.Hour)))
+	must(t, s.Commit(ctx, store.Change{Subject: "Patient/b", Generation: mustDirty(t, s, "Patient/b").Generation}, t0))
+	put(t, s, t0, in("Patient/b", "Observation/b1", "22", t0.Add(2*time.Hour), t0.Add(2*time.Hour)))
+	if d := mustDirty(t, s, "Patient/b"); !d.From.Equal(t0.Add(time.Hour)) {
+		t.Errorf("From = %v after a correction, want the replaced version's time %v", d.From, t0.Add(time.Hour))
+	}
+	// No ChangedAt means the whole patient, and so does MarkDirty.
+	put(t, s, t0, in("Patient/a", "Observation/a3", "1", time.Time{}, t0))
+	if d := mustDirty(t, s, "Patient/a"); !d.From.IsZero() {
+		t.Errorf("From = %v, want zero (whole patient)", d.From)
+	}
+	must(t, s.MarkDirty(ctx, "Patient/b", t0))
+	if d := mustDirty(t, s, "Patient/b"); !d.From.IsZero() {
+		t.Errorf("From = %v after MarkDirty, want zero", d.From)
+	}
+	// A blood gas makes its patient urgent: listed first though newest.
+	gas := in("Patient/z", "Observation/z1", "1", t0, t0)
+	gas.Urgent = true
+	put(t, s, t0.Add(time.Hour), gas)
+	ds, err := s.DirtyPatients(ctx)
+	must(t, err)
+	if len(ds) == 0 || ds[0].Subject != "Patient/z" || !ds[0].Urgent {
+		t.Errorf("DirtyPatients = %+v, want the urgent Patient/z first", ds)
+	}
+}
+
+func mustDirty(t *testing.T, s store.Store, subject string) store.Dirty {
+	t.Helper()
+	d, ok := dirtyOf(t, s, subject)
+	if !ok {
+		t.Fatalf("%s is not dirty", subject)
+	}
+	return d
+}

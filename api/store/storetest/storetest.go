@@ -60,6 +60,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Result/OnePerVersion", testResults},
 		{"EntryVersion/Superseded", testEntryVersion},
 		{"PruneHistory", testPruneHistory},
+		{"Dirty/SpanAndUrgency", testDirtySpan},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
