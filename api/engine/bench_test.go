@@ -87,3 +87,106 @@ func BenchmarkPostToRecorded(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkStoreBytes fills a store through the engine the way the live
+// service does (10 patients, 6 hours of minute readings of five kinds
+// posted in batches of 50, patients interleaved, a blood gas every 30
+// minutes, every patient evaluated after each round) and reports the
+// store's used bytes per retained reading and per derived value. Goal
+// (issue 9): at most 1 KB per retained reading.
+//
+// Run twice, without and with evaluation, it separates the inputs' share
+// (store-B/reading with evaluate=false) from the derived values' (the
+// difference, divided by the values: store-B/value).
+func BenchmarkStoreBytes(b *testing.B) {
+	var inputsOnly float64
+	for _, evaluate := range []bool{false, true} {
+		b.Run(fmt.Sprintf("evaluate=%v", evaluate), func(b *testing.B) {
+			used, readings, values := storeBytes(b, evaluate)
+			b.ReportMetric(used/readings, "store-B/reading")
+			if !evaluate {
+				inputsOnly = used
+				return
+			}
+			b.ReportMetric(values/10, "values/patient")
+			if inputsOnly > 0 {
+				b.ReportMetric((used-inputsOnly)/values, "store-B/value")
+			}
+		})
+	}
+}
+
+func storeBytes(b *testing.B, evaluate bool) (used, readings, values float64) {
+	for b.Loop() {
+		st, err := boltstore.Open(filepath.Join(b.TempDir(), "s.db"), boltstore.Options{NoSync: true})
+		if err != nil {
+			b.Fatal(err)
+		}
+		enc, err := encode.New(encode.DefaultOptions())
+		if err != nil {
+			b.Fatal(err)
+		}
+		eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
+		if err != nil {
+			b.Fatal(err)
+		}
+		ctx := context.Background()
+		now := time.Now().UTC().Truncate(time.Minute)
+		const patients, minutes = 10, 6 * 60
+		nreadings := 0
+		for m0 := minutes; m0 > 0; m0 -= 10 {
+			for p := range patients {
+				subject := fmt.Sprintf("Patient/%08x-7c1e-4abc-8def-0123456789ab", p)
+				var batch []json.RawMessage
+				for m := m0; m > m0-10; m-- {
+					at := now.Add(-time.Duration(m) * time.Minute)
+					for k, c := range []struct {
+						code, unit string
+						v          float64
+					}{{"19891-1", "mm[Hg]", 36}, {"76222-9", "mL", 480}, {"19840-8", "/min", 16}, {"76008-2", "L/min", 7.7}, {"60825-7", "mL/min", 210}} {
+						id := fmt.Sprintf("%08x-%04x-4abc-8def-%012x", p, k, m)
+						batch = append(batch, obsFor(subject, id, c.code, c.unit, c.v, at))
+						nreadings++
+					}
+					if m%30 == 0 {
+						batch = append(batch, obsFor(subject, fmt.Sprintf("%08x-gas0-4abc-8def-%012x", p, m), "2019-8", "mm[Hg]", 42, at))
+						nreadings++
+					}
+				}
+				if _, err := eng.Ingest(ctx, "bench", batch); err != nil {
+					b.Fatal(err)
+				}
+			}
+			if !evaluate {
+				continue
+			}
+			if err := eng.EvaluateNow(ctx); err != nil {
+				b.Fatal(err)
+			}
+		}
+		n, err := st.UsedBytes(ctx)
+		if err != nil {
+			b.Fatal(err)
+		}
+		nvalues := 0
+		for p := range patients {
+			recs, err := eng.Derivations(ctx, fmt.Sprintf("Patient/%08x-7c1e-4abc-8def-0123456789ab", p), time.Time{}, now.Add(time.Hour), "", 1000)
+			if err != nil {
+				b.Fatal(err)
+			}
+			nvalues += len(recs)
+		}
+		st.Close()
+		used, readings, values = float64(n), float64(nreadings), float64(nvalues)
+	}
+	return used, readings, values
+}
+
+// obsFor is a reading with a server-style UUID id and version, as Medplum
+// assigns them (the longest ids a store must hold).
+func obsFor(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {
+	return json.RawMessage(fmt.Sprintf(`{"resourceType":"Observation","id":"%s","meta":{"versionId":"%s","lastUpdated":"%s"},"status":"final",`+
+		`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"encounter":{"reference":"Encounter/e-%s"},"effectiveDateTime":"%s",`+
+		`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
+		id, "9b2c"+id[4:], at.Add(30*time.Second).Format(time.RFC3339), code, subject, subject[8:16], at.Format(time.RFC3339), v, unit, unit))
+}

@@ -268,7 +268,7 @@ func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Inp
 	}
 	inputs := make([]pipeline.Input, 0, len(stored))
 	for _, in := range stored {
-		h, _, err := decodeHead(in.Payload)
+		h, _, err := decodeHead(in.Payload, in.Logical, in.VersionID)
 		if err != nil {
 			return nil, fmt.Errorf("stored input %s: %w", in.Logical, err)
 		}

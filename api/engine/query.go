@@ -390,7 +390,7 @@ func (e *Engine) ExplainBloodGas(ctx context.Context, subject, ref string) (Expl
 	if err != nil {
 		return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)
 	}
-	si, err := decodeStored(in.Payload)
+	si, err := decodeStored(in.Payload, in.Logical, in.VersionID)
 	if err != nil {
 		return Explanation{}, fmt.Errorf("engine: explain blood gas: stored input: %w", err)
 	}
@@ -533,7 +533,7 @@ func (e *Engine) explainInput(ctx context.Context, ex *Explanation, subject stri
 		ex.Notes = append(ex.Notes, fmt.Sprintf("%s: the store holds version %s now; the original of the cited version is not kept", r.Ref, in.VersionID))
 		return out
 	}
-	si, err := decodeStored(in.Payload)
+	si, err := decodeStored(in.Payload, in.Logical, in.VersionID)
 	if err != nil {
 		e.log.WarnContext(ctx, "a stored input could not be decoded for an explanation", "err", err)
 		ex.Notes = append(ex.Notes, r.Ref+": the stored input could not be read")

@@ -9,6 +9,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // A stored input's payload is a small binary head with what pairing needs,
@@ -35,8 +36,17 @@ func encodeStored(it decode.Item) ([]byte, error) {
 	if len(r.Ref) > math.MaxUint16 || len(r.Encounter) > math.MaxUint16 {
 		return nil, fmt.Errorf("engine: reference too long to store")
 	}
+	// The versioned reference is what the store keeps beside the payload
+	// (the logical reference and the version): it is left out, and
+	// storedRef puts it back.
+	if own := fhirref.Versioned(it.ResourceType+"/"+it.ID, it.VersionID); it.ID != "" && r.Ref == own {
+		r.Ref = ""
+		if it.Omission.Ref == own {
+			it.Omission.Ref = ""
+		}
+	}
 	c, o, om := it.Conversion, it.Original, it.Omission
-	b := make([]byte, 0, 64+len(r.Ref)+len(r.Encounter)+len(o.Value)+len(o.Unit)+len(o.System)+len(o.Code)+len(c.FromUnit)+len(c.ToUnit)+len(c.Text)+len(om.Detail))
+	b := make([]byte, 0, 64+len(r.Ref)+len(r.Encounter)+len(o.Value)+len(o.Unit)+len(o.System)+len(o.Code)+len(c.FromUnit)+len(c.ToUnit)+len(c.Text)+len(om.Detail)+len(om.Ref))
 	b = append(b, storedVersion, byte(it.Type), byte(r.Kind))
 	b = binary.LittleEndian.AppendUint16(b, uint16(int16(it.Priority)))
 	b = binary.LittleEndian.AppendUint64(b, uint64(r.AtMillis))
@@ -68,8 +78,9 @@ type storedHead struct {
 }
 
 // decodeHead reads the binary head and returns it with the offset of what
-// follows.
-func decodeHead(p []byte) (storedHead, int, error) {
+// follows. logical and version are the store's record of the input, which
+// give the reference when the payload leaves it out.
+func decodeHead(p []byte, logical, version string) (storedHead, int, error) {
 	if len(p) < 23 || (p[0] != storedVersion && p[0] != 1) {
 		return storedHead{}, 0, errStoredPayload
 	}
@@ -98,12 +109,15 @@ func decodeHead(p []byte) (storedHead, int, error) {
 	if h.Reading.Encounter, ok = str(); !ok {
 		return storedHead{}, 0, errStoredPayload
 	}
+	if h.Reading.Ref == "" {
+		h.Reading.Ref = fhirref.Versioned(logical, version)
+	}
 	return h, off, nil
 }
 
 // decodeStored reads a whole stored input, for explanations.
-func decodeStored(p []byte) (storedInput, error) {
-	h, off, err := decodeHead(p)
+func decodeStored(p []byte, logical, version string) (storedInput, error) {
+	h, off, err := decodeHead(p, logical, version)
 	if err != nil {
 		return storedInput{}, err
 	}
@@ -133,6 +147,9 @@ func decodeStored(p []byte) (storedInput, error) {
 	c.FromUnit, c.ToUnit, c.Source, c.Text = str(), str(), str(), str()
 	code, ref, reason, detail := str(), str(), str(), str()
 	om.Code, om.Ref, om.Reason, om.Detail = derive.Code(code), ref, derive.Reason(reason), detail
+	if om.Ref == "" && om.Reason != "" {
+		om.Ref = h.Reading.Ref
+	}
 	if err != nil || len(rest) != 24 {
 		return storedInput{}, errStoredPayload
 	}

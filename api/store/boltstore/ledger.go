@@ -25,6 +25,9 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 			return err
 		}
 		feed := tx.Bucket(bFeed)
+		feed.FillPercent = appendFill
+		tx.Bucket(bLedgerExpiry).FillPercent = appendFill
+		tx.Bucket(bResultsByTime).FillPercent = appendFill
 		for i, en := range change.Entries {
 			switch {
 			case en.Subject == "":
