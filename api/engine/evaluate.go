@@ -213,10 +213,15 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	// change, only the blood gases whose pairing window reaches that time
 	// are derived again; older ones keep their ledger entries untouched.
 	// (Sources are preferred per pairing window, so an older blood gas
-	// cannot be changed by a later reading.)
+	// cannot be changed by a later reading; heights and patient facts,
+	// which reach further, leave From zero.)
 	gasesFrom := time.Time{}
 	if !d.From.IsZero() {
-		gasesFrom = d.From.Add(-e.cfg.Derive.Window)
+		// A blood gas sampled at s depends on inputs up to DependencySpan's
+		// end after s: a change at From reaches the gases sampled from
+		// From less that reach on.
+		_, to := e.cfg.Derive.DependencySpan(d.From)
+		gasesFrom = d.From.Add(-to.Sub(d.From))
 	}
 	results, _, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, gasesFrom)
 	if err != nil {
