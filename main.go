@@ -30,6 +30,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/backfill"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
@@ -165,6 +166,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
 	codeSystemPath := fs.String("codesystem", "", "also write the project's CodeSystem (every derived code with its definition and unit, FHIR R4 JSON) to this file")
 	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
+	htmlPath := fs.String("html", "", "also write a self-contained HTML report (overview, timelines, explanations) to this file")
 	files, err := parseInterspersed(fs, args)
 	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
@@ -196,10 +198,23 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 		return exitUsage
 	}
 
-	out, err := replay.Run(ctx, replay.Options{Derive: cfg, Decode: decOpts, Encode: encOpts}, files)
+	opts := replay.Options{Derive: cfg, Decode: decOpts, Encode: encOpts}
+	var recorder *ui.Recorder
+	if *htmlPath != "" {
+		recorder = ui.NewRecorder()
+		opts.Observe = recorder.Add
+	}
+	out, err := replay.Run(ctx, opts, files)
 	if err != nil {
 		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
 		return exitFailed
+	}
+	if recorder != nil {
+		source := fmt.Sprintf("replay of %d files, %d lines", len(files), out.Lines)
+		if err := ui.WriteReportFile(*htmlPath, ui.FromReplay(out, recorder, cfg.Window, encOpts.Issued, source)); err != nil {
+			fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
+			return exitFailed
+		}
 	}
 	w := stdout
 	var file *os.File

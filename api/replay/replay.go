@@ -30,6 +30,9 @@ type Options struct {
 	Derive derive.Config
 	Decode decode.Options
 	Encode encode.Options
+	// Observe, when set, is given every decoded resource as it is read,
+	// for reports that show inputs as their sources wrote them.
+	Observe func(decode.Item)
 }
 
 // Skipped is a line that was not a FHIR resource.
@@ -75,7 +78,7 @@ func Run(ctx context.Context, opts Options, files []string) (Outcome, error) {
 		if err := ctx.Err(); err != nil {
 			return Outcome{}, err
 		}
-		if err := readFile(name, dec, col, &out); err != nil {
+		if err := readFile(name, dec, col, opts.Observe, &out); err != nil {
 			return Outcome{}, err
 		}
 	}
@@ -86,7 +89,7 @@ func Run(ctx context.Context, opts Options, files []string) (Outcome, error) {
 	return out, nil
 }
 
-func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, out *Outcome) error {
+func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, observe func(decode.Item), out *Outcome) error {
 	f, err := os.Open(name)
 	if err != nil {
 		return fmt.Errorf("replay: %w", err)
@@ -114,6 +117,9 @@ func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, out *Ou
 				break
 			}
 			out.Resources[it.ResourceType]++
+			if observe != nil {
+				observe(it)
+			}
 			col.Add(it)
 		}
 		if errors.Is(err, io.EOF) {

@@ -14,6 +14,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
@@ -56,6 +57,28 @@ type Config struct {
 	FallDrop       float64
 	FallSustain    time.Duration
 	FallBaseline   time.Duration
+	UI             UIConfig
+}
+
+// UIConfig is the settings of the auditor's pages (--ui-*): off unless
+// --ui-listen is set, and then signed in by OpenID Connect or by a
+// trusted proxy's user header.
+type UIConfig struct {
+	Listen           string
+	OIDCIssuer       string
+	OIDCClientID     string
+	OIDCClientSecret string // secret: from DEADSPACE_UI_OIDC_CLIENT_SECRET or --ui-oidc-client-secret-file
+	OIDCSecretFile   string
+	OIDCRedirectURL  string
+	OIDCScopes       string
+	OIDCClaim        string
+	OIDCAllowed      string
+	OIDCUserClaim    string
+	OIDCCA           string
+	UserHeader       string
+	TrustedProxies   string
+	SessionTTL       time.Duration
+	AccessLog        string
 }
 
 // deriveConfig is the derivation rules the flags select; replay takes the
@@ -120,6 +143,96 @@ func (c *Config) BindFHIR(fs *flag.FlagSet) {
 	fs.StringVar(&c.FHIRKeyFile, "fhir-private-key-file", "", "PEM private key (RSA for RS384, P-384 for ES384) that signs the client assertion")
 	fs.StringVar(&c.FHIRKeyID, "fhir-key-id", "", "kid of the matching public key registered with the authorization server")
 	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", 8, "largest transaction sent to the FHIR server; larger writes are split")
+	c.UI.bind(fs)
+}
+
+func (u *UIConfig) bind(fs *flag.FlagSet) {
+	fs.StringVar(&u.Listen, "ui-listen", "", "address of the auditor's pages (empty: no pages); TLS with --tls-cert as the other listeners")
+	fs.StringVar(&u.OIDCIssuer, "ui-oidc-issuer", "", "OpenID Connect issuer URL users sign in with")
+	fs.StringVar(&u.OIDCClientID, "ui-oidc-client-id", "", "client_id registered with the OpenID Connect provider")
+	fs.StringVar(&u.OIDCSecretFile, "ui-oidc-client-secret-file", "", "file holding the OpenID Connect client secret (or set DEADSPACE_UI_OIDC_CLIENT_SECRET)")
+	fs.StringVar(&u.OIDCRedirectURL, "ui-oidc-redirect-url", "", "this service's sign-in callback as the provider knows it, https://host:port/signin/callback")
+	fs.StringVar(&u.OIDCScopes, "ui-oidc-scopes", "openid profile groups", "scopes to request, space-separated")
+	fs.StringVar(&u.OIDCClaim, "ui-oidc-claim", "groups", "ID token claim that lists the user's groups or roles")
+	fs.StringVar(&u.OIDCAllowed, "ui-oidc-allowed", "", "comma-separated groups or roles allowed to see the pages")
+	fs.StringVar(&u.OIDCUserClaim, "ui-oidc-user-claim", "preferred_username", "ID token claim written to the access log as the user")
+	fs.StringVar(&u.OIDCCA, "ui-oidc-ca", "", "PEM CA bundle for reaching the OpenID Connect provider (default: the system's)")
+	fs.StringVar(&u.UserHeader, "ui-user-header", "", "instead of OpenID Connect: request header naming the user, set by an authenticating proxy")
+	fs.StringVar(&u.TrustedProxies, "ui-trusted-proxies", "", "comma-separated addresses or CIDR prefixes whose --ui-user-header is trusted")
+	fs.DurationVar(&u.SessionTTL, "ui-session-ttl", 8*time.Hour, "how long a sign-in lasts")
+	fs.StringVar(&u.AccessLog, "ui-access-log", "", "file the page views that show patients are appended to (default: access.log in --data-dir)")
+}
+
+// validate checks the pages' settings; tls says whether --tls-cert is set.
+func (u *UIConfig) validate(tls bool) []error {
+	if u.Listen == "" {
+		return nil
+	}
+	var errs []error
+	host, _, err := net.SplitHostPort(u.Listen)
+	if err != nil {
+		errs = append(errs, fmt.Errorf("--ui-listen: %w", err))
+	} else if !tls && !loopback(host) {
+		errs = append(errs, errors.New("--ui-listen on a non-loopback address needs --tls-cert and --tls-key: sign-in cookies are sent over HTTPS only"))
+	}
+	if u.OIDCSecretFile != "" {
+		sec, err := readSecret(u.OIDCSecretFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--ui-oidc-client-secret-file: %w", err))
+		}
+		u.OIDCClientSecret = sec
+	}
+	switch {
+	case u.OIDCIssuer != "" && u.UserHeader != "":
+		errs = append(errs, errors.New("use either --ui-oidc-issuer or --ui-user-header, not both"))
+	case u.OIDCIssuer != "":
+		if iu, err := url.Parse(u.OIDCIssuer); err != nil || (iu.Scheme != "https" && iu.Scheme != "http") || iu.Host == "" {
+			errs = append(errs, fmt.Errorf("--ui-oidc-issuer must be an http or https URL, got %q", u.OIDCIssuer))
+		}
+		if u.OIDCClientID == "" {
+			errs = append(errs, errors.New("--ui-oidc-issuer needs --ui-oidc-client-id"))
+		}
+		if ru, err := url.Parse(u.OIDCRedirectURL); u.OIDCRedirectURL == "" || err != nil || ru.Host == "" || !strings.HasSuffix(ru.Path, "/signin/callback") {
+			errs = append(errs, errors.New("--ui-oidc-issuer needs --ui-oidc-redirect-url, ending in /signin/callback"))
+		}
+		if u.OIDCClaim == "" || len(splitList(u.OIDCAllowed)) == 0 {
+			errs = append(errs, errors.New("--ui-oidc-issuer needs --ui-oidc-claim and --ui-oidc-allowed: who may see patient data"))
+		}
+	case u.UserHeader != "":
+		if strings.ContainsAny(u.UserHeader, " :\r\n") {
+			errs = append(errs, fmt.Errorf("--ui-user-header must be a header name, got %q", u.UserHeader))
+		}
+		if u.TrustedProxies == "" {
+			errs = append(errs, errors.New("--ui-user-header needs --ui-trusted-proxies: the header is trusted only from the proxy"))
+		} else if _, err := ui.ParsePrefixes(u.TrustedProxies); err != nil {
+			errs = append(errs, fmt.Errorf("--ui-trusted-proxies: %w", err))
+		}
+	default:
+		errs = append(errs, errors.New("--ui-listen needs a way to sign in: --ui-oidc-issuer, or --ui-user-header with --ui-trusted-proxies"))
+	}
+	if u.SessionTTL < time.Minute || u.SessionTTL > 7*24*time.Hour {
+		errs = append(errs, fmt.Errorf("--ui-session-ttl must be between 1m and 168h, got %v", u.SessionTTL))
+	}
+	return errs
+}
+
+func loopback(host string) bool {
+	if host == "localhost" {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsLoopback()
+}
+
+// splitList splits a comma-separated list, dropping blanks.
+func splitList(s string) []string {
+	var out []string
+	for _, f := range strings.Split(s, ",") {
+		if f = strings.TrimSpace(f); f != "" {
+			out = append(out, f)
+		}
+	}
+	return out
 }
 
 // EnvName is the environment variable of a flag: DEADSPACE_ and the flag's
@@ -147,6 +260,9 @@ func (c *Config) ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
 	})
 	if c.FHIRToken == "" {
 		c.FHIRToken = getenv("DEADSPACE_FHIR_TOKEN")
+	}
+	if c.UI.OIDCClientSecret == "" {
+		c.UI.OIDCClientSecret = getenv("DEADSPACE_UI_OIDC_CLIENT_SECRET")
 	}
 	return errors.Join(errs...)
 }
@@ -232,6 +348,7 @@ func (c *Config) Validate() error {
 	if err := c.deriveConfig().ValidateAs(DeriveFlags); err != nil {
 		errs = append(errs, err)
 	}
+	errs = append(errs, c.UI.validate(c.TLSCert != "")...)
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":
 	default:

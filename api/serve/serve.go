@@ -22,6 +22,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/metrics"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
+	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
@@ -49,6 +50,7 @@ type Service struct {
 	// codeSystem is the project's CodeSystem resource, published once at
 	// start so consumers can resolve the derived codes.
 	codeSystem []byte
+	pages      *pages
 }
 
 // upstream tracks whether the FHIR server is answering, from every request
@@ -121,11 +123,12 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	search := table.SearchTokens()
+	opEvents := ui.NewOpEvents(0)
 	e, err := engine.New(engine.Config{
 		Store: s.store, Decoder: decode.New(decode.Options{Table: table, Units: u}), Encoder: enc,
 		Derive: dcfg, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
-		Hooks: s.Metrics.EngineHooks(), MaxTransactionEntries: cfg.MaxTxEntries,
+		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
 	})
 	if err != nil {
 		s.store.Close()
@@ -178,6 +181,17 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 			s.ln.Close()
 			s.store.Close()
 			return nil, fmt.Errorf("--grpc-listen: %w", err)
+		}
+	}
+	if cfg.UI.Listen != "" {
+		s.pages, err = s.newPages(opEvents)
+		if err != nil {
+			if s.grpcLn != nil {
+				s.grpcLn.Close()
+			}
+			s.ln.Close()
+			s.store.Close()
+			return nil, err
 		}
 	}
 	s.http = &http.Server{
@@ -291,8 +305,11 @@ func (s *Service) Run(ctx context.Context) error {
 		defer wg.Done()
 		_ = s.engine.Run(engineCtx)
 	}()
-	serveErr := make(chan error, 2)
+	serveErr := make(chan error, 3)
 	go func() { serveErr <- s.http.Serve(s.ln) }()
+	if s.pages != nil {
+		go func() { serveErr <- fmt.Errorf("pages: %w", s.pages.srv.Serve(s.pages.ln)) }()
+	}
 	grpcCtx, stopGRPC := context.WithCancel(context.WithoutCancel(ctx))
 	defer stopGRPC()
 	var grpcDone chan struct{}
@@ -313,7 +330,7 @@ func (s *Service) Run(ctx context.Context) error {
 			}
 		}()
 	}
-	s.log.InfoContext(ctx, "serving", "addr", s.Addr(), "grpc", s.GRPCAddr(), "tls", s.tls != nil, "standalone", s.engine.Standalone())
+	s.log.InfoContext(ctx, "serving", "addr", s.Addr(), "grpc", s.GRPCAddr(), "ui", s.UIAddr(), "tls", s.tls != nil, "standalone", s.engine.Standalone())
 
 	var err error
 	select {
@@ -324,6 +341,14 @@ func (s *Service) Run(ctx context.Context) error {
 	defer cancel()
 	if serr := s.http.Shutdown(shutdownCtx); serr != nil && err == nil {
 		err = serr
+	}
+	if s.pages != nil {
+		if serr := s.pages.srv.Shutdown(shutdownCtx); serr != nil && err == nil {
+			err = serr
+		}
+		if cerr := s.pages.access.Close(); cerr != nil && err == nil {
+			err = cerr
+		}
 	}
 	stopGRPC()
 	if grpcDone != nil {

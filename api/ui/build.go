@@ -1,0 +1,369 @@
+package ui
+
+// Builders shared by both adapters: they turn derive's results into the
+// view model, so a value reads the same on a live page and in a report.
+
+import (
+	"fmt"
+	"slices"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/units"
+)
+
+// valueInfo is how each derived value is labelled and rounded, in the
+// order the pages list them.
+var valueInfo = []struct {
+	code   derive.Code
+	label  string
+	digits int
+}{
+	{derive.CodeGradient, "PaCO2 − EtCO2", 1},
+	{derive.CodePhysiologic, "VD/VT (Enghoff)", 3},
+	{derive.CodeEstimatedFraction, "VD/VT estimated", 3},
+	{derive.CodeAlveolarFraction, "Alveolar VD/VT", 3},
+	{derive.CodeAirwayFraction, "Airway VD/VT", 3},
+	{derive.CodeDeadSpaceVolume, "VD", 0},
+	{derive.CodeAlveolarVent, "Alveolar ventilation", 2},
+	{derive.CodeVentilatoryRatio, "Ventilatory ratio", 2},
+	{derive.CodeMixedExpiredCO2, "Mixed-expired PCO2", 1},
+	{derive.CodeEtCO2Drop, "EtCO2 fall from baseline", 1},
+}
+
+// TableCodes are the values the timeline's table has a column for.
+var TableCodes = []derive.Code{
+	derive.CodeGradient, derive.CodePhysiologic, derive.CodeEstimatedFraction, derive.CodeAlveolarFraction,
+	derive.CodeDeadSpaceVolume, derive.CodeAlveolarVent, derive.CodeVentilatoryRatio,
+}
+
+func labelOf(c derive.Code) (string, int) {
+	for _, v := range valueInfo {
+		if v.code == c {
+			return v.label, v.digits
+		}
+	}
+	return string(c), 2
+}
+
+func codeOrder(c derive.Code) int {
+	for i, v := range valueInfo {
+		if v.code == c {
+			return i
+		}
+	}
+	return len(valueInfo)
+}
+
+// Label returns a value's label and the digits it is shown with.
+func Label(c derive.Code) string { l, _ := labelOf(c); return l }
+
+func flagText(f derive.Flag) string {
+	switch f {
+	case derive.FlagHigh:
+		return "H"
+	case derive.FlagLow:
+		return "L"
+	case derive.FlagNormal:
+		return "N"
+	}
+	return ""
+}
+
+// valueOf makes the view of one derived value.
+func valueOf(at time.Time, v derive.Value, status, explainID string) Value {
+	label, digits := labelOf(v.Code)
+	return Value{
+		Code: v.Code, Label: label, At: at, Value: v.Value, Unit: v.Unit, Digits: digits,
+		Flag: flagText(v.Flag), Estimate: v.Estimate, Status: status, ExplainID: explainID,
+	}
+}
+
+// findingOf makes the view of one fall finding.
+func findingOf(f derive.Fall, status, explainID string) Finding {
+	end := f.Confirmed
+	for _, r := range f.EpisodeReadings {
+		if r.At().After(end) {
+			end = r.At()
+		}
+	}
+	return Finding{
+		Onset: f.Onset, Confirmed: f.Confirmed, End: end, Baseline: f.Baseline, Level: f.Level,
+		Change: f.Change, Status: status, ExplainID: explainID,
+	}
+}
+
+// InputDetail is what the store or the export holds about one input
+// version beyond what pairing used.
+type InputDetail struct {
+	Available  bool
+	Original   decode.Original
+	Conversion units.Conversion
+}
+
+func inputOf(r derive.Reading, role string, d InputDetail) Input {
+	in := Input{
+		Role: role, Ref: r.Ref, Kind: r.Kind.String(), At: r.At(), Value: r.Value, Unit: r.Kind.Unit(),
+		Available: d.Available,
+	}
+	if d.Available {
+		in.OriginalValue = d.Original.Value
+		in.OriginalUnit = d.Original.Code
+		if in.OriginalUnit == "" {
+			in.OriginalUnit = d.Original.Unit
+		}
+		in.Conversion = d.Conversion.Text
+	}
+	return in
+}
+
+// Roles of an input in an explanation.
+const (
+	RoleBloodGas     = "blood gas"
+	RolePaired       = "paired"
+	RoleFallBaseline = "fall baseline"
+	RoleFallEpisode  = "fall episode"
+)
+
+// explainValue explains one value of a derivation. detail looks up what is
+// known of each input version; nearby are omissions of the patient's inputs
+// (for the left-out list), filtered here to the pairing window.
+func explainValue(patientID string, d *derive.Derivation, code derive.Code, id, status string, detail func(ref string) InputDetail, window time.Duration, nearby []OmittedInput) Explanation {
+	ex := Explanation{ID: id, PatientID: patientID, At: d.Gas.At(), Status: status}
+	i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == code })
+	sums := d.Used
+	if i >= 0 {
+		v := d.Values[i]
+		val := valueOf(d.Gas.At(), v, status, id)
+		ex.Value = &val
+		ex.Title = fmt.Sprintf("%s at %s", val.Label, d.Gas.At().Format("2006-01-02 15:04 MST"))
+		ex.Equation = v.Equation
+		ex.Terms = v.Terms
+		ex.Notes = append(ex.Notes, v.Notes...)
+		if v.Range != nil {
+			ex.Range = rangeText(*v.Range)
+		}
+		sums = nil
+		for _, s := range d.Used {
+			if slices.Contains(v.Inputs, s.Kind) {
+				sums = append(sums, s)
+			}
+		}
+		if v.UsesPatient {
+			ex.Patient = patientText(d.Patient)
+		}
+	} else {
+		ex.Title = fmt.Sprintf("%s at %s", Label(code), d.Gas.At().Format("2006-01-02 15:04 MST"))
+		ex.Notes = append(ex.Notes, fmt.Sprintf("the recorded derivation has no value %q; its inputs are listed whole", code))
+	}
+	ex.Inputs = append(ex.Inputs, inputOf(d.Gas, RoleBloodGas, detail(d.Gas.Ref)))
+	seen := map[string]bool{d.Gas.Ref: true}
+	for _, s := range sums {
+		p := Pairing{Kind: s.Kind.String(), Median: s.Median, Unit: s.Kind.Unit(), Rule: s.Rule}
+		for _, r := range s.Readings {
+			p.Refs = append(p.Refs, r.Ref)
+			if !seen[r.Ref] {
+				seen[r.Ref] = true
+				ex.Inputs = append(ex.Inputs, inputOf(r, RolePaired, detail(r.Ref)))
+			}
+		}
+		ex.Pairings = append(ex.Pairings, p)
+	}
+	for _, o := range d.Omitted {
+		ex.NotEmitted = append(ex.NotEmitted, Omission{What: Label(o.Code), Reason: o.Reason, Detail: o.Detail})
+	}
+	for _, o := range nearby {
+		if o.At.IsZero() || absDuration(o.At.Sub(d.Gas.At())) > window {
+			continue
+		}
+		ex.LeftOut = append(ex.LeftOut, Omission{What: o.Ref + " (" + o.Kind + ", " + o.At.Format("15:04") + ")", Reason: o.Reason, Detail: o.Detail})
+	}
+	return ex
+}
+
+// OmittedInput is an input left out, placed in time.
+type OmittedInput struct {
+	Ref    string
+	Kind   string
+	At     time.Time
+	Reason derive.Reason
+	Detail string
+}
+
+func absDuration(d time.Duration) time.Duration {
+	if d < 0 {
+		return -d
+	}
+	return d
+}
+
+// explainFall explains one fall finding.
+func explainFall(patientID string, f derive.Fall, id, status string, detail func(ref string) InputDetail) Explanation {
+	fd := findingOf(f, status, id)
+	ex := Explanation{
+		ID: id, PatientID: patientID, At: f.Onset, Status: status, Fall: &fd,
+		Title:    fmt.Sprintf("EtCO2 fall from %s", f.Onset.Format("2006-01-02 15:04 MST")),
+		Equation: "change = median of the episode's readings − median of the baseline readings",
+		Terms: []derive.Term{
+			{Name: "baseline", Value: f.Baseline, Unit: "mm[Hg]"},
+			{Name: "level", Value: f.Level, Unit: "mm[Hg]"},
+			{Name: "change", Value: f.Change, Unit: "mm[Hg]"},
+		},
+		Notes: append([]string(nil), f.Notes...),
+	}
+	for _, r := range f.BaselineReadings {
+		ex.Inputs = append(ex.Inputs, inputOf(r, RoleFallBaseline, detail(r.Ref)))
+	}
+	for _, r := range f.EpisodeReadings {
+		ex.Inputs = append(ex.Inputs, inputOf(r, RoleFallEpisode, detail(r.Ref)))
+	}
+	return ex
+}
+
+func rangeText(r derive.Range) string {
+	var parts []string
+	switch {
+	case r.Low != nil && r.High != nil:
+		parts = append(parts, fmt.Sprintf("%s to %s", num(*r.Low), num(*r.High)))
+	case r.Low != nil:
+		parts = append(parts, "at least "+num(*r.Low))
+	case r.High != nil:
+		parts = append(parts, "up to "+num(*r.High))
+	}
+	if r.Text != "" {
+		parts = append(parts, r.Text)
+	}
+	if r.Source != "" {
+		parts = append(parts, "source: "+r.Source)
+	}
+	return strings.Join(parts, "; ")
+}
+
+func num(f float64) string { return strconv.FormatFloat(f, 'g', -1, 64) }
+
+func patientText(p derive.Patient) string {
+	var parts []string
+	switch p.Sex {
+	case derive.SexMale:
+		parts = append(parts, "sex male")
+	case derive.SexFemale:
+		parts = append(parts, "sex female")
+	default:
+		parts = append(parts, "sex unknown")
+	}
+	if !p.BirthDate.IsZero() {
+		parts = append(parts, "born "+p.BirthDate.Format("2006-01-02"))
+	}
+	if p.Ref != "" {
+		parts = append(parts, "from "+p.Ref)
+	}
+	return strings.Join(parts, ", ")
+}
+
+// countReasons counts omissions by reason in derive's vocabulary order.
+func countReasons(rs []derive.Reason) []ReasonCount {
+	counts := make(map[derive.Reason]int)
+	for _, r := range rs {
+		counts[r]++
+	}
+	var out []ReasonCount
+	for _, r := range derive.AllReasons() {
+		if counts[r] > 0 {
+			out = append(out, ReasonCount{r, counts[r]})
+			delete(counts, r)
+		}
+	}
+	var rest []derive.Reason
+	for r := range counts {
+		rest = append(rest, r)
+	}
+	slices.Sort(rest)
+	for _, r := range rest {
+		out = append(out, ReasonCount{r, counts[r]})
+	}
+	return out
+}
+
+// PatientID strips "Patient/" from a subject reference.
+func PatientID(subject string) string { return strings.TrimPrefix(subject, "Patient/") }
+
+// sortValues orders values by time, then display order.
+func sortValues(vs []Value) {
+	slices.SortStableFunc(vs, func(a, b Value) int {
+		if c := a.At.Compare(b.At); c != 0 {
+			return c
+		}
+		return codeOrder(a.Code) - codeOrder(b.Code)
+	})
+}
+
+// rowsOf groups a timeline's values by blood gas time for the table.
+func rowsOf(t *Timeline, etco2Median map[time.Time]float64) {
+	byTime := make(map[time.Time]*Row)
+	var times []time.Time
+	for _, v := range t.Values {
+		if v.Code == derive.CodeEtCO2Drop {
+			continue
+		}
+		r, ok := byTime[v.At]
+		if !ok {
+			r = &Row{At: v.At, Values: make(map[derive.Code]Value), EtCO2: etco2Median[v.At]}
+			byTime[v.At] = r
+			times = append(times, v.At)
+		}
+		// A current value wins over a superseded or withdrawn one of the
+		// same code at the same time; the plot shows them all.
+		if old, ok := r.Values[v.Code]; !ok || old.Status == StatusSuperseded || old.Status == StatusWithdrawn {
+			r.Values[v.Code] = v
+		}
+	}
+	for i := range t.PaCO2 {
+		p := &t.PaCO2[i]
+		if p.Status != StatusFinal {
+			continue
+		}
+		if r, ok := byTime[p.At]; ok {
+			r.PaCO2 = p
+		} else {
+			byTime[p.At] = &Row{At: p.At, PaCO2: p, Values: map[derive.Code]Value{}}
+			times = append(times, p.At)
+		}
+	}
+	slices.SortFunc(times, time.Time.Compare)
+	for _, at := range times {
+		t.Rows = append(t.Rows, *byTime[at])
+	}
+}
+
+// span sets a timeline's time range from everything on it.
+func span(t *Timeline) {
+	var from, to time.Time
+	see := func(at time.Time) {
+		if at.IsZero() {
+			return
+		}
+		if from.IsZero() || at.Before(from) {
+			from = at
+		}
+		if to.IsZero() || at.After(to) {
+			to = at
+		}
+	}
+	for _, p := range t.EtCO2 {
+		see(p.At)
+	}
+	for _, p := range t.PaCO2 {
+		see(p.At)
+	}
+	for _, v := range t.Values {
+		see(v.At)
+	}
+	for _, f := range t.Findings {
+		see(f.Onset)
+		see(f.End)
+	}
+	t.From, t.To = from, to
+}

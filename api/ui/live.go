@@ -1,0 +1,458 @@
+package ui
+
+// The adapter over the live engine, for `deadspace serve --ui-listen`. It
+// reads only through the engine's public query methods and the store's
+// outbox statistics, so the pages do not depend on how the engine
+// evaluates.
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"regexp"
+	"slices"
+	"sync"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// Outbox is the part of the store the operations page reads.
+type Outbox interface {
+	Stats(ctx context.Context) (store.Stats, error)
+	DeadLetters(ctx context.Context, limit int) ([]store.DeadLetter, error)
+	DueWrites(ctx context.Context, now time.Time, limit int) ([]store.Write, error)
+}
+
+// LiveConfig configures a [Live] source.
+type LiveConfig struct {
+	Engine *engine.Engine
+	Outbox Outbox
+	// Window is the pairing window, for the readings left out near a gas.
+	Window time.Duration
+	// Server reports the FHIR server's state: when it last answered and
+	// since when it has been failing (zero when it is not).
+	Server func() (lastOK, failedSince time.Time)
+	Events *OpEvents
+}
+
+// Live reads the running service.
+type Live struct {
+	cfg LiveConfig
+
+	mu       sync.Mutex
+	lastSeq  uint64
+	subjects map[string]bool
+}
+
+// NewLive returns the live source.
+func NewLive(cfg LiveConfig) *Live {
+	if cfg.Events == nil {
+		cfg.Events = NewOpEvents(0)
+	}
+	return &Live{cfg: cfg, subjects: make(map[string]bool)}
+}
+
+// maxLedger bounds how many of a patient's ledger entries one page reads.
+const maxLedger = 5000
+
+// knownSubjects follows the derivation feed for patients seen since the
+// last call, so the overview does not rescan the feed.
+func (l *Live) knownSubjects(ctx context.Context) ([]string, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	for {
+		evs, err := l.cfg.Engine.Events(ctx, l.lastSeq, 1000)
+		if err != nil {
+			return nil, err
+		}
+		for _, ev := range evs {
+			l.subjects[ev.Subject] = true
+			l.lastSeq = ev.Seq
+		}
+		if len(evs) < 1000 {
+			break
+		}
+	}
+	out := make([]string, 0, len(l.subjects))
+	for s := range l.subjects {
+		out = append(out, s)
+	}
+	slices.Sort(out)
+	return out, nil
+}
+
+// patient is what the pages read of one patient.
+type patient struct {
+	records  []engine.Record
+	readings []engine.StoredReading
+}
+
+func (l *Live) read(ctx context.Context, subject string) (patient, error) {
+	recs, err := l.cfg.Engine.Derivations(ctx, subject, time.Time{}, time.Unix(1<<40, 0), "", maxLedger)
+	if err != nil {
+		return patient{}, err
+	}
+	rs, err := l.cfg.Engine.StoredReadings(ctx, subject)
+	if err != nil && !errors.Is(err, store.ErrNotFound) {
+		return patient{}, err
+	}
+	return patient{records: recs, readings: rs}, nil
+}
+
+func statusOf(s string) string {
+	switch s {
+	case "entered-in-error":
+		return StatusWithdrawn
+	case "amended":
+		return StatusAmended
+	}
+	return StatusFinal
+}
+
+// timeline builds a patient's timeline from the ledger and the stored
+// readings.
+func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
+	tl := Timeline{ID: id}
+	etco2Median := make(map[time.Time]float64)
+	gasExplain := make(map[string]string)
+	for _, rec := range p.records {
+		status := statusOf(rec.Status)
+		switch {
+		case rec.Payload.Fall != nil:
+			f := findingOf(*rec.Payload.Fall, status, rec.Key)
+			tl.Findings = append(tl.Findings, f)
+		case rec.Payload.Derivation != nil:
+			d := rec.Payload.Derivation
+			i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == rec.Code })
+			if i < 0 {
+				continue
+			}
+			v := valueOf(d.Gas.At(), d.Values[i], status, rec.Key)
+			v.Why = rec.Payload.Why
+			tl.Values = append(tl.Values, v)
+			for _, u := range d.Used {
+				if u.Kind == derive.KindEtCO2 {
+					etco2Median[d.Gas.At()] = u.Median
+				}
+			}
+			if _, ok := gasExplain[d.Gas.Ref]; !ok || rec.Code == derive.CodeGradient {
+				gasExplain[d.Gas.Ref] = rec.Key
+			}
+			tl.Values = append(tl.Values, l.earlier(ctx, rec)...)
+		}
+	}
+	for _, sr := range p.readings {
+		r := sr.Reading
+		if r.Ref == "" || r.AtMillis == 0 {
+			continue
+		}
+		pt := Point{At: r.At(), Value: r.Value, Ref: r.Ref, Status: StatusFinal}
+		if !sr.Usable {
+			pt.Status, pt.Why = StatusWithdrawn, "withdrawn or not usable at its source"
+		}
+		switch r.Kind {
+		case derive.KindEtCO2:
+			tl.EtCO2 = append(tl.EtCO2, pt)
+		case derive.KindPaCO2:
+			pt.ExplainID = gasExplain[r.Ref]
+			tl.PaCO2 = append(tl.PaCO2, pt)
+		}
+	}
+	sortValues(tl.Values)
+	sortPoints(tl.EtCO2)
+	sortPoints(tl.PaCO2)
+	span(&tl)
+	rowsOf(&tl, etco2Median)
+	return tl
+}
+
+// earlier returns the superseded versions of a value that the engine can
+// still explain. An engine that keeps only the current version answers an
+// earlier key with the current entry; those are listed in the history of
+// the explanation, not plotted.
+func (l *Live) earlier(ctx context.Context, rec engine.Record) []Value {
+	var out []Value
+	for _, key := range rec.Revisions {
+		old, err := l.cfg.Engine.Derivation(ctx, key)
+		if err != nil || old.Key != key || old.Payload.Derivation == nil {
+			continue
+		}
+		d := old.Payload.Derivation
+		i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == old.Code })
+		if i < 0 {
+			continue
+		}
+		v := valueOf(d.Gas.At(), d.Values[i], StatusSuperseded, key)
+		v.ReplacedBy = rec.Key
+		v.Why = "an input it was derived from was corrected"
+		out = append(out, v)
+	}
+	return out
+}
+
+// Timeline implements Source.
+func (l *Live) Timeline(ctx context.Context, id string) (Timeline, error) {
+	subject := "Patient/" + id
+	p, err := l.read(ctx, subject)
+	if err != nil {
+		return Timeline{}, fmt.Errorf("ui: timeline: %w", err)
+	}
+	if len(p.records) == 0 && len(p.readings) == 0 {
+		return Timeline{}, ErrNotFound
+	}
+	tl := l.timeline(ctx, id, p)
+	if len(p.records) >= maxLedger {
+		tl.Notes = append(tl.Notes, fmt.Sprintf("only the first %d derived values are shown", maxLedger))
+	}
+	return tl, nil
+}
+
+// Overview implements Source.
+func (l *Live) Overview(ctx context.Context) (Overview, error) {
+	subjects, err := l.knownSubjects(ctx)
+	if err != nil {
+		return Overview{}, fmt.Errorf("ui: overview: %w", err)
+	}
+	pending := map[string]int{}
+	standalone := l.cfg.Engine.Standalone()
+	if !standalone && l.cfg.Outbox != nil {
+		ws, err := l.cfg.Outbox.DueWrites(ctx, time.Unix(1<<40, 0), 100000)
+		if err != nil {
+			return Overview{}, fmt.Errorf("ui: overview: %w", err)
+		}
+		for _, w := range ws {
+			pending[w.Subject]++
+		}
+	}
+	o := Overview{Source: "the live store"}
+	var unitNotEmitted, unitLeftOut []derive.Reason
+	for _, s := range subjects {
+		p, err := l.read(ctx, s)
+		if err != nil {
+			return Overview{}, fmt.Errorf("ui: overview: %w", err)
+		}
+		id := PatientID(s)
+		tl := l.timeline(ctx, id, p)
+		row := PatientRow{ID: id, PendingWrites: -1}
+		if !standalone {
+			row.PendingWrites = pending[s]
+		}
+		var latest []Value
+		for _, v := range tl.Values {
+			if v.Status == StatusSuperseded || v.Status == StatusWithdrawn || v.Code == derive.CodeEtCO2Drop {
+				continue
+			}
+			if v.At.After(row.LatestGas) {
+				row.LatestGas, latest = v.At, nil
+			}
+			if v.At.Equal(row.LatestGas) {
+				latest = append(latest, v)
+			}
+		}
+		row.Latest = overviewValues(latest)
+		row.Findings = activeFindings(tl.Findings, latestTime(&tl))
+		// The ledger keeps each blood gas's values not emitted; inputs
+		// that paired with nothing are the stored readings no value cites.
+		cited := make(map[string]bool)
+		seenGas := make(map[string]bool)
+		for _, rec := range p.records {
+			if d := rec.Payload.Derivation; d != nil {
+				cited[d.Gas.Ref] = true
+				for _, u := range d.Used {
+					for _, r := range u.Readings {
+						cited[r.Ref] = true
+					}
+				}
+				if !seenGas[d.Gas.Ref] {
+					seenGas[d.Gas.Ref] = true
+					for _, om := range d.Omitted {
+						unitNotEmitted = append(unitNotEmitted, om.Reason)
+					}
+				}
+			}
+			if f := rec.Payload.Fall; f != nil {
+				for _, r := range append(append([]derive.Reading(nil), f.BaselineReadings...), f.EpisodeReadings...) {
+					cited[r.Ref] = true
+				}
+			}
+		}
+		var leftOut []derive.Reason
+		for _, sr := range p.readings {
+			switch {
+			case !sr.Usable:
+				leftOut = append(leftOut, derive.ReasonEnteredInError)
+			case !cited[sr.Reading.Ref] && sr.Reading.Kind != derive.KindPaCO2 && sr.Reading.Kind != derive.KindHeight:
+				leftOut = append(leftOut, derive.ReasonUnpaired)
+			}
+		}
+		row.LeftOut = countReasons(leftOut)
+		unitLeftOut = append(unitLeftOut, leftOut...)
+		o.Patients = append(o.Patients, row)
+	}
+	o.LeftOut = countReasons(unitLeftOut)
+	o.NotEmitted = countReasons(unitNotEmitted)
+	return o, nil
+}
+
+// Explain implements Source.
+func (l *Live) Explain(ctx context.Context, id string) (Explanation, error) {
+	rec, err := l.cfg.Engine.Derivation(ctx, id)
+	if errors.Is(err, store.ErrNotFound) {
+		return Explanation{}, ErrNotFound
+	}
+	if err != nil {
+		return Explanation{}, fmt.Errorf("ui: explain: %w", err)
+	}
+	if rec.Key != id && rec.Series != id {
+		// The engine answered an earlier key with the value that replaced
+		// it and keeps no explanation of the earlier version.
+		return Explanation{
+			ID: id, PatientID: PatientID(rec.Subject), Title: "An earlier version of a value",
+			Status: StatusSuperseded, ReplacedBy: rec.Key, Why: "an input it was derived from was corrected",
+			Notes:   []string{"this service keeps the explanation of the current version only"},
+			History: history(rec),
+		}, nil
+	}
+	ex, err := l.cfg.Engine.Explain(ctx, rec)
+	if err != nil {
+		return Explanation{}, fmt.Errorf("ui: explain: %w", err)
+	}
+	details := make(map[string]InputDetail, len(ex.Inputs))
+	for _, in := range ex.Inputs {
+		details[in.Reading.Ref] = InputDetail{Available: in.Available, Original: in.Original, Conversion: in.Conversion}
+	}
+	lookup := func(ref string) InputDetail { return details[ref] }
+	status := statusOf(rec.Status)
+	var out Explanation
+	id = rec.Key
+	switch {
+	case ex.Fall != nil:
+		out = explainFall(PatientID(rec.Subject), *ex.Fall, id, status, lookup)
+	case ex.Derivation != nil:
+		var nearby []OmittedInput
+		if rs, err := l.cfg.Engine.StoredReadings(ctx, rec.Subject); err == nil {
+			for _, sr := range rs {
+				if !sr.Usable && sr.Reading.Ref != "" {
+					nearby = append(nearby, OmittedInput{Ref: sr.Reading.Ref, Kind: sr.Reading.Kind.String(), At: atOf(sr.Reading), Reason: derive.ReasonEnteredInError, Detail: "withdrawn or not usable at its source"})
+				}
+			}
+		}
+		out = explainValue(PatientID(rec.Subject), ex.Derivation, rec.Code, id, status, lookup, l.cfg.Window, nearby)
+	default:
+		return Explanation{}, ErrNotFound
+	}
+	out.Series = rec.Series
+	out.AlgorithmVersion = ex.AlgorithmVersion
+	out.Notes = append(out.Notes, ex.Notes...)
+	out.History = history(rec)
+	if status == StatusWithdrawn {
+		out.Why = rec.Payload.Why
+	}
+	return out, nil
+}
+
+func history(rec engine.Record) []Revision {
+	out := make([]Revision, 0, len(rec.Revisions)+1)
+	for _, k := range rec.Revisions {
+		out = append(out, Revision{ID: k})
+	}
+	return append(out, Revision{ID: rec.Key, Current: true})
+}
+
+// Operations implements Source.
+func (l *Live) Operations(ctx context.Context) (Operations, error) {
+	op := Operations{Standalone: l.cfg.Engine.Standalone(), Events: l.cfg.Events.List()}
+	h, err := l.cfg.Engine.Health(ctx)
+	if err != nil {
+		return Operations{}, fmt.Errorf("ui: operations: %w", err)
+	}
+	t := now()
+	op.OutboxDepth, op.OldestWrite, op.DeadCount, op.Pending = h.Stats.OutboxDepth, h.Stats.OldestWrite, h.Stats.DeadLetters, h.Stats.DirtyPatients
+	if !op.OldestWrite.IsZero() {
+		op.OutboxAge = t.Sub(op.OldestWrite).Round(time.Second)
+	}
+	switch {
+	case op.Standalone:
+		op.ServerState = "standalone: no FHIR server is configured; results stay in the store"
+	case l.cfg.Server != nil:
+		lastOK, failing := l.cfg.Server()
+		op.ServerOK = lastOK
+		switch {
+		case !failing.IsZero():
+			op.ServerState = "failing"
+			op.FailingFor = t.Sub(failing).Round(time.Second)
+		case lastOK.IsZero():
+			op.ServerState = "not answered yet"
+		default:
+			op.ServerState = "answering"
+		}
+	}
+	if l.cfg.Outbox != nil {
+		dls, err := l.cfg.Outbox.DeadLetters(ctx, 200)
+		if err != nil {
+			return Operations{}, fmt.Errorf("ui: operations: %w", err)
+		}
+		for _, d := range dls {
+			op.DeadLetters = append(op.DeadLetters, DeadLetter{
+				At: d.At, Attempts: d.Attempts, Reason: Redact(d.Reason), Answer: Redact(d.LastError), Values: len(d.Series),
+			})
+		}
+	}
+	return op, nil
+}
+
+// identifierPatterns match what may identify a patient or a resource in a
+// server's answer: references, ids in URLs, derivation identifiers.
+var identifierPatterns = []*regexp.Regexp{
+	regexp.MustCompile(`\b[A-Z][A-Za-z]+/[A-Za-z0-9\-.]{1,64}(/_history/[A-Za-z0-9\-.]{1,64})?`),
+	regexp.MustCompile(`sha256:[0-9a-f]{8,64}`),
+	regexp.MustCompile(`"(id|reference|value|subject|patient)"\s*:\s*"[^"]*"`),
+	regexp.MustCompile(`[?&][A-Za-z_\-:.]+=[^&\s"]+`),
+}
+
+// Redact replaces what may identify a patient or resource with "[redacted]".
+func Redact(s string) string {
+	for _, re := range identifierPatterns {
+		s = re.ReplaceAllString(s, "[redacted]")
+	}
+	return s
+}
+
+// OpEvents keeps the latest gaps and catch-ups, for the operations page.
+type OpEvents struct {
+	mu  sync.Mutex
+	max int
+	evs []OpEvent
+}
+
+// NewOpEvents keeps at most max events (100 when max <= 0).
+func NewOpEvents(max int) *OpEvents {
+	if max <= 0 {
+		max = 100
+	}
+	return &OpEvents{max: max}
+}
+
+// Add records an event now.
+func (o *OpEvents) Add(what string) {
+	o.mu.Lock()
+	defer o.mu.Unlock()
+	o.evs = append(o.evs, OpEvent{At: now().UTC(), What: what})
+	if len(o.evs) > o.max {
+		o.evs = o.evs[len(o.evs)-o.max:]
+	}
+}
+
+// List returns the events, newest first.
+func (o *OpEvents) List() []OpEvent {
+	o.mu.Lock()
+	defer o.mu.Unlock()
+	out := make([]OpEvent, len(o.evs))
+	for i, e := range o.evs {
+		out[len(o.evs)-1-i] = e
+	}
+	return out
+}
