@@ -9,6 +9,7 @@
 //	deadspace serve [flags]            the live service
 //	deadspace backfill [flags] [FILE...] derive history (a Bulk Data export
 //	                                   or NDJSON files) and write it back
+//	deadspace submit [flags] FILE...   send NDJSON files to a running serve
 //	deadspace version                  print the version (also --version)
 //
 // Run "deadspace replay -h", "deadspace serve -h" or "deadspace backfill -h"
@@ -30,6 +31,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/backfill"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/submit"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
@@ -69,6 +71,7 @@ Commands:
   backfill [flags] [FILE...]
                            derive history (a Bulk Data export or NDJSON files)
                            and write it back to the FHIR server
+  submit [flags] FILE...   send NDJSON files to a running serve over gRPC
   version                  print the version and the algorithm version
 
 Run "deadspace COMMAND -h" for a command's flags; "deadspace --version" also
@@ -87,6 +90,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runServe(ctx, args[1:], os.Getenv, stderr)
 	case "backfill":
 		return runBackfill(ctx, args[1:], os.Getenv, stderr)
+	case "submit":
+		return runSubmit(ctx, args[1:], stdout, stderr)
 	case "version", "-version", "--version":
 		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
 		return exitOK
@@ -439,4 +444,44 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 func isTerminal(f *os.File) bool {
 	fi, err := f.Stat()
 	return err == nil && fi.Mode()&os.ModeCharDevice != 0
+}
+
+func runSubmit(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	fs := flag.NewFlagSet("submit", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: deadspace submit [flags] FILE...\n\nSends NDJSON files of FHIR R4 resources to a running deadspace serve over gRPC\n(the Submit call), in chunks, with progress on stderr, and reports what was\naccepted and why anything was not. Exit status 3 means some lines were not accepted.\n\nFlags:")
+		fs.PrintDefaults()
+	}
+	var opts submit.Options
+	fs.StringVar(&opts.Addr, "addr", "127.0.0.1:9090", "gRPC address of the running service (its --grpc-listen)")
+	fs.StringVar(&opts.CAFile, "ca", "", "PEM CA bundle that signed the service's certificate (TLS); without it, plaintext")
+	fs.StringVar(&opts.CertFile, "cert", "", "PEM client certificate, for a service with --grpc-client-ca")
+	fs.StringVar(&opts.KeyFile, "key", "", "PEM private key of --cert")
+	fs.IntVar(&opts.ChunkBytes, "chunk-bytes", submit.DefaultChunkBytes, "NDJSON bytes sent per call")
+	quiet := fs.Bool("quiet", false, "no progress lines")
+	files, err := parseInterspersed(fs, args)
+	if err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		return exitUsage
+	}
+	if len(files) == 0 {
+		fmt.Fprintln(stderr, "deadspace submit: no input files")
+		return exitUsage
+	}
+	if !*quiet {
+		opts.Progress = stderr
+	}
+	sum, err := submit.Run(ctx, opts, files)
+	submit.WriteSummary(stdout, sum)
+	switch {
+	case errors.Is(err, submit.ErrNotAllAccepted):
+		return exitSkipped
+	case err != nil:
+		fmt.Fprintf(stderr, "deadspace submit: %v\n", err)
+		return exitFailed
+	}
+	return exitOK
 }

@@ -1,0 +1,371 @@
+package serve_test
+
+// The auditor's pages end to end: a real service over TLS, the demo night
+// loaded with `deadspace submit`'s code, sign-in through a local OpenID
+// Connect provider (mockoidc, started here), and a real headless Chromium
+// driven over the DevTools protocol.
+
+import (
+	"bufio"
+	"context"
+	"crypto/tls"
+	"crypto/x509"
+	"encoding/json"
+	"flag"
+	"net"
+	"net/http"
+	"os"
+	"path/filepath"
+	"slices"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/chromedp/chromedp"
+	"github.com/oauth2-proxy/mockoidc"
+
+	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/submit"
+	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
+	"github.com/deadspace-fhir/deadspace/api/ui"
+	"github.com/deadspace-fhir/deadspace/api/ui/browsertest"
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+var updateScreens = flag.Bool("update-screenshots", false, "rewrite testdata/screenshots from the browser test")
+
+const allowedGroup = "icu-audit"
+
+// freePort returns a loopback address nothing listens on, for a listener
+// whose URL must be known before it starts (the OpenID redirect URL).
+func freePort(t *testing.T) string {
+	t.Helper()
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	addr := ln.Addr().String()
+	ln.Close()
+	return addr
+}
+
+type pagesEnv struct {
+	svc     *service
+	base    string
+	oidc    *mockoidc.MockOIDC
+	access  string
+	client  *http.Client
+	caFile  string
+	dataDir string
+}
+
+// startPages runs a standalone service with the pages signed in through a
+// local OpenID provider, and loads the demo night into it with submit.
+func startPages(t *testing.T) *pagesEnv {
+	t.Helper()
+	m, err := mockoidc.Run()
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = m.Shutdown() })
+	ca := tlstest.NewCA(t)
+	kp := ca.Server(t, "127.0.0.1", "localhost")
+	dir := t.TempDir()
+	uiAddr := freePort(t)
+	cfg := testConfig("", dir)
+	cfg.Retention = 87600 * time.Hour // the demo night is from March 2026
+	cfg.TLSCert, cfg.TLSKey = kp.CertFile, kp.KeyFile
+	cfg.UI = serve.UIConfig{
+		Listen: uiAddr, OIDCIssuer: m.Issuer(), OIDCClientID: m.ClientID, OIDCClientSecret: m.ClientSecret,
+		OIDCRedirectURL: "https://" + uiAddr + "/signin/callback", OIDCScopes: "openid profile groups",
+		OIDCClaim: "groups", OIDCAllowed: allowedGroup + ",icu-consultants", OIDCUserClaim: "preferred_username",
+		SessionTTL: time.Hour, AccessLog: filepath.Join(dir, "access.log"),
+	}
+	if err := cfg.Validate(); err != nil {
+		t.Fatal(err)
+	}
+	s := start(t, cfg)
+	// Patients first, so every value is derived knowing the patient's
+	// facts, as the README's submit command orders them.
+	files := []string{"../../testdata/demo/Patient.ndjson", "../../testdata/demo/Encounter.ndjson",
+		"../../testdata/demo/Observation.bloodgas.ndjson", "../../testdata/demo/Observation.devices.ndjson"}
+	sum, err := submit.Run(context.Background(), submit.Options{Addr: s.svc.GRPCAddr(), CAFile: ca.CertFile, ChunkBytes: 512 << 10}, files)
+	// The demo holds one venous and one preliminary blood gas, which the
+	// service must refuse with their reasons.
+	if err == nil || len(sum.Problems) != 2 || sum.Accepted < 9000 {
+		t.Fatalf("submit: %v, summary %+v", err, sum)
+	}
+	if err := s.svc.Engine().EvaluateNow(context.Background()); err != nil {
+		t.Fatal(err)
+	}
+	pool := x509.NewCertPool()
+	pool.AddCert(ca.Cert)
+	client := &http.Client{
+		Transport:     &http.Transport{TLSClientConfig: &tls.Config{RootCAs: pool, MinVersion: tls.VersionTLS12}},
+		CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse },
+	}
+	return &pagesEnv{svc: s, base: "https://" + uiAddr, oidc: m, access: cfg.UI.AccessLog, client: client, caFile: ca.CertFile, dataDir: dir}
+}
+
+func (e *pagesEnv) queueUser(groups ...string) {
+	e.oidc.QueueUser(&mockoidc.MockUser{
+		Subject: "u-1", Email: "auditor@hospital.example", PreferredUsername: "a.auditor", Groups: groups, EmailVerified: true,
+	})
+}
+
+func saveScreenshot(t *testing.T, name string, png []byte) {
+	t.Helper()
+	dir := t.TempDir()
+	if *updateScreens {
+		dir = "../../testdata/screenshots"
+	}
+	browsertest.Save(t, dir, name, png)
+}
+
+func TestPagesInBrowser(t *testing.T) {
+	env := startPages(t)
+	ctx := browsertest.New(t, true)
+
+	// Sign in: the overview sends the browser to the provider and back.
+	env.queueUser(allowedGroup)
+	if err := chromedp.Do(ctx, chromedp.Navigate(env.base+"/")); err != nil {
+		t.Fatal(err)
+	}
+	// The redirects through the provider end on the overview; load it
+	// afresh there, as a query that spans the redirects can miss it.
+	for deadline := time.Now().Add(30 * time.Second); time.Now().Before(deadline); time.Sleep(100 * time.Millisecond) {
+		if loc, _ := chromedp.Run(ctx, chromedp.Location()); loc == env.base+"/" {
+			break
+		}
+	}
+	if err := chromedp.Do(ctx, chromedp.Navigate(env.base+"/")); err != nil {
+		t.Fatal(err)
+	}
+	if err := waitVisible(ctx, `main table`); err != nil {
+		loc, _ := chromedp.Run(ctx, chromedp.Location())
+		body, _ := chromedp.Run(ctx, chromedp.Evaluate[string](`document.body ? document.body.innerText : ""`))
+		t.Fatalf("sign-in did not reach the overview: %v; the browser is at %s showing %q", err, loc, body)
+	}
+	loc, _ := chromedp.Run(ctx, chromedp.Location())
+	if loc != env.base+"/" {
+		t.Fatalf("after sign-in the browser is at %s, want the overview", loc)
+	}
+	overview, err := chromedp.Run(ctx, chromedp.Text(chromedp.CSS(`main`)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range []string{"bed1-stable", "bed5-fall", "no-blood-gas-nearby", "-14.0 mm[Hg] from 03:10", "signed in as a.auditor"} {
+		if !strings.Contains(overview+mustText(t, ctx, "header"), want) {
+			t.Errorf("overview lacks %q", want)
+		}
+	}
+
+	// The timeline of the patient with the fall.
+	if err := chromedp.Do(ctx, chromedp.Click(chromedp.CSS(`a[href="/patient/bed5-fall"]`)), chromedp.WaitReady(chromedp.CSS(`svg.plot`))); err != nil {
+		t.Fatal(err)
+	}
+	shot, err := chromedp.Run(ctx, chromedp.Screenshot(chromedp.CSS(`main`)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	saveScreenshot(t, "timeline.png", shot)
+	n, err := chromedp.Run(ctx, chromedp.Evaluate[int](`document.querySelectorAll("svg.plot rect.fall").length`))
+	if err != nil || n != 1 {
+		t.Errorf("fall bands on the plot: %d (%v), want 1", n, err)
+	}
+
+	// Follow the 03:30 gradient to its explanation.
+	if err := chromedp.Do(ctx, chromedp.Click(chromedp.CSS(`table tbody tr:last-child td:nth-of-type(3) a`)), chromedp.WaitVisible(chromedp.CSS(`table.inputs`))); err != nil {
+		t.Fatal(err)
+	}
+	loc, _ = chromedp.Run(ctx, chromedp.Location())
+	id, ok := strings.CutPrefix(loc, env.base+"/explain/")
+	if !ok {
+		t.Fatalf("the value led to %s, not an explanation", loc)
+	}
+	shownRefs, err := chromedp.Run(ctx, chromedp.Evaluate[[]string](`[...document.querySelectorAll("table.inputs tbody tr td:nth-of-type(3)")].map(td => td.textContent.trim())`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	shownValues, err := chromedp.Run(ctx, chromedp.Evaluate[[]string](`[...document.querySelectorAll("table.inputs tbody tr td:nth-of-type(5)")].map(td => td.textContent.trim())`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	shot, err = chromedp.Run(ctx, chromedp.Screenshot(chromedp.CSS(`main`)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	saveScreenshot(t, "explanation.png", shot)
+
+	// The inputs shown are exactly those the stored derivation cites for
+	// this value, with the values it used.
+	rec, err := env.svc.svc.Engine().Derivation(context.Background(), id)
+	if err != nil {
+		t.Fatal(err)
+	}
+	d := rec.Payload.Derivation
+	if d == nil || rec.Code != derive.CodeGradient || d.Gas.At().Format("15:04") != "03:30" {
+		t.Fatalf("the explanation is of %s %+v, want the 03:30 gradient", rec.Code, d)
+	}
+	want := map[string]float64{d.Gas.Ref: d.Gas.Value}
+	i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == rec.Code })
+	for _, s := range d.Used {
+		if slices.Contains(d.Values[i].Inputs, s.Kind) {
+			for _, r := range s.Readings {
+				want[r.Ref] = r.Value
+			}
+		}
+	}
+	if len(shownRefs) != len(want) {
+		t.Errorf("the page shows %d inputs, the stored derivation cites %d", len(shownRefs), len(want))
+	}
+	for k, ref := range shownRefs {
+		v, ok := want[ref]
+		if !ok {
+			t.Errorf("the page shows %s, which the derivation does not cite", ref)
+			continue
+		}
+		if got := strings.Fields(shownValues[k]); len(got) == 0 || got[0] != strconv.FormatFloat(v, 'g', 4, 64) {
+			t.Errorf("%s: the page shows %q, the derivation used %v", ref, shownValues[k], v)
+		}
+	}
+
+	// Every view that showed a patient is in the access log, by user.
+	entries := readAccessLog(t, env.access)
+	var sawTimeline, sawExplain bool
+	for _, e := range entries {
+		if e.User != "a.auditor" {
+			t.Errorf("access log entry by %q", e.User)
+		}
+		sawTimeline = sawTimeline || (e.Page == "timeline" && slices.Equal(e.Patients, []string{"bed5-fall"}))
+		sawExplain = sawExplain || (e.Page == "explain" && slices.Equal(e.Patients, []string{"bed5-fall"}))
+	}
+	if !sawTimeline || !sawExplain {
+		t.Errorf("access log %+v lacks the timeline or the explanation of bed5-fall", entries)
+	}
+	// The operational log names no patient.
+	if logs := env.svc.logs.String(); strings.Contains(logs, "bed5") || strings.Contains(logs, "Patient/") {
+		t.Errorf("the operational log names a patient:\n%s", logs)
+	}
+}
+
+// waitVisible waits a bounded time for a selector, so a page that never
+// comes is reported with where the browser is.
+func waitVisible(ctx context.Context, sel string) error {
+	wctx, cancel := context.WithTimeout(ctx, 30*time.Second)
+	defer cancel()
+	return chromedp.Do(wctx, chromedp.WaitVisible(chromedp.CSS(sel)))
+}
+
+func mustText(t *testing.T, ctx context.Context, sel string) string {
+	t.Helper()
+	s, err := chromedp.Run(ctx, chromedp.Text(chromedp.CSS(sel)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return s
+}
+
+func readAccessLog(t *testing.T, path string) []ui.AccessEntry {
+	t.Helper()
+	f, err := os.Open(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	var out []ui.AccessEntry
+	sc := bufio.NewScanner(f)
+	for sc.Scan() {
+		var e ui.AccessEntry
+		if err := json.Unmarshal(sc.Bytes(), &e); err != nil {
+			t.Fatalf("access log line %q: %v", sc.Text(), err)
+		}
+		out = append(out, e)
+	}
+	return out
+}
+
+// TestPagesRefuseTheUnauthenticated checks the refusals: no session, a
+// user outside the allowed groups, and a forged proxy header.
+func TestPagesRefuseTheUnauthenticated(t *testing.T) {
+	env := startPages(t)
+	for _, tc := range []struct {
+		name, path, accept string
+		want               int
+		location           string
+	}{
+		{"a browser is sent to sign in", "/patient/bed5-fall", "text/html", http.StatusSeeOther, "/signin?next=%2Fpatient%2Fbed5-fall"},
+		{"a program is refused", "/explain/sha256:" + strings.Repeat("a", 64), "application/json", http.StatusUnauthorized, ""},
+		{"the operations page too", "/operations", "", http.StatusUnauthorized, ""},
+		{"a proxy header is not trusted here", "/", "application/json", http.StatusUnauthorized, ""},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			req, _ := http.NewRequest(http.MethodGet, env.base+tc.path, nil)
+			req.Header.Set("Accept", tc.accept)
+			req.Header.Set("X-Forwarded-User", "mallory")
+			resp, err := env.client.Do(req)
+			if err != nil {
+				t.Fatal(err)
+			}
+			resp.Body.Close()
+			if resp.StatusCode != tc.want || resp.Header.Get("Location") != tc.location {
+				t.Errorf("status %d location %q, want %d %q", resp.StatusCode, resp.Header.Get("Location"), tc.want, tc.location)
+			}
+			if csp := resp.Header.Get("Content-Security-Policy"); !strings.Contains(csp, "default-src 'none'") {
+				t.Errorf("no strict Content-Security-Policy on a refusal: %q", csp)
+			}
+		})
+	}
+
+	// In a real browser, a user the provider signs in but who is in no
+	// allowed group sees no patient.
+	ctx := browsertest.New(t, true)
+	env.queueUser("visitors")
+	if err := chromedp.Do(ctx, chromedp.Navigate(env.base+"/patient/bed5-fall"), chromedp.WaitReady(chromedp.CSS(`body`))); err != nil {
+		t.Fatal(err)
+	}
+	body := mustText(t, ctx, "body")
+	if !strings.Contains(body, "not in a group allowed") || strings.Contains(body, "bed5-fall") {
+		t.Errorf("a user outside the allowed groups got: %q", body)
+	}
+	if entries := readAccessLog(t, env.access); len(entries) != 0 {
+		t.Errorf("refused requests were logged as page views: %+v", entries)
+	}
+}
+
+// TestPagesBehindAProxy checks the trusted user header: honoured from the
+// configured proxy address, refused from anywhere else.
+func TestPagesBehindAProxy(t *testing.T) {
+	dir := t.TempDir()
+	cfg := testConfig("", dir)
+	cfg.Retention = 87600 * time.Hour
+	for _, tc := range []struct {
+		name    string
+		trusted string
+		want    int
+	}{
+		{"from the proxy", "127.0.0.1/32", http.StatusOK},
+		{"from elsewhere", "10.0.0.0/8", http.StatusUnauthorized},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			c := cfg
+			c.DataDir = t.TempDir()
+			c.UI = serve.UIConfig{Listen: "127.0.0.1:0", UserHeader: "X-Remote-User", TrustedProxies: tc.trusted, SessionTTL: time.Hour}
+			if err := c.Validate(); err != nil {
+				t.Fatal(err)
+			}
+			s := start(t, c)
+			req, _ := http.NewRequest(http.MethodGet, "http://"+s.svc.UIAddr()+"/", nil)
+			req.Header.Set("X-Remote-User", "b.clinician")
+			resp, err := http.DefaultClient.Do(req)
+			if err != nil {
+				t.Fatal(err)
+			}
+			resp.Body.Close()
+			if resp.StatusCode != tc.want {
+				t.Errorf("status %d, want %d", resp.StatusCode, tc.want)
+			}
+		})
+	}
+}
