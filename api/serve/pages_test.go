@@ -369,3 +369,56 @@ func TestPagesBehindAProxy(t *testing.T) {
 		})
 	}
 }
+
+func TestUIConfigValidate(t *testing.T) {
+	dir := t.TempDir()
+	secretFile := filepath.Join(dir, "secret")
+	if err := os.WriteFile(secretFile, []byte("s3cret\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	oidc := serve.UIConfig{
+		Listen: "127.0.0.1:8443", OIDCIssuer: "https://idp.example/realms/h", OIDCClientID: "deadspace",
+		OIDCRedirectURL: "https://deadspace.example:8443/signin/callback", OIDCClaim: "groups", OIDCAllowed: "icu-audit",
+		SessionTTL: time.Hour,
+	}
+	for _, tc := range []struct {
+		name   string
+		edit   func(c *serve.Config)
+		errHas string // "" means valid
+	}{
+		{"off by default", func(c *serve.Config) { c.UI = serve.UIConfig{} }, ""},
+		{"OpenID Connect", func(c *serve.Config) { c.UI = oidc }, ""},
+		{"client secret from a file", func(c *serve.Config) { c.UI = oidc; c.UI.OIDCSecretFile = secretFile }, ""},
+		{"a proxy header", func(c *serve.Config) {
+			c.UI = serve.UIConfig{Listen: "127.0.0.1:8443", UserHeader: "X-Remote-User", TrustedProxies: "127.0.0.1", SessionTTL: time.Hour}
+		}, ""},
+		{"no way to sign in", func(c *serve.Config) { c.UI = serve.UIConfig{Listen: "127.0.0.1:8443", SessionTTL: time.Hour} }, "needs a way to sign in"},
+		{"both ways", func(c *serve.Config) { c.UI = oidc; c.UI.UserHeader = "X-User"; c.UI.TrustedProxies = "10.0.0.1" }, "not both"},
+		{"no allowed groups", func(c *serve.Config) { c.UI = oidc; c.UI.OIDCAllowed = " , " }, "--ui-oidc-allowed"},
+		{"a redirect elsewhere", func(c *serve.Config) { c.UI = oidc; c.UI.OIDCRedirectURL = "https://deadspace.example/" }, "/signin/callback"},
+		{"a header without its proxies", func(c *serve.Config) {
+			c.UI = serve.UIConfig{Listen: "127.0.0.1:8443", UserHeader: "X-Remote-User", SessionTTL: time.Hour}
+		}, "--ui-trusted-proxies"},
+		{"a bad proxy address", func(c *serve.Config) {
+			c.UI = serve.UIConfig{Listen: "127.0.0.1:8443", UserHeader: "X-Remote-User", TrustedProxies: "proxy.local", SessionTTL: time.Hour}
+		}, "not an address"},
+		{"plain HTTP beyond loopback", func(c *serve.Config) { c.UI = oidc; c.UI.Listen = "0.0.0.0:8443" }, "needs --tls-cert"},
+		{"an endless session", func(c *serve.Config) { c.UI = oidc; c.UI.SessionTTL = 30 * 24 * time.Hour }, "--ui-session-ttl"},
+		{"a missing secret file", func(c *serve.Config) { c.UI = oidc; c.UI.OIDCSecretFile = filepath.Join(dir, "none") }, "--ui-oidc-client-secret-file"},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			c := testConfig("", dir)
+			tc.edit(&c)
+			err := c.Validate()
+			switch {
+			case tc.errHas == "" && err != nil:
+				t.Errorf("unexpected error: %v", err)
+			case tc.errHas != "" && (err == nil || !strings.Contains(err.Error(), tc.errHas)):
+				t.Errorf("error %v, want one mentioning %q", err, tc.errHas)
+			}
+			if tc.name == "client secret from a file" && c.UI.OIDCClientSecret != "s3cret" {
+				t.Errorf("client secret = %q", c.UI.OIDCClientSecret)
+			}
+		})
+	}
+}

@@ -1,0 +1,202 @@
+package ui
+
+import (
+	"bytes"
+	"context"
+	"net/http"
+	"net/http/cookiejar"
+	"net/http/httptest"
+	"net/netip"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/oauth2-proxy/mockoidc"
+)
+
+// signInEnv is the pages over TLS with sign-in through a local OpenID
+// provider (mockoidc) that the test starts.
+type signInEnv struct {
+	srv    *httptest.Server
+	oidc   *mockoidc.MockOIDC
+	client *http.Client
+	access *bytes.Buffer
+}
+
+func newSignInEnv(t *testing.T, ttl time.Duration) *signInEnv {
+	t.Helper()
+	m, err := mockoidc.Run()
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = m.Shutdown() })
+	env := &signInEnv{oidc: m, access: &bytes.Buffer{}}
+	var h http.Handler = http.NotFoundHandler()
+	env.srv = httptest.NewTLSServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) { h.ServeHTTP(w, r) }))
+	t.Cleanup(env.srv.Close)
+	auth, err := NewOIDC(context.Background(), OIDCConfig{
+		Issuer: m.Issuer(), ClientID: m.ClientID, ClientSecret: m.ClientSecret,
+		RedirectURL: env.srv.URL + "/signin/callback", Scopes: []string{"openid", "profile", "groups"},
+		Claim: "groups", Allowed: []string{"icu-audit"}, SessionTTL: ttl,
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	h = testHandler(t, ReportSource{demo(t)}, auth, env.access)
+	jar, _ := cookiejar.New(nil)
+	env.client = env.srv.Client()
+	env.client.Jar = jar
+	return env
+}
+
+func (e *signInEnv) get(t *testing.T, path string) *http.Response {
+	t.Helper()
+	req, _ := http.NewRequest(http.MethodGet, e.srv.URL+path, nil)
+	req.Header.Set("Accept", "text/html")
+	resp, err := e.client.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	return resp
+}
+
+func TestOIDCSignInWithPKCE(t *testing.T) {
+	env := newSignInEnv(t, time.Hour)
+	env.oidc.QueueUser(&mockoidc.MockUser{Subject: "s1", PreferredUsername: "c.auditor", Groups: []string{"staff", "icu-audit"}})
+	var authorize *http.Request
+	env.client.CheckRedirect = func(req *http.Request, via []*http.Request) error {
+		if strings.Contains(req.URL.Path, "authorize") {
+			authorize = req
+		}
+		return nil
+	}
+	resp := env.get(t, "/patient/bed1-stable")
+	if resp.StatusCode != http.StatusOK || resp.Request.URL.Path != "/patient/bed1-stable" {
+		t.Fatalf("after sign-in: status %d at %s", resp.StatusCode, resp.Request.URL)
+	}
+	q := authorize.URL.Query()
+	if q.Get("code_challenge_method") != "S256" || len(q.Get("code_challenge")) < 43 || q.Get("nonce") == "" || q.Get("state") == "" {
+		t.Errorf("the authorization request lacks PKCE S256, a nonce or a state: %v", q)
+	}
+	if !strings.Contains(env.access.String(), `"user":"c.auditor","page":"timeline","patients":["bed1-stable"]`) {
+		t.Errorf("access log = %s", env.access)
+	}
+}
+
+func TestOIDCSessionCookieAndExpiry(t *testing.T) {
+	const ttl = 30 * time.Minute
+	env := newSignInEnv(t, ttl)
+	env.oidc.QueueUser(&mockoidc.MockUser{Subject: "s1", PreferredUsername: "c.auditor", Groups: []string{"icu-audit"}})
+	var setCookie []string
+	env.client.CheckRedirect = func(req *http.Request, via []*http.Request) error {
+		if resp := req.Response; resp != nil && resp.Request.URL.Path == "/signin/callback" {
+			setCookie = resp.Header.Values("Set-Cookie")
+		}
+		return nil
+	}
+	if resp := env.get(t, "/"); resp.StatusCode != http.StatusOK {
+		t.Fatalf("sign-in: status %d", resp.StatusCode)
+	}
+	var session string
+	for _, c := range setCookie {
+		if strings.HasPrefix(c, sessionCookie+"=") && !strings.Contains(c, "Max-Age=0") {
+			session = c
+		}
+	}
+	for _, attr := range []string{"Secure", "HttpOnly", "SameSite=Lax", "Path=/", "Max-Age=1800"} {
+		if !strings.Contains(session, attr) {
+			t.Errorf("session cookie %q lacks %s", session, attr)
+		}
+	}
+	if strings.Contains(session, "Domain=") {
+		t.Errorf("session cookie %q must be host-only", session)
+	}
+
+	// Past the lifetime the same cookie no longer opens a page.
+	clockSkew.Store(int64(ttl + time.Minute))
+	t.Cleanup(func() { clockSkew.Store(0) })
+	env.client.CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
+	resp := env.get(t, "/patient/bed1-stable")
+	if resp.StatusCode != http.StatusSeeOther || !strings.HasPrefix(resp.Header.Get("Location"), "/signin") {
+		t.Errorf("an expired session got status %d (Location %q), want a redirect to sign in", resp.StatusCode, resp.Header.Get("Location"))
+	}
+}
+
+func TestOIDCRefusals(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		groups []string
+		path   string
+		want   int
+	}{
+		{"no allowed group", []string{"visitors"}, "/", http.StatusForbidden},
+		{"no groups at all", nil, "/", http.StatusForbidden},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			env := newSignInEnv(t, time.Hour)
+			env.oidc.QueueUser(&mockoidc.MockUser{Subject: "s2", PreferredUsername: "v.visitor", Groups: tc.groups})
+			if resp := env.get(t, tc.path); resp.StatusCode != tc.want {
+				t.Errorf("status %d, want %d", resp.StatusCode, tc.want)
+			}
+			if env.access.Len() != 0 {
+				t.Errorf("a refused user reached a page: %s", env.access)
+			}
+		})
+	}
+	t.Run("a callback without the sign-in's state", func(t *testing.T) {
+		env := newSignInEnv(t, time.Hour)
+		if resp := env.get(t, "/signin/callback?code=x&state=forged"); resp.StatusCode != http.StatusBadRequest {
+			t.Errorf("status %d, want 400", resp.StatusCode)
+		}
+	})
+	t.Run("a program without a session", func(t *testing.T) {
+		env := newSignInEnv(t, time.Hour)
+		req, _ := http.NewRequest(http.MethodGet, env.srv.URL+"/", nil)
+		resp, err := env.client.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		if resp.StatusCode != http.StatusUnauthorized {
+			t.Errorf("status %d, want 401", resp.StatusCode)
+		}
+	})
+}
+
+func TestProxyAuth(t *testing.T) {
+	trusted, err := ParsePrefixes("10.1.2.3, 192.168.0.0/16")
+	if err != nil {
+		t.Fatal(err)
+	}
+	p := ProxyAuth{Header: "X-Remote-User", Trusted: trusted}
+	for _, tc := range []struct {
+		name, remote, user string
+		ok                 bool
+	}{
+		{"the proxy", "10.1.2.3:5555", "alice", true},
+		{"a proxy in the range", "192.168.7.7:1", "bob", true},
+		{"an IPv4-mapped proxy address", "[::ffff:10.1.2.3]:5555", "alice", true},
+		{"anyone else", "10.1.2.4:5555", "mallory", false},
+		{"the proxy without the header", "10.1.2.3:5555", "", false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			r := httptest.NewRequest(http.MethodGet, "/", nil)
+			r.RemoteAddr = tc.remote
+			if tc.user != "" {
+				r.Header.Set("X-Remote-User", tc.user)
+			}
+			u, ok := p.User(r)
+			if ok != tc.ok || (ok && u != tc.user) {
+				t.Errorf("User = %q, %v", u, ok)
+			}
+		})
+	}
+	if _, err := ParsePrefixes("10.0.0.0/8, not-an-address"); err == nil {
+		t.Error("a bad address was accepted")
+	}
+	want := []netip.Prefix{netip.MustParsePrefix("10.0.0.0/8")}
+	if got, _ := ParsePrefixes("10.9.9.9/8"); len(got) != 1 || got[0] != want[0] {
+		t.Errorf("ParsePrefixes masks to %v, want %v", got, want)
+	}
+}
