@@ -466,3 +466,40 @@ func TestCommandsAnswerPeople(t *testing.T) {
 		}
 	}
 }
+
+// TestReplayHTMLReport checks `replay --html`: the report of the demo is
+// written beside the normal output, with every patient and the caution.
+func TestReplayHTMLReport(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "report.html")
+	args := append([]string{"replay", "--issued", demoIssued, "--format", "table", "--html", path}, demoFiles(t)...)
+	stdout, stderr, code := runCmd(t, args...)
+	if code != exitOK || !strings.Contains(stdout, "bed5-fall") {
+		t.Fatalf("exit %d\n%s", code, stderr)
+	}
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	html := string(b)
+	for _, want := range []string{"<!DOCTYPE html>", "Content-Security-Policy", `id="p-bed1-stable"`, `id="p-bed5-fall"`, "<svg class=\"plot\"", "calculated from other observations"} {
+		if !strings.Contains(html, want) {
+			t.Errorf("the report lacks %q", want)
+		}
+	}
+}
+
+func TestSubmitUsageErrors(t *testing.T) {
+	for _, tc := range []struct {
+		name string
+		args []string
+	}{
+		{"no files", []string{"submit"}},
+		{"unknown flag", []string{"submit", "--nope", "x.ndjson"}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			if _, _, code := runCmd(t, tc.args...); code != exitUsage {
+				t.Errorf("exit %d, want %d", code, exitUsage)
+			}
+		})
+	}
+}
