@@ -200,3 +200,22 @@ func TestProxyAuth(t *testing.T) {
 		t.Errorf("ParsePrefixes masks to %v, want %v", got, want)
 	}
 }
+
+// FuzzParsePrefixes checks the trusted-proxy parser: it never panics, and
+// what it accepts is a list of valid, masked prefixes.
+func FuzzParsePrefixes(f *testing.F) {
+	for _, s := range []string{"127.0.0.1", "10.0.0.0/8, ::1", "", ",,", "fe80::1%eth0", "1.2.3.4/33", "::ffff:10.0.0.1/104"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		ps, err := ParsePrefixes(s)
+		if err != nil {
+			return
+		}
+		for _, p := range ps {
+			if !p.IsValid() || p != p.Masked() {
+				t.Fatalf("ParsePrefixes(%q) gave %v", s, p)
+			}
+		}
+	})
+}

@@ -10,6 +10,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
@@ -263,26 +264,16 @@ func patientText(p derive.Patient) string {
 	return strings.Join(parts, ", ")
 }
 
-// countReasons counts omissions by reason in derive's vocabulary order.
+// countReasons counts reasons in derive's vocabulary order, as replay's
+// summary does.
 func countReasons(rs []derive.Reason) []ReasonCount {
-	counts := make(map[derive.Reason]int)
-	for _, r := range rs {
-		counts[r]++
+	om := make([]derive.Omission, len(rs))
+	for i, r := range rs {
+		om[i].Reason = r
 	}
 	var out []ReasonCount
-	for _, r := range derive.AllReasons() {
-		if counts[r] > 0 {
-			out = append(out, ReasonCount{r, counts[r]})
-			delete(counts, r)
-		}
-	}
-	var rest []derive.Reason
-	for r := range counts {
-		rest = append(rest, r)
-	}
-	slices.Sort(rest)
-	for _, r := range rest {
-		out = append(out, ReasonCount{r, counts[r]})
+	for _, c := range replay.ReasonCounts(om) {
+		out = append(out, ReasonCount{Reason: c.Reason, N: c.N})
 	}
 	return out
 }
