@@ -91,10 +91,16 @@ func startPages(t *testing.T) *pagesEnv {
 	files := []string{"../../testdata/demo/Patient.ndjson", "../../testdata/demo/Encounter.ndjson",
 		"../../testdata/demo/Observation.bloodgas.ndjson", "../../testdata/demo/Observation.devices.ndjson"}
 	sum, err := submit.Run(context.Background(), submit.Options{Addr: s.svc.GRPCAddr(), CAFile: ca.CertFile, ChunkBytes: 512 << 10}, files)
-	// The demo holds one venous and one preliminary blood gas, which the
-	// service must refuse with their reasons.
-	if err == nil || len(sum.Problems) != 2 || sum.Accepted < 9000 {
+	// The demo holds a venous, a preliminary and a mislabelled-unit blood
+	// gas, which the service must refuse, each with its reason and line.
+	refused := map[string]bool{"specimen-not-arterial": true, "status-not-usable": true, "value-in-another-unit": true}
+	if err == nil || len(sum.Problems) != len(refused) || sum.Accepted < 12000 {
 		t.Fatalf("submit: %v, summary %+v", err, sum)
+	}
+	for _, p := range sum.Problems {
+		if !refused[p.Reason] || !strings.HasSuffix(p.File, "Observation.bloodgas.ndjson") || p.Line == 0 {
+			t.Errorf("submit refused %s", p)
+		}
 	}
 	if err := s.svc.Engine().EvaluateNow(context.Background()); err != nil {
 		t.Fatal(err)

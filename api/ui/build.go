@@ -33,6 +33,7 @@ var valueInfo = []struct {
 	{derive.CodeVentilatoryRatio, "Ventilatory ratio", 2},
 	{derive.CodeMixedExpiredCO2, "Mixed-expired PCO2", 1},
 	{derive.CodeEtCO2Drop, "EtCO2 fall from baseline", 1},
+	{derive.CodeEtCO2Rise, "EtCO2 rise above baseline", 1},
 }
 
 // TableCodes are the values the timeline's table has a column for.
@@ -92,7 +93,7 @@ func findingOf(f derive.Fall, status, explainID string) Finding {
 		}
 	}
 	return Finding{
-		Onset: f.Onset, Confirmed: f.Confirmed, End: end, Baseline: f.Baseline, Level: f.Level,
+		Rise: f.Rise, Onset: f.Onset, Confirmed: f.Confirmed, End: end, Baseline: f.Baseline, Level: f.Level,
 		Change: f.Change, Status: status, ExplainID: explainID,
 	}
 }
@@ -161,9 +162,12 @@ func explainValue(patientID string, d *derive.Derivation, code derive.Code, id, 
 		ex.Notes = append(ex.Notes, fmt.Sprintf("the recorded derivation has no value %q; its inputs are listed whole", code))
 	}
 	ex.Inputs = append(ex.Inputs, inputOf(d.Gas, RoleBloodGas, detail(d.Gas.Ref)))
+	if d.PaCO2 != 0 && d.PaCO2 != d.Gas.Value {
+		ex.Notes = append(ex.Notes, fmt.Sprintf("the equations used a PaCO2 of %.4g mm[Hg] at the patient's temperature, not the %.4g mm[Hg] reported at 37 °C", d.PaCO2, d.Gas.Value))
+	}
 	seen := map[string]bool{d.Gas.Ref: true}
 	for _, s := range sums {
-		p := Pairing{Kind: s.Kind.String(), Median: s.Median, Unit: s.Kind.Unit(), Rule: s.Rule}
+		p := Pairing{Kind: s.Kind.String(), Median: s.Median, Unit: s.Kind.Unit(), Rule: s.Rule, Substitute: s.Substitute, Artefacts: s.Artefacts}
 		for _, r := range s.Readings {
 			p.Refs = append(p.Refs, r.Ref)
 			if !seen[r.Ref] {
@@ -204,9 +208,13 @@ func absDuration(d time.Duration) time.Duration {
 // explainFall explains one fall finding.
 func explainFall(patientID string, f derive.Fall, id, status string, detail func(ref string) InputDetail) Explanation {
 	fd := findingOf(f, status, id)
+	what := "fall"
+	if f.Rise {
+		what = "rise"
+	}
 	ex := Explanation{
 		ID: id, PatientID: patientID, At: f.Onset, Status: status, Fall: &fd,
-		Title:    fmt.Sprintf("EtCO2 fall from %s", f.Onset.Format("2006-01-02 15:04 MST")),
+		Title:    fmt.Sprintf("EtCO2 %s from %s", what, f.Onset.Format("2006-01-02 15:04 MST")),
 		Equation: "change = median of the episode's readings − median of the baseline readings",
 		Terms: []derive.Term{
 			{Name: "baseline", Value: f.Baseline, Unit: "mm[Hg]"},
@@ -296,7 +304,7 @@ func rowsOf(t *Timeline, etco2Median map[time.Time]float64) {
 	byTime := make(map[time.Time]*Row)
 	var times []time.Time
 	for _, v := range t.Values {
-		if v.Code == derive.CodeEtCO2Drop {
+		if v.Code == derive.CodeEtCO2Drop || v.Code == derive.CodeEtCO2Rise {
 			continue
 		}
 		r, ok := byTime[v.At]

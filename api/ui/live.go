@@ -118,6 +118,7 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 	tl := Timeline{ID: id}
 	etco2Median := make(map[time.Time]float64)
 	gasExplain := make(map[string]string)
+	adjusted := make(map[string]float64)
 	for _, rec := range p.records {
 		status := statusOf(rec.Status)
 		switch {
@@ -132,6 +133,9 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 			}
 			v := valueOf(d.Gas.At(), d.Values[i], status, rec.Key)
 			v.Why = rec.Payload.Why
+			if d.PaCO2 != 0 && d.PaCO2 != d.Gas.Value {
+				adjusted[d.Gas.Ref] = d.PaCO2
+			}
 			tl.Values = append(tl.Values, v)
 			for _, u := range d.Used {
 				if u.Kind == derive.KindEtCO2 {
@@ -158,6 +162,7 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 			tl.EtCO2 = append(tl.EtCO2, pt)
 		case derive.KindPaCO2:
 			pt.ExplainID = gasExplain[r.Ref]
+			pt.Adjusted = adjusted[r.Ref]
 			tl.PaCO2 = append(tl.PaCO2, pt)
 		}
 	}
@@ -242,7 +247,7 @@ func (l *Live) Overview(ctx context.Context) (Overview, error) {
 		}
 		var latest []Value
 		for _, v := range tl.Values {
-			if v.Status == StatusSuperseded || v.Status == StatusWithdrawn || v.Code == derive.CodeEtCO2Drop {
+			if v.Status == StatusSuperseded || v.Status == StatusWithdrawn || v.Code == derive.CodeEtCO2Drop || v.Code == derive.CodeEtCO2Rise {
 				continue
 			}
 			if v.At.After(row.LatestGas) {

@@ -41,7 +41,8 @@ type PatientRow struct {
 	LatestGas time.Time
 	// Latest are that blood gas's values, in display order.
 	Latest []Value
-	// Findings are the end-tidal CO2 falls still current, latest first.
+	// Findings are the end-tidal CO2 falls and rises still current,
+	// latest first.
 	Findings []Finding
 	LeftOut  []ReasonCount
 	// PendingWrites is how many writes to the FHIR server wait for this
@@ -76,8 +77,9 @@ type Value struct {
 	ExplainID string
 }
 
-// Finding is one end-tidal CO2 fall.
+// Finding is one end-tidal CO2 fall, or rise above the baseline.
 type Finding struct {
+	Rise                  bool
 	Onset, Confirmed, End time.Time
 	Baseline, Level       float64
 	Change                float64
@@ -96,6 +98,19 @@ type Point struct {
 	Why    string
 	// ExplainID links a blood gas to its first value's explanation.
 	ExplainID string
+	// Adjusted is, for a blood gas, the PaCO2 the equations used when it
+	// differs from the reported one (at the patient's temperature); 0
+	// otherwise.
+	Adjusted float64
+}
+
+// Shown is the value a page plots and tabulates: the PaCO2 the equations
+// used when it was adjusted to the patient's temperature.
+func (p Point) Shown() float64 {
+	if p.Adjusted != 0 {
+		return p.Adjusted
+	}
+	return p.Value
 }
 
 // Timeline is one patient's page.
@@ -177,6 +192,10 @@ type Pairing struct {
 	Unit   string
 	Rule   string
 	Refs   []string
+	// Substitute says which lower-priority source was used and why.
+	Substitute string
+	// Artefacts counts readings of the window left out as artefacts.
+	Artefacts int
 }
 
 // Omission is an input left out or a value not emitted, with the reason.

@@ -138,6 +138,7 @@ func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generat
 		row.LeftOut = countReasons(leftOut)
 		etco2Median := make(map[time.Time]float64)
 		gasExplain := make(map[string]string)
+		adjusted := make(map[string]float64)
 		for _, i := range bySubject[s] {
 			r := out.Report.Results[i]
 			if r.Fall != nil {
@@ -153,6 +154,9 @@ func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generat
 				continue
 			}
 			d := r.Derivation
+			if d.PaCO2 != 0 && d.PaCO2 != d.Gas.Value {
+				adjusted[d.Gas.Ref] = d.PaCO2
+			}
 			for _, u := range d.Used {
 				if u.Kind == derive.KindEtCO2 {
 					etco2Median[d.Gas.At()] = u.Median
@@ -181,6 +185,7 @@ func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generat
 		}
 		for i := range tl.PaCO2 {
 			tl.PaCO2[i].ExplainID = gasExplain[tl.PaCO2[i].Ref]
+			tl.PaCO2[i].Adjusted = adjusted[tl.PaCO2[i].Ref]
 		}
 		row.Findings = activeFindings(tl.Findings, latestTime(&tl))
 		sortValues(tl.Values)

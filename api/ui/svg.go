@@ -62,7 +62,7 @@ func Plot(t *Timeline, links Links) template.HTML {
 		co2 = append(co2, p.Value)
 	}
 	for _, p := range t.PaCO2 {
-		co2 = append(co2, p.Value)
+		co2 = append(co2, p.Shown())
 	}
 	for _, v := range t.Values {
 		switch v.Code {
@@ -93,7 +93,7 @@ func Plot(t *Timeline, links Links) template.HTML {
 	var b strings.Builder
 	fmt.Fprintf(&b, `<svg class="plot" viewBox="0 0 %d %.0f" width="%d" height="%.0f" role="img" aria-labelledby="plot-title plot-desc" xmlns="http://www.w3.org/2000/svg">`, plotWidth, height, plotWidth, height)
 	fmt.Fprintf(&b, `<title id="plot-title">Dead-space timeline of patient %s</title>`, esc(t.ID))
-	fmt.Fprintf(&b, `<desc id="plot-desc">From %s to %s: end-tidal CO2 as a line and each arterial PaCO2 as a point; the PaCO2 − EtCO2 gradient; VD/VT measured (filled) and estimated (open). Shaded bands are end-tidal CO2 falls. The table below lists the same values.</desc>`,
+	fmt.Fprintf(&b, `<desc id="plot-desc">From %s to %s: end-tidal CO2 as a line and each arterial PaCO2 as a point; the PaCO2 − EtCO2 gradient; VD/VT measured (filled) and estimated (open). Shaded bands are end-tidal CO2 falls (plain) and rises (hatched). The table below lists the same values.</desc>`,
 		t.From.Format(time.RFC3339), t.To.Format(time.RFC3339))
 
 	// Fall episodes first, so the data draws over them.
@@ -102,8 +102,12 @@ func Plot(t *Timeline, links Links) template.HTML {
 		if x1-x0 < 6 {
 			x1 = x0 + 6
 		}
-		fmt.Fprintf(&b, `<a href="%s"><rect class="fall" x="%.1f" y="%d" width="%.1f" height="%.1f"><title>EtCO2 fall %+.1f mm[Hg] from %s to %s</title></rect></a>`,
-			esc(links.Explain(f.ExplainID)), x0, panelTop, x1-x0, top-panelGap-panelTop, f.Change, f.Onset.Format("15:04"), f.End.Format("15:04"))
+		class, what := "fall", "fall"
+		if f.Rise {
+			class, what = "rise", "rise"
+		}
+		fmt.Fprintf(&b, `<a href="%s"><rect class="%s" x="%.1f" y="%d" width="%.1f" height="%.1f"><title>EtCO2 %s %+.1f mm[Hg] from %s to %s</title></rect></a>`,
+			esc(links.Explain(f.ExplainID)), class, x0, panelTop, x1-x0, top-panelGap-panelTop, what, f.Change, f.Onset.Format("15:04"), f.End.Format("15:04"))
 	}
 	for _, p := range panels {
 		drawFrame(&b, p)
@@ -131,8 +135,11 @@ func Plot(t *Timeline, links Links) template.HTML {
 	}
 	flush()
 	for _, pt := range t.PaCO2 {
-		x, y := ax.x(pt.At), panels[0].y(pt.Value)
+		x, y := ax.x(pt.At), panels[0].y(pt.Shown())
 		title := fmt.Sprintf("PaCO2 %.1f mm[Hg] at %s", pt.Value, pt.At.Format("15:04"))
+		if pt.Adjusted != 0 {
+			title = fmt.Sprintf("PaCO2 %.1f mm[Hg] at the patient's temperature (%.1f reported at 37 °C) at %s", pt.Adjusted, pt.Value, pt.At.Format("15:04"))
+		}
 		if pt.Status != StatusFinal {
 			title += " (" + pt.Status + ": " + pt.Why + ")"
 		}

@@ -117,10 +117,13 @@ func findExplanation(t *testing.T, r Report, patient string, code derive.Code, a
 func TestPagesGolden(t *testing.T) {
 	r := demo(t)
 	grad := findExplanation(t, r, "bed5-fall", derive.CodeGradient, "03:30")
-	var fall string
+	var fall, rise string
 	for _, ex := range r.Explanations {
-		if ex.Fall != nil {
+		switch {
+		case ex.Fall != nil && ex.PatientID == "bed5-fall":
 			fall = ex.ID
+		case ex.Fall != nil && ex.Fall.Rise:
+			rise = ex.ID
 		}
 	}
 	var access bytes.Buffer
@@ -133,6 +136,8 @@ func TestPagesGolden(t *testing.T) {
 		{"timeline with a superseded blood gas", "/patient/bed2-ards", "timeline-bed2-ards.html"},
 		{"explain a gradient", "/explain/" + grad.ID, "explain-gradient.html"},
 		{"explain a fall", "/explain/" + fall, "explain-fall.html"},
+		{"timeline with a rise and a temperature-adjusted PaCO2", "/patient/bed6-cooled", "timeline-bed6-cooled.html"},
+		{"explain a rise", "/explain/" + rise, "explain-rise.html"},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			w := get(t, h, tc.path)
@@ -239,8 +244,10 @@ func TestDemoShowsSupersededAndWithdrawnInputs(t *testing.T) {
 	if counts[StatusSuperseded] == 0 {
 		t.Errorf("no superseded blood gas on any timeline: %v", counts)
 	}
-	if counts[StatusFinal] != 13 {
-		t.Errorf("%d current blood gases plotted, want the 13 the replay derived from", counts[StatusFinal])
+	// 17 is what `replay --format table` reports for the demo ("derived: 17
+	// blood gases"); every one is plotted as current.
+	if counts[StatusFinal] != 17 {
+		t.Errorf("%d current blood gases plotted, want the 17 the replay derived from", counts[StatusFinal])
 	}
 }
 
