@@ -27,7 +27,7 @@ func (e *Engine) StoredReadings(ctx context.Context, subject string) ([]StoredRe
 	}
 	out := make([]StoredReading, 0, len(stored))
 	for _, in := range stored {
-		h, _, err := decodeHead(in.Payload)
+		h, _, err := decodeHead(in.Payload, in.Logical, in.VersionID)
 		if err != nil {
 			return nil, fmt.Errorf("engine: stored input %s: %w", in.Logical, err)
 		}

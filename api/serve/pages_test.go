@@ -12,6 +12,7 @@ import (
 	"crypto/x509"
 	"encoding/json"
 	"flag"
+	"io"
 	"net"
 	"net/http"
 	"os"
@@ -426,5 +427,114 @@ func TestUIConfigValidate(t *testing.T) {
 				t.Errorf("client secret = %q", c.UI.OIDCClientSecret)
 			}
 		})
+	}
+}
+
+// TestPagesExplainASupersededValue corrects a blood gas after its values
+// were derived, and checks that the earlier value's key still opens its own
+// explanation, marked superseded, with a link to the value that replaced
+// it, and that the timeline shows it struck through.
+func TestPagesExplainASupersededValue(t *testing.T) {
+	c := testConfig("", t.TempDir())
+	c.Retention = 87600 * time.Hour
+	c.UI = serve.UIConfig{Listen: "127.0.0.1:0", UserHeader: "X-Remote-User", TrustedProxies: "127.0.0.1", SessionTTL: time.Hour}
+	if err := c.Validate(); err != nil {
+		t.Fatal(err)
+	}
+	s := start(t, c)
+	ctx := context.Background()
+	demo := "../../testdata/demo/"
+	if _, err := submit.Run(ctx, submit.Options{Addr: s.svc.GRPCAddr()}, []string{demo + "Patient.ndjson", demo + "Observation.devices.ndjson"}); err != nil {
+		t.Fatal(err)
+	}
+	gas, err := os.ReadFile(demo + "Observation.bloodgas.ndjson")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var original string
+	for _, line := range strings.Split(string(gas), "\n") {
+		if strings.Contains(line, `"id":"bed5-fall-abg-2"`) {
+			original = line
+		}
+	}
+	if original == "" {
+		t.Fatal("the demo has no bed5-fall-abg-2")
+	}
+	send := func(line string) {
+		t.Helper()
+		p := filepath.Join(t.TempDir(), "gas.ndjson")
+		if err := os.WriteFile(p, []byte(line+"\n"), 0o644); err != nil {
+			t.Fatal(err)
+		}
+		if _, err := submit.Run(ctx, submit.Options{Addr: s.svc.GRPCAddr()}, []string{p}); err != nil {
+			t.Fatal(err)
+		}
+		if err := s.svc.Engine().EvaluateNow(ctx); err != nil {
+			t.Fatal(err)
+		}
+	}
+	gradientKey := func() string {
+		t.Helper()
+		recs, err := s.svc.Engine().Derivations(ctx, "Patient/bed5-fall", time.Time{}, time.Unix(1<<40, 0), "", 1000)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, r := range recs {
+			if r.Code == derive.CodeGradient && r.EffectiveAt.Format("15:04") == "03:30" {
+				return r.Key
+			}
+		}
+		t.Fatal("no 03:30 gradient")
+		return ""
+	}
+	send(original)
+	before := gradientKey()
+	// The laboratory corrects the PaCO2 from 38 to 41 mm[Hg].
+	corrected := strings.Replace(original, `"value":38,`, `"value":41,`, 1)
+	corrected = strings.Replace(corrected, `"versionId":"1","lastUpdated":"2026-03-15T03:32:00Z"`, `"versionId":"2","lastUpdated":"2026-03-15T04:10:00Z"`, 1)
+	corrected = strings.Replace(corrected, `"status":"final"`, `"status":"corrected"`, 1)
+	if corrected == original || !strings.Contains(corrected, `"value":41,`) {
+		t.Fatal("the correction did not apply to the demo line")
+	}
+	send(corrected)
+	after := gradientKey()
+	if after == before {
+		t.Fatal("the correction did not change the gradient's key")
+	}
+
+	page := func(path string) string {
+		t.Helper()
+		req, _ := http.NewRequest(http.MethodGet, "http://"+s.svc.UIAddr()+path, nil)
+		req.Header.Set("X-Remote-User", "b.clinician")
+		resp, err := http.DefaultClient.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer resp.Body.Close()
+		var b strings.Builder
+		if _, err := io.Copy(&b, resp.Body); err != nil {
+			t.Fatal(err)
+		}
+		if resp.StatusCode != http.StatusOK {
+			t.Fatalf("%s: status %d", path, resp.StatusCode)
+		}
+		return b.String()
+	}
+	old := page("/explain/" + before)
+	for _, want := range []string{
+		`<span class="status">superseded</span>`,
+		`href="/explain/` + after + `"`, // the value that replaced it
+		">16.0 mm[Hg]<",                 // the value as it was: 38 − 22
+		"Observation/bed5-fall-abg-2/_history/1",
+	} {
+		if !strings.Contains(old, want) {
+			t.Errorf("the superseded explanation lacks %q", want)
+		}
+	}
+	if cur := page("/explain/" + after); !strings.Contains(cur, ">19.0 mm[Hg]<") || !strings.Contains(cur, "_history/2") {
+		t.Error("the current explanation does not show the corrected value 41 − 22 from version 2")
+	}
+	if tl := page("/patient/bed5-fall"); !strings.Contains(tl, "Superseded and withdrawn values") || !strings.Contains(tl, `href="/explain/`+before+`"`) {
+		t.Error("the timeline does not list the superseded value")
 	}
 }

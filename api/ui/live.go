@@ -174,10 +174,10 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 	return tl
 }
 
-// earlier returns the superseded versions of a value that the engine can
-// still explain. An engine that keeps only the current version answers an
-// earlier key with the current entry; those are listed in the history of
-// the explanation, not plotted.
+// earlier returns the superseded versions of a value that the engine
+// still keeps (for the retention), so the plot shows what was written
+// before a correction. A version no longer kept is left out of the plot;
+// the explanation's history still lists its key.
 func (l *Live) earlier(ctx context.Context, rec engine.Record) []Value {
 	var out []Value
 	for _, key := range rec.Revisions {
@@ -193,6 +193,9 @@ func (l *Live) earlier(ctx context.Context, rec engine.Record) []Value {
 		v := valueOf(d.Gas.At(), d.Values[i], StatusSuperseded, key)
 		v.ReplacedBy = rec.Key
 		v.Why = "an input it was derived from was corrected"
+		if old.Superseded != nil {
+			v.Why = old.Superseded.Because
+		}
 		out = append(out, v)
 	}
 	return out
@@ -312,12 +315,12 @@ func (l *Live) Explain(ctx context.Context, id string) (Explanation, error) {
 		return Explanation{}, fmt.Errorf("ui: explain: %w", err)
 	}
 	if rec.Key != id && rec.Series != id {
-		// The engine answered an earlier key with the value that replaced
-		// it and keeps no explanation of the earlier version.
+		// An engine that no longer keeps the earlier version answers its
+		// key with the value that replaced it.
 		return Explanation{
 			ID: id, PatientID: PatientID(rec.Subject), Title: "An earlier version of a value",
 			Status: StatusSuperseded, ReplacedBy: rec.Key, Why: "an input it was derived from was corrected",
-			Notes:   []string{"this service keeps the explanation of the current version only"},
+			Notes:   []string{"this earlier version is no longer kept (past the retention); the value that replaced it is linked"},
 			History: history(rec),
 		}, nil
 	}
@@ -355,6 +358,14 @@ func (l *Live) Explain(ctx context.Context, id string) (Explanation, error) {
 	out.History = history(rec)
 	if status == StatusWithdrawn {
 		out.Why = rec.Payload.Why
+	}
+	if sup := rec.Superseded; sup != nil {
+		// An earlier version, explained as it was: say what replaced it.
+		out.Status, out.ReplacedBy, out.Why = StatusSuperseded, sup.Key, sup.Because
+		if out.Value != nil {
+			out.Value.Status, out.Value.ReplacedBy, out.Value.Why = StatusSuperseded, sup.Key, sup.Because
+		}
+		out.History = append(out.History[:len(out.History)-1], Revision{ID: rec.Key}, Revision{ID: sup.Key, Current: true})
 	}
 	return out, nil
 }
