@@ -119,3 +119,17 @@ func checkConsistent(tx *bolt.Tx) error {
 	}
 	return nil
 }
+
+// TestContractReplicas runs the replicas' guarantees on the one handle an
+// embedded store has: a process owns the file, so its "replicas" are
+// goroutines sharing that handle.
+func TestContractReplicas(t *testing.T) {
+	storetest.RunReplicas(t, func(t *testing.T) (store.Store, store.Store) {
+		s, err := Open(filepath.Join(t.TempDir(), "deadspace.db"), Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() { _ = s.Close() })
+		return s, s
+	})
+}

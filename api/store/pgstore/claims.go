@@ -23,16 +23,17 @@ type querier interface {
 	QueryRow(ctx context.Context, sql string, args ...any) pgx.Row
 }
 
-// markDirty marks a patient dirty: the earliest Since stands, the
+// markDirtySQL marks a patient dirty: the earliest Since stands, the
 // generation is a new one. A claim on the patient stays: the replica
 // evaluating it finds on commit that the generation moved, and leaves the
 // mark for the next evaluation.
+const markDirtySQL = `
+	INSERT INTO dirty (subject, since_ns, generation) VALUES ($1, $2, nextval('dirty_generation'))
+	ON CONFLICT (subject) DO UPDATE
+	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation`
+
 func markDirty(ctx context.Context, q querier, subject string, now time.Time) error {
-	_, err := q.Exec(ctx, `
-		INSERT INTO dirty (subject, since_ns, generation) VALUES ($1, $2, nextval('dirty_generation'))
-		ON CONFLICT (subject) DO UPDATE
-		   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation`,
-		subject, nanos(now))
+	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now))
 	return err
 }
 
@@ -41,10 +42,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 	if err := checkSubject(subject); err != nil {
 		return fmt.Errorf("pgstore.MarkDirty: %w", err)
 	}
-	if err := markDirty(ctx, s.pool, subject, now); err != nil {
-		return wrap("MarkDirty", err)
-	}
-	return nil
+	return s.run(ctx, "MarkDirty", func(q querier) error { return markDirty(ctx, q, subject, now) })
 }
 
 // DirtyPatients lists every dirty patient, claimed or not, by Since then

@@ -37,16 +37,26 @@ type Options struct {
 	// restarts: a restarted replica does not inherit its old claims, it
 	// waits for them to expire like any other replica.
 	Holder string
+	// WriteLease is how long a replica's claim on the outbox writes it is
+	// sending lasts (DefaultWriteLease when zero): a write whose replica
+	// died is sent by another after it. It must exceed the longest a send
+	// takes, retries included, or a slow write is sent twice (the
+	// conditional creates still keep it to one resource).
+	WriteLease time.Duration
 	// MaxConns caps the connection pool (pgxpool's default when zero; the
 	// URL's pool_max_conns also works).
 	MaxConns int32
 }
 
+// DefaultWriteLease is Options.WriteLease when unset.
+const DefaultWriteLease = 2 * time.Minute
+
 // Store is the PostgreSQL store. It is safe for concurrent use, and
 // several Stores (replicas) may share one database.
 type Store struct {
-	pool   *pgxpool.Pool
-	holder string
+	pool       *pgxpool.Pool
+	holder     string
+	writeLease time.Duration
 }
 
 // Open connects to the database at dsn (a postgres:// URL or key=value
@@ -77,7 +87,11 @@ func Open(ctx context.Context, dsn string, opts Options) (*Store, error) {
 	if holder == "" {
 		holder = defaultHolder()
 	}
-	return &Store{pool: pool, holder: holder}, nil
+	lease := opts.WriteLease
+	if lease <= 0 {
+		lease = DefaultWriteLease
+	}
+	return &Store{pool: pool, holder: holder, writeLease: lease}, nil
 }
 
 // Holder is the name this replica holds leases and claims under.

@@ -1,0 +1,317 @@
+package pgstore
+
+import (
+	"cmp"
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"strings"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+var _ store.Store = (*Store)(nil)
+
+// compareVersions orders two versions of one resource by the rule of
+// [store.Store.PutInputs]: later LastUpdated first; at equal instants,
+// version ids that are both decimal numbers compare as numbers, any others
+// as strings. +1 when a is newer than b, -1 when older, 0 when neither.
+// It is the embedded store's rule, and the contract suite holds both to
+// it.
+func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
+	if c := aTime.Compare(bTime); c != 0 {
+		return c
+	}
+	if isDecimal(aID) && isDecimal(bID) {
+		a, b := strings.TrimLeft(aID, "0"), strings.TrimLeft(bID, "0")
+		if c := cmp.Compare(len(a), len(b)); c != 0 {
+			return c
+		}
+		return strings.Compare(a, b)
+	}
+	return strings.Compare(aID, bID)
+}
+
+func isDecimal(s string) bool {
+	if s == "" {
+		return false
+	}
+	for i := range len(s) {
+		if s[i] < '0' || s[i] > '9' {
+			return false
+		}
+	}
+	return true
+}
+
+func putResult(exists bool, c int) store.PutResult {
+	switch {
+	case !exists:
+		return store.PutNew
+	case c > 0:
+		return store.PutNewer
+	case c == 0:
+		return store.PutSame
+	default:
+		return store.PutOlder
+	}
+}
+
+// lockKeys takes a transaction-scoped advisory lock on each name, in the
+// order of their lock keys so that two transactions locking overlapping
+// sets cannot deadlock. It is how PutInputs keeps its checks and writes
+// from interleaving with another replica's for the same resources.
+func lockKeys(ctx context.Context, tx pgx.Tx, names []string) error {
+	_, err := tx.Exec(ctx, `
+		SELECT pg_advisory_xact_lock(k)
+		  FROM (SELECT DISTINCT hashtextextended(n, 0) AS k FROM unnest($1::text[]) AS n ORDER BY k) AS keys`, names)
+	return err
+}
+
+type inputKey struct{ subject, logical string }
+
+type inputHead struct {
+	versionID   string
+	lastUpdated time.Time
+}
+
+// PutInputs stores the newer versions and marks their patients dirty, each
+// patient once per call, in one transaction that holds a lock per input
+// resource, so a concurrent call on another replica for the same resource
+// waits rather than interleaving its checks with these writes.
+func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Time) ([]store.PutResult, error) {
+	results := make([]store.PutResult, len(inputs))
+	if len(inputs) == 0 {
+		if err := ctx.Err(); err != nil {
+			return nil, fmt.Errorf("pgstore.PutInputs: %w", err)
+		}
+		return results, nil
+	}
+	subjects, logicals := make([]string, len(inputs)), make([]string, len(inputs))
+	for i, in := range inputs {
+		if err := checkSubject(in.Subject); err != nil {
+			return nil, fmt.Errorf("pgstore.PutInputs: input %d: %w", i, err)
+		}
+		if in.Logical == "" {
+			return nil, fmt.Errorf("pgstore.PutInputs: input %d: empty logical reference", i)
+		}
+		subjects[i], logicals[i] = in.Subject, in.Logical
+	}
+	err := s.inTx(ctx, "PutInputs", func(tx pgx.Tx) error {
+		if err := lockKeys(ctx, tx, logicals); err != nil {
+			return err
+		}
+		rows, err := tx.Query(ctx, `
+			SELECT i.subject, i.logical, i.version_id, i.last_updated_ns
+			  FROM inputs i JOIN unnest($1::text[], $2::text[]) AS w(subject, logical)
+			    ON i.subject = w.subject AND i.logical = w.logical`, subjects, logicals)
+		if err != nil {
+			return err
+		}
+		heads := map[inputKey]inputHead{}
+		var k inputKey
+		var h inputHead
+		var lu int64
+		_, err = pgx.ForEachRow(rows, []any{&k.subject, &k.logical, &h.versionID, &lu}, func() error {
+			h.lastUpdated = fromNanos(lu)
+			heads[k] = h
+			return nil
+		})
+		if err != nil {
+			return err
+		}
+		batch := &pgx.Batch{}
+		var changed []string
+		for i, in := range inputs {
+			key := inputKey{in.Subject, in.Logical}
+			old, exists := heads[key]
+			c := 0
+			if exists {
+				c = compareVersions(in.LastUpdated, in.VersionID, old.lastUpdated, old.versionID)
+			}
+			results[i] = putResult(exists, c)
+			if results[i] != store.PutNew && results[i] != store.PutNewer {
+				continue
+			}
+			heads[key] = inputHead{in.VersionID, in.LastUpdated}
+			payload := in.Payload
+			if payload == nil {
+				payload = []byte{}
+			}
+			batch.Queue(`
+				INSERT INTO inputs (subject, logical, version_id, last_updated_ns, effective_ns, payload)
+				VALUES ($1, $2, $3, $4, $5, $6)
+				ON CONFLICT (subject, logical) DO UPDATE
+				   SET version_id = EXCLUDED.version_id, last_updated_ns = EXCLUDED.last_updated_ns,
+				       effective_ns = EXCLUDED.effective_ns, payload = EXCLUDED.payload`,
+				in.Subject, in.Logical, in.VersionID, nanos(in.LastUpdated), nanos(in.EffectiveAt), payload)
+			batch.Queue(`
+				INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
+				ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject)
+			if !slices.Contains(changed, in.Subject) {
+				changed = append(changed, in.Subject)
+			}
+		}
+		for _, subject := range changed {
+			batch.Queue(markDirtySQL, subject, nanos(now))
+		}
+		if batch.Len() == 0 {
+			return nil
+		}
+		return tx.SendBatch(ctx, batch).Close()
+	})
+	if err != nil {
+		return nil, err
+	}
+	return results, nil
+}
+
+func scanInput(row pgx.CollectableRow) (store.Input, error) {
+	var in store.Input
+	var lu, eff int64
+	err := row.Scan(&in.Subject, &in.Logical, &in.VersionID, &lu, &eff, &in.Payload)
+	in.LastUpdated, in.EffectiveAt = fromNanos(lu), fromNanos(eff)
+	return in, err
+}
+
+const inputColumns = `subject, logical, version_id, last_updated_ns, effective_ns, payload`
+
+// Inputs returns the patient's inputs in Logical order.
+func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
+	var out []store.Input
+	err := s.run(ctx, "Inputs", func(q querier) error {
+		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE subject = $1 ORDER BY logical`, subject)
+		if err != nil {
+			return err
+		}
+		out, err = pgx.CollectRows(rows, scanInput)
+		return err
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Input returns one stored input, or ErrNotFound.
+func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input, error) {
+	var in store.Input
+	err := s.run(ctx, "Input", func(q querier) error {
+		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE subject = $1 AND logical = $2`, subject, logical)
+		if err != nil {
+			return err
+		}
+		in, err = pgx.CollectExactlyOneRow(rows, scanInput)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return notFound("input")
+		}
+		return err
+	})
+	return in, err
+}
+
+// Owner returns the subject under which the latest stored version of an
+// input was filed, or ErrNotFound.
+func (s *Store) Owner(ctx context.Context, logical string) (string, error) {
+	var subject string
+	err := s.run(ctx, "Owner", func(q querier) error {
+		err := q.QueryRow(ctx, `SELECT subject FROM input_owner WHERE logical = $1`, logical).Scan(&subject)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return notFound("input owner")
+		}
+		return err
+	})
+	if err != nil {
+		return "", err
+	}
+	return subject, nil
+}
+
+// PutPatient stores newer facts and marks the patient dirty. A fetch that
+// brings nothing newer still advances FetchedAt, as in the embedded store.
+func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) (store.PutResult, error) {
+	if err := checkSubject(p.Subject); err != nil {
+		return 0, fmt.Errorf("pgstore.PutPatient: %w", err)
+	}
+	var res store.PutResult
+	err := s.inTx(ctx, "PutPatient", func(tx pgx.Tx) error {
+		if err := lockKeys(ctx, tx, []string{"patient " + p.Subject}); err != nil {
+			return err
+		}
+		var oldID string
+		var oldUpdated, oldFetched int64
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns FROM patients WHERE subject = $1`, p.Subject).
+			Scan(&oldID, &oldUpdated, &oldFetched)
+		exists := err == nil
+		if err != nil && !errors.Is(err, pgx.ErrNoRows) {
+			return err
+		}
+		c := 0
+		if exists {
+			c = compareVersions(p.LastUpdated, p.VersionID, fromNanos(oldUpdated), oldID)
+		}
+		res = putResult(exists, c)
+		if exists && c <= 0 {
+			if nanos(p.FetchedAt) > oldFetched {
+				_, err := tx.Exec(ctx, `UPDATE patients SET fetched_at_ns = $2 WHERE subject = $1`, p.Subject, nanos(p.FetchedAt))
+				return err
+			}
+			return nil
+		}
+		payload := p.Payload
+		if payload == nil {
+			payload = []byte{}
+		}
+		if _, err := tx.Exec(ctx, `
+			INSERT INTO patients (subject, version_id, last_updated_ns, fetched_at_ns, payload) VALUES ($1, $2, $3, $4, $5)
+			ON CONFLICT (subject) DO UPDATE
+			   SET version_id = EXCLUDED.version_id, last_updated_ns = EXCLUDED.last_updated_ns,
+			       fetched_at_ns = EXCLUDED.fetched_at_ns, payload = EXCLUDED.payload`,
+			p.Subject, p.VersionID, nanos(p.LastUpdated), nanos(p.FetchedAt), payload); err != nil {
+			return err
+		}
+		return markDirty(ctx, tx, p.Subject, now)
+	})
+	if err != nil {
+		return 0, err
+	}
+	return res, nil
+}
+
+// Patient returns stored facts, or ErrNotFound.
+func (s *Store) Patient(ctx context.Context, subject string) (store.Patient, error) {
+	p := store.Patient{Subject: subject}
+	err := s.run(ctx, "Patient", func(q querier) error {
+		var lu, fetched int64
+		err := q.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns, payload FROM patients WHERE subject = $1`, subject).
+			Scan(&p.VersionID, &lu, &fetched, &p.Payload)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return notFound("patient")
+		}
+		p.LastUpdated, p.FetchedAt = fromNanos(lu), fromNanos(fetched)
+		return err
+	})
+	return p, err
+}
+
+// Prune deletes inputs whose EffectiveAt is before the horizon, and the
+// owner rows that pointed at exactly those copies.
+func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
+	var n int
+	err := s.inTx(ctx, "Prune", func(tx pgx.Tx) error {
+		return tx.QueryRow(ctx, `
+			WITH gone AS (
+				DELETE FROM inputs WHERE effective_ns < $1 RETURNING subject, logical),
+			owners AS (
+				DELETE FROM input_owner o USING gone WHERE o.logical = gone.logical AND o.subject = gone.subject)
+			SELECT count(*) FROM gone`, nanos(horizon)).Scan(&n)
+	})
+	if err != nil {
+		return 0, err
+	}
+	return n, nil
+}

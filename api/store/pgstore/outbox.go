@@ -1,0 +1,252 @@
+package pgstore
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"strconv"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+)
+
+const writeColumns = `id, subject, series, body, attempts, not_before_ns, created_ns, last_error`
+
+func scanWrite(row pgx.CollectableRow) (store.Write, error) {
+	var w store.Write
+	var id, nb, created int64
+	err := row.Scan(&id, &w.Subject, &w.Series, &w.Body, &w.Attempts, &nb, &created, &w.LastError)
+	w.ID, w.NotBefore, w.CreatedAt = uint64(id), fromNanos(nb), fromNanos(created)
+	if len(w.Series) == 0 {
+		w.Series = nil
+	}
+	return w, err
+}
+
+// DueWrites claims for this replica, for the write lease
+// (Options.WriteLease), up to limit writes due at now, oldest first, and
+// returns them. Writes another replica claimed are skipped while its lease
+// runs (FOR UPDATE SKIP LOCKED keeps replicas that claim at the same time
+// from waiting on each other); a write whose replica died is due again
+// once the lease lapses, and is then sent by whichever replica claims it.
+// The conditional creates keep a write sent twice from creating twice.
+// This replica's own claims stay due to it.
+func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]store.Write, error) {
+	if err := checkLimit(limit); err != nil {
+		return nil, fmt.Errorf("pgstore.DueWrites: %w", err)
+	}
+	var out []store.Write
+	err := s.run(ctx, "DueWrites", func(q querier) error {
+		rows, err := q.Query(ctx, `
+			WITH picked AS (
+				SELECT id FROM outbox
+				 WHERE not_before_ns <= $1
+				   AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
+				 ORDER BY id
+				 LIMIT $3
+				 FOR UPDATE SKIP LOCKED)
+			UPDATE outbox o
+			   SET claimed_by = $2, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
+			  FROM picked
+			 WHERE o.id = picked.id
+			RETURNING o.id, o.subject, o.series, o.body, o.attempts, o.not_before_ns, o.created_ns, o.last_error`,
+			nanos(now), s.holder, limit, s.writeLease.Microseconds())
+		if err != nil {
+			return err
+		}
+		out, err = pgx.CollectRows(rows, scanWrite)
+		return err
+	})
+	if err != nil {
+		return nil, err
+	}
+	slices.SortFunc(out, func(a, b store.Write) int { return compareIDs(a.ID, b.ID) })
+	return out, nil
+}
+
+func compareIDs(a, b uint64) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}
+
+func writeNotFound(id uint64) error { return notFound(fmt.Sprintf("write %d", id)) }
+
+// Acknowledge removes the write and records server ids. A series that is
+// not in the ledger fails the whole call, as in the embedded store. A
+// replica whose lease lapsed while its write was in flight may find the
+// write already acknowledged by the replica that took it over: that is
+// ErrNotFound, and nothing changes.
+func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error {
+	return s.inTx(ctx, "Acknowledge", func(tx pgx.Tx) error {
+		tag, err := tx.Exec(ctx, `DELETE FROM outbox WHERE id = $1`, int64(writeID))
+		if err != nil {
+			return err
+		}
+		if tag.RowsAffected() == 0 {
+			return writeNotFound(writeID)
+		}
+		for series, ids := range server {
+			tag, err := tx.Exec(ctx, `UPDATE ledger SET server_id = $2, server_version = $3 WHERE series = $1`, series, ids[0], ids[1])
+			if err != nil {
+				return err
+			}
+			if tag.RowsAffected() == 0 {
+				return fmt.Errorf("server ids for write %d: %w", writeID, notFound("ledger entry"))
+			}
+		}
+		return nil
+	})
+}
+
+// Reschedule records a failed attempt and gives the claim up, so the
+// retry goes to whichever replica is free when it is due.
+func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
+	return s.run(ctx, "Reschedule", func(q querier) error {
+		tag, err := q.Exec(ctx, `UPDATE outbox SET attempts = attempts + 1, not_before_ns = $2, last_error = $3,
+			claimed_by = NULL, claim_expires = NULL WHERE id = $1`, int64(writeID), nanos(notBefore), lastErr)
+		if err != nil {
+			return err
+		}
+		if tag.RowsAffected() == 0 {
+			return writeNotFound(writeID)
+		}
+		return nil
+	})
+}
+
+// Bury moves a write to the dead letters, in burial order.
+func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
+	return s.run(ctx, "Bury", func(q querier) error {
+		tag, err := q.Exec(ctx, `
+			WITH gone AS (DELETE FROM outbox WHERE id = $1 RETURNING *)
+			INSERT INTO dead_letters (write_id, subject, series, body, attempts, not_before_ns, created_ns, last_error, reason, at_ns)
+			SELECT id, subject, series, body, attempts, not_before_ns, created_ns, last_error, $2, $3 FROM gone`,
+			int64(writeID), reason, nanos(now))
+		if err != nil {
+			return err
+		}
+		if tag.RowsAffected() == 0 {
+			return writeNotFound(writeID)
+		}
+		return nil
+	})
+}
+
+// DeadLetters lists dead letters in burial order.
+func (s *Store) DeadLetters(ctx context.Context, limit int) ([]store.DeadLetter, error) {
+	if err := checkLimit(limit); err != nil {
+		return nil, fmt.Errorf("pgstore.DeadLetters: %w", err)
+	}
+	var out []store.DeadLetter
+	err := s.run(ctx, "DeadLetters", func(q querier) error {
+		rows, err := q.Query(ctx, `SELECT write_id, subject, series, body, attempts, not_before_ns, created_ns, last_error, reason, at_ns
+			FROM dead_letters ORDER BY seq LIMIT $1`, limit)
+		if err != nil {
+			return err
+		}
+		out, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (store.DeadLetter, error) {
+			var dl store.DeadLetter
+			var id, nb, created, at int64
+			err := row.Scan(&id, &dl.Subject, &dl.Series, &dl.Body, &dl.Attempts, &nb, &created, &dl.LastError, &dl.Reason, &at)
+			dl.ID, dl.NotBefore, dl.CreatedAt, dl.At = uint64(id), fromNanos(nb), fromNanos(created), fromNanos(at)
+			if len(dl.Series) == 0 {
+				dl.Series = nil
+			}
+			return dl, err
+		})
+		return err
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Stats counts in one statement, so the figures are of one snapshot.
+func (s *Store) Stats(ctx context.Context) (store.Stats, error) {
+	var st store.Stats
+	err := s.run(ctx, "Stats", func(q querier) error {
+		var oldest *int64
+		err := q.QueryRow(ctx, `SELECT (SELECT count(*) FROM outbox), (SELECT min(created_ns) FROM outbox),
+			(SELECT count(*) FROM dead_letters), (SELECT count(*) FROM dirty)`).
+			Scan(&st.OutboxDepth, &oldest, &st.DeadLetters, &st.DirtyPatients)
+		if oldest != nil {
+			st.OldestWrite = fromNanos(*oldest)
+		}
+		return err
+	})
+	return st, err
+}
+
+// Cursor returns a named value, "" when unset.
+func (s *Store) Cursor(ctx context.Context, name string) (string, error) {
+	var v string
+	err := s.run(ctx, "Cursor", func(q querier) error {
+		err := q.QueryRow(ctx, `SELECT value FROM cursors WHERE name = $1`, name).Scan(&v)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return nil
+		}
+		return err
+	})
+	return v, err
+}
+
+// SetCursor sets a named value; "" removes it, which reads back the same.
+func (s *Store) SetCursor(ctx context.Context, name, value string) error {
+	if name == "" {
+		return errors.New("pgstore.SetCursor: empty cursor name")
+	}
+	return s.run(ctx, "SetCursor", func(q querier) error {
+		if value == "" {
+			_, err := q.Exec(ctx, `DELETE FROM cursors WHERE name = $1`, name)
+			return err
+		}
+		_, err := q.Exec(ctx, `INSERT INTO cursors (name, value) VALUES ($1, $2) ON CONFLICT (name) DO UPDATE SET value = EXCLUDED.value`,
+			name, value)
+		return err
+	})
+}
+
+// SeenEvent keeps the highest number seen; a lower or repeated number (a
+// redelivery, possibly to another replica) leaves it alone. The row lock
+// makes two replicas receiving the same event agree on which saw it
+// first.
+func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
+	if subscription == "" {
+		return 0, errors.New("pgstore.SeenEvent: empty subscription")
+	}
+	var prev uint64
+	err := s.inTx(ctx, "SeenEvent", func(tx pgx.Tx) error {
+		if _, err := tx.Exec(ctx, `INSERT INTO subscription_events (subscription, highest) VALUES ($1, 0) ON CONFLICT DO NOTHING`,
+			subscription); err != nil {
+			return err
+		}
+		var highest string
+		if err := tx.QueryRow(ctx, `SELECT highest::text FROM subscription_events WHERE subscription = $1 FOR UPDATE`,
+			subscription).Scan(&highest); err != nil {
+			return err
+		}
+		var err error
+		if prev, err = strconv.ParseUint(highest, 10, 64); err != nil {
+			return fmt.Errorf("stored event number %q: %w", highest, err)
+		}
+		if number <= prev {
+			return nil
+		}
+		_, err = tx.Exec(ctx, `UPDATE subscription_events SET highest = $2::numeric WHERE subscription = $1`,
+			subscription, strconv.FormatUint(number, 10))
+		return err
+	})
+	if err != nil {
+		return 0, err
+	}
+	return prev, nil
+}

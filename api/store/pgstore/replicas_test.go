@@ -1,0 +1,156 @@
+package pgstore
+
+import (
+	"errors"
+	"slices"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
+)
+
+var t0 = time.Date(2024, 3, 14, 2, 0, 0, 0, time.UTC)
+
+func openWithLease(t *testing.T, url, holder string, lease time.Duration) *Store {
+	t.Helper()
+	s, err := Open(t.Context(), url, Options{Holder: holder, WriteLease: lease})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = s.Close() })
+	return s
+}
+
+func ids(ws []store.Write) []uint64 {
+	var out []uint64
+	for _, w := range ws {
+		out = append(out, w.ID)
+	}
+	return out
+}
+
+// A write claimed by a replica that then dies (it never acknowledges nor
+// reschedules) is not sent by another replica while the lease runs, and is
+// sent by one after it lapses. The dead replica's late acknowledgement, if
+// it ever comes, finds the write gone and changes nothing.
+func TestOutboxTakeOverAfterLease(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a := openWithLease(t, url, "replica-a", 300*time.Millisecond)
+	b := openWithLease(t, url, "replica-b", time.Minute)
+	ctx := t.Context()
+	const subj = "Patient/o"
+	if err := a.Commit(ctx, store.Change{Subject: subj,
+		Entries: []store.Entry{{Series: "s1", Key: "k1", Status: "final", EffectiveAt: t0}, {Series: "s2", Key: "k2", Status: "final", EffectiveAt: t0}},
+		Writes:  []store.Write{{Series: []string{"s1"}, Body: []byte("w1")}, {Series: []string{"s2"}, Body: []byte("w2")}},
+	}, t0); err != nil {
+		t.Fatal(err)
+	}
+
+	claimedByA, err := a.DueWrites(ctx, t0, 1)
+	if err != nil || len(claimedByA) != 1 {
+		t.Fatalf("A claims %v, %v; want one write", ids(claimedByA), err)
+	}
+	fromB, err := b.DueWrites(ctx, t0, 10)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if slices.Contains(ids(fromB), claimedByA[0].ID) || len(fromB) != 1 {
+		t.Fatalf("B gets %v while A's lease on %d runs; want only the other write", ids(fromB), claimedByA[0].ID)
+	}
+	if again, _ := b.DueWrites(ctx, t0, 10); len(again) != 1 || again[0].ID != fromB[0].ID {
+		t.Fatalf("B asks again: %v, want its own claim %d still due to it", ids(again), fromB[0].ID)
+	}
+
+	// A dies holding its claim. Once the lease has lapsed on the
+	// database's clock, B takes the write over.
+	var expires time.Time
+	if err := a.pool.QueryRow(ctx, "SELECT claim_expires FROM outbox WHERE id = $1", int64(claimedByA[0].ID)).Scan(&expires); err != nil {
+		t.Fatal(err)
+	}
+	waitExpired(t, b, expires)
+	takenOver, err := b.DueWrites(ctx, t0, 10)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Contains(ids(takenOver), claimedByA[0].ID) {
+		t.Fatalf("B after A's lease lapsed gets %v, want A's write %d", ids(takenOver), claimedByA[0].ID)
+	}
+	if fromA, _ := a.DueWrites(ctx, t0, 10); len(fromA) != 0 {
+		t.Fatalf("A (back from the dead) gets %v while B holds every write", ids(fromA))
+	}
+	for _, w := range takenOver {
+		if err := b.Acknowledge(ctx, w.ID, map[string][2]string{w.Series[0]: {"obs-" + w.Series[0], "1"}}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := a.Acknowledge(ctx, claimedByA[0].ID, map[string][2]string{"s1": {"obs-late", "9"}}); !errors.Is(err, store.ErrNotFound) {
+		t.Fatalf("A's late acknowledgement: %v, want ErrNotFound", err)
+	}
+	if en, _ := a.Entry(ctx, claimedByA[0].Series[0]); en.ServerID != "obs-"+claimedByA[0].Series[0] {
+		t.Fatalf("the late acknowledgement changed the server id to %q", en.ServerID)
+	}
+	if st, _ := a.Stats(ctx); st.OutboxDepth != 0 {
+		t.Fatalf("outbox depth %d after every write was acknowledged", st.OutboxDepth)
+	}
+}
+
+// A rescheduled write is free for any replica when it is due again: the
+// replica that failed it need not be the one to retry.
+func TestOutboxRescheduleReleasesClaim(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	if err := a.Commit(ctx, store.Change{Subject: "Patient/r", Writes: []store.Write{{Body: []byte("w")}}}, t0); err != nil {
+		t.Fatal(err)
+	}
+	ws, err := a.DueWrites(ctx, t0, 10)
+	if err != nil || len(ws) != 1 {
+		t.Fatalf("A claims %v, %v", ids(ws), err)
+	}
+	if err := a.Reschedule(ctx, ws[0].ID, t0.Add(time.Minute), "503"); err != nil {
+		t.Fatal(err)
+	}
+	got, err := b.DueWrites(ctx, t0.Add(time.Minute), 10)
+	if err != nil || len(got) != 1 || got[0].Attempts != 1 {
+		t.Fatalf("B after A rescheduled: %+v, %v; want the write with one attempt", got, err)
+	}
+}
+
+// A replica whose evaluation was overtaken by new input commits with the
+// old generation: the patient stays dirty and its claim is released, so
+// any replica evaluates the new input at once.
+func TestCommitReleasesClaimWhenStillDirty(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	const subj = "Patient/c"
+	if err := a.MarkDirty(ctx, subj, t0); err != nil {
+		t.Fatal(err)
+	}
+	claimed, err := a.ClaimDirty(ctx, t0, 10, time.Minute)
+	if err != nil || len(claimed) != 1 {
+		t.Fatalf("A claims %v, %v", claimed, err)
+	}
+	// New input arrives at B while A evaluates.
+	if _, err := b.PutInputs(ctx, []store.Input{{Subject: subj, Logical: "Observation/1", VersionID: "1", LastUpdated: t0, EffectiveAt: t0}}, t0); err != nil {
+		t.Fatal(err)
+	}
+	if got, _ := b.ClaimDirty(ctx, t0.Add(time.Hour), 10, time.Minute); len(got) != 0 {
+		t.Fatalf("B claims %v while A evaluates", got)
+	}
+	if err := a.Commit(ctx, store.Change{Subject: subj, Generation: claimed[0].Generation}, t0.Add(time.Second)); err != nil {
+		t.Fatal(err)
+	}
+	got, err := b.ClaimDirty(ctx, t0.Add(time.Hour), 10, time.Minute)
+	if err != nil || len(got) != 1 || got[0].Subject != subj || got[0].Generation <= claimed[0].Generation {
+		t.Fatalf("B after A's overtaken commit claims %+v, %v; want the patient with a newer generation", got, err)
+	}
+	// B's commit with the current generation clears the mark and claim.
+	if err := b.Commit(ctx, store.Change{Subject: subj, Generation: got[0].Generation}, t0.Add(2*time.Second)); err != nil {
+		t.Fatal(err)
+	}
+	if ds, _ := a.DirtyPatients(ctx); len(ds) != 0 {
+		t.Fatalf("still dirty after an up-to-date commit: %v", ds)
+	}
+}
