@@ -1,51 +1,24 @@
 package pgstore
 
 import (
-	"cmp"
 	"context"
 	"errors"
 	"fmt"
 	"slices"
-	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 var _ store.Store = (*Store)(nil)
 
-// compareVersions orders two versions of one resource by the rule of
-// [store.Store.PutInputs]: later LastUpdated first; at equal instants,
-// version ids that are both decimal numbers compare as numbers, any others
-// as strings. +1 when a is newer than b, -1 when older, 0 when neither.
-// It is the embedded store's rule, and the contract suite holds both to
-// it.
+// compareVersions orders two versions of one resource by the one rule,
+// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
 func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	if c := aTime.Compare(bTime); c != 0 {
-		return c
-	}
-	if isDecimal(aID) && isDecimal(bID) {
-		a, b := strings.TrimLeft(aID, "0"), strings.TrimLeft(bID, "0")
-		if c := cmp.Compare(len(a), len(b)); c != 0 {
-			return c
-		}
-		return strings.Compare(a, b)
-	}
-	return strings.Compare(aID, bID)
-}
-
-func isDecimal(s string) bool {
-	if s == "" {
-		return false
-	}
-	for i := range len(s) {
-		if s[i] < '0' || s[i] > '9' {
-			return false
-		}
-	}
-	return true
+	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
 }
 
 func putResult(exists bool, c int) store.PutResult {
@@ -72,17 +45,12 @@ func lockKeys(ctx context.Context, tx pgx.Tx, names []string) error {
 	return err
 }
 
-type inputKey struct{ subject, logical string }
-
-type inputHead struct {
-	versionID   string
-	lastUpdated time.Time
-}
-
 // PutInputs stores the newer versions and marks their patients dirty, each
 // patient once per call, in one transaction that holds a lock per input
-// resource, so a concurrent call on another replica for the same resource
-// waits rather than interleaving its checks with these writes.
+// resource: a concurrent call on another replica for the same resource
+// waits rather than interleaving its checks with these writes. The version
+// to beat is the latest stored under any patient (input_owner names where
+// it is), so the order of versions is one across patients.
 func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Time) ([]store.PutResult, error) {
 	results := make([]store.PutResult, len(inputs))
 	if len(inputs) == 0 {
@@ -91,7 +59,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		}
 		return results, nil
 	}
-	subjects, logicals := make([]string, len(inputs)), make([]string, len(inputs))
+	logicals := make([]string, len(inputs))
 	for i, in := range inputs {
 		if err := checkSubject(in.Subject); err != nil {
 			return nil, fmt.Errorf("pgstore.PutInputs: input %d: %w", i, err)
@@ -99,75 +67,108 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		if in.Logical == "" {
 			return nil, fmt.Errorf("pgstore.PutInputs: input %d: empty logical reference", i)
 		}
-		subjects[i], logicals[i] = in.Subject, in.Logical
+		logicals[i] = in.Logical
 	}
 	err := s.inTx(ctx, "PutInputs", func(tx pgx.Tx) error {
 		if err := lockKeys(ctx, tx, logicals); err != nil {
 			return err
 		}
-		rows, err := tx.Query(ctx, `
-			SELECT i.subject, i.logical, i.version_id, i.last_updated_ns
-			  FROM inputs i JOIN unnest($1::text[], $2::text[]) AS w(subject, logical)
-			    ON i.subject = w.subject AND i.logical = w.logical`, subjects, logicals)
-		if err != nil {
-			return err
-		}
-		heads := map[inputKey]inputHead{}
-		var k inputKey
-		var h inputHead
-		var lu int64
-		_, err = pgx.ForEachRow(rows, []any{&k.subject, &k.logical, &h.versionID, &lu}, func() error {
-			h.lastUpdated = fromNanos(lu)
-			heads[k] = h
-			return nil
-		})
-		if err != nil {
-			return err
-		}
-		batch := &pgx.Batch{}
 		var changed []string
 		for i, in := range inputs {
-			key := inputKey{in.Subject, in.Logical}
-			old, exists := heads[key]
-			c := 0
-			if exists {
-				c = compareVersions(in.LastUpdated, in.VersionID, old.lastUpdated, old.versionID)
+			res, touched, err := putInput(ctx, tx, in)
+			if err != nil {
+				return fmt.Errorf("input %d: %w", i, err)
 			}
-			results[i] = putResult(exists, c)
-			if results[i] != store.PutNew && results[i] != store.PutNewer {
-				continue
-			}
-			heads[key] = inputHead{in.VersionID, in.LastUpdated}
-			payload := in.Payload
-			if payload == nil {
-				payload = []byte{}
-			}
-			batch.Queue(`
-				INSERT INTO inputs (subject, logical, version_id, last_updated_ns, effective_ns, payload)
-				VALUES ($1, $2, $3, $4, $5, $6)
-				ON CONFLICT (subject, logical) DO UPDATE
-				   SET version_id = EXCLUDED.version_id, last_updated_ns = EXCLUDED.last_updated_ns,
-				       effective_ns = EXCLUDED.effective_ns, payload = EXCLUDED.payload`,
-				in.Subject, in.Logical, in.VersionID, nanos(in.LastUpdated), nanos(in.EffectiveAt), payload)
-			batch.Queue(`
-				INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
-				ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject)
-			if !slices.Contains(changed, in.Subject) {
-				changed = append(changed, in.Subject)
+			results[i] = res
+			for _, subject := range touched {
+				if !slices.Contains(changed, subject) {
+					changed = append(changed, subject)
+				}
 			}
 		}
 		for _, subject := range changed {
-			batch.Queue(markDirtySQL, subject, nanos(now))
+			if err := markDirty(ctx, tx, subject, now); err != nil {
+				return err
+			}
 		}
-		if batch.Len() == 0 {
-			return nil
-		}
-		return tx.SendBatch(ctx, batch).Close()
+		return nil
 	})
 	if err != nil {
 		return nil, err
 	}
 	return results, nil
+}
+
+// putInput applies one input under the resource's lock and returns the
+// subjects whose inputs changed (the embedded store's rule, step for
+// step).
+func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, []string, error) {
+	var owner string
+	err := tx.QueryRow(ctx, `SELECT subject FROM input_owner WHERE logical = $1`, in.Logical).Scan(&owner)
+	if err != nil && !errors.Is(err, pgx.ErrNoRows) {
+		return 0, nil, err
+	}
+	// The latest version under the owner decides across patients; the copy
+	// under this subject (if the owner row went with a prune) decides too.
+	exists, ownerHasCopy := false, false
+	for _, subject := range []string{owner, in.Subject} {
+		if subject == "" {
+			continue
+		}
+		var id string
+		var lu int64
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns FROM inputs WHERE subject = $1 AND logical = $2`,
+			subject, in.Logical).Scan(&id, &lu)
+		if errors.Is(err, pgx.ErrNoRows) {
+			continue
+		}
+		if err != nil {
+			return 0, nil, err
+		}
+		exists = true
+		if subject == owner {
+			ownerHasCopy = true
+		}
+		if c := compareVersions(in.LastUpdated, in.VersionID, fromNanos(lu), id); c <= 0 {
+			return putResult(true, c), nil, nil
+		}
+	}
+	if in.OnlyReplaces && !exists {
+		return store.PutSkipped, nil, nil
+	}
+	touched := []string{in.Subject}
+	res := putResult(exists, 1)
+	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
+		moved := in
+		moved.Subject, moved.Payload = owner, in.Withdrawal
+		if err := writeInput(ctx, tx, moved); err != nil {
+			return 0, nil, err
+		}
+		touched = append(touched, owner)
+		res = store.PutMoved
+	}
+	if err := writeInput(ctx, tx, in); err != nil {
+		return 0, nil, err
+	}
+	_, err = tx.Exec(ctx, `INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
+		ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject)
+	return res, touched, err
+}
+
+// writeInput replaces the copy under in.Subject.
+func writeInput(ctx context.Context, tx pgx.Tx, in store.Input) error {
+	payload := in.Payload
+	if payload == nil {
+		payload = []byte{}
+	}
+	_, err := tx.Exec(ctx, `
+		INSERT INTO inputs (subject, logical, version_id, last_updated_ns, effective_ns, payload)
+		VALUES ($1, $2, $3, $4, $5, $6)
+		ON CONFLICT (subject, logical) DO UPDATE
+		   SET version_id = EXCLUDED.version_id, last_updated_ns = EXCLUDED.last_updated_ns,
+		       effective_ns = EXCLUDED.effective_ns, payload = EXCLUDED.payload`,
+		in.Subject, in.Logical, in.VersionID, nanos(in.LastUpdated), nanos(in.EffectiveAt), payload)
+	return err
 }
 
 func scanInput(row pgx.CollectableRow) (store.Input, error) {

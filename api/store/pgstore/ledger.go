@@ -28,7 +28,9 @@ func scanEntry(row pgx.CollectableRow) (store.Entry, error) {
 
 // Commit applies one evaluation in one transaction: it locks the ledger
 // rows of the change's series (in series order, so overlapping commits
-// cannot deadlock), writes entries, keys, outbox rows and the dirty mark,
+// cannot deadlock), checks what the change expected of them (ErrConflict,
+// with nothing applied, when another evaluation on any replica committed
+// first), writes entries, keys, outbox rows and the dirty mark,
 // and appends the feed last, holding the feed head only for the end of the
 // transaction.
 func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) error {
@@ -51,18 +53,38 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 		if en.UpdatedAt.IsZero() {
 			en.UpdatedAt = now
 		}
+		if change.Expect != nil {
+			// With expectations, an entry without one would be written
+			// blind.
+			if _, ok := change.Expect[en.Series]; !ok {
+				return fmt.Errorf("pgstore.Commit: entry %d: no expectation for its series", i)
+			}
+		}
 		series = append(series, en.Series)
+	}
+	for se := range change.Expect {
+		series = append(series, se)
 	}
 	return s.inTx(ctx, "Commit", func(tx pgx.Tx) error {
 		old, err := lockEntries(ctx, tx, series)
 		if err != nil {
 			return err
 		}
+		for se, want := range change.Expect {
+			var got store.Expect
+			if en, ok := old[se]; ok {
+				got = store.Expect{Key: en.Key, Status: en.Status}
+			}
+			if got != want {
+				return store.ErrConflict
+			}
+		}
 		for i, en := range entries {
 			prev, exists := old[en.Series]
 			if !exists {
 				// No row to lock yet: a concurrent commit may create the
-				// series first, and then this one must build on it.
+				// series first. Then this one conflicts if it expected the
+				// series absent, or else builds on what that one wrote.
 				tag, err := insertEntry(ctx, tx, en)
 				if err != nil {
 					return fmt.Errorf("entry %d: %w", i, err)
@@ -73,6 +95,9 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 						return err
 					}
 					continue
+				}
+				if change.Expect != nil {
+					return store.ErrConflict
 				}
 				again, err := lockEntries(ctx, tx, []string{en.Series})
 				if err != nil {
