@@ -26,6 +26,7 @@ type Config struct {
 	FHIRTokenFile  string
 	Listen         string
 	DataDir        string
+	Store          string // secret when it carries a password: prefer DEADSPACE_STORE
 	WebhookSecret  string // secret: from the flag, DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file
 	WebhookSecFile string
 	WebhookHeader  string
@@ -103,6 +104,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	c.BindFHIR(fs)
 	fs.StringVar(&c.Listen, "listen", "127.0.0.1:8080", "HTTP address for the webhook, /healthz and /readyz")
 	fs.StringVar(&c.DataDir, "data-dir", "deadspace-data", "directory of the embedded store")
+	fs.StringVar(&c.Store, "store", "", "where the service keeps its state: empty for the embedded store in --data-dir, or a postgres:// URL for replicas that share one PostgreSQL database (prefer DEADSPACE_STORE, which keeps the password out of the process list)")
 	fs.StringVar(&c.WebhookSecret, "webhook-secret", "", "shared secret the FHIR server sends with each notification (prefer DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file)")
 	fs.StringVar(&c.WebhookSecFile, "webhook-secret-file", "", "file holding the webhook secret")
 	fs.StringVar(&c.WebhookHeader, "webhook-header", "Authorization", "header carrying the secret: Authorization means \"Bearer <secret>\"; any other header carries the secret itself")
@@ -296,8 +298,17 @@ func (c *Config) Validate() error {
 	if _, _, err := net.SplitHostPort(c.Listen); err != nil {
 		errs = append(errs, fmt.Errorf("--listen: %w", err))
 	}
-	if c.DataDir == "" {
-		errs = append(errs, errors.New("--data-dir is required"))
+	if c.Store != "" {
+		// The URL may carry a password: name its scheme only.
+		u, err := url.Parse(c.Store)
+		switch {
+		case err != nil:
+			errs = append(errs, errors.New("--store must be a postgres:// URL, and this one does not parse"))
+		case u.Scheme != "postgres" && u.Scheme != "postgresql":
+			errs = append(errs, fmt.Errorf("--store must be a postgres:// URL (or empty for the embedded store), got scheme %q", u.Scheme))
+		}
+	} else if c.DataDir == "" {
+		errs = append(errs, errors.New("--data-dir is required for the embedded store"))
 	}
 	if c.WebhookHeader == "" || strings.ContainsAny(c.WebhookHeader, " :\r\n") {
 		errs = append(errs, fmt.Errorf("--webhook-header must be a header name, got %q", c.WebhookHeader))

@@ -20,7 +20,9 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/grpcapi"
 	"github.com/deadspace-fhir/deadspace/api/metrics"
+	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/api/store/pgstore"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
@@ -37,7 +39,7 @@ type Service struct {
 	cfg    Config
 	log    *slog.Logger
 	engine *engine.Engine
-	store  *boltstore.Store
+	store  store.Store
 	http   *http.Server
 	ln     net.Listener
 	client *client.Client
@@ -118,7 +120,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 			return nil, err
 		}
 	}
-	s.store, err = boltstore.Open(filepath.Join(cfg.DataDir, "deadspace.db"), boltstore.Options{})
+	s.store, err = openStore(cfg)
 	if err != nil {
 		return nil, err
 	}
@@ -254,6 +256,53 @@ func (s *Service) publishCodeSystem(ctx context.Context) {
 	}
 }
 
+// storeOpenTimeout bounds connecting to PostgreSQL and migrating its
+// schema at start, waits for other replicas' migrations included.
+const storeOpenTimeout = time.Minute
+
+// openStore opens the embedded store in --data-dir, or PostgreSQL when
+// --store names a database.
+func openStore(cfg Config) (store.Store, error) {
+	if cfg.Store == "" {
+		bs, err := boltstore.Open(filepath.Join(cfg.DataDir, "deadspace.db"), boltstore.Options{})
+		if err != nil {
+			return nil, err
+		}
+		return bs, nil
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), storeOpenTimeout)
+	defer cancel()
+	ps, err := pgstore.Open(ctx, cfg.Store, pgstore.Options{})
+	if err != nil {
+		return nil, fmt.Errorf("--store: %w", err)
+	}
+	return ps, nil
+}
+
+// registrationLease is how long one replica keeps the right to register
+// the Subscription; replicas that start together register it once.
+const registrationLease = 5 * time.Minute
+
+// mayRegister says whether this replica registers the Subscription: always
+// with the embedded store (one replica), and with PostgreSQL only the
+// replica that holds the registration lease, so replicas starting together
+// do not create it twice.
+func (s *Service) mayRegister(ctx context.Context) bool {
+	ps, ok := s.store.(*pgstore.Store)
+	if !ok {
+		return true
+	}
+	if _, err := ps.AcquireLease(ctx, "register-subscription", registrationLease); err != nil {
+		if errors.Is(err, pgstore.ErrLeaseHeld) {
+			s.log.InfoContext(ctx, "another replica registers the subscription")
+		} else {
+			s.log.ErrorContext(ctx, "could not take the registration lease; not registering", "err", err)
+		}
+		return false
+	}
+	return true
+}
+
 // observeFHIR feeds every FHIR request to the metrics and to readiness.
 func (s *Service) observeFHIR(op string, status int, dur time.Duration) {
 	s.up.observe(op, status, dur)
@@ -292,7 +341,7 @@ func (s *Service) Engine() *engine.Engine { return s.engine }
 // Run serves until ctx is done, then stops taking input, lets in-flight
 // requests finish, stops the engine and closes the store.
 func (s *Service) Run(ctx context.Context) error {
-	if s.cfg.Register {
+	if s.cfg.Register && s.mayRegister(ctx) {
 		if err := s.register(ctx); err != nil {
 			s.log.ErrorContext(ctx, "registering the subscription failed; polling and catch-up still run", "err", err)
 		}

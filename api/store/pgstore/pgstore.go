@@ -23,6 +23,7 @@ import (
 	"encoding/hex"
 	"errors"
 	"fmt"
+	"math"
 	"net/url"
 	"os"
 	"time"
@@ -138,10 +139,24 @@ func wrap(op string, err error) error {
 	return fmt.Errorf("pgstore: %s: %w", op, err)
 }
 
-// nanos and fromNanos keep instants exactly (see the package comment).
+// Instants outside what int64 nanoseconds since 1970 hold (1678 to 2262)
+// are clamped to its ends: callers use such instants only as "before
+// everything" or "after everything" (DueWrites with a far-future now).
+var (
+	latestNanos   = time.Unix(0, math.MaxInt64)
+	earliestNanos = time.Unix(0, math.MinInt64+1)
+)
+
+// nanos and fromNanos keep instants exactly (see the package comment); the
+// zero time is 0.
 func nanos(t time.Time) int64 {
-	if t.IsZero() {
+	switch {
+	case t.IsZero():
 		return 0
+	case t.After(latestNanos):
+		return math.MaxInt64
+	case t.Before(earliestNanos):
+		return math.MinInt64 + 1
 	}
 	return t.UnixNano()
 }

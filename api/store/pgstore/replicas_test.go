@@ -154,3 +154,24 @@ func TestCommitReleasesClaimWhenStillDirty(t *testing.T) {
 		t.Fatalf("still dirty after an up-to-date commit: %v", ds)
 	}
 }
+
+// The engine lists the whole outbox by asking for the writes due at a
+// far-future instant (year 9999), beyond what nanoseconds since 1970 hold:
+// such an instant must mean "after everything", not wrap around.
+func TestDueWritesFarFuture(t *testing.T) {
+	s := openAs(t, pgtest.NewSchema(t), "replica-a")
+	ctx := t.Context()
+	later := store.Write{Body: []byte("w"), NotBefore: t0.Add(24 * time.Hour)}
+	if err := s.Commit(ctx, store.Change{Subject: "Patient/f", Writes: []store.Write{{Body: []byte("now")}, later}}, t0); err != nil {
+		t.Fatal(err)
+	}
+	for _, at := range []time.Time{time.Date(9999, 1, 1, 0, 0, 0, 0, time.UTC), time.Date(2263, 1, 1, 0, 0, 0, 0, time.UTC)} {
+		ws, err := s.DueWrites(ctx, at, 10)
+		if err != nil || len(ws) != 2 {
+			t.Errorf("DueWrites at %v: %d writes, %v; want both", at, len(ws), err)
+		}
+	}
+	if ws, _ := s.DueWrites(ctx, time.Date(1600, 1, 1, 0, 0, 0, 0, time.UTC), 10); len(ws) != 0 {
+		t.Errorf("DueWrites in 1600: %d writes, want none", len(ws))
+	}
+}

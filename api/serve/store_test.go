@@ -1,0 +1,103 @@
+package serve_test
+
+import (
+	"errors"
+	"flag"
+	"io"
+	"net/http"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
+)
+
+// envConfig is serve's configuration from the environment alone, as a
+// container gets it.
+func envConfig(env map[string]string) (serve.Config, error) {
+	fs := flag.NewFlagSet("serve", flag.ContinueOnError)
+	fs.SetOutput(io.Discard)
+	var cfg serve.Config
+	cfg.Bind(fs)
+	if err := fs.Parse(nil); err != nil {
+		return cfg, err
+	}
+	err := cfg.ApplyEnv(fs, func(k string) string { return env[k] })
+	return cfg, errors.Join(err, cfg.Validate())
+}
+
+// --store picks the store; a refusal names what is wrong without echoing
+// the URL, which may carry a password.
+func TestStoreSetting(t *testing.T) {
+	const password = "hunter2-do-not-print"
+	tests := []struct {
+		name  string
+		env   map[string]string
+		valid bool
+	}{
+		{"embedded by default", map[string]string{}, true},
+		{"postgres URL", map[string]string{"DEADSPACE_STORE": "postgres://deadspace:" + password + "@db:5432/deadspace?sslmode=verify-full"}, true},
+		{"postgresql scheme", map[string]string{"DEADSPACE_STORE": "postgresql://db/deadspace"}, true},
+		{"other scheme", map[string]string{"DEADSPACE_STORE": "mysql://deadspace:" + password + "@db/deadspace"}, false},
+		{"not a URL", map[string]string{"DEADSPACE_STORE": "postgres://deadspace:" + password + "@db:port/x"}, false},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			env := map[string]string{"DEADSPACE_WEBHOOK_SECRET": strings.Repeat("s", 32)}
+			for k, v := range tc.env {
+				env[k] = v
+			}
+			cfg, err := envConfig(env)
+			if tc.valid && err != nil {
+				t.Fatalf("refused: %v", err)
+			}
+			if !tc.valid && err == nil {
+				t.Fatalf("accepted %v", tc.env)
+			}
+			if err != nil && strings.Contains(err.Error(), password) {
+				t.Errorf("the refusal prints the password: %v", err)
+			}
+			if want := env["DEADSPACE_STORE"]; cfg.Store != want {
+				t.Errorf("Store = %q, want %q", cfg.Store, want)
+			}
+		})
+	}
+}
+
+// Three replicas on one PostgreSQL database, the same notification
+// delivered to each, twice (a sender retrying against another replica behind the load
+// balancer): the FHIR server ends with one of each derived Observation and
+// one Provenance, and nothing is left to do on either replica.
+func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
+	peer := fhirtest.Start(t)
+	url := pgtest.NewSchema(t)
+	var replicas []*service
+	for range 3 {
+		cfg := testConfig(peer.BaseURL, "")
+		cfg.Store = url
+		replicas = append(replicas, start(t, cfg))
+	}
+	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
+	note := notification("Subscription/r", 1, b.resources)
+	for round := range 2 {
+		for i, s := range replicas {
+			if code, body := post(t, s.url, http.MethodPost, "/notify", note, secret); code != http.StatusOK {
+				t.Fatalf("round %d, replica %d: HTTP %d: %s", round, i, code, body)
+			}
+		}
+	}
+	for _, s := range replicas {
+		waitIdle(t, s)
+	}
+	st := stateOf(t, peer)
+	if n := len(st.derivedFor(b.subject)); n != wantValues || len(st.provenances) != 1 || st.devices != 1 {
+		t.Fatalf("%d derived, %d Provenance, %d Device; want %d, 1, 1", n, len(st.provenances), st.devices, wantValues)
+	}
+	for i, s := range replicas {
+		if code := readyz(t, s.url, nil); code != http.StatusOK {
+			t.Errorf("replica %d: /readyz %d", i, code)
+		}
+	}
+}
