@@ -28,7 +28,25 @@ import (
 // which rejects unknown and duplicate fields: a misspelt or misplaced field,
 // which kubectl would drop with only a warning, fails here.
 
-const k8sDir = "kubernetes"
+// form is one deployable set of manifests: the embedded store's single
+// replica, or replicas sharing PostgreSQL.
+type form struct {
+	name, dir  string
+	replicated bool
+}
+
+var (
+	embeddedForm   = form{name: "embedded", dir: "kubernetes"}
+	replicatedForm = form{name: "replicated", dir: "kubernetes-replicated", replicated: true}
+	forms          = []form{embeddedForm, replicatedForm}
+)
+
+// eachForm runs check on the manifests of every form.
+func eachForm(t *testing.T, check func(t *testing.T, m manifests)) {
+	for _, f := range forms {
+		t.Run(f.name, func(t *testing.T) { check(t, loadManifests(t, f)) })
+	}
+}
 
 // secretExample is the one manifest kept out of the kustomization, so that
 // applying it never replaces a real Secret with placeholders.
@@ -77,6 +95,7 @@ type kustomization struct {
 }
 
 type manifests struct {
+	form       form
 	kust       kustomization
 	deployment *appsv1.Deployment
 	service    *corev1.Service
@@ -88,10 +107,10 @@ type manifests struct {
 	files      []string // every *.yaml but the kustomization
 }
 
-func loadManifests(t *testing.T) manifests {
+func loadManifests(t *testing.T, f form) manifests {
 	t.Helper()
-	var m manifests
-	paths, err := filepath.Glob(filepath.Join(k8sDir, "*.yaml"))
+	m := manifests{form: f}
+	paths, err := filepath.Glob(filepath.Join(f.dir, "*.yaml"))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -140,8 +159,8 @@ func loadManifests(t *testing.T) manifests {
 		}
 	}
 	if m.deployment == nil || m.service == nil || m.configMap == nil || m.secret == nil ||
-		m.pvc == nil || m.netpol == nil || m.pdb == nil {
-		t.Fatalf("missing manifests: have %v", m.files)
+		m.netpol == nil || m.pdb == nil || (m.pvc == nil) != f.replicated {
+		t.Fatalf("missing manifests, or a volume claim where the state is in a database: have %v", m.files)
 	}
 	return m
 }
@@ -186,7 +205,10 @@ func TestDecodeManifestStrict(t *testing.T) {
 }
 
 func TestKustomizationListsEveryManifest(t *testing.T) {
-	m := loadManifests(t)
+	eachForm(t, testKustomizationListsEveryManifest)
+}
+
+func testKustomizationListsEveryManifest(t *testing.T, m manifests) {
 	if m.kust.APIVersion != "kustomize.config.k8s.io/v1beta1" || m.kust.Kind != "Kustomization" {
 		t.Errorf("kustomization is %s %s", m.kust.APIVersion, m.kust.Kind)
 	}
@@ -214,11 +236,15 @@ func TestKustomizationListsEveryManifest(t *testing.T) {
 	}
 }
 
-func TestObjectNamesAndLabels(t *testing.T) {
-	m := loadManifests(t)
+func TestObjectNamesAndLabels(t *testing.T) { eachForm(t, testObjectNamesAndLabels) }
+
+func testObjectNamesAndLabels(t *testing.T, m manifests) {
 	metas := []metav1.ObjectMeta{
 		m.deployment.ObjectMeta, m.service.ObjectMeta, m.configMap.ObjectMeta, m.secret.ObjectMeta,
-		m.pvc.ObjectMeta, m.netpol.ObjectMeta, m.pdb.ObjectMeta,
+		m.netpol.ObjectMeta, m.pdb.ObjectMeta,
+	}
+	if m.pvc != nil {
+		metas = append(metas, m.pvc.ObjectMeta)
 	}
 	for _, om := range metas {
 		t.Run(om.Name, func(t *testing.T) {
@@ -248,7 +274,7 @@ func TestObjectNamesAndLabels(t *testing.T) {
 }
 
 func TestSingleWriter(t *testing.T) {
-	m := loadManifests(t)
+	m := loadManifests(t, embeddedForm)
 	d := m.deployment.Spec
 	if d.Replicas == nil || *d.Replicas != 1 {
 		t.Errorf("replicas = %v, want 1: the embedded store has one writer", d.Replicas)
@@ -274,8 +300,9 @@ func TestSingleWriter(t *testing.T) {
 	}
 }
 
-func TestSelectorsMatchThePod(t *testing.T) {
-	m := loadManifests(t)
+func TestSelectorsMatchThePod(t *testing.T) { eachForm(t, testSelectorsMatchThePod) }
+
+func testSelectorsMatchThePod(t *testing.T, m manifests) {
 	pod := m.podLabels()
 	sel := func(name string, ls *metav1.LabelSelector) {
 		t.Run(name, func(t *testing.T) {
@@ -297,8 +324,9 @@ func TestSelectorsMatchThePod(t *testing.T) {
 	sel("Service", &metav1.LabelSelector{MatchLabels: m.service.Spec.Selector})
 }
 
-func TestSecurityContext(t *testing.T) {
-	m := loadManifests(t)
+func TestSecurityContext(t *testing.T) { eachForm(t, testSecurityContext) }
+
+func testSecurityContext(t *testing.T, m manifests) {
 	ps := m.deployment.Spec.Template.Spec
 	c := m.container(t)
 	df := loadDockerfile(t)
@@ -327,8 +355,9 @@ func TestSecurityContext(t *testing.T) {
 	check("no host namespaces", !ps.HostNetwork && !ps.HostPID && !ps.HostIPC)
 }
 
-func TestResources(t *testing.T) {
-	m := loadManifests(t)
+func TestResources(t *testing.T) { eachForm(t, testResources) }
+
+func testResources(t *testing.T, m manifests) {
 	c := m.container(t)
 	for _, r := range []corev1.ResourceName{corev1.ResourceCPU, corev1.ResourceMemory} {
 		req, okReq := c.Resources.Requests[r]
@@ -467,8 +496,9 @@ func podEnv(t *testing.T, m manifests) map[string]string {
 	return env
 }
 
-func TestSecretExample(t *testing.T) {
-	m := loadManifests(t)
+func TestSecretExample(t *testing.T) { eachForm(t, testSecretExample) }
+
+func testSecretExample(t *testing.T, m manifests) {
 	if len(m.secret.Data) > 0 {
 		t.Error("the example uses data: placeholders belong in stringData, readable as placeholders")
 	}
@@ -496,7 +526,10 @@ func TestSecretExample(t *testing.T) {
 }
 
 func TestPodEnvironmentIsAValidServeConfig(t *testing.T) {
-	m := loadManifests(t)
+	eachForm(t, testPodEnvironmentIsAValidServeConfig)
+}
+
+func testPodEnvironmentIsAValidServeConfig(t *testing.T, m manifests) {
 	env := podEnv(t, m)
 	checkEnvNames(t, "pod environment", env)
 	for _, k := range []string{"DEADSPACE_WEBHOOK_SECRET", "DEADSPACE_FHIR_TOKEN", "DEADSPACE_FHIR_TOKEN_FILE", "DEADSPACE_WEBHOOK_SECRET_FILE"} {
@@ -512,21 +545,24 @@ func TestPodEnvironmentIsAValidServeConfig(t *testing.T) {
 	}
 	c := m.container(t)
 
-	t.Run("data dir is the mounted volume", func(t *testing.T) {
-		var claim string
-		for _, v := range m.deployment.Spec.Template.Spec.Volumes {
-			if v.PersistentVolumeClaim != nil {
-				for _, vm := range c.VolumeMounts {
-					if vm.Name == v.Name && vm.MountPath == cfg.DataDir && !vm.ReadOnly {
-						claim = v.PersistentVolumeClaim.ClaimName
+	// The replicated form keeps its state in PostgreSQL: see TestReplicatedForm.
+	if !m.form.replicated {
+		t.Run("data dir is the mounted volume", func(t *testing.T) {
+			var claim string
+			for _, v := range m.deployment.Spec.Template.Spec.Volumes {
+				if v.PersistentVolumeClaim != nil {
+					for _, vm := range c.VolumeMounts {
+						if vm.Name == v.Name && vm.MountPath == cfg.DataDir && !vm.ReadOnly {
+							claim = v.PersistentVolumeClaim.ClaimName
+						}
 					}
 				}
 			}
-		}
-		if claim != m.pvc.Name {
-			t.Errorf("data dir %s is not a writable mount of PVC %s (found claim %q)", cfg.DataDir, m.pvc.Name, claim)
-		}
-	})
+			if claim != m.pvc.Name {
+				t.Errorf("data dir %s is not a writable mount of PVC %s (found claim %q)", cfg.DataDir, m.pvc.Name, claim)
+			}
+		})
+	}
 
 	t.Run("probes reach the HTTP listener", func(t *testing.T) {
 		_, port, err := net.SplitHostPort(cfg.Listen)
@@ -605,8 +641,9 @@ func TestPodEnvironmentIsAValidServeConfig(t *testing.T) {
 	})
 }
 
-func TestNetworkPolicy(t *testing.T) {
-	m := loadManifests(t)
+func TestNetworkPolicy(t *testing.T) { eachForm(t, testNetworkPolicy) }
+
+func testNetworkPolicy(t *testing.T, m manifests) {
 	np := m.netpol.Spec
 	c := m.container(t)
 	types := map[networkingv1.PolicyType]bool{}
@@ -696,15 +733,16 @@ func TestNetworkPolicy(t *testing.T) {
 	})
 }
 
-func TestDeploymentReferencesExist(t *testing.T) {
-	m := loadManifests(t)
+func TestDeploymentReferencesExist(t *testing.T) { eachForm(t, testDeploymentReferencesExist) }
+
+func testDeploymentReferencesExist(t *testing.T, m manifests) {
 	ps := m.deployment.Spec.Template.Spec
 	c := m.container(t)
 	vols := map[string]bool{}
 	for _, v := range ps.Volumes {
 		vols[v.Name] = true
-		if v.PersistentVolumeClaim != nil && v.PersistentVolumeClaim.ClaimName != m.pvc.Name {
-			t.Errorf("volume %s claims %q; the PVC is %q", v.Name, v.PersistentVolumeClaim.ClaimName, m.pvc.Name)
+		if v.PersistentVolumeClaim != nil && (m.pvc == nil || v.PersistentVolumeClaim.ClaimName != m.pvc.Name) {
+			t.Errorf("volume %s claims %q, which is not the form's PVC", v.Name, v.PersistentVolumeClaim.ClaimName)
 		}
 	}
 	for _, vm := range c.VolumeMounts {
@@ -725,4 +763,84 @@ func TestDeploymentReferencesExist(t *testing.T) {
 	if strings.Join(names, ",") != "grpc,http" {
 		t.Errorf("container ports %v, want grpc and http", names)
 	}
+}
+
+// TestReplicatedForm checks what the replicated form promises: three
+// replicas updated one at a time, the database URL only from the Secret,
+// no volume, a budget that lets one pod go at a time, and a network policy
+// that reaches the database the URL names.
+func TestReplicatedForm(t *testing.T) {
+	m := loadManifests(t, replicatedForm)
+	d := m.deployment.Spec
+	if d.Replicas == nil || *d.Replicas != 3 {
+		t.Errorf("replicas = %v, want 3", d.Replicas)
+	}
+	ru := d.Strategy.RollingUpdate
+	if d.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType || ru == nil || ru.MaxUnavailable == nil ||
+		ru.MaxUnavailable.IntValue() != 0 {
+		t.Errorf("strategy %+v: want RollingUpdate with maxUnavailable 0, so an update never drops below three ready pods", d.Strategy)
+	}
+	if len(d.Template.Spec.Volumes) != 0 || len(m.container(t).VolumeMounts) != 0 {
+		t.Errorf("volumes %v: the replicas share nothing but the database", d.Template.Spec.Volumes)
+	}
+
+	// One voluntary disruption at a time: a drain proceeds (the budget is
+	// below the replica count) and never leaves a single pod.
+	p := m.pdb.Spec
+	if p.MinAvailable == nil || p.MinAvailable.IntValue() != int(*d.Replicas)-1 || p.MaxUnavailable != nil {
+		t.Errorf("PDB minAvailable %v maxUnavailable %v, want minAvailable %d", p.MinAvailable, p.MaxUnavailable, *d.Replicas-1)
+	}
+
+	var fromSecret bool
+	for _, e := range m.container(t).Env {
+		if e.Name == "DEADSPACE_STORE" {
+			ref := e.ValueFrom
+			fromSecret = e.Value == "" && ref != nil && ref.SecretKeyRef != nil && ref.SecretKeyRef.Name == m.secret.Name &&
+				(ref.SecretKeyRef.Optional == nil || !*ref.SecretKeyRef.Optional)
+		}
+	}
+	if !fromSecret {
+		t.Error("DEADSPACE_STORE must come from the Secret, required: the URL carries the database password")
+	}
+	if _, ok := m.configMap.Data["DEADSPACE_STORE"]; ok {
+		t.Error("DEADSPACE_STORE is in the ConfigMap: the URL carries a password")
+	}
+	cfg, err := serveConfig(podEnv(t, m))
+	if err != nil {
+		t.Fatalf("deadspace serve would refuse the pod's environment:\n%v", err)
+	}
+	db, err := url.Parse(cfg.Store)
+	if err != nil || (db.Scheme != "postgres" && db.Scheme != "postgresql") {
+		t.Fatalf("the pod's store is %q, want a postgres:// URL", cfg.Store)
+	}
+	if db.Query().Get("sslmode") != "verify-full" {
+		t.Errorf("the example database URL has sslmode %q: verify-full checks the server's certificate", db.Query().Get("sslmode"))
+	}
+
+	// The network policy admits the database's namespace on its port.
+	port := db.Port()
+	if port == "" {
+		port = "5432"
+	}
+	parts := strings.Split(db.Hostname(), ".")
+	if len(parts) < 3 || parts[2] != "svc" {
+		t.Fatalf("the example database %s is not a cluster service name", db.Host)
+	}
+	for _, r := range m.netpol.Spec.Egress {
+		nsOK, portOK := false, false
+		for _, peer := range r.To {
+			if peer.NamespaceSelector != nil && peer.NamespaceSelector.MatchLabels["kubernetes.io/metadata.name"] == parts[1] {
+				nsOK = true
+			}
+		}
+		for _, pp := range r.Ports {
+			if pp.Port != nil && strconv.Itoa(pp.Port.IntValue()) == port {
+				portOK = true
+			}
+		}
+		if nsOK && portOK {
+			return
+		}
+	}
+	t.Errorf("no egress rule admits namespace %q on port %s for the database", parts[1], port)
 }
