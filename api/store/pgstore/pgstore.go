@@ -26,6 +26,7 @@ import (
 	"math"
 	"net/url"
 	"os"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5/pgxpool"
@@ -44,10 +45,17 @@ type Options struct {
 	// takes, retries included, or a slow write is sent twice (the
 	// conditional creates still keep it to one resource).
 	WriteLease time.Duration
-	// MaxConns caps the connection pool (pgxpool's default when zero; the
-	// URL's pool_max_conns also works).
+	// MaxConns caps the connection pool (DefaultMaxConns when zero, unless
+	// the URL sets pool_max_conns).
 	MaxConns int32
 }
+
+// DefaultMaxConns is the pool size when neither Options nor the URL set
+// one. pgxpool's own default (four on this two-core machine) would make
+// webhook requests queue for a connection while each waits on a round trip
+// to the database; sixteen per replica stays far below PostgreSQL's default
+// max_connections of 100 for a few replicas.
+const DefaultMaxConns = 16
 
 // DefaultWriteLease is Options.WriteLease when unset.
 const DefaultWriteLease = 2 * time.Minute
@@ -69,8 +77,11 @@ func Open(ctx context.Context, dsn string, opts Options) (*Store, error) {
 		// The parse error may echo the DSN, password included.
 		return nil, fmt.Errorf("pgstore: the database URL %s does not parse", redactDSN(dsn))
 	}
-	if opts.MaxConns > 0 {
+	switch {
+	case opts.MaxConns > 0:
 		cfg.MaxConns = opts.MaxConns
+	case !strings.Contains(dsn, "pool_max_conns"):
+		cfg.MaxConns = DefaultMaxConns
 	}
 	pool, err := pgxpool.NewWithConfig(ctx, cfg)
 	if err != nil {
