@@ -1,6 +1,7 @@
 package serve_test
 
 import (
+	"context"
 	"errors"
 	"flag"
 	"io"
@@ -9,9 +10,13 @@ import (
 	"testing"
 	"time"
 
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
+
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
+	pb "github.com/deadspace-fhir/deadspace/proto/deadspace/v1"
 )
 
 // envConfig is serve's configuration from the environment alone, as a
@@ -67,9 +72,10 @@ func TestStoreSetting(t *testing.T) {
 }
 
 // Three replicas on one PostgreSQL database, the same notification
-// delivered to each, twice (a sender retrying against another replica behind the load
+// delivered to two of them, twice each (a sender retrying against another replica behind the load
 // balancer): the FHIR server ends with one of each derived Observation and
-// one Provenance, and nothing is left to do on either replica.
+// one Provenance, nothing is left to do on any replica, and a gRPC watcher
+// on the third replica sees each derivation once.
 func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 	peer := fhirtest.Start(t)
 	url := pgtest.NewSchema(t)
@@ -79,10 +85,23 @@ func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 		cfg.Store = url
 		replicas = append(replicas, start(t, cfg))
 	}
+	// A watcher on the last replica, which is never sent a notification.
+	conn, err := grpc.NewClient(replicas[2].svc.GRPCAddr(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	watchCtx, stopWatch := context.WithTimeout(t.Context(), 2*time.Minute)
+	defer stopWatch()
+	stream, err := pb.NewDeadSpaceClient(conn).WatchDerivations(watchCtx, &pb.WatchDerivationsRequest{FromStart: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+
 	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
 	note := notification("Subscription/r", 1, b.resources)
 	for round := range 2 {
-		for i, s := range replicas {
+		for i, s := range replicas[:2] {
 			if code, body := post(t, s.url, http.MethodPost, "/notify", note, secret); code != http.StatusOK {
 				t.Fatalf("round %d, replica %d: HTTP %d: %s", round, i, code, body)
 			}
@@ -98,6 +117,26 @@ func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 	for i, s := range replicas {
 		if code := readyz(t, s.url, nil); code != http.StatusOK {
 			t.Errorf("replica %d: /readyz %d", i, code)
+		}
+	}
+	// The third replica's watcher sees every derivation the other two
+	// committed, each once.
+	seen := map[string]int{}
+	for len(seen) < wantValues {
+		msg, err := stream.Recv()
+		if err != nil {
+			t.Fatalf("watch on the third replica after %d series: %v", len(seen), err)
+		}
+		if ev := msg.GetEvent(); ev != nil {
+			if ev.GetSubject() != b.subject {
+				t.Fatalf("event for %s, want %s", ev.GetSubject(), b.subject)
+			}
+			seen[ev.GetSeries()]++
+		}
+	}
+	for series, n := range seen {
+		if n != 1 {
+			t.Errorf("series %s watched %d times", series, n)
 		}
 	}
 }
