@@ -109,12 +109,34 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 			if en.ServerID == "" {
 				en.ServerID, en.ServerVersion = prev.ServerID, prev.ServerVersion
 			}
+			if prev.Key != en.Key {
+				if err := keepVersion(ctx, tx, prev); err != nil {
+					return err
+				}
+			}
 			if err := updateEntry(ctx, tx, en); err != nil {
 				return fmt.Errorf("entry %d: %w", i, err)
 			}
 			old[en.Series] = en
 			if err := putKeys(ctx, tx, en); err != nil {
 				return err
+			}
+		}
+		for i, r := range change.Results {
+			if r.ID == "" || r.Version == "" {
+				return fmt.Errorf("result %d: empty id or version", i)
+			}
+			if r.Subject == "" {
+				r.Subject = change.Subject
+			}
+			payload := r.Payload
+			if payload == nil {
+				payload = []byte{}
+			}
+			// A version already stored is kept as it is.
+			if _, err := tx.Exec(ctx, `INSERT INTO results (id, version, subject, effective_ns, payload) VALUES ($1, $2, $3, $4, $5)
+				ON CONFLICT (id, version) DO NOTHING`, r.ID, r.Version, r.Subject, nanos(r.EffectiveAt), payload); err != nil {
+				return fmt.Errorf("result %d: %w", i, err)
 			}
 		}
 		for _, w := range change.Writes {
@@ -186,6 +208,18 @@ func insertEntry(ctx context.Context, tx pgx.Tx, en store.Entry) (bool, error) {
 func updateEntry(ctx context.Context, tx pgx.Tx, en store.Entry) error {
 	_, err := tx.Exec(ctx, `UPDATE ledger SET subject = $2, key = $3, status = $4, server_id = $5, server_version = $6,
 		revisions = $7, effective_ns = $8, updated_ns = $9, payload = $10 WHERE series = $1`, entryArgs(en)...)
+	return err
+}
+
+// keepVersion keeps an entry as it stood under its key, which the commit
+// is about to replace.
+func keepVersion(ctx context.Context, tx pgx.Tx, en store.Entry) error {
+	args := entryArgs(en)
+	_, err := tx.Exec(ctx, `INSERT INTO ledger_versions (series, subject, key, status, server_id, server_version, revisions,
+		effective_ns, updated_ns, payload) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)
+		ON CONFLICT (key) DO UPDATE SET series = EXCLUDED.series, subject = EXCLUDED.subject, status = EXCLUDED.status,
+		server_id = EXCLUDED.server_id, server_version = EXCLUDED.server_version, revisions = EXCLUDED.revisions,
+		effective_ns = EXCLUDED.effective_ns, updated_ns = EXCLUDED.updated_ns, payload = EXCLUDED.payload`, args...)
 	return err
 }
 

@@ -46,6 +46,35 @@ CREATE TABLE ledger (
 );
 CREATE INDEX ledger_by_subject ON ledger (subject, series);
 CREATE INDEX ledger_by_time ON ledger (subject, effective_ns, series);
+CREATE INDEX ledger_by_effective ON ledger (effective_ns);
+
+-- Each entry as it stood under a key it no longer has, for explaining a
+-- value that has since been superseded.
+CREATE TABLE ledger_versions (
+    key            text COLLATE "C" PRIMARY KEY,
+    series         text COLLATE "C" NOT NULL,
+    subject        text COLLATE "C" NOT NULL,
+    status         text   NOT NULL,
+    server_id      text   NOT NULL,
+    server_version text   NOT NULL,
+    revisions      text[] NOT NULL,
+    effective_ns   bigint NOT NULL,
+    updated_ns     bigint NOT NULL,
+    payload        bytea  NOT NULL
+);
+CREATE INDEX ledger_versions_by_series ON ledger_versions (series);
+
+-- One derivation (or fall finding) per version, shared by the entries of
+-- its values.
+CREATE TABLE results (
+    id           text COLLATE "C" NOT NULL,
+    version      text COLLATE "C" NOT NULL,
+    subject      text COLLATE "C" NOT NULL,
+    effective_ns bigint NOT NULL,
+    payload      bytea  NOT NULL,
+    PRIMARY KEY (id, version)
+);
+CREATE INDEX results_by_effective ON results (effective_ns);
 
 -- Every key a series has had, current and previous.
 CREATE TABLE ledger_keys (
@@ -85,6 +114,7 @@ CREATE TABLE dead_letters (
     reason        text   NOT NULL,
     at_ns         bigint NOT NULL
 );
+CREATE INDEX dead_letters_by_time ON dead_letters (at_ns);
 
 CREATE TABLE cursors (
     name  text COLLATE "C" PRIMARY KEY,
@@ -110,6 +140,7 @@ CREATE TABLE feed (
     status  text NOT NULL,
     at_ns   bigint NOT NULL
 );
+CREATE INDEX feed_by_time ON feed (at_ns);
 CREATE TABLE feed_head (
     only_row boolean PRIMARY KEY DEFAULT true CHECK (only_row),
     seq      bigint  NOT NULL
