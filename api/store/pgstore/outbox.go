@@ -26,25 +26,38 @@ func scanWrite(row pgx.CollectableRow) (store.Write, error) {
 	return w, err
 }
 
+// outboxClaimLock serializes claims on the outbox ("deadclai" in ASCII),
+// so that the check for an earlier write of the same series held by
+// another replica sees every claim made before it.
+const outboxClaimLock int64 = 0x64656164636c6169
+
 // DueWrites claims for this replica, for the write lease
 // (Options.WriteLease), up to limit writes due at now, oldest first, and
 // returns them. Writes another replica claimed are skipped while its lease
-// runs (FOR UPDATE SKIP LOCKED keeps replicas that claim at the same time
-// from waiting on each other); a write whose replica died is due again
-// once the lease lapses, and is then sent by whichever replica claims it.
-// The conditional creates keep a write sent twice from creating twice.
+// runs; a write whose replica died is due again once the lease lapses, and
+// is then sent by whichever replica claims it (the conditional creates keep
+// a write sent twice from creating twice). A write is not claimed while an
+// earlier write of one of its series is held by another replica: writes of
+// one series go in the order they were queued, on one replica at a time.
 // This replica's own claims stay due to it.
 func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]store.Write, error) {
 	if err := checkLimit(limit); err != nil {
 		return nil, fmt.Errorf("pgstore.DueWrites: %w", err)
 	}
 	var out []store.Write
-	err := s.run(ctx, "DueWrites", func(q querier) error {
-		rows, err := q.Query(ctx, `
+	err := s.inTx(ctx, "DueWrites", func(tx pgx.Tx) error {
+		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1)`, outboxClaimLock); err != nil {
+			return err
+		}
+		rows, err := tx.Query(ctx, `
 			WITH picked AS (
-				SELECT id FROM outbox
-				 WHERE not_before_ns <= $1
-				   AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
+				SELECT id FROM outbox o
+				 WHERE o.not_before_ns <= $1
+				   AND (o.claimed_by IS NULL OR o.claimed_by = $2 OR o.claim_expires <= clock_timestamp())
+				   AND NOT EXISTS (
+				       SELECT 1 FROM outbox e
+				        WHERE e.id < o.id AND e.series && o.series
+				          AND e.claimed_by <> $2 AND e.claim_expires > clock_timestamp())
 				 ORDER BY id
 				 LIMIT $3
 				 FOR UPDATE SKIP LOCKED)

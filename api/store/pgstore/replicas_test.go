@@ -175,3 +175,50 @@ func TestDueWritesFarFuture(t *testing.T) {
 		t.Errorf("DueWrites in 1600: %d writes, want none", len(ws))
 	}
 }
+
+// Writes of one series go in the order they were queued even across
+// replicas: while one replica holds the first write of a series, another
+// replica is not given a later write of that series (it could overtake the
+// first and be undone by it), but is given writes of other series.
+func TestOutboxSeriesOrderAcrossReplicas(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	commit := func(series ...string) {
+		t.Helper()
+		var ws []store.Write
+		for _, se := range series {
+			ws = append(ws, store.Write{Series: []string{se}, Body: []byte(se)})
+		}
+		if err := a.Commit(ctx, store.Change{Subject: "Patient/s", Writes: ws}, t0); err != nil {
+			t.Fatal(err)
+		}
+	}
+	commit("s")
+	first, err := a.DueWrites(ctx, t0, 1)
+	if err != nil || len(first) != 1 {
+		t.Fatalf("A claims %v, %v", ids(first), err)
+	}
+	commit("s", "t") // a revision of s, and another series
+	got, err := b.DueWrites(ctx, t0, 10)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(got) != 1 || string(got[0].Body) != "t" {
+		t.Fatalf("B gets %d writes %v; want only the write of series t while A holds s's first", len(got), ids(got))
+	}
+	if err := a.Acknowledge(ctx, first[0].ID, nil); err != nil {
+		t.Fatal(err)
+	}
+	got, err = b.DueWrites(ctx, t0, 10)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var bodies []string
+	for _, w := range got {
+		bodies = append(bodies, string(w.Body))
+	}
+	if !slices.Equal(bodies, []string{"s", "t"}) {
+		t.Fatalf("B after A acknowledged the first: %v, want s's revision and t", bodies)
+	}
+}

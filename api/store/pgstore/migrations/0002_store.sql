@@ -99,6 +99,8 @@ CREATE TABLE outbox (
     claim_expires timestamptz
 );
 CREATE INDEX outbox_by_not_before ON outbox (not_before_ns, id);
+-- Writes of one series go in order: DueWrites looks for earlier ones.
+CREATE INDEX outbox_by_series ON outbox USING gin (series);
 
 -- Writes the server refused for good, in burial order.
 CREATE TABLE dead_letters (
