@@ -6,10 +6,12 @@ import (
 	"flag"
 	"io"
 	"net/http"
+	neturl "net/url"
 	"strings"
 	"testing"
 	"time"
 
+	"github.com/jackc/pgx/v5"
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
@@ -138,5 +140,39 @@ func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 		if n != 1 {
 			t.Errorf("series %s watched %d times", series, n)
 		}
+	}
+}
+
+// /readyz includes the database: a replica whose database goes away leaves
+// the load balancer's endpoints, while /healthz (liveness) stays up so the
+// replica is not restarted for an outage that is not its own.
+func TestReadinessFollowsTheDatabase(t *testing.T) {
+	dbURL := pgtest.NewDatabase(t)
+	cfg := testConfig("", "")
+	cfg.Store = dbURL
+	s := start(t, cfg)
+	waitFor(t, "ready", func() bool { return readyz(t, s.url, nil) == http.StatusOK })
+
+	// The database disappears under the running service.
+	u, err := neturl.Parse(dbURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	admin, err := pgx.Connect(t.Context(), pgtest.ServerURL(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer admin.Close(context.Background())
+	if _, err := admin.Exec(t.Context(), "DROP DATABASE "+pgx.Identifier{strings.TrimPrefix(u.Path, "/")}.Sanitize()+" WITH (FORCE)"); err != nil {
+		t.Fatal(err)
+	}
+	waitFor(t, "not ready without the database", func() bool { return readyz(t, s.url, nil) == http.StatusServiceUnavailable })
+	resp, err := http.Get(s.url + "/healthz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusOK {
+		t.Errorf("/healthz = %d without the database; liveness must not depend on it", resp.StatusCode)
 	}
 }
