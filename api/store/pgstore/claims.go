@@ -24,16 +24,42 @@ type querier interface {
 }
 
 // markDirtySQL marks a patient dirty: the earliest Since stands, the
-// generation is a new one. A claim on the patient stays: the replica
-// evaluating it finds on commit that the generation moved, and leaves the
-// mark for the next evaluation.
+// generation is a new one, the span grows to cover the change (from_ns 0,
+// the whole patient, absorbs any other), and a blood gas makes the mark
+// urgent. A claim on the patient stays: the replica evaluating it finds on
+// commit that the generation moved, and leaves the mark for the next
+// evaluation.
 const markDirtySQL = `
-	INSERT INTO dirty (subject, since_ns, generation) VALUES ($1, $2, nextval('dirty_generation'))
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent) VALUES ($1, $2, nextval('dirty_generation'), $3, $4)
 	ON CONFLICT (subject) DO UPDATE
-	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation`
+	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
+	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
+	       urgent = dirty.urgent OR EXCLUDED.urgent`
 
-func markDirty(ctx context.Context, q querier, subject string, now time.Time) error {
-	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now))
+// span is what one transaction changed of one patient: results can change
+// from `from` on (zero: everything), and urgent when a blood gas changed.
+type span struct {
+	from   time.Time
+	urgent bool
+}
+
+func (a span) merge(b span) span {
+	return span{from: earliest(a.from, b.from), urgent: a.urgent || b.urgent}
+}
+
+// earliest is the earlier time, where zero (everything) is the earliest.
+func earliest(a, b time.Time) time.Time {
+	if a.IsZero() || b.IsZero() {
+		return time.Time{}
+	}
+	if a.Before(b) {
+		return a
+	}
+	return b
+}
+
+func markDirty(ctx context.Context, q querier, subject string, now time.Time, sp span) error {
+	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.from), sp.urgent)
 	return err
 }
 
@@ -42,13 +68,13 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 	if err := checkSubject(subject); err != nil {
 		return fmt.Errorf("pgstore.MarkDirty: %w", err)
 	}
-	return s.run(ctx, "MarkDirty", func(q querier) error { return markDirty(ctx, q, subject, now) })
+	return s.run(ctx, "MarkDirty", func(q querier) error { return markDirty(ctx, q, subject, now, span{}) })
 }
 
-// DirtyPatients lists every dirty patient, claimed or not, by Since then
-// Subject.
+// DirtyPatients lists every dirty patient, claimed or not: urgent ones
+// first, then by Since and Subject.
 func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
-	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation FROM dirty ORDER BY since_ns, subject`)
+	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, from_ns, urgent FROM dirty ORDER BY urgent DESC, since_ns, subject`)
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
@@ -61,15 +87,15 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 
 func scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
 	var d store.Dirty
-	var since, gen int64
-	err := row.Scan(&d.Subject, &since, &gen)
-	d.Since, d.Generation = fromNanos(since), uint64(gen)
+	var since, gen, from int64
+	err := row.Scan(&d.Subject, &since, &gen, &from, &d.Urgent)
+	d.Since, d.Generation, d.From = fromNanos(since), uint64(gen), fromNanos(from)
 	return d, err
 }
 
 // ClaimDirty claims for this replica, for ttl, up to limit dirty patients
 // marked at or before settledBefore that no replica holds an unexpired
-// claim on, oldest first. Replicas claiming at the same time get disjoint
+// claim on, urgent ones first, then oldest first. Replicas claiming at the same time get disjoint
 // patients and do not wait for each other (FOR UPDATE SKIP LOCKED); a
 // claim whose replica died lapses after ttl and the patient is claimed
 // again. A patient this replica already claims is not returned twice.
@@ -85,14 +111,14 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 		WITH picked AS (
 			SELECT subject FROM dirty
 			 WHERE since_ns <= $1 AND (claimed_by IS NULL OR claim_expires <= clock_timestamp())
-			 ORDER BY since_ns, subject
+			 ORDER BY urgent DESC, since_ns, subject
 			 LIMIT $2
 			 FOR UPDATE SKIP LOCKED)
 		UPDATE dirty d
 		   SET claimed_by = $3, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 		  FROM picked
 		 WHERE d.subject = picked.subject
-		RETURNING d.subject, d.since_ns, d.generation`,
+		RETURNING d.subject, d.since_ns, d.generation, d.from_ns, d.urgent`,
 		nanos(settledBefore), limit, s.holder, ttl.Microseconds())
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
@@ -102,6 +128,12 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 		return nil, wrap("ClaimDirty", err)
 	}
 	slices.SortFunc(out, func(a, b store.Dirty) int {
+		if a.Urgent != b.Urgent {
+			if a.Urgent {
+				return -1
+			}
+			return 1
+		}
 		return cmp.Or(a.Since.Compare(b.Since), strings.Compare(a.Subject, b.Subject))
 	})
 	return out, nil

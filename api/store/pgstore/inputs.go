@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -74,20 +73,24 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			return err
 		}
 		var changed []string
+		spans := map[string]span{}
 		for i, in := range inputs {
 			res, touched, err := putInput(ctx, tx, in)
 			if err != nil {
 				return fmt.Errorf("input %d: %w", i, err)
 			}
 			results[i] = res
-			for _, subject := range touched {
-				if !slices.Contains(changed, subject) {
-					changed = append(changed, subject)
+			for _, t := range touched {
+				if prev, ok := spans[t.subject]; ok {
+					spans[t.subject] = prev.merge(t.span)
+				} else {
+					changed = append(changed, t.subject)
+					spans[t.subject] = t.span
 				}
 			}
 		}
 		for _, subject := range changed {
-			if err := markDirty(ctx, tx, subject, now); err != nil {
+			if err := markDirty(ctx, tx, subject, now, spans[subject]); err != nil {
 				return err
 			}
 		}
@@ -99,10 +102,16 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 	return results, nil
 }
 
+// touched is a patient whose inputs one put changed, and how.
+type touched struct {
+	subject string
+	span    span
+}
+
 // putInput applies one input under the resource's lock and returns the
-// subjects whose inputs changed (the embedded store's rule, step for
+// patients whose inputs changed (the embedded store's rule, step for
 // step).
-func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, []string, error) {
+func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, []touched, error) {
 	var owner string
 	err := tx.QueryRow(ctx, `SELECT subject FROM input_owner WHERE logical = $1`, in.Logical).Scan(&owner)
 	if err != nil && !errors.Is(err, pgx.ErrNoRows) {
@@ -111,14 +120,15 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner row went with a prune) decides too.
 	exists, ownerHasCopy := false, false
+	sp := span{from: in.ChangedAt, urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
 		}
 		var id string
-		var lu int64
-		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns FROM inputs WHERE subject = $1 AND logical = $2`,
-			subject, in.Logical).Scan(&id, &lu)
+		var lu, eff int64
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, effective_ns FROM inputs WHERE subject = $1 AND logical = $2`,
+			subject, in.Logical).Scan(&id, &lu, &eff)
 		if errors.Is(err, pgx.ErrNoRows) {
 			continue
 		}
@@ -132,11 +142,15 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		if c := compareVersions(in.LastUpdated, in.VersionID, fromNanos(lu), id); c <= 0 {
 			return putResult(true, c), nil, nil
 		}
+		if subject == in.Subject {
+			// The replaced version's results change too.
+			sp.from = earliest(sp.from, fromNanos(eff))
+		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	touched := []string{in.Subject}
+	changed := []touched{{in.Subject, sp}}
 	res := putResult(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
 		moved := in
@@ -144,7 +158,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		if err := writeInput(ctx, tx, moved); err != nil {
 			return 0, nil, err
 		}
-		touched = append(touched, owner)
+		changed = append(changed, touched{owner, span{}}) // the whole first patient
 		res = store.PutMoved
 	}
 	if err := writeInput(ctx, tx, in); err != nil {
@@ -152,7 +166,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	}
 	_, err = tx.Exec(ctx, `INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
 		ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject)
-	return res, touched, err
+	return res, changed, err
 }
 
 // writeInput replaces the copy under in.Subject.
@@ -275,7 +289,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			p.Subject, p.VersionID, nanos(p.LastUpdated), nanos(p.FetchedAt), payload); err != nil {
 			return err
 		}
-		return markDirty(ctx, tx, p.Subject, now)
+		return markDirty(ctx, tx, p.Subject, now, span{})
 	})
 	if err != nil {
 		return 0, err

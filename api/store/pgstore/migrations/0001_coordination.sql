@@ -6,7 +6,7 @@
 -- replicas' clocks need not agree). epoch rises whenever the lease changes
 -- hands: work done under an older epoch can be told apart (a fencing token).
 CREATE TABLE leases (
-    name       text COLLATE "C" PRIMARY KEY,
+    name       text        PRIMARY KEY,
     holder     text        NOT NULL,
     expires_at timestamptz NOT NULL,
     epoch      bigint      NOT NULL
@@ -26,7 +26,7 @@ CREATE TABLE leases (
 -- over.
 CREATE SEQUENCE dirty_generation;
 CREATE TABLE dirty (
-    subject       text COLLATE "C" PRIMARY KEY,
+    subject       text        PRIMARY KEY,
     since_ns      bigint      NOT NULL,
     generation    bigint      NOT NULL,
     claimed_by    text,

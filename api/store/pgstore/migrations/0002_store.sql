@@ -4,6 +4,20 @@
 -- back in byte order, as the embedded store gives it, whatever the
 -- database's locale.
 
+-- Migration 0001 made the coordination tables; as released, their keys sort
+-- by the database's locale. Byte order, like every key here.
+ALTER TABLE leases ALTER COLUMN name TYPE text COLLATE "C";
+ALTER TABLE dirty ALTER COLUMN subject TYPE text COLLATE "C";
+
+-- A dirty mark says from which physiological time results can change
+-- (from_ns; 0: the whole patient) and whether a blood gas arrived (urgent:
+-- evaluated first). A mark that already covers the whole patient stays so
+-- until an evaluation clears it.
+ALTER TABLE dirty ADD COLUMN from_ns bigint NOT NULL DEFAULT 0;
+ALTER TABLE dirty ADD COLUMN urgent boolean NOT NULL DEFAULT false;
+DROP INDEX dirty_by_since;
+CREATE INDEX dirty_by_urgency ON dirty (urgent DESC, since_ns, subject);
+
 -- The latest version of each input, filed under its patient.
 CREATE TABLE inputs (
     subject         text COLLATE "C" NOT NULL,
