@@ -712,24 +712,9 @@ func testNetworkPolicy(t *testing.T, m manifests) {
 		if len(parts) < 3 || parts[2] != "svc" {
 			t.Skipf("FHIR server %s is outside the cluster: the policy needs an ipBlock, which cannot be checked here", u.Host)
 		}
-		ns := parts[1]
-		for _, r := range np.Egress {
-			nsOK, portOK := false, false
-			for _, peer := range r.To {
-				if peer.NamespaceSelector != nil && peer.NamespaceSelector.MatchLabels["kubernetes.io/metadata.name"] == ns {
-					nsOK = true
-				}
-			}
-			for _, p := range r.Ports {
-				if p.Port != nil && strconv.Itoa(p.Port.IntValue()) == port {
-					portOK = true
-				}
-			}
-			if nsOK && portOK {
-				return
-			}
+		if ns := parts[1]; !egressAdmits(np, ns, port) {
+			t.Errorf("no egress rule admits namespace %q on port %s for %s", ns, port, u)
 		}
-		t.Errorf("no egress rule admits namespace %q on port %s for %s", ns, port, u)
 	})
 }
 
@@ -826,21 +811,29 @@ func TestReplicatedForm(t *testing.T) {
 	if len(parts) < 3 || parts[2] != "svc" {
 		t.Fatalf("the example database %s is not a cluster service name", db.Host)
 	}
-	for _, r := range m.netpol.Spec.Egress {
+	if !egressAdmits(m.netpol.Spec, parts[1], port) {
+		t.Errorf("no egress rule admits namespace %q on port %s for the database", parts[1], port)
+	}
+}
+
+// egressAdmits says whether one egress rule of the policy admits the
+// namespace (by its kubernetes.io/metadata.name label) on the port.
+func egressAdmits(np networkingv1.NetworkPolicySpec, namespace, port string) bool {
+	for _, r := range np.Egress {
 		nsOK, portOK := false, false
 		for _, peer := range r.To {
-			if peer.NamespaceSelector != nil && peer.NamespaceSelector.MatchLabels["kubernetes.io/metadata.name"] == parts[1] {
+			if peer.NamespaceSelector != nil && peer.NamespaceSelector.MatchLabels["kubernetes.io/metadata.name"] == namespace {
 				nsOK = true
 			}
 		}
-		for _, pp := range r.Ports {
-			if pp.Port != nil && strconv.Itoa(pp.Port.IntValue()) == port {
+		for _, p := range r.Ports {
+			if p.Port != nil && strconv.Itoa(p.Port.IntValue()) == port {
 				portOK = true
 			}
 		}
 		if nsOK && portOK {
-			return
+			return true
 		}
 	}
-	t.Errorf("no egress rule admits namespace %q on port %s for the database", parts[1], port)
+	return false
 }

@@ -21,53 +21,19 @@ func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) i
 	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
 }
 
-func putResult(exists bool, c int) store.PutResult {
-	switch {
-	case !exists:
-		return store.PutNew
-	case c > 0:
-		return store.PutNewer
-	case c == 0:
-		return store.PutSame
-	default:
-		return store.PutOlder
-	}
-}
-
 // appendFill is the page fill for buckets whose keys mostly grow (time or
 // sequence first); bbolt's default of one half suits random keys.
 const appendFill = 0.9
 
-// dirtySpan is what one transaction changed of one patient.
-type dirtySpan struct {
-	from   time.Time // zero: everything
-	urgent bool
-}
-
-func (d dirtySpan) merge(o dirtySpan) dirtySpan {
-	return dirtySpan{from: earliest(d.from, o.from), urgent: d.urgent || o.urgent}
-}
-
-// earliest is the earlier time, where zero (everything) is the earliest.
-func earliest(a, b time.Time) time.Time {
-	if a.IsZero() || b.IsZero() {
-		return time.Time{}
-	}
-	if a.Before(b) {
-		return a
-	}
-	return b
-}
-
 // markDirty gives the patient a new generation and keeps the earliest
 // Since and From of the marks not yet cleared.
-func markDirty(tx *bolt.Tx, subject string, now time.Time, span dirtySpan) error {
+func markDirty(tx *bolt.Tx, subject string, now time.Time, span store.Span) error {
 	b := tx.Bucket(bDirty)
 	gen, err := b.NextSequence()
 	if err != nil {
 		return fmt.Errorf("dirty generation: %w", err)
 	}
-	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.from, Urgent: span.urgent}
+	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.From, Urgent: span.Urgent}
 	if v := b.Get([]byte(subject)); v != nil {
 		old, err := decodeDirty(subject, v)
 		if err != nil {
@@ -76,7 +42,7 @@ func markDirty(tx *bolt.Tx, subject string, now time.Time, span dirtySpan) error
 		if old.Since.Before(now) {
 			dt.Since = old.Since
 		}
-		dt.From = earliest(old.From, dt.From)
+		dt.From = store.Earliest(old.From, dt.From)
 		dt.Urgent = dt.Urgent || old.Urgent
 	} else if err := addCounter(tx, kDirtyN, 1); err != nil {
 		return err
@@ -98,7 +64,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 	}
 	err := s.batch(ctx, "PutInputs", func(tx *bolt.Tx) error {
 		var changed []string
-		spans := map[string]dirtySpan{}
+		spans := map[string]store.Span{}
 		for i, in := range inputs {
 			if err := checkSubject(in.Subject); err != nil {
 				return fmt.Errorf("input %d: %w", i, err)
@@ -113,7 +79,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			results[i] = res
 			for subject, span := range touched {
 				if prev, ok := spans[subject]; ok {
-					span = prev.merge(span)
+					span = prev.Merge(span)
 				} else {
 					changed = append(changed, subject)
 				}
@@ -135,14 +101,14 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 
 // putInput applies one input and returns the subjects whose inputs
 // changed, with the span of each change.
-func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]dirtySpan, error) {
+func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Span, error) {
 	owners := tx.Bucket(bInputOwner)
 	owner := string(owners.Get([]byte(in.Logical)))
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner index lost track of it, after a
 	// prune) decides too.
 	exists := false
-	span := dirtySpan{from: in.ChangedAt, urgent: in.Urgent}
+	span := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
@@ -156,18 +122,18 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]dirtySpa
 		}
 		exists = true
 		if c := compareVersions(in.LastUpdated, in.VersionID, old.LastUpdated, old.VersionID); c <= 0 {
-			return putResult(true, c), nil, nil
+			return store.ResultOf(true, c), nil, nil
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			span.from = earliest(span.from, old.EffectiveAt)
+			span.From = store.Earliest(span.From, old.EffectiveAt)
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	touched := map[string]dirtySpan{in.Subject: span}
-	res := putResult(exists, 1)
+	touched := map[string]store.Span{in.Subject: span}
+	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
 		if _, ok, err := inputHead(tx, owner, in.Logical); err != nil {
 			return 0, nil, err
@@ -177,7 +143,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]dirtySpa
 			if err := writeInput(tx, moved); err != nil {
 				return 0, nil, err
 			}
-			touched[owner] = dirtySpan{} // the whole first patient
+			touched[owner] = store.Span{} // the whole first patient
 			res = store.PutMoved
 		}
 	}
@@ -282,7 +248,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			}
 			c = compareVersions(p.LastUpdated, p.VersionID, old.LastUpdated, old.VersionID)
 			if c <= 0 {
-				res = putResult(true, c)
+				res = store.ResultOf(true, c)
 				if !p.FetchedAt.After(old.FetchedAt) {
 					return nil
 				}
@@ -290,11 +256,11 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 				return b.Put(key, encodePatient(old))
 			}
 		}
-		res = putResult(v != nil, c)
+		res = store.ResultOf(v != nil, c)
 		if err := b.Put(key, encodePatient(p)); err != nil {
 			return err
 		}
-		return markDirty(tx, p.Subject, now, dirtySpan{})
+		return markDirty(tx, p.Subject, now, store.Span{})
 	})
 	if err != nil {
 		return 0, err
@@ -325,7 +291,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 		if err := checkSubject(subject); err != nil {
 			return err
 		}
-		return markDirty(tx, subject, now, dirtySpan{})
+		return markDirty(tx, subject, now, store.Span{})
 	})
 }
 

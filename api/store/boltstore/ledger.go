@@ -149,7 +149,7 @@ func upsertEntry(tx *bolt.Tx, en store.Entry, now time.Time) (store.Entry, error
 		if err != nil {
 			return en, err
 		}
-		en.Revisions = mergeRevisions(old, en)
+		en.Revisions = store.MergeRevisions(old, en)
 		if en.ServerID == "" {
 			en.ServerID, en.ServerVersion = old.ServerID, old.ServerVersion
 		}
@@ -189,25 +189,6 @@ func upsertEntry(tx *bolt.Tx, en store.Entry, now time.Time) (store.Entry, error
 		}
 	}
 	return en, nil
-}
-
-// mergeRevisions lists the previous keys oldest first: the old entry's
-// revisions, the old key, then any the caller added, each once, never the
-// current key.
-func mergeRevisions(old, en store.Entry) []string {
-	all := append(append(append([]string(nil), old.Revisions...), old.Key), en.Revisions...)
-	out := make([]string, 0, len(all))
-	seen := map[string]bool{en.Key: true}
-	for _, k := range all {
-		if !seen[k] {
-			seen[k] = true
-			out = append(out, k)
-		}
-	}
-	if len(out) == 0 {
-		return nil
-	}
-	return out
 }
 
 func ledgerTimeKey(en store.Entry) []byte {

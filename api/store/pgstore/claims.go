@@ -36,30 +36,8 @@ const markDirtySQL = `
 	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
 	       urgent = dirty.urgent OR EXCLUDED.urgent`
 
-// span is what one transaction changed of one patient: results can change
-// from `from` on (zero: everything), and urgent when a blood gas changed.
-type span struct {
-	from   time.Time
-	urgent bool
-}
-
-func (a span) merge(b span) span {
-	return span{from: earliest(a.from, b.from), urgent: a.urgent || b.urgent}
-}
-
-// earliest is the earlier time, where zero (everything) is the earliest.
-func earliest(a, b time.Time) time.Time {
-	if a.IsZero() || b.IsZero() {
-		return time.Time{}
-	}
-	if a.Before(b) {
-		return a
-	}
-	return b
-}
-
-func markDirty(ctx context.Context, q querier, subject string, now time.Time, sp span) error {
-	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.from), sp.urgent)
+func markDirty(ctx context.Context, q querier, subject string, now time.Time, sp store.Span) error {
+	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.From), sp.Urgent)
 	return err
 }
 
@@ -68,7 +46,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 	if err := checkSubject(subject); err != nil {
 		return fmt.Errorf("pgstore.MarkDirty: %w", err)
 	}
-	return s.run(ctx, "MarkDirty", func(q querier) error { return markDirty(ctx, q, subject, now, span{}) })
+	return s.run(ctx, "MarkDirty", func(q querier) error { return markDirty(ctx, q, subject, now, store.Span{}) })
 }
 
 // DirtyPatients lists every dirty patient, claimed or not: urgent ones

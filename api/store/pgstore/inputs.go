@@ -20,19 +20,6 @@ func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) i
 	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
 }
 
-func putResult(exists bool, c int) store.PutResult {
-	switch {
-	case !exists:
-		return store.PutNew
-	case c > 0:
-		return store.PutNewer
-	case c == 0:
-		return store.PutSame
-	default:
-		return store.PutOlder
-	}
-}
-
 // lockKeys takes a transaction-scoped advisory lock on each name, in the
 // order of their lock keys so that two transactions locking overlapping
 // sets cannot deadlock. It is how PutInputs keeps its checks and writes
@@ -73,7 +60,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			return err
 		}
 		var changed []string
-		spans := map[string]span{}
+		spans := map[string]store.Span{}
 		for i, in := range inputs {
 			res, touched, err := putInput(ctx, tx, in)
 			if err != nil {
@@ -82,7 +69,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 			results[i] = res
 			for _, t := range touched {
 				if prev, ok := spans[t.subject]; ok {
-					spans[t.subject] = prev.merge(t.span)
+					spans[t.subject] = prev.Merge(t.span)
 				} else {
 					changed = append(changed, t.subject)
 					spans[t.subject] = t.span
@@ -105,7 +92,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 // touched is a patient whose inputs one put changed, and how.
 type touched struct {
 	subject string
-	span    span
+	span    store.Span
 }
 
 // putInput applies one input under the resource's lock and returns the
@@ -120,7 +107,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner row went with a prune) decides too.
 	exists, ownerHasCopy := false, false
-	sp := span{from: in.ChangedAt, urgent: in.Urgent}
+	sp := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
@@ -140,25 +127,25 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 			ownerHasCopy = true
 		}
 		if c := compareVersions(in.LastUpdated, in.VersionID, fromNanos(lu), id); c <= 0 {
-			return putResult(true, c), nil, nil
+			return store.ResultOf(true, c), nil, nil
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp.from = earliest(sp.from, fromNanos(eff))
+			sp.From = store.Earliest(sp.From, fromNanos(eff))
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
 	changed := []touched{{in.Subject, sp}}
-	res := putResult(exists, 1)
+	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
 		moved := in
 		moved.Subject, moved.Payload = owner, in.Withdrawal
 		if err := writeInput(ctx, tx, moved); err != nil {
 			return 0, nil, err
 		}
-		changed = append(changed, touched{owner, span{}}) // the whole first patient
+		changed = append(changed, touched{owner, store.Span{}}) // the whole first patient
 		res = store.PutMoved
 	}
 	if err := writeInput(ctx, tx, in); err != nil {
@@ -269,7 +256,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		if exists {
 			c = compareVersions(p.LastUpdated, p.VersionID, fromNanos(oldUpdated), oldID)
 		}
-		res = putResult(exists, c)
+		res = store.ResultOf(exists, c)
 		if exists && c <= 0 {
 			if nanos(p.FetchedAt) > oldFetched {
 				_, err := tx.Exec(ctx, `UPDATE patients SET fetched_at_ns = $2 WHERE subject = $1`, p.Subject, nanos(p.FetchedAt))
@@ -289,7 +276,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			p.Subject, p.VersionID, nanos(p.LastUpdated), nanos(p.FetchedAt), payload); err != nil {
 			return err
 		}
-		return markDirty(ctx, tx, p.Subject, now, span{})
+		return markDirty(ctx, tx, p.Subject, now, store.Span{})
 	})
 	if err != nil {
 		return 0, err

@@ -105,7 +105,7 @@ func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) 
 				}
 				prev = again[en.Series]
 			}
-			en.Revisions = mergeRevisions(prev, en)
+			en.Revisions = store.MergeRevisions(prev, en)
 			if en.ServerID == "" {
 				en.ServerID, en.ServerVersion = prev.ServerID, prev.ServerVersion
 			}
@@ -230,25 +230,6 @@ func putKeys(ctx context.Context, tx pgx.Tx, en store.Entry) error {
 		ON CONFLICT (key) DO UPDATE SET series = EXCLUDED.series`,
 		append([]string{en.Key}, en.Revisions...), en.Series)
 	return err
-}
-
-// mergeRevisions lists the previous keys oldest first: the old entry's
-// revisions, the old key, then any the caller added, each once, never the
-// current key (the embedded store's rule).
-func mergeRevisions(old, en store.Entry) []string {
-	all := append(append(append([]string(nil), old.Revisions...), old.Key), en.Revisions...)
-	out := make([]string, 0, len(all))
-	seen := map[string]bool{en.Key: true}
-	for _, k := range all {
-		if !seen[k] {
-			seen[k] = true
-			out = append(out, k)
-		}
-	}
-	if len(out) == 0 {
-		return nil
-	}
-	return out
 }
 
 // settleDirty clears the patient's mark and claim when no change arrived

@@ -1,6 +1,7 @@
 package pgstore
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
@@ -76,18 +77,8 @@ func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]stor
 	if err != nil {
 		return nil, err
 	}
-	slices.SortFunc(out, func(a, b store.Write) int { return compareIDs(a.ID, b.ID) })
+	slices.SortFunc(out, func(a, b store.Write) int { return cmp.Compare(a.ID, b.ID) })
 	return out, nil
-}
-
-func compareIDs(a, b uint64) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }
 
 func writeNotFound(id uint64) error { return notFound(fmt.Sprintf("write %d", id)) }
