@@ -73,18 +73,26 @@ func TestStoreSetting(t *testing.T) {
 	}
 }
 
-// Three replicas on one PostgreSQL database, the same notification
-// delivered to two of them, twice each (a sender retrying against another replica behind the load
+// Three replicas on one PostgreSQL database, each finding the same data by
+// its start-up search, and the same notification delivered to two of
+// them, twice each (a sender retrying against another replica behind the load
 // balancer): the FHIR server ends with one of each derived Observation and
 // one Provenance, nothing is left to do on any replica, and a gRPC watcher
 // on the third replica sees each derivation once.
 func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 	peer := fhirtest.Start(t)
 	url := pgtest.NewSchema(t)
+	// The bed exists before the replicas start, and its data settles for a
+	// second before it is derived: each replica's start-up search, in
+	// pages, and the notifications then bring the same whole bed, rather
+	// than a part that later input would amend (a second write, rightly,
+	// with a second Provenance).
+	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
 	var replicas []*service
 	for range 3 {
 		cfg := testConfig(peer.BaseURL, "")
 		cfg.Store = url
+		cfg.Settle = time.Second
 		replicas = append(replicas, start(t, cfg))
 	}
 	// A watcher on the last replica, which is never sent a notification.
@@ -100,7 +108,6 @@ func TestReplicasOnPostgreSQLWriteOnce(t *testing.T) {
 		t.Fatal(err)
 	}
 
-	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
 	note := notification("Subscription/r", 1, b.resources)
 	for round := range 2 {
 		for i, s := range replicas[:2] {
