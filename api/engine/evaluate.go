@@ -350,6 +350,12 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 					fresh = append(fresh, v)
 				case err != nil:
 					return store.Change{}, fmt.Errorf("engine: %w", err)
+				case other.Subject == d.Subject:
+					// Not re-filed: another evaluation of this patient (on
+					// another replica) committed it since the ledger was
+					// read. Evaluate again from what is stored now, rather
+					// than amend a value that did not change.
+					return store.Change{}, store.ErrConflict
 				default:
 					bySeries[series] = other
 					changed = append(changed, v)
