@@ -14,8 +14,6 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 )
 
-const writeColumns = `id, subject, series, body, attempts, not_before_ns, created_ns, last_error`
-
 func scanWrite(row pgx.CollectableRow) (store.Write, error) {
 	var w store.Write
 	var id, nb, created int64
