@@ -49,6 +49,14 @@ func TestMain(m *testing.M) {
 // address, as deadspace serve would run.
 func runChild() int {
 	cfg := testConfig(os.Getenv("DEADSPACE_FHIR_BASE"), os.Getenv("DEADSPACE_DATA_DIR"))
+	// Replicas on PostgreSQL (store_test.go).
+	cfg.Store = os.Getenv("DEADSPACE_STORE")
+	if d, err := time.ParseDuration(os.Getenv("DEADSPACE_STORE_WRITE_LEASE")); err == nil {
+		cfg.StoreLease = d
+	}
+	if d, err := time.ParseDuration(os.Getenv("DEADSPACE_SETTLE")); err == nil {
+		cfg.Settle = d
+	}
 	svc, err := serve.New(cfg, "test", slog.New(slog.NewJSONHandler(os.Stderr, nil)))
 	if err != nil {
 		fmt.Fprintln(os.Stderr, err)
@@ -69,7 +77,7 @@ func testConfig(base, dir string) serve.Config {
 		FHIRBase: base, Listen: "127.0.0.1:0", DataDir: dir, WebhookSecret: secret, WebhookHeader: "Authorization",
 		MaxBodyBytes: 4 << 20, Window: 5 * time.Minute, Settle: 0, Retention: 24 * time.Hour,
 		Barometric: 760, CO2Basis: "dry", CodeSystem: encode.DefaultCodeSystem, LogLevel: "info",
-		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256,
+		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256, StoreLease: 2 * time.Minute,
 		FallDrop: 8, FallSustain: 3 * time.Minute, FallBaseline: 30 * time.Minute,
 	}
 }
@@ -552,10 +560,10 @@ type childProc struct {
 	url string
 }
 
-func startChild(t *testing.T, base, dir string) childProc {
+func startChild(t *testing.T, base, dir string, env ...string) childProc {
 	t.Helper()
 	cmd := exec.Command(os.Args[0], "-test.run=^$")
-	cmd.Env = append(os.Environ(), childEnv+"=1", "DEADSPACE_FHIR_BASE="+base, "DEADSPACE_DATA_DIR="+dir)
+	cmd.Env = append(append(os.Environ(), childEnv+"=1", "DEADSPACE_FHIR_BASE="+base, "DEADSPACE_DATA_DIR="+dir), env...)
 	out, err := cmd.StdoutPipe()
 	if err != nil {
 		t.Fatal(err)

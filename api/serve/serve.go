@@ -272,7 +272,7 @@ func openStore(cfg Config) (store.Store, error) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), storeOpenTimeout)
 	defer cancel()
-	ps, err := pgstore.Open(ctx, cfg.Store, pgstore.Options{})
+	ps, err := pgstore.Open(ctx, cfg.Store, pgstore.Options{WriteLease: cfg.StoreLease})
 	if err != nil {
 		return nil, fmt.Errorf("--store: %w", err)
 	}

@@ -2,12 +2,15 @@ package serve_test
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"flag"
 	"io"
 	"net/http"
 	neturl "net/url"
 	"strings"
+	"sync"
+	"syscall"
 	"testing"
 	"time"
 
@@ -181,5 +184,95 @@ func TestReadinessFollowsTheDatabase(t *testing.T) {
 	resp.Body.Close()
 	if resp.StatusCode != http.StatusOK {
 		t.Errorf("/healthz = %d without the database; liveness must not depend on it", resp.StatusCode)
+	}
+}
+
+// The failure test across replicas: three `serve` processes on one
+// PostgreSQL database and the Medplum peer; two senders spread the beds'
+// notifications over them, each bed to two replicas (duplicates); one
+// replica is killed with SIGKILL in the middle of the burst and another is
+// restarted; what was not acknowledged is sent again to a live replica.
+// The peer ends with every derived Observation once and one Provenance per
+// bed, and nothing is left in the outbox (the dead replica's claimed
+// writes are taken over after the write lease).
+func TestReplicasSurviveAKilledReplica(t *testing.T) {
+	peer := fhirtest.Start(t)
+	dbURL := pgtest.NewSchema(t)
+	var beds []bed
+	for range 6 {
+		beds = append(beds, newBed(t, peer, time.Now().Add(-30*time.Minute), true))
+	}
+	env := []string{"DEADSPACE_STORE=" + dbURL, "DEADSPACE_STORE_WRITE_LEASE=3s", "DEADSPACE_SETTLE=1s"}
+	replicas := make([]childProc, 3)
+	for i := range replicas {
+		replicas[i] = startChild(t, peer.BaseURL, "", env...)
+	}
+	type post struct {
+		bed   int
+		acked bool
+	}
+	var mu sync.Mutex
+	var posts []post
+	send := func(sender, offset int) {
+		for i, b := range beds {
+			if sender == 0 && i == len(beds)/2 {
+				// Mid-burst: replica 0 dies without a word.
+				if err := replicas[0].cmd.Process.Signal(syscall.SIGKILL); err != nil {
+					t.Error(err)
+				}
+			}
+			mu.Lock()
+			r := replicas[(i+offset)%len(replicas)]
+			mu.Unlock()
+			code, _, err := tryPost(r.url, notification("Subscription/burst", 1+i*100, b.resources))
+			mu.Lock()
+			posts = append(posts, post{i, err == nil && code == http.StatusOK})
+			mu.Unlock()
+		}
+	}
+	var wg sync.WaitGroup
+	wg.Go(func() { send(0, 0) })
+	wg.Go(func() { send(1, 1) })
+	wg.Wait()
+	_ = replicas[0].cmd.Wait()
+
+	// Replica 1 is restarted (a rolling upgrade).
+	_ = replicas[1].cmd.Process.Signal(syscall.SIGTERM)
+	_ = replicas[1].cmd.Wait()
+	replicas[1] = startChild(t, peer.BaseURL, "", env...)
+
+	// The senders redeliver what was not acknowledged, to a live replica.
+	acked := make([]bool, len(beds))
+	for _, p := range posts {
+		acked[p.bed] = acked[p.bed] || p.acked
+	}
+	for i, b := range beds {
+		if !acked[i] {
+			if code, _, err := tryPost(replicas[2].url, notification("Subscription/burst", 1+i*100, b.resources)); err != nil || code != http.StatusOK {
+				t.Fatalf("redelivery of bed %d: %v %d", i, err, code)
+			}
+		}
+	}
+	waitFor(t, "the replicas to drain the shared outbox", func() bool {
+		resp, err := http.Get(replicas[2].url + "/readyz")
+		if err != nil {
+			return false
+		}
+		defer resp.Body.Close()
+		var r struct{ OutboxDepth, PendingPatients int }
+		return json.NewDecoder(resp.Body).Decode(&r) == nil && r.OutboxDepth == 0 && r.PendingPatients == 0
+	})
+	st := stateOf(t, peer)
+	for _, b := range beds {
+		if n := len(st.derivedFor(b.subject)); n != wantValues {
+			t.Errorf("%s: %d derived values, want %d", b.subject, n, wantValues)
+		}
+	}
+	if len(st.provenances) != len(beds) || st.devices != 1 {
+		t.Errorf("%d Provenance and %d Device, want %d and 1", len(st.provenances), st.devices, len(beds))
+	}
+	for _, r := range replicas[1:] {
+		_ = r.cmd.Process.Signal(syscall.SIGTERM)
+		_ = r.cmd.Wait()
 	}
 }
