@@ -1,0 +1,254 @@
+package serve_test
+
+import (
+	"encoding/json"
+	"fmt"
+	"net/http"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest/fakefhir"
+)
+
+// These tests run the service against the Go fake FHIR server: no Node, so
+// they never skip, and they finish in seconds. They cover how the service
+// learns of data (gaps, heartbeats, silence, polling with paging, id-only
+// notifications, catch-up at start); the Medplum peer tests cover the same
+// against a real server implementation.
+
+// fakeBed puts a patient with the readings of newBed (and a blood gas when
+// withGas) on the fake server.
+func fakeBed(t *testing.T, f *fakefhir.Server, at time.Time, withGas bool) bed {
+	t.Helper()
+	var b bed
+	put := func(resource string) (json.RawMessage, string) {
+		t.Helper()
+		r, err := f.Put([]byte(resource))
+		if err != nil {
+			t.Fatal(err)
+		}
+		var id struct{ ID string }
+		_ = json.Unmarshal(r, &id)
+		return r, id.ID
+	}
+	var pid string
+	b.patient, pid = put(`{"resourceType":"Patient","gender":"female","birthDate":"1961-04-12"}`)
+	b.subject = "Patient/" + pid
+	b.resources = append(b.resources, b.patient)
+	add := func(system, code, unit string, v float64, ts time.Time) {
+		r, _ := put(observation(b.subject, system, code, unit, v, ts, "final"))
+		b.readings = append(b.readings, r)
+		b.resources = append(b.resources, r)
+	}
+	add("http://loinc.org", "8302-2", "cm", 168, at.Add(-24*time.Hour))
+	for m := -2; m <= 2; m++ {
+		ts := at.Add(time.Duration(m) * time.Minute)
+		add("http://loinc.org", "19891-1", "mm[Hg]", 34+float64(m%2), ts)
+		add("http://loinc.org", "76222-9", "mL", 450, ts)
+		add("http://loinc.org", "19840-8", "/min", 18, ts)
+		add("http://loinc.org", "76008-2", "L/min", 8.1, ts)
+		add("http://loinc.org", "60825-7", "mL/min", 220, ts)
+	}
+	if withGas {
+		b.gas, b.gasID = put(observation(b.subject, "http://loinc.org", "2019-8", "mm[Hg]", 44, at, "final"))
+		b.resources = append(b.resources, b.gas)
+	}
+	return b
+}
+
+// derivedOn returns the current derived Observations on the fake for subject.
+func derivedOn(f *fakefhir.Server, subject string) []map[string]any {
+	var out []map[string]any
+	for _, raw := range f.Current("Observation") {
+		var m map[string]any
+		_ = json.Unmarshal(raw, &m)
+		ids, _ := m["identifier"].([]any)
+		if len(ids) == 0 {
+			continue
+		}
+		if id, _ := ids[0].(map[string]any); id["system"] != encode.DefaultIdentifierSystem {
+			continue
+		}
+		if s, _ := m["subject"].(map[string]any); s["reference"] == subject {
+			out = append(out, m)
+		}
+	}
+	return out
+}
+
+// startOnFake starts the service against f and waits for its start-up
+// catch-up to finish.
+func startOnFake(t *testing.T, f *fakefhir.Server, tweak func(*serve.Config)) *service {
+	t.Helper()
+	cfg := testConfig(f.BaseURL, t.TempDir())
+	if tweak != nil {
+		tweak(&cfg)
+	}
+	s := start(t, cfg)
+	waitFor(t, "the start-up catch-up", func() bool { return f.Count(http.MethodGet, "Observation") > 0 })
+	waitIdle(t, s)
+	return s
+}
+
+// idOnlyNotification names resources by reference only; the service must
+// read them from the server.
+func idOnlyNotification(sub string, firstEvent int, refs []string) []byte {
+	var events, entries []string
+	for i, ref := range refs {
+		events = append(events, fmt.Sprintf(`{"name":"notification-event","part":[{"name":"event-number","valueString":"%d"},{"name":"focus","valueReference":{"reference":"%s"}}]}`, firstEvent+i, ref))
+		entries = append(entries, fmt.Sprintf(`{"fullUrl":"http://fhir.invalid/%s","request":{"method":"PUT","url":"%s"},"response":{"status":"200"}}`, ref, ref))
+	}
+	status := fmt.Sprintf(`{"fullUrl":"urn:uuid:5e1f7c1a-0000-4000-8000-0000000000aa","resource":{"resourceType":"Parameters","parameter":[`+
+		`{"name":"subscription","valueReference":{"reference":"%s"}},{"name":"status","valueCode":"active"},`+
+		`{"name":"type","valueCode":"event-notification"},{"name":"events-since-subscription-start","valueString":"%d"}%s]},`+
+		`"request":{"method":"GET","url":"%s/$status"},"response":{"status":"200"}}`,
+		sub, firstEvent+len(refs)-1, prefixComma(events), sub)
+	return []byte(`{"resourceType":"Bundle","type":"history","entry":[` + status + prefixComma(entries) + `]}`)
+}
+
+// heartbeat is a heartbeat notification that counts events since the
+// subscription started.
+func heartbeat(sub string, eventsSinceStart int) []byte {
+	return []byte(fmt.Sprintf(`{"resourceType":"Bundle","type":"history","entry":[{"fullUrl":"urn:uuid:5e1f7c1a-0000-4000-8000-0000000000bb",`+
+		`"resource":{"resourceType":"Parameters","parameter":[{"name":"subscription","valueReference":{"reference":"%s"}},`+
+		`{"name":"status","valueCode":"active"},{"name":"type","valueCode":"heartbeat"},`+
+		`{"name":"events-since-subscription-start","valueString":"%d"}]},"request":{"method":"GET","url":"%s/$status"},"response":{"status":"200"}}]}`,
+		sub, eventsSinceStart, sub))
+}
+
+func waitDerived(t *testing.T, f *fakefhir.Server, subject string, n int) {
+	t.Helper()
+	waitFor(t, fmt.Sprintf("%d derived values for a patient", n), func() bool { return len(derivedOn(f, subject)) == n })
+}
+
+func TestFakeCatchUpAtStartTakesWhatIsAlreadyThere(t *testing.T) {
+	f := fakefhir.Start(t)
+	b := fakeBed(t, f, time.Now().Add(-40*time.Minute), true)
+	startOnFake(t, f, nil)
+	waitDerived(t, f, b.subject, wantValues)
+}
+
+func TestFakeEventNumberJumpCatchesUp(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, nil)
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), false)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/gap", 1, b.resources), secret)
+	waitIdle(t, s)
+	if n := len(derivedOn(f, b.subject)); n != 0 {
+		t.Fatalf("%d derived values before any blood gas", n)
+	}
+	searches := f.Count(http.MethodGet, "Observation")
+	// The blood gas is stored, its notification is lost, and the next one
+	// arrives with a higher event number.
+	fakeBed(t, f, time.Now().Add(-30*time.Minute), false) // unrelated traffic
+	gas, _ := f.Put([]byte(observation(b.subject, "http://loinc.org", "2019-8", "mm[Hg]", 44, time.Now().Add(-30*time.Minute), "final")))
+	_ = gas
+	unrelated, _ := f.Put([]byte(observation(b.subject, "http://loinc.org", "8867-4", "/min", 88, time.Now(), "final")))
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/gap", len(b.resources)+2, []json.RawMessage{unrelated}), secret)
+	waitDerived(t, f, b.subject, wantValues)
+	if f.Count(http.MethodGet, "Observation") == searches {
+		t.Fatal("derived without a search: the gap was not what caught it up")
+	}
+	// Consecutive numbers afterwards are no gap: no further search.
+	waitIdle(t, s)
+	searches = f.Count(http.MethodGet, "Observation")
+	more, _ := f.Put([]byte(observation(b.subject, "http://loinc.org", "8867-4", "/min", 90, time.Now(), "final")))
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/gap", len(b.resources)+3, []json.RawMessage{more}), secret)
+	waitIdle(t, s)
+	if got := f.Count(http.MethodGet, "Observation"); got != searches {
+		t.Fatalf("%d searches after a notification without a gap, want none", got-searches)
+	}
+}
+
+func TestFakeHeartbeatCountAheadCatchesUp(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, nil)
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	post(t, s.url, http.MethodPost, "/notify", heartbeat("Subscription/hb", 0), secret)
+	waitIdle(t, s)
+	// The heartbeat now counts 27 events that never arrived.
+	post(t, s.url, http.MethodPost, "/notify", heartbeat("Subscription/hb", len(b.resources)), secret)
+	waitDerived(t, f, b.subject, wantValues)
+}
+
+func TestFakeHeartbeatSilenceCatchesUp(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, func(c *serve.Config) { c.Heartbeat = 2 * time.Second })
+	post(t, s.url, http.MethodPost, "/notify", heartbeat("Subscription/quiet", 0), secret)
+	// Data arrives on the server, but no notification does; after the
+	// heartbeat timeout the service searches.
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	waitDerived(t, f, b.subject, wantValues)
+}
+
+func TestFakePollingFollowsNextLinks(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, func(c *serve.Config) { c.PollInterval = time.Second })
+	// Five beds are 135 Observations: more than one page of the service's
+	// searches (100), so the poll has to follow next links.
+	var beds []bed
+	for i := range 5 {
+		beds = append(beds, fakeBed(t, f, time.Now().Add(-time.Duration(30+i*10)*time.Minute), true))
+	}
+	for _, b := range beds {
+		waitDerived(t, f, b.subject, wantValues)
+	}
+	waitIdle(t, s)
+	paged := 0
+	for _, r := range f.Requests() {
+		if r.Method == http.MethodGet && r.Path == "Observation" && strings.Contains(r.Query, "_offset=") {
+			paged++
+		}
+	}
+	if paged == 0 {
+		t.Fatal("no search followed a next link")
+	}
+}
+
+func TestFakeIDOnlyNotificationReadsTheResources(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, nil)
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	var refs []string
+	for _, r := range b.resources {
+		var id struct{ ResourceType, ID string }
+		_ = json.Unmarshal(r, &id)
+		refs = append(refs, id.ResourceType+"/"+id.ID)
+	}
+	searches := f.Count(http.MethodGet, "Observation")
+	code, body := post(t, s.url, http.MethodPost, "/notify", idOnlyNotification("Subscription/ids", 1, refs), secret)
+	if code != http.StatusOK {
+		t.Fatalf("HTTP %d: %s", code, body)
+	}
+	waitDerived(t, f, b.subject, wantValues)
+	if got := f.Count(http.MethodGet, "Observation/"+b.gasID); got == 0 {
+		t.Fatal("the blood gas was never read by id")
+	}
+	if got := f.Count(http.MethodGet, "Observation") - f.Count(http.MethodGet, "Observation/"); got != searches {
+		t.Fatalf("%d searches: id-only content must be read by id, not searched", got-searches)
+	}
+}
+
+func TestFakeServerFaultsAreRetriedWithoutLoss(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, nil)
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	// The first two transactions are refused as throttled, the third is done
+	// but its answer is lost: the outbox retries, and the conditional creates
+	// keep the retry from storing a second copy.
+	f.Fail(http.MethodPost, "", http.StatusTooManyRequests, "1", 1)
+	f.Fail(http.MethodPost, "", http.StatusServiceUnavailable, "1", 1)
+	f.Drop(http.MethodPost, "", 1)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/faults", 1, b.resources), secret)
+	waitDerived(t, f, b.subject, wantValues)
+	waitIdle(t, s)
+	if got := len(derivedOn(f, b.subject)); got != wantValues {
+		t.Fatalf("%d derived values after faults, want %d", got, wantValues)
+	}
+	if n := len(f.Current("Provenance")); n != 1 {
+		t.Fatalf("%d Provenance after faults, want 1", n)
+	}
+}

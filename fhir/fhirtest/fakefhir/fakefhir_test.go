@@ -1,0 +1,211 @@
+package fakefhir_test
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"net/http"
+	"net/url"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/fhir/client"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest/fakefhir"
+)
+
+// newClient talks to the fake with the project's own client; retries wait
+// nothing, so fault tests are fast.
+func newClient(t *testing.T, s *fakefhir.Server, waits *[]time.Duration) *client.Client {
+	t.Helper()
+	c, err := client.New(client.Config{
+		BaseURL: s.BaseURL, MaxRetries: 3,
+		Sleep: func(_ context.Context, d time.Duration) error {
+			if waits != nil {
+				*waits = append(*waits, d)
+			}
+			return nil
+		},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return c
+}
+
+func obs(code, subject string, value float64) []byte {
+	return []byte(fmt.Sprintf(`{"resourceType":"Observation","status":"final","code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"valueQuantity":{"value":%g}}`, code, subject, value))
+}
+
+func TestCreateReadVReadUpdateWithIfMatch(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	body, m, err := c.Create(ctx, "Observation", obs("2019-8", "Patient/p1", 44))
+	if err != nil || m.Status != http.StatusCreated || m.ID == "" || m.VersionID != "1" {
+		t.Fatalf("create: %v %+v", err, m)
+	}
+	var r map[string]any
+	_ = json.Unmarshal(body, &r)
+	r["valueQuantity"] = map[string]any{"value": 45}
+	v2, _ := json.Marshal(r)
+	if _, m2, err := c.Update(ctx, "Observation", m.ID, v2, "1"); err != nil || m2.VersionID != "2" {
+		t.Fatalf("update on the current version: %v %+v", err, m2)
+	}
+	// A late write that saw version 1 must not overwrite version 2.
+	if _, _, err := c.Update(ctx, "Observation", m.ID, v2, "1"); !errors.Is(err, client.ErrPreconditionFailed) {
+		t.Fatalf("update on a stale version: %v, want precondition failed", err)
+	}
+	cur, m3, err := c.Read(ctx, "Observation", m.ID)
+	if err != nil || m3.VersionID != "2" || !strings.Contains(string(cur), `"value":45`) {
+		t.Fatalf("read: %v %+v %s", err, m3, cur)
+	}
+	old, _, err := c.VRead(ctx, "Observation", m.ID, "1")
+	if err != nil || !strings.Contains(string(old), `"value":44`) {
+		t.Fatalf("vread 1: %v %s", err, old)
+	}
+	if _, _, err := c.Read(ctx, "Observation", "nope"); !errors.Is(err, client.ErrNotFound) {
+		t.Fatalf("read of an unknown id: %v", err)
+	}
+	if n := len(s.History("Observation", m.ID)); n != 2 {
+		t.Fatalf("%d versions, want 2", n)
+	}
+}
+
+func TestConditionalCreateFindsTheExistingResource(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	dev := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:x","value":"d1"}]}`)
+	q := url.Values{"identifier": {"urn:x|d1"}}
+	_, m1, err := c.ConditionalCreate(ctx, "Device", dev, q)
+	if err != nil || m1.Status != http.StatusCreated {
+		t.Fatalf("first: %v %+v", err, m1)
+	}
+	_, m2, err := c.ConditionalCreate(ctx, "Device", dev, q)
+	if err != nil || m2.Status != http.StatusOK || m2.ID != m1.ID {
+		t.Fatalf("second: %v %+v, want 200 with id %s", err, m2, m1.ID)
+	}
+	if _, _, err := c.ConditionalCreate(ctx, "Device", dev, url.Values{"nonsense": {"1"}}); !errors.Is(err, client.ErrBadRequest) {
+		t.Fatalf("unknown parameter under handling=strict: %v, want 400", err)
+	}
+	if n := len(s.Current("Device")); n != 1 {
+		t.Fatalf("%d devices, want 1", n)
+	}
+}
+
+func TestSearchPagesByLastUpdatedAndCode(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	for i := range 7 {
+		if _, _, err := c.Create(ctx, "Observation", obs("2019-8", "Patient/p1", float64(40+i))); err != nil {
+			t.Fatal(err)
+		}
+		if _, _, err := c.Create(ctx, "Observation", obs("8867-4", "Patient/p1", 80)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	all := s.Current("Observation")
+	var third struct{ Meta struct{ LastUpdated string } }
+	_ = json.Unmarshal(all[4], &third)
+	cases := []struct {
+		name  string
+		query url.Values
+		want  int
+	}{
+		{"code over three pages", url.Values{"code": {"http://loinc.org|2019-8"}, "_count": {"3"}}, 7},
+		{"either of two codes", url.Values{"code": {"2019-8,8867-4"}, "_count": {"4"}}, 14},
+		{"since a time, inclusive", url.Values{"_lastUpdated": {"ge" + third.Meta.LastUpdated}, "_count": {"2"}}, 10},
+		{"after a time", url.Values{"_lastUpdated": {"gt" + third.Meta.LastUpdated}}, 9},
+		{"by subject", url.Values{"subject": {"Patient/p1"}, "code": {"8867-4"}}, 7},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			before := s.Count(http.MethodGet, "Observation")
+			var got []string
+			err := c.Search(ctx, "Observation", tc.query, func(e json.RawMessage) error {
+				got = append(got, string(e))
+				return nil
+			})
+			if err != nil || len(got) != tc.want {
+				t.Fatalf("search: %v, %d entries, want %d", err, len(got), tc.want)
+			}
+			count := fakefhir.DefaultPageSize
+			if v := tc.query.Get("_count"); v != "" {
+				count, _ = strconv.Atoi(v)
+			}
+			pages := max(1, (tc.want+count-1)/count)
+			if got := s.Count(http.MethodGet, "Observation") - before; got != pages {
+				t.Errorf("%d page requests, want %d (next links followed)", got, pages)
+			}
+		})
+	}
+}
+
+func TestTransactionResolvesReferencesAndIsAllOrNothing(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	existing, m, err := c.Create(ctx, "Observation", obs("2019-8", "Patient/p1", 44))
+	if err != nil {
+		t.Fatal(err)
+	}
+	_ = existing
+	tx := fmt.Sprintf(`{"resourceType":"Bundle","type":"transaction","entry":[
+	 {"fullUrl":"urn:uuid:0f0e0d0c-0000-4000-8000-000000000001","resource":{"resourceType":"Observation","status":"final","identifier":[{"system":"urn:d","value":"k1"}]},
+	  "request":{"method":"POST","url":"Observation","ifNoneExist":"identifier=urn:d|k1"}},
+	 {"resource":{"resourceType":"Provenance","target":[{"reference":"urn:uuid:0f0e0d0c-0000-4000-8000-000000000001"}]},"request":{"method":"POST","url":"Provenance"}},
+	 {"resource":{"resourceType":"Observation","id":"%s","status":"amended"},"request":{"method":"PUT","url":"Observation/%s","ifMatch":"W/\"1\""}}]}`, m.ID, m.ID)
+	resp, err := c.Transaction(ctx, []byte(tx))
+	if err != nil || len(resp.Entries) != 3 {
+		t.Fatalf("transaction: %v %+v", err, resp)
+	}
+	if resp.Entries[0].Status != 201 || resp.Entries[2].VersionID != "2" {
+		t.Fatalf("entries: %+v", resp.Entries)
+	}
+	prov := s.Current("Provenance")
+	if len(prov) != 1 || !strings.Contains(string(prov[0]), `"Observation/`+resp.Entries[0].ID+`"`) {
+		t.Fatalf("the Provenance does not cite the created Observation: %s", prov)
+	}
+	// The same transaction again: the PUT's If-Match is stale, so nothing
+	// of it is stored, not even the unconditional Provenance.
+	if _, err := c.Transaction(ctx, []byte(tx)); !errors.Is(err, client.ErrPreconditionFailed) {
+		t.Fatalf("stale transaction: %v, want 412", err)
+	}
+	if n := len(s.Current("Provenance")); n != 1 {
+		t.Fatalf("%d Provenance after a failed transaction, want 1", n)
+	}
+}
+
+func TestFaultsAreRetriedAndDroppedAnswersRecovered(t *testing.T) {
+	s := fakefhir.Start(t)
+	var waits []time.Duration
+	c := newClient(t, s, &waits)
+	ctx := context.Background()
+	s.Fail(http.MethodGet, "Observation", http.StatusTooManyRequests, "7", 1)
+	s.Fail(http.MethodGet, "Observation", http.StatusServiceUnavailable, "3", 1)
+	err := c.Search(ctx, "Observation", url.Values{"code": {"x"}}, func(json.RawMessage) error { return nil })
+	if err != nil {
+		t.Fatalf("search after 429 and 503: %v", err)
+	}
+	if len(waits) != 2 || waits[0] != 7*time.Second || waits[1] != 3*time.Second {
+		t.Fatalf("waits %v, want the server's Retry-After 7s then 3s", waits)
+	}
+	// The server stores the create, the answer is lost; the client's
+	// retry of a conditional create finds it instead of storing it twice.
+	s.Drop(http.MethodPost, "Device", 1)
+	dev := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:x","value":"d2"}]}`)
+	_, m, err := c.ConditionalCreate(ctx, "Device", dev, url.Values{"identifier": {"urn:x|d2"}})
+	if err != nil || m.Status != http.StatusOK {
+		t.Fatalf("conditional create after a dropped answer: %v %+v, want 200 (found)", err, m)
+	}
+	if n := len(s.Current("Device")); n != 1 {
+		t.Fatalf("%d devices, want 1", n)
+	}
+	if n := s.Count(http.MethodPost, "Device"); n != 2 {
+		t.Fatalf("%d POSTs, want 2 (the dropped one and its retry)", n)
+	}
+}
