@@ -6,6 +6,8 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 )
 
 // The unit's meaning is systemd's: systemd.exec(5) and systemd.service(5)
@@ -206,7 +208,7 @@ func TestSysusers(t *testing.T) {
 func TestSystemdAnalyze(t *testing.T) {
 	sa, err := exec.LookPath("systemd-analyze")
 	if err != nil {
-		t.Skip("systemd-analyze not installed")
+		fhirtest.Missing(t, "systemd-analyze not installed (Debian package systemd)")
 	}
 	b, err := os.ReadFile(filepath.FromSlash(unitFile))
 	if err != nil {
@@ -215,7 +217,7 @@ func TestSystemdAnalyze(t *testing.T) {
 	// verify insists the ExecStart binary exists; stand in the shell's true.
 	truePath, err := exec.LookPath("true")
 	if err != nil {
-		t.Skip("no true(1)")
+		fhirtest.Missing(t, "no true(1)")
 	}
 	if !strings.Contains(string(b), "ExecStart="+unitBinary+" ") {
 		t.Fatalf("ExecStart is not %s", unitBinary)

@@ -73,7 +73,6 @@ func benchLines(n int, unrelated90 bool) [][]byte {
 
 // The benchmark lines are what they claim to be.
 func TestBenchLines(t *testing.T) {
-	needPlausible(t)
 	d := New(Options{})
 	for _, mix := range []struct {
 		name        string
@@ -139,7 +138,6 @@ func BenchmarkBaseline_JSONMap(b *testing.B) {
 }
 
 func benchDecode(b *testing.B, unrelated90 bool) {
-	needPlausible(b)
 	d := New(Options{})
 	runBench(b, benchLines(1000, unrelated90), func(l []byte) {
 		it, err := d.Decode(l)

@@ -12,7 +12,6 @@ import (
 func jsonValid(b []byte) bool { return json.Valid(b) }
 
 func FuzzDecode(f *testing.F) {
-	needPlausible(f)
 	for _, fx := range fixtures(f) {
 		if fx.opts == (Options{}) {
 			f.Add(fx.line)

@@ -10,6 +10,7 @@ import (
 	"testing"
 
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 )
 
 // TestPeers checks the encoder's output against two outside references
@@ -23,7 +24,7 @@ func TestPeers(t *testing.T) {
 	}
 	node, err := exec.LookPath("node")
 	if err != nil {
-		t.Skip("node not found")
+		fhirtest.Missing(t, "node not found")
 	}
 	nodeDir, err := filepath.Abs(filepath.Join("..", "..", "testdata", "node"))
 	if err != nil {

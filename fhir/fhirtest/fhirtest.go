@@ -144,10 +144,26 @@ func StopShared() {
 
 func skipOrFail(tb testing.TB, err error) {
 	tb.Helper()
-	if errors.Is(err, errMissing) && os.Getenv("CI") != "true" {
-		tb.Skipf("fhirtest: %v", err)
+	if errors.Is(err, errMissing) {
+		Missing(tb, "fhirtest: %v", err)
 	}
 	tb.Fatalf("fhirtest: %v", err)
+}
+
+// InCI reports whether the tests run in CI (CI=true), where every peer and
+// tool a test needs must be present.
+func InCI() bool { return os.Getenv("CI") == "true" }
+
+// Missing ends a test whose peer or tool is missing: it skips on a
+// developer's machine and fails under CI=true, so CI can never pass a
+// check it did not run. Every test that needs something outside Go calls
+// it (or [Start]/[StartShared], which do).
+func Missing(tb testing.TB, format string, args ...any) {
+	tb.Helper()
+	if InCI() {
+		tb.Fatalf("missing under CI=true (.ci/test must install it): "+format, args...)
+	}
+	tb.Skipf(format, args...)
 }
 
 type process struct {

@@ -14,6 +14,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
@@ -133,10 +134,10 @@ func TestConversionsAgainstUcumLhc(t *testing.T) {
 func TestReferenceTableCurrent(t *testing.T) {
 	node, err := exec.LookPath("node")
 	if err != nil {
-		t.Skip("node not installed: cannot check the ucum-lhc reference table is current")
+		fhirtest.Missing(t, "node not installed: cannot check the ucum-lhc reference table is current")
 	}
 	if _, err := os.Stat(filepath.Join("..", "..", "testdata", "node", "node_modules", "@lhncbc", "ucum-lhc")); err != nil {
-		t.Skip("testdata/node/node_modules not installed (run npm ci in testdata/node): cannot check the ucum-lhc reference table is current")
+		fhirtest.Missing(t, "testdata/node/node_modules not installed (run npm ci in testdata/node): cannot check the ucum-lhc reference table is current")
 	}
 	out, err := exec.Command(node, referenceScript).Output()
 	if err != nil {

@@ -8,6 +8,7 @@ import (
 	"testing"
 
 	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
+	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 )
 
 // TestOpenSSLVerifies has OpenSSL, an implementation independent of Go's crypto/x509, check
@@ -16,7 +17,7 @@ import (
 func TestOpenSSLVerifies(t *testing.T) {
 	openssl, err := exec.LookPath("openssl")
 	if err != nil {
-		t.Skip("openssl not on PATH")
+		fhirtest.Missing(t, "openssl not on PATH (Debian package openssl)")
 	}
 	ca, other := tlstest.NewCA(t), tlstest.NewCA(t)
 	server := ca.Server(t, "127.0.0.1", "fhir.test")
