@@ -29,6 +29,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/backfill"
+	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/api/submit"
@@ -85,6 +86,9 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	}
 	switch args[0] {
 	case "replay":
+		// replay reports on stderr itself; anything a package logs goes
+		// through the same redaction as serve's logs.
+		slog.SetDefault(newLogger(stderr, "warn"))
 		return runReplay(ctx, args[1:], stdout, stderr)
 	case "serve":
 		return runServe(ctx, args[1:], os.Getenv, stderr)
@@ -327,6 +331,7 @@ func runServe(ctx context.Context, args []string, getenv func(string) string, st
 		return exitUsage
 	}
 	log := newLogger(stderr, cfg.LogLevel)
+	slog.SetDefault(log)
 	svc, err := serve.New(cfg, version, log)
 	if err != nil {
 		log.Error("start-up failed", "err", err)
@@ -339,12 +344,13 @@ func runServe(ctx context.Context, args []string, getenv func(string) string, st
 	return exitOK
 }
 
-// newLogger writes JSON lines. Nothing that identifies a patient is ever
-// given to it: log lines carry counts, reasons and request ids.
+// newLogger writes JSON lines through the one redacting handler: whatever
+// text reaches a log line, patient and resource identifiers and a FHIR
+// server's own wording are removed there (api/logredact).
 func newLogger(w io.Writer, level string) *slog.Logger {
 	var l slog.Level
 	_ = l.UnmarshalText([]byte(level))
-	return slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: l}))
+	return logredact.NewLogger(w, l)
 }
 
 func runBackfill(ctx context.Context, args []string, getenv func(string) string, stderr io.Writer) int {

@@ -38,7 +38,7 @@ func badRequest(format string, args ...any) error {
 //   - a record that does not exist (store.ErrNotFound): NotFound;
 //   - the caller's own cancellation or deadline: Canceled, DeadlineExceeded;
 //   - anything else: Internal with an opaque message naming the request id;
-//     the detail is logged, with resource identifiers redacted.
+//     the detail is logged; the logger redacts identifiers (api/logredact).
 func (s *Server) status(ctx context.Context, err error) error {
 	if err == nil {
 		return nil
@@ -57,18 +57,10 @@ func (s *Server) status(ctx context.Context, err error) error {
 		return status.Error(codes.DeadlineExceeded, "the call's deadline passed")
 	}
 	id := requestIDFrom(ctx)
-	s.logger(ctx).ErrorContext(ctx, "call failed", "err", redact(err.Error()))
+	// The logger's handler (api/logredact, installed by main) removes any
+	// identifier the error text quotes.
+	s.logger(ctx).ErrorContext(ctx, "call failed", "err", err)
 	return status.Errorf(codes.Internal, "internal error (request id %s)", id)
-}
-
-// references matches FHIR references, whose ids can identify a patient:
-// "Patient/x", "Observation/x/_history/2" and the like.
-var references = regexp.MustCompile(`\b([A-Z][A-Za-z]+)/[A-Za-z0-9\-.]{1,64}(/_history/[A-Za-z0-9\-.]{1,64})?`)
-
-// redact removes resource ids from an error text before it is logged:
-// error messages from below may quote them, and logs must not.
-func redact(s string) string {
-	return references.ReplaceAllString(s, "$1/[redacted]")
 }
 
 // requestIDs are accepted from clients only in this shape, so a client
@@ -148,7 +140,7 @@ func (s *Server) unaryRecover(ctx context.Context, req any, info *grpc.UnaryServ
 // recovered logs a panic (its value redacted, with the stack) and answers
 // the call with Internal.
 func (s *Server) recovered(ctx context.Context, r any) error {
-	s.logger(ctx).ErrorContext(ctx, "panic in a gRPC handler", "panic", redact(fmt.Sprint(r)), "stack", string(debug.Stack()))
+	s.logger(ctx).ErrorContext(ctx, "panic in a gRPC handler", "panic", fmt.Sprint(r), "stack", string(debug.Stack()))
 	return status.Errorf(codes.Internal, "internal error (request id %s)", requestIDFrom(ctx))
 }
 

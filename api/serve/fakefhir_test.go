@@ -1,6 +1,7 @@
 package serve_test
 
 import (
+	"context"
 	"encoding/json"
 	"fmt"
 	"net/http"
@@ -250,5 +251,68 @@ func TestFakeServerFaultsAreRetriedWithoutLoss(t *testing.T) {
 	}
 	if n := len(f.Current("Provenance")); n != 1 {
 		t.Fatalf("%d Provenance after faults, want 1", n)
+	}
+}
+
+// TestErrorPathLogsCarryNoIdentifiers runs the demo through the service
+// against the fake server while the server misbehaves in every way that
+// puts identifiers into error text: failed transactions and a failed
+// catch-up search whose OperationOutcome names patients and Observations,
+// a write refused for good (a dead letter), an id-only notification for a
+// resource the server does not have, and webhook input the service refuses.
+// With debug logs on, no identifier may reach them.
+func TestErrorPathLogsCarryNoIdentifiers(t *testing.T) {
+	f := fakefhir.Start(t)
+	leaky := "Observation/obs-leak-4471 of Patient/bed1-stable (birth 1961-04-12) failed: subject bed2-sedated, urn:uuid:77aa0c1e-9d1b-4b1e-8a0e-1f2e3d4c5b6a"
+	f.Inject(fakefhir.Fault{Method: http.MethodGet, Path: "Observation", Status: http.StatusInternalServerError, Text: leaky, Times: 5})
+	cfg := testConfig(f.BaseURL, t.TempDir())
+	cfg.Retention = 10 * 365 * 24 * time.Hour
+	cfg.LogLevel = "debug"
+	s := start(t, cfg)
+	waitFor(t, "the start-up catch-up", func() bool { return f.Count(http.MethodGet, "Observation") > 5 })
+	// The first transactions fail as server errors, then one is refused
+	// for good, with the identifiers in the server's answer.
+	f.Inject(fakefhir.Fault{Method: http.MethodPost, Path: "", Status: http.StatusInternalServerError, Text: leaky, Times: 6})
+	f.Inject(fakefhir.Fault{Method: http.MethodPost, Path: "", Status: http.StatusUnprocessableEntity, Text: leaky, Times: 1})
+	secrets := sendDemo(t, s)
+	secrets = append(secrets, "obs-leak-4471", "77aa0c1e-9d1b-4b1e-8a0e-1f2e3d4c5b6a")
+
+	code, _ := post(t, s.url, http.MethodPost, "/notify", idOnlyNotification("Subscription/leak", 1, []string{"Observation/missing-obs-5521"}), secret)
+	if code < 400 {
+		t.Fatalf("id-only notification for a missing resource answered %d", code)
+	}
+	secrets = append(secrets, "missing-obs-5521")
+	bad := `{"resourceType":"Bundle","type":"collection","entry":[{"resource":{"resourceType":"Observation","id":"refused-obs-6631","status":"final",` +
+		`"code":{"coding":[{"system":"http://loinc.org","code":"2019-8"}]},"subject":{"reference":"Patient/refused-pat-6632"},` +
+		`"effectiveDateTime":"2026-01-01T00:00:00Z","valueQuantity":{"value":"forty","unit":"mm[Hg]"}}}]}`
+	post(t, s.url, http.MethodPost, "/notify", []byte(bad), secret)
+	post(t, s.url, http.MethodPost, "/notify", []byte(`{"resourceType":"Bundle","type":"collection","entry":[{"resource":{"resourceType":"Observation","id":"not json`), secret)
+	secrets = append(secrets, "refused-obs-6631", "refused-pat-6632")
+
+	waitFor(t, "a dead letter and an empty outbox", func() bool {
+		h, err := s.svc.Engine().Health(context.Background())
+		return err == nil && h.Stats.DeadLetters > 0 && h.Stats.OutboxDepth == 0 && h.Stats.DirtyPatients == 0
+	})
+	for _, typ := range []string{"Observation", "Provenance", "Device"} {
+		for _, raw := range f.Current(typ) {
+			var id struct{ ID string }
+			_ = json.Unmarshal(raw, &id)
+			secrets = append(secrets, id.ID)
+		}
+	}
+	s.stop()
+	logs := s.logs.String()
+	for _, path := range []string{"HTTP 500", "HTTP 422", "HTTP 404"} {
+		if !strings.Contains(logs, path) {
+			t.Errorf("no log line shows %q: the error path was not exercised", path)
+		}
+	}
+	checkLogs(t, logs, secrets)
+	if testing.Verbose() {
+		for _, line := range strings.Split(logs, "\n") {
+			if strings.Contains(line, "HTTP ") {
+				t.Log(line)
+			}
+		}
 	}
 }

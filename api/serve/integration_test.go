@@ -25,6 +25,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
@@ -94,7 +95,10 @@ type service struct {
 func start(t *testing.T, cfg serve.Config) *service {
 	t.Helper()
 	logs := &syncBuffer{}
-	svc, err := serve.New(cfg, "test", slog.New(slog.NewJSONHandler(logs, nil)))
+	// The logger main builds: JSON through the one redacting handler.
+	var level slog.Level
+	_ = level.UnmarshalText([]byte(cfg.LogLevel))
+	svc, err := serve.New(cfg, "test", logredact.NewLogger(logs, level))
 	if err != nil {
 		t.Fatal(err)
 	}
