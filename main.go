@@ -32,14 +32,11 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/submit"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
-	"github.com/deadspace-fhir/deadspace/fhir/codes"
-	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
-	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
 // version is stamped at build time with -ldflags "-X main.version=…".
@@ -89,7 +86,7 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		// replay reports on stderr itself; anything a package logs goes
 		// through the same redaction as serve's logs.
 		slog.SetDefault(newLogger(stderr, "warn"))
-		return runReplay(ctx, args[1:], stdout, stderr)
+		return runReplay(ctx, args[1:], os.Getenv, stdout, stderr)
 	case "serve":
 		return runServe(ctx, args[1:], os.Getenv, stderr)
 	case "backfill":
@@ -107,69 +104,15 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	return exitUsage
 }
 
-// commonFlags are the derivation settings shared by every command.
-type commonFlags struct {
-	window       time.Duration
-	codesFile    string
-	barometric   float64
-	co2Basis     string
-	codeSystem   string
-	fallDrop     float64
-	fallSustain  time.Duration
-	fallBaseline time.Duration
-}
-
-func (c *commonFlags) register(fs *flag.FlagSet) {
-	d := derive.DefaultConfig()
-	fs.DurationVar(&c.window, "window", d.Window, "pairing window on each side of a blood gas's sample time")
-	fs.StringVar(&c.codesFile, "codes", "", "site code table (JSON) merged over the built-in LOINC and MDC table")
-	fs.Float64Var(&c.barometric, "barometric-pressure", units.DefaultBarometricPressure, "barometric pressure in mm[Hg], for CO2 reported in percent")
-	fs.StringVar(&c.co2Basis, "co2-basis", units.BasisDry.String(), "how percent CO2 becomes a pressure where the code table sets no basis: dry (F x PB) or wet (F x (PB - 47))")
-	fs.StringVar(&c.codeSystem, "code-system", encode.DefaultOptions().CodeSystem, "canonical URL of the CodeSystem of the derived codes")
-	fs.Float64Var(&c.fallDrop, "fall-drop", d.Fall.Drop, "EtCO2 fall below baseline, in mm[Hg], that counts")
-	fs.DurationVar(&c.fallSustain, "fall-sustain", d.Fall.Sustain, "how long an EtCO2 fall must last to be reported")
-	fs.DurationVar(&c.fallBaseline, "fall-baseline", d.Fall.Baseline, "how far back the EtCO2 baseline reaches")
-}
-
-// options checks every setting and reports all problems at once.
-func (c *commonFlags) options() (derive.Config, decode.Options, encode.Options, error) {
-	var errs []error
-	cfg := derive.DefaultConfig()
-	cfg.Window = c.window
-	cfg.Fall.Drop = c.fallDrop
-	cfg.Fall.Sustain = c.fallSustain
-	cfg.Fall.Baseline = c.fallBaseline
-	if err := cfg.ValidateAs(serve.DeriveFlags); err != nil {
-		errs = append(errs, err)
-	}
-	table, err := codes.LoadFile(c.codesFile)
-	if err != nil {
-		errs = append(errs, fmt.Errorf("--codes: %w", err))
-	}
-	u := units.Options{BarometricPressure: c.barometric}
-	basis, err := units.ParseBasis(c.co2Basis)
-	if err != nil {
-		errs = append(errs, fmt.Errorf("--co2-basis: %w", err))
-	}
-	u.PercentBasis = basis
-	if err := u.Validate(); err != nil {
-		errs = append(errs, err)
-	}
-	enc := encode.DefaultOptions()
-	enc.CodeSystem = c.codeSystem
-	enc.SoftwareVersion = version
-	return cfg, decode.Options{Table: table, Units: u}, enc, errors.Join(errs...)
-}
-
-func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+func runReplay(ctx context.Context, args []string, getenv func(string) string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE...\n\nReads NDJSON files of FHIR R4 resources (Observation and Patient, any order),\nderives, and writes the derived resources as NDJSON, or a table with --format table.\nA summary of counts goes to stderr. Exit status 3 means some lines were skipped.\n\nFlags:")
+		fmt.Fprintln(stderr, "usage: deadspace replay [flags] FILE...\n\nReads NDJSON files of FHIR R4 resources (Observation and Patient, any order),\nderives, and writes the derived resources as NDJSON, or a table with --format table.\nA summary of counts goes to stderr. Exit status 3 means some lines were skipped.\nEvery flag can also be set by an environment variable, as for serve\n(--barometric-pressure is DEADSPACE_BAROMETRIC_PRESSURE).\n\nFlags:")
 		fs.PrintDefaults()
 	}
-	var common commonFlags
-	common.register(fs)
+	var derivation settings.Derivation
+	derivation.Register(fs)
 	outPath := fs.String("out", "", "write the output to this file instead of stdout")
 	format := fs.String("format", "ndjson", "output format: ndjson (FHIR resources) or table (a readable summary)")
 	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
@@ -183,11 +126,15 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) int
 		}
 		return exitUsage
 	}
-	cfg, decOpts, encOpts, err := common.options()
 	var errs []error
+	if err := settings.ApplyEnv(fs, getenv); err != nil {
+		errs = append(errs, err)
+	}
+	resolved, err := derivation.Resolve(version)
 	if err != nil {
 		errs = append(errs, err)
 	}
+	cfg, decOpts, encOpts := resolved.Derive, resolved.Decode, resolved.Encode
 	if *format != "ndjson" && *format != "table" {
 		errs = append(errs, fmt.Errorf("--format must be ndjson or table, got %q", *format))
 	}
@@ -360,8 +307,8 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 		fmt.Fprintln(stderr, "usage: deadspace backfill [flags] [FILE...]\n\nDerives a unit's history and writes it to the FHIR server as serve would, exactly once.\nWithout files it runs a Bulk Data export on the server (--export system, patient or\ngroup with --group); with files it reads NDJSON as replay does. Interrupted, it resumes\nwhen run again with the same arguments and --state-dir. Every flag can also be set by\nan environment variable, as for serve (DEADSPACE_STATE_DIR, DEADSPACE_FHIR_TOKEN, ...).\n\nFlags:")
 		fs.PrintDefaults()
 	}
-	var common commonFlags
-	common.register(fs)
+	var derivation settings.Derivation
+	derivation.Register(fs)
 	var conn serve.Config
 	conn.BindFHIR(fs)
 	exportBase := fs.String("export-base", "", "base URL of the Bulk Data server when it is not --fhir-base (same credentials)")
@@ -380,8 +327,9 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 		return exitUsage
 	}
 	errs := []error{conn.ApplyEnv(fs, getenv), conn.ValidateFHIR()}
-	cfg, decOpts, encOpts, err := common.options()
+	resolved, err := derivation.Resolve(version)
 	errs = append(errs, err)
+	cfg, decOpts, encOpts := resolved.Derive, resolved.Decode, resolved.Encode
 	opts := backfill.Options{
 		Derive: cfg, Decode: decOpts, Encode: encOpts, Files: files, TypeFilter: *typeFilter,
 		StateDir: *stateDir, DryRun: *dryRun, MaxTransactionEntries: conn.MaxTxEntries,

@@ -36,7 +36,7 @@ func TestBackfillUsageErrors(t *testing.T) {
 		{"nowhere to write", []string{"backfill", "x.ndjson"}, []string{"--fhir-base is required"}},
 		{"no files and no server", []string{"backfill", "--dry-run"}, []string{"give NDJSON files"}},
 		{"every problem at once", []string{"backfill", "--fhir-base", "ftp://x", "--since", "yesterday", "--window", "-1m"},
-			[]string{"--fhir-base must be", "yesterday", "--window must"}},
+			[]string{"--fhir-base must be", "yesterday", "--window must be between 1m0s and 6h0m0s, got -1m0s"}},
 		{"bad export level", []string{"backfill", "--dry-run", "--export-base", "https://fhir.example/r4", "--export", "ward"}, []string{"export level must be system, patient or group"}},
 		{"export flags with files", []string{"backfill", "--dry-run", "--group", "icu-4", "x.ndjson"}, []string{"--group applies to an export"}},
 		{"token file missing", []string{"backfill", "--fhir-base", "https://fhir.example/r4", "--fhir-token-file", "/nonexistent/token"},

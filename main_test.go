@@ -223,7 +223,7 @@ func TestReplayUsageErrors(t *testing.T) {
 	}{
 		{"no files", []string{"replay"}, []string{"no input files"}},
 		{"every problem at once", []string{"replay", "--format", "xml", "--window", "-1m", "--co2-basis", "damp", "x.ndjson"},
-			[]string{"--format", "--window must", "--co2-basis"}},
+			[]string{"--format", "--window must be between 1m0s and 6h0m0s, got -1m0s", `--co2-basis must be dry or wet, got "damp"`}},
 		{"missing site table", []string{"replay", "--codes", "/nonexistent/codes.json", "x.ndjson"}, []string{"--codes"}},
 		{"unknown command", []string{"frobnicate"}, []string{"unknown command"}},
 	}
@@ -239,6 +239,21 @@ func TestReplayUsageErrors(t *testing.T) {
 				}
 			}
 		})
+	}
+}
+
+// TestEveryCommandReadsTheDerivationVariables checks that replay and serve
+// take a derivation setting from the same environment variable and refuse
+// the same bad value with the same message.
+func TestEveryCommandReadsTheDerivationVariables(t *testing.T) {
+	t.Setenv("DEADSPACE_BAROMETRIC_PRESSURE", "0")
+	t.Setenv("DEADSPACE_WEBHOOK_SECRET", "0123456789abcdef0123")
+	want := "--barometric-pressure must be 250 to 2300 mm[Hg], got 0"
+	for _, args := range [][]string{{"replay", "x.ndjson"}, {"serve", "--data-dir", t.TempDir()}} {
+		_, errOut, code := runCmd(t, args...)
+		if code != exitUsage || !strings.Contains(errOut, want) {
+			t.Errorf("%s: exit %d, stderr %q; want %d and %q", args[0], code, errOut, exitUsage, want)
+		}
 	}
 }
 

@@ -11,6 +11,7 @@ import (
 	"testing"
 
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/settings"
 )
 
 // The artefacts configure `deadspace serve` through environment variables
@@ -39,7 +40,7 @@ func serveFlags() map[string]string {
 	var cfg serve.Config
 	cfg.Bind(fs)
 	out := map[string]string{}
-	fs.VisitAll(func(f *flag.Flag) { out[serve.EnvName(f.Name)] = f.Name })
+	fs.VisitAll(func(f *flag.Flag) { out[settings.EnvName(f.Name)] = f.Name })
 	return out
 }
 
@@ -49,7 +50,7 @@ func unknownEnv(env map[string]string) (unknown, pending []string) {
 	known := serveFlags()
 	soon := map[string]bool{}
 	for f := range pendingFlags {
-		soon[serve.EnvName(f)] = true
+		soon[settings.EnvName(f)] = true
 	}
 	for k := range env {
 		switch {
@@ -105,7 +106,7 @@ func serveConfig(env map[string]string) (serve.Config, error) {
 func TestPendingFlagsStillPending(t *testing.T) {
 	known := serveFlags()
 	for f := range pendingFlags {
-		if known[serve.EnvName(f)] != "" {
+		if known[settings.EnvName(f)] != "" {
 			t.Errorf("--%s now exists: remove it from pendingFlags so its variable is checked like any other", f)
 		}
 	}

@@ -26,6 +26,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/backfill"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/bulk"
@@ -310,10 +311,9 @@ func TestBackfillAfterServeWrotePartOfTheNight(t *testing.T) {
 	// two of the five beds and writes their values.
 	cfg := serve.Config{
 		FHIRBase: peer.BaseURL, Listen: "127.0.0.1:0", DataDir: t.TempDir(), WebhookSecret: "backfill-test-secret-0123",
-		WebhookHeader: "Authorization", MaxBodyBytes: 4 << 20, Window: derive.DefaultConfig().Window, Settle: 0,
-		Retention: 5 * 365 * 24 * time.Hour, Barometric: 760, CO2Basis: "dry", CodeSystem: encode.DefaultCodeSystem,
-		LogLevel: "info", MaxTxEntries: 8, MaxConcurrent: 16,
-		FallDrop: derive.DefaultConfig().Fall.Drop, FallSustain: derive.DefaultConfig().Fall.Sustain, FallBaseline: derive.DefaultConfig().Fall.Baseline,
+		WebhookHeader: "Authorization", MaxBodyBytes: 4 << 20, Settle: 0,
+		Retention: 5 * 365 * 24 * time.Hour, LogLevel: "info", MaxTxEntries: 8, MaxConcurrent: 16,
+		Derivation: settings.Defaults(),
 	}
 	if err := cfg.Validate(); err != nil {
 		t.Fatal(err)

@@ -15,12 +15,16 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/ui"
-	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/api/settings"
 )
 
 // Config is every setting of deadspace serve. Each field has a flag and an
 // environment variable: --fhir-base and DEADSPACE_FHIR_BASE, and so on.
 type Config struct {
+	// Derivation is the derivation configuration replay shares
+	// (api/settings): --window, --codes, --barometric-pressure and so on.
+	Derivation settings.Derivation
+
 	FHIRBase       string
 	FHIRToken      string // secret: from DEADSPACE_FHIR_TOKEN or --fhir-token-file only
 	FHIRTokenFile  string
@@ -32,17 +36,12 @@ type Config struct {
 	WebhookSecFile string
 	WebhookHeader  string
 	MaxBodyBytes   int64
-	Window         time.Duration
 	PollInterval   time.Duration
 	Settle         time.Duration
 	Retention      time.Duration
 	Heartbeat      time.Duration
 	Register       bool
 	PublicURL      string
-	CodesFile      string
-	Barometric     float64
-	CO2Basis       string
-	CodeSystem     string
 	LogLevel       string
 	GRPCListen     string
 	TLSCert        string
@@ -56,9 +55,6 @@ type Config struct {
 	MaxTxEntries   int
 	ReadyGrace     time.Duration
 	MaxConcurrent  int
-	FallDrop       float64
-	FallSustain    time.Duration
-	FallBaseline   time.Duration
 	UI             UIConfig
 }
 
@@ -83,23 +79,6 @@ type UIConfig struct {
 	AccessLog        string
 }
 
-// deriveConfig is the derivation rules the flags select; replay takes the
-// same flags, so a live service and an offline replay of its data agree.
-// DeriveFlags names the flags that set derive.Config fields, for errors
-// (derive.Config.ValidateAs); replay and backfill take the same flags.
-var DeriveFlags = map[string]string{
-	"Window": "--window", "Fall.Drop": "--fall-drop", "Fall.Sustain": "--fall-sustain", "Fall.Baseline": "--fall-baseline",
-}
-
-func (c *Config) deriveConfig() derive.Config {
-	d := derive.DefaultConfig()
-	d.Window = c.Window
-	d.Fall.Drop = c.FallDrop
-	d.Fall.Sustain = c.FallSustain
-	d.Fall.Baseline = c.FallBaseline
-	return d
-}
-
 // Bind registers every flag on fs with its default.
 func (c *Config) Bind(fs *flag.FlagSet) {
 	c.BindFHIR(fs)
@@ -111,21 +90,13 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.WebhookSecFile, "webhook-secret-file", "", "file holding the webhook secret")
 	fs.StringVar(&c.WebhookHeader, "webhook-header", "Authorization", "header carrying the secret: Authorization means \"Bearer <secret>\"; any other header carries the secret itself")
 	fs.Int64Var(&c.MaxBodyBytes, "max-body-bytes", 4<<20, "largest webhook request body accepted")
-	d := derive.DefaultConfig()
-	fs.DurationVar(&c.Window, "window", d.Window, "pairing window on each side of a blood gas's sample time")
-	fs.Float64Var(&c.FallDrop, "fall-drop", d.Fall.Drop, "EtCO2 fall below baseline, in mm[Hg], that counts")
-	fs.DurationVar(&c.FallSustain, "fall-sustain", d.Fall.Sustain, "how long an EtCO2 fall must last to be reported")
-	fs.DurationVar(&c.FallBaseline, "fall-baseline", d.Fall.Baseline, "how far back the EtCO2 baseline reaches")
+	c.Derivation.Register(fs)
 	fs.DurationVar(&c.PollInterval, "poll-interval", 0, "search the FHIR server for changes this often (0: only at start, on gaps and on empty rest-hooks)")
 	fs.DurationVar(&c.Settle, "settle", 30*time.Second, "how long new data waits before it is derived, so late readings are included")
 	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
 	fs.DurationVar(&c.Heartbeat, "heartbeat-timeout", 0, "catch up by search when no notification arrived for this long (0: off)")
 	fs.BoolVar(&c.Register, "register-subscription", false, "create or re-activate the rest-hook Subscription on the FHIR server at start-up")
 	fs.StringVar(&c.PublicURL, "public-url", "", "URL the FHIR server reaches this service at (for --register-subscription), e.g. https://deadspace.example/")
-	fs.StringVar(&c.CodesFile, "codes", "", "site code table (JSON) merged over the built-in LOINC and MDC table")
-	fs.Float64Var(&c.Barometric, "barometric-pressure", 760, "barometric pressure in mm[Hg], for CO2 reported in percent")
-	fs.StringVar(&c.CO2Basis, "co2-basis", "dry", "how percent CO2 becomes a pressure where the code table sets no basis: dry or wet")
-	fs.StringVar(&c.CodeSystem, "code-system", "https://deadspace-fhir.github.io/fhir/CodeSystem/dead-space", "canonical URL of the CodeSystem of the derived codes")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
 	fs.StringVar(&c.GRPCListen, "grpc-listen", "127.0.0.1:9090", "gRPC address (empty: no gRPC)")
 	fs.StringVar(&c.TLSCert, "tls-cert", "", "PEM certificate for HTTPS and gRPC TLS (with --tls-key)")
@@ -239,36 +210,18 @@ func splitList(s string) []string {
 	return out
 }
 
-// EnvName is the environment variable of a flag: DEADSPACE_ and the flag's
-// name in upper case with dashes as underscores.
-func EnvName(flagName string) string {
-	return "DEADSPACE_" + strings.ToUpper(strings.ReplaceAll(flagName, "-", "_"))
-}
-
 // ApplyEnv sets every flag not given on the command line from its
-// environment variable, and reads the secrets that come only from the
-// environment. It reports every bad value at once.
+// environment variable (settings.ApplyEnv, the rule of every command), and
+// reads the secrets that come only from the environment.
 func (c *Config) ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
-	set := make(map[string]bool)
-	fs.Visit(func(f *flag.Flag) { set[f.Name] = true })
-	var errs []error
-	fs.VisitAll(func(f *flag.Flag) {
-		if set[f.Name] {
-			return
-		}
-		if v := getenv(EnvName(f.Name)); v != "" {
-			if err := f.Value.Set(v); err != nil {
-				errs = append(errs, fmt.Errorf("%s=%q: %w", EnvName(f.Name), v, err))
-			}
-		}
-	})
+	err := settings.ApplyEnv(fs, getenv)
 	if c.FHIRToken == "" {
 		c.FHIRToken = getenv("DEADSPACE_FHIR_TOKEN")
 	}
 	if c.UI.OIDCClientSecret == "" {
 		c.UI.OIDCClientSecret = getenv("DEADSPACE_UI_OIDC_CLIENT_SECRET")
 	}
-	return errors.Join(errs...)
+	return err
 }
 
 // readSecret reads a secret file, trimming one trailing newline.
@@ -361,7 +314,7 @@ func (c *Config) Validate() error {
 	if c.ReadyGrace < 0 {
 		errs = append(errs, fmt.Errorf("--ready-grace must not be negative, got %v", c.ReadyGrace))
 	}
-	if err := c.deriveConfig().ValidateAs(DeriveFlags); err != nil {
+	if _, err := c.Derivation.Resolve("dev"); err != nil {
 		errs = append(errs, err)
 	}
 	errs = append(errs, c.UI.validate(c.TLSCert != "")...)

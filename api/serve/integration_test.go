@@ -27,6 +27,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/serve"
+	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 )
@@ -76,10 +77,9 @@ func runChild() int {
 func testConfig(base, dir string) serve.Config {
 	return serve.Config{
 		FHIRBase: base, Listen: "127.0.0.1:0", DataDir: dir, WebhookSecret: secret, WebhookHeader: "Authorization",
-		MaxBodyBytes: 4 << 20, Window: 5 * time.Minute, Settle: 0, Retention: 24 * time.Hour,
-		Barometric: 760, CO2Basis: "dry", CodeSystem: encode.DefaultCodeSystem, LogLevel: "info",
+		MaxBodyBytes: 4 << 20, Settle: 0, Retention: 24 * time.Hour, LogLevel: "info",
 		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256, StoreLease: 2 * time.Minute,
-		FallDrop: 8, FallSustain: 3 * time.Minute, FallBaseline: 30 * time.Minute,
+		Derivation: settings.Defaults(),
 	}
 }
 

@@ -27,11 +27,9 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
-	"github.com/deadspace-fhir/deadspace/fhir/codes"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
-	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
 // Service is a running deadspace serve.
@@ -56,7 +54,7 @@ type Service struct {
 }
 
 // upstream tracks whether the FHIR server is answering, from every request
-// the client makes.
+// the client makes; it is the one source of readiness's view of the server.
 type upstream struct {
 	mu          sync.Mutex
 	lastOK      time.Time
@@ -87,29 +85,15 @@ func (u *upstream) state() (lastOK, failedSince time.Time) {
 // that a bad address or a locked store fails here, before anything runs.
 // cfg must have passed Validate.
 func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
-	dcfg := cfg.deriveConfig()
-	if err := dcfg.Validate(); err != nil {
-		return nil, err
-	}
-	table, err := codes.LoadFile(cfg.CodesFile)
-	if err != nil {
-		return nil, fmt.Errorf("--codes: %w", err)
-	}
-	basis, err := units.ParseBasis(cfg.CO2Basis)
-	if err != nil {
-		return nil, fmt.Errorf("--co2-basis: %w", err)
-	}
-	u := units.Options{BarometricPressure: cfg.Barometric, PercentBasis: basis}
-	if err := u.Validate(); err != nil {
-		return nil, err
-	}
-	encOpts := encode.DefaultOptions()
-	encOpts.CodeSystem = cfg.CodeSystem
-	encOpts.SoftwareVersion = version
-	enc, err := encode.New(encOpts)
+	opts, err := cfg.Derivation.Resolve(version)
 	if err != nil {
 		return nil, err
 	}
+	enc, err := encode.New(opts.Encode)
+	if err != nil {
+		return nil, err
+	}
+	table := opts.Decode.Table
 	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
 	if s.codeSystem, err = enc.CodeSystem(); err != nil {
 		return nil, err
@@ -127,8 +111,8 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	search := table.SearchTokens()
 	opEvents := ui.NewOpEvents(0)
 	e, err := engine.New(engine.Config{
-		Store: s.store, Decoder: decode.New(decode.Options{Table: table, Units: u}), Encoder: enc,
-		Derive: dcfg, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
+		Store: s.store, Decoder: decode.New(opts.Decode), Encoder: enc,
+		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
 		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
 	})
@@ -428,7 +412,7 @@ func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
 	if !s.engine.Standalone() {
 		lastOK, failedSince := s.up.state()
 		switch {
-		case lastOK.IsZero() && h.ServerOK.IsZero():
+		case lastOK.IsZero():
 			problems = append(problems, "FHIR server has not answered yet")
 		case !failedSince.IsZero() && now.Sub(failedSince) >= s.cfg.ReadyGrace:
 			problems = append(problems, "FHIR server is not answering")
