@@ -10,6 +10,8 @@
 //	deadspace backfill [flags] [FILE...] derive history (a Bulk Data export
 //	                                   or NDJSON files) and write it back
 //	deadspace submit [flags] FILE...   send NDJSON files to a running serve
+//	deadspace deadletters [flags] list | show ID | retry ID
+//	                                   writes the FHIR server refused for good
 //	deadspace version                  print the version (also --version)
 //
 // Run "deadspace replay -h", "deadspace serve -h" or "deadspace backfill -h"
@@ -29,6 +31,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/backfill"
+	"github.com/deadspace-fhir/deadspace/api/deadletters"
 	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
@@ -70,6 +73,8 @@ Commands:
                            derive history (a Bulk Data export or NDJSON files)
                            and write it back to the FHIR server
   submit [flags] FILE...   send NDJSON files to a running serve over gRPC
+  deadletters [flags] list | show ID | retry ID
+                           the writes the FHIR server refused for good
   version                  print the version and the algorithm version
 
 Run "deadspace COMMAND -h" for a command's flags; "deadspace --version" also
@@ -81,11 +86,11 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		fmt.Fprint(stderr, usage)
 		return exitUsage
 	}
+	// Every command logs through the one redacting handler; serve replaces
+	// it with one at its --log-level.
+	slog.SetDefault(newLogger(stderr, "warn"))
 	switch args[0] {
 	case "replay":
-		// replay reports on stderr itself; anything a package logs goes
-		// through the same redaction as serve's logs.
-		slog.SetDefault(newLogger(stderr, "warn"))
 		return runReplay(ctx, args[1:], os.Getenv, stdout, stderr)
 	case "serve":
 		return runServe(ctx, args[1:], os.Getenv, stderr)
@@ -93,6 +98,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runBackfill(ctx, args[1:], os.Getenv, stderr)
 	case "submit":
 		return runSubmit(ctx, args[1:], stdout, stderr)
+	case "deadletters":
+		return deadletters.Main(ctx, args[1:], os.Getenv, stdout, stderr)
 	case "version", "-version", "--version":
 		fmt.Fprintf(stdout, "deadspace %s (algorithm %s)\n", version, derive.AlgorithmVersion)
 		return exitOK
@@ -119,7 +126,7 @@ func runReplay(ctx context.Context, args []string, getenv func(string) string, s
 	codeSystemPath := fs.String("codesystem", "", "also write the project's CodeSystem (every derived code with its definition and unit, FHIR R4 JSON) to this file")
 	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
 	htmlPath := fs.String("html", "", "also write a self-contained HTML report (overview, timelines, explanations) to this file")
-	files, err := parseInterspersed(fs, args)
+	files, err := settings.ParseInterspersed(fs, args)
 	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return exitOK
@@ -229,27 +236,6 @@ func writeFile(path string, write func(io.Writer) error) error {
 	return err
 }
 
-// parseInterspersed parses flags that may come before, between or after the
-// positional arguments, as in "replay a.ndjson b.ndjson --format table", and
-// returns the positional arguments. "--" ends the flags.
-func parseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
-	var positional []string
-	for {
-		if err := fs.Parse(args); err != nil {
-			return nil, err
-		}
-		rest := fs.Args()
-		if len(rest) == 0 {
-			return positional, nil
-		}
-		if len(args) > len(rest) && args[len(args)-len(rest)-1] == "--" {
-			return append(positional, rest...), nil
-		}
-		positional = append(positional, rest[0])
-		args = rest[1:]
-	}
-}
-
 func runServe(ctx context.Context, args []string, getenv func(string) string, stderr io.Writer) int {
 	fs := flag.NewFlagSet("serve", flag.ContinueOnError)
 	fs.SetOutput(stderr)
@@ -319,7 +305,7 @@ func runBackfill(ctx context.Context, args []string, getenv func(string) string,
 	stateDir := fs.String("state-dir", "deadspace-backfill", "directory of the resumable state (an embedded store) and the downloads")
 	dryRun := fs.Bool("dry-run", false, "derive and report counts without writing to the FHIR server")
 	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
-	files, err := parseInterspersed(fs, args)
+	files, err := settings.ParseInterspersed(fs, args)
 	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return exitOK
@@ -414,7 +400,7 @@ func runSubmit(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	fs.StringVar(&opts.KeyFile, "key", "", "PEM private key of --cert")
 	fs.IntVar(&opts.ChunkBytes, "chunk-bytes", submit.DefaultChunkBytes, "NDJSON bytes sent per call")
 	quiet := fs.Bool("quiet", false, "no progress lines")
-	files, err := parseInterspersed(fs, args)
+	files, err := settings.ParseInterspersed(fs, args)
 	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			return exitOK

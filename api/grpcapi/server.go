@@ -30,6 +30,7 @@ import (
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/reflection"
 
+	"github.com/deadspace-fhir/deadspace/api/deadletters"
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	pb "github.com/deadspace-fhir/deadspace/proto/deadspace/v1"
 )
@@ -58,6 +59,9 @@ type Config struct {
 	// Watchers, when set, is told +1 when a watch stream starts and -1 when
 	// it ends, for the watch-subscribers gauge.
 	Watchers func(delta int)
+	// DeadLetters, when set, serves the dead-letter calls; without it they
+	// answer UNIMPLEMENTED.
+	DeadLetters deadletters.Source
 }
 
 // Server implements the API. Create it with [New].

@@ -14,8 +14,8 @@ import (
 	"strings"
 	"time"
 
-	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/settings"
+	"github.com/deadspace-fhir/deadspace/api/ui"
 )
 
 // Config is every setting of deadspace serve. Each field has a flag and an

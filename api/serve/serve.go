@@ -155,7 +155,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		s.ln = tls.NewListener(s.ln, s.tls)
 	}
 	if cfg.GRPCListen != "" {
-		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, Watchers: func(delta int) {
+		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, DeadLetters: s.store, Watchers: func(delta int) {
 			if delta > 0 {
 				s.Metrics.IncWatchSubscribers()
 			} else {

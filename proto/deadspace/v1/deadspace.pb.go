@@ -2224,6 +2224,351 @@ func (x *DerivationEvent) GetSuperseded() bool {
 	return false
 }
 
+// ListDeadLettersRequest bounds the list.
+type ListDeadLettersRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// At most this many: default 100, at most 1000.
+	Limit         int32 `protobuf:"varint,1,opt,name=limit,proto3" json:"limit,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListDeadLettersRequest) Reset() {
+	*x = ListDeadLettersRequest{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListDeadLettersRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListDeadLettersRequest) ProtoMessage() {}
+
+func (x *ListDeadLettersRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListDeadLettersRequest.ProtoReflect.Descriptor instead.
+func (*ListDeadLettersRequest) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{24}
+}
+
+func (x *ListDeadLettersRequest) GetLimit() int32 {
+	if x != nil {
+		return x.Limit
+	}
+	return 0
+}
+
+// ListDeadLettersResponse is the oldest dead letters.
+type ListDeadLettersResponse struct {
+	state       protoimpl.MessageState `protogen:"open.v1"`
+	DeadLetters []*DeadLetter          `protobuf:"bytes,1,rep,name=dead_letters,json=deadLetters,proto3" json:"dead_letters,omitempty"`
+	// How many dead letters there are in all.
+	Total         int64 `protobuf:"varint,2,opt,name=total,proto3" json:"total,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListDeadLettersResponse) Reset() {
+	*x = ListDeadLettersResponse{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListDeadLettersResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListDeadLettersResponse) ProtoMessage() {}
+
+func (x *ListDeadLettersResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListDeadLettersResponse.ProtoReflect.Descriptor instead.
+func (*ListDeadLettersResponse) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{25}
+}
+
+func (x *ListDeadLettersResponse) GetDeadLetters() []*DeadLetter {
+	if x != nil {
+		return x.DeadLetters
+	}
+	return nil
+}
+
+func (x *ListDeadLettersResponse) GetTotal() int64 {
+	if x != nil {
+		return x.Total
+	}
+	return 0
+}
+
+// DeadLetter is a write the FHIR server refused for good. It names no
+// patient: its series identify the derivations it carried, for Explain.
+type DeadLetter struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The write's id in the outbox, as the log line that buried it names it.
+	Id       uint64                 `protobuf:"varint,1,opt,name=id,proto3" json:"id,omitempty"`
+	BuriedAt *timestamppb.Timestamp `protobuf:"bytes,2,opt,name=buried_at,json=buriedAt,proto3" json:"buried_at,omitempty"`
+	QueuedAt *timestamppb.Timestamp `protobuf:"bytes,3,opt,name=queued_at,json=queuedAt,proto3" json:"queued_at,omitempty"`
+	Attempts int32                  `protobuf:"varint,4,opt,name=attempts,proto3" json:"attempts,omitempty"`
+	// Why it was buried: the server's answer, identifiers redacted.
+	Reason string `protobuf:"bytes,5,opt,name=reason,proto3" json:"reason,omitempty"`
+	// The failure of the attempt before, identifiers redacted.
+	LastError string `protobuf:"bytes,6,opt,name=last_error,json=lastError,proto3" json:"last_error,omitempty"`
+	// The series identifiers ("sha256:" and 64 hex digits) of the
+	// derivations it carried.
+	Series []string `protobuf:"bytes,7,rep,name=series,proto3" json:"series,omitempty"`
+	// A later derivation of one of its series was recorded after this write
+	// was queued; the later write carries the current value, and a retry of
+	// this one sends an older one.
+	Superseded    bool `protobuf:"varint,8,opt,name=superseded,proto3" json:"superseded,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *DeadLetter) Reset() {
+	*x = DeadLetter{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *DeadLetter) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*DeadLetter) ProtoMessage() {}
+
+func (x *DeadLetter) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use DeadLetter.ProtoReflect.Descriptor instead.
+func (*DeadLetter) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{26}
+}
+
+func (x *DeadLetter) GetId() uint64 {
+	if x != nil {
+		return x.Id
+	}
+	return 0
+}
+
+func (x *DeadLetter) GetBuriedAt() *timestamppb.Timestamp {
+	if x != nil {
+		return x.BuriedAt
+	}
+	return nil
+}
+
+func (x *DeadLetter) GetQueuedAt() *timestamppb.Timestamp {
+	if x != nil {
+		return x.QueuedAt
+	}
+	return nil
+}
+
+func (x *DeadLetter) GetAttempts() int32 {
+	if x != nil {
+		return x.Attempts
+	}
+	return 0
+}
+
+func (x *DeadLetter) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
+func (x *DeadLetter) GetLastError() string {
+	if x != nil {
+		return x.LastError
+	}
+	return ""
+}
+
+func (x *DeadLetter) GetSeries() []string {
+	if x != nil {
+		return x.Series
+	}
+	return nil
+}
+
+func (x *DeadLetter) GetSuperseded() bool {
+	if x != nil {
+		return x.Superseded
+	}
+	return false
+}
+
+// GetDeadLetterRequest names a dead letter.
+type GetDeadLetterRequest struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	Id            uint64                 `protobuf:"varint,1,opt,name=id,proto3" json:"id,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *GetDeadLetterRequest) Reset() {
+	*x = GetDeadLetterRequest{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *GetDeadLetterRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*GetDeadLetterRequest) ProtoMessage() {}
+
+func (x *GetDeadLetterRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use GetDeadLetterRequest.ProtoReflect.Descriptor instead.
+func (*GetDeadLetterRequest) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{27}
+}
+
+func (x *GetDeadLetterRequest) GetId() uint64 {
+	if x != nil {
+		return x.Id
+	}
+	return 0
+}
+
+// RetryDeadLetterRequest names a dead letter to send again.
+type RetryDeadLetterRequest struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	Id            uint64                 `protobuf:"varint,1,opt,name=id,proto3" json:"id,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RetryDeadLetterRequest) Reset() {
+	*x = RetryDeadLetterRequest{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RetryDeadLetterRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RetryDeadLetterRequest) ProtoMessage() {}
+
+func (x *RetryDeadLetterRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RetryDeadLetterRequest.ProtoReflect.Descriptor instead.
+func (*RetryDeadLetterRequest) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{28}
+}
+
+func (x *RetryDeadLetterRequest) GetId() uint64 {
+	if x != nil {
+		return x.Id
+	}
+	return 0
+}
+
+// RetryDeadLetterResponse names the write in the outbox.
+type RetryDeadLetterResponse struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	OutboxId      uint64                 `protobuf:"varint,1,opt,name=outbox_id,json=outboxId,proto3" json:"outbox_id,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RetryDeadLetterResponse) Reset() {
+	*x = RetryDeadLetterResponse{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RetryDeadLetterResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RetryDeadLetterResponse) ProtoMessage() {}
+
+func (x *RetryDeadLetterResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RetryDeadLetterResponse.ProtoReflect.Descriptor instead.
+func (*RetryDeadLetterResponse) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{29}
+}
+
+func (x *RetryDeadLetterResponse) GetOutboxId() uint64 {
+	if x != nil {
+		return x.OutboxId
+	}
+	return 0
+}
+
 var File_deadspace_v1_deadspace_proto protoreflect.FileDescriptor
 
 const file_deadspace_v1_deadspace_proto_rawDesc = "" +
@@ -2408,7 +2753,31 @@ const file_deadspace_v1_deadspace_proto_rawDesc = "" +
 	"derivation\x12\x1e\n" +
 	"\n" +
 	"superseded\x18\a \x01(\bR\n" +
-	"superseded*`\n" +
+	"superseded\".\n" +
+	"\x16ListDeadLettersRequest\x12\x14\n" +
+	"\x05limit\x18\x01 \x01(\x05R\x05limit\"l\n" +
+	"\x17ListDeadLettersResponse\x12;\n" +
+	"\fdead_letters\x18\x01 \x03(\v2\x18.deadspace.v1.DeadLetterR\vdeadLetters\x12\x14\n" +
+	"\x05total\x18\x02 \x01(\x03R\x05total\"\x99\x02\n" +
+	"\n" +
+	"DeadLetter\x12\x0e\n" +
+	"\x02id\x18\x01 \x01(\x04R\x02id\x127\n" +
+	"\tburied_at\x18\x02 \x01(\v2\x1a.google.protobuf.TimestampR\bburiedAt\x127\n" +
+	"\tqueued_at\x18\x03 \x01(\v2\x1a.google.protobuf.TimestampR\bqueuedAt\x12\x1a\n" +
+	"\battempts\x18\x04 \x01(\x05R\battempts\x12\x16\n" +
+	"\x06reason\x18\x05 \x01(\tR\x06reason\x12\x1d\n" +
+	"\n" +
+	"last_error\x18\x06 \x01(\tR\tlastError\x12\x16\n" +
+	"\x06series\x18\a \x03(\tR\x06series\x12\x1e\n" +
+	"\n" +
+	"superseded\x18\b \x01(\bR\n" +
+	"superseded\"&\n" +
+	"\x14GetDeadLetterRequest\x12\x0e\n" +
+	"\x02id\x18\x01 \x01(\x04R\x02id\"(\n" +
+	"\x16RetryDeadLetterRequest\x12\x0e\n" +
+	"\x02id\x18\x01 \x01(\x04R\x02id\"6\n" +
+	"\x17RetryDeadLetterResponse\x12\x1b\n" +
+	"\toutbox_id\x18\x01 \x01(\x04R\boutboxId*`\n" +
 	"\n" +
 	"ResultKind\x12\x1b\n" +
 	"\x17RESULT_KIND_UNSPECIFIED\x10\x00\x12\x19\n" +
@@ -2418,13 +2787,16 @@ const file_deadspace_v1_deadspace_proto_rawDesc = "" +
 	"\x10FLAG_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vFLAG_NORMAL\x10\x01\x12\r\n" +
 	"\tFLAG_HIGH\x10\x02\x12\f\n" +
-	"\bFLAG_LOW\x10\x032\xa5\x03\n" +
+	"\bFLAG_LOW\x10\x032\xb4\x05\n" +
 	"\tDeadSpace\x12F\n" +
 	"\aCompute\x12\x1c.deadspace.v1.ComputeRequest\x1a\x1d.deadspace.v1.ComputeResponse\x12C\n" +
 	"\x06Submit\x12\x1b.deadspace.v1.SubmitRequest\x1a\x1c.deadspace.v1.SubmitResponse\x12F\n" +
 	"\aExplain\x12\x1c.deadspace.v1.ExplainRequest\x1a\x1d.deadspace.v1.ExplainResponse\x12^\n" +
 	"\x0fListDerivations\x12$.deadspace.v1.ListDerivationsRequest\x1a%.deadspace.v1.ListDerivationsResponse\x12c\n" +
-	"\x10WatchDerivations\x12%.deadspace.v1.WatchDerivationsRequest\x1a&.deadspace.v1.WatchDerivationsResponse0\x01BDZBgithub.com/deadspace-fhir/deadspace/proto/deadspace/v1;deadspacev1b\x06proto3"
+	"\x10WatchDerivations\x12%.deadspace.v1.WatchDerivationsRequest\x1a&.deadspace.v1.WatchDerivationsResponse0\x01\x12^\n" +
+	"\x0fListDeadLetters\x12$.deadspace.v1.ListDeadLettersRequest\x1a%.deadspace.v1.ListDeadLettersResponse\x12M\n" +
+	"\rGetDeadLetter\x12\".deadspace.v1.GetDeadLetterRequest\x1a\x18.deadspace.v1.DeadLetter\x12^\n" +
+	"\x0fRetryDeadLetter\x12$.deadspace.v1.RetryDeadLetterRequest\x1a%.deadspace.v1.RetryDeadLetterResponseBDZBgithub.com/deadspace-fhir/deadspace/proto/deadspace/v1;deadspacev1b\x06proto3"
 
 var (
 	file_deadspace_v1_deadspace_proto_rawDescOnce sync.Once
@@ -2439,7 +2811,7 @@ func file_deadspace_v1_deadspace_proto_rawDescGZIP() []byte {
 }
 
 var file_deadspace_v1_deadspace_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 24)
+var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 30)
 var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(ResultKind)(0),                  // 0: deadspace.v1.ResultKind
 	(Flag)(0),                        // 1: deadspace.v1.Flag
@@ -2467,27 +2839,33 @@ var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(*WatchDerivationsRequest)(nil),  // 23: deadspace.v1.WatchDerivationsRequest
 	(*WatchDerivationsResponse)(nil), // 24: deadspace.v1.WatchDerivationsResponse
 	(*DerivationEvent)(nil),          // 25: deadspace.v1.DerivationEvent
-	(*timestamppb.Timestamp)(nil),    // 26: google.protobuf.Timestamp
+	(*ListDeadLettersRequest)(nil),   // 26: deadspace.v1.ListDeadLettersRequest
+	(*ListDeadLettersResponse)(nil),  // 27: deadspace.v1.ListDeadLettersResponse
+	(*DeadLetter)(nil),               // 28: deadspace.v1.DeadLetter
+	(*GetDeadLetterRequest)(nil),     // 29: deadspace.v1.GetDeadLetterRequest
+	(*RetryDeadLetterRequest)(nil),   // 30: deadspace.v1.RetryDeadLetterRequest
+	(*RetryDeadLetterResponse)(nil),  // 31: deadspace.v1.RetryDeadLetterResponse
+	(*timestamppb.Timestamp)(nil),    // 32: google.protobuf.Timestamp
 }
 var file_deadspace_v1_deadspace_proto_depIdxs = []int32{
 	4,  // 0: deadspace.v1.ComputeResponse.results:type_name -> deadspace.v1.Result
 	9,  // 1: deadspace.v1.ComputeResponse.inputs_left_out:type_name -> deadspace.v1.Omission
 	9,  // 2: deadspace.v1.ComputeResponse.values_not_emitted:type_name -> deadspace.v1.Omission
 	0,  // 3: deadspace.v1.Result.kind:type_name -> deadspace.v1.ResultKind
-	26, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
+	32, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
 	5,  // 5: deadspace.v1.Result.values:type_name -> deadspace.v1.DerivedValue
 	7,  // 6: deadspace.v1.Result.pairings:type_name -> deadspace.v1.Pairing
 	8,  // 7: deadspace.v1.Result.fall:type_name -> deadspace.v1.FallFinding
 	1,  // 8: deadspace.v1.DerivedValue.flag:type_name -> deadspace.v1.Flag
 	6,  // 9: deadspace.v1.DerivedValue.terms:type_name -> deadspace.v1.Term
-	26, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
-	26, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
+	32, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
+	32, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
 	12, // 12: deadspace.v1.SubmitResponse.rejected:type_name -> deadspace.v1.Rejection
 	14, // 13: deadspace.v1.ExplainRequest.observation:type_name -> deadspace.v1.ResourceId
 	14, // 14: deadspace.v1.ExplainRequest.blood_gas:type_name -> deadspace.v1.ResourceId
 	19, // 15: deadspace.v1.ExplainResponse.entry:type_name -> deadspace.v1.Entry
 	0,  // 16: deadspace.v1.ExplainResponse.kind:type_name -> deadspace.v1.ResultKind
-	26, // 17: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
+	32, // 17: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
 	5,  // 18: deadspace.v1.ExplainResponse.values:type_name -> deadspace.v1.DerivedValue
 	17, // 19: deadspace.v1.ExplainResponse.inputs:type_name -> deadspace.v1.ExplainedInput
 	7,  // 20: deadspace.v1.ExplainResponse.pairings:type_name -> deadspace.v1.Pairing
@@ -2496,33 +2874,42 @@ var file_deadspace_v1_deadspace_proto_depIdxs = []int32{
 	18, // 23: deadspace.v1.ExplainResponse.patient:type_name -> deadspace.v1.PatientFacts
 	9,  // 24: deadspace.v1.ExplainResponse.blood_gas_omission:type_name -> deadspace.v1.Omission
 	16, // 25: deadspace.v1.ExplainResponse.superseded:type_name -> deadspace.v1.Supersession
-	26, // 26: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
-	26, // 27: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
-	26, // 28: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
-	26, // 29: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
-	26, // 30: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
+	32, // 26: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
+	32, // 27: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
+	32, // 28: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
+	32, // 29: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
+	32, // 30: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
 	22, // 31: deadspace.v1.ListDerivationsResponse.derivations:type_name -> deadspace.v1.Derivation
 	19, // 32: deadspace.v1.Derivation.entry:type_name -> deadspace.v1.Entry
 	0,  // 33: deadspace.v1.Derivation.kind:type_name -> deadspace.v1.ResultKind
 	5,  // 34: deadspace.v1.Derivation.value:type_name -> deadspace.v1.DerivedValue
 	25, // 35: deadspace.v1.WatchDerivationsResponse.event:type_name -> deadspace.v1.DerivationEvent
-	26, // 36: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
+	32, // 36: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
 	22, // 37: deadspace.v1.DerivationEvent.derivation:type_name -> deadspace.v1.Derivation
-	2,  // 38: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
-	10, // 39: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
-	13, // 40: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
-	20, // 41: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
-	23, // 42: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
-	3,  // 43: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
-	11, // 44: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
-	15, // 45: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
-	21, // 46: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
-	24, // 47: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
-	43, // [43:48] is the sub-list for method output_type
-	38, // [38:43] is the sub-list for method input_type
-	38, // [38:38] is the sub-list for extension type_name
-	38, // [38:38] is the sub-list for extension extendee
-	0,  // [0:38] is the sub-list for field type_name
+	28, // 38: deadspace.v1.ListDeadLettersResponse.dead_letters:type_name -> deadspace.v1.DeadLetter
+	32, // 39: deadspace.v1.DeadLetter.buried_at:type_name -> google.protobuf.Timestamp
+	32, // 40: deadspace.v1.DeadLetter.queued_at:type_name -> google.protobuf.Timestamp
+	2,  // 41: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
+	10, // 42: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
+	13, // 43: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
+	20, // 44: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
+	23, // 45: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
+	26, // 46: deadspace.v1.DeadSpace.ListDeadLetters:input_type -> deadspace.v1.ListDeadLettersRequest
+	29, // 47: deadspace.v1.DeadSpace.GetDeadLetter:input_type -> deadspace.v1.GetDeadLetterRequest
+	30, // 48: deadspace.v1.DeadSpace.RetryDeadLetter:input_type -> deadspace.v1.RetryDeadLetterRequest
+	3,  // 49: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
+	11, // 50: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
+	15, // 51: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
+	21, // 52: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
+	24, // 53: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
+	27, // 54: deadspace.v1.DeadSpace.ListDeadLetters:output_type -> deadspace.v1.ListDeadLettersResponse
+	28, // 55: deadspace.v1.DeadSpace.GetDeadLetter:output_type -> deadspace.v1.DeadLetter
+	31, // 56: deadspace.v1.DeadSpace.RetryDeadLetter:output_type -> deadspace.v1.RetryDeadLetterResponse
+	49, // [49:57] is the sub-list for method output_type
+	41, // [41:49] is the sub-list for method input_type
+	41, // [41:41] is the sub-list for extension type_name
+	41, // [41:41] is the sub-list for extension extendee
+	0,  // [0:41] is the sub-list for field type_name
 }
 
 func init() { file_deadspace_v1_deadspace_proto_init() }
@@ -2541,7 +2928,7 @@ func file_deadspace_v1_deadspace_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_deadspace_v1_deadspace_proto_rawDesc), len(file_deadspace_v1_deadspace_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   24,
+			NumMessages:   30,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -32,6 +32,9 @@ const (
 	DeadSpace_Explain_FullMethodName          = "/deadspace.v1.DeadSpace/Explain"
 	DeadSpace_ListDerivations_FullMethodName  = "/deadspace.v1.DeadSpace/ListDerivations"
 	DeadSpace_WatchDerivations_FullMethodName = "/deadspace.v1.DeadSpace/WatchDerivations"
+	DeadSpace_ListDeadLetters_FullMethodName  = "/deadspace.v1.DeadSpace/ListDeadLetters"
+	DeadSpace_GetDeadLetter_FullMethodName    = "/deadspace.v1.DeadSpace/GetDeadLetter"
+	DeadSpace_RetryDeadLetter_FullMethodName  = "/deadspace.v1.DeadSpace/RetryDeadLetter"
 )
 
 // DeadSpaceClient is the client API for DeadSpace service.
@@ -73,6 +76,16 @@ type DeadSpaceClient interface {
 	// client goes away. A client that reconnects with the last token it
 	// received gets everything it missed, in order, and nothing twice.
 	WatchDerivations(ctx context.Context, in *WatchDerivationsRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[WatchDerivationsResponse], error)
+	// ListDeadLetters lists the writes the FHIR server refused for good,
+	// oldest first, each with the server's answer, identifiers redacted.
+	ListDeadLetters(ctx context.Context, in *ListDeadLettersRequest, opts ...grpc.CallOption) (*ListDeadLettersResponse, error)
+	// GetDeadLetter shows one dead letter; NOT_FOUND when there is none with
+	// that id.
+	GetDeadLetter(ctx context.Context, in *GetDeadLetterRequest, opts ...grpc.CallOption) (*DeadLetter, error)
+	// RetryDeadLetter moves a dead letter back to the outbox as its newest
+	// write and wakes the writer, which sends it at once. A write refused
+	// again returns to the dead letters under its new id.
+	RetryDeadLetter(ctx context.Context, in *RetryDeadLetterRequest, opts ...grpc.CallOption) (*RetryDeadLetterResponse, error)
 }
 
 type deadSpaceClient struct {
@@ -142,6 +155,36 @@ func (c *deadSpaceClient) WatchDerivations(ctx context.Context, in *WatchDerivat
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type DeadSpace_WatchDerivationsClient = grpc.ServerStreamingClient[WatchDerivationsResponse]
 
+func (c *deadSpaceClient) ListDeadLetters(ctx context.Context, in *ListDeadLettersRequest, opts ...grpc.CallOption) (*ListDeadLettersResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(ListDeadLettersResponse)
+	err := c.cc.Invoke(ctx, DeadSpace_ListDeadLetters_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+func (c *deadSpaceClient) GetDeadLetter(ctx context.Context, in *GetDeadLetterRequest, opts ...grpc.CallOption) (*DeadLetter, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(DeadLetter)
+	err := c.cc.Invoke(ctx, DeadSpace_GetDeadLetter_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+func (c *deadSpaceClient) RetryDeadLetter(ctx context.Context, in *RetryDeadLetterRequest, opts ...grpc.CallOption) (*RetryDeadLetterResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(RetryDeadLetterResponse)
+	err := c.cc.Invoke(ctx, DeadSpace_RetryDeadLetter_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // DeadSpaceServer is the server API for DeadSpace service.
 // All implementations must embed UnimplementedDeadSpaceServer
 // for forward compatibility.
@@ -181,6 +224,16 @@ type DeadSpaceServer interface {
 	// client goes away. A client that reconnects with the last token it
 	// received gets everything it missed, in order, and nothing twice.
 	WatchDerivations(*WatchDerivationsRequest, grpc.ServerStreamingServer[WatchDerivationsResponse]) error
+	// ListDeadLetters lists the writes the FHIR server refused for good,
+	// oldest first, each with the server's answer, identifiers redacted.
+	ListDeadLetters(context.Context, *ListDeadLettersRequest) (*ListDeadLettersResponse, error)
+	// GetDeadLetter shows one dead letter; NOT_FOUND when there is none with
+	// that id.
+	GetDeadLetter(context.Context, *GetDeadLetterRequest) (*DeadLetter, error)
+	// RetryDeadLetter moves a dead letter back to the outbox as its newest
+	// write and wakes the writer, which sends it at once. A write refused
+	// again returns to the dead letters under its new id.
+	RetryDeadLetter(context.Context, *RetryDeadLetterRequest) (*RetryDeadLetterResponse, error)
 	mustEmbedUnimplementedDeadSpaceServer()
 }
 
@@ -205,6 +258,15 @@ func (UnimplementedDeadSpaceServer) ListDerivations(context.Context, *ListDeriva
 }
 func (UnimplementedDeadSpaceServer) WatchDerivations(*WatchDerivationsRequest, grpc.ServerStreamingServer[WatchDerivationsResponse]) error {
 	return status.Error(codes.Unimplemented, "method WatchDerivations not implemented")
+}
+func (UnimplementedDeadSpaceServer) ListDeadLetters(context.Context, *ListDeadLettersRequest) (*ListDeadLettersResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method ListDeadLetters not implemented")
+}
+func (UnimplementedDeadSpaceServer) GetDeadLetter(context.Context, *GetDeadLetterRequest) (*DeadLetter, error) {
+	return nil, status.Error(codes.Unimplemented, "method GetDeadLetter not implemented")
+}
+func (UnimplementedDeadSpaceServer) RetryDeadLetter(context.Context, *RetryDeadLetterRequest) (*RetryDeadLetterResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method RetryDeadLetter not implemented")
 }
 func (UnimplementedDeadSpaceServer) mustEmbedUnimplementedDeadSpaceServer() {}
 func (UnimplementedDeadSpaceServer) testEmbeddedByValue()                   {}
@@ -310,6 +372,60 @@ func _DeadSpace_WatchDerivations_Handler(srv interface{}, stream grpc.ServerStre
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type DeadSpace_WatchDerivationsServer = grpc.ServerStreamingServer[WatchDerivationsResponse]
 
+func _DeadSpace_ListDeadLetters_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(ListDeadLettersRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(DeadSpaceServer).ListDeadLetters(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: DeadSpace_ListDeadLetters_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(DeadSpaceServer).ListDeadLetters(ctx, req.(*ListDeadLettersRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
+func _DeadSpace_GetDeadLetter_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(GetDeadLetterRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(DeadSpaceServer).GetDeadLetter(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: DeadSpace_GetDeadLetter_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(DeadSpaceServer).GetDeadLetter(ctx, req.(*GetDeadLetterRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
+func _DeadSpace_RetryDeadLetter_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(RetryDeadLetterRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(DeadSpaceServer).RetryDeadLetter(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: DeadSpace_RetryDeadLetter_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(DeadSpaceServer).RetryDeadLetter(ctx, req.(*RetryDeadLetterRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // DeadSpace_ServiceDesc is the grpc.ServiceDesc for DeadSpace service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -332,6 +448,18 @@ var DeadSpace_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "ListDerivations",
 			Handler:    _DeadSpace_ListDerivations_Handler,
+		},
+		{
+			MethodName: "ListDeadLetters",
+			Handler:    _DeadSpace_ListDeadLetters_Handler,
+		},
+		{
+			MethodName: "GetDeadLetter",
+			Handler:    _DeadSpace_GetDeadLetter_Handler,
+		},
+		{
+			MethodName: "RetryDeadLetter",
+			Handler:    _DeadSpace_RetryDeadLetter_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{
