@@ -39,8 +39,14 @@ var ErrInvalid = errors.New("invalid input")
 // Hooks let the caller count what the engine does without the engine
 // knowing how it is exported. Any nil field is skipped.
 type Hooks struct {
-	Received    func(mode, resourceType string)
-	LeftOut     func(reason derive.Reason)
+	Received func(mode, resourceType string)
+	// LeftOut is told of every input left out as it arrives: refused by
+	// the decoder, not recognised, or a version superseded by another.
+	LeftOut func(reason derive.Reason)
+	// Evaluated is told, after each evaluation of a patient is committed,
+	// everything that evaluation left out: inputs (Code empty) and values
+	// not emitted. Together with LeftOut it is replay's summary.
+	Evaluated   func(subject string, omitted []derive.Omission)
 	Emitted     func(code string, status string)
 	Gap         func()
 	CatchUp     func(trigger string)
@@ -296,8 +302,14 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 		if err != nil {
 			return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
 		}
+		// Two versions of one resource: one of them is superseded, as
+		// replay counts it; a version that moves the input to another
+		// patient is counted as re-filed.
 		for _, r := range res {
-			if r == store.PutMoved {
+			switch r {
+			case store.PutNewer, store.PutOlder:
+				e.leftOut(derive.ReasonSuperseded)
+			case store.PutMoved:
 				e.leftOut(derive.ReasonRefiled)
 			}
 		}

@@ -223,7 +223,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		_, to := e.cfg.Derive.DependencySpan(d.From)
 		gasesFrom = d.From.Add(-to.Sub(d.From))
 	}
-	results, _, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, gasesFrom)
+	results, omitted, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, gasesFrom)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -237,6 +237,11 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	}
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
+	}
+	// Only a complete evaluation knows everything the patient's data
+	// leaves out; an incremental one's omissions are partial.
+	if e.cfg.Hooks.Evaluated != nil && gasesFrom.IsZero() {
+		e.cfg.Hooks.Evaluated(d.Subject, omitted)
 	}
 	for _, en := range change.Entries {
 		if e.cfg.Hooks.Emitted != nil {

@@ -31,6 +31,13 @@ var (
 	outcomes = []string{"acknowledged", "retry", "dead-letter"}
 	// operations are the client.Observer operations.
 	operations = []string{"read", "vread", "search", "create", "conditional-create", "update", "transaction", "batch"}
+	// fhirStatuses are the classes of the FHIR server's answers: 429 on its
+	// own (the server asks to slow down), the other codes by class, and
+	// "error" when no answer came.
+	fhirStatuses = []string{"2xx", "3xx", "4xx", "429", "5xx", "error"}
+	// webhookStatuses are the statuses the webhook and its concurrency
+	// limit answer with; anything else is "other".
+	webhookStatuses = []string{"200", "201", "202", "204", "400", "401", "403", "404", "405", "408", "413", "415", "422", "429", "500", "503"}
 )
 
 func codes() []string {
@@ -68,11 +75,13 @@ func (s set) of(v string) string {
 	return other
 }
 
-// httpStatus renders a status code as a label: the number when it is a
-// valid HTTP status, else the given fallback.
-func httpStatus(code int, fallback string) string {
-	if code < 100 || code > 599 {
-		return fallback
+// fhirStatus is the class of a FHIR server's answer (fhirStatuses).
+func fhirStatus(code int) string {
+	switch {
+	case code == 429:
+		return "429"
+	case code >= 200 && code <= 599:
+		return strconv.Itoa(code/100) + "xx"
 	}
-	return strconv.Itoa(code)
+	return "error"
 }

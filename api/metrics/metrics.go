@@ -17,8 +17,10 @@
 //	| deadspace_build_info                       | gauge     | version, goversion | Always 1; the labels say which build is running.                                          |
 //	| deadspace_resources_received_total         | counter   | mode, resource_type| Resources decoded, by input mode and resource type (Observation, Patient, other).         |
 //	| deadspace_inputs_left_out_total            | counter   | reason             | Inputs not used, by reason code; every reason exists from start at 0.                     |
+//	| deadspace_inputs_left_out                  | gauge     | reason             | Inputs left out of the derivations as they stand: replay's "inputs left out" for the same inputs. |
+//	| deadspace_values_not_emitted               | gauge     | reason             | Values not emitted in the derivations as they stand: replay's "values not emitted".       |
 //	| deadspace_derived_values_total             | counter   | code, status       | Derived Observations recorded, by code and FHIR status (final, amended, entered-in-error).|
-//	| deadspace_fhir_request_duration_seconds    | histogram | operation, status  | FHIR request attempts and their latency; status is the HTTP code or "error" (no response).|
+//	| deadspace_fhir_request_duration_seconds    | histogram | operation, status  | FHIR request attempts and their latency; status is 2xx, 3xx, 4xx, 429, 5xx or "error" (no response).|
 //	| deadspace_outbox_attempts_total            | counter   | outcome            | Outbox write attempts: acknowledged, retry, dead-letter.                                  |
 //	| deadspace_outbox_writes                    | gauge     |                    | Writes waiting in the outbox (read from the store at scrape).                             |
 //	| deadspace_outbox_oldest_age_seconds        | gauge     |                    | Age of the oldest waiting write; 0 when the outbox is empty.                              |
@@ -42,6 +44,7 @@ import (
 	"net/http"
 	"runtime"
 	"runtime/debug"
+	"strconv"
 	"sync/atomic"
 	"time"
 
@@ -89,10 +92,12 @@ type Metrics struct {
 	// in the very scrape it happened in.
 	statsErrors atomic.Uint64
 
+	picture *picture
+
 	stats atomic.Pointer[StatsFunc]
 	now   func() time.Time
 
-	modes, resourceTypes, reasons, codes, statuses, triggers, outcomes, operations set
+	modes, resourceTypes, reasons, codes, statuses, triggers, outcomes, operations, webhookStatuses set
 }
 
 // New returns metrics registered in a registry of their own. version is
@@ -105,8 +110,9 @@ func New(version string) *Metrics {
 
 		modes: newSet(modes), resourceTypes: newSet(resourceTypes), reasons: newSet(reasons()),
 		codes: newSet(codes()), statuses: newSet(entryStatuses), triggers: newSet(triggers),
-		outcomes: newSet(outcomes), operations: newSet(operations),
+		outcomes: newSet(outcomes), operations: newSet(operations), webhookStatuses: newSet(webhookStatuses),
 	}
+	m.picture = newPicture(m.reasons)
 	counterVec := func(name, help string, labels ...string) *prometheus.CounterVec {
 		return prometheus.NewCounterVec(prometheus.CounterOpts{Namespace: namespace, Name: name, Help: help}, labels)
 	}
@@ -125,7 +131,7 @@ func New(version string) *Metrics {
 		"Derived Observations recorded in the ledger, by code and FHIR status.", "code", "status")
 	m.fhirDuration = prometheus.NewHistogramVec(prometheus.HistogramOpts{
 		Namespace: namespace, Name: "fhir_request_duration_seconds",
-		Help:    "FHIR request attempts and their latency, by operation and HTTP status (\"error\" when no response arrived).",
+		Help:    "FHIR request attempts and their latency, by operation and HTTP status class (429 apart; \"error\" when no response arrived).",
 		Buckets: fhirBuckets,
 	}, []string{"operation", "status"})
 	m.attempts = counterVec("outbox_attempts_total",
@@ -166,7 +172,7 @@ func New(version string) *Metrics {
 		buildInfo,
 		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
 		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
-		statsCollector{m},
+		statsCollector{m}, m.picture,
 	)
 	m.predeclare()
 	return m
@@ -193,6 +199,14 @@ func (m *Metrics) predeclare() {
 	}
 	for _, t := range triggers {
 		m.catchUps.WithLabelValues(t)
+	}
+	for _, op := range operations {
+		for _, st := range fhirStatuses {
+			m.fhirDuration.WithLabelValues(op, st)
+		}
+	}
+	for _, st := range webhookStatuses {
+		m.webhookCount.WithLabelValues(st)
 	}
 }
 
@@ -221,7 +235,9 @@ func (m *Metrics) EngineHooks() engine.Hooks {
 		},
 		LeftOut: func(reason derive.Reason) {
 			m.leftOut.WithLabelValues(m.reasons.of(string(reason))).Inc()
+			m.picture.leftOut(reason)
 		},
+		Evaluated: m.picture.evaluated,
 		Emitted: func(code, status string) {
 			m.derived.WithLabelValues(m.codes.of(code), m.statuses.of(status)).Inc()
 		},
@@ -242,7 +258,7 @@ func (m *Metrics) ClientObserver() client.Observer {
 		return nil
 	}
 	return func(op string, status int, dur time.Duration) {
-		m.fhirDuration.WithLabelValues(m.operations.of(op), httpStatus(status, "error")).Observe(dur.Seconds())
+		m.fhirDuration.WithLabelValues(m.operations.of(op), fhirStatus(status)).Observe(dur.Seconds())
 	}
 }
 
@@ -293,7 +309,7 @@ func (m *Metrics) InstrumentWebhook(h http.Handler) http.Handler {
 		if status == 0 {
 			status = http.StatusOK // what net/http sends when the handler writes nothing
 		}
-		m.webhookCount.WithLabelValues(httpStatus(status, other)).Inc()
+		m.webhookCount.WithLabelValues(m.webhookStatuses.of(strconv.Itoa(status))).Inc()
 		m.webhookDur.Observe(time.Since(start).Seconds())
 	})
 }

@@ -8,6 +8,7 @@ import (
 	"net/http/httptest"
 	"regexp"
 	"runtime"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -236,6 +237,10 @@ func TestKnownSeriesStartAtZero(t *testing.T) {
 		{"every trigger", "deadspace_catchups_total", len(triggers)},
 		{"every outcome", "deadspace_outbox_attempts_total", len(outcomes)},
 		{"every mode and type", "deadspace_resources_received_total", len(modes) * len(resourceTypes)},
+		{"every operation and status class", "deadspace_fhir_request_duration_seconds", len(operations) * len(fhirStatuses)},
+		{"every webhook status", "deadspace_webhook_requests_total", len(webhookStatuses)},
+		{"inputs left out, every reason", "deadspace_inputs_left_out", len(derive.AllReasons())},
+		{"values not emitted, every reason", "deadspace_values_not_emitted", len(derive.AllReasons())},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -268,11 +273,12 @@ func TestClientObserver(t *testing.T) {
 		count      uint64
 		sum        float64
 	}{
-		{"transaction", "200", 2, 3.03},
+		{"transaction", "2xx", 2, 3.03},
 		{"transaction", "error", 1, 60},
 		{"read", "429", 1, 0.001},
-		{other, "200", 1, 0.001},
+		{other, "2xx", 1, 0.001},
 		{"read", "error", 1, 0.001},
+		{"read", "5xx", 0, 0},
 	}
 	for _, tt := range tests {
 		t.Run(tt.op+" "+tt.status, func(t *testing.T) {
@@ -375,6 +381,7 @@ func TestInstrumentWebhook(t *testing.T) {
 		status  string
 	}{
 		{"explicit status", func(w http.ResponseWriter, r *http.Request) { w.WriteHeader(http.StatusAccepted) }, "202"},
+		{"a status the webhook never sends", func(w http.ResponseWriter, r *http.Request) { w.WriteHeader(http.StatusTeapot) }, other},
 		{"body without a status is 200", func(w http.ResponseWriter, r *http.Request) { _, _ = w.Write([]byte("{}")) }, "200"},
 		{"nothing written is 200", func(w http.ResponseWriter, r *http.Request) {}, "200"},
 		{"error", func(w http.ResponseWriter, r *http.Request) { http.Error(w, "no", http.StatusBadRequest) }, "400"},
@@ -399,8 +406,8 @@ func TestInstrumentWebhook(t *testing.T) {
 			if got := testutil.ToFloat64(m.webhookCount.WithLabelValues(tt.status)); got != 1 {
 				t.Errorf("requests{status=%s} = %v, want 1", tt.status, got)
 			}
-			if n := testutil.CollectAndCount(m.webhookCount); n != 1 {
-				t.Errorf("%d status series, want 1", n)
+			if n := testutil.CollectAndCount(m.webhookCount); n != len(webhookStatuses)+boolInt(tt.status == other) {
+				t.Errorf("%d status series, want the %d known ones (and other when used)", n, len(webhookStatuses))
 			}
 			if inFlight != 1 || testutil.ToFloat64(m.webhookActive) != 0 {
 				t.Errorf("in flight during %v, after %v; want 1, 0", inFlight, testutil.ToFloat64(m.webhookActive))
@@ -488,7 +495,6 @@ func FuzzLabelsStayBounded(f *testing.F) {
 			"mode": m.modes, "resource_type": m.resourceTypes, "reason": m.reasons, "code": m.codes,
 			"trigger": m.triggers, "outcome": m.outcomes, "operation": m.operations,
 		}
-		status3 := regexp.MustCompile(`^[1-5][0-9][0-9]$`)
 		fams, err := m.Registry().Gather()
 		if err != nil {
 			t.Fatal(err)
@@ -505,8 +511,12 @@ func FuzzLabelsStayBounded(f *testing.F) {
 						if v != other && !m.statuses[v] {
 							t.Errorf("%s status %q", fam.GetName(), v)
 						}
+					case l.GetName() == "status" && fam.GetName() == "deadspace_fhir_request_duration_seconds":
+						if !slices.Contains(fhirStatuses, v) {
+							t.Errorf("%s status %q", fam.GetName(), v)
+						}
 					case l.GetName() == "status":
-						if v != "error" && v != other && !status3.MatchString(v) {
+						if v != other && !m.webhookStatuses[v] {
 							t.Errorf("%s status %q", fam.GetName(), v)
 						}
 					case allowed[l.GetName()] != nil:
@@ -520,4 +530,11 @@ func FuzzLabelsStayBounded(f *testing.F) {
 			}
 		}
 	})
+}
+
+func boolInt(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
 }

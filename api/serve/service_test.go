@@ -9,6 +9,7 @@ import (
 	"os"
 	"path/filepath"
 	"regexp"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -18,8 +19,10 @@ import (
 	"google.golang.org/grpc/credentials"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 
+	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
+	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 )
 
@@ -315,5 +318,79 @@ func TestHostileWebhookInput(t *testing.T) {
 	}
 	if resp, err := http.Get(s.url + "/healthz"); err != nil || resp.StatusCode != http.StatusOK {
 		t.Fatalf("the service stopped serving: %v", err)
+	}
+}
+
+// scrapeByReason reads a metric's samples by reason label from /metrics.
+func scrapeByReason(t *testing.T, s *service, name string) map[string]int {
+	t.Helper()
+	resp, err := http.Get(s.url + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	body, err := readAll(resp)
+	if err != nil {
+		t.Fatal(err)
+	}
+	out := map[string]int{}
+	re := regexp.MustCompile(`(?m)^` + name + `\{reason="([^"]+)"\} (\d+)$`)
+	for _, m := range re.FindAllStringSubmatch(body, -1) {
+		n, _ := strconv.Atoi(m[2])
+		out[m[1]] = n
+	}
+	if len(out) < len(derive.AllReasons()) {
+		t.Fatalf("%s has %d reasons at /metrics, want every one of %d (series exist at zero)", name, len(out), len(derive.AllReasons()))
+	}
+	return out
+}
+
+// TestMetricsAgreeWithReplay sends the demo through the service and runs
+// replay on the same files with the same settings: /metrics must count the
+// same inputs left out and values not emitted, reason by reason, as
+// replay's summary.
+func TestMetricsAgreeWithReplay(t *testing.T) {
+	cfg := testConfig("", t.TempDir())
+	cfg.Retention = 10 * 365 * 24 * time.Hour
+	s := start(t, cfg)
+	before := scrapeByReason(t, s, "deadspace_inputs_left_out")
+	for r, n := range before {
+		if n != 0 {
+			t.Errorf("inputs left out for %s is %d before any input", r, n)
+		}
+	}
+	sendDemo(t, s)
+	waitIdle(t, s)
+
+	files, _ := filepath.Glob(filepath.Join("..", "..", "testdata", "demo", "*.ndjson"))
+	opts, err := cfg.Derivation.Resolve("test")
+	if err != nil {
+		t.Fatal(err)
+	}
+	out, err := replay.Run(context.Background(), replay.Options{Derive: opts.Derive, Decode: opts.Decode, Encode: opts.Encode}, files)
+	if err != nil {
+		t.Fatal(err)
+	}
+	wantInputs := map[string]int{}
+	for _, c := range replay.ReasonCounts(out.Report.Inputs) {
+		wantInputs[string(c.Reason)] = c.N
+	}
+	wantInputs[string(derive.ReasonUnrecognised)] += out.Report.Unrecognised
+	wantValues := map[string]int{}
+	for _, c := range replay.ReasonCounts(out.Report.Values) {
+		wantValues[string(c.Reason)] = c.N
+	}
+	for _, m := range []struct {
+		name string
+		want map[string]int
+	}{{"deadspace_inputs_left_out", wantInputs}, {"deadspace_values_not_emitted", wantValues}} {
+		got := scrapeByReason(t, s, m.name)
+		for _, r := range derive.AllReasons() {
+			if got[string(r)] != m.want[string(r)] {
+				t.Errorf("%s{reason=%q} = %d, replay's summary says %d", m.name, r, got[string(r)], m.want[string(r)])
+			}
+		}
+	}
+	if wantInputs[string(derive.ReasonUnpaired)]+wantValues[string(derive.ReasonMissingInput)] == 0 {
+		t.Fatal("replay left nothing out: the comparison checks nothing")
 	}
 }
