@@ -201,3 +201,24 @@ func expected(f *flag.Flag, err error) string {
 	}
 	return err.Error()
 }
+
+// ParseInterspersed parses flags that may come before, between or after the
+// positional arguments, as in "replay a.ndjson b.ndjson --format table", and
+// returns the positional arguments. "--" ends the flags.
+func ParseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
+	var positional []string
+	for {
+		if err := fs.Parse(args); err != nil {
+			return nil, err
+		}
+		rest := fs.Args()
+		if len(rest) == 0 {
+			return positional, nil
+		}
+		if len(args) > len(rest) && args[len(args)-len(rest)-1] == "--" {
+			return append(positional, rest...), nil
+		}
+		positional = append(positional, rest[0])
+		args = rest[1:]
+	}
+}
