@@ -135,12 +135,14 @@ func (c BackendConfig) Validate() error {
 		errs = append(errs, errors.New("ClientID is required"))
 	}
 	if c.Scope == "" {
+		//lint:ignore ST1005 the message names the Config field
 		errs = append(errs, errors.New("Scope is required"))
 	}
 	if c.KeyID == "" {
 		errs = append(errs, errors.New("KeyID is required: SMART servers pick the verification key by kid"))
 	}
 	if c.Key == nil {
+		//lint:ignore ST1005 the message names the Config field
 		errs = append(errs, errors.New("Key is required"))
 	} else if _, err := signingAlg(c.Key); err != nil {
 		errs = append(errs, err)

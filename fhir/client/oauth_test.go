@@ -411,7 +411,7 @@ func TestES384NeedsRawSignature(t *testing.T) {
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			jws, err := jose.ParseSigned(input+"."+base64.RawURLEncoding.EncodeToString(tc.sig), []jose.SignatureAlgorithm{jose.ES384})
+			jws, err := jose.ParseSignedCompact(input+"."+base64.RawURLEncoding.EncodeToString(tc.sig), []jose.SignatureAlgorithm{jose.ES384})
 			if err != nil {
 				t.Fatal(err)
 			}

@@ -420,6 +420,7 @@ func inspectRequestBundle(body []byte) (requestBundleInfo, error) {
 		return requestBundleInfo{}, fmt.Errorf("resourceType is %q, want Bundle", cleanPrefix([]byte(b.ResourceType), 64))
 	}
 	if b.Type != "transaction" && b.Type != "batch" {
+		//lint:ignore ST1005 the message names the FHIR element Bundle.type
 		return requestBundleInfo{}, fmt.Errorf("Bundle.type is %q, want transaction or batch", cleanPrefix([]byte(b.Type), 64))
 	}
 	info := requestBundleInfo{Type: b.Type, Entries: len(b.Entry), Repeatable: true}

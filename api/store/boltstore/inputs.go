@@ -334,7 +334,7 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
 		var stale [][]byte
 		c := byTime.Cursor()
-		for k, _ := c.First(); k != nil && len(k) >= timeKeyLen && parseTimeKey(k).Before(horizon); k, _ = c.Next() {
+		for k, _ := c.First(); len(k) >= timeKeyLen && parseTimeKey(k).Before(horizon); k, _ = c.Next() {
 			stale = append(stale, bytes.Clone(k))
 		}
 		for _, k := range stale {
