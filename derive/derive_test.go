@@ -70,6 +70,10 @@ func measured() []derive.Reading {
 	}
 }
 
+func without(rs []derive.Reading, kinds ...derive.Kind) []derive.Reading {
+	return slices.DeleteFunc(slices.Clone(rs), func(r derive.Reading) bool { return slices.Contains(kinds, r.Kind) })
+}
+
 func with(rs []derive.Reading, more ...derive.Reading) []derive.Reading {
 	return append(slices.Clone(rs), more...)
 }
