@@ -33,7 +33,7 @@ func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) 
 		}
 		var stale [][]byte
 		c := tx.Bucket(bLedgerExpiry).Cursor()
-		for k, _ := c.First(); k != nil && len(k) >= timeKeyLen && parseTimeKey(k).Before(ledger); k, _ = c.Next() {
+		for k, _ := c.First(); len(k) >= timeKeyLen && parseTimeKey(k).Before(ledger); k, _ = c.Next() {
 			stale = append(stale, bytes.Clone(k))
 		}
 		for _, k := range stale {
@@ -48,7 +48,7 @@ func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) 
 		}
 		stale = stale[:0]
 		c = tx.Bucket(bResultsByTime).Cursor()
-		for k, _ := c.First(); k != nil && len(k) >= timeKeyLen && parseTimeKey(k).Before(ledger); k, _ = c.Next() {
+		for k, _ := c.First(); len(k) >= timeKeyLen && parseTimeKey(k).Before(ledger); k, _ = c.Next() {
 			stale = append(stale, bytes.Clone(k))
 		}
 		for _, k := range stale {
