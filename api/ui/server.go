@@ -84,8 +84,6 @@ func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	h.mux.ServeHTTP(w, r)
 }
 
-type userKey struct{}
-
 // signedIn refuses a request without a signed-in user: a browser is sent
 // to sign in, anything else gets 401.
 func (h *Handler) signedIn(next func(http.ResponseWriter, *http.Request, string)) http.HandlerFunc {

@@ -57,9 +57,11 @@ func demo(t *testing.T) Report {
 
 type fixedUser string
 
-func (u fixedUser) User(*http.Request) (string, bool)                { return string(u), u != "" }
-func (u fixedUser) Challenge(w http.ResponseWriter, _ *http.Request) { http.Error(w, "no", 401) }
-func (u fixedUser) Routes() map[string]http.Handler                  { return nil }
+func (u fixedUser) User(*http.Request) (string, bool) { return string(u), u != "" }
+func (u fixedUser) Challenge(w http.ResponseWriter, _ *http.Request) {
+	http.Error(w, "no", http.StatusUnauthorized)
+}
+func (u fixedUser) Routes() map[string]http.Handler { return nil }
 
 func testHandler(t *testing.T, src Source, auth Authenticator, access *bytes.Buffer) *Handler {
 	t.Helper()
