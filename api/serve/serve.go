@@ -17,6 +17,7 @@ import (
 
 	"google.golang.org/grpc/credentials"
 
+	"github.com/deadspace-fhir/deadspace/api/deadletters"
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/grpcapi"
 	"github.com/deadspace-fhir/deadspace/api/metrics"
@@ -155,7 +156,10 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		s.ln = tls.NewListener(s.ln, s.tls)
 	}
 	if cfg.GRPCListen != "" {
-		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, DeadLetters: s.store, Watchers: func(delta int) {
+		// The embedded store serves the dead-letter calls; a store without
+		// them (PostgreSQL, for now) answers them UNIMPLEMENTED.
+		dead, _ := s.store.(deadletters.Source)
+		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, DeadLetters: dead, Watchers: func(delta int) {
 			if delta > 0 {
 				s.Metrics.IncWatchSubscribers()
 			} else {
