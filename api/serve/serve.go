@@ -356,6 +356,10 @@ func (s *Service) Run(ctx context.Context) error {
 			stopEngine()
 			wg.Wait()
 			_ = s.http.Close()
+			if s.pages != nil {
+				_ = s.pages.srv.Close()
+				_ = s.pages.access.Close()
+			}
 			_ = s.store.Close()
 			return fmt.Errorf("gRPC TLS: %w", err)
 		}
