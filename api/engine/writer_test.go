@@ -158,9 +158,9 @@ func TestWritesOfOneSeriesKeepTheirOrder(t *testing.T) {
 		t.Fatal(err)
 	}
 	flush()
-	if puts, _ := fake.state(); len(puts) != 0 {
-		t.Fatalf("the server got %v before the failed revision was retried: the withdrawal overtook it", puts)
-	}
+	// The retry's back-off has full jitter and may be close to zero, so the
+	// revision can already have gone out here; what must hold is the order
+	// on the server, checked below once the outbox is empty.
 	deadline := time.Now().Add(30 * time.Second)
 	for {
 		h, err := eng.Health(ctx)
