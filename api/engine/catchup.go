@@ -54,7 +54,7 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			trigger = "heartbeat-missed"
 		}
 		if err := e.CatchUp(ctx, trigger); err != nil && ctx.Err() == nil {
-			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", redact(err.Error()))
+			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", err)
 			go func() {
 				if sleep(ctx, 5*time.Second) {
 					e.RequestCatchUp("retry")
@@ -236,7 +236,7 @@ func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patie
 		return derive.Patient{}, nil
 	}
 	if err != nil {
-		return derive.Patient{}, fmt.Errorf("engine: read patient facts: %s", redact(err.Error()))
+		return derive.Patient{}, fmt.Errorf("engine: read patient facts: %w", err)
 	}
 	e.serverAnswered()
 	it, err := e.cfg.Decoder.Decode(body)

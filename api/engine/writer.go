@@ -7,7 +7,6 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"net/http"
-	"regexp"
 	"slices"
 	"time"
 
@@ -134,7 +133,7 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		if e.cfg.Hooks.DeadLetter != nil {
 			e.cfg.Hooks.DeadLetter()
 		}
-		e.log.ErrorContext(ctx, "the FHIR server refused a write; moved to the dead letters", "write", w.ID, "reason", redact(reason))
+		e.log.ErrorContext(ctx, "the FHIR server refused a write; moved to the dead letters", "write", w.ID, "reason", reason)
 		return true, nil
 	default:
 		wait := backoff(w.Attempts)
@@ -151,18 +150,10 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 			e.outboxBlocked = now
 		}
 		e.mu.Unlock()
-		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", redact(err.Error()))
+		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", err)
 		return false, nil
 	}
 }
-
-// refPattern matches FHIR references, which can name a patient.
-var refPattern = regexp.MustCompile(`\b([A-Z][A-Za-z]{1,63})/[A-Za-z0-9\-.]{1,64}`)
-
-// redact hides the ids in references inside a server's error text before it
-// is logged: an OperationOutcome may say "Patient/123 not found". The
-// dead-letter record keeps the text whole for the operator.
-func redact(s string) string { return refPattern.ReplaceAllString(s, "$1/[redacted]") }
 
 func (e *Engine) writeResult(outcome string) {
 	if e.cfg.Hooks.WriteResult != nil {
