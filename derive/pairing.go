@@ -284,8 +284,13 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	if !haveTemp {
 		return
 	}
-	b.paUsed = append(b.paUsed, Summary{Kind: KindBodyTemperature, Median: temp.Value, Readings: []Reading{temp},
-		Rule: fmt.Sprintf("body temperature nearest the sample time, within ±%v", cfg.Temperature.Search)})
+	rule := fmt.Sprintf("body temperature nearest the sample time, within ±%v", cfg.Temperature.Search)
+	if temp.Ref == b.d.Gas.Ref {
+		// The decoder gives a temperature entered on the blood gas itself
+		// the gas's own reference and time.
+		rule = "patient temperature reported on the blood gas itself"
+	}
+	b.paUsed = append(b.paUsed, Summary{Kind: KindBodyTemperature, Median: temp.Value, Readings: []Reading{temp}, Rule: rule})
 	if math.Abs(temp.Value-37) <= cfg.Temperature.Tolerance {
 		b.paTerms = []Term{{"body temperature", temp.Value, "Cel"}}
 		return

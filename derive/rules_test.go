@@ -244,6 +244,10 @@ func TestRuleTemperature(t *testing.T) {
 			[]derive.Reading{rd(derive.KindBodyTemperature, -20*time.Minute, 33), rd(derive.KindEtCO2, 0, 30)}, at33, "adjusted from 37 °C"},
 		{"analyser reports the temperature-adjusted value (LOINC 32771-8)",
 			[]derive.Reading{rd(derive.KindBodyTemperature, -20*time.Minute, 33), rd(derive.KindPaCO2Adjusted, 0, 34), rd(derive.KindEtCO2, 0, 30)}, 34, "as reported by the analyser"},
+		// The decoder gives a temperature entered on the blood gas the gas's
+		// own reference and time.
+		{"blood gas carries the patient's temperature as a component",
+			[]derive.Reading{{Ref: gasOf(40).Ref, AtMillis: gasOf(40).AtMillis, Value: 33, Kind: derive.KindBodyTemperature}, rd(derive.KindEtCO2, 0, 30)}, at33, "adjusted from 37 °C"},
 		// 37 ± 0.5 °C: nothing changes (issue 8, rule 3).
 		{"normothermic, 37.4 °C", []derive.Reading{rd(derive.KindBodyTemperature, -20*time.Minute, 37.4), rd(derive.KindEtCO2, 0, 30)}, 40, ""},
 		{"fever of 39.5 °C", []derive.Reading{rd(derive.KindBodyTemperature, -20*time.Minute, 39.5), rd(derive.KindEtCO2, 0, 30)},

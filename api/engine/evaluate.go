@@ -286,6 +286,11 @@ func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Inp
 			continue // a version that withdraws or invalidates an earlier one
 		}
 		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+		for _, a := range h.Also {
+			p := a.Priority
+			a.Priority = 0
+			inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
+		}
 	}
 	return inputs, nil
 }

@@ -27,13 +27,19 @@ import (
 // JSON of the whole decoded item took about 1 KB. What the store keeps
 // beside the payload (subject, reference, version, last-updated) is not
 // repeated. Version 1 payloads are still read.
-const storedVersion = 2
+//
+// Version 3 adds to the head, after the encounter, the readings the
+// resource carries besides its own (decode.Item.Also, a temperature on a
+// blood gas): a 1-byte count, then per reading its kind (1), priority (2,
+// signed) and value (8); they share the head's reference, encounter and
+// time. Version 2 payloads are still read, with none.
+const storedVersion = 3
 
 var errStoredPayload = errors.New("stored input payload is damaged")
 
 func encodeStored(it decode.Item) ([]byte, error) {
 	r := it.Reading
-	if len(r.Ref) > math.MaxUint16 || len(r.Encounter) > math.MaxUint16 {
+	if len(r.Ref) > math.MaxUint16 || len(r.Encounter) > math.MaxUint16 || len(it.Also) > math.MaxUint8 {
 		return nil, fmt.Errorf("engine: reference too long to store")
 	}
 	// The versioned reference is what the store keeps beside the payload
@@ -55,6 +61,12 @@ func encodeStored(it decode.Item) ([]byte, error) {
 	b = append(b, r.Ref...)
 	b = binary.LittleEndian.AppendUint16(b, uint16(len(r.Encounter)))
 	b = append(b, r.Encounter...)
+	b = append(b, byte(len(it.Also)))
+	for _, a := range it.Also {
+		b = append(b, byte(a.Kind))
+		b = binary.LittleEndian.AppendUint16(b, uint16(a.Priority))
+		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(a.Value))
+	}
 	for _, s := range []string{it.Status, o.Value, o.Unit, o.System, o.Code, c.FromUnit, c.ToUnit, c.Source, c.Text, string(om.Code), om.Ref, string(om.Reason), om.Detail} {
 		b = binary.AppendUvarint(b, uint64(len(s)))
 		b = append(b, s...)
@@ -75,13 +87,16 @@ type storedHead struct {
 	Type     decode.ItemType
 	Reading  derive.Reading
 	Priority int
+	// Also are the other readings of the resource, each with its priority
+	// in Reading.Priority.
+	Also []derive.Reading
 }
 
 // decodeHead reads the binary head and returns it with the offset of what
 // follows. logical and version are the store's record of the input, which
 // give the reference when the payload leaves it out.
 func decodeHead(p []byte, logical, version string) (storedHead, int, error) {
-	if len(p) < 23 || (p[0] != storedVersion && p[0] != 1) {
+	if len(p) < 23 || p[0] < 1 || p[0] > storedVersion {
 		return storedHead{}, 0, errStoredPayload
 	}
 	h := storedHead{Type: decode.ItemType(p[1]), Priority: int(int16(binary.LittleEndian.Uint16(p[3:5])))}
@@ -112,6 +127,22 @@ func decodeHead(p []byte, logical, version string) (storedHead, int, error) {
 	if h.Reading.Ref == "" {
 		h.Reading.Ref = fhirref.Versioned(logical, version)
 	}
+	if p[0] >= 3 {
+		if len(p) < off+1 {
+			return storedHead{}, 0, errStoredPayload
+		}
+		n := int(p[off])
+		off++
+		if len(p) < off+11*n {
+			return storedHead{}, 0, errStoredPayload
+		}
+		for range n {
+			h.Also = append(h.Also, derive.Reading{Ref: h.Reading.Ref, Encounter: h.Reading.Encounter, AtMillis: h.Reading.AtMillis,
+				Kind: derive.Kind(p[off]), Priority: int16(binary.LittleEndian.Uint16(p[off+1 : off+3])),
+				Value: math.Float64frombits(binary.LittleEndian.Uint64(p[off+3 : off+11]))})
+			off += 11
+		}
+	}
 	return h, off, nil
 }
 
@@ -140,7 +171,7 @@ func decodeStored(p []byte, logical, version string) (storedInput, error) {
 		return s
 	}
 	it := &si.Item
-	it.Type, it.Priority, it.Reading = h.Type, h.Priority, h.Reading
+	it.Type, it.Priority, it.Reading, it.Also = h.Type, h.Priority, h.Reading, h.Also
 	it.Ref = h.Reading.Ref
 	c, o, om := &it.Conversion, &it.Original, &it.Omission
 	it.Status, o.Value, o.Unit, o.System, o.Code = str(), str(), str(), str(), str()

@@ -25,6 +25,11 @@ func TestStoredRoundTrip(t *testing.T) {
 			Type: decode.ItemReading, ResourceType: "Observation", ID: "c", VersionID: "7", Ref: "Observation/c/_history/7", Status: "amended",
 			Reading: derive.Reading{Ref: "Observation/c/_history/7", AtMillis: 1, Value: 40, Kind: derive.KindPaCO2},
 		}},
+		{"blood gas carrying the patient's temperature", decode.Item{
+			Type: decode.ItemReading, ResourceType: "Observation", ID: "g", VersionID: "2", Ref: "Observation/g/_history/2", Status: "final", Priority: 20,
+			Reading: derive.Reading{Ref: "Observation/g/_history/2", Encounter: "Encounter/e", AtMillis: 5, Value: 40, Kind: derive.KindPaCO2},
+			Also:    []derive.Reading{{Ref: "Observation/g/_history/2", Encounter: "Encounter/e", AtMillis: 5, Value: 33, Kind: derive.KindBodyTemperature, Priority: 20}},
+		}},
 		{"withdrawal", decode.Item{
 			Type: decode.ItemOmitted, Ref: "Observation/b/_history/2",
 			Reading:  derive.Reading{Ref: "Observation/b/_history/2"},

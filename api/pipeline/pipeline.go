@@ -195,6 +195,9 @@ type record struct {
 	lastUpdated    int64 // Unix nanoseconds, as the live store orders them
 	kind           derive.Kind
 	priority       int16
+	// also are the readings the same resource version carries besides this
+	// one (a temperature on a blood gas); they stand or fall with it.
+	also []derive.Reading
 }
 
 type omittedRecord struct {
@@ -225,7 +228,7 @@ func (c *Collector) Add(it decode.Item) {
 		r := it.Reading
 		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
 			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
-			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority),
+			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority), also: it.Also,
 		})
 	default:
 		ref := it.Ref
@@ -332,6 +335,11 @@ func latest(recs []record, omitted []*omittedRecord, elsewhere func(logical stri
 			Reading:  derive.Reading{Ref: r.ref, Encounter: r.encounter, AtMillis: r.atMillis, Value: r.value, Kind: r.kind},
 			Priority: int(r.priority),
 		})
+		for _, a := range r.also {
+			p := a.Priority
+			a.Priority = 0
+			inputs = append(inputs, Input{Reading: a, Priority: int(p)})
+		}
 	}
 	return inputs, om
 }

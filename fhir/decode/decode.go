@@ -34,7 +34,14 @@
 //
 // Observations with components (an arterial blood gas panel, 24336-0, with
 // PaCO2 as a component) are not read: a component has no id of its own, so
-// a reading from it could not be cited by a versioned reference.
+// a reading from it could not be cited by a versioned reference. One
+// exception: a PaCO2 that carries the patient's temperature as a component
+// (a component whose code has a body-temperature row, 8310-5) gives that
+// temperature too, in [Item.Also], at the blood gas's effective time and
+// citing the blood gas's own reference: the temperature was entered on the
+// sample, so it is the one the analyser would adjust to. A component
+// temperature that cannot be used (no Quantity, an unknown unit, an
+// implausible value) is dropped; the PaCO2 itself stays usable.
 //
 // Patients give Sex from gender (male, female; anything else unknown) and
 // BirthDate from birthDate. A partial birth date is taken at the middle of
@@ -128,7 +135,11 @@ type Item struct {
 	Reading derive.Reading
 	// Priority is the code table row's priority; the pairing step prefers
 	// the highest among readings of one kind (see package codes).
-	Priority   int
+	Priority int
+	// Also holds readings the resource carries besides Reading: the
+	// patient's temperature on a blood gas (see the package documentation),
+	// with Ref and AtMillis of Reading and the row's priority in Priority.
+	Also       []derive.Reading
 	Original   Original
 	Conversion units.Conversion
 	Patient    derive.Patient
@@ -264,6 +275,7 @@ type observationJSON struct {
 	EffectiveTiming   json.RawMessage `json:"effectiveTiming"`
 	ValueQuantity     *quantityJSON   `json:"valueQuantity"`
 	DataAbsentReason  *conceptJSON    `json:"dataAbsentReason"`
+	Component         []componentJSON `json:"component"`
 	// The other value[x] types, only to say which one was sent.
 	ValueCodeableConcept json.RawMessage `json:"valueCodeableConcept"`
 	ValueString          json.RawMessage `json:"valueString"`
@@ -275,6 +287,11 @@ type observationJSON struct {
 	ValueTime            json.RawMessage `json:"valueTime"`
 	ValueDateTime        json.RawMessage `json:"valueDateTime"`
 	ValuePeriod          json.RawMessage `json:"valuePeriod"`
+}
+
+type componentJSON struct {
+	Code          conceptJSON   `json:"code"`
+	ValueQuantity *quantityJSON `json:"valueQuantity"`
 }
 
 func present(raw json.RawMessage) bool { return len(raw) > 0 && string(raw) != "null" }
@@ -421,7 +438,39 @@ func (d *Decoder) observation(line []byte) Item {
 	it.Reading.Ref = it.Ref
 	it.Reading.AtMillis = at.UnixMilli()
 	it.Reading.Value = conv.ToValue
+	if row.Kind == derive.KindPaCO2 {
+		it.Also = d.componentTemperature(&o, it.Reading)
+	}
 	return it
+}
+
+// componentTemperature returns the patient's temperature carried as a
+// component of blood gas gas, or nil; see the package documentation.
+func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) []derive.Reading {
+	for _, c := range o.Component {
+		row, ok := d.lookup(c.Code)
+		if !ok || row.Action != codes.ActionAccept || row.Kind != derive.KindBodyTemperature {
+			continue
+		}
+		q := c.ValueQuantity
+		if q == nil || !present(q.Value) || q.Comparator != "" {
+			continue
+		}
+		v, err := strconv.ParseFloat(string(q.Value), 64)
+		if err != nil {
+			continue
+		}
+		conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, d.units)
+		if err != nil {
+			continue
+		}
+		if reason, _ := derive.CheckValue(row.Kind, conv.ToValue); reason != "" {
+			continue
+		}
+		return []derive.Reading{{Ref: gas.Ref, Encounter: gas.Encounter, AtMillis: gas.AtMillis, Value: conv.ToValue,
+			Kind: derive.KindBodyTemperature, Priority: int16(row.Priority)}}
+	}
+	return nil
 }
 
 // identify fills ID, VersionID, Ref and LastUpdated, or says what is wrong.

@@ -62,6 +62,40 @@ func fixtures(t testing.TB) []fixture {
 					t.Errorf("value %v, conversion %q", it.Reading.Value, it.Conversion.Text)
 				}
 			}},
+		// Blood gas carries the patient's temperature as a component: the
+		// temperature is given in Also at the gas's time, citing the gas.
+		{name: "blood gas carries the patient's temperature as a component", line: abg(set("component", []any{
+			map[string]any{"code": coding("http://loinc.org", "8310-5", "Body temperature"), "valueQuantity": quantity("33.0", "C", "Cel")},
+		})), typ: ItemReading, check: func(t *testing.T, it Item) {
+			want := []derive.Reading{{Ref: "Observation/abg-55/_history/3", Encounter: "Encounter/e1",
+				AtMillis: time.Date(2025, 3, 1, 10, 15, 0, 0, time.UTC).UnixMilli(), Value: 33, Kind: derive.KindBodyTemperature, Priority: 20}}
+			if !reflect.DeepEqual(it.Also, want) || it.Reading.Kind != derive.KindPaCO2 || it.Reading.Value != 40 {
+				t.Errorf("Also = %+v, Reading %+v; want %+v beside the PaCO2 of 40", it.Also, it.Reading, want)
+			}
+		}},
+		// 96.8 [degF] = 36 Cel: UCUM defines [degF] by the function degF
+		// with unit 5 K/9, that is Cel = ([degF] − 32) × 5/9.
+		{name: "blood gas carries the patient's temperature in degF", line: abg(set("component", []any{
+			map[string]any{"code": coding("http://loinc.org", "8310-5", "Body temperature"), "valueQuantity": quantity("96.8", "F", "[degF]")},
+		})), typ: ItemReading, check: func(t *testing.T, it Item) {
+			if len(it.Also) != 1 || !near(it.Also[0].Value, 36) {
+				t.Errorf("Also = %+v, want one temperature of 36 Cel", it.Also)
+			}
+		}},
+		{name: "blood gas with an implausible component temperature keeps only the PaCO2", line: abg(set("component", []any{
+			map[string]any{"code": coding("http://loinc.org", "8310-5", "Body temperature"), "valueQuantity": quantity("370", "C", "Cel")},
+		})), typ: ItemReading, check: func(t *testing.T, it Item) {
+			if it.Also != nil || it.Reading.Value != 40 {
+				t.Errorf("Also = %+v, Reading %+v; want the PaCO2 alone", it.Also, it.Reading)
+			}
+		}},
+		{name: "blood gas with a component that is not a temperature", line: abg(set("component", []any{
+			map[string]any{"code": coding("http://loinc.org", "2019-8", "PaCO2"), "valueQuantity": quantity("35", "mmHg", "mm[Hg]")},
+		})), typ: ItemReading, check: func(t *testing.T, it Item) {
+			if it.Also != nil {
+				t.Errorf("Also = %+v, want none", it.Also)
+			}
+		}},
 		// 5.0 %, PB 760: 35.65 wet, own arithmetic on the published formula
 		// of the Intensive Care Med 2004 dead-space review (doi
 		// 10.1007/s00134-004-2194-8), PCO2 = FCO2 × (PB − 47); 38.0 dry,
@@ -157,7 +191,7 @@ func fixtures(t testing.TB) []fixture {
 		// Unrelated.
 		{name: "heart rate is unrelated", line: etco2(set("code", coding("http://loinc.org", "8867-4", "Heart rate"))), typ: ItemUnrelated,
 			check: func(t *testing.T, it Item) {
-				if it != (Item{Type: ItemUnrelated, ResourceType: "Observation"}) {
+				if !reflect.DeepEqual(it, Item{Type: ItemUnrelated, ResourceType: "Observation"}) {
 					t.Errorf("unrelated item carries more than its type: %+v", it)
 				}
 			}},
