@@ -38,7 +38,7 @@ type Service struct {
 	cfg    Config
 	log    *slog.Logger
 	engine *engine.Engine
-	store  store.Store
+	store  serviceStore
 	http   *http.Server
 	ln     net.Listener
 	client *client.Client
@@ -156,10 +156,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		s.ln = tls.NewListener(s.ln, s.tls)
 	}
 	if cfg.GRPCListen != "" {
-		// The embedded store serves the dead-letter calls; a store without
-		// them (PostgreSQL, for now) answers them UNIMPLEMENTED.
-		dead, _ := s.store.(deadletters.Source)
-		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, DeadLetters: dead, Watchers: func(delta int) {
+		s.grpc = grpcapi.New(grpcapi.Config{Engine: e, Logger: log, DeadLetters: s.store, Watchers: func(delta int) {
 			if delta > 0 {
 				s.Metrics.IncWatchSubscribers()
 			} else {
@@ -248,9 +245,18 @@ func (s *Service) publishCodeSystem(ctx context.Context) {
 // schema at start, waits for other replicas' migrations included.
 const storeOpenTimeout = time.Minute
 
+// serviceStore is what the service needs of its store: the state, and the
+// operator's dead-letter calls, which every store the service can open
+// serves (the compiler checks it here, so the gRPC dead-letter calls never
+// answer UNIMPLEMENTED for want of them).
+type serviceStore interface {
+	store.Store
+	deadletters.Source
+}
+
 // openStore opens the embedded store in --data-dir, or PostgreSQL when
 // --store names a database.
-func openStore(cfg Config) (store.Store, error) {
+func openStore(cfg Config) (serviceStore, error) {
 	if cfg.Store == "" {
 		bs, err := boltstore.Open(filepath.Join(cfg.DataDir, "deadspace.db"), boltstore.Options{})
 		if err != nil {

@@ -24,3 +24,11 @@ func TestContractReplicas(t *testing.T) {
 		return openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
 	})
 }
+
+// TestDeadLetterContract runs the operator's dead-letter contract, the one
+// the embedded store passes, each case on an empty schema of its own.
+func TestDeadLetterContract(t *testing.T) {
+	storetest.RunDeadLetters(t, func(t *testing.T) storetest.DeadLetterStore {
+		return openAs(t, pgtest.NewSchema(t), "dead-letters")
+	})
+}

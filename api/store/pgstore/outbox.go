@@ -149,21 +149,11 @@ func (s *Store) DeadLetters(ctx context.Context, limit int) ([]store.DeadLetter,
 	}
 	var out []store.DeadLetter
 	err := s.run(ctx, "DeadLetters", func(q querier) error {
-		rows, err := q.Query(ctx, `SELECT write_id, subject, series, body, attempts, not_before_ns, created_ns, last_error, reason, at_ns
-			FROM dead_letters ORDER BY seq LIMIT $1`, limit)
+		rows, err := q.Query(ctx, `SELECT `+deadLetterColumns+` FROM dead_letters ORDER BY seq LIMIT $1`, limit)
 		if err != nil {
 			return err
 		}
-		out, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (store.DeadLetter, error) {
-			var dl store.DeadLetter
-			var id, nb, created, at int64
-			err := row.Scan(&id, &dl.Subject, &dl.Series, &dl.Body, &dl.Attempts, &nb, &created, &dl.LastError, &dl.Reason, &at)
-			dl.ID, dl.NotBefore, dl.CreatedAt, dl.At = uint64(id), fromNanos(nb), fromNanos(created), fromNanos(at)
-			if len(dl.Series) == 0 {
-				dl.Series = nil
-			}
-			return dl, err
-		})
+		out, err = pgx.CollectRows(rows, func(row pgx.CollectableRow) (store.DeadLetter, error) { return scanDeadLetter(row) })
 		return err
 	})
 	if err != nil {
