@@ -27,12 +27,28 @@ type lateRig struct {
 	eng         *engine.Engine
 	st          *boltstore.Store
 	at, updated time.Time
+	inputs      []json.RawMessage // the end-tidal readings
 }
 
 func newLateRig(t *testing.T) *lateRig {
 	t.Helper()
 	peer := fhirtest.Start(t)
 	proxy := fhirtest.NewProxy(t, peer.BaseURL)
+	eng, st := newLateEngine(t, proxy.BaseURL)
+	at := time.Now().Add(-time.Hour).Truncate(time.Minute)
+	r := &lateRig{t: t, peer: peer, proxy: proxy, eng: eng, st: st, at: at, updated: at.Add(10 * time.Minute)}
+	var inputs []json.RawMessage
+	for m := -2; m <= 2; m++ {
+		inputs = append(inputs, obs(fmt.Sprintf("et%d", m+2), "1", "final", "19891-1", "mm[Hg]", 36, at.Add(time.Duration(m)*time.Minute), r.updated))
+	}
+	r.inputs = inputs
+	r.ingest(inputs...)
+	return r
+}
+
+// newLateEngine is an engine with a store of its own, writing to baseURL.
+func newLateEngine(t *testing.T, baseURL string) (*engine.Engine, *boltstore.Store) {
+	t.Helper()
 	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
 	if err != nil {
 		t.Fatal(err)
@@ -44,7 +60,7 @@ func newLateRig(t *testing.T) *lateRig {
 	}
 	// The engine gives up on a request after a second, as a real client
 	// gives up after its timeout.
-	cl, err := client.New(client.Config{BaseURL: proxy.BaseURL, MaxRetries: -1, HTTPClient: &http.Client{Timeout: 2 * time.Second}})
+	cl, err := client.New(client.Config{BaseURL: baseURL, MaxRetries: -1, HTTPClient: &http.Client{Timeout: 2 * time.Second}})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -54,14 +70,7 @@ func newLateRig(t *testing.T) *lateRig {
 	if err != nil {
 		t.Fatal(err)
 	}
-	at := time.Now().Add(-time.Hour).Truncate(time.Minute)
-	r := &lateRig{t: t, peer: peer, proxy: proxy, eng: eng, st: st, at: at, updated: at.Add(10 * time.Minute)}
-	var inputs []json.RawMessage
-	for m := -2; m <= 2; m++ {
-		inputs = append(inputs, obs(fmt.Sprintf("et%d", m+2), "1", "final", "19891-1", "mm[Hg]", 36, at.Add(time.Duration(m)*time.Minute), r.updated))
-	}
-	r.ingest(inputs...)
-	return r
+	return eng, st
 }
 
 // gas is version v of the blood gas, with PaCO2 value.
@@ -298,5 +307,33 @@ func TestForeignRevisionIsNeverOverwritten(t *testing.T) {
 	}
 	if len(now.Identifier) != 1 || now.Identifier[0].Value != "theirs" {
 		t.Fatalf("the foreign revision was overwritten: %s", body)
+	}
+}
+
+// A create that the server commits after the engine gave up on it, for an
+// earlier version of the inputs, is found by a later create of the series
+// that carries the newer value: its condition matches (200) rather than
+// creates. The later create comes from a ledger that never saw the first
+// (as when serve wrote a value and backfill then derives the series again
+// from its own ledger). The server must end with the newer value, updated
+// in place, not keep the older one while the ledger records its own key
+// there (the ledger acknowledged the matched id as if it held its value).
+func TestLateCreateMatchedByANewerCreateIsUpdated(t *testing.T) {
+	r := newLateRig(t)
+	r.ingest(r.gas(1, 44))
+	r.flushHeld() // the create of version 1 is held
+	// The inputs are revised before any retry, in a ledger that knows
+	// only the newer version: its create carries the newer key.
+	r.eng, r.st = newLateEngine(t, r.proxy.BaseURL)
+	r.ingest(append(r.inputs, r.gas(2, 47))...)
+	if got := r.proxy.Release(false); len(got) != 1 || got[0] >= 300 {
+		t.Fatalf("the late create was answered %v", got)
+	}
+	r.flush() // the newer create's condition matches the late one
+	r.wantCurrent(r.values())
+	// One Provenance per derivation the server received: the late
+	// create's, and the newer one's, which the update does not repeat.
+	if got := len(r.peer.Search(t, "Provenance?_count=100")); got != 2 {
+		t.Errorf("%d Provenances on the server, want 2", got)
 	}
 }

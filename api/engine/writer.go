@@ -210,7 +210,9 @@ var errNewerOnServer = errors.New("the server holds a revision of the derived Ob
 // or an answer lost) counts as acknowledged; an earlier value of this
 // service's for the series is updated once more against the version read;
 // anything else is a revision this service did not write, which it never
-// overwrites: the write goes to the dead letters.
+// overwrites: the write goes to the dead letters. A create whose condition
+// matched an Observation of the series holding another value is sent on as
+// an update of it (see [Engine.create]).
 func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string, error) {
 	var tw encode.Write
 	if err := json.Unmarshal(w.Body, &tw); err != nil {
@@ -220,26 +222,90 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 	if err != nil {
 		return nil, err
 	}
+	if tw.Kind == encode.WriteCreate {
+		return e.create(ctx, tw, deviceRef)
+	}
 	server := make(map[string]encode.ServerRef, len(tw.Series))
-	if tw.Kind != encode.WriteCreate {
-		for _, s := range tw.Series {
-			en, err := e.cfg.Store.Entry(ctx, s)
-			if err != nil {
-				return nil, fmt.Errorf("engine: %w", err)
-			}
-			if en.ServerID == "" {
-				return nil, errOrphan
-			}
-			server[s] = encode.ServerRef{ID: en.ServerID, Version: en.ServerVersion}
+	for _, s := range tw.Series {
+		en, err := e.cfg.Store.Entry(ctx, s)
+		if err != nil {
+			return nil, fmt.Errorf("engine: %w", err)
+		}
+		if en.ServerID == "" {
+			return nil, errOrphan
+		}
+		server[s] = encode.ServerRef{ID: en.ServerID, Version: en.ServerVersion}
+	}
+	return e.update(ctx, tw, deviceRef, server, true)
+}
+
+// create sends a create write. A create is conditional on the series, so
+// an entry answered 200 matched an Observation of the series already on
+// the server: a copy of an earlier create committed late, or a value
+// derived before (by serve from fewer readings, before a backfill). Unless
+// it already holds this write's value, it is updated to this write's value
+// against the version read, as a revision is; a value this service did
+// not write is never overwritten.
+func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) (map[string][2]string, error) {
+	plan, err := e.cfg.Encoder.Plan(tw, nil, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
+	if err != nil {
+		return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
+	}
+	ids, matched, err := e.sendPlan(ctx, tw.Kind, plan, true)
+	if err != nil || len(matched) == 0 {
+		return ids, err
+	}
+	stale := make(map[string]encode.ServerRef, len(matched))
+	var revise []string
+	for i := range plan.Len() {
+		series := plan.Series(i)
+		if !matched[series] {
+			continue
+		}
+		held, err := e.readHeld(ctx, ids[series][0])
+		if err != nil {
+			return nil, err
+		}
+		switch {
+		case held.series != series:
+			return nil, errNewerOnServer
+		case held.key == plan.Key(i) && !held.withdrawn:
+			ids[series] = [2]string{ids[series][0], held.version}
+		default:
+			stale[series] = encode.ServerRef{ID: ids[series][0], Version: held.version}
+			revise = append(revise, series)
 		}
 	}
+	if len(revise) == 0 {
+		return ids, nil
+	}
+	// The create carried this derivation's Provenance, which the server
+	// holds now, citing the matched Observations: the update writes the
+	// values only, so the derivation keeps one Provenance.
+	rw := tw
+	rw.Kind = encode.WriteRevise
+	rw.Series = revise
+	revised, err := e.update(ctx, rw, deviceRef, stale, false)
+	if err != nil {
+		return nil, err
+	}
+	for s, id := range revised {
+		ids[s] = id
+	}
+	return ids, nil
+}
+
+// update sends a revision or withdrawal against the server's versions,
+// resolving a failed If-Match as [Engine.send] describes; withProvenance
+// says whether its Provenance goes too.
+func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, server map[string]encode.ServerRef, withProvenance bool) (map[string][2]string, error) {
 	for attempt := 0; ; attempt++ {
 		plan, err := e.cfg.Encoder.Plan(tw, server, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
 		if err != nil {
 			return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
-		ids, err := e.sendPlan(ctx, tw.Kind, plan)
-		if err == nil || tw.Kind == encode.WriteCreate || !errors.Is(err, client.ErrPreconditionFailed) {
+		ids, _, err := e.sendPlan(ctx, tw.Kind, plan, withProvenance)
+		if err == nil || !errors.Is(err, client.ErrPreconditionFailed) {
 			return ids, err
 		}
 		landed, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
@@ -255,51 +321,64 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 	}
 }
 
-// sendPlan posts a plan's transactions.
-func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan) (map[string][2]string, error) {
+// sendPlan posts a plan's transactions. It returns the server's id and
+// version of each series, and the series whose conditional create matched
+// an Observation already on the server (answered 200, not 201). Without
+// withProvenance it posts the Observations only.
+func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
-	if plan.Len()+1 <= e.maxEntries() {
+	matched := make(map[string]bool)
+	if withProvenance && plan.Len()+1 <= e.maxEntries() {
 		tx, err := plan.Transaction(0, plan.Len(), true)
 		if err != nil {
-			return nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
+			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		resp, err := e.transaction(ctx, tx, plan.Len()+1)
 		if err != nil {
-			return nil, err
+			return nil, nil, err
 		}
 		for i := range plan.Len() {
 			server[plan.Series(i)] = [2]string{resp.Entries[i].ID, resp.Entries[i].VersionID}
+			if kind == encode.WriteCreate && resp.Entries[i].Status == http.StatusOK {
+				matched[plan.Series(i)] = true
+			}
 		}
-		return server, checkIDs(server)
+		return server, matched, checkIDs(server)
 	}
 	ids := make(map[string]string, plan.Len())
 	for from := 0; from < plan.Len(); from += e.maxEntries() {
 		to := min(from+e.maxEntries(), plan.Len())
 		tx, err := plan.Transaction(from, to, false)
 		if err != nil {
-			return nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
+			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		resp, err := e.transaction(ctx, tx, to-from)
 		if err != nil {
-			return nil, err
+			return nil, nil, err
 		}
 		for i := from; i < to; i++ {
 			r := resp.Entries[i-from]
 			server[plan.Series(i)] = [2]string{r.ID, r.VersionID}
 			ids[plan.Series(i)] = r.ID
+			if kind == encode.WriteCreate && r.Status == http.StatusOK {
+				matched[plan.Series(i)] = true
+			}
 		}
 	}
 	if err := checkIDs(server); err != nil {
-		return nil, err
+		return nil, nil, err
+	}
+	if !withProvenance {
+		return server, matched, nil
 	}
 	prov, q, err := plan.Provenance(ids)
 	if err != nil {
-		return nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
+		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
-		return nil, err
+		return nil, nil, err
 	}
-	return server, nil
+	return server, matched, nil
 }
 
 // afterPrecondition reads what the server holds of each series of an
@@ -307,57 +386,74 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan) (
 // write's values are already there, or the versions to try again against
 // when the server holds earlier values of this service's.
 func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]encode.ServerRef, error) {
-	opts := e.cfg.Encoder.Options()
 	landed := make(map[string][2]string, plan.Len())
 	again := make(map[string]encode.ServerRef, plan.Len())
 	for i := range plan.Len() {
 		series := plan.Series(i)
 		sr := server[series]
-		body, meta, err := e.cfg.Client.Read(ctx, "Observation", sr.ID)
+		held, err := e.readHeld(ctx, sr.ID)
 		if err != nil {
 			return nil, nil, err
 		}
-		e.serverAnswered()
-		var held struct {
-			Status     string `json:"status"`
-			Identifier []struct {
-				System string `json:"system"`
-				Value  string `json:"value"`
-			} `json:"identifier"`
-		}
-		if err := json.Unmarshal(body, &held); err != nil {
-			return nil, nil, fmt.Errorf("engine: reading the server's Observation after a failed precondition: %w", err)
-		}
-		var key, heldSeries string
-		for _, id := range held.Identifier {
-			switch id.System {
-			case opts.IdentifierSystem:
-				key = id.Value
-			case opts.SeriesSystem:
-				heldSeries = id.Value
-			}
-		}
+		key, heldSeries, withdrawn := held.key, held.series, held.withdrawn
 		en, err := e.cfg.Store.Entry(ctx, series)
 		if err != nil {
 			return nil, nil, fmt.Errorf("engine: %w", err)
 		}
-		withdrawn := held.Status == statusWithdrawn
 		switch {
 		case heldSeries != series:
 			return nil, nil, errNewerOnServer
 		case key == plan.Key(i) && withdrawn == (kind == encode.WriteWithdraw):
-			landed[series] = [2]string{sr.ID, meta.VersionID}
+			landed[series] = [2]string{sr.ID, held.version}
 		case key == plan.Key(i) || key == en.Key || slices.Contains(en.Revisions, key):
 			// An earlier value of this service's: update it once more.
 		default:
 			return nil, nil, errNewerOnServer
 		}
-		again[series] = encode.ServerRef{ID: sr.ID, Version: meta.VersionID}
+		again[series] = encode.ServerRef{ID: sr.ID, Version: held.version}
 	}
 	if len(landed) == plan.Len() {
 		return landed, nil, nil
 	}
 	return nil, again, nil
+}
+
+// heldValue is what the server holds of one derived Observation: this
+// service's key and series identifiers, whether it is withdrawn, and the
+// version read.
+type heldValue struct {
+	key, series, version string
+	withdrawn            bool
+}
+
+// readHeld reads a derived Observation from the server.
+func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
+	opts := e.cfg.Encoder.Options()
+	body, meta, err := e.cfg.Client.Read(ctx, "Observation", id)
+	if err != nil {
+		return heldValue{}, err
+	}
+	e.serverAnswered()
+	var held struct {
+		Status     string `json:"status"`
+		Identifier []struct {
+			System string `json:"system"`
+			Value  string `json:"value"`
+		} `json:"identifier"`
+	}
+	if err := json.Unmarshal(body, &held); err != nil {
+		return heldValue{}, fmt.Errorf("engine: reading the server's derived Observation: %w", err)
+	}
+	h := heldValue{version: meta.VersionID, withdrawn: held.Status == statusWithdrawn}
+	for _, id := range held.Identifier {
+		switch id.System {
+		case opts.IdentifierSystem:
+			h.key = id.Value
+		case opts.SeriesSystem:
+			h.series = id.Value
+		}
+	}
+	return h, nil
 }
 
 // checkIDs refuses an acknowledgement without a server id: every later
