@@ -27,20 +27,26 @@ func WriteNDJSON(w io.Writer, out Outcome) error {
 	return nil
 }
 
+// decimalsOf is how many decimals the encoder writes for code, so the
+// table shows each value as the record holds it.
+func decimalsOf(code derive.Code) int {
+	p, _ := encode.PrecisionOf(code)
+	return p.Decimals
+}
+
 // tableColumns are the values shown in the table, in order.
 var tableColumns = []struct {
 	code   derive.Code
 	header string
-	digits int
 }{
-	{derive.CodeGradient, "Pa-etCO2 mmHg", 1},
-	{derive.CodeAlveolarFraction, "VDalv/VT", 3},
-	{derive.CodePhysiologic, "VD/VT", 3},
-	{derive.CodeEstimatedFraction, "VD/VT est", 3},
-	{derive.CodeAirwayFraction, "VDaw/VT", 3},
-	{derive.CodeDeadSpaceVolume, "VD mL", 0},
-	{derive.CodeAlveolarVent, "VA L/min", 2},
-	{derive.CodeVentilatoryRatio, "VR", 2},
+	{derive.CodeGradient, "Pa-etCO2 mmHg"},
+	{derive.CodeAlveolarFraction, "VDalv/VT"},
+	{derive.CodePhysiologic, "VD/VT"},
+	{derive.CodeEstimatedFraction, "VD/VT est"},
+	{derive.CodeAirwayFraction, "VDaw/VT"},
+	{derive.CodeDeadSpaceVolume, "VD mL"},
+	{derive.CodeAlveolarVent, "VA L/min"},
+	{derive.CodeVentilatoryRatio, "VR"},
 }
 
 // tableLegend explains the table's marks; each threshold is in the
@@ -97,7 +103,7 @@ func WriteTable(w io.Writer, out Outcome) error {
 		}
 		for _, c := range tableColumns {
 			if v, ok := values[c.code]; ok {
-				row = append(row, strconv.FormatFloat(v.Value, 'f', c.digits, 64)+flag(v.Flag))
+				row = append(row, strconv.FormatFloat(v.Value, 'f', decimalsOf(c.code), 64)+flag(v.Flag))
 			} else {
 				row = append(row, "-")
 			}

@@ -13,27 +13,28 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
-// valueInfo is how each derived value is labelled and rounded, in the
-// order the pages list them.
+// valueInfo is how each derived value is labelled, in the order the pages
+// list them. The decimals shown are the encoder's (encode.PrecisionOf), so a
+// page never shows a value rounded otherwise than the record holds it.
 var valueInfo = []struct {
-	code   derive.Code
-	label  string
-	digits int
+	code  derive.Code
+	label string
 }{
-	{derive.CodeGradient, "PaCO2 − EtCO2", 1},
-	{derive.CodePhysiologic, "VD/VT (Enghoff)", 3},
-	{derive.CodeEstimatedFraction, "VD/VT estimated", 3},
-	{derive.CodeAlveolarFraction, "Alveolar VD/VT", 3},
-	{derive.CodeAirwayFraction, "Airway VD/VT", 3},
-	{derive.CodeDeadSpaceVolume, "VD", 0},
-	{derive.CodeAlveolarVent, "Alveolar ventilation", 2},
-	{derive.CodeVentilatoryRatio, "Ventilatory ratio", 2},
-	{derive.CodeMixedExpiredCO2, "Mixed-expired PCO2", 1},
-	{derive.CodeEtCO2Drop, "EtCO2 fall from baseline", 1},
-	{derive.CodeEtCO2Rise, "EtCO2 rise above baseline", 1},
+	{derive.CodeGradient, "PaCO2 − EtCO2"},
+	{derive.CodePhysiologic, "VD/VT (Enghoff)"},
+	{derive.CodeEstimatedFraction, "VD/VT estimated"},
+	{derive.CodeAlveolarFraction, "Alveolar VD/VT"},
+	{derive.CodeAirwayFraction, "Airway VD/VT"},
+	{derive.CodeDeadSpaceVolume, "VD"},
+	{derive.CodeAlveolarVent, "Alveolar ventilation"},
+	{derive.CodeVentilatoryRatio, "Ventilatory ratio"},
+	{derive.CodeMixedExpiredCO2, "Mixed-expired PCO2"},
+	{derive.CodeEtCO2Drop, "EtCO2 fall from baseline"},
+	{derive.CodeEtCO2Rise, "EtCO2 rise above baseline"},
 }
 
 // TableCodes are the values the timeline's table has a column for.
@@ -45,10 +46,19 @@ var TableCodes = []derive.Code{
 func labelOf(c derive.Code) (string, int) {
 	for _, v := range valueInfo {
 		if v.code == c {
-			return v.label, v.digits
+			return v.label, decimalsOf(c)
 		}
 	}
-	return string(c), 2
+	return string(c), decimalsOf(c)
+}
+
+// decimalsOf is how many decimals the encoder writes for c (2 for a code it
+// does not know).
+func decimalsOf(c derive.Code) int {
+	if p, ok := encode.PrecisionOf(c); ok {
+		return p.Decimals
+	}
+	return 2
 }
 
 func codeOrder(c derive.Code) int {
