@@ -12,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest/bulkfake"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirvalidate"
@@ -95,7 +96,7 @@ func TestReplayDemoGolden(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			args := append([]string{"replay", "--format", tc.format, "--issued", demoIssued}, files...)
 			out, errOut, code := runCmd(t, args...)
-			if code != exitOK {
+			if code != settings.ExitOK {
 				t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 			}
 			golden(t, tc.golden, out)
@@ -112,7 +113,7 @@ func TestReplayDemoGolden(t *testing.T) {
 func TestReplayOutputValidates(t *testing.T) {
 	files := demoFiles(t)
 	out, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued}, files...)...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 	}
 	known := make(map[string]bool)
@@ -207,8 +208,8 @@ func TestReplaySkipsBadLines(t *testing.T) {
 		t.Fatal(err)
 	}
 	_, errOut, code := runCmd(t, "replay", "--format", "table", bad)
-	if code != exitSkipped {
-		t.Fatalf("exit %d, want %d (skipped); stderr:\n%s", code, exitSkipped, errOut)
+	if code != settings.ExitSkipped {
+		t.Fatalf("exit %d, want %d (skipped); stderr:\n%s", code, settings.ExitSkipped, errOut)
 	}
 	for _, want := range []string{"bad.ndjson:2:", "bad.ndjson:3:", "bad.ndjson:5:", "bad.ndjson:6:", "skipped 4"} {
 		if !strings.Contains(errOut, want) {
@@ -232,8 +233,8 @@ func TestReplayUsageErrors(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			_, errOut, code := runCmd(t, tc.args...)
-			if code != exitUsage {
-				t.Fatalf("exit %d, want %d; stderr:\n%s", code, exitUsage, errOut)
+			if code != settings.ExitUsage {
+				t.Fatalf("exit %d, want %d; stderr:\n%s", code, settings.ExitUsage, errOut)
 			}
 			for _, w := range tc.want {
 				if !strings.Contains(errOut, w) {
@@ -253,15 +254,15 @@ func TestEveryCommandReadsTheDerivationVariables(t *testing.T) {
 	want := "--barometric-pressure must be 250 to 2300 mm[Hg], got 0"
 	for _, args := range [][]string{{"replay", "x.ndjson"}, {"serve", "--data-dir", t.TempDir()}} {
 		_, errOut, code := runCmd(t, args...)
-		if code != exitUsage || !strings.Contains(errOut, want) {
-			t.Errorf("%s: exit %d, stderr %q; want %d and %q", args[0], code, errOut, exitUsage, want)
+		if code != settings.ExitUsage || !strings.Contains(errOut, want) {
+			t.Errorf("%s: exit %d, stderr %q; want %d and %q", args[0], code, errOut, settings.ExitUsage, want)
 		}
 	}
 }
 
 func TestReplayMissingFileFails(t *testing.T) {
 	_, errOut, code := runCmd(t, "replay", filepath.Join(t.TempDir(), "absent.ndjson"))
-	if code != exitFailed || !strings.Contains(errOut, "absent.ndjson") {
+	if code != settings.ExitFailed || !strings.Contains(errOut, "absent.ndjson") {
 		t.Fatalf("exit %d, stderr %q: want a failure naming the file", code, errOut)
 	}
 }
@@ -275,7 +276,7 @@ func TestReplayMissingFileFails(t *testing.T) {
 // "believed" into a patient's record.
 func TestReplayDemoRecordsAreTrustworthy(t *testing.T) {
 	out, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued}, demoFiles(t)...)...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 	}
 	type quantity struct {
@@ -379,7 +380,7 @@ func TestReplayWithoutMeta(t *testing.T) {
 		t.Fatal(err)
 	}
 	out, errOut, code := runCmd(t, "replay", "--issued", demoIssued, in)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 	}
 	if !strings.Contains(out, `"reference":"Observation/abg1"`) || !strings.Contains(out, "no version") {
@@ -403,7 +404,7 @@ func TestReplayWithoutMeta(t *testing.T) {
 func TestReplayListsOmissions(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "omissions.ndjson")
 	_, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued, "--omissions", path}, demoFiles(t)...)...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 	}
 	counts := map[string]int{}
@@ -436,7 +437,7 @@ func TestReplayListsOmissions(t *testing.T) {
 func TestReplayWritesCodeSystem(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "codesystem.json")
 	_, errOut, code := runCmd(t, append([]string{"replay", "--issued", demoIssued, "--codesystem", path}, demoFiles(t)...)...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d, stderr:\n%s", code, errOut)
 	}
 	b, err := os.ReadFile(path)
@@ -454,16 +455,16 @@ func TestReplayWritesCodeSystem(t *testing.T) {
 // Rule 13: readable by the people who read it.
 func TestCommandsAnswerPeople(t *testing.T) {
 	out, _, code := runCmd(t, "--help")
-	if code != exitOK || !strings.Contains(out, "replay") || !strings.Contains(out, "serve") || !strings.Contains(out, "version") {
+	if code != settings.ExitOK || !strings.Contains(out, "replay") || !strings.Contains(out, "serve") || !strings.Contains(out, "version") {
 		t.Errorf("--help: exit %d\n%s", code, out)
 	}
 	out, _, code = runCmd(t, "--version")
-	if code != exitOK || !strings.HasPrefix(out, "deadspace ") {
+	if code != settings.ExitOK || !strings.HasPrefix(out, "deadspace ") {
 		t.Errorf("--version: exit %d %q", code, out)
 	}
 	// Errors name flags, never Go field names.
 	_, errOut, code := runCmd(t, "replay", "--fall-drop", "0", "--fall-sustain", "0s", "x.ndjson")
-	if code != exitUsage || !strings.Contains(errOut, "--fall-drop must") || !strings.Contains(errOut, "--fall-sustain must") || strings.Contains(errOut, "Fall.") {
+	if code != settings.ExitUsage || !strings.Contains(errOut, "--fall-drop must") || !strings.Contains(errOut, "--fall-sustain must") || strings.Contains(errOut, "Fall.") {
 		t.Errorf("stderr %q", errOut)
 	}
 	// An input with nothing usable says so.
@@ -472,7 +473,7 @@ func TestCommandsAnswerPeople(t *testing.T) {
 		t.Fatal(err)
 	}
 	out, errOut, code = runCmd(t, "replay", "--format", "table", empty)
-	if code != exitOK || !strings.Contains(out, "Nothing to derive") || !strings.Contains(errOut, "nothing to derive") {
+	if code != settings.ExitOK || !strings.Contains(out, "Nothing to derive") || !strings.Contains(errOut, "nothing to derive") {
 		t.Errorf("exit %d, stdout %q, stderr %q", code, out, errOut)
 	}
 	// The table carries units and a legend.
@@ -490,7 +491,7 @@ func TestReplayHTMLReport(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "report.html")
 	args := append([]string{"replay", "--issued", demoIssued, "--format", "table", "--html", path}, demoFiles(t)...)
 	stdout, stderr, code := runCmd(t, args...)
-	if code != exitOK || !strings.Contains(stdout, "bed5-fall") {
+	if code != settings.ExitOK || !strings.Contains(stdout, "bed5-fall") {
 		t.Fatalf("exit %d\n%s", code, stderr)
 	}
 	b, err := os.ReadFile(path)
@@ -514,8 +515,8 @@ func TestSubmitUsageErrors(t *testing.T) {
 		{"unknown flag", []string{"submit", "--nope", "x.ndjson"}},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			if _, _, code := runCmd(t, tc.args...); code != exitUsage {
-				t.Errorf("exit %d, want %d", code, exitUsage)
+			if _, _, code := runCmd(t, tc.args...); code != settings.ExitUsage {
+				t.Errorf("exit %d, want %d", code, settings.ExitUsage)
 			}
 		})
 	}
@@ -524,7 +525,7 @@ func TestSubmitUsageErrors(t *testing.T) {
 func TestBackfillDryRunCommand(t *testing.T) {
 	args := append([]string{"backfill", "--dry-run", "--state-dir", t.TempDir()}, demoFiles(t)...)
 	_, errOut, code := runCmd(t, args...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d; stderr:\n%s", code, errOut)
 	}
 	// The demo night as replay derives it: 111 Observations from 7 patients
@@ -554,8 +555,8 @@ func TestBackfillUsageErrors(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			_, errOut, code := runCmd(t, tc.args...)
-			if code != exitUsage {
-				t.Fatalf("exit %d, want %d; stderr:\n%s", code, exitUsage, errOut)
+			if code != settings.ExitUsage {
+				t.Fatalf("exit %d, want %d; stderr:\n%s", code, settings.ExitUsage, errOut)
 			}
 			for _, w := range tc.want {
 				if !strings.Contains(errOut, w) {
@@ -587,7 +588,7 @@ func TestBackfillCommandFromExport(t *testing.T) {
 	dir := t.TempDir()
 	args := []string{"backfill", "--fhir-base", peer.BaseURL, "--export-base", exp.URL, "--export", "patient", "--state-dir", filepath.Join(dir, "state")}
 	_, errOut, code := runCmd(t, args...)
-	if code != exitOK {
+	if code != settings.ExitOK {
 		t.Fatalf("exit %d; stderr:\n%s", code, errOut)
 	}
 	// One transaction per result: 17 blood gases and 3 end-tidal findings,
@@ -601,7 +602,7 @@ func TestBackfillCommandFromExport(t *testing.T) {
 		t.Errorf("kick-off at %s", p)
 	}
 	_, errOut, code = runCmd(t, args...)
-	if code != exitOK || !strings.Contains(errOut, "written: 0 transactions acknowledged") {
+	if code != settings.ExitOK || !strings.Contains(errOut, "written: 0 transactions acknowledged") {
 		t.Errorf("second run: exit %d\n%s", code, errOut)
 	}
 }

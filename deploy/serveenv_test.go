@@ -89,7 +89,7 @@ func TestUnknownEnv(t *testing.T) {
 	}
 }
 
-// serveConfig applies env the way main.go's runServe does: flags bound,
+// serveConfig applies env the way the serve command (api/cli) does: flags bound,
 // nothing on the command line, ApplyEnv, then Validate.
 func serveConfig(env map[string]string) (serve.Config, error) {
 	fs := flag.NewFlagSet("serve", flag.ContinueOnError)

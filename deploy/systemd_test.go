@@ -89,7 +89,7 @@ func TestUnitSettings(t *testing.T) {
 		{"SystemCallArchitectures", "native"},
 		{"UMask", "0077"},
 		{"Restart", "on-failure"},
-		// main.go's exitUsage: a configuration error, which a restart
+		// settings.ExitUsage: a configuration error, which a restart
 		// cannot fix.
 		{"RestartPreventExitStatus", "2"},
 	}

@@ -24,9 +24,9 @@ import (
 
 // Exit codes of [Main], as the other commands use them.
 const (
-	exitOK     = 0
-	exitFailed = 1
-	exitUsage  = 2
+	exitOK     = settings.ExitOK
+	exitFailed = settings.ExitFailed
+	exitUsage  = settings.ExitUsage
 )
 
 // StoreFile is the store's file name inside the data directory.

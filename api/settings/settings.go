@@ -17,6 +17,7 @@ import (
 	"errors"
 	"flag"
 	"fmt"
+	"io"
 	"math"
 	"net/url"
 	"strings"
@@ -221,4 +222,41 @@ func ParseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
 		positional = append(positional, rest[0])
 		args = rest[1:]
 	}
+}
+
+// Exit statuses every command shares: 0 all well, 1 the run failed, 2 bad
+// usage, 3 the run finished but left some input out (skipped lines, refused
+// resources).
+const (
+	ExitOK      = 0
+	ExitFailed  = 1
+	ExitUsage   = 2
+	ExitSkipped = 3
+)
+
+// NewCommand returns the flag set of a command: errors and help go to
+// stderr, the usage text before the flag list.
+func NewCommand(name, usage string, stderr io.Writer) *flag.FlagSet {
+	fs := flag.NewFlagSet(name, flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, usage)
+		fs.PrintDefaults()
+	}
+	return fs
+}
+
+// ParseCommand parses a command's arguments (flags anywhere, see
+// [ParseInterspersed]). When the command must stop here it returns ok
+// false and the exit status: ExitOK after -h, ExitUsage after a bad flag
+// (the flag package has already said why on the command's output).
+func ParseCommand(fs *flag.FlagSet, args []string) (positional []string, status int, ok bool) {
+	positional, err := ParseInterspersed(fs, args)
+	switch {
+	case errors.Is(err, flag.ErrHelp):
+		return nil, ExitOK, false
+	case err != nil:
+		return nil, ExitUsage, false
+	}
+	return positional, ExitOK, true
 }
