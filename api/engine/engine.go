@@ -43,9 +43,13 @@ type Hooks struct {
 	// LeftOut is told of every input left out as it arrives: refused by
 	// the decoder, not recognised, or a version superseded by another.
 	LeftOut func(reason derive.Reason)
-	// Evaluated is told, after each evaluation of a patient is committed,
-	// everything that evaluation left out: inputs (Code empty) and values
-	// not emitted. Together with LeftOut it is replay's summary.
+	// Evaluated is told everything a patient's stored data leaves out:
+	// inputs (Code empty) and values not emitted. A complete evaluation
+	// tells it once committed; after an incremental one, which derives only
+	// part of the patient, a complete re-derivation that commits nothing
+	// tells it, off the evaluation path and at most once per patient per
+	// refresh round ([Engine.EvaluateNow] returns only after it). Together
+	// with LeftOut it is replay's summary.
 	Evaluated   func(subject string, omitted []derive.Omission)
 	Emitted     func(code string, status string)
 	Gap         func()
@@ -130,6 +134,8 @@ type Engine struct {
 	// compare-and-swap commit covers other processes).
 	evaluating sync.Map // subject → *sync.Mutex
 
+	pictures *pictures // what the derivations leave out, kept complete
+
 	mu            sync.Mutex
 	lastNotified  time.Time
 	outboxBlocked time.Time // when the head write last failed, for readiness
@@ -193,6 +199,7 @@ func New(cfg Config) (*Engine, error) {
 	return &Engine{
 		cfg: cfg, log: cfg.Logger, now: cfg.Now,
 		wake: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
+		pictures: newPictures(),
 	}, nil
 }
 
@@ -414,7 +421,7 @@ func (e *Engine) leftOut(r derive.Reason) {
 // half-recorded.
 func (e *Engine) Run(ctx context.Context) error {
 	var wg sync.WaitGroup
-	loops := []func(context.Context){e.evaluateLoop, e.pruneLoop}
+	loops := []func(context.Context){e.evaluateLoop, e.pruneLoop, e.pictureLoop}
 	if e.cfg.Client != nil {
 		loops = append(loops, e.writeLoop, e.catchUpLoop)
 		e.RequestCatchUp("start")
@@ -474,7 +481,10 @@ type Health struct {
 	// OutboxBlockedSince is when the oldest pending write first failed and
 	// has kept failing; zero when it is flowing.
 	OutboxBlockedSince time.Time
-	Stats              store.Stats
+	// StalePictures counts the patients whose report of what their data
+	// leaves out (Hooks.Evaluated) waits for a refresh.
+	StalePictures int
+	Stats         store.Stats
 }
 
 // Health reports the engine's state.
@@ -485,7 +495,7 @@ func (e *Engine) Health(ctx context.Context) (Health, error) {
 	}
 	e.mu.Lock()
 	defer e.mu.Unlock()
-	return Health{ServerOK: e.lastServerOK, OutboxBlockedSince: e.outboxBlocked, Stats: st}, nil
+	return Health{ServerOK: e.lastServerOK, OutboxBlockedSince: e.outboxBlocked, StalePictures: e.stalePictures(), Stats: st}, nil
 }
 
 // Standalone reports whether the engine writes to no server.

@@ -110,7 +110,9 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 }
 
 // EvaluateNow evaluates every dirty patient at once, ignoring the settle
-// delay. Tests and the submit API use it to get a result without waiting.
+// delay, and leaves what the derivations leave out reported (Hooks.Evaluated)
+// for every patient. Tests and the submit API use it to get a result
+// without waiting.
 func (e *Engine) EvaluateNow(ctx context.Context) error {
 	dirty, err := e.cfg.Store.DirtyPatients(ctx)
 	if err != nil {
@@ -121,6 +123,9 @@ func (e *Engine) EvaluateNow(ctx context.Context) error {
 		if err := e.evaluatePatient(ctx, d); err != nil {
 			errs = append(errs, err)
 		}
+	}
+	if err := e.refreshPictures(ctx); err != nil {
+		errs = append(errs, err)
 	}
 	return errors.Join(errs...)
 }
@@ -239,10 +244,9 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
 	// Only a complete evaluation knows everything the patient's data
-	// leaves out; an incremental one's omissions are partial.
-	if e.cfg.Hooks.Evaluated != nil && gasesFrom.IsZero() {
-		e.cfg.Hooks.Evaluated(d.Subject, omitted)
-	}
+	// leaves out; after an incremental one the picture is refreshed apart
+	// (omissions.go).
+	e.evaluated(d.Subject, omitted, gasesFrom.IsZero())
 	for _, en := range change.Entries {
 		if e.cfg.Hooks.Emitted != nil {
 			e.cfg.Hooks.Emitted(string(codeOf(en)), en.Status)

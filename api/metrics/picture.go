@@ -15,10 +15,11 @@ import (
 // the next, so a reading paired once a blood gas arrives stops counting as
 // left out, as it would in a replay of everything received.
 //
-// The evaluation part is each patient's latest complete evaluation (an
-// incremental one re-derives only later blood gases and knows only part of
-// what is left out, so the engine reports only complete ones), and it lives
-// in memory: after a restart it counts the patients evaluated since.
+// The evaluation part is, for each patient, what a complete evaluation of
+// the patient's stored data leaves out (the engine reports it after a
+// complete evaluation, and after incremental ones by a complete
+// re-derivation off the evaluation path), and it lives in memory: after a
+// restart it counts the patients evaluated since.
 type picture struct {
 	mu        sync.Mutex
 	arrived   map[string]int

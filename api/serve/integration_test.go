@@ -307,12 +307,13 @@ func waitFor(t *testing.T, what string, cond func() bool) {
 }
 
 // waitIdle waits until the service has nothing pending: no patient to
-// evaluate and an empty outbox.
+// evaluate, an empty outbox, and every patient's left-out picture
+// refreshed.
 func waitIdle(t *testing.T, s *service) {
 	t.Helper()
 	waitFor(t, "the service to be idle", func() bool {
 		h, err := s.svc.Engine().Health(context.Background())
-		return err == nil && h.Stats.DirtyPatients == 0 && h.Stats.OutboxDepth == 0
+		return err == nil && h.Stats.DirtyPatients == 0 && h.Stats.OutboxDepth == 0 && h.StalePictures == 0
 	})
 }
 

@@ -5,10 +5,12 @@ import (
 	"context"
 	"crypto/tls"
 	"fmt"
+	"math/rand/v2"
 	"net/http"
 	"os"
 	"path/filepath"
 	"regexp"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
@@ -138,48 +140,71 @@ func TestDemoLogsCarryNoIdentifiers(t *testing.T) {
 	checkLogs(t, s.logs.String(), secrets)
 }
 
-// sendDemo posts every demo resource to the webhook and returns the
+// sendDemo posts every demo resource to the webhook, file by file in the
+// files' alphabetical order (the Patient file last), and returns the
 // identifiers and birth dates in them.
 func sendDemo(t *testing.T, s *service) []string {
+	t.Helper()
+	var secrets []string
+	idPattern := regexp.MustCompile(`"(?:id|reference|birthDate)":"([^"]+)"`)
+	for _, f := range demoFiles(t) {
+		lines := readLines(t, f)
+		for _, line := range lines {
+			for _, m := range idPattern.FindAllStringSubmatch(line, -1) {
+				secrets = append(secrets, m[1])
+			}
+		}
+		sendLines(t, s, lines)
+	}
+	return secrets
+}
+
+// demoFiles are the demo's NDJSON files in alphabetical order.
+func demoFiles(t *testing.T) []string {
 	t.Helper()
 	files, _ := filepath.Glob(filepath.Join("..", "..", "testdata", "demo", "*.ndjson"))
 	if len(files) == 0 {
 		t.Fatal("no demo files")
 	}
-	var secrets []string
-	var chunk []string
-	send := func() {
-		if len(chunk) == 0 {
-			return
+	return files
+}
+
+// readLines returns the lines of an NDJSON file.
+func readLines(t *testing.T, name string) []string {
+	t.Helper()
+	fh, err := os.Open(name)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer fh.Close()
+	var lines []string
+	sc := bufio.NewScanner(fh)
+	sc.Buffer(make([]byte, 1<<20), 1<<24)
+	for sc.Scan() {
+		lines = append(lines, sc.Text())
+	}
+	if err := sc.Err(); err != nil {
+		t.Fatal(err)
+	}
+	return lines
+}
+
+// sendLines posts resources to the webhook in their order, 500 to a
+// notification.
+func sendLines(t *testing.T, s *service, lines []string) {
+	t.Helper()
+	for len(lines) > 0 {
+		n := min(len(lines), 500)
+		chunk := make([]string, n)
+		for i, line := range lines[:n] {
+			chunk[i] = `{"resource":` + line + `}`
 		}
+		lines = lines[n:]
 		body := `{"resourceType":"Bundle","type":"collection","entry":[` + strings.Join(chunk, ",") + `]}`
 		if code, out := post(t, s.url, http.MethodPost, "/notify", []byte(body), secret); code != http.StatusOK {
 			t.Fatalf("HTTP %d: %.300s", code, out)
 		}
-		chunk = chunk[:0]
 	}
-	idPattern := regexp.MustCompile(`"(?:id|reference|birthDate)":"([^"]+)"`)
-	for _, f := range files {
-		fh, err := os.Open(f)
-		if err != nil {
-			t.Fatal(err)
-		}
-		sc := bufio.NewScanner(fh)
-		sc.Buffer(make([]byte, 1<<20), 1<<24)
-		for sc.Scan() {
-			line := sc.Text()
-			for _, m := range idPattern.FindAllStringSubmatch(line, -1) {
-				secrets = append(secrets, m[1])
-			}
-			chunk = append(chunk, `{"resource":`+line+`}`)
-			if len(chunk) == 500 {
-				send()
-			}
-		}
-		fh.Close()
-		send()
-	}
-	return secrets
 }
 
 // checkLogs fails when any identifier (less its resource type) appears in
@@ -344,24 +369,33 @@ func scrapeByReason(t *testing.T, s *service, name string) map[string]int {
 	return out
 }
 
-// TestMetricsAgreeWithReplay sends the demo through the service and runs
-// replay on the same files with the same settings: /metrics must count the
-// same inputs left out and values not emitted, reason by reason, as
-// replay's summary.
+// TestMetricsAgreeWithReplay sends the demo through the service in
+// several orders and runs replay on the same files with the same settings:
+// once the service is idle, /metrics must count the same inputs left out
+// and values not emitted, reason by reason, as replay's summary, whatever
+// order the data arrived in. In the README's order (patients first, then
+// blood gases, then device readings) every evaluation after a patient's
+// first is incremental, so the gauges hold only if the picture is
+// refreshed after incremental evaluations.
 func TestMetricsAgreeWithReplay(t *testing.T) {
-	cfg := testConfig("", t.TempDir())
-	cfg.Retention = 10 * 365 * 24 * time.Hour
-	s := start(t, cfg)
-	before := scrapeByReason(t, s, "deadspace_inputs_left_out")
-	for r, n := range before {
-		if n != 0 {
-			t.Errorf("inputs left out for %s is %d before any input", r, n)
-		}
+	files := demoFiles(t)
+	byName := map[string][]string{}
+	for _, f := range files {
+		byName[filepath.Base(f)] = readLines(t, f)
 	}
-	sendDemo(t, s)
-	waitIdle(t, s)
+	var all []string
+	for _, f := range files {
+		all = append(all, byName[filepath.Base(f)]...)
+	}
+	const seed = 20260302
+	shuffled := slices.Clone(all)
+	rand.New(rand.NewPCG(seed, seed)).Shuffle(len(shuffled), func(i, j int) { shuffled[i], shuffled[j] = shuffled[j], shuffled[i] })
+	readme := slices.Concat(byName["Patient.ndjson"], byName["Encounter.ndjson"], byName["Observation.bloodgas.ndjson"], byName["Observation.devices.ndjson"])
+	if len(readme) != len(all) {
+		t.Fatalf("the README's order sends %d lines of %d: a demo file is not named", len(readme), len(all))
+	}
 
-	files, _ := filepath.Glob(filepath.Join("..", "..", "testdata", "demo", "*.ndjson"))
+	cfg := testConfig("", t.TempDir())
 	opts, err := cfg.Derivation.Resolve("test")
 	if err != nil {
 		t.Fatal(err)
@@ -379,18 +413,47 @@ func TestMetricsAgreeWithReplay(t *testing.T) {
 	for _, c := range replay.ReasonCounts(out.Report.Values) {
 		wantValues[string(c.Reason)] = c.N
 	}
-	for _, m := range []struct {
-		name string
-		want map[string]int
-	}{{"deadspace_inputs_left_out", wantInputs}, {"deadspace_values_not_emitted", wantValues}} {
-		got := scrapeByReason(t, s, m.name)
-		for _, r := range derive.AllReasons() {
-			if got[string(r)] != m.want[string(r)] {
-				t.Errorf("%s{reason=%q} = %d, replay's summary says %d", m.name, r, got[string(r)], m.want[string(r)])
-			}
-		}
-	}
 	if wantInputs[string(derive.ReasonUnpaired)]+wantValues[string(derive.ReasonMissingInput)] == 0 {
 		t.Fatal("replay left nothing out: the comparison checks nothing")
+	}
+
+	for _, tc := range []struct {
+		name  string
+		lines []string
+		// byFile posts each file apart, as sendDemo does.
+		byFile bool
+	}{
+		{name: "files in alphabetical order, the Patient file last", byFile: true},
+		{name: "the README's order: patients, then blood gases, then device readings", lines: readme},
+		{name: fmt.Sprintf("every line shuffled (seed %d)", seed), lines: shuffled},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			cfg := testConfig("", t.TempDir())
+			cfg.Retention = 10 * 365 * 24 * time.Hour
+			s := start(t, cfg)
+			before := scrapeByReason(t, s, "deadspace_inputs_left_out")
+			for r, n := range before {
+				if n != 0 {
+					t.Errorf("inputs left out for %s is %d before any input", r, n)
+				}
+			}
+			if tc.byFile {
+				sendDemo(t, s)
+			} else {
+				sendLines(t, s, tc.lines)
+			}
+			waitIdle(t, s)
+			for _, m := range []struct {
+				name string
+				want map[string]int
+			}{{"deadspace_inputs_left_out", wantInputs}, {"deadspace_values_not_emitted", wantValues}} {
+				got := scrapeByReason(t, s, m.name)
+				for _, r := range derive.AllReasons() {
+					if got[string(r)] != m.want[string(r)] {
+						t.Errorf("%s{reason=%q} = %d, replay's summary says %d", m.name, r, got[string(r)], m.want[string(r)])
+					}
+				}
+			}
+		})
 	}
 }

@@ -1,0 +1,189 @@
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"sync"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// pictureInterval is the shortest time between two rounds of the
+// left-out picture's refresher: a burst of data for a patient costs at
+// most one complete re-derivation of that patient per interval.
+var pictureInterval = time.Second
+
+// pictures keeps Hooks.Evaluated true to a complete evaluation of each
+// patient's data.
+//
+// An incremental evaluation re-derives only the blood gases new data
+// reaches, so it knows only part of what the patient's data leaves out;
+// reporting that part would undercount, and reporting nothing would leave
+// an earlier picture standing (data usually arrives patient first, then
+// blood gases, then device readings, and only the first evaluation is
+// complete). So an incremental evaluation marks the patient's picture
+// stale, and a refresher re-derives stale patients whole, without
+// committing anything, off the evaluation path: one patient at a time,
+// each stale patient once per round however many evaluations marked it,
+// and rounds at most one per [pictureInterval].
+type pictures struct {
+	wake chan struct{}
+
+	mu sync.Mutex // orders reports: a refresh never overwrites a newer evaluation
+	// stale are the patients whose last report is older than their last
+	// evaluation.
+	stale map[string]struct{}
+	// evaluations counts each patient's evaluations, so a refresh whose
+	// reading an evaluation overtook is dropped.
+	evaluations map[string]uint64
+	// refreshing counts the patients of the round in progress not yet
+	// reported.
+	refreshing int
+
+	round sync.Mutex // one refresh round at a time
+}
+
+func newPictures() *pictures {
+	return &pictures{wake: make(chan struct{}, 1), stale: map[string]struct{}{}, evaluations: map[string]uint64{}}
+}
+
+// evaluated is called by every committed evaluation of a patient with what
+// it left out; complete says it derived the patient whole.
+func (e *Engine) evaluated(subject string, omitted []derive.Omission, complete bool) {
+	p := e.pictures
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.evaluations[subject]++
+	if !complete {
+		p.stale[subject] = struct{}{}
+		signal(p.wake)
+		return
+	}
+	delete(p.stale, subject)
+	if e.cfg.Hooks.Evaluated != nil {
+		e.cfg.Hooks.Evaluated(subject, omitted)
+	}
+}
+
+// pictureLoop refreshes stale pictures until ctx is done.
+func (e *Engine) pictureLoop(ctx context.Context) {
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-e.pictures.wake:
+		}
+		started := time.Now()
+		if err := e.refreshPictures(ctx); err != nil && ctx.Err() == nil {
+			e.log.ErrorContext(ctx, "refreshing what the derivations leave out failed; it is retried", "err", err)
+			signal(e.pictures.wake)
+		}
+		if !sleep(ctx, pictureInterval-time.Since(started)) {
+			return
+		}
+	}
+}
+
+// refreshPictures re-derives every stale patient whole and reports what
+// each leaves out. A patient it could not read stays stale.
+func (e *Engine) refreshPictures(ctx context.Context) error {
+	p := e.pictures
+	p.round.Lock()
+	defer p.round.Unlock()
+	p.mu.Lock()
+	subjects := make([]string, 0, len(p.stale))
+	for s := range p.stale {
+		subjects = append(subjects, s)
+	}
+	clear(p.stale)
+	p.refreshing = len(subjects)
+	p.mu.Unlock()
+	var errs []error
+	for i, s := range subjects {
+		if ctx.Err() != nil {
+			e.refreshed(false, subjects[i:]...)
+			return errors.Join(append(errs, ctx.Err())...)
+		}
+		err := e.refreshPicture(ctx, s)
+		if err != nil {
+			errs = append(errs, err)
+		}
+		e.refreshed(err == nil, s)
+	}
+	return errors.Join(errs...)
+}
+
+// refreshed ends the round's work on subjects; those not reported stay
+// stale.
+func (e *Engine) refreshed(reported bool, subjects ...string) {
+	p := e.pictures
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.refreshing -= len(subjects)
+	if reported {
+		return
+	}
+	for _, s := range subjects {
+		p.stale[s] = struct{}{}
+	}
+}
+
+// stalePictures counts the patients whose left-out picture is not yet
+// reported as their data stands.
+func (e *Engine) stalePictures() int {
+	p := e.pictures
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	return len(p.stale) + p.refreshing
+}
+
+// refreshPicture re-derives one patient whole, commits nothing, and
+// reports what the patient's data leaves out, unless an evaluation
+// reported since the inputs were read (its report, or the refresh it asks
+// for, is newer).
+func (e *Engine) refreshPicture(ctx context.Context, subject string) error {
+	p := e.pictures
+	p.mu.Lock()
+	seen := p.evaluations[subject]
+	p.mu.Unlock()
+	omitted, err := e.omissions(ctx, subject)
+	if err != nil {
+		return err
+	}
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	if p.evaluations[subject] == seen && e.cfg.Hooks.Evaluated != nil {
+		e.cfg.Hooks.Evaluated(subject, omitted)
+	}
+	return nil
+}
+
+// omissions is what a complete evaluation of the patient's stored data
+// leaves out. Patient facts come from the store only: an evaluation has
+// already read the server for them, and a refresh must not add requests.
+func (e *Engine) omissions(ctx context.Context, subject string) ([]derive.Omission, error) {
+	inputs, err := e.loadInputs(ctx, subject)
+	if err != nil {
+		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+	}
+	var facts derive.Patient
+	switch stored, err := e.cfg.Store.Patient(ctx, subject); {
+	case errors.Is(err, store.ErrNotFound):
+	case err != nil:
+		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+	default:
+		if err := json.Unmarshal(stored.Payload, &facts); err != nil {
+			return nil, fmt.Errorf("engine: left-out picture: stored patient: %w", err)
+		}
+	}
+	_, omitted, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, subject, facts, inputs, time.Time{})
+	if err != nil {
+		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+	}
+	return omitted, nil
+}
