@@ -95,7 +95,8 @@ type Options struct {
 
 // Store is the bbolt implementation of [store.Store].
 type Store struct {
-	db *bolt.DB
+	db    *bolt.DB
+	group *groupCommit
 }
 
 var (
@@ -150,7 +151,7 @@ func Open(path string, opts Options) (*Store, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Store{db: db}
+	s := &Store{db: db, group: &groupCommit{db: db}}
 	if err := s.init(); err != nil {
 		_ = db.Close()
 		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
@@ -170,10 +171,6 @@ func openDB(path string, opts Options) (db *bolt.DB, err error) {
 	db, err = bolt.Open(path, 0o600, &bolt.Options{Timeout: opts.Timeout, NoSync: opts.NoSync})
 	switch {
 	case err == nil:
-		// A batch waits this long for company before it commits. bbolt's
-		// 10 ms default adds 10 ms to every webhook answer that arrives
-		// alone; 2 ms still lets a burst share one fsync.
-		db.MaxBatchDelay = 2 * time.Millisecond
 		return db, nil
 	case errors.Is(err, bolterrors.ErrTimeout):
 		return nil, fmt.Errorf("boltstore.Open: %s (waited %v): %w: %w", path, opts.Timeout, ErrLocked, err)
@@ -296,7 +293,7 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 }
 
 // batch is update for transactions that may be merged with concurrent
-// ones into a single commit (bbolt's Batch): one fsync then covers many
+// ones into a single commit (see groupCommit): one fsync then covers many
 // webhook requests, which is what lets ingest keep up with a busy feed.
 // fn may run more than once, so it must leave nothing behind outside the
 // transaction but what it recomputes on every run.
@@ -304,7 +301,7 @@ func (s *Store) batch(ctx context.Context, op string, fn func(tx *bolt.Tx) error
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	if err := s.db.Batch(fn); err != nil {
+	if err := s.group.do(fn); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
 	return nil
