@@ -155,13 +155,30 @@ func (e *Engine) CatchUp(ctx context.Context, trigger string) error {
 // seen, or a count of events since the subscription started that is ahead
 // of it (a heartbeat after lost events).
 func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
+	e.notifiedAt()
+	lowest, highest := eventRange(n)
+	if n.Subscription == "" || highest == 0 {
+		return nil
+	}
+	previous, err := e.cfg.Store.SeenEvent(ctx, n.Subscription, highest)
+	if err != nil {
+		return fmt.Errorf("engine: notification: %w", err)
+	}
+	e.checkGap(ctx, lowest, highest, previous)
+	return nil
+}
+
+// notifiedAt notes that a notification arrived, for the heartbeat timeout.
+func (e *Engine) notifiedAt() {
 	e.mu.Lock()
 	e.lastNotified = e.now()
 	e.mu.Unlock()
-	if n.Subscription == "" {
-		return nil
-	}
-	var lowest, highest uint64
+}
+
+// eventRange returns the lowest and highest event numbers a notification
+// speaks of (0 when none): its events' numbers, and its count of events
+// since the subscription started.
+func eventRange(n notify.Notification) (lowest, highest uint64) {
 	for _, ev := range n.Events {
 		if ev.Number == 0 {
 			continue
@@ -174,13 +191,12 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 	if n.HasEventsSinceStart {
 		highest = max(highest, n.EventsSinceStart)
 	}
-	if highest == 0 {
-		return nil
-	}
-	previous, err := e.cfg.Store.SeenEvent(ctx, n.Subscription, highest)
-	if err != nil {
-		return fmt.Errorf("engine: notification: %w", err)
-	}
+	return lowest, highest
+}
+
+// checkGap asks for a catch-up when events between the highest number seen
+// before (previous) and this notification's never came.
+func (e *Engine) checkGap(ctx context.Context, lowest, highest, previous uint64) {
 	gap := false
 	switch {
 	case lowest > 0 && lowest > previous+1:
@@ -195,7 +211,6 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 		e.log.WarnContext(ctx, "subscription events missing; catching up by search", "last_seen", previous, "now_at", highest)
 		e.RequestCatchUp("gap")
 	}
-	return nil
 }
 
 // Fetch reads resources named by an id-only notification from the server

@@ -464,6 +464,11 @@ func (k sink) Status(ctx context.Context, src webhook.Source, n notify.Notificat
 	return invalid(k.e.Notified(ctx, n))
 }
 
+func (k sink) Notification(ctx context.Context, src webhook.Source, resources []json.RawMessage, n notify.Notification) (webhook.Receipt, error) {
+	r, err := k.e.IngestNotified(ctx, src.Mode, resources, n)
+	return receipt(r), invalid(err)
+}
+
 func (k sink) Changed(ctx context.Context, src webhook.Source) error {
 	k.e.RequestCatchUp("rest-hook")
 	return nil

@@ -287,6 +287,13 @@ type Store interface {
 	// SeenEvent records the highest event number seen for a subscription
 	// and returns the previous highest (0 when none).
 	SeenEvent(ctx context.Context, subscription string, number uint64) (previous uint64, err error)
+	// PutNotified is PutInputs followed by SeenEvent, for a notification
+	// that carries its inputs, with both answers. The event number is
+	// never durable before the inputs: when the call fails the counter
+	// may stay behind, never run ahead, so a notification whose content
+	// was not stored cannot pass for one already seen. An implementation
+	// may do both in one transaction (one commit per notification).
+	PutNotified(ctx context.Context, inputs []Input, now time.Time, subscription string, number uint64) (results []PutResult, previous uint64, err error)
 
 	// Events returns feed events with Seq > after, at most limit, in order.
 	Events(ctx context.Context, after uint64, limit int) ([]Event, error)

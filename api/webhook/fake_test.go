@@ -16,7 +16,10 @@ type fakeSink struct {
 	ResourcesFn func(ctx context.Context, src webhook.Source, rs []json.RawMessage) (webhook.Receipt, error)
 	FetchFn     func(ctx context.Context, src webhook.Source, refs []string) error
 	StatusFn    func(ctx context.Context, src webhook.Source, n notify.Notification) error
-	ChangedFn   func(ctx context.Context, src webhook.Source) error
+	// NotificationFn answers Notification; without it, Notification
+	// answers as ResourcesFn would.
+	NotificationFn func(ctx context.Context, src webhook.Source, rs []json.RawMessage, n notify.Notification) (webhook.Receipt, error)
+	ChangedFn      func(ctx context.Context, src webhook.Source) error
 
 	mu    sync.Mutex
 	calls []call
@@ -66,6 +69,17 @@ func (f *fakeSink) Status(ctx context.Context, src webhook.Source, n notify.Noti
 		return f.StatusFn(ctx, src, n)
 	}
 	return nil
+}
+
+func (f *fakeSink) Notification(ctx context.Context, src webhook.Source, rs []json.RawMessage, n notify.Notification) (webhook.Receipt, error) {
+	f.record(call{method: "Notification", src: src, resources: rs, n: n})
+	switch {
+	case f.NotificationFn != nil:
+		return f.NotificationFn(ctx, src, rs, n)
+	case f.ResourcesFn != nil:
+		return f.ResourcesFn(ctx, src, rs)
+	}
+	return webhook.Receipt{Accepted: len(rs)}, nil
 }
 
 func (f *fakeSink) Changed(ctx context.Context, src webhook.Source) error {

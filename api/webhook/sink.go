@@ -25,6 +25,11 @@ type Sink interface {
 	// Status records a notification's status part (counters, type) for gap
 	// detection.
 	Status(ctx context.Context, src Source, n notify.Notification) error
+	// Notification takes a notification whose events carry their resources
+	// in full: Resources and then Status in one step, so that the answer
+	// waits for one durable commit instead of two. As with the two calls,
+	// the status is never recorded without the resources.
+	Notification(ctx context.Context, src Source, resources []json.RawMessage, n notify.Notification) (Receipt, error)
 	// Changed records that something changed without saying what (classic
 	// empty rest-hook POST).
 	Changed(ctx context.Context, src Source) error

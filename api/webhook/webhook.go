@@ -19,6 +19,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // DefaultMaxBodyBytes is the body limit when Config.MaxBodyBytes is 0.
@@ -308,33 +309,45 @@ func checkMediaType(ct string) error {
 }
 
 type head struct {
-	ResourceType *string `json:"resourceType"`
-	ID           *string `json:"id"`
+	ResourceType *string
+	ID           *string
 }
 
 // classify reads the body's resourceType and id. empty is true for a
 // blank body and for "{}", which some servers send instead of nothing.
+// One decoding of the body into its members both checks the JSON and
+// finds the two.
 func classify(body []byte) (h head, empty bool, err error) {
 	t := bytes.TrimSpace(body)
 	if len(t) == 0 {
 		return head{}, true, nil
 	}
-	if !json.Valid(t) {
-		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not valid JSON"}
-	}
-	if t[0] != '{' {
-		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
-	}
 	var m map[string]json.RawMessage
 	if err := json.Unmarshal(t, &m); err != nil {
+		if _, ok := errors.AsType[*json.SyntaxError](err); ok {
+			return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not valid JSON"}
+		}
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
+	}
+	if t[0] != '{' {
 		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
 	}
 	if len(m) == 0 {
 		return head{}, true, nil
 	}
-	if err := json.Unmarshal(t, &h); err != nil || h.ResourceType == nil || *h.ResourceType == "" {
+	var rt string
+	if raw, ok := m["resourceType"]; !ok || json.Unmarshal(raw, &rt) != nil || rt == "" {
 		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
 			msg: "body is not a FHIR resource: no resourceType"}
+	}
+	h.ResourceType = &rt
+	if raw, ok := m["id"]; ok {
+		var id string
+		if json.Unmarshal(raw, &id) != nil {
+			return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
+				msg: "body is not a FHIR resource: id is not a string"}
+		}
+		h.ID = &id
 	}
 	return h, false, nil
 }
@@ -372,20 +385,21 @@ func (h *Handler) notification(ctx context.Context, id string, n notify.Notifica
 	src := Source{Mode: ModeNotification, RequestID: id}
 	res := result{mode: ModeNotification, ntype: n.Type, content: n.Content, events: len(n.Events)}
 	if n.Type != notify.TypeHandshake && n.Type != notify.TypeHeartbeat {
+		var rs []json.RawMessage
 		if len(n.Resources) > 0 {
-			rs := make([]json.RawMessage, len(n.Resources))
+			rs = make([]json.RawMessage, len(n.Resources))
 			for i, e := range n.Resources {
 				rs[i] = e.Resource
 			}
-			if err := h.resources(ctx, src, &res, rs); err != nil {
-				return res, err
-			}
 		}
 		var refs []string
-		seen := map[string]bool{}
+		var seen map[string]bool
 		for _, ev := range n.Events {
 			if ev.Focus == "" || ev.Resource != nil || seen[ev.Focus] {
 				continue
+			}
+			if seen == nil {
+				seen = map[string]bool{}
 			}
 			seen[ev.Focus] = true
 			// The IG lets a focus name "a non-FHIR object"; nothing can be
@@ -395,6 +409,22 @@ func (h *Handler) notification(ctx context.Context, id string, n notify.Notifica
 				continue
 			}
 			refs = append(refs, ev.Focus)
+		}
+		if len(rs) > 0 && len(refs) == 0 {
+			// Full-resource content, the usual case: resources and status
+			// in one step.
+			res.offered, res.status = len(rs), true
+			rc, err := h.sink.Notification(ctx, src, rs, n)
+			if err != nil {
+				return res, fmt.Errorf("webhook: notification: %w", err)
+			}
+			res.receipt = rc
+			return res, nil
+		}
+		if len(rs) > 0 {
+			if err := h.resources(ctx, src, &res, rs); err != nil {
+				return res, err
+			}
 		}
 		if len(refs) > 0 {
 			res.fetch = len(refs)
@@ -473,7 +503,7 @@ func (h *Handler) typed(ctx context.Context, id, typ, rid string, body []byte) (
 		return res, &requestError{status: http.StatusBadRequest, code: "not-supported",
 			msg: "only Observation and Patient resources are accepted here"}
 	}
-	if !notify.IsID(rid) {
+	if !ref.IsID(rid) {
 		return res, &requestError{status: http.StatusBadRequest, code: "value", msg: "the id in the path is not a FHIR id"}
 	}
 	hd, empty, err := classify(body)

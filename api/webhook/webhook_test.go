@@ -86,14 +86,18 @@ func summary(calls []call) []string {
 	var out []string
 	for _, c := range calls {
 		switch c.method {
-		case "Resources":
+		case "Resources", "Notification":
 			var types []string
 			for _, r := range c.resources {
 				var h struct{ ResourceType string }
 				_ = json.Unmarshal(r, &h)
 				types = append(types, h.ResourceType)
 			}
-			out = append(out, fmt.Sprintf("Resources %s %s", c.src.Mode, strings.Join(types, ",")))
+			line := fmt.Sprintf("%s %s %s", c.method, c.src.Mode, strings.Join(types, ","))
+			if c.method == "Notification" {
+				line += fmt.Sprintf(" %s %d", c.n.Type, c.n.EventsSinceStart)
+			}
+			out = append(out, line)
 		case "Fetch":
 			out = append(out, fmt.Sprintf("Fetch %s %s", c.src.Mode, strings.Join(c.refs, ",")))
 		case "Status":
@@ -247,9 +251,9 @@ func TestHandler(t *testing.T) {
 			calls: []string{"Fetch notification https://ehr.example/fhir/Observation/abg-1/_history/3", "Status notification event-notification 7"}},
 		{name: "full-resource", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
 			body:  r4Notification("event-notification", "8", "https://ehr.example/fhir/Observation/abg-1", obs),
-			calls: []string{"Resources notification Observation", "Status notification event-notification 8"}},
+			calls: []string{"Notification notification Observation event-notification 8"}},
 		{name: "IG multi-resource", method: "POST", path: "/notify", headers: fhirJSON, body: igFixture(t, "r4-multi-resource.json"), status: 200,
-			calls: []string{"Resources notification Encounter,Patient", "Status notification event-notification 2"}},
+			calls: []string{"Notification notification Encounter,Patient event-notification 2"}},
 		{name: "empty content", method: "POST", path: "/notify", headers: fhirJSON, body: igFixture(t, "r4-empty.json"), status: 200,
 			calls: []string{"Changed notification", "Status notification event-notification 2"}},
 		{name: "focus on a non-FHIR object", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
@@ -297,12 +301,13 @@ func TestHandler(t *testing.T) {
 		{name: "sink fails on resources", method: "POST", path: "/notify", headers: fhirJSON, status: 503,
 			body: r4Notification("event-notification", "8", "https://ehr.example/fhir/Observation/abg-1", obs),
 			sink: func(f *fakeSink) {
-				f.ResourcesFn = func(context.Context, webhook.Source, []json.RawMessage) (webhook.Receipt, error) {
+				f.NotificationFn = func(context.Context, webhook.Source, []json.RawMessage, notify.Notification) (webhook.Receipt, error) {
 					return webhook.Receipt{}, errDisk
 				}
 			},
-			// The status is not recorded, so the counters reveal the loss.
-			calls: []string{"Resources notification Observation"}, diag: "send it again later"},
+			// Nothing of it is recorded, the status neither, so the counters
+			// reveal the loss.
+			calls: []string{"Notification notification Observation event-notification 8"}, diag: "send it again later"},
 		{name: "sink fails on fetch", method: "POST", path: "/notify", headers: fhirJSON, body: igFixture(t, "r4-id-only.json"), status: 503,
 			sink: func(f *fakeSink) {
 				f.FetchFn = func(context.Context, webhook.Source, []string) error { return errDisk }

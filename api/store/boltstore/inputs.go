@@ -63,40 +63,66 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		return results, nil
 	}
 	err := s.batch(ctx, "PutInputs", func(tx *bolt.Tx) error {
-		var changed []string
-		spans := map[string]store.Span{}
-		for i, in := range inputs {
-			if err := checkSubject(in.Subject); err != nil {
-				return fmt.Errorf("input %d: %w", i, err)
-			}
-			if in.Logical == "" {
-				return fmt.Errorf("input %d: empty logical reference", i)
-			}
-			res, touched, err := putInput(tx, in)
-			if err != nil {
-				return fmt.Errorf("input %d: %w", i, err)
-			}
-			results[i] = res
-			for subject, span := range touched {
-				if prev, ok := spans[subject]; ok {
-					span = prev.Merge(span)
-				} else {
-					changed = append(changed, subject)
-				}
-				spans[subject] = span
-			}
-		}
-		for _, subject := range changed {
-			if err := markDirty(tx, subject, now, spans[subject]); err != nil {
-				return err
-			}
-		}
-		return nil
+		return putInputs(tx, inputs, now, results)
 	})
 	if err != nil {
 		return nil, err
 	}
 	return results, nil
+}
+
+// PutNotified writes the inputs and the event counter in one transaction,
+// so a notification's answer costs one commit; the counter cannot be
+// durable without the inputs.
+func (s *Store) PutNotified(ctx context.Context, inputs []store.Input, now time.Time, subscription string, number uint64) ([]store.PutResult, uint64, error) {
+	results := make([]store.PutResult, len(inputs))
+	var prev uint64
+	err := s.batch(ctx, "PutNotified", func(tx *bolt.Tx) error {
+		if err := putInputs(tx, inputs, now, results); err != nil {
+			return err
+		}
+		var err error
+		prev, err = seenEvent(tx, subscription, number)
+		return err
+	})
+	if err != nil {
+		return nil, 0, err
+	}
+	return results, prev, nil
+}
+
+// putInputs applies inputs in order, writing each one's result into
+// results, and marks every changed patient dirty once.
+func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store.PutResult) error {
+	var changed []string
+	spans := map[string]store.Span{}
+	for i, in := range inputs {
+		if err := checkSubject(in.Subject); err != nil {
+			return fmt.Errorf("input %d: %w", i, err)
+		}
+		if in.Logical == "" {
+			return fmt.Errorf("input %d: empty logical reference", i)
+		}
+		res, touched, err := putInput(tx, in)
+		if err != nil {
+			return fmt.Errorf("input %d: %w", i, err)
+		}
+		results[i] = res
+		for subject, span := range touched {
+			if prev, ok := spans[subject]; ok {
+				span = prev.Merge(span)
+			} else {
+				changed = append(changed, subject)
+			}
+			spans[subject] = span
+		}
+	}
+	for _, subject := range changed {
+		if err := markDirty(tx, subject, now, spans[subject]); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // putInput applies one input and returns the subjects whose inputs

@@ -194,18 +194,26 @@ func (s *Store) SetCursor(ctx context.Context, name, value string) error {
 func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
 	var prev uint64
 	err := s.batch(ctx, "SeenEvent", func(tx *bolt.Tx) error {
-		if subscription == "" {
-			return errors.New("empty subscription")
-		}
-		b := tx.Bucket(bSubs)
-		prev = getU64(b, []byte(subscription))
-		if number <= prev {
-			return nil
-		}
-		return b.Put([]byte(subscription), u64(number))
+		var err error
+		prev, err = seenEvent(tx, subscription, number)
+		return err
 	})
 	if err != nil {
 		return 0, err
 	}
 	return prev, nil
+}
+
+// seenEvent raises the subscription's highest event number to number and
+// returns the one it replaces.
+func seenEvent(tx *bolt.Tx, subscription string, number uint64) (uint64, error) {
+	if subscription == "" {
+		return 0, errors.New("empty subscription")
+	}
+	b := tx.Bucket(bSubs)
+	prev := getU64(b, []byte(subscription))
+	if number <= prev {
+		return prev, nil
+	}
+	return prev, b.Put([]byte(subscription), u64(number))
 }

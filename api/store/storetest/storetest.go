@@ -49,6 +49,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Outbox/UnknownWrite", testOutboxUnknown},
 		{"Cursor", testCursor},
 		{"SeenEvent", testSeenEvent},
+		{"PutNotified", testPutNotified},
 		{"Events/OrderAndResume", testEvents},
 		{"Prune", testPrune},
 		{"Context/Canceled", testCanceled},
