@@ -24,9 +24,12 @@ type node struct {
 // "eventsSinceSubscriptionStart" (R5 element, cross-version extension) to
 // one spelling.
 func normName(s string) string {
-	s = strings.ToLower(s)
-	return strings.NewReplacer("-", "", "_", "").Replace(s)
+	return nameFolder.Replace(strings.ToLower(s))
 }
+
+// nameFolder is built once: a Replacer builds its tables on first use,
+// which cost more than the rest of parsing a notification.
+var nameFolder = strings.NewReplacer("-", "", "_", "")
 
 type rawParameters struct {
 	Parameter []json.RawMessage `json:"parameter"`
