@@ -6,9 +6,11 @@ import (
 	"errors"
 	"fmt"
 	"net/url"
+	"strconv"
 	"strings"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
@@ -23,6 +25,29 @@ const cursorSearch = "search.lastUpdated"
 // fewer, and only a missing next link ends a search.
 const searchPage = 100
 
+// DefaultJobLease is Config.JobLease when unset: a replica that dies
+// while polling is replaced within about this long.
+const DefaultJobLease = 30 * time.Second
+
+// leaseCatchUp names the lease under which one replica of several polls,
+// catches up and registers the subscription.
+const leaseCatchUp = "catch-up"
+
+// cursorRequested is where a replica that does not hold the lease leaves a
+// catch-up it was asked for (a gap, an empty rest-hook, silence) for the
+// replica that does: "<trigger> <unique stamp>".
+const cursorRequested = "catch-up.requested"
+
+// jobLease is this replica's standing under the catch-up lease when the
+// store is shared by replicas.
+type jobLease struct {
+	rep   store.Replicated
+	lease store.Lease
+	held  bool
+	// seen is the last forwarded request this replica has acted on.
+	seen string
+}
+
 func (e *Engine) catchUpLoop(ctx context.Context) {
 	var poll <-chan time.Time
 	if e.cfg.PollInterval > 0 {
@@ -35,6 +60,22 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 		t := time.NewTicker(e.cfg.HeartbeatTimeout / 2)
 		defer t.Stop()
 		heartbeat = t.C
+	}
+	// With a store shared by replicas, the jobs run on the replica holding
+	// the lease; the others renew nothing, forward what they are asked
+	// for, and try the lease again every third of its length, so one of
+	// them takes over soon after the holder dies. With a store of its own
+	// the replica runs them all, as the only one.
+	var jl *jobLease
+	var renew <-chan time.Time
+	if rep, shared := e.cfg.Store.(store.Replicated); shared {
+		jl = &jobLease{rep: rep}
+		t := time.NewTicker(e.cfg.JobLease / 3)
+		defer t.Stop()
+		renew = t.C
+		defer e.releaseJobLease(ctx, jl)
+	} else {
+		e.register(ctx)
 	}
 	for {
 		trigger := ""
@@ -52,8 +93,20 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 				continue
 			}
 			trigger = "heartbeat-missed"
+		case <-renew:
 		}
-		if err := e.CatchUp(ctx, trigger); err != nil && ctx.Err() == nil {
+		if jl != nil {
+			trigger = e.underLease(ctx, jl, trigger)
+		}
+		if trigger == "" {
+			continue
+		}
+		err := e.catchUp(ctx, trigger, jl)
+		switch {
+		case err == nil || ctx.Err() != nil:
+		case errors.Is(err, store.ErrLeaseHeld):
+			e.log.InfoContext(ctx, "another replica took over polling and catch-up during a search; it searches again from the cursor", "err", err)
+		default:
 			e.log.WarnContext(ctx, "catch-up search failed; will try again", "trigger", trigger, "err", err)
 			go func() {
 				if sleep(ctx, 5*time.Second) {
@@ -64,12 +117,95 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 	}
 }
 
+// underLease takes or renews the catch-up lease and says which catch-up,
+// if any, this replica runs now: trigger when it holds the lease, "start"
+// when it has just taken the lease over (a new holder searches from the
+// shared cursor, which covers whatever its predecessor left), a request
+// another replica forwarded, or "" when another replica holds the lease
+// (a trigger that names something only this replica saw is forwarded to
+// the holder).
+func (e *Engine) underLease(ctx context.Context, jl *jobLease, trigger string) string {
+	l, err := jl.rep.AcquireLease(ctx, leaseCatchUp, e.cfg.JobLease)
+	if err != nil {
+		if jl.held && ctx.Err() == nil {
+			e.log.WarnContext(ctx, "this replica no longer holds the polling and catch-up lease", "err", err)
+		}
+		jl.held = false
+		if !errors.Is(err, store.ErrLeaseHeld) {
+			if ctx.Err() == nil {
+				e.log.WarnContext(ctx, "could not take or renew the polling and catch-up lease", "err", err)
+			}
+			return ""
+		}
+		switch trigger {
+		case "", "start", "poll", "retry":
+			// The holder starts, polls and retries on its own.
+		default:
+			req := trigger + " " + strconv.FormatInt(e.now().UnixNano(), 10)
+			if err := e.cfg.Store.SetCursor(ctx, cursorRequested, req); err != nil && ctx.Err() == nil {
+				e.log.WarnContext(ctx, "could not pass a catch-up request to the replica that polls", "trigger", trigger, "err", err)
+			}
+		}
+		return ""
+	}
+	took := !jl.held || l.Epoch != jl.lease.Epoch
+	jl.lease, jl.held = l, true
+	req, err := e.cfg.Store.Cursor(ctx, cursorRequested)
+	if err != nil {
+		e.log.WarnContext(ctx, "could not read the forwarded catch-up requests", "err", err)
+		req = jl.seen
+	}
+	forwarded := req != jl.seen
+	jl.seen = req
+	if took {
+		e.log.InfoContext(ctx, "this replica now polls, catches up and registers the subscription", "epoch", l.Epoch)
+		e.register(ctx)
+		return "start"
+	}
+	if trigger == "" && forwarded {
+		trigger, _, _ = strings.Cut(req, " ")
+	}
+	return trigger
+}
+
+// releaseJobLease gives the lease up on shutdown, so another replica takes
+// the jobs over at once rather than after the lease lapses.
+func (e *Engine) releaseJobLease(ctx context.Context, jl *jobLease) {
+	if !jl.held {
+		return
+	}
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+	defer cancel()
+	if err := jl.rep.ReleaseLease(ctx, leaseCatchUp); err != nil {
+		e.log.WarnContext(ctx, "could not release the polling and catch-up lease; another replica takes over when it lapses", "err", err)
+	}
+}
+
+// register runs the registration hook, if any; a failure is logged, and
+// polling and catch-up still run.
+func (e *Engine) register(ctx context.Context) {
+	if e.cfg.Register == nil {
+		return
+	}
+	if err := e.cfg.Register(ctx); err != nil && ctx.Err() == nil {
+		e.log.ErrorContext(ctx, "registering the subscription failed; polling and catch-up still run", "err", err)
+	}
+}
+
 // CatchUp searches the server for recognised Observations updated since the
 // cursor, less the overlap, and ingests them. The cursor moves only after
 // everything found is stored, and searches use ge, not gt, so an equal
 // timestamp is never skipped; ingest is idempotent, so the overlap costs
 // only a re-read.
 func (e *Engine) CatchUp(ctx context.Context, trigger string) error {
+	return e.catchUp(ctx, trigger, nil)
+}
+
+// catchUp is CatchUp, under the catch-up lease when jl is not nil: the
+// lease is renewed with every page taken in, and the cursor moves only in
+// the epoch the search began in, so a replica that lost the lease midway
+// stops and leaves the cursor to the new holder.
+func (e *Engine) catchUp(ctx context.Context, trigger string, jl *jobLease) error {
 	if e.cfg.Client == nil {
 		return nil
 	}
@@ -104,7 +240,19 @@ func (e *Engine) CatchUp(ctx context.Context, trigger string) error {
 		}
 		_, err := e.Ingest(ctx, "poll", batch)
 		batch = batch[:0]
-		return err
+		if err != nil || jl == nil {
+			return err
+		}
+		l, err := jl.rep.AcquireLease(ctx, leaseCatchUp, e.cfg.JobLease)
+		if err == nil && l.Epoch != jl.lease.Epoch {
+			err = fmt.Errorf("%w: the lease changed hands during the search (epoch %d, now %d)", store.ErrLeaseHeld, jl.lease.Epoch, l.Epoch)
+		}
+		if err != nil {
+			jl.held = false
+			return err
+		}
+		jl.lease = l
+		return nil
 	}
 	found := 0
 	err = e.cfg.Client.Search(ctx, "Observation", q, func(entry json.RawMessage) error {
@@ -142,7 +290,13 @@ func (e *Engine) CatchUp(ctx context.Context, trigger string) error {
 	}
 	e.serverAnswered()
 	if !latest.IsZero() {
-		if err := e.cfg.Store.SetCursor(ctx, cursorSearch, latest.UTC().Format(time.RFC3339Nano)); err != nil {
+		set := func() error { return e.cfg.Store.SetCursor(ctx, cursorSearch, latest.UTC().Format(time.RFC3339Nano)) }
+		if jl != nil {
+			set = func() error {
+				return jl.rep.SetCursorUnderLease(ctx, jl.lease, cursorSearch, latest.UTC().Format(time.RFC3339Nano))
+			}
+		}
+		if err := set(); err != nil {
 			return fmt.Errorf("engine: catch-up: %w", err)
 		}
 	}

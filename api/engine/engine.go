@@ -93,6 +93,16 @@ type Config struct {
 	// HeartbeatTimeout triggers a catch-up when no notification arrived for
 	// that long; zero disables it.
 	HeartbeatTimeout time.Duration
+	// JobLease is how long one replica keeps the right to poll, catch up
+	// and register the subscription, and its claim on a patient it is
+	// evaluating, when the store is shared by replicas (store.Replicated):
+	// another replica takes these over within about this long after the
+	// holder died. DefaultJobLease when zero.
+	JobLease time.Duration
+	// Register, when set, is run by the replica that polls each time it
+	// takes the jobs over (once at start with a store of one replica): it
+	// creates or re-activates the rest-hook Subscription.
+	Register func(ctx context.Context) error
 	// SearchCodes are the "system|code" tokens polling searches for.
 	SearchCodes []string
 	// MaxTransactionEntries caps the entries of one transaction; zero means
@@ -131,8 +141,8 @@ type Engine struct {
 	catch chan string   // catch-up wanted, with the trigger
 
 	// evaluating holds one lock per patient being evaluated: evaluations
-	// of one patient never overlap in this process (the store's
-	// compare-and-swap commit covers other processes).
+	// of one patient never overlap in this process (the claim on a shared
+	// store, and the compare-and-swap commit, cover other replicas).
 	evaluating sync.Map // subject → *sync.Mutex
 
 	pictures *pictures // what the derivations leave out, kept complete
@@ -184,6 +194,9 @@ func New(cfg Config) (*Engine, error) {
 	}
 	if cfg.Overlap <= 0 {
 		cfg.Overlap = 5 * time.Minute
+	}
+	if cfg.JobLease <= 0 {
+		cfg.JobLease = DefaultJobLease
 	}
 	if cfg.ProvenanceTagSystem == "" {
 		cfg.ProvenanceTagSystem = DefaultProvenanceTagSystem

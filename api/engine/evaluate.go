@@ -185,7 +185,8 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) time.Duration {
 
 // evaluatePatient re-derives one patient and commits what changed. It
 // holds the patient's lock, so evaluations of one patient never overlap in
-// this process; the commit states what it read of every series it writes,
+// this process, and on a store shared by replicas its claim on the patient
+// (claimPatient), so they do not overlap across replicas either; the commit states what it read of every series it writes,
 // so an evaluation by another process that committed first makes this one
 // fail with a conflict, and the patient is evaluated again from what is
 // stored now.
@@ -193,7 +194,14 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	lock, _ := e.evaluating.LoadOrStore(d.Subject, new(sync.Mutex))
 	lock.(*sync.Mutex).Lock()
 	defer lock.(*sync.Mutex).Unlock()
-	err := e.evaluateLocked(ctx, d)
+	d, claimed, err := e.claimPatient(ctx, d)
+	if err != nil || !claimed {
+		return err
+	}
+	err = e.evaluateLocked(ctx, d)
+	if err != nil {
+		e.unclaimPatient(ctx, d.Subject)
+	}
 	if errors.Is(err, store.ErrConflict) {
 		e.log.InfoContext(ctx, "another evaluation of the patient committed first; evaluating again")
 		if merr := e.cfg.Store.MarkDirty(ctx, d.Subject, e.now()); merr != nil {

@@ -116,6 +116,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, SearchCodes: search, Logger: log,
 		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
+		JobLease: cfg.JobLease, Register: s.registerHook(),
 	})
 	if err != nil {
 		s.store.Close()
@@ -273,30 +274,6 @@ func openStore(cfg Config) (serviceStore, error) {
 	return ps, nil
 }
 
-// registrationLease is how long one replica keeps the right to register
-// the Subscription; replicas that start together register it once.
-const registrationLease = 5 * time.Minute
-
-// mayRegister says whether this replica registers the Subscription: always
-// with the embedded store (one replica), and with PostgreSQL only the
-// replica that holds the registration lease, so replicas starting together
-// do not create it twice.
-func (s *Service) mayRegister(ctx context.Context) bool {
-	ps, ok := s.store.(*pgstore.Store)
-	if !ok {
-		return true
-	}
-	if _, err := ps.AcquireLease(ctx, "register-subscription", registrationLease); err != nil {
-		if errors.Is(err, pgstore.ErrLeaseHeld) {
-			s.log.InfoContext(ctx, "another replica registers the subscription")
-		} else {
-			s.log.ErrorContext(ctx, "could not take the registration lease; not registering", "err", err)
-		}
-		return false
-	}
-	return true
-}
-
 // observeFHIR feeds every FHIR request to the metrics and to readiness.
 func (s *Service) observeFHIR(op string, status int, dur time.Duration) {
 	s.up.observe(op, status, dur)
@@ -335,11 +312,6 @@ func (s *Service) Engine() *engine.Engine { return s.engine }
 // Run serves until ctx is done, then stops taking input, lets in-flight
 // requests finish, stops the engine and closes the store.
 func (s *Service) Run(ctx context.Context) error {
-	if s.cfg.Register && s.mayRegister(ctx) {
-		if err := s.register(ctx); err != nil {
-			s.log.ErrorContext(ctx, "registering the subscription failed; polling and catch-up still run", "err", err)
-		}
-	}
 	s.publishCodeSystem(ctx)
 	engineCtx, stopEngine := context.WithCancel(context.WithoutCancel(ctx))
 	var wg sync.WaitGroup
@@ -487,6 +459,18 @@ func invalid(err error) error {
 		return fmt.Errorf("%w: %w", webhook.ErrInvalid, err)
 	}
 	return err
+}
+
+// registerHook is what the engine runs to register the Subscription, when
+// --register-subscription asks for it: the engine runs it on the replica
+// that polls, each time a replica takes polling over (once at start with
+// the embedded store), so replicas starting together register it once and
+// a replica taking over from a dead one checks it is still active.
+func (s *Service) registerHook() func(context.Context) error {
+	if !s.cfg.Register {
+		return nil
+	}
+	return s.register
 }
 
 // register creates the rest-hook Subscription on the FHIR server, or finds

@@ -117,6 +117,35 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 	return out, nil
 }
 
+// ClaimPatient claims one dirty patient for this replica for ttl, unless
+// another replica holds an unexpired claim on it; a claim this replica
+// holds already is renewed. ok is false when another replica holds it or
+// the patient is no longer dirty. The row lock of the UPDATE makes two
+// replicas claiming at once agree: the second sees the first's claim.
+// Commit ends the claim (settleDirty); ReleaseClaim gives it up.
+func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Duration) (store.Dirty, bool, error) {
+	if ttl <= 0 {
+		return store.Dirty{}, false, fmt.Errorf("pgstore.ClaimPatient: ttl %v must be positive", ttl)
+	}
+	rows, err := s.pool.Query(ctx, `
+		UPDATE dirty
+		   SET claimed_by = $2, claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
+		 WHERE subject = $1 AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
+		RETURNING subject, since_ns, generation, from_ns, urgent`,
+		subject, s.holder, ttl.Microseconds())
+	if err != nil {
+		return store.Dirty{}, false, wrap("ClaimPatient", err)
+	}
+	out, err := pgx.CollectRows(rows, scanDirty)
+	if err != nil {
+		return store.Dirty{}, false, wrap("ClaimPatient", err)
+	}
+	if len(out) == 0 {
+		return store.Dirty{}, false, nil
+	}
+	return out[0], true, nil
+}
+
 // ReleaseClaim gives up this replica's claim on a patient that stays dirty
 // (an evaluation that failed or was put off), so that any replica may take
 // it at once. Commit releases the claim itself.

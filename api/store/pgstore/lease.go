@@ -7,25 +7,20 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
 )
 
 // ErrLeaseHeld means another replica holds the lease and it has not
-// expired.
-var ErrLeaseHeld = errors.New("pgstore: lease held by another replica")
+// expired (store.ErrLeaseHeld).
+var ErrLeaseHeld = store.ErrLeaseHeld
 
 // Lease is a named right to run a job that only one replica may run at a
-// time (polling, catch-up, subscription registration).
-type Lease struct {
-	Name   string
-	Holder string
-	// Expires is when the lease lapses unless renewed, on the database's
-	// clock.
-	Expires time.Time
-	// Epoch rises every time the lease changes hands. A job can carry it
-	// as a fencing token: work stamped with an older epoch was done by a
-	// holder that has since lost the lease.
-	Epoch int64
-}
+// time (polling, catch-up, subscription registration); see store.Lease.
+type Lease = store.Lease
+
+// The store offers what replicas need to share work.
+var _ store.Replicated = (*Store)(nil)
 
 // AcquireLease takes the named lease for this replica for ttl, or renews it
 // when this replica already holds it. A lease another replica holds is
@@ -82,6 +77,29 @@ func (s *Store) ReleaseLease(ctx context.Context, name string) error {
 	_, err := s.pool.Exec(ctx, `UPDATE leases SET expires_at = clock_timestamp() WHERE name = $1 AND holder = $2`, name, s.holder)
 	if err != nil {
 		return wrap(fmt.Sprintf("release lease %q", name), err)
+	}
+	return nil
+}
+
+// SetCursorUnderLease sets a cursor only while this replica holds the
+// lease in the epoch l names and it has not expired, in one statement, so
+// a holder that lost the lease (a stalled replica whose lease was taken
+// over) cannot move a cursor its successor now owns.
+func (s *Store) SetCursorUnderLease(ctx context.Context, l Lease, name, value string) error {
+	if name == "" || value == "" {
+		return fmt.Errorf("pgstore.SetCursorUnderLease: cursor name %q and value %q must not be empty", name, value)
+	}
+	tag, err := s.pool.Exec(ctx, `
+		INSERT INTO cursors (name, value)
+		SELECT $1, $2 FROM leases
+		 WHERE name = $3 AND holder = $4 AND epoch = $5 AND expires_at > clock_timestamp()
+		ON CONFLICT (name) DO UPDATE SET value = EXCLUDED.value`,
+		name, value, l.Name, s.holder, l.Epoch)
+	if err != nil {
+		return wrap(fmt.Sprintf("set cursor %q under lease %q", name, l.Name), err)
+	}
+	if tag.RowsAffected() == 0 {
+		return fmt.Errorf("%w: cursor %q not set: lease %q (epoch %d) is no longer this replica's", ErrLeaseHeld, name, l.Name, l.Epoch)
 	}
 	return nil
 }

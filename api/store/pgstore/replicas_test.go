@@ -222,3 +222,92 @@ func TestOutboxSeriesOrderAcrossReplicas(t *testing.T) {
 		t.Fatalf("B after A acknowledged the first: %v, want s's revision and t", bodies)
 	}
 }
+
+// ClaimPatient gives one patient to one replica at a time: another replica
+// is refused while the claim holds, the holder renews it, a commit or a
+// release ends it, a lapsed claim is taken over, and a patient that is no
+// longer dirty is not claimed at all.
+func TestClaimPatient(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	const subj = "Patient/p"
+	claim := func(s *Store, ttl time.Duration) (store.Dirty, bool) {
+		t.Helper()
+		d, ok, err := s.ClaimPatient(ctx, subj, ttl)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return d, ok
+	}
+	if _, ok := claim(a, time.Minute); ok {
+		t.Fatal("claimed a patient that is not dirty")
+	}
+	if err := a.MarkDirty(ctx, subj, t0); err != nil {
+		t.Fatal(err)
+	}
+	d, ok := claim(a, time.Minute)
+	if !ok || d.Subject != subj || d.Generation == 0 {
+		t.Fatalf("A's claim: %+v %v", d, ok)
+	}
+	if _, ok := claim(b, time.Minute); ok {
+		t.Fatal("B claimed the patient A holds")
+	}
+	if _, ok := claim(a, time.Minute); !ok {
+		t.Fatal("A could not renew its own claim")
+	}
+	if err := a.ReleaseClaim(ctx, subj); err != nil {
+		t.Fatal(err)
+	}
+	d, ok = claim(b, 100*time.Millisecond)
+	if !ok {
+		t.Fatal("B could not claim the patient A released")
+	}
+	time.Sleep(150 * time.Millisecond) // B's claim lapses on the database's clock
+	d, ok = claim(a, time.Minute)
+	if !ok {
+		t.Fatal("A could not take over B's lapsed claim")
+	}
+	if err := a.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, t0.Add(time.Second)); err != nil {
+		t.Fatal(err)
+	}
+	if _, ok := claim(b, time.Minute); ok {
+		t.Fatal("B claimed a patient whose evaluation was committed")
+	}
+}
+
+// A cursor set under a lease moves only while the replica holds the lease
+// in the same epoch: a holder that lost it cannot move its successor's
+// cursor.
+func TestSetCursorUnderLease(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	la, err := a.AcquireLease(ctx, "catch-up", 100*time.Millisecond)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := a.SetCursorUnderLease(ctx, la, "search", "one"); err != nil {
+		t.Fatal(err)
+	}
+	if err := b.SetCursorUnderLease(ctx, la, "search", "b-without-the-lease"); !errors.Is(err, ErrLeaseHeld) {
+		t.Fatalf("B without the lease: err %v, want ErrLeaseHeld", err)
+	}
+	waitExpired(t, b, la.Expires)
+	if err := a.SetCursorUnderLease(ctx, la, "search", "after-expiry"); !errors.Is(err, ErrLeaseHeld) {
+		t.Fatalf("A after its lease lapsed: err %v, want ErrLeaseHeld", err)
+	}
+	lb, err := b.AcquireLease(ctx, "catch-up", time.Minute)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := b.SetCursorUnderLease(ctx, lb, "search", "two"); err != nil {
+		t.Fatal(err)
+	}
+	if err := a.SetCursorUnderLease(ctx, la, "search", "stale"); !errors.Is(err, ErrLeaseHeld) {
+		t.Fatalf("A with its old epoch: err %v, want ErrLeaseHeld", err)
+	}
+	if v, err := a.Cursor(ctx, "search"); err != nil || v != "two" {
+		t.Fatalf("cursor %q %v, want the new holder's", v, err)
+	}
+}
