@@ -247,6 +247,12 @@ type Store interface {
 	// when the patient's generation is still change.Generation. Otherwise
 	// the patient stays dirty and its Since becomes now: the changes that
 	// arrived during the evaluation have waited only since it ended.
+	//
+	// A change with no entries, results, writes or expectations (an
+	// evaluation that changed nothing) only clears the mark; the store may
+	// make that clear durable later, with its next synced write, since
+	// losing it in a crash costs only one more evaluation. It is visible
+	// at once to DirtyPatients and Stats.
 	Commit(ctx context.Context, change Change, now time.Time) error
 
 	// Ledger returns a patient's ledger entries, in Series order.

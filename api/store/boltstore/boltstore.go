@@ -95,8 +95,9 @@ type Options struct {
 
 // Store is the bbolt implementation of [store.Store].
 type Store struct {
-	db    *bolt.DB
-	group *groupCommit
+	db     *bolt.DB
+	group  *groupCommit
+	clears pendingClears
 }
 
 var (
@@ -274,8 +275,15 @@ func migrate(tx *bolt.Tx, from uint64) error {
 
 // Close releases the file. It waits for transactions in progress.
 func (s *Store) Close() error {
+	// The clears held back are written now; losing them would only cost
+	// evaluations after the next start, so a failure here does not stop
+	// the close.
+	ferr := s.flushClears()
 	if err := s.db.Close(); err != nil {
 		return fmt.Errorf("boltstore.Close: %w", err)
+	}
+	if ferr != nil {
+		return fmt.Errorf("boltstore.Close: %w", ferr)
 	}
 	return nil
 }
@@ -286,9 +294,18 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	if err := s.db.Update(fn); err != nil {
+	var settled map[string]uint64
+	err := s.db.Update(func(tx *bolt.Tx) error {
+		var err error
+		if settled, err = s.clears.apply(tx); err != nil {
+			return err
+		}
+		return fn(tx)
+	})
+	if err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
+	s.clears.forget(settled)
 	return nil
 }
 
@@ -301,9 +318,18 @@ func (s *Store) batch(ctx context.Context, op string, fn func(tx *bolt.Tx) error
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	if err := s.group.do(fn); err != nil {
+	var settled map[string]uint64
+	err := s.group.do(func(tx *bolt.Tx) error {
+		var err error
+		if settled, err = s.clears.apply(tx); err != nil {
+			return err
+		}
+		return fn(tx)
+	})
+	if err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
+	s.clears.forget(settled)
 	return nil
 }
 

@@ -508,3 +508,45 @@ func TestSchemaOneMigratesTheOwnerIndex(t *testing.T) {
 		t.Errorf("Owner of an unknown input: %v, want ErrNotFound", err)
 	}
 }
+
+// An empty commit's clear is held in memory (no fsync of its own) and
+// written by the next synced transaction or by Close: after a clean
+// restart the patient is not evaluated again, and a clear that the next
+// write carried survives too.
+func TestEmptyCommitClearSurvivesRestart(t *testing.T) {
+	t.Parallel()
+	path := filepath.Join(t.TempDir(), "deadspace.db")
+	ctx := t.Context()
+	s := openAt(t, path)
+	for _, subject := range []string{"Patient/a", "Patient/b"} {
+		if err := s.MarkDirty(ctx, subject, t0); err != nil {
+			t.Fatal(err)
+		}
+	}
+	ds, err := s.DirtyPatients(ctx)
+	if err != nil || len(ds) != 2 {
+		t.Fatalf("DirtyPatients = %v, %v", ds, err)
+	}
+	for _, d := range ds {
+		if err := s.Commit(ctx, store.Change{Subject: d.Subject, Generation: d.Generation}, t0); err != nil {
+			t.Fatal(err)
+		}
+		if d.Subject == "Patient/a" {
+			// A later write carries the clear of Patient/a.
+			if err := s.SetCursor(ctx, "poll", "x"); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if err := s.Close(); err != nil {
+		t.Fatal(err)
+	}
+	s = openAt(t, path)
+	defer s.Close()
+	if ds, err := s.DirtyPatients(ctx); err != nil || len(ds) != 0 {
+		t.Errorf("after a restart: DirtyPatients = %+v, %v; want none", ds, err)
+	}
+	if st, err := s.Stats(ctx); err != nil || st.DirtyPatients != 0 {
+		t.Errorf("after a restart: Stats = %+v, %v; want no dirty patient", st, err)
+	}
+}

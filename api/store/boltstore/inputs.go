@@ -331,6 +331,9 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 			if err != nil {
 				return err
 			}
+			if s.clears.hidden(dt) {
+				return nil // cleared by an evaluation, written later
+			}
 			out = append(out, dt)
 			return nil
 		})

@@ -17,6 +17,12 @@ import (
 // one by one inside it, so an invalid entry after valid ones rolls back
 // everything before it.
 func (s *Store) Commit(ctx context.Context, change store.Change, now time.Time) error {
+	if emptyChange(change) {
+		// Nothing but the dirty mark to clear: no fsync of its own.
+		if done, err := s.clearLater(ctx, change); err != nil || done {
+			return err
+		}
+	}
 	return s.batch(ctx, "Commit", func(tx *bolt.Tx) error {
 		if err := checkSubject(change.Subject); err != nil {
 			return err

@@ -152,6 +152,13 @@ func (s *Store) Stats(ctx context.Context) (store.Stats, error) {
 		st.OutboxDepth = int(getU64(meta, kOutboxN))
 		st.DeadLetters = int(getU64(meta, kDeadN))
 		st.DirtyPatients = int(getU64(meta, kDirtyN))
+		for subject, gen := range s.clears.snapshot() {
+			if v := tx.Bucket(bDirty).Get([]byte(subject)); v != nil {
+				if dt, err := decodeDirty(subject, v); err == nil && dt.Generation == gen {
+					st.DirtyPatients = max(st.DirtyPatients-1, 0)
+				}
+			}
+		}
 		k, v := tx.Bucket(bOutbox).Cursor().First()
 		if k == nil {
 			return nil

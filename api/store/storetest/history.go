@@ -197,3 +197,48 @@ func mustDirty(t *testing.T, s store.Store, subject string) store.Dirty {
 	}
 	return d
 }
+
+// An evaluation that changed nothing commits an empty change: the mark is
+// cleared at once for DirtyPatients and Stats (the store may write the
+// clear later, store.Store.Commit), and a change after it starts a new
+// mark of its own: its Since, From and urgency, not the cleared one's.
+func testEmptyCommit(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	gas := input("Patient/e", "Observation/e1", "1", t0, t0, "x")
+	gas.ChangedAt, gas.Urgent = t0, true
+	put(t, s, t0, gas)
+	must(t, s.MarkDirty(ctx, "Patient/f", t0))
+	d := mustDirty(t, s, "Patient/e")
+	must(t, s.Commit(ctx, store.Change{Subject: "Patient/e", Generation: d.Generation, Expect: map[string]store.Expect{}}, t0.Add(time.Second)))
+	if d, ok := dirtyOf(t, s, "Patient/e"); ok {
+		t.Fatalf("still dirty after an empty commit of its generation: %+v", d)
+	}
+	wantStats(t, s, store.Stats{DirtyPatients: 1})
+
+	later := input("Patient/e", "Observation/e2", "1", t0, t0.Add(time.Hour), "y")
+	later.ChangedAt = t0.Add(time.Hour)
+	put(t, s, t0.Add(time.Minute), later)
+	again := mustDirty(t, s, "Patient/e")
+	if !again.Since.Equal(t0.Add(time.Minute)) || !again.From.Equal(t0.Add(time.Hour)) || again.Urgent || again.Generation <= d.Generation {
+		t.Errorf("after an empty commit and a new reading: %+v, want Since %v, From %v, not urgent, generation > %d",
+			again, t0.Add(time.Minute), t0.Add(time.Hour), d.Generation)
+	}
+	wantStats(t, s, store.Stats{DirtyPatients: 2})
+
+	// An empty commit of an older generation keeps the mark and restarts
+	// its Since, as any commit does.
+	must(t, s.Commit(ctx, store.Change{Subject: "Patient/e", Generation: d.Generation}, t0.Add(2*time.Minute)))
+	if kept := mustDirty(t, s, "Patient/e"); kept.Generation != again.Generation || !kept.Since.Equal(t0.Add(2*time.Minute)) {
+		t.Errorf("after an empty commit of an older generation: %+v, want generation %d and Since %v", kept, again.Generation, t0.Add(2*time.Minute))
+	}
+	// Other writes after an empty commit keep the patient clear.
+	f := mustDirty(t, s, "Patient/f")
+	must(t, s.Commit(ctx, store.Change{Subject: "Patient/f", Generation: f.Generation}, t0.Add(3*time.Minute)))
+	must(t, s.SetCursor(ctx, "c", "v"))
+	must(t, s.MarkDirty(ctx, "Patient/g", t0.Add(4*time.Minute)))
+	if d, ok := dirtyOf(t, s, "Patient/f"); ok {
+		t.Errorf("Patient/f dirty again after unrelated writes: %+v", d)
+	}
+	wantStats(t, s, store.Stats{DirtyPatients: 2})
+}

@@ -62,6 +62,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"EntryVersion/Superseded", testEntryVersion},
 		{"PruneHistory", testPruneHistory},
 		{"Dirty/SpanAndUrgency", testDirtySpan},
+		{"Commit/EmptyClearsMark", testEmptyCommit},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
