@@ -144,6 +144,9 @@ type Engine struct {
 	// of one patient never overlap in this process (the claim on a shared
 	// store, and the compare-and-swap commit, cover other replicas).
 	evaluating sync.Map // subject → *sync.Mutex
+	// evaluators is how many patients the evaluation loop evaluates at
+	// once.
+	evaluators int
 
 	pictures *pictures // what the derivations leave out, kept complete
 
@@ -211,7 +214,7 @@ func New(cfg Config) (*Engine, error) {
 		cfg.Now = time.Now
 	}
 	return &Engine{
-		cfg: cfg, log: cfg.Logger, now: cfg.Now,
+		cfg: cfg, log: cfg.Logger, now: cfg.Now, evaluators: defaultEvaluators,
 		wake: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
 		pictures: newPictures(),
 	}, nil

@@ -27,8 +27,8 @@ const (
 	statusWithdrawn = "entered-in-error"
 )
 
-// evaluators is how many patients are evaluated at once.
-var evaluators = max(2, runtime.NumCPU())
+// defaultEvaluators is how many patients are evaluated at once.
+var defaultEvaluators = max(2, runtime.NumCPU())
 
 // EntryPayload is the engine's encoding of one ledger entry: the value's
 // code and the version of the result (derivation or fall) it belongs to,
@@ -94,19 +94,109 @@ func (e *Engine) loadResult(ctx context.Context, p *EntryPayload) error {
 	return nil
 }
 
+// evaluateLoop hands dirty patients to up to evaluators concurrent
+// evaluations. It lists the dirty patients again before each hand-out
+// when anything changed since the last listing (an ingest woke it, an
+// evaluation ended), so a patient whose new data includes a blood gas,
+// which the store lists first, is the next one evaluated even while a long
+// queue of patients with device readings only is being worked through.
+// A patient already being evaluated is not handed out again: the changes
+// that arrive meanwhile leave it dirty with a newer generation, and it is
+// evaluated once more after, however many arrived.
 func (e *Engine) evaluateLoop(ctx context.Context) {
+	type outcome struct {
+		subject string
+		failed  bool
+	}
+	evaluators := e.evaluators
+	done := make(chan outcome, evaluators)
+	running := make(map[string]bool)
+	// held are patients whose evaluation failed, not retried before then.
+	held := make(map[string]time.Time)
+	var queue []store.Dirty
+	relist := true
+	timer := time.NewTimer(0)
+	defer timer.Stop()
 	for {
-		wait := e.evaluateDue(ctx, false)
-		t := time.NewTimer(wait)
+		if len(running) < evaluators && relist {
+			var wait time.Duration
+			queue, wait = e.due(ctx, running, held)
+			relist = false
+			timer.Reset(wait)
+		}
+		if len(running) < evaluators && len(queue) > 0 && ctx.Err() == nil {
+			d := queue[0]
+			queue = queue[1:]
+			running[d.Subject] = true
+			go func() {
+				err := e.evaluatePatient(ctx, d)
+				if err != nil && ctx.Err() == nil {
+					e.log.ErrorContext(ctx, "evaluation failed; it stays pending", "err", err)
+				}
+				done <- outcome{d.Subject, err != nil}
+			}()
+			continue
+		}
 		select {
 		case <-ctx.Done():
-			t.Stop()
+			// Every evaluation in progress ends (committed, or abandoned
+			// before its commit) before the loop returns.
+			for range len(running) {
+				<-done
+			}
 			return
+		case o := <-done:
+			delete(running, o.subject)
+			if o.failed {
+				held[o.subject] = e.now().Add(5 * time.Second)
+			}
+			// The patient may be dirty again (changes that arrived during
+			// its evaluation), and a blood gas may have arrived since the
+			// listing: list again before the next hand-out.
+			relist = true
 		case <-e.wake:
-		case <-t.C:
+			relist = true
+		case <-timer.C:
+			relist = true
 		}
-		t.Stop()
 	}
+}
+
+// due lists the dirty patients that can be evaluated now, in the store's
+// order (blood gases first), leaving out those being evaluated, and
+// returns how long to wait before the next listing is worth making.
+func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]time.Time) ([]store.Dirty, time.Duration) {
+	const idle = time.Minute
+	dirty, err := e.cfg.Store.DirtyPatients(ctx)
+	if err != nil {
+		if ctx.Err() == nil {
+			e.log.ErrorContext(ctx, "listing dirty patients failed", "err", err)
+		}
+		return nil, time.Second
+	}
+	wait := idle
+	now := e.now()
+	for subject, until := range held {
+		if !until.After(now) {
+			delete(held, subject)
+		}
+	}
+	var due []store.Dirty
+	for _, d := range dirty {
+		if until, ok := held[d.Subject]; ok {
+			wait = min(wait, until.Sub(now))
+			continue
+		}
+		if running[d.Subject] {
+			continue
+		}
+		if at := d.Since.Add(e.cfg.Settle); at.After(now) {
+			wait = min(wait, at.Sub(now))
+			continue
+		}
+		due = append(due, d)
+	}
+	return due, max(wait, time.Millisecond)
 }
 
 // EvaluateNow evaluates every dirty patient at once, ignoring the settle
@@ -128,59 +218,6 @@ func (e *Engine) EvaluateNow(ctx context.Context) error {
 		errs = append(errs, err)
 	}
 	return errors.Join(errs...)
-}
-
-// evaluateDue evaluates the dirty patients whose data has settled and
-// returns how long to wait before the next one is due.
-func (e *Engine) evaluateDue(ctx context.Context, all bool) time.Duration {
-	const idle = time.Minute
-	dirty, err := e.cfg.Store.DirtyPatients(ctx)
-	if err != nil {
-		if ctx.Err() == nil {
-			e.log.ErrorContext(ctx, "listing dirty patients failed", "err", err)
-		}
-		return time.Second
-	}
-	wait := idle
-	now := e.now()
-	var due []store.Dirty
-	for _, d := range dirty {
-		if at := d.Since.Add(e.cfg.Settle); !all && at.After(now) {
-			wait = min(wait, at.Sub(now))
-			continue
-		}
-		due = append(due, d)
-	}
-	// Patients are independent, so several are evaluated at once; their
-	// commits share fsyncs through the store's batching.
-	var mu sync.Mutex
-	var wg sync.WaitGroup
-	work := make(chan store.Dirty)
-	for range min(len(due), evaluators) {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			for d := range work {
-				if err := e.evaluatePatient(ctx, d); err != nil {
-					if ctx.Err() == nil {
-						e.log.ErrorContext(ctx, "evaluation failed; it stays pending", "err", err)
-					}
-					mu.Lock()
-					wait = min(wait, 5*time.Second)
-					mu.Unlock()
-				}
-			}
-		}()
-	}
-	for _, d := range due {
-		if ctx.Err() != nil {
-			break
-		}
-		work <- d
-	}
-	close(work)
-	wg.Wait()
-	return max(wait, 10*time.Millisecond)
 }
 
 // evaluatePatient re-derives one patient and commits what changed. It

@@ -1,0 +1,170 @@
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"path/filepath"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+)
+
+// gatedStore records the subject of every commit and holds the commit of
+// one patient until released, so a test can act while that evaluation is
+// in progress.
+type gatedStore struct {
+	store.Store
+	hold    string        // the subject whose first commit is held
+	held    chan struct{} // closed when that commit arrives
+	release chan struct{} // closed to let it go on
+
+	mu      sync.Mutex
+	commits []string
+	once    sync.Once
+}
+
+func (g *gatedStore) Commit(ctx context.Context, c store.Change, now time.Time) error {
+	if c.Subject == g.hold {
+		first := false
+		g.once.Do(func() { first = true })
+		if first {
+			close(g.held)
+			<-g.release
+		}
+	}
+	g.mu.Lock()
+	g.commits = append(g.commits, c.Subject)
+	g.mu.Unlock()
+	return g.Store.Commit(ctx, c, now)
+}
+
+func (g *gatedStore) committed() []string {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	return append([]string(nil), g.commits...)
+}
+
+func reading(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {
+	return json.RawMessage(fmt.Sprintf(`{"resourceType":"Observation","id":"%s","meta":{"versionId":"1","lastUpdated":"%s"},"status":"final",`+
+		`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"effectiveDateTime":"%s",`+
+		`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
+		id, at.UTC().Format(time.RFC3339), code, subject, at.UTC().Format(time.RFC3339), v, unit, unit))
+}
+
+// scheduleEngine is a standalone engine over a gated store, evaluating one
+// patient at a time so the order of evaluations is the order of hand-outs.
+func scheduleEngine(t *testing.T, hold string) (*Engine, *gatedStore) {
+	t.Helper()
+	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { st.Close() })
+	g := &gatedStore{Store: st, hold: hold, held: make(chan struct{}), release: make(chan struct{})}
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	eng, err := New(Config{Store: g, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	eng.evaluators = 1
+	return eng, g
+}
+
+// run runs the engine until the test ends.
+func run(t *testing.T, eng *Engine) {
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		_ = eng.Run(ctx)
+	}()
+	t.Cleanup(func() {
+		cancel()
+		<-done
+	})
+}
+
+// settled waits until no patient is dirty (the wait is a bound on a hang,
+// not a timing under test).
+func settled(t *testing.T, eng *Engine) {
+	t.Helper()
+	deadline := time.Now().Add(time.Minute)
+	for time.Now().Before(deadline) {
+		h, err := eng.Health(t.Context())
+		if err == nil && h.Stats.DirtyPatients == 0 {
+			return
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+	t.Fatal("patients still dirty after a minute")
+}
+
+// A blood gas that arrives while a queue of patients with device readings
+// only is being evaluated is evaluated next, before the rest of the queue
+// (issue 9, item 1).
+func TestBloodGasJumpsTheQueue(t *testing.T) {
+	t.Parallel()
+	now := time.Now().UTC().Truncate(time.Minute)
+	eng, g := scheduleEngine(t, "Patient/d0")
+	ctx := t.Context()
+	// Ten patients with a new end-tidal reading each: d0 is the oldest
+	// mark, so it is evaluated first and its commit is held.
+	for p := range 10 {
+		subject := fmt.Sprintf("Patient/d%d", p)
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	run(t, eng)
+	<-g.held
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
+		t.Fatal(err)
+	}
+	close(g.release)
+	settled(t, eng)
+	got := g.committed()
+	if len(got) != 11 {
+		t.Fatalf("commits %v, want one per patient (11)", got)
+	}
+	if got[0] != "Patient/d0" || got[1] != "Patient/gas" {
+		t.Errorf("evaluation order %v: want the blood gas's patient right after the evaluation in progress", got)
+	}
+}
+
+// Notifications for a patient that arrive while its evaluation runs lead
+// to one more evaluation, not one each.
+func TestChangesDuringAnEvaluationCoalesce(t *testing.T) {
+	t.Parallel()
+	now := time.Now().UTC().Truncate(time.Minute)
+	eng, g := scheduleEngine(t, "Patient/a")
+	ctx := t.Context()
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/a", "a0", "19891-1", "mm[Hg]", 36, now.Add(-10*time.Minute))}); err != nil {
+		t.Fatal(err)
+	}
+	run(t, eng)
+	<-g.held
+	for i := range 5 {
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/a", fmt.Sprintf("a%d", i+1), "19891-1", "mm[Hg]", 36, now.Add(time.Duration(i-9)*time.Minute))}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	close(g.release)
+	settled(t, eng)
+	if got := g.committed(); len(got) != 2 {
+		t.Errorf("commits %v: want the evaluation in progress and one more for the five changes during it", got)
+	}
+	n, err := eng.InputCount(ctx, "Patient/a")
+	if err != nil || n != 6 {
+		t.Errorf("inputs stored: %d, %v; want 6", n, err)
+	}
+}
