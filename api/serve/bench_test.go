@@ -10,6 +10,7 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"os"
+	"path"
 	"path/filepath"
 	"regexp"
 	"runtime"
@@ -67,9 +68,12 @@ func (s *sink) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		}
 		fmt.Fprintf(w, `{"resourceType":"Bundle","type":"transaction-response","entry":[%s]}`, strings.Join(out, ","))
 	default:
+		// A create of one resource (the software Device, or a Provenance
+		// sent after its Observations): answered as the type posted, or
+		// the writer would take it for a refusal and retry it for ever.
 		id := s.next.Add(1)
 		w.WriteHeader(http.StatusCreated)
-		fmt.Fprintf(w, `{"resourceType":"Device","id":"%d","meta":{"versionId":"1"}}`, id)
+		fmt.Fprintf(w, `{"resourceType":"%s","id":"%d","meta":{"versionId":"1"}}`, path.Base(r.URL.Path), id)
 	}
 }
 
