@@ -222,6 +222,12 @@ type Store interface {
 	PutInputs(ctx context.Context, inputs []Input, now time.Time) ([]PutResult, error)
 	// Inputs returns a patient's stored inputs, in Logical order.
 	Inputs(ctx context.Context, subject string) ([]Input, error)
+	// InputsFrom returns a patient's stored inputs whose EffectiveAt is at
+	// or after from, in Logical order: what an evaluation needs when a
+	// change can affect results from a time on. (A body height is stored
+	// with its EffectiveAt a year after its measurement, so it is among
+	// them for as long as a derivation may use it.)
+	InputsFrom(ctx context.Context, subject string, from time.Time) ([]Input, error)
 	// Input returns one stored input by its logical reference.
 	Input(ctx context.Context, subject, logical string) (Input, error)
 	// Owner returns the subject the latest stored version of an input was

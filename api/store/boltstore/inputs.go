@@ -238,6 +238,36 @@ func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, erro
 	return out, nil
 }
 
+// InputsFrom walks the patient's keys as Inputs does but decodes and
+// copies only the inputs effective from then on: the rest cost a read of
+// their head.
+func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
+	var out []store.Input
+	err := s.view(ctx, "InputsFrom", func(tx *bolt.Tx) error {
+		prefix := subjectPrefix(subject)
+		c := tx.Bucket(bInputs).Cursor()
+		for k, v := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
+			_, _, eff, err := decodeInputHead(v)
+			if err != nil {
+				return err
+			}
+			if eff.Before(from) {
+				continue
+			}
+			in, err := decodeInput(subject, string(k[len(prefix):]), v)
+			if err != nil {
+				return err
+			}
+			out = append(out, in)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // Input returns one stored input, or ErrNotFound.
 func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input, error) {
 	var in store.Input

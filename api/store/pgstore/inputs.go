@@ -199,6 +199,26 @@ func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, erro
 	return out, nil
 }
 
+// InputsFrom returns the patient's inputs effective at or after from.
+func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
+	if from.IsZero() {
+		return s.Inputs(ctx, subject) // zero is stored as 0 ns, after times before 1970
+	}
+	var out []store.Input
+	err := s.run(ctx, "InputsFrom", func(q querier) error {
+		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE subject = $1 AND effective_ns >= $2 ORDER BY logical`, subject, nanos(from))
+		if err != nil {
+			return err
+		}
+		out, err = pgx.CollectRows(rows, scanInput)
+		return err
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // Input returns one stored input, or ErrNotFound.
 func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input, error) {
 	var in store.Input

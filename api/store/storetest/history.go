@@ -2,6 +2,7 @@ package storetest
 
 import (
 	"errors"
+	"slices"
 	"testing"
 	"time"
 
@@ -241,4 +242,49 @@ func testEmptyCommit(t *testing.T, open func(t *testing.T) store.Store) {
 		t.Errorf("Patient/f dirty again after unrelated writes: %+v", d)
 	}
 	wantStats(t, s, store.Stats{DirtyPatients: 2})
+}
+
+// InputsFrom returns the patient's inputs effective at or after a time, in
+// Logical order, with what Inputs gives for each; a newer version that
+// moved an input's time moves it in or out of the range.
+func testInputsFrom(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	put(t, s, t0,
+		input("Patient/1", "Observation/d", "1", t0, t0.Add(-time.Hour), "an hour before"),
+		input("Patient/1", "Observation/c", "1", t0, t0, "at"),
+		input("Patient/1", "Observation/b", "1", t0, t0.Add(time.Hour), "an hour after"),
+		input("Patient/1", "Observation/a", "1", t0, t0.Add(-time.Second), "a second before"),
+		input("Patient/10", "Observation/x", "1", t0, t0.Add(time.Hour), "another patient"))
+	list := func(from time.Time) []string {
+		t.Helper()
+		got, err := s.InputsFrom(ctx, "Patient/1", from)
+		must(t, err)
+		var out []string
+		for _, in := range got {
+			if in.Subject != "Patient/1" {
+				t.Errorf("input of %s in Patient/1's list", in.Subject)
+			}
+			out = append(out, in.Logical+"="+string(in.Payload))
+		}
+		return out
+	}
+	for _, tc := range []struct {
+		name string
+		from time.Time
+		want []string
+	}{
+		{"zero: every input", time.Time{}, []string{"Observation/a=a second before", "Observation/b=an hour after", "Observation/c=at", "Observation/d=an hour before"}},
+		{"at an input's time: included", t0, []string{"Observation/b=an hour after", "Observation/c=at"}},
+		{"after the last", t0.Add(2 * time.Hour), nil},
+	} {
+		if got := list(tc.from); !slices.Equal(got, tc.want) {
+			t.Errorf("%s: InputsFrom = %v, want %v", tc.name, got, tc.want)
+		}
+	}
+	put(t, s, t0, input("Patient/1", "Observation/d", "2", t0.Add(time.Minute), t0.Add(3*time.Hour), "moved later"))
+	put(t, s, t0, input("Patient/1", "Observation/b", "2", t0.Add(time.Minute), t0.Add(-3*time.Hour), "moved earlier"))
+	if got, want := list(t0), []string{"Observation/c=at", "Observation/d=moved later"}; !slices.Equal(got, want) {
+		t.Errorf("after corrections: InputsFrom = %v, want %v", got, want)
+	}
 }

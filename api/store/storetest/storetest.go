@@ -63,6 +63,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PruneHistory", testPruneHistory},
 		{"Dirty/SpanAndUrgency", testDirtySpan},
 		{"Commit/EmptyClearsMark", testEmptyCommit},
+		{"InputsFrom/Range", testInputsFrom},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
