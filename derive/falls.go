@@ -19,118 +19,185 @@ const minBaselineEtCO2 = 10.0
 // It also returns the readings it could not judge because the series was
 // too sparse or gappy.
 func detectFalls(cfg FallConfig, series []Reading) ([]Fall, []Omission) {
-	var (
-		falls  []Fall
-		sparse []Omission
-		// eligible are baseline-eligible readings in time order;
-		// eligible[head:inEnd] are in the Baseline window, and their values
-		// are in window, sorted; eligible[far:inEnd] are within BaselineMax.
-		eligible         []Reading
-		head, inEnd, far int
-		window           []float64
-		ep               *episode
-		// seen are the times of every judged reading, episode or not, and
-		// seen[seenHead:] those within BaselineMax: sparseness is a property
-		// of the charting, not of which readings may form a baseline.
-		seen     []int64
-		seenHead int
-	)
-	span := cfg.Baseline.Milliseconds()
-	spanMax := max(cfg.BaselineMax, cfg.Baseline).Milliseconds()
-	sustain := cfg.Sustain.Milliseconds()
-	maxGap := max(cfg.MaxGap, cfg.Sustain).Milliseconds()
-	minEp := max(cfg.MinEpisodeReadings, 1)
-
+	s := NewFallScan(cfg)
 	for _, r := range series {
-		if r.Kind != KindEtCO2 {
-			continue
-		}
-		if ok, _, _ := Plausible(KindEtCO2, r.Value); !ok {
-			continue
-		}
-		t := r.AtMillis
-		for inEnd < len(eligible) && eligible[inEnd].AtMillis < t {
-			v := eligible[inEnd].Value
-			i, _ := slices.BinarySearch(window, v)
-			window = slices.Insert(window, i, v)
-			inEnd++
-		}
-		from := addSat(t, -span)
-		for head < inEnd && eligible[head].AtMillis < from {
-			i, _ := slices.BinarySearch(window, eligible[head].Value)
-			window = slices.Delete(window, i, i+1)
-			head++
-		}
-		fromMax := addSat(t, -spanMax)
-		for far < inEnd && eligible[far].AtMillis < fromMax {
-			far++
-		}
-		for seenHead < len(seen) && seen[seenHead] < fromMax {
-			seenHead++
-		}
-		why := sparseness(cfg, seen, seenHead, t, maxGap, spanMax)
-		seen = append(seen, t)
-
-		if ep != nil {
-			if ep.confirmed {
-				if ep.recovered(r.Value, cfg.Recover) {
-					ep = nil
-					eligible = append(eligible, r)
-				}
-				continue
-			}
-			last := ep.readings[len(ep.readings)-1].AtMillis
-			if t-last <= maxGap && ep.beyond(r.Value) {
-				ep.readings = append(ep.readings, r)
-				if t-ep.readings[0].AtMillis >= sustain && len(ep.readings) >= minEp {
-					falls = append(falls, ep.confirm())
-				}
-				continue
-			}
-			ep = nil // cancelled; judge r afresh below
-		}
-
-		base, baseFrom, ok := baseline(cfg, eligible, head, inEnd, far, window)
-		if why != "" {
-			sparse = append(sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
-		} else if ok && base >= minBaselineEtCO2 {
-			thr := min(cfg.Drop, cfg.DropFraction*base)
-			rise := r.Value > base+thr
-			if rise || r.Value < base-thr {
-				ep = &episode{
-					baseline:     base,
-					threshold:    thr,
-					rise:         rise,
-					baseReadings: slices.Clone(eligible[baseFrom:inEnd]),
-					readings:     []Reading{r},
-				}
-				if sustain <= 0 && minEp <= 1 {
-					falls = append(falls, ep.confirm())
-				}
-				continue
-			}
-		}
-		eligible = append(eligible, r)
+		s.Add(r)
 	}
-	return falls, sparse
+	return s.falls, s.sparse
+}
+
+// FallScan is the fall and rise detector part-way through a series: fed
+// readings in time order with [FallScan.Add], it judges each as
+// [DetectFalls] does, and [FallScan.Clone] keeps where it stands, so that
+// a caller whose series grows at its end resumes from a saved scan instead
+// of running over the whole series again. A scan resumed from a clone and
+// fed the rest of the series finds exactly what one pass over the whole
+// series finds.
+type FallScan struct {
+	cfg                            FallConfig
+	span, spanMax, sustain, maxGap int64
+	minEp                          int
+	falls                          []Fall
+	sparse                         []Omission
+	// eligible are baseline-eligible readings in time order;
+	// eligible[head:inEnd] are in the Baseline window, and their values
+	// are in window, sorted; eligible[far:inEnd] are within BaselineMax.
+	eligible         []Reading
+	head, inEnd, far int
+	window           []float64
+	ep               *episode
+	// seen are the times of judged readings, episode or not, and
+	// seen[seenHead:] those within BaselineMax: sparseness is a property
+	// of the charting, not of which readings may form a baseline. first is
+	// the time of the first judged reading, kept when seen is trimmed.
+	seen     []int64
+	seenHead int
+	first    int64
+	judged   bool
+}
+
+// NewFallScan returns a scan that has seen no reading.
+func NewFallScan(cfg FallConfig) *FallScan {
+	return &FallScan{
+		cfg:     cfg,
+		span:    cfg.Baseline.Milliseconds(),
+		spanMax: max(cfg.BaselineMax, cfg.Baseline).Milliseconds(),
+		sustain: cfg.Sustain.Milliseconds(),
+		maxGap:  max(cfg.MaxGap, cfg.Sustain).Milliseconds(),
+		minEp:   max(cfg.MinEpisodeReadings, 1),
+	}
+}
+
+// Falls returns the findings confirmed so far, in order of confirmation.
+func (s *FallScan) Falls() []Fall { return slices.Clone(s.falls) }
+
+// Sparse returns the readings the scan could not judge because the series
+// was too sparse or gappy, since it was made or cloned.
+func (s *FallScan) Sparse() []Omission { return slices.Clone(s.sparse) }
+
+// Clone returns a copy that goes on independently, holding only what the
+// rest of the series can still need: the readings within BaselineMax of
+// the last one, the open episode and the findings so far (not the sparse
+// readings, which [FallScan.Sparse] of the copy lists from then on).
+func (s *FallScan) Clone() *FallScan {
+	c := *s
+	c.falls = slices.Clone(s.falls)
+	c.sparse = nil
+	// Readings before far and times before seenHead are never looked at
+	// again: far and seenHead only move forward.
+	drop := min(s.far, s.head)
+	c.eligible = slices.Clone(s.eligible[drop:])
+	c.head, c.inEnd, c.far = s.head-drop, s.inEnd-drop, s.far-drop
+	c.window = slices.Clone(s.window)
+	// The last time is kept even when it is older than BaselineMax: the
+	// gap to the next reading is measured from it.
+	keep := min(s.seenHead, max(len(s.seen)-1, 0))
+	c.seen = slices.Clone(s.seen[keep:])
+	c.seenHead = s.seenHead - keep
+	if s.ep != nil {
+		ep := *s.ep
+		ep.readings = slices.Clone(s.ep.readings)
+		c.ep = &ep
+	}
+	return &c
+}
+
+// Add judges the next reading of the series; readings come in time order.
+// Readings of other kinds and implausible values are skipped, as
+// [DetectFalls] skips them.
+func (s *FallScan) Add(r Reading) {
+	if r.Kind != KindEtCO2 {
+		return
+	}
+	if ok, _, _ := Plausible(KindEtCO2, r.Value); !ok {
+		return
+	}
+	t := r.AtMillis
+	cfg := s.cfg
+	for s.inEnd < len(s.eligible) && s.eligible[s.inEnd].AtMillis < t {
+		v := s.eligible[s.inEnd].Value
+		i, _ := slices.BinarySearch(s.window, v)
+		s.window = slices.Insert(s.window, i, v)
+		s.inEnd++
+	}
+	from := addSat(t, -s.span)
+	for s.head < s.inEnd && s.eligible[s.head].AtMillis < from {
+		i, _ := slices.BinarySearch(s.window, s.eligible[s.head].Value)
+		s.window = slices.Delete(s.window, i, i+1)
+		s.head++
+	}
+	fromMax := addSat(t, -s.spanMax)
+	for s.far < s.inEnd && s.eligible[s.far].AtMillis < fromMax {
+		s.far++
+	}
+	for s.seenHead < len(s.seen) && s.seen[s.seenHead] < fromMax {
+		s.seenHead++
+	}
+	why := s.sparseness(t)
+	if !s.judged {
+		s.first, s.judged = t, true
+	}
+	s.seen = append(s.seen, t)
+
+	if ep := s.ep; ep != nil {
+		if ep.confirmed {
+			if ep.recovered(r.Value, cfg.Recover) {
+				s.ep = nil
+				s.eligible = append(s.eligible, r)
+			}
+			return
+		}
+		last := ep.readings[len(ep.readings)-1].AtMillis
+		if t-last <= s.maxGap && ep.beyond(r.Value) {
+			ep.readings = append(ep.readings, r)
+			if t-ep.readings[0].AtMillis >= s.sustain && len(ep.readings) >= s.minEp {
+				s.falls = append(s.falls, ep.confirm())
+			}
+			return
+		}
+		s.ep = nil // cancelled; judge r afresh below
+	}
+
+	base, baseFrom, ok := baseline(cfg, s.eligible, s.head, s.inEnd, s.far, s.window)
+	if why != "" {
+		s.sparse = append(s.sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
+	} else if ok && base >= minBaselineEtCO2 {
+		thr := min(cfg.Drop, cfg.DropFraction*base)
+		rise := r.Value > base+thr
+		if rise || r.Value < base-thr {
+			s.ep = &episode{
+				baseline:     base,
+				threshold:    thr,
+				rise:         rise,
+				baseReadings: slices.Clone(s.eligible[baseFrom:s.inEnd]),
+				readings:     []Reading{r},
+			}
+			if s.sustain <= 0 && s.minEp <= 1 {
+				s.falls = append(s.falls, s.ep.confirm())
+			}
+			return
+		}
+	}
+	s.eligible = append(s.eligible, r)
+	return
 }
 
 // sparseness says why the charting before time t is too sparse or gappy to
-// judge, or "" when it is not. seen[seenHead:] are the times of the readings
-// within BaselineMax before t. The first readings of a series are a
-// baseline forming, not a sparse series.
-func sparseness(cfg FallConfig, seen []int64, seenHead int, t, maxGap, spanMax int64) string {
-	if len(seen) == 0 {
+// judge, or "" when it is not. seen[seenHead:] are the times of the
+// readings within BaselineMax before t. The first readings of a series are
+// a baseline forming, not a sparse series.
+func (s *FallScan) sparseness(t int64) string {
+	if !s.judged {
 		return ""
 	}
-	if gap := t - seen[len(seen)-1]; gap > maxGap {
+	if gap := t - s.seen[len(s.seen)-1]; gap > s.maxGap {
 		return fmt.Sprintf("no end-tidal reading in the %v before this one: the series is too gappy to judge a fall or rise",
-			time.Duration(maxGap)*time.Millisecond)
+			time.Duration(s.maxGap)*time.Millisecond)
 	}
-	need := max(cfg.MinBaselineReadings, 1)
-	if n := len(seen) - seenHead; n < need && seen[0] <= t-spanMax {
+	need := max(s.cfg.MinBaselineReadings, 1)
+	if n := len(s.seen) - s.seenHead; n < need && s.first <= t-s.spanMax {
 		return fmt.Sprintf("%d end-tidal readings in the %v before this one, fewer than the %d a baseline needs: the series is too sparse to judge a fall or rise",
-			n, time.Duration(spanMax)*time.Millisecond, need)
+			n, time.Duration(s.spanMax)*time.Millisecond, need)
 	}
 	return ""
 }

@@ -147,6 +147,10 @@ type Engine struct {
 	// evaluators is how many patients the evaluation loop evaluates at
 	// once.
 	evaluators int
+	// fallStates holds each patient's fall detector state as of its last
+	// committed evaluation (subject → *pipeline.FallState), over a store
+	// no other process writes.
+	fallStates sync.Map
 
 	pictures *pictures // what the derivations leave out, kept complete
 

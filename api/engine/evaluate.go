@@ -8,6 +8,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"math"
 	"runtime"
 	"sync"
 	"time"
@@ -251,14 +252,6 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 }
 
 func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
-	inputs, err := e.loadInputs(ctx, d.Subject)
-	if err != nil {
-		return fmt.Errorf("engine: evaluate: %w", err)
-	}
-	facts, err := e.patientFacts(ctx, d.Subject)
-	if err != nil {
-		return err
-	}
 	// Incremental evaluation: when the mark says from when results can
 	// change, only the blood gases whose pairing window reaches that time
 	// are derived again; older ones keep their ledger entries untouched.
@@ -273,7 +266,32 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		_, to := e.cfg.Derive.DependencySpan(d.From)
 		gasesFrom = d.From.Add(-to.Sub(d.From))
 	}
-	results, omitted, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, gasesFrom)
+	// The fall detector resumes from its state of the last evaluation
+	// when the change comes after it (a change at From can alter which
+	// source is preferred from one pairing window before); then only the
+	// inputs those gases and the detector need are read.
+	resume := e.fallState(d, gasesFrom)
+	readFrom := time.Time{}
+	if resume != nil {
+		spanFrom, _ := e.cfg.Derive.DependencySpan(gasesFrom)
+		readFrom = store.Earliest(spanFrom, resume.At.Add(-e.cfg.Derive.Window))
+	}
+	inputs, err := e.loadInputsFrom(ctx, d.Subject, readFrom)
+	if err != nil {
+		return fmt.Errorf("engine: evaluate: %w", err)
+	}
+	facts, err := e.patientFacts(ctx, d.Subject)
+	if err != nil {
+		return err
+	}
+	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume}
+	if e.keepsFallState() {
+		inc.SaveAt = fallSaveAt(inputs, resume)
+	}
+	// The saved state is kept only once the evaluation committed; any
+	// failure drops it, and the next evaluation runs the detector whole.
+	e.fallStates.Delete(d.Subject)
+	results, omitted, saved, err := pipeline.EvaluateIncremental(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, inc)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -287,6 +305,9 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	}
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
+	}
+	if saved != nil {
+		e.fallStates.Store(d.Subject, saved)
 	}
 	// Only a complete evaluation knows everything the patient's data
 	// leaves out; after an incremental one the picture is refreshed apart
@@ -317,11 +338,79 @@ func codeOf(en store.Entry) derive.Code {
 	return p.Code
 }
 
+// fallSaveLag is how far before a patient's latest end-tidal reading the
+// fall detector's state is saved for the next evaluation: a change dated
+// later than that (less a pairing window) resumes from it. An hour covers
+// readings that arrive late and blood gases that come back from the
+// laboratory within the hour; an earlier change runs the detector whole.
+const fallSaveLag = time.Hour
+
+// keepsFallState reports whether the engine may keep the fall detector's
+// state between evaluations: only over a store no other process writes.
+func (e *Engine) keepsFallState() bool {
+	x, ok := e.cfg.Store.(store.Exclusive)
+	return ok && x.Exclusive()
+}
+
+// fallState returns the saved detector state an evaluation of d can
+// resume from, or nil: none saved, a whole evaluation, or a change before
+// it.
+func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallState {
+	if gasesFrom.IsZero() || !e.keepsFallState() {
+		return nil
+	}
+	v, ok := e.fallStates.Load(d.Subject)
+	if !ok {
+		return nil
+	}
+	st := v.(*pipeline.FallState)
+	if d.From.Add(-e.cfg.Derive.Window).Before(st.At) {
+		return nil
+	}
+	return st
+}
+
+// fallSaveAt is when to save the detector's state: fallSaveLag before the
+// latest end-tidal reading, never earlier than the state resumed from.
+func fallSaveAt(inputs []pipeline.Input, resume *pipeline.FallState) time.Time {
+	latest := int64(math.MinInt64)
+	for _, in := range inputs {
+		if in.Reading.Kind == derive.KindEtCO2 {
+			latest = max(latest, in.Reading.AtMillis)
+		}
+	}
+	at := time.Time{}
+	if latest != math.MinInt64 {
+		at = time.UnixMilli(latest).UTC().Add(-fallSaveLag)
+	}
+	if resume != nil && at.Before(resume.At) {
+		at = resume.At
+	}
+	if at.IsZero() {
+		// No end-tidal reading yet: save the empty state at the epoch, so
+		// the next evaluation resumes from it.
+		at = time.UnixMilli(0).UTC()
+	}
+	return at
+}
+
 // loadInputs returns a patient's stored readings as pairing takes them.
-// Only the binary head of each is decoded; the rest of the stored item
-// (original value, conversion) is for explanations.
 func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Input, error) {
-	stored, err := e.cfg.Store.Inputs(ctx, subject)
+	return e.loadInputsFrom(ctx, subject, time.Time{})
+}
+
+// loadInputsFrom returns a patient's stored readings effective from from
+// on (every one when from is zero). Only the binary head of each is
+// decoded; the rest of the stored item (original value, conversion) is for
+// explanations.
+func (e *Engine) loadInputsFrom(ctx context.Context, subject string, from time.Time) ([]pipeline.Input, error) {
+	var stored []store.Input
+	var err error
+	if from.IsZero() {
+		stored, err = e.cfg.Store.Inputs(ctx, subject)
+	} else {
+		stored, err = e.cfg.Store.InputsFrom(ctx, subject, from)
+	}
 	if err != nil {
 		return nil, err
 	}

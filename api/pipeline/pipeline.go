@@ -64,6 +64,43 @@ func Evaluate(cfg derive.Config, enc *encode.Encoder, subject string, facts deri
 // found. The live engine uses it when new data can change only later
 // results. The omissions are then incomplete.
 func EvaluateFrom(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, gasesFrom time.Time) ([]Result, []derive.Omission, error) {
+	results, omitted, _, err := EvaluateIncremental(cfg, enc, subject, facts, inputs, Incremental{GasesFrom: gasesFrom})
+	return results, omitted, err
+}
+
+// FallState is where one patient's fall and rise detection stands: the
+// detector after every end-tidal reading before At. The live engine keeps
+// it between evaluations, so that an evaluation runs the detector over the
+// readings from At on only, and finds what a run over the whole series
+// finds.
+type FallState struct {
+	At   time.Time
+	scan *derive.FallScan
+}
+
+// Incremental says what an evaluation may leave out, and what to keep for
+// the next one.
+type Incremental struct {
+	// GasesFrom: only the blood gases sampled then or later are derived
+	// (all of them when zero).
+	GasesFrom time.Time
+	// Falls resumes the fall and rise detector; nil runs it over every
+	// end-tidal reading. The inputs must then hold every reading from
+	// Falls.At less the pairing window on (a source is preferred per
+	// window), and the detector's findings are still all returned: those
+	// confirmed before Falls.At come from the state.
+	Falls *FallState
+	// SaveAt, when set, asks for the detector's state at that time (no
+	// earlier than Falls.At) for the next evaluation.
+	SaveAt time.Time
+}
+
+// EvaluateIncremental is [EvaluateFrom] that can resume the fall detector
+// from a saved state and save it again; see [Incremental]. The omissions
+// are incomplete unless it derives every blood gas and runs the detector
+// over the whole series.
+func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, *FallState, error) {
+	gasesFrom := inc.GasesFrom
 	var omitted []derive.Omission
 	var gases, readings, etco2 []derive.Reading
 	for _, in := range inputs {
@@ -134,7 +171,7 @@ func EvaluateFrom(cfg derive.Config, enc *encode.Encoder, subject string, facts 
 		results = append(results, Result{Subject: subject, Derivation: &d, Bundle: b})
 	}
 	series, lower := derive.PreferredSeries(cfg.Window, etco2)
-	falls, sparse := derive.DetectEpisodes(cfg.Fall, series)
+	falls, sparse, saved := detect(cfg.Fall, series, inc)
 	for _, o := range slices.Concat(sparse, lower) {
 		if _, ok := why[o.Ref]; !ok {
 			why[o.Ref] = o
@@ -166,7 +203,38 @@ func EvaluateFrom(cfg derive.Config, enc *encode.Encoder, subject string, facts 
 		omitted = append(omitted, derive.Omission{Ref: r.Ref, Reason: derive.ReasonUnpaired, Detail: r.Kind.String()})
 	}
 	slices.SortStableFunc(results, func(a, b Result) int { return a.Time().Compare(b.Time()) })
-	return results, omitted, nil
+	return results, omitted, saved, nil
+}
+
+// detect runs the fall and rise detector over series, from inc.Falls when
+// set, saving its state at inc.SaveAt when asked.
+func detect(cfg derive.FallConfig, series []derive.Reading, inc Incremental) ([]derive.Fall, []derive.Omission, *FallState) {
+	if inc.Falls == nil && inc.SaveAt.IsZero() {
+		falls, sparse := derive.DetectEpisodes(cfg, series)
+		return falls, sparse, nil
+	}
+	scan, start := derive.NewFallScan(cfg), int64(math.MinInt64)
+	if inc.Falls != nil {
+		scan, start = inc.Falls.scan.Clone(), inc.Falls.At.UnixMilli()
+	}
+	save, saveAt := !inc.SaveAt.IsZero(), inc.SaveAt.UnixMilli()
+	if inc.Falls != nil {
+		saveAt = max(saveAt, start)
+	}
+	var saved *FallState
+	for _, r := range series {
+		if r.AtMillis < start {
+			continue // judged before the state was saved
+		}
+		if save && saved == nil && r.AtMillis >= saveAt {
+			saved = &FallState{At: time.UnixMilli(saveAt).UTC(), scan: scan.Clone()}
+		}
+		scan.Add(r)
+	}
+	if save && saved == nil {
+		saved = &FallState{At: time.UnixMilli(saveAt).UTC(), scan: scan.Clone()}
+	}
+	return scan.Falls(), scan.Sparse(), saved
 }
 
 // Collector gathers decoded items from a whole export, in any order. It

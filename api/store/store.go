@@ -208,6 +208,15 @@ type Stats struct {
 	DirtyPatients int
 }
 
+// Exclusive is implemented by a store that one process holds at a time
+// (the embedded store, behind its file lock). The engine over it is then
+// the only one that evaluates its patients, and may keep what one
+// evaluation found for the next in memory (the fall detector's state):
+// no other process can change a patient's inputs unseen.
+type Exclusive interface {
+	Exclusive() bool
+}
+
 // Store is the service's durable state. Implementations are safe for
 // concurrent use.
 type Store interface {

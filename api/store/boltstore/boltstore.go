@@ -61,7 +61,10 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 )
 
-var _ store.Store = (*Store)(nil)
+var (
+	_ store.Store     = (*Store)(nil)
+	_ store.Exclusive = (*Store)(nil)
+)
 
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
@@ -287,6 +290,9 @@ func (s *Store) Close() error {
 	}
 	return nil
 }
+
+// Exclusive reports true: one process holds the file at a time.
+func (s *Store) Exclusive() bool { return true }
 
 // update runs fn in a read-write transaction after checking ctx, and
 // prefixes errors with the operation name.

@@ -1,0 +1,126 @@
+package derive_test
+
+import (
+	"math/rand/v2"
+	"reflect"
+	"slices"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// resumed runs the detector over series, saving the scan with Clone after
+// each reading whose index is in at and going on from the copy, as a
+// caller that keeps the scan between evaluations does.
+func resumed(cfg derive.FallConfig, series []derive.Reading, at func(i int) bool) ([]derive.Fall, []derive.Omission) {
+	s := derive.NewFallScan(cfg)
+	var sparse []derive.Omission
+	for i, r := range series {
+		s.Add(r)
+		if at(i) {
+			sparse = append(sparse, s.Sparse()...)
+			s = s.Clone()
+		}
+	}
+	return s.Falls(), append(sparse, s.Sparse()...)
+}
+
+// fallSeries are series that exercise every state the scan keeps: a
+// baseline forming, candidates cancelled and confirmed, episodes open
+// across a save, recovery, gaps, sparse charting and implausible values.
+func fallSeries() map[string][]derive.Reading {
+	series := map[string][]derive.Reading{
+		"two episodes": minutes(cat(rep(38, 20), rep(25, 10), rep(38, 15), rep(26, 10), rep(38, 5))...),
+		"noisy": minutes(cat(
+			slices.Repeat([]float64{36, 39, 37, 40, 0}, 8), []float64{28, 27, 36, 29, 28, 27, 26, 25, 31, 33, 35, 38},
+			slices.Repeat([]float64{37, 38}, 10), rep(0, 6), rep(38, 8),
+		)...),
+		"rise then a long fall": minutes(cat(rep(30, 40), rep(45, 20), rep(30, 30), rep(12, 200), rep(30, 40))...),
+	}
+	// Sparse and gappy: every 20 minutes, then a gap, then every minute.
+	var sparse []derive.Reading
+	for i := range 12 {
+		sparse = append(sparse, rd(derive.KindEtCO2, time.Duration(i)*20*time.Minute, 38))
+	}
+	for i := range 60 {
+		v := 38.0
+		if i > 30 && i < 45 {
+			v = 22
+		}
+		sparse = append(sparse, rd(derive.KindEtCO2, 6*time.Hour+time.Duration(i)*time.Minute, v))
+	}
+	series["sparse, gap, episode"] = sparse
+	// A random walk with steps and dropouts, 12 hours of minute readings.
+	rng := rand.New(rand.NewPCG(9, 9))
+	var walk []derive.Reading
+	v := 38.0
+	for i := range 12 * 60 {
+		switch rng.IntN(60) {
+		case 0:
+			v = 20 + rng.Float64()*10 // a step down
+		case 1:
+			v = 36 + rng.Float64()*6 // back
+		}
+		if rng.IntN(50) == 0 {
+			continue // a reading missing
+		}
+		walk = append(walk, rd(derive.KindEtCO2, time.Duration(i)*time.Minute, v+rng.NormFloat64()))
+	}
+	series["random walk"] = walk
+	return series
+}
+
+// A scan saved and resumed anywhere finds exactly what one pass over the
+// whole series finds: the findings, and the readings too sparse to judge.
+func TestFallScanResumedEqualsFull(t *testing.T) {
+	t.Parallel()
+	cfg := derive.DefaultConfig().Fall
+	for name, series := range fallSeries() {
+		t.Run(name, func(t *testing.T) {
+			t.Parallel()
+			full, sparse := derive.DetectEpisodes(cfg, series)
+			if len(full) == 0 && name != "sparse, gap, episode" {
+				t.Fatalf("the series should hold a finding")
+			}
+			for _, tc := range []struct {
+				name string
+				at   func(i int) bool
+			}{
+				{"after every reading", func(int) bool { return true }},
+				{"every 7th", func(i int) bool { return i%7 == 6 }},
+				{"every 97th", func(i int) bool { return i%97 == 96 }},
+			} {
+				falls, sp := resumed(cfg, series, tc.at)
+				if !reflect.DeepEqual(falls, full) {
+					t.Errorf("%s: %d findings, want %d\ngot  %+v\nwant %+v", tc.name, len(falls), len(full), falls, full)
+				}
+				if !reflect.DeepEqual(sp, sparse) {
+					t.Errorf("%s: %d sparse readings, want %d", tc.name, len(sp), len(sparse))
+				}
+			}
+		})
+	}
+}
+
+// A saved scan holds what the rest of the series can need, not the series:
+// after 12 hours of minute readings it keeps about BaselineMax of them.
+func TestFallScanCloneIsBounded(t *testing.T) {
+	t.Parallel()
+	cfg := derive.DefaultConfig().Fall
+	s := derive.NewFallScan(cfg)
+	for _, r := range minutes(rep(38, 12*60)...) {
+		s.Add(r)
+	}
+	c := s.Clone()
+	// The copy goes on as the original does, and neither disturbs the other.
+	next := rd(derive.KindEtCO2, 12*time.Hour, 20)
+	s.Add(next)
+	c.Add(next)
+	if !reflect.DeepEqual(s.Falls(), c.Falls()) {
+		t.Errorf("original and copy differ after the same reading")
+	}
+	if n := derive.HeldReadings(c); n > 2*(int(cfg.BaselineMax/time.Minute)+2) {
+		t.Errorf("the copy holds %d readings, want at most about %v of minute readings", n, cfg.BaselineMax)
+	}
+}
