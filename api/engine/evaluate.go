@@ -200,6 +200,29 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 	return due, max(wait, time.Millisecond)
 }
 
+// evaluateDue evaluates, one after another, the dirty patients whose data
+// has settled (every dirty patient when all is set), as one round of the
+// evaluation loop would, without its concurrency.
+func (e *Engine) evaluateDue(ctx context.Context, all bool) {
+	settle := e.cfg.Settle
+	if all {
+		settle = 0
+	}
+	dirty, err := e.cfg.Store.DirtyPatients(ctx)
+	if err != nil {
+		e.log.ErrorContext(ctx, "listing dirty patients failed", "err", err)
+		return
+	}
+	for _, d := range dirty {
+		if d.Since.Add(settle).After(e.now()) {
+			continue
+		}
+		if err := e.evaluatePatient(ctx, d); err != nil {
+			e.log.ErrorContext(ctx, "evaluation failed; it stays pending", "err", err)
+		}
+	}
+}
+
 // EvaluateNow evaluates every dirty patient at once, ignoring the settle
 // delay, and leaves what the derivations leave out reported (Hooks.Evaluated)
 // for every patient. Tests and the submit API use it to get a result

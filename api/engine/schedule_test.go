@@ -51,7 +51,7 @@ func (g *gatedStore) committed() []string {
 	return append([]string(nil), g.commits...)
 }
 
-func reading(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {
+func readingOf(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {
 	return json.RawMessage(fmt.Sprintf(`{"resourceType":"Observation","id":"%s","meta":{"versionId":"1","lastUpdated":"%s"},"status":"final",`+
 		`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"effectiveDateTime":"%s",`+
 		`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
@@ -121,13 +121,13 @@ func TestBloodGasJumpsTheQueue(t *testing.T) {
 	// mark, so it is evaluated first and its commit is held.
 	for p := range 10 {
 		subject := fmt.Sprintf("Patient/d%d", p)
-		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
 			t.Fatal(err)
 		}
 	}
 	run(t, eng)
 	<-g.held
-	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
 		t.Fatal(err)
 	}
 	close(g.release)
@@ -148,13 +148,13 @@ func TestChangesDuringAnEvaluationCoalesce(t *testing.T) {
 	now := time.Now().UTC().Truncate(time.Minute)
 	eng, g := scheduleEngine(t, "Patient/a")
 	ctx := t.Context()
-	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/a", "a0", "19891-1", "mm[Hg]", 36, now.Add(-10*time.Minute))}); err != nil {
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/a", "a0", "19891-1", "mm[Hg]", 36, now.Add(-10*time.Minute))}); err != nil {
 		t.Fatal(err)
 	}
 	run(t, eng)
 	<-g.held
 	for i := range 5 {
-		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{reading("Patient/a", fmt.Sprintf("a%d", i+1), "19891-1", "mm[Hg]", 36, now.Add(time.Duration(i-9)*time.Minute))}); err != nil {
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/a", fmt.Sprintf("a%d", i+1), "19891-1", "mm[Hg]", 36, now.Add(time.Duration(i-9)*time.Minute))}); err != nil {
 			t.Fatal(err)
 		}
 	}
