@@ -179,7 +179,6 @@ func (s *FallScan) Add(r Reading) {
 		}
 	}
 	s.eligible = append(s.eligible, r)
-	return
 }
 
 // sparseness says why the charting before time t is too sparse or gappy to
