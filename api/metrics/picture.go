@@ -1,6 +1,7 @@
 package metrics
 
 import (
+	"maps"
 	"sync"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -71,12 +72,12 @@ func (p *picture) Describe(ch chan<- *prometheus.Desc) {
 	ch <- descValuesNotEmitted
 }
 
-// Collect reports every known reason, 0 included, so the series exist from
-// the start.
-func (p *picture) Collect(ch chan<- prometheus.Metric) {
+// totals sums what arrived and every patient's latest evaluation.
+func (p *picture) totals() (inputs, values map[string]int) {
 	p.mu.Lock()
-	inputs := make(map[string]int, len(p.arrived))
-	values := make(map[string]int)
+	defer p.mu.Unlock()
+	inputs = make(map[string]int, len(p.arrived))
+	values = make(map[string]int)
 	for r, n := range p.arrived {
 		inputs[r] += n
 	}
@@ -88,7 +89,21 @@ func (p *picture) Collect(ch chan<- prometheus.Metric) {
 			values[r] += n
 		}
 	}
-	p.mu.Unlock()
+	return inputs, values
+}
+
+// of is one patient's latest complete evaluation, copied.
+func (p *picture) of(subject string) (inputs, values map[string]int) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	ev := p.bySubject[subject]
+	return maps.Clone(ev.inputs), maps.Clone(ev.values)
+}
+
+// Collect reports every known reason, 0 included, so the series exist from
+// the start.
+func (p *picture) Collect(ch chan<- prometheus.Metric) {
+	inputs, values := p.totals()
 	all := reasons()
 	if inputs[other] > 0 || values[other] > 0 {
 		all = append(all, other)
@@ -97,4 +112,27 @@ func (p *picture) Collect(ch chan<- prometheus.Metric) {
 		ch <- prometheus.MustNewConstMetric(descInputsLeftOut, prometheus.GaugeValue, float64(inputs[r]), r)
 		ch <- prometheus.MustNewConstMetric(descValuesNotEmitted, prometheus.GaugeValue, float64(values[r]), r)
 	}
+}
+
+// Omissions is one patient's part of the gauges deadspace_inputs_left_out
+// and deadspace_values_not_emitted: what the patient's latest complete
+// evaluation left out, by reason (nil maps when it left nothing out or the
+// patient has not been evaluated since the start). Inputs left out as they
+// arrive are not in it: the engine does not know whose they are. It is for
+// the auditor's pages, which show patients; the metrics never label by
+// patient.
+func (m *Metrics) Omissions(subject string) (inputs, values map[string]int) {
+	if m == nil {
+		return nil, nil
+	}
+	return m.picture.of(subject)
+}
+
+// OmissionTotals is what the gauges deadspace_inputs_left_out and
+// deadspace_values_not_emitted report, by reason.
+func (m *Metrics) OmissionTotals() (inputs, values map[string]int) {
+	if m == nil {
+		return nil, nil
+	}
+	return m.picture.totals()
 }

@@ -59,6 +59,7 @@ func (s *Service) newPages(evs *ui.OpEvents) (*pages, error) {
 	}
 	src := ui.NewLive(ui.LiveConfig{
 		Engine: s.engine, Outbox: s.store, Window: s.cfg.Derivation.Window, Server: s.up.state, Events: evs,
+		Omissions: s.Metrics,
 	})
 	h, err := ui.NewHandler(ui.HandlerConfig{Source: src, Auth: auth, Access: ui.NewAccessLog(f, s.log), Logger: s.log})
 	if err != nil {

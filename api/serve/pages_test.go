@@ -12,6 +12,7 @@ import (
 	"crypto/x509"
 	"encoding/json"
 	"flag"
+	"fmt"
 	"io"
 	"net"
 	"net/http"
@@ -26,6 +27,7 @@ import (
 	"github.com/chromedp/chromedp"
 	"github.com/oauth2-proxy/mockoidc"
 
+	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/api/submit"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
@@ -165,6 +167,29 @@ func TestPagesInBrowser(t *testing.T) {
 	for _, want := range []string{"bed1-stable", "bed5-fall", "no-blood-gas-nearby", "-14.0 mm[Hg] from 03:10", "signed in as a.auditor"} {
 		if !strings.Contains(overview+mustText(t, ctx, "header"), want) {
 			t.Errorf("overview lacks %q", want)
+		}
+	}
+
+	// The overview's inputs left out, patient by patient, are what replay
+	// counts for the same patient (the service's counts come from the
+	// metrics' latest complete evaluation of each patient).
+	shownLeftOut, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]string](`Object.fromEntries([...document.querySelectorAll("main table tbody tr")].filter(tr => tr.querySelector("th")).map(tr => [tr.querySelector("th").textContent.trim(), tr.querySelector("td:nth-of-type(4)").innerText.trim()]))`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, row := range replayDemo(t).Overview.Patients {
+		if !slices.Contains(evaluationOnly, row.ID) {
+			continue
+		}
+		var want []string
+		for _, c := range row.LeftOut {
+			want = append(want, fmt.Sprintf("%s: %d", c.Reason, c.N))
+		}
+		if len(want) == 0 {
+			want = []string{"none"}
+		}
+		if got := strings.Fields(shownLeftOut[row.ID]); strings.Join(got, " ") != strings.Join(strings.Fields(strings.Join(want, "\n")), " ") {
+			t.Errorf("overview: %s's inputs left out are %q, replay counts %q", row.ID, shownLeftOut[row.ID], want)
 		}
 	}
 
@@ -537,4 +562,30 @@ func TestPagesExplainASupersededValue(t *testing.T) {
 	if tl := page("/patient/bed5-fall"); !strings.Contains(tl, "Superseded and withdrawn values") || !strings.Contains(tl, `href="/explain/`+before+`"`) {
 		t.Error("the timeline does not list the superseded value")
 	}
+}
+
+// evaluationOnly are the demo's patients all of whose left-out inputs are
+// left out by an evaluation (none refused or replaced on arrival, which the
+// engine cannot attribute to a patient), so the live overview's counts must
+// equal replay's.
+var evaluationOnly = []string{"bed1-stable", "bed5-fall", "bed6-cooled", "bed7-child"}
+
+// replayDemo replays the demo night with the service's settings, as
+// `replay --html` does.
+func replayDemo(t *testing.T) ui.Report {
+	t.Helper()
+	files, err := filepath.Glob(filepath.Join("..", "..", "testdata", "demo", "*.ndjson"))
+	if err != nil || len(files) == 0 {
+		t.Fatalf("the demo files: %v", err)
+	}
+	opts, err := testConfig("", t.TempDir()).Derivation.Resolve("test")
+	if err != nil {
+		t.Fatal(err)
+	}
+	rec := ui.NewRecorder()
+	out, err := replay.Run(context.Background(), replay.Options{Derive: opts.Derive, Decode: opts.Decode, Encode: opts.Encode, Observe: rec.Add}, files)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return ui.FromReplay(out, rec, opts.Derive.Window, opts.Encode.Issued, "replay of the demo")
 }

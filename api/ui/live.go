@@ -36,6 +36,20 @@ type LiveConfig struct {
 	// since when it has been failing (zero when it is not).
 	Server func() (lastOK, failedSince time.Time)
 	Events *OpEvents
+	// Omissions counts what the derivations as they stand leave out, as
+	// the metrics deadspace_inputs_left_out and
+	// deadspace_values_not_emitted do (api/metrics fits); the overview's
+	// counts by reason come from it, so the pages and the metrics cannot
+	// disagree. Nil leaves the counts empty.
+	Omissions Omissions
+}
+
+// Omissions is what the engine's Evaluated and LeftOut hooks add up to,
+// by reason: per patient, the latest complete evaluation's omissions; in
+// total, those plus the inputs left out as they arrived.
+type Omissions interface {
+	Omissions(subject string) (inputs, values map[string]int)
+	OmissionTotals() (inputs, values map[string]int)
 }
 
 // Live reads the running service.
@@ -236,7 +250,6 @@ func (l *Live) Overview(ctx context.Context) (Overview, error) {
 		}
 	}
 	o := Overview{Source: "the live store"}
-	var unitNotEmitted, unitLeftOut []derive.Reason
 	for _, s := range subjects {
 		p, err := l.read(ctx, s)
 		if err != nil {
@@ -262,46 +275,16 @@ func (l *Live) Overview(ctx context.Context) (Overview, error) {
 		}
 		row.Latest = overviewValues(latest)
 		row.Findings = activeFindings(tl.Findings, latestTime(&tl))
-		// The ledger keeps each blood gas's values not emitted; inputs
-		// that paired with nothing are the stored readings no value cites.
-		cited := make(map[string]bool)
-		seenGas := make(map[string]bool)
-		for _, rec := range p.records {
-			if d := rec.Payload.Derivation; d != nil {
-				cited[d.Gas.Ref] = true
-				for _, u := range d.Used {
-					for _, r := range u.Readings {
-						cited[r.Ref] = true
-					}
-				}
-				if !seenGas[d.Gas.Ref] {
-					seenGas[d.Gas.Ref] = true
-					for _, om := range d.Omitted {
-						unitNotEmitted = append(unitNotEmitted, om.Reason)
-					}
-				}
-			}
-			if f := rec.Payload.Fall; f != nil {
-				for _, r := range append(append([]derive.Reading(nil), f.BaselineReadings...), f.EpisodeReadings...) {
-					cited[r.Ref] = true
-				}
-			}
+		if l.cfg.Omissions != nil {
+			inputs, _ := l.cfg.Omissions.Omissions(s)
+			row.LeftOut = countsOf(inputs)
 		}
-		var leftOut []derive.Reason
-		for _, sr := range p.readings {
-			switch {
-			case !sr.Usable:
-				leftOut = append(leftOut, derive.ReasonEnteredInError)
-			case !cited[sr.Reading.Ref] && sr.Reading.Kind != derive.KindPaCO2 && sr.Reading.Kind != derive.KindHeight:
-				leftOut = append(leftOut, derive.ReasonUnpaired)
-			}
-		}
-		row.LeftOut = countReasons(leftOut)
-		unitLeftOut = append(unitLeftOut, leftOut...)
 		o.Patients = append(o.Patients, row)
 	}
-	o.LeftOut = countReasons(unitLeftOut)
-	o.NotEmitted = countReasons(unitNotEmitted)
+	if l.cfg.Omissions != nil {
+		inputs, values := l.cfg.Omissions.OmissionTotals()
+		o.LeftOut, o.NotEmitted = countsOf(inputs), countsOf(values)
+	}
 	return o, nil
 }
 
@@ -368,6 +351,17 @@ func (l *Live) Explain(ctx context.Context, id string) (Explanation, error) {
 		out.History = append(out.History[:len(out.History)-1], Revision{ID: rec.Key}, Revision{ID: sup.Key, Current: true})
 	}
 	return out, nil
+}
+
+// countsOf orders counts by reason as [countReasons] does.
+func countsOf(byReason map[string]int) []ReasonCount {
+	var rs []derive.Reason
+	for r, n := range byReason {
+		for range n {
+			rs = append(rs, derive.Reason(r))
+		}
+	}
+	return countReasons(rs)
 }
 
 func history(rec engine.Record) []Revision {
