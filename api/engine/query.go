@@ -194,20 +194,87 @@ func (e *Engine) Derivation(ctx context.Context, identifier string) (Record, err
 	if err != nil {
 		return Record{}, fmt.Errorf("engine: derivation: earlier version (kept for the retention only): %w", err)
 	}
+	return e.superseded(ctx, en, old)
+}
+
+// superseded reads old, an earlier version of cur's series, as it was,
+// marked superseded by cur with the reason.
+func (e *Engine) superseded(ctx context.Context, cur, old store.Entry) (Record, error) {
 	rec, err := e.readRecord(ctx, old)
 	if err != nil {
 		return Record{}, err
 	}
-	cur, err := e.readRecord(ctx, en)
+	now, err := e.readRecord(ctx, cur)
 	if err != nil {
 		return Record{}, err
 	}
 	because := "re-derived: an input it was derived from was corrected, or the readings in its window changed; the value with the newer key replaced it"
-	if en.Status == statusWithdrawn {
-		because = "re-derived, then withdrawn: " + cur.Payload.Why
+	if cur.Status == statusWithdrawn {
+		because = "re-derived, then withdrawn: " + now.Payload.Why
 	}
-	rec.Superseded = &Supersession{Key: en.Key, Status: en.Status, Because: because}
+	rec.Superseded = &Supersession{Key: cur.Key, Status: cur.Status, Because: because}
 	return rec, nil
+}
+
+// Version names one version of a derived value's series. Revision counts
+// the keys the series has had: 1 is the first recorded, the current one is
+// the last (a withdrawal keeps its key, so it is the same revision).
+// ServerVersion is the versionId the FHIR server gave the derived
+// Observation when that version was written. Exactly one is set.
+type Version struct {
+	Revision      int
+	ServerVersion string
+}
+
+// DerivationVersion finds one version of a series: the current one as
+// [Engine.Derivation] reads it, an earlier one as it was, marked superseded
+// with what replaced it and why. It returns an error matching [ErrInvalid]
+// for a series of the wrong form or a version named neither or both ways,
+// and [store.ErrNotFound] when the series has no such version or no longer
+// keeps it (earlier versions are kept for the history retention).
+func (e *Engine) DerivationVersion(ctx context.Context, series string, v Version) (Record, error) {
+	if !validIdentifier(series) {
+		return Record{}, fmt.Errorf("%w: series %q: want sha256: and 64 hex digits", ErrInvalid, series)
+	}
+	if v.Revision < 0 || (v.Revision > 0) == (v.ServerVersion != "") {
+		return Record{}, fmt.Errorf("%w: name the version by its revision (from 1) or by the server's versionId, one of the two", ErrInvalid)
+	}
+	cur, err := e.cfg.Store.Entry(ctx, series)
+	if err != nil {
+		return Record{}, fmt.Errorf("engine: derivation version: %w", err)
+	}
+	if n := len(cur.Revisions) + 1; v.Revision > n {
+		return Record{}, fmt.Errorf("engine: derivation version: revision %d of a series with %d: %w", v.Revision, n, store.ErrNotFound)
+	}
+	switch {
+	case v.Revision == len(cur.Revisions)+1:
+		return e.readRecord(ctx, cur)
+	case v.Revision > 0:
+		old, err := e.cfg.Store.EntryVersion(ctx, cur.Revisions[v.Revision-1])
+		if err != nil {
+			return Record{}, fmt.Errorf("engine: derivation version: revision %d (kept for the retention only): %w", v.Revision, err)
+		}
+		return e.superseded(ctx, cur, old)
+	}
+	// A new version keeps the server's ids of the one it replaces until its
+	// own write is acknowledged, so the oldest version that carries the
+	// server's version is the one written as it.
+	for _, k := range cur.Revisions {
+		old, err := e.cfg.Store.EntryVersion(ctx, k)
+		if errors.Is(err, store.ErrNotFound) {
+			continue // pruned with the history
+		}
+		if err != nil {
+			return Record{}, fmt.Errorf("engine: derivation version: %w", err)
+		}
+		if old.ServerVersion == v.ServerVersion {
+			return e.superseded(ctx, cur, old)
+		}
+	}
+	if cur.ServerVersion == v.ServerVersion {
+		return e.readRecord(ctx, cur)
+	}
+	return Record{}, fmt.Errorf("engine: derivation version: no version kept was written as the server's version %q: %w", v.ServerVersion, store.ErrNotFound)
 }
 
 // DerivationByObservation finds a patient's ledger entry by the id of its

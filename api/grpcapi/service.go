@@ -179,11 +179,34 @@ func (s *Server) explain(ctx context.Context, req *pb.ExplainRequest) (engine.Ex
 		if serr != nil {
 			return engine.Explanation{}, serr
 		}
-		_, id, ierr := observationRef(t.Observation.GetId())
+		ref, id, ierr := observationRef(t.Observation.GetId())
 		if ierr != nil {
 			return engine.Explanation{}, ierr
 		}
 		rec, err = s.eng.DerivationByObservation(ctx, subj, id)
+		if _, version := fhirref.Split(ref); err == nil && version != "" {
+			// A version of the Observation on the server: that version of
+			// the value.
+			rec, err = s.eng.DerivationVersion(ctx, rec.Series, engine.Version{ServerVersion: version})
+		}
+	case *pb.ExplainRequest_SeriesVersion:
+		sv := t.SeriesVersion
+		var v engine.Version
+		switch ver := sv.GetVersion().(type) {
+		case *pb.SeriesVersion_Revision:
+			if ver.Revision == 0 {
+				return engine.Explanation{}, badRequest("revision counts from 1")
+			}
+			v.Revision = int(ver.Revision)
+		case *pb.SeriesVersion_ServerVersion:
+			if ver.ServerVersion == "" {
+				return engine.Explanation{}, badRequest("server_version is empty")
+			}
+			v.ServerVersion = ver.ServerVersion
+		default:
+			return engine.Explanation{}, badRequest("series_version: name the version by revision or server_version")
+		}
+		rec, err = s.eng.DerivationVersion(ctx, sv.GetSeries(), v)
 	case *pb.ExplainRequest_BloodGas:
 		subj, serr := subject(t.BloodGas.GetSubject())
 		if serr != nil {
@@ -195,7 +218,7 @@ func (s *Server) explain(ctx context.Context, req *pb.ExplainRequest) (engine.Ex
 		}
 		return s.eng.ExplainBloodGas(ctx, subj, ref)
 	default:
-		return engine.Explanation{}, badRequest("name a target: identifier, observation or blood_gas")
+		return engine.Explanation{}, badRequest("name a target: identifier, observation, blood_gas or series_version")
 	}
 	if err != nil {
 		return engine.Explanation{}, err

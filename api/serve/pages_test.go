@@ -498,6 +498,7 @@ func TestPagesExplainASupersededValue(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
+	var series string
 	gradientKey := func() string {
 		t.Helper()
 		recs, err := s.svc.Engine().Derivations(ctx, "Patient/bed5-fall", time.Time{}, time.Unix(1<<40, 0), "", 1000)
@@ -506,6 +507,7 @@ func TestPagesExplainASupersededValue(t *testing.T) {
 		}
 		for _, r := range recs {
 			if r.Code == derive.CodeGradient && r.EffectiveAt.Format("15:04") == "03:30" {
+				series = r.Series
 				return r.Key
 			}
 		}
@@ -527,7 +529,7 @@ func TestPagesExplainASupersededValue(t *testing.T) {
 		t.Fatal("the correction did not change the gradient's key")
 	}
 
-	page := func(path string) string {
+	get := func(path string) (int, string) {
 		t.Helper()
 		req, _ := http.NewRequest(http.MethodGet, "http://"+s.svc.UIAddr()+path, nil)
 		req.Header.Set("X-Remote-User", "b.clinician")
@@ -540,24 +542,42 @@ func TestPagesExplainASupersededValue(t *testing.T) {
 		if _, err := io.Copy(&b, resp.Body); err != nil {
 			t.Fatal(err)
 		}
-		if resp.StatusCode != http.StatusOK {
-			t.Fatalf("%s: status %d", path, resp.StatusCode)
-		}
-		return b.String()
+		return resp.StatusCode, b.String()
 	}
-	old := page("/explain/" + before)
-	for _, want := range []string{
-		`<span class="status">superseded</span>`,
-		`href="/explain/` + after + `"`, // the value that replaced it
-		">16.0 mm[Hg]<",                 // the value as it was: 38 − 22
-		"Observation/bed5-fall-abg-2/_history/1",
-	} {
-		if !strings.Contains(old, want) {
-			t.Errorf("the superseded explanation lacks %q", want)
+	page := func(path string) string {
+		t.Helper()
+		code, body := get(path)
+		if code != http.StatusOK {
+			t.Fatalf("%s: status %d", path, code)
+		}
+		return body
+	}
+	// The earlier value, by its key and by its series and revision 1.
+	for _, path := range []string{"/explain/" + before, "/explain/" + series + "?revision=1"} {
+		old := page(path)
+		for _, want := range []string{
+			`<span class="status">superseded</span>`,
+			`href="/explain/` + after + `"`, // the value that replaced it
+			">16.0 mm[Hg]<",                 // the value as it was: 38 − 22
+			"Observation/bed5-fall-abg-2/_history/1",
+		} {
+			if !strings.Contains(old, want) {
+				t.Errorf("%s: the superseded explanation lacks %q", path, want)
+			}
 		}
 	}
-	if cur := page("/explain/" + after); !strings.Contains(cur, ">19.0 mm[Hg]<") || !strings.Contains(cur, "_history/2") {
-		t.Error("the current explanation does not show the corrected value 41 − 22 from version 2")
+	// The current value, by its key and by its series and revision 2.
+	for _, path := range []string{"/explain/" + after, "/explain/" + series + "?revision=2"} {
+		if cur := page(path); !strings.Contains(cur, ">19.0 mm[Hg]<") || !strings.Contains(cur, "_history/2") || strings.Contains(cur, `<span class="status">superseded</span>`) {
+			t.Errorf("%s: the current explanation does not show the corrected value 41 − 22 from version 2, unmarked", path)
+		}
+	}
+	// Versions the series never had (standalone, nothing was written to a
+	// server, so no server version names one).
+	for _, q := range []string{"?revision=3", "?revision=0", "?revision=x", "?server-version=1"} {
+		if code, _ := get("/explain/" + series + q); code != http.StatusNotFound {
+			t.Errorf("/explain/{series}%s: status %d, want 404", q, code)
+		}
 	}
 	if tl := page("/patient/bed5-fall"); !strings.Contains(tl, "Superseded and withdrawn values") || !strings.Contains(tl, `href="/explain/`+before+`"`) {
 		t.Error("the timeline does not list the superseded value")

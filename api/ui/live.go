@@ -297,6 +297,25 @@ func (l *Live) Explain(ctx context.Context, id string) (Explanation, error) {
 	if err != nil {
 		return Explanation{}, fmt.Errorf("ui: explain: %w", err)
 	}
+	return l.explain(ctx, id, rec)
+}
+
+// ExplainVersion implements [VersionExplainer]: one version of a series,
+// by its revision or the server's versionId; an earlier one is explained
+// as it was, marked superseded with what replaced it and why.
+func (l *Live) ExplainVersion(ctx context.Context, series string, revision int, serverVersion string) (Explanation, error) {
+	rec, err := l.cfg.Engine.DerivationVersion(ctx, series, engine.Version{Revision: revision, ServerVersion: serverVersion})
+	if errors.Is(err, store.ErrNotFound) || errors.Is(err, engine.ErrInvalid) {
+		return Explanation{}, ErrNotFound
+	}
+	if err != nil {
+		return Explanation{}, fmt.Errorf("ui: explain a version: %w", err)
+	}
+	return l.explain(ctx, rec.Key, rec)
+}
+
+// explain explains rec, found by id (a key or a series).
+func (l *Live) explain(ctx context.Context, id string, rec engine.Record) (Explanation, error) {
 	if rec.Key != id && rec.Series != id {
 		// An engine that no longer keeps the earlier version answers its
 		// key with the value that replaced it.

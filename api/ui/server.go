@@ -8,6 +8,7 @@ import (
 	"errors"
 	"log/slog"
 	"net/http"
+	"strconv"
 	"strings"
 	"sync/atomic"
 	"time"
@@ -164,7 +165,7 @@ func (h *Handler) explain(w http.ResponseWriter, r *http.Request, user string) {
 		h.fail(w, r, user, ErrNotFound)
 		return
 	}
-	ex, err := h.src.Explain(r.Context(), id)
+	ex, err := h.explainTarget(r, id)
 	if err != nil {
 		h.fail(w, r, user, err)
 		return
@@ -174,6 +175,36 @@ func (h *Handler) explain(w http.ResponseWriter, r *http.Request, user string) {
 		return
 	}
 	h.page(w, r, http.StatusOK, &Page{Title: "how a value was made", User: user, Explanation: &ex})
+}
+
+// VersionExplainer is a [Source] that can also explain one version of a
+// value's series: /explain/{series}?revision=N (1 the series' first key)
+// or ?server-version=V (the FHIR server's versionId of the Observation).
+type VersionExplainer interface {
+	// ExplainVersion names the version by revision (from 1) or, when
+	// revision is 0, by the server's versionId.
+	ExplainVersion(ctx context.Context, series string, revision int, serverVersion string) (Explanation, error)
+}
+
+// explainTarget explains id, or the version of series id the query names.
+func (h *Handler) explainTarget(r *http.Request, id string) (Explanation, error) {
+	q := r.URL.Query()
+	if !q.Has("revision") && !q.Has("server-version") {
+		return h.src.Explain(r.Context(), id)
+	}
+	ve, ok := h.src.(VersionExplainer)
+	if !ok {
+		return Explanation{}, ErrNotFound
+	}
+	revision := 0
+	if q.Has("revision") {
+		n, err := strconv.Atoi(q.Get("revision"))
+		if err != nil || n < 1 {
+			return Explanation{}, ErrNotFound
+		}
+		revision = n
+	}
+	return ve.ExplainVersion(r.Context(), id, revision, q.Get("server-version"))
 }
 
 func (h *Handler) operations(w http.ResponseWriter, r *http.Request, user string) {

@@ -1065,6 +1065,7 @@ type ExplainRequest struct {
 	//	*ExplainRequest_Identifier
 	//	*ExplainRequest_Observation
 	//	*ExplainRequest_BloodGas
+	//	*ExplainRequest_SeriesVersion
 	Target        isExplainRequest_Target `protobuf_oneof:"target"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -1134,6 +1135,15 @@ func (x *ExplainRequest) GetBloodGas() *ResourceId {
 	return nil
 }
 
+func (x *ExplainRequest) GetSeriesVersion() *SeriesVersion {
+	if x != nil {
+		if x, ok := x.Target.(*ExplainRequest_SeriesVersion); ok {
+			return x.SeriesVersion
+		}
+	}
+	return nil
+}
+
 type isExplainRequest_Target interface {
 	isExplainRequest_Target()
 }
@@ -1155,11 +1165,19 @@ type ExplainRequest_BloodGas struct {
 	BloodGas *ResourceId `protobuf:"bytes,3,opt,name=blood_gas,json=bloodGas,proto3,oneof"`
 }
 
+type ExplainRequest_SeriesVersion struct {
+	// One version of a derived value's series: an earlier one is explained
+	// as it was, with superseded set.
+	SeriesVersion *SeriesVersion `protobuf:"bytes,4,opt,name=series_version,json=seriesVersion,proto3,oneof"`
+}
+
 func (*ExplainRequest_Identifier) isExplainRequest_Target() {}
 
 func (*ExplainRequest_Observation) isExplainRequest_Target() {}
 
 func (*ExplainRequest_BloodGas) isExplainRequest_Target() {}
+
+func (*ExplainRequest_SeriesVersion) isExplainRequest_Target() {}
 
 // ResourceId is a resource id within one patient's data. The patient is
 // required because the store indexes derivations by patient, not by id.
@@ -1167,8 +1185,11 @@ type ResourceId struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// "Patient/x" or "x".
 	Subject string `protobuf:"bytes,1,opt,name=subject,proto3" json:"subject,omitempty"`
-	// An Observation id ("abc", "Observation/abc" and a version suffix are
-	// accepted; the version is ignored).
+	// An Observation id ("abc", "Observation/abc", either with a
+	// "/_history/v" suffix). For an observation target the version is the
+	// versionId the FHIR server gave the derived Observation, and picks that
+	// version of the value (an earlier one is explained as it was, with
+	// superseded set); for a blood_gas target it is ignored.
 	Id            string `protobuf:"bytes,2,opt,name=id,proto3" json:"id,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -1218,6 +1239,105 @@ func (x *ResourceId) GetId() string {
 	return ""
 }
 
+// SeriesVersion names one version of a derived value: its series (the
+// identifier that stays when inputs are corrected) and either its revision
+// or the server's versionId.
+type SeriesVersion struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The series identifier value, "sha256:" and 64 hex digits.
+	Series string `protobuf:"bytes,1,opt,name=series,proto3" json:"series,omitempty"`
+	// Types that are valid to be assigned to Version:
+	//
+	//	*SeriesVersion_Revision
+	//	*SeriesVersion_ServerVersion
+	Version       isSeriesVersion_Version `protobuf_oneof:"version"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SeriesVersion) Reset() {
+	*x = SeriesVersion{}
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[13]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SeriesVersion) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SeriesVersion) ProtoMessage() {}
+
+func (x *SeriesVersion) ProtoReflect() protoreflect.Message {
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[13]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SeriesVersion.ProtoReflect.Descriptor instead.
+func (*SeriesVersion) Descriptor() ([]byte, []int) {
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{13}
+}
+
+func (x *SeriesVersion) GetSeries() string {
+	if x != nil {
+		return x.Series
+	}
+	return ""
+}
+
+func (x *SeriesVersion) GetVersion() isSeriesVersion_Version {
+	if x != nil {
+		return x.Version
+	}
+	return nil
+}
+
+func (x *SeriesVersion) GetRevision() uint32 {
+	if x != nil {
+		if x, ok := x.Version.(*SeriesVersion_Revision); ok {
+			return x.Revision
+		}
+	}
+	return 0
+}
+
+func (x *SeriesVersion) GetServerVersion() string {
+	if x != nil {
+		if x, ok := x.Version.(*SeriesVersion_ServerVersion); ok {
+			return x.ServerVersion
+		}
+	}
+	return ""
+}
+
+type isSeriesVersion_Version interface {
+	isSeriesVersion_Version()
+}
+
+type SeriesVersion_Revision struct {
+	// 1 for the first key the series had; the current key is the last
+	// (Entry.revisions lists the earlier ones, oldest first). A withdrawal
+	// keeps its key, so it does not count as a revision.
+	Revision uint32 `protobuf:"varint,2,opt,name=revision,proto3,oneof"`
+}
+
+type SeriesVersion_ServerVersion struct {
+	// The versionId the FHIR server gave the derived Observation when that
+	// version was written.
+	ServerVersion string `protobuf:"bytes,3,opt,name=server_version,json=serverVersion,proto3,oneof"`
+}
+
+func (*SeriesVersion_Revision) isSeriesVersion_Version() {}
+
+func (*SeriesVersion_ServerVersion) isSeriesVersion_Version() {}
+
 // ExplainResponse explains one derivation.
 type ExplainResponse struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -1263,7 +1383,7 @@ type ExplainResponse struct {
 
 func (x *ExplainResponse) Reset() {
 	*x = ExplainResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[13]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1275,7 +1395,7 @@ func (x *ExplainResponse) String() string {
 func (*ExplainResponse) ProtoMessage() {}
 
 func (x *ExplainResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[13]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1288,7 +1408,7 @@ func (x *ExplainResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ExplainResponse.ProtoReflect.Descriptor instead.
 func (*ExplainResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{13}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{14}
 }
 
 func (x *ExplainResponse) GetEntry() *Entry {
@@ -1423,7 +1543,7 @@ type Supersession struct {
 
 func (x *Supersession) Reset() {
 	*x = Supersession{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1435,7 +1555,7 @@ func (x *Supersession) String() string {
 func (*Supersession) ProtoMessage() {}
 
 func (x *Supersession) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[14]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1448,7 +1568,7 @@ func (x *Supersession) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Supersession.ProtoReflect.Descriptor instead.
 func (*Supersession) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{14}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{15}
 }
 
 func (x *Supersession) GetKey() string {
@@ -1502,7 +1622,7 @@ type ExplainedInput struct {
 
 func (x *ExplainedInput) Reset() {
 	*x = ExplainedInput{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1514,7 +1634,7 @@ func (x *ExplainedInput) String() string {
 func (*ExplainedInput) ProtoMessage() {}
 
 func (x *ExplainedInput) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[15]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1527,7 +1647,7 @@ func (x *ExplainedInput) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ExplainedInput.ProtoReflect.Descriptor instead.
 func (*ExplainedInput) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{15}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{16}
 }
 
 func (x *ExplainedInput) GetReference() string {
@@ -1636,7 +1756,7 @@ type PatientFacts struct {
 
 func (x *PatientFacts) Reset() {
 	*x = PatientFacts{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1648,7 +1768,7 @@ func (x *PatientFacts) String() string {
 func (*PatientFacts) ProtoMessage() {}
 
 func (x *PatientFacts) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[16]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1661,7 +1781,7 @@ func (x *PatientFacts) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use PatientFacts.ProtoReflect.Descriptor instead.
 func (*PatientFacts) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{16}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{17}
 }
 
 func (x *PatientFacts) GetReference() string {
@@ -1707,7 +1827,7 @@ type Entry struct {
 
 func (x *Entry) Reset() {
 	*x = Entry{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1719,7 +1839,7 @@ func (x *Entry) String() string {
 func (*Entry) ProtoMessage() {}
 
 func (x *Entry) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[17]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1732,7 +1852,7 @@ func (x *Entry) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Entry.ProtoReflect.Descriptor instead.
 func (*Entry) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{17}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{18}
 }
 
 func (x *Entry) GetSeries() string {
@@ -1817,7 +1937,7 @@ type ListDerivationsRequest struct {
 
 func (x *ListDerivationsRequest) Reset() {
 	*x = ListDerivationsRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1829,7 +1949,7 @@ func (x *ListDerivationsRequest) String() string {
 func (*ListDerivationsRequest) ProtoMessage() {}
 
 func (x *ListDerivationsRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[18]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1842,7 +1962,7 @@ func (x *ListDerivationsRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDerivationsRequest.ProtoReflect.Descriptor instead.
 func (*ListDerivationsRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{18}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{19}
 }
 
 func (x *ListDerivationsRequest) GetSubject() string {
@@ -1892,7 +2012,7 @@ type ListDerivationsResponse struct {
 
 func (x *ListDerivationsResponse) Reset() {
 	*x = ListDerivationsResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1904,7 +2024,7 @@ func (x *ListDerivationsResponse) String() string {
 func (*ListDerivationsResponse) ProtoMessage() {}
 
 func (x *ListDerivationsResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[19]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1917,7 +2037,7 @@ func (x *ListDerivationsResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDerivationsResponse.ProtoReflect.Descriptor instead.
 func (*ListDerivationsResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{19}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{20}
 }
 
 func (x *ListDerivationsResponse) GetDerivations() []*Derivation {
@@ -1947,7 +2067,7 @@ type Derivation struct {
 
 func (x *Derivation) Reset() {
 	*x = Derivation{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -1959,7 +2079,7 @@ func (x *Derivation) String() string {
 func (*Derivation) ProtoMessage() {}
 
 func (x *Derivation) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[20]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -1972,7 +2092,7 @@ func (x *Derivation) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Derivation.ProtoReflect.Descriptor instead.
 func (*Derivation) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{20}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{21}
 }
 
 func (x *Derivation) GetEntry() *Entry {
@@ -2019,7 +2139,7 @@ type WatchDerivationsRequest struct {
 
 func (x *WatchDerivationsRequest) Reset() {
 	*x = WatchDerivationsRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2031,7 +2151,7 @@ func (x *WatchDerivationsRequest) String() string {
 func (*WatchDerivationsRequest) ProtoMessage() {}
 
 func (x *WatchDerivationsRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[21]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2044,7 +2164,7 @@ func (x *WatchDerivationsRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WatchDerivationsRequest.ProtoReflect.Descriptor instead.
 func (*WatchDerivationsRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{21}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{22}
 }
 
 func (x *WatchDerivationsRequest) GetResumeToken() string {
@@ -2085,7 +2205,7 @@ type WatchDerivationsResponse struct {
 
 func (x *WatchDerivationsResponse) Reset() {
 	*x = WatchDerivationsResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2097,7 +2217,7 @@ func (x *WatchDerivationsResponse) String() string {
 func (*WatchDerivationsResponse) ProtoMessage() {}
 
 func (x *WatchDerivationsResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[22]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2110,7 +2230,7 @@ func (x *WatchDerivationsResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use WatchDerivationsResponse.ProtoReflect.Descriptor instead.
 func (*WatchDerivationsResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{22}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{23}
 }
 
 func (x *WatchDerivationsResponse) GetResumeToken() string {
@@ -2147,7 +2267,7 @@ type DerivationEvent struct {
 
 func (x *DerivationEvent) Reset() {
 	*x = DerivationEvent{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2159,7 +2279,7 @@ func (x *DerivationEvent) String() string {
 func (*DerivationEvent) ProtoMessage() {}
 
 func (x *DerivationEvent) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[23]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2172,7 +2292,7 @@ func (x *DerivationEvent) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use DerivationEvent.ProtoReflect.Descriptor instead.
 func (*DerivationEvent) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{23}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{24}
 }
 
 func (x *DerivationEvent) GetSeries() string {
@@ -2235,7 +2355,7 @@ type ListDeadLettersRequest struct {
 
 func (x *ListDeadLettersRequest) Reset() {
 	*x = ListDeadLettersRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2247,7 +2367,7 @@ func (x *ListDeadLettersRequest) String() string {
 func (*ListDeadLettersRequest) ProtoMessage() {}
 
 func (x *ListDeadLettersRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[24]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2260,7 +2380,7 @@ func (x *ListDeadLettersRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDeadLettersRequest.ProtoReflect.Descriptor instead.
 func (*ListDeadLettersRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{24}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{25}
 }
 
 func (x *ListDeadLettersRequest) GetLimit() int32 {
@@ -2282,7 +2402,7 @@ type ListDeadLettersResponse struct {
 
 func (x *ListDeadLettersResponse) Reset() {
 	*x = ListDeadLettersResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2294,7 +2414,7 @@ func (x *ListDeadLettersResponse) String() string {
 func (*ListDeadLettersResponse) ProtoMessage() {}
 
 func (x *ListDeadLettersResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[25]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2307,7 +2427,7 @@ func (x *ListDeadLettersResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use ListDeadLettersResponse.ProtoReflect.Descriptor instead.
 func (*ListDeadLettersResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{25}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{26}
 }
 
 func (x *ListDeadLettersResponse) GetDeadLetters() []*DeadLetter {
@@ -2350,7 +2470,7 @@ type DeadLetter struct {
 
 func (x *DeadLetter) Reset() {
 	*x = DeadLetter{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2362,7 +2482,7 @@ func (x *DeadLetter) String() string {
 func (*DeadLetter) ProtoMessage() {}
 
 func (x *DeadLetter) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[26]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2375,7 +2495,7 @@ func (x *DeadLetter) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use DeadLetter.ProtoReflect.Descriptor instead.
 func (*DeadLetter) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{26}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{27}
 }
 
 func (x *DeadLetter) GetId() uint64 {
@@ -2444,7 +2564,7 @@ type GetDeadLetterRequest struct {
 
 func (x *GetDeadLetterRequest) Reset() {
 	*x = GetDeadLetterRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2456,7 +2576,7 @@ func (x *GetDeadLetterRequest) String() string {
 func (*GetDeadLetterRequest) ProtoMessage() {}
 
 func (x *GetDeadLetterRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[27]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2469,7 +2589,7 @@ func (x *GetDeadLetterRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use GetDeadLetterRequest.ProtoReflect.Descriptor instead.
 func (*GetDeadLetterRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{27}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{28}
 }
 
 func (x *GetDeadLetterRequest) GetId() uint64 {
@@ -2489,7 +2609,7 @@ type RetryDeadLetterRequest struct {
 
 func (x *RetryDeadLetterRequest) Reset() {
 	*x = RetryDeadLetterRequest{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2501,7 +2621,7 @@ func (x *RetryDeadLetterRequest) String() string {
 func (*RetryDeadLetterRequest) ProtoMessage() {}
 
 func (x *RetryDeadLetterRequest) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[28]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2514,7 +2634,7 @@ func (x *RetryDeadLetterRequest) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use RetryDeadLetterRequest.ProtoReflect.Descriptor instead.
 func (*RetryDeadLetterRequest) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{28}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{29}
 }
 
 func (x *RetryDeadLetterRequest) GetId() uint64 {
@@ -2534,7 +2654,7 @@ type RetryDeadLetterResponse struct {
 
 func (x *RetryDeadLetterResponse) Reset() {
 	*x = RetryDeadLetterResponse{}
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[30]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -2546,7 +2666,7 @@ func (x *RetryDeadLetterResponse) String() string {
 func (*RetryDeadLetterResponse) ProtoMessage() {}
 
 func (x *RetryDeadLetterResponse) ProtoReflect() protoreflect.Message {
-	mi := &file_deadspace_v1_deadspace_proto_msgTypes[29]
+	mi := &file_deadspace_v1_deadspace_proto_msgTypes[30]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -2559,7 +2679,7 @@ func (x *RetryDeadLetterResponse) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use RetryDeadLetterResponse.ProtoReflect.Descriptor instead.
 func (*RetryDeadLetterResponse) Descriptor() ([]byte, []int) {
-	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{29}
+	return file_deadspace_v1_deadspace_proto_rawDescGZIP(), []int{30}
 }
 
 func (x *RetryDeadLetterResponse) GetOutboxId() uint64 {
@@ -2647,18 +2767,24 @@ const file_deadspace_v1_deadspace_proto_rawDesc = "" +
 	"\tRejection\x12\x14\n" +
 	"\x05index\x18\x01 \x01(\x05R\x05index\x12\x16\n" +
 	"\x06reason\x18\x02 \x01(\tR\x06reason\x12\x16\n" +
-	"\x06detail\x18\x03 \x01(\tR\x06detail\"\xb3\x01\n" +
+	"\x06detail\x18\x03 \x01(\tR\x06detail\"\xf9\x01\n" +
 	"\x0eExplainRequest\x12 \n" +
 	"\n" +
 	"identifier\x18\x01 \x01(\tH\x00R\n" +
 	"identifier\x12<\n" +
 	"\vobservation\x18\x02 \x01(\v2\x18.deadspace.v1.ResourceIdH\x00R\vobservation\x127\n" +
-	"\tblood_gas\x18\x03 \x01(\v2\x18.deadspace.v1.ResourceIdH\x00R\bbloodGasB\b\n" +
+	"\tblood_gas\x18\x03 \x01(\v2\x18.deadspace.v1.ResourceIdH\x00R\bbloodGas\x12D\n" +
+	"\x0eseries_version\x18\x04 \x01(\v2\x1b.deadspace.v1.SeriesVersionH\x00R\rseriesVersionB\b\n" +
 	"\x06target\"6\n" +
 	"\n" +
 	"ResourceId\x12\x18\n" +
 	"\asubject\x18\x01 \x01(\tR\asubject\x12\x0e\n" +
-	"\x02id\x18\x02 \x01(\tR\x02id\"\xb5\x06\n" +
+	"\x02id\x18\x02 \x01(\tR\x02id\"y\n" +
+	"\rSeriesVersion\x12\x16\n" +
+	"\x06series\x18\x01 \x01(\tR\x06series\x12\x1c\n" +
+	"\brevision\x18\x02 \x01(\rH\x00R\brevision\x12'\n" +
+	"\x0eserver_version\x18\x03 \x01(\tH\x00R\rserverVersionB\t\n" +
+	"\aversion\"\xb5\x06\n" +
 	"\x0fExplainResponse\x12)\n" +
 	"\x05entry\x18\x01 \x01(\v2\x13.deadspace.v1.EntryR\x05entry\x12\x1e\n" +
 	"\n" +
@@ -2811,7 +2937,7 @@ func file_deadspace_v1_deadspace_proto_rawDescGZIP() []byte {
 }
 
 var file_deadspace_v1_deadspace_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 30)
+var file_deadspace_v1_deadspace_proto_msgTypes = make([]protoimpl.MessageInfo, 31)
 var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(ResultKind)(0),                  // 0: deadspace.v1.ResultKind
 	(Flag)(0),                        // 1: deadspace.v1.Flag
@@ -2828,88 +2954,90 @@ var file_deadspace_v1_deadspace_proto_goTypes = []any{
 	(*Rejection)(nil),                // 12: deadspace.v1.Rejection
 	(*ExplainRequest)(nil),           // 13: deadspace.v1.ExplainRequest
 	(*ResourceId)(nil),               // 14: deadspace.v1.ResourceId
-	(*ExplainResponse)(nil),          // 15: deadspace.v1.ExplainResponse
-	(*Supersession)(nil),             // 16: deadspace.v1.Supersession
-	(*ExplainedInput)(nil),           // 17: deadspace.v1.ExplainedInput
-	(*PatientFacts)(nil),             // 18: deadspace.v1.PatientFacts
-	(*Entry)(nil),                    // 19: deadspace.v1.Entry
-	(*ListDerivationsRequest)(nil),   // 20: deadspace.v1.ListDerivationsRequest
-	(*ListDerivationsResponse)(nil),  // 21: deadspace.v1.ListDerivationsResponse
-	(*Derivation)(nil),               // 22: deadspace.v1.Derivation
-	(*WatchDerivationsRequest)(nil),  // 23: deadspace.v1.WatchDerivationsRequest
-	(*WatchDerivationsResponse)(nil), // 24: deadspace.v1.WatchDerivationsResponse
-	(*DerivationEvent)(nil),          // 25: deadspace.v1.DerivationEvent
-	(*ListDeadLettersRequest)(nil),   // 26: deadspace.v1.ListDeadLettersRequest
-	(*ListDeadLettersResponse)(nil),  // 27: deadspace.v1.ListDeadLettersResponse
-	(*DeadLetter)(nil),               // 28: deadspace.v1.DeadLetter
-	(*GetDeadLetterRequest)(nil),     // 29: deadspace.v1.GetDeadLetterRequest
-	(*RetryDeadLetterRequest)(nil),   // 30: deadspace.v1.RetryDeadLetterRequest
-	(*RetryDeadLetterResponse)(nil),  // 31: deadspace.v1.RetryDeadLetterResponse
-	(*timestamppb.Timestamp)(nil),    // 32: google.protobuf.Timestamp
+	(*SeriesVersion)(nil),            // 15: deadspace.v1.SeriesVersion
+	(*ExplainResponse)(nil),          // 16: deadspace.v1.ExplainResponse
+	(*Supersession)(nil),             // 17: deadspace.v1.Supersession
+	(*ExplainedInput)(nil),           // 18: deadspace.v1.ExplainedInput
+	(*PatientFacts)(nil),             // 19: deadspace.v1.PatientFacts
+	(*Entry)(nil),                    // 20: deadspace.v1.Entry
+	(*ListDerivationsRequest)(nil),   // 21: deadspace.v1.ListDerivationsRequest
+	(*ListDerivationsResponse)(nil),  // 22: deadspace.v1.ListDerivationsResponse
+	(*Derivation)(nil),               // 23: deadspace.v1.Derivation
+	(*WatchDerivationsRequest)(nil),  // 24: deadspace.v1.WatchDerivationsRequest
+	(*WatchDerivationsResponse)(nil), // 25: deadspace.v1.WatchDerivationsResponse
+	(*DerivationEvent)(nil),          // 26: deadspace.v1.DerivationEvent
+	(*ListDeadLettersRequest)(nil),   // 27: deadspace.v1.ListDeadLettersRequest
+	(*ListDeadLettersResponse)(nil),  // 28: deadspace.v1.ListDeadLettersResponse
+	(*DeadLetter)(nil),               // 29: deadspace.v1.DeadLetter
+	(*GetDeadLetterRequest)(nil),     // 30: deadspace.v1.GetDeadLetterRequest
+	(*RetryDeadLetterRequest)(nil),   // 31: deadspace.v1.RetryDeadLetterRequest
+	(*RetryDeadLetterResponse)(nil),  // 32: deadspace.v1.RetryDeadLetterResponse
+	(*timestamppb.Timestamp)(nil),    // 33: google.protobuf.Timestamp
 }
 var file_deadspace_v1_deadspace_proto_depIdxs = []int32{
 	4,  // 0: deadspace.v1.ComputeResponse.results:type_name -> deadspace.v1.Result
 	9,  // 1: deadspace.v1.ComputeResponse.inputs_left_out:type_name -> deadspace.v1.Omission
 	9,  // 2: deadspace.v1.ComputeResponse.values_not_emitted:type_name -> deadspace.v1.Omission
 	0,  // 3: deadspace.v1.Result.kind:type_name -> deadspace.v1.ResultKind
-	32, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
+	33, // 4: deadspace.v1.Result.effective:type_name -> google.protobuf.Timestamp
 	5,  // 5: deadspace.v1.Result.values:type_name -> deadspace.v1.DerivedValue
 	7,  // 6: deadspace.v1.Result.pairings:type_name -> deadspace.v1.Pairing
 	8,  // 7: deadspace.v1.Result.fall:type_name -> deadspace.v1.FallFinding
 	1,  // 8: deadspace.v1.DerivedValue.flag:type_name -> deadspace.v1.Flag
 	6,  // 9: deadspace.v1.DerivedValue.terms:type_name -> deadspace.v1.Term
-	32, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
-	32, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
+	33, // 10: deadspace.v1.FallFinding.onset:type_name -> google.protobuf.Timestamp
+	33, // 11: deadspace.v1.FallFinding.confirmed:type_name -> google.protobuf.Timestamp
 	12, // 12: deadspace.v1.SubmitResponse.rejected:type_name -> deadspace.v1.Rejection
 	14, // 13: deadspace.v1.ExplainRequest.observation:type_name -> deadspace.v1.ResourceId
 	14, // 14: deadspace.v1.ExplainRequest.blood_gas:type_name -> deadspace.v1.ResourceId
-	19, // 15: deadspace.v1.ExplainResponse.entry:type_name -> deadspace.v1.Entry
-	0,  // 16: deadspace.v1.ExplainResponse.kind:type_name -> deadspace.v1.ResultKind
-	32, // 17: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
-	5,  // 18: deadspace.v1.ExplainResponse.values:type_name -> deadspace.v1.DerivedValue
-	17, // 19: deadspace.v1.ExplainResponse.inputs:type_name -> deadspace.v1.ExplainedInput
-	7,  // 20: deadspace.v1.ExplainResponse.pairings:type_name -> deadspace.v1.Pairing
-	9,  // 21: deadspace.v1.ExplainResponse.values_not_emitted:type_name -> deadspace.v1.Omission
-	8,  // 22: deadspace.v1.ExplainResponse.fall:type_name -> deadspace.v1.FallFinding
-	18, // 23: deadspace.v1.ExplainResponse.patient:type_name -> deadspace.v1.PatientFacts
-	9,  // 24: deadspace.v1.ExplainResponse.blood_gas_omission:type_name -> deadspace.v1.Omission
-	16, // 25: deadspace.v1.ExplainResponse.superseded:type_name -> deadspace.v1.Supersession
-	32, // 26: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
-	32, // 27: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
-	32, // 28: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
-	32, // 29: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
-	32, // 30: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
-	22, // 31: deadspace.v1.ListDerivationsResponse.derivations:type_name -> deadspace.v1.Derivation
-	19, // 32: deadspace.v1.Derivation.entry:type_name -> deadspace.v1.Entry
-	0,  // 33: deadspace.v1.Derivation.kind:type_name -> deadspace.v1.ResultKind
-	5,  // 34: deadspace.v1.Derivation.value:type_name -> deadspace.v1.DerivedValue
-	25, // 35: deadspace.v1.WatchDerivationsResponse.event:type_name -> deadspace.v1.DerivationEvent
-	32, // 36: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
-	22, // 37: deadspace.v1.DerivationEvent.derivation:type_name -> deadspace.v1.Derivation
-	28, // 38: deadspace.v1.ListDeadLettersResponse.dead_letters:type_name -> deadspace.v1.DeadLetter
-	32, // 39: deadspace.v1.DeadLetter.buried_at:type_name -> google.protobuf.Timestamp
-	32, // 40: deadspace.v1.DeadLetter.queued_at:type_name -> google.protobuf.Timestamp
-	2,  // 41: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
-	10, // 42: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
-	13, // 43: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
-	20, // 44: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
-	23, // 45: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
-	26, // 46: deadspace.v1.DeadSpace.ListDeadLetters:input_type -> deadspace.v1.ListDeadLettersRequest
-	29, // 47: deadspace.v1.DeadSpace.GetDeadLetter:input_type -> deadspace.v1.GetDeadLetterRequest
-	30, // 48: deadspace.v1.DeadSpace.RetryDeadLetter:input_type -> deadspace.v1.RetryDeadLetterRequest
-	3,  // 49: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
-	11, // 50: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
-	15, // 51: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
-	21, // 52: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
-	24, // 53: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
-	27, // 54: deadspace.v1.DeadSpace.ListDeadLetters:output_type -> deadspace.v1.ListDeadLettersResponse
-	28, // 55: deadspace.v1.DeadSpace.GetDeadLetter:output_type -> deadspace.v1.DeadLetter
-	31, // 56: deadspace.v1.DeadSpace.RetryDeadLetter:output_type -> deadspace.v1.RetryDeadLetterResponse
-	49, // [49:57] is the sub-list for method output_type
-	41, // [41:49] is the sub-list for method input_type
-	41, // [41:41] is the sub-list for extension type_name
-	41, // [41:41] is the sub-list for extension extendee
-	0,  // [0:41] is the sub-list for field type_name
+	15, // 15: deadspace.v1.ExplainRequest.series_version:type_name -> deadspace.v1.SeriesVersion
+	20, // 16: deadspace.v1.ExplainResponse.entry:type_name -> deadspace.v1.Entry
+	0,  // 17: deadspace.v1.ExplainResponse.kind:type_name -> deadspace.v1.ResultKind
+	33, // 18: deadspace.v1.ExplainResponse.effective:type_name -> google.protobuf.Timestamp
+	5,  // 19: deadspace.v1.ExplainResponse.values:type_name -> deadspace.v1.DerivedValue
+	18, // 20: deadspace.v1.ExplainResponse.inputs:type_name -> deadspace.v1.ExplainedInput
+	7,  // 21: deadspace.v1.ExplainResponse.pairings:type_name -> deadspace.v1.Pairing
+	9,  // 22: deadspace.v1.ExplainResponse.values_not_emitted:type_name -> deadspace.v1.Omission
+	8,  // 23: deadspace.v1.ExplainResponse.fall:type_name -> deadspace.v1.FallFinding
+	19, // 24: deadspace.v1.ExplainResponse.patient:type_name -> deadspace.v1.PatientFacts
+	9,  // 25: deadspace.v1.ExplainResponse.blood_gas_omission:type_name -> deadspace.v1.Omission
+	17, // 26: deadspace.v1.ExplainResponse.superseded:type_name -> deadspace.v1.Supersession
+	33, // 27: deadspace.v1.ExplainedInput.effective:type_name -> google.protobuf.Timestamp
+	33, // 28: deadspace.v1.Entry.effective:type_name -> google.protobuf.Timestamp
+	33, // 29: deadspace.v1.Entry.updated:type_name -> google.protobuf.Timestamp
+	33, // 30: deadspace.v1.ListDerivationsRequest.from:type_name -> google.protobuf.Timestamp
+	33, // 31: deadspace.v1.ListDerivationsRequest.to:type_name -> google.protobuf.Timestamp
+	23, // 32: deadspace.v1.ListDerivationsResponse.derivations:type_name -> deadspace.v1.Derivation
+	20, // 33: deadspace.v1.Derivation.entry:type_name -> deadspace.v1.Entry
+	0,  // 34: deadspace.v1.Derivation.kind:type_name -> deadspace.v1.ResultKind
+	5,  // 35: deadspace.v1.Derivation.value:type_name -> deadspace.v1.DerivedValue
+	26, // 36: deadspace.v1.WatchDerivationsResponse.event:type_name -> deadspace.v1.DerivationEvent
+	33, // 37: deadspace.v1.DerivationEvent.at:type_name -> google.protobuf.Timestamp
+	23, // 38: deadspace.v1.DerivationEvent.derivation:type_name -> deadspace.v1.Derivation
+	29, // 39: deadspace.v1.ListDeadLettersResponse.dead_letters:type_name -> deadspace.v1.DeadLetter
+	33, // 40: deadspace.v1.DeadLetter.buried_at:type_name -> google.protobuf.Timestamp
+	33, // 41: deadspace.v1.DeadLetter.queued_at:type_name -> google.protobuf.Timestamp
+	2,  // 42: deadspace.v1.DeadSpace.Compute:input_type -> deadspace.v1.ComputeRequest
+	10, // 43: deadspace.v1.DeadSpace.Submit:input_type -> deadspace.v1.SubmitRequest
+	13, // 44: deadspace.v1.DeadSpace.Explain:input_type -> deadspace.v1.ExplainRequest
+	21, // 45: deadspace.v1.DeadSpace.ListDerivations:input_type -> deadspace.v1.ListDerivationsRequest
+	24, // 46: deadspace.v1.DeadSpace.WatchDerivations:input_type -> deadspace.v1.WatchDerivationsRequest
+	27, // 47: deadspace.v1.DeadSpace.ListDeadLetters:input_type -> deadspace.v1.ListDeadLettersRequest
+	30, // 48: deadspace.v1.DeadSpace.GetDeadLetter:input_type -> deadspace.v1.GetDeadLetterRequest
+	31, // 49: deadspace.v1.DeadSpace.RetryDeadLetter:input_type -> deadspace.v1.RetryDeadLetterRequest
+	3,  // 50: deadspace.v1.DeadSpace.Compute:output_type -> deadspace.v1.ComputeResponse
+	11, // 51: deadspace.v1.DeadSpace.Submit:output_type -> deadspace.v1.SubmitResponse
+	16, // 52: deadspace.v1.DeadSpace.Explain:output_type -> deadspace.v1.ExplainResponse
+	22, // 53: deadspace.v1.DeadSpace.ListDerivations:output_type -> deadspace.v1.ListDerivationsResponse
+	25, // 54: deadspace.v1.DeadSpace.WatchDerivations:output_type -> deadspace.v1.WatchDerivationsResponse
+	28, // 55: deadspace.v1.DeadSpace.ListDeadLetters:output_type -> deadspace.v1.ListDeadLettersResponse
+	29, // 56: deadspace.v1.DeadSpace.GetDeadLetter:output_type -> deadspace.v1.DeadLetter
+	32, // 57: deadspace.v1.DeadSpace.RetryDeadLetter:output_type -> deadspace.v1.RetryDeadLetterResponse
+	50, // [50:58] is the sub-list for method output_type
+	42, // [42:50] is the sub-list for method input_type
+	42, // [42:42] is the sub-list for extension type_name
+	42, // [42:42] is the sub-list for extension extendee
+	0,  // [0:42] is the sub-list for field type_name
 }
 
 func init() { file_deadspace_v1_deadspace_proto_init() }
@@ -2921,6 +3049,11 @@ func file_deadspace_v1_deadspace_proto_init() {
 		(*ExplainRequest_Identifier)(nil),
 		(*ExplainRequest_Observation)(nil),
 		(*ExplainRequest_BloodGas)(nil),
+		(*ExplainRequest_SeriesVersion)(nil),
+	}
+	file_deadspace_v1_deadspace_proto_msgTypes[13].OneofWrappers = []any{
+		(*SeriesVersion_Revision)(nil),
+		(*SeriesVersion_ServerVersion)(nil),
 	}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
@@ -2928,7 +3061,7 @@ func file_deadspace_v1_deadspace_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_deadspace_v1_deadspace_proto_rawDesc), len(file_deadspace_v1_deadspace_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   30,
+			NumMessages:   31,
 			NumExtensions: 0,
 			NumServices:   1,
 		},
