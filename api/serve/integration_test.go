@@ -15,12 +15,14 @@ import (
 	"io"
 	"log/slog"
 	"net/http"
+	"net/http/httptest"
 	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"syscall"
 	"testing"
 	"time"
@@ -366,6 +368,8 @@ func TestNotificationWritesDerivedObservationsWithProvenance(t *testing.T) {
 	// a consumer resolves the code of every derived Observation (issue 8,
 	// rule 14).
 	system := derived[0]["code"].(map[string]any)["coding"].([]any)[0].(map[string]any)["system"].(string)
+	// It is published beside the service, so it may trail the values.
+	waitFor(t, "the CodeSystem to be published", func() bool { return codeSystems(t, peer, system) > 0 })
 	if n := codeSystems(t, peer, system); n != 1 {
 		t.Errorf("%d CodeSystem resources with url %s on the server, want 1", n, system)
 	}
@@ -425,6 +429,7 @@ func TestRepeatsAndRestartsLeaveOneOfEach(t *testing.T) {
 	waitIdle(t, s)
 	check("after a replay into an empty store")
 	// Three starts published the CodeSystem once (conditional create).
+	waitFor(t, "the CodeSystem to be published", func() bool { return codeSystems(t, peer, encode.DefaultCodeSystem) > 0 })
 	if n := codeSystems(t, peer, encode.DefaultCodeSystem); n != 1 {
 		t.Errorf("%d CodeSystem resources after three starts, want 1", n)
 	}
@@ -803,5 +808,48 @@ func TestRegisterSubscriptionCreatesOnceAndReactivates(t *testing.T) {
 	s.stop()
 	if n := len(subs()); n != 1 {
 		t.Errorf("%d Subscriptions after a restart, want 1", n)
+	}
+}
+
+// A FHIR server that holds every request unanswered (a restart while the
+// EHR is overloaded) must not keep the webhook from answering: what the
+// service does with the server at start (publishing the CodeSystem, the
+// catch-up search) runs beside the webhook, not before it. Before the fix
+// the first notification waited out the CodeSystem create's 30 s timeout.
+func TestWebhookAnswersWhileTheServerHangs(t *testing.T) {
+	release := make(chan struct{})
+	var held atomic.Int64
+	hung := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		held.Add(1)
+		select {
+		case <-release:
+		case <-r.Context().Done():
+		}
+		http.Error(w, "unavailable", http.StatusServiceUnavailable)
+	}))
+	t.Cleanup(hung.Close)
+	t.Cleanup(func() { close(release) })
+	s := start(t, testConfig(hung.URL, t.TempDir()))
+	waitFor(t, "the service to call the hung server", func() bool { return held.Load() > 0 })
+	at := time.Now().UTC().Add(-time.Hour).Truncate(time.Minute)
+	reading := json.RawMessage(strings.Replace(observation("Patient/p-hung", "http://loinc.org", "19891-1", "mm[Hg]", 35, at, "final"),
+		`{"resourceType":"Observation",`, `{"resourceType":"Observation","id":"hung-1","meta":{"versionId":"1"},`, 1))
+	client := &http.Client{Timeout: 10 * time.Second}
+	req, err := http.NewRequest(http.MethodPost, s.url+"/notify", bytes.NewReader(notification("Subscription/s1", 1, []json.RawMessage{reading})))
+	if err != nil {
+		t.Fatal(err)
+	}
+	req.Header.Set("Content-Type", "application/fhir+json")
+	req.Header.Set("Authorization", "Bearer "+secret)
+	resp, err := client.Do(req)
+	if err != nil {
+		t.Fatalf("the webhook did not answer while the FHIR server hangs: %v", err)
+	}
+	_ = resp.Body.Close()
+	if resp.StatusCode != http.StatusOK {
+		t.Fatalf("notify: HTTP %d, want 200", resp.StatusCode)
+	}
+	if n, err := s.svc.Engine().InputCount(context.Background(), "Patient/p-hung"); err != nil || n != 1 {
+		t.Errorf("stored inputs of the patient: %d (%v), want 1", n, err)
 	}
 }

@@ -222,9 +222,12 @@ func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Obs
 
 // publishCodeSystem creates the project's CodeSystem on the FHIR server
 // unless one with its url exists (a conditional create, so restarts and
-// several instances leave one). A failure is logged, not fatal: derived
-// values are still right without it, and some servers refuse terminology
-// writes.
+// several instances leave one). It runs beside the service, never before
+// it: the webhook answers at once after a restart even while the FHIR
+// server is slow or down. A transient failure (no answer, 429, 5xx) is
+// tried again with a growing pause until ctx ends; a refusal is logged and
+// left (derived values are still right without it, and some servers refuse
+// terminology writes).
 func (s *Service) publishCodeSystem(ctx context.Context) {
 	if s.client == nil {
 		return
@@ -234,11 +237,27 @@ func (s *Service) publishCodeSystem(ctx context.Context) {
 		s.log.ErrorContext(ctx, "the CodeSystem resource does not decode", "err", err)
 		return
 	}
-	ctx, cancel := context.WithTimeout(ctx, 30*time.Second)
-	defer cancel()
 	q := url.Values{"url": {cs.URL}, "version": {cs.Version}}
-	if _, _, err := s.client.ConditionalCreate(ctx, "CodeSystem", s.codeSystem, q); err != nil {
-		s.log.WarnContext(ctx, "publishing the CodeSystem of the derived codes failed; consumers cannot resolve the codes on this server", "err", err)
+	pause := time.Second
+	for {
+		attempt, cancel := context.WithTimeout(ctx, 30*time.Second)
+		_, _, err := s.client.ConditionalCreate(attempt, "CodeSystem", s.codeSystem, q)
+		cancel()
+		if err == nil || ctx.Err() != nil {
+			return
+		}
+		var fhirErr *client.Error
+		if errors.As(err, &fhirErr) && !fhirErr.Retryable {
+			s.log.WarnContext(ctx, "the FHIR server refused the CodeSystem of the derived codes; consumers cannot resolve the codes on this server", "err", err)
+			return
+		}
+		s.log.WarnContext(ctx, "publishing the CodeSystem of the derived codes failed; trying again", "err", err, "pause", pause)
+		select {
+		case <-ctx.Done():
+			return
+		case <-time.After(pause):
+		}
+		pause = min(2*pause, 5*time.Minute)
 	}
 }
 
@@ -312,13 +331,16 @@ func (s *Service) Engine() *engine.Engine { return s.engine }
 // Run serves until ctx is done, then stops taking input, lets in-flight
 // requests finish, stops the engine and closes the store.
 func (s *Service) Run(ctx context.Context) error {
-	s.publishCodeSystem(ctx)
 	engineCtx, stopEngine := context.WithCancel(context.WithoutCancel(ctx))
 	var wg sync.WaitGroup
-	wg.Add(1)
+	wg.Add(2)
 	go func() {
 		defer wg.Done()
 		_ = s.engine.Run(engineCtx)
+	}()
+	go func() {
+		defer wg.Done()
+		s.publishCodeSystem(engineCtx)
 	}()
 	serveErr := make(chan error, 3)
 	go func() { serveErr <- s.http.Serve(s.ln) }()
