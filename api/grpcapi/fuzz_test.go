@@ -3,6 +3,7 @@ package grpcapi
 import (
 	"bytes"
 	"errors"
+	"regexp"
 	"strings"
 	"testing"
 )
@@ -58,6 +59,10 @@ func FuzzResources(f *testing.F) {
 		}
 	})
 }
+
+// fhirID is the R4 id type's pattern (datatypes.html#id), written out here
+// as an oracle independent of fhir/ref.
+var fhirID = regexp.MustCompile(`^[A-Za-z0-9\-.]{1,64}$`)
 
 // FuzzObservationRef: an accepted id is a FHIR id and the reference is
 // Observation/ and what was given, less any Observation/ prefix.

@@ -8,7 +8,6 @@ import (
 	"encoding/hex"
 	"encoding/json"
 	"errors"
-	"regexp"
 	"strconv"
 	"strings"
 	"time"
@@ -30,9 +29,6 @@ const (
 
 // watchBatch is how many feed events a watch reads at a time.
 const watchBatch = 256
-
-// fhirID is the R4 id type's pattern.
-var fhirID = regexp.MustCompile(`^[A-Za-z0-9\-.]{1,64}$`)
 
 // resources gathers a request's resources and, for NDJSON, the zero-based
 // line of each, so errors and rejections can name the line.
@@ -136,7 +132,7 @@ func subject(s string) (string, error) {
 	if s == "" {
 		return "", badRequest("subject is required")
 	}
-	if !fhirID.MatchString(id) {
+	if !fhirref.IsID(id) {
 		return "", badRequest("subject %q: want Patient/ and a FHIR id", s)
 	}
 	return "Patient/" + id, nil

@@ -7,12 +7,13 @@ import (
 	"fmt"
 	"mime"
 	"net/http"
-	"regexp"
 	"strconv"
 	"strings"
 	"time"
 	"unicode"
 	"unicode/utf8"
+
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // The wire structs below read only the fields this package needs, with plain strings for coded
@@ -213,18 +214,17 @@ type Meta struct {
 	Location string
 }
 
-var locationRE = regexp.MustCompile(`(?:^|/)([A-Z][A-Za-z]{0,63})/([A-Za-z0-9\-.]{1,64})(?:/_history/([A-Za-z0-9\-.]{1,64}))?/?$`)
-
-// parseLocation takes Type/id[/_history/vid] from the end of a Location, relative or absolute.
+// parseLocation takes Type/id[/_history/vid] from a Location, relative or absolute (fhir/ref
+// parses it). A query or fragment and one trailing slash, which some servers add, are ignored.
 func parseLocation(loc string) (typ, id, vid string) {
 	if i := strings.IndexAny(loc, "?#"); i >= 0 {
 		loc = loc[:i]
 	}
-	m := locationRE.FindStringSubmatch(loc)
-	if m == nil {
+	r, _, err := ref.ParseAny(strings.TrimSuffix(loc, "/"))
+	if err != nil {
 		return "", "", ""
 	}
-	return m[1], m[2], m[3]
+	return r.Type, r.ID, r.Version
 }
 
 // parseETag returns the version from W/"vid" or "vid"; anything else gives "".

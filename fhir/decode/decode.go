@@ -79,6 +79,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
 
@@ -478,7 +479,7 @@ func (d *Decoder) identify(it *Item, resourceType, id string, meta *metaJSON) st
 	switch {
 	case id == "":
 		return "no id"
-	case !validID(id):
+	case !ref.IsID(id):
 		return "id is not a FHIR id"
 	}
 	it.ID = id
@@ -490,60 +491,37 @@ func (d *Decoder) identify(it *Item, resourceType, id string, meta *metaJSON) st
 		it.LastUpdated = t
 	}
 	if meta.VersionID != "" {
-		if !validID(meta.VersionID) {
+		if !ref.IsID(meta.VersionID) {
 			it.Ref = ""
 			return "meta.versionId is not a FHIR id"
 		}
 		it.VersionID = meta.VersionID
-		it.Ref += "/_history/" + meta.VersionID
+		it.Ref = ref.Versioned(it.Ref, meta.VersionID)
 	}
 	return ""
 }
 
-// validID checks the FHIR id type: [A-Za-z0-9\-\.]{1,64}.
-func validID(s string) bool {
-	if len(s) == 0 || len(s) > 64 {
-		return false
-	}
-	for i := 0; i < len(s); i++ {
-		c := s[i]
-		if !(c >= 'A' && c <= 'Z' || c >= 'a' && c <= 'z' || c >= '0' && c <= '9' || c == '-' || c == '.') {
-			return false
-		}
-	}
-	return true
-}
-
-// patientSubject returns the unversioned Patient reference, or a problem.
+// patientSubject returns the unversioned Patient reference as written
+// (relative, or absolute with its server base), or a problem. fhir/ref
+// parses it.
 func patientSubject(r *referenceJSON) (string, string) {
 	if r == nil {
 		return "", "no subject"
 	}
-	ref := r.Reference
-	if ref == "" {
+	if r.Reference == "" {
 		if present(r.Identifier) {
 			return "", "subject has an identifier but no literal reference"
 		}
 		return "", "subject has no reference"
 	}
-	if i := strings.Index(ref, "/_history/"); i >= 0 {
-		ref = ref[:i]
-	}
-	j := strings.LastIndexByte(ref, '/')
-	if j < 0 {
+	p, base, err := ref.ParseAny(r.Reference)
+	switch {
+	case err != nil:
 		return "", "subject is not a Patient/{id} reference"
+	case p.Type != "Patient":
+		return "", fmt.Sprintf("subject is a %q reference, not a Patient", clip(p.Type))
 	}
-	typ, id := ref[:j], ref[j+1:]
-	if k := strings.LastIndexByte(typ, '/'); k >= 0 {
-		typ = typ[k+1:]
-	}
-	if typ != "Patient" {
-		return "", fmt.Sprintf("subject is a %q reference, not a Patient", clip(typ))
-	}
-	if !validID(id) {
-		return "", "subject id is not a FHIR id"
-	}
-	return intern(ref), ""
+	return intern(base + p.Logical()), ""
 }
 
 // effectiveTime applies rule 9 of the package documentation. Two

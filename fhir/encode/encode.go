@@ -11,6 +11,7 @@ import (
 	"github.com/samply/golang-fhir-models/fhir-models/fhir"
 
 	"github.com/deadspace-fhir/deadspace/derive"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // Options configures an [Encoder]. Start from [DefaultOptions]; an empty
@@ -266,7 +267,7 @@ func (e *Encoder) value(subject string, d derive.Derivation, v derive.Value, iss
 func unversionedNote(notes []fhir.Annotation, refs []string) []fhir.Annotation {
 	n := 0
 	for _, r := range sortedUnique(refs) {
-		if !strings.Contains(r, "/_history/") {
+		if _, version := fhirref.Split(r); version == "" {
 			n++
 		}
 	}

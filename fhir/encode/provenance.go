@@ -205,7 +205,7 @@ func (e *Encoder) Subset(b Bundle, keep func(fhir.Observation) bool) (Bundle, er
 		return Bundle{}, ErrNoValues
 	}
 	for _, en := range b.Provenance.Entity {
-		if en.Role == fhir.ProvenanceEntityRoleDerivation && en.What.Reference != nil && strings.HasPrefix(*en.What.Reference, "Patient/") {
+		if en.Role == fhir.ProvenanceEntityRoleDerivation && en.What.Reference != nil && isPatient(*en.What.Reference) {
 			inputs = append(inputs, *en.What.Reference)
 		}
 	}

@@ -76,3 +76,9 @@ func noNewline(s string) error {
 	}
 	return nil
 }
+
+// isPatient reports whether s is a relative reference to a Patient.
+func isPatient(s string) bool {
+	r, err := parseRef(s)
+	return err == nil && r.Type == "Patient"
+}

@@ -8,6 +8,7 @@ package ref
 import (
 	"cmp"
 	"fmt"
+	"net/url"
 	"strings"
 	"time"
 )
@@ -30,6 +31,51 @@ func Parse(s string) (Ref, error) {
 		return Ref{}, fmt.Errorf("reference %q is not of the form Type/id[/_history/version]", s)
 	}
 	return Ref{Type: typ, ID: id, Version: vid}, nil
+}
+
+// ParseAny reads a reference that may be absolute: "Type/id[/_history/v]"
+// exactly, or an http(s) URL whose path ends in those segments (FHIR R4
+// references.html#literal: the server base may have any number of
+// segments). base is what precedes the Type segment, with its trailing
+// slash ("https://ehr.example/fhir/"), or "" for a relative reference, so
+// base+r.String() == s. Contained ("#x"), conditional ("Type?query"),
+// urn:uuid and urn:oid references, and anything with white space, are
+// errors: none of them names a resource a server can read.
+func ParseAny(s string) (r Ref, base string, err error) {
+	if strings.ContainsAny(s, "?# \t\r\n") {
+		return Ref{}, "", fmt.Errorf("reference %q is not a literal reference to a resource", s)
+	}
+	rest, ok := strings.CutPrefix(s, "https://")
+	if !ok {
+		rest, ok = strings.CutPrefix(s, "http://")
+	}
+	if !ok {
+		r, err = Parse(s)
+		return r, "", err
+	}
+	host, path, ok := strings.Cut(rest, "/")
+	if !ok || host == "" {
+		return Ref{}, "", fmt.Errorf("reference %q has no host and path", s)
+	}
+	if u, perr := url.Parse(s); perr != nil || u.Host == "" {
+		return Ref{}, "", fmt.Errorf("reference %q is not a URL", s)
+	}
+	segs := strings.Split(path, "/")
+	n := len(segs)
+	var tail []string
+	switch {
+	case n >= 4 && segs[n-2] == "_history":
+		tail = segs[n-4:]
+	case n >= 2:
+		tail = segs[n-2:]
+	default:
+		return Ref{}, "", fmt.Errorf("reference %q does not end in Type/id[/_history/version]", s)
+	}
+	t := strings.Join(tail, "/")
+	if r, err = Parse(t); err != nil {
+		return Ref{}, "", fmt.Errorf("reference %q does not end in Type/id[/_history/version]", s)
+	}
+	return r, s[:len(s)-len(t)], nil
 }
 
 // Split turns "Observation/x/_history/2" into ("Observation/x", "2") and

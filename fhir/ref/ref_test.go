@@ -44,6 +44,43 @@ func TestParse(t *testing.T) {
 	}
 }
 
+func TestParseAny(t *testing.T) {
+	for _, tc := range []struct {
+		name, in, base string
+		want           Ref
+		bad            bool
+	}{
+		{name: "relative", in: "Patient/p1", want: Ref{Type: "Patient", ID: "p1"}},
+		{name: "relative versioned", in: "Observation/o1/_history/2", want: Ref{Type: "Observation", ID: "o1", Version: "2"}},
+		{name: "absolute", in: "https://ehr.example/fhir/Patient/p1", base: "https://ehr.example/fhir/", want: Ref{Type: "Patient", ID: "p1"}},
+		{name: "absolute versioned", in: "http://h/r4/a/Observation/o1/_history/7", base: "http://h/r4/a/", want: Ref{Type: "Observation", ID: "o1", Version: "7"}},
+		{name: "base without path", in: "https://h/Device/d-1", base: "https://h/", want: Ref{Type: "Device", ID: "d-1"}},
+		{name: "relative with a prefix", in: "fhir/Patient/p1", bad: true},
+		{name: "contained", in: "#p1", bad: true},
+		{name: "conditional", in: "Patient?identifier=x", bad: true},
+		{name: "urn", in: "urn:uuid:0f8a11aa-0000-4000-8000-000000000000", bad: true},
+		{name: "no host", in: "https:///Patient/p1", bad: true},
+		{name: "only a host", in: "https://h", bad: true},
+		{name: "lower-case type", in: "https://h/fhir/patient/p1", bad: true},
+		{name: "bad version", in: "https://h/fhir/Patient/p1/_history/a_b", bad: true},
+		{name: "trailing slash", in: "https://h/fhir/Patient/p1/", bad: true},
+		{name: "white space", in: "Patient/p 1", bad: true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			got, base, err := ParseAny(tc.in)
+			if tc.bad {
+				if err == nil {
+					t.Fatalf("ParseAny(%q) = %+v, %q; want an error", tc.in, got, base)
+				}
+				return
+			}
+			if err != nil || got != tc.want || base != tc.base {
+				t.Fatalf("ParseAny(%q) = %+v, %q, %v; want %+v, %q", tc.in, got, base, err, tc.want, tc.base)
+			}
+		})
+	}
+}
+
 func TestCompare(t *testing.T) {
 	t0 := time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
 	for _, tc := range []struct {
@@ -84,6 +121,24 @@ func FuzzParse(f *testing.F) {
 		}
 		if back, err := Parse(r.String()); err != nil || back != r {
 			t.Fatalf("round trip of %q: %+v, %v", s, back, err)
+		}
+	})
+}
+
+func FuzzParseAny(f *testing.F) {
+	for _, s := range []string{"Observation/x", "https://h/fhir/Observation/x/_history/2", "http://h/Patient/p", "https://h", "#x"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		r, base, err := ParseAny(s)
+		if err != nil {
+			return
+		}
+		if base+r.String() != s {
+			t.Fatalf("ParseAny(%q) = %+v, %q: base and reference do not make the input", s, r, base)
+		}
+		if back, err := Parse(r.String()); err != nil || back != r {
+			t.Fatalf("the reference part of %q does not parse on its own: %+v, %v", s, back, err)
 		}
 	})
 }
