@@ -288,7 +288,6 @@ func (e *Engine) catchUp(ctx context.Context, trigger string, jl *jobLease) erro
 	if err != nil {
 		return fmt.Errorf("engine: catch-up: %w", err)
 	}
-	e.serverAnswered()
 	if !latest.IsZero() {
 		set := func() error { return e.cfg.Store.SetCursor(ctx, cursorSearch, latest.UTC().Format(time.RFC3339Nano)) }
 		if jl != nil {
@@ -387,7 +386,6 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 		if err != nil {
 			return Receipt{}, fmt.Errorf("engine: fetch focus: %w", err)
 		}
-		e.serverAnswered()
 		resources = append(resources, body)
 	}
 	return e.Ingest(ctx, "notification-id-only", resources)
@@ -407,7 +405,6 @@ func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patie
 	if err != nil {
 		return derive.Patient{}, fmt.Errorf("engine: read patient facts: %w", err)
 	}
-	e.serverAnswered()
 	it, err := e.cfg.Decoder.Decode(body)
 	if err != nil || it.Type != decode.ItemPatient {
 		e.log.WarnContext(ctx, "the server's Patient resource could not be read; its facts stay unknown")

@@ -157,8 +157,7 @@ type Engine struct {
 	mu            sync.Mutex
 	lastNotified  time.Time
 	outboxBlocked time.Time // when the head write last failed, for readiness
-	lastServerOK  time.Time
-	deviceRef     string // the server's "Device/<id>" of the software Device
+	deviceRef     string    // the server's "Device/<id>" of the software Device
 }
 
 // New checks the configuration and returns an Engine. Nothing runs until
@@ -538,11 +537,10 @@ func (e *Engine) pruneLoop(ctx context.Context) {
 	}
 }
 
-// Health is what readiness needs to know.
+// Health is what readiness needs to know from the engine. Whether the FHIR
+// server answers is not here: the service tracks it once, from every
+// request the client makes (api/serve).
 type Health struct {
-	// ServerOK is when the FHIR server last answered (zero when never or
-	// when standalone).
-	ServerOK time.Time
 	// OutboxBlockedSince is when the oldest pending write first failed and
 	// has kept failing; zero when it is flowing.
 	OutboxBlockedSince time.Time
@@ -560,17 +558,11 @@ func (e *Engine) Health(ctx context.Context) (Health, error) {
 	}
 	e.mu.Lock()
 	defer e.mu.Unlock()
-	return Health{ServerOK: e.lastServerOK, OutboxBlockedSince: e.outboxBlocked, StalePictures: e.stalePictures(), Stats: st}, nil
+	return Health{OutboxBlockedSince: e.outboxBlocked, StalePictures: e.stalePictures(), Stats: st}, nil
 }
 
 // Standalone reports whether the engine writes to no server.
 func (e *Engine) Standalone() bool { return e.cfg.Client == nil }
-
-func (e *Engine) serverAnswered() {
-	e.mu.Lock()
-	e.lastServerOK = e.now()
-	e.mu.Unlock()
-}
 
 // SearchCodes returns the "system|code" tokens the engine searches for.
 func (e *Engine) SearchCodes() []string { return append([]string(nil), e.cfg.SearchCodes...) }

@@ -433,7 +433,6 @@ func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
 	if err != nil {
 		return heldValue{}, err
 	}
-	e.serverAnswered()
 	var held struct {
 		Status     string `json:"status"`
 		Identifier []struct {
@@ -479,13 +478,8 @@ func (e *Engine) maxEntries() int {
 func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.TransactionResponse, error) {
 	resp, err := e.cfg.Client.Transaction(ctx, tx)
 	if err != nil {
-		var ce *client.Error
-		if errors.As(err, &ce) && ce.Status > 0 {
-			e.serverAnswered()
-		}
 		return client.TransactionResponse{}, err
 	}
-	e.serverAnswered()
 	if len(resp.Entries) != n {
 		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), n)
 	}
@@ -513,7 +507,6 @@ func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 		if err != nil {
 			return "", err
 		}
-		e.serverAnswered()
 		if meta.ID == "" {
 			return "", fmt.Errorf("engine: the server gave no id for the software Device")
 		}

@@ -134,6 +134,18 @@ func (s *Server) NewGRPCServer(creds credentials.TransportCredentials, extra ...
 	return g
 }
 
+// SetServing sets what gRPC health answers, for the whole server ("")
+// and for the DeadSpace service: serve keeps it in step with /readyz.
+// After [Server.Shutdown] it changes nothing (health stays NOT_SERVING).
+func (s *Server) SetServing(ok bool) {
+	st := healthpb.HealthCheckResponse_NOT_SERVING
+	if ok {
+		st = healthpb.HealthCheckResponse_SERVING
+	}
+	s.health.SetServingStatus("", st)
+	s.health.SetServingStatus(pb.DeadSpace_ServiceDesc.ServiceName, st)
+}
+
 // Shutdown marks the service NOT_SERVING and ends the watch streams, so
 // clients move to another replica and resume there with their tokens.
 func (s *Server) Shutdown() {

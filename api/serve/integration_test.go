@@ -423,8 +423,7 @@ func TestRepeatsAndRestartsLeaveOneOfEach(t *testing.T) {
 	s = start(t, testConfig(peer.BaseURL, t.TempDir()))
 	post(t, s.url, http.MethodPost, "/notify", note, secret)
 	waitFor(t, "the replay to be written", func() bool {
-		h, _ := s.svc.Engine().Health(context.Background())
-		return !h.ServerOK.IsZero()
+		return s.svc.FHIRServerAnswered()
 	})
 	waitIdle(t, s)
 	check("after a replay into an empty store")
@@ -487,8 +486,7 @@ func TestRetryAfterIsHonoured(t *testing.T) {
 	peer := fhirtest.Start(t)
 	s := start(t, testConfig(peer.BaseURL, t.TempDir()))
 	waitFor(t, "the start-up catch-up", func() bool {
-		h, _ := s.svc.Engine().Health(context.Background())
-		return !h.ServerOK.IsZero()
+		return s.svc.FHIRServerAnswered()
 	})
 	waitIdle(t, s)
 	b := newBed(t, peer, time.Now().Add(-30*time.Minute), true)
@@ -698,8 +696,7 @@ func TestEventGapIsCaughtUpBySearch(t *testing.T) {
 	peer := fhirtest.Start(t)
 	s := start(t, testConfig(peer.BaseURL, t.TempDir()))
 	waitFor(t, "the start-up catch-up", func() bool {
-		h, _ := s.svc.Engine().Health(context.Background())
-		return !h.ServerOK.IsZero()
+		return s.svc.FHIRServerAnswered()
 	})
 	waitIdle(t, s)
 	b := newBed(t, peer, time.Now().Add(-30*time.Minute), false)

@@ -55,7 +55,9 @@ type Service struct {
 }
 
 // upstream tracks whether the FHIR server is answering, from every request
-// the client makes; it is the one source of readiness's view of the server.
+// the client makes. It is the one tracker of the server's health: /readyz,
+// gRPC health, the deadspace_fhir_server_up gauge and the pages'
+// operations view all read it.
 type upstream struct {
 	mu          sync.Mutex
 	lastOK      time.Time
@@ -80,6 +82,26 @@ func (u *upstream) state() (lastOK, failedSince time.Time) {
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	return u.lastOK, u.failedSince
+}
+
+// answering reports whether the server has answered and its last request
+// did not fail.
+func (u *upstream) answering() bool {
+	lastOK, failedSince := u.state()
+	return !lastOK.IsZero() && failedSince.IsZero()
+}
+
+// problem is readiness's view of the server: "" when it answers or has
+// failed for less than grace.
+func (u *upstream) problem(now time.Time, grace time.Duration) string {
+	lastOK, failedSince := u.state()
+	switch {
+	case lastOK.IsZero():
+		return "FHIR server has not answered yet"
+	case !failedSince.IsZero() && now.Sub(failedSince) >= grace:
+		return "FHIR server is not answering"
+	}
+	return ""
 }
 
 // New opens the store, builds the engine and binds the HTTP listener, so
@@ -124,6 +146,9 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	}
 	s.engine = e
 	s.Metrics.SetStats(s.store.Stats)
+	if s.client != nil {
+		s.Metrics.SetFHIRServer(s.up.answering)
+	}
 	hook, err := webhook.New(webhook.Config{
 		Sink: sink{e}, Secret: cfg.WebhookSecret, Header: cfg.WebhookHeader, MaxBodyBytes: cfg.MaxBodyBytes, Logger: log,
 	})
@@ -301,6 +326,13 @@ func (s *Service) observeFHIR(op string, status int, dur time.Duration) {
 	}
 }
 
+// FHIRServerAnswered reports whether the FHIR server has answered any
+// request since start, from the service's one tracker.
+func (s *Service) FHIRServerAnswered() bool {
+	lastOK, _ := s.up.state()
+	return !lastOK.IsZero()
+}
+
 // Addr is the bound HTTP address.
 func (s *Service) Addr() string { return s.ln.Addr().String() }
 
@@ -364,6 +396,7 @@ func (s *Service) Run(ctx context.Context) error {
 			return fmt.Errorf("gRPC TLS: %w", err)
 		}
 		grpcDone = make(chan struct{})
+		go s.followReadiness(grpcCtx)
 		go func() {
 			defer close(grpcDone)
 			if err := s.grpc.Serve(grpcCtx, s.grpcLn, creds); err != nil {
@@ -407,28 +440,32 @@ func (s *Service) Run(ctx context.Context) error {
 	return err
 }
 
-// ready answers 200 when the store answers, the FHIR server (when one is
-// configured) has answered and has not been failing for longer than the
-// ready grace, and the outbox has not been stuck for five minutes.
-func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
-	h, err := s.engine.Health(r.Context())
+// readiness lists what keeps the service from being ready: the store does
+// not answer, the FHIR server (when one is configured) has not answered or
+// has been failing for longer than the ready grace, or the outbox has been
+// stuck for five minutes. /readyz and gRPC health both use it.
+func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
+	h, err := s.engine.Health(ctx)
 	var problems []string
 	if err != nil {
 		problems = append(problems, "store: "+err.Error())
 	}
 	now := time.Now()
 	if !s.engine.Standalone() {
-		lastOK, failedSince := s.up.state()
-		switch {
-		case lastOK.IsZero():
-			problems = append(problems, "FHIR server has not answered yet")
-		case !failedSince.IsZero() && now.Sub(failedSince) >= s.cfg.ReadyGrace:
-			problems = append(problems, "FHIR server is not answering")
+		if p := s.up.problem(now, s.cfg.ReadyGrace); p != "" {
+			problems = append(problems, p)
 		}
 		if !h.OutboxBlockedSince.IsZero() && now.Sub(h.OutboxBlockedSince) > 5*time.Minute {
 			problems = append(problems, "outbox is not draining")
 		}
 	}
+	return h, problems
+}
+
+// ready answers 200 when [Service.readiness] finds no problem.
+func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
+	h, problems := s.readiness(r.Context())
+	s.setGRPCHealth(problems)
 	w.Header().Set("Content-Type", "application/json")
 	status := http.StatusOK
 	if len(problems) > 0 {
@@ -439,6 +476,35 @@ func (s *Service) ready(w http.ResponseWriter, r *http.Request) {
 		"ready": len(problems) == 0, "problems": problems,
 		"outboxDepth": h.Stats.OutboxDepth, "deadLetters": h.Stats.DeadLetters, "pendingPatients": h.Stats.DirtyPatients,
 	})
+}
+
+// grpcHealthEvery is how often gRPC health is brought up to date with
+// readiness between /readyz requests.
+const grpcHealthEvery = 5 * time.Second
+
+// setGRPCHealth makes gRPC health say what /readyz says.
+func (s *Service) setGRPCHealth(problems []string) {
+	if s.grpc != nil {
+		s.grpc.SetServing(len(problems) == 0)
+	}
+}
+
+// followReadiness keeps gRPC health in step with readiness until ctx ends.
+func (s *Service) followReadiness(ctx context.Context) {
+	t := time.NewTicker(grpcHealthEvery)
+	defer t.Stop()
+	for {
+		_, problems := s.readiness(ctx)
+		if ctx.Err() != nil {
+			return
+		}
+		s.setGRPCHealth(problems)
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+		}
+	}
 }
 
 // sink adapts the engine to the webhook.
