@@ -162,7 +162,7 @@ func (s *FallScan) Add(r Reading) {
 	if why != "" {
 		s.sparse = append(s.sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
 	} else if ok && base >= minBaselineEtCO2 {
-		thr := min(cfg.Drop, cfg.DropFraction*base)
+		thr := threshold(cfg, base)
 		rise := r.Value > base+thr
 		if rise || r.Value < base-thr {
 			s.ep = &episode{
@@ -222,6 +222,12 @@ func baseline(cfg FallConfig, eligible []Reading, head, inEnd, far int, window [
 		vals = append(vals, r.Value)
 	}
 	return Median(vals), from, true
+}
+
+// threshold is how far from the baseline a reading must be to be low or
+// high: min(Drop, DropFraction × baseline).
+func threshold(cfg FallConfig, base float64) float64 {
+	return min(cfg.Drop, cfg.DropFraction*base)
 }
 
 // episode is an open fall or rise, candidate or confirmed.

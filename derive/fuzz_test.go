@@ -114,6 +114,7 @@ func FuzzDetectFalls(f *testing.F) {
 				t.Errorf("finding %+v", x)
 			}
 		}
+		checkEpisodeEnds(t, cfg, series, full)
 		for n := 1; n <= len(series); n++ {
 			assertPrefix(t, cfg, series, full, n)
 		}

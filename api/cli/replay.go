@@ -81,7 +81,7 @@ func replayCommand(ctx context.Context, args []string, getenv func(string) strin
 	}
 	if recorder != nil {
 		source := fmt.Sprintf("replay of %d files, %d lines", len(files), out.Lines)
-		if err := ui.WriteReportFile(*htmlPath, ui.FromReplay(out, recorder, cfg.Window, encOpts.Issued, source)); err != nil {
+		if err := ui.WriteReportFile(*htmlPath, ui.FromReplay(out, recorder, cfg, encOpts.Issued, source)); err != nil {
 			return failed("", err)
 		}
 	}

@@ -58,7 +58,7 @@ func (s *Service) newPages(evs *ui.OpEvents) (*pages, error) {
 		return nil, fmt.Errorf("--ui-access-log: %w", err)
 	}
 	src := ui.NewLive(ui.LiveConfig{
-		Engine: s.engine, Outbox: s.store, Window: s.cfg.Derivation.Window, Server: s.up.state, Events: evs,
+		Engine: s.engine, Outbox: s.store, Window: s.cfg.Derivation.Window, Fall: s.fall, Server: s.up.state, Events: evs,
 		Omissions: s.Metrics,
 	})
 	h, err := ui.NewHandler(ui.HandlerConfig{Source: src, Auth: auth, Access: ui.NewAccessLog(f, s.log), Logger: s.log})

@@ -206,6 +206,13 @@ func TestPagesInBrowser(t *testing.T) {
 	if err != nil || n != 1 {
 		t.Errorf("fall bands on the plot: %d (%v), want 1", n, err)
 	}
+	// The band covers the whole episode, to the first end-tidal reading
+	// back within the recovery band (the demo's 04:40, 36 mm[Hg] against a
+	// baseline of 36), not just onset to confirmation (03:13).
+	band, err := chromedp.Run(ctx, chromedp.Evaluate[string](`document.querySelector("svg.plot rect.fall title").textContent`))
+	if err != nil || !strings.HasSuffix(band, "from 03:10 to 04:40") {
+		t.Errorf("the fall band says %q (%v), want it to span 03:10 to 04:40", band, err)
+	}
 
 	// Follow the 03:30 gradient to its explanation.
 	if err := chromedp.Do(ctx, chromedp.Click(chromedp.CSS(`table tbody tr:last-child td:nth-of-type(3) a`)), chromedp.WaitVisible(chromedp.CSS(`table.inputs`))); err != nil {
@@ -607,5 +614,5 @@ func replayDemo(t *testing.T) ui.Report {
 	if err != nil {
 		t.Fatal(err)
 	}
-	return ui.FromReplay(out, rec, opts.Derive.Window, opts.Encode.Issued, "replay of the demo")
+	return ui.FromReplay(out, rec, opts.Derive, opts.Encode.Issued, "replay of the demo")
 }

@@ -27,6 +27,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
+	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
@@ -52,6 +53,8 @@ type Service struct {
 	// start so consumers can resolve the derived codes.
 	codeSystem []byte
 	pages      *pages
+	// fall is the fall detector's configuration, for the pages.
+	fall derive.FallConfig
 }
 
 // upstream tracks whether the FHIR server is answering, from every request
@@ -117,7 +120,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	table := opts.Decode.Table
-	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version)}
+	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version), fall: opts.Derive.Fall}
 	if s.codeSystem, err = enc.CodeSystem(); err != nil {
 		return nil, err
 	}

@@ -4,6 +4,7 @@ package ui
 // view model, so a value reads the same on a live page and in a report.
 
 import (
+	"cmp"
 	"fmt"
 	"slices"
 	"strconv"
@@ -94,18 +95,28 @@ func valueOf(at time.Time, v derive.Value, status, explainID string) Value {
 	}
 }
 
-// findingOf makes the view of one fall finding.
-func findingOf(f derive.Fall, status, explainID string) Finding {
-	end := f.Confirmed
-	for _, r := range f.EpisodeReadings {
-		if r.At().After(end) {
-			end = r.At()
-		}
-	}
+// findingOf makes the view of one fall finding. Its episode's end is
+// found from the end-tidal series (etco2, sorted by time, only the usable
+// readings) by the detector's own recovery rule, [derive.EpisodeEnd].
+func findingOf(f derive.Fall, status, explainID string, cfg derive.FallConfig, etco2 []derive.Reading) Finding {
+	end, ongoing := derive.EpisodeEnd(cfg, f, etco2)
 	return Finding{
-		Rise: f.Rise, Onset: f.Onset, Confirmed: f.Confirmed, End: end, Baseline: f.Baseline, Level: f.Level,
+		Rise: f.Rise, Onset: f.Onset, Confirmed: f.Confirmed, End: end, Ongoing: ongoing, Baseline: f.Baseline, Level: f.Level,
 		Change: f.Change, Status: status, ExplainID: explainID,
 	}
+}
+
+// etco2Series returns the usable end-tidal readings among points, in time
+// order, as the fall detector reads them.
+func etco2Series(points []Point) []derive.Reading {
+	out := make([]derive.Reading, 0, len(points))
+	for _, p := range points {
+		if p.Status == StatusFinal && !p.At.IsZero() {
+			out = append(out, derive.Reading{Kind: derive.KindEtCO2, AtMillis: p.At.UnixMilli(), Value: p.Value, Ref: p.Ref})
+		}
+	}
+	slices.SortStableFunc(out, func(a, b derive.Reading) int { return cmp.Compare(a.AtMillis, b.AtMillis) })
+	return out
 }
 
 // InputDetail is what the store or the export holds about one input
@@ -216,8 +227,8 @@ func absDuration(d time.Duration) time.Duration {
 }
 
 // explainFall explains one fall finding.
-func explainFall(patientID string, f derive.Fall, id, status string, detail func(ref string) InputDetail) Explanation {
-	fd := findingOf(f, status, id)
+func explainFall(patientID string, f derive.Fall, id, status string, detail func(ref string) InputDetail, cfg derive.FallConfig, etco2 []derive.Reading) Explanation {
+	fd := findingOf(f, status, id, cfg, etco2)
 	what := "fall"
 	if f.Rise {
 		what = "rise"

@@ -32,6 +32,9 @@ type LiveConfig struct {
 	Outbox Outbox
 	// Window is the pairing window, for the readings left out near a gas.
 	Window time.Duration
+	// Fall is the fall detector's configuration, for the end of each
+	// episode.
+	Fall derive.FallConfig
 	// Server reports the FHIR server's state: when it last answered and
 	// since when it has been failing (zero when it is not).
 	Server func() (lastOK, failedSince time.Time)
@@ -133,12 +136,16 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 	etco2Median := make(map[time.Time]float64)
 	gasExplain := make(map[string]string)
 	adjusted := make(map[string]float64)
+	type fallRecord struct {
+		fall        derive.Fall
+		status, key string
+	}
+	var falls []fallRecord // their episodes' ends need the end-tidal series
 	for _, rec := range p.records {
 		status := statusOf(rec.Status)
 		switch {
 		case rec.Payload.Fall != nil:
-			f := findingOf(*rec.Payload.Fall, status, rec.Key)
-			tl.Findings = append(tl.Findings, f)
+			falls = append(falls, fallRecord{*rec.Payload.Fall, status, rec.Key})
 		case rec.Payload.Derivation != nil:
 			d := rec.Payload.Derivation
 			i := slices.IndexFunc(d.Values, func(v derive.Value) bool { return v.Code == rec.Code })
@@ -183,6 +190,10 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 	sortValues(tl.Values)
 	sortPoints(tl.EtCO2)
 	sortPoints(tl.PaCO2)
+	series := etco2Series(tl.EtCO2)
+	for _, f := range falls {
+		tl.Findings = append(tl.Findings, findingOf(f.fall, f.status, f.key, l.cfg.Fall, series))
+	}
 	span(&tl)
 	rowsOf(&tl, etco2Median)
 	return tl
@@ -338,12 +349,22 @@ func (l *Live) explain(ctx context.Context, id string, rec engine.Record) (Expla
 	status := statusOf(rec.Status)
 	var out Explanation
 	id = rec.Key
+	rs, rerr := l.cfg.Engine.StoredReadings(ctx, rec.Subject)
 	switch {
 	case ex.Fall != nil:
-		out = explainFall(PatientID(rec.Subject), *ex.Fall, id, status, lookup)
+		if rerr != nil && !errors.Is(rerr, store.ErrNotFound) {
+			return Explanation{}, fmt.Errorf("ui: explain: the end-tidal series: %w", rerr)
+		}
+		var etco2 []Point
+		for _, sr := range rs {
+			if sr.Usable && sr.Reading.Kind == derive.KindEtCO2 && sr.Reading.AtMillis != 0 {
+				etco2 = append(etco2, Point{At: sr.Reading.At(), Value: sr.Reading.Value, Ref: sr.Reading.Ref, Status: StatusFinal})
+			}
+		}
+		out = explainFall(PatientID(rec.Subject), *ex.Fall, id, status, lookup, l.cfg.Fall, etco2Series(etco2))
 	case ex.Derivation != nil:
 		var nearby []OmittedInput
-		if rs, err := l.cfg.Engine.StoredReadings(ctx, rec.Subject); err == nil {
+		if rerr == nil {
 			for _, sr := range rs {
 				if !sr.Usable && sr.Reading.Ref != "" {
 					nearby = append(nearby, OmittedInput{Ref: sr.Reading.Ref, Kind: sr.Reading.Kind.String(), At: atOf(sr.Reading), Reason: derive.ReasonEnteredInError, Detail: "withdrawn or not usable at its source"})

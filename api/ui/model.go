@@ -77,10 +77,14 @@ type Value struct {
 	ExplainID string
 }
 
-// Finding is one end-tidal CO2 fall, or rise above the baseline.
+// Finding is one end-tidal CO2 fall, or rise above the baseline. End is
+// when its episode ended ([derive.EpisodeEnd]): the first end-tidal reading
+// back within the recovery band, or, when Ongoing, the last reading so far.
+// It is the page's: the written finding covers onset to confirmation.
 type Finding struct {
 	Rise                  bool
 	Onset, Confirmed, End time.Time
+	Ongoing               bool
 	Baseline, Level       float64
 	Change                float64
 	Status                string

@@ -64,9 +64,11 @@ func (r *Recorder) put(ref string, rec recorded) {
 
 func (r *Recorder) lookup(ref string) InputDetail { return r.detail[ref] }
 
-// FromReplay builds the report of a replay. window is the pairing window
-// the replay used, for the list of readings left out near each blood gas.
-func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generated time.Time, source string) Report {
+// FromReplay builds the report of a replay. cfg is the configuration the
+// replay used: its pairing window, for the list of readings left out near
+// each blood gas, and its fall detector, for the end of each episode.
+func FromReplay(out replay.Outcome, rec *Recorder, cfg derive.Config, generated time.Time, source string) Report {
+	window := cfg.Window
 	rep := Report{Generated: generated}
 	why := make(map[string]derive.Omission)
 	for _, o := range out.Report.Inputs {
@@ -139,6 +141,7 @@ func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generat
 		etco2Median := make(map[time.Time]float64)
 		gasExplain := make(map[string]string)
 		adjusted := make(map[string]float64)
+		series := etco2Series(tl.EtCO2)
 		for _, i := range bySubject[s] {
 			r := out.Report.Results[i]
 			if r.Fall != nil {
@@ -146,9 +149,9 @@ func FromReplay(out replay.Outcome, rec *Recorder, window time.Duration, generat
 				if err != nil {
 					continue
 				}
-				f := findingOf(*r.Fall, StatusFinal, ident.Key)
+				f := findingOf(*r.Fall, StatusFinal, ident.Key, cfg.Fall, series)
 				tl.Findings = append(tl.Findings, f)
-				ex := explainFall(id, *r.Fall, ident.Key, StatusFinal, rec.lookup)
+				ex := explainFall(id, *r.Fall, ident.Key, StatusFinal, rec.lookup, cfg.Fall, series)
 				ex.Series, ex.AlgorithmVersion = ident.Series, derive.AlgorithmVersion
 				rep.Explanations = append(rep.Explanations, ex)
 				continue

@@ -47,7 +47,7 @@ func demo(t *testing.T) Report {
 			demoErr = err
 			return
 		}
-		demoReport = FromReplay(out, rec, cfg.Window, enc.Issued, "replay of the demo")
+		demoReport = FromReplay(out, rec, cfg, enc.Issued, "replay of the demo")
 	})
 	if demoErr != nil || len(demoReport.Timelines) == 0 {
 		t.Fatalf("demo replay: %v", demoErr)
