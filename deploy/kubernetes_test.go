@@ -532,7 +532,7 @@ func TestPodEnvironmentIsAValidServeConfig(t *testing.T) {
 func testPodEnvironmentIsAValidServeConfig(t *testing.T, m manifests) {
 	env := podEnv(t, m)
 	checkEnvNames(t, "pod environment", env)
-	for _, k := range []string{"DEADSPACE_WEBHOOK_SECRET", "DEADSPACE_FHIR_TOKEN", "DEADSPACE_FHIR_TOKEN_FILE", "DEADSPACE_WEBHOOK_SECRET_FILE"} {
+	for _, k := range []string{"DEADSPACE_WEBHOOK_SECRET", "DEADSPACE_FHIR_TOKEN", "DEADSPACE_FHIR_TOKEN_FILE", "DEADSPACE_WEBHOOK_SECRET_FILE", "DEADSPACE_UI_SESSION_KEY"} {
 		if _, ok := m.configMap.Data[k]; ok {
 			t.Errorf("%s is in the ConfigMap: secrets go in the Secret", k)
 		}
@@ -786,6 +786,18 @@ func TestReplicatedForm(t *testing.T) {
 	}
 	if !fromSecret {
 		t.Error("DEADSPACE_STORE must come from the Secret, required: the URL carries the database password")
+	}
+	// The replicas share the pages' session key, from the Secret, so a
+	// session works on every replica and survives a rolling update.
+	var sessionKey bool
+	for _, e := range m.container(t).Env {
+		if e.Name == "DEADSPACE_UI_SESSION_KEY" {
+			ref := e.ValueFrom
+			sessionKey = e.Value == "" && ref != nil && ref.SecretKeyRef != nil && ref.SecretKeyRef.Name == m.secret.Name
+		}
+	}
+	if !sessionKey {
+		t.Error("DEADSPACE_UI_SESSION_KEY must come from the Secret: without one key shared by the replicas, a session opened on one is refused by the others")
 	}
 	if _, ok := m.configMap.Data["DEADSPACE_STORE"]; ok {
 		t.Error("DEADSPACE_STORE is in the ConfigMap: the URL carries a password")

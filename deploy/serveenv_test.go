@@ -21,7 +21,8 @@ import (
 
 // envOnly are variables the service reads that are not flags.
 var envOnly = map[string]bool{
-	"DEADSPACE_FHIR_TOKEN": true, // api/serve.Config.ApplyEnv: the token is never a flag
+	"DEADSPACE_FHIR_TOKEN":     true, // api/serve.Config.ApplyEnv: the token is never a flag
+	"DEADSPACE_UI_SESSION_KEY": true, // likewise the pages' session key (or --ui-session-key-file)
 }
 
 // pendingFlags are flags the artefacts already set that the service is

@@ -77,7 +77,12 @@ type UIConfig struct {
 	UserHeader       string
 	TrustedProxies   string
 	SessionTTL       time.Duration
-	AccessLog        string
+	// SessionKey signs the pages' sessions: from DEADSPACE_UI_SESSION_KEY
+	// or --ui-session-key-file. Replicas share it; without it each process
+	// makes its own and sessions end with the process.
+	SessionKey     string
+	SessionKeyFile string
+	AccessLog      string
 }
 
 // Bind registers every flag on fs with its default.
@@ -137,6 +142,7 @@ func (u *UIConfig) bind(fs *flag.FlagSet) {
 	fs.StringVar(&u.UserHeader, "ui-user-header", "", "instead of OpenID Connect: request header naming the user, set by an authenticating proxy")
 	fs.StringVar(&u.TrustedProxies, "ui-trusted-proxies", "", "comma-separated addresses or CIDR prefixes whose --ui-user-header is trusted")
 	fs.DurationVar(&u.SessionTTL, "ui-session-ttl", 8*time.Hour, "how long a sign-in lasts")
+	fs.StringVar(&u.SessionKeyFile, "ui-session-key-file", "", "file holding the key that signs sign-in sessions (at least 32 bytes; or set DEADSPACE_UI_SESSION_KEY); replicas share it so a session works on all and survives restarts")
 	fs.StringVar(&u.AccessLog, "ui-access-log", "", "file the page views that show patients are appended to (default: access.log in --data-dir)")
 }
 
@@ -187,6 +193,16 @@ func (u *UIConfig) validate(tls bool) []error {
 	default:
 		errs = append(errs, errors.New("--ui-listen needs a way to sign in: --ui-oidc-issuer, or --ui-user-header with --ui-trusted-proxies"))
 	}
+	if u.SessionKeyFile != "" {
+		key, err := readSecret(u.SessionKeyFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("--ui-session-key-file: %w", err))
+		}
+		u.SessionKey = key
+	}
+	if u.SessionKey != "" && len(u.SessionKey) < ui.MinSessionKeyBytes {
+		errs = append(errs, fmt.Errorf("the session key (--ui-session-key-file or DEADSPACE_UI_SESSION_KEY) has %d bytes, fewer than %d", len(u.SessionKey), ui.MinSessionKeyBytes))
+	}
 	if u.SessionTTL < time.Minute || u.SessionTTL > 7*24*time.Hour {
 		errs = append(errs, fmt.Errorf("--ui-session-ttl must be between 1m and 168h, got %v", u.SessionTTL))
 	}
@@ -222,6 +238,9 @@ func (c *Config) ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
 	}
 	if c.UI.OIDCClientSecret == "" {
 		c.UI.OIDCClientSecret = getenv("DEADSPACE_UI_OIDC_CLIENT_SECRET")
+	}
+	if c.UI.SessionKey == "" {
+		c.UI.SessionKey = getenv("DEADSPACE_UI_SESSION_KEY")
 	}
 	return err
 }

@@ -107,6 +107,7 @@ func (s *Service) pagesAuth() (ui.Authenticator, error) {
 		Issuer: cfg.OIDCIssuer, ClientID: cfg.OIDCClientID, ClientSecret: cfg.OIDCClientSecret,
 		RedirectURL: cfg.OIDCRedirectURL, Scopes: strings.Fields(cfg.OIDCScopes), Claim: cfg.OIDCClaim,
 		Allowed: splitList(cfg.OIDCAllowed), UserClaim: cfg.OIDCUserClaim, SessionTTL: cfg.SessionTTL,
+		SessionKey: []byte(cfg.SessionKey),
 		HTTPClient: client, Logger: s.log,
 	})
 }

@@ -415,6 +415,10 @@ func TestUIConfigValidate(t *testing.T) {
 	if err := os.WriteFile(secretFile, []byte("s3cret\n"), 0o600); err != nil {
 		t.Fatal(err)
 	}
+	keyFile := filepath.Join(dir, "session-key")
+	if err := os.WriteFile(keyFile, []byte("Xq0bQ1r5mVwq3hJ0h7c2m9yP4kT8sW6zA1dF3gH5jK0=\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
 	oidc := serve.UIConfig{
 		Listen: "127.0.0.1:8443", OIDCIssuer: "https://idp.example/realms/h", OIDCClientID: "deadspace",
 		OIDCRedirectURL: "https://deadspace.example:8443/signin/callback", OIDCClaim: "groups", OIDCAllowed: "icu-audit",
@@ -444,6 +448,9 @@ func TestUIConfigValidate(t *testing.T) {
 		{"plain HTTP beyond loopback", func(c *serve.Config) { c.UI = oidc; c.UI.Listen = "0.0.0.0:8443" }, "needs --tls-cert"},
 		{"an endless session", func(c *serve.Config) { c.UI = oidc; c.UI.SessionTTL = 30 * 24 * time.Hour }, "--ui-session-ttl"},
 		{"a missing secret file", func(c *serve.Config) { c.UI = oidc; c.UI.OIDCSecretFile = filepath.Join(dir, "none") }, "--ui-oidc-client-secret-file"},
+		{"a session key from a file", func(c *serve.Config) { c.UI = oidc; c.UI.SessionKeyFile = keyFile }, ""},
+		{"a short session key", func(c *serve.Config) { c.UI = oidc; c.UI.SessionKeyFile = secretFile }, "fewer than 32"},
+		{"a missing session key file", func(c *serve.Config) { c.UI = oidc; c.UI.SessionKeyFile = filepath.Join(dir, "none") }, "--ui-session-key-file"},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			c := testConfig("", dir)

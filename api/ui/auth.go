@@ -8,6 +8,7 @@ package ui
 
 import (
 	"context"
+	"crypto/hmac"
 	"crypto/rand"
 	"encoding/base64"
 	"encoding/json"
@@ -62,6 +63,12 @@ type OIDCConfig struct {
 	// access log; "preferred_username" when empty, falling back to "sub".
 	UserClaim  string
 	SessionTTL time.Duration
+	// SessionKey signs sessions and seals sign-ins in progress (at least
+	// MinSessionKeyBytes). Every replica must have the same one for a
+	// session to be accepted by all, and it must outlive restarts. When it
+	// is empty a random key is made, and sessions last only as long as the
+	// process.
+	SessionKey []byte
 	// HTTPClient reaches the provider; nil means http.DefaultClient.
 	HTTPClient *http.Client
 	Logger     *slog.Logger
@@ -74,14 +81,6 @@ type OIDC struct {
 	verifier *oidc.IDTokenVerifier
 	sessions *sessions
 	log      *slog.Logger
-
-	mu      sync.Mutex
-	pending map[string]signin // by state
-}
-
-type signin struct {
-	verifier, nonce, next string
-	expires               time.Time
 }
 
 // NewOIDC discovers the provider and returns the authenticator.
@@ -95,6 +94,19 @@ func NewOIDC(ctx context.Context, cfg OIDCConfig) (*OIDC, error) {
 	}
 	if cfg.SessionTTL <= 0 {
 		errs = append(errs, errors.New("ui: the session lifetime must be positive"))
+	}
+	log := cfg.Logger
+	if log == nil {
+		log = slog.New(slog.DiscardHandler)
+	}
+	key := cfg.SessionKey
+	if len(key) == 0 {
+		log.Warn("no session key given (--ui-session-key-file or DEADSPACE_UI_SESSION_KEY): sessions are signed with a key made at start, so they will not survive a restart and other replicas will not accept them")
+		key = RandomSessionKey()
+	}
+	sess, err := newSessions(cfg.SessionTTL, key)
+	if err != nil {
+		errs = append(errs, err)
 	}
 	if err := errors.Join(errs...); err != nil {
 		return nil, err
@@ -117,12 +129,8 @@ func NewOIDC(ctx context.Context, cfg OIDCConfig) (*OIDC, error) {
 			RedirectURL: cfg.RedirectURL, Scopes: scopes,
 		},
 		verifier: provider.Verifier(&oidc.Config{ClientID: cfg.ClientID, Now: now}),
-		sessions: newSessions(cfg.SessionTTL),
-		log:      cfg.Logger,
-		pending:  make(map[string]signin),
-	}
-	if o.log == nil {
-		o.log = slog.New(slog.DiscardHandler)
+		sessions: sess,
+		log:      log,
 	}
 	return o, nil
 }
@@ -160,26 +168,17 @@ func (o *OIDC) start(w http.ResponseWriter, r *http.Request) {
 	if !strings.HasPrefix(next, "/") || strings.HasPrefix(next, "//") || strings.Contains(next, "\\") {
 		next = "/"
 	}
-	s := signin{verifier: oauth2.GenerateVerifier(), nonce: randomToken(), next: next, expires: now().Add(signinTimeout)}
-	state := randomToken()
-	o.mu.Lock()
-	for k, p := range o.pending {
-		if now().After(p.expires) {
-			delete(o.pending, k)
-		}
+	s := signinState{
+		State: randomToken(), Verifier: oauth2.GenerateVerifier(), Nonce: randomToken(), Next: next,
+		Expires: now().Add(signinTimeout).Unix(),
 	}
-	if len(o.pending) > 10000 {
-		o.mu.Unlock()
-		http.Error(w, "too many sign-ins in progress", http.StatusServiceUnavailable)
-		return
-	}
-	o.pending[state] = s
-	o.mu.Unlock()
+	// The sign-in travels in the browser's cookie, sealed, so the
+	// callback may reach any replica.
 	http.SetCookie(w, &http.Cookie{
-		Name: stateCookie, Value: state, Path: "/", MaxAge: int(signinTimeout.Seconds()),
+		Name: stateCookie, Value: o.sessions.seal(s), Path: "/", MaxAge: int(signinTimeout.Seconds()),
 		Secure: true, HttpOnly: true, SameSite: http.SameSiteLaxMode,
 	})
-	http.Redirect(w, r, o.oauth.AuthCodeURL(state, oauth2.S256ChallengeOption(s.verifier), oidc.Nonce(s.nonce)), http.StatusFound)
+	http.Redirect(w, r, o.oauth.AuthCodeURL(s.State, oauth2.S256ChallengeOption(s.Verifier), oidc.Nonce(s.Nonce)), http.StatusFound)
 }
 
 // callback finishes the flow: the state must match this browser's, the
@@ -188,18 +187,18 @@ func (o *OIDC) start(w http.ResponseWriter, r *http.Request) {
 func (o *OIDC) callback(w http.ResponseWriter, r *http.Request) {
 	q := r.URL.Query()
 	c, err := r.Cookie(stateCookie)
-	state := q.Get("state")
-	if err != nil || state == "" || c.Value != state {
+	if err != nil {
 		http.Error(w, "the sign-in did not start in this browser; start again", http.StatusBadRequest)
 		return
 	}
 	http.SetCookie(w, &http.Cookie{Name: stateCookie, Value: "", Path: "/", MaxAge: -1, Secure: true, HttpOnly: true, SameSite: http.SameSiteLaxMode})
-	o.mu.Lock()
-	s, ok := o.pending[state]
-	delete(o.pending, state)
-	o.mu.Unlock()
-	if !ok || now().After(s.expires) {
+	s, err := o.sessions.open(c.Value)
+	switch {
+	case errors.Is(err, errSigninExpired):
 		http.Error(w, "the sign-in expired; start again", http.StatusBadRequest)
+		return
+	case err != nil || q.Get("state") == "" || !hmac.Equal([]byte(q.Get("state")), []byte(s.State)):
+		http.Error(w, "the sign-in did not start in this browser; start again", http.StatusBadRequest)
 		return
 	}
 	if e := q.Get("error"); e != "" {
@@ -211,7 +210,7 @@ func (o *OIDC) callback(w http.ResponseWriter, r *http.Request) {
 	if o.cfg.HTTPClient != nil {
 		ctx = context.WithValue(ctx, oauth2.HTTPClient, o.cfg.HTTPClient)
 	}
-	tok, err := o.oauth.Exchange(ctx, q.Get("code"), oauth2.VerifierOption(s.verifier))
+	tok, err := o.oauth.Exchange(ctx, q.Get("code"), oauth2.VerifierOption(s.Verifier))
 	if err != nil {
 		o.log.WarnContext(ctx, "sign-in: code exchange failed", "err", err)
 		http.Error(w, "the sign-in could not be completed", http.StatusBadGateway)
@@ -224,7 +223,7 @@ func (o *OIDC) callback(w http.ResponseWriter, r *http.Request) {
 		http.Error(w, "the identity provider's token is not valid", http.StatusForbidden)
 		return
 	}
-	if idt.Nonce != s.nonce {
+	if idt.Nonce != s.Nonce {
 		http.Error(w, "the identity provider's token is for another sign-in", http.StatusForbidden)
 		return
 	}
@@ -240,7 +239,7 @@ func (o *OIDC) callback(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	o.sessions.start(w, user)
-	http.Redirect(w, r, s.next, http.StatusSeeOther)
+	http.Redirect(w, r, s.Next, http.StatusSeeOther)
 }
 
 func claimString(claims map[string]any, names ...string) string {
@@ -266,68 +265,6 @@ func allowed(claim any, values []string) bool {
 		}
 	}
 	return false
-}
-
-// sessions are server-side: the cookie holds a random id only, and a
-// session ends at its expiry however the cookie is kept.
-type sessions struct {
-	ttl time.Duration
-	mu  sync.Mutex
-	m   map[string]session
-}
-
-type session struct {
-	user    string
-	expires time.Time
-}
-
-func newSessions(ttl time.Duration) *sessions {
-	return &sessions{ttl: ttl, m: make(map[string]session)}
-}
-
-func (s *sessions) start(w http.ResponseWriter, user string) {
-	id := randomToken()
-	s.mu.Lock()
-	for k, v := range s.m {
-		if now().After(v.expires) {
-			delete(s.m, k)
-		}
-	}
-	s.m[id] = session{user: user, expires: now().Add(s.ttl)}
-	s.mu.Unlock()
-	http.SetCookie(w, &http.Cookie{
-		Name: sessionCookie, Value: id, Path: "/", MaxAge: int(s.ttl.Seconds()),
-		Secure: true, HttpOnly: true, SameSite: http.SameSiteLaxMode,
-	})
-}
-
-func (s *sessions) user(r *http.Request) (string, bool) {
-	c, err := r.Cookie(sessionCookie)
-	if err != nil {
-		return "", false
-	}
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	v, ok := s.m[c.Value]
-	if !ok {
-		return "", false
-	}
-	if now().After(v.expires) {
-		delete(s.m, c.Value)
-		return "", false
-	}
-	return v.user, true
-}
-
-func (s *sessions) signout(w http.ResponseWriter, r *http.Request) {
-	if c, err := r.Cookie(sessionCookie); err == nil {
-		s.mu.Lock()
-		delete(s.m, c.Value)
-		s.mu.Unlock()
-	}
-	http.SetCookie(w, &http.Cookie{Name: sessionCookie, Value: "", Path: "/", MaxAge: -1, Secure: true, HttpOnly: true, SameSite: http.SameSiteLaxMode})
-	w.Header().Set("Content-Type", "text/plain; charset=utf-8")
-	fmt.Fprintln(w, "Signed out.")
 }
 
 // ProxyAuth trusts a user header set by an authenticating proxy, and only

@@ -3,10 +3,14 @@ package ui
 import (
 	"bytes"
 	"context"
+	"encoding/base64"
+	"errors"
+	"log/slog"
 	"net/http"
 	"net/http/cookiejar"
 	"net/http/httptest"
 	"net/netip"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -218,4 +222,195 @@ func FuzzParsePrefixes(f *testing.F) {
 			}
 		}
 	})
+}
+
+// Sessions are signed cookies: any instance with the same key accepts
+// them (a restart, another replica), none with another key does, and
+// neither an expired nor an altered cookie opens a page.
+func TestSessionsAcrossInstances(t *testing.T) {
+	const ttl = 30 * time.Minute
+	key := bytes.Repeat([]byte("k"), MinSessionKeyBytes)
+	mk := func(key []byte) *sessions {
+		t.Helper()
+		s, err := newSessions(ttl, key)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return s
+	}
+	issuer, sameKey, otherKey := mk(key), mk(bytes.Clone(key)), mk(bytes.Repeat([]byte("o"), MinSessionKeyBytes))
+	w := httptest.NewRecorder()
+	issuer.start(w, "c.auditor")
+	cookies := w.Result().Cookies()
+	if len(cookies) != 1 || cookies[0].Name != sessionCookie {
+		t.Fatalf("cookies %v", cookies)
+	}
+	value := cookies[0].Value
+	ask := func(s *sessions, v string) (string, bool) {
+		r := httptest.NewRequest(http.MethodGet, "/", nil)
+		r.AddCookie(&http.Cookie{Name: sessionCookie, Value: v})
+		return s.user(r)
+	}
+	if u, ok := ask(sameKey, value); !ok || u != "c.auditor" {
+		t.Errorf("another instance with the same key: %q, %v; want c.auditor", u, ok)
+	}
+	if u, ok := ask(otherKey, value); ok {
+		t.Errorf("an instance with another key accepted the session of %q", u)
+	}
+	// Tampering: another user in the payload, the signature cut or moved,
+	// one character flipped anywhere.
+	payload, sig, _ := strings.Cut(strings.TrimPrefix(value, sessionPrefix), ".")
+	forged := sessionPrefix + base64.RawURLEncoding.EncodeToString([]byte(`{"u":"admin","i":`+strconv.FormatInt(now().Unix(), 10)+`}`)) + "." + sig
+	tampered := []string{forged, sessionPrefix + payload, sessionPrefix + payload + ".", sessionPrefix + sig + "." + payload, "v2." + payload + "." + sig}
+	for i := range value {
+		b := []byte(value)
+		b[i] ^= 0x01
+		tampered = append(tampered, string(b))
+	}
+	for _, v := range tampered {
+		if u, ok := ask(sameKey, v); ok {
+			t.Errorf("a tampered cookie %q was accepted as %q", v, u)
+		}
+	}
+	// Expiry: accepted up to the lifetime, refused at and after it.
+	t.Cleanup(func() { clockSkew.Store(0) })
+	clockSkew.Store(int64(ttl - time.Minute))
+	if _, ok := ask(sameKey, value); !ok {
+		t.Error("refused a minute before the end of its lifetime")
+	}
+	clockSkew.Store(int64(ttl))
+	if _, ok := ask(sameKey, value); ok {
+		t.Error("accepted at the end of its lifetime")
+	}
+	if _, err := newSessions(ttl, key[:MinSessionKeyBytes-1]); err == nil {
+		t.Error("a short key was accepted")
+	}
+}
+
+// A sign-in in progress travels sealed in the browser: another instance
+// with the key reads it; an altered, foreign or expired one is refused.
+func TestSignInStateSealed(t *testing.T) {
+	key := bytes.Repeat([]byte("k"), MinSessionKeyBytes)
+	a, _ := newSessions(time.Hour, key)
+	b, _ := newSessions(time.Hour, bytes.Clone(key))
+	other, _ := newSessions(time.Hour, bytes.Repeat([]byte("o"), MinSessionKeyBytes))
+	st := signinState{State: "st", Verifier: "secret-verifier", Nonce: "n", Next: "/patient/x", Expires: now().Add(signinTimeout).Unix()}
+	sealed := a.seal(st)
+	if strings.Contains(sealed, "secret-verifier") || strings.Contains(sealed, base64.RawURLEncoding.EncodeToString([]byte("secret-verifier"))) {
+		t.Error("the PKCE verifier is readable in the cookie")
+	}
+	if got, err := b.open(sealed); err != nil || got != st {
+		t.Errorf("another instance read %+v, %v; want %+v", got, err, st)
+	}
+	if _, err := other.open(sealed); err == nil {
+		t.Error("an instance with another key read the sign-in")
+	}
+	raw, _ := base64.RawURLEncoding.DecodeString(sealed)
+	raw[len(raw)-1] ^= 1
+	if _, err := b.open(base64.RawURLEncoding.EncodeToString(raw)); err == nil {
+		t.Error("an altered sign-in was read")
+	}
+	// A session cookie is not a sign-in, nor the other way round.
+	w := httptest.NewRecorder()
+	a.start(w, "c.auditor")
+	if _, err := b.open(w.Result().Cookies()[0].Value); err == nil {
+		t.Error("a session cookie was read as a sign-in")
+	}
+	if _, err := b.check(sealed); err == nil {
+		t.Error("a sign-in cookie was accepted as a session")
+	}
+	t.Cleanup(func() { clockSkew.Store(0) })
+	clockSkew.Store(int64(signinTimeout))
+	if _, err := b.open(sealed); !errors.Is(err, errSigninExpired) {
+		t.Errorf("an expired sign-in: %v, want errSigninExpired", err)
+	}
+}
+
+// Two replicas behind one name share a session key: a sign-in that starts
+// on one and returns to the other completes, and the session then opens
+// pages on both. A third instance with another key (a replica left with
+// its own random key) refuses the session.
+func TestSignInAcrossReplicas(t *testing.T) {
+	m, err := mockoidc.Run()
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = m.Shutdown() })
+	key := bytes.Repeat([]byte("r"), MinSessionKeyBytes)
+	var access bytes.Buffer
+	var handlers [3]http.Handler
+	var servers [3]*httptest.Server
+	for i := range servers {
+		servers[i] = httptest.NewTLSServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) { handlers[i].ServeHTTP(w, r) }))
+		t.Cleanup(servers[i].Close)
+	}
+	for i := range servers {
+		k := key
+		if i == 2 {
+			k = bytes.Repeat([]byte("x"), MinSessionKeyBytes)
+		}
+		auth, err := NewOIDC(context.Background(), OIDCConfig{
+			Issuer: m.Issuer(), ClientID: m.ClientID, ClientSecret: m.ClientSecret,
+			// The provider sends every browser back to replica 1.
+			RedirectURL: servers[1].URL + "/signin/callback", Scopes: []string{"openid", "profile", "groups"},
+			Claim: "groups", Allowed: []string{"icu-audit"}, SessionTTL: time.Hour, SessionKey: k,
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		handlers[i] = testHandler(t, ReportSource{demo(t)}, auth, &access)
+	}
+	m.QueueUser(&mockoidc.MockUser{Subject: "s1", PreferredUsername: "c.auditor", Groups: []string{"icu-audit"}})
+	jar, _ := cookiejar.New(nil) // cookies are per host, not per port: the replicas share them
+	client := servers[0].Client()
+	client.Jar = jar
+	get := func(base, path string) *http.Response {
+		t.Helper()
+		req, _ := http.NewRequest(http.MethodGet, base+path, nil)
+		req.Header.Set("Accept", "text/html")
+		resp, err := client.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		return resp
+	}
+	resp := get(servers[0].URL, "/patient/bed1-stable")
+	if resp.StatusCode != http.StatusOK || resp.Request.URL.String() != servers[1].URL+"/patient/bed1-stable" {
+		t.Fatalf("a sign-in started on replica 0, returned to replica 1: status %d at %s", resp.StatusCode, resp.Request.URL)
+	}
+	client.CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
+	for i, want := range []int{http.StatusOK, http.StatusOK, http.StatusSeeOther} {
+		if got := get(servers[i].URL, "/patient/bed1-stable").StatusCode; got != want {
+			t.Errorf("replica %d answered the session with %d, want %d", i, got, want)
+		}
+	}
+}
+
+// Without a key the process makes its own and says in the log that
+// sessions will not outlive it.
+func TestNoSessionKeyIsLogged(t *testing.T) {
+	m, err := mockoidc.Run()
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = m.Shutdown() })
+	var logs bytes.Buffer
+	_, err = NewOIDC(context.Background(), OIDCConfig{
+		Issuer: m.Issuer(), ClientID: m.ClientID, ClientSecret: m.ClientSecret, RedirectURL: "https://h/signin/callback",
+		Claim: "groups", Allowed: []string{"icu-audit"}, SessionTTL: time.Hour, Logger: slog.New(slog.NewTextHandler(&logs, nil)),
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(logs.String(), "will not survive a restart") {
+		t.Errorf("no warning that sessions end with the process: %q", logs.String())
+	}
+	logs.Reset()
+	if _, err := NewOIDC(context.Background(), OIDCConfig{
+		Issuer: m.Issuer(), ClientID: m.ClientID, RedirectURL: "https://h/signin/callback",
+		Claim: "groups", Allowed: []string{"icu-audit"}, SessionTTL: time.Hour, SessionKey: []byte("short"),
+	}); err == nil || !strings.Contains(err.Error(), "session key") {
+		t.Errorf("a short key: %v, want an error naming the session key", err)
+	}
 }
