@@ -31,7 +31,10 @@
 // the same system and code, so such Observations are unrelated to this
 // service. "co2Basis" ("wet" or "dry") is allowed on expired-gas CO2 rows
 // only and overrides the site's default basis for converting a percent to a
-// partial pressure (see package units).
+// partial pressure (see package units). "panel": true marks the code of a
+// panel (an arterial blood gas panel, 24336-0) whose PaCO2 is one of its
+// components; it is allowed on accepted paco2 rows only (see package
+// decode).
 //
 // # Priority
 //
@@ -107,6 +110,11 @@ type Row struct {
 	CO2Basis string
 	// Priority ranks rows of the same kind; higher is preferred.
 	Priority int
+	// Panel marks a panel's code (an arterial blood gas panel): the value
+	// of Kind is read from the panel's components, each recognised by its
+	// own row, and the reading cites the panel. Only paco2 rows may be
+	// panels.
+	Panel bool
 	// Note records where the code comes from and how sure we are of it.
 	Note string
 }
@@ -261,6 +269,7 @@ type rowJSON struct {
 	Reason   string `json:"reason"`
 	CO2Basis string `json:"co2Basis"`
 	Priority int    `json:"priority"`
+	Panel    bool   `json:"panel"`
 	Note     string `json:"note"`
 }
 
@@ -334,7 +343,7 @@ func parseRows(data []byte, base int, raw json.RawMessage) (*Table, error) {
 // row converts and checks one decoded row, returning every problem.
 func (rj rowJSON) row() (Row, []error) {
 	var errs []error
-	r := Row{System: rj.System, Code: rj.Code, Display: rj.Display, CO2Basis: rj.CO2Basis, Priority: rj.Priority, Note: rj.Note}
+	r := Row{System: rj.System, Code: rj.Code, Display: rj.Display, CO2Basis: rj.CO2Basis, Priority: rj.Priority, Panel: rj.Panel, Note: rj.Note}
 	if rj.System == "" {
 		errs = append(errs, errors.New(`"system" is required`))
 	}
@@ -385,6 +394,9 @@ func (rj rowJSON) row() (Row, []error) {
 		}
 	default:
 		errs = append(errs, fmt.Errorf(`"co2Basis" must be wet or dry, got %q`, rj.CO2Basis))
+	}
+	if rj.Panel && (r.Action != ActionAccept || r.Kind != derive.KindPaCO2) {
+		errs = append(errs, errors.New(`"panel" applies only to accepted paco2 rows: a blood gas panel whose PaCO2 is a component`))
 	}
 	if rj.Priority < 0 {
 		errs = append(errs, fmt.Errorf(`"priority" must not be negative, got %d`, rj.Priority))

@@ -27,6 +27,7 @@ func TestDefaultRows(t *testing.T) {
 	}{
 		{"PaCO2 (LOINC 2019-8, secondary sources; name in HL7 MCC IG)", codes.LOINC, "2019-8", derive.KindPaCO2, codes.ActionAccept, ""},
 		{"PaCO2 temperature-adjusted (32771-8, secondary sources only)", codes.LOINC, "32771-8", derive.KindPaCO2Adjusted, codes.ActionAccept, ""},
+		{"arterial blood gas panel (24336-0, HL7 MCC IG), PaCO2 from its components", codes.LOINC, "24336-0", derive.KindPaCO2, codes.ActionAccept, ""},
 		{"body temperature (8310-5, FHIR R4 Body Temperature profile)", codes.LOINC, "8310-5", derive.KindBodyTemperature, codes.ActionAccept, ""},
 		{"venous PCO2 rejected (2021-4, secondary sources only)", codes.LOINC, "2021-4", 0, codes.ActionReject, derive.ReasonNotArterial},
 		{"capillary PCO2 rejected (2020-6, secondary sources only)", codes.LOINC, "2020-6", 0, codes.ActionReject, derive.ReasonNotArterial},
@@ -134,7 +135,9 @@ func TestCodesAndSearchTokens(t *testing.T) {
 		}
 	}
 	got := tab.SearchTokens(derive.KindPaCO2, derive.KindPaCO2Adjusted)
-	want := []string{"http://loinc.org|2019-8", "http://loinc.org|32771-8"}
+	// The panel's code is searched too: a server's search by code (and a
+	// Subscription's criteria) matches Observation.code, not a component's.
+	want := []string{"http://loinc.org|2019-8", "http://loinc.org|24336-0", "http://loinc.org|32771-8"}
 	if !slices.Equal(got, want) {
 		t.Errorf("SearchTokens(paco2) = %v, want %v", got, want)
 	}
@@ -201,6 +204,8 @@ func TestLoadErrors(t *testing.T) {
 		{"reason on accepted row", `{"rows": [{"system": "s", "code": "c", "kind": "paco2", "reason": "specimen-not-arterial"}]}`, []string{`"reason" is for rejected rows only`}},
 		{"unknown reason", `{"rows": [{"system": "s", "code": "c", "action": "reject", "reason": "bad-vibes"}]}`, []string{`unknown "reason"`}},
 		{"co2Basis on tidal volume", `{"rows": [{"system": "s", "code": "c", "kind": "tidal-volume", "co2Basis": "wet"}]}`, []string{`"co2Basis" applies only`}},
+		{"a panel of tidal volumes", `{"rows": [{"system": "s", "code": "c", "kind": "tidal-volume", "panel": true}]}`, []string{`"panel" applies only`}},
+		{"a rejected panel", `{"rows": [{"system": "s", "code": "c", "action": "reject", "reason": "specimen-not-arterial", "panel": true}]}`, []string{`"panel" applies only`}},
 		{"bad co2Basis", `{"rows": [{"system": "s", "code": "c", "kind": "etco2", "co2Basis": "damp"}]}`, []string{`must be wet or dry`}},
 		{"negative priority", `{"rows": [{"system": "s", "code": "c", "kind": "etco2", "priority": -1}]}`, []string{`must not be negative`}},
 		{"bad action", `{"rows": [{"system": "s", "code": "c", "action": "maybe"}]}`, []string{`"action" must be`}},

@@ -32,10 +32,16 @@
 //     only plausible in another unit (a PaCO2 of 5.3 labelled mm[Hg]),
 //     else [derive.ReasonImplausible] with the range in the detail.
 //
-// Observations with components (an arterial blood gas panel, 24336-0, with
-// PaCO2 as a component) are not read: a component has no id of its own, so
-// a reading from it could not be cited by a versioned reference. One
-// exception: a PaCO2 that carries the patient's temperature as a component
+// A panel (a row marked Panel: the arterial blood gas panel, 24336-0) has
+// no value of its own: its PaCO2 is the first component whose code has an
+// accepted paco2 row (failing that, the first with a rejected row, which
+// gives that row's reason), and the reading is the panel's: its id,
+// version, subject, status and time, so values derived from it cite the
+// panel's version (a component has no id of its own). A panel with no such
+// component (one that lists its results by hasMember) is [ItemUnrelated]:
+// its members are read on their own. Other components are not read, with
+// one exception: a PaCO2 (alone or in a panel) that carries the patient's
+// temperature as a component
 // (a component whose code has a body-temperature row, 8310-5) gives that
 // temperature too, in [Item.Also], at the blood gas's effective time and
 // citing the blood gas's own reference: the temperature was entered on the
@@ -291,8 +297,9 @@ type observationJSON struct {
 }
 
 type componentJSON struct {
-	Code          conceptJSON   `json:"code"`
-	ValueQuantity *quantityJSON `json:"valueQuantity"`
+	Code             conceptJSON   `json:"code"`
+	ValueQuantity    *quantityJSON `json:"valueQuantity"`
+	DataAbsentReason *conceptJSON  `json:"dataAbsentReason"`
 }
 
 func present(raw json.RawMessage) bool { return len(raw) > 0 && string(raw) != "null" }
@@ -340,6 +347,15 @@ func (d *Decoder) observation(line []byte) Item {
 	if !ok {
 		return Item{Type: ItemUnrelated, ResourceType: "Observation"}
 	}
+	// A panel's value is one of its components, recognised by its own row;
+	// a panel without one groups its results some other way (hasMember),
+	// and those are read on their own.
+	var comp *componentJSON
+	if row.Panel {
+		if comp, row, ok = d.panelComponent(&o, row.Kind); !ok {
+			return Item{Type: ItemUnrelated, ResourceType: "Observation"}
+		}
+	}
 	it := Item{Type: ItemOmitted, ResourceType: "Observation", Status: o.Status, Priority: row.Priority}
 	it.Reading.Kind = row.Kind
 	omit := func(reason derive.Reason, detail string) Item {
@@ -360,7 +376,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(derive.ReasonMalformed, describeTypeError(typeErr))
 	}
 	if row.Action == codes.ActionReject {
-		return omit(row.Reason, fmt.Sprintf("code %s|%s (%s)", row.System, row.Code, row.Display))
+		what := "code"
+		if comp != nil {
+			what = "component code"
+		}
+		return omit(row.Reason, fmt.Sprintf("%s %s|%s (%s)", what, row.System, row.Code, row.Display))
 	}
 	switch o.Status {
 	case "final", "amended", "corrected":
@@ -376,16 +396,21 @@ func (d *Decoder) observation(line []byte) Item {
 		it.Reading.Encounter = intern(o.Encounter.Reference)
 	}
 
-	// Value.
-	others := o.otherValues()
-	q := o.ValueQuantity
+	// Value: the Observation's own, or a panel's component's.
+	others, q, absent := o.otherValues(), o.ValueQuantity, o.DataAbsentReason
+	if comp != nil {
+		others, q, absent = nil, comp.ValueQuantity, comp.DataAbsentReason
+		if q == nil && absent == nil {
+			return omit(derive.ReasonNoValue, "the panel's PaCO2 component has no valueQuantity")
+		}
+	}
 	switch {
 	case len(others)+btoi(q != nil) > 1:
 		return omit(derive.ReasonMalformed, "more than one value[x]")
-	case o.DataAbsentReason != nil && (q != nil || len(others) > 0):
+	case absent != nil && (q != nil || len(others) > 0):
 		return omit(derive.ReasonMalformed, "both a value and a dataAbsentReason (obs-6)")
-	case o.DataAbsentReason != nil:
-		return omit(derive.ReasonNoValue, "dataAbsentReason "+conceptText(*o.DataAbsentReason))
+	case absent != nil:
+		return omit(derive.ReasonNoValue, "dataAbsentReason "+conceptText(*absent))
 	case q == nil && len(others) > 0:
 		return omit(derive.ReasonNoValue, others[0]+" is not a Quantity")
 	case q == nil:
@@ -443,6 +468,28 @@ func (d *Decoder) observation(line []byte) Item {
 		it.Also = d.componentTemperature(&o, it.Reading)
 	}
 	return it
+}
+
+// panelComponent returns the component of a panel that carries its value
+// of kind, with that component's row: the first, in document order, whose
+// code has an accepted row of kind; failing that, the first whose code has
+// a rejected row (a venous PCO2 in the panel), so the panel is reported
+// with that row's reason. ok is false when no component has either.
+func (d *Decoder) panelComponent(o *observationJSON, kind derive.Kind) (*componentJSON, codes.Row, bool) {
+	var rejected *componentJSON
+	var rejectedRow codes.Row
+	for i := range o.Component {
+		c := &o.Component[i]
+		row, ok := d.lookup(c.Code)
+		switch {
+		case !ok || row.Panel:
+		case row.Action == codes.ActionAccept && row.Kind == kind:
+			return c, row, true
+		case row.Action == codes.ActionReject && rejected == nil:
+			rejected, rejectedRow = c, row
+		}
+	}
+	return rejected, rejectedRow, rejected != nil
 }
 
 // componentTemperature returns the patient's temperature carried as a

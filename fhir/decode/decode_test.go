@@ -96,6 +96,60 @@ func fixtures(t testing.TB) []fixture {
 				t.Errorf("Also = %+v, want none", it.Also)
 			}
 		}},
+		// An arterial blood gas panel whose PaCO2 is a component: the
+		// reading cites the panel's own version (a component has no id),
+		// and a temperature component comes with it as for a lone PaCO2.
+		{name: "panel: PaCO2 and temperature components", line: panel(panelPaO2, panelPaCO2("41", "mmHg", "mm[Hg]"), panelTemperature),
+			typ: ItemReading, check: func(t *testing.T, it Item) {
+				at := time.Date(2025, 3, 1, 10, 15, 0, 0, time.UTC).UnixMilli()
+				want := derive.Reading{Ref: "Observation/abg-55/_history/3", Encounter: "Encounter/e1", AtMillis: at, Value: 41, Kind: derive.KindPaCO2}
+				if it.Reading != want || it.Ref != want.Ref || it.Subject != "Patient/p1" || it.Priority != 20 {
+					t.Errorf("Reading %+v (item %q %q, priority %d), want %+v", it.Reading, it.Ref, it.Subject, it.Priority, want)
+				}
+				wantAlso := []derive.Reading{{Ref: want.Ref, Encounter: "Encounter/e1", AtMillis: at, Value: 38, Kind: derive.KindBodyTemperature, Priority: 20}}
+				if !reflect.DeepEqual(it.Also, wantAlso) {
+					t.Errorf("Also = %+v, want %+v", it.Also, wantAlso)
+				}
+				if it.Original != (Original{Value: "41", Unit: "mmHg", System: codes.UCUM, Code: "mm[Hg]"}) {
+					t.Errorf("Original = %+v, want the component's value", it.Original)
+				}
+			}},
+		{name: "panel: PaCO2 component alone, in kPa", line: panel(panelPaCO2("5.3", "kPa", "kPa")), typ: ItemReading,
+			check: func(t *testing.T, it Item) {
+				if !near(it.Reading.Value, 39.75337903721817) || it.Also != nil {
+					t.Errorf("Reading %+v, Also %+v", it.Reading, it.Also)
+				}
+			}},
+		{name: "panel: the arterial component wins over a venous one before it", line: panel(panelVenous, panelPaCO2("41", "mmHg", "mm[Hg]")), typ: ItemReading,
+			check: func(t *testing.T, it Item) {
+				if it.Reading.Value != 41 {
+					t.Errorf("Reading %+v, want the arterial 41", it.Reading)
+				}
+			}},
+		// A panel that groups separate results by hasMember carries no
+		// value: its members are read on their own.
+		{name: "panel: members by reference, no components", line: abg(set("code", coding("http://loinc.org", "24336-0", "Gas panel - Arterial blood")), del("valueQuantity"),
+			set("hasMember", []any{map[string]any{"reference": "Observation/abg-56"}})), typ: ItemUnrelated},
+		{name: "panel: no PaCO2 among its components", line: panel(panelPaO2, panelTemperature), typ: ItemUnrelated},
+		{name: "specimen-not-arterial: a panel's venous PCO2 component", line: panel(panelVenous), typ: ItemOmitted, reason: derive.ReasonNotArterial,
+			check: func(t *testing.T, it Item) {
+				if !strings.Contains(it.Omission.Detail, "component code http://loinc.org|2021-4") || it.Omission.Ref != "Observation/abg-55/_history/3" {
+					t.Errorf("omission %+v", it.Omission)
+				}
+			}},
+		{name: "value-absent: a panel's PaCO2 component without a value", line: panel(map[string]any{"code": coding("http://loinc.org", "2019-8", "PaCO2")}),
+			typ: ItemOmitted, reason: derive.ReasonNoValue},
+		{name: "value-absent: a panel's PaCO2 component with a dataAbsentReason", line: panel(map[string]any{"code": coding("http://loinc.org", "2019-8", "PaCO2"),
+			"dataAbsentReason": coding("http://terminology.hl7.org/CodeSystem/data-absent-reason", "error", "Error")}),
+			typ: ItemOmitted, reason: derive.ReasonNoValue},
+		{name: "value-implausible: a panel's PaCO2 component of 400 mm[Hg]", line: panel(panelPaCO2("400", "mmHg", "mm[Hg]")), typ: ItemOmitted, reason: derive.ReasonImplausible},
+		{name: "entered-in-error: a panel", line: abg(set("code", coding("http://loinc.org", "24336-0", "Gas panel - Arterial blood")), del("valueQuantity"),
+			set("component", []any{panelPaCO2("41", "mmHg", "mm[Hg]")}), set("status", "entered-in-error")), typ: ItemOmitted, reason: derive.ReasonEnteredInError,
+			check: func(t *testing.T, it Item) {
+				if it.Ref != "Observation/abg-55/_history/3" || it.Reading.Kind != derive.KindPaCO2 {
+					t.Errorf("a withdrawn panel must name itself and its kind: %q %v", it.Ref, it.Reading.Kind)
+				}
+			}},
 		// 5.0 %, PB 760: 35.65 wet, own arithmetic on the published formula
 		// of the Intensive Care Med 2004 dead-space review (doi
 		// 10.1007/s00134-004-2194-8), PCO2 = FCO2 × (PB − 47); 38.0 dry,

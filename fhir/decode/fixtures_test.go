@@ -81,6 +81,26 @@ var baseABG = map[string]any{
 	"valueQuantity":     quantity("40.0", "mmHg", "mm[Hg]"),
 }
 
+// panelPaCO2, panelTemperature and panelPaO2 are components of an arterial
+// blood gas panel (LOINC 24336-0), shaped as R4's Observation.component
+// (https://hl7.org/fhir/R4/observation-definitions.html#Observation.component):
+// a code and a value each, no id of their own.
+func panelPaCO2(value, unit, code string) map[string]any {
+	return map[string]any{"code": coding("http://loinc.org", "2019-8", "Carbon dioxide [Partial pressure] in Arterial blood"), "valueQuantity": quantity(value, unit, code)}
+}
+
+var (
+	panelTemperature = map[string]any{"code": coding("http://loinc.org", "8310-5", "Body temperature"), "valueQuantity": quantity("38.0", "C", "Cel")}
+	panelPaO2        = map[string]any{"code": coding("http://loinc.org", "2703-7", "Oxygen [Partial pressure] in Arterial blood"), "valueQuantity": quantity("85", "mmHg", "mm[Hg]")}
+	panelVenous      = map[string]any{"code": coding("http://loinc.org", "2021-4", "Carbon dioxide [Partial pressure] in Venous blood"), "valueQuantity": quantity("46", "mmHg", "mm[Hg]")}
+)
+
+// panel is an arterial blood gas panel: baseABG's identity, subject and
+// time, code 24336-0, no value of its own, and these components.
+func panel(components ...any) []byte {
+	return abg(set("code", coding("http://loinc.org", "24336-0", "Gas panel - Arterial blood")), del("valueQuantity"), set("component", components))
+}
+
 // baseEtCO2 is a capnograph reading with an MDC code, as a device gateway
 // sends it.
 var baseEtCO2 = map[string]any{
