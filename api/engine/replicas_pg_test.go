@@ -6,6 +6,9 @@ import (
 	"fmt"
 	"log/slog"
 	"net/http"
+	"net/http/httptest"
+	"net/http/httputil"
+	"net/url"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -380,4 +383,78 @@ type tWriter struct {
 func (w tWriter) Write(p []byte) (int, error) {
 	w.t.Log(w.name, strings.TrimSpace(string(p)))
 	return len(p), nil
+}
+
+// A write whose send outlasts the write lease (the server holds the
+// transaction) stays with the replica sending it: that replica renews its
+// claim while the send runs, so another replica asking for due writes the
+// whole time is never handed it, and the server receives the transaction
+// once. Without the renewal the second replica takes the write over after
+// one lease and sends the same conditional creates at the same moment.
+func TestSlowSendKeepsItsClaim(t *testing.T) {
+	f := fakefhir.Start(t)
+	target, err := url.Parse(f.BaseURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	const lease = time.Second
+	var transactions atomic.Int64
+	proxy := httputil.NewSingleHostReverseProxy(&url.URL{Scheme: target.Scheme, Host: target.Host})
+	slow := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		if r.Method == http.MethodPost && strings.TrimSuffix(r.URL.Path, "/") == target.Path {
+			transactions.Add(1)
+			time.Sleep(3 * lease) // the server holds the transaction
+		}
+		proxy.ServeHTTP(w, r)
+	}))
+	t.Cleanup(slow.Close)
+	base := slow.URL + target.Path
+
+	dbURL := pgtest.NewDatabase(t)
+	var engines []*engine.Engine
+	for _, name := range []string{"replica-a", "replica-b"} {
+		ps, err := pgstore.Open(context.Background(), dbURL, pgstore.Options{Holder: name, WriteLease: lease})
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() { ps.Close() })
+		engines = append(engines, newEngine(t, ps, base))
+	}
+	ctx := context.Background()
+	at := time.Now().Add(-time.Hour).Truncate(time.Minute)
+	updated := at.Add(10 * time.Minute)
+	inputs := []json.RawMessage{obs("gas", "1", "final", "2019-8", "mm[Hg]", 45, at, updated)}
+	for m := -2; m <= 2; m++ {
+		inputs = append(inputs, obs(fmt.Sprintf("et%d", m+2), "1", "final", "19891-1", "mm[Hg]", 36, at.Add(time.Duration(m)*time.Minute), updated))
+	}
+	if _, err := engines[0].Ingest(ctx, "test", inputs); err != nil {
+		t.Fatal(err)
+	}
+	if err := engines[0].EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+
+	sent := make(chan struct{})
+	go func() {
+		defer close(sent)
+		engines[0].FlushNow(ctx)
+	}()
+	waitUntil(t, "replica A to send the transaction", func() bool { return transactions.Load() > 0 })
+	// Replica B asks for due writes throughout A's send, well past A's
+	// first lease.
+	for {
+		engines[1].FlushNow(ctx)
+		select {
+		case <-sent:
+		case <-time.After(100 * time.Millisecond):
+			continue
+		}
+		break
+	}
+	if n := transactions.Load(); n != 1 {
+		t.Errorf("the server received %d transactions for one write, want 1", n)
+	}
+	if n := len(f.Current("Provenance")); n != 1 {
+		t.Errorf("%d Provenance on the server, want 1", n)
+	}
 }

@@ -107,7 +107,20 @@ const outboxScan = 512
 // write left the outbox (acknowledged or buried); an error means the store
 // could not record the outcome.
 func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
-	server, err := e.send(ctx, w)
+	rep, shared := e.cfg.Store.(store.Replicated)
+	if shared {
+		ok, err := rep.RenewWriteClaim(ctx, w.ID)
+		if err != nil {
+			return false, fmt.Errorf("renewing the claim on write %d: %w", w.ID, err)
+		}
+		if !ok {
+			// Another replica took the write over after this one's claim
+			// lapsed; it sends it, this one must not send it again.
+			e.log.WarnContext(ctx, "a write's claim lapsed and another replica took it over", "write", w.ID)
+			return false, nil
+		}
+	}
+	server, err := e.sendHoldingClaim(ctx, w, rep)
 	now := e.now()
 	switch {
 	case err == nil:
@@ -153,6 +166,40 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", err)
 		return false, nil
 	}
+}
+
+// sendHoldingClaim sends a write and, when the store is shared by
+// replicas (rep not nil), keeps renewing this replica's claim on it while
+// the send runs. DueWrites claims a whole batch for one write lease, and a
+// batch sent one write at a time, or one slow send with its retries, can
+// outlast it; without renewal another replica would take the write over
+// and send the same conditional creates at the same moment, which a
+// server may not keep apart. attempt renews the claim once before the send
+// and skips a write whose claim was lost.
+func (e *Engine) sendHoldingClaim(ctx context.Context, w store.Write, rep store.Replicated) (map[string][2]string, error) {
+	if rep == nil {
+		return e.send(ctx, w)
+	}
+	sendCtx, stop := context.WithCancel(ctx)
+	defer stop()
+	go func() {
+		t := time.NewTicker(max(rep.WriteLease()/3, 10*time.Millisecond))
+		defer t.Stop()
+		for {
+			select {
+			case <-sendCtx.Done():
+				return
+			case <-t.C:
+				// A claim lost after all (this replica stalled for a whole
+				// lease) ends the renewals; the send's outcome is still
+				// recorded, and the conditional creates stand behind it.
+				if ok, err := rep.RenewWriteClaim(sendCtx, w.ID); err == nil && !ok {
+					return
+				}
+			}
+		}
+	}()
+	return e.send(sendCtx, w)
 }
 
 func (e *Engine) writeResult(outcome string) {

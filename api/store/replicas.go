@@ -52,4 +52,14 @@ type Replicated interface {
 	// dirty (an evaluation that failed or was abandoned), so that any
 	// replica may take it at once.
 	ReleaseClaim(ctx context.Context, subject string) error
+	// RenewWriteClaim extends this replica's claim on an outbox write (see
+	// DueWrites) by the write lease, from now. ok is false when the claim
+	// is no longer this replica's: it lapsed and another replica took the
+	// write (or the write left the outbox). A replica renews a claim
+	// before it sends the write and while the send runs, so only a replica
+	// that stalls for a whole lease can lose a write it is sending, and
+	// one that finds its claim lost does not send the write a second time.
+	RenewWriteClaim(ctx context.Context, writeID uint64) (ok bool, err error)
+	// WriteLease is how long a claim on an outbox write lasts.
+	WriteLease() time.Duration
 }

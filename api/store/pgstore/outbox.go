@@ -79,6 +79,23 @@ func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]stor
 	return out, nil
 }
 
+// WriteLease is how long a claim on an outbox write lasts.
+func (s *Store) WriteLease() time.Duration { return s.writeLease }
+
+// RenewWriteClaim extends this replica's claim on a write by the write
+// lease. A claim that lapsed is still renewed when no other replica took
+// the write meanwhile.
+func (s *Store) RenewWriteClaim(ctx context.Context, writeID uint64) (bool, error) {
+	var ok bool
+	err := s.run(ctx, "RenewWriteClaim", func(q querier) error {
+		tag, err := q.Exec(ctx, `UPDATE outbox SET claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
+			WHERE id = $1 AND claimed_by = $2`, int64(writeID), s.holder, s.writeLease.Microseconds())
+		ok = err == nil && tag.RowsAffected() == 1
+		return err
+	})
+	return ok, err
+}
+
 func writeNotFound(id uint64) error { return notFound(fmt.Sprintf("write %d", id)) }
 
 // Acknowledge removes the write and records server ids. A series that is

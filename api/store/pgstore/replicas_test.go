@@ -311,3 +311,71 @@ func TestSetCursorUnderLease(t *testing.T) {
 		t.Fatalf("cursor %q %v, want the new holder's", v, err)
 	}
 }
+
+// A replica that renews its claim on a write keeps it past the lease: no
+// other replica is handed the write while the send runs. Once a claim has
+// lapsed and another replica took the write, the first one's renewal is
+// refused, so it does not send the write a second time; a lapsed claim
+// nobody took is renewed.
+func TestRenewWriteClaim(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	const lease = 2 * time.Second
+	a := openWithLease(t, url, "replica-a", lease)
+	b := openWithLease(t, url, "replica-b", lease)
+	ctx := t.Context()
+	if err := a.Commit(ctx, store.Change{Subject: "Patient/r",
+		Entries: []store.Entry{{Series: "s1", Key: "k1", Status: "final", EffectiveAt: t0}},
+		Writes:  []store.Write{{Series: []string{"s1"}, Body: []byte("w1")}},
+	}, t0); err != nil {
+		t.Fatal(err)
+	}
+	claimed, err := a.DueWrites(ctx, t0, 1)
+	if err != nil || len(claimed) != 1 {
+		t.Fatalf("A claims %v, %v; want one write", ids(claimed), err)
+	}
+	id := claimed[0].ID
+	expiresOf := func() time.Time {
+		var at time.Time
+		if err := a.pool.QueryRow(ctx, "SELECT claim_expires FROM outbox WHERE id = $1", int64(id)).Scan(&at); err != nil {
+			t.Fatal(err)
+		}
+		return at
+	}
+
+	// Renewed for three leases in a row: B is never handed the write.
+	end := expiresOf().Add(2 * lease)
+	for time.Now().Before(end) {
+		if ok, err := a.RenewWriteClaim(ctx, id); err != nil || !ok {
+			t.Fatalf("A renews its own claim: %v, %v; want true", ok, err)
+		}
+		if got, err := b.DueWrites(ctx, t0, 10); err != nil || len(got) != 0 {
+			t.Fatalf("B is handed %v (%v) while A renews its claim", ids(got), err)
+		}
+		time.Sleep(lease / 4)
+	}
+
+	// A lapsed claim that nobody took is renewed.
+	waitExpired(t, b, expiresOf())
+	if ok, err := a.RenewWriteClaim(ctx, id); err != nil || !ok {
+		t.Fatalf("A renews a lapsed claim nobody took: %v, %v; want true", ok, err)
+	}
+
+	// A stalls past its lease, B takes the write over: A's renewal is
+	// refused, and B's is granted.
+	waitExpired(t, b, expiresOf())
+	if got, err := b.DueWrites(ctx, t0, 10); err != nil || len(got) != 1 || got[0].ID != id {
+		t.Fatalf("B after A's claim lapsed gets %v (%v), want write %d", ids(got), err, id)
+	}
+	if ok, err := a.RenewWriteClaim(ctx, id); err != nil || ok {
+		t.Fatalf("A renews a claim B took over: %v, %v; want false", ok, err)
+	}
+	if ok, err := b.RenewWriteClaim(ctx, id); err != nil || !ok {
+		t.Fatalf("B renews its claim: %v, %v; want true", ok, err)
+	}
+	if err := b.Acknowledge(ctx, id, nil); err != nil {
+		t.Fatal(err)
+	}
+	if ok, err := b.RenewWriteClaim(ctx, id); err != nil || ok {
+		t.Fatalf("renewing a write that left the outbox: %v, %v; want false", ok, err)
+	}
+}
