@@ -13,10 +13,16 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
-// pictureInterval is the shortest time between two rounds of the
-// left-out picture's refresher: a burst of data for a patient costs at
-// most one complete re-derivation of that patient per interval.
-const pictureInterval = time.Second
+// When the left-out picture's refresher runs: once evaluations have been
+// quiet for pictureQuiet, or, under sustained load, pictureMaxLag after a
+// patient's picture went stale. A burst of data therefore costs each of
+// its patients one complete re-derivation after the burst (or one per
+// pictureMaxLag while it lasts), not one per second taken from the
+// evaluations and the webhook; the gauges lag by at most that.
+const (
+	pictureQuiet  = time.Second
+	pictureMaxLag = 15 * time.Second
+)
 
 // pictures keeps Hooks.Evaluated true to a complete evaluation of each
 // patient's data.
@@ -30,8 +36,9 @@ const pictureInterval = time.Second
 // stale, and a refresher re-derives stale patients whole, without
 // committing anything, off the evaluation path: one patient at a time,
 // each stale patient once per round however many evaluations marked it,
-// rounds at most one per [pictureInterval], and after each round a rest as
-// long as the round took.
+// a round when evaluations go quiet (or at the latest [pictureMaxLag]
+// after the first stale mark), and after each round a rest as long as the
+// round took.
 type pictures struct {
 	wake chan struct{}
 
@@ -45,6 +52,8 @@ type pictures struct {
 	// refreshing counts the patients of the round in progress not yet
 	// reported.
 	refreshing int
+	// lastEvaluation is when an evaluation last reported.
+	lastEvaluation time.Time
 
 	round sync.Mutex // one refresh round at a time
 }
@@ -60,6 +69,7 @@ func (e *Engine) evaluated(subject string, omitted []derive.Omission, complete b
 	p.mu.Lock()
 	defer p.mu.Unlock()
 	p.evaluations[subject]++
+	p.lastEvaluation = time.Now()
 	if !complete {
 		p.stale[subject] = struct{}{}
 		signal(p.wake)
@@ -79,6 +89,9 @@ func (e *Engine) pictureLoop(ctx context.Context) {
 			return
 		case <-e.pictures.wake:
 		}
+		if !e.awaitQuiet(ctx, time.Now()) {
+			return
+		}
 		started := time.Now()
 		if err := e.refreshPictures(ctx); err != nil && ctx.Err() == nil {
 			e.log.ErrorContext(ctx, "refreshing what the derivations leave out failed; it is retried", "err", err)
@@ -86,9 +99,28 @@ func (e *Engine) pictureLoop(ctx context.Context) {
 		}
 		// Rest at least as long as the round took, so under sustained load
 		// the refresher takes at most half of one core from evaluations.
-		took := time.Since(started)
-		if !sleep(ctx, max(pictureInterval-took, took)) {
+		if !sleep(ctx, time.Since(started)) {
 			return
+		}
+	}
+}
+
+// awaitQuiet waits until evaluations have been quiet for pictureQuiet, or
+// pictureMaxLag after staleSince, whichever comes first; false when ctx
+// ended.
+func (e *Engine) awaitQuiet(ctx context.Context, staleSince time.Time) bool {
+	p := e.pictures
+	deadline := staleSince.Add(pictureMaxLag)
+	for {
+		p.mu.Lock()
+		quietAt := p.lastEvaluation.Add(pictureQuiet)
+		p.mu.Unlock()
+		now := time.Now()
+		if !now.Before(quietAt) || !now.Before(deadline) {
+			return true
+		}
+		if !sleep(ctx, min(quietAt.Sub(now), deadline.Sub(now))) {
+			return false
 		}
 	}
 }
