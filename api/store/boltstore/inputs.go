@@ -219,40 +219,32 @@ func writeInput(tx *bolt.Tx, in store.Input) error {
 
 // Inputs returns the patient's inputs by a prefix scan of subject+0.
 func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
-	var out []store.Input
-	err := s.view(ctx, "Inputs", func(tx *bolt.Tx) error {
-		prefix := subjectPrefix(subject)
-		c := tx.Bucket(bInputs).Cursor()
-		for k, v := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
-			in, err := decodeInput(subject, string(k[len(prefix):]), v)
-			if err != nil {
-				return err
-			}
-			out = append(out, in)
-		}
-		return nil
-	})
-	if err != nil {
-		return nil, err
-	}
-	return out, nil
+	return s.inputsFrom(ctx, "Inputs", subject, time.Time{})
 }
 
 // InputsFrom walks the patient's keys as Inputs does but decodes and
 // copies only the inputs effective from then on: the rest cost a read of
 // their head.
 func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
+	return s.inputsFrom(ctx, "InputsFrom", subject, from)
+}
+
+// inputsFrom is Inputs and InputsFrom; a zero from reads every input
+// without looking at its head first.
+func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Time) ([]store.Input, error) {
 	var out []store.Input
-	err := s.view(ctx, "InputsFrom", func(tx *bolt.Tx) error {
+	err := s.view(ctx, op, func(tx *bolt.Tx) error {
 		prefix := subjectPrefix(subject)
 		c := tx.Bucket(bInputs).Cursor()
 		for k, v := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
-			_, _, eff, err := decodeInputHead(v)
-			if err != nil {
-				return err
-			}
-			if eff.Before(from) {
-				continue
+			if !from.IsZero() {
+				_, _, eff, err := decodeInputHead(v)
+				if err != nil {
+					return err
+				}
+				if eff.Before(from) {
+					continue
+				}
 			}
 			in, err := decodeInput(subject, string(k[len(prefix):]), v)
 			if err != nil {

@@ -184,19 +184,7 @@ const inputColumns = `subject, logical, version_id, last_updated_ns, effective_n
 
 // Inputs returns the patient's inputs in Logical order.
 func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
-	var out []store.Input
-	err := s.run(ctx, "Inputs", func(q querier) error {
-		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE subject = $1 ORDER BY logical`, subject)
-		if err != nil {
-			return err
-		}
-		out, err = pgx.CollectRows(rows, scanInput)
-		return err
-	})
-	if err != nil {
-		return nil, err
-	}
-	return out, nil
+	return s.queryInputs(ctx, "Inputs", `subject = $1`, subject)
 }
 
 // InputsFrom returns the patient's inputs effective at or after from.
@@ -204,9 +192,14 @@ func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) 
 	if from.IsZero() {
 		return s.Inputs(ctx, subject) // zero is stored as 0 ns, after times before 1970
 	}
+	return s.queryInputs(ctx, "InputsFrom", `subject = $1 AND effective_ns >= $2`, subject, nanos(from))
+}
+
+// queryInputs returns the inputs matching where, in Logical order.
+func (s *Store) queryInputs(ctx context.Context, op, where string, args ...any) ([]store.Input, error) {
 	var out []store.Input
-	err := s.run(ctx, "InputsFrom", func(q querier) error {
-		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE subject = $1 AND effective_ns >= $2 ORDER BY logical`, subject, nanos(from))
+	err := s.run(ctx, op, func(q querier) error {
+		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE `+where+` ORDER BY logical`, args...)
 		if err != nil {
 			return err
 		}
