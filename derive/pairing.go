@@ -324,6 +324,39 @@ func (c Config) DependencySpan(sample time.Time) (from, to time.Time) {
 	return sample.Add(-back), sample.Add(ahead)
 }
 
+// Reach returns how far before a reading's own time the sample time of a
+// blood gas it can change may lie: a reading of kind k taken at t leaves
+// the derivation of every blood gas sampled before t − Reach(k) as it is
+// (DependencySpan's "ahead" part, for one kind). A live caller re-derives
+// only the blood gases sampled from then on, so a new end-tidal reading
+// does not drag in the hour a body temperature can reach. Readings after
+// a blood gas reach it through the pairing window; body temperature
+// through its wider search; a temperature-adjusted PaCO2 only the sample
+// it belongs to. A blood gas changes its own derivation. Body height is
+// looked for a year back and the caller treats it as a change to the
+// whole patient; so is a kind this package does not know.
+func (c Config) Reach(k Kind) time.Duration {
+	switch {
+	case k == KindPaCO2:
+		return 0
+	case isWindowed(k):
+		return c.Window
+	case k == KindPaCO2Adjusted:
+		return sameSample
+	case k == KindBodyTemperature:
+		return c.Temperature.Search
+	}
+	return c.MaxReach()
+}
+
+// MaxReach is the largest [Config.Reach] over every kind that is not a
+// whole-patient change: how far back a change of unknown kind (a version
+// replaced by one of another code, say) can reach.
+func (c Config) MaxReach() time.Duration {
+	_, to := c.DependencySpan(time.Time{})
+	return to.Sub(time.Time{})
+}
+
 // PreferredSeries keeps, from one patient's readings of one kind sorted by
 // time, those with no higher-priority reading of the same kind within
 // ±window: the per-window source priority of [Derive], applied to a series

@@ -2,6 +2,7 @@ package derive_test
 
 import (
 	"math"
+	"reflect"
 	"slices"
 	"strconv"
 	"strings"
@@ -528,6 +529,56 @@ func TestDependencySpan(t *testing.T) {
 	inside := sortByTime(with(base, rd(derive.KindBodyTemperature, -30*time.Minute, 35)))
 	if got := derive.Derive(cfg, gasOf(40), man60, inside); derivationsEqual(ref, got) {
 		t.Errorf("a nearer temperature inside the span changed nothing; the test would not see a span too short")
+	}
+}
+
+// Reach is DependencySpan's forward part for one kind: a reading later
+// than a blood gas's sample time by more than Reach(kind) leaves its
+// derivation exactly as it was, and one just within reach changes it (so
+// the test would see a reach too short).
+func TestReach(t *testing.T) {
+	t.Parallel()
+	cfg := derive.DefaultConfig()
+	base := sortByTime(measured())
+	ref := derive.Derive(cfg, gasOf(40), man60, base)
+	cases := []struct {
+		name  string
+		kind  derive.Kind
+		value float64
+		reach time.Duration
+	}{
+		// A preferred source replaces the window's readings of its kind.
+		{"end-tidal CO2, the pairing window", derive.KindEtCO2, 20, cfg.Window},
+		{"tidal volume, the pairing window", derive.KindTidalVolume, 350, cfg.Window},
+		{"minute volume, the pairing window", derive.KindMinuteVolume, 11, cfg.Window},
+		{"respiratory rate, the pairing window", derive.KindRespRate, 28, cfg.Window},
+		{"mixed-expired CO2, the pairing window", derive.KindMixedExpiredCO2, 20, cfg.Window},
+		{"CO2 production, the pairing window", derive.KindVCO2, 300, cfg.Window},
+		{"body temperature, its search", derive.KindBodyTemperature, 33, cfg.Temperature.Search},
+		{"temperature-adjusted PaCO2, the same sample", derive.KindPaCO2Adjusted, 35, time.Minute},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			if got := cfg.Reach(tc.kind); got != tc.reach {
+				t.Fatalf("Reach = %v, want %v", got, tc.reach)
+			}
+			later := func(off time.Duration) derive.Derivation {
+				r := rd(tc.kind, off, tc.value)
+				r.Priority = 50
+				return derive.Derive(cfg, gasOf(40), man60, sortByTime(with(base, r)))
+			}
+			if got := later(tc.reach + time.Millisecond); !reflect.DeepEqual(ref, got) {
+				t.Errorf("a reading %v after the sample changed the derivation", tc.reach+time.Millisecond)
+			}
+			if got := later(tc.reach); reflect.DeepEqual(ref, got) {
+				t.Errorf("a preferred reading %v after the sample changed nothing", tc.reach)
+			}
+		})
+	}
+	// A blood gas reaches only itself; a kind of unknown reach reaches as
+	// far as any.
+	if cfg.Reach(derive.KindPaCO2) != 0 || cfg.Reach(derive.KindUnknown) != time.Hour || cfg.MaxReach() != time.Hour {
+		t.Errorf("Reach(PaCO2) %v, Reach(unknown) %v, MaxReach %v", cfg.Reach(derive.KindPaCO2), cfg.Reach(derive.KindUnknown), cfg.MaxReach())
 	}
 }
 

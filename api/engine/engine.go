@@ -340,7 +340,7 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 				e.leftOut(derive.ReasonPastRetention)
 				continue
 			}
-			in, err := toStored(it)
+			in, err := e.toStored(it)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
@@ -361,7 +361,7 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 			// never bring it back. Any other unusable version is kept only
 			// when it replaces a stored one; the store checks that in the
 			// same transaction as the write.
-			in, err := toStored(it)
+			in, err := e.toStored(it)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
@@ -406,7 +406,7 @@ func withdrawal(it decode.Item) ([]byte, error) {
 	})
 }
 
-func toStored(it decode.Item) (store.Input, error) {
+func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	payload, err := encodeStored(it)
 	if err != nil {
 		return store.Input{}, err
@@ -420,10 +420,16 @@ func toStored(it decode.Item) (store.Input, error) {
 		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
 		Withdrawal: moved,
 	}
-	// A reading changes results from its own time on (a height, which
-	// serves a year, and a withdrawal change them at any time: zero).
+	// A reading changes the results of blood gases sampled from its own
+	// time less its kind's reach on (a height, which serves a year, and a
+	// withdrawal change them at any time: zero). The version it replaces
+	// may have been of any kind.
 	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
-		in.ChangedAt = it.Reading.At()
+		in.ChangedAt = it.Reading.At().Add(-e.cfg.Derive.Reach(it.Reading.Kind))
+		for _, a := range it.Also {
+			in.ChangedAt = store.Earliest(in.ChangedAt, a.At().Add(-e.cfg.Derive.Reach(a.Kind)))
+		}
+		in.Reach = e.cfg.Derive.MaxReach()
 		in.Urgent = it.Reading.Kind == derive.KindPaCO2
 	}
 	return in, nil

@@ -10,6 +10,7 @@ import (
 	"fmt"
 	"math"
 	"runtime"
+	"slices"
 	"sync"
 	"time"
 
@@ -275,31 +276,19 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 }
 
 func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
-	// Incremental evaluation: when the mark says from when results can
-	// change, only the blood gases whose pairing window reaches that time
-	// are derived again; older ones keep their ledger entries untouched.
-	// (Sources are preferred per pairing window, so an older blood gas
-	// cannot be changed by a later reading; heights and patient facts,
-	// which reach further, leave From zero.)
-	gasesFrom := time.Time{}
-	if !d.From.IsZero() {
-		// A blood gas sampled at s depends on inputs up to DependencySpan's
-		// end after s: a change at From reaches the gases sampled from
-		// From less that reach on.
-		_, to := e.cfg.Derive.DependencySpan(d.From)
-		gasesFrom = d.From.Add(-to.Sub(d.From))
-	}
-	// The fall detector resumes from its state of the last evaluation
-	// when the change comes after it (a change at From can alter which
+	// Incremental evaluation: the mark says from which blood gas sample
+	// time results can change (each input's time less how far its kind
+	// reaches, derive.Config.Reach); only the blood gases sampled from
+	// then are derived again, and older ones keep their ledger entries
+	// untouched. Heights and patient facts, which reach further, leave
+	// From zero.
+	gasesFrom := d.From
+	// The fall detector resumes from a state saved by an earlier
+	// evaluation when the change comes after it (a change can alter which
 	// source is preferred from one pairing window before); then only the
 	// inputs those gases and the detector need are read.
 	resume := e.fallState(d, gasesFrom)
-	readFrom := time.Time{}
-	if resume != nil {
-		spanFrom, _ := e.cfg.Derive.DependencySpan(gasesFrom)
-		readFrom = store.Earliest(spanFrom, resume.At.Add(-e.cfg.Derive.Window))
-	}
-	inputs, err := e.loadInputsFrom(ctx, d.Subject, readFrom)
+	inputs, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, resume)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -308,12 +297,13 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		return err
 	}
 	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume}
+	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
-		inc.SaveAt = fallSaveAt(inputs, resume)
+		inc.SaveAt = e.fallSaveAt(latest, haveLatest)
 	}
-	// The saved state is kept only once the evaluation committed; any
-	// failure drops it, and the next evaluation runs the detector whole.
-	e.fallStates.Delete(d.Subject)
+	// The saved states are kept only once the evaluation committed; any
+	// failure drops them, and the next evaluation runs the detector whole.
+	previous, _ := e.fallStates.LoadAndDelete(d.Subject)
 	results, omitted, saved, err := pipeline.EvaluateIncremental(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, inc)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
@@ -329,8 +319,8 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	if saved != nil {
-		e.fallStates.Store(d.Subject, saved)
+	if len(saved) > 0 {
+		e.fallStates.Store(d.Subject, e.keptFallStates(previous, resume, saved, latest, haveLatest))
 	}
 	// Only a complete evaluation knows everything the patient's data
 	// leaves out; after an incremental one the picture is refreshed apart
@@ -362,11 +352,24 @@ func codeOf(en store.Entry) derive.Code {
 }
 
 // fallSaveLag is how far before a patient's latest end-tidal reading the
-// fall detector's state is saved for the next evaluation: a change dated
-// later than that (less a pairing window) resumes from it. An hour covers
-// readings that arrive late and blood gases that come back from the
-// laboratory within the hour; an earlier change runs the detector whole.
+// fall detector's longer-lived state is saved for later evaluations: a
+// change dated later than that (less a pairing window) resumes from it. An
+// hour covers readings that arrive late and blood gases that come back
+// from the laboratory within the hour; an earlier change runs the detector
+// whole. A second state, saved three pairing windows before the latest
+// reading, serves the usual case, a new reading at the end of the series,
+// so that it reads minutes of data instead of an hour.
 const fallSaveLag = time.Hour
+
+// fallSaveLags are the lags the detector's states are saved at, longest
+// first (so the times are ascending).
+func (e *Engine) fallSaveLags() []time.Duration {
+	short := 3 * e.cfg.Derive.Window
+	if short >= fallSaveLag {
+		return []time.Duration{short}
+	}
+	return []time.Duration{fallSaveLag, short}
+}
 
 // keepsFallState reports whether the engine may keep the fall detector's
 // state between evaluations: only over a store no other process writes.
@@ -377,7 +380,10 @@ func (e *Engine) keepsFallState() bool {
 
 // fallState returns the saved detector state an evaluation of d can
 // resume from, or nil: none saved, a whole evaluation, or a change before
-// it.
+// them. Of the states saved early enough it takes the latest, unless the
+// longer-lived one has fallen more than two lags behind the other: then
+// it resumes from that one, once, so it is saved again nearer the end of
+// the series and late blood gases keep a state to resume from.
 func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallState {
 	if gasesFrom.IsZero() || !e.keepsFallState() {
 		return nil
@@ -386,35 +392,116 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 	if !ok {
 		return nil
 	}
-	st := v.(*pipeline.FallState)
-	if d.From.Add(-e.cfg.Derive.Window).Before(st.At) {
-		return nil
+	states := v.([]*pipeline.FallState)
+	limit := d.From.Add(-e.cfg.Derive.Window)
+	var pick *pipeline.FallState
+	for _, st := range states { // ascending
+		if !st.At.After(limit) {
+			pick = st
+		}
 	}
-	return st
+	if pick != nil && len(states) > 1 && pick != states[0] && pick.At.Sub(states[0].At) > 2*fallSaveLag {
+		pick = states[0]
+	}
+	return pick
 }
 
-// fallSaveAt is when to save the detector's state: fallSaveLag before the
-// latest end-tidal reading, never earlier than the state resumed from.
-func fallSaveAt(inputs []pipeline.Input, resume *pipeline.FallState) time.Time {
+// latestEtCO2 returns the time of the latest end-tidal reading in inputs.
+func latestEtCO2(inputs []pipeline.Input) (time.Time, bool) {
 	latest := int64(math.MinInt64)
 	for _, in := range inputs {
 		if in.Reading.Kind == derive.KindEtCO2 {
 			latest = max(latest, in.Reading.AtMillis)
 		}
 	}
-	at := time.Time{}
-	if latest != math.MinInt64 {
-		at = time.UnixMilli(latest).UTC().Add(-fallSaveLag)
+	if latest == math.MinInt64 {
+		return time.Time{}, false
 	}
-	if resume != nil && at.Before(resume.At) {
-		at = resume.At
+	return time.UnixMilli(latest).UTC(), true
+}
+
+// fallSaveAt is when to save the detector's states: each lag before the
+// latest end-tidal reading (the pipeline moves a time before the state
+// resumed from up to it). With no end-tidal reading yet, the empty state
+// is saved at the epoch, so the next evaluation resumes from it.
+func (e *Engine) fallSaveAt(latest time.Time, ok bool) []time.Time {
+	if !ok {
+		return []time.Time{time.UnixMilli(0).UTC()}
 	}
-	if at.IsZero() {
-		// No end-tidal reading yet: save the empty state at the epoch, so
-		// the next evaluation resumes from it.
-		at = time.UnixMilli(0).UTC()
+	var at []time.Time
+	for _, lag := range e.fallSaveLags() {
+		at = append(at, latest.Add(-lag))
 	}
 	return at
+}
+
+// keptFallStates chooses the states to keep after an evaluation: for each
+// lag, the latest state saved at or before it, from the states just saved
+// and those kept from before the state this evaluation resumed from (the
+// change came after them, so they still hold).
+func (e *Engine) keptFallStates(previous any, resume *pipeline.FallState, saved []*pipeline.FallState, latest time.Time, haveLatest bool) []*pipeline.FallState {
+	var candidates []*pipeline.FallState
+	if prev, ok := previous.([]*pipeline.FallState); ok && resume != nil {
+		for _, st := range prev {
+			if !st.At.After(resume.At) {
+				candidates = append(candidates, st)
+			}
+		}
+	}
+	candidates = append(candidates, saved...)
+	slices.SortStableFunc(candidates, func(a, b *pipeline.FallState) int { return a.At.Compare(b.At) })
+	if !haveLatest {
+		return candidates[len(candidates)-1:]
+	}
+	var kept []*pipeline.FallState
+	for _, lag := range e.fallSaveLags() {
+		target := latest.Add(-lag)
+		var pick *pipeline.FallState
+		for _, st := range candidates {
+			if !st.At.After(target) {
+				pick = st
+			}
+		}
+		if pick == nil {
+			pick = candidates[0]
+		}
+		if len(kept) == 0 || kept[len(kept)-1] != pick {
+			kept = append(kept, pick)
+		}
+	}
+	return kept
+}
+
+// loadEvaluationInputs reads what an evaluation of the blood gases
+// sampled from gasesFrom on, with the detector resumed from resume, needs:
+// every input when the detector runs whole; otherwise the inputs from
+// gasesFrom (or the pairing window before the resumed state) on, and, when
+// a blood gas is among them, from the start of the earliest one's
+// dependency span (an hour for its temperature). A new device reading
+// far from any blood gas thus reads minutes of data, not hours.
+func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gasesFrom time.Time, resume *pipeline.FallState) ([]pipeline.Input, error) {
+	if resume == nil {
+		return e.loadInputs(ctx, subject)
+	}
+	readFrom := store.Earliest(gasesFrom, resume.At.Add(-e.cfg.Derive.Window))
+	inputs, err := e.loadInputsFrom(ctx, subject, readFrom)
+	if err != nil {
+		return nil, err
+	}
+	earliest := int64(math.MaxInt64)
+	for _, in := range inputs {
+		if in.Reading.Kind == derive.KindPaCO2 && in.Reading.AtMillis >= gasesFrom.UnixMilli() {
+			earliest = min(earliest, in.Reading.AtMillis)
+		}
+	}
+	if earliest == math.MaxInt64 {
+		return inputs, nil
+	}
+	spanFrom, _ := e.cfg.Derive.DependencySpan(time.UnixMilli(earliest).UTC())
+	if !spanFrom.Before(readFrom) {
+		return inputs, nil
+	}
+	return e.loadInputsFrom(ctx, subject, spanFrom)
 }
 
 // loadInputs returns a patient's stored readings as pairing takes them.

@@ -45,12 +45,8 @@ func (r *rangeCounting) Commit(ctx context.Context, c store.Change, now time.Tim
 func TestIncrementalAgreesWithReplay(t *testing.T) {
 	t.Parallel()
 	base := time.Date(2026, 1, 10, 0, 0, 0, 0, time.UTC)
-	type item struct {
-		raw     json.RawMessage
-		arrival time.Duration
-	}
-	var items []item
-	add := func(raw json.RawMessage, at time.Duration) { items = append(items, item{raw, at}) }
+	var items []arrival
+	add := func(raw json.RawMessage, at time.Duration) { items = append(items, arrival{raw, at}) }
 	for p := 1; p <= 2; p++ {
 		subj := fmt.Sprintf("Patient/inc%d", p)
 		for m := range 6 * 60 {
@@ -72,7 +68,23 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 			add(obsOf(subj, fmt.Sprintf("inc%d-gas%d", p, g), "1", "final", "2019-8", "mm[Hg]", 40+float64(g), at, at.Add(20*time.Minute)), time.Duration(m+20)*time.Minute)
 		}
 	}
-	for seed := range uint64(3) {
+	agreesWithReplay(t, items, base, []string{"Patient/inc1", "Patient/inc2"}, 4, 3)
+}
+
+// arrival is one resource and when it reaches the service.
+type arrival struct {
+	raw     json.RawMessage
+	arrival time.Duration
+}
+
+// agreesWithReplay feeds items to the live engine in several arrival
+// orders (each item delayed by up to ten minutes, one in sixty by an hour
+// and a half more), evaluating after every few, and compares the values
+// recorded for subjects with replay's. minFalls is how many falls and
+// rises replay must find, so the detector is exercised.
+func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []string, minFalls int, seeds uint64) {
+	t.Helper()
+	for seed := range seeds {
 		t.Run(fmt.Sprint("order ", seed), func(t *testing.T) {
 			t.Parallel()
 			rng := rand.New(rand.NewPCG(seed, 7))
@@ -83,7 +95,7 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 					order[i].arrival += 90 * time.Minute // very late
 				}
 			}
-			slices.SortStableFunc(order, func(a, b item) int { return cmp.Compare(a.arrival, b.arrival) })
+			slices.SortStableFunc(order, func(a, b arrival) int { return cmp.Compare(a.arrival, b.arrival) })
 			var stream []json.RawMessage
 			for _, it := range order {
 				stream = append(stream, it.raw)
@@ -115,8 +127,8 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 				}
 			}
 			var live []json.RawMessage
-			for p := 1; p <= 2; p++ {
-				recs, err := eng.Derivations(ctx, fmt.Sprintf("Patient/inc%d", p), time.Time{}, base.Add(24*time.Hour), "", 1000)
+			for _, subject := range subjects {
+				recs, err := eng.Derivations(ctx, subject, time.Time{}, base.Add(24*time.Hour), "", 1000)
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -142,8 +154,8 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 					replayed = append(replayed, raw)
 				}
 			}
-			if falls < 4 {
-				t.Fatalf("replay found %d falls and rises; the stream should give at least 4", falls)
+			if falls < minFalls {
+				t.Fatalf("replay found %d falls and rises; the stream should give at least %d", falls, minFalls)
 			}
 			got, want := valuesOfObservations(t, live), valuesOfObservations(t, replayed)
 			for series, w := range want {
@@ -163,4 +175,76 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 			t.Logf("%d values agree; %d of %d evaluations read a range of inputs", len(want), st.ranged.Load(), st.commits.Load())
 		})
 	}
+}
+
+// TestIncrementalAgreesWithReplayForEveryKind: how far back a new input
+// reaches depends on its kind (a body temperature an hour, a ventilator
+// reading one pairing window, a blood gas only itself), so the live
+// engine's incremental evaluations are checked against replay with every
+// kind of input, sources of different priority, temperatures charted late,
+// a temperature-adjusted PaCO2 of the same sample, a height, amended
+// readings and a reading whose correction changes its kind.
+func TestIncrementalAgreesWithReplayForEveryKind(t *testing.T) {
+	t.Parallel()
+	base := time.Date(2026, 2, 3, 0, 0, 0, 0, time.UTC)
+	var items []arrival
+	add := func(raw json.RawMessage, at time.Duration) { items = append(items, arrival{raw, at}) }
+	const hours = 4
+	for p := 1; p <= 2; p++ {
+		subj := fmt.Sprintf("Patient/kind%d", p)
+		id := func(what string, m int) string { return fmt.Sprintf("kind%d-%s%d", p, what, m) }
+		reading := func(what, code, unit string, v float64, m int, late time.Duration) {
+			at := base.Add(time.Duration(m) * time.Minute)
+			add(obsOf(subj, id(what, m), "1", "final", code, unit, v, at, at.Add(time.Minute+late)), time.Duration(m)*time.Minute+late)
+		}
+		reading("height", "8302-2", "cm", 160+float64(p*10), 0, 0)
+		for m := range hours * 60 {
+			et := 36 + float64(m%5)/2
+			if m >= 90 && m < 120 { // a fall
+				et = 23 + float64(m%3)/2
+			}
+			reading("et", "19891-1", "mm[Hg]", et, m, 0)
+			if m%7 == 3 { // a lower-priority end-tidal source
+				reading("etlow", "19889-5", "mm[Hg]", et+3, m, 0)
+			}
+			if m%2 == 0 {
+				reading("vt", "75958-9", "mL", 450+float64(m%40), m, 0)
+				reading("rr", "19840-8", "/min", 14+float64(m%6), m, 0)
+				reading("mv", "76008-2", "L/min", 6.5+float64(m%9)/4, m, 0)
+			}
+			if m%3 == 1 { // lower-priority sources of the same kinds
+				reading("vtset", "76222-9", "mL", 500, m, 0)
+				reading("mvin", "76009-0", "L/min", 7.5, m, 0)
+			}
+			if m%5 == 0 {
+				reading("vco2", "60825-7", "mL/min", 190+float64(m%30), m, 0)
+			}
+			if m%25 == 10 {
+				// Temperatures charted up to 50 minutes after they were
+				// taken, some far from 37 °C.
+				reading("temp", "8310-5", "Cel", 35+float64((m/25)%5), m, time.Duration(10+m%41)*time.Minute)
+			}
+		}
+		for g, m := range []int{30, 75, 100, 150, 200, 230} {
+			at := base.Add(time.Duration(m) * time.Minute)
+			add(obsOf(subj, id("gas", g), "1", "final", "2019-8", "mm[Hg]", 40+float64(g), at, at.Add(20*time.Minute)), time.Duration(m+20)*time.Minute)
+			// A ventilator reading two minutes after the sample, sent
+			// after the blood gas: it joins the gas's pairing window.
+			late := at.Add(2*time.Minute + 30*time.Second)
+			add(obsOf(subj, id("vtlate", g), "1", "final", "76007-4", "mL", 610, late, at.Add(40*time.Minute)), time.Duration(m+40)*time.Minute)
+			if g == 2 { // the analyser also reports it at the patient's temperature
+				add(obsOf(subj, id("gasadj", g), "1", "final", "32771-8", "mm[Hg]", 38+float64(g), at.Add(30*time.Second), at.Add(21*time.Minute)), time.Duration(m+21)*time.Minute)
+			}
+		}
+		// Corrections an hour later: a temperature amended, and a reading
+		// charted as a temperature corrected to an end-tidal value.
+		amendedAt := base.Add(60 * time.Minute)
+		add(obsOf(subj, id("temp", 60), "2", "amended", "8310-5", "Cel", 39.5, amendedAt, base.Add(3*time.Hour)), 3*time.Hour)
+		// It is the temperature nearest the blood gas sampled eight
+		// minutes before it, until the correction.
+		wrongAt := base.Add(158 * time.Minute)
+		add(obsOf(subj, id("recoded", 158), "1", "final", "8310-5", "Cel", 34, wrongAt, wrongAt.Add(time.Minute)), 159*time.Minute)
+		add(obsOf(subj, id("recoded", 158), "2", "amended", "19891-1", "mm[Hg]", 30, wrongAt, base.Add(200*time.Minute)), 200*time.Minute)
+	}
+	agreesWithReplay(t, items, base, []string{"Patient/kind1", "Patient/kind2"}, 2, 4)
 }

@@ -90,16 +90,17 @@ type Incremental struct {
 	// window), and the detector's findings are still all returned: those
 	// confirmed before Falls.At come from the state.
 	Falls *FallState
-	// SaveAt, when set, asks for the detector's state at that time (no
-	// earlier than Falls.At) for the next evaluation.
-	SaveAt time.Time
+	// SaveAt asks for the detector's state at each of these times, in
+	// ascending order (none earlier than Falls.At), for later evaluations
+	// to resume from.
+	SaveAt []time.Time
 }
 
 // EvaluateIncremental is [EvaluateFrom] that can resume the fall detector
 // from a saved state and save it again; see [Incremental]. The omissions
 // are incomplete unless it derives every blood gas and runs the detector
 // over the whole series.
-func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, *FallState, error) {
+func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, []*FallState, error) {
 	gasesFrom := inc.GasesFrom
 	var omitted []derive.Omission
 	var gases, readings, etco2 []derive.Reading
@@ -207,9 +208,9 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 }
 
 // detect runs the fall and rise detector over series, from inc.Falls when
-// set, saving its state at inc.SaveAt when asked.
-func detect(cfg derive.FallConfig, series []derive.Reading, inc Incremental) ([]derive.Fall, []derive.Omission, *FallState) {
-	if inc.Falls == nil && inc.SaveAt.IsZero() {
+// set, saving its state at each of inc.SaveAt.
+func detect(cfg derive.FallConfig, series []derive.Reading, inc Incremental) ([]derive.Fall, []derive.Omission, []*FallState) {
+	if inc.Falls == nil && len(inc.SaveAt) == 0 {
 		falls, sparse := derive.DetectEpisodes(cfg, series)
 		return falls, sparse, nil
 	}
@@ -217,22 +218,27 @@ func detect(cfg derive.FallConfig, series []derive.Reading, inc Incremental) ([]
 	if inc.Falls != nil {
 		scan, start = inc.Falls.scan.Clone(), inc.Falls.At.UnixMilli()
 	}
-	save, saveAt := !inc.SaveAt.IsZero(), inc.SaveAt.UnixMilli()
-	if inc.Falls != nil {
-		saveAt = max(saveAt, start)
+	saves := make([]int64, 0, len(inc.SaveAt))
+	for _, at := range inc.SaveAt {
+		ms := max(at.UnixMilli(), start)
+		if len(saves) == 0 || ms > saves[len(saves)-1] {
+			saves = append(saves, ms)
+		}
 	}
-	var saved *FallState
+	saved := make([]*FallState, 0, len(saves))
+	next := 0
 	for _, r := range series {
 		if r.AtMillis < start {
 			continue // judged before the state was saved
 		}
-		if save && saved == nil && r.AtMillis >= saveAt {
-			saved = &FallState{At: time.UnixMilli(saveAt).UTC(), scan: scan.Clone()}
+		for next < len(saves) && r.AtMillis >= saves[next] {
+			saved = append(saved, &FallState{At: time.UnixMilli(saves[next]).UTC(), scan: scan.Clone()})
+			next++
 		}
 		scan.Add(r)
 	}
-	if save && saved == nil {
-		saved = &FallState{At: time.UnixMilli(saveAt).UTC(), scan: scan.Clone()}
+	for ; next < len(saves); next++ {
+		saved = append(saved, &FallState{At: time.UnixMilli(saves[next]).UTC(), scan: scan.Clone()})
 	}
 	return scan.Falls(), scan.Sparse(), saved
 }

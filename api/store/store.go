@@ -40,10 +40,15 @@ type Input struct {
 	// resource is stored (under any patient): an unusable version matters
 	// only when it hides a usable one. Otherwise it is PutSkipped.
 	OnlyReplaces bool
-	// ChangedAt is the physiological time from which results may change
-	// because of this input (the reading's time); zero means any time, and
-	// the patient is evaluated whole.
+	// ChangedAt is the earliest blood gas sample time whose results may
+	// change because of this input (the reading's time less how far its
+	// kind reaches back); zero means any time, and the patient is
+	// evaluated whole.
 	ChangedAt time.Time
+	// Reach is how far before the effective time of a version this one
+	// replaces results may change: the replaced version may be of another
+	// kind, so it is the widest reach of any kind.
+	Reach time.Duration
 	// Urgent marks a blood gas: its patient is evaluated before patients
 	// with device readings only.
 	Urgent bool
@@ -89,10 +94,11 @@ type Dirty struct {
 	// Generation increases with every change; [Store.Commit] clears the
 	// dirty mark only if no change arrived after the generation it read.
 	Generation uint64
-	// From is the earliest physiological time a change since the last
+	// From is the earliest blood gas sample time a change since the last
 	// evaluation can affect: the earliest ChangedAt of the inputs written,
-	// and the effective time of the versions they replaced. Zero means the
-	// whole patient (patient facts, a withdrawal, a mark without an input).
+	// and the effective time less Reach of the versions they replaced. Zero
+	// means the whole patient (patient facts, a withdrawal, a mark without
+	// an input).
 	From time.Time
 	// Urgent is set when a change was a blood gas.
 	Urgent bool

@@ -152,7 +152,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			span.From = store.Earliest(span.From, old.EffectiveAt)
+			span.From = store.Earliest(span.From, old.EffectiveAt.Add(-in.Reach))
 		}
 	}
 	if in.OnlyReplaces && !exists {

@@ -131,7 +131,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp.From = store.Earliest(sp.From, fromNanos(eff))
+			sp.From = store.Earliest(sp.From, fromNanos(eff).Add(-in.Reach))
 		}
 	}
 	if in.OnlyReplaces && !exists {
