@@ -170,6 +170,15 @@ func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
 	if d := mustDirty(t, s, "Patient/b"); !d.From.Equal(t0.Add(time.Hour)) {
 		t.Errorf("From = %v after a correction, want the replaced version's time %v", d.From, t0.Add(time.Hour))
 	}
+	// The replaced version may have reached further back than the new one
+	// (another kind): Reach says how far before its time results change.
+	must(t, s.Commit(ctx, store.Change{Subject: "Patient/b", Generation: mustDirty(t, s, "Patient/b").Generation}, t0))
+	recoded := in("Patient/b", "Observation/b1", "333", t0.Add(170*time.Minute), t0.Add(3*time.Hour))
+	recoded.Reach = time.Hour
+	put(t, s, t0, recoded)
+	if d := mustDirty(t, s, "Patient/b"); !d.From.Equal(t0.Add(time.Hour)) {
+		t.Errorf("From = %v after a correction with a reach of an hour, want an hour before the replaced version's time, %v", d.From, t0.Add(time.Hour))
+	}
 	// No ChangedAt means the whole patient, and so does MarkDirty.
 	put(t, s, t0, in("Patient/a", "Observation/a3", "1", time.Time{}, t0))
 	if d := mustDirty(t, s, "Patient/a"); !d.From.IsZero() {
