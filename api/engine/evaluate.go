@@ -296,7 +296,11 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return err
 	}
-	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume}
+	ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
+	if err != nil {
+		return fmt.Errorf("engine: evaluate: %w", err)
+	}
+	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: recordedIn(ledger)}
 	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
 		inc.SaveAt = e.fallSaveAt(latest, haveLatest)
@@ -305,10 +309,6 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	// failure drops them, and the next evaluation runs the detector whole.
 	previous, _ := e.fallStates.LoadAndDelete(d.Subject)
 	results, omitted, saved, err := pipeline.EvaluateIncremental(e.cfg.Derive, e.cfg.Encoder, d.Subject, facts, inputs, inc)
-	if err != nil {
-		return fmt.Errorf("engine: evaluate: %w", err)
-	}
-	ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -335,6 +335,28 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		signal(e.flush)
 	}
 	return nil
+}
+
+// recordedIn reports whether every value of a derivation is in the
+// ledger as it is (diff leaves such values alone).
+func recordedIn(ledger []store.Entry) func(derive.Derivation) bool {
+	bySeries := make(map[string]*store.Entry, len(ledger))
+	for i := range ledger {
+		bySeries[ledger[i].Series] = &ledger[i]
+	}
+	return func(d derive.Derivation) bool {
+		for _, v := range d.Values {
+			id, err := encode.ValueIdentity(d, v)
+			if err != nil {
+				return false
+			}
+			en, ok := bySeries[id.Series]
+			if !ok || en.Key != id.Key || en.Status == statusWithdrawn {
+				return false
+			}
+		}
+		return true
+	}
 }
 
 // fallCode is how a fall's entry payload names its code.

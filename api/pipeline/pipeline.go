@@ -94,6 +94,12 @@ type Incremental struct {
 	// ascending order (none earlier than Falls.At), for later evaluations
 	// to resume from.
 	SaveAt []time.Time
+	// Recorded, when set, reports whether every value of a derivation is
+	// already recorded exactly as derived (same identifiers, so the same
+	// inputs). Such a result is returned without its Bundle: it was
+	// encoded when first recorded, and the live engine, which writes typed
+	// records and encodes at send time, would throw the encoding away.
+	Recorded func(derive.Derivation) bool
 }
 
 // EvaluateIncremental is [EvaluateFrom] that can resume the fall detector
@@ -156,7 +162,11 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 		if len(d.Values) == 0 {
 			continue
 		}
-		b, err := enc.Derivation(subject, d)
+		var b encode.Bundle
+		var err error
+		if inc.Recorded == nil || !inc.Recorded(d) {
+			b, err = enc.Derivation(subject, d)
+		}
 		if err != nil {
 			// One bad blood gas (a malformed reference, say) must not stop
 			// the patient's other results, nor other patients.
