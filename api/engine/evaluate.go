@@ -303,7 +303,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: recordedIn(ledger)}
 	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
-		inc.SaveAt = e.fallSaveAt(latest, haveLatest)
+		inc.SaveAt = e.fallSaveAt(latest, haveLatest, resume)
 	}
 	// The saved states are kept only once the evaluation committed; any
 	// failure drops them, and the next evaluation runs the detector whole.
@@ -319,7 +319,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	if len(saved) > 0 {
+	if len(saved) > 0 || resume != nil {
 		e.fallStates.Store(d.Subject, e.keptFallStates(previous, resume, saved, latest, haveLatest))
 	}
 	// Only a complete evaluation knows everything the patient's data
@@ -444,15 +444,23 @@ func latestEtCO2(inputs []pipeline.Input) (time.Time, bool) {
 
 // fallSaveAt is when to save the detector's states: each lag before the
 // latest end-tidal reading (the pipeline moves a time before the state
-// resumed from up to it). With no end-tidal reading yet, the empty state
-// is saved at the epoch, so the next evaluation resumes from it.
-func (e *Engine) fallSaveAt(latest time.Time, ok bool) []time.Time {
+// resumed from up to it). A lag the resumed state already serves, less
+// than a pairing window behind its time, is left out: the state is kept,
+// the next evaluation reads at most a window more, and the detector is
+// not copied after every reading. With no end-tidal reading yet, the
+// empty state is saved at the epoch, so the next evaluation resumes from
+// it.
+func (e *Engine) fallSaveAt(latest time.Time, ok bool, resume *pipeline.FallState) []time.Time {
 	if !ok {
 		return []time.Time{time.UnixMilli(0).UTC()}
 	}
 	var at []time.Time
 	for _, lag := range e.fallSaveLags() {
-		at = append(at, latest.Add(-lag))
+		target := latest.Add(-lag)
+		if resume != nil && !resume.At.After(target) && target.Sub(resume.At) < e.cfg.Derive.Window {
+			continue
+		}
+		at = append(at, target)
 	}
 	return at
 }

@@ -109,7 +109,9 @@ type Incremental struct {
 func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, []*FallState, error) {
 	gasesFrom := inc.GasesFrom
 	var omitted []derive.Omission
-	var gases, readings, etco2 []derive.Reading
+	gases := make([]derive.Reading, 0, 4)
+	readings := make([]derive.Reading, 0, len(inputs))
+	etco2 := make([]derive.Reading, 0, len(inputs)/2)
 	for _, in := range inputs {
 		r := in.Reading
 		// Source priority is decided per pairing window inside derive.
