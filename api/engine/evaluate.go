@@ -444,10 +444,10 @@ func latestEtCO2(inputs []pipeline.Input) (time.Time, bool) {
 
 // fallSaveAt is when to save the detector's states: each lag before the
 // latest end-tidal reading (the pipeline moves a time before the state
-// resumed from up to it). A lag the resumed state already serves, less
-// than a pairing window behind its time, is left out: the state is kept,
-// the next evaluation reads at most a window more, and the detector is
-// not copied after every reading. With no end-tidal reading yet, the
+// resumed from up to it). A lag whose time is before the resumed state
+// (which is kept, and would only be copied) or less than a pairing window
+// after it is left out: the next evaluation reads at most a window more,
+// and the detector is not copied after every reading. With no end-tidal reading yet, the
 // empty state is saved at the epoch, so the next evaluation resumes from
 // it.
 func (e *Engine) fallSaveAt(latest time.Time, ok bool, resume *pipeline.FallState) []time.Time {
@@ -457,7 +457,7 @@ func (e *Engine) fallSaveAt(latest time.Time, ok bool, resume *pipeline.FallStat
 	var at []time.Time
 	for _, lag := range e.fallSaveLags() {
 		target := latest.Add(-lag)
-		if resume != nil && !resume.At.After(target) && target.Sub(resume.At) < e.cfg.Derive.Window {
+		if resume != nil && target.Sub(resume.At) < e.cfg.Derive.Window {
 			continue
 		}
 		at = append(at, target)
