@@ -46,6 +46,15 @@
 // in instead", same IG), so a mix of present and absent focus resources is
 // full-resource, and each [Event] says for itself whether its resource came.
 //
+// # Reading
+//
+// A body is read once, without encoding/json decoding it into Go values:
+// the reader (read.go) walks the text with package fhir/jsonscan, keeps the members it
+// needs, and hands each resource on as a slice of the body, which the
+// caller passes to the decoder as it is. It matches member names and treats
+// nulls and values of the wrong type as the encoding/json structs it
+// replaced did, and a differential fuzz test holds it to the earlier parser.
+//
 // # Errors
 //
 // Every error wraps one of [ErrNotJSON], [ErrNotBundle], [ErrNotNotification]

@@ -11,7 +11,8 @@ import (
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
 )
 
-func FuzzParse(f *testing.F) {
+// addFixtures seeds a fuzz test with every notification in testdata.
+func addFixtures(f *testing.F) {
 	files, err := filepath.Glob(filepath.Join("testdata", "*.json"))
 	if err != nil || len(files) == 0 {
 		f.Fatalf("no seeds: %v", err)
@@ -23,6 +24,10 @@ func FuzzParse(f *testing.F) {
 		}
 		f.Add(b)
 	}
+}
+
+func FuzzParse(f *testing.F) {
+	addFixtures(f)
 	f.Add([]byte(`{"resourceType":"Observation"}`))
 	f.Add([]byte(`{"resourceType":"Bundle","type":"transaction"}`))
 	f.Add([]byte(`{"resourceType":"Bundle","type":"subscription-notification","entry":[{"resource":{"resourceType":"SubscriptionStatus","subscription":{"reference":"Subscription/1"},"type":"event-notification","notificationEvent":[{"eventNumber":1,"focus":{"reference":"Observation/1"}}]}},{"fullUrl":"Observation/1","resource":{"resourceType":"Observation","id":"1"}}]}`))

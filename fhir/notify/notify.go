@@ -1,10 +1,12 @@
 package notify
 
 import (
-	"bytes"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"time"
+
+	"github.com/deadspace-fhir/deadspace/fhir/jsonscan"
 )
 
 // Type is the notification type (http://hl7.org/fhir/subscription-notification-type).
@@ -89,45 +91,49 @@ type Entry struct {
 	Resource     json.RawMessage
 }
 
-type rawBundle struct {
-	ResourceType string     `json:"resourceType"`
-	Type         string     `json:"type"`
-	Entry        []rawEntry `json:"entry"`
-}
-
-type rawEntry struct {
-	FullURL  string          `json:"fullUrl"`
-	Resource json.RawMessage `json:"resource"`
-}
-
-type resourceHead struct {
-	ResourceType *string `json:"resourceType"`
-	ID           string  `json:"id"`
-}
+// statusPath is where the subscription status sits in every notification.
+const statusPath = "Bundle.entry[0].resource"
 
 // Parse reads a notification body. See the package documentation for the
 // shapes it accepts and the errors it returns.
+//
+// The body is read in one pass (see reader); resources come back as slices
+// of body, not copies, so the caller must not change body while it uses the
+// Notification.
 func Parse(body []byte) (Notification, error) {
-	var probe map[string]json.RawMessage
-	if err := json.Unmarshal(body, &probe); err != nil || probe == nil {
-		return Notification{}, &Error{Kind: ErrNotJSON, Detail: jsonDetail(err)}
+	r := reader{body: body}
+	if err := r.read(); err != nil {
+		return Notification{}, &Error{Kind: ErrNotJSON, Detail: syntaxDetail(body)}
 	}
-	var rt string
-	if raw, ok := probe["resourceType"]; !ok || json.Unmarshal(raw, &rt) != nil || rt == "" {
+	return r.notification()
+}
+
+// notification interprets what read found, reporting problems in the order
+// the encoding/json parser before it did: the body, the Bundle's members,
+// the Bundle's type, the status entry, the other entries.
+func (r *reader) notification() (Notification, error) {
+	switch r.top {
+	case jsonscan.Object:
+	case jsonscan.Null:
+		return Notification{}, &Error{Kind: ErrNotJSON, Detail: "not an object"}
+	default:
+		return Notification{}, &Error{Kind: ErrNotJSON, Detail: "a JSON " + r.top.String() + " where an object was expected"}
+	}
+	if r.rtKind != jsonscan.String || len(r.rt.b) == 0 {
 		return Notification{}, &Error{Kind: ErrNotBundle, Detail: "no resourceType"}
 	}
-	if rt != "Bundle" {
+	if !r.rt.is("Bundle") {
+		rt := resourceTypeName(r.rt)
 		return Notification{}, &Error{Kind: ErrNotBundle, Detail: "resourceType is " + safeToken(rt), ResourceType: rt}
 	}
-	var b rawBundle
-	if err := json.Unmarshal(body, &b); err != nil {
-		return Notification{}, malformed("Bundle", jsonDetail(err))
+	if r.bundleErr.found() {
+		return Notification{}, malformed("Bundle", r.bundleErr.detail())
 	}
 	// Only subscription-notification says so outright; a history Bundle is a
 	// notification only if its first entry is a status.
-	explicit := b.Type == "subscription-notification"
-	if !explicit && b.Type != "history" {
-		return Notification{}, &Error{Kind: ErrNotNotification, Path: "Bundle.type", Detail: "type is " + safeToken(b.Type)}
+	explicit := r.bundleType.is("subscription-notification")
+	if !explicit && !r.bundleType.is("history") {
+		return Notification{}, &Error{Kind: ErrNotNotification, Path: "Bundle.type", Detail: "type is " + safeToken(r.bundleType.String())}
 	}
 	notNotification := func(detail string) error {
 		if explicit {
@@ -135,28 +141,31 @@ func Parse(body []byte) (Notification, error) {
 		}
 		return &Error{Kind: ErrNotNotification, Path: "Bundle.entry[0]", Detail: detail}
 	}
-	if len(b.Entry) == 0 || isNull(b.Entry[0].Resource) {
+	st := &r.status
+	if r.entries == 0 || st.kind == jsonscan.Invalid || st.kind == jsonscan.Null {
 		return Notification{}, notNotification("no subscription status entry")
 	}
-	head, err := readHead(b.Entry[0].Resource, "Bundle.entry[0].resource")
+	if st.kind != jsonscan.Object {
+		return Notification{}, malformed(statusPath, "resource is a JSON "+st.kind.String()+", want an object")
+	}
+	rt, _, err := st.head.check(statusPath)
 	if err != nil {
 		return Notification{}, err
 	}
-	const statusPath = "Bundle.entry[0].resource"
 	var n Notification
-	switch head.rt {
+	switch rt {
 	case "Parameters":
-		n, err = parseParameters(b.Entry[0].Resource, statusPath)
+		n, err = r.parameters()
 	case "SubscriptionStatus":
-		n, err = parseSubscriptionStatus(b.Entry[0].Resource, statusPath)
+		n, err = r.subscriptionStatus()
 	case "Basic":
 		var found bool
-		n, found, err = parseBasic(b.Entry[0].Resource, statusPath)
+		n, found, err = r.basic()
 		if err == nil && !found {
 			return Notification{}, notNotification("Basic without a subscription status extension")
 		}
 	default:
-		return Notification{}, notNotification("first entry is " + safeToken(head.rt))
+		return Notification{}, notNotification("first entry is " + safeToken(rt))
 	}
 	if err != nil {
 		return Notification{}, err
@@ -164,35 +173,12 @@ func Parse(body []byte) (Notification, error) {
 	if err := n.check(statusPath); err != nil {
 		return Notification{}, err
 	}
-	for i, e := range b.Entry[1:] {
-		if isNull(e.Resource) {
-			continue // id-only entries carry only fullUrl and request
-		}
-		path := fmt.Sprintf("Bundle.entry[%d].resource", i+1)
-		h, err := readHead(e.Resource, path)
-		if err != nil {
-			return Notification{}, err
-		}
-		n.Resources = append(n.Resources, Entry{FullURL: e.FullURL, ResourceType: h.rt, ID: h.id, Resource: e.Resource})
+	if r.entryErr != nil {
+		return Notification{}, r.entryErr
 	}
+	n.Resources = r.resources
 	n.matchResources()
 	return n, nil
-}
-
-type head struct{ rt, id string }
-
-func readHead(raw json.RawMessage, path string) (head, error) {
-	var h resourceHead
-	if err := json.Unmarshal(raw, &h); err != nil {
-		return head{}, malformed(path, jsonDetail(err))
-	}
-	if bytes.TrimSpace(raw)[0] != '{' {
-		return head{}, malformed(path, "resource is not an object")
-	}
-	if h.ResourceType == nil || *h.ResourceType == "" {
-		return head{}, malformed(path, "resource has no resourceType")
-	}
-	return head{rt: *h.ResourceType, id: h.ID}, nil
 }
 
 // check enforces the cardinalities the webhook depends on: without the
@@ -209,20 +195,53 @@ func (n *Notification) check(path string) error {
 	return nil
 }
 
+// smallMatch is the number of resources up to which matchResources
+// compares references one by one instead of building maps: one or two
+// resources is the usual notification.
+const smallMatch = 8
+
 // matchResources attaches included resources to events and infers Content.
+// A focus matches the first resource with the same fullUrl, or else the
+// first with the same type and id.
 func (n *Notification) matchResources() {
-	byURL := make(map[string]int, len(n.Resources))
 	type key struct{ typ, id string }
-	byKey := make(map[key]int, len(n.Resources))
-	for i, e := range n.Resources {
-		if _, dup := byURL[e.FullURL]; e.FullURL != "" && !dup {
-			byURL[e.FullURL] = i
-		}
-		if e.ID != "" {
-			if _, dup := byKey[key{e.ResourceType, e.ID}]; !dup {
+	var byURL map[string]int
+	var byKey map[key]int
+	if len(n.Resources) > smallMatch {
+		byURL = make(map[string]int, len(n.Resources))
+		byKey = make(map[key]int, len(n.Resources))
+		for i, e := range n.Resources {
+			if _, dup := byURL[e.FullURL]; e.FullURL != "" && !dup {
+				byURL[e.FullURL] = i
+			}
+			if _, dup := byKey[key{e.ResourceType, e.ID}]; e.ID != "" && !dup {
 				byKey[key{e.ResourceType, e.ID}] = i
 			}
 		}
+	}
+	byURLFind := func(u string) (int, bool) {
+		if byURL != nil {
+			j, ok := byURL[u]
+			return j, ok
+		}
+		for j, e := range n.Resources {
+			if e.FullURL == u {
+				return j, true
+			}
+		}
+		return 0, false
+	}
+	byKeyFind := func(typ, id string) (int, bool) {
+		if byKey != nil {
+			j, ok := byKey[key{typ, id}]
+			return j, ok
+		}
+		for j, e := range n.Resources {
+			if e.ID != "" && e.ID == id && e.ResourceType == typ {
+				return j, true
+			}
+		}
+		return 0, false
 	}
 	focused, included := 0, 0
 	for i := range n.Events {
@@ -231,13 +250,13 @@ func (n *Notification) matchResources() {
 			continue
 		}
 		focused++
-		j, ok := byURL[ev.Focus]
+		j, ok := byURLFind(ev.Focus)
 		if !ok {
 			// A versioned focus still matches: full-resource content is the
 			// version that triggered the event, and the entry's own
 			// meta.versionId is what the caller should trust.
 			if typ, id, rok := RelativeRef(ev.Focus, ""); rok {
-				j, ok = byKey[key{typ, id}]
+				j, ok = byKeyFind(typ, id)
 			}
 		}
 		if ok {
@@ -255,27 +274,15 @@ func (n *Notification) matchResources() {
 	}
 }
 
-func isNull(raw json.RawMessage) bool {
-	t := bytes.TrimSpace(raw)
-	return len(t) == 0 || bytes.Equal(t, []byte("null"))
-}
-
-// jsonDetail keeps the position and kind of a JSON error but never the
-// offending text.
-func jsonDetail(err error) string {
-	switch e := err.(type) {
-	case nil:
-		return "not an object"
-	case *json.SyntaxError:
+// syntaxDetail keeps the position of a JSON syntax error but never the
+// offending text. encoding/json finds the position, as it did before the
+// body was read in one pass, so the answer to a sender is unchanged.
+func syntaxDetail(body []byte) string {
+	var raw json.RawMessage
+	if e, ok := errors.AsType[*json.SyntaxError](json.Unmarshal(body, &raw)); ok {
 		return fmt.Sprintf("invalid JSON at offset %d", e.Offset)
-	case *json.UnmarshalTypeError:
-		if e.Field != "" {
-			return fmt.Sprintf("%s is a JSON %s, want %s", e.Field, e.Value, e.Type)
-		}
-		return fmt.Sprintf("a JSON %s where %s was expected", e.Value, e.Type)
-	default:
-		return "invalid JSON"
 	}
+	return "invalid JSON"
 }
 
 // safeToken quotes a code from the body only if it looks like a code, so an

@@ -1,125 +1,126 @@
 package notify
 
 import (
-	"encoding/json"
-	"fmt"
+	"bytes"
 	"strconv"
 	"strings"
 	"time"
+
+	"github.com/deadspace-fhir/deadspace/fhir/jsonscan"
 )
 
-// node is one name/value pair of a Parameters parameter or an extension,
-// with its parts or sub-extensions. Parameters and Basic share the
-// interpretation below because both flatten the same R5 elements into
-// name + value[x] + children.
-type node struct {
-	name     string // normalised, see normName
-	key      string // the value[x] member, e.g. "valueString"
-	value    json.RawMessage
-	children []node
-	path     string
+// elem is an element of the subscription status, whatever the shape names
+// it by: "events-since-subscription-start" (Parameters) and
+// "eventsSinceSubscriptionStart" (R5 element, cross-version extension) are
+// one element.
+type elem uint8
+
+const (
+	elemOther elem = iota
+	elemSubscription
+	elemTopic
+	elemStatus
+	elemType
+	elemEventsSince
+	elemNotificationEvent
+	elemError
+	elemEventNumber
+	elemTimestamp
+	elemFocus
+	elemAdditionalContext
+	elemCount
+)
+
+// elemOf folds a name to lower case without "-" and "_" and says which
+// element it names, and whether it ends in "subscriptionstatus".
+func elemOf(name []byte) (elem, bool) {
+	var buf [48]byte
+	folded := buf[:0]
+	for _, c := range name {
+		if c >= 0x80 || len(folded) == cap(folded) {
+			// Non-ASCII names fold as strings.ToLower folds them (the Kelvin
+			// sign is a k); long ones name no element, but may still end in
+			// SubscriptionStatus.
+			s := normName(string(name))
+			return elemNamed([]byte(s)), strings.HasSuffix(s, "subscriptionstatus")
+		}
+		switch {
+		case c == '-' || c == '_':
+			continue
+		case c >= 'A' && c <= 'Z':
+			c += 'a' - 'A'
+		}
+		folded = append(folded, c)
+	}
+	return elemNamed(folded), bytes.HasSuffix(folded, []byte("subscriptionstatus"))
 }
 
-// normName folds "events-since-subscription-start" (Parameters) and
-// "eventsSinceSubscriptionStart" (R5 element, cross-version extension) to
-// one spelling.
 func normName(s string) string {
-	return nameFolder.Replace(strings.ToLower(s))
+	return strings.NewReplacer("-", "", "_", "").Replace(strings.ToLower(s))
 }
 
-// nameFolder is built once: a Replacer builds its tables on first use,
-// which cost more than the rest of parsing a notification.
-var nameFolder = strings.NewReplacer("-", "", "_", "")
-
-type rawParameters struct {
-	Parameter []json.RawMessage `json:"parameter"`
+func elemNamed(name []byte) elem {
+	switch string(name) {
+	case "subscription":
+		return elemSubscription
+	case "topic":
+		return elemTopic
+	case "status":
+		return elemStatus
+	case "type":
+		return elemType
+	case "eventssincesubscriptionstart":
+		return elemEventsSince
+	case "notificationevent":
+		return elemNotificationEvent
+	case "error":
+		return elemError
+	case "eventnumber":
+		return elemEventNumber
+	case "timestamp":
+		return elemTimestamp
+	case "focus":
+		return elemFocus
+	case "additionalcontext":
+		return elemAdditionalContext
+	}
+	return elemOther
 }
 
-func parseParameters(raw json.RawMessage, path string) (Notification, error) {
-	var p rawParameters
-	if err := json.Unmarshal(raw, &p); err != nil {
-		return Notification{}, malformed(path, jsonDetail(err))
+// Known codes, returned without an allocation.
+var (
+	typeCodes   = []string{string(TypeEvent), string(TypeHeartbeat), string(TypeHandshake), string(TypeQueryStatus), string(TypeQueryEvent)}
+	statusCodes = []string{"active", "requested", "error", "off", "entered-in-error"}
+)
+
+func (r *reader) parameters() (Notification, error) {
+	l := &r.status.params
+	if l.te.found() {
+		return Notification{}, malformed(statusPath, l.te.detail())
 	}
-	nodes, err := paramNodes(p.Parameter, path+".parameter", 0)
-	if err != nil {
-		return Notification{}, err
+	if l.err != nil {
+		return Notification{}, l.err
 	}
-	n, err := fromNodes(nodes)
+	n, err := r.fromNodes(l.first)
 	n.Shape = ShapeParameters
 	return n, err
 }
 
-// maxDepth bounds recursion on hostile input; the deepest real structure
-// (parameter → part) is two levels.
-const maxDepth = 8
-
-func paramNodes(list []json.RawMessage, path string, depth int) ([]node, error) {
-	if depth > maxDepth {
-		return nil, malformed(path, "nested too deeply")
+// basic reports found=false when the Basic carries nothing that looks like
+// a subscription status, so that a history Bundle of Basic resources is not
+// mistaken for a notification.
+func (r *reader) basic() (n Notification, found bool, err error) {
+	l := &r.status.exts
+	if l.te.found() {
+		return Notification{}, false, malformed(statusPath, l.te.detail())
 	}
-	out := make([]node, 0, len(list))
-	for i, raw := range list {
-		p := fmt.Sprintf("%s[%d]", path, i)
-		var m map[string]json.RawMessage
-		if err := json.Unmarshal(raw, &m); err != nil || m == nil {
-			return nil, malformed(p, "parameter is not an object")
-		}
-		var name string
-		if err := json.Unmarshal(m["name"], &name); err != nil || name == "" {
-			return nil, malformed(p, "parameter has no name")
-		}
-		nd := node{name: normName(name), path: p}
-		if err := setValue(&nd, m); err != nil {
-			return nil, err
-		}
-		if parts, ok := m["part"]; ok {
-			var list []json.RawMessage
-			if err := json.Unmarshal(parts, &list); err != nil {
-				return nil, malformed(p+".part", "part is not an array")
-			}
-			var err error
-			if nd.children, err = paramNodes(list, p+".part", depth+1); err != nil {
-				return nil, err
-			}
-		}
-		out = append(out, nd)
+	if l.err != nil {
+		return Notification{}, false, l.err
 	}
-	return out, nil
-}
-
-func setValue(nd *node, m map[string]json.RawMessage) error {
-	for k, v := range m {
-		if !strings.HasPrefix(k, "value") || len(k) == len("value") {
-			continue
-		}
-		if nd.key != "" {
-			return malformed(nd.path, "more than one value[x]")
-		}
-		nd.key, nd.value = k, v
-	}
-	return nil
-}
-
-type rawBasic struct {
-	Extension []json.RawMessage `json:"extension"`
-}
-
-// parseBasic reports found=false when the Basic carries nothing that looks
-// like a subscription status, so that a history Bundle of Basic resources is
-// not mistaken for a notification.
-func parseBasic(raw json.RawMessage, path string) (n Notification, found bool, err error) {
-	var b rawBasic
-	if err := json.Unmarshal(raw, &b); err != nil {
-		return Notification{}, false, malformed(path, jsonDetail(err))
-	}
-	nodes, err := extNodes(b.Extension, path+".extension", 0)
-	if err != nil {
-		return Notification{}, false, err
-	}
-	for _, nd := range nodes {
-		if strings.HasSuffix(nd.name, "subscriptionstatus") {
-			nodes = nd.children
-			found = true
+	first := l.first
+	for i := l.first; i >= 0; i = r.nodes[i].next {
+		if r.nodes[i].statusExt {
+			first, found = r.nodes[i].child, true
 			break
 		}
 	}
@@ -127,101 +128,59 @@ func parseBasic(raw json.RawMessage, path string) (n Notification, found bool, e
 		// Flat extensions: both required elements must be there, or any
 		// Basic with a "type" extension would pass for a status.
 		var sub, typ bool
-		for _, nd := range nodes {
-			sub = sub || nd.name == "subscription"
-			typ = typ || nd.name == "type"
+		for i := l.first; i >= 0; i = r.nodes[i].next {
+			sub = sub || r.nodes[i].elem == elemSubscription
+			typ = typ || r.nodes[i].elem == elemType
 		}
 		found = sub && typ
 	}
 	if !found {
 		return Notification{}, false, nil
 	}
-	n, err = fromNodes(nodes)
+	n, err = r.fromNodes(first)
 	n.Shape = ShapeBasic
 	return n, true, err
 }
 
-func extNodes(list []json.RawMessage, path string, depth int) ([]node, error) {
-	if depth > maxDepth {
-		return nil, malformed(path, "nested too deeply")
-	}
-	out := make([]node, 0, len(list))
-	for i, raw := range list {
-		p := fmt.Sprintf("%s[%d]", path, i)
-		var m map[string]json.RawMessage
-		if err := json.Unmarshal(raw, &m); err != nil || m == nil {
-			return nil, malformed(p, "extension is not an object")
-		}
-		var u string
-		if err := json.Unmarshal(m["url"], &u); err != nil || u == "" {
-			return nil, malformed(p, "extension has no url")
-		}
-		// Sub-extensions of a complex extension are named by a bare url
-		// ("status"); top-level ones by a full URL whose last segment, after
-		// "/" or ".", is the element name.
-		if j := strings.LastIndexAny(u, "/.#"); j >= 0 {
-			u = u[j+1:]
-		}
-		nd := node{name: normName(u), path: p}
-		if err := setValue(&nd, m); err != nil {
-			return nil, err
-		}
-		if sub, ok := m["extension"]; ok {
-			var list []json.RawMessage
-			if err := json.Unmarshal(sub, &list); err != nil {
-				return nil, malformed(p+".extension", "extension is not an array")
-			}
-			var err error
-			if nd.children, err = extNodes(list, p+".extension", depth+1); err != nil {
-				return nil, err
-			}
-		}
-		out = append(out, nd)
-	}
-	return out, nil
-}
-
 // fromNodes interprets the flattened status. Names it does not know
 // (eventsInNotification from drafts, extensions) are ignored.
-func fromNodes(nodes []node) (Notification, error) {
+func (r *reader) fromNodes(first int32) (Notification, error) {
 	var n Notification
-	seen := map[string]string{}
-	once := func(nd node) error {
-		if first, dup := seen[nd.name]; dup {
-			return malformed(nd.path, "repeats "+first)
-		}
-		seen[nd.name] = nd.path
-		return nil
+	var seen [elemCount]int32
+	for i := range seen {
+		seen[i] = -1
 	}
 	var err error
-	for _, nd := range nodes {
-		switch nd.name {
-		case "subscription", "topic", "status", "type", "eventssincesubscriptionstart":
-			if err := once(nd); err != nil {
-				return n, err
+	for i := first; i >= 0; i = r.nodes[i].next {
+		nd := &r.nodes[i]
+		switch nd.elem {
+		case elemSubscription, elemTopic, elemStatus, elemType, elemEventsSince:
+			if j := seen[nd.elem]; j >= 0 {
+				return n, malformed(r.nodePath(i), "repeats "+r.nodePath(j))
 			}
+			seen[nd.elem] = i
 		}
-		switch nd.name {
-		case "subscription":
-			n.Subscription, err = refValue(nd)
-		case "topic":
-			n.Topic, err = stringValue(nd)
-		case "status":
-			n.Status, err = stringValue(nd)
-		case "type":
+		switch nd.elem {
+		case elemSubscription:
+			n.Subscription, err = r.refValue(i)
+		case elemTopic:
+			n.Topic, err = r.stringValue(i)
+		case elemStatus:
+			n.Status, err = r.codeValue(i, statusCodes)
+		case elemType:
 			var s string
-			s, err = stringValue(nd)
+			s, err = r.codeValue(i, typeCodes)
 			n.Type = Type(s)
-		case "eventssincesubscriptionstart":
-			n.EventsSinceStart, err = countValue(nd)
+		case elemEventsSince:
+			n.EventsSinceStart, err = r.countValue(i)
 			n.HasEventsSinceStart = err == nil
-		case "notificationevent":
+		case elemNotificationEvent:
 			var ev Event
-			ev, err = eventFromNodes(nd)
+			ev, err = r.eventFromNodes(i)
 			n.Events = append(n.Events, ev)
-		case "error":
+		case elemError:
 			var s string
-			s, err = conceptValue(nd)
+			s, err = r.conceptValue(i)
 			if s != "" {
 				n.Errors = append(n.Errors, s)
 			}
@@ -233,35 +192,35 @@ func fromNodes(nodes []node) (Notification, error) {
 	return n, nil
 }
 
-func eventFromNodes(parent node) (Event, error) {
+func (r *reader) eventFromNodes(parent int32) (Event, error) {
 	var ev Event
 	var hasNumber, hasTime, hasFocus bool
-	for _, nd := range parent.children {
+	for i := r.nodes[parent].child; i >= 0; i = r.nodes[i].next {
 		var err error
-		switch nd.name {
-		case "eventnumber":
+		switch r.nodes[i].elem {
+		case elemEventNumber:
 			if hasNumber {
-				return ev, malformed(nd.path, "repeats event-number")
+				return ev, malformed(r.nodePath(i), "repeats event-number")
 			}
 			hasNumber = true
-			ev.Number, err = countValue(nd)
-		case "timestamp":
+			ev.Number, err = r.countValue(i)
+		case elemTimestamp:
 			if hasTime {
-				return ev, malformed(nd.path, "repeats timestamp")
+				return ev, malformed(r.nodePath(i), "repeats timestamp")
 			}
 			hasTime = true
-			ev.Timestamp, err = timeValue(nd)
-		case "focus":
+			ev.Timestamp, err = r.timeValue(i)
+		case elemFocus:
 			if hasFocus {
-				return ev, malformed(nd.path, "repeats focus")
+				return ev, malformed(r.nodePath(i), "repeats focus")
 			}
 			hasFocus = true
-			ev.Focus, err = refValue(nd)
-		case "additionalcontext":
-			var r string
-			r, err = refValue(nd)
-			if r != "" {
-				ev.AdditionalContext = append(ev.AdditionalContext, r)
+			ev.Focus, err = r.refValue(i)
+		case elemAdditionalContext:
+			var ref string
+			ref, err = r.refValue(i)
+			if ref != "" {
+				ev.AdditionalContext = append(ev.AdditionalContext, ref)
 			}
 		}
 		if err != nil {
@@ -270,196 +229,183 @@ func eventFromNodes(parent node) (Event, error) {
 	}
 	// event-number is 1..1: without it gap detection cannot place the event.
 	if !hasNumber {
-		return ev, malformed(parent.path, "notification-event has no event-number")
+		return ev, malformed(r.nodePath(parent), "notification-event has no event-number")
 	}
 	return ev, nil
 }
 
-type rawRef struct {
-	Reference string `json:"reference"`
+// valueScanner reads a node's value[x], text the reader has already
+// checked.
+func (r *reader) valueScanner(i int32) jsonscan.Scanner {
+	var s jsonscan.Scanner
+	s.Reset(r.nodes[i].value)
+	return s
 }
 
 // refValue reads a Reference, or a bare string for servers that put the URL
 // in a valueUri, valueCanonical or valueString.
-func refValue(nd node) (string, error) {
-	switch nd.key {
+func (r *reader) refValue(i int32) (string, error) {
+	switch key := string(r.nodes[i].key); key {
 	case "valueReference":
-		var r rawRef
-		if err := json.Unmarshal(nd.value, &r); err != nil {
-			return "", malformed(nd.path, "valueReference is not a Reference")
+		var ref text
+		var te typeErr
+		s := r.valueScanner(i)
+		if err := readRef(&s, &ref, &te, key); err != nil || te.found() {
+			return "", malformed(r.nodePath(i), "valueReference is not a Reference")
 		}
-		return r.Reference, nil
+		return ref.String(), nil
 	case "valueUri", "valueUrl", "valueCanonical", "valueString":
-		return stringValue(nd)
+		return r.stringValue(i)
 	case "":
 		return "", nil
 	default:
-		return "", malformed(nd.path, nd.key+" where a Reference was expected")
+		return "", malformed(r.nodePath(i), key+" where a Reference was expected")
 	}
 }
 
-func stringValue(nd node) (string, error) {
-	if nd.key == "" {
-		return "", nil
-	}
-	var s string
-	if err := json.Unmarshal(nd.value, &s); err != nil {
-		return "", malformed(nd.path, nd.key+" is not a string")
-	}
-	return s, nil
+func (r *reader) stringValue(i int32) (string, error) {
+	t, err := r.textValue(i)
+	return t.String(), err
 }
 
-func countValue(nd node) (uint64, error) {
-	if nd.key == "" {
-		return 0, malformed(nd.path, "counter has no value")
+func (r *reader) codeValue(i int32, known []string) (string, error) {
+	t, err := r.textValue(i)
+	return t.code(known...), err
+}
+
+func (r *reader) textValue(i int32) (text, error) {
+	nd := &r.nodes[i]
+	if len(nd.key) == 0 {
+		return text{}, nil
 	}
-	return parseCount(nd.value, nd.path+"."+nd.key)
+	var t text
+	var te typeErr
+	s := r.valueScanner(i)
+	if err := readString(&s, &t, &te, ""); err != nil || te.found() {
+		return text{}, malformed(r.nodePath(i), string(nd.key)+" is not a string")
+	}
+	return t, nil
+}
+
+func (r *reader) countValue(i int32) (uint64, error) {
+	nd := &r.nodes[i]
+	if len(nd.key) == 0 {
+		return 0, malformed(r.nodePath(i), "counter has no value")
+	}
+	return parseCount(nd.value, func() string { return r.nodePath(i) + "." + string(nd.key) })
 }
 
 // parseCount accepts a non-negative integer written as a JSON string
 // (R4 string, R5 integer64) or as a JSON number (what some servers send).
-func parseCount(raw json.RawMessage, path string) (uint64, error) {
-	var s string
-	if err := json.Unmarshal(raw, &s); err != nil {
-		var num json.Number
-		if err := json.Unmarshal(raw, &num); err != nil {
-			return 0, malformed(path, "counter is neither a string nor a number")
+// raw is checked JSON text.
+func parseCount(raw []byte, path func() string) (uint64, error) {
+	var s jsonscan.Scanner
+	s.Reset(raw)
+	var digits []byte
+	switch s.Peek() {
+	case jsonscan.String:
+		b, plain, _ := s.Str()
+		if !plain {
+			b = []byte(jsonscan.Unquote(b, plain))
 		}
-		s = num.String()
+		digits = b
+	case jsonscan.Null:
+		// A null string is an empty one.
+	case jsonscan.Number:
+		digits = raw
+	default:
+		return 0, malformed(path(), "counter is neither a string nor a number")
 	}
-	if s == "" || len(s) > 20 {
-		return 0, malformed(path, "counter is not a non-negative integer")
+	if len(digits) == 0 || len(digits) > 20 {
+		return 0, malformed(path(), "counter is not a non-negative integer")
 	}
-	for _, r := range s {
-		if r < '0' || r > '9' {
-			return 0, malformed(path, "counter is not a non-negative integer")
+	for _, c := range digits {
+		if c < '0' || c > '9' {
+			return 0, malformed(path(), "counter is not a non-negative integer")
 		}
 	}
-	v, err := strconv.ParseUint(s, 10, 64)
+	v, err := strconv.ParseUint(string(digits), 10, 64)
 	if err != nil {
-		return 0, malformed(path, "counter is out of range")
+		return 0, malformed(path(), "counter is out of range")
 	}
 	return v, nil
 }
 
-func timeValue(nd node) (time.Time, error) {
-	s, err := stringValue(nd)
+func (r *reader) timeValue(i int32) (time.Time, error) {
+	s, err := r.stringValue(i)
 	if err != nil || s == "" {
 		return time.Time{}, err
 	}
-	return parseInstant(s, nd.path+"."+nd.key)
+	return parseInstant(s, func() string { return r.nodePath(i) + "." + string(r.nodes[i].key) })
 }
 
 // parseInstant reads a FHIR instant. RFC 3339 parsing in Go takes any
 // number of fractional digits, which matters because the IG's own examples
 // have seven ("2020-05-29T11:44:13.1882432-05:00").
-func parseInstant(s, path string) (time.Time, error) {
+func parseInstant(s string, path func() string) (time.Time, error) {
 	t, err := time.Parse(time.RFC3339Nano, s)
 	if err != nil {
-		return time.Time{}, malformed(path, "timestamp is not an instant")
+		return time.Time{}, malformed(path(), "timestamp is not an instant")
 	}
 	return t, nil
 }
 
-type rawConcept struct {
-	Coding []struct {
-		System string `json:"system"`
-		Code   string `json:"code"`
-	} `json:"coding"`
-	Text string `json:"text"`
-}
-
-func (c rawConcept) String() string {
-	for _, cd := range c.Coding {
-		switch {
-		case cd.Code != "" && cd.System != "":
-			return cd.System + "|" + cd.Code
-		case cd.Code != "":
-			return cd.Code
-		}
-	}
-	return c.Text
-}
-
-func conceptValue(nd node) (string, error) {
-	switch nd.key {
+func (r *reader) conceptValue(i int32) (string, error) {
+	switch key := string(r.nodes[i].key); key {
 	case "valueCodeableConcept":
-		var c rawConcept
-		if err := json.Unmarshal(nd.value, &c); err != nil {
-			return "", malformed(nd.path, "valueCodeableConcept is not a CodeableConcept")
+		var te typeErr
+		s := r.valueScanner(i)
+		c, err := readConcept(&s, &te, key)
+		if err != nil || te.found() {
+			return "", malformed(r.nodePath(i), "valueCodeableConcept is not a CodeableConcept")
 		}
-		return c.String(), nil
+		return c, nil
 	case "valueCode", "valueString":
-		return stringValue(nd)
+		return r.stringValue(i)
 	case "":
 		return "", nil
 	default:
-		return "", malformed(nd.path, nd.key+" where a CodeableConcept was expected")
+		return "", malformed(r.nodePath(i), key+" where a CodeableConcept was expected")
 	}
 }
 
-// rawStatus is SubscriptionStatus as R4B and R5 define it. Counters stay
-// raw so that both string and number forms can be accepted.
-type rawStatus struct {
-	Subscription                 *rawRef         `json:"subscription"`
-	Topic                        string          `json:"topic"`
-	Status                       string          `json:"status"`
-	Type                         string          `json:"type"`
-	EventsSinceSubscriptionStart json.RawMessage `json:"eventsSinceSubscriptionStart"`
-	NotificationEvent            []struct {
-		EventNumber       json.RawMessage `json:"eventNumber"`
-		Timestamp         string          `json:"timestamp"`
-		Focus             *rawRef         `json:"focus"`
-		AdditionalContext []rawRef        `json:"additionalContext"`
-	} `json:"notificationEvent"`
-	Error []rawConcept `json:"error"`
-}
-
-func parseSubscriptionStatus(raw json.RawMessage, path string) (Notification, error) {
-	var s rawStatus
-	if err := json.Unmarshal(raw, &s); err != nil {
-		return Notification{}, malformed(path, jsonDetail(err))
+// subscriptionStatus interprets a SubscriptionStatus as R4B and R5 define
+// it. Counters were kept raw so that both string and number forms are
+// accepted.
+func (r *reader) subscriptionStatus() (Notification, error) {
+	st := &r.status
+	if st.statusErr.found() {
+		return Notification{}, malformed(statusPath, st.statusErr.detail())
 	}
-	n := Notification{Topic: s.Topic, Status: s.Status, Type: Type(s.Type), Shape: ShapeSubscriptionStatus}
-	if s.Subscription != nil {
-		n.Subscription = s.Subscription.Reference
-	}
-	if !isNull(s.EventsSinceSubscriptionStart) {
-		v, err := parseCount(s.EventsSinceSubscriptionStart, path+".eventsSinceSubscriptionStart")
+	n := Notification{Subscription: st.sub.String(), Topic: st.topic.String(), Status: st.state.code(statusCodes...),
+		Type: Type(st.ntype.code(typeCodes...)), Shape: ShapeSubscriptionStatus}
+	if st.since != nil && string(st.since) != "null" {
+		v, err := parseCount(st.since, func() string { return statusPath + ".eventsSinceSubscriptionStart" })
 		if err != nil {
 			return Notification{}, err
 		}
 		n.EventsSinceStart, n.HasEventsSinceStart = v, true
 	}
-	for i, e := range s.NotificationEvent {
-		p := fmt.Sprintf("%s.notificationEvent[%d]", path, i)
-		if isNull(e.EventNumber) {
-			return Notification{}, malformed(p, "notificationEvent has no eventNumber")
+	if len(st.events) > 0 {
+		n.Events = make([]Event, 0, len(st.events))
+	}
+	for i, e := range st.events {
+		p := func() string { return statusPath + ".notificationEvent[" + strconv.Itoa(i) + "]" }
+		if e.number == nil || string(e.number) == "null" {
+			return Notification{}, malformed(p(), "notificationEvent has no eventNumber")
 		}
-		num, err := parseCount(e.EventNumber, p+".eventNumber")
+		num, err := parseCount(e.number, func() string { return p() + ".eventNumber" })
 		if err != nil {
 			return Notification{}, err
 		}
-		ev := Event{Number: num}
-		if e.Timestamp != "" {
-			if ev.Timestamp, err = parseInstant(e.Timestamp, p+".timestamp"); err != nil {
+		ev := Event{Number: num, Focus: e.focus.String(), AdditionalContext: e.context}
+		if len(e.ts.b) > 0 {
+			if ev.Timestamp, err = parseInstant(e.ts.String(), func() string { return p() + ".timestamp" }); err != nil {
 				return Notification{}, err
-			}
-		}
-		if e.Focus != nil {
-			ev.Focus = e.Focus.Reference
-		}
-		for _, c := range e.AdditionalContext {
-			if c.Reference != "" {
-				ev.AdditionalContext = append(ev.AdditionalContext, c.Reference)
 			}
 		}
 		n.Events = append(n.Events, ev)
 	}
-	for _, c := range s.Error {
-		if t := c.String(); t != "" {
-			n.Errors = append(n.Errors, t)
-		}
-	}
+	n.Errors = st.errors
 	return n, nil
 }
