@@ -65,6 +65,28 @@ func benchOpen(b *testing.B, noSync bool) (*Store, string) {
 	return s, path
 }
 
+// fillPatients stores, for each of patients new patients, kinds readings a
+// minute for the given minutes, in batches of 500, and returns the
+// patients' subjects.
+func fillPatients(b *testing.B, s *Store, r *rand.Rand, patients, kinds, minutes int) []string {
+	b.Helper()
+	var subjects []string
+	var next int
+	for range patients {
+		subj := "Patient/" + uuidLike(r)
+		subjects = append(subjects, subj)
+		all := readings(r, subj, kinds, minutes, false, &next)
+		for len(all) > 0 {
+			k := min(500, len(all))
+			if _, err := s.PutInputs(context.Background(), all[:k], benchStart); err != nil {
+				b.Fatal(err)
+			}
+			all = all[k:]
+		}
+	}
+	return subjects
+}
+
 // BenchmarkPutInputs measures durable writes (fsync on every commit), the
 // path every polled or pushed reading takes.
 func BenchmarkPutInputs(b *testing.B) {
@@ -96,22 +118,8 @@ func BenchmarkPutInputs(b *testing.B) {
 // six kinds (2160 inputs) from a store holding ten such patients.
 func BenchmarkInputsScan(b *testing.B) {
 	s, _ := benchOpen(b, true)
-	r := rand.New(rand.NewPCG(3, 4))
 	ctx := context.Background()
-	var subjects []string
-	var next int
-	for range 10 {
-		subj := "Patient/" + uuidLike(r)
-		subjects = append(subjects, subj)
-		all := readings(r, subj, 6, 6*60, false, &next)
-		for len(all) > 0 {
-			k := min(500, len(all))
-			if _, err := s.PutInputs(ctx, all[:k], benchStart); err != nil {
-				b.Fatal(err)
-			}
-			all = all[k:]
-		}
-	}
+	subjects := fillPatients(b, s, rand.New(rand.NewPCG(3, 4)), 10, 6, 6*60)
 	var got int
 	for b.Loop() {
 		ins, err := s.Inputs(ctx, subjects[3])
@@ -188,4 +196,45 @@ func BenchmarkRetainedBytes(b *testing.B) {
 			b.ReportMetric(benchPayload, "payload-B/input")
 		})
 	}
+}
+
+// BenchmarkInputsFromRecent reads the last 15 minutes of one patient (five
+// kinds a minute, 75 inputs) from two stores of ten patients, one holding
+// 1 hour and one 12 hours of such readings: what an incremental
+// evaluation asks for. Each iteration reads from both, alternately, so
+// that the ratio (12h/1h) compares the two under the same load; a range
+// read that pays for the history before its range shows as a ratio well
+// above 1.
+func BenchmarkInputsFromRecent(b *testing.B) {
+	ctx := context.Background()
+	type history struct {
+		s       *Store
+		subject string
+		from    time.Time
+		spent   time.Duration
+	}
+	var hs []*history
+	for i, hours := range []int{1, 12} {
+		s, _ := benchOpen(b, true)
+		subjects := fillPatients(b, s, rand.New(rand.NewPCG(7, uint64(i))), 10, 5, hours*60)
+		hs = append(hs, &history{s: s, subject: subjects[3], from: benchStart.Add(time.Duration(hours)*time.Hour - 15*time.Minute)})
+	}
+	n := 0
+	for b.Loop() {
+		for _, h := range hs {
+			start := time.Now()
+			ins, err := h.s.InputsFrom(ctx, h.subject, h.from)
+			h.spent += time.Since(start)
+			if err != nil {
+				b.Fatal(err)
+			}
+			if len(ins) != 75 {
+				b.Fatalf("range read returned %d inputs, want 75", len(ins))
+			}
+		}
+		n++
+	}
+	b.ReportMetric(float64(hs[0].spent.Nanoseconds())/float64(n), "1h-ns/read")
+	b.ReportMetric(float64(hs[1].spent.Nanoseconds())/float64(n), "12h-ns/read")
+	b.ReportMetric(float64(hs[1].spent)/float64(hs[0].spent), "12h/1h")
 }

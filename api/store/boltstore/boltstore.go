@@ -9,8 +9,10 @@
 // order, n an 8-byte big-endian number):
 //
 //	meta            "schema" → n, and the counters Stats reads
-//	inputs          subject 0 logical → input          (Inputs: prefix scan)
-//	inputs_by_time  t(EffectiveAt) ⧺ subject 0 logical → ∅  (Prune)
+//	input_rows      subject 0 t(EffectiveAt) ⧺ logical → input  (Inputs,
+//	                InputsFrom: a range scan; Prune: each patient's head)
+//	input_at        subject 0 logical → t(EffectiveAt), where the input's
+//	                row is  (Input, the version rule)
 //	patients        subject → patient facts
 //	dirty           subject → since, generation  (bucket sequence = generation)
 //	ledger          series → entry
@@ -28,6 +30,16 @@
 //	ledger_versions key → series 0 entry, the entry as it stood under an
 //	                earlier key  (EntryVersion)
 //	ledger_expiry   t(EffectiveAt) ⧺ series → ∅  (PruneHistory)
+//
+// A patient's inputs are kept in the order of their effective time
+// (schema 4), so that a read from a time on touches only the rows it
+// returns, however long the retained history before it: the evaluation
+// of a new reading reads a short recent span. The row holds the whole
+// input; input_at, keyed as the inputs were before schema 4, holds only
+// the time key that finds the row, so a version check or an Input costs
+// two lookups and the disk per input grows by about one time key. Prune
+// has no index across patients: it seeks each patient's first row in
+// turn, one seek per patient, and deletes the rows before the horizon.
 //
 // DueWrites scans the outbox in id order instead of keeping an index by
 // NotBefore: the outbox holds only unacknowledged writes, each record
@@ -51,6 +63,7 @@ import (
 	"encoding/binary"
 	"errors"
 	"fmt"
+	"log/slog"
 	"os"
 	"path/filepath"
 	"time"
@@ -69,7 +82,7 @@ var (
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
 // migrate.
-const schemaVersion = 3
+const schemaVersion = 4
 
 // Errors of Open, to be matched with errors.Is.
 var (
@@ -91,6 +104,9 @@ type Options struct {
 	// Timeout is how long to wait for the file lock (DefaultTimeout when
 	// zero).
 	Timeout time.Duration
+	// Logger receives the progress of a migration at Open
+	// (slog.Default() when nil). Its lines carry counts only.
+	Logger *slog.Logger
 	// NoSync skips fsync on commit. It breaks the durability the store
 	// promises and exists only for benchmarks.
 	NoSync bool
@@ -104,9 +120,11 @@ type Store struct {
 }
 
 var (
-	bMeta         = []byte("meta")
-	bInputs       = []byte("inputs")
-	bInputsByTime = []byte("inputs_by_time")
+	bMeta = []byte("meta")
+	// bInputRows and bInputAt replace the inputs and inputs_by_time
+	// buckets of schema 3 and earlier (schema 4).
+	bInputRows    = []byte("input_rows")
+	bInputAt      = []byte("input_at")
 	bPatients     = []byte("patients")
 	bDirty        = []byte("dirty")
 	bLedger       = []byte("ledger")
@@ -129,11 +147,17 @@ var (
 	bLedgerExpiry   = []byte("ledger_expiry")
 
 	allBuckets = [][]byte{
-		bMeta, bInputs, bInputsByTime, bPatients, bDirty, bLedger,
+		bMeta, bInputRows, bInputAt, bPatients, bDirty, bLedger,
 		bLedgerBySubj, bLedgerByTime, bLedgerByKey, bOutbox, bDead,
 		bCursors, bSubs, bFeed, bInputOwner,
 		bResults, bResultsByTime, bLedgerVersions, bLedgerExpiry,
 	}
+
+	// The inputs of schema 3 and earlier: subject 0 logical → input, and
+	// t(EffectiveAt) ⧺ subject 0 logical → ∅. Only the migration to
+	// schema 4 reads them; it deletes them when it is done.
+	bOldInputs       = []byte("inputs")
+	bOldInputsByTime = []byte("inputs_by_time")
 
 	kSchema = []byte("schema")
 	// Counters read by Stats.
@@ -157,6 +181,14 @@ func Open(path string, opts Options) (*Store, error) {
 	}
 	s := &Store{db: db, group: &groupCommit{db: db}}
 	if err := s.init(); err != nil {
+		_ = db.Close()
+		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
+	}
+	log := opts.Logger
+	if log == nil {
+		log = slog.Default()
+	}
+	if err := moveInputs(db, log); err != nil {
 		_ = db.Close()
 		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
 	}
@@ -229,13 +261,21 @@ func (s *Store) init() error {
 // that every bucket exists then catches a file damaged by hand.
 //
 // Version 2 adds the owner index of inputs, built here from the inputs.
+// Version 4 creates the time-ordered input buckets and records the new
+// version at once, so that an older build refuses the file from then on;
+// moveInputs then moves the inputs into them in batches (a large store's
+// move does not have to fit one transaction, and a move cut short resumes
+// at the next Open).
 func migrate(tx *bolt.Tx, from uint64) error {
+	if from < 4 && tx.Bucket(bOldInputs) == nil {
+		return fmt.Errorf("%w: schema %d without its bucket %s", ErrCorrupt, from, bOldInputs)
+	}
 	if from < 2 {
 		owner, err := tx.CreateBucketIfNotExists(bInputOwner)
 		if err != nil {
 			return fmt.Errorf("migrate to schema 2: %w", err)
 		}
-		if err := tx.Bucket(bInputs).ForEach(func(k, _ []byte) error {
+		if err := tx.Bucket(bOldInputs).ForEach(func(k, _ []byte) error {
 			i := bytes.IndexByte(k, sep)
 			if i < 0 {
 				return fmt.Errorf("%w: input key without a subject", ErrCorrupt)
@@ -266,6 +306,16 @@ func migrate(tx *bolt.Tx, from uint64) error {
 		}
 		if err := tx.Bucket(bMeta).Put(kSchema, u64(3)); err != nil {
 			return fmt.Errorf("migrate to schema 3: %w", err)
+		}
+	}
+	if from < 4 {
+		for _, name := range [][]byte{bInputRows, bInputAt} {
+			if _, err := tx.CreateBucketIfNotExists(name); err != nil {
+				return fmt.Errorf("migrate to schema 4: %w", err)
+			}
+		}
+		if err := tx.Bucket(bMeta).Put(kSchema, u64(4)); err != nil {
+			return fmt.Errorf("migrate to schema 4: %w", err)
 		}
 	}
 	for _, name := range allBuckets {

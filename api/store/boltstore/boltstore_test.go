@@ -176,7 +176,7 @@ func setSchema(t *testing.T, path string, version uint64) {
 func TestNewerSchemaRefused(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "deadspace.db")
 	must(t, openAt(t, path).Close())
-	setSchema(t, path, 4)
+	setSchema(t, path, 5)
 	s, err := boltstore.Open(path, boltstore.Options{})
 	if err == nil {
 		s.Close()
@@ -187,7 +187,7 @@ func TestNewerSchemaRefused(t *testing.T) {
 	}
 	// The refusal releases the file: an older build must not keep a
 	// newer file locked.
-	setSchema(t, path, 3)
+	setSchema(t, path, 4)
 	must(t, openAt(t, path).Close())
 }
 
@@ -479,33 +479,6 @@ func crashChild(path string) {
 		if err := w.Flush(); err != nil {
 			os.Exit(2)
 		}
-	}
-}
-
-// TestSchemaOneMigratesTheOwnerIndex: a file written before inputs had an
-// owner index gains one, built from the inputs it holds.
-func TestSchemaOneMigratesTheOwnerIndex(t *testing.T) {
-	path := filepath.Join(t.TempDir(), "deadspace.db")
-	s := openAt(t, path)
-	now := time.Date(2026, 3, 14, 22, 0, 0, 0, time.UTC)
-	_, err := s.PutInputs(t.Context(), []store.Input{{Subject: "Patient/a", Logical: "Observation/o1", VersionID: "1", LastUpdated: now, EffectiveAt: now, Payload: []byte("x")}}, now)
-	must(t, err)
-	must(t, s.Close())
-	// Make it a schema-1 file: no owner index.
-	db, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: time.Second})
-	must(t, err)
-	must(t, db.Update(func(tx *bolt.Tx) error { return tx.DeleteBucket([]byte("input_owner")) }))
-	must(t, db.Close())
-	setSchema(t, path, 1)
-
-	s = openAt(t, path)
-	defer s.Close()
-	got, err := s.Owner(t.Context(), "Observation/o1")
-	if err != nil || got != "Patient/a" {
-		t.Errorf("Owner after migration = %q, %v; want Patient/a", got, err)
-	}
-	if _, err := s.Owner(t.Context(), "Observation/none"); !errors.Is(err, store.ErrNotFound) {
-		t.Errorf("Owner of an unknown input: %v, want ErrNotFound", err)
 	}
 }
 

@@ -417,3 +417,10 @@ func subjectPrefix(subject string) []byte {
 func subjectKey(subject, rest string) []byte {
 	return append(subjectPrefix(subject), rest...)
 }
+
+// rowKey is the key of an input's row, subject 0 t(EffectiveAt) logical,
+// from the subject's prefix (subject 0) and the time key.
+func rowKey(prefix, t, logical []byte) []byte {
+	b := make([]byte, 0, len(prefix)+len(t)+len(logical))
+	return append(append(append(b, prefix...), t...), logical...)
+}

@@ -54,17 +54,40 @@ func sameKeys(name string, got [][]byte, want [][]byte) error {
 }
 
 func checkConsistent(tx *bolt.Tx) error {
+	// Every row sits at its input's effective time, and input_at points at
+	// each row once: a second row of one input would show as a key twice.
 	var want [][]byte
-	err := tx.Bucket(bInputs).ForEach(func(k, v []byte) error {
+	at := tx.Bucket(bInputAt)
+	err := tx.Bucket(bInputRows).ForEach(func(k, v []byte) error {
+		i := bytes.IndexByte(k, sep)
+		if i < 0 || len(k) < i+1+timeKeyLen {
+			return fmt.Errorf("input row key %q has no subject and time", k)
+		}
 		_, _, eff, err := decodeInputHead(v)
-		want = append(want, append(appendTimeKey(nil, eff), k...))
-		return err
+		if err != nil {
+			return err
+		}
+		t := k[i+1 : i+1+timeKeyLen]
+		if !bytes.Equal(t, appendTimeKey(nil, eff)) {
+			return fmt.Errorf("input row %q is not at its effective time %v", k, eff)
+		}
+		key := append(bytes.Clone(k[:i+1]), k[i+1+timeKeyLen:]...)
+		if p := at.Get(key); !bytes.Equal(p, t) {
+			return fmt.Errorf("input_at %q → %x, its row is at %x", key, p, t)
+		}
+		want = append(want, key)
+		return nil
 	})
 	if err != nil {
 		return err
 	}
-	if err := sameKeys("inputs_by_time", keysOf(tx.Bucket(bInputsByTime)), want); err != nil {
+	if err := sameKeys("input_at", keysOf(at), want); err != nil {
 		return err
+	}
+	for _, name := range [][]byte{bOldInputs, bOldInputsByTime} {
+		if tx.Bucket(name) != nil {
+			return fmt.Errorf("bucket %s of schema 3 left behind", name)
+		}
 	}
 
 	var bySubj, byTime [][]byte

@@ -184,9 +184,9 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 
 // inputHead reads the version of the stored input of subject, if any.
 func inputHead(tx *bolt.Tx, subject, logical string) (store.Input, bool, error) {
-	v := tx.Bucket(bInputs).Get(subjectKey(subject, logical))
-	if v == nil {
-		return store.Input{}, false, nil
+	v, err := inputRow(tx, subject, logical)
+	if v == nil || err != nil {
+		return store.Input{}, false, err
 	}
 	id, lu, eff, err := decodeInputHead(v)
 	if err != nil {
@@ -195,58 +195,85 @@ func inputHead(tx *bolt.Tx, subject, logical string) (store.Input, bool, error) 
 	return store.Input{Subject: subject, Logical: logical, VersionID: id, LastUpdated: lu, EffectiveAt: eff}, true, nil
 }
 
-// writeInput replaces the copy under in.Subject and keeps the time index.
-func writeInput(tx *bolt.Tx, in store.Input) error {
-	b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
-	// Readings arrive nearly in time order, so this index grows at its
-	// end: pages filled to 90 % rather than half stay that way.
-	byTime.FillPercent = appendFill
-	key := subjectKey(in.Subject, in.Logical)
-	if old := b.Get(key); old != nil {
-		_, _, oldEff, err := decodeInputHead(old)
-		if err != nil {
-			return err
-		}
-		if err := byTime.Delete(append(appendTimeKey(nil, oldEff), key...)); err != nil {
-			return err
-		}
+// inputRow returns the stored record of an input, nil when there is none:
+// input_at gives the time that finds its row.
+func inputRow(tx *bolt.Tx, subject, logical string) ([]byte, error) {
+	key := subjectKey(subject, logical)
+	t := tx.Bucket(bInputAt).Get(key)
+	if t == nil {
+		return nil, nil
 	}
-	if err := b.Put(key, encodeInput(in)); err != nil {
-		return err
+	if len(t) != timeKeyLen {
+		return nil, fmt.Errorf("%w: input time key of %d bytes", ErrCorrupt, len(t))
 	}
-	return byTime.Put(append(appendTimeKey(nil, in.EffectiveAt), key...), nil)
+	prefix := key[:len(subject)+1]
+	v := tx.Bucket(bInputRows).Get(rowKey(prefix, t, key[len(prefix):]))
+	if v == nil {
+		return nil, fmt.Errorf("%w: an input's row is missing at its time", ErrCorrupt)
+	}
+	return v, nil
 }
 
-// Inputs returns the patient's inputs by a prefix scan of subject+0.
+// writeInput replaces the copy under in.Subject: its row moves to the new
+// effective time, and input_at follows it.
+func writeInput(tx *bolt.Tx, in store.Input) error {
+	rows, at := tx.Bucket(bInputRows), tx.Bucket(bInputAt)
+	// Readings arrive nearly in time order, so a patient's rows grow at
+	// the end of its range: pages filled to 90 % rather than half stay
+	// that way.
+	rows.FillPercent = appendFill
+	key := subjectKey(in.Subject, in.Logical)
+	prefix, logical := key[:len(in.Subject)+1], key[len(in.Subject)+1:]
+	if old := at.Get(key); old != nil {
+		if err := rows.Delete(rowKey(prefix, old, logical)); err != nil {
+			return err
+		}
+	}
+	t := appendTimeKey(nil, in.EffectiveAt)
+	if err := rows.Put(rowKey(prefix, t, logical), encodeInput(in)); err != nil {
+		return err
+	}
+	return at.Put(key, t)
+}
+
+// Inputs returns the patient's inputs: every row under the subject.
 func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
 	return s.inputsFrom(ctx, "Inputs", subject, time.Time{})
 }
 
-// InputsFrom walks the patient's keys as Inputs does but decodes and
-// copies only the inputs effective from then on: the rest cost a read of
-// their head.
+// InputsFrom seeks the patient's first row at or after from and reads on
+// to the end of the patient's rows: the rows before from are not read, so
+// the cost follows what is returned, not the retained history.
 func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
 	return s.inputsFrom(ctx, "InputsFrom", subject, from)
 }
 
-// inputsFrom is Inputs and InputsFrom; a zero from reads every input
-// without looking at its head first.
+// inputsFrom is Inputs and InputsFrom (every row when from is zero). The
+// rows come in time order and are returned in Logical order, as the
+// contract says; the sort costs what the range holds.
 func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Time) ([]store.Input, error) {
 	var out []store.Input
 	err := s.view(ctx, op, func(tx *bolt.Tx) error {
 		prefix := subjectPrefix(subject)
-		c := tx.Bucket(bInputs).Cursor()
-		for k, v := c.Seek(prefix); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
-			if !from.IsZero() {
-				_, _, eff, err := decodeInputHead(v)
-				if err != nil {
-					return err
-				}
-				if eff.Before(from) {
-					continue
-				}
+		seek := prefix
+		if !from.IsZero() {
+			seek = appendTimeKey(bytes.Clone(prefix), from)
+		}
+		// Values stay valid until the transaction ends, so the rows are
+		// sorted before they are decoded and copied.
+		type row struct{ logical, v []byte }
+		var rows []row
+		c := tx.Bucket(bInputRows).Cursor()
+		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
+			if len(k) < len(prefix)+timeKeyLen {
+				return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
 			}
-			in, err := decodeInput(subject, string(k[len(prefix):]), v)
+			rows = append(rows, row{k[len(prefix)+timeKeyLen:], v})
+		}
+		slices.SortFunc(rows, func(a, b row) int { return bytes.Compare(a.logical, b.logical) })
+		out = make([]store.Input, 0, len(rows))
+		for _, r := range rows {
+			in, err := decodeInput(subject, string(r.logical), r.v)
 			if err != nil {
 				return err
 			}
@@ -254,7 +281,7 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 		}
 		return nil
 	})
-	if err != nil {
+	if err != nil || len(out) == 0 {
 		return nil, err
 	}
 	return out, nil
@@ -264,11 +291,13 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 func (s *Store) Input(ctx context.Context, subject, logical string) (store.Input, error) {
 	var in store.Input
 	err := s.view(ctx, "Input", func(tx *bolt.Tx) error {
-		v := tx.Bucket(bInputs).Get(subjectKey(subject, logical))
+		v, err := inputRow(tx, subject, logical)
+		if err != nil {
+			return err
+		}
 		if v == nil {
 			return notFound("input")
 		}
-		var err error
 		in, err = decodeInput(subject, logical, v)
 		return err
 	})
@@ -375,47 +404,56 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 	return out, nil
 }
 
-// Prune walks the EffectiveAt index up to the horizon. It rechecks each
-// input's own EffectiveAt so that an index key left behind by a bug can
-// never delete a newer version; such a key is removed.
+// Prune visits each patient's rows from the first, up to the horizon:
+// one seek per patient, then only rows it deletes. A row that input_at
+// does not point at (left behind by a bug) is deleted too, but not
+// counted; the input's current row, at its own time, is kept.
 func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 	var n int
 	err := s.update(ctx, "Prune", func(tx *bolt.Tx) error {
 		n = 0
-		b, byTime := tx.Bucket(bInputs), tx.Bucket(bInputsByTime)
+		rows, at, owner := tx.Bucket(bInputRows), tx.Bucket(bInputAt), tx.Bucket(bInputOwner)
 		var stale [][]byte
-		c := byTime.Cursor()
-		for k, _ := c.First(); len(k) >= timeKeyLen && parseTimeKey(k).Before(horizon); k, _ = c.Next() {
-			stale = append(stale, bytes.Clone(k))
+		c := rows.Cursor()
+		k, _ := c.First()
+		for k != nil {
+			i := bytes.IndexByte(k, sep)
+			if i < 0 || len(k) < i+1+timeKeyLen {
+				return fmt.Errorf("%w: input row key without a subject and time", ErrCorrupt)
+			}
+			prefix := bytes.Clone(k[:i+1])
+			for ; k != nil && bytes.HasPrefix(k, prefix); k, _ = c.Next() {
+				if len(k) < len(prefix)+timeKeyLen {
+					return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
+				}
+				if !parseTimeKey(k[len(prefix):]).Before(horizon) {
+					break
+				}
+				stale = append(stale, bytes.Clone(k))
+			}
+			// The next patient: subject 1 sorts after every key of
+			// subject 0 and before any longer subject.
+			prefix[len(prefix)-1] = sep + 1
+			k, _ = c.Seek(prefix)
 		}
 		for _, k := range stale {
-			if err := byTime.Delete(k); err != nil {
+			if err := rows.Delete(k); err != nil {
 				return err
 			}
-			key := k[timeKeyLen:]
-			v := b.Get(key)
-			if v == nil {
+			i := bytes.IndexByte(k, sep)
+			subject, t, logical := k[:i], k[i+1:i+1+timeKeyLen], k[i+1+timeKeyLen:]
+			key := subjectKey(string(subject), string(logical))
+			if !bytes.Equal(at.Get(key), t) {
 				continue
 			}
-			_, _, eff, err := decodeInputHead(v)
-			if err != nil {
-				return err
-			}
-			if !eff.Before(horizon) {
-				continue
-			}
-			if err := b.Delete(key); err != nil {
+			if err := at.Delete(key); err != nil {
 				return err
 			}
 			// The owner index follows the latest version only: drop it
 			// when the pruned copy was that one.
-			i := bytes.IndexByte(key, sep)
-			if i >= 0 {
-				owner := tx.Bucket(bInputOwner)
-				if o := owner.Get(key[i+1:]); o != nil && bytes.Equal(o, key[:i]) {
-					if err := owner.Delete(key[i+1:]); err != nil {
-						return err
-					}
+			if o := owner.Get(logical); o != nil && bytes.Equal(o, subject) {
+				if err := owner.Delete(logical); err != nil {
+					return err
 				}
 			}
 			n++

@@ -2,6 +2,7 @@ package storetest
 
 import (
 	"errors"
+	"fmt"
 	"slices"
 	"testing"
 	"time"
@@ -296,4 +297,118 @@ func testInputsFrom(t *testing.T, open func(t *testing.T) store.Store) {
 	if got, want := list(t0), []string{"Observation/c=at", "Observation/d=moved later"}; !slices.Equal(got, want) {
 		t.Errorf("after corrections: InputsFrom = %v, want %v", got, want)
 	}
+}
+
+// InputsFrom returns exactly the inputs of Inputs whose EffectiveAt is at
+// or after from, for every from at, just before and just after each
+// stored time: equal times, nanosecond boundaries, times before 1970, an
+// offset other than UTC, a body height stored a year ahead, versions that
+// move an input's time forward, backward or not at all, an input re-filed
+// to another patient (its first patient keeps the withdrawal at the new
+// version's time), and what Prune leaves.
+func testInputsFromExactly(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	y1960 := time.Date(1960, 6, 1, 12, 0, 0, 0, time.UTC)
+	justBefore1970 := time.Unix(0, 0).UTC().Add(-500 * time.Millisecond)
+	put(t, s, t0,
+		input("Patient/1", "Observation/same-b", "1", t0, t0, "same time b"),
+		input("Patient/1", "Observation/same-a", "1", t0, t0, "same time a"),
+		input("Patient/1", "Observation/ns", "1", t0, t0.Add(time.Nanosecond), "a nanosecond after"),
+		input("Patient/1", "Observation/1960", "1", t0, y1960, "1960"),
+		input("Patient/1", "Observation/1969", "1", t0, justBefore1970, "half a second before 1970"),
+		// Not the epoch itself: PostgreSQL stores a zero time as 0 ns, so an
+		// input at exactly 1970-01-01T00:00:00Z reads back as the zero time.
+		input("Patient/1", "Observation/epoch", "1", t0, time.Unix(1, 0).UTC(), "a second after the epoch"),
+		input("Patient/1", "Observation/offset", "1", t0, t0.Add(-30*time.Minute).In(time.FixedZone("", 5*3600)), "UTC+5"),
+		input("Patient/1", "Observation/height", "1", t0, t0.AddDate(1, 0, 0), "a height, a year ahead"),
+		input("Patient/1", "Observation/later", "1", t0, t0.Add(time.Hour), "an hour after, moves earlier"),
+		input("Patient/1", "Observation/earlier", "1", t0, t0.Add(-2*time.Hour), "two hours before, moves later"),
+		input("Patient/1", "Observation/kept", "1", t0, t0.Add(-time.Hour), "an hour before, keeps its time"),
+		input("Patient/1", "Observation/refiled", "1", t0, t0.Add(10*time.Minute), "re-filed to Patient/2"),
+		input("Patient/10", "Observation/other", "1", t0, t0, "another patient whose reference starts the same"),
+		input("Patient/0", "Observation/other0", "1", t0, t0.Add(time.Hour), "a patient sorting before"),
+	)
+	t1 := t0.Add(time.Minute)
+	refiled := input("Patient/2", "Observation/refiled", "2", t1, t0.Add(20*time.Minute), "on Patient/2")
+	refiled.Withdrawal = []byte("withdrawn from Patient/1")
+	put(t, s, t1,
+		input("Patient/1", "Observation/later", "2", t1, t0.Add(-3*time.Hour), "moved three hours before"),
+		input("Patient/1", "Observation/earlier", "2", t1, t0.Add(2*time.Hour), "moved two hours after"),
+		input("Patient/1", "Observation/kept", "2", t1, t0.Add(-time.Hour), "corrected in place"),
+		refiled,
+	)
+	check := func(stage, subject string) {
+		t.Helper()
+		all, err := s.Inputs(ctx, subject)
+		must(t, err)
+		if len(all) == 0 {
+			t.Fatalf("%s: %s has no inputs", stage, subject)
+		}
+		froms := []time.Time{{}}
+		for _, in := range all {
+			for _, d := range []time.Duration{-time.Nanosecond, 0, time.Nanosecond} {
+				froms = append(froms, in.EffectiveAt.Add(d))
+			}
+		}
+		for _, from := range froms {
+			var want []string
+			for _, in := range all {
+				if !in.EffectiveAt.Before(from) {
+					want = append(want, describe(in))
+				}
+			}
+			got, err := s.InputsFrom(ctx, subject, from)
+			must(t, err)
+			var have []string
+			for _, in := range got {
+				if in.Subject != subject {
+					t.Errorf("%s: an input of %s in %s's list", stage, in.Subject, subject)
+				}
+				have = append(have, describe(in))
+			}
+			if !slices.Equal(have, want) {
+				t.Errorf("%s: %s InputsFrom(%v) =\n%v\nwant (Inputs with EffectiveAt ≥ from, in Logical order)\n%v", stage, subject, from, have, want)
+			}
+		}
+	}
+	wantOne := func(stage, subject, logical, payload string, at time.Time) {
+		t.Helper()
+		in, err := s.Input(ctx, subject, logical)
+		must(t, err)
+		if string(in.Payload) != payload || !in.EffectiveAt.Equal(at) {
+			t.Errorf("%s: %s %s = %q at %v, want %q at %v", stage, subject, logical, in.Payload, in.EffectiveAt, payload, at)
+		}
+	}
+	for _, subject := range []string{"Patient/1", "Patient/2", "Patient/10", "Patient/0"} {
+		check("after corrections", subject)
+	}
+	wantOne("after corrections", "Patient/1", "Observation/refiled", "withdrawn from Patient/1", t0.Add(20*time.Minute))
+	wantOne("after corrections", "Patient/2", "Observation/refiled", "on Patient/2", t0.Add(20*time.Minute))
+	wantOne("after corrections", "Patient/1", "Observation/later", "moved three hours before", t0.Add(-3*time.Hour))
+	from := t0.Add(-time.Hour)
+	got, err := s.InputsFrom(ctx, "Patient/1", from)
+	must(t, err)
+	var logical []string
+	for _, in := range got {
+		logical = append(logical, in.Logical)
+	}
+	if want := []string{"Observation/earlier", "Observation/height", "Observation/kept", "Observation/ns", "Observation/offset", "Observation/refiled", "Observation/same-a", "Observation/same-b"}; !slices.Equal(logical, want) {
+		t.Errorf("InputsFrom(an hour before) = %v, want %v", logical, want)
+	}
+
+	n, err := s.Prune(ctx, t0.Add(-time.Hour))
+	must(t, err)
+	if n != 4 { // 1960, 1969, 1970, and the version moved three hours before
+		t.Errorf("Prune = %d, want 4", n)
+	}
+	check("after Prune", "Patient/1")
+	if _, err := s.Input(ctx, "Patient/1", "Observation/later"); !errors.Is(err, store.ErrNotFound) {
+		t.Errorf("a pruned input: %v, want ErrNotFound", err)
+	}
+}
+
+// describe is an input as the range tests compare it.
+func describe(in store.Input) string {
+	return fmt.Sprintf("%s v%s %s %q", in.Logical, in.VersionID, in.EffectiveAt.UTC().Format(time.RFC3339Nano), in.Payload)
 }

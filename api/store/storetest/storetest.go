@@ -64,6 +64,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Dirty/SpanAndUrgency", testDirtySpan},
 		{"Commit/EmptyClearsMark", testEmptyCommit},
 		{"InputsFrom/Range", testInputsFrom},
+		{"InputsFrom/Exactly", testInputsFromExactly},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {

@@ -1,0 +1,133 @@
+package boltstore
+
+import (
+	"bytes"
+	"fmt"
+	"log/slog"
+	"slices"
+	"time"
+
+	bolt "go.etcd.io/bbolt"
+)
+
+// The move of schema 4 (see migrate) in batches. Variables so that a test
+// can watch a small store move in several batches with a line for each.
+var (
+	// moveBatch is about how many inputs one transaction moves: a few MB
+	// of pages held until its commit. A patient's inputs move together, so
+	// its rows are written in key order and fill their pages as a fresh
+	// store's do.
+	moveBatch = 20000
+	// moveReportEvery is how often a long move logs its progress.
+	moveReportEvery = 5 * time.Second
+)
+
+// moveInputs moves the inputs of a file of schema 3 or earlier from the
+// inputs bucket into input_rows and input_at, a batch of patients per
+// transaction, and drops the old buckets when the last batch is moved. A
+// move cut short (the process killed, the disk full) leaves the moved
+// patients in the new buckets and the rest in the old one, so the next
+// Open carries on; the file says schema 4 from the start, so an older
+// build never opens it half moved. Log lines carry counts only.
+func moveInputs(db *bolt.DB, log *slog.Logger) error {
+	total := -1
+	if err := db.View(func(tx *bolt.Tx) error {
+		if b := tx.Bucket(bOldInputs); b != nil {
+			total = b.Stats().KeyN
+		}
+		return nil
+	}); err != nil {
+		return fmt.Errorf("migrate to schema 4: %w", err)
+	}
+	if total < 0 {
+		return nil // nothing left to move
+	}
+	start := time.Now()
+	if total > 0 {
+		log.Info("boltstore: moving inputs into their time order (schema 4), once", "inputs", total)
+	}
+	moved, reported := 0, start
+	for {
+		var n int
+		var done bool
+		err := db.Update(func(tx *bolt.Tx) error {
+			var err error
+			n, done, err = moveInputBatch(tx, moveBatch)
+			return err
+		})
+		if err != nil {
+			return fmt.Errorf("migrate to schema 4, %d of %d inputs moved: %w", moved, total, err)
+		}
+		moved += n
+		if done {
+			break
+		}
+		if now := time.Now(); now.Sub(reported) >= moveReportEvery {
+			log.Info("boltstore: moving inputs", "moved", moved, "of", total, "elapsed", now.Sub(start).Round(time.Millisecond))
+			reported = now
+		}
+	}
+	if total > 0 {
+		log.Info("boltstore: inputs moved", "inputs", moved, "elapsed", time.Since(start).Round(time.Millisecond))
+	}
+	return nil
+}
+
+// moveInputBatch moves whole patients, at least limit inputs when there
+// are that many left, and deletes the old buckets once they hold nothing.
+// It returns how many inputs it moved and whether the move is complete.
+func moveInputBatch(tx *bolt.Tx, limit int) (int, bool, error) {
+	old := tx.Bucket(bOldInputs)
+	rows, at := tx.Bucket(bInputRows), tx.Bucket(bInputAt)
+	rows.FillPercent = appendFill
+	type kv struct{ k, v []byte }
+	var moving, pointers []kv
+	var subject []byte // the prefix (subject 0) of the patient being read
+	c := old.Cursor()
+	for k, v := c.First(); k != nil; k, v = c.Next() {
+		if !bytes.HasPrefix(k, subject) || subject == nil {
+			if len(moving) >= limit {
+				break
+			}
+			i := bytes.IndexByte(k, sep)
+			if i < 0 {
+				return 0, false, fmt.Errorf("%w: input key without a subject", ErrCorrupt)
+			}
+			subject = bytes.Clone(k[:i+1])
+		}
+		_, _, eff, err := decodeInputHead(v)
+		if err != nil {
+			return 0, false, err
+		}
+		t := appendTimeKey(nil, eff)
+		moving = append(moving, kv{rowKey(subject, t, k[len(subject):]), bytes.Clone(v)})
+		pointers = append(pointers, kv{bytes.Clone(k), t})
+	}
+	// In key order, each patient's rows go in as appends.
+	slices.SortFunc(moving, func(a, b kv) int { return bytes.Compare(a.k, b.k) })
+	for _, r := range moving {
+		if err := rows.Put(r.k, r.v); err != nil {
+			return 0, false, err
+		}
+	}
+	for _, p := range pointers {
+		if err := at.Put(p.k, p.v); err != nil {
+			return 0, false, err
+		}
+		if err := old.Delete(p.k); err != nil {
+			return 0, false, err
+		}
+	}
+	if k, _ := old.Cursor().First(); k != nil {
+		return len(moving), false, nil
+	}
+	if err := tx.DeleteBucket(bOldInputs); err != nil {
+		return 0, false, err
+	}
+	if tx.Bucket(bOldInputsByTime) != nil {
+		if err := tx.DeleteBucket(bOldInputsByTime); err != nil {
+			return 0, false, err
+		}
+	}
+	return len(moving), true, nil
+}
