@@ -225,6 +225,9 @@ func writeInput(tx *bolt.Tx, in store.Input) error {
 	key := subjectKey(in.Subject, in.Logical)
 	prefix, logical := key[:len(in.Subject)+1], key[len(in.Subject)+1:]
 	if old := at.Get(key); old != nil {
+		if len(old) != timeKeyLen {
+			return fmt.Errorf("%w: input time key of %d bytes", ErrCorrupt, len(old))
+		}
 		if err := rows.Delete(rowKey(prefix, old, logical)); err != nil {
 			return err
 		}
