@@ -1,8 +1,10 @@
 package webhook_test
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
+	"slices"
 	"sync"
 
 	"github.com/deadspace-fhir/deadspace/api/webhook"
@@ -35,7 +37,24 @@ type call struct {
 	n         notify.Notification
 }
 
+// record keeps a copy of the resources, which the webhook reuses after
+// the call (see Sink).
 func (f *fakeSink) record(c call) {
+	if c.resources != nil {
+		rs := make([]json.RawMessage, len(c.resources))
+		for i, r := range c.resources {
+			rs[i] = bytes.Clone(r)
+		}
+		c.resources = rs
+	}
+	c.n.Events = slices.Clone(c.n.Events)
+	for i := range c.n.Events {
+		c.n.Events[i].Resource = bytes.Clone(c.n.Events[i].Resource)
+	}
+	c.n.Resources = slices.Clone(c.n.Resources)
+	for i := range c.n.Resources {
+		c.n.Resources[i].Resource = bytes.Clone(c.n.Resources[i].Resource)
+	}
 	f.mu.Lock()
 	defer f.mu.Unlock()
 	f.calls = append(f.calls, c)

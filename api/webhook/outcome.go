@@ -5,7 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"net/http"
-	"strings"
+	"strconv"
 )
 
 // requestError is a request the webhook itself refuses.
@@ -61,26 +61,42 @@ func answer(err error) (int, outcome) {
 // not a FHIR resource (HAPI refused "{}"), so there is always an
 // OperationOutcome with at least one issue.
 func (r result) issues() []issue {
-	var parts []string
+	// Built in one buffer: this runs for every request.
+	var buf [160]byte
+	b := buf[:0]
+	part := func(n int, text string) {
+		if len(b) > 0 {
+			b = append(b, "; "...)
+		}
+		if n >= 0 {
+			b = strconv.AppendInt(b, int64(n), 10)
+		}
+		b = append(b, text...)
+	}
 	if r.offered > 0 {
-		parts = append(parts, fmt.Sprintf("%d of %d resources accepted, %d rejected", r.receipt.Accepted, r.offered, len(r.receipt.Rejected)))
+		part(r.receipt.Accepted, " of ")
+		b = strconv.AppendInt(b, int64(r.offered), 10)
+		b = append(b, " resources accepted, "...)
+		b = strconv.AppendInt(b, int64(len(r.receipt.Rejected)), 10)
+		b = append(b, " rejected"...)
 	}
 	if r.fetch > 0 {
-		parts = append(parts, fmt.Sprintf("%d references queued for reading", r.fetch))
+		part(r.fetch, " references queued for reading")
 	}
 	if r.unusable > 0 {
-		parts = append(parts, fmt.Sprintf("%d focus references name no readable resource", r.unusable))
+		part(r.unusable, " focus references name no readable resource")
 	}
 	if r.changed {
-		parts = append(parts, "change recorded; the service will search for it")
+		part(-1, "change recorded; the service will search for it")
 	}
 	if r.status {
-		parts = append(parts, fmt.Sprintf("%s notification status recorded", r.ntype))
+		part(-1, string(r.ntype))
+		b = append(b, " notification status recorded"...)
 	}
-	if len(parts) == 0 {
-		parts = append(parts, "nothing to do")
+	if len(b) == 0 {
+		part(-1, "nothing to do")
 	}
-	out := []issue{{Severity: "information", Code: "informational", Diagnostics: strings.Join(parts, "; ")}}
+	out := []issue{{Severity: "information", Code: "informational", Diagnostics: string(b)}}
 	for _, rj := range r.receipt.Rejected {
 		d := fmt.Sprintf("resource %d rejected: %s", rj.Index, rj.Reason)
 		if rj.Detail != "" {
@@ -91,6 +107,8 @@ func (r result) issues() []issue {
 	return out
 }
 
+var outcomeType = []string{"application/fhir+json; charset=utf-8"}
+
 func writeOutcome(w http.ResponseWriter, status int, issues []issue) {
 	body, err := json.Marshal(struct {
 		ResourceType string  `json:"resourceType"`
@@ -100,7 +118,8 @@ func writeOutcome(w http.ResponseWriter, status int, issues []issue) {
 		// Marshalling strings and ints cannot fail; keep the status anyway.
 		body = []byte(`{"resourceType":"OperationOutcome","issue":[{"severity":"error","code":"exception"}]}`)
 	}
-	w.Header().Set("Content-Type", "application/fhir+json; charset=utf-8")
+	// One shared value: net/http only reads it.
+	w.Header()["Content-Type"] = outcomeType
 	w.WriteHeader(status)
 	_, _ = w.Write(body)
 }

@@ -14,6 +14,12 @@ import (
 // Senders retry whatever was not acknowledged, and a request may fail after
 // some of its calls succeeded, so every method must accept the same content
 // again without harm.
+//
+// The raw resources a method is given (and the Resource of a
+// notification's events and entries) are slices of the request body, which
+// the webhook reuses for another request once the method has returned: a
+// Sink that keeps them past the call must copy them. Strings are the
+// Sink's to keep.
 type Sink interface {
 	// Resources takes FHIR resources (raw JSON, each an object with a
 	// resourceType) delivered in full.

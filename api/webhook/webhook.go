@@ -16,6 +16,7 @@ import (
 	"net/http"
 	"net/textproto"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
@@ -144,10 +145,14 @@ func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	start := h.now()
 	id := requestID(r.Header.Get("X-Request-Id"))
 	w.Header().Set("X-Request-Id", id)
-	log := h.log.With("request_id", id)
 
+	// The body is read into a pooled buffer that goes back to the pool when
+	// the request is answered: everything the sink was given is stored (and
+	// copied) by then, and the answer holds no part of the body.
+	buf := bodyPool.Get().(*[]byte)
+	defer putBody(buf)
 	rt, typ, rid := h.route(r.URL.Path)
-	res, err := h.serve(r, id, rt, typ, rid)
+	res, err := h.serve(r, buf, id, rt, typ, rid)
 	code := http.StatusOK
 	if err != nil {
 		var out outcome
@@ -160,30 +165,41 @@ func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		writeOutcome(w, code, res.issues())
 	}
 
-	attrs := []any{"method", r.Method, "route", string(rt), "status", code,
-		"elapsed", h.now().Sub(start)}
-	if res.mode != "" {
-		attrs = append(attrs, "mode", res.mode)
-	}
-	if res.ntype != "" {
-		attrs = append(attrs, "notification_type", string(res.ntype), "content", string(res.content), "events", res.events)
-	}
-	if res.offered > 0 {
-		attrs = append(attrs, "accepted", res.receipt.Accepted, "rejected", len(res.receipt.Rejected))
-	}
-	if res.fetch > 0 {
-		attrs = append(attrs, "fetch", res.fetch)
-	}
+	level, msg := slog.LevelInfo, "webhook request"
 	switch {
 	case code >= 500:
+		level, msg = slog.LevelError, "webhook request failed"
+	case code >= 400:
+		level, msg = slog.LevelWarn, "webhook request refused"
+	}
+	ctx := r.Context()
+	if !h.log.Enabled(ctx, level) {
+		return
+	}
+	// Attrs rather than key-value pairs, and request_id among them rather
+	// than through Logger.With: the line is the same, without a logger and
+	// a boxed value per field on every request.
+	var attrBuf [14]slog.Attr
+	attrs := append(attrBuf[:0], slog.String("request_id", id), slog.String("method", r.Method),
+		slog.String("route", string(rt)), slog.Int("status", code), slog.Duration("elapsed", h.now().Sub(start)))
+	if res.mode != "" {
+		attrs = append(attrs, slog.String("mode", res.mode))
+	}
+	if res.ntype != "" {
+		attrs = append(attrs, slog.String("notification_type", string(res.ntype)), slog.String("content", string(res.content)), slog.Int("events", res.events))
+	}
+	if res.offered > 0 {
+		attrs = append(attrs, slog.Int("accepted", res.receipt.Accepted), slog.Int("rejected", len(res.receipt.Rejected)))
+	}
+	if res.fetch > 0 {
+		attrs = append(attrs, slog.Int("fetch", res.fetch))
+	}
+	if code >= 500 {
 		// Sink errors are the engine's own text, which by project rule holds
 		// no patient identifiers; 4xx texts go to the sender only.
-		log.ErrorContext(r.Context(), "webhook request failed", append(attrs, "err", err)...)
-	case code >= 400:
-		log.WarnContext(r.Context(), "webhook request refused", attrs...)
-	default:
-		log.InfoContext(r.Context(), "webhook request", attrs...)
+		attrs = append(attrs, slog.Any("err", err))
 	}
+	h.log.LogAttrs(ctx, level, msg, attrs...)
 }
 
 func (h *Handler) route(path string) (rt route, typ, id string) {
@@ -202,7 +218,7 @@ func (h *Handler) route(path string) (rt route, typ, id string) {
 }
 
 // serve does the work; every failure comes back as an error for answer.
-func (h *Handler) serve(r *http.Request, id string, rt route, typ, rid string) (result, error) {
+func (h *Handler) serve(r *http.Request, buf *[]byte, id string, rt route, typ, rid string) (result, error) {
 	// Authentication comes before anything that depends on the request, so
 	// an unauthenticated caller learns nothing about paths or formats.
 	if !h.authorized(r.Header) {
@@ -223,7 +239,7 @@ func (h *Handler) serve(r *http.Request, id string, rt route, typ, rid string) (
 		return result{}, &requestError{status: http.StatusMethodNotAllowed, code: "not-supported",
 			msg: "method not allowed", allow: allow}
 	}
-	body, err := h.readBody(r)
+	body, err := h.readBody(r, buf)
 	if err != nil {
 		return result{}, err
 	}
@@ -253,11 +269,32 @@ func (h *Handler) authorized(hd http.Header) bool {
 	return subtle.ConstantTimeCompare(sum[:], h.secret[:]) == 1
 }
 
-func (h *Handler) readBody(r *http.Request) ([]byte, error) {
-	tooBig := &requestError{status: http.StatusRequestEntityTooLarge, code: "too-costly",
-		msg: fmt.Sprintf("body larger than %d bytes", h.maxBody)}
+// bodyPool holds request body buffers, so that a request does not allocate
+// its body (several times over, growing, as io.ReadAll does).
+var bodyPool = sync.Pool{New: func() any { return new([]byte) }}
+
+// maxPooled is the largest buffer kept for reuse: notifications are a few
+// KB, and a rare large body should not stay pinned in the pool.
+const maxPooled = 256 << 10
+
+func putBody(buf *[]byte) {
+	if cap(*buf) > maxPooled {
+		return
+	}
+	*buf = (*buf)[:0]
+	bodyPool.Put(buf)
+}
+
+// readBody reads the body into *buf (growing it, and leaving the grown
+// buffer there for the pool). With a Content-Length it reads into one
+// buffer of that size, with a byte to spare for the end of the body.
+func (h *Handler) readBody(r *http.Request, buf *[]byte) ([]byte, error) {
+	tooBig := func() error {
+		return &requestError{status: http.StatusRequestEntityTooLarge, code: "too-costly",
+			msg: fmt.Sprintf("body larger than %d bytes", h.maxBody)}
+	}
 	if r.ContentLength > h.maxBody {
-		return nil, tooBig
+		return nil, tooBig()
 	}
 	if ce := r.Header.Get("Content-Encoding"); ce != "" && !strings.EqualFold(ce, "identity") {
 		return nil, &requestError{status: http.StatusUnsupportedMediaType, code: "not-supported",
@@ -265,12 +302,17 @@ func (h *Handler) readBody(r *http.Request) ([]byte, error) {
 	}
 	var body []byte
 	if r.Body != nil {
+		b := (*buf)[:0]
+		if want := int(r.ContentLength) + 1; r.ContentLength > 0 && cap(b) < want {
+			b = make([]byte, 0, want)
+		}
 		var err error
-		body, err = io.ReadAll(http.MaxBytesReader(nil, r.Body, h.maxBody))
-		if err != nil {
-			if _, ok := errors.AsType[*http.MaxBytesError](err); ok {
-				return nil, tooBig
-			}
+		body, err = readLimited(r.Body, b, h.maxBody)
+		*buf = body
+		switch {
+		case errors.Is(err, errTooBig):
+			return nil, tooBig()
+		case err != nil:
 			return nil, &requestError{status: http.StatusBadRequest, code: "incomplete", msg: "could not read the body"}
 		}
 	}
@@ -285,10 +327,40 @@ func (h *Handler) readBody(r *http.Request) ([]byte, error) {
 	return body, nil
 }
 
+var errTooBig = errors.New("body over the limit")
+
+// readLimited appends what rd holds to b, up to limit bytes; one byte more
+// is errTooBig, as http.MaxBytesReader would say.
+func readLimited(rd io.Reader, b []byte, limit int64) ([]byte, error) {
+	for {
+		if len(b) == cap(b) {
+			b = append(b, 0)[:len(b)]
+		}
+		room := b[len(b):cap(b)]
+		if left := limit + 1 - int64(len(b)); int64(len(room)) > left {
+			room = room[:left]
+		}
+		n, err := rd.Read(room)
+		b = b[:len(b)+n]
+		switch {
+		case int64(len(b)) > limit:
+			return b, errTooBig
+		case err == io.EOF:
+			return b, nil
+		case err != nil:
+			return b, err
+		}
+	}
+}
+
 // checkMediaType accepts FHIR JSON under its R4 name, plain JSON, and the
 // DSTU2 name application/json+fhir that older servers still send.
 func checkMediaType(ct string) error {
-	if ct == "" {
+	// The types servers send, spelled as they send them, pass without
+	// parsing (mime.ParseMediaType makes a map per call).
+	switch ct {
+	case "", "application/fhir+json", "application/json", "application/fhir+json; charset=utf-8",
+		"application/fhir+json;charset=utf-8", "application/json; charset=utf-8", "application/json+fhir":
 		return nil
 	}
 	unsupported := &requestError{status: http.StatusUnsupportedMediaType, code: "not-supported",
@@ -337,8 +409,7 @@ func classify(body []byte) (h head, empty bool, err error) {
 	}
 	var rt string
 	if raw, ok := m["resourceType"]; !ok || json.Unmarshal(raw, &rt) != nil || rt == "" {
-		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
-			msg: "body is not a FHIR resource: no resourceType"}
+		return head{}, false, errNoResourceType
 	}
 	h.ResourceType = &rt
 	if raw, ok := m["id"]; ok {
@@ -352,30 +423,76 @@ func classify(body []byte) (h head, empty bool, err error) {
 	return h, false, nil
 }
 
+// root takes what a server POSTs to the endpoint itself. The body is
+// parsed once, as a notification; what notify.Parse says of a body that is
+// not one tells the other cases apart as classify would have, and classify
+// itself runs only on a body that is not JSON, to word the answer.
 func (h *Handler) root(ctx context.Context, id string, body []byte) (result, error) {
 	res := result{mode: ModeRestHook}
 	src := Source{Mode: ModeRestHook, RequestID: id}
-	hd, empty, err := classify(body)
-	if err != nil {
-		return res, err
-	}
-	if empty {
+	t := bytes.TrimSpace(body)
+	if len(t) == 0 {
 		res.changed = true
 		return res, h.sink.Changed(ctx, src)
 	}
-	if *hd.ResourceType != "Bundle" {
-		// Some servers POST the changed resource itself to the endpoint.
-		return res, h.resources(ctx, src, &res, []json.RawMessage{bytes.TrimSpace(body)})
-	}
 	n, err := notify.Parse(body)
-	switch {
-	case err == nil:
+	if err == nil {
 		return h.notification(ctx, id, n)
-	case errors.Is(err, notify.ErrNotNotification):
-		return res, h.bundle(ctx, src, &res, body)
-	default:
-		return res, &requestError{status: http.StatusBadRequest, code: "invalid", msg: err.Error()}
 	}
+	invalid := &requestError{status: http.StatusBadRequest, code: "invalid", msg: err.Error()}
+	var ne *notify.Error
+	if !errors.As(err, &ne) {
+		return res, invalid
+	}
+	switch ne.Kind {
+	case notify.ErrNotNotification:
+		return res, h.bundle(ctx, src, &res, body)
+	case notify.ErrNotBundle:
+		switch {
+		case emptyObject(t):
+			res.changed = true
+			return res, h.sink.Changed(ctx, src)
+		case ne.ResourceType == "":
+			return res, errNoResourceType
+		}
+		// Some servers POST the changed resource itself to the endpoint.
+		return res, h.resources(ctx, src, &res, []json.RawMessage{t})
+	case notify.ErrNotJSON:
+		// Not JSON to notify.Parse; classify words the answer as before
+		// (and, for white space that only it trims, still takes the body).
+		hd, empty, cerr := classify(body)
+		switch {
+		case cerr != nil:
+			return res, cerr
+		case empty:
+			res.changed = true
+			return res, h.sink.Changed(ctx, src)
+		case *hd.ResourceType != "Bundle":
+			return res, h.resources(ctx, src, &res, []json.RawMessage{t})
+		}
+	}
+	return res, invalid
+}
+
+var errNoResourceType = &requestError{status: http.StatusBadRequest, code: "structure",
+	msg: "body is not a FHIR resource: no resourceType"}
+
+// emptyObject says whether t, valid JSON, is an object without members
+// ("{}"), which some servers send instead of an empty body.
+func emptyObject(t []byte) bool {
+	if len(t) < 2 || t[0] != '{' {
+		return false
+	}
+	for _, c := range t[1:] {
+		switch c {
+		case ' ', '\t', '\n', '\r':
+		case '}':
+			return true
+		default:
+			return false
+		}
+	}
+	return false
 }
 
 // notification stores a topic-based notification. The status is recorded

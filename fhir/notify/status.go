@@ -245,12 +245,14 @@ func (r *reader) valueScanner(i int32) jsonscan.Scanner {
 // refValue reads a Reference, or a bare string for servers that put the URL
 // in a valueUri, valueCanonical or valueString.
 func (r *reader) refValue(i int32) (string, error) {
-	switch key := string(r.nodes[i].key); key {
+	// No string of the key is made on the way to a value: it is needed
+	// only for an error.
+	switch string(r.nodes[i].key) {
 	case "valueReference":
 		var ref text
 		var te typeErr
 		s := r.valueScanner(i)
-		if err := readRef(&s, &ref, &te, key); err != nil || te.found() {
+		if err := readRef(&s, &ref, &te, "valueReference"); err != nil || te.found() {
 			return "", malformed(r.nodePath(i), "valueReference is not a Reference")
 		}
 		return ref.String(), nil
@@ -259,7 +261,7 @@ func (r *reader) refValue(i int32) (string, error) {
 	case "":
 		return "", nil
 	default:
-		return "", malformed(r.nodePath(i), key+" where a Reference was expected")
+		return "", malformed(r.nodePath(i), string(r.nodes[i].key)+" where a Reference was expected")
 	}
 }
 
@@ -351,11 +353,11 @@ func parseInstant(s string, path func() string) (time.Time, error) {
 }
 
 func (r *reader) conceptValue(i int32) (string, error) {
-	switch key := string(r.nodes[i].key); key {
+	switch string(r.nodes[i].key) {
 	case "valueCodeableConcept":
 		var te typeErr
 		s := r.valueScanner(i)
-		c, err := readConcept(&s, &te, key)
+		c, err := readConcept(&s, &te, "valueCodeableConcept")
 		if err != nil || te.found() {
 			return "", malformed(r.nodePath(i), "valueCodeableConcept is not a CodeableConcept")
 		}
@@ -365,7 +367,7 @@ func (r *reader) conceptValue(i int32) (string, error) {
 	case "":
 		return "", nil
 	default:
-		return "", malformed(r.nodePath(i), key+" where a CodeableConcept was expected")
+		return "", malformed(r.nodePath(i), string(r.nodes[i].key)+" where a CodeableConcept was expected")
 	}
 }
 
