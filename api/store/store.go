@@ -235,10 +235,11 @@ type Store interface {
 	// earlier version never revives a state that a correction (even one
 	// that moved the input to another patient) replaced.
 	PutInputs(ctx context.Context, inputs []Input, now time.Time) ([]PutResult, error)
-	// Inputs returns a patient's stored inputs, in Logical order.
+	// Inputs returns a patient's stored inputs in EffectiveAt order, those
+	// of one instant in Logical order: the order pairing reads them in.
 	Inputs(ctx context.Context, subject string) ([]Input, error)
 	// InputsFrom returns a patient's stored inputs whose EffectiveAt is at
-	// or after from, in Logical order: what an evaluation needs when a
+	// or after from, in the order of Inputs: what an evaluation needs when a
 	// change can affect results from a time on. (A body height is stored
 	// with its EffectiveAt a year after its measurement, so it is among
 	// them for as long as a derivation may use it.)

@@ -251,9 +251,8 @@ func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) 
 	return s.inputsFrom(ctx, "InputsFrom", subject, from)
 }
 
-// inputsFrom is Inputs and InputsFrom (every row when from is zero). The
-// rows come in time order and are returned in Logical order, as the
-// contract says; the sort costs what the range holds.
+// inputsFrom is Inputs and InputsFrom (every row when from is zero): the
+// rows' key order (time, then logical) is the contract's order.
 func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Time) ([]store.Input, error) {
 	var out []store.Input
 	err := s.view(ctx, op, func(tx *bolt.Tx) error {
@@ -262,21 +261,12 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 		if !from.IsZero() {
 			seek = appendTimeKey(bytes.Clone(prefix), from)
 		}
-		// Values stay valid until the transaction ends, so the rows are
-		// sorted before they are decoded and copied.
-		type row struct{ logical, v []byte }
-		var rows []row
 		c := tx.Bucket(bInputRows).Cursor()
 		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
 			if len(k) < len(prefix)+timeKeyLen {
 				return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
 			}
-			rows = append(rows, row{k[len(prefix)+timeKeyLen:], v})
-		}
-		slices.SortFunc(rows, func(a, b row) int { return bytes.Compare(a.logical, b.logical) })
-		out = make([]store.Input, 0, len(rows))
-		for _, r := range rows {
-			in, err := decodeInput(subject, string(r.logical), r.v)
+			in, err := decodeInput(subject, string(k[len(prefix)+timeKeyLen:]), v)
 			if err != nil {
 				return err
 			}
@@ -284,7 +274,7 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 		}
 		return nil
 	})
-	if err != nil || len(out) == 0 {
+	if err != nil {
 		return nil, err
 	}
 	return out, nil

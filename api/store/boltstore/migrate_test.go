@@ -2,6 +2,7 @@ package boltstore
 
 import (
 	"bytes"
+	"cmp"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -138,7 +139,9 @@ func checkMovedInputs(t *testing.T, s *Store, old []oldInput) {
 		bySubject[in.Subject] = append(bySubject[in.Subject], in.Input)
 	}
 	for subject, want := range bySubject {
-		slices.SortFunc(want, func(a, b store.Input) int { return strings.Compare(a.Logical, b.Logical) })
+		slices.SortFunc(want, func(a, b store.Input) int {
+			return cmp.Or(a.EffectiveAt.Compare(b.EffectiveAt), strings.Compare(a.Logical, b.Logical))
+		})
 		for _, from := range append([]time.Time{{}}, func() []time.Time {
 			var ts []time.Time
 			for _, in := range want {

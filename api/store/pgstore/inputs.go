@@ -182,7 +182,7 @@ func scanInput(row pgx.CollectableRow) (store.Input, error) {
 
 const inputColumns = `subject, logical, version_id, last_updated_ns, effective_ns, payload`
 
-// Inputs returns the patient's inputs in Logical order.
+// Inputs returns the patient's inputs in EffectiveAt, then Logical order.
 func (s *Store) Inputs(ctx context.Context, subject string) ([]store.Input, error) {
 	return s.queryInputs(ctx, "Inputs", `subject = $1`, subject)
 }
@@ -195,11 +195,12 @@ func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) 
 	return s.queryInputs(ctx, "InputsFrom", `subject = $1 AND effective_ns >= $2`, subject, nanos(from))
 }
 
-// queryInputs returns the inputs matching where, in Logical order.
+// queryInputs returns the inputs matching where, in EffectiveAt, then
+// Logical order.
 func (s *Store) queryInputs(ctx context.Context, op, where string, args ...any) ([]store.Input, error) {
 	var out []store.Input
 	err := s.run(ctx, op, func(q querier) error {
-		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE `+where+` ORDER BY logical`, args...)
+		rows, err := q.Query(ctx, `SELECT `+inputColumns+` FROM inputs WHERE `+where+` ORDER BY effective_ns, logical`, args...)
 		if err != nil {
 			return err
 		}

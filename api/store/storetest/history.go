@@ -1,9 +1,11 @@
 package storetest
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"slices"
+	"strings"
 	"testing"
 	"time"
 
@@ -255,7 +257,7 @@ func testEmptyCommit(t *testing.T, open func(t *testing.T) store.Store) {
 }
 
 // InputsFrom returns the patient's inputs effective at or after a time, in
-// Logical order, with what Inputs gives for each; a newer version that
+// EffectiveAt order, with what Inputs gives for each; a newer version that
 // moved an input's time moves it in or out of the range.
 func testInputsFrom(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
@@ -284,8 +286,8 @@ func testInputsFrom(t *testing.T, open func(t *testing.T) store.Store) {
 		from time.Time
 		want []string
 	}{
-		{"zero: every input", time.Time{}, []string{"Observation/a=a second before", "Observation/b=an hour after", "Observation/c=at", "Observation/d=an hour before"}},
-		{"at an input's time: included", t0, []string{"Observation/b=an hour after", "Observation/c=at"}},
+		{"zero: every input", time.Time{}, []string{"Observation/d=an hour before", "Observation/a=a second before", "Observation/c=at", "Observation/b=an hour after"}},
+		{"at an input's time: included", t0, []string{"Observation/c=at", "Observation/b=an hour after"}},
 		{"after the last", t0.Add(2 * time.Hour), nil},
 	} {
 		if got := list(tc.from); !slices.Equal(got, tc.want) {
@@ -345,6 +347,11 @@ func testInputsFromExactly(t *testing.T, open func(t *testing.T) store.Store) {
 		if len(all) == 0 {
 			t.Fatalf("%s: %s has no inputs", stage, subject)
 		}
+		if !slices.IsSortedFunc(all, func(a, b store.Input) int {
+			return cmp.Or(a.EffectiveAt.Compare(b.EffectiveAt), strings.Compare(a.Logical, b.Logical))
+		}) {
+			t.Errorf("%s: %s Inputs not in EffectiveAt, then Logical order: %v", stage, subject, all)
+		}
 		froms := []time.Time{{}}
 		for _, in := range all {
 			for _, d := range []time.Duration{-time.Nanosecond, 0, time.Nanosecond} {
@@ -368,7 +375,7 @@ func testInputsFromExactly(t *testing.T, open func(t *testing.T) store.Store) {
 				have = append(have, describe(in))
 			}
 			if !slices.Equal(have, want) {
-				t.Errorf("%s: %s InputsFrom(%v) =\n%v\nwant (Inputs with EffectiveAt ≥ from, in Logical order)\n%v", stage, subject, from, have, want)
+				t.Errorf("%s: %s InputsFrom(%v) =\n%v\nwant (Inputs with EffectiveAt ≥ from, in the same order)\n%v", stage, subject, from, have, want)
 			}
 		}
 	}
@@ -393,7 +400,7 @@ func testInputsFromExactly(t *testing.T, open func(t *testing.T) store.Store) {
 	for _, in := range got {
 		logical = append(logical, in.Logical)
 	}
-	if want := []string{"Observation/earlier", "Observation/height", "Observation/kept", "Observation/ns", "Observation/offset", "Observation/refiled", "Observation/same-a", "Observation/same-b"}; !slices.Equal(logical, want) {
+	if want := []string{"Observation/kept", "Observation/offset", "Observation/same-a", "Observation/same-b", "Observation/ns", "Observation/refiled", "Observation/earlier", "Observation/height"}; !slices.Equal(logical, want) {
 		t.Errorf("InputsFrom(an hour before) = %v, want %v", logical, want)
 	}
 

@@ -269,11 +269,15 @@ func testInputsOrder(t *testing.T, open func(t *testing.T) store.Store) {
 	// the other's inputs. (One logical reference names one resource,
 	// filed under one patient at a time: see
 	// testVersionOrderAcrossPatients.)
+	// The order is EffectiveAt's, then Logical's among inputs of one
+	// instant.
 	put(t, s, t0,
 		input("Patient/10", "Observation/a10", "1", t0, t0, "ten"),
 		input("Patient/1", "Observation/c", "1", t0, t0, "c"),
 		input("Patient/1", "Observation/a", "1", t0, t0, "a"),
+		input("Patient/1", "Observation/d", "1", t0, t0.Add(-time.Nanosecond), "d, earlier"),
 		input("Patient/1", "Observation/b", "1", t0, t0, "b"),
+		input("Patient/1", "Observation/0", "1", t0, t0.Add(time.Hour), "0, later"),
 		input("Patient/0", "Observation/z", "1", t0, t0, "zero"))
 	got, err := s.Inputs(t.Context(), "Patient/1")
 	must(t, err)
@@ -284,8 +288,8 @@ func testInputsOrder(t *testing.T, open func(t *testing.T) store.Store) {
 		}
 		logical = append(logical, in.Logical+"="+string(in.Payload))
 	}
-	if want := []string{"Observation/a=a", "Observation/b=b", "Observation/c=c"}; !slices.Equal(logical, want) {
-		t.Errorf("Inputs = %v, want %v (Logical order)", logical, want)
+	if want := []string{"Observation/d=d, earlier", "Observation/a=a", "Observation/b=b", "Observation/c=c", "Observation/0=0, later"}; !slices.Equal(logical, want) {
+		t.Errorf("Inputs = %v, want %v (EffectiveAt, then Logical order)", logical, want)
 	}
 	none, err := s.Inputs(t.Context(), "Patient/none")
 	must(t, err)
