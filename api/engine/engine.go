@@ -147,10 +147,14 @@ type Engine struct {
 	// evaluators is how many patients the evaluation loop evaluates at
 	// once.
 	evaluators int
-	// fallStates holds each patient's fall detector state as of its last
-	// committed evaluation (subject → *pipeline.FallState), over a store
-	// no other process writes.
+	// fallStates holds each patient's fall detector states as of its last
+	// committed evaluation (subject → []*pipeline.FallState, ascending),
+	// over a store no other process writes.
 	fallStates sync.Map
+	// evaluatedHere holds the patients evaluated and committed in this
+	// process (subject → struct{}): a patient's first evaluation derives
+	// every blood gas, whatever its dirty mark says (see evaluateLocked).
+	evaluatedHere sync.Map
 
 	pictures *pictures // what the derivations leave out, kept complete
 

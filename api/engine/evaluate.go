@@ -281,8 +281,14 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	// reaches, derive.Config.Reach); only the blood gases sampled from
 	// then are derived again, and older ones keep their ledger entries
 	// untouched. Heights and patient facts, which reach further, leave
-	// From zero.
+	// From zero. A patient's first evaluation in this process derives
+	// every blood gas: a mark written by an earlier build (before a
+	// restart, or by a replica not yet upgraded) gave the time of the
+	// input itself, not of the earliest blood gas it reaches.
 	gasesFrom := d.From
+	if _, ok := e.evaluatedHere.Load(d.Subject); !ok {
+		gasesFrom = time.Time{}
+	}
 	// The fall detector resumes from a state saved by an earlier
 	// evaluation when the change comes after it (a change can alter which
 	// source is preferred from one pairing window before); then only the
@@ -300,7 +306,8 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: recordedIn(ledger)}
+	ids := identities{}
+	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: ids.recorded(ledger)}
 	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
 		inc.SaveAt = e.fallSaveAt(latest, haveLatest, resume)
@@ -312,13 +319,14 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	change, err := e.diff(ctx, d, results, ledger, gasesFrom)
+	change, err := e.diff(ctx, d, results, ledger, gasesFrom, ids)
 	if err != nil {
 		return err
 	}
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
+	e.evaluatedHere.Store(d.Subject, struct{}{})
 	if len(saved) > 0 || resume != nil {
 		e.fallStates.Store(d.Subject, e.keptFallStates(previous, resume, saved, latest, haveLatest))
 	}
@@ -337,21 +345,40 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	return nil
 }
 
-// recordedIn reports whether every value of a derivation is in the
-// ledger as it is (diff leaves such values alone).
-func recordedIn(ledger []store.Entry) func(derive.Derivation) bool {
+// identities holds the values of the derivations of one evaluation with
+// their identities, by the blood gas's reference: computed once, for the
+// pipeline's question (recorded) and for diff.
+type identities map[string][]value
+
+// of returns r's values with their identities.
+func (ids identities) of(r pipeline.Result) ([]value, error) {
+	if r.Derivation != nil {
+		if vals, ok := ids[r.Derivation.Gas.Ref]; ok {
+			return vals, nil
+		}
+	}
+	vals, err := valuesOf(r)
+	if err == nil && r.Derivation != nil {
+		ids[r.Derivation.Gas.Ref] = vals
+	}
+	return vals, err
+}
+
+// recorded reports whether every value of a derivation is in the ledger
+// as it is (diff leaves such values alone).
+func (ids identities) recorded(ledger []store.Entry) func(derive.Derivation) bool {
 	bySeries := make(map[string]*store.Entry, len(ledger))
 	for i := range ledger {
 		bySeries[ledger[i].Series] = &ledger[i]
 	}
 	return func(d derive.Derivation) bool {
-		for _, v := range d.Values {
-			id, err := encode.ValueIdentity(d, v)
-			if err != nil {
-				return false
-			}
-			en, ok := bySeries[id.Series]
-			if !ok || en.Key != id.Key || en.Status == statusWithdrawn {
+		vals, err := ids.of(pipeline.Result{Derivation: &d})
+		if err != nil {
+			return false
+		}
+		for _, v := range vals {
+			en, ok := bySeries[v.id.Series]
+			if !ok || en.Key != v.id.Key || en.Status == statusWithdrawn {
 				return false
 			}
 		}
@@ -605,7 +632,7 @@ func valuesOf(r pipeline.Result) ([]value, error) {
 //
 // With gasesFrom set, results holds only the blood gases sampled from then
 // (and every fall): entries of earlier blood gases are left alone.
-func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time) (store.Change, error) {
+func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time, ids identities) (store.Change, error) {
 	now := e.now()
 	frozen := now.Add(-(e.cfg.Retention - e.cfg.Freeze))
 	bySeries := make(map[string]store.Entry, len(ledger))
@@ -615,7 +642,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 	change := store.Change{Subject: d.Subject, Generation: d.Generation, Expect: make(map[string]store.Expect)}
 	produced := make(map[string]bool)
 	for _, r := range results {
-		vals, err := valuesOf(r)
+		vals, err := ids.of(r)
 		if err != nil {
 			return store.Change{}, err
 		}
