@@ -374,6 +374,21 @@ func testResources(t *testing.T, m manifests) {
 	// below the container's limit, or the kernel kills before the collector
 	// reacts; near it, or memory is left unused.
 	lim := c.Resources.Limits[corev1.ResourceMemory]
+	// GOGC above the default (or off) lets the heap grow further between
+	// cycles; only GOMEMLIMIT then keeps it under the container's limit.
+	env := map[string]string{}
+	for _, e := range c.Env {
+		env[e.Name] = e.Value
+	}
+	if g, ok := env["GOGC"]; ok {
+		n, err := strconv.Atoi(g)
+		if (err != nil && g != "off") || (err == nil && (n < 100 || n > 800)) {
+			t.Errorf("GOGC %q: want off or 100 to 800", g)
+		}
+		if _, ok := env["GOMEMLIMIT"]; !ok && (g == "off" || n > 100) {
+			t.Errorf("GOGC %s without GOMEMLIMIT: nothing bounds the heap below the memory limit", g)
+		}
+	}
 	for _, e := range c.Env {
 		if e.Name != "GOMEMLIMIT" {
 			continue
