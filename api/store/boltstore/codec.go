@@ -1,6 +1,7 @@
 package boltstore
 
 import (
+	"bytes"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -204,24 +205,30 @@ func encodeInput(in store.Input) []byte {
 	return e.b
 }
 
+// splitInput reads an input record without copying: version and payload
+// are slices of v, valid while v is (inside its transaction).
+func splitInput(v []byte) (version []byte, lastUpdated, effectiveAt time.Time, payload []byte, err error) {
+	d := decoder{b: v}
+	version = d.bytes()
+	lastUpdated = d.time()
+	effectiveAt = d.time()
+	return version, lastUpdated, effectiveAt, d.b, d.done("input")
+}
+
 // decodeInputHead reads only what the version rule and the retention
 // index need, without copying the payload.
 func decodeInputHead(v []byte) (versionID string, lastUpdated, effectiveAt time.Time, err error) {
-	d := decoder{b: v}
-	versionID = d.str()
-	lastUpdated = d.time()
-	effectiveAt = d.time()
-	return versionID, lastUpdated, effectiveAt, d.done("input")
+	version, lastUpdated, effectiveAt, _, err := splitInput(v)
+	return string(version), lastUpdated, effectiveAt, err
 }
 
 func decodeInput(subject, logical string, v []byte) (store.Input, error) {
-	d := decoder{b: v}
-	in := store.Input{Subject: subject, Logical: logical}
-	in.VersionID = d.str()
-	in.LastUpdated = d.time()
-	in.EffectiveAt = d.time()
-	in.Payload = d.rest()
-	return in, d.done("input")
+	version, lastUpdated, effectiveAt, payload, err := splitInput(v)
+	in := store.Input{Subject: subject, Logical: logical, VersionID: string(version), LastUpdated: lastUpdated, EffectiveAt: effectiveAt}
+	if len(payload) > 0 {
+		in.Payload = bytes.Clone(payload)
+	}
+	return in, err
 }
 
 func encodePatient(p store.Patient) []byte {

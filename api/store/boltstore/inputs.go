@@ -262,15 +262,46 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 			seek = appendTimeKey(bytes.Clone(prefix), from)
 		}
 		c := tx.Bucket(bInputRows).Cursor()
+		// A first walk sizes the range, so that the inputs, their strings
+		// and their payloads take one allocation each rather than a few
+		// per input (an evaluation reads hundreds of them).
+		n, keyBytes, valueBytes := 0, 0, 0
 		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
 			if len(k) < len(prefix)+timeKeyLen {
 				return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
 			}
-			in, err := decodeInput(subject, string(k[len(prefix)+timeKeyLen:]), v)
+			n, keyBytes, valueBytes = n+1, keyBytes+len(k)-len(prefix)-timeKeyLen, valueBytes+len(v)
+		}
+		if n == 0 {
+			return nil
+		}
+		out = make([]store.Input, 0, n)
+		// Logical references and version ids go into one string,
+		// payloads into one byte slice; ends[i] are input i's ends of its
+		// logical reference and version id in the string.
+		names := make([]byte, 0, keyBytes+valueBytes)
+		payloads := make([]byte, 0, valueBytes)
+		ends := make([]int, 0, 2*n)
+		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
+			version, lastUpdated, effectiveAt, payload, err := splitInput(v)
 			if err != nil {
 				return err
 			}
+			in := store.Input{Subject: subject, LastUpdated: lastUpdated, EffectiveAt: effectiveAt}
+			names = append(names, k[len(prefix)+timeKeyLen:]...)
+			names = append(names, version...)
+			ends = append(ends, len(names)-len(version), len(names))
+			if len(payload) > 0 {
+				start := len(payloads)
+				payloads = append(payloads, payload...)
+				in.Payload = payloads[start:len(payloads):len(payloads)]
+			}
 			out = append(out, in)
+		}
+		all, start := string(names), 0
+		for i := range out {
+			out[i].Logical, out[i].VersionID = all[start:ends[2*i]], all[ends[2*i]:ends[2*i+1]]
+			start = ends[2*i+1]
 		}
 		return nil
 	})
