@@ -37,8 +37,8 @@ const (
 // committing anything, off the evaluation path: one patient at a time,
 // each stale patient once per round however many evaluations marked it,
 // a round when evaluations go quiet (or at the latest [pictureMaxLag]
-// after the first stale mark), and after each round a rest as long as the
-// round took.
+// after the first stale mark), and after each round a rest three times as
+// long as the round took.
 type pictures struct {
 	wake chan struct{}
 
@@ -97,9 +97,10 @@ func (e *Engine) pictureLoop(ctx context.Context) {
 			e.log.ErrorContext(ctx, "refreshing what the derivations leave out failed; it is retried", "err", err)
 			signal(e.pictures.wake)
 		}
-		// Rest at least as long as the round took, so under sustained load
-		// the refresher takes at most half of one core from evaluations.
-		if !sleep(ctx, time.Since(started)) {
+		// Rest three times as long as the round took, so under sustained
+		// load the refresher takes at most a quarter of one core from
+		// evaluations and the webhook.
+		if !sleep(ctx, 3*time.Since(started)) {
 			return
 		}
 	}
