@@ -66,9 +66,13 @@
 // the table; only Patients and Observations that pass are decoded. The
 // prefilter is exact: it gives the same [Item] as decoding every line.
 //
-// Observations are decoded with encoding/json into small structs (checked
-// against the samply R4 model in the tests), which match member names
+// Observations are decoded into small structs (checked against the samply
+// R4 model in the tests) by encoding/json's rules, which match member names
 // case-insensitively, unlike FHIR; resourceType itself is matched exactly.
+// A single pass of package jsonscan fills them in the plain case and hands
+// anything else (a name differing only in case, a duplicate member, a null
+// or a member of the wrong type) to encoding/json, so the result, error
+// details included, is always encoding/json's (fast.go).
 // A decimal written as a JSON string is refused (samply accepts it).
 package decode
 
@@ -177,6 +181,9 @@ type Decoder struct {
 	// noPrefilter makes every Observation take the full decode, so tests
 	// can compare the two paths.
 	noPrefilter bool
+	// noFastFill makes every Observation take encoding/json's fill, so
+	// tests can compare it with the fast fill (fast.go).
+	noFastFill bool
 }
 
 // New returns a Decoder. It panics if opts.Units fails [units.Options.Validate];
@@ -340,9 +347,14 @@ func (d *Decoder) lookup(c conceptJSON) (codes.Row, bool) {
 
 func (d *Decoder) observation(line []byte) Item {
 	var o observationJSON
-	// The line is valid JSON, so the only possible errors are members of the
-	// wrong type; encoding/json still fills the rest.
-	typeErr := json.Unmarshal(line, &o)
+	var typeErr error
+	if d.noFastFill || !fillObservation(line, &o) {
+		// Not the plain case the fast fill handles (see fast.go). The line
+		// is valid JSON, so the only possible errors are members of the
+		// wrong type; encoding/json still fills the rest.
+		o = observationJSON{}
+		typeErr = json.Unmarshal(line, &o)
+	}
 	row, ok := d.lookup(o.Code)
 	if !ok {
 		return Item{Type: ItemUnrelated, ResourceType: "Observation"}
