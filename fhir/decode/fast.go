@@ -53,25 +53,35 @@ var (
 func fillObservation(line []byte, o *observationJSON) bool {
 	var f fastFill
 	f.s.Reset(line)
+	// One allocation for the members nearly every Observation has, in place
+	// of one each; a duplicate member falls back, so each part is used once.
+	parts := new(struct {
+		meta               metaJSON
+		subject, encounter referenceJSON
+		quantity           quantityJSON
+		effective          string
+		coding             [1]codingJSON
+	})
 	return f.object(observationNames[:], func(i int) bool {
 		switch i {
 		case 0:
 			return f.str(&o.ID)
 		case 1:
-			o.Meta = new(metaJSON)
+			o.Meta = &parts.meta
 			return f.meta(o.Meta)
 		case 2:
 			return f.str(&o.Status)
 		case 3:
-			return f.concept(&o.Code)
+			return f.concept(&o.Code, parts.coding[:0:1])
 		case 4:
-			o.Subject = new(referenceJSON)
+			o.Subject = &parts.subject
 			return f.reference(o.Subject)
 		case 5:
-			o.Encounter = new(referenceJSON)
+			o.Encounter = &parts.encounter
 			return f.reference(o.Encounter)
 		case 6:
-			return f.strPtr(&o.EffectiveDateTime)
+			o.EffectiveDateTime = &parts.effective
+			return f.str(o.EffectiveDateTime)
 		case 7:
 			return f.strPtr(&o.EffectiveInstant)
 		case 8:
@@ -80,11 +90,11 @@ func fillObservation(line []byte, o *observationJSON) bool {
 		case 9:
 			return f.raw(&o.EffectiveTiming)
 		case 10:
-			o.ValueQuantity = new(quantityJSON)
+			o.ValueQuantity = &parts.quantity
 			return f.quantity(o.ValueQuantity)
 		case 11:
 			o.DataAbsentReason = new(conceptJSON)
-			return f.concept(o.DataAbsentReason)
+			return f.concept(o.DataAbsentReason, nil)
 		case 12:
 			return f.components(&o.Component)
 		case 13:
@@ -226,13 +236,18 @@ func (f *fastFill) meta(m *metaJSON) bool {
 	})
 }
 
-func (f *fastFill) concept(c *conceptJSON) bool {
+// concept reads a CodeableConcept, appending its codings to buf (which may
+// be nil).
+func (f *fastFill) concept(c *conceptJSON, buf []codingJSON) bool {
 	return f.object(conceptNames[:], func(i int) bool {
 		if i == 1 {
 			return f.str(&c.Text)
 		}
 		// encoding/json makes an empty array an empty, non-nil slice.
-		c.Coding = []codingJSON{}
+		c.Coding = buf
+		if c.Coding == nil {
+			c.Coding = []codingJSON{}
+		}
 		return f.array(func() bool {
 			c.Coding = append(c.Coding, codingJSON{})
 			cd := &c.Coding[len(c.Coding)-1]
@@ -306,13 +321,13 @@ func (f *fastFill) components(dst *[]componentJSON) bool {
 		return f.object(componentNames[:], func(i int) bool {
 			switch i {
 			case 0:
-				return f.concept(&c.Code)
+				return f.concept(&c.Code, nil)
 			case 1:
 				c.ValueQuantity = new(quantityJSON)
 				return f.quantity(c.ValueQuantity)
 			}
 			c.DataAbsentReason = new(conceptJSON)
-			return f.concept(c.DataAbsentReason)
+			return f.concept(c.DataAbsentReason, nil)
 		})
 	})
 }
