@@ -19,6 +19,7 @@ import (
 	"sync"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/fhir/jsonscan"
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
 	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
@@ -387,38 +388,87 @@ type head struct {
 
 // classify reads the body's resourceType and id. empty is true for a
 // blank body and for "{}", which some servers send instead of nothing.
-// One decoding of the body into its members both checks the JSON and
-// finds the two.
+// One pass over the body (fhir/jsonscan) both checks the JSON and finds
+// the two, without decoding the other members. Members are matched by
+// exact name, the last of a repeated name counting, as encoding/json's
+// decoding into a map did before.
 func classify(body []byte) (h head, empty bool, err error) {
 	t := bytes.TrimSpace(body)
 	if len(t) == 0 {
 		return head{}, true, nil
 	}
-	var m map[string]json.RawMessage
-	if err := json.Unmarshal(t, &m); err != nil {
-		if _, ok := errors.AsType[*json.SyntaxError](err); ok {
-			return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not valid JSON"}
+	var s jsonscan.Scanner
+	s.Reset(t)
+	if s.Peek() != jsonscan.Object {
+		if _, err := s.Skip(); err != nil || s.End() != nil {
+			return head{}, false, errNotJSON
 		}
-		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
+		return head{}, false, errNotObject
 	}
-	if t[0] != '{' {
-		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
+	type member struct {
+		kind jsonscan.Kind
+		text []byte
+		raw  bool
 	}
-	if len(m) == 0 {
+	var rt, id member
+	members := 0
+	read := func(m *member) error {
+		*m = member{kind: s.Peek()}
+		if m.kind == jsonscan.String {
+			var err error
+			m.text, m.raw, err = s.Str()
+			return err
+		}
+		_, err := s.Skip()
+		return err
+	}
+	if err := s.Object(); err != nil {
+		return head{}, false, errNotJSON
+	}
+	for first := true; ; first = false {
+		name, more, err := s.Member(first)
+		if err != nil {
+			return head{}, false, errNotJSON
+		}
+		if !more {
+			break
+		}
+		members++
+		switch string(name) {
+		case "resourceType":
+			err = read(&rt)
+		case "id":
+			err = read(&id)
+		default:
+			_, err = s.Skip()
+		}
+		if err != nil {
+			return head{}, false, errNotJSON
+		}
+	}
+	if s.End() != nil {
+		return head{}, false, errNotJSON
+	}
+	if members == 0 {
 		return head{}, true, nil
 	}
-	var rt string
-	if raw, ok := m["resourceType"]; !ok || json.Unmarshal(raw, &rt) != nil || rt == "" {
+	// A null resourceType or id decoded as an empty string.
+	if rt.kind != jsonscan.String || len(rt.text) == 0 {
 		return head{}, false, errNoResourceType
 	}
-	h.ResourceType = &rt
-	if raw, ok := m["id"]; ok {
-		var id string
-		if json.Unmarshal(raw, &id) != nil {
-			return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
-				msg: "body is not a FHIR resource: id is not a string"}
-		}
-		h.ID = &id
+	rts := jsonscan.Unquote(rt.text, rt.raw)
+	h.ResourceType = &rts
+	switch id.kind {
+	case jsonscan.Invalid:
+	case jsonscan.Null:
+		ids := ""
+		h.ID = &ids
+	case jsonscan.String:
+		ids := jsonscan.Unquote(id.text, id.raw)
+		h.ID = &ids
+	default:
+		return head{}, false, &requestError{status: http.StatusBadRequest, code: "structure",
+			msg: "body is not a FHIR resource: id is not a string"}
 	}
 	return h, false, nil
 }
@@ -473,6 +523,10 @@ func (h *Handler) root(ctx context.Context, id string, body []byte) (result, err
 	}
 	return res, invalid
 }
+
+var errNotJSON = &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not valid JSON"}
+
+var errNotObject = &requestError{status: http.StatusBadRequest, code: "structure", msg: "body is not a JSON object"}
 
 var errNoResourceType = &requestError{status: http.StatusBadRequest, code: "structure",
 	msg: "body is not a FHIR resource: no resourceType"}
