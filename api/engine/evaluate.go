@@ -400,8 +400,9 @@ func codeOf(en store.Entry) derive.Code {
 	return p.Code
 }
 
-// fallSaveLag is how far before a patient's latest end-tidal reading the
-// fall detector's longer-lived state is saved for later evaluations: a
+// fallSaveLag is at least how far before a patient's latest end-tidal
+// reading the fall detector's longer-lived state is saved for later
+// evaluations (fallSaveLags adds the widest reach of any kind): a
 // change dated later than that (less a pairing window) resumes from it. An
 // hour covers readings that arrive late and blood gases that come back
 // from the laboratory within the hour; an earlier change runs the detector
@@ -411,13 +412,14 @@ func codeOf(en store.Entry) derive.Code {
 const fallSaveLag = time.Hour
 
 // fallSaveLags are the lags the detector's states are saved at, longest
-// first (so the times are ascending).
+// first (so the times are ascending). The longer one is at least an hour
+// and covers the widest reach of any kind beyond that: a dirty mark gives
+// the earliest blood gas a change reaches (a correction, or a temperature,
+// an hour back), and the detector may resume only from a window before
+// it, so a correction at the end of the series still resumes.
 func (e *Engine) fallSaveLags() []time.Duration {
-	short := 3 * e.cfg.Derive.Window
-	if short >= fallSaveLag {
-		return []time.Duration{short}
-	}
-	return []time.Duration{fallSaveLag, short}
+	long := max(fallSaveLag, e.cfg.Derive.MaxReach()) + 3*e.cfg.Derive.Window
+	return []time.Duration{long, 3 * e.cfg.Derive.Window}
 }
 
 // keepsFallState reports whether the engine may keep the fall detector's
@@ -449,7 +451,7 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 			pick = st
 		}
 	}
-	if pick != nil && len(states) > 1 && pick != states[0] && pick.At.Sub(states[0].At) > 2*fallSaveLag {
+	if pick != nil && len(states) > 1 && pick != states[0] && pick.At.Sub(states[0].At) > 2*e.fallSaveLags()[0] {
 		pick = states[0]
 	}
 	return pick
