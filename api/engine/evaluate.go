@@ -11,6 +11,7 @@ import (
 	"math"
 	"runtime"
 	"slices"
+	"strings"
 	"sync"
 	"time"
 
@@ -294,13 +295,17 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	// source is preferred from one pairing window before); then only the
 	// inputs those gases and the detector need are read.
 	resume := e.fallState(d, gasesFrom)
-	inputs, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, resume)
+	inputs, derivesGas, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, resume)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	facts, err := e.patientFacts(ctx, d.Subject)
-	if err != nil {
-		return err
+	// The patient's facts are read only for a derivation: the detector
+	// does not use them.
+	var facts derive.Patient
+	if derivesGas {
+		if facts, err = e.patientFacts(ctx, d.Subject); err != nil {
+			return err
+		}
 	}
 	ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
 	if err != nil {
@@ -532,20 +537,29 @@ func (e *Engine) keptFallStates(previous any, resume *pipeline.FallState, saved 
 }
 
 // loadEvaluationInputs reads what an evaluation of the blood gases
-// sampled from gasesFrom on, with the detector resumed from resume, needs:
-// every input when the detector runs whole; otherwise the inputs from
-// gasesFrom (or the pairing window before the resumed state) on, and, when
-// a blood gas is among them, from the start of the earliest one's
-// dependency span (an hour for its temperature). A new device reading
-// far from any blood gas thus reads minutes of data, not hours.
-func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gasesFrom time.Time, resume *pipeline.FallState) ([]pipeline.Input, error) {
+// sampled from gasesFrom on, with the detector resumed from resume, needs,
+// and says whether a blood gas is among what it derives (then it needs the
+// patient's facts): every input when the detector runs whole; otherwise
+// the inputs from gasesFrom (or the pairing window before the resumed
+// state) on, and, when a blood gas is among them, from the start of the
+// earliest one's dependency span (an hour for its temperature). A new
+// device reading far from any blood gas thus reads minutes of data, not
+// hours, and of those only the end-tidal readings the detector reads
+// (pipeline.DetectorKind).
+func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gasesFrom time.Time, resume *pipeline.FallState) ([]pipeline.Input, bool, error) {
 	if resume == nil {
-		return e.loadInputs(ctx, subject)
+		inputs, err := e.loadInputs(ctx, subject)
+		return inputs, true, err
 	}
 	readFrom := store.Earliest(gasesFrom, resume.At.Add(-e.cfg.Derive.Window))
-	inputs, err := e.loadInputsFrom(ctx, subject, readFrom)
+	inc := pipeline.Incremental{GasesFrom: gasesFrom}
+	inputs, err := e.loadDetectorInputs(ctx, subject, readFrom, inc)
+	if !errors.Is(err, errDerivesGas) {
+		return inputs, false, err
+	}
+	inputs, err = e.loadInputsFrom(ctx, subject, readFrom)
 	if err != nil {
-		return nil, err
+		return nil, false, err
 	}
 	earliest := int64(math.MaxInt64)
 	for _, in := range inputs {
@@ -554,13 +568,68 @@ func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases
 		}
 	}
 	if earliest == math.MaxInt64 {
-		return inputs, nil
+		return inputs, true, nil
 	}
 	spanFrom, _ := e.cfg.Derive.DependencySpan(time.UnixMilli(earliest).UTC())
 	if !spanFrom.Before(readFrom) {
-		return inputs, nil
+		return inputs, true, nil
 	}
-	return e.loadInputsFrom(ctx, subject, spanFrom)
+	inputs, err = e.loadInputsFrom(ctx, subject, spanFrom)
+	return inputs, true, err
+}
+
+// errDerivesGas stops loadDetectorInputs: a blood gas the evaluation
+// derives is among the inputs, and every kind is needed.
+var errDerivesGas = errors.New("a blood gas to derive is among the inputs")
+
+// loadDetectorInputs returns the patient's stored readings of the
+// detector's kind effective from from on, or errDerivesGas as soon as a
+// blood gas an evaluation with inc derives is among the inputs: an
+// evaluation that derives none gives the detector's findings alone, which
+// depend on nothing else (pipeline.Incremental). The other inputs' heads
+// are checked, as loadInputsFrom checks them, but nothing of them is kept.
+func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from time.Time, inc pipeline.Incremental) ([]pipeline.Input, error) {
+	var inputs []pipeline.Input
+	var hr headReader
+	err := e.scanInputs(ctx, subject, from, func(row store.InputRow) error {
+		l, err := parseHead(row.Payload)
+		if err != nil {
+			return fmt.Errorf("stored input %s: %w", row.Logical, err)
+		}
+		if headItemType(row.Payload) != decode.ItemReading {
+			return nil // a version that withdraws or invalidates an earlier one
+		}
+		at, detected := headAtMillis(row.Payload), false
+		for i := -1; i < l.nAlso; i++ {
+			k := headKind(row.Payload)
+			if i >= 0 {
+				k = l.alsoKind(row.Payload, i)
+			}
+			if inc.Derives(derive.Reading{Kind: k, AtMillis: at}) {
+				return errDerivesGas
+			}
+			detected = detected || k == pipeline.DetectorKind
+		}
+		if !detected {
+			return nil
+		}
+		h, _, err := hr.decode(row.Payload, func() string { return versionedRef(row.Logical, row.VersionID) })
+		if err != nil {
+			return fmt.Errorf("stored input %s: %w", row.Logical, err)
+		}
+		if h.Reading.Kind == pipeline.DetectorKind {
+			inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+		}
+		for _, a := range h.Also {
+			if a.Kind == pipeline.DetectorKind {
+				p := a.Priority
+				a.Priority = 0
+				inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
+			}
+		}
+		return nil
+	})
+	return inputs, err
 }
 
 // loadInputs returns a patient's stored readings as pairing takes them.
@@ -573,6 +642,38 @@ func (e *Engine) loadInputs(ctx context.Context, subject string) ([]pipeline.Inp
 // decoded; the rest of the stored item (original value, conversion) is for
 // explanations.
 func (e *Engine) loadInputsFrom(ctx context.Context, subject string, from time.Time) ([]pipeline.Input, error) {
+	var inputs []pipeline.Input
+	var hr headReader
+	err := e.scanInputs(ctx, subject, from, func(row store.InputRow) error {
+		h, _, err := hr.decode(row.Payload, func() string { return versionedRef(row.Logical, row.VersionID) })
+		if err != nil {
+			return fmt.Errorf("stored input %s: %w", row.Logical, err)
+		}
+		if h.Type != decode.ItemReading {
+			return nil // a version that withdraws or invalidates an earlier one
+		}
+		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+		for _, a := range h.Also {
+			p := a.Priority
+			a.Priority = 0
+			inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return inputs, nil
+}
+
+// scanInputs calls fn with each of the patient's stored inputs effective
+// from from on (every one when from is zero), in the store's order: in
+// place over a store that can show them so (store.InputScanner), which
+// copies nothing, otherwise as InputsFrom returns them.
+func (e *Engine) scanInputs(ctx context.Context, subject string, from time.Time, fn func(store.InputRow) error) error {
+	if sc, ok := e.cfg.Store.(store.InputScanner); ok {
+		return sc.ScanInputsFrom(ctx, subject, from, fn)
+	}
 	var stored []store.Input
 	var err error
 	if from.IsZero() {
@@ -581,25 +682,28 @@ func (e *Engine) loadInputsFrom(ctx context.Context, subject string, from time.T
 		stored, err = e.cfg.Store.InputsFrom(ctx, subject, from)
 	}
 	if err != nil {
-		return nil, err
+		return err
 	}
-	inputs := make([]pipeline.Input, 0, len(stored))
 	for _, in := range stored {
-		h, _, err := decodeHead(in.Payload, in.Logical, in.VersionID)
-		if err != nil {
-			return nil, fmt.Errorf("stored input %s: %w", in.Logical, err)
-		}
-		if h.Type != decode.ItemReading {
-			continue // a version that withdraws or invalidates an earlier one
-		}
-		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
-		for _, a := range h.Also {
-			p := a.Priority
-			a.Priority = 0
-			inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
+		if err := fn(store.InputRow{Logical: []byte(in.Logical), VersionID: []byte(in.VersionID), Payload: in.Payload}); err != nil {
+			return err
 		}
 	}
-	return inputs, nil
+	return nil
+}
+
+// versionedRef is fhirref.Versioned of a stored row's logical reference
+// and version, built in one allocation.
+func versionedRef(logical, version []byte) string {
+	if len(version) == 0 {
+		return string(logical)
+	}
+	var b strings.Builder
+	b.Grow(len(logical) + len("/_history/") + len(version))
+	b.Write(logical)
+	b.WriteString("/_history/")
+	b.Write(version)
+	return b.String()
 }
 
 // value is one derived value of a result with its identity.

@@ -21,7 +21,8 @@ import (
 )
 
 // rangeCounting counts the evaluations (commits) and the reads of a range
-// of inputs, which only an evaluation that resumed the fall detector makes.
+// of inputs (copied or scanned in place), which only an evaluation that
+// resumed the fall detector makes.
 type rangeCounting struct {
 	*boltstore.Store
 	ranged, commits atomic.Int64
@@ -30,6 +31,13 @@ type rangeCounting struct {
 func (r *rangeCounting) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
 	r.ranged.Add(1)
 	return r.Store.InputsFrom(ctx, subject, from)
+}
+
+func (r *rangeCounting) ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(store.InputRow) error) error {
+	if !from.IsZero() {
+		r.ranged.Add(1)
+	}
+	return r.Store.ScanInputsFrom(ctx, subject, from, fn)
 }
 
 func (r *rangeCounting) Commit(ctx context.Context, c store.Change, now time.Time) error {

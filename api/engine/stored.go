@@ -96,54 +96,102 @@ type storedHead struct {
 // follows. logical and version are the store's record of the input, which
 // give the reference when the payload leaves it out.
 func decodeHead(p []byte, logical, version string) (storedHead, int, error) {
+	var r headReader
+	return r.decode(p, func() string { return fhirref.Versioned(logical, version) })
+}
+
+// headLayout is where the parts of a stored input's head lie.
+type headLayout struct {
+	ref, encounter [2]int // start and end offsets
+	also           int    // offset of the first other reading
+	nAlso          int
+	end            int // offset of what follows the head
+}
+
+// parseHead checks the head's layout and finds its parts, without
+// allocating: decodeHead fails exactly when it does.
+func parseHead(p []byte) (headLayout, error) {
 	if len(p) < 23 || p[0] < 1 || p[0] > storedVersion {
-		return storedHead{}, 0, errStoredPayload
+		return headLayout{}, errStoredPayload
 	}
-	h := storedHead{Type: decode.ItemType(p[1]), Priority: int(int16(binary.LittleEndian.Uint16(p[3:5])))}
-	h.Reading.Kind = derive.Kind(p[2])
-	h.Reading.AtMillis = int64(binary.LittleEndian.Uint64(p[5:13]))
-	h.Reading.Value = math.Float64frombits(binary.LittleEndian.Uint64(p[13:21]))
+	var l headLayout
 	off := 21
-	str := func() (string, bool) {
+	for _, part := range []*[2]int{&l.ref, &l.encounter} {
 		if len(p) < off+2 {
-			return "", false
+			return headLayout{}, errStoredPayload
 		}
 		n := int(binary.LittleEndian.Uint16(p[off : off+2]))
 		off += 2
 		if len(p) < off+n {
-			return "", false
+			return headLayout{}, errStoredPayload
 		}
-		s := string(p[off : off+n])
+		*part = [2]int{off, off + n}
 		off += n
-		return s, true
-	}
-	var ok bool
-	if h.Reading.Ref, ok = str(); !ok {
-		return storedHead{}, 0, errStoredPayload
-	}
-	if h.Reading.Encounter, ok = str(); !ok {
-		return storedHead{}, 0, errStoredPayload
-	}
-	if h.Reading.Ref == "" {
-		h.Reading.Ref = fhirref.Versioned(logical, version)
 	}
 	if p[0] >= 3 {
 		if len(p) < off+1 {
-			return storedHead{}, 0, errStoredPayload
+			return headLayout{}, errStoredPayload
 		}
-		n := int(p[off])
+		l.nAlso = int(p[off])
 		off++
-		if len(p) < off+11*n {
-			return storedHead{}, 0, errStoredPayload
-		}
-		for range n {
-			h.Also = append(h.Also, derive.Reading{Ref: h.Reading.Ref, Encounter: h.Reading.Encounter, AtMillis: h.Reading.AtMillis,
-				Kind: derive.Kind(p[off]), Priority: int16(binary.LittleEndian.Uint16(p[off+1 : off+3])),
-				Value: math.Float64frombits(binary.LittleEndian.Uint64(p[off+3 : off+11]))})
-			off += 11
+		if len(p) < off+11*l.nAlso {
+			return headLayout{}, errStoredPayload
 		}
 	}
-	return h, off, nil
+	l.also = off
+	l.end = off + 11*l.nAlso
+	return l, nil
+}
+
+// headKind is the kind of a stored input's own reading.
+func headKind(p []byte) derive.Kind { return derive.Kind(p[2]) }
+
+// headItemType is a stored input's item type.
+func headItemType(p []byte) decode.ItemType { return decode.ItemType(p[1]) }
+
+// headAtMillis is a stored input's time, which its other readings share.
+func headAtMillis(p []byte) int64 { return int64(binary.LittleEndian.Uint64(p[5:13])) }
+
+// alsoKind is the kind of the i-th other reading of a head laid out as l.
+func (l headLayout) alsoKind(p []byte, i int) derive.Kind { return derive.Kind(p[l.also+11*i]) }
+
+// headReader decodes stored inputs' heads. Consecutive inputs of one
+// encounter share its string.
+type headReader struct {
+	encounter string
+}
+
+// decode is decodeHead; ownRef gives the input's versioned reference when
+// the payload leaves it out.
+func (hr *headReader) decode(p []byte, ownRef func() string) (storedHead, int, error) {
+	l, err := parseHead(p)
+	if err != nil {
+		return storedHead{}, 0, err
+	}
+	h := storedHead{Type: headItemType(p), Priority: int(int16(binary.LittleEndian.Uint16(p[3:5])))}
+	h.Reading.Kind = headKind(p)
+	h.Reading.AtMillis = headAtMillis(p)
+	h.Reading.Value = math.Float64frombits(binary.LittleEndian.Uint64(p[13:21]))
+	h.Reading.Ref = string(p[l.ref[0]:l.ref[1]])
+	if enc := p[l.encounter[0]:l.encounter[1]]; string(enc) == hr.encounter {
+		h.Reading.Encounter = hr.encounter
+	} else {
+		h.Reading.Encounter = string(enc)
+		hr.encounter = h.Reading.Encounter
+	}
+	if h.Reading.Ref == "" {
+		h.Reading.Ref = ownRef()
+	}
+	if l.nAlso > 0 {
+		h.Also = make([]derive.Reading, 0, l.nAlso)
+	}
+	for i := range l.nAlso {
+		off := l.also + 11*i
+		h.Also = append(h.Also, derive.Reading{Ref: h.Reading.Ref, Encounter: h.Reading.Encounter, AtMillis: h.Reading.AtMillis,
+			Kind: derive.Kind(p[off]), Priority: int16(binary.LittleEndian.Uint16(p[off+1 : off+3])),
+			Value: math.Float64frombits(binary.LittleEndian.Uint64(p[off+3 : off+11]))})
+	}
+	return h, l.end, nil
 }
 
 // decodeStored reads a whole stored input, for explanations.

@@ -102,12 +102,25 @@ type Incremental struct {
 	Recorded func(derive.Derivation) bool
 }
 
+// DetectorKind is the kind of reading the fall and rise detector reads.
+// When no input is a blood gas the evaluation derives ([Incremental.Derives]),
+// its results are the detector's findings alone, which depend on the
+// readings of this kind only: a caller may then give it only those (the
+// omissions are then incomplete, as they are for any evaluation from a
+// GasesFrom).
+const DetectorKind = derive.KindEtCO2
+
+// Derives reports whether an evaluation derives r: a blood gas sampled at
+// or after GasesFrom (any one when it is zero).
+func (inc Incremental) Derives(r derive.Reading) bool {
+	return r.Kind == derive.KindPaCO2 && (inc.GasesFrom.IsZero() || !r.At().Before(inc.GasesFrom))
+}
+
 // EvaluateIncremental is [EvaluateFrom] that can resume the fall detector
 // from a saved state and save it again; see [Incremental]. The omissions
 // are incomplete unless it derives every blood gas and runs the detector
 // over the whole series.
 func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, []*FallState, error) {
-	gasesFrom := inc.GasesFrom
 	var omitted []derive.Omission
 	gases := make([]derive.Reading, 0, 4)
 	readings := make([]derive.Reading, 0, len(inputs))
@@ -119,7 +132,7 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 		switch r.Kind {
 		case derive.KindPaCO2:
 			gases = append(gases, r)
-		case derive.KindEtCO2:
+		case DetectorKind:
 			etco2 = append(etco2, r)
 			readings = append(readings, r)
 		default:
@@ -144,7 +157,7 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 	why := make(map[string]derive.Omission)
 	var results []Result
 	for _, gas := range gases {
-		if !gasesFrom.IsZero() && gas.At().Before(gasesFrom) {
+		if !inc.Derives(gas) {
 			continue
 		}
 		d := derive.Derive(cfg, gas, facts, readings)

@@ -223,6 +223,26 @@ type Exclusive interface {
 	Exclusive() bool
 }
 
+// InputScanner is implemented by a store that can show a patient's
+// stored inputs one at a time where they lie, without copying them (the
+// embedded store, from its memory map). An evaluation reads every input in
+// its span and keeps a few fields of some of them; a store without it is
+// read through [Store.InputsFrom].
+type InputScanner interface {
+	// ScanInputsFrom calls fn with each of subject's stored inputs whose
+	// EffectiveAt is at or after from (every one when from is zero), in the
+	// order of [Store.InputsFrom], and stops at the first error fn returns,
+	// which it returns wrapped. The row's slices are valid only during the
+	// call, and fn must not call the store.
+	ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(InputRow) error) error
+}
+
+// InputRow is a stored input as [InputScanner] shows it: the fields an
+// evaluation reads, as slices of the store's own bytes.
+type InputRow struct {
+	Logical, VersionID, Payload []byte
+}
+
 // Store is the service's durable state. Implementations are safe for
 // concurrent use.
 type Store interface {

@@ -188,6 +188,32 @@ func (d *decoder) time() time.Time {
 	return t.In(time.FixedZone("", int(off)))
 }
 
+// skipTime passes over a time as time reads it, failing where time fails,
+// without making a time.Time (a fixed zone would be allocated).
+func (d *decoder) skipTime() {
+	if len(d.b) == 0 {
+		d.fail()
+		return
+	}
+	kind := d.b[0]
+	d.b = d.b[1:]
+	switch kind {
+	case timeZero:
+		return
+	case timeUTC:
+	case timeFixed:
+		if off := d.varint(); off < -86400 || off > 86400 {
+			d.fail()
+		}
+	default:
+		d.fail()
+	}
+	d.varint()
+	if nsec := d.uvarint(); d.err == nil && nsec >= 1e9 {
+		d.fail()
+	}
+}
+
 func (d *decoder) done(what string) error {
 	if d.err != nil {
 		return fmt.Errorf("%s: %w: %w", what, ErrCorrupt, d.err)
@@ -213,6 +239,16 @@ func splitInput(v []byte) (version []byte, lastUpdated, effectiveAt time.Time, p
 	lastUpdated = d.time()
 	effectiveAt = d.time()
 	return version, lastUpdated, effectiveAt, d.b, d.done("input")
+}
+
+// splitInputPayload is splitInput without decoding the times (they are
+// checked as splitInput checks them).
+func splitInputPayload(v []byte) (version, payload []byte, err error) {
+	d := decoder{b: v}
+	version = d.bytes()
+	d.skipTime()
+	d.skipTime()
+	return version, d.b, d.done("input")
 }
 
 // decodeInputHead reads only what the version rule and the retention

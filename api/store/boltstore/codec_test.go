@@ -83,6 +83,13 @@ func FuzzDecode(f *testing.F) {
 	f.Fuzz(func(t *testing.T, b []byte) {
 		_, _ = decodeInput("s", "l", b)
 		_, _, _, _ = decodeInputHead(b)
+		// The scan's split checks what splitInput checks and returns the
+		// same version and payload.
+		version, _, _, payload, err := splitInput(b)
+		v2, p2, err2 := splitInputPayload(b)
+		if (err == nil) != (err2 == nil) || err == nil && (!bytes.Equal(version, v2) || !bytes.Equal(payload, p2)) {
+			t.Errorf("splitInputPayload = %q, %q, %v; splitInput %q, %q, %v", v2, p2, err2, version, payload, err)
+		}
 		_, _ = decodePatient("s", b)
 		_, _ = decodeDirty("s", b)
 		_, _ = decodeEntry("s", b)

@@ -256,39 +256,27 @@ func (s *Store) InputsFrom(ctx context.Context, subject string, from time.Time) 
 func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Time) ([]store.Input, error) {
 	var out []store.Input
 	err := s.view(ctx, op, func(tx *bolt.Tx) error {
-		prefix := subjectPrefix(subject)
-		seek := prefix
-		if !from.IsZero() {
-			seek = appendTimeKey(bytes.Clone(prefix), from)
-		}
-		c := tx.Bucket(bInputRows).Cursor()
 		// A first walk sizes the range, so that the inputs, their strings
 		// and their payloads take one allocation each rather than a few
 		// per input (an evaluation reads hundreds of them).
-		n, keyBytes, valueBytes := 0, 0, 0
-		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
-			if len(k) < len(prefix)+timeKeyLen {
-				return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
-			}
-			n, keyBytes, valueBytes = n+1, keyBytes+len(k)-len(prefix)-timeKeyLen, valueBytes+len(v)
-		}
-		if n == 0 {
+		n, nameBytes, payloadBytes := 0, 0, 0
+		err := eachInputRow(tx, subject, from, func(logical, version, payload []byte) error {
+			n, nameBytes, payloadBytes = n+1, nameBytes+len(logical)+len(version), payloadBytes+len(payload)
 			return nil
+		})
+		if err != nil || n == 0 {
+			return err
 		}
 		out = make([]store.Input, 0, n)
 		// Logical references and version ids go into one string,
 		// payloads into one byte slice; ends[i] are input i's ends of its
 		// logical reference and version id in the string.
-		names := make([]byte, 0, keyBytes+valueBytes)
-		payloads := make([]byte, 0, valueBytes)
+		names := make([]byte, 0, nameBytes)
+		payloads := make([]byte, 0, payloadBytes)
 		ends := make([]int, 0, 2*n)
-		for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
-			version, lastUpdated, effectiveAt, payload, err := splitInput(v)
-			if err != nil {
-				return err
-			}
+		err = eachInputRowTimed(tx, subject, from, func(logical, version []byte, lastUpdated, effectiveAt time.Time, payload []byte) error {
 			in := store.Input{Subject: subject, LastUpdated: lastUpdated, EffectiveAt: effectiveAt}
-			names = append(names, k[len(prefix)+timeKeyLen:]...)
+			names = append(names, logical...)
 			names = append(names, version...)
 			ends = append(ends, len(names)-len(version), len(names))
 			if len(payload) > 0 {
@@ -297,6 +285,10 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 				in.Payload = payloads[start:len(payloads):len(payloads)]
 			}
 			out = append(out, in)
+			return nil
+		})
+		if err != nil {
+			return err
 		}
 		all, start := string(names), 0
 		for i := range out {
@@ -309,6 +301,62 @@ func (s *Store) inputsFrom(ctx context.Context, op, subject string, from time.Ti
 		return nil, err
 	}
 	return out, nil
+}
+
+// ScanInputsFrom shows the rows InputsFrom would return, in its order,
+// as slices of the memory map: nothing is copied, and the times, which an
+// evaluation does not read, are checked but not decoded.
+func (s *Store) ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(store.InputRow) error) error {
+	return s.view(ctx, "ScanInputsFrom", func(tx *bolt.Tx) error {
+		return eachInputRow(tx, subject, from, func(logical, version, payload []byte) error {
+			return fn(store.InputRow{Logical: logical, VersionID: version, Payload: payload})
+		})
+	})
+}
+
+// eachInputRow calls fn with the logical reference, version and payload
+// of each of subject's rows effective from from on (every row when from is
+// zero), in key order, as slices of tx's pages (their capacity ends with
+// them, so an append copies instead of writing into the map).
+func eachInputRow(tx *bolt.Tx, subject string, from time.Time, fn func(logical, version, payload []byte) error) error {
+	return walkInputRows(tx, subject, from, func(logical, v []byte) error {
+		version, payload, err := splitInputPayload(v)
+		if err != nil {
+			return err
+		}
+		return fn(logical, version, payload)
+	})
+}
+
+// eachInputRowTimed is eachInputRow with the row's times decoded.
+func eachInputRowTimed(tx *bolt.Tx, subject string, from time.Time, fn func(logical, version []byte, lastUpdated, effectiveAt time.Time, payload []byte) error) error {
+	return walkInputRows(tx, subject, from, func(logical, v []byte) error {
+		version, lastUpdated, effectiveAt, payload, err := splitInput(v)
+		if err != nil {
+			return err
+		}
+		return fn(logical, version, lastUpdated, effectiveAt, payload)
+	})
+}
+
+// walkInputRows seeks subject's first row at or after from and calls fn
+// with each row's logical reference and value to the end of its rows.
+func walkInputRows(tx *bolt.Tx, subject string, from time.Time, fn func(logical, v []byte) error) error {
+	prefix := subjectPrefix(subject)
+	seek := prefix
+	if !from.IsZero() {
+		seek = appendTimeKey(bytes.Clone(prefix), from)
+	}
+	c := tx.Bucket(bInputRows).Cursor()
+	for k, v := c.Seek(seek); k != nil && bytes.HasPrefix(k, prefix); k, v = c.Next() {
+		if len(k) < len(prefix)+timeKeyLen {
+			return fmt.Errorf("%w: input row key of %d bytes", ErrCorrupt, len(k))
+		}
+		if err := fn(k[len(prefix)+timeKeyLen:len(k):len(k)], v[:len(v):len(v)]); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // Input returns one stored input, or ErrNotFound.

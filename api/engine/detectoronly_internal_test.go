@@ -1,0 +1,122 @@
+package engine
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"path/filepath"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+)
+
+// TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly: after a new
+// end-tidal reading far from any blood gas, the evaluation resumes the
+// detector and reads the end-tidal readings of its span only (the other
+// kinds cannot change what it finds, pipeline.DetectorKind), and not the
+// patient's facts; after a new blood gas it reads every kind from the
+// start of the gas's dependency span, facts included.
+func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
+	t.Parallel()
+	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	counting := &patientReads{Store: st}
+	e, err := New(Config{Store: counting, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	now := time.Now().UTC().Truncate(time.Minute)
+	const subject = "Patient/eb-0"
+	history := []json.RawMessage{json.RawMessage(`{"resourceType":"Patient","id":"eb-0","meta":{"versionId":"1","lastUpdated":"2026-01-01T00:00:00Z"},"gender":"male","birthDate":"1960-01-01"}`)}
+	for m := 60; m > 0; m-- {
+		at := now.Add(-time.Duration(m) * time.Minute)
+		history = append(history, benchReadingOf(subject, fmt.Sprintf("et-%d", m), "19891-1", "mm[Hg]", 36, at),
+			benchReadingOf(subject, fmt.Sprintf("vt-%d", m), "76222-9", "mL", 480, at))
+	}
+	history = append(history, benchReadingOf(subject, "gas-old", "2019-8", "mm[Hg]", 42, now.Add(-50*time.Minute)))
+	// evaluate ingests raws, then evaluates the patient as the loop does,
+	// and returns what its input read gave.
+	evaluate := func(raws ...json.RawMessage) (inputs []kindCount, derivesGas bool, factsRead int64) {
+		t.Helper()
+		if _, err := e.Ingest(ctx, "test", raws); err != nil {
+			t.Fatal(err)
+		}
+		dirty, err := st.DirtyPatients(ctx)
+		if err != nil || len(dirty) != 1 {
+			t.Fatalf("dirty patients %v, %v", dirty, err)
+		}
+		d := dirty[0]
+		gasesFrom := d.From
+		if _, ok := e.evaluatedHere.Load(d.Subject); !ok {
+			gasesFrom = time.Time{}
+		}
+		in, derives, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, e.fallState(d, gasesFrom))
+		if err != nil {
+			t.Fatal(err)
+		}
+		before := counting.n.Load()
+		if err := e.evaluatePatient(ctx, d); err != nil {
+			t.Fatal(err)
+		}
+		return countKinds(in), derives, counting.n.Load() - before
+	}
+	if kinds, derives, facts := evaluate(history...); !derives || len(kinds) != 3 || facts != 1 {
+		t.Fatalf("first evaluation read %v (a blood gas derived: %v) and the facts %d times, want every kind, the blood gas and the facts", kinds, derives, facts)
+	}
+	kinds, derives, facts := evaluate(benchReadingOf(subject, "et-new", "19891-1", "mm[Hg]", 37, now))
+	if derives || len(kinds) != 1 || kinds[0].kind != derive.KindEtCO2 || kinds[0].n < 10 || kinds[0].n > 30 || facts != 0 {
+		t.Errorf("after a new end-tidal reading the evaluation read %v (a blood gas derived: %v) and the facts %d times, want the end-tidal readings of minutes only", kinds, derives, facts)
+	}
+	kinds, derives, facts = evaluate(benchReadingOf(subject, "gas-new", "2019-8", "mm[Hg]", 44, now.Add(-10*time.Minute)))
+	if !derives || len(kinds) != 3 || kinds[1].n < 60 || facts != 1 {
+		t.Errorf("after a new blood gas the evaluation read %v (a blood gas derived: %v) and the facts %d times, want every kind of its hour's span and the facts", kinds, derives, facts)
+	}
+}
+
+// patientReads counts reads of patient facts.
+type patientReads struct {
+	*boltstore.Store
+	n atomic.Int64
+}
+
+func (p *patientReads) Patient(ctx context.Context, subject string) (store.Patient, error) {
+	p.n.Add(1)
+	return p.Store.Patient(ctx, subject)
+}
+
+type kindCount struct {
+	kind derive.Kind
+	n    int
+}
+
+// countKinds counts inputs by kind, in order of kind.
+func countKinds(in []pipeline.Input) []kindCount {
+	var out []kindCount
+	for k := range derive.Kind(255) {
+		n := 0
+		for _, i := range in {
+			if i.Reading.Kind == k {
+				n++
+			}
+		}
+		if n > 0 {
+			out = append(out, kindCount{k, n})
+		}
+	}
+	return out
+}
