@@ -183,7 +183,7 @@ func (e *Encoder) Plan(w Write, server map[string]ServerRef, cfg TxConfig) (*Pla
 				en.Request.IfMatch = `W/"` + sr.Version + `"`
 			}
 		}
-		raw, err := json.Marshal(o)
+		raw, err := marshalResource(o)
 		if err != nil {
 			return nil, fmt.Errorf("encode write: %w", err)
 		}
@@ -264,11 +264,7 @@ func (p *Plan) Transaction(from, to int, withProvenance bool) ([]byte, error) {
 			Request: txRequest{Method: "POST", URL: "Provenance", IfNoneExist: p.provenanceQuery().Encode()},
 		})
 	}
-	tx, err := json.Marshal(struct {
-		ResourceType string    `json:"resourceType"`
-		Type         string    `json:"type"`
-		Entry        []txEntry `json:"entry"`
-	}{"Bundle", "transaction", entries})
+	tx, err := appendTransaction(nil, entries)
 	if err != nil {
 		return nil, fmt.Errorf("encode transaction: %w", err)
 	}
@@ -309,7 +305,7 @@ func (p *Plan) provenance(targets map[string]string) ([]byte, error) {
 		}
 		prov.Target[i] = fhir.Reference{Reference: &t}
 	}
-	raw, err := json.Marshal(prov)
+	raw, err := marshalResource(prov)
 	if err != nil {
 		return nil, fmt.Errorf("encode provenance: %w", err)
 	}

@@ -182,3 +182,49 @@ func TestPlanTransactions(t *testing.T) {
 		}
 	})
 }
+
+// BenchmarkWriteEncode encodes what the outbox writer sends for one blood
+// gas's derivation (nine values: two transactions of at most eight
+// entries, then the Provenance on its own, as for Medplum), with the
+// encoding/json construction it replaced as the baseline in the same run.
+func BenchmarkWriteEncode(b *testing.B) {
+	enc := newEncoder(b)
+	d := fullDerivation()
+	bd, err := enc.Derivation(subject, d)
+	if err != nil {
+		b.Fatal(err)
+	}
+	var all []string
+	for _, o := range bd.Observations {
+		all = append(all, series(o))
+	}
+	w := encode.Write{Kind: encode.WriteCreate, Subject: subject, Derivation: &d, Series: all}
+	cfg := encode.TxConfig{DeviceRef: "Device/server-device", ProvenanceTagSystem: "https://example.org/provenance"}
+	for _, bc := range []struct {
+		name string
+		old  bool
+	}{{"baseline=encoding-json", true}, {"direct", false}} {
+		b.Run(bc.name, func(b *testing.B) {
+			defer encode.SetViaEncodingJSON(bc.old)()
+			b.ReportAllocs()
+			for b.Loop() {
+				p, err := enc.Plan(w, nil, cfg)
+				if err != nil {
+					b.Fatal(err)
+				}
+				for from := 0; from < p.Len(); from += 8 {
+					if _, err := p.Transaction(from, min(from+8, p.Len()), false); err != nil {
+						b.Fatal(err)
+					}
+				}
+				ids := make(map[string]string, p.Len())
+				for i := range p.Len() {
+					ids[p.Series(i)] = "srv"
+				}
+				if _, _, err := p.Provenance(ids); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}
