@@ -4,6 +4,7 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"fmt"
+	"slices"
 	"strings"
 	"time"
 
@@ -40,15 +41,66 @@ const hashPrefix = "sha256:"
 // digest hashes one field per line. The first line names the scheme, so a
 // future change of the layout can never collide with today's digests.
 func digest(scheme string, fields ...string) (string, error) {
-	h := sha256.New()
-	for _, f := range append([]string{scheme}, fields...) {
-		if err := noNewline(f); err != nil {
-			return "", fmt.Errorf("identity field: %w", err)
-		}
-		h.Write([]byte(f))
-		h.Write([]byte{'\n'})
+	var h hashInput
+	h.start(scheme)
+	for _, f := range fields {
+		h.field("", f)
 	}
-	return hashPrefix + hex.EncodeToString(h.Sum(nil)), nil
+	return h.sum()
+}
+
+// hashInput gathers the lines of a digest: every evaluation computes the
+// identifiers of every value it derives, so the lines are written into
+// one buffer (on the stack unless they outgrow it), each field as its name
+// and value, rather than built as a string each.
+type hashInput struct {
+	stack [512]byte
+	n     int // bytes of stack used; -1 once b holds the lines
+	b     []byte
+	err   error
+}
+
+func (h *hashInput) start(scheme string) { h.field("", scheme) }
+
+// field adds the line name+value; a line break in it is an error, the
+// first one reported.
+func (h *hashInput) field(name, value string) {
+	if h.err != nil {
+		return
+	}
+	if strings.ContainsAny(name, "\n\r") || strings.ContainsAny(value, "\n\r") {
+		h.err = fmt.Errorf("identity field: %w", noNewline(name+value))
+		return
+	}
+	if need := len(name) + len(value) + 1; h.n >= 0 && h.n+need <= len(h.stack) {
+		h.n += copy(h.stack[h.n:], name)
+		h.n += copy(h.stack[h.n:], value)
+		h.stack[h.n] = '\n'
+		h.n++
+		return
+	} else if h.n >= 0 {
+		h.b = append(make([]byte, 0, 2*(h.n+need)), h.stack[:h.n]...)
+		h.n = -1
+	}
+	h.b = append(h.b, name...)
+	h.b = append(h.b, value...)
+	h.b = append(h.b, '\n')
+}
+
+// sum returns "sha256:" and the hex digest of the lines.
+func (h *hashInput) sum() (string, error) {
+	if h.err != nil {
+		return "", h.err
+	}
+	lines := h.b
+	if h.n >= 0 {
+		lines = h.stack[:h.n]
+	}
+	d := sha256.Sum256(lines)
+	var out [len(hashPrefix) + 2*sha256.Size]byte
+	copy(out[:], hashPrefix)
+	hex.Encode(out[len(hashPrefix):], d[:])
+	return string(out[:]), nil
 }
 
 // ValueIdentity computes both identifiers of the Observation that encodes v,
@@ -60,13 +112,10 @@ func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 	if err != nil {
 		return Identity{}, fmt.Errorf("blood gas: %w", err)
 	}
-	used, err := valueReadings(d, v)
-	if err != nil {
+	var buf [48]string
+	refs := buf[:0]
+	if err := eachValueReading(d, v, func(r derive.Reading) { refs = append(refs, r.Ref) }); err != nil {
 		return Identity{}, err
-	}
-	refs := make([]string, 0, len(used)+1)
-	for _, r := range used {
-		refs = append(refs, r.Ref)
 	}
 	if v.UsesPatient {
 		p, err := cited(d.Patient.Ref, "Patient")
@@ -117,18 +166,28 @@ func gasSeries(code derive.Code, gas ref) (string, error) {
 	if _, ok := precisions[code]; !ok {
 		return "", fmt.Errorf("unknown code %q", code)
 	}
-	return digest("deadspace value series 1", "code="+string(code), "gas="+gas.Logical())
+	var h hashInput
+	h.start("deadspace value series 1")
+	h.field("code=", string(code))
+	h.field("gas=", gas.Type+"/"+gas.ID)
+	return h.sum()
 }
 
+// valueKey is the key digest of a value of code citing refs, which it
+// sorts in place.
 func valueKey(code derive.Code, refs []string) (string, error) {
 	if _, ok := precisions[code]; !ok {
 		return "", fmt.Errorf("unknown code %q", code)
 	}
-	fields := []string{"algorithm=" + derive.AlgorithmVersion, "code=" + string(code)}
-	for _, r := range sortedUnique(refs) {
-		fields = append(fields, "input="+r)
+	var h hashInput
+	h.start("deadspace value key 1")
+	h.field("algorithm=", derive.AlgorithmVersion)
+	h.field("code=", string(code))
+	slices.Sort(refs)
+	for _, r := range slices.Compact(refs) {
+		h.field("input=", r)
 	}
-	return digest("deadspace value key 1", fields...)
+	return h.sum()
 }
 
 // FallIdentity computes both identifiers of the Observation that encodes f
@@ -188,10 +247,20 @@ func episodeSeries(subject string, code derive.Code, onset time.Time) (string, e
 // valueReadings returns the blood gas and every reading in the summaries
 // of the kinds v used, each checked to be a versioned Observation reference.
 func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
-	if _, err := cited(d.Gas.Ref, "Observation"); err != nil {
-		return nil, fmt.Errorf("blood gas: %w", err)
+	var out []derive.Reading
+	if err := eachValueReading(d, v, func(r derive.Reading) { out = append(out, r) }); err != nil {
+		return nil, err
 	}
-	out := []derive.Reading{d.Gas}
+	return out, nil
+}
+
+// eachValueReading calls use with each reading valueReadings returns, in
+// its order, without gathering them.
+func eachValueReading(d derive.Derivation, v derive.Value, use func(derive.Reading)) error {
+	if _, err := cited(d.Gas.Ref, "Observation"); err != nil {
+		return fmt.Errorf("blood gas: %w", err)
+	}
+	use(d.Gas)
 	for _, k := range v.Inputs {
 		if k == derive.KindPaCO2 {
 			continue // the blood gas itself, never summarised
@@ -204,16 +273,16 @@ func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error
 			found = true
 			for _, r := range s.Readings {
 				if _, err := cited(r.Ref, "Observation"); err != nil {
-					return nil, fmt.Errorf("%s input %s: %w", v.Code, k, err)
+					return fmt.Errorf("%s input %s: %w", v.Code, k, err)
 				}
-				out = append(out, r)
+				use(r)
 			}
 		}
 		if !found {
-			return nil, fmt.Errorf("%s cites input %s, but the derivation has no summary of it", v.Code, k)
+			return fmt.Errorf("%s cites input %s, but the derivation has no summary of it", v.Code, k)
 		}
 	}
-	return out, nil
+	return nil
 }
 
 // fallReadings returns every reading a fall cites, each checked.
