@@ -79,20 +79,24 @@ func (s *FallScan) Sparse() []Omission { return slices.Clone(s.sparse) }
 // rest of the series can still need: the readings within BaselineMax of
 // the last one, the open episode and the findings so far (not the sparse
 // readings, which [FallScan.Sparse] of the copy lists from then on).
-func (s *FallScan) Clone() *FallScan {
+func (s *FallScan) Clone() *FallScan { return s.CloneWithRoom(0) }
+
+// CloneWithRoom is Clone with room for n more readings: a copy about to be
+// fed n readings takes them without growing its buffers.
+func (s *FallScan) CloneWithRoom(n int) *FallScan {
 	c := *s
 	c.falls = slices.Clone(s.falls)
 	c.sparse = nil
 	// Readings before far and times before seenHead are never looked at
 	// again: far and seenHead only move forward.
 	drop := min(s.far, s.head)
-	c.eligible = slices.Clone(s.eligible[drop:])
+	c.eligible = cloneWithRoom(s.eligible[drop:], n)
 	c.head, c.inEnd, c.far = s.head-drop, s.inEnd-drop, s.far-drop
-	c.window = slices.Clone(s.window)
+	c.window = cloneWithRoom(s.window, n)
 	// The last time is kept even when it is older than BaselineMax: the
 	// gap to the next reading is measured from it.
 	keep := min(s.seenHead, max(len(s.seen)-1, 0))
-	c.seen = slices.Clone(s.seen[keep:])
+	c.seen = cloneWithRoom(s.seen[keep:], n)
 	c.seenHead = s.seenHead - keep
 	if s.ep != nil {
 		ep := *s.ep
@@ -100,6 +104,15 @@ func (s *FallScan) Clone() *FallScan {
 		c.ep = &ep
 	}
 	return &c
+}
+
+// cloneWithRoom copies s into a new slice with room for n more elements
+// (nil stays nil when no room is asked for, as slices.Clone keeps it).
+func cloneWithRoom[T any](s []T, n int) []T {
+	if s == nil && n == 0 {
+		return nil
+	}
+	return append(make([]T, 0, len(s)+n), s...)
 }
 
 // Add judges the next reading of the series; readings come in time order.

@@ -10,8 +10,9 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
-// resumed runs the detector over series, saving the scan with Clone after
-// each reading whose index is in at and going on from the copy, as a
+// resumed runs the detector over series, saving the scan with Clone (or
+// CloneWithRoom, every other time, with room for a few readings or none)
+// after each reading whose index is in at and going on from the copy, as a
 // caller that keeps the scan between evaluations does.
 func resumed(cfg derive.FallConfig, series []derive.Reading, at func(i int) bool) ([]derive.Fall, []derive.Omission) {
 	s := derive.NewFallScan(cfg)
@@ -20,7 +21,11 @@ func resumed(cfg derive.FallConfig, series []derive.Reading, at func(i int) bool
 		s.Add(r)
 		if at(i) {
 			sparse = append(sparse, s.Sparse()...)
-			s = s.Clone()
+			if i%2 == 0 {
+				s = s.Clone()
+			} else {
+				s = s.CloneWithRoom(i % 7)
+			}
 		}
 	}
 	return s.Falls(), append(sparse, s.Sparse()...)

@@ -312,7 +312,9 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
 	ids := identities{}
-	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: ids.recorded(ledger)}
+	// What the data leaves out is reported after a complete evaluation
+	// only (evaluated), so an incremental one does not work it out.
+	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: ids.recorded(ledger), NoOmissions: !gasesFrom.IsZero()}
 	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
 		inc.SaveAt = e.fallSaveAt(latest, haveLatest, resume)
@@ -552,45 +554,30 @@ func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases
 		return inputs, true, err
 	}
 	readFrom := store.Earliest(gasesFrom, resume.At.Add(-e.cfg.Derive.Window))
-	inc := pipeline.Incremental{GasesFrom: gasesFrom}
-	inputs, err := e.loadDetectorInputs(ctx, subject, readFrom, inc)
-	if !errors.Is(err, errDerivesGas) {
+	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, readFrom, gasesFrom)
+	if err != nil || earliestGas == math.MaxInt64 {
 		return inputs, false, err
 	}
-	inputs, err = e.loadInputsFrom(ctx, subject, readFrom)
-	if err != nil {
-		return nil, false, err
-	}
-	earliest := int64(math.MaxInt64)
-	for _, in := range inputs {
-		if in.Reading.Kind == derive.KindPaCO2 && in.Reading.AtMillis >= gasesFrom.UnixMilli() {
-			earliest = min(earliest, in.Reading.AtMillis)
-		}
-	}
-	if earliest == math.MaxInt64 {
-		return inputs, true, nil
-	}
-	spanFrom, _ := e.cfg.Derive.DependencySpan(time.UnixMilli(earliest).UTC())
-	if !spanFrom.Before(readFrom) {
-		return inputs, true, nil
-	}
-	inputs, err = e.loadInputsFrom(ctx, subject, spanFrom)
+	spanFrom, _ := e.cfg.Derive.DependencySpan(time.UnixMilli(earliestGas).UTC())
+	inputs, err = e.loadInputsFrom(ctx, subject, store.Earliest(readFrom, spanFrom))
 	return inputs, true, err
 }
 
-// errDerivesGas stops loadDetectorInputs: a blood gas the evaluation
-// derives is among the inputs, and every kind is needed.
-var errDerivesGas = errors.New("a blood gas to derive is among the inputs")
-
-// loadDetectorInputs returns the patient's stored readings of the
-// detector's kind effective from from on, or errDerivesGas as soon as a
-// blood gas an evaluation with inc derives is among the inputs: an
-// evaluation that derives none gives the detector's findings alone, which
-// depend on nothing else (pipeline.Incremental). The other inputs' heads
-// are checked, as loadInputsFrom checks them, but nothing of them is kept.
-func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from time.Time, inc pipeline.Incremental) ([]pipeline.Input, error) {
+// loadDetectorInputs reads the patient's stored inputs effective from
+// from on and returns those of the detector's kind, unless a blood gas the
+// evaluation of the blood gases sampled from gasesFrom on derives
+// (pipeline.Incremental.Derives) is among them: then it returns the sample
+// time of the earliest blood gas sampled from gasesFrom's millisecond on
+// (math.MaxInt64 when there is none), from whose dependency span on every
+// kind is needed. An evaluation that derives no blood gas gives the
+// detector's findings alone, which depend on nothing else
+// (pipeline.DetectorKind). Every input's head is checked, as
+// loadInputsFrom checks it, but only the detector's readings are decoded.
+func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from, gasesFrom time.Time) ([]pipeline.Input, int64, error) {
+	inc := pipeline.Incremental{GasesFrom: gasesFrom}
 	var inputs []pipeline.Input
 	var hr headReader
+	derives, earliestGas := false, int64(math.MaxInt64)
 	err := e.scanInputs(ctx, subject, from, func(row store.InputRow) error {
 		l, err := parseHead(row.Payload)
 		if err != nil {
@@ -605,13 +592,14 @@ func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from ti
 			if i >= 0 {
 				k = l.alsoKind(row.Payload, i)
 			}
-			if inc.Derives(derive.Reading{Kind: k, AtMillis: at}) {
-				return errDerivesGas
+			if k == derive.KindPaCO2 && at >= gasesFrom.UnixMilli() {
+				earliestGas = min(earliestGas, at)
 			}
+			derives = derives || inc.Derives(derive.Reading{Kind: k, AtMillis: at})
 			detected = detected || k == pipeline.DetectorKind
 		}
-		if !detected {
-			return nil
+		if derives || !detected {
+			return nil // every kind will be read again
 		}
 		h, _, err := hr.decode(row.Payload, func() string { return versionedRef(row.Logical, row.VersionID) })
 		if err != nil {
@@ -629,7 +617,13 @@ func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from ti
 		}
 		return nil
 	})
-	return inputs, err
+	if err != nil {
+		return nil, 0, err
+	}
+	if derives {
+		return nil, earliestGas, nil
+	}
+	return inputs, math.MaxInt64, nil
 }
 
 // loadInputs returns a patient's stored readings as pairing takes them.

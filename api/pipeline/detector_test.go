@@ -147,3 +147,57 @@ func TestDetectorKindAloneWhenNoBloodGasIsDerived(t *testing.T) {
 		}
 	})
 }
+
+// TestNoOmissionsLeavesTheResultsAsTheyAre: a caller that does not want
+// what the inputs leave out gets the same results, and no omissions,
+// whether every blood gas is derived or some, with the detector run whole
+// or resumed.
+func TestNoOmissionsLeavesTheResultsAsTheyAre(t *testing.T) {
+	t.Parallel()
+	cfg := derive.DefaultConfig()
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	base := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC)
+	all := detectorStream(base)
+	_, _, saved, err := pipeline.EvaluateIncremental(cfg, enc, "Patient/d1", derive.Patient{}, all, pipeline.Incremental{SaveAt: []time.Time{base.Add(100 * time.Minute)}})
+	if err != nil || len(saved) != 1 {
+		t.Fatalf("saving a state: %v, %d states", err, len(saved))
+	}
+	for _, tc := range []struct {
+		name string
+		inc  pipeline.Incremental
+	}{
+		{"every blood gas", pipeline.Incremental{}},
+		{"blood gases from 2 h 30", pipeline.Incremental{GasesFrom: base.Add(150 * time.Minute)}},
+		{"detector resumed", pipeline.Incremental{GasesFrom: base.Add(110 * time.Minute), Falls: saved[0]}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			want, wantOmitted, _, err := pipeline.EvaluateIncremental(cfg, enc, "Patient/d1", derive.Patient{}, all, tc.inc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			tc.inc.NoOmissions = true
+			got, gotOmitted, _, err := pipeline.EvaluateIncremental(cfg, enc, "Patient/d1", derive.Patient{}, all, tc.inc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if len(wantOmitted) == 0 || gotOmitted != nil {
+				t.Errorf("omissions: %d with them wanted (want some), %d without (want none)", len(wantOmitted), len(gotOmitted))
+			}
+			derivations := 0
+			for _, r := range want {
+				if r.Derivation != nil {
+					derivations++
+				}
+			}
+			if derivations == 0 {
+				t.Fatal("no blood gas derived: the comparison shows nothing of the derivations")
+			}
+			if g, w := findings(got), findings(want); !reflect.DeepEqual(g, w) {
+				t.Errorf("results without omissions differ:\n%+v\nwith:\n%+v", g, w)
+			}
+		})
+	}
+}

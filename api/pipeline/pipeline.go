@@ -100,6 +100,10 @@ type Incremental struct {
 	// encoded when first recorded, and the live engine, which writes typed
 	// records and encodes at send time, would throw the encoding away.
 	Recorded func(derive.Derivation) bool
+	// NoOmissions: the caller does not use what the inputs leave out (the
+	// live engine reports only a complete evaluation's), so it is not
+	// worked out, and nil is returned for it.
+	NoOmissions bool
 }
 
 // DetectorKind is the kind of reading the fall and rise detector reads.
@@ -121,7 +125,6 @@ func (inc Incremental) Derives(r derive.Reading) bool {
 // are incomplete unless it derives every blood gas and runs the detector
 // over the whole series.
 func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string, facts derive.Patient, inputs []Input, inc Incremental) ([]Result, []derive.Omission, []*FallState, error) {
-	var omitted []derive.Omission
 	gases := make([]derive.Reading, 0, 4)
 	readings := make([]derive.Reading, 0, len(inputs))
 	etco2 := make([]derive.Reading, 0, len(inputs)/2)
@@ -149,31 +152,19 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 	slices.SortFunc(readings, byTime)
 	slices.SortFunc(etco2, byTime)
 
-	used := make(map[string]bool)
-	// why holds, for a reading not used by any result, the first reason a
-	// derivation or the fall detector gave for leaving it out (an artefact,
-	// a lower-priority source in its window, a wrong unit, a sparse series);
-	// without one it is unpaired.
-	why := make(map[string]derive.Omission)
+	// left accounts for what the results leave out, unless the caller
+	// does not want it.
+	var left *leftOut
+	if !inc.NoOmissions {
+		left = &leftOut{used: make(map[string]bool), why: make(map[string]derive.Omission)}
+	}
 	var results []Result
 	for _, gas := range gases {
 		if !inc.Derives(gas) {
 			continue
 		}
 		d := derive.Derive(cfg, gas, facts, readings)
-		used[gas.Ref] = true
-		for _, o := range d.Omitted {
-			switch {
-			case o.Code != "":
-				omitted = append(omitted, derive.Omission{Code: o.Code, Ref: gas.Ref, Reason: o.Reason, Detail: o.Detail})
-			case o.Ref == gas.Ref:
-				omitted = append(omitted, o)
-			default:
-				if _, ok := why[o.Ref]; !ok {
-					why[o.Ref] = o
-				}
-			}
-		}
+		left.derived(gas, d)
 		if len(d.Values) == 0 {
 			continue
 		}
@@ -185,51 +176,110 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 		if err != nil {
 			// One bad blood gas (a malformed reference, say) must not stop
 			// the patient's other results, nor other patients.
-			omitted = append(omitted, derive.Omission{Ref: gas.Ref, Reason: derive.ReasonMalformed,
+			left.omit(derive.Omission{Ref: gas.Ref, Reason: derive.ReasonMalformed,
 				Detail: fmt.Sprintf("its derived values could not be written: %v", err)})
 			continue
 		}
 		for _, s := range d.Used {
-			for _, r := range s.Readings {
-				used[r.Ref] = true
-			}
+			left.use(s.Readings)
 		}
 		results = append(results, Result{Subject: subject, Derivation: &d, Bundle: b})
 	}
 	series, lower := derive.PreferredSeries(cfg.Window, etco2)
 	falls, sparse, saved := detect(cfg.Fall, series, inc)
-	for _, o := range slices.Concat(sparse, lower) {
-		if _, ok := why[o.Ref]; !ok {
-			why[o.Ref] = o
-		}
-	}
+	left.explain(sparse)
+	left.explain(lower)
 	for _, f := range falls {
 		b, err := enc.Fall(subject, f)
 		if err != nil {
-			omitted = append(omitted, derive.Omission{Ref: f.EpisodeReadings[0].Ref, Reason: derive.ReasonMalformed,
+			left.omit(derive.Omission{Ref: f.EpisodeReadings[0].Ref, Reason: derive.ReasonMalformed,
 				Detail: fmt.Sprintf("the end-tidal CO2 finding starting here could not be written: %v", err)})
 			continue
 		}
-		for _, r := range f.BaselineReadings {
-			used[r.Ref] = true
-		}
-		for _, r := range f.EpisodeReadings {
-			used[r.Ref] = true
-		}
+		left.use(f.BaselineReadings)
+		left.use(f.EpisodeReadings)
 		results = append(results, Result{Subject: subject, Fall: &f, Bundle: b})
 	}
-	for _, r := range readings {
-		if used[r.Ref] {
-			continue
-		}
-		if o, ok := why[r.Ref]; ok {
-			omitted = append(omitted, o)
-			continue
-		}
-		omitted = append(omitted, derive.Omission{Ref: r.Ref, Reason: derive.ReasonUnpaired, Detail: r.Kind.String()})
+	var omitted []derive.Omission
+	if left != nil {
+		omitted = left.finish(readings)
 	}
 	slices.SortStableFunc(results, func(a, b Result) int { return a.Time().Compare(b.Time()) })
 	return results, omitted, saved, nil
+}
+
+// leftOut accounts for the readings no result used: an omission for
+// each, with the first reason a derivation or the fall detector gave for
+// leaving it out (an artefact, a lower-priority source in its window, a
+// wrong unit, a sparse series); without one it is unpaired. A nil
+// leftOut accounts for nothing.
+type leftOut struct {
+	omitted []derive.Omission
+	used    map[string]bool
+	why     map[string]derive.Omission
+}
+
+// derived takes a blood gas's derivation: the gas is used, and what the
+// derivation left out is an omission of the gas or of its value, or a
+// reason a reading may be left out.
+func (l *leftOut) derived(gas derive.Reading, d derive.Derivation) {
+	if l == nil {
+		return
+	}
+	l.used[gas.Ref] = true
+	for _, o := range d.Omitted {
+		switch {
+		case o.Code != "":
+			l.omitted = append(l.omitted, derive.Omission{Code: o.Code, Ref: gas.Ref, Reason: o.Reason, Detail: o.Detail})
+		case o.Ref == gas.Ref:
+			l.omitted = append(l.omitted, o)
+		default:
+			l.explain([]derive.Omission{o})
+		}
+	}
+}
+
+// explain keeps the first reason given for each reading.
+func (l *leftOut) explain(os []derive.Omission) {
+	if l == nil {
+		return
+	}
+	for _, o := range os {
+		if _, ok := l.why[o.Ref]; !ok {
+			l.why[o.Ref] = o
+		}
+	}
+}
+
+func (l *leftOut) omit(o derive.Omission) {
+	if l != nil {
+		l.omitted = append(l.omitted, o)
+	}
+}
+
+func (l *leftOut) use(rs []derive.Reading) {
+	if l == nil {
+		return
+	}
+	for _, r := range rs {
+		l.used[r.Ref] = true
+	}
+}
+
+// finish returns the omissions, with one for each of readings no result
+// used.
+func (l *leftOut) finish(readings []derive.Reading) []derive.Omission {
+	for _, r := range readings {
+		if l.used[r.Ref] {
+			continue
+		}
+		if o, ok := l.why[r.Ref]; ok {
+			l.omitted = append(l.omitted, o)
+			continue
+		}
+		l.omitted = append(l.omitted, derive.Omission{Ref: r.Ref, Reason: derive.ReasonUnpaired, Detail: r.Kind.String()})
+	}
+	return l.omitted
 }
 
 // detect runs the fall and rise detector over series, from inc.Falls when
@@ -241,7 +291,9 @@ func detect(cfg derive.FallConfig, series []derive.Reading, inc Incremental) ([]
 	}
 	scan, start := derive.NewFallScan(cfg), int64(math.MinInt64)
 	if inc.Falls != nil {
-		scan, start = inc.Falls.scan.Clone(), inc.Falls.At.UnixMilli()
+		start = inc.Falls.At.UnixMilli()
+		// The copy takes the readings from the state on without growing.
+		scan = inc.Falls.scan.CloneWithRoom(len(series) - sort.Search(len(series), func(i int) bool { return series[i].AtMillis >= start }))
 	}
 	saves := make([]int64, 0, len(inc.SaveAt))
 	for _, at := range inc.SaveAt {
