@@ -68,7 +68,7 @@ func (h *hashInput) field(name, value string) {
 	if h.err != nil {
 		return
 	}
-	if strings.ContainsAny(name, "\n\r") || strings.ContainsAny(value, "\n\r") {
+	if hasLineBreak(name) || hasLineBreak(value) {
 		h.err = fmt.Errorf("identity field: %w", noNewline(name+value))
 		return
 	}
@@ -85,6 +85,12 @@ func (h *hashInput) field(name, value string) {
 	h.b = append(h.b, name...)
 	h.b = append(h.b, value...)
 	h.b = append(h.b, '\n')
+}
+
+// hasLineBreak is noNewline's test, by the byte search the runtime
+// speeds up (strings.ContainsAny walks the string a byte at a time).
+func hasLineBreak(s string) bool {
+	return strings.IndexByte(s, '\n') >= 0 || strings.IndexByte(s, '\r') >= 0
 }
 
 // sum returns "sha256:" and the hex digest of the lines.
