@@ -403,18 +403,12 @@ type requestBundleInfo struct {
 }
 
 func inspectRequestBundle(body []byte) (requestBundleInfo, error) {
-	var b struct {
-		ResourceType string `json:"resourceType"`
-		Type         string `json:"type"`
-		Entry        []struct {
-			Request *struct {
-				Method      string `json:"method"`
-				IfNoneExist string `json:"ifNoneExist"`
-			} `json:"request"`
-		} `json:"entry"`
-	}
-	if err := json.Unmarshal(body, &b); err != nil {
-		return requestBundleInfo{}, fmt.Errorf("bundle is not JSON: %w", err)
+	var b requestBundleJSON
+	if noInspectFast || !inspectFast(body, &b) {
+		b = requestBundleJSON{}
+		if err := json.Unmarshal(body, &b); err != nil {
+			return requestBundleInfo{}, fmt.Errorf("bundle is not JSON: %w", err)
+		}
 	}
 	if b.ResourceType != "Bundle" {
 		return requestBundleInfo{}, fmt.Errorf("resourceType is %q, want Bundle", cleanPrefix([]byte(b.ResourceType), 64))
