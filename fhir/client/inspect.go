@@ -28,10 +28,12 @@ var (
 	bundleNames  = [...]string{"resourceType", "type", "entry"}
 	entryNames   = [...]string{"request"}
 	requestNames = [...]string{"method", "ifNoneExist"}
+	metaNames    = [...]string{"resourceType", "id", "meta"}
+	versionNames = [...]string{"versionId", "lastUpdated"}
 )
 
-// noInspectFast makes inspectRequestBundle take encoding/json's path, so
-// tests can compare the two.
+// noInspectFast makes inspectRequestBundle and resourceTypeOf take
+// encoding/json's path, so tests can compare the two.
 var noInspectFast = false
 
 // inspectFast fills b in one jsonscan pass over a plain request Bundle,
@@ -46,14 +48,7 @@ var noInspectFast = false
 func inspectFast(body []byte, b *requestBundleJSON) bool {
 	var s jsonscan.Scanner
 	s.Reset(body)
-	str := func(dst *string) bool {
-		if s.Peek() != jsonscan.String {
-			return false
-		}
-		text, raw, err := s.Str()
-		*dst = jsonscan.Unquote(text, raw)
-		return err == nil
-	}
+	str := func(dst *string) bool { return scanString(&s, dst) }
 	request := func(r *requestJSON) bool {
 		return scanObject(&s, requestNames[:], func(i int) bool {
 			if i == 0 {
@@ -94,6 +89,43 @@ func inspectFast(body []byte, b *requestBundleJSON) bool {
 		}
 		return entries()
 	}) && s.End() == nil
+}
+
+// metaFast fills m as inspectFast fills a request Bundle, for
+// resourceTypeOf, which reads every resource the writer sends or is
+// answered with one at a time.
+func metaFast(body []byte, m *wireMeta) bool {
+	var s jsonscan.Scanner
+	s.Reset(body)
+	return scanObject(&s, metaNames[:], func(i int) bool {
+		switch i {
+		case 0:
+			return scanString(&s, &m.ResourceType)
+		case 1:
+			return scanString(&s, &m.ID)
+		}
+		m.Meta = &struct {
+			VersionID   string `json:"versionId"`
+			LastUpdated string `json:"lastUpdated"`
+		}{}
+		return scanObject(&s, versionNames[:], func(i int) bool {
+			if i == 0 {
+				return scanString(&s, &m.Meta.VersionID)
+			}
+			return scanString(&s, &m.Meta.LastUpdated)
+		})
+	}) && s.End() == nil
+}
+
+// scanString reads a string into dst; any other value (null included)
+// is false.
+func scanString(s *jsonscan.Scanner, dst *string) bool {
+	if s.Peek() != jsonscan.String {
+		return false
+	}
+	text, raw, err := s.Str()
+	*dst = jsonscan.Unquote(text, raw)
+	return err == nil
 }
 
 // scanObject reads an object, calling member with the index in names of

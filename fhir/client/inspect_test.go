@@ -114,3 +114,87 @@ func BenchmarkInspectRequestBundle(b *testing.B) {
 		})
 	}
 }
+
+// compareMeta holds resourceTypeOf to its encoding/json path, and the
+// fast fill, when it succeeds, to encoding/json's fill.
+func compareMeta(t *testing.T, body []byte) {
+	t.Helper()
+	typ, id, gerr := resourceTypeOf(body)
+	noInspectFast = true
+	wtyp, wid, werr := resourceTypeOf(body)
+	noInspectFast = false
+	if typ != wtyp || id != wid || errString(gerr) != errString(werr) {
+		t.Fatalf("resourceTypeOf(%q) = %q, %q, %v; encoding/json gives %q, %q, %v", body, typ, id, gerr, wtyp, wid, werr)
+	}
+	var fast wireMeta
+	if metaFast(body, &fast) {
+		var slow wireMeta
+		if err := json.Unmarshal(body, &slow); err != nil {
+			t.Fatalf("the fast fill took %q, encoding/json refuses it: %v", body, err)
+		}
+		if !reflect.DeepEqual(fast, slow) {
+			t.Fatalf("fill of %q: fast %+v, encoding/json %+v", body, fast, slow)
+		}
+	}
+}
+
+var metaSeeds = []string{
+	`{"resourceType":"Provenance","id":"p1","meta":{"versionId":"1","lastUpdated":"2025-03-01T10:15:07Z","tag":[{"system":"s","code":"c"}]},"target":[{"reference":"Observation/1"}]}`,
+	`{"resourceType":"Observation"}`,
+	`{"resourceType":"Observation","id":null}`,
+	`{"resourceType":"Observation","meta":null}`,
+	`{"resourceType":"Observation","meta":{"versionId":2}}`,
+	`{"resourceType":"Observation","meta":{"VersionId":"2"}}`,
+	`{"resourceType":"Observation","meta":{"versionId":"2"},"meta":{"lastUpdated":"x"}}`,
+	`{"resourceType":"Observation","ID":"x"}`,
+	`{"resourceType":"Observation","id":"a","id":"b"}`,
+	`{"resourceType":"Observ\u0061tion","id":"\u00e9"}`,
+	`{"resourceType":7}`,
+	`{"resourceType":"Observation"} {}`,
+	`[]`,
+	`null`,
+	``,
+}
+
+// TestResourceTypeOfFastAsJSON: the one-pass reading of a resource's type
+// and id gives what encoding/json's gives.
+func TestResourceTypeOfFastAsJSON(t *testing.T) {
+	for i, s := range metaSeeds {
+		t.Run(fmt.Sprint(i), func(t *testing.T) { compareMeta(t, []byte(s)) })
+	}
+}
+
+// FuzzResourceTypeOfAgainstJSON holds the one-pass reading of a
+// resource's type and id to encoding/json.
+func FuzzResourceTypeOfAgainstJSON(f *testing.F) {
+	for _, s := range append(metaSeeds, inspectSeeds...) {
+		f.Add([]byte(s))
+	}
+	f.Fuzz(func(t *testing.T, body []byte) { compareMeta(t, body) })
+}
+
+// BenchmarkResourceTypeOf reads the type and id of a Provenance citing
+// forty inputs, as the writer's conditional create checks it, with the
+// encoding/json reading as the baseline in the same run.
+func BenchmarkResourceTypeOf(b *testing.B) {
+	body := []byte(`{"resourceType":"Provenance","meta":{"tag":[{"system":"https://example.org/provenance","code":"abc"}]},"target":[` +
+		strings.TrimSuffix(strings.Repeat(`{"reference":"Observation/ds-0123456789abcdef0123456789abcdef"},`, 9), ",") +
+		`],"recorded":"2025-03-01T10:15:07Z","activity":{"coding":[{"system":"http://terminology.hl7.org/CodeSystem/v3-DataOperation","code":"CREATE"}]},"agent":[{"who":{"reference":"Device/d"}}],"entity":[` +
+		strings.TrimSuffix(strings.Repeat(`{"role":"source","what":{"reference":"Observation/r-1-2-3/_history/1"}},`, 40), ",") + `]}`)
+	for _, bc := range []struct {
+		name string
+		slow bool
+	}{{"baseline=encoding-json", true}, {"one-pass", false}} {
+		b.Run(bc.name, func(b *testing.B) {
+			noInspectFast = bc.slow
+			defer func() { noInspectFast = false }()
+			b.SetBytes(int64(len(body)))
+			b.ReportAllocs()
+			for b.Loop() {
+				if typ, _, err := resourceTypeOf(body); err != nil || typ != "Provenance" {
+					b.Fatal(typ, err)
+				}
+			}
+		})
+	}
+}

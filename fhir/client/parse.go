@@ -468,8 +468,11 @@ func parseSearchPage(body []byte) (searchPage, error) {
 // resourceTypeOf reads the top-level resourceType and id of a JSON resource.
 func resourceTypeOf(body []byte) (typ, id string, err error) {
 	var wm wireMeta
-	if err := json.Unmarshal(body, &wm); err != nil {
-		return "", "", fmt.Errorf("resource is not a JSON object: %w", err)
+	if noInspectFast || !metaFast(body, &wm) {
+		wm = wireMeta{}
+		if err := json.Unmarshal(body, &wm); err != nil {
+			return "", "", fmt.Errorf("resource is not a JSON object: %w", err)
+		}
 	}
 	return wm.ResourceType, wm.ID, nil
 }
