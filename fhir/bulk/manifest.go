@@ -73,8 +73,13 @@ func ParseManifest(body []byte) (Manifest, error) {
 		errs = append(errs, errors.New("transactionTime is missing"))
 	default:
 		t, err := parseInstant(*w.TransactionTime)
-		if err != nil {
+		switch {
+		case err != nil:
 			errs = append(errs, fmt.Errorf("transactionTime: %w", err))
+		case t.IsZero():
+			// Year 1 is no time an export ran, and a zero time would
+			// read as "no cursor" to the next export's _since.
+			errs = append(errs, errors.New("transactionTime: the zero instant (0001-01-01T00:00:00Z)"))
 		}
 		m.TransactionTime = t
 	}

@@ -32,6 +32,7 @@ func TestParseManifest(t *testing.T) {
 		{"empty output", `{"transactionTime":"2021-01-01T00:00:00.123+01:00","requiresAccessToken":false,"output":[],"error":[]}`, "", 0},
 		{"no transactionTime", `{"requiresAccessToken":true,"output":[]}`, "transactionTime is missing", 0},
 		{"bad transactionTime", `{"transactionTime":"yesterday","requiresAccessToken":true,"output":[]}`, "not a FHIR instant", 0},
+		{"zero transactionTime", `{"transactionTime":"0001-01-01T00:00:00Z","requiresAccessToken":true,"output":[]}`, "the zero instant", 0},
 		{"no requiresAccessToken", `{"transactionTime":"2021-01-01T00:00:00Z","output":[]}`, "requiresAccessToken is missing", 0},
 		{"no output", `{"transactionTime":"2021-01-01T00:00:00Z","requiresAccessToken":true}`, "output is missing", 0},
 		{"relative url", `{"transactionTime":"2021-01-01T00:00:00Z","requiresAccessToken":true,"output":[{"type":"Patient","url":"/p.ndjson"}]}`, "output[0].url", 0},
@@ -105,8 +106,10 @@ func FuzzParseManifest(f *testing.F) {
 			}
 			return
 		}
-		if m.TransactionTime.IsZero() && !strings.Contains(string(body), "transactionTime") {
-			t.Fatalf("accepted without transactionTime")
+		// encoding/json matches keys without regard to case, so the key
+		// may be spelled in any case; its time must be a real one.
+		if m.TransactionTime.IsZero() || !strings.Contains(strings.ToLower(string(body)), "transactiontime") {
+			t.Fatalf("accepted without a transactionTime")
 		}
 		for _, f := range append(append(m.Output, m.Deleted...), m.Error...) {
 			if !isResourceType(f.Type) || !strings.HasPrefix(f.URL, "http") || f.Count < -1 {
