@@ -103,6 +103,9 @@ type intake struct {
 	now   chan struct{} // apply without waiting: a blood gas, or a reader waits (Settle)
 	stop  chan struct{}
 	done  chan struct{}
+
+	closeOnce sync.Once
+	closeErr  error
 }
 
 // openIntake opens or creates the intake file beside the main one and
@@ -427,6 +430,11 @@ func (in *intake) deleteApplied() error {
 
 // close applies what is left, stops the applier and closes the file.
 func (in *intake) close() error {
+	in.closeOnce.Do(func() { in.closeErr = in.closeNow() })
+	return in.closeErr
+}
+
+func (in *intake) closeNow() error {
 	close(in.stop)
 	<-in.done
 	var err error

@@ -238,3 +238,17 @@ func TestIntakeResultsInOrder(t *testing.T) {
 		}
 	}
 }
+
+// Close may be called twice (a deferred Close after an explicit one): the
+// second returns what the first did instead of stopping the applier again.
+func TestIntakeCloseTwice(t *testing.T) {
+	s := openIntakeTest(t, filepath.Join(t.TempDir(), "deadspace.db"), time.Hour)
+	if _, _, err := s.PutNotified(t.Context(), []store.Input{notifiedInput("Patient/a", "Observation/1", "1", 0)}, intakeT0, "Subscription/x", 1); err != nil {
+		t.Fatal(err)
+	}
+	first := s.Close()
+	if first != nil {
+		t.Fatal(first)
+	}
+	_ = s.Close() // bbolt answers for its own files; the intake must not panic
+}
