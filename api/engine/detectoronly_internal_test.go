@@ -22,9 +22,19 @@ import (
 // detector and reads the end-tidal readings of its span only (the other
 // kinds cannot change what it finds, pipeline.DetectorKind), and not the
 // patient's facts; after a new blood gas it reads every kind from the
-// start of the gas's dependency span, facts included.
+// start of the gas's dependency span, facts included. The same holds over
+// a store that copies the inputs out (store.InputScanner is optional).
 func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
 	t.Parallel()
+	for _, inPlace := range []bool{true, false} {
+		t.Run(fmt.Sprintf("in place %v", inPlace), func(t *testing.T) {
+			t.Parallel()
+			evaluationWithNoBloodGasInReach(t, inPlace)
+		})
+	}
+}
+
+func evaluationWithNoBloodGasInReach(t *testing.T, inPlace bool) {
 	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
 	if err != nil {
 		t.Fatal(err)
@@ -35,7 +45,14 @@ func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
 		t.Fatal(err)
 	}
 	counting := &patientReads{Store: st}
-	e, err := New(Config{Store: counting, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
+	var over store.Store = counting
+	if inPlace {
+		over = scanningPatientReads{counting, st}
+	}
+	if _, ok := over.(store.InputScanner); ok != inPlace {
+		t.Fatalf("the store shows its inputs in place: %v, want %v", ok, inPlace)
+	}
+	e, err := New(Config{Store: over, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -88,10 +105,25 @@ func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
 	}
 }
 
-// patientReads counts reads of patient facts.
+// patientReads counts reads of patient facts, over a store that one
+// process holds (the embedded store under it), which it copies inputs out
+// of: it hides the embedded store's in-place scan.
 type patientReads struct {
-	*boltstore.Store
+	store.Store
 	n atomic.Int64
+}
+
+func (p *patientReads) Exclusive() bool { return true }
+
+// scanningPatientReads is patientReads showing inputs in place as the
+// embedded store does.
+type scanningPatientReads struct {
+	*patientReads
+	scanner store.InputScanner
+}
+
+func (s scanningPatientReads) ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(store.InputRow) error) error {
+	return s.scanner.ScanInputsFrom(ctx, subject, from, fn)
 }
 
 func (p *patientReads) Patient(ctx context.Context, subject string) (store.Patient, error) {
