@@ -1,8 +1,8 @@
 package boltstore
 
 import (
+	"bytes"
 	"context"
-	"encoding/binary"
 	"errors"
 	"fmt"
 	"log/slog"
@@ -15,33 +15,36 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 )
 
-// The intake is a second bbolt file beside the store's, holding the
-// notifications that were answered but not yet applied to the store.
+// The intake is a journal file beside the store's (journal.go), holding
+// the notifications that were answered but not yet applied to the store.
 //
 // Why: a notification's inputs land on random pages of three indexes in
 // the main file (rows, input_at, input_owner), about six pages a reading,
-// and the sender waits for them to be written and synced. Measured on the
+// and the sender waited for them to be written and synced. Measured on the
 // webhook benchmark, the main file's single writer was busy nearly all
 // the time at about 3,000 notifications a second, and the syncs of
 // scattered pages cost about two and a half times as much as appended
-// ones (32 pages and two fdatasyncs: 1.5 ms against 0.64 ms here). The
-// intake appends each notification as one record (its pages are the last
-// ones of one bucket), so the sender waits only for an append, and an
-// applier moves the records into the main file in large transactions,
-// where readings of one patient share pages.
+// ones (32 pages and two fdatasyncs: 1.5 ms against 0.64 ms here); on this
+// kind of virtual disk a sync also costs CPU. The intake appends each
+// notification as one record, the records of the senders waiting together
+// written and synced at once (one fdatasync), so the sender waits only for
+// an append, and an applier moves the records into the main file in large
+// transactions, where readings of one patient share pages.
 //
 // What holds:
-//   - A notification is durable when PutNotified returns: its record is
-//     committed and synced in the intake file, in one transaction with the
-//     subscription's event counter, which therefore lives in the intake
-//     (the counter is never ahead of the inputs, as the store contract
-//     asks).
+//   - A notification is durable when PutNotified returns: its record, with
+//     the subscription's event number, is written and synced, and so is
+//     every record before it. The event counters are kept in memory in
+//     the order the records are written, so the previous number a call
+//     answers is the one durable before its record; a write that fails
+//     stops the intake (every call fails from then on, until a restart
+//     reads the file again), so no caller ever sees a counter ahead of
+//     the inputs. The applier writes the counters into the main file with
+//     the inputs.
 //   - The main file's meta records the highest sequence applied, in the
 //     same transaction as the inputs it applied, so a record is applied
-//     once: at Open the records after it are applied again before
-//     anything else reads the store (a crash between the two files'
-//     commits leaves records that are applied then, or were applied and
-//     are only deleted then).
+//     once: at Open the records after it are applied before anything else
+//     reads the store.
 //   - Reads see what is applied: a notification's inputs, and its
 //     patient's dirty mark, appear together once applied, at most
 //     DefaultIntakeDelay after the answer (at once for a blood gas). The
@@ -56,26 +59,17 @@ import (
 //     set: their results are not counted.
 //   - A record that cannot be applied (the main file fails) stays in the
 //     intake; the applier retries with back-off, and Settle and Stats
-//     return the error meanwhile, so readiness reports it.
-//
-// Layout of the intake file:
-//
-//	meta            "schema" → n
-//	entries         n(sequence) → record: now, then each input in full
-//	subscriptions   subscription → n(highest event number)
-var (
-	iEntries = []byte("entries")
-	// kApplied, in the main file's meta, is the highest intake sequence
-	// applied.
-	kApplied = []byte("intake_applied")
-)
+//     return the error meanwhile, so readiness reports it. At most
+//     maxPending records wait; beyond that PutNotified fails, and the
+//     sender retries later.
+
+// kApplied, in the main file's meta, is the highest intake sequence
+// applied.
+var kApplied = []byte("intake_applied")
 
 // IntakePath is the intake file of the store file at path. It belongs to
 // the store: copy, move or delete the two together.
 func IntakePath(path string) string { return path + ".intake" }
-
-// intakeSchema is the intake file's layout version.
-const intakeSchema = 1
 
 // applyBatch bounds one applier transaction: large enough that readings
 // of one patient share pages, small enough that a transaction stays short
@@ -83,26 +77,58 @@ const intakeSchema = 1
 const (
 	applyBatchRecords = 2048
 	applyBatchBytes   = 8 << 20
+	// maxPending bounds the records written but not applied (in memory
+	// and in the file) while the main file cannot take them.
+	maxPending = 200_000
+	// reuseAfter is how large the file may grow before it is started
+	// again from its beginning, once everything in it is applied.
+	reuseAfter = 16 << 20
 )
 
+// ErrIntakeFull means too many notifications wait to be applied: the main
+// file is failing or far behind. The caller answers so that the sender
+// retries later.
+var ErrIntakeFull = errors.New("boltstore: too many notifications wait to be applied")
+
+// intakeRecord is one notification: the inputs and the event number.
+type intakeRecord struct {
+	seq          uint64
+	subscription string
+	number       uint64
+	now          time.Time
+	inputs       []store.Input
+	size         int
+}
+
 type intake struct {
-	db    *bolt.DB
-	group *groupCommit
+	j     *journal
 	main  *Store
 	log   *slog.Logger
+	delay time.Duration // how long records wait to be applied together
 
 	mu        sync.Mutex
-	journaled uint64        // highest sequence committed in the intake
-	applied   uint64        // highest sequence applied to the main file
-	progress  chan struct{} // closed and replaced at each apply
-	failure   error         // the applier's error, until it applies again
+	next      uint64            // the next record's sequence
+	counters  map[string]uint64 // highest event number per subscription
+	framed    []byte            // records not yet written
+	unwritten []intakeRecord    // the same, decoded
+	durable   uint64            // highest sequence written and synced
+	written   chan struct{}     // closed and replaced at each write
+	broken    error             // a write failed: the intake takes nothing more
+	closed    bool
+	queue     []intakeRecord // durable, not applied, in order
+	applied   uint64         // highest sequence applied to the main file
+	progress  chan struct{}  // closed and replaced at each apply
+	failure   error          // the applier's error, until it applies again
+	hurry     bool           // apply without waiting: a blood gas, or a reader waits
 	onApplied func([]store.PutResult)
 
-	delay time.Duration // how long records wait to be applied together
-	wake  chan struct{} // something was journaled
-	now   chan struct{} // apply without waiting: a blood gas, or a reader waits (Settle)
-	stop  chan struct{}
-	done  chan struct{}
+	writeNow chan struct{} // records wait to be written, or the file may be reused
+	wake     chan struct{} // something was journaled
+	now      chan struct{} // apply without waiting: a blood gas, or a reader waits (Settle)
+	stop     chan struct{} // stops the applier
+	done     chan struct{}
+	wstop    chan struct{} // stops the writer, once it has written what waits
+	wdone    chan struct{}
 
 	closeOnce sync.Once
 	closeErr  error
@@ -111,158 +137,117 @@ type intake struct {
 // openIntake opens or creates the intake file beside the main one and
 // applies what an earlier process journaled but did not apply.
 func openIntake(path string, main *Store, opts Options, log *slog.Logger) (*intake, error) {
-	db, err := openDB(path, opts)
+	j, recs, err := openJournal(path, opts.NoSync)
 	if err != nil {
-		return nil, err
+		return nil, fmt.Errorf("intake: %w", err)
 	}
 	in := &intake{
-		db: db, group: &groupCommit{db: db}, main: main, log: log,
-		progress: make(chan struct{}),
-		delay:    opts.IntakeDelay,
-		wake:     make(chan struct{}, 1), now: make(chan struct{}, 1), stop: make(chan struct{}), done: make(chan struct{}),
+		j: j, main: main, log: log, delay: opts.IntakeDelay,
+		counters: map[string]uint64{}, written: make(chan struct{}), progress: make(chan struct{}),
+		writeNow: make(chan struct{}, 1), wake: make(chan struct{}, 1), now: make(chan struct{}, 1),
+		stop: make(chan struct{}), done: make(chan struct{}), wstop: make(chan struct{}), wdone: make(chan struct{}),
 	}
-	if err := in.init(); err != nil {
-		_ = db.Close()
+	if err := in.recover(recs); err != nil {
+		_ = j.close()
 		return nil, fmt.Errorf("intake %s: %w", path, err)
 	}
-	if err := in.recover(); err != nil {
-		_ = db.Close()
-		return nil, fmt.Errorf("intake %s: %w", path, err)
-	}
+	go in.writer()
 	go in.run()
 	return in, nil
 }
 
-// init creates the buckets, and carries the event counters a schema 4
-// store kept in its main file over into the intake, where they live now.
-func (in *intake) init() error {
-	var applied uint64
-	counters := map[string]uint64{}
+// recover reads the counters and the applied sequence from the main file,
+// applies the records after it, with progress lines when there are many,
+// and starts the file again from its beginning.
+func (in *intake) recover(recs []scanned) error {
 	if err := in.main.db.View(func(tx *bolt.Tx) error {
-		applied = getU64(tx.Bucket(bMeta), kApplied)
+		in.applied = getU64(tx.Bucket(bMeta), kApplied)
 		return tx.Bucket(bSubs).ForEach(func(k, v []byte) error {
 			if len(v) != 8 {
 				return fmt.Errorf("%w: event counter of %d bytes", ErrCorrupt, len(v))
 			}
-			counters[string(k)] = binary.BigEndian.Uint64(v)
+			in.counters[string(k)] = getU64(tx.Bucket(bSubs), k)
 			return nil
 		})
 	}); err != nil {
 		return err
 	}
-	return in.db.Update(func(tx *bolt.Tx) error {
-		meta, err := tx.CreateBucketIfNotExists(bMeta)
+	last := in.applied
+	for _, sc := range recs {
+		if sc.seq <= in.applied {
+			continue
+		}
+		rec, err := decodeJournalBody(sc.seq, sc.body)
 		if err != nil {
-			return err
+			// The frame's checksum held, so this is no torn write: the
+			// file holds what this build did not write.
+			return fmt.Errorf("%w: record %d: %w", ErrCorrupt, sc.seq, err)
 		}
-		if v := meta.Get(kSchema); v == nil {
-			if err := meta.Put(kSchema, u64(intakeSchema)); err != nil {
-				return err
-			}
-		} else if len(v) != 8 {
-			return fmt.Errorf("%w: intake schema version missing", ErrCorrupt)
-		} else if got := binary.BigEndian.Uint64(v); got > intakeSchema {
-			return fmt.Errorf("%w: intake has version %d, this build knows up to %d", ErrNewerSchema, got, intakeSchema)
-		}
-		entries, err := tx.CreateBucketIfNotExists(iEntries)
-		if err != nil {
-			return err
-		}
-		// An intake file lost or replaced must not hand out sequences the
-		// main file counts as applied.
-		if entries.Sequence() < applied {
-			if err := entries.SetSequence(applied); err != nil {
-				return err
-			}
-		}
-		subs, err := tx.CreateBucketIfNotExists(bSubs)
-		if err != nil {
-			return err
-		}
-		for sub, n := range counters {
-			if n > getU64(subs, []byte(sub)) {
-				if err := subs.Put([]byte(sub), u64(n)); err != nil {
-					return err
-				}
-			}
-		}
-		return nil
-	})
-}
-
-// recover applies every record after the main file's applied sequence,
-// with progress lines when there are many, and deletes those applied.
-func (in *intake) recover() error {
-	var applied, last uint64
-	if err := in.main.db.View(func(tx *bolt.Tx) error {
-		applied = getU64(tx.Bucket(bMeta), kApplied)
-		return nil
-	}); err != nil {
-		return err
+		in.queue = append(in.queue, rec)
+		in.counters[rec.subscription] = max(in.counters[rec.subscription], rec.number)
+		last = sc.seq
 	}
-	if err := in.db.View(func(tx *bolt.Tx) error {
-		last = tx.Bucket(iEntries).Sequence()
-		return nil
-	}); err != nil {
-		return err
+	if len(recs) > 0 {
+		last = max(last, recs[len(recs)-1].seq)
 	}
-	in.applied, in.journaled = applied, max(applied, last)
+	in.durable, in.next = last, last+1
 	start := time.Now()
-	for in.applied < in.journaled {
-		n, err := in.applyNext()
-		if err != nil {
+	for len(in.queue) > 0 {
+		if _, err := in.applyNext(); err != nil {
 			return fmt.Errorf("apply records left by the last run: %w", err)
 		}
-		if n == 0 {
-			break // sequences handed out by transactions that failed
-		}
 		if time.Since(start) > 2*time.Second {
-			in.log.Info("store: applying notifications received before the restart", "applied", in.applied, "of", in.journaled)
+			in.log.Info("store: applying notifications received before the restart", "left", len(in.queue))
 		}
 	}
-	in.applied = in.journaled
-	return in.deleteApplied()
+	in.j.reuse()
+	return nil
 }
 
 // put journals inputs with the subscription's event number and returns
-// the number it replaces. The record and the counter are one transaction.
+// the number it replaces, once the record is durable.
 func (in *intake) put(inputs []store.Input, now time.Time, subscription string, number uint64) (uint64, error) {
-	var rec []byte
-	if len(inputs) > 0 {
-		rec = encodeIntakeRecord(now, inputs)
+	if subscription == "" {
+		return 0, errors.New("empty subscription")
 	}
-	var seq, prev uint64
-	err := in.group.do(func(tx *bolt.Tx) error {
-		seq = 0
-		if rec != nil {
-			b := tx.Bucket(iEntries)
-			var err error
-			if seq, err = b.NextSequence(); err != nil {
-				return fmt.Errorf("intake sequence: %w", err)
-			}
-			if err := b.Put(u64(seq), rec); err != nil {
-				return err
-			}
-		}
-		var err error
-		prev, err = seenEvent(tx, subscription, number)
-		return err
-	})
-	if err != nil {
-		return 0, err
+	rest := encodeJournalRest(subscription, number, now, inputs)
+	// The inputs wait in memory until applied; the caller may reuse its
+	// buffers once answered.
+	inputs = slices.Clone(inputs)
+	for i := range inputs {
+		inputs[i].Payload = bytes.Clone(inputs[i].Payload)
+		inputs[i].Withdrawal = bytes.Clone(inputs[i].Withdrawal)
 	}
-	if seq > 0 {
-		in.mu.Lock()
-		in.journaled = max(in.journaled, seq)
+	in.mu.Lock()
+	switch {
+	case in.broken != nil:
 		in.mu.Unlock()
-		// A blood gas is applied at once, with whatever waits beside it:
-		// its derived values are what clinicians wait for. Device readings
-		// wait for the delay to gather more.
-		if slices.ContainsFunc(inputs, func(it store.Input) bool { return it.Urgent }) {
-			poke(in.now)
-		} else {
-			poke(in.wake)
-		}
+		return 0, fmt.Errorf("the intake stopped after a failed write: %w", in.broken)
+	case in.closed:
+		in.mu.Unlock()
+		return 0, errors.New("the store is closed")
+	case len(in.queue)+len(in.unwritten) >= maxPending:
+		in.mu.Unlock()
+		return 0, ErrIntakeFull
+	}
+	seq := in.next
+	in.next++
+	prev := in.counters[subscription]
+	in.counters[subscription] = max(prev, number)
+	body := appendUvarint(make([]byte, 0, 10+len(rest)), seq)
+	in.framed = frame(in.framed, append(body, rest...))
+	in.unwritten = append(in.unwritten, intakeRecord{seq: seq, subscription: subscription, number: number, now: now, inputs: inputs, size: len(rest)})
+	poke(in.writeNow)
+	for in.durable < seq && in.broken == nil {
+		ch := in.written
+		in.mu.Unlock()
+		<-ch
+		in.mu.Lock()
+	}
+	err := in.broken
+	in.mu.Unlock()
+	if err != nil {
+		return 0, fmt.Errorf("the intake stopped after a failed write: %w", err)
 	}
 	return prev, nil
 }
@@ -272,10 +257,69 @@ func (in *intake) seen(subscription string, number uint64) (uint64, error) {
 	return in.put(nil, time.Time{}, subscription, number)
 }
 
-// await returns once every record journaled before the call is applied.
+// writer writes what waits, the calls waiting together sharing one write
+// and one sync, and starts the file again once everything in it is
+// applied and it has grown.
+func (in *intake) writer() {
+	defer close(in.wdone)
+	for {
+		select {
+		case <-in.writeNow:
+		case <-in.wstop:
+			in.writeWaiting()
+			return
+		}
+		in.writeWaiting()
+	}
+}
+
+func (in *intake) writeWaiting() {
+	in.mu.Lock()
+	if len(in.framed) == 0 {
+		if in.applied == in.durable && in.j.off > reuseAfter {
+			in.j.reuse()
+		}
+		in.mu.Unlock()
+		return
+	}
+	b, recs := in.framed, in.unwritten
+	in.framed, in.unwritten = nil, nil
+	in.mu.Unlock()
+	err := in.j.write(b)
+	in.mu.Lock()
+	if err != nil {
+		in.broken = err
+	} else {
+		in.durable = recs[len(recs)-1].seq
+		in.queue = append(in.queue, recs...)
+	}
+	ch := in.written
+	in.written = make(chan struct{})
+	in.mu.Unlock()
+	close(ch)
+	if err != nil {
+		in.log.Error("store: writing the intake failed; notifications are refused until a restart", "err", err)
+		return
+	}
+	// A blood gas is applied at once, with whatever waits beside it: its
+	// derived values are what clinicians wait for. Device readings wait
+	// for the delay to gather more.
+	if slices.ContainsFunc(recs, func(r intakeRecord) bool {
+		return slices.ContainsFunc(r.inputs, func(it store.Input) bool { return it.Urgent })
+	}) {
+		in.mu.Lock()
+		in.hurry = true
+		in.mu.Unlock()
+		poke(in.now)
+	} else {
+		poke(in.wake)
+	}
+}
+
+// await returns once every record answered before the call is applied.
 func (in *intake) await(ctx context.Context) error {
 	in.mu.Lock()
-	target := in.journaled
+	target := in.durable
 	for in.applied < target {
 		if in.failure != nil {
 			err := in.failure
@@ -283,6 +327,7 @@ func (in *intake) await(ctx context.Context) error {
 			return fmt.Errorf("notifications received but not yet stored: %w", err)
 		}
 		ch := in.progress
+		in.hurry = true
 		in.mu.Unlock()
 		poke(in.now)
 		select {
@@ -302,7 +347,7 @@ func (in *intake) run() {
 	retry := time.Duration(0)
 	for {
 		in.mu.Lock()
-		behind := in.applied < in.journaled
+		behind, hurry := len(in.queue) > 0, in.hurry
 		in.mu.Unlock()
 		if !behind {
 			select {
@@ -313,7 +358,7 @@ func (in *intake) run() {
 			}
 			continue
 		}
-		if in.delay > 0 {
+		if in.delay > 0 && !hurry {
 			// Let the records of the next few milliseconds join these:
 			// readings of one patient then share their pages.
 			t := time.NewTimer(in.delay)
@@ -327,12 +372,6 @@ func (in *intake) run() {
 			t.Stop()
 		}
 		if _, err := in.applyNext(); err != nil {
-			in.mu.Lock()
-			in.failure = err
-			ch := in.progress
-			in.progress = make(chan struct{})
-			in.mu.Unlock()
-			close(ch)
 			in.log.Error("store: applying received notifications failed; retrying", "err", err)
 			retry = min(max(2*retry, 100*time.Millisecond), 5*time.Second)
 			select {
@@ -343,10 +382,8 @@ func (in *intake) run() {
 			continue
 		}
 		retry = 0
-		if err := in.deleteApplied(); err != nil {
-			in.log.Error("store: clearing applied notifications from the intake failed", "err", err)
-		}
-
+		// The file may be started again once everything is applied.
+		poke(in.writeNow)
 	}
 }
 
@@ -354,30 +391,15 @@ func (in *intake) run() {
 // returns how many it applied.
 func (in *intake) applyNext() (int, error) {
 	in.mu.Lock()
-	from := in.applied
+	n, size := 0, 0
+	for n < len(in.queue) && n < applyBatchRecords && size < applyBatchBytes {
+		size += in.queue[n].size
+		n++
+	}
+	recs := in.queue[:n:n]
+	in.hurry = false
 	in.mu.Unlock()
-	type record struct {
-		seq    uint64
-		now    time.Time
-		inputs []store.Input
-	}
-	var recs []record
-	size := 0
-	if err := in.db.View(func(tx *bolt.Tx) error {
-		c := tx.Bucket(iEntries).Cursor()
-		for k, v := c.Seek(u64(from + 1)); k != nil && len(recs) < applyBatchRecords && size < applyBatchBytes; k, v = c.Next() {
-			now, inputs, err := decodeIntakeRecord(v)
-			if err != nil {
-				return fmt.Errorf("record %d: %w", binary.BigEndian.Uint64(k), err)
-			}
-			recs = append(recs, record{binary.BigEndian.Uint64(k), now, inputs})
-			size += len(v)
-		}
-		return nil
-	}); err != nil {
-		return 0, err
-	}
-	if len(recs) == 0 {
+	if n == 0 {
 		return 0, nil
 	}
 	results := make([][]store.PutResult, len(recs))
@@ -388,10 +410,19 @@ func (in *intake) applyNext() (int, error) {
 			if err := putInputs(tx, r.inputs, r.now, results[i]); err != nil {
 				return fmt.Errorf("record %d: %w", r.seq, err)
 			}
+			if _, err := seenEvent(tx, r.subscription, r.number); err != nil {
+				return fmt.Errorf("record %d: %w", r.seq, err)
+			}
 		}
 		return tx.Bucket(bMeta).Put(kApplied, u64(last))
 	})
 	if err != nil {
+		in.mu.Lock()
+		in.failure = err
+		ch := in.progress
+		in.progress = make(chan struct{})
+		in.mu.Unlock()
+		close(ch)
 		return 0, err
 	}
 	in.mu.Lock()
@@ -403,48 +434,33 @@ func (in *intake) applyNext() (int, error) {
 		}
 	}
 	in.mu.Lock()
+	in.queue = in.queue[n:]
 	in.applied, in.failure = last, nil
 	ch := in.progress
 	in.progress = make(chan struct{})
 	in.mu.Unlock()
 	close(ch)
-	return len(recs), nil
+	return n, nil
 }
 
-// deleteApplied removes applied records from the intake, in a
-// transaction shared with the journal's.
-func (in *intake) deleteApplied() error {
-	in.mu.Lock()
-	applied := in.applied
-	in.mu.Unlock()
-	return in.group.do(func(tx *bolt.Tx) error {
-		c := tx.Bucket(iEntries).Cursor()
-		for k, _ := c.First(); k != nil && binary.BigEndian.Uint64(k) <= applied; k, _ = c.First() {
-			if err := c.Delete(); err != nil {
-				return err
-			}
-		}
-		return nil
-	})
-}
-
-// close applies what is left, stops the applier and closes the file.
+// close writes and applies what is left, stops the writer and the applier
+// and closes the file. What cannot be applied stays in the file for the
+// next Open.
 func (in *intake) close() error {
 	in.closeOnce.Do(func() { in.closeErr = in.closeNow() })
 	return in.closeErr
 }
 
 func (in *intake) closeNow() error {
+	in.mu.Lock()
+	in.closed = true
+	in.mu.Unlock()
 	close(in.stop)
 	<-in.done
+	close(in.wstop)
+	<-in.wdone
 	var err error
 	for {
-		in.mu.Lock()
-		behind := in.applied < in.journaled
-		in.mu.Unlock()
-		if !behind {
-			break
-		}
 		n, aerr := in.applyNext()
 		if aerr != nil {
 			err = aerr
@@ -454,10 +470,49 @@ func (in *intake) closeNow() error {
 			break
 		}
 	}
-	if err == nil {
-		err = in.deleteApplied()
+	return errors.Join(err, in.j.close())
+}
+
+func poke(ch chan struct{}) {
+	select {
+	case ch <- struct{}{}:
+	default:
 	}
-	return errors.Join(err, in.db.Close())
+}
+
+// A journal record's body: the sequence, the subscription and its event
+// number, then the intake record (now and the inputs).
+func encodeJournalRest(subscription string, number uint64, now time.Time, inputs []store.Input) []byte {
+	rec := encodeIntakeRecord(now, inputs)
+	e := encoder{b: make([]byte, 0, 16+len(subscription)+len(rec))}
+	e.str(subscription)
+	e.uvarint(number)
+	e.rest(rec)
+	return e.b
+}
+
+func appendUvarint(b []byte, v uint64) []byte {
+	e := encoder{b: b}
+	e.uvarint(v)
+	return e.b
+}
+
+// decodeJournalBody reads what follows the sequence in a record's body.
+func decodeJournalBody(seq uint64, b []byte) (intakeRecord, error) {
+	d := decoder{b: b}
+	sub := d.str()
+	number := d.uvarint()
+	if err := d.done("intake record"); err != nil {
+		return intakeRecord{}, err
+	}
+	now, inputs, err := decodeIntakeRecord(d.b)
+	if err != nil {
+		return intakeRecord{}, err
+	}
+	if sub == "" {
+		return intakeRecord{}, fmt.Errorf("intake record: %w: empty subscription", ErrCorrupt)
+	}
+	return intakeRecord{seq: seq, subscription: sub, number: number, now: now, inputs: inputs, size: len(b)}, nil
 }
 
 // Intake records: now, the number of inputs, then each input with every
@@ -535,11 +590,4 @@ func decodeIntakeRecord(v []byte) (time.Time, []store.Input, error) {
 		d.fail()
 	}
 	return now, inputs, d.done("intake record")
-}
-
-func poke(ch chan struct{}) {
-	select {
-	case ch <- struct{}{}:
-	default:
-	}
 }
