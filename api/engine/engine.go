@@ -220,17 +220,11 @@ func New(cfg Config) (*Engine, error) {
 	if cfg.Now == nil {
 		cfg.Now = time.Now
 	}
-	e := &Engine{
+	return &Engine{
 		cfg: cfg, log: cfg.Logger, now: cfg.Now, evaluators: defaultEvaluators,
 		wake: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
 		pictures: newPictures(),
-	}
-	if d, ok := cfg.Store.(store.Deferred); ok {
-		// The store counts what it did with a notification's inputs when
-		// it applies them, and that is when the evaluator has work.
-		d.OnApplied(e.stored)
-	}
-	return e, nil
+	}, nil
 }
 
 func signal(ch chan struct{}) {
@@ -583,23 +577,9 @@ func (e *Engine) Standalone() bool { return e.cfg.Client == nil }
 // SearchCodes returns the "system|code" tokens the engine searches for.
 func (e *Engine) SearchCodes() []string { return append([]string(nil), e.cfg.SearchCodes...) }
 
-// settle waits until the notifications answered so far are in the store,
-// for reads that answer a person (an auditor, an API client): what the
-// service acknowledged must be what they see. The evaluation does not
-// wait: it reads what the store has applied, and applying wakes it again.
-func (e *Engine) settle(ctx context.Context) error {
-	if d, ok := e.cfg.Store.(store.Deferred); ok {
-		return d.Settle(ctx)
-	}
-	return nil
-}
-
 // InputCount returns how many inputs the store holds for a patient, for
 // audits and tests that must show nothing was stored.
 func (e *Engine) InputCount(ctx context.Context, subject string) (int, error) {
-	if err := e.settle(ctx); err != nil {
-		return 0, fmt.Errorf("engine: %w", err)
-	}
 	ins, err := e.cfg.Store.Inputs(ctx, subject)
 	if err != nil {
 		return 0, fmt.Errorf("engine: %w", err)

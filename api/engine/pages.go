@@ -21,9 +21,6 @@ type StoredReading struct {
 // StoredReadings returns every input the store holds for a patient, in
 // the store's order. Only the binary head of each is decoded.
 func (e *Engine) StoredReadings(ctx context.Context, subject string) ([]StoredReading, error) {
-	if err := e.settle(ctx); err != nil {
-		return nil, fmt.Errorf("engine: stored readings: %w", err)
-	}
 	stored, err := e.cfg.Store.Inputs(ctx, subject)
 	if err != nil {
 		return nil, fmt.Errorf("engine: stored readings: %w", err)

@@ -453,9 +453,6 @@ func (e *Engine) Explain(ctx context.Context, rec Record) (Explanation, error) {
 // is the one explained.
 func (e *Engine) ExplainBloodGas(ctx context.Context, subject, ref string) (Explanation, error) {
 	logical, vid := splitVersion(ref)
-	if err := e.settle(ctx); err != nil {
-		return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)
-	}
 	in, err := e.cfg.Store.Input(ctx, subject, logical)
 	if err != nil {
 		return Explanation{}, fmt.Errorf("engine: explain blood gas: %w", err)

@@ -223,19 +223,6 @@ type Exclusive interface {
 	Exclusive() bool
 }
 
-// Deferred is implemented by a store whose PutNotified answers once the
-// notification is durable and applies its inputs moments later (the
-// embedded store's intake): reads see them once applied. Its PutNotified
-// results are nil; what it did with each notification's inputs reaches
-// the OnApplied function once they are applied, in the order the
-// notifications were answered. Settle waits until every notification
-// answered before the call is applied; Stats settles first, so that
-// work answered but not applied never reads as quiet.
-type Deferred interface {
-	OnApplied(fn func([]PutResult))
-	Settle(ctx context.Context) error
-}
-
 // InputScanner is implemented by a store that can show a patient's
 // stored inputs one at a time where they lie, without copying them (the
 // embedded store, from its memory map). An evaluation reads every input in

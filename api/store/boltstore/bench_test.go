@@ -6,8 +6,6 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
-	"sync"
-	"sync/atomic"
 	"testing"
 	"time"
 
@@ -240,74 +238,4 @@ func BenchmarkInputsFromRecent(b *testing.B) {
 	b.ReportMetric(float64(hs[0].spent.Nanoseconds())/float64(n), "1h-ns/read")
 	b.ReportMetric(float64(hs[1].spent.Nanoseconds())/float64(n), "12h-ns/read")
 	b.ReportMetric(float64(hs[1].spent)/float64(hs[0].spent), "12h/1h")
-}
-
-// BenchmarkNotifiedConcurrently measures the webhook's store path alone:
-// 16 senders each storing one-reading notifications, as fast as they are
-// answered, into a store holding 500 patients with an hour of minute
-// readings of five kinds. "intake" is PutNotified (the answer waits for the
-// intake's append; the applier gathers for DefaultIntakeDelay); "direct" is
-// the path before the intake, the inputs and the counter written into the
-// main file in one group commit, measured in the same run as the baseline.
-// Settle is inside the timed part, so what the applier still had to do is
-// counted.
-func BenchmarkNotifiedConcurrently(b *testing.B) {
-	const senders, patients, notes = 16, 500, 4000
-	for _, mode := range []string{"direct", "intake"} {
-		b.Run(mode, func(b *testing.B) {
-			for b.Loop() {
-				b.StopTimer()
-				s, _ := benchOpen(b, false)
-				r := rand.New(rand.NewPCG(1, 2))
-				subjects := fillPatients(b, s, r, patients, 5, 60)
-				if err := s.Settle(context.Background()); err != nil {
-					b.Fatal(err)
-				}
-				payload := make([]byte, benchPayload)
-				var next atomic.Int64
-				var wg sync.WaitGroup
-				b.StartTimer()
-				start := time.Now()
-				for range senders {
-					wg.Add(1)
-					go func() {
-						defer wg.Done()
-						ctx := context.Background()
-						for {
-							k := next.Add(1)
-							if k > notes {
-								return
-							}
-							at := benchStart.Add(time.Hour + time.Duration(k)*time.Millisecond)
-							in := []store.Input{{Subject: subjects[k%patients], Logical: fmt.Sprintf("Observation/n-%d", k), VersionID: "1", LastUpdated: at, EffectiveAt: at, ChangedAt: at, Payload: payload}}
-							var err error
-							if mode == "intake" {
-								_, _, err = s.PutNotified(ctx, in, at, "Subscription/bench", uint64(k))
-							} else {
-								err = s.batch(ctx, "PutNotified", func(tx *bolt.Tx) error {
-									if err := putInputs(tx, in, at, make([]store.PutResult, 1)); err != nil {
-										return err
-									}
-									_, err := seenEvent(tx, "Subscription/bench", uint64(k))
-									return err
-								})
-							}
-							if err != nil {
-								b.Error(err)
-								return
-							}
-						}
-					}()
-				}
-				wg.Wait()
-				if err := s.Settle(context.Background()); err != nil {
-					b.Fatal(err)
-				}
-				b.ReportMetric(notes/time.Since(start).Seconds(), "notifications/s")
-				b.StopTimer()
-				_ = s.Close()
-				b.StartTimer()
-			}
-		})
-	}
 }

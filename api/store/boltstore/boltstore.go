@@ -1,8 +1,6 @@
 // Package boltstore is the embedded [store.Store]: one bbolt file, written
 // by one process, every method one bbolt transaction, every change synced
-// to disk before the method returns. The exception is PutNotified: it
-// journals a notification in a second file, the intake, and the store
-// applies it moments later (see intake.go for why and what holds).
+// to disk before the method returns.
 //
 // # Layout
 //
@@ -112,26 +110,13 @@ type Options struct {
 	// NoSync skips fsync on commit. It breaks the durability the store
 	// promises and exists only for benchmarks.
 	NoSync bool
-	// IntakeDelay is how long a notification answered by PutNotified may
-	// wait in the intake so that those that follow are applied with it
-	// (DefaultIntakeDelay when zero, none when negative).
-	IntakeDelay time.Duration
 }
-
-// DefaultIntakeDelay lets the notifications of 20 ms be applied to the
-// store together. Measured on the webhook benchmark, applying them one
-// small group at a time wrote about five scattered pages per reading;
-// gathered, readings of one patient share pages. A device reading
-// therefore reaches its evaluation up to this much later; a blood gas is
-// applied at once, with whatever waits beside it.
-const DefaultIntakeDelay = 20 * time.Millisecond
 
 // Store is the bbolt implementation of [store.Store].
 type Store struct {
 	db     *bolt.DB
 	group  *groupCommit
 	clears pendingClears
-	intake *intake
 }
 
 var (
@@ -187,12 +172,6 @@ func Open(path string, opts Options) (*Store, error) {
 	if opts.Timeout <= 0 {
 		opts.Timeout = DefaultTimeout
 	}
-	switch {
-	case opts.IntakeDelay == 0:
-		opts.IntakeDelay = DefaultIntakeDelay
-	case opts.IntakeDelay < 0:
-		opts.IntakeDelay = 0
-	}
 	if err := os.MkdirAll(filepath.Dir(path), 0o700); err != nil {
 		return nil, fmt.Errorf("boltstore.Open: %w", err)
 	}
@@ -212,10 +191,6 @@ func Open(path string, opts Options) (*Store, error) {
 	if err := moveInputs(db, log); err != nil {
 		_ = db.Close()
 		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
-	}
-	if s.intake, err = openIntake(IntakePath(path), s, opts, log); err != nil {
-		_ = db.Close()
-		return nil, fmt.Errorf("boltstore.Open: %w", err)
 	}
 	return s, nil
 }
@@ -353,13 +328,10 @@ func migrate(tx *bolt.Tx, from uint64) error {
 
 // Close releases the file. It waits for transactions in progress.
 func (s *Store) Close() error {
-	// The notifications answered but not yet applied are applied now; a
-	// failure leaves them in the intake for the next Open.
-	ierr := s.intake.close()
 	// The clears held back are written now; losing them would only cost
 	// evaluations after the next start, so a failure here does not stop
 	// the close.
-	ferr := errors.Join(ierr, s.flushClears())
+	ferr := s.flushClears()
 	if err := s.db.Close(); err != nil {
 		return fmt.Errorf("boltstore.Close: %w", err)
 	}

@@ -71,54 +71,24 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 	return results, nil
 }
 
-// PutNotified journals the inputs and the event counter in one
-// transaction of the intake file and returns once it is durable; the
-// inputs are applied to the store afterwards (see intake). Its results
-// are therefore nil: they reach the OnApplied function. Inputs the store
-// would refuse are refused here, before anything is journaled.
+// PutNotified writes the inputs and the event counter in one transaction,
+// so a notification's answer costs one commit; the counter cannot be
+// durable without the inputs.
 func (s *Store) PutNotified(ctx context.Context, inputs []store.Input, now time.Time, subscription string, number uint64) ([]store.PutResult, uint64, error) {
-	if err := ctx.Err(); err != nil {
-		return nil, 0, fmt.Errorf("boltstore.PutNotified: %w", err)
-	}
-	if err := checkInputs(inputs); err != nil {
-		return nil, 0, fmt.Errorf("boltstore.PutNotified: %w", err)
-	}
-	prev, err := s.intake.put(inputs, now, subscription, number)
+	results := make([]store.PutResult, len(inputs))
+	var prev uint64
+	err := s.batch(ctx, "PutNotified", func(tx *bolt.Tx) error {
+		if err := putInputs(tx, inputs, now, results); err != nil {
+			return err
+		}
+		var err error
+		prev, err = seenEvent(tx, subscription, number)
+		return err
+	})
 	if err != nil {
-		return nil, 0, fmt.Errorf("boltstore.PutNotified: %w", err)
+		return nil, 0, err
 	}
-	return nil, prev, nil
-}
-
-// Settle returns once every notification PutNotified answered before the
-// call is applied, and asks the applier not to wait for more to join them.
-func (s *Store) Settle(ctx context.Context) error {
-	if err := s.intake.await(ctx); err != nil {
-		return fmt.Errorf("boltstore.Settle: %w", err)
-	}
-	return nil
-}
-
-// OnApplied sets the function that receives, in order, what the store did
-// with the inputs of each notification PutNotified journaled, once they
-// are applied.
-func (s *Store) OnApplied(fn func([]store.PutResult)) {
-	s.intake.mu.Lock()
-	s.intake.onApplied = fn
-	s.intake.mu.Unlock()
-}
-
-// checkInputs is what putInputs refuses for the inputs themselves.
-func checkInputs(inputs []store.Input) error {
-	for i, in := range inputs {
-		if err := checkSubject(in.Subject); err != nil {
-			return fmt.Errorf("input %d: %w", i, err)
-		}
-		if in.Logical == "" {
-			return fmt.Errorf("input %d: empty logical reference", i)
-		}
-	}
-	return nil
+	return results, prev, nil
 }
 
 // putInputs applies inputs in order, writing each one's result into
@@ -126,10 +96,13 @@ func checkInputs(inputs []store.Input) error {
 func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store.PutResult) error {
 	var changed []string
 	spans := map[string]store.Span{}
-	if err := checkInputs(inputs); err != nil {
-		return err
-	}
 	for i, in := range inputs {
+		if err := checkSubject(in.Subject); err != nil {
+			return fmt.Errorf("input %d: %w", i, err)
+		}
+		if in.Logical == "" {
+			return fmt.Errorf("input %d: empty logical reference", i)
+		}
 		res, touched, err := putInput(tx, in)
 		if err != nil {
 			return fmt.Errorf("input %d: %w", i, err)

@@ -61,12 +61,9 @@ func deleteWrite(tx *bolt.Tx, id uint64) error {
 // Acknowledge removes the write and records server ids. A series that is
 // not in the ledger fails the whole call: the ledger and the outbox are
 // written together, so it means the caller mixed up writes, and dropping
-// the ids silently would lose the link to the server's resource. Like the
-// outbox's other updates it shares a commit with the transactions beside
-// it: a commit of its own held the single writer from ingest and
-// evaluation for about a millisecond per acknowledgement.
+// the ids silently would lose the link to the server's resource.
 func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error {
-	return s.batch(ctx, "Acknowledge", func(tx *bolt.Tx) error {
+	return s.update(ctx, "Acknowledge", func(tx *bolt.Tx) error {
 		if _, err := getWrite(tx, writeID); err != nil {
 			return err
 		}
@@ -90,7 +87,7 @@ func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[stri
 
 // Reschedule records a failed attempt.
 func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
-	return s.batch(ctx, "Reschedule", func(tx *bolt.Tx) error {
+	return s.update(ctx, "Reschedule", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)
 		if err != nil {
 			return err
@@ -103,7 +100,7 @@ func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.T
 
 // Bury moves a write to the dead letters, keyed by burial order.
 func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
-	return s.batch(ctx, "Bury", func(tx *bolt.Tx) error {
+	return s.update(ctx, "Bury", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)
 		if err != nil {
 			return err
@@ -150,12 +147,6 @@ func (s *Store) DeadLetters(ctx context.Context, limit int) ([]store.DeadLetter,
 // the lowest write id, the first one committed.
 func (s *Store) Stats(ctx context.Context) (store.Stats, error) {
 	var st store.Stats
-	// Notifications answered but not applied are work in progress like
-	// dirty patients: Stats counts them once applied, so that a caller
-	// waiting for the store to be quiet does not see it quiet early.
-	if err := s.intake.await(ctx); err != nil {
-		return st, fmt.Errorf("boltstore.Stats: %w", err)
-	}
 	err := s.view(ctx, "Stats", func(tx *bolt.Tx) error {
 		meta := tx.Bucket(bMeta)
 		st.OutboxDepth = int(getU64(meta, kOutboxN))
@@ -193,7 +184,7 @@ func (s *Store) Cursor(ctx context.Context, name string) (string, error) {
 
 // SetCursor sets a named value; "" removes it, which reads back the same.
 func (s *Store) SetCursor(ctx context.Context, name, value string) error {
-	return s.batch(ctx, "SetCursor", func(tx *bolt.Tx) error {
+	return s.update(ctx, "SetCursor", func(tx *bolt.Tx) error {
 		if name == "" {
 			return errors.New("empty cursor name")
 		}
@@ -207,15 +198,15 @@ func (s *Store) SetCursor(ctx context.Context, name, value string) error {
 
 // SeenEvent keeps the highest number seen; a lower or repeated number
 // (a redelivery) leaves it alone.
-// The counters live in the intake file, beside the notifications whose
-// inputs PutNotified journals with them.
 func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
-	if err := ctx.Err(); err != nil {
-		return 0, fmt.Errorf("boltstore.SeenEvent: %w", err)
-	}
-	prev, err := s.intake.seen(subscription, number)
+	var prev uint64
+	err := s.batch(ctx, "SeenEvent", func(tx *bolt.Tx) error {
+		var err error
+		prev, err = seenEvent(tx, subscription, number)
+		return err
+	})
 	if err != nil {
-		return 0, fmt.Errorf("boltstore.SeenEvent: %w", err)
+		return 0, err
 	}
 	return prev, nil
 }

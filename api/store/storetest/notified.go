@@ -2,7 +2,6 @@ package storetest
 
 import (
 	"slices"
-	"sync"
 	"testing"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
@@ -11,22 +10,10 @@ import (
 // testPutNotified checks that PutNotified answers as PutInputs and then
 // SeenEvent would, and that a refused batch leaves the event counter
 // where it was: a notification whose content was not stored must not pass
-// for one already seen when the sender retries it. A store that applies
-// the inputs after answering (store.Deferred) gives the same results to
-// its OnApplied function, before a read that follows can see the inputs.
+// for one already seen when the sender retries it.
 func testPutNotified(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
 	ctx := t.Context()
-	var mu sync.Mutex
-	var applied [][]store.PutResult
-	deferred, isDeferred := s.(store.Deferred)
-	if isDeferred {
-		deferred.OnApplied(func(res []store.PutResult) {
-			mu.Lock()
-			applied = append(applied, res)
-			mu.Unlock()
-		})
-	}
 	steps := []struct {
 		name   string
 		inputs []store.Input
@@ -42,17 +29,6 @@ func testPutNotified(t *testing.T, open func(t *testing.T) store.Store) {
 	for _, st := range steps {
 		res, prev, err := s.PutNotified(ctx, st.inputs, t0, "Subscription/x", st.number)
 		must(t, err)
-		if isDeferred {
-			if res != nil {
-				t.Errorf("%s: a deferred store answered results %v before applying", st.name, res)
-			}
-			must(t, deferred.Settle(ctx))
-			mu.Lock()
-			if len(applied) > 0 {
-				res, applied = applied[len(applied)-1], applied[:0]
-			}
-			mu.Unlock()
-		}
 		if !slices.Equal(res, st.want) || prev != st.prev {
 			t.Errorf("%s: PutNotified = %v, %d; want %v, %d", st.name, res, prev, st.want, st.prev)
 		}
