@@ -1,8 +1,6 @@
 package client
 
 import (
-	"bytes"
-
 	"github.com/deadspace-fhir/deadspace/fhir/jsonscan"
 )
 
@@ -50,7 +48,7 @@ func inspectFast(body []byte, b *requestBundleJSON) bool {
 	s.Reset(body)
 	str := func(dst *string) bool { return scanString(&s, dst) }
 	request := func(r *requestJSON) bool {
-		return scanObject(&s, requestNames[:], func(i int) bool {
+		return s.Members(requestNames[:], func(i int) bool {
 			if i == 0 {
 				return str(&r.Method)
 			}
@@ -72,7 +70,7 @@ func inspectFast(body []byte, b *requestBundleJSON) bool {
 			}
 			b.Entry = append(b.Entry, requestEntryJSON{})
 			e := &b.Entry[len(b.Entry)-1]
-			if !scanObject(&s, entryNames[:], func(int) bool {
+			if !s.Members(entryNames[:], func(int) bool {
 				e.Request = new(requestJSON)
 				return request(e.Request)
 			}) {
@@ -80,7 +78,7 @@ func inspectFast(body []byte, b *requestBundleJSON) bool {
 			}
 		}
 	}
-	return scanObject(&s, bundleNames[:], func(i int) bool {
+	return s.Members(bundleNames[:], func(i int) bool {
 		switch i {
 		case 0:
 			return str(&b.ResourceType)
@@ -97,7 +95,7 @@ func inspectFast(body []byte, b *requestBundleJSON) bool {
 func metaFast(body []byte, m *wireMeta) bool {
 	var s jsonscan.Scanner
 	s.Reset(body)
-	return scanObject(&s, metaNames[:], func(i int) bool {
+	return s.Members(metaNames[:], func(i int) bool {
 		switch i {
 		case 0:
 			return scanString(&s, &m.ResourceType)
@@ -108,7 +106,7 @@ func metaFast(body []byte, m *wireMeta) bool {
 			VersionID   string `json:"versionId"`
 			LastUpdated string `json:"lastUpdated"`
 		}{}
-		return scanObject(&s, versionNames[:], func(i int) bool {
+		return s.Members(versionNames[:], func(i int) bool {
 			if i == 0 {
 				return scanString(&s, &m.Meta.VersionID)
 			}
@@ -126,62 +124,4 @@ func scanString(s *jsonscan.Scanner, dst *string) bool {
 	text, raw, err := s.Str()
 	*dst = jsonscan.Unquote(text, raw)
 	return err == nil
-}
-
-// scanObject reads an object, calling member with the index in names of
-// each member named exactly so and skipping the others; it reports false
-// for a value that is not an object, a repeated member, or a name
-// encoding/json might match to one of names by folding case.
-func scanObject(s *jsonscan.Scanner, names []string, member func(i int) bool) bool {
-	if s.Peek() != jsonscan.Object || s.Object() != nil {
-		return false
-	}
-	var seen uint32
-	for first := true; ; first = false {
-		name, more, err := s.Member(first)
-		switch {
-		case err != nil:
-			return false
-		case !more:
-			return true
-		}
-		i := -1
-		for j, n := range names {
-			if string(name) == n {
-				i = j
-				break
-			}
-		}
-		switch {
-		case i >= 0 && seen&(1<<i) != 0:
-			return false
-		case i >= 0:
-			seen |= 1 << i
-			if !member(i) {
-				return false
-			}
-		case foldsToName(names, name):
-			return false
-		default:
-			if _, err := s.Skip(); err != nil {
-				return false
-			}
-		}
-	}
-}
-
-// foldsToName says whether name is outside ASCII or equals one of names
-// ignoring ASCII case.
-func foldsToName(names []string, name []byte) bool {
-	for _, c := range name {
-		if c >= 0x80 {
-			return true
-		}
-	}
-	for _, n := range names {
-		if bytes.EqualFold([]byte(n), name) {
-			return true
-		}
-	}
-	return false
 }

@@ -123,80 +123,10 @@ func fillObservation(line []byte, o *observationJSON) bool {
 }
 
 // object reads an object whose fields are names, calling member with the
-// index of each field that appears; other members are skipped.
+// index of each field that appears; other members are skipped (see
+// jsonscan.Scanner.Members for what sends it back to encoding/json).
 func (f *fastFill) object(names []string, member func(i int) bool) bool {
-	if f.s.Peek() != jsonscan.Object || f.s.Object() != nil {
-		return false
-	}
-	var seen uint32 // no struct here has more than 32 fields
-	for first := true; ; first = false {
-		name, more, err := f.s.Member(first)
-		switch {
-		case err != nil:
-			return false
-		case !more:
-			return true
-		}
-		i := fieldIndex(names, name)
-		switch {
-		case i >= 0 && seen&(1<<i) != 0:
-			return false
-		case i >= 0:
-			seen |= 1 << i
-			if !member(i) {
-				return false
-			}
-		case foldsToField(names, name):
-			return false
-		default:
-			if _, err := f.s.Skip(); err != nil {
-				return false
-			}
-		}
-	}
-}
-
-func fieldIndex(names []string, name []byte) int {
-	for i, n := range names {
-		if string(name) == n {
-			return i
-		}
-	}
-	return -1
-}
-
-// foldsToField says whether encoding/json might match name to one of
-// names although it is not spelled exactly so: an ASCII name that equals a
-// field's ignoring case, or any name outside ASCII, where Unicode case
-// folding (the Kelvin sign for k, the long s for s) is not worth repeating.
-func foldsToField(names []string, name []byte) bool {
-	for _, c := range name {
-		if c >= 0x80 {
-			return true
-		}
-	}
-	for _, n := range names {
-		if len(n) == len(name) && asciiEqualFold(n, name) {
-			return true
-		}
-	}
-	return false
-}
-
-func asciiEqualFold(a string, b []byte) bool {
-	for i := range len(a) {
-		if lower(a[i]) != lower(b[i]) {
-			return false
-		}
-	}
-	return true
-}
-
-func lower(c byte) byte {
-	if 'A' <= c && c <= 'Z' {
-		return c + 'a' - 'A'
-	}
-	return c
+	return f.s.Members(names, member)
 }
 
 func (f *fastFill) str(dst *string) bool {

@@ -419,3 +419,83 @@ func (s *Scanner) Elem(first bool) (more bool, err error) {
 	}
 	return true, nil
 }
+
+// Members reads an object the way a fast path held to encoding/json must:
+// member is called with the index in names of each member spelled exactly
+// so, and other members are skipped. It reports false for a value that is
+// not an object, malformed JSON, a known member given twice, a member whose
+// name encoding/json might match to one of names although it is not spelled
+// exactly so (an ASCII name equal to one ignoring case, or any name outside
+// ASCII, where Unicode case folding is not worth repeating), or when member
+// reports false; the caller then falls back to encoding/json. names holds at
+// most 32 names.
+func (s *Scanner) Members(names []string, member func(i int) bool) bool {
+	if s.Peek() != Object || s.Object() != nil {
+		return false
+	}
+	var seen uint32
+	for first := true; ; first = false {
+		name, more, err := s.Member(first)
+		switch {
+		case err != nil:
+			return false
+		case !more:
+			return true
+		}
+		i := nameIndex(names, name)
+		switch {
+		case i >= 0 && seen&(1<<i) != 0:
+			return false
+		case i >= 0:
+			seen |= 1 << i
+			if !member(i) {
+				return false
+			}
+		case foldsToName(names, name):
+			return false
+		default:
+			if _, err := s.Skip(); err != nil {
+				return false
+			}
+		}
+	}
+}
+
+func nameIndex(names []string, name []byte) int {
+	for i, n := range names {
+		if string(name) == n {
+			return i
+		}
+	}
+	return -1
+}
+
+func foldsToName(names []string, name []byte) bool {
+	for _, c := range name {
+		if c >= 0x80 {
+			return true
+		}
+	}
+	for _, n := range names {
+		if len(n) == len(name) && asciiEqualFold(n, name) {
+			return true
+		}
+	}
+	return false
+}
+
+func asciiEqualFold(a string, b []byte) bool {
+	for i := range len(a) {
+		if asciiLower(a[i]) != asciiLower(b[i]) {
+			return false
+		}
+	}
+	return true
+}
+
+func asciiLower(c byte) byte {
+	if 'A' <= c && c <= 'Z' {
+		return c + 'a' - 'A'
+	}
+	return c
+}

@@ -128,3 +128,38 @@ func agree(t *testing.T, data []byte) {
 		}
 	}
 }
+
+// Members reads only what encoding/json would read the same way: a name
+// encoding/json could match by folding case, or a known member twice
+// (encoding/json keeps the last), sends the caller back to it.
+func TestMembers(t *testing.T) {
+	names := []string{"resourceType", "id"}
+	for _, tc := range []struct {
+		name, doc string
+		ok        bool
+		seen      string // indexes of the members given to member, in order
+	}{
+		{"both, in any order", `{"id":"x","resourceType":"Patient"}`, true, "10"},
+		{"an unknown member skipped", `{"meta":{"a":[1,2]},"id":"x"}`, true, "1"},
+		{"empty object", `{}`, true, ""},
+		{"a known member twice", `{"id":"x","id":"y"}`, false, "1"},
+		{"a name in another case", `{"ID":"x"}`, false, ""},
+		{"a name outside ASCII", `{"ıd":"x"}`, false, ""},
+		{"not an object", `["id"]`, false, ""},
+		{"malformed", `{"id" "x"}`, false, ""},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			var s jsonscan.Scanner
+			s.Reset([]byte(tc.doc))
+			var seen []byte
+			ok := s.Members(names, func(i int) bool {
+				seen = append(seen, byte('0'+i))
+				_, err := s.Skip()
+				return err == nil
+			})
+			if ok != tc.ok || string(seen) != tc.seen {
+				t.Errorf("Members = %v after %q, want %v after %q", ok, seen, tc.ok, tc.seen)
+			}
+		})
+	}
+}
