@@ -58,12 +58,16 @@ func deleteWrite(tx *bolt.Tx, id uint64) error {
 	return addCounter(tx, kOutboxN, -1)
 }
 
+// Acknowledge, Reschedule and Bury go through the group commit (batch),
+// like ingest: a commit of their own would hold the file's single writer
+// for a whole sync, during which no webhook answer can be made durable.
+
 // Acknowledge removes the write and records server ids. A series that is
 // not in the ledger fails the whole call: the ledger and the outbox are
 // written together, so it means the caller mixed up writes, and dropping
 // the ids silently would lose the link to the server's resource.
 func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error {
-	return s.update(ctx, "Acknowledge", func(tx *bolt.Tx) error {
+	return s.batch(ctx, "Acknowledge", func(tx *bolt.Tx) error {
 		if _, err := getWrite(tx, writeID); err != nil {
 			return err
 		}
@@ -87,7 +91,7 @@ func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[stri
 
 // Reschedule records a failed attempt.
 func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
-	return s.update(ctx, "Reschedule", func(tx *bolt.Tx) error {
+	return s.batch(ctx, "Reschedule", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)
 		if err != nil {
 			return err
@@ -100,7 +104,7 @@ func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.T
 
 // Bury moves a write to the dead letters, keyed by burial order.
 func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
-	return s.update(ctx, "Bury", func(tx *bolt.Tx) error {
+	return s.batch(ctx, "Bury", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)
 		if err != nil {
 			return err
