@@ -11,8 +11,10 @@
 //	meta            "schema" → n, and the counters Stats reads
 //	input_rows      subject 0 t(EffectiveAt) ⧺ logical → input  (Inputs,
 //	                InputsFrom: a range scan; Prune: each patient's head)
-//	input_at        subject 0 logical → t(EffectiveAt), where the input's
-//	                row is  (Input, the version rule)
+//	input_place     logical → the owner flag and, for each subject that
+//	                holds a row of the input, subject and t(EffectiveAt),
+//	                where the row is  (Input, Owner, the version rule;
+//	                schema 5)
 //	patients        subject → patient facts
 //	dirty           subject → since, generation  (bucket sequence = generation)
 //	ledger          series → entry
@@ -24,7 +26,6 @@
 //	cursors         name → value
 //	subscriptions   subscription → n(highest event number)
 //	feed            n(Seq) → event  (bucket sequence = Seq)
-//	input_owner     logical → subject of the latest version  (schema 2)
 //	results         id 0 version → result  (schema 3)
 //	results_by_time t(EffectiveAt) ⧺ id 0 version → ∅  (PruneHistory)
 //	ledger_versions key → series 0 entry, the entry as it stood under an
@@ -35,9 +36,10 @@
 // (schema 4), so that a read from a time on touches only the rows it
 // returns, however long the retained history before it: the evaluation
 // of a new reading reads a short recent span. The row holds the whole
-// input; input_at, keyed as the inputs were before schema 4, holds only
-// the time key that finds the row, so a version check or an Input costs
-// two lookups and the disk per input grows by about one time key. Prune
+// input; input_place holds the time key that finds the row and which
+// subject holds the latest version, so a version check or an Input costs
+// two lookups, and an ingest writes the row and one place record (see
+// places for why the two indexes of schema 4 became one). Prune
 // has no index across patients: it seeks each patient's first row in
 // turn, one seek per patient, and deletes the rows before the horizon.
 //
@@ -82,7 +84,7 @@ var (
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
 // migrate.
-const schemaVersion = 4
+const schemaVersion = 5
 
 // Errors of Open, to be matched with errors.Is.
 var (
@@ -121,10 +123,11 @@ type Store struct {
 
 var (
 	bMeta = []byte("meta")
-	// bInputRows and bInputAt replace the inputs and inputs_by_time
-	// buckets of schema 3 and earlier (schema 4).
-	bInputRows    = []byte("input_rows")
-	bInputAt      = []byte("input_at")
+	// bInputRows replaces the inputs and inputs_by_time buckets of
+	// schema 3 and earlier (schema 4).
+	bInputRows = []byte("input_rows")
+	// bInputPlace replaces input_at and input_owner (schema 5).
+	bInputPlace   = []byte("input_place")
 	bPatients     = []byte("patients")
 	bDirty        = []byte("dirty")
 	bLedger       = []byte("ledger")
@@ -136,9 +139,6 @@ var (
 	bCursors      = []byte("cursors")
 	bSubs         = []byte("subscriptions")
 	bFeed         = []byte("feed")
-	// bInputOwner maps a logical reference to the subject whose latest
-	// stored version it is (schema 2).
-	bInputOwner = []byte("input_owner")
 	// Schema 3: results once per version, earlier entry versions, and the
 	// expiry index of the ledger.
 	bResults        = []byte("results")
@@ -147,9 +147,9 @@ var (
 	bLedgerExpiry   = []byte("ledger_expiry")
 
 	allBuckets = [][]byte{
-		bMeta, bInputRows, bInputAt, bPatients, bDirty, bLedger,
+		bMeta, bInputRows, bInputPlace, bPatients, bDirty, bLedger,
 		bLedgerBySubj, bLedgerByTime, bLedgerByKey, bOutbox, bDead,
-		bCursors, bSubs, bFeed, bInputOwner,
+		bCursors, bSubs, bFeed,
 		bResults, bResultsByTime, bLedgerVersions, bLedgerExpiry,
 	}
 
@@ -158,6 +158,11 @@ var (
 	// schema 4 reads them; it deletes them when it is done.
 	bOldInputs       = []byte("inputs")
 	bOldInputsByTime = []byte("inputs_by_time")
+	// The indexes of schema 4 that input_place replaces: input_at
+	// (subject 0 logical → t) and input_owner (logical → subject of the
+	// latest version, since schema 2). Only the moves read them.
+	bOldInputAt    = []byte("input_at")
+	bOldInputOwner = []byte("input_owner")
 
 	kSchema = []byte("schema")
 	// Counters read by Stats.
@@ -189,6 +194,10 @@ func Open(path string, opts Options) (*Store, error) {
 		log = slog.Default()
 	}
 	if err := moveInputs(db, log); err != nil {
+		_ = db.Close()
+		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
+	}
+	if err := movePlaces(db, log); err != nil {
 		_ = db.Close()
 		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
 	}
@@ -267,17 +276,18 @@ func (s *Store) init() error {
 // that every bucket exists then catches a file damaged by hand.
 //
 // Version 2 adds the owner index of inputs, built here from the inputs.
-// Version 4 creates the time-ordered input buckets and records the new
-// version at once, so that an older build refuses the file from then on;
-// moveInputs then moves the inputs into them in batches (a large store's
-// move does not have to fit one transaction, and a move cut short resumes
-// at the next Open).
+// Version 4 creates the time-ordered input bucket and version 5 the place
+// index; each records the new version at once, so that an older build
+// refuses the file from then on. moveInputs then moves the inputs of
+// schema 3 into their rows, and movePlaces the indexes of schema 4 into
+// places, in batches (a large store's move does not have to fit one
+// transaction, and a move cut short resumes at the next Open).
 func migrate(tx *bolt.Tx, from uint64) error {
 	if from < 4 && tx.Bucket(bOldInputs) == nil {
 		return fmt.Errorf("%w: schema %d without its bucket %s", ErrCorrupt, from, bOldInputs)
 	}
 	if from < 2 {
-		owner, err := tx.CreateBucketIfNotExists(bInputOwner)
+		owner, err := tx.CreateBucketIfNotExists(bOldInputOwner)
 		if err != nil {
 			return fmt.Errorf("migrate to schema 2: %w", err)
 		}
@@ -315,13 +325,22 @@ func migrate(tx *bolt.Tx, from uint64) error {
 		}
 	}
 	if from < 4 {
-		for _, name := range [][]byte{bInputRows, bInputAt} {
-			if _, err := tx.CreateBucketIfNotExists(name); err != nil {
-				return fmt.Errorf("migrate to schema 4: %w", err)
-			}
+		if _, err := tx.CreateBucketIfNotExists(bInputRows); err != nil {
+			return fmt.Errorf("migrate to schema 4: %w", err)
 		}
 		if err := tx.Bucket(bMeta).Put(kSchema, u64(4)); err != nil {
 			return fmt.Errorf("migrate to schema 4: %w", err)
+		}
+	}
+	if from == 4 && (tx.Bucket(bOldInputAt) == nil || tx.Bucket(bOldInputOwner) == nil) {
+		return fmt.Errorf("%w: schema 4 without its input indexes", ErrCorrupt)
+	}
+	if from < 5 {
+		if _, err := tx.CreateBucketIfNotExists(bInputPlace); err != nil {
+			return fmt.Errorf("migrate to schema 5: %w", err)
+		}
+		if err := tx.Bucket(bMeta).Put(kSchema, u64(5)); err != nil {
+			return fmt.Errorf("migrate to schema 5: %w", err)
 		}
 	}
 	for _, name := range allBuckets {

@@ -176,7 +176,7 @@ func setSchema(t *testing.T, path string, version uint64) {
 func TestNewerSchemaRefused(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "deadspace.db")
 	must(t, openAt(t, path).Close())
-	setSchema(t, path, 5)
+	setSchema(t, path, 6)
 	s, err := boltstore.Open(path, boltstore.Options{})
 	if err == nil {
 		s.Close()
@@ -187,7 +187,7 @@ func TestNewerSchemaRefused(t *testing.T) {
 	}
 	// The refusal releases the file: an older build must not keep a
 	// newer file locked.
-	setSchema(t, path, 4)
+	setSchema(t, path, 5)
 	must(t, openAt(t, path).Close())
 }
 

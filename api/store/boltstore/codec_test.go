@@ -2,6 +2,7 @@ package boltstore
 
 import (
 	"bytes"
+	"reflect"
 	"slices"
 	"testing"
 	"time"
@@ -80,7 +81,18 @@ func FuzzDecode(f *testing.F) {
 	f.Add(encodeDead(store.DeadLetter{Write: store.Write{Series: []string{"s"}, NotBefore: at}, Reason: "r"}))
 	f.Add(encodeEvent(store.Event{Series: "s", At: at}))
 	f.Add([]byte{0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0x01})
+	f.Add(places{owned: true, list: []place{{"Patient/a", appendTimeKey(nil, at)}, {"Patient/b", appendTimeKey(nil, at)}}}.encode())
 	f.Fuzz(func(t *testing.T, b []byte) {
+		// A place record that decodes reads back the same once encoded,
+		// and its owner is one of its places.
+		if p, err := decodePlaces(b); err == nil {
+			if again, err := decodePlaces(p.encode()); err != nil || !reflect.DeepEqual(again, p) {
+				t.Errorf("places %x read %+v, and encoded read back %+v, %v", b, p, again, err)
+			}
+			if o := p.owner(); o != "" && p.timeOf(o) == nil {
+				t.Errorf("places %x: owner %q holds no place", b, o)
+			}
+		}
 		_, _ = decodeInput("s", "l", b)
 		_, _, _, _ = decodeInputHead(b)
 		// The scan's split checks what splitInput checks and returns the

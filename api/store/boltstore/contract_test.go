@@ -54,10 +54,10 @@ func sameKeys(name string, got [][]byte, want [][]byte) error {
 }
 
 func checkConsistent(tx *bolt.Tx) error {
-	// Every row sits at its input's effective time, and input_at points at
-	// each row once: a second row of one input would show as a key twice.
-	var want [][]byte
-	at := tx.Bucket(bInputAt)
+	// Every row sits at its input's effective time, and input_place points
+	// at each row once: a second row of one input under one subject would
+	// show as a place twice, a place without its row as one too many.
+	var want, have [][]byte
 	err := tx.Bucket(bInputRows).ForEach(func(k, v []byte) error {
 		i := bytes.IndexByte(k, sep)
 		if i < 0 || len(k) < i+1+timeKeyLen {
@@ -71,18 +71,44 @@ func checkConsistent(tx *bolt.Tx) error {
 		if !bytes.Equal(t, appendTimeKey(nil, eff)) {
 			return fmt.Errorf("input row %q is not at its effective time %v", k, eff)
 		}
-		key := append(bytes.Clone(k[:i+1]), k[i+1+timeKeyLen:]...)
-		if p := at.Get(key); !bytes.Equal(p, t) {
-			return fmt.Errorf("input_at %q → %x, its row is at %x", key, p, t)
+		subject, logical := string(k[:i]), k[i+1+timeKeyLen:]
+		pl, err := getPlaces(tx, logical)
+		if err != nil {
+			return err
 		}
-		want = append(want, key)
+		if p := pl.timeOf(subject); !bytes.Equal(p, t) {
+			return fmt.Errorf("input_place %q of %s → %x, its row is at %x", logical, subject, p, t)
+		}
+		want = append(want, subjectKey(subject, string(logical)))
 		return nil
 	})
 	if err != nil {
 		return err
 	}
-	if err := sameKeys("input_at", keysOf(at), want); err != nil {
+	err = tx.Bucket(bInputPlace).ForEach(func(k, v []byte) error {
+		pl, err := decodePlaces(v)
+		if err != nil {
+			return err
+		}
+		if len(pl.list) == 0 {
+			return fmt.Errorf("input_place %q holds no place", k)
+		}
+		for _, p := range pl.list {
+			have = append(have, subjectKey(p.subject, string(k)))
+		}
+		return nil
+	})
+	if err != nil {
 		return err
+	}
+	slices.SortFunc(have, bytes.Compare)
+	if err := sameKeys("input_place", have, want); err != nil {
+		return err
+	}
+	for _, name := range [][]byte{bOldInputAt, bOldInputOwner} {
+		if tx.Bucket(name) != nil {
+			return fmt.Errorf("bucket %s of schema 4 left behind", name)
+		}
 	}
 	for _, name := range [][]byte{bOldInputs, bOldInputsByTime} {
 		if tx.Bucket(name) != nil {

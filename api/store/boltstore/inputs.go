@@ -128,18 +128,21 @@ func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store
 // putInput applies one input and returns the subjects whose inputs
 // changed, with the span of each change.
 func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Span, error) {
-	owners := tx.Bucket(bInputOwner)
-	owner := string(owners.Get([]byte(in.Logical)))
+	logical := []byte(in.Logical)
+	pl, err := getPlaces(tx, logical)
+	if err != nil {
+		return 0, nil, err
+	}
+	owner := pl.owner()
 	// The latest version under the owner decides across patients; the copy
-	// under this subject (if the owner index lost track of it, after a
-	// prune) decides too.
+	// under this subject (if the owner's copy was pruned) decides too.
 	exists := false
 	span := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
 		}
-		old, ok, err := inputHead(tx, subject, in.Logical)
+		old, ok, err := inputHeadAt(tx, subject, in.Logical, pl.timeOf(subject))
 		if err != nil {
 			return 0, nil, err
 		}
@@ -161,30 +164,32 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 	touched := map[string]store.Span{in.Subject: span}
 	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
-		if _, ok, err := inputHead(tx, owner, in.Logical); err != nil {
+		if _, ok, err := inputHeadAt(tx, owner, in.Logical, pl.timeOf(owner)); err != nil {
 			return 0, nil, err
 		} else if ok {
 			moved := in
 			moved.Subject, moved.Payload = owner, in.Withdrawal
-			if err := writeInput(tx, moved); err != nil {
+			if err := writeInput(tx, &pl, moved); err != nil {
 				return 0, nil, err
 			}
 			touched[owner] = store.Span{} // the whole first patient
 			res = store.PutMoved
 		}
 	}
-	if err := writeInput(tx, in); err != nil {
+	if err := writeInput(tx, &pl, in); err != nil {
 		return 0, nil, err
 	}
-	if err := owners.Put([]byte(in.Logical), []byte(in.Subject)); err != nil {
+	pl.own(in.Subject)
+	if err := putPlaces(tx, logical, pl); err != nil {
 		return 0, nil, err
 	}
 	return res, touched, nil
 }
 
-// inputHead reads the version of the stored input of subject, if any.
-func inputHead(tx *bolt.Tx, subject, logical string) (store.Input, bool, error) {
-	v, err := inputRow(tx, subject, logical)
+// inputHeadAt reads the version of subject's stored input, whose row is
+// at time key t (nil: subject has none).
+func inputHeadAt(tx *bolt.Tx, subject, logical string, t []byte) (store.Input, bool, error) {
+	v, err := rowAt(tx, subject, logical, t)
 	if v == nil || err != nil {
 		return store.Input{}, false, err
 	}
@@ -196,16 +201,21 @@ func inputHead(tx *bolt.Tx, subject, logical string) (store.Input, bool, error) 
 }
 
 // inputRow returns the stored record of an input, nil when there is none:
-// input_at gives the time that finds its row.
+// its place gives the time that finds its row.
 func inputRow(tx *bolt.Tx, subject, logical string) ([]byte, error) {
-	key := subjectKey(subject, logical)
-	t := tx.Bucket(bInputAt).Get(key)
+	pl, err := getPlaces(tx, []byte(logical))
+	if err != nil {
+		return nil, err
+	}
+	return rowAt(tx, subject, logical, pl.timeOf(subject))
+}
+
+// rowAt returns the row of subject's input at time key t, nil when t is.
+func rowAt(tx *bolt.Tx, subject, logical string, t []byte) ([]byte, error) {
 	if t == nil {
 		return nil, nil
 	}
-	if len(t) != timeKeyLen {
-		return nil, fmt.Errorf("%w: input time key of %d bytes", ErrCorrupt, len(t))
-	}
+	key := subjectKey(subject, logical)
 	prefix := key[:len(subject)+1]
 	v := tx.Bucket(bInputRows).Get(rowKey(prefix, t, key[len(prefix):]))
 	if v == nil {
@@ -215,19 +225,16 @@ func inputRow(tx *bolt.Tx, subject, logical string) ([]byte, error) {
 }
 
 // writeInput replaces the copy under in.Subject: its row moves to the new
-// effective time, and input_at follows it.
-func writeInput(tx *bolt.Tx, in store.Input) error {
-	rows, at := tx.Bucket(bInputRows), tx.Bucket(bInputAt)
+// effective time, and its place in pl follows it (the caller writes pl).
+func writeInput(tx *bolt.Tx, pl *places, in store.Input) error {
+	rows := tx.Bucket(bInputRows)
 	// Readings arrive nearly in time order, so a patient's rows grow at
 	// the end of its range: pages filled to 90 % rather than half stay
 	// that way.
 	rows.FillPercent = appendFill
 	key := subjectKey(in.Subject, in.Logical)
 	prefix, logical := key[:len(in.Subject)+1], key[len(in.Subject)+1:]
-	if old := at.Get(key); old != nil {
-		if len(old) != timeKeyLen {
-			return fmt.Errorf("%w: input time key of %d bytes", ErrCorrupt, len(old))
-		}
+	if old := pl.timeOf(in.Subject); old != nil {
 		if err := rows.Delete(rowKey(prefix, old, logical)); err != nil {
 			return err
 		}
@@ -236,7 +243,8 @@ func writeInput(tx *bolt.Tx, in store.Input) error {
 	if err := rows.Put(rowKey(prefix, t, logical), encodeInput(in)); err != nil {
 		return err
 	}
-	return at.Put(key, t)
+	pl.set(in.Subject, t)
+	return nil
 }
 
 // Inputs returns the patient's inputs: every row under the subject.
@@ -477,14 +485,14 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 }
 
 // Prune visits each patient's rows from the first, up to the horizon:
-// one seek per patient, then only rows it deletes. A row that input_at
-// does not point at (left behind by a bug) is deleted too, but not
+// one seek per patient, then only rows it deletes. A row that its input's
+// place does not point at (left behind by a bug) is deleted too, but not
 // counted; the input's current row, at its own time, is kept.
 func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 	var n int
 	err := s.update(ctx, "Prune", func(tx *bolt.Tx) error {
 		n = 0
-		rows, at, owner := tx.Bucket(bInputRows), tx.Bucket(bInputAt), tx.Bucket(bInputOwner)
+		rows := tx.Bucket(bInputRows)
 		var stale [][]byte
 		c := rows.Cursor()
 		k, _ := c.First()
@@ -513,20 +521,19 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 				return err
 			}
 			i := bytes.IndexByte(k, sep)
-			subject, t, logical := k[:i], k[i+1:i+1+timeKeyLen], k[i+1+timeKeyLen:]
-			key := subjectKey(string(subject), string(logical))
-			if !bytes.Equal(at.Get(key), t) {
-				continue
-			}
-			if err := at.Delete(key); err != nil {
+			subject, t, logical := string(k[:i]), k[i+1:i+1+timeKeyLen], k[i+1+timeKeyLen:]
+			pl, err := getPlaces(tx, logical)
+			if err != nil {
 				return err
 			}
-			// The owner index follows the latest version only: drop it
-			// when the pruned copy was that one.
-			if o := owner.Get(logical); o != nil && bytes.Equal(o, subject) {
-				if err := owner.Delete(logical); err != nil {
-					return err
-				}
+			if !bytes.Equal(pl.timeOf(subject), t) {
+				continue
+			}
+			// The owner follows the latest version only: when the pruned
+			// copy was that one, the input is left without an owner.
+			pl.remove(subject)
+			if err := putPlaces(tx, logical, pl); err != nil {
+				return err
 			}
 			n++
 		}
@@ -543,11 +550,13 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 func (s *Store) Owner(ctx context.Context, logical string) (string, error) {
 	var subject string
 	err := s.view(ctx, "Owner", func(tx *bolt.Tx) error {
-		v := tx.Bucket(bInputOwner).Get([]byte(logical))
-		if v == nil {
+		pl, err := getPlaces(tx, []byte(logical))
+		if err != nil {
+			return err
+		}
+		if subject = pl.owner(); subject == "" {
 			return store.ErrNotFound
 		}
-		subject = string(v)
 		return nil
 	})
 	if err != nil {

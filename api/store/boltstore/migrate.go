@@ -23,11 +23,11 @@ var (
 )
 
 // moveInputs moves the inputs of a file of schema 3 or earlier from the
-// inputs bucket into input_rows and input_at, a batch of patients per
+// inputs bucket into input_rows and input_place, a batch of patients per
 // transaction, and drops the old buckets when the last batch is moved. A
 // move cut short (the process killed, the disk full) leaves the moved
 // patients in the new buckets and the rest in the old one, so the next
-// Open carries on; the file says schema 4 from the start, so an older
+// Open carries on; the file says schema 5 from the start, so an older
 // build never opens it half moved. Log lines carry counts only.
 func moveInputs(db *bolt.DB, log *slog.Logger) error {
 	total := -1
@@ -78,7 +78,7 @@ func moveInputs(db *bolt.DB, log *slog.Logger) error {
 // It returns how many inputs it moved and whether the move is complete.
 func moveInputBatch(tx *bolt.Tx, limit int) (int, bool, error) {
 	old := tx.Bucket(bOldInputs)
-	rows, at := tx.Bucket(bInputRows), tx.Bucket(bInputAt)
+	rows := tx.Bucket(bInputRows)
 	rows.FillPercent = appendFill
 	type kv struct{ k, v []byte }
 	var moving, pointers []kv
@@ -111,7 +111,7 @@ func moveInputBatch(tx *bolt.Tx, limit int) (int, bool, error) {
 		}
 	}
 	for _, p := range pointers {
-		if err := at.Put(p.k, p.v); err != nil {
+		if err := addPlace(tx, p.k, p.v); err != nil {
 			return 0, false, err
 		}
 		if err := old.Delete(p.k); err != nil {
@@ -130,4 +130,113 @@ func moveInputBatch(tx *bolt.Tx, limit int) (int, bool, error) {
 		}
 	}
 	return len(moving), true, nil
+}
+
+// addPlace records, in input_place, the row of the input keyed subject 0
+// logical (as input_at and the inputs of schema 3 were) at time key t,
+// and makes the subject the owner when input_owner says it is.
+func addPlace(tx *bolt.Tx, key, t []byte) error {
+	i := bytes.IndexByte(key, sep)
+	if i < 0 {
+		return fmt.Errorf("%w: input key without a subject", ErrCorrupt)
+	}
+	if len(t) != timeKeyLen {
+		return fmt.Errorf("%w: input time key of %d bytes", ErrCorrupt, len(t))
+	}
+	subject, logical := string(key[:i]), key[i+1:]
+	pl, err := getPlaces(tx, logical)
+	if err != nil {
+		return err
+	}
+	pl.set(subject, bytes.Clone(t))
+	if owners := tx.Bucket(bOldInputOwner); owners != nil && string(owners.Get(logical)) == subject {
+		pl.own(subject)
+	}
+	return putPlaces(tx, logical, pl)
+}
+
+// movePlaces moves the indexes of schema 4, input_at and input_owner,
+// into input_place (schema 5), in batches as moveInputs does, and drops
+// them when the last batch is moved; moveInputs, which runs first, has by
+// then put every input of an older file in its place. Log lines carry
+// counts only.
+func movePlaces(db *bolt.DB, log *slog.Logger) error {
+	total := -1
+	if err := db.View(func(tx *bolt.Tx) error {
+		if b := tx.Bucket(bOldInputAt); b != nil {
+			total = b.Stats().KeyN
+		} else if tx.Bucket(bOldInputOwner) != nil {
+			total = 0
+		}
+		return nil
+	}); err != nil {
+		return fmt.Errorf("migrate to schema 5: %w", err)
+	}
+	if total < 0 {
+		return nil // nothing left to move
+	}
+	start := time.Now()
+	if total > 0 {
+		log.Info("boltstore: merging the input indexes (schema 5), once", "inputs", total)
+	}
+	moved, reported := 0, start
+	for {
+		var n int
+		var done bool
+		err := db.Update(func(tx *bolt.Tx) error {
+			var err error
+			n, done, err = movePlaceBatch(tx, moveBatch)
+			return err
+		})
+		if err != nil {
+			return fmt.Errorf("migrate to schema 5, %d of %d inputs moved: %w", moved, total, err)
+		}
+		moved += n
+		if done {
+			break
+		}
+		if now := time.Now(); now.Sub(reported) >= moveReportEvery {
+			log.Info("boltstore: merging the input indexes", "moved", moved, "of", total, "elapsed", now.Sub(start).Round(time.Millisecond))
+			reported = now
+		}
+	}
+	if total > 0 {
+		log.Info("boltstore: input indexes merged", "inputs", moved, "elapsed", time.Since(start).Round(time.Millisecond))
+	}
+	return nil
+}
+
+// movePlaceBatch moves up to limit entries of input_at into input_place
+// and drops input_at and input_owner once input_at is empty.
+func movePlaceBatch(tx *bolt.Tx, limit int) (int, bool, error) {
+	n := 0
+	if at := tx.Bucket(bOldInputAt); at != nil {
+		type kv struct{ k, v []byte }
+		var batch []kv
+		c := at.Cursor()
+		for k, v := c.First(); k != nil && len(batch) < limit; k, v = c.Next() {
+			batch = append(batch, kv{bytes.Clone(k), bytes.Clone(v)})
+		}
+		for _, e := range batch {
+			if err := addPlace(tx, e.k, e.v); err != nil {
+				return 0, false, err
+			}
+			if err := at.Delete(e.k); err != nil {
+				return 0, false, err
+			}
+		}
+		if k, _ := at.Cursor().First(); k != nil {
+			return len(batch), false, nil
+		}
+		n = len(batch)
+		if err := tx.DeleteBucket(bOldInputAt); err != nil {
+			return 0, false, err
+		}
+	}
+	if tx.Bucket(bOldInputOwner) != nil {
+		if err := tx.DeleteBucket(bOldInputOwner); err != nil {
+			return 0, false, err
+		}
+	}
+	return n, true, nil
 }

@@ -342,3 +342,127 @@ func BenchmarkMoveInputs(b *testing.B) {
 	}
 	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*len(old)), "ns/input")
 }
+
+// writeSchema4Store writes a file as a build of schema 4 left it: the
+// inputs in input_rows, found through input_at and input_owner. The first
+// moved inputs are in that layout and the rest still in the inputs bucket
+// of schema 3, as a move of schema 4 cut short leaves them (moved ==
+// len(inputs): the move was complete and the old buckets are gone). The
+// row record is this build's: schema 5 left it as it was.
+func writeSchema4Store(t *testing.T, path string, inputs []oldInput, moved int) {
+	t.Helper()
+	writeOldStore(t, path, 3, inputs[moved:])
+	db, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: time.Second})
+	must(t, err)
+	defer db.Close()
+	must(t, db.Update(func(tx *bolt.Tx) error {
+		rows, err := tx.CreateBucket([]byte("input_rows"))
+		if err != nil {
+			return err
+		}
+		at, err := tx.CreateBucket([]byte("input_at"))
+		if err != nil {
+			return err
+		}
+		owner := tx.Bucket([]byte("input_owner"))
+		for _, in := range inputs[:moved] {
+			prefix := []byte(in.Subject + "\x00")
+			tk := binary.BigEndian.AppendUint64(nil, uint64(in.EffectiveAt.Unix())^(1<<63))
+			tk = binary.BigEndian.AppendUint32(tk, uint32(in.EffectiveAt.Nanosecond()))
+			if err := rows.Put(append(append(bytes.Clone(prefix), tk...), in.Logical...), encodeInput(in.Input)); err != nil {
+				return err
+			}
+			if err := at.Put(append(prefix, in.Logical...), tk); err != nil {
+				return err
+			}
+			if in.owner {
+				if err := owner.Put([]byte(in.Logical), []byte(in.Subject)); err != nil {
+					return err
+				}
+			}
+		}
+		if moved == len(inputs) {
+			for _, name := range []string{"inputs", "inputs_by_time"} {
+				if err := tx.DeleteBucket([]byte(name)); err != nil {
+					return err
+				}
+			}
+		}
+		return tx.Bucket([]byte("meta")).Put([]byte("schema"), binary.BigEndian.AppendUint64(nil, 4))
+	}))
+}
+
+// A file of schema 4 opens with input_at and input_owner merged into
+// input_place, in batches with a progress line that carries counts only,
+// whether its own move of schema 4 was complete or cut short; the owners,
+// the re-filed input's among them, are kept, and a second Open moves
+// nothing.
+func TestSchema4IndexesMergeIntoPlaces(t *testing.T) {
+	defer func(batch int, every time.Duration) { moveBatch, moveReportEvery = batch, every }(moveBatch, moveReportEvery)
+	moveBatch, moveReportEvery = 7, 0
+	old := oldInputs()
+	for _, c := range []struct {
+		name  string
+		moved int
+	}{
+		{"move of schema 4 complete", len(old)},
+		{"move of schema 4 cut short", 30},
+		{"nothing moved yet", 0},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			path := filepath.Join(t.TempDir(), "deadspace.db")
+			writeSchema4Store(t, path, old, c.moved)
+			var logs bytes.Buffer
+			s, err := Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
+			must(t, err)
+			checkMovedInputs(t, s, old)
+			for logical, want := range map[string]string{"Observation/refiled": "Patient/b", "Observation/a01": "Patient/a", "Observation/c1": "Patient/c"} {
+				if got, err := s.Owner(t.Context(), logical); err != nil || got != want {
+					t.Errorf("Owner(%s) = %q, %v; want %s", logical, got, err, want)
+				}
+			}
+			text := logs.String()
+			if c.moved > 0 && !strings.Contains(text, fmt.Sprintf("input indexes merged\" inputs=%d", c.moved)) {
+				t.Errorf("the merge's log lacks its count of %d:\n%s", c.moved, text)
+			}
+			if strings.Contains(text, "Patient/") || strings.Contains(text, "Observation/") {
+				t.Errorf("the merge's log names a patient or a resource:\n%s", text)
+			}
+			must(t, s.Close())
+
+			logs.Reset()
+			s, err = Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
+			must(t, err)
+			defer s.Close()
+			if logs.Len() != 0 {
+				t.Errorf("a second Open logged:\n%s", logs.String())
+			}
+			checkMovedInputs(t, s, old)
+
+			// The merged places are the store's: a newer version of the
+			// re-filed input back under Patient/a withdraws b's copy, and
+			// Prune drops the rows before its horizon and their places.
+			t0 := time.Date(2026, 3, 14, 2, 0, 0, 0, time.UTC)
+			res, err := s.PutInputs(t.Context(), []store.Input{{Subject: "Patient/a", Logical: "Observation/refiled", VersionID: "3",
+				LastUpdated: t0.Add(2 * time.Hour), EffectiveAt: t0.Add(11 * time.Minute), Payload: []byte("back on a"), Withdrawal: []byte("withdrawn from b")}}, t0)
+			must(t, err)
+			if res[0] != store.PutMoved {
+				t.Errorf("re-filing back to Patient/a = %v, want PutMoved", res[0])
+			}
+			if got, err := s.Owner(t.Context(), "Observation/refiled"); err != nil || got != "Patient/a" {
+				t.Errorf("Owner after re-filing back = %q, %v; want Patient/a", got, err)
+			}
+			n, err := s.Prune(t.Context(), t0.Add(-time.Hour))
+			must(t, err)
+			if n != 2 { // 1950 and 1969
+				t.Errorf("Prune after the merge = %d, want 2", n)
+			}
+			if _, err := s.Owner(t.Context(), "Observation/1950"); !errors.Is(err, store.ErrNotFound) {
+				t.Errorf("Owner of a pruned input: %v, want ErrNotFound", err)
+			}
+			if err := s.db.View(checkConsistent); err != nil {
+				t.Error(err)
+			}
+		})
+	}
+}
