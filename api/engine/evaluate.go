@@ -33,6 +33,14 @@ const (
 // defaultEvaluators is how many patients are evaluated at once.
 var defaultEvaluators = max(2, runtime.NumCPU())
 
+// routineEvaluators is how many of evaluators may evaluate patients whose
+// changes hold no blood gas (device readings only) at once: half, at
+// least one. A flood of device readings then leaves the other half of the
+// cores to the blood gases, which the store lists first, and to ingest,
+// whose commits every webhook answer waits for; on two cores, one
+// evaluator keeps up with the device readings of the live benchmark.
+func routineEvaluators(evaluators int) int { return max(1, evaluators/2) }
+
 // EntryPayload is the engine's encoding of one ledger entry: the value's
 // code and the version of the result (derivation or fall) it belongs to,
 // which the store keeps once for all the result's values. It holds no FHIR
@@ -112,8 +120,12 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 		failed  bool
 	}
 	evaluators := e.evaluators
+	routineLimit := routineEvaluators(evaluators)
 	done := make(chan outcome, evaluators)
 	running := make(map[string]bool)
+	// routine holds the patients being evaluated whose mark held no blood
+	// gas (not Urgent).
+	routine := make(map[string]bool)
 	// held are patients whose evaluation failed, not retried before then.
 	held := make(map[string]time.Time)
 	var queue []store.Dirty
@@ -127,10 +139,15 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			relist = false
 			timer.Reset(wait)
 		}
-		if len(running) < evaluators && len(queue) > 0 && ctx.Err() == nil {
+		// The queue lists blood gases first, so a routine mark at its head
+		// means none is waiting: it waits for a routine evaluation to end.
+		if len(running) < evaluators && len(queue) > 0 && ctx.Err() == nil && (queue[0].Urgent || len(routine) < routineLimit) {
 			d := queue[0]
 			queue = queue[1:]
 			running[d.Subject] = true
+			if !d.Urgent {
+				routine[d.Subject] = true
+			}
 			go func() {
 				err := e.evaluatePatient(ctx, d)
 				if err != nil && ctx.Err() == nil {
@@ -150,6 +167,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			return
 		case o := <-done:
 			delete(running, o.subject)
+			delete(routine, o.subject)
 			if o.failed {
 				held[o.subject] = e.now().Add(5 * time.Second)
 			}

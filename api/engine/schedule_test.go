@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"path/filepath"
+	"slices"
 	"sync"
 	"testing"
 	"time"
@@ -166,5 +167,45 @@ func TestChangesDuringAnEvaluationCoalesce(t *testing.T) {
 	n, err := eng.InputCount(ctx, "Patient/a")
 	if err != nil || n != 6 {
 		t.Errorf("inputs stored: %d, %v; want 6", n, err)
+	}
+}
+
+// Patients with device readings only take at most half of the evaluators
+// (one of two), so a blood gas that arrives while such an evaluation runs
+// is evaluated beside it at once, and the rest of the device readings'
+// queue waits for the one in progress.
+func TestDeviceReadingsLeaveAnEvaluatorForBloodGases(t *testing.T) {
+	t.Parallel()
+	now := time.Now().UTC().Truncate(time.Minute)
+	eng, g := scheduleEngine(t, "Patient/d0")
+	eng.evaluators = 2
+	ctx := t.Context()
+	for p := range 5 {
+		subject := fmt.Sprintf("Patient/d%d", p)
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	run(t, eng)
+	<-g.held
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
+		t.Fatal(err)
+	}
+	// The blood gas is committed while d0's commit is still held (the
+	// wait is a bound on a hang, not a timing under test).
+	deadline := time.Now().Add(time.Minute)
+	for !slices.Contains(g.committed(), "Patient/gas") {
+		if time.Now().After(deadline) {
+			t.Fatalf("commits %v: the blood gas was not evaluated beside the held device evaluation", g.committed())
+		}
+		time.Sleep(time.Millisecond)
+	}
+	if got := g.committed(); len(got) != 1 {
+		t.Errorf("commits %v while one device evaluation was in progress: want the blood gas's alone", got)
+	}
+	close(g.release)
+	settled(t, eng)
+	if got := g.committed(); len(got) != 6 {
+		t.Errorf("commits %v, want one per patient (6)", got)
 	}
 }
