@@ -316,6 +316,17 @@ func TestOldSchemaWithoutInputsRefused(t *testing.T) {
 // file of ten patients with six hours of minute readings of six kinds
 // (21,600 inputs, payloads of benchPayload bytes, Medplum-style ids).
 func BenchmarkMoveInputs(b *testing.B) {
+	benchMigration(b, func(path string, old []oldInput) { writeOldStore(b, path, 3, old) })
+}
+
+// BenchmarkMergePlaces times the merge of schema 5 at Open for a file of
+// schema 4 with the same inputs as BenchmarkMoveInputs.
+func BenchmarkMergePlaces(b *testing.B) {
+	benchMigration(b, func(path string, old []oldInput) { writeSchema4Store(b, path, old, len(old)) })
+}
+
+// benchMigration times Open of the file write leaves, per input.
+func benchMigration(b *testing.B, write func(path string, old []oldInput)) {
 	r := rand.New(rand.NewPCG(9, 10))
 	var old []oldInput
 	var next int
@@ -328,7 +339,7 @@ func BenchmarkMoveInputs(b *testing.B) {
 	for b.Loop() {
 		b.StopTimer()
 		path := filepath.Join(b.TempDir(), "deadspace.db")
-		writeOldStore(b, path, 3, old)
+		write(path, old)
 		b.StartTimer()
 		s, err := Open(path, Options{Logger: quiet})
 		if err != nil {
@@ -349,13 +360,15 @@ func BenchmarkMoveInputs(b *testing.B) {
 // of schema 3, as a move of schema 4 cut short leaves them (moved ==
 // len(inputs): the move was complete and the old buckets are gone). The
 // row record is this build's: schema 5 left it as it was.
-func writeSchema4Store(t *testing.T, path string, inputs []oldInput, moved int) {
+func writeSchema4Store(t testing.TB, path string, inputs []oldInput, moved int) {
 	t.Helper()
 	writeOldStore(t, path, 3, inputs[moved:])
 	db, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: time.Second})
-	must(t, err)
+	if err != nil {
+		t.Fatal(err)
+	}
 	defer db.Close()
-	must(t, db.Update(func(tx *bolt.Tx) error {
+	err = db.Update(func(tx *bolt.Tx) error {
 		rows, err := tx.CreateBucket([]byte("input_rows"))
 		if err != nil {
 			return err
@@ -389,7 +402,10 @@ func writeSchema4Store(t *testing.T, path string, inputs []oldInput, moved int) 
 			}
 		}
 		return tx.Bucket([]byte("meta")).Put([]byte("schema"), binary.BigEndian.AppendUint64(nil, 4))
-	}))
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
 }
 
 // A file of schema 4 opens with input_at and input_owner merged into
