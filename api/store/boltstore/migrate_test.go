@@ -482,3 +482,30 @@ func TestSchema4IndexesMergeIntoPlaces(t *testing.T) {
 		})
 	}
 }
+
+// A merge of schema 5 cut short (here after its first batch) carries on
+// at the next Open, and the places already written are kept as they are.
+func TestSchema5MergeResumes(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "deadspace.db")
+	old := oldInputs()
+	writeSchema4Store(t, path, old, len(old))
+	db, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: time.Second})
+	must(t, err)
+	must(t, db.Update(func(tx *bolt.Tx) error { return migrate(tx, 4) }))
+	must(t, db.Update(func(tx *bolt.Tx) error {
+		n, done, err := movePlaceBatch(tx, 10)
+		if err == nil && (done || n != 10) {
+			err = fmt.Errorf("first batch merged %d inputs (done %v), want 10", n, done)
+		}
+		return err
+	}))
+	must(t, db.Close())
+
+	s, err := Open(path, Options{Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+	must(t, err)
+	defer s.Close()
+	checkMovedInputs(t, s, old)
+	if got, err := s.Owner(t.Context(), "Observation/refiled"); err != nil || got != "Patient/b" {
+		t.Errorf("Owner of the re-filed input = %q, %v; want Patient/b", got, err)
+	}
+}
