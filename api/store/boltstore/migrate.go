@@ -30,21 +30,53 @@ var (
 // Open carries on; the file says schema 5 from the start, so an older
 // build never opens it half moved. Log lines carry counts only.
 func moveInputs(db *bolt.DB, log *slog.Logger) error {
+	return runMove(db, log, inputsMove)
+}
+
+var inputsMove = move{
+	schema: 4,
+	pending: func(tx *bolt.Tx) int {
+		if b := tx.Bucket(bOldInputs); b != nil {
+			return b.Stats().KeyN
+		}
+		return -1
+	},
+	batch:    moveInputBatch,
+	starting: "boltstore: moving inputs into their time order (schema 4), once",
+	progress: "boltstore: moving inputs",
+	finished: "boltstore: inputs moved",
+}
+
+// move is one of the moves of inputs that a migration leaves to be done in
+// batches after it (see runMove).
+type move struct {
+	schema int
+	// pending counts the inputs left to move, -1 when the move is done.
+	pending func(tx *bolt.Tx) int
+	// batch moves about limit inputs and says how many it moved and
+	// whether the move is now complete.
+	batch                        func(tx *bolt.Tx, limit int) (int, bool, error)
+	starting, progress, finished string
+}
+
+// runMove runs m a batch (moveBatch) per transaction until it is done,
+// logging its start, its progress every moveReportEvery and its end with
+// counts only. A move cut short leaves what it moved moved, and the next
+// Open carries on from there.
+func runMove(db *bolt.DB, log *slog.Logger, m move) error {
 	total := -1
 	if err := db.View(func(tx *bolt.Tx) error {
-		if b := tx.Bucket(bOldInputs); b != nil {
-			total = b.Stats().KeyN
-		}
+		total = m.pending(tx)
 		return nil
 	}); err != nil {
-		return fmt.Errorf("migrate to schema 4: %w", err)
+		return fmt.Errorf("migrate to schema %d: %w", m.schema, err)
 	}
 	if total < 0 {
 		return nil // nothing left to move
 	}
 	start := time.Now()
 	if total > 0 {
-		log.Info("boltstore: moving inputs into their time order (schema 4), once", "inputs", total)
+		log.Info(m.starting, "inputs", total)
 	}
 	moved, reported := 0, start
 	for {
@@ -52,23 +84,23 @@ func moveInputs(db *bolt.DB, log *slog.Logger) error {
 		var done bool
 		err := db.Update(func(tx *bolt.Tx) error {
 			var err error
-			n, done, err = moveInputBatch(tx, moveBatch)
+			n, done, err = m.batch(tx, moveBatch)
 			return err
 		})
 		if err != nil {
-			return fmt.Errorf("migrate to schema 4, %d of %d inputs moved: %w", moved, total, err)
+			return fmt.Errorf("migrate to schema %d, %d of %d inputs moved: %w", m.schema, moved, total, err)
 		}
 		moved += n
 		if done {
 			break
 		}
 		if now := time.Now(); now.Sub(reported) >= moveReportEvery {
-			log.Info("boltstore: moving inputs", "moved", moved, "of", total, "elapsed", now.Sub(start).Round(time.Millisecond))
+			log.Info(m.progress, "moved", moved, "of", total, "elapsed", now.Sub(start).Round(time.Millisecond))
 			reported = now
 		}
 	}
 	if total > 0 {
-		log.Info("boltstore: inputs moved", "inputs", moved, "elapsed", time.Since(start).Round(time.Millisecond))
+		log.Info(m.finished, "inputs", moved, "elapsed", time.Since(start).Round(time.Millisecond))
 	}
 	return nil
 }
@@ -161,49 +193,24 @@ func addPlace(tx *bolt.Tx, key, t []byte) error {
 // then put every input of an older file in its place. Log lines carry
 // counts only.
 func movePlaces(db *bolt.DB, log *slog.Logger) error {
-	total := -1
-	if err := db.View(func(tx *bolt.Tx) error {
+	return runMove(db, log, placesMove)
+}
+
+var placesMove = move{
+	schema: 5,
+	pending: func(tx *bolt.Tx) int {
 		if b := tx.Bucket(bOldInputAt); b != nil {
-			total = b.Stats().KeyN
-		} else if tx.Bucket(bOldInputOwner) != nil {
-			total = 0
+			return b.Stats().KeyN
 		}
-		return nil
-	}); err != nil {
-		return fmt.Errorf("migrate to schema 5: %w", err)
-	}
-	if total < 0 {
-		return nil // nothing left to move
-	}
-	start := time.Now()
-	if total > 0 {
-		log.Info("boltstore: merging the input indexes (schema 5), once", "inputs", total)
-	}
-	moved, reported := 0, start
-	for {
-		var n int
-		var done bool
-		err := db.Update(func(tx *bolt.Tx) error {
-			var err error
-			n, done, err = movePlaceBatch(tx, moveBatch)
-			return err
-		})
-		if err != nil {
-			return fmt.Errorf("migrate to schema 5, %d of %d inputs moved: %w", moved, total, err)
+		if tx.Bucket(bOldInputOwner) != nil {
+			return 0 // a schema-3 file's owner index, dropped by the one batch
 		}
-		moved += n
-		if done {
-			break
-		}
-		if now := time.Now(); now.Sub(reported) >= moveReportEvery {
-			log.Info("boltstore: merging the input indexes", "moved", moved, "of", total, "elapsed", now.Sub(start).Round(time.Millisecond))
-			reported = now
-		}
-	}
-	if total > 0 {
-		log.Info("boltstore: input indexes merged", "inputs", moved, "elapsed", time.Since(start).Round(time.Millisecond))
-	}
-	return nil
+		return -1
+	},
+	batch:    movePlaceBatch,
+	starting: "boltstore: merging the input indexes (schema 5), once",
+	progress: "boltstore: merging the input indexes",
+	finished: "boltstore: input indexes merged",
 }
 
 // movePlaceBatch moves up to limit entries of input_at into input_place

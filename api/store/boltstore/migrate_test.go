@@ -183,6 +183,39 @@ func checkMovedInputs(t *testing.T, s *Store, old []oldInput) {
 	}
 }
 
+// openMigrated opens the old file at path twice. The first Open must
+// migrate it, with log lines that hold each of wantLog and name no patient
+// or resource, and leave it holding old (checkMovedInputs); the second must
+// log nothing and find the same. It returns the store of the second Open,
+// closed when the test ends.
+func openMigrated(t *testing.T, path string, old []oldInput, wantLog ...string) *Store {
+	t.Helper()
+	var logs bytes.Buffer
+	s, err := Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
+	must(t, err)
+	checkMovedInputs(t, s, old)
+	text := logs.String()
+	for _, want := range wantLog {
+		if !strings.Contains(text, want) {
+			t.Errorf("the migration's log lacks %q:\n%s", want, text)
+		}
+	}
+	if strings.Contains(text, "Patient/") || strings.Contains(text, "Observation/") {
+		t.Errorf("the migration's log names a patient or a resource:\n%s", text)
+	}
+	must(t, s.Close())
+
+	logs.Reset()
+	s, err = Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
+	must(t, err)
+	t.Cleanup(func() { s.Close() })
+	if logs.Len() != 0 {
+		t.Errorf("a second Open logged:\n%s", logs.String())
+	}
+	checkMovedInputs(t, s, old)
+	return s
+}
+
 func must(t *testing.T, err error) {
 	t.Helper()
 	if err != nil {
@@ -201,42 +234,18 @@ func TestSchema3InputsMoveIntoTimeOrder(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "deadspace.db")
 	old := oldInputs()
 	writeOldStore(t, path, 3, old)
-	var logs bytes.Buffer
-	s, err := Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
-	must(t, err)
-	checkMovedInputs(t, s, old)
+	s := openMigrated(t, path, old,
+		fmt.Sprintf("moving inputs into their time order (schema 4), once\" inputs=%d", len(old)),
+		"moved=", // a progress line between batches
+		fmt.Sprintf("inputs moved\" inputs=%d", len(old)))
 	if got, err := s.Owner(t.Context(), "Observation/refiled"); err != nil || got != "Patient/b" {
 		t.Errorf("Owner of the re-filed input = %q, %v; want Patient/b", got, err)
 	}
 
-	text := logs.String()
-	for _, want := range []string{
-		fmt.Sprintf("moving inputs into their time order (schema 4), once\" inputs=%d", len(old)),
-		"moved=", // a progress line between batches
-		fmt.Sprintf("inputs moved\" inputs=%d", len(old)),
-	} {
-		if !strings.Contains(text, want) {
-			t.Errorf("the move's log lacks %q:\n%s", want, text)
-		}
-	}
-	if strings.Contains(text, "Patient/") || strings.Contains(text, "Observation/") {
-		t.Errorf("the move's log names a patient or a resource:\n%s", text)
-	}
-	must(t, s.Close())
-
-	logs.Reset()
-	s, err = Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
-	must(t, err)
-	defer s.Close()
-	if logs.Len() != 0 {
-		t.Errorf("a second Open logged:\n%s", logs.String())
-	}
-	checkMovedInputs(t, s, old)
-
 	// The moved rows are the store's rows: a newer version moves one in
 	// time, and Prune removes what is before its horizon.
 	t0 := time.Date(2026, 3, 14, 2, 0, 0, 0, time.UTC)
-	_, err = s.PutInputs(t.Context(), []store.Input{{Subject: "Patient/a", Logical: "Observation/a40", VersionID: "2",
+	_, err := s.PutInputs(t.Context(), []store.Input{{Subject: "Patient/a", Logical: "Observation/a40", VersionID: "2",
 		LastUpdated: t0.Add(2 * time.Hour), EffectiveAt: t0.Add(-2 * time.Hour), Payload: []byte("moved earlier")}}, t0)
 	must(t, err)
 	n, err := s.Prune(t.Context(), t0.Add(-time.Hour))
@@ -428,32 +437,16 @@ func TestSchema4IndexesMergeIntoPlaces(t *testing.T) {
 		t.Run(c.name, func(t *testing.T) {
 			path := filepath.Join(t.TempDir(), "deadspace.db")
 			writeSchema4Store(t, path, old, c.moved)
-			var logs bytes.Buffer
-			s, err := Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
-			must(t, err)
-			checkMovedInputs(t, s, old)
+			var wantLog []string
+			if c.moved > 0 {
+				wantLog = append(wantLog, fmt.Sprintf("input indexes merged\" inputs=%d", c.moved))
+			}
+			s := openMigrated(t, path, old, wantLog...)
 			for logical, want := range map[string]string{"Observation/refiled": "Patient/b", "Observation/a01": "Patient/a", "Observation/c1": "Patient/c"} {
 				if got, err := s.Owner(t.Context(), logical); err != nil || got != want {
 					t.Errorf("Owner(%s) = %q, %v; want %s", logical, got, err, want)
 				}
 			}
-			text := logs.String()
-			if c.moved > 0 && !strings.Contains(text, fmt.Sprintf("input indexes merged\" inputs=%d", c.moved)) {
-				t.Errorf("the merge's log lacks its count of %d:\n%s", c.moved, text)
-			}
-			if strings.Contains(text, "Patient/") || strings.Contains(text, "Observation/") {
-				t.Errorf("the merge's log names a patient or a resource:\n%s", text)
-			}
-			must(t, s.Close())
-
-			logs.Reset()
-			s, err = Open(path, Options{Logger: slog.New(slog.NewTextHandler(&logs, nil))})
-			must(t, err)
-			defer s.Close()
-			if logs.Len() != 0 {
-				t.Errorf("a second Open logged:\n%s", logs.String())
-			}
-			checkMovedInputs(t, s, old)
 
 			// The merged places are the store's: a newer version of the
 			// re-filed input back under Patient/a withdraws b's copy, and
