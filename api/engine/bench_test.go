@@ -4,17 +4,16 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"slices"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // recordSignal tells when a commit recorded ledger entries.
@@ -45,16 +44,9 @@ func (r *recordSignal) Commit(ctx context.Context, c store.Change, now time.Time
 func BenchmarkPostToRecorded(b *testing.B) {
 	for _, hours := range []int{1, 12} {
 		b.Run(fmt.Sprintf("history=%dh", hours), func(b *testing.B) {
-			bs, err := boltstore.Open(filepath.Join(b.TempDir(), "s.db"), boltstore.Options{})
-			if err != nil {
-				b.Fatal(err)
-			}
-			defer bs.Close()
+			bs := enginetest.OpenStore(b, boltstore.Options{})
 			st := &recordSignal{Store: bs, recorded: make(chan struct{}, 1)}
-			enc, err := encode.New(encode.DefaultOptions())
-			if err != nil {
-				b.Fatal(err)
-			}
+			enc := enginetest.Encoder(b)
 			eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 			if err != nil {
 				b.Fatal(err)
@@ -151,14 +143,8 @@ func BenchmarkStoreBytes(b *testing.B) {
 
 func storeBytes(b *testing.B, evaluate bool) (used, readings, values float64) {
 	for b.Loop() {
-		st, err := boltstore.Open(filepath.Join(b.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-		if err != nil {
-			b.Fatal(err)
-		}
-		enc, err := encode.New(encode.DefaultOptions())
-		if err != nil {
-			b.Fatal(err)
-		}
+		st := enginetest.OpenStore(b, boltstore.Options{NoSync: true})
+		enc := enginetest.Encoder(b)
 		eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 		if err != nil {
 			b.Fatal(err)

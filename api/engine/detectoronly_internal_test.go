@@ -4,17 +4,16 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"sync/atomic"
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly: after a new
@@ -35,15 +34,8 @@ func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
 }
 
 func evaluationWithNoBloodGasInReach(t *testing.T, inPlace bool) {
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(t)
 	counting := &patientReads{Store: st}
 	var over store.Store = counting
 	if inPlace {

@@ -5,11 +5,11 @@ import (
 	"encoding/json"
 	"fmt"
 	"math/rand/v2"
-	"path/filepath"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
@@ -120,15 +120,8 @@ func TestReplayAndLiveAgree(t *testing.T) {
 	}
 	rng.Shuffle(len(stream), func(i, j int) { stream[i], stream[j] = stream[j], stream[i] })
 
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(t)
 	eng, err := engine.New(engine.Config{
 		Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(),
 		Now: func() time.Time { return base.Add(4 * time.Hour) },

@@ -4,14 +4,13 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // BenchmarkEvaluateAfterReading measures one evaluation of a patient with
@@ -81,14 +80,8 @@ func BenchmarkEvaluateAfterReading(b *testing.B) {
 // patient evaluated once.
 func evaluationBenchEngine(b *testing.B, now time.Time, patients int) (*Engine, func()) {
 	b.Helper()
-	st, err := boltstore.Open(filepath.Join(b.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		b.Fatal(err)
-	}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		b.Fatal(err)
-	}
+	st := enginetest.OpenStore(b, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(b)
 	e, err := New(Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
 		b.Fatal(err)

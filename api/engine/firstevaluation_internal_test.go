@@ -8,11 +8,11 @@ import (
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // TestFirstEvaluationDerivesEveryBloodGas: a dirty mark written by an
@@ -29,10 +29,7 @@ func TestFirstEvaluationDerivesEveryBloodGas(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	enc := enginetest.Encoder(t)
 	newEngine := func() *Engine {
 		e, err := New(Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 		if err != nil {

@@ -6,18 +6,17 @@ import (
 	"encoding/json"
 	"fmt"
 	"math/rand/v2"
-	"path/filepath"
 	"slices"
 	"sync/atomic"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // rangeCounting counts the evaluations (commits) and the reads of a range
@@ -108,16 +107,9 @@ func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []
 			for _, it := range order {
 				stream = append(stream, it.raw)
 			}
-			bs, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-			if err != nil {
-				t.Fatal(err)
-			}
-			defer bs.Close()
+			bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
 			st := &rangeCounting{Store: bs}
-			enc, err := encode.New(encode.DefaultOptions())
-			if err != nil {
-				t.Fatal(err)
-			}
+			enc := enginetest.Encoder(t)
 			eng, err := engine.New(engine.Config{
 				Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(),
 				Now: func() time.Time { return base.Add(8 * time.Hour) },

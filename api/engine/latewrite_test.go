@@ -5,11 +5,11 @@ import (
 	"encoding/json"
 	"fmt"
 	"net/http"
-	"path/filepath"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -49,15 +49,8 @@ func newLateRig(t *testing.T) *lateRig {
 // newLateEngine is an engine with a store of its own, writing to baseURL.
 func newLateEngine(t *testing.T, baseURL string) (*engine.Engine, *boltstore.Store) {
 	t.Helper()
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { st.Close() })
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{})
+	enc := enginetest.Encoder(t)
 	// The engine gives up on a request after a second, as a real client
 	// gives up after its timeout.
 	cl, err := client.New(client.Config{BaseURL: baseURL, MaxRetries: -1, HTTPClient: &http.Client{Timeout: 2 * time.Second}})

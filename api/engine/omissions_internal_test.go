@@ -4,15 +4,14 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"sync"
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // reports records what Hooks.Evaluated is told.
@@ -55,15 +54,8 @@ func reading(id, code string, v float64, at time.Time) json.RawMessage {
 // marked it, reports what a complete evaluation leaves out, and leaves a
 // fresh patient alone; EvaluateNow returns with the picture reported.
 func TestPictureAfterIncrementalEvaluations(t *testing.T) {
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(t)
 	rep := &reports{last: map[string][]derive.Omission{}}
 	e, err := New(Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(),
 		Hooks: Hooks{Evaluated: rep.evaluated}})

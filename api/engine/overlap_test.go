@@ -5,27 +5,23 @@ import (
 	"encoding/json"
 	"fmt"
 	"net/http/httptest"
-	"path/filepath"
 	"sync"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // newEngine returns an engine on st writing to baseURL.
 func newEngine(t *testing.T, st store.Store, baseURL string) *engine.Engine {
 	t.Helper()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	enc := enginetest.Encoder(t)
 	cl, err := client.New(client.Config{BaseURL: baseURL, MaxRetries: -1})
 	if err != nil {
 		t.Fatal(err)
@@ -48,11 +44,7 @@ func newEngine(t *testing.T, st store.Store, baseURL string) *engine.Engine {
 func TestOverlappingEvaluationsWriteOnce(t *testing.T) {
 	srv := httptest.NewServer(&fakeServer{})
 	defer srv.Close()
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
+	st := enginetest.OpenStore(t, boltstore.Options{})
 	// Commits are slowed so that evaluations read the ledger before the
 	// others commit: without the lock and the compare-and-swap they all
 	// queue the same change.

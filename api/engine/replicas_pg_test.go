@@ -16,13 +16,13 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore"
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest/fakefhir"
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
 )
@@ -57,10 +57,7 @@ func startPGReplica(t *testing.T, dbURL, baseURL, name string, tweak func(*engin
 		t.Fatal(err)
 	}
 	r := &pgReplica{name: name, st: &replicaStore{Store: ps}}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	enc := enginetest.Encoder(t)
 	cl, err := client.New(client.Config{BaseURL: baseURL, UserAgent: name, MaxRetries: -1})
 	if err != nil {
 		t.Fatal(err)

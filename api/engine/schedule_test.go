@@ -4,17 +4,16 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"slices"
 	"sync"
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // gatedStore records the subject of every commit and holds the commit of
@@ -63,16 +62,9 @@ func readingOf(subject, id, code, unit string, v float64, at time.Time) json.Raw
 // patient at a time so the order of evaluations is the order of hand-outs.
 func scheduleEngine(t *testing.T, hold string) (*Engine, *gatedStore) {
 	t.Helper()
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { st.Close() })
+	st := enginetest.OpenStore(t, boltstore.Options{})
 	g := &gatedStore{Store: st, hold: hold, held: make(chan struct{}), release: make(chan struct{})}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	enc := enginetest.Encoder(t)
 	eng, err := New(Config{Store: g, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
 		t.Fatal(err)

@@ -4,16 +4,15 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"strings"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // TestExplainSupersededValue: the key a clinician may have acted on stays
@@ -21,15 +20,8 @@ import (
 // earlier value, from the derivation it was computed from, marked
 // superseded with the key that replaced it and why.
 func TestExplainSupersededValue(t *testing.T) {
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(t)
 	eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
 		t.Fatal(err)
@@ -102,15 +94,8 @@ func TestExplainSupersededValue(t *testing.T) {
 // derived), and the answer and the metrics say so with a reason of its
 // own.
 func TestInputOlderThanRetentionIsRefusedWithItsReason(t *testing.T) {
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{NoSync: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	enc := enginetest.Encoder(t)
 	counted := map[derive.Reason]int{}
 	eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(),
 		Retention: 24 * time.Hour, Hooks: engine.Hooks{LeftOut: func(r derive.Reason) { counted[r]++ }}})

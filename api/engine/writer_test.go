@@ -7,13 +7,13 @@ import (
 	"io"
 	"net/http"
 	"net/http/httptest"
-	"path/filepath"
 	"strings"
 	"sync"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -104,15 +104,8 @@ func TestWritesOfOneSeriesKeepTheirOrder(t *testing.T) {
 	fake := &fakeServer{}
 	srv := httptest.NewServer(fake)
 	defer srv.Close()
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
+	st := enginetest.OpenStore(t, boltstore.Options{})
+	enc := enginetest.Encoder(t)
 	cl, err := client.New(client.Config{BaseURL: srv.URL + "/fhir", MaxRetries: -1})
 	if err != nil {
 		t.Fatal(err)
@@ -220,11 +213,7 @@ func TestRefusalsThatRetryAndRefusalsThatBury(t *testing.T) {
 			fake := &fakeServer{failN: 1, failAs: tc.status}
 			srv := httptest.NewServer(fake)
 			defer srv.Close()
-			st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-			if err != nil {
-				t.Fatal(err)
-			}
-			defer st.Close()
+			st := enginetest.OpenStore(t, boltstore.Options{})
 			enc, _ := encode.New(encode.DefaultOptions())
 			cl, _ := client.New(client.Config{BaseURL: srv.URL + "/fhir", MaxRetries: -1})
 			eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(), Client: cl})
@@ -256,11 +245,7 @@ func TestRefusalsThatRetryAndRefusalsThatBury(t *testing.T) {
 // in place to name the right patient must leave nothing derived from it
 // under the wrong one.
 func TestRefiledInputWithdrawsWhatTheFirstPatientGot(t *testing.T) {
-	st, err := boltstore.Open(filepath.Join(t.TempDir(), "s.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
+	st := enginetest.OpenStore(t, boltstore.Options{})
 	enc, _ := encode.New(encode.DefaultOptions())
 	eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
