@@ -102,27 +102,33 @@ func settled(t *testing.T, eng *Engine) {
 	t.Fatal("patients still dirty after a minute")
 }
 
-// A blood gas that arrives while a queue of patients with device readings
-// only is being evaluated is evaluated next, before the rest of the queue
-// (issue 9, item 1).
-func TestBloodGasJumpsTheQueue(t *testing.T) {
-	t.Parallel()
+// gasDuringHeldEvaluation gives patients Patient/d0 to d<devices-1> a new
+// end-tidal reading each (d0's mark is the oldest, so it is evaluated
+// first and, with g holding d0, its commit is held), runs the engine, and
+// once d0's commit is held ingests a blood gas for Patient/gas.
+func gasDuringHeldEvaluation(t *testing.T, eng *Engine, g *gatedStore, devices int) {
+	t.Helper()
 	now := time.Now().UTC().Truncate(time.Minute)
-	eng, g := scheduleEngine(t, "Patient/d0")
-	ctx := t.Context()
-	// Ten patients with a new end-tidal reading each: d0 is the oldest
-	// mark, so it is evaluated first and its commit is held.
-	for p := range 10 {
+	for p := range devices {
 		subject := fmt.Sprintf("Patient/d%d", p)
-		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
+		if _, err := eng.Ingest(t.Context(), "test", []json.RawMessage{readingOf(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
 			t.Fatal(err)
 		}
 	}
 	run(t, eng)
 	<-g.held
-	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
+	if _, err := eng.Ingest(t.Context(), "test", []json.RawMessage{readingOf("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
 		t.Fatal(err)
 	}
+}
+
+// A blood gas that arrives while a queue of patients with device readings
+// only is being evaluated is evaluated next, before the rest of the queue
+// (issue 9, item 1).
+func TestBloodGasJumpsTheQueue(t *testing.T) {
+	t.Parallel()
+	eng, g := scheduleEngine(t, "Patient/d0")
+	gasDuringHeldEvaluation(t, eng, g, 10)
 	close(g.release)
 	settled(t, eng)
 	got := g.committed()
@@ -168,21 +174,9 @@ func TestChangesDuringAnEvaluationCoalesce(t *testing.T) {
 // queue waits for the one in progress.
 func TestDeviceReadingsLeaveAnEvaluatorForBloodGases(t *testing.T) {
 	t.Parallel()
-	now := time.Now().UTC().Truncate(time.Minute)
 	eng, g := scheduleEngine(t, "Patient/d0")
 	eng.evaluators = 2
-	ctx := t.Context()
-	for p := range 5 {
-		subject := fmt.Sprintf("Patient/d%d", p)
-		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf(subject, fmt.Sprintf("e%d", p), "19891-1", "mm[Hg]", 36, now.Add(-time.Minute))}); err != nil {
-			t.Fatal(err)
-		}
-	}
-	run(t, eng)
-	<-g.held
-	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{readingOf("Patient/gas", "g1", "2019-8", "mm[Hg]", 42, now.Add(-2*time.Minute))}); err != nil {
-		t.Fatal(err)
-	}
+	gasDuringHeldEvaluation(t, eng, g, 5)
 	// The blood gas is committed while d0's commit is still held (the
 	// wait is a bound on a hang, not a timing under test).
 	deadline := time.Now().Add(time.Minute)
