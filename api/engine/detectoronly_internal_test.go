@@ -12,6 +12,8 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
+	"github.com/deadspace-fhir/deadspace/api/store/pgstore"
+	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 )
@@ -22,28 +24,56 @@ import (
 // kinds cannot change what it finds, pipeline.DetectorKind), and not the
 // patient's facts; after a new blood gas it reads every kind from the
 // start of the gas's dependency span, facts included. The same holds over
-// a store that copies the inputs out (store.InputScanner is optional).
+// a store that copies the inputs out (store.InputScanner is optional),
+// and over PostgreSQL, which replicas share (the detector's state is kept
+// there too while no other replica evaluates the patient).
 func TestEvaluationWithNoBloodGasInReachReadsEndTidalOnly(t *testing.T) {
 	t.Parallel()
-	for _, inPlace := range []bool{true, false} {
-		t.Run(fmt.Sprintf("in place %v", inPlace), func(t *testing.T) {
+	embedded := func(inPlace bool) func(t *testing.T) factCounter {
+		return func(t *testing.T) factCounter {
+			st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+			counting := &patientReads{Store: st}
+			if inPlace {
+				return scanningPatientReads{counting, st}
+			}
+			return counting
+		}
+	}
+	for _, c := range []struct {
+		name    string
+		open    func(t *testing.T) factCounter
+		inPlace bool
+	}{
+		{"embedded, in place", embedded(true), true},
+		{"embedded, copied", embedded(false), false},
+		{"PostgreSQL", func(t *testing.T) factCounter {
+			st, err := pgstore.Open(t.Context(), pgtest.NewSchema(t), pgstore.Options{Holder: "replica"})
+			if err != nil {
+				t.Fatal(err)
+			}
+			t.Cleanup(func() { _ = st.Close() })
+			return &sharedPatientReads{Store: st}
+		}, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
 			t.Parallel()
-			evaluationWithNoBloodGasInReach(t, inPlace)
+			over := c.open(t)
+			if _, ok := over.(store.InputScanner); ok != c.inPlace {
+				t.Fatalf("the store shows its inputs in place: %v, want %v", ok, c.inPlace)
+			}
+			evaluationWithNoBloodGasInReach(t, over)
 		})
 	}
 }
 
-func evaluationWithNoBloodGasInReach(t *testing.T, inPlace bool) {
-	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+// factCounter is a store that counts the reads of patient facts.
+type factCounter interface {
+	store.Store
+	factReads() int64
+}
+
+func evaluationWithNoBloodGasInReach(t *testing.T, over factCounter) {
 	enc := enginetest.Encoder(t)
-	counting := &patientReads{Store: st}
-	var over store.Store = counting
-	if inPlace {
-		over = scanningPatientReads{counting, st}
-	}
-	if _, ok := over.(store.InputScanner); ok != inPlace {
-		t.Fatalf("the store shows its inputs in place: %v, want %v", ok, inPlace)
-	}
 	e, err := New(Config{Store: over, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig()})
 	if err != nil {
 		t.Fatal(err)
@@ -65,7 +95,7 @@ func evaluationWithNoBloodGasInReach(t *testing.T, inPlace bool) {
 		if _, err := e.Ingest(ctx, "test", raws); err != nil {
 			t.Fatal(err)
 		}
-		dirty, err := st.DirtyPatients(ctx)
+		dirty, err := over.DirtyPatients(ctx)
 		if err != nil || len(dirty) != 1 {
 			t.Fatalf("dirty patients %v, %v", dirty, err)
 		}
@@ -78,11 +108,11 @@ func evaluationWithNoBloodGasInReach(t *testing.T, inPlace bool) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		before := counting.n.Load()
+		before := over.factReads()
 		if err := e.evaluatePatient(ctx, d); err != nil {
 			t.Fatal(err)
 		}
-		return countKinds(in), derives, counting.n.Load() - before
+		return countKinds(in), derives, over.factReads() - before
 	}
 	if kinds, derives, facts := evaluate(history...); !derives || len(kinds) != 3 || facts != 1 {
 		t.Fatalf("first evaluation read %v (a blood gas derived: %v) and the facts %d times, want every kind, the blood gas and the facts", kinds, derives, facts)
@@ -122,6 +152,22 @@ func (p *patientReads) Patient(ctx context.Context, subject string) (store.Patie
 	p.n.Add(1)
 	return p.Store.Patient(ctx, subject)
 }
+
+func (p *patientReads) factReads() int64 { return p.n.Load() }
+
+// sharedPatientReads counts reads of patient facts over PostgreSQL, which
+// replicas share (store.Replicated).
+type sharedPatientReads struct {
+	*pgstore.Store
+	n atomic.Int64
+}
+
+func (p *sharedPatientReads) Patient(ctx context.Context, subject string) (store.Patient, error) {
+	p.n.Add(1)
+	return p.Store.Patient(ctx, subject)
+}
+
+func (p *sharedPatientReads) factReads() int64 { return p.n.Load() }
 
 type kindCount struct {
 	kind derive.Kind

@@ -148,8 +148,7 @@ type Engine struct {
 	// once.
 	evaluators int
 	// fallStates holds each patient's fall detector states as of its last
-	// committed evaluation (subject → []*pipeline.FallState, ascending),
-	// over a store no other process writes.
+	// committed evaluation in this process (subject → keptFall).
 	fallStates sync.Map
 	// evaluatedHere holds the patients evaluated and committed in this
 	// process (subject → struct{}): a patient's first evaluation derives

@@ -353,7 +353,14 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	}
 	e.evaluatedHere.Store(d.Subject, struct{}{})
 	if len(saved) > 0 || resume != nil {
-		e.fallStates.Store(d.Subject, e.keptFallStates(previous, resume, saved, latest, haveLatest))
+		// On a shared store the commit cleared the mark (the store's
+		// Cleared is then its generation) or left it, overtaken by a newer
+		// change (then Cleared stays as it was): either way no other
+		// evaluation came in between.
+		e.fallStates.Store(d.Subject, keptFall{
+			states:  e.keptFallStates(previous, resume, saved, latest, haveLatest),
+			cleared: [2]uint64{d.Cleared, d.Generation},
+		})
 	}
 	// Only a complete evaluation knows everything the patient's data
 	// leaves out; after an incremental one the picture is refreshed apart
@@ -447,11 +454,33 @@ func (e *Engine) fallSaveLags() []time.Duration {
 	return []time.Duration{long, 3 * e.cfg.Derive.Window}
 }
 
+// keptFall is what the engine keeps of a patient's fall detector after
+// a committed evaluation: its states, ascending, and the store's
+// Dirty.Cleared values under which they still hold.
+type keptFall struct {
+	states []*pipeline.FallState
+	// cleared are the mark the evaluation cleared before it (as its own
+	// mark said) and its own mark's generation.
+	cleared [2]uint64
+}
+
 // keepsFallState reports whether the engine may keep the fall detector's
-// state between evaluations: only over a store no other process writes.
+// state between evaluations: over a store no other process writes, or
+// over a shared one that says, with each mark, whether another replica's
+// evaluation came in between (store.Dirty.Cleared; see fallState).
 func (e *Engine) keepsFallState() bool {
-	x, ok := e.cfg.Store.(store.Exclusive)
-	return ok && x.Exclusive()
+	if x, ok := e.cfg.Store.(store.Exclusive); ok && x.Exclusive() {
+		return true
+	}
+	_, shared := e.cfg.Store.(store.Replicated)
+	return shared
+}
+
+// sharedStore reports whether other replicas may evaluate this engine's
+// patients.
+func (e *Engine) sharedStore() bool {
+	_, shared := e.cfg.Store.(store.Replicated)
+	return shared
 }
 
 // fallState returns the saved detector state an evaluation of d can
@@ -468,7 +497,14 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 	if !ok {
 		return nil
 	}
-	states := v.([]*pipeline.FallState)
+	kept := v.(keptFall)
+	if e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1] {
+		// Another replica evaluated the patient since: the changes it
+		// cleared are in no mark this replica will see, and may come
+		// before the states.
+		return nil
+	}
+	states := kept.states
 	limit := d.From.Add(-e.cfg.Derive.Window)
 	var pick *pipeline.FallState
 	for _, st := range states { // ascending
@@ -525,8 +561,8 @@ func (e *Engine) fallSaveAt(latest time.Time, ok bool, resume *pipeline.FallStat
 // change came after them, so they still hold).
 func (e *Engine) keptFallStates(previous any, resume *pipeline.FallState, saved []*pipeline.FallState, latest time.Time, haveLatest bool) []*pipeline.FallState {
 	var candidates []*pipeline.FallState
-	if prev, ok := previous.([]*pipeline.FallState); ok && resume != nil {
-		for _, st := range prev {
+	if prev, ok := previous.(keptFall); ok && resume != nil {
+		for _, st := range prev.states {
 			if !st.At.After(resume.At) {
 				candidates = append(candidates, st)
 			}

@@ -46,7 +46,8 @@ type Replicated interface {
 	// another replica holds an unexpired claim on it. ok is false when
 	// another replica holds it, or when the patient is no longer dirty
 	// (its evaluation was committed meanwhile); otherwise d is the
-	// patient's mark as it stands now. [Store.Commit] ends the claim.
+	// patient's mark as it stands now, with [Dirty.Cleared] set.
+	// [Store.Commit] ends the claim.
 	ClaimPatient(ctx context.Context, subject string, ttl time.Duration) (d Dirty, ok bool, err error)
 	// ReleaseClaim ends this replica's claim on a patient that stays
 	// dirty (an evaluation that failed or was abandoned), so that any

@@ -102,6 +102,13 @@ type Dirty struct {
 	From time.Time
 	// Urgent is set when a change was a blood gas.
 	Urgent bool
+	// Cleared, from a store shared by replicas ([Replicated]), is the
+	// Generation of the mark that the patient's last committed evaluation
+	// cleared, on any replica (0 when none has). While it stands, every
+	// change since that evaluation is in this mark, so a replica that ran
+	// that evaluation may go on from what it found (the engine's fall
+	// detector state). A store of one replica leaves it 0.
+	Cleared uint64
 }
 
 // Entry is one derived Observation in the ledger, keyed by its series (the

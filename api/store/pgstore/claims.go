@@ -52,7 +52,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 // DirtyPatients lists every dirty patient, claimed or not: urgent ones
 // first, then by Since and Subject.
 func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
-	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, from_ns, urgent FROM dirty ORDER BY urgent DESC, since_ns, subject`)
+	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, from_ns, urgent, `+clearedOf("dirty")+` FROM dirty ORDER BY urgent DESC, since_ns, subject`)
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
@@ -63,11 +63,19 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 	return out, nil
 }
 
+// clearedOf is the column every listing of marks ends with: the
+// generation of the mark the patient's last committed evaluation cleared
+// (store.Dirty.Cleared; 0 when none did), read for the mark row named
+// table.
+func clearedOf(table string) string {
+	return `COALESCE((SELECT c.generation FROM cleared c WHERE c.subject = ` + table + `.subject), 0)`
+}
+
 func scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
 	var d store.Dirty
-	var since, gen, from int64
-	err := row.Scan(&d.Subject, &since, &gen, &from, &d.Urgent)
-	d.Since, d.Generation, d.From = fromNanos(since), uint64(gen), fromNanos(from)
+	var since, gen, from, cleared int64
+	err := row.Scan(&d.Subject, &since, &gen, &from, &d.Urgent, &cleared)
+	d.Since, d.Generation, d.From, d.Cleared = fromNanos(since), uint64(gen), fromNanos(from), uint64(cleared)
 	return d, err
 }
 
@@ -96,7 +104,7 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 		   SET claimed_by = $3, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 		  FROM picked
 		 WHERE d.subject = picked.subject
-		RETURNING d.subject, d.since_ns, d.generation, d.from_ns, d.urgent`,
+		RETURNING d.subject, d.since_ns, d.generation, d.from_ns, d.urgent, `+clearedOf("d"),
 		nanos(settledBefore), limit, s.holder, ttl.Microseconds())
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
@@ -131,7 +139,7 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 		UPDATE dirty
 		   SET claimed_by = $2, claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
 		 WHERE subject = $1 AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
-		RETURNING subject, since_ns, generation, from_ns, urgent`,
+		RETURNING subject, since_ns, generation, from_ns, urgent, `+clearedOf("dirty"),
 		subject, s.holder, ttl.Microseconds())
 	if err != nil {
 		return store.Dirty{}, false, wrap("ClaimPatient", err)

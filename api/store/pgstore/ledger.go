@@ -259,6 +259,7 @@ func settleDirty(ctx context.Context, tx pgx.Tx, change store.Change, now time.T
 			change.Subject, nanos(now))
 		return err
 	}
+	// The trigger of migration 0004 records the clear (store.Dirty.Cleared).
 	_, err = tx.Exec(ctx, `DELETE FROM dirty WHERE subject = $1`, change.Subject)
 	return err
 }

@@ -379,3 +379,66 @@ func TestRenewWriteClaim(t *testing.T) {
 		t.Fatalf("renewing a write that left the outbox: %v, %v; want false", ok, err)
 	}
 }
+
+// Every listing of a mark says which mark the patient's last committed
+// evaluation cleared (store.Dirty.Cleared), whichever replica committed
+// it: the first mark says none; an evaluation overtaken by a newer change
+// clears nothing and leaves it; an evaluation that clears moves it to the
+// generation it cleared, and so does a clear by a replica of the build
+// before this one, which deletes the mark with a statement of its own.
+func TestMarksSayWhichMarkWasLastCleared(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	const subj = "Patient/cl"
+	mark := func() {
+		t.Helper()
+		if err := b.MarkDirty(ctx, subj, t0); err != nil {
+			t.Fatal(err)
+		}
+	}
+	// check compares Cleared as each listing gives it, and returns the
+	// claimed mark.
+	check := func(step string, want uint64) store.Dirty {
+		t.Helper()
+		listed, err := b.DirtyPatients(ctx)
+		if err != nil || len(listed) != 1 {
+			t.Fatalf("%s: listed %+v, %v", step, listed, err)
+		}
+		d, ok, err := a.ClaimPatient(ctx, subj, time.Minute)
+		if err != nil || !ok {
+			t.Fatalf("%s: claim %+v %v %v", step, d, ok, err)
+		}
+		if err := a.ReleaseClaim(ctx, subj); err != nil {
+			t.Fatal(err)
+		}
+		batch, err := b.ClaimDirty(ctx, t0.Add(time.Hour), 10, time.Minute)
+		if err != nil || len(batch) != 1 {
+			t.Fatalf("%s: batch claim %+v, %v", step, batch, err)
+		}
+		for _, got := range []store.Dirty{listed[0], d, batch[0]} {
+			if got.Cleared != want {
+				t.Errorf("%s: Cleared %d, want %d (%+v)", step, got.Cleared, want, got)
+			}
+		}
+		return batch[0]
+	}
+
+	mark()
+	first := check("first mark", 0)
+	mark() // a change while the first mark's evaluation runs
+	if err := b.Commit(ctx, store.Change{Subject: subj, Generation: first.Generation}, t0); err != nil {
+		t.Fatal(err)
+	}
+	second := check("after an overtaken evaluation", 0)
+	if err := b.Commit(ctx, store.Change{Subject: subj, Generation: second.Generation}, t0); err != nil {
+		t.Fatal(err)
+	}
+	mark()
+	third := check("after a clear", second.Generation)
+	if _, err := a.pool.Exec(ctx, `DELETE FROM dirty WHERE subject = $1`, subj); err != nil {
+		t.Fatal(err)
+	}
+	mark()
+	check("after an earlier build's clear", third.Generation)
+}
