@@ -77,11 +77,20 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 	} else {
 		e.register(ctx)
 	}
+	// Events a notification skipped over are searched for only once they
+	// missed their grace (missingEvents).
+	gaps := time.NewTicker(max(e.cfg.GapGrace/4, 5*time.Millisecond))
+	defer gaps.Stop()
 	for {
 		trigger := ""
 		select {
 		case <-ctx.Done():
 			return
+		case <-gaps.C:
+			if n := e.missing.expire(e.now(), e.cfg.GapGrace); n > 0 {
+				e.gapFound(ctx, n)
+			}
+			continue
 		case trigger = <-e.catch:
 		case <-poll:
 			trigger = "poll"
@@ -317,8 +326,17 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 	if err != nil {
 		return fmt.Errorf("engine: notification: %w", err)
 	}
-	e.checkGap(ctx, lowest, highest, previous)
+	e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
 	return nil
+}
+
+// noteEvents notes which events of subscription a notification carried
+// (lowest to highest) after the highest seen before (previous): events it
+// skipped over are searched for if they miss their grace.
+func (e *Engine) noteEvents(ctx context.Context, subscription string, lowest, highest, previous uint64) {
+	if e.missing.note(subscription, lowest, highest, previous, e.now()) {
+		e.gapFound(ctx, 0)
+	}
 }
 
 // notifiedAt notes that a notification arrived, for the heartbeat timeout.
@@ -347,23 +365,14 @@ func eventRange(n notify.Notification) (lowest, highest uint64) {
 	return lowest, highest
 }
 
-// checkGap asks for a catch-up when events between the highest number seen
-// before (previous) and this notification's never came.
-func (e *Engine) checkGap(ctx context.Context, lowest, highest, previous uint64) {
-	gap := false
-	switch {
-	case lowest > 0 && lowest > previous+1:
-		gap = true // events between previous and lowest never came
-	case lowest == 0 && highest > previous:
-		gap = true // a heartbeat counts events we never received
+// gapFound asks for a catch-up of events that never came: events of them
+// (0: too many runs to keep) missed their grace.
+func (e *Engine) gapFound(ctx context.Context, events uint64) {
+	if e.cfg.Hooks.Gap != nil {
+		e.cfg.Hooks.Gap()
 	}
-	if gap {
-		if e.cfg.Hooks.Gap != nil {
-			e.cfg.Hooks.Gap()
-		}
-		e.log.WarnContext(ctx, "subscription events missing; catching up by search", "last_seen", previous, "now_at", highest)
-		e.RequestCatchUp("gap")
-	}
+	e.log.WarnContext(ctx, "subscription events missing; catching up by search", "events", events, "grace", e.cfg.GapGrace)
+	e.RequestCatchUp("gap")
 }
 
 // Fetch reads resources named by an id-only notification from the server

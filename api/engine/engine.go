@@ -93,6 +93,11 @@ type Config struct {
 	// HeartbeatTimeout triggers a catch-up when no notification arrived for
 	// that long; zero disables it.
 	HeartbeatTimeout time.Duration
+	// GapGrace is how long events that a notification skipped over may take
+	// to arrive before a catch-up search looks for them (notifications sent
+	// at once over several connections arrive out of order).
+	// DefaultGapGrace when zero.
+	GapGrace time.Duration
 	// JobLease is how long one replica keeps the right to poll, catch up
 	// and register the subscription, and its claim on a patient it is
 	// evaluating, when the store is shared by replicas (store.Replicated):
@@ -154,6 +159,9 @@ type Engine struct {
 	// process (subject → struct{}): a patient's first evaluation derives
 	// every blood gas, whatever its dirty mark says (see evaluateLocked).
 	evaluatedHere sync.Map
+	// missing holds the subscription events skipped over and not arrived
+	// yet.
+	missing missingEvents
 
 	pictures *pictures // what the derivations leave out, kept complete
 
@@ -206,6 +214,12 @@ func New(cfg Config) (*Engine, error) {
 	}
 	if cfg.JobLease <= 0 {
 		cfg.JobLease = DefaultJobLease
+	}
+	if cfg.GapGrace < 0 {
+		errs = append(errs, fmt.Errorf("engine: gap grace must not be negative, got %v", cfg.GapGrace))
+	}
+	if cfg.GapGrace == 0 {
+		cfg.GapGrace = DefaultGapGrace
 	}
 	if cfg.ProvenanceTagSystem == "" {
 		cfg.ProvenanceTagSystem = DefaultProvenanceTagSystem
@@ -302,7 +316,7 @@ func (e *Engine) IngestNotified(ctx context.Context, mode string, resources []js
 	}
 	e.stored(res)
 	e.notifiedAt()
-	e.checkGap(ctx, lowest, highest, previous)
+	e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
 	return rec, nil
 }
 

@@ -139,7 +139,7 @@ func New(version string) *Metrics {
 	m.deadLettered = counter("dead_lettered_total",
 		"Writes moved to the dead letters.")
 	m.gaps = counter("subscription_gaps_total",
-		"Gaps detected in subscription event numbers.")
+		"Gaps in subscription event numbers: skipped events that did not arrive within the gap grace.")
 	m.catchUps = counterVec("catchups_total",
 		"Catch-up searches started, by trigger.", "trigger")
 	m.watchers = gauge("watch_subscribers",

@@ -14,6 +14,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 )
@@ -41,6 +42,7 @@ type Config struct {
 	Settle         time.Duration
 	Retention      time.Duration
 	Heartbeat      time.Duration
+	GapGrace       time.Duration
 	Register       bool
 	PublicURL      string
 	LogLevel       string
@@ -102,6 +104,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.DurationVar(&c.Settle, "settle", 30*time.Second, "how long new data waits before it is derived, so late readings are included")
 	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
 	fs.DurationVar(&c.Heartbeat, "heartbeat-timeout", 0, "catch up by search when no notification arrived for this long (0: off)")
+	fs.DurationVar(&c.GapGrace, "gap-grace", engine.DefaultGapGrace, "how long subscription events a notification skipped over may take to arrive before a catch-up search looks for them (0: the default)")
 	fs.BoolVar(&c.Register, "register-subscription", false, "create or re-activate the rest-hook Subscription on the FHIR server at start-up")
 	fs.StringVar(&c.PublicURL, "public-url", "", "URL the FHIR server reaches this service at (for --register-subscription), e.g. https://deadspace.example/")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
@@ -309,6 +312,9 @@ func (c *Config) Validate() error {
 	}
 	if c.Retention < 2*time.Hour {
 		errs = append(errs, fmt.Errorf("--retention must be at least 2h, got %v", c.Retention))
+	}
+	if c.GapGrace < 0 {
+		errs = append(errs, fmt.Errorf("--gap-grace must not be negative, got %v", c.GapGrace))
 	}
 	if c.Heartbeat < 0 {
 		errs = append(errs, fmt.Errorf("--heartbeat-timeout must not be negative, got %v", c.Heartbeat))

@@ -167,6 +167,42 @@ func TestFakeEventNumberJumpCatchesUp(t *testing.T) {
 	}
 }
 
+// Notifications that a server sends over several connections at once
+// arrive out of order: one skips an event number that the next one
+// brings. Within --gap-grace that is no loss, and the service does not
+// search the server for it; an event that never comes is still searched
+// for once its grace is over.
+func TestFakeReorderedNotificationsDoNotSearch(t *testing.T) {
+	f := fakefhir.Start(t)
+	const grace = 500 * time.Millisecond
+	s := startOnFake(t, f, func(c *serve.Config) { c.GapGrace = grace })
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	searches := f.Count(http.MethodGet, "Observation")
+	// Event 1 carries the patient; then the readings' events, in pairs
+	// sent the other way round (3 before 2, 5 before 4, …).
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/reorder", 1, b.resources[:1]), secret)
+	rest := b.resources[1:]
+	for i := 0; i+1 < len(rest); i += 2 {
+		post(t, s.url, http.MethodPost, "/notify", notification("Subscription/reorder", i+3, rest[i+1:i+2]), secret)
+		post(t, s.url, http.MethodPost, "/notify", notification("Subscription/reorder", i+2, rest[i:i+1]), secret)
+	}
+	if len(rest)%2 == 1 {
+		post(t, s.url, http.MethodPost, "/notify", notification("Subscription/reorder", len(rest)+1, rest[len(rest)-1:]), secret)
+	}
+	waitDerived(t, f, b.subject, wantValues)
+	time.Sleep(3 * grace) // every skipped number has arrived; nothing is left to expire
+	if got := f.Count(http.MethodGet, "Observation"); got != searches {
+		t.Fatalf("%d searches for notifications that only arrived out of order, want none", got-searches)
+	}
+	// An event that never comes: searched for after the grace, not before.
+	next := len(b.resources) + 2
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/reorder", next, rest[:1]), secret)
+	if got := f.Count(http.MethodGet, "Observation"); got != searches {
+		t.Fatalf("searched at once for an event skipped a moment ago")
+	}
+	waitFor(t, "the search for the missing event", func() bool { return f.Count(http.MethodGet, "Observation") > searches })
+}
+
 func TestFakeHeartbeatCountAheadCatchesUp(t *testing.T) {
 	f := fakefhir.Start(t)
 	s := startOnFake(t, f, nil)
