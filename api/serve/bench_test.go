@@ -3,6 +3,7 @@ package serve_test
 import (
 	"bytes"
 	"context"
+	"crypto/sha256"
 	"encoding/json"
 	"fmt"
 	"io"
@@ -163,6 +164,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		runtime.ReadMemStats(&heapAfter)
 		diskBytes := dirSize(dir)
 		probe := probeDisk(b, dir)
+		cpuProbe := probeCPU()
 
 		// The load: senders POST notifications of one resource each, mostly a
 		// new end-tidal reading, every gasEvery-th a blood gas.
@@ -297,6 +299,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 			b.ReportMetric(float64(written)/float64(notes), "disk-write-B/notification")
 		}
 		b.ReportMetric(float64(probe.Microseconds()), "disk-probe-µs")
+		b.ReportMetric(float64(cpuProbe.Microseconds()), "cpu-probe-µs")
 		b.ReportMetric(float64(lat[len(lat)/2].Microseconds())/1000, "p50-ms")
 		b.ReportMetric(float64(lat[len(lat)*99/100].Microseconds())/1000, "p99-ms")
 		slices.Sort(clientLat)
@@ -311,6 +314,31 @@ func benchObs(subject, id, code, unit string, v float64, at time.Time) json.RawM
 		`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"effectiveDateTime":"%s",`+
 		`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
 		id, at.Format(time.RFC3339), code, subject, at.Format(time.RFC3339), v, unit, unit))
+}
+
+// probeCPU times a fixed piece of work of the kind the service does for a
+// notification (decoding a notification Bundle with encoding/json and
+// hashing it), a thousand times, on one goroutine (the median of 15). The
+// same binary's CPU per notification moves with this machine's speed from
+// hour to hour by nearly twice; reported beside the rate, it lets
+// runs be compared at like speeds.
+func probeCPU() time.Duration {
+	body := notification("Subscription/probe", 1, []json.RawMessage{
+		benchObs("Patient/probe", "probe", "19891-1", "mm[Hg]", 36, time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC))})
+	var took []time.Duration
+	for range 15 {
+		t0 := time.Now()
+		for range 1000 {
+			var v map[string]any
+			if json.Unmarshal(body, &v) != nil {
+				panic("the probe's notification does not decode")
+			}
+			sha256.Sum256(body)
+		}
+		took = append(took, time.Since(t0))
+	}
+	slices.Sort(took)
+	return took[len(took)/2]
 }
 
 // probeDisk times, in dir, what a commit of the embedded store asks of the
