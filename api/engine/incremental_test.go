@@ -51,11 +51,19 @@ func (r *rangeCounting) Commit(ctx context.Context, c store.Change, now time.Tim
 // saved state) must be replay's, for several arrival orders.
 func TestIncrementalAgreesWithReplay(t *testing.T) {
 	t.Parallel()
-	base := time.Date(2026, 1, 10, 0, 0, 0, 0, time.UTC)
-	var items []arrival
+	items, base, subjects := fallsAndRises()
+	agreesWithReplay(t, items, base, subjects, 4, 3)
+}
+
+// fallsAndRises is two patients' six hours of end-tidal readings with a
+// fall and a rise each (the second's last fall does not end), and four
+// blood gases each that come back from the laboratory 20 minutes late.
+func fallsAndRises() (items []arrival, base time.Time, subjects []string) {
+	base = time.Date(2026, 1, 10, 0, 0, 0, 0, time.UTC)
 	add := func(raw json.RawMessage, at time.Duration) { items = append(items, arrival{raw, at}) }
 	for p := 1; p <= 2; p++ {
 		subj := fmt.Sprintf("Patient/inc%d", p)
+		subjects = append(subjects, subj)
 		for m := range 6 * 60 {
 			at := base.Add(time.Duration(m) * time.Minute)
 			v := 37 + float64(m%4)/2
@@ -75,7 +83,7 @@ func TestIncrementalAgreesWithReplay(t *testing.T) {
 			add(obsOf(subj, fmt.Sprintf("inc%d-gas%d", p, g), "1", "final", "2019-8", "mm[Hg]", 40+float64(g), at, at.Add(20*time.Minute)), time.Duration(m+20)*time.Minute)
 		}
 	}
-	agreesWithReplay(t, items, base, []string{"Patient/inc1", "Patient/inc2"}, 4, 3)
+	return items, base, subjects
 }
 
 // arrival is one resource and when it reaches the service.
@@ -94,19 +102,7 @@ func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []
 	for seed := range seeds {
 		t.Run(fmt.Sprint("order ", seed), func(t *testing.T) {
 			t.Parallel()
-			rng := rand.New(rand.NewPCG(seed, 7))
-			order := slices.Clone(items)
-			for i := range order {
-				order[i].arrival += time.Duration(rng.IntN(10)) * time.Minute
-				if rng.IntN(60) == 0 {
-					order[i].arrival += 90 * time.Minute // very late
-				}
-			}
-			slices.SortStableFunc(order, func(a, b arrival) int { return cmp.Compare(a.arrival, b.arrival) })
-			var stream []json.RawMessage
-			for _, it := range order {
-				stream = append(stream, it.raw)
-			}
+			stream := arrivalOrder(items, seed)
 			bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
 			st := &rangeCounting{Store: bs}
 			enc := enginetest.Encoder(t)
@@ -126,55 +122,86 @@ func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []
 					t.Fatal(err)
 				}
 			}
-			var live []json.RawMessage
-			for _, subject := range subjects {
-				recs, err := eng.Derivations(ctx, subject, time.Time{}, base.Add(24*time.Hour), "", 1000)
-				if err != nil {
-					t.Fatal(err)
-				}
-				for _, r := range recs {
-					live = append(live, r.Payload.Observation)
-				}
-			}
-			rep, err := eng.Compute(ctx, stream)
-			if err != nil {
-				t.Fatal(err)
-			}
-			var replayed []json.RawMessage
-			falls := 0
-			for _, r := range rep.Results {
-				if r.Fall != nil {
-					falls++
-				}
-				for _, o := range r.Bundle.Observations {
-					raw, err := json.Marshal(o)
-					if err != nil {
-						t.Fatal(err)
-					}
-					replayed = append(replayed, raw)
-				}
-			}
-			if falls < minFalls {
-				t.Fatalf("replay found %d falls and rises; the stream should give at least %d", falls, minFalls)
-			}
-			got, want := valuesOfObservations(t, live), valuesOfObservations(t, replayed)
-			for series, w := range want {
-				if g, ok := got[series]; !ok || g != w {
-					t.Errorf("series %s: live %+v (present %v), replay %+v", series, g, ok, w)
-				}
-			}
-			for series, g := range got {
-				if _, ok := want[series]; !ok {
-					t.Errorf("the live engine has series %s (key %s), replay has not", series, g.key)
-				}
-			}
+			n := sameAsReplay(t, eng, stream, base, subjects, minFalls)
 			// The test means something only if most evaluations resumed.
 			if r, c := st.ranged.Load(), st.commits.Load(); 10*r < 8*c {
 				t.Errorf("%d of %d evaluations read a range of inputs: the detector's state was hardly used", r, c)
 			}
-			t.Logf("%d values agree; %d of %d evaluations read a range of inputs", len(want), st.ranged.Load(), st.commits.Load())
+			t.Logf("%d values agree; %d of %d evaluations read a range of inputs", n, st.ranged.Load(), st.commits.Load())
 		})
 	}
+}
+
+// arrivalOrder is the resources of items in an order of their arrival:
+// each delayed by up to ten minutes, one in sixty by an hour and a half
+// more, drawn from seed.
+func arrivalOrder(items []arrival, seed uint64) []json.RawMessage {
+	rng := rand.New(rand.NewPCG(seed, 7))
+	order := slices.Clone(items)
+	for i := range order {
+		order[i].arrival += time.Duration(rng.IntN(10)) * time.Minute
+		if rng.IntN(60) == 0 {
+			order[i].arrival += 90 * time.Minute // very late
+		}
+	}
+	slices.SortStableFunc(order, func(a, b arrival) int { return cmp.Compare(a.arrival, b.arrival) })
+	var stream []json.RawMessage
+	for _, it := range order {
+		stream = append(stream, it.raw)
+	}
+	return stream
+}
+
+// sameAsReplay compares the values eng recorded for subjects with what
+// replay finds in stream (eng.Compute), and returns how many agree.
+// minFalls is how many falls and rises replay must find, so the detector
+// is exercised.
+func sameAsReplay(t *testing.T, eng *engine.Engine, stream []json.RawMessage, base time.Time, subjects []string, minFalls int) int {
+	t.Helper()
+	ctx := context.Background()
+	var live []json.RawMessage
+	for _, subject := range subjects {
+		recs, err := eng.Derivations(ctx, subject, time.Time{}, base.Add(24*time.Hour), "", 1000)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, r := range recs {
+			live = append(live, r.Payload.Observation)
+		}
+	}
+	rep, err := eng.Compute(ctx, stream)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var replayed []json.RawMessage
+	falls := 0
+	for _, r := range rep.Results {
+		if r.Fall != nil {
+			falls++
+		}
+		for _, o := range r.Bundle.Observations {
+			raw, err := json.Marshal(o)
+			if err != nil {
+				t.Fatal(err)
+			}
+			replayed = append(replayed, raw)
+		}
+	}
+	if falls < minFalls {
+		t.Fatalf("replay found %d falls and rises; the stream should give at least %d", falls, minFalls)
+	}
+	got, want := valuesOfObservations(t, live), valuesOfObservations(t, replayed)
+	for series, w := range want {
+		if g, ok := got[series]; !ok || g != w {
+			t.Errorf("series %s: live %+v (present %v), replay %+v", series, g, ok, w)
+		}
+	}
+	for series, g := range got {
+		if _, ok := want[series]; !ok {
+			t.Errorf("the live engine has series %s (key %s), replay has not", series, g.key)
+		}
+	}
+	return len(want)
 }
 
 // TestIncrementalAgreesWithReplayForEveryKind: how far back a new input
@@ -186,12 +213,21 @@ func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []
 // readings and a reading whose correction changes its kind.
 func TestIncrementalAgreesWithReplayForEveryKind(t *testing.T) {
 	t.Parallel()
-	base := time.Date(2026, 2, 3, 0, 0, 0, 0, time.UTC)
-	var items []arrival
+	items, base, subjects := everyKind()
+	agreesWithReplay(t, items, base, subjects, 2, 4)
+}
+
+// everyKind is two patients' four hours of every kind of input, from
+// sources of different priority, with late temperatures, blood gases (one
+// also reported at the patient's temperature), ventilator readings sent
+// after their blood gas, and corrections (one changes a reading's kind).
+func everyKind() (items []arrival, base time.Time, subjects []string) {
+	base = time.Date(2026, 2, 3, 0, 0, 0, 0, time.UTC)
 	add := func(raw json.RawMessage, at time.Duration) { items = append(items, arrival{raw, at}) }
 	const hours = 4
 	for p := 1; p <= 2; p++ {
 		subj := fmt.Sprintf("Patient/kind%d", p)
+		subjects = append(subjects, subj)
 		id := func(what string, m int) string { return fmt.Sprintf("kind%d-%s%d", p, what, m) }
 		reading := func(what, code, unit string, v float64, m int, late time.Duration) {
 			at := base.Add(time.Duration(m) * time.Minute)
@@ -246,5 +282,5 @@ func TestIncrementalAgreesWithReplayForEveryKind(t *testing.T) {
 		add(obsOf(subj, id("recoded", 158), "1", "final", "8310-5", "Cel", 34, wrongAt, wrongAt.Add(time.Minute)), 159*time.Minute)
 		add(obsOf(subj, id("recoded", 158), "2", "amended", "19891-1", "mm[Hg]", 30, wrongAt, base.Add(200*time.Minute)), 200*time.Minute)
 	}
-	agreesWithReplay(t, items, base, []string{"Patient/kind1", "Patient/kind2"}, 2, 4)
+	return items, base, subjects
 }
