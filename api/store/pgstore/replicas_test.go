@@ -2,12 +2,14 @@ package pgstore
 
 import (
 	"errors"
+	"net/url"
 	"slices"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
+	"github.com/jackc/pgx/v5"
 )
 
 var t0 = time.Date(2024, 3, 14, 2, 0, 0, 0, time.UTC)
@@ -385,10 +387,11 @@ func TestRenewWriteClaim(t *testing.T) {
 // it: the first mark says none; an evaluation overtaken by a newer change
 // clears nothing and leaves it; an evaluation that clears moves it to the
 // generation it cleared, and so does a clear by a replica of the build
-// before this one, which deletes the mark with a statement of its own.
+// before this one, which deletes the mark with a statement of its own
+// (here from a session whose search path leaves the store's schema out).
 func TestMarksSayWhichMarkWasLastCleared(t *testing.T) {
-	url := pgtest.NewSchema(t)
-	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	dbURL := pgtest.NewSchema(t)
+	a, b := openAs(t, dbURL, "replica-a"), openAs(t, dbURL, "replica-b")
 	ctx := t.Context()
 	const subj = "Patient/cl"
 	mark := func() {
@@ -436,7 +439,25 @@ func TestMarksSayWhichMarkWasLastCleared(t *testing.T) {
 	}
 	mark()
 	third := check("after a clear", second.Generation)
-	if _, err := a.pool.Exec(ctx, `DELETE FROM dirty WHERE subject = $1`, subj); err != nil {
+	// The earlier build's clear, from a session whose search path does not
+	// name the store's schema (the trigger's function keeps its own).
+	schema, err := url.Parse(dbURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	conn, err := a.pool.Acquire(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Release()
+	if _, err := conn.Exec(ctx, `SET search_path TO pg_catalog`); err != nil {
+		t.Fatal(err)
+	}
+	marks := pgx.Identifier{schema.Query().Get("search_path"), "dirty"}.Sanitize()
+	if _, err := conn.Exec(ctx, `DELETE FROM `+marks+` WHERE subject = $1`, subj); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := conn.Exec(ctx, `RESET search_path`); err != nil {
 		t.Fatal(err)
 	}
 	mark()
