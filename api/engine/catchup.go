@@ -87,7 +87,7 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 		case <-ctx.Done():
 			return
 		case <-gaps.C:
-			if n := e.missing.expire(e.now(), e.cfg.GapGrace); n > 0 {
+			if n := e.missing.expire(time.Now(), e.cfg.GapGrace); n > 0 {
 				e.gapFound(ctx, n)
 			}
 			continue
@@ -334,7 +334,9 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 // (lowest to highest) after the highest seen before (previous): events it
 // skipped over are searched for if they miss their grace.
 func (e *Engine) noteEvents(ctx context.Context, subscription string, lowest, highest, previous uint64) {
-	if e.missing.note(subscription, lowest, highest, previous, e.now()) {
+	// The grace is the time a delivery takes, on the wall clock, whatever
+	// clock the engine dates its work by (Config.Now).
+	if e.missing.note(subscription, lowest, highest, previous, time.Now()) {
 		e.gapFound(ctx, 0)
 	}
 }

@@ -472,8 +472,7 @@ func (e *Engine) keepsFallState() bool {
 	if x, ok := e.cfg.Store.(store.Exclusive); ok && x.Exclusive() {
 		return true
 	}
-	_, shared := e.cfg.Store.(store.Replicated)
-	return shared
+	return e.sharedStore()
 }
 
 // sharedStore reports whether other replicas may evaluate this engine's

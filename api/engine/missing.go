@@ -14,9 +14,9 @@ import (
 // of those minutes read again) would load the FHIR server for nothing.
 const DefaultGapGrace = 2 * time.Second
 
-// maxMissingRanges bounds what missingEvents holds per subscription: a
+// maxMissingRuns bounds what missingEvents holds per subscription: a
 // sender that skips more often than that is searched for at once.
-const maxMissingRanges = 1024
+const maxMissingRuns = 1024
 
 // missingEvents holds, per subscription, the event numbers that
 // notifications skipped over and that have not arrived since, with when
@@ -74,7 +74,7 @@ func (m *missingEvents) note(subscription string, lowest, highest, previous uint
 		}
 		sub.runs = append(sub.runs, runs...)
 	}
-	if len(sub.runs)+len(sub.early) > maxMissingRanges {
+	if len(sub.runs)+len(sub.early) > maxMissingRuns {
 		delete(m.subs, subscription)
 		return true
 	}

@@ -76,14 +76,14 @@ func TestMissingEventsPerSubscriptionAndBounded(t *testing.T) {
 		t.Fatalf("searched for %d events, want a's event 2", got)
 	}
 	var searchNow bool
-	for i := range uint64(maxMissingRanges + 1) {
+	for i := range uint64(maxMissingRuns + 1) {
 		searchNow = m.note("Subscription/c", 2*i+2, 2*i+2, 2*i, now)
-		if searchNow && i < maxMissingRanges {
+		if searchNow && i < maxMissingRuns {
 			t.Fatalf("searched at once after %d runs", i+1)
 		}
 	}
 	if !searchNow {
-		t.Fatalf("%d missing runs kept, want a search at once", maxMissingRanges+1)
+		t.Fatalf("%d missing runs kept, want a search at once", maxMissingRuns+1)
 	}
 	if m.pending() {
 		t.Error("runs kept after the search at once")
