@@ -28,13 +28,18 @@ type querier interface {
 // the whole patient, absorbs any other), and a blood gas makes the mark
 // urgent. A claim on the patient stays: the replica evaluating it finds on
 // commit that the generation moved, and leaves the mark for the next
-// evaluation.
+// evaluation. reach_generation follows the generation: a mark whose
+// reach_generation lags was last written by an earlier build (migration
+// 0006), and scanDirty reads its span as the whole patient.
 const markDirtySQL = `
-	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent) VALUES ($1, $2, nextval('dirty_generation'), $3, $4)
+	WITH g AS (SELECT nextval('dirty_generation') AS gen)
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation)
+	SELECT $1, $2, g.gen, $3, $4, g.gen FROM g
 	ON CONFLICT (subject) DO UPDATE
 	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
 	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
-	       urgent = dirty.urgent OR EXCLUDED.urgent`
+	       urgent = dirty.urgent OR EXCLUDED.urgent,
+	       reach_generation = CASE WHEN dirty.reach_generation = dirty.generation THEN EXCLUDED.reach_generation ELSE 0 END`
 
 func markDirty(ctx context.Context, q querier, subject string, now time.Time, sp store.Span) error {
 	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.From), sp.Urgent)
@@ -52,7 +57,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 // DirtyPatients lists every dirty patient, claimed or not: urgent ones
 // first, then by Since and Subject.
 func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
-	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, from_ns, urgent, `+clearedOf("dirty")+` FROM dirty ORDER BY urgent DESC, since_ns, subject`)
+	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty")+` FROM dirty ORDER BY urgent DESC, since_ns, subject`)
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
@@ -61,6 +66,13 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 		return nil, wrap("DirtyPatients", err)
 	}
 	return out, nil
+}
+
+// spanOf is the mark's from_ns as every listing gives it: 0, the whole
+// patient, when an earlier build was the last to write the mark (its
+// reach_generation lags, see markDirtySQL).
+func spanOf(table string) string {
+	return `CASE WHEN ` + table + `.reach_generation = ` + table + `.generation THEN ` + table + `.from_ns ELSE 0 END`
 }
 
 // clearedOf is the column every listing of marks ends with: the
@@ -104,7 +116,7 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 		   SET claimed_by = $3, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 		  FROM picked
 		 WHERE d.subject = picked.subject
-		RETURNING d.subject, d.since_ns, d.generation, d.from_ns, d.urgent, `+clearedOf("d"),
+		RETURNING d.subject, d.since_ns, d.generation, `+spanOf("d")+`, d.urgent, `+clearedOf("d"),
 		nanos(settledBefore), limit, s.holder, ttl.Microseconds())
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
@@ -139,7 +151,7 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 		UPDATE dirty
 		   SET claimed_by = $2, claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
 		 WHERE subject = $1 AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
-		RETURNING subject, since_ns, generation, from_ns, urgent, `+clearedOf("dirty"),
+		RETURNING subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty"),
 		subject, s.holder, ttl.Microseconds())
 	if err != nil {
 		return store.Dirty{}, false, wrap("ClaimPatient", err)

@@ -463,3 +463,84 @@ func TestMarksSayWhichMarkWasLastCleared(t *testing.T) {
 	mark()
 	check("after an earlier build's clear", third.Generation)
 }
+
+// earlierMarkSQL is how builds before migration 0006 mark a patient
+// dirty: their from_ns is the input's own time, not the earliest blood
+// gas it reaches.
+const earlierMarkSQL = `
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent) VALUES ($1, $2, nextval('dirty_generation'), $3, $4)
+	ON CONFLICT (subject) DO UPDATE
+	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
+	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
+	       urgent = dirty.urgent OR EXCLUDED.urgent`
+
+// While replicas are upgraded one at a time, replicas of the earlier build
+// write marks whose span means something else; a mark one of them wrote,
+// or wrote into, reads as the whole patient (From zero) until an
+// evaluation clears it, so this build's incremental evaluation cannot
+// miss what it reaches. Marks this build alone wrote keep their span.
+func TestMarksOfAnEarlierBuildCoverTheWholePatient(t *testing.T) {
+	s := openAs(t, pgtest.NewSchema(t), "replica-a")
+	ctx := t.Context()
+	const subj = "Patient/up"
+	input := func(id string, at time.Time) {
+		t.Helper()
+		if _, err := s.PutInputs(ctx, []store.Input{{Subject: subj, Logical: "Observation/" + id, VersionID: "1", LastUpdated: at, EffectiveAt: at, ChangedAt: at}}, at); err != nil {
+			t.Fatal(err)
+		}
+	}
+	earlier := func(at time.Time) {
+		t.Helper()
+		if _, err := s.pool.Exec(ctx, earlierMarkSQL, subj, nanos(at), nanos(at), false); err != nil {
+			t.Fatal(err)
+		}
+	}
+	from := func(step string, want time.Time) store.Dirty {
+		t.Helper()
+		listed, err := s.DirtyPatients(ctx)
+		if err != nil || len(listed) != 1 {
+			t.Fatalf("%s: listed %+v, %v", step, listed, err)
+		}
+		claimed, err := s.ClaimDirty(ctx, t0.Add(24*time.Hour), 10, time.Minute)
+		if err != nil || len(claimed) != 1 {
+			t.Fatalf("%s: claimed %+v, %v", step, claimed, err)
+		}
+		if err := s.ReleaseClaim(ctx, subj); err != nil {
+			t.Fatal(err)
+		}
+		one, ok, err := s.ClaimPatient(ctx, subj, time.Minute)
+		if err != nil || !ok {
+			t.Fatalf("%s: claim %+v %v %v", step, one, ok, err)
+		}
+		if err := s.ReleaseClaim(ctx, subj); err != nil {
+			t.Fatal(err)
+		}
+		for _, d := range []store.Dirty{listed[0], claimed[0], one} {
+			if !d.From.Equal(want) {
+				t.Errorf("%s: From %v, want %v", step, d.From, want)
+			}
+		}
+		return one
+	}
+	at := func(m int) time.Time { return t0.Add(time.Duration(m) * time.Minute) }
+
+	input("a", at(30))
+	from("this build's mark", at(30))
+	input("b", at(20))
+	from("this build's marks merged", at(20))
+	earlier(at(40))
+	from("an earlier build wrote into it", time.Time{})
+	input("c", at(50))
+	d := from("this build's change after the earlier build's", time.Time{})
+	if err := s.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, at(60)); err != nil {
+		t.Fatal(err)
+	}
+	input("d", at(70))
+	from("after the clear, this build's mark", at(70))
+	d = from("again", at(70))
+	if err := s.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, at(80)); err != nil {
+		t.Fatal(err)
+	}
+	earlier(at(90))
+	from("an earlier build's new mark", time.Time{})
+}
