@@ -138,47 +138,9 @@ func TestReplayAndLiveAgree(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
-	var live []json.RawMessage
-	for p := 1; p <= 3; p++ {
-		recs, err := eng.Derivations(ctx, fmt.Sprintf("Patient/eq%d", p), time.Time{}, base.Add(24*time.Hour), "", 1000)
-		if err != nil {
-			t.Fatal(err)
-		}
-		for _, r := range recs {
-			live = append(live, r.Payload.Observation)
-		}
+	n := sameAsReplay(t, eng, stream, base, []string{"Patient/eq1", "Patient/eq2", "Patient/eq3"}, 0)
+	if n < 10 {
+		t.Fatalf("replay derived only %d values; the stream should give more", n)
 	}
-	rep, err := eng.Compute(ctx, stream)
-	if err != nil {
-		t.Fatal(err)
-	}
-	var replayed []json.RawMessage
-	for _, r := range rep.Results {
-		for _, o := range r.Bundle.Observations {
-			raw, err := json.Marshal(o)
-			if err != nil {
-				t.Fatal(err)
-			}
-			replayed = append(replayed, raw)
-		}
-	}
-	got, want := valuesOfObservations(t, live), valuesOfObservations(t, replayed)
-	if len(want) < 10 {
-		t.Fatalf("replay derived only %d values; the stream should give more", len(want))
-	}
-	for series, w := range want {
-		g, ok := got[series]
-		switch {
-		case !ok:
-			t.Errorf("replay has series %s (key %s), the live engine has not", series, w.key)
-		case g != w:
-			t.Errorf("series %s: live %+v, replay %+v", series, g, w)
-		}
-	}
-	for series, g := range got {
-		if _, ok := want[series]; !ok {
-			t.Errorf("the live engine has series %s (key %s), replay has not", series, g.key)
-		}
-	}
-	t.Logf("%d values agree", len(want))
+	t.Logf("%d values agree", n)
 }

@@ -30,7 +30,7 @@ type querier interface {
 // commit that the generation moved, and leaves the mark for the next
 // evaluation. reach_generation follows the generation: a mark whose
 // reach_generation lags was last written by an earlier build (migration
-// 0006), and scanDirty reads its span as the whole patient.
+// 0006), and every listing reads its span as the whole patient (spanOf).
 const markDirtySQL = `
 	WITH g AS (SELECT nextval('dirty_generation') AS gen)
 	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation)
