@@ -130,15 +130,3 @@ func (m *missingEvents) expire(now time.Time, grace time.Duration) (events uint6
 	}
 	return events
 }
-
-// pending reports whether any run is waiting out its grace.
-func (m *missingEvents) pending() bool {
-	m.mu.Lock()
-	defer m.mu.Unlock()
-	for _, sub := range m.subs {
-		if len(sub.runs) > 0 {
-			return true
-		}
-	}
-	return false
-}
