@@ -155,6 +155,11 @@ type Engine struct {
 	// fallStates holds each patient's fall detector states as of its last
 	// committed evaluation in this process (subject → keptFall).
 	fallStates sync.Map
+	// fallSeries holds, for each patient evaluated here, the series of
+	// every fall in its ledger as of its last committed evaluation
+	// (subject → keptSeries), so an incremental evaluation reads only the
+	// entries it can change (see ledgerFor).
+	fallSeries sync.Map
 	// evaluatedHere holds the patients evaluated and committed in this
 	// process (subject → struct{}): a patient's first evaluation derives
 	// every blood gas, whatever its dirty mark says (see evaluateLocked).

@@ -325,7 +325,8 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 			return err
 		}
 	}
-	ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
+	knownFalls, _ := e.fallSeries.LoadAndDelete(d.Subject)
+	ledger, partial, err := e.ledgerFor(ctx, d, gasesFrom, knownFalls)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -344,7 +345,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	change, err := e.diff(ctx, d, results, ledger, gasesFrom, ids)
+	change, err := e.diff(ctx, d, results, ledger, gasesFrom, partial, ids)
 	if err != nil {
 		return err
 	}
@@ -352,6 +353,12 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
 	e.evaluatedHere.Store(d.Subject, struct{}{})
+	if e.keepsFallState() {
+		e.fallSeries.Store(d.Subject, keptSeries{
+			series:  fallsAfter(knownFalls, partial, ledger, change.Entries),
+			cleared: [2]uint64{d.Cleared, d.Generation},
+		})
+	}
 	if len(saved) > 0 || resume != nil {
 		// On a shared store the commit cleared the mark (the store's
 		// Cleared is then its generation) or left it, overtaken by a newer
@@ -515,6 +522,102 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 		pick = states[0]
 	}
 	return pick
+}
+
+// keptSeries is what the engine keeps of a patient's ledger after a
+// committed evaluation: the series of every fall in it, and the store's
+// Dirty.Cleared values under which that still holds (as for keptFall).
+type keptSeries struct {
+	series  []string
+	cleared [2]uint64
+}
+
+// ledgerFor reads the ledger entries an evaluation compares its results
+// with, and says whether they are only part of the patient's ledger.
+//
+// A complete evaluation (gasesFrom zero) reads the whole ledger. An
+// incremental one derives only the blood gases sampled from gasesFrom on
+// and returns every fall (the detector's findings before its resumed
+// state come from the state), so it reads the entries from gasesFrom on
+// and every fall's entry, each by its series, as known kept from the
+// patient's earlier evaluations here: the entries of earlier blood gases,
+// which diff leaves alone, are not read, and the work stays the same
+// however many blood gases the patient's retained history holds. Without
+// that knowledge (the patient's first evaluation here, an evaluation that
+// failed, or on a shared store another replica's evaluation since) it
+// reads the whole ledger.
+func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gasesFrom time.Time, known any) ([]store.Entry, bool, error) {
+	kept, ok := known.(keptSeries)
+	if gasesFrom.IsZero() || !ok || !e.keepsFallState() ||
+		(e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1]) {
+		ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
+		return ledger, false, err
+	}
+	const page = 500
+	var ledger []store.Entry
+	after := ""
+	for {
+		got, err := e.cfg.Store.EntriesBetween(ctx, d.Subject, gasesFrom, farFuture, after, page)
+		if err != nil {
+			return nil, false, err
+		}
+		ledger = append(ledger, got...)
+		if len(got) < page {
+			break
+		}
+		after = got[len(got)-1].Series
+	}
+	read := make(map[string]bool, len(ledger))
+	for _, en := range ledger {
+		read[en.Series] = true
+	}
+	for _, series := range kept.series {
+		if read[series] {
+			continue
+		}
+		en, err := e.cfg.Store.Entry(ctx, series)
+		switch {
+		case errors.Is(err, store.ErrNotFound):
+			continue // pruned
+		case err != nil:
+			return nil, false, err
+		case en.Subject != d.Subject:
+			continue // not this patient's fall (a fall is never re-filed)
+		}
+		ledger = append(ledger, en)
+	}
+	return ledger, true, nil
+}
+
+// fallsAfter lists the series of every fall in a patient's ledger after a
+// committed change: those in the ledger the evaluation read (all of them
+// when it read the whole ledger, else the ones kept from before) and the
+// change's own.
+func fallsAfter(known any, partial bool, ledger, written []store.Entry) []string {
+	var series []string
+	seen := map[string]bool{}
+	add := func(s string) {
+		if !seen[s] {
+			seen[s] = true
+			series = append(series, s)
+		}
+	}
+	if kept, ok := known.(keptSeries); ok && partial {
+		for _, s := range kept.series {
+			add(s)
+		}
+	}
+	for _, en := range ledger {
+		if isFall(en) {
+			add(en.Series)
+		}
+	}
+	for _, en := range written {
+		if isFall(en) {
+			add(en.Series)
+		}
+	}
+	return series
 }
 
 // latestEtCO2 returns the time of the latest end-tidal reading in inputs.
@@ -785,7 +888,7 @@ func valuesOf(r pipeline.Result) ([]value, error) {
 //
 // With gasesFrom set, results holds only the blood gases sampled from then
 // (and every fall): entries of earlier blood gases are left alone.
-func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time, ids identities) (store.Change, error) {
+func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time, partial bool, ids identities) (store.Change, error) {
 	now := e.now()
 	frozen := now.Add(-(e.cfg.Retention - e.cfg.Freeze))
 	bySeries := make(map[string]store.Entry, len(ledger))
@@ -804,10 +907,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 			series, key := v.id.Series, v.id.Key
 			produced[series] = true
 			prev, ok := bySeries[series]
-			switch {
-			case r.Time().Before(frozen):
-				// Too old to touch: its inputs may already be pruned.
-			case !ok:
+			if !ok && !r.Time().Before(frozen) {
 				// The series may be filed under another patient: its blood
 				// gas was corrected to name this one. Then the Observation
 				// on the server is updated, not created again, so the
@@ -816,18 +916,29 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 				switch {
 				case errors.Is(err, store.ErrNotFound):
 					fresh = append(fresh, v)
+					continue
 				case err != nil:
 					return store.Change{}, fmt.Errorf("engine: %w", err)
-				case other.Subject == d.Subject:
+				case other.Subject != d.Subject:
+					bySeries[series] = other
+					changed = append(changed, v)
+					continue
+				case !partial:
 					// Not re-filed: another evaluation of this patient (on
 					// another replica) committed it since the ledger was
 					// read. Evaluate again from what is stored now, rather
 					// than amend a value that did not change.
 					return store.Change{}, store.ErrConflict
-				default:
-					bySeries[series] = other
-					changed = append(changed, v)
 				}
+				// Outside the part of the ledger read: a blood gas whose
+				// sample time a correction moved into the evaluated span.
+				// The commit's expectation still guards it.
+				prev, ok = other, true
+				bySeries[series] = other
+			}
+			switch {
+			case r.Time().Before(frozen):
+				// Too old to touch: its inputs may already be pruned.
 			case prev.Key == key && prev.Status != statusWithdrawn:
 				// Already recorded as it is.
 			default:

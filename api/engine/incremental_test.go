@@ -25,6 +25,32 @@ import (
 type rangeCounting struct {
 	*boltstore.Store
 	ranged, commits atomic.Int64
+	// wholeLedgers counts the reads of a patient's whole ledger, parts the
+	// reads of its entries from a time on, and entriesRead the entries
+	// either returned or Entry found.
+	wholeLedgers, parts, entriesRead atomic.Int64
+}
+
+func (r *rangeCounting) Ledger(ctx context.Context, subject string) ([]store.Entry, error) {
+	r.wholeLedgers.Add(1)
+	l, err := r.Store.Ledger(ctx, subject)
+	r.entriesRead.Add(int64(len(l)))
+	return l, err
+}
+
+func (r *rangeCounting) EntriesBetween(ctx context.Context, subject string, from, to time.Time, after string, limit int) ([]store.Entry, error) {
+	r.parts.Add(1)
+	l, err := r.Store.EntriesBetween(ctx, subject, from, to, after, limit)
+	r.entriesRead.Add(int64(len(l)))
+	return l, err
+}
+
+func (r *rangeCounting) Entry(ctx context.Context, series string) (store.Entry, error) {
+	en, err := r.Store.Entry(ctx, series)
+	if err == nil {
+		r.entriesRead.Add(1)
+	}
+	return en, err
 }
 
 func (r *rangeCounting) InputsFrom(ctx context.Context, subject string, from time.Time) ([]store.Input, error) {
@@ -122,12 +148,17 @@ func agreesWithReplay(t *testing.T, items []arrival, base time.Time, subjects []
 					t.Fatal(err)
 				}
 			}
+			parts, wholes := st.parts.Load(), st.wholeLedgers.Load()
 			n := sameAsReplay(t, eng, stream, base, subjects, minFalls)
-			// The test means something only if most evaluations resumed.
+			// The test means something only if most evaluations resumed
+			// and read only the part of the ledger they can change.
 			if r, c := st.ranged.Load(), st.commits.Load(); 10*r < 8*c {
 				t.Errorf("%d of %d evaluations read a range of inputs: the detector's state was hardly used", r, c)
 			}
-			t.Logf("%d values agree; %d of %d evaluations read a range of inputs", n, st.ranged.Load(), st.commits.Load())
+			if c := st.commits.Load(); 10*parts < 7*c {
+				t.Errorf("%d of %d evaluations read part of the ledger", parts, c)
+			}
+			t.Logf("%d values agree; %d of %d evaluations read a range of inputs, %d part of the ledger, %d the whole", n, st.ranged.Load(), st.commits.Load(), parts, wholes)
 		})
 	}
 }
@@ -283,4 +314,140 @@ func everyKind() (items []arrival, base time.Time, subjects []string) {
 		add(obsOf(subj, id("recoded", 158), "2", "amended", "19891-1", "mm[Hg]", 30, wrongAt, base.Add(200*time.Minute)), 200*time.Minute)
 	}
 	return items, base, subjects
+}
+
+// TestFallWithdrawnByALateReadingAfterItsOnset: with sparse charting
+// (every 15 minutes) a fall is confirmed by its second fallen reading, a
+// quarter of an hour after its onset. A reading taken between the two and
+// charted late, back at the baseline, ends the episode after one fallen
+// reading, so there is no fall. That reading reaches back only one pairing
+// window, to after the onset: the incremental evaluation reads the ledger
+// from there on, and must still find the fall's entry (kept by series
+// from the earlier evaluations) to withdraw it, as replay no longer finds
+// it.
+func TestFallWithdrawnByALateReadingAfterItsOnset(t *testing.T) {
+	t.Parallel()
+	base := time.Date(2026, 3, 4, 0, 0, 0, 0, time.UTC)
+	const subject = "Patient/sparse1"
+	var stream []json.RawMessage
+	reading := func(m int, v float64, late time.Duration) json.RawMessage {
+		at := base.Add(time.Duration(m) * time.Minute)
+		return obsOf(subject, fmt.Sprintf("sparse1-et%d", m), "1", "final", "19891-1", "mm[Hg]", v, at, at.Add(time.Minute+late))
+	}
+	for m := 0; m <= 240; m += 15 {
+		v := 36.0
+		if m == 180 || m == 195 {
+			v = 20 // a fall, confirmed by the reading at 195
+		}
+		stream = append(stream, reading(m, v, 0))
+	}
+	bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	st := &rangeCounting{Store: bs}
+	eng, err := engine.New(engine.Config{
+		Store: st, Decoder: decode.New(decode.Options{}), Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig(),
+		Now: func() time.Time { return base.Add(5 * time.Hour) },
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	for _, raw := range stream {
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{raw}); err != nil {
+			t.Fatal(err)
+		}
+		if err := eng.EvaluateNow(ctx); err != nil {
+			t.Fatal(err)
+		}
+	}
+	sameAsReplay(t, eng, stream, base, []string{subject}, 1) // the fall is recorded
+
+	late := reading(190, 36, time.Hour)
+	stream = append(stream, late)
+	parts, wholes := st.parts.Load(), st.wholeLedgers.Load()
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{late}); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if st.parts.Load() == parts || st.wholeLedgers.Load() != wholes {
+		t.Fatalf("the late reading's evaluation read %d parts of the ledger and %d whole ledgers, want a part only",
+			st.parts.Load()-parts, st.wholeLedgers.Load()-wholes)
+	}
+	recs, err := eng.Derivations(ctx, subject, time.Time{}, base.Add(24*time.Hour), "", 100)
+	if err != nil {
+		t.Fatal(err)
+	}
+	standing := 0
+	for _, r := range recs {
+		if r.Status != "entered-in-error" {
+			standing++
+		}
+	}
+	if standing != 0 {
+		t.Errorf("%d values still stand after the late reading ended the episode; replay finds none", standing)
+	}
+	sameAsReplay(t, eng, stream, base, []string{subject}, 0)
+}
+
+// TestLedgerReadDoesNotGrowWithHistory: a new end-tidal reading's
+// evaluation (of a reading within a recent blood gas's pairing window, so
+// that gas is derived again) reads the same ledger entries whether the patient's
+// retained history holds two blood gases or twenty-four (an hour or
+// twelve, one every half hour, each with its derived values).
+func TestLedgerReadDoesNotGrowWithHistory(t *testing.T) {
+	t.Parallel()
+	read := map[int]int64{}
+	for _, hours := range []int{1, 12} {
+		base := time.Date(2026, 3, 5, 0, 0, 0, 0, time.UTC)
+		subject := fmt.Sprintf("Patient/hist%d", hours)
+		bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+		st := &rangeCounting{Store: bs}
+		end := base.Add(time.Duration(hours) * time.Hour)
+		eng, err := engine.New(engine.Config{
+			Store: st, Decoder: decode.New(decode.Options{}), Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig(),
+			Now: func() time.Time { return end.Add(time.Hour) },
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		ctx := context.Background()
+		var batch []json.RawMessage
+		for m := 0; m < hours*60; m++ {
+			at := base.Add(time.Duration(m) * time.Minute)
+			batch = append(batch, obsOf(subject, fmt.Sprintf("h%d-et%d", hours, m), "1", "final", "19891-1", "mm[Hg]", 36, at, at.Add(time.Minute)))
+			if m%30 == 15 {
+				batch = append(batch, obsOf(subject, fmt.Sprintf("h%d-gas%d", hours, m), "1", "final", "2019-8", "mm[Hg]", 41, at, at.Add(time.Minute)))
+			}
+		}
+		if _, err := eng.Ingest(ctx, "test", batch); err != nil {
+			t.Fatal(err)
+		}
+		if err := eng.EvaluateNow(ctx); err != nil {
+			t.Fatal(err)
+		}
+		ledger, err := bs.Ledger(ctx, subject)
+		if err != nil || len(ledger) < 2*hours {
+			t.Fatalf("%d h: %d ledger entries (%v), want the blood gases' values", hours, len(ledger), err)
+		}
+		before, wholes := st.entriesRead.Load(), st.wholeLedgers.Load()
+		// Charted late, two and a half minutes after the second-last blood
+		// gas: within its pairing window, so it and the last one are
+		// derived again.
+		at := end.Add(-45*time.Minute + 150*time.Second)
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{obsOf(subject, fmt.Sprintf("h%d-new", hours), "1", "final", "19891-1", "mm[Hg]", 36, at, end.Add(time.Minute))}); err != nil {
+			t.Fatal(err)
+		}
+		if err := eng.EvaluateNow(ctx); err != nil {
+			t.Fatal(err)
+		}
+		if st.wholeLedgers.Load() != wholes {
+			t.Errorf("%d h: the new reading's evaluation read the whole ledger (%d entries)", hours, len(ledger))
+		}
+		read[hours] = st.entriesRead.Load() - before
+		t.Logf("%d h of history, %d ledger entries: the new reading's evaluation read %d", hours, len(ledger), read[hours])
+	}
+	if read[12] != read[1] {
+		t.Errorf("entries read after a new end-tidal reading: %d with 12 h of history, %d with 1 h", read[12], read[1])
+	}
 }

@@ -333,7 +333,19 @@ type trackedStore struct {
 	track *overlaps
 }
 
+// Ledger and EntriesBetween are an evaluation's read of the patient's
+// ledger, whole or from a time on (see the engine's ledgerFor).
 func (s *trackedStore) Ledger(ctx context.Context, subject string) ([]store.Entry, error) {
+	s.begin(subject)
+	return s.Store.Ledger(ctx, subject)
+}
+
+func (s *trackedStore) EntriesBetween(ctx context.Context, subject string, from, to time.Time, after string, limit int) ([]store.Entry, error) {
+	s.begin(subject)
+	return s.Store.EntriesBetween(ctx, subject, from, to, after, limit)
+}
+
+func (s *trackedStore) begin(subject string) {
 	s.track.mu.Lock()
 	key := s.name + " " + subject
 	if !s.track.open[key] {
@@ -348,7 +360,6 @@ func (s *trackedStore) Ledger(ctx context.Context, subject string) ([]store.Entr
 	s.track.mu.Unlock()
 	// Hold the evaluation open long enough for the other replica to try.
 	time.Sleep(20 * time.Millisecond)
-	return s.Store.Ledger(ctx, subject)
 }
 
 func (s *trackedStore) end(subject string) {

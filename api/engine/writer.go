@@ -97,7 +97,8 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 	return 0
 }
 
-// farFuture makes DueWrites list the whole outbox, due or not.
+// farFuture is after every record's time: DueWrites lists the whole
+// outbox with it, due or not, and ledgerFor reads the ledger from a time on.
 var farFuture = time.Date(9999, 1, 1, 0, 0, 0, 0, time.UTC)
 
 // outboxScan bounds one pass over the outbox.
