@@ -355,7 +355,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	e.evaluatedHere.Store(d.Subject, struct{}{})
 	if e.keepsFallState() {
 		e.fallSeries.Store(d.Subject, keptSeries{
-			series:  fallsAfter(knownFalls, partial, ledger, change.Entries),
+			series:  fallsAfter(ledger, change.Entries),
 			cleared: [2]uint64{d.Cleared, d.Generation},
 		})
 	}
@@ -548,8 +548,7 @@ type keptSeries struct {
 // reads the whole ledger.
 func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gasesFrom time.Time, known any) ([]store.Entry, bool, error) {
 	kept, ok := known.(keptSeries)
-	if gasesFrom.IsZero() || !ok || !e.keepsFallState() ||
-		(e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1]) {
+	if gasesFrom.IsZero() || !ok || (e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1]) {
 		ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
 		return ledger, false, err
 	}
@@ -590,21 +589,16 @@ func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gasesFrom time.Ti
 }
 
 // fallsAfter lists the series of every fall in a patient's ledger after a
-// committed change: those in the ledger the evaluation read (all of them
-// when it read the whole ledger, else the ones kept from before) and the
-// change's own.
-func fallsAfter(known any, partial bool, ledger, written []store.Entry) []string {
+// committed change: those in the ledger the evaluation read (ledgerFor
+// reads every fall still stored) and the change's own. A fall pruned since
+// is no longer listed.
+func fallsAfter(ledger, written []store.Entry) []string {
 	var series []string
 	seen := map[string]bool{}
 	add := func(s string) {
 		if !seen[s] {
 			seen[s] = true
 			series = append(series, s)
-		}
-	}
-	if kept, ok := known.(keptSeries); ok && partial {
-		for _, s := range kept.series {
-			add(s)
 		}
 	}
 	for _, en := range ledger {
@@ -930,9 +924,10 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 					// than amend a value that did not change.
 					return store.Change{}, store.ErrConflict
 				}
-				// Outside the part of the ledger read: a blood gas whose
-				// sample time a correction moved into the evaluated span.
-				// The commit's expectation still guards it.
+				// Stored outside the part of the ledger read (its effective
+				// time before gasesFrom): compared with the stored entry as
+				// with one read, and the commit's expectation still guards
+				// it.
 				prev, ok = other, true
 				bySeries[series] = other
 			}
