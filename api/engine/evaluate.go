@@ -504,10 +504,7 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 		return nil
 	}
 	kept := v.(keptFall)
-	if e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1] {
-		// Another replica evaluated the patient since: the changes it
-		// cleared are in no mark this replica will see, and may come
-		// before the states.
+	if !e.stillHolds(d, kept.cleared) {
 		return nil
 	}
 	states := kept.states
@@ -548,7 +545,7 @@ type keptSeries struct {
 // reads the whole ledger.
 func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gasesFrom time.Time, known any) ([]store.Entry, bool, error) {
 	kept, ok := known.(keptSeries)
-	if gasesFrom.IsZero() || !ok || (e.sharedStore() && d.Cleared != kept.cleared[0] && d.Cleared != kept.cleared[1]) {
+	if gasesFrom.IsZero() || !ok || !e.stillHolds(d, kept.cleared) {
 		ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
 		return ledger, false, err
 	}
@@ -612,6 +609,16 @@ func fallsAfter(ledger, written []store.Entry) []string {
 		}
 	}
 	return series
+}
+
+// stillHolds reports whether what the engine kept after a patient's
+// evaluation, under the store clears cleared (keptFall, keptSeries), holds
+// for the evaluation of mark d: always over a store no other process
+// writes; on a shared one only while d names one of them. Otherwise
+// another replica evaluated the patient since: the changes it cleared are
+// in no mark this replica will see, and may come before what was kept.
+func (e *Engine) stillHolds(d store.Dirty, cleared [2]uint64) bool {
+	return !e.sharedStore() || d.Cleared == cleared[0] || d.Cleared == cleared[1]
 }
 
 // latestEtCO2 returns the time of the latest end-tidal reading in inputs.
