@@ -336,17 +336,51 @@ func (c Config) DependencySpan(sample time.Time) (from, to time.Time) {
 // looked for a year back and the caller treats it as a change to the
 // whole patient; so is a kind this package does not know.
 func (c Config) Reach(k Kind) time.Duration {
+	earlier, _ := c.reaches(k)
+	return earlier
+}
+
+// ReachLater is Reach's other side: how far after a reading's own time
+// the sample time of a blood gas it can change may lie (DependencySpan's
+// "back" part, for one kind). A reading of kind k taken at t leaves the
+// derivation of every blood gas sampled after t + ReachLater(k) as it is,
+// so a live caller re-derives only the blood gases sampled in
+// [t − Reach(k), t + ReachLater(k)], and a late reading does not re-derive
+// every blood gas since. Readings before a blood gas reach it through the
+// pairing window; minute volume and end-tidal CO2 also through the
+// steady-state look-back before the window; body temperature through its
+// search; a temperature-adjusted PaCO2 only the sample it belongs to. A
+// blood gas changes its own derivation only: no derivation reads another
+// blood gas. Body height and a kind this package does not know are as in
+// Reach.
+func (c Config) ReachLater(k Kind) time.Duration {
+	_, later := c.reaches(k)
+	return later
+}
+
+// reaches returns [Config.Reach] and [Config.ReachLater] of k, side by
+// side so that a kind's two reaches are read together.
+func (c Config) reaches(k Kind) (earlier, later time.Duration) {
 	switch {
 	case k == KindPaCO2:
-		return 0
+		return 0, 0
+	case k == KindEtCO2 || k == KindMinuteVolume:
+		return c.Window, c.Window + c.Steady.Lookback
 	case isWindowed(k):
-		return c.Window
+		return c.Window, c.Window
 	case k == KindPaCO2Adjusted:
-		return sameSample
+		return sameSample, sameSample
 	case k == KindBodyTemperature:
-		return c.Temperature.Search
+		return c.Temperature.Search, c.Temperature.Search
 	}
-	return c.MaxReach()
+	return c.MaxReach(), c.MaxReachLater()
+}
+
+// MaxReachLater is the largest [Config.ReachLater] over every kind that is
+// not a whole-patient change.
+func (c Config) MaxReachLater() time.Duration {
+	from, _ := c.DependencySpan(time.Time{})
+	return time.Time{}.Sub(from)
 }
 
 // MaxReach is the largest [Config.Reach] over every kind that is not a

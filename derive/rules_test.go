@@ -532,53 +532,78 @@ func TestDependencySpan(t *testing.T) {
 	}
 }
 
-// Reach is DependencySpan's forward part for one kind: a reading later
-// than a blood gas's sample time by more than Reach(kind) leaves its
-// derivation exactly as it was, and one just within reach changes it (so
-// the test would see a reach too short).
+// Reach and ReachLater are DependencySpan's two parts for one kind: a
+// reading later than a blood gas's sample time by more than Reach(kind),
+// or earlier by more than ReachLater(kind), leaves its derivation exactly
+// as it was, and one just within reach changes it (so the test would see
+// a reach too short). A preferred source replaces the window's readings
+// of its kind; the end-tidal and minute-volume readings reach back through
+// the steady-state look-back too: a level far from the window's one, just
+// within it, adds the note.
 func TestReach(t *testing.T) {
 	t.Parallel()
 	cfg := derive.DefaultConfig()
 	base := sortByTime(measured())
 	ref := derive.Derive(cfg, gasOf(40), man60, base)
+	lookback := cfg.Window + cfg.Steady.Lookback
 	cases := []struct {
-		name  string
-		kind  derive.Kind
-		value float64
-		reach time.Duration
+		name         string
+		kind         derive.Kind
+		value        float64
+		reach, later time.Duration
 	}{
-		// A preferred source replaces the window's readings of its kind.
-		{"end-tidal CO2, the pairing window", derive.KindEtCO2, 20, cfg.Window},
-		{"tidal volume, the pairing window", derive.KindTidalVolume, 350, cfg.Window},
-		{"minute volume, the pairing window", derive.KindMinuteVolume, 11, cfg.Window},
-		{"respiratory rate, the pairing window", derive.KindRespRate, 28, cfg.Window},
-		{"mixed-expired CO2, the pairing window", derive.KindMixedExpiredCO2, 20, cfg.Window},
-		{"CO2 production, the pairing window", derive.KindVCO2, 300, cfg.Window},
-		{"body temperature, its search", derive.KindBodyTemperature, 33, cfg.Temperature.Search},
-		{"temperature-adjusted PaCO2, the same sample", derive.KindPaCO2Adjusted, 35, time.Minute},
+		{"end-tidal CO2, the pairing window and the steady-state look-back", derive.KindEtCO2, 20, cfg.Window, lookback},
+		{"tidal volume, the pairing window", derive.KindTidalVolume, 350, cfg.Window, cfg.Window},
+		{"minute volume, the pairing window and the steady-state look-back", derive.KindMinuteVolume, 14, cfg.Window, lookback},
+		{"respiratory rate, the pairing window", derive.KindRespRate, 28, cfg.Window, cfg.Window},
+		{"mixed-expired CO2, the pairing window", derive.KindMixedExpiredCO2, 20, cfg.Window, cfg.Window},
+		{"CO2 production, the pairing window", derive.KindVCO2, 300, cfg.Window, cfg.Window},
+		{"body temperature, its search", derive.KindBodyTemperature, 33, cfg.Temperature.Search, cfg.Temperature.Search},
+		{"temperature-adjusted PaCO2, the same sample", derive.KindPaCO2Adjusted, 35, time.Minute, time.Minute},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			if got := cfg.Reach(tc.kind); got != tc.reach {
-				t.Fatalf("Reach = %v, want %v", got, tc.reach)
+			if got, later := cfg.Reach(tc.kind), cfg.ReachLater(tc.kind); got != tc.reach || later != tc.later {
+				t.Fatalf("Reach = %v, ReachLater = %v, want %v and %v", got, later, tc.reach, tc.later)
 			}
-			later := func(off time.Duration) derive.Derivation {
+			at := func(off time.Duration, priority int16) derive.Derivation {
 				r := rd(tc.kind, off, tc.value)
-				r.Priority = 50
+				r.Priority = priority
 				return derive.Derive(cfg, gasOf(40), man60, sortByTime(with(base, r)))
 			}
-			if got := later(tc.reach + time.Millisecond); !reflect.DeepEqual(ref, got) {
-				t.Errorf("a reading %v after the sample changed the derivation", tc.reach+time.Millisecond)
+			// The steady-state check compares minute volumes of the
+			// window's source only: the earlier one keeps its priority.
+			earlierPriority := int16(50)
+			if tc.kind == derive.KindMinuteVolume {
+				earlierPriority = 0
 			}
-			if got := later(tc.reach); reflect.DeepEqual(ref, got) {
-				t.Errorf("a preferred reading %v after the sample changed nothing", tc.reach)
+			for _, side := range []struct {
+				name     string
+				off      time.Duration
+				priority int16
+			}{{"after", tc.reach, 50}, {"before", -tc.later, earlierPriority}} {
+				beyond := side.off + time.Millisecond
+				if side.off < 0 {
+					beyond = side.off - time.Millisecond
+				}
+				if got := at(beyond, side.priority); !reflect.DeepEqual(ref, got) {
+					t.Errorf("a reading %v %s the sample changed the derivation", beyond.Abs(), side.name)
+				}
+				if got := at(side.off, side.priority); reflect.DeepEqual(ref, got) {
+					t.Errorf("a reading %v %s the sample changed nothing", side.off.Abs(), side.name)
+				}
 			}
 		})
 	}
 	// A blood gas reaches only itself; a kind of unknown reach reaches as
-	// far as any.
-	if cfg.Reach(derive.KindPaCO2) != 0 || cfg.Reach(derive.KindUnknown) != time.Hour || cfg.MaxReach() != time.Hour {
+	// far as any, which is the span's part on that side.
+	from, to := cfg.DependencySpan(sampleTime)
+	if cfg.Reach(derive.KindPaCO2) != 0 || cfg.Reach(derive.KindUnknown) != time.Hour || cfg.MaxReach() != to.Sub(sampleTime) {
 		t.Errorf("Reach(PaCO2) %v, Reach(unknown) %v, MaxReach %v", cfg.Reach(derive.KindPaCO2), cfg.Reach(derive.KindUnknown), cfg.MaxReach())
+	}
+	if cfg.ReachLater(derive.KindPaCO2) != 0 || cfg.ReachLater(derive.KindUnknown) != sampleTime.Sub(from) || cfg.MaxReachLater() != sampleTime.Sub(from) {
+		t.Errorf("ReachLater(PaCO2) %v, ReachLater(unknown) %v, MaxReachLater %v, span back %v",
+			cfg.ReachLater(derive.KindPaCO2), cfg.ReachLater(derive.KindUnknown), cfg.MaxReachLater(), sampleTime.Sub(from))
 	}
 }
 

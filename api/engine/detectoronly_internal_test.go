@@ -100,11 +100,8 @@ func evaluationWithNoBloodGasInReach(t *testing.T, over factCounter) {
 			t.Fatalf("dirty patients %v, %v", dirty, err)
 		}
 		d := dirty[0]
-		gasesFrom := d.From
-		if _, ok := e.evaluatedHere.Load(d.Subject); !ok {
-			gasesFrom = time.Time{}
-		}
-		in, derives, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, e.fallState(d, gasesFrom))
+		gases := e.gasRange(d)
+		in, derives, err := e.loadEvaluationInputs(ctx, d.Subject, gases, e.fallState(d, gases.GasesFrom))
 		if err != nil {
 			t.Fatal(err)
 		}

@@ -443,15 +443,19 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 		Withdrawal: moved,
 	}
 	// A reading changes the results of blood gases sampled from its own
-	// time less its kind's reach on (a height, which serves a year, and a
-	// withdrawal change them at any time: zero). The version it replaces
-	// may have been of any kind.
+	// time less its kind's reach until its time plus its kind's reach the
+	// other way (a height, which serves a year, and a withdrawal change
+	// them at any time: zero). The version it replaces may have been of
+	// any kind.
 	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
-		in.ChangedAt = it.Reading.At().Add(-e.cfg.Derive.Reach(it.Reading.Kind))
+		d := e.cfg.Derive
+		in.ChangedAt = it.Reading.At().Add(-d.Reach(it.Reading.Kind))
+		in.ChangedUntil = it.Reading.At().Add(d.ReachLater(it.Reading.Kind))
 		for _, a := range it.Also {
-			in.ChangedAt = store.Earliest(in.ChangedAt, a.At().Add(-e.cfg.Derive.Reach(a.Kind)))
+			in.ChangedAt = store.Earliest(in.ChangedAt, a.At().Add(-d.Reach(a.Kind)))
+			in.ChangedUntil = store.Latest(in.ChangedUntil, a.At().Add(d.ReachLater(a.Kind)))
 		}
-		in.Reach = e.cfg.Derive.MaxReach()
+		in.Reach, in.ReachLater = d.MaxReach(), d.MaxReachLater()
 		in.Urgent = it.Reading.Kind == derive.KindPaCO2
 	}
 	return in, nil

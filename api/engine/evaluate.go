@@ -294,26 +294,36 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	return err
 }
 
-func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
-	// Incremental evaluation: the mark says from which blood gas sample
-	// time results can change (each input's time less how far its kind
-	// reaches, derive.Config.Reach); only the blood gases sampled from
-	// then are derived again, and older ones keep their ledger entries
-	// untouched. Heights and patient facts, which reach further, leave
-	// From zero. A patient's first evaluation in this process derives
-	// every blood gas: a mark written by an earlier build (before a
-	// restart, or by a replica not yet upgraded) gave the time of the
-	// input itself, not of the earliest blood gas it reaches.
-	gasesFrom := d.From
-	if _, ok := e.evaluatedHere.Load(d.Subject); !ok {
-		gasesFrom = time.Time{}
+// gasRange is the blood gases an evaluation of mark d derives again
+// (incremental evaluation). The mark says from which blood gas sample time
+// results can change (each input's time less how far its kind reaches,
+// derive.Config.Reach) and until which (its time plus how far its kind
+// reaches the other way, derive.Config.ReachLater): only the blood gases
+// sampled in between are derived again, so a late reading does not
+// re-derive every blood gas since, and the others keep their ledger
+// entries untouched. Heights and patient facts, which reach further,
+// leave From zero, and a mark of a store that keeps no end leaves Until
+// zero. A patient's first evaluation in this process derives every blood
+// gas: a mark written by an earlier build (before a restart, or by a
+// replica not yet upgraded) gave the time of the input itself, not of the
+// earliest blood gas it reaches.
+func (e *Engine) gasRange(d store.Dirty) pipeline.Incremental {
+	from, until := d.From, d.Until
+	if _, ok := e.evaluatedHere.Load(d.Subject); !ok || from.IsZero() {
+		return pipeline.Incremental{}
 	}
+	return pipeline.Incremental{GasesFrom: from, GasesUntil: until}
+}
+
+func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
+	gases := e.gasRange(d)
+	gasesFrom := gases.GasesFrom
 	// The fall detector resumes from a state saved by an earlier
 	// evaluation when the change comes after it (a change can alter which
 	// source is preferred from one pairing window before); then only the
 	// inputs those gases and the detector need are read.
 	resume := e.fallState(d, gasesFrom)
-	inputs, derivesGas, err := e.loadEvaluationInputs(ctx, d.Subject, gasesFrom, resume)
+	inputs, derivesGas, err := e.loadEvaluationInputs(ctx, d.Subject, gases, resume)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -326,14 +336,15 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		}
 	}
 	knownFalls, _ := e.fallSeries.LoadAndDelete(d.Subject)
-	ledger, partial, err := e.ledgerFor(ctx, d, gasesFrom, knownFalls)
+	ledger, partial, err := e.ledgerFor(ctx, d, gases, knownFalls)
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
 	ids := identities{}
 	// What the data leaves out is reported after a complete evaluation
 	// only (evaluated), so an incremental one does not work it out.
-	inc := pipeline.Incremental{GasesFrom: gasesFrom, Falls: resume, Recorded: ids.recorded(ledger), NoOmissions: !gasesFrom.IsZero()}
+	inc := gases
+	inc.Falls, inc.Recorded, inc.NoOmissions = resume, ids.recorded(ledger), !gasesFrom.IsZero()
 	latest, haveLatest := latestEtCO2(inputs)
 	if e.keepsFallState() {
 		inc.SaveAt = e.fallSaveAt(latest, haveLatest, resume)
@@ -345,7 +356,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	change, err := e.diff(ctx, d, results, ledger, gasesFrom, partial, ids)
+	change, err := e.diff(ctx, d, results, ledger, gases, partial, ids)
 	if err != nil {
 		return err
 	}
@@ -532,10 +543,10 @@ type keptSeries struct {
 // ledgerFor reads the ledger entries an evaluation compares its results
 // with, and says whether they are only part of the patient's ledger.
 //
-// A complete evaluation (gasesFrom zero) reads the whole ledger. An
-// incremental one derives only the blood gases sampled from gasesFrom on
+// A complete evaluation (GasesFrom zero) reads the whole ledger. An
+// incremental one derives only the blood gases sampled in its range
 // and returns every fall (the detector's findings before its resumed
-// state come from the state), so it reads the entries from gasesFrom on
+// state come from the state), so it reads the entries of that range
 // and every fall's entry, each by its series, as known kept from the
 // patient's earlier evaluations here: the entries of earlier blood gases,
 // which diff leaves alone, are not read, and the work stays the same
@@ -543,17 +554,21 @@ type keptSeries struct {
 // that knowledge (the patient's first evaluation here, an evaluation that
 // failed, or on a shared store another replica's evaluation since) it
 // reads the whole ledger.
-func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gasesFrom time.Time, known any) ([]store.Entry, bool, error) {
+func (e *Engine) ledgerFor(ctx context.Context, d store.Dirty, gases pipeline.Incremental, known any) ([]store.Entry, bool, error) {
 	kept, ok := known.(keptSeries)
-	if gasesFrom.IsZero() || !ok || !e.stillHolds(d, kept.cleared) {
+	if gases.GasesFrom.IsZero() || !ok || !e.stillHolds(d, kept.cleared) {
 		ledger, err := e.cfg.Store.Ledger(ctx, d.Subject)
 		return ledger, false, err
 	}
 	const page = 500
 	var ledger []store.Entry
 	after := ""
+	to := farFuture
+	if !gases.GasesUntil.IsZero() {
+		to = gases.GasesUntil.Add(time.Nanosecond) // EntriesBetween's end is exclusive
+	}
 	for {
-		got, err := e.cfg.Store.EntriesBetween(ctx, d.Subject, gasesFrom, farFuture, after, page)
+		got, err := e.cfg.Store.EntriesBetween(ctx, d.Subject, gases.GasesFrom, to, after, page)
 		if err != nil {
 			return nil, false, err
 		}
@@ -705,13 +720,13 @@ func (e *Engine) keptFallStates(previous any, resume *pipeline.FallState, saved 
 // device reading far from any blood gas thus reads minutes of data, not
 // hours, and of those only the end-tidal readings the detector reads
 // (pipeline.DetectorKind).
-func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gasesFrom time.Time, resume *pipeline.FallState) ([]pipeline.Input, bool, error) {
+func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases pipeline.Incremental, resume *pipeline.FallState) ([]pipeline.Input, bool, error) {
 	if resume == nil {
 		inputs, err := e.loadInputs(ctx, subject)
 		return inputs, true, err
 	}
-	readFrom := store.Earliest(gasesFrom, resume.At.Add(-e.cfg.Derive.Window))
-	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, readFrom, gasesFrom)
+	readFrom := store.Earliest(gases.GasesFrom, resume.At.Add(-e.cfg.Derive.Window))
+	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, readFrom, gases)
 	if err != nil || earliestGas == math.MaxInt64 {
 		return inputs, false, err
 	}
@@ -730,8 +745,7 @@ func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases
 // detector's findings alone, which depend on nothing else
 // (pipeline.DetectorKind). Every input's head is checked, as
 // loadInputsFrom checks it, but only the detector's readings are decoded.
-func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from, gasesFrom time.Time) ([]pipeline.Input, int64, error) {
-	inc := pipeline.Incremental{GasesFrom: gasesFrom}
+func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from time.Time, inc pipeline.Incremental) ([]pipeline.Input, int64, error) {
 	var inputs []pipeline.Input
 	var hr headReader
 	derives, earliestGas := false, int64(math.MaxInt64)
@@ -749,10 +763,10 @@ func (e *Engine) loadDetectorInputs(ctx context.Context, subject string, from, g
 			if i >= 0 {
 				k = l.alsoKind(row.Payload, i)
 			}
-			if k == derive.KindPaCO2 && at >= gasesFrom.UnixMilli() {
+			if inc.Derives(derive.Reading{Kind: k, AtMillis: at}) {
+				derives = true
 				earliestGas = min(earliestGas, at)
 			}
-			derives = derives || inc.Derives(derive.Reading{Kind: k, AtMillis: at})
 			detected = detected || k == pipeline.DetectorKind
 		}
 		if derives || !detected {
@@ -887,9 +901,10 @@ func valuesOf(r pipeline.Result) ([]value, error) {
 // diff compares fresh results with the ledger and decides the entries to
 // record and the writes to queue.
 //
-// With gasesFrom set, results holds only the blood gases sampled from then
-// (and every fall): entries of earlier blood gases are left alone.
-func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gasesFrom time.Time, partial bool, ids identities) (store.Change, error) {
+// With gases.GasesFrom set, results holds only the blood gases sampled in
+// gases' range (and every fall): entries of other blood gases are left
+// alone.
+func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Result, ledger []store.Entry, gases pipeline.Incremental, partial bool, ids identities) (store.Change, error) {
 	now := e.now()
 	frozen := now.Add(-(e.cfg.Retention - e.cfg.Freeze))
 	bySeries := make(map[string]store.Entry, len(ledger))
@@ -932,7 +947,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 					return store.Change{}, store.ErrConflict
 				}
 				// Stored outside the part of the ledger read (its effective
-				// time before gasesFrom): compared with the stored entry as
+				// time outside the range): compared with the stored entry as
 				// with one read, and the commit's expectation still guards
 				// it.
 				prev, ok = other, true
@@ -966,7 +981,7 @@ func (e *Engine) diff(ctx context.Context, d store.Dirty, results []pipeline.Res
 		if produced[en.Series] || en.Status == statusWithdrawn || en.EffectiveAt.Before(frozen) {
 			continue
 		}
-		if en.EffectiveAt.Before(gasesFrom) && !isFall(en) {
+		if !gases.DerivesAt(en.EffectiveAt) && !isFall(en) {
 			continue // a blood gas this evaluation did not derive again
 		}
 		if err := e.withdraw(ctx, &change, en, now); err != nil {

@@ -401,16 +401,8 @@ func TestLedgerReadDoesNotGrowWithHistory(t *testing.T) {
 	for _, hours := range []int{1, 12} {
 		base := time.Date(2026, 3, 5, 0, 0, 0, 0, time.UTC)
 		subject := fmt.Sprintf("Patient/hist%d", hours)
-		bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
-		st := &rangeCounting{Store: bs}
 		end := base.Add(time.Duration(hours) * time.Hour)
-		eng, err := engine.New(engine.Config{
-			Store: st, Decoder: decode.New(decode.Options{}), Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig(),
-			Now: func() time.Time { return end.Add(time.Hour) },
-		})
-		if err != nil {
-			t.Fatal(err)
-		}
+		eng, bs, st := countingEngine(t, end.Add(time.Hour))
 		ctx := context.Background()
 		var batch []json.RawMessage
 		for m := 0; m < hours*60; m++ {
@@ -432,8 +424,8 @@ func TestLedgerReadDoesNotGrowWithHistory(t *testing.T) {
 		}
 		before, wholes := st.entriesRead.Load(), st.wholeLedgers.Load()
 		// Charted late, two and a half minutes after the second-last blood
-		// gas: within its pairing window, so it and the last one are
-		// derived again.
+		// gas: within its pairing window, so it is derived again (the last
+		// one, 30 minutes later, is beyond the reading's reach).
 		at := end.Add(-45*time.Minute + 150*time.Second)
 		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{obsOf(subject, fmt.Sprintf("h%d-new", hours), "1", "final", "19891-1", "mm[Hg]", 36, at, end.Add(time.Minute))}); err != nil {
 			t.Fatal(err)
@@ -450,4 +442,80 @@ func TestLedgerReadDoesNotGrowWithHistory(t *testing.T) {
 	if read[12] != read[1] {
 		t.Errorf("entries read after a new end-tidal reading: %d with 12 h of history, %d with 1 h", read[12], read[1])
 	}
+}
+
+// TestLateReadingDerivesOnlyTheGasesItReaches: a reading charted hours
+// late changes the blood gases whose dependency span holds it, not every
+// one sampled since (derive.Config.Reach and ReachLater bound the mark).
+// An end-tidal reading six hours late, two and a half minutes after a
+// blood gas, re-derives that one gas: its evaluation reads the ledger
+// entries of one blood gas, as many as after a reading 45 minutes late,
+// and the values are still replay's.
+func TestLateReadingDerivesOnlyTheGasesItReaches(t *testing.T) {
+	t.Parallel()
+	base := time.Date(2026, 3, 6, 0, 0, 0, 0, time.UTC)
+	end := base.Add(12 * time.Hour)
+	subject := "Patient/late"
+	eng, bs, st := countingEngine(t, end.Add(time.Hour))
+	ctx := context.Background()
+	var stream []json.RawMessage
+	gases := 0
+	for m := 0; m < 12*60; m++ {
+		at := base.Add(time.Duration(m) * time.Minute)
+		stream = append(stream, obsOf(subject, fmt.Sprintf("et%d", m), "1", "final", "19891-1", "mm[Hg]", 36, at, at.Add(time.Minute)))
+		if m%30 == 15 {
+			stream = append(stream, obsOf(subject, fmt.Sprintf("gas%d", m), "1", "final", "2019-8", "mm[Hg]", 41, at, at.Add(time.Minute)))
+			gases++
+		}
+	}
+	if _, err := eng.Ingest(ctx, "test", stream); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	ledger, err := bs.Ledger(ctx, subject)
+	if err != nil || len(ledger) == 0 || len(ledger)%gases != 0 {
+		t.Fatalf("%d ledger entries (%v) for %d blood gases, want the same values for each", len(ledger), err, gases)
+	}
+	perGas := int64(len(ledger) / gases)
+	late := func(name string, at time.Time) int64 {
+		t.Helper()
+		before, wholes := st.entriesRead.Load(), st.wholeLedgers.Load()
+		o := obsOf(subject, name, "1", "final", "19891-1", "mm[Hg]", 30, at, end.Add(time.Minute))
+		stream = append(stream, o)
+		if _, err := eng.Ingest(ctx, "test", []json.RawMessage{o}); err != nil {
+			t.Fatal(err)
+		}
+		if err := eng.EvaluateNow(ctx); err != nil {
+			t.Fatal(err)
+		}
+		if st.wholeLedgers.Load() != wholes {
+			t.Fatalf("%s: the evaluation read the whole ledger", name)
+		}
+		return st.entriesRead.Load() - before
+	}
+	sixHours := late("six-hours-late", base.Add(6*time.Hour+15*time.Minute+150*time.Second))
+	recent := late("recent", end.Add(-45*time.Minute+150*time.Second))
+	t.Logf("%d values per blood gas; entries read after a reading six hours late %d, 45 minutes late %d", perGas, sixHours, recent)
+	if sixHours != perGas || recent != perGas {
+		t.Errorf("entries read after a reading six hours late %d, 45 minutes late %d; want one blood gas's %d", sixHours, recent, perGas)
+	}
+	sameAsReplay(t, eng, stream, base, []string{subject}, 0)
+}
+
+// countingEngine is an engine over an embedded store whose reads are
+// counted, with the clock stopped at now.
+func countingEngine(t *testing.T, now time.Time) (*engine.Engine, *boltstore.Store, *rangeCounting) {
+	t.Helper()
+	bs := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	st := &rangeCounting{Store: bs}
+	eng, err := engine.New(engine.Config{
+		Store: st, Decoder: decode.New(decode.Options{}), Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig(),
+		Now: func() time.Time { return now },
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return eng, bs, st
 }

@@ -84,6 +84,9 @@ type Incremental struct {
 	// GasesFrom: only the blood gases sampled then or later are derived
 	// (all of them when zero).
 	GasesFrom time.Time
+	// GasesUntil: only the blood gases sampled then or earlier are derived
+	// (no bound when zero; read only with GasesFrom set).
+	GasesUntil time.Time
 	// Falls resumes the fall and rise detector; nil runs it over every
 	// end-tidal reading. The inputs must then hold every reading from
 	// Falls.At less the pairing window on (a source is preferred per
@@ -114,10 +117,18 @@ type Incremental struct {
 // GasesFrom).
 const DetectorKind = derive.KindEtCO2
 
-// Derives reports whether an evaluation derives r: a blood gas sampled at
-// or after GasesFrom (any one when it is zero).
+// Derives reports whether an evaluation derives r: a blood gas sampled in
+// [GasesFrom, GasesUntil] (any one when GasesFrom is zero).
 func (inc Incremental) Derives(r derive.Reading) bool {
-	return r.Kind == derive.KindPaCO2 && (inc.GasesFrom.IsZero() || !r.At().Before(inc.GasesFrom))
+	return r.Kind == derive.KindPaCO2 && inc.DerivesAt(r.At())
+}
+
+// DerivesAt reports whether the blood gases sampled at t are derived.
+func (inc Incremental) DerivesAt(t time.Time) bool {
+	if inc.GasesFrom.IsZero() {
+		return true
+	}
+	return !t.Before(inc.GasesFrom) && (inc.GasesUntil.IsZero() || !t.After(inc.GasesUntil))
 }
 
 // EvaluateIncremental is [EvaluateFrom] that can resume the fall detector

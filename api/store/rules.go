@@ -23,17 +23,52 @@ func ResultOf(exists bool, c int) PutResult {
 }
 
 // Span is what one transaction changed of one patient: results may change
-// from From on (zero: at any time, the whole patient), and Urgent when a
-// blood gas changed. It is what a dirty mark accumulates until an
-// evaluation clears it (Dirty.From, Dirty.Urgent).
+// from From on (zero: at any time, the whole patient) until Until (zero:
+// with no end), and Urgent when a blood gas changed. It is what a dirty
+// mark accumulates until an evaluation clears it (Dirty.From, Dirty.Until,
+// Dirty.Urgent).
 type Span struct {
-	From   time.Time
-	Urgent bool
+	From, Until time.Time
+	Urgent      bool
 }
 
 // Merge is the span covering both.
 func (a Span) Merge(b Span) Span {
-	return Span{From: Earliest(a.From, b.From), Urgent: a.Urgent || b.Urgent}
+	return Span{From: Earliest(a.From, b.From), Until: Latest(a.Until, b.Until), Urgent: a.Urgent || b.Urgent}
+}
+
+// SpanOf is the span of one input's own change (before the versions it
+// replaces widen it): an end only with a start, since a change to the
+// whole patient has none.
+func SpanOf(in Input) Span {
+	sp := Span{From: in.ChangedAt, Urgent: in.Urgent}
+	if !in.ChangedAt.IsZero() {
+		sp.Until = in.ChangedUntil
+	}
+	return sp
+}
+
+// Replacing widens sp by the results of a replaced version effective at
+// effectiveAt: from in.Reach before it to in.ReachLater after it.
+func (sp Span) Replacing(in Input, effectiveAt time.Time) Span {
+	sp.From = Earliest(sp.From, effectiveAt.Add(-in.Reach))
+	if in.ReachLater == 0 {
+		sp.Until = time.Time{}
+	} else {
+		sp.Until = Latest(sp.Until, effectiveAt.Add(in.ReachLater))
+	}
+	return sp
+}
+
+// Latest is the later time, where zero (no end) is the latest.
+func Latest(a, b time.Time) time.Time {
+	if a.IsZero() || b.IsZero() {
+		return time.Time{}
+	}
+	if a.After(b) {
+		return a
+	}
+	return b
 }
 
 // Earliest is the earlier time, where zero (everything) is the earliest.

@@ -45,10 +45,18 @@ type Input struct {
 	// kind reaches back); zero means any time, and the patient is
 	// evaluated whole.
 	ChangedAt time.Time
+	// ChangedUntil is the latest blood gas sample time whose results may
+	// change because of this input (the reading's time plus how far its
+	// kind reaches forward, derive.Config.ReachLater); zero means no
+	// bound. It is read only when ChangedAt is set.
+	ChangedUntil time.Time
 	// Reach is how far before the effective time of a version this one
 	// replaces results may change: the replaced version may be of another
 	// kind, so it is the widest reach of any kind.
 	Reach time.Duration
+	// ReachLater is how far after that time they may change, for the same
+	// reason the widest of any kind (zero: no bound).
+	ReachLater time.Duration
 	// Urgent marks a blood gas: its patient is evaluated before patients
 	// with device readings only.
 	Urgent bool
@@ -100,6 +108,12 @@ type Dirty struct {
 	// means the whole patient (patient facts, a withdrawal, a mark without
 	// an input).
 	From time.Time
+	// Until is the latest blood gas sample time a change since the last
+	// evaluation can affect (Input.ChangedUntil, and the effective time
+	// plus ReachLater of the versions they replaced); zero means no bound.
+	// A store may always leave it zero: the evaluation then derives every
+	// blood gas from From on, as before marks had an end.
+	Until time.Time
 	// Urgent is set when a change was a blood gas.
 	Urgent bool
 	// Cleared, from a store shared by replicas ([Replicated]), is the

@@ -16,7 +16,8 @@
 //	                where the row is  (Input, Owner, the version rule;
 //	                schema 5)
 //	patients        subject → patient facts
-//	dirty           subject → since, generation  (bucket sequence = generation)
+//	dirty           subject → since, generation, from, urgent, until
+//	                (bucket sequence = generation; until since schema 6)
 //	ledger          series → entry
 //	ledger_by_subj  subject 0 series → ∅             (Ledger)
 //	ledger_by_time  subject 0 t(EffectiveAt) ⧺ series → ∅  (EntriesBetween)
@@ -84,7 +85,7 @@ var (
 // schemaVersion is the layout this build writes. Raise it with every
 // change to a bucket or a record layout, and add the migration to
 // migrate.
-const schemaVersion = 5
+const schemaVersion = 6
 
 // Errors of Open, to be matched with errors.Is.
 var (
@@ -341,6 +342,15 @@ func migrate(tx *bolt.Tx, from uint64) error {
 		}
 		if err := tx.Bucket(bMeta).Put(kSchema, u64(5)); err != nil {
 			return fmt.Errorf("migrate to schema 5: %w", err)
+		}
+	}
+	if from < 6 {
+		// Schema 6 adds an end to dirty marks (store.Dirty.Until); a mark
+		// of an earlier schema reads as one with no end, so nothing is
+		// rewritten, but an older build must not read the marks of this
+		// one.
+		if err := tx.Bucket(bMeta).Put(kSchema, u64(6)); err != nil {
+			return fmt.Errorf("migrate to schema 6: %w", err)
 		}
 	}
 	for _, name := range allBuckets {

@@ -176,7 +176,7 @@ func setSchema(t *testing.T, path string, version uint64) {
 func TestNewerSchemaRefused(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "deadspace.db")
 	must(t, openAt(t, path).Close())
-	setSchema(t, path, 6)
+	setSchema(t, path, 7)
 	s, err := boltstore.Open(path, boltstore.Options{})
 	if err == nil {
 		s.Close()

@@ -296,6 +296,7 @@ func encodeDirty(dt store.Dirty) []byte {
 		urgent = 1
 	}
 	e.uvarint(urgent)
+	e.time(dt.Until)
 	return e.b
 }
 
@@ -309,6 +310,11 @@ func decodeDirty(subject string, v []byte) (store.Dirty, error) {
 		// whole patient.
 		dt.From = d.time()
 		dt.Urgent = d.uvarint() == 1
+	}
+	if len(d.b) > 0 {
+		// Marks written before schema 6 end here: Until stays zero, no
+		// end.
+		dt.Until = d.time()
 	}
 	return dt, d.done("dirty mark")
 }

@@ -59,6 +59,24 @@ func TestRecordRoundTrip(t *testing.T) {
 				t.Errorf("got %+v, %v", got, err)
 			}
 		}},
+		{"Dirty", func(t *testing.T) {
+			dt := store.Dirty{Subject: "Patient/a", Since: at, Generation: 7, From: at.Add(-time.Hour), Until: at.Add(time.Hour), Urgent: true}
+			got, err := decodeDirty("Patient/a", encodeDirty(dt))
+			if err != nil || got.Generation != 7 || !got.From.Equal(dt.From) || !got.Until.Equal(dt.Until) || !got.Urgent || !got.Since.Equal(at) {
+				t.Errorf("got %+v, %v", got, err)
+			}
+			// A mark of schema 5 or earlier has no end: it reads as one
+			// without a bound, never as one ending at the zero time's key.
+			var e encoder
+			e.time(at)
+			e.uvarint(7)
+			e.time(dt.From)
+			e.uvarint(1)
+			old, err := decodeDirty("Patient/a", e.b)
+			if err != nil || !old.Until.IsZero() || !old.From.Equal(dt.From) || !old.Urgent {
+				t.Errorf("schema 5 mark read as %+v, %v", old, err)
+			}
+		}},
 		{"DeadLetter", func(t *testing.T) {
 			dl := store.DeadLetter{Write: store.Write{ID: 9, Series: []string{"a", "b"}, Subject: "Patient/a", Body: []byte("b"), Attempts: 3, NotBefore: at, CreatedAt: at, LastError: "e"},
 				Reason: "r", At: at}
@@ -80,6 +98,7 @@ func FuzzDecode(f *testing.F) {
 	f.Add(encodeEntry(store.Entry{Key: "k", Revisions: []string{"a", "b"}, EffectiveAt: at}))
 	f.Add(encodeDead(store.DeadLetter{Write: store.Write{Series: []string{"s"}, NotBefore: at}, Reason: "r"}))
 	f.Add(encodeEvent(store.Event{Series: "s", At: at}))
+	f.Add(encodeDirty(store.Dirty{Since: at, Generation: 3, From: at, Until: at.Add(time.Hour)}))
 	f.Add([]byte{0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0x01})
 	f.Add(places{owned: true, list: []place{{"Patient/a", appendTimeKey(nil, at)}, {"Patient/b", appendTimeKey(nil, at)}}}.encode())
 	f.Fuzz(func(t *testing.T, b []byte) {

@@ -33,7 +33,7 @@ func markDirty(tx *bolt.Tx, subject string, now time.Time, span store.Span) erro
 	if err != nil {
 		return fmt.Errorf("dirty generation: %w", err)
 	}
-	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.From, Urgent: span.Urgent}
+	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.From, Until: span.Until, Urgent: span.Urgent}
 	if v := b.Get([]byte(subject)); v != nil {
 		old, err := decodeDirty(subject, v)
 		if err != nil {
@@ -43,6 +43,7 @@ func markDirty(tx *bolt.Tx, subject string, now time.Time, span store.Span) erro
 			dt.Since = old.Since
 		}
 		dt.From = store.Earliest(old.From, dt.From)
+		dt.Until = store.Latest(old.Until, dt.Until)
 		dt.Urgent = dt.Urgent || old.Urgent
 	} else if err := addCounter(tx, kDirtyN, 1); err != nil {
 		return err
@@ -137,7 +138,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner's copy was pruned) decides too.
 	exists := false
-	span := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
+	span := store.SpanOf(in)
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
@@ -155,7 +156,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			span.From = store.Earliest(span.From, old.EffectiveAt.Add(-in.Reach))
+			span = span.Replacing(in, old.EffectiveAt)
 		}
 	}
 	if in.OnlyReplaces && !exists {

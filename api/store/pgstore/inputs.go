@@ -107,6 +107,8 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner row went with a prune) decides too.
 	exists, ownerHasCopy := false, false
+	// Marks on PostgreSQL have no end (store.Dirty.Until stays zero): a
+	// replica of an earlier build would not keep one up to date.
 	sp := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {

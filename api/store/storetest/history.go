@@ -202,6 +202,71 @@ func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
 	}
 }
 
+// A dirty mark may also say until when results can change (Until): the
+// latest ChangedUntil of its changes, widened to the effective time plus
+// ReachLater of each version replaced; no end (zero) when a change has no
+// start, or a replaced version's ReachLater is zero. A store may keep no
+// ends at all (every Until zero, which covers everything); one that keeps
+// them keeps them exactly, since a wider end only costs work.
+func testDirtyEnd(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	reading := func(subject, logical, version string, at, until time.Time) store.Input {
+		i := input(subject, logical, version, t0.Add(time.Duration(len(version))*time.Minute), at, "x")
+		i.ChangedAt, i.ChangedUntil = at.Add(-5*time.Minute), until
+		return i
+	}
+	put(t, s, t0, reading("Patient/u", "Observation/u1", "1", t0.Add(10*time.Minute), t0.Add(30*time.Minute)),
+		reading("Patient/u", "Observation/u2", "1", t0.Add(5*time.Minute), t0.Add(20*time.Minute)))
+	keepsEnds := !mustDirty(t, s, "Patient/u").Until.IsZero()
+	wantEnd := func(step, subject string, want time.Time) {
+		t.Helper()
+		d := mustDirty(t, s, subject)
+		if !keepsEnds {
+			want = time.Time{}
+		}
+		if !d.Until.Equal(want) {
+			t.Errorf("%s: Until = %v, want %v (the store keeps ends: %v)", step, d.Until, want, keepsEnds)
+		}
+	}
+	wantEnd("two readings", "Patient/u", t0.Add(30*time.Minute))
+	// A later change in another call widens the mark.
+	put(t, s, t0, reading("Patient/u", "Observation/u3", "1", t0.Add(40*time.Minute), t0.Add(55*time.Minute)))
+	wantEnd("a later reading", "Patient/u", t0.Add(55*time.Minute))
+	// A correction that moves a reading earlier still changes results until
+	// the replaced version's time plus ReachLater.
+	clear := func(subject string) {
+		t.Helper()
+		must(t, s.Commit(ctx, store.Change{Subject: subject, Generation: mustDirty(t, s, subject).Generation}, t0))
+	}
+	clear("Patient/u")
+	moved := reading("Patient/u", "Observation/u3", "22", t0.Add(15*time.Minute), t0.Add(25*time.Minute))
+	moved.ReachLater = time.Hour
+	put(t, s, t0, moved)
+	wantEnd("a reading moved earlier", "Patient/u", t0.Add(40*time.Minute+time.Hour))
+	// A replaced version of unknown reach (ReachLater zero) has no end.
+	clear("Patient/u")
+	put(t, s, t0, reading("Patient/u", "Observation/u3", "333", t0.Add(15*time.Minute), t0.Add(25*time.Minute)))
+	if d := mustDirty(t, s, "Patient/u"); !d.Until.IsZero() {
+		t.Errorf("Until = %v after replacing a version with no ReachLater, want no end", d.Until)
+	}
+	// After a clear, a new mark has its own end, not the cleared one's.
+	clear("Patient/u")
+	put(t, s, t0, reading("Patient/u", "Observation/u4", "1", t0.Add(time.Minute), t0.Add(2*time.Minute)))
+	wantEnd("a new mark", "Patient/u", t0.Add(2*time.Minute))
+	// A change with no start (the whole patient) has no end, and neither has
+	// MarkDirty.
+	put(t, s, t0, input("Patient/u", "Observation/u5", "1", t0, t0, "x"))
+	if d := mustDirty(t, s, "Patient/u"); !d.Until.IsZero() || !d.From.IsZero() {
+		t.Errorf("From %v, Until %v after a change to the whole patient, want neither", d.From, d.Until)
+	}
+	put(t, s, t0, reading("Patient/v", "Observation/v1", "1", t0, t0.Add(time.Minute)))
+	must(t, s.MarkDirty(ctx, "Patient/v", t0))
+	if d := mustDirty(t, s, "Patient/v"); !d.Until.IsZero() {
+		t.Errorf("Until = %v after MarkDirty, want no end", d.Until)
+	}
+}
+
 func mustDirty(t *testing.T, s store.Store, subject string) store.Dirty {
 	t.Helper()
 	d, ok := dirtyOf(t, s, subject)

@@ -62,6 +62,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"EntryVersion/Superseded", testEntryVersion},
 		{"PruneHistory", testPruneHistory},
 		{"Dirty/SpanAndUrgency", testDirtySpan},
+		{"Dirty/End", testDirtyEnd},
 		{"Commit/EmptyClearsMark", testEmptyCommit},
 		{"InputsFrom/Range", testInputsFrom},
 		{"InputsFrom/Exactly", testInputsFromExactly},
