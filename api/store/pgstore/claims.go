@@ -31,18 +31,25 @@ type querier interface {
 // evaluation. reach_generation follows the generation: a mark whose
 // reach_generation lags was last written by an earlier build (migration
 // 0006), and every listing reads its span as the whole patient (spanOf).
+// The end (until_ns, 0: none) grows the same way, and end_generation
+// follows the generation as reach_generation does: a mark an earlier build
+// wrote into (migration 0007) has no end, and one this build writes into
+// it afterwards keeps none.
 const markDirtySQL = `
 	WITH g AS (SELECT nextval('dirty_generation') AS gen)
-	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation)
-	SELECT $1, $2, g.gen, $3, $4, g.gen FROM g
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation, until_ns, end_generation)
+	SELECT $1, $2, g.gen, $3, $4, g.gen, $5, g.gen FROM g
 	ON CONFLICT (subject) DO UPDATE
 	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
 	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
 	       urgent = dirty.urgent OR EXCLUDED.urgent,
-	       reach_generation = CASE WHEN dirty.reach_generation = dirty.generation THEN EXCLUDED.reach_generation ELSE 0 END`
+	       reach_generation = CASE WHEN dirty.reach_generation = dirty.generation THEN EXCLUDED.reach_generation ELSE 0 END,
+	       until_ns = CASE WHEN dirty.end_generation = dirty.generation AND dirty.until_ns <> 0 AND EXCLUDED.until_ns <> 0
+	                       THEN GREATEST(dirty.until_ns, EXCLUDED.until_ns) ELSE 0 END,
+	       end_generation = EXCLUDED.end_generation`
 
 func markDirty(ctx context.Context, q querier, subject string, now time.Time, sp store.Span) error {
-	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.From), sp.Urgent)
+	_, err := q.Exec(ctx, markDirtySQL, subject, nanos(now), nanos(sp.From), sp.Urgent, nanos(sp.Until))
 	return err
 }
 
@@ -68,11 +75,14 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 	return out, nil
 }
 
-// spanOf is the mark's from_ns as every listing gives it: 0, the whole
-// patient, when an earlier build was the last to write the mark (its
-// reach_generation lags, see markDirtySQL).
+// spanOf is the mark's from_ns and until_ns as every listing gives them:
+// from 0, the whole patient, when a build before migration 0006 was the
+// last to write the mark (its reach_generation lags), and until 0, no end,
+// when a build before migration 0007 wrote into it (its end_generation
+// lags); see markDirtySQL.
 func spanOf(table string) string {
-	return `CASE WHEN ` + table + `.reach_generation = ` + table + `.generation THEN ` + table + `.from_ns ELSE 0 END`
+	return `CASE WHEN ` + table + `.reach_generation = ` + table + `.generation THEN ` + table + `.from_ns ELSE 0 END, ` +
+		`CASE WHEN ` + table + `.end_generation = ` + table + `.generation THEN ` + table + `.until_ns ELSE 0 END`
 }
 
 // clearedOf is the column every listing of marks ends with: the
@@ -85,9 +95,9 @@ func clearedOf(table string) string {
 
 func scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
 	var d store.Dirty
-	var since, gen, from, cleared int64
-	err := row.Scan(&d.Subject, &since, &gen, &from, &d.Urgent, &cleared)
-	d.Since, d.Generation, d.From, d.Cleared = fromNanos(since), uint64(gen), fromNanos(from), uint64(cleared)
+	var since, gen, from, until, cleared int64
+	err := row.Scan(&d.Subject, &since, &gen, &from, &until, &d.Urgent, &cleared)
+	d.Since, d.Generation, d.From, d.Until, d.Cleared = fromNanos(since), uint64(gen), fromNanos(from), fromNanos(until), uint64(cleared)
 	return d, err
 }
 

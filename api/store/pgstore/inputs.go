@@ -107,9 +107,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// The latest version under the owner decides across patients; the copy
 	// under this subject (if the owner row went with a prune) decides too.
 	exists, ownerHasCopy := false, false
-	// Marks on PostgreSQL have no end (store.Dirty.Until stays zero): a
-	// replica of an earlier build would not keep one up to date.
-	sp := store.Span{From: in.ChangedAt, Urgent: in.Urgent}
+	sp := store.SpanOf(in)
 	for _, subject := range []string{owner, in.Subject} {
 		if subject == "" {
 			continue
@@ -133,7 +131,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp.From = store.Earliest(sp.From, fromNanos(eff).Add(-in.Reach))
+			sp = sp.Replacing(in, fromNanos(eff))
 		}
 	}
 	if in.OnlyReplaces && !exists {

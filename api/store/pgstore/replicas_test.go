@@ -544,3 +544,80 @@ func TestMarksOfAnEarlierBuildCoverTheWholePatient(t *testing.T) {
 	earlier(at(90))
 	from("an earlier build's new mark", time.Time{})
 }
+
+// markWithoutEndSQL is how builds of migration 0006 mark a patient dirty:
+// their span has a start (from_ns, kept current with reach_generation) and
+// no end.
+const markWithoutEndSQL = `
+	WITH g AS (SELECT nextval('dirty_generation') AS gen)
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation)
+	SELECT $1, $2, g.gen, $3, $4, g.gen FROM g
+	ON CONFLICT (subject) DO UPDATE
+	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
+	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
+	       urgent = dirty.urgent OR EXCLUDED.urgent,
+	       reach_generation = CASE WHEN dirty.reach_generation = dirty.generation THEN EXCLUDED.reach_generation ELSE 0 END`
+
+// A replica of the build before marks had an end keeps their start but
+// not their end: a mark it wrote, or wrote into, reads as having no end
+// until an evaluation clears it, whatever this build writes into it
+// after, so this build's evaluation cannot leave out a blood gas that
+// replica's change reaches. Marks this build alone wrote keep their end.
+func TestMarksOfTheBuildBeforeEndsHaveNoEnd(t *testing.T) {
+	s := openAs(t, pgtest.NewSchema(t), "replica-a")
+	ctx := t.Context()
+	const subj = "Patient/ends"
+	at := func(m int) time.Time { return t0.Add(time.Duration(m) * time.Minute) }
+	input := func(id string, m int) {
+		t.Helper()
+		in := store.Input{Subject: subj, Logical: "Observation/" + id, VersionID: "1", LastUpdated: at(m), EffectiveAt: at(m),
+			ChangedAt: at(m - 5), ChangedUntil: at(m + 20)}
+		if _, err := s.PutInputs(ctx, []store.Input{in}, at(m)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	before := func(m int) {
+		t.Helper()
+		if _, err := s.pool.Exec(ctx, markWithoutEndSQL, subj, nanos(at(m)), nanos(at(m-5)), false); err != nil {
+			t.Fatal(err)
+		}
+	}
+	span := func(step string, from, until time.Time) store.Dirty {
+		t.Helper()
+		listed, err := s.DirtyPatients(ctx)
+		if err != nil || len(listed) != 1 {
+			t.Fatalf("%s: listed %+v, %v", step, listed, err)
+		}
+		one, ok, err := s.ClaimPatient(ctx, subj, time.Minute)
+		if err != nil || !ok {
+			t.Fatalf("%s: claim %+v %v %v", step, one, ok, err)
+		}
+		if err := s.ReleaseClaim(ctx, subj); err != nil {
+			t.Fatal(err)
+		}
+		for _, d := range []store.Dirty{listed[0], one} {
+			if !d.From.Equal(from) || !d.Until.Equal(until) {
+				t.Errorf("%s: span %v – %v, want %v – %v", step, d.From, d.Until, from, until)
+			}
+		}
+		return one
+	}
+	input("a", 30)
+	span("this build's mark", at(25), at(50))
+	input("b", 40)
+	span("this build's marks merged", at(25), at(60))
+	before(100)
+	span("the build before wrote into it", at(25), time.Time{})
+	input("c", 50)
+	d := span("this build's change after it", at(25), time.Time{})
+	if err := s.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, at(60)); err != nil {
+		t.Fatal(err)
+	}
+	input("d", 70)
+	d = span("after the clear, this build's mark", at(65), at(90))
+	if err := s.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, at(80)); err != nil {
+		t.Fatal(err)
+	}
+	before(90)
+	span("a new mark of the build before", at(85), time.Time{})
+}
