@@ -8,6 +8,30 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 )
 
+// DefaultOwnerGrace is Config.OwnerGrace when unset: far longer than the
+// replica that evaluated a patient last takes to pick up its next mark
+// (milliseconds without a settle delay), short enough that a replica that
+// died delays its patients' values by seconds, not by a job lease.
+const DefaultOwnerGrace = 2 * time.Second
+
+// sharedListing is how often, on a store shared by replicas, the
+// evaluation loop lists the dirty patients when nothing else wakes it: a
+// notification that reached another replica reaches the replica that
+// evaluated its patient last within about this long. One indexed query a
+// replica this often is little for the database.
+const sharedListing = 50 * time.Millisecond
+
+// leftToOwner reports whether d is left, for now, to the replica that
+// evaluated the patient last, and if so for how much longer: on a shared
+// store, while the mark is younger than the owner grace.
+func (e *Engine) leftToOwner(d store.Dirty, now time.Time) (bool, time.Duration) {
+	if !d.EvaluatedElsewhere {
+		return false, 0
+	}
+	left := d.Since.Add(e.cfg.OwnerGrace).Sub(now)
+	return left > 0, left
+}
+
 // claimPatient makes this replica the only one evaluating d's patient, when
 // the store is shared by replicas: it claims the patient for the job lease
 // and returns the patient's mark as it stands now. ok is false when

@@ -104,6 +104,16 @@ type Config struct {
 	// another replica takes these over within about this long after the
 	// holder died. DefaultJobLease when zero.
 	JobLease time.Duration
+	// OwnerGrace is how long, on a store shared by replicas, a dirty
+	// patient whose last evaluation another replica committed is left to
+	// that replica (store.Dirty.EvaluatedElsewhere), counted from when the
+	// patient became dirty: it holds the patient's fall detector state and
+	// falls, and goes on from them where this replica would run the
+	// detector over the whole series and read the whole ledger. After it,
+	// any replica takes the patient, so one that died or is stalled delays
+	// its patients' evaluations by about this long. DefaultOwnerGrace when
+	// zero.
+	OwnerGrace time.Duration
 	// Register, when set, is run by the replica that polls each time it
 	// takes the jobs over (once at start with a store of one replica): it
 	// creates or re-activates the rest-hook Subscription.
@@ -219,6 +229,12 @@ func New(cfg Config) (*Engine, error) {
 	}
 	if cfg.JobLease <= 0 {
 		cfg.JobLease = DefaultJobLease
+	}
+	if cfg.OwnerGrace < 0 {
+		errs = append(errs, fmt.Errorf("engine: owner grace must not be negative, got %v", cfg.OwnerGrace))
+	}
+	if cfg.OwnerGrace == 0 {
+		cfg.OwnerGrace = DefaultOwnerGrace
 	}
 	if cfg.GapGrace < 0 {
 		errs = append(errs, fmt.Errorf("engine: gap grace must not be negative, got %v", cfg.GapGrace))

@@ -184,8 +184,9 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 }
 
 // due lists the dirty patients that can be evaluated now, in the store's
-// order (blood gases first), leaving out those being evaluated, and
-// returns how long to wait before the next listing is worth making.
+// order (blood gases first), leaving out those being evaluated and those
+// left to the replica that evaluated them last (leftToOwner), and returns
+// how long to wait before the next listing is worth making.
 func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]time.Time) ([]store.Dirty, time.Duration) {
 	const idle = time.Minute
 	dirty, err := e.cfg.Store.DirtyPatients(ctx)
@@ -196,6 +197,12 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 		return nil, time.Second
 	}
 	wait := idle
+	if e.sharedStore() {
+		// Marks written by other replicas wake no loop here: a listing
+		// this often finds them, among them those of the patients this
+		// replica evaluated last, which the others leave to it.
+		wait = sharedListing
+	}
 	now := e.now()
 	for subject, until := range held {
 		if !until.After(now) {
@@ -213,6 +220,10 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 		}
 		if at := d.Since.Add(e.cfg.Settle); at.After(now) {
 			wait = min(wait, at.Sub(now))
+			continue
+		}
+		if left, after := e.leftToOwner(d, now); left {
+			wait = min(wait, after)
 			continue
 		}
 		due = append(due, d)

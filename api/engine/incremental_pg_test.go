@@ -3,7 +3,10 @@ package engine_test
 import (
 	"context"
 	"fmt"
+	"log/slog"
 	"math/rand/v2"
+	"slices"
+	"sync"
 	"sync/atomic"
 	"testing"
 	"time"
@@ -113,4 +116,175 @@ func TestReplicasAgreeWithReplay(t *testing.T) {
 			})
 		}
 	}
+}
+
+// committedBy records which replica committed each patient's evaluations.
+type committedBy struct {
+	*pgstore.Store
+	name string
+	mu   *sync.Mutex
+	by   map[string]map[string]int // subject → replica → commits
+}
+
+func (c committedBy) Commit(ctx context.Context, ch store.Change, now time.Time) error {
+	err := c.Store.Commit(ctx, ch, now)
+	if err == nil {
+		c.mu.Lock()
+		if c.by[ch.Subject] == nil {
+			c.by[ch.Subject] = map[string]int{}
+		}
+		c.by[ch.Subject][c.name]++
+		c.mu.Unlock()
+	}
+	return err
+}
+
+// TestPatientsStayWithTheReplicaThatEvaluatedThem: three replicas run
+// their evaluation loops over one PostgreSQL database and notifications
+// reach them at random, as behind a load balancer. The replica that
+// evaluates a patient first evaluates it from then on, so it goes on from
+// the fall detector state and the falls it holds instead of starting over
+// (store.Dirty.EvaluatedElsewhere; Config.OwnerGrace). When that replica
+// stops, another takes the patient once the grace has passed, and the
+// values are still replay's.
+func TestPatientsStayWithTheReplicaThatEvaluatedThem(t *testing.T) {
+	t.Parallel()
+	items, base, subjects := fallsAndRises()
+	stream := arrivalOrder(items, 3)
+	url := pgtest.NewSchema(t)
+	// The clock runs from eight hours after the readings (they are all
+	// within the retention) and the test moves it on past the grace.
+	var skew atomic.Int64
+	start := time.Now()
+	clock := func() time.Time {
+		return base.Add(8 * time.Hour).Add(time.Since(start)).Add(time.Duration(skew.Load()))
+	}
+	const grace = time.Minute
+	var mu sync.Mutex
+	by := map[string]map[string]int{}
+	type replica struct {
+		name string
+		eng  *engine.Engine
+		stop context.CancelFunc
+		done chan struct{}
+	}
+	var replicas []*replica
+	for _, name := range []string{"replica-a", "replica-b", "replica-c"} {
+		ps, err := pgstore.Open(t.Context(), url, pgstore.Options{Holder: name})
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(func() { _ = ps.Close() })
+		eng, err := engine.New(engine.Config{
+			Store: committedBy{ps, name, &mu, by}, Decoder: decode.New(decode.Options{}),
+			Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig(), Now: clock, OwnerGrace: grace,
+			Logger: slog.New(slog.NewTextHandler(tWriter{t, name}, nil)),
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		ctx, stop := context.WithCancel(context.Background())
+		r := &replica{name: name, eng: eng, stop: stop, done: make(chan struct{})}
+		go func() {
+			defer close(r.done)
+			_ = eng.Run(ctx)
+		}()
+		t.Cleanup(func() { stop(); <-r.done })
+		replicas = append(replicas, r)
+	}
+	probe, err := pgstore.Open(t.Context(), url, pgstore.Options{Holder: "probe"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = probe.Close() })
+	quiet := func(step string) {
+		t.Helper()
+		deadline := time.Now().Add(30 * time.Second)
+		for {
+			dirty, err := probe.DirtyPatients(context.Background())
+			if err != nil {
+				t.Fatal(err)
+			}
+			if len(dirty) == 0 {
+				return
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("%s: still dirty after 30 s: %+v (now %v)", step, dirty, clock())
+			}
+			time.Sleep(10 * time.Millisecond)
+		}
+	}
+	rng := rand.New(rand.NewPCG(3, 17))
+	ctx := context.Background()
+	half := len(stream) / 2
+	for from := 0; from < half; from += 9 {
+		if _, err := replicas[rng.IntN(3)].eng.Ingest(ctx, "test", stream[from:min(from+9, half)]); err != nil {
+			t.Fatal(err)
+		}
+		quiet("first half")
+	}
+	owners := map[string]string{}
+	mu.Lock()
+	for _, subject := range subjects {
+		if len(by[subject]) != 1 {
+			t.Errorf("%s was evaluated by %v; want one replica throughout", subject, by[subject])
+		}
+		for name, n := range by[subject] {
+			owners[subject] = name
+			if n < 5 {
+				t.Errorf("%s: %d evaluations; the test should evaluate each patient many times", subject, n)
+			}
+		}
+	}
+	mu.Unlock()
+
+	// The first patient's replica stops; the rest of the stream reaches the
+	// others. Its patient waits for it until the grace has passed.
+	gone := owners[subjects[0]]
+	var alive []*replica
+	for _, r := range replicas {
+		if r.name == gone {
+			r.stop()
+			<-r.done
+			continue
+		}
+		alive = append(alive, r)
+	}
+	for from := half; from < len(stream); from += 9 {
+		if _, err := alive[rng.IntN(len(alive))].eng.Ingest(ctx, "test", stream[from:min(from+9, len(stream))]); err != nil {
+			t.Fatal(err)
+		}
+	}
+	time.Sleep(200 * time.Millisecond)
+	if d, err := probe.DirtyPatients(ctx); err != nil || !slices.ContainsFunc(d, func(d store.Dirty) bool { return d.Subject == subjects[0] }) {
+		t.Errorf("the stopped replica's patient was taken before the grace passed: dirty %+v, %v", d, err)
+	}
+	skew.Store(int64(2 * grace))
+	// A listing after the clock moved on (a notification wakes the loop).
+	if _, err := alive[0].eng.Ingest(ctx, "test", stream[len(stream)-1:]); err != nil {
+		t.Fatal(err)
+	}
+	quiet("after the replica stopped")
+	// The count follows the commit's return, a moment after the mark is
+	// gone.
+	taken := func() (n int, seen string) {
+		mu.Lock()
+		defer mu.Unlock()
+		for name, c := range by[subjects[0]] {
+			if name != gone {
+				n += c
+			}
+		}
+		return n, fmt.Sprint(by[subjects[0]])
+	}
+	for deadline := time.Now().Add(5 * time.Second); ; time.Sleep(10 * time.Millisecond) {
+		n, seen := taken()
+		if n > 0 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("no other replica evaluated %s after its replica stopped: evaluations %s", subjects[0], seen)
+		}
+	}
+	sameAsReplay(t, alive[0].eng, stream, base, subjects, 4)
 }

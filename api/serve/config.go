@@ -34,6 +34,7 @@ type Config struct {
 	Store          string // secret when it carries a password: prefer DEADSPACE_STORE
 	StoreLease     time.Duration
 	JobLease       time.Duration
+	OwnerGrace     time.Duration
 	WebhookSecret  string // secret: from the flag, DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file
 	WebhookSecFile string
 	WebhookHeader  string
@@ -94,6 +95,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.DataDir, "data-dir", "deadspace-data", "directory of the embedded store")
 	fs.DurationVar(&c.StoreLease, "store-write-lease", 2*time.Minute, "with --store postgres://…: how long a replica holds an outbox write it is sending; a write whose replica died is sent by another after it (longer than the slowest send, retries included)")
 	fs.DurationVar(&c.JobLease, "store-job-lease", 30*time.Second, "with --store postgres://…: how long one replica holds polling, catch-up and subscription registration, and its claim on a patient it is evaluating; another replica takes them over within about this long after it died")
+	fs.DurationVar(&c.OwnerGrace, "store-owner-grace", engine.DefaultOwnerGrace, "with --store postgres://…: how long a patient's new data is left to the replica that evaluated the patient last (it holds the fall detector's state) before another replica evaluates it")
 	fs.StringVar(&c.Store, "store", "", "where the service keeps its state: empty for the embedded store in --data-dir, or a postgres:// URL for replicas that share one PostgreSQL database (prefer DEADSPACE_STORE, which keeps the password out of the process list)")
 	fs.StringVar(&c.WebhookSecret, "webhook-secret", "", "shared secret the FHIR server sends with each notification (prefer DEADSPACE_WEBHOOK_SECRET or --webhook-secret-file)")
 	fs.StringVar(&c.WebhookSecFile, "webhook-secret-file", "", "file holding the webhook secret")
@@ -291,6 +293,9 @@ func (c *Config) Validate() error {
 		}
 		if c.JobLease < time.Second {
 			errs = append(errs, fmt.Errorf("--store-job-lease must be at least 1s, got %v", c.JobLease))
+		}
+		if c.OwnerGrace <= 0 {
+			errs = append(errs, fmt.Errorf("--store-owner-grace must be positive, got %v", c.OwnerGrace))
 		}
 	} else if c.DataDir == "" {
 		errs = append(errs, errors.New("--data-dir is required for the embedded store"))

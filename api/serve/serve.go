@@ -141,7 +141,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, GapGrace: cfg.GapGrace, SearchCodes: search, Logger: log,
 		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
-		JobLease: cfg.JobLease, Register: s.registerHook(),
+		JobLease: cfg.JobLease, OwnerGrace: cfg.OwnerGrace, Register: s.registerHook(),
 	})
 	if err != nil {
 		s.store.Close()

@@ -123,6 +123,12 @@ type Dirty struct {
 	// that evaluation may go on from what it found (the engine's fall
 	// detector state). A store of one replica leaves it 0.
 	Cleared uint64
+	// EvaluatedElsewhere, from a store shared by replicas, says that
+	// another replica's evaluation cleared the patient's last mark: that
+	// replica holds what it found, and may go on from it where this one
+	// would start over. False when this replica's did, or none did, or the
+	// store does not know.
+	EvaluatedElsewhere bool
 }
 
 // Entry is one derived Observation in the ledger, keyed by its series (the

@@ -68,7 +68,7 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
-	out, err := pgx.CollectRows(rows, scanDirty)
+	out, err := pgx.CollectRows(rows, s.scanDirty)
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
@@ -85,19 +85,23 @@ func spanOf(table string) string {
 		`CASE WHEN ` + table + `.end_generation = ` + table + `.generation THEN ` + table + `.until_ns ELSE 0 END`
 }
 
-// clearedOf is the column every listing of marks ends with: the
+// clearedOf is the columns every listing of marks ends with: the
 // generation of the mark the patient's last committed evaluation cleared
-// (store.Dirty.Cleared; 0 when none did), read for the mark row named
-// table.
+// (store.Dirty.Cleared; 0 when none did) and the replica that cleared it
+// (empty when unknown), read for the mark row named table.
 func clearedOf(table string) string {
-	return `COALESCE((SELECT c.generation FROM cleared c WHERE c.subject = ` + table + `.subject), 0)`
+	return `COALESCE((SELECT c.generation FROM cleared c WHERE c.subject = ` + table + `.subject), 0), ` +
+		`COALESCE((SELECT c.holder FROM cleared c WHERE c.subject = ` + table + `.subject), '')`
 }
 
-func scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
+// scanDirty reads a mark as every listing gives it.
+func (s *Store) scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
 	var d store.Dirty
 	var since, gen, from, until, cleared int64
-	err := row.Scan(&d.Subject, &since, &gen, &from, &until, &d.Urgent, &cleared)
+	var clearedBy string
+	err := row.Scan(&d.Subject, &since, &gen, &from, &until, &d.Urgent, &cleared, &clearedBy)
 	d.Since, d.Generation, d.From, d.Until, d.Cleared = fromNanos(since), uint64(gen), fromNanos(from), fromNanos(until), uint64(cleared)
+	d.EvaluatedElsewhere = clearedBy != "" && clearedBy != s.holder
 	return d, err
 }
 
@@ -131,7 +135,7 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
 	}
-	out, err := pgx.CollectRows(rows, scanDirty)
+	out, err := pgx.CollectRows(rows, s.scanDirty)
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
 	}
@@ -166,7 +170,7 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 	if err != nil {
 		return store.Dirty{}, false, wrap("ClaimPatient", err)
 	}
-	out, err := pgx.CollectRows(rows, scanDirty)
+	out, err := pgx.CollectRows(rows, s.scanDirty)
 	if err != nil {
 		return store.Dirty{}, false, wrap("ClaimPatient", err)
 	}
