@@ -21,6 +21,27 @@ const DefaultOwnerGrace = 2 * time.Second
 // replica this often is little for the database.
 const sharedListing = 50 * time.Millisecond
 
+// aliveLoop tells the other replicas that this one runs (store.Replicated
+// KeepAlive), renewing four times a grace, and that it stopped when ctx
+// ends: they leave the patients it evaluated last to it only meanwhile.
+func (e *Engine) aliveLoop(ctx context.Context) {
+	rep := e.cfg.Store.(store.Replicated)
+	ttl := e.cfg.OwnerGrace
+	for {
+		if err := rep.KeepAlive(ctx, ttl); err != nil && ctx.Err() == nil {
+			e.log.WarnContext(ctx, "could not tell the other replicas this one runs; they take its patients after the owner grace", "err", err)
+		}
+		if !sleep(ctx, ttl/4) {
+			break
+		}
+	}
+	depart, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+	defer cancel()
+	if err := rep.Depart(depart); err != nil {
+		e.log.WarnContext(depart, "could not tell the other replicas this one stopped; they take its patients after the owner grace", "err", err)
+	}
+}
+
 // leftToOwner reports whether d is left, for now, to the replica that
 // evaluated the patient last, and if so for how much longer: on a shared
 // store, while the mark is younger than the owner grace.

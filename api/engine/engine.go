@@ -110,9 +110,10 @@ type Config struct {
 	// patient became dirty: it holds the patient's fall detector state and
 	// falls, and goes on from them where this replica would run the
 	// detector over the whole series and read the whole ledger. After it,
-	// any replica takes the patient, so one that died or is stalled delays
-	// its patients' evaluations by about this long. DefaultOwnerGrace when
-	// zero.
+	// any replica takes the patient, so one that is stalled delays its
+	// patients' evaluations by about this long; one that stopped hands them
+	// over at once, and one that died once its word that it runs lapses,
+	// which it renews four times a grace. DefaultOwnerGrace when zero.
 	OwnerGrace time.Duration
 	// Register, when set, is run by the replica that polls each time it
 	// takes the jobs over (once at start with a store of one replica): it
@@ -534,6 +535,9 @@ func (e *Engine) leftOut(r derive.Reason) {
 func (e *Engine) Run(ctx context.Context) error {
 	var wg sync.WaitGroup
 	loops := []func(context.Context){e.evaluateLoop, e.pruneLoop, e.pictureLoop}
+	if e.sharedStore() {
+		loops = append(loops, e.aliveLoop)
+	}
 	if e.cfg.Client != nil {
 		loops = append(loops, e.writeLoop, e.catchUpLoop)
 		e.RequestCatchUp("start")

@@ -2,6 +2,7 @@ package engine_test
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
 	"log/slog"
 	"math/rand/v2"
@@ -18,6 +19,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore/pgtest"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
+	"github.com/jackc/pgx/v5"
 )
 
 // sharedRangeCounting is rangeCounting over PostgreSQL, whose replica
@@ -145,8 +147,9 @@ func (c committedBy) Commit(ctx context.Context, ch store.Change, now time.Time)
 // evaluates a patient first evaluates it from then on, so it goes on from
 // the fall detector state and the falls it holds instead of starting over
 // (store.Dirty.EvaluatedElsewhere; Config.OwnerGrace). When that replica
-// stops, another takes the patient once the grace has passed, and the
-// values are still replay's.
+// stalls (it says it runs but evaluates nothing), another takes the
+// patient once the grace has passed; when a replica stops, another takes
+// its patients at once; and the values are still replay's.
 func TestPatientsStayWithTheReplicaThatEvaluatedThem(t *testing.T) {
 	t.Parallel()
 	items, base, subjects := fallsAndRises()
@@ -238,8 +241,10 @@ func TestPatientsStayWithTheReplicaThatEvaluatedThem(t *testing.T) {
 	}
 	mu.Unlock()
 
-	// The first patient's replica stops; the rest of the stream reaches the
-	// others. Its patient waits for it until the grace has passed.
+	// The first patient's replica stalls: it still says it runs (its row is
+	// put back after it stopped) but evaluates nothing. The rest of the
+	// stream reaches the others, and the patient waits for it until the
+	// grace has passed.
 	gone := owners[subjects[0]]
 	var alive []*replica
 	for _, r := range replicas {
@@ -250,6 +255,15 @@ func TestPatientsStayWithTheReplicaThatEvaluatedThem(t *testing.T) {
 		}
 		alive = append(alive, r)
 	}
+	conn, err := pgx.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	if _, err := conn.Exec(ctx, `INSERT INTO replicas_alive (holder, alive_until) VALUES ($1, clock_timestamp() + interval '1 hour')
+		ON CONFLICT (holder) DO UPDATE SET alive_until = EXCLUDED.alive_until`, gone); err != nil {
+		t.Fatal(err)
+	}
 	for from := half; from < len(stream); from += 9 {
 		if _, err := alive[rng.IntN(len(alive))].eng.Ingest(ctx, "test", stream[from:min(from+9, len(stream))]); err != nil {
 			t.Fatal(err)
@@ -257,34 +271,56 @@ func TestPatientsStayWithTheReplicaThatEvaluatedThem(t *testing.T) {
 	}
 	time.Sleep(200 * time.Millisecond)
 	if d, err := probe.DirtyPatients(ctx); err != nil || !slices.ContainsFunc(d, func(d store.Dirty) bool { return d.Subject == subjects[0] }) {
-		t.Errorf("the stopped replica's patient was taken before the grace passed: dirty %+v, %v", d, err)
+		t.Errorf("the stalled replica's patient was taken before the grace passed: dirty %+v, %v", d, err)
 	}
 	skew.Store(int64(2 * grace))
 	// A listing after the clock moved on (a notification wakes the loop).
 	if _, err := alive[0].eng.Ingest(ctx, "test", stream[len(stream)-1:]); err != nil {
 		t.Fatal(err)
 	}
-	quiet("after the replica stopped")
-	// The count follows the commit's return, a moment after the mark is
-	// gone.
-	taken := func() (n int, seen string) {
+	quiet("after the grace")
+	taker := waitForEvaluation(t, &mu, by, subjects[0], gone)
+
+	// The replica that took the patient over stops: it says so, and the
+	// last one takes the patient's next data at once, without waiting for
+	// the grace (quiet would give up long before it passes).
+	var last *replica
+	for _, r := range alive {
+		if r.name == taker {
+			r.stop()
+			<-r.done
+		} else {
+			last = r
+		}
+	}
+	at := base.Add(6*time.Hour + 30*time.Second)
+	more := obsOf(subjects[0], "inc1-after", "1", "final", "19891-1", "mm[Hg]", 37, at, at.Add(time.Minute))
+	stream = append(stream, more)
+	if _, err := last.eng.Ingest(ctx, "test", []json.RawMessage{more}); err != nil {
+		t.Fatal(err)
+	}
+	quiet("after its new replica stopped")
+	waitForEvaluation(t, &mu, by, subjects[0], gone, taker)
+	sameAsReplay(t, alive[0].eng, stream, base, subjects, 4)
+}
+
+// waitForEvaluation waits until a replica other than those named has
+// committed an evaluation of subject, and returns its name: the count
+// follows the commit's return, a moment after the mark is gone.
+func waitForEvaluation(t *testing.T, mu *sync.Mutex, by map[string]map[string]int, subject string, not ...string) string {
+	t.Helper()
+	for deadline := time.Now().Add(5 * time.Second); ; time.Sleep(10 * time.Millisecond) {
 		mu.Lock()
-		defer mu.Unlock()
-		for name, c := range by[subjects[0]] {
-			if name != gone {
-				n += c
+		seen := fmt.Sprint(by[subject])
+		for name, n := range by[subject] {
+			if n > 0 && !slices.Contains(not, name) {
+				mu.Unlock()
+				return name
 			}
 		}
-		return n, fmt.Sprint(by[subjects[0]])
-	}
-	for deadline := time.Now().Add(5 * time.Second); ; time.Sleep(10 * time.Millisecond) {
-		n, seen := taken()
-		if n > 0 {
-			break
-		}
+		mu.Unlock()
 		if time.Now().After(deadline) {
-			t.Fatalf("no other replica evaluated %s after its replica stopped: evaluations %s", subjects[0], seen)
+			t.Fatalf("no replica but %v evaluated %s: evaluations %s", not, subject, seen)
 		}
 	}
-	sameAsReplay(t, alive[0].eng, stream, base, subjects, 4)
 }

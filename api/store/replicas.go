@@ -63,4 +63,12 @@ type Replicated interface {
 	RenewWriteClaim(ctx context.Context, writeID uint64) (ok bool, err error)
 	// WriteLease is how long a claim on an outbox write lasts.
 	WriteLease() time.Duration
+	// KeepAlive says this replica is running, for ttl from now: while it
+	// is, the other replicas leave the patients it evaluated last to it
+	// ([Dirty.EvaluatedElsewhere]). A replica renews it well within ttl
+	// and calls Depart when it stops.
+	KeepAlive(ctx context.Context, ttl time.Duration) error
+	// Depart says at once that this replica stopped, so that the others
+	// take its patients without waiting.
+	Depart(ctx context.Context) error
 }

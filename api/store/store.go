@@ -124,10 +124,11 @@ type Dirty struct {
 	// detector state). A store of one replica leaves it 0.
 	Cleared uint64
 	// EvaluatedElsewhere, from a store shared by replicas, says that
-	// another replica's evaluation cleared the patient's last mark: that
-	// replica holds what it found, and may go on from it where this one
-	// would start over. False when this replica's did, or none did, or the
-	// store does not know.
+	// another replica's evaluation cleared the patient's last mark and
+	// that replica still runs (Replicated.KeepAlive): it holds what it
+	// found, and may go on from it where this one would start over. False
+	// when this replica's did, or none did, or that replica stopped, or
+	// the store does not know.
 	EvaluatedElsewhere bool
 }
 

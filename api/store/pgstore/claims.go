@@ -88,10 +88,38 @@ func spanOf(table string) string {
 // clearedOf is the columns every listing of marks ends with: the
 // generation of the mark the patient's last committed evaluation cleared
 // (store.Dirty.Cleared; 0 when none did) and the replica that cleared it
-// (empty when unknown), read for the mark row named table.
+// while that replica is running (empty when it is not, or unknown), read
+// for the mark row named table.
 func clearedOf(table string) string {
 	return `COALESCE((SELECT c.generation FROM cleared c WHERE c.subject = ` + table + `.subject), 0), ` +
-		`COALESCE((SELECT c.holder FROM cleared c WHERE c.subject = ` + table + `.subject), '')`
+		`COALESCE((SELECT c.holder FROM cleared c JOIN replicas_alive r ON r.holder = c.holder AND r.alive_until > clock_timestamp()` +
+		` WHERE c.subject = ` + table + `.subject), '')`
+}
+
+// KeepAlive records that this replica runs for ttl from now, and forgets
+// replicas that have not renewed for an hour (those that died; a replica
+// that stops deletes its own row).
+func (s *Store) KeepAlive(ctx context.Context, ttl time.Duration) error {
+	if ttl <= 0 {
+		return fmt.Errorf("pgstore.KeepAlive: ttl %v must be positive", ttl)
+	}
+	return s.run(ctx, "KeepAlive", func(q querier) error {
+		if _, err := q.Exec(ctx, `
+			INSERT INTO replicas_alive (holder, alive_until) VALUES ($1, clock_timestamp() + $2 * interval '1 microsecond')
+			ON CONFLICT (holder) DO UPDATE SET alive_until = EXCLUDED.alive_until`, s.holder, ttl.Microseconds()); err != nil {
+			return err
+		}
+		_, err := q.Exec(ctx, `DELETE FROM replicas_alive WHERE alive_until < clock_timestamp() - interval '1 hour'`)
+		return err
+	})
+}
+
+// Depart deletes this replica's row: the others take its patients at once.
+func (s *Store) Depart(ctx context.Context) error {
+	return s.run(ctx, "Depart", func(q querier) error {
+		_, err := q.Exec(ctx, `DELETE FROM replicas_alive WHERE holder = $1`, s.holder)
+		return err
+	})
 }
 
 // scanDirty reads a mark as every listing gives it.

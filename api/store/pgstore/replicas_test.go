@@ -621,3 +621,68 @@ func TestMarksOfTheBuildBeforeEndsHaveNoEnd(t *testing.T) {
 	before(90)
 	span("a new mark of the build before", at(85), time.Time{})
 }
+
+// A mark says another replica evaluated the patient last only while that
+// replica runs: before it first says so, after it departs, and after its
+// word lapses, the patient is anyone's; to the replica itself, never.
+func TestEvaluatedElsewhereOnlyWhileThatReplicaRuns(t *testing.T) {
+	url := pgtest.NewSchema(t)
+	a, b := openAs(t, url, "replica-a"), openAs(t, url, "replica-b")
+	ctx := t.Context()
+	const subj = "Patient/owned"
+	mark := func(id string) {
+		t.Helper()
+		if _, err := a.PutInputs(ctx, []store.Input{{Subject: subj, Logical: "Observation/" + id, VersionID: "1", LastUpdated: t0, EffectiveAt: t0, ChangedAt: t0}}, t0); err != nil {
+			t.Fatal(err)
+		}
+	}
+	elsewhere := func(s *Store) bool {
+		t.Helper()
+		listed, err := s.DirtyPatients(ctx)
+		if err != nil || len(listed) != 1 {
+			t.Fatalf("listed %+v, %v", listed, err)
+		}
+		claimed, ok, err := s.ClaimPatient(ctx, subj, time.Minute)
+		if err != nil || !ok {
+			t.Fatalf("claim %+v %v %v", claimed, ok, err)
+		}
+		if err := s.ReleaseClaim(ctx, subj); err != nil {
+			t.Fatal(err)
+		}
+		if listed[0].EvaluatedElsewhere != claimed.EvaluatedElsewhere {
+			t.Errorf("the listing and the claim disagree: %v and %v", listed[0].EvaluatedElsewhere, claimed.EvaluatedElsewhere)
+		}
+		return claimed.EvaluatedElsewhere
+	}
+	mark("1")
+	d, ok, err := a.ClaimPatient(ctx, subj, time.Minute)
+	if err != nil || !ok {
+		t.Fatalf("claim %v %v", ok, err)
+	}
+	if err := a.Commit(ctx, store.Change{Subject: subj, Generation: d.Generation}, t0); err != nil {
+		t.Fatal(err)
+	}
+	mark("2")
+	if elsewhere(b) {
+		t.Error("before replica-a said it runs, replica-b sees the patient as replica-a's")
+	}
+	if err := a.KeepAlive(ctx, time.Minute); err != nil {
+		t.Fatal(err)
+	}
+	if !elsewhere(b) || elsewhere(a) {
+		t.Error("while replica-a runs, the patient is replica-a's to replica-b, and not elsewhere to replica-a")
+	}
+	if err := a.Depart(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if elsewhere(b) {
+		t.Error("after replica-a departed, replica-b still sees the patient as replica-a's")
+	}
+	if err := a.KeepAlive(ctx, time.Millisecond); err != nil {
+		t.Fatal(err)
+	}
+	time.Sleep(20 * time.Millisecond)
+	if elsewhere(b) {
+		t.Error("after replica-a's word lapsed, replica-b still sees the patient as replica-a's")
+	}
+}
