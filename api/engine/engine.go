@@ -21,6 +21,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"slices"
 	"sync"
 	"time"
 
@@ -465,17 +466,57 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	// them at any time: zero). The version it replaces may have been of
 	// any kind.
 	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
-		d := e.cfg.Derive
-		in.ChangedAt = it.Reading.At().Add(-d.Reach(it.Reading.Kind))
-		in.ChangedUntil = it.Reading.At().Add(d.ReachLater(it.Reading.Kind))
+		kinds := []derive.Kind{it.Reading.Kind}
 		for _, a := range it.Also {
-			in.ChangedAt = store.Earliest(in.ChangedAt, a.At().Add(-d.Reach(a.Kind)))
-			in.ChangedUntil = store.Latest(in.ChangedUntil, a.At().Add(d.ReachLater(a.Kind)))
+			kinds = append(kinds, a.Kind)
 		}
-		in.Reach, in.ReachLater = d.MaxReach(), d.MaxReachLater()
+		sp := e.readingSpan(it.Reading.At(), kinds)
+		in.ChangedAt, in.ChangedUntil = sp.From, sp.Until
 		in.Urgent = it.Reading.Kind == derive.KindPaCO2
 	}
+	// The version it replaces may have been of another kind: its own
+	// stored head says which (a height's effective time is a year on).
+	in.Replaced = e.replacedSpan
 	return in, nil
+}
+
+// readingSpan is the blood gas sample times a reading taken at at, of
+// kinds (its own and those of the other readings it carries, which share
+// its time), can change: each kind's reach either side.
+func (e *Engine) readingSpan(at time.Time, kinds []derive.Kind) store.Span {
+	d := e.cfg.Derive
+	var sp store.Span
+	for i, k := range kinds {
+		from, until := at.Add(-d.Reach(k)), at.Add(d.ReachLater(k))
+		if i == 0 {
+			sp.From, sp.Until = from, until
+			continue
+		}
+		sp.From, sp.Until = store.Earliest(sp.From, from), store.Latest(sp.Until, until)
+	}
+	return sp
+}
+
+// replacedSpan is store.Input.Replaced: the blood gas sample times a
+// stored version changed, read from its head. A version that is not a
+// reading changed none; a height (kept by its time a year on) and a
+// payload this build cannot read changed the whole patient.
+func (e *Engine) replacedSpan(_ time.Time, payload []byte) (store.Span, bool) {
+	l, err := parseHead(payload)
+	if err != nil {
+		return store.Span{}, true
+	}
+	if headItemType(payload) != decode.ItemReading {
+		return store.Span{}, false
+	}
+	kinds := []derive.Kind{headKind(payload)}
+	for i := range l.nAlso {
+		kinds = append(kinds, l.alsoKind(payload, i))
+	}
+	if slices.Contains(kinds, derive.KindHeight) {
+		return store.Span{}, true
+	}
+	return e.readingSpan(time.UnixMilli(headAtMillis(payload)).UTC(), kinds), true
 }
 
 // retentionTime is the time the store prunes an input by. A body height is

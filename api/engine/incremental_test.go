@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"slices"
+	"strings"
 	"sync/atomic"
 	"testing"
 	"time"
@@ -518,4 +519,69 @@ func countingEngine(t *testing.T, now time.Time) (*engine.Engine, *boltstore.Sto
 		t.Fatal(err)
 	}
 	return eng, bs, st
+}
+
+// TestHeightRecodedAndMovedWithdrawsWhatUsedIt: a body height that a
+// correction turns into another kind of reading, at another time, no
+// longer serves the blood gases sampled since it was measured. The store
+// keeps a height by its time a year on (retention), so the span of the
+// version replaced is read from that version itself (store.Input.Replaced):
+// a height changes the whole patient. The live values, the ventilatory
+// ratio among them, are replay's.
+func TestHeightRecodedAndMovedWithdrawsWhatUsedIt(t *testing.T) {
+	t.Parallel()
+	base := time.Date(2026, 3, 7, 0, 0, 0, 0, time.UTC)
+	const subject = "Patient/hr"
+	eng, _, _ := countingEngine(t, base.Add(6*time.Hour))
+	ctx := context.Background()
+	stream := []json.RawMessage{
+		json.RawMessage(`{"resourceType":"Patient","id":"hr","meta":{"versionId":"1","lastUpdated":"2026-01-01T00:00:00Z"},"gender":"male","birthDate":"1960-01-01"}`),
+		obsOf(subject, "hr-h", "1", "final", "8302-2", "cm", 175, base.Add(-time.Hour), base.Add(-time.Hour)),
+	}
+	for m := range 4 * 60 {
+		at := base.Add(time.Duration(m) * time.Minute)
+		stream = append(stream,
+			obsOf(subject, fmt.Sprintf("hr-et%d", m), "1", "final", "19891-1", "mm[Hg]", 36, at, at.Add(time.Minute)),
+			obsOf(subject, fmt.Sprintf("hr-mv%d", m), "1", "final", "76008-2", "L/min", 8, at, at.Add(time.Minute)),
+			obsOf(subject, fmt.Sprintf("hr-vt%d", m), "1", "final", "75958-9", "mL", 500, at, at.Add(time.Minute)),
+			obsOf(subject, fmt.Sprintf("hr-rr%d", m), "1", "final", "19840-8", "/min", 16, at, at.Add(time.Minute)))
+		if m%30 == 15 {
+			stream = append(stream, obsOf(subject, fmt.Sprintf("hr-gas%d", m), "1", "final", "2019-8", "mm[Hg]", 44, at, at.Add(time.Minute)))
+		}
+	}
+	if _, err := eng.Ingest(ctx, "test", stream); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	ratios := func() int {
+		t.Helper()
+		recs, err := eng.Derivations(ctx, subject, time.Time{}, base.Add(24*time.Hour), "", 1000)
+		if err != nil {
+			t.Fatal(err)
+		}
+		n := 0
+		for _, r := range recs {
+			if r.Status != "entered-in-error" && strings.Contains(string(r.Payload.Observation), string(derive.CodeVentilatoryRatio)) {
+				n++
+			}
+		}
+		return n
+	}
+	if n := ratios(); n != 8 {
+		t.Fatalf("%d ventilatory ratios before the correction, want one per blood gas (8)", n)
+	}
+	moved := obsOf(subject, "hr-h", "2", "amended", "19891-1", "mm[Hg]", 36, base.Add(3*time.Hour+30*time.Second), base.Add(5*time.Hour))
+	stream = append(stream, moved)
+	if _, err := eng.Ingest(ctx, "test", []json.RawMessage{moved}); err != nil {
+		t.Fatal(err)
+	}
+	if err := eng.EvaluateNow(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if n := ratios(); n != 0 {
+		t.Errorf("%d ventilatory ratios stand after the only height became an end-tidal reading", n)
+	}
+	sameAsReplay(t, eng, stream, base, []string{subject}, 0)
 }

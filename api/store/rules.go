@@ -48,9 +48,17 @@ func SpanOf(in Input) Span {
 	return sp
 }
 
-// Replacing widens sp by the results of a replaced version effective at
-// effectiveAt: from in.Reach before it to in.ReachLater after it.
-func (sp Span) Replacing(in Input, effectiveAt time.Time) Span {
+// Replacing widens sp by the results of a version in replaces, effective
+// at effectiveAt with payload: what in.Replaced says of it, or without
+// that from in.Reach before its time to in.ReachLater after it.
+func (sp Span) Replacing(in Input, effectiveAt time.Time, payload []byte) Span {
+	if in.Replaced != nil {
+		old, ok := in.Replaced(effectiveAt, payload)
+		if !ok {
+			return sp
+		}
+		return Span{From: Earliest(sp.From, old.From), Until: Latest(sp.Until, old.Until), Urgent: sp.Urgent}
+	}
 	sp.From = Earliest(sp.From, effectiveAt.Add(-in.Reach))
 	if in.ReachLater == 0 {
 		sp.Until = time.Time{}

@@ -57,6 +57,13 @@ type Input struct {
 	// ReachLater is how far after that time they may change, for the same
 	// reason the widest of any kind (zero: no bound).
 	ReachLater time.Duration
+	// Replaced, when set, says instead of Reach and ReachLater what
+	// results a version this one replaces changed, from that version's
+	// effective time and payload (the store does not look inside a
+	// payload; its writer can): ok false when it changed none (a version
+	// no result could use), a zero span when it changed the whole
+	// patient (a height, say, whose effective time is not its own).
+	Replaced func(effectiveAt time.Time, payload []byte) (sp Span, ok bool)
 	// Urgent marks a blood gas: its patient is evaluated before patients
 	// with device readings only.
 	Urgent bool

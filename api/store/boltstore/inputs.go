@@ -139,9 +139,9 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 	// under this subject (if the owner's copy was pruned) decides too.
 	exists := false
 	span := store.SpanOf(in)
-	for _, subject := range []string{owner, in.Subject} {
-		if subject == "" {
-			continue
+	for i, subject := range []string{owner, in.Subject} {
+		if subject == "" || (i == 1 && subject == owner) {
+			continue // no copy there, or the owner's, read already
 		}
 		old, ok, err := inputHeadAt(tx, subject, in.Logical, pl.timeOf(subject))
 		if err != nil {
@@ -156,7 +156,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			span = span.Replacing(in, old.EffectiveAt)
+			span = span.Replacing(in, old.EffectiveAt, old.Payload)
 		}
 	}
 	if in.OnlyReplaces && !exists {
@@ -188,17 +188,18 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 }
 
 // inputHeadAt reads the version of subject's stored input, whose row is
-// at time key t (nil: subject has none).
+// at time key t (nil: subject has none), with its payload as a slice of
+// the transaction's page (valid only within it).
 func inputHeadAt(tx *bolt.Tx, subject, logical string, t []byte) (store.Input, bool, error) {
 	v, err := rowAt(tx, subject, logical, t)
 	if v == nil || err != nil {
 		return store.Input{}, false, err
 	}
-	id, lu, eff, err := decodeInputHead(v)
+	id, lu, eff, payload, err := splitInput(v)
 	if err != nil {
 		return store.Input{}, false, err
 	}
-	return store.Input{Subject: subject, Logical: logical, VersionID: id, LastUpdated: lu, EffectiveAt: eff}, true, nil
+	return store.Input{Subject: subject, Logical: logical, VersionID: string(id), LastUpdated: lu, EffectiveAt: eff, Payload: payload}, true, nil
 }
 
 // inputRow returns the stored record of an input, nil when there is none:

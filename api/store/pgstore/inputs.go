@@ -108,14 +108,15 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// under this subject (if the owner row went with a prune) decides too.
 	exists, ownerHasCopy := false, false
 	sp := store.SpanOf(in)
-	for _, subject := range []string{owner, in.Subject} {
-		if subject == "" {
-			continue
+	for i, subject := range []string{owner, in.Subject} {
+		if subject == "" || (i == 1 && subject == owner) {
+			continue // no copy there, or the owner's, read already
 		}
 		var id string
 		var lu, eff int64
-		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, effective_ns FROM inputs WHERE subject = $1 AND logical = $2`,
-			subject, in.Logical).Scan(&id, &lu, &eff)
+		var payload []byte
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, effective_ns, payload FROM inputs WHERE subject = $1 AND logical = $2`,
+			subject, in.Logical).Scan(&id, &lu, &eff, &payload)
 		if errors.Is(err, pgx.ErrNoRows) {
 			continue
 		}
@@ -131,7 +132,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp = sp.Replacing(in, fromNanos(eff))
+			sp = sp.Replacing(in, fromNanos(eff), payload)
 		}
 	}
 	if in.OnlyReplaces && !exists {

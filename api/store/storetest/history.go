@@ -267,6 +267,56 @@ func testDirtyEnd(t *testing.T, open func(t *testing.T) store.Store) {
 	}
 }
 
+// A version replaced can say itself what results it changed
+// (Input.Replaced): the store hands it the replaced version's effective
+// time and payload, and widens the mark by the span it answers, by nothing
+// when it answers none, or to the whole patient for a zero span.
+func testReplacedSpan(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	var seen []string
+	version := func(v string, eff time.Time, payload string, sp store.Span, ok bool) store.Input {
+		i := input("Patient/r", "Observation/r1", v, t0.Add(time.Duration(len(v))*time.Minute), eff, payload)
+		i.ChangedAt, i.ChangedUntil = eff.Add(-time.Minute), eff.Add(time.Minute)
+		i.Replaced = func(at time.Time, old []byte) (store.Span, bool) {
+			seen = append(seen, fmt.Sprintf("%s@%s", old, at.Sub(t0)))
+			return sp, ok
+		}
+		return i
+	}
+	clear := func() {
+		t.Helper()
+		must(t, s.Commit(ctx, store.Change{Subject: "Patient/r", Generation: mustDirty(t, s, "Patient/r").Generation}, t0))
+	}
+	put(t, s, t0, version("1", t0.Add(time.Hour), "first", store.Span{}, false))
+	clear()
+	// The first version changed nothing: the mark is the new version's own.
+	put(t, s, t0, version("22", t0.Add(2*time.Hour), "second", store.Span{}, false))
+	if d := mustDirty(t, s, "Patient/r"); !d.From.Equal(t0.Add(2*time.Hour - time.Minute)) {
+		t.Errorf("From = %v after replacing a version that changed nothing, want the new version's own %v", d.From, t0.Add(2*time.Hour-time.Minute))
+	}
+	clear()
+	// The second says it changed from 10 minutes to 3 hours.
+	put(t, s, t0, version("333", t0.Add(2*time.Hour), "third", store.Span{From: t0.Add(10 * time.Minute), Until: t0.Add(3 * time.Hour)}, true))
+	d := mustDirty(t, s, "Patient/r")
+	if !d.From.Equal(t0.Add(10 * time.Minute)) {
+		t.Errorf("From = %v, want the replaced version's answer %v", d.From, t0.Add(10*time.Minute))
+	}
+	if !d.Until.IsZero() && !d.Until.Equal(t0.Add(3*time.Hour)) {
+		t.Errorf("Until = %v, want the replaced version's answer %v (or no end)", d.Until, t0.Add(3*time.Hour))
+	}
+	clear()
+	// The third changed the whole patient.
+	put(t, s, t0, version("4444", t0.Add(2*time.Hour), "fourth", store.Span{}, true))
+	if d := mustDirty(t, s, "Patient/r"); !d.From.IsZero() || !d.Until.IsZero() {
+		t.Errorf("span %v – %v after replacing a version that changed the whole patient, want the whole patient", d.From, d.Until)
+	}
+	want := []string{"first@1h0m0s", "second@2h0m0s", "third@2h0m0s"}
+	if fmt.Sprint(seen) != fmt.Sprint(want) {
+		t.Errorf("Replaced was asked about %v, want %v (each replaced version once, with its effective time and payload)", seen, want)
+	}
+}
+
 func mustDirty(t *testing.T, s store.Store, subject string) store.Dirty {
 	t.Helper()
 	d, ok := dirtyOf(t, s, subject)

@@ -63,6 +63,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PruneHistory", testPruneHistory},
 		{"Dirty/SpanAndUrgency", testDirtySpan},
 		{"Dirty/End", testDirtyEnd},
+		{"Dirty/ReplacedSpan", testReplacedSpan},
 		{"Commit/EmptyClearsMark", testEmptyCommit},
 		{"InputsFrom/Range", testInputsFrom},
 		{"InputsFrom/Exactly", testInputsFromExactly},
