@@ -75,7 +75,7 @@ func TestFirstEvaluationDerivesEveryBloodGas(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	in.ChangedAt, in.Reach = it.Reading.At(), 0
+	in.ChangedAt, in.ChangedUntil = it.Reading.At(), time.Time{}
 	if _, err := st.PutInputs(ctx, []store.Input{in}, time.Now()); err != nil {
 		t.Fatal(err)
 	}

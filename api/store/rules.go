@@ -49,23 +49,17 @@ func SpanOf(in Input) Span {
 }
 
 // Replacing widens sp by the results of a version in replaces, effective
-// at effectiveAt with payload: what in.Replaced says of it, or without
-// that from in.Reach before its time to in.ReachLater after it.
+// at effectiveAt with payload: what in.Replaced says of it (the whole
+// patient without it).
 func (sp Span) Replacing(in Input, effectiveAt time.Time, payload []byte) Span {
+	old, ok := Span{}, true
 	if in.Replaced != nil {
-		old, ok := in.Replaced(effectiveAt, payload)
-		if !ok {
-			return sp
-		}
-		return Span{From: Earliest(sp.From, old.From), Until: Latest(sp.Until, old.Until), Urgent: sp.Urgent}
+		old, ok = in.Replaced(effectiveAt, payload)
 	}
-	sp.From = Earliest(sp.From, effectiveAt.Add(-in.Reach))
-	if in.ReachLater == 0 {
-		sp.Until = time.Time{}
-	} else {
-		sp.Until = Latest(sp.Until, effectiveAt.Add(in.ReachLater))
+	if !ok {
+		return sp
 	}
-	return sp
+	return Span{From: Earliest(sp.From, old.From), Until: Latest(sp.Until, old.Until), Urgent: sp.Urgent}
 }
 
 // Latest is the later time, where zero (no end) is the latest.

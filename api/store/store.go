@@ -50,19 +50,13 @@ type Input struct {
 	// kind reaches forward, derive.Config.ReachLater); zero means no
 	// bound. It is read only when ChangedAt is set.
 	ChangedUntil time.Time
-	// Reach is how far before the effective time of a version this one
-	// replaces results may change: the replaced version may be of another
-	// kind, so it is the widest reach of any kind.
-	Reach time.Duration
-	// ReachLater is how far after that time they may change, for the same
-	// reason the widest of any kind (zero: no bound).
-	ReachLater time.Duration
-	// Replaced, when set, says instead of Reach and ReachLater what
-	// results a version this one replaces changed, from that version's
-	// effective time and payload (the store does not look inside a
-	// payload; its writer can): ok false when it changed none (a version
-	// no result could use), a zero span when it changed the whole
-	// patient (a height, say, whose effective time is not its own).
+	// Replaced says what results a version this one replaces (under the
+	// same patient) changed, from that version's effective time and
+	// payload, since those change too: the store does not look inside a
+	// payload, its writer can. ok false: it changed none (a version no
+	// result could use); a zero span: the whole patient (a height, say,
+	// whose effective time is not its own). Nil: every replaced version
+	// changed the whole patient.
 	Replaced func(effectiveAt time.Time, payload []byte) (sp Span, ok bool)
 	// Urgent marks a blood gas: its patient is evaluated before patients
 	// with device readings only.
@@ -116,8 +110,8 @@ type Dirty struct {
 	// an input).
 	From time.Time
 	// Until is the latest blood gas sample time a change since the last
-	// evaluation can affect (Input.ChangedUntil, and the effective time
-	// plus ReachLater of the versions they replaced); zero means no bound.
+	// evaluation can affect (Input.ChangedUntil, and what the versions
+	// they replaced changed, Input.Replaced); zero means no bound.
 	// A store may always leave it zero: the evaluation then derives every
 	// blood gas from From on, as before marks had an end.
 	Until time.Time

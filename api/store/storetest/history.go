@@ -156,7 +156,7 @@ func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
 	ctx := t.Context()
 	in := func(subject, logical, version string, changed, eff time.Time) store.Input {
 		i := input(subject, logical, version, t0.Add(time.Duration(len(version))*time.Minute), eff, "x")
-		i.ChangedAt = changed
+		i.ChangedAt, i.Replaced = changed, reaching(0, 0)
 		return i
 	}
 	put(t, s, t0, in("Patient/a", "Observation/a1", "1", t0.Add(10*time.Minute), t0.Add(10*time.Minute)),
@@ -174,10 +174,10 @@ func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
 		t.Errorf("From = %v after a correction, want the replaced version's time %v", d.From, t0.Add(time.Hour))
 	}
 	// The replaced version may have reached further back than the new one
-	// (another kind): Reach says how far before its time results change.
+	// (another kind): Replaced says how far.
 	must(t, s.Commit(ctx, store.Change{Subject: "Patient/b", Generation: mustDirty(t, s, "Patient/b").Generation}, t0))
 	recoded := in("Patient/b", "Observation/b1", "333", t0.Add(170*time.Minute), t0.Add(3*time.Hour))
-	recoded.Reach = time.Hour
+	recoded.Replaced = reaching(time.Hour, 0)
 	put(t, s, t0, recoded)
 	if d := mustDirty(t, s, "Patient/b"); !d.From.Equal(t0.Add(time.Hour)) {
 		t.Errorf("From = %v after a correction with a reach of an hour, want an hour before the replaced version's time, %v", d.From, t0.Add(time.Hour))
@@ -203,9 +203,9 @@ func testDirtySpan(t *testing.T, open func(t *testing.T) store.Store) {
 }
 
 // A dirty mark may also say until when results can change (Until): the
-// latest ChangedUntil of its changes, widened to the effective time plus
-// ReachLater of each version replaced; no end (zero) when a change has no
-// start, or a replaced version's ReachLater is zero. A store may keep no
+// latest ChangedUntil of its changes, widened by what each version
+// replaced changed (Input.Replaced); no end (zero) when a change has no
+// start, or a replaced version changed the whole patient. A store may keep no
 // ends at all (every Until zero, which covers everything); one that keeps
 // them keeps them exactly, since a wider end only costs work.
 func testDirtyEnd(t *testing.T, open func(t *testing.T) store.Store) {
@@ -213,7 +213,7 @@ func testDirtyEnd(t *testing.T, open func(t *testing.T) store.Store) {
 	ctx := t.Context()
 	reading := func(subject, logical, version string, at, until time.Time) store.Input {
 		i := input(subject, logical, version, t0.Add(time.Duration(len(version))*time.Minute), at, "x")
-		i.ChangedAt, i.ChangedUntil = at.Add(-5*time.Minute), until
+		i.ChangedAt, i.ChangedUntil, i.Replaced = at.Add(-5*time.Minute), until, reaching(0, 0)
 		return i
 	}
 	put(t, s, t0, reading("Patient/u", "Observation/u1", "1", t0.Add(10*time.Minute), t0.Add(30*time.Minute)),
@@ -234,21 +234,23 @@ func testDirtyEnd(t *testing.T, open func(t *testing.T) store.Store) {
 	put(t, s, t0, reading("Patient/u", "Observation/u3", "1", t0.Add(40*time.Minute), t0.Add(55*time.Minute)))
 	wantEnd("a later reading", "Patient/u", t0.Add(55*time.Minute))
 	// A correction that moves a reading earlier still changes results until
-	// the replaced version's time plus ReachLater.
+	// as late as the replaced version did.
 	clear := func(subject string) {
 		t.Helper()
 		must(t, s.Commit(ctx, store.Change{Subject: subject, Generation: mustDirty(t, s, subject).Generation}, t0))
 	}
 	clear("Patient/u")
 	moved := reading("Patient/u", "Observation/u3", "22", t0.Add(15*time.Minute), t0.Add(25*time.Minute))
-	moved.ReachLater = time.Hour
+	moved.Replaced = reaching(0, time.Hour)
 	put(t, s, t0, moved)
 	wantEnd("a reading moved earlier", "Patient/u", t0.Add(40*time.Minute+time.Hour))
-	// A replaced version of unknown reach (ReachLater zero) has no end.
+	// A replaced version that changed the whole patient leaves no end.
 	clear("Patient/u")
-	put(t, s, t0, reading("Patient/u", "Observation/u3", "333", t0.Add(15*time.Minute), t0.Add(25*time.Minute)))
-	if d := mustDirty(t, s, "Patient/u"); !d.Until.IsZero() {
-		t.Errorf("Until = %v after replacing a version with no ReachLater, want no end", d.Until)
+	whole := reading("Patient/u", "Observation/u3", "333", t0.Add(15*time.Minute), t0.Add(25*time.Minute))
+	whole.Replaced = nil
+	put(t, s, t0, whole)
+	if d := mustDirty(t, s, "Patient/u"); !d.Until.IsZero() || !d.From.IsZero() {
+		t.Errorf("span %v – %v after replacing a version that changed the whole patient, want the whole patient", d.From, d.Until)
 	}
 	// After a clear, a new mark has its own end, not the cleared one's.
 	clear("Patient/u")
@@ -314,6 +316,15 @@ func testReplacedSpan(t *testing.T, open func(t *testing.T) store.Store) {
 	want := []string{"first@1h0m0s", "second@2h0m0s", "third@2h0m0s"}
 	if fmt.Sprint(seen) != fmt.Sprint(want) {
 		t.Errorf("Replaced was asked about %v, want %v (each replaced version once, with its effective time and payload)", seen, want)
+	}
+}
+
+// reaching is an Input.Replaced saying that the replaced version changed
+// the results of blood gases sampled from before ahead of its effective
+// time until after it.
+func reaching(before, after time.Duration) func(time.Time, []byte) (store.Span, bool) {
+	return func(eff time.Time, _ []byte) (store.Span, bool) {
+		return store.Span{From: eff.Add(-before), Until: eff.Add(after)}, true
 	}
 }
 
