@@ -463,8 +463,7 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	// A reading changes the results of blood gases sampled from its own
 	// time less its kind's reach until its time plus its kind's reach the
 	// other way (a height, which serves a year, and a withdrawal change
-	// them at any time: zero). The version it replaces may have been of
-	// any kind.
+	// them at any time: zero).
 	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
 		kinds := []derive.Kind{it.Reading.Kind}
 		for _, a := range it.Also {

@@ -26,28 +26,27 @@ func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) i
 const appendFill = 0.9
 
 // markDirty gives the patient a new generation and keeps the earliest
-// Since and From of the marks not yet cleared.
+// Since of the marks not yet cleared and the span covering them all.
 func markDirty(tx *bolt.Tx, subject string, now time.Time, span store.Span) error {
 	b := tx.Bucket(bDirty)
 	gen, err := b.NextSequence()
 	if err != nil {
 		return fmt.Errorf("dirty generation: %w", err)
 	}
-	dt := store.Dirty{Subject: subject, Since: now, Generation: gen, From: span.From, Until: span.Until, Urgent: span.Urgent}
+	since := now
 	if v := b.Get([]byte(subject)); v != nil {
 		old, err := decodeDirty(subject, v)
 		if err != nil {
 			return err
 		}
 		if old.Since.Before(now) {
-			dt.Since = old.Since
+			since = old.Since
 		}
-		dt.From = store.Earliest(old.From, dt.From)
-		dt.Until = store.Latest(old.Until, dt.Until)
-		dt.Urgent = dt.Urgent || old.Urgent
+		span = span.Merge(store.Span{From: old.From, Until: old.Until, Urgent: old.Urgent})
 	} else if err := addCounter(tx, kDirtyN, 1); err != nil {
 		return err
 	}
+	dt := store.Dirty{Subject: subject, Since: since, Generation: gen, From: span.From, Until: span.Until, Urgent: span.Urgent}
 	return b.Put([]byte(subject), encodeDirty(dt))
 }
 
