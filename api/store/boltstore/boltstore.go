@@ -185,7 +185,8 @@ func Open(path string, opts Options) (*Store, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Store{db: db, group: &groupCommit{db: db}}
+	s := &Store{db: db}
+	s.group = &groupCommit{db: db, begin: s.clears.begin}
 	if err := s.init(); err != nil {
 		_ = db.Close()
 		return nil, fmt.Errorf("boltstore.Open: %s: %w", path, err)
@@ -385,10 +386,10 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	var settled map[string]uint64
+	var committed func()
 	err := s.db.Update(func(tx *bolt.Tx) error {
 		var err error
-		if settled, err = s.clears.apply(tx); err != nil {
+		if committed, err = s.clears.begin(tx); err != nil {
 			return err
 		}
 		return fn(tx)
@@ -396,7 +397,7 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 	if err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	s.clears.forget(settled)
+	committed()
 	return nil
 }
 
@@ -404,23 +405,15 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 // ones into a single commit (see groupCommit): one fsync then covers many
 // webhook requests, which is what lets ingest keep up with a busy feed.
 // fn may run more than once, so it must leave nothing behind outside the
-// transaction but what it recomputes on every run.
+// transaction but what it recomputes on every run. The held clears are
+// written once per merged transaction (groupCommit.begin).
 func (s *Store) batch(ctx context.Context, op string, fn func(tx *bolt.Tx) error) error {
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	var settled map[string]uint64
-	err := s.group.do(func(tx *bolt.Tx) error {
-		var err error
-		if settled, err = s.clears.apply(tx); err != nil {
-			return err
-		}
-		return fn(tx)
-	})
-	if err != nil {
+	if err := s.group.do(fn); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	s.clears.forget(settled)
 	return nil
 }
 

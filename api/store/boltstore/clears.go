@@ -96,6 +96,16 @@ func (p *pendingClears) apply(tx *bolt.Tx) (map[string]uint64, error) {
 	return held, nil
 }
 
+// begin writes the held clears at the start of a read-write transaction
+// and returns what forgets them once it is committed.
+func (p *pendingClears) begin(tx *bolt.Tx) (func(), error) {
+	settled, err := p.apply(tx)
+	if err != nil {
+		return nil, err
+	}
+	return func() { p.forget(settled) }, nil
+}
+
 // emptyChange reports whether a commit only clears the dirty mark.
 func emptyChange(c store.Change) bool {
 	return len(c.Entries) == 0 && len(c.Results) == 0 && len(c.Writes) == 0 && len(c.Expect) == 0

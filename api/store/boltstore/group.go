@@ -16,6 +16,12 @@ import (
 // returns only after its own changes are durable.
 type groupCommit struct {
 	db *bolt.DB
+	// begin, when set, runs first in every transaction the group commits,
+	// once for all its calls; the function it returns runs once that
+	// transaction is committed. The store writes its held clears there
+	// (pendingClears), which a call-by-call start would read again, once
+	// per call.
+	begin func(*bolt.Tx) (committed func(), err error)
 
 	mu      sync.Mutex
 	queue   []*groupCall
@@ -67,7 +73,7 @@ func (g *groupCommit) loop() {
 func (g *groupCommit) commit(calls []*groupCall) {
 	for len(calls) > 0 {
 		failed := -1
-		err := g.db.Update(func(tx *bolt.Tx) error {
+		err := g.update(func(tx *bolt.Tx) error {
 			for i, c := range calls {
 				if err := safeCall(c.fn, tx); err != nil {
 					failed = i
@@ -86,8 +92,27 @@ func (g *groupCommit) commit(calls []*groupCall) {
 		}
 		bad := calls[failed]
 		calls = append(calls[:failed:failed], calls[failed+1:]...)
-		bad.done <- g.db.Update(func(tx *bolt.Tx) error { return safeCall(bad.fn, tx) })
+		bad.done <- g.update(func(tx *bolt.Tx) error { return safeCall(bad.fn, tx) })
 	}
+}
+
+// update runs fn in a read-write transaction that begin starts.
+func (g *groupCommit) update(fn func(*bolt.Tx) error) error {
+	var committed func()
+	err := g.db.Update(func(tx *bolt.Tx) error {
+		committed = nil
+		if g.begin != nil {
+			var err error
+			if committed, err = g.begin(tx); err != nil {
+				return err
+			}
+		}
+		return fn(tx)
+	})
+	if err == nil && committed != nil {
+		committed()
+	}
+	return err
 }
 
 // safeCall turns a panic in fn into an error for its caller: fn runs on

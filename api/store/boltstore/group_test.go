@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"path/filepath"
+	"slices"
 	"sync"
 	"testing"
 
@@ -75,6 +76,66 @@ func TestGroupCommitKeepsEachCallsOutcome(t *testing.T) {
 	}
 	// The committer stops when idle and starts again on the next call.
 	if err := g.do(func(tx *bolt.Tx) error { return tx.Bucket([]byte("b")).Put([]byte("last"), nil) }); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// TestGroupCommitBeginsEachTransactionOnce runs a group of three calls,
+// the second of which fails, and checks that begin runs once in each
+// transaction the group takes (the group, rolled back; the failed call
+// alone, rolled back; the other two, committed), not once per call, and
+// that what it returns runs only after the one that was committed.
+func TestGroupCommitBeginsEachTransactionOnce(t *testing.T) {
+	db, err := bolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	if err := db.Update(func(tx *bolt.Tx) error { _, err := tx.CreateBucket([]byte("b")); return err }); err != nil {
+		t.Fatal(err)
+	}
+	var begun, committed []int // the transactions begin started; those committed
+	g := &groupCommit{db: db, begin: func(tx *bolt.Tx) (func(), error) {
+		n := len(begun) + 1
+		begun = append(begun, n)
+		if err := tx.Bucket([]byte("b")).Put([]byte("begun"), fmt.Append(nil, n)); err != nil {
+			return nil, err
+		}
+		return func() { committed = append(committed, n) }, nil
+	}}
+	errFail := errors.New("refused")
+	put := func(key string, fail bool) *groupCall {
+		return &groupCall{done: make(chan error, 1), fn: func(tx *bolt.Tx) error {
+			if err := tx.Bucket([]byte("b")).Put([]byte(key), []byte("v")); err != nil {
+				return err
+			}
+			if fail {
+				return errFail
+			}
+			return nil
+		}}
+	}
+	calls := []*groupCall{put("a", false), put("bad", true), put("c", false)}
+	g.commit(slices.Clone(calls))
+	for i, want := range []error{nil, errFail, nil} {
+		if err := <-calls[i].done; !errors.Is(err, want) {
+			t.Errorf("call %d: %v, want %v", i, err, want)
+		}
+	}
+	if !slices.Equal(begun, []int{1, 2, 3}) || !slices.Equal(committed, []int{3}) {
+		t.Errorf("begin ran in transactions %v, %v committed; want 1, 2 and 3 begun, 3 committed", begun, committed)
+	}
+	err = db.View(func(tx *bolt.Tx) error {
+		b := tx.Bucket([]byte("b"))
+		if got := string(b.Get([]byte("begun"))); got != "3" {
+			t.Errorf("begin's write in the store is from transaction %q, want 3", got)
+		}
+		if b.Get([]byte("a")) == nil || b.Get([]byte("c")) == nil || b.Get([]byte("bad")) != nil {
+			t.Errorf("a %q, bad %q, c %q: want a and c stored, not bad", b.Get([]byte("a")), b.Get([]byte("bad")), b.Get([]byte("c")))
+		}
+		return nil
+	})
+	if err != nil {
 		t.Fatal(err)
 	}
 }
