@@ -16,14 +16,7 @@ import (
 // call gets its own answer: a failing call changes nothing, and the calls
 // grouped with it are committed all the same.
 func TestGroupCommitKeepsEachCallsOutcome(t *testing.T) {
-	db, err := bolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer db.Close()
-	if err := db.Update(func(tx *bolt.Tx) error { _, err := tx.CreateBucket([]byte("b")); return err }); err != nil {
-		t.Fatal(err)
-	}
+	db := openBucketDB(t)
 	g := &groupCommit{db: db}
 	errFail := errors.New("refused")
 	const calls = 200
@@ -50,7 +43,7 @@ func TestGroupCommitKeepsEachCallsOutcome(t *testing.T) {
 		}()
 	}
 	wg.Wait()
-	err = db.View(func(tx *bolt.Tx) error {
+	err := db.View(func(tx *bolt.Tx) error {
 		b := tx.Bucket([]byte("b"))
 		for i := range calls {
 			stored := b.Get(fmt.Appendf(nil, "k%03d", i)) != nil
@@ -86,14 +79,7 @@ func TestGroupCommitKeepsEachCallsOutcome(t *testing.T) {
 // alone, rolled back; the other two, committed), not once per call, and
 // that what it returns runs only after the one that was committed.
 func TestGroupCommitBeginsEachTransactionOnce(t *testing.T) {
-	db, err := bolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer db.Close()
-	if err := db.Update(func(tx *bolt.Tx) error { _, err := tx.CreateBucket([]byte("b")); return err }); err != nil {
-		t.Fatal(err)
-	}
+	db := openBucketDB(t)
 	var begun, committed []int // the transactions begin started; those committed
 	g := &groupCommit{db: db, begin: func(tx *bolt.Tx) (func(), error) {
 		n := len(begun) + 1
@@ -125,7 +111,7 @@ func TestGroupCommitBeginsEachTransactionOnce(t *testing.T) {
 	if !slices.Equal(begun, []int{1, 2, 3}) || !slices.Equal(committed, []int{3}) {
 		t.Errorf("begin ran in transactions %v, %v committed; want 1, 2 and 3 begun, 3 committed", begun, committed)
 	}
-	err = db.View(func(tx *bolt.Tx) error {
+	err := db.View(func(tx *bolt.Tx) error {
 		b := tx.Bucket([]byte("b"))
 		if got := string(b.Get([]byte("begun"))); got != "3" {
 			t.Errorf("begin's write in the store is from transaction %q, want 3", got)
@@ -138,4 +124,18 @@ func TestGroupCommitBeginsEachTransactionOnce(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+}
+
+// openBucketDB opens a bbolt file of the test's with one bucket, b.
+func openBucketDB(t *testing.T) *bolt.DB {
+	t.Helper()
+	db, err := bolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { db.Close() })
+	if err := db.Update(func(tx *bolt.Tx) error { _, err := tx.CreateBucket([]byte("b")); return err }); err != nil {
+		t.Fatal(err)
+	}
+	return db
 }
