@@ -101,7 +101,7 @@ func evaluationWithNoBloodGasInReach(t *testing.T, over factCounter) {
 		}
 		d := dirty[0]
 		gases := e.gasRange(d)
-		in, derives, err := e.loadEvaluationInputs(ctx, d.Subject, gases, e.fallState(d, gases.GasesFrom))
+		in, derives, _, err := e.loadEvaluationInputs(ctx, d.Subject, gases, e.fallState(d, gases.GasesFrom), nil)
 		if err != nil {
 			t.Fatal(err)
 		}

@@ -2,6 +2,7 @@ package engine
 
 import (
 	"bytes"
+	"cmp"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -334,7 +335,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	// source is preferred from one pairing window before); then only the
 	// inputs those gases and the detector need are read.
 	resume := e.fallState(d, gasesFrom)
-	inputs, derivesGas, err := e.loadEvaluationInputs(ctx, d.Subject, gases, resume)
+	inputs, derivesGas, readFrom, err := e.loadEvaluationInputs(ctx, d.Subject, gases, resume, e.keptDetectorInputs(d))
 	if err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
@@ -386,9 +387,11 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 		// Cleared is then its generation) or left it, overtaken by a newer
 		// change (then Cleared stays as it was): either way no other
 		// evaluation came in between.
+		states := e.keptFallStates(previous, resume, saved, latest, haveLatest)
 		e.fallStates.Store(d.Subject, keptFall{
-			states:  e.keptFallStates(previous, resume, saved, latest, haveLatest),
-			cleared: [2]uint64{d.Cleared, d.Generation},
+			states:   states,
+			cleared:  [2]uint64{d.Cleared, d.Generation},
+			detector: e.detectorInputsToKeep(inputs, readFrom, states),
 		})
 	}
 	// Only a complete evaluation knows everything the patient's data
@@ -491,7 +494,85 @@ type keptFall struct {
 	// cleared are the mark the evaluation cleared before it (as its own
 	// mark said) and its own mark's generation.
 	cleared [2]uint64
+	// detector is the detector's readings that evaluation read, kept for
+	// the next one (nil: none kept).
+	detector *detectorInputs
 }
+
+// detectorInputs are a patient's stored readings of the detector's kind
+// (pipeline.DetectorKind) effective from from on, as an evaluation read
+// them, in the order a read of the store gives them. Every change stored
+// since then lies at or after the From of the patient's next mark: a
+// changed input's mark starts at its effective time less its kind's
+// reach (or earlier, or at zero), and a mark left uncleared by a change
+// that came during the evaluation keeps the earliest From of the two. So
+// the next evaluation that resumes the detector reads from the store only
+// from its mark's From on, and takes the readings before it from here:
+// a new reading at the end of the series reads minutes of rows, not the
+// span back to the state the detector resumes from.
+type detectorInputs struct {
+	from   time.Time
+	inputs []pipeline.Input
+}
+
+// before returns a new slice of the kept readings effective in [from,
+// until), with room for more after them.
+func (k *detectorInputs) before(from, until time.Time, more int) []pipeline.Input {
+	lo, _ := slices.BinarySearchFunc(k.inputs, from.UnixMilli(), byMillis)
+	hi, _ := slices.BinarySearchFunc(k.inputs, until.UnixMilli(), byMillis)
+	out := make([]pipeline.Input, hi-lo, hi-lo+more)
+	copy(out, k.inputs[lo:hi])
+	return out
+}
+
+func wholeMillisecond(t time.Time) bool { return t.Equal(t.Truncate(time.Millisecond)) }
+
+// keptDetectorInputs returns the detector's readings the patient's last
+// evaluation kept, while they still hold (as its states do, fallState).
+func (e *Engine) keptDetectorInputs(d store.Dirty) *detectorInputs {
+	v, ok := e.fallStates.Load(d.Subject)
+	if !ok {
+		return nil
+	}
+	kept := v.(keptFall)
+	if !e.stillHolds(d, kept.cleared) {
+		return nil
+	}
+	return kept.detector
+}
+
+// detectorInputsToKeep keeps, of the inputs an evaluation read from
+// readFrom on (every one when it is zero), the detector's readings the
+// next evaluation can use: from a pairing window before the latest state
+// kept on, where the usual next evaluation, a new reading at the end,
+// resumes. A later change that resumes from an earlier state reads the
+// store as before.
+func (e *Engine) detectorInputsToKeep(inputs []pipeline.Input, readFrom time.Time, states []*pipeline.FallState) *detectorInputs {
+	if len(states) == 0 {
+		return nil
+	}
+	from := store.Latest(readFrom, states[len(states)-1].At.Add(-e.cfg.Derive.Window))
+	if !wholeMillisecond(from) {
+		return nil
+	}
+	k := &detectorInputs{from: from}
+	if !slices.ContainsFunc(inputs, func(in pipeline.Input) bool { return in.Reading.Kind != pipeline.DetectorKind }) {
+		// The detector's readings alone, in time order: kept as read
+		// (nothing writes to them after the evaluation).
+		lo, _ := slices.BinarySearchFunc(inputs, from.UnixMilli(), byMillis)
+		k.inputs = inputs[lo:len(inputs):len(inputs)]
+		return k
+	}
+	for _, in := range inputs {
+		if in.Reading.Kind == pipeline.DetectorKind && in.Reading.AtMillis >= from.UnixMilli() {
+			k.inputs = append(k.inputs, in)
+		}
+	}
+	return k
+}
+
+// byMillis compares an input's time with a time in milliseconds.
+func byMillis(in pipeline.Input, t int64) int { return cmp.Compare(in.Reading.AtMillis, t) }
 
 // keepsFallState reports whether the engine may keep the fall detector's
 // state between evaluations: over a store no other process writes, or
@@ -724,26 +805,44 @@ func (e *Engine) keptFallStates(previous any, resume *pipeline.FallState, saved 
 // loadEvaluationInputs reads what an evaluation of the blood gases
 // sampled from gasesFrom on, with the detector resumed from resume, needs,
 // and says whether a blood gas is among what it derives (then it needs the
-// patient's facts): every input when the detector runs whole; otherwise
-// the inputs from gasesFrom (or the pairing window before the resumed
-// state) on, and, when a blood gas is among them, from the start of the
-// earliest one's dependency span (an hour for its temperature). A new
+// patient's facts) and from when the inputs it returns are all the stored
+// ones (zero: every one): every input when the detector runs whole;
+// otherwise the inputs from gasesFrom (or the pairing window before the
+// resumed state) on, and, when a blood gas is among them, from the start of
+// the earliest one's dependency span (an hour for its temperature). A new
 // device reading far from any blood gas thus reads minutes of data, not
 // hours, and of those only the end-tidal readings the detector reads
-// (pipeline.DetectorKind).
-func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases pipeline.Incremental, resume *pipeline.FallState) ([]pipeline.Input, bool, error) {
+// (pipeline.DetectorKind). With the detector's readings the patient's
+// last evaluation kept (kept, nil for none), those before gasesFrom come
+// from there and the store is read from gasesFrom on only.
+func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases pipeline.Incremental, resume *pipeline.FallState, kept *detectorInputs) ([]pipeline.Input, bool, time.Time, error) {
 	if resume == nil {
 		inputs, err := e.loadInputs(ctx, subject)
-		return inputs, true, err
+		return inputs, true, time.Time{}, err
 	}
 	readFrom := store.Earliest(gases.GasesFrom, resume.At.Add(-e.cfg.Derive.Window))
-	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, readFrom, gases)
-	if err != nil || earliestGas == math.MaxInt64 {
-		return inputs, false, err
+	scanFrom := readFrom
+	if kept != nil && !kept.from.After(readFrom) && gases.GasesFrom.After(readFrom) && wholeMillisecond(gases.GasesFrom) && wholeMillisecond(readFrom) {
+		// No blood gas before gasesFrom is derived, so the scan from there
+		// finds the same earliest one as a scan from readFrom. Readings
+		// are timed to the millisecond, and so is the boundary, so each
+		// is on one side of it only.
+		scanFrom = gases.GasesFrom
+	}
+	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, scanFrom, gases)
+	if err != nil {
+		return nil, false, time.Time{}, err
+	}
+	if earliestGas == math.MaxInt64 {
+		if scanFrom != readFrom {
+			inputs = append(kept.before(readFrom, scanFrom, len(inputs)), inputs...)
+		}
+		return inputs, false, readFrom, nil
 	}
 	spanFrom, _ := e.cfg.Derive.DependencySpan(time.UnixMilli(earliestGas).UTC())
-	inputs, err = e.loadInputsFrom(ctx, subject, store.Earliest(readFrom, spanFrom))
-	return inputs, true, err
+	from := store.Earliest(readFrom, spanFrom)
+	inputs, err = e.loadInputsFrom(ctx, subject, from)
+	return inputs, true, from, err
 }
 
 // loadDetectorInputs reads the patient's stored inputs effective from
