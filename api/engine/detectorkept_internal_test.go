@@ -71,14 +71,7 @@ func TestKeptDetectorReadingsAreWhatTheStoreHolds(t *testing.T) {
 	// store showed each read.
 	step := func(t *testing.T, raws ...json.RawMessage) (withKept, alone int64) {
 		t.Helper()
-		if _, err := e.Ingest(ctx, "test", raws); err != nil {
-			t.Fatal(err)
-		}
-		dirty, err := st.DirtyPatients(ctx)
-		if err != nil || len(dirty) != 1 {
-			t.Fatalf("dirty patients %v, %v", dirty, err)
-		}
-		d := dirty[0]
+		d := ingestOneMark(t, e, st, raws...)
 		gases := e.gasRange(d)
 		resume := e.fallState(d, gases.GasesFrom)
 		kept := e.keptDetectorInputs(d)
@@ -136,4 +129,17 @@ func TestKeptDetectorReadingsAreWhatTheStoreHolds(t *testing.T) {
 			}
 		})
 	}
+}
+
+// ingestOneMark ingests raws and returns the one dirty mark they leave.
+func ingestOneMark(t *testing.T, e *Engine, st store.Store, raws ...json.RawMessage) store.Dirty {
+	t.Helper()
+	if _, err := e.Ingest(t.Context(), "test", raws); err != nil {
+		t.Fatal(err)
+	}
+	dirty, err := st.DirtyPatients(t.Context())
+	if err != nil || len(dirty) != 1 {
+		t.Fatalf("dirty patients %v, %v", dirty, err)
+	}
+	return dirty[0]
 }

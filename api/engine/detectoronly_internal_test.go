@@ -92,14 +92,7 @@ func evaluationWithNoBloodGasInReach(t *testing.T, over factCounter) {
 	// and returns what its input read gave.
 	evaluate := func(raws ...json.RawMessage) (inputs []kindCount, derivesGas bool, factsRead int64) {
 		t.Helper()
-		if _, err := e.Ingest(ctx, "test", raws); err != nil {
-			t.Fatal(err)
-		}
-		dirty, err := over.DirtyPatients(ctx)
-		if err != nil || len(dirty) != 1 {
-			t.Fatalf("dirty patients %v, %v", dirty, err)
-		}
-		d := dirty[0]
+		d := ingestOneMark(t, e, over, raws...)
 		gases := e.gasRange(d)
 		in, derives, _, err := e.loadEvaluationInputs(ctx, d.Subject, gases, e.fallState(d, gases.GasesFrom), nil)
 		if err != nil {

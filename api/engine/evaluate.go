@@ -530,15 +530,22 @@ func wholeMillisecond(t time.Time) bool { return t.Equal(t.Truncate(time.Millise
 // keptDetectorInputs returns the detector's readings the patient's last
 // evaluation kept, while they still hold (as its states do, fallState).
 func (e *Engine) keptDetectorInputs(d store.Dirty) *detectorInputs {
-	v, ok := e.fallStates.Load(d.Subject)
+	kept, ok := e.keptFallFor(d)
 	if !ok {
 		return nil
 	}
-	kept := v.(keptFall)
-	if !e.stillHolds(d, kept.cleared) {
-		return nil
-	}
 	return kept.detector
+}
+
+// keptFallFor returns what the patient's last evaluation kept of the
+// detector, while it still holds for mark d (stillHolds).
+func (e *Engine) keptFallFor(d store.Dirty) (keptFall, bool) {
+	v, ok := e.fallStates.Load(d.Subject)
+	if !ok {
+		return keptFall{}, false
+	}
+	kept := v.(keptFall)
+	return kept, e.stillHolds(d, kept.cleared)
 }
 
 // detectorInputsToKeep keeps, of the inputs an evaluation read from
@@ -602,12 +609,8 @@ func (e *Engine) fallState(d store.Dirty, gasesFrom time.Time) *pipeline.FallSta
 	if gasesFrom.IsZero() || !e.keepsFallState() {
 		return nil
 	}
-	v, ok := e.fallStates.Load(d.Subject)
+	kept, ok := e.keptFallFor(d)
 	if !ok {
-		return nil
-	}
-	kept := v.(keptFall)
-	if !e.stillHolds(d, kept.cleared) {
 		return nil
 	}
 	states := kept.states
