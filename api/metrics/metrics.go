@@ -28,6 +28,9 @@
 //	| deadspace_dead_lettered_total              | counter   |                    | Writes moved to the dead letters since the process started.                               |
 //	| deadspace_pending_patients                 | gauge     |                    | Patients with new data waiting to be evaluated (read at scrape).                          |
 //	| deadspace_stats_errors_total               | counter   |                    | Scrapes where reading the store's stats failed; the four store gauges are then absent.    |
+//	| deadspace_store_transactions_total         | counter   |                    | Embedded store only: read-write transactions, one at a time (bbolt has one writer).        |
+//	| deadspace_store_write_calls_total          | counter   |                    | Embedded store only: write calls those transactions ran (concurrent ones share one).       |
+//	| deadspace_store_busy_seconds_total         | counter   |                    | Embedded store only: time its writer spent in transactions, syncs included. Its rate is the share of time the writer is busy: near 1, the webhook is at the most it can accept. |
 //	| deadspace_subscription_gaps_total          | counter   |                    | Gaps in subscription event numbers, i.e. notifications that never arrived.                |
 //	| deadspace_catchups_total                   | counter   | trigger            | Catch-up searches started: start, poll, heartbeat-missed, gap, retry, rest-hook.          |
 //	| deadspace_watch_subscribers                | gauge     |                    | Clients currently watching the derivation feed.                                           |
@@ -95,7 +98,9 @@ type Metrics struct {
 	picture *picture
 
 	stats atomic.Pointer[StatsFunc]
-	now   func() time.Time
+	// commits reads the embedded store's committer (SetCommits).
+	commits atomic.Pointer[func() store.CommitStats]
+	now     func() time.Time
 
 	modes, resourceTypes, reasons, codes, statuses, triggers, outcomes, operations, webhookStatuses set
 }
@@ -172,7 +177,7 @@ func New(version string) *Metrics {
 		buildInfo,
 		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
 		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
-		statsCollector{m}, m.picture,
+		statsCollector{m}, commitCollector{m}, m.picture,
 	)
 	m.predeclare()
 	return m
@@ -276,6 +281,20 @@ func (m *Metrics) SetStats(f func(ctx context.Context) (store.Stats, error)) {
 	m.stats.Store(&sf)
 }
 
+// SetCommits installs the reading of the store's committer
+// (store.Committer), read at each scrape; a store without one (PostgreSQL,
+// whose server merges commits itself) leaves it unset, and its series out.
+func (m *Metrics) SetCommits(f func() store.CommitStats) {
+	if m == nil {
+		return
+	}
+	if f == nil {
+		m.commits.Store(nil)
+		return
+	}
+	m.commits.Store(&f)
+}
+
 // IncWatchSubscribers counts a client that started watching the feed.
 func (m *Metrics) IncWatchSubscribers() {
 	if m != nil {
@@ -338,6 +357,35 @@ func (w *statusWriter) Write(b []byte) (int, error) {
 }
 
 func (w *statusWriter) Unwrap() http.ResponseWriter { return w.ResponseWriter }
+
+// commitCollector reports the embedded store's committer's counters.
+type commitCollector struct{ m *Metrics }
+
+var (
+	descStoreTransactions = prometheus.NewDesc(namespace+"_store_transactions_total",
+		"Read-write transactions of the embedded store, committed or rolled back, one at a time.", nil, nil)
+	descStoreWriteCalls = prometheus.NewDesc(namespace+"_store_write_calls_total",
+		"Write calls the embedded store's transactions ran (concurrent calls share a transaction).", nil, nil)
+	descStoreBusy = prometheus.NewDesc(namespace+"_store_busy_seconds_total",
+		"Time the embedded store's single writer spent in transactions, syncs included; its rate is the share of time it is busy.", nil, nil)
+)
+
+func (c commitCollector) Describe(ch chan<- *prometheus.Desc) {
+	ch <- descStoreTransactions
+	ch <- descStoreWriteCalls
+	ch <- descStoreBusy
+}
+
+func (c commitCollector) Collect(ch chan<- prometheus.Metric) {
+	f := c.m.commits.Load()
+	if f == nil {
+		return
+	}
+	st := (*f)()
+	ch <- prometheus.MustNewConstMetric(descStoreTransactions, prometheus.CounterValue, float64(st.Transactions))
+	ch <- prometheus.MustNewConstMetric(descStoreWriteCalls, prometheus.CounterValue, float64(st.Calls))
+	ch <- prometheus.MustNewConstMetric(descStoreBusy, prometheus.CounterValue, st.Busy.Seconds())
+}
 
 // statsCollector reads the store once per scrape and reports the outbox
 // gauges from that one reading, so they agree with each other.

@@ -374,6 +374,40 @@ deadspace_stats_errors_total 1
 	})
 }
 
+// TestStoreCommitCounters: the embedded store's committer's counters are
+// read at each scrape, and absent for a store without one.
+func TestStoreCommitCounters(t *testing.T) {
+	names := []string{"deadspace_store_transactions_total", "deadspace_store_write_calls_total", "deadspace_store_busy_seconds_total"}
+	m := New("test")
+	if n, err := testutil.GatherAndCount(m.Registry(), names...); err != nil || n != 0 {
+		t.Errorf("with no committer: %d series, %v; want none", n, err)
+	}
+	st := store.CommitStats{Transactions: 3, Calls: 11, Busy: 1500 * time.Millisecond}
+	m.SetCommits(func() store.CommitStats { return st })
+	want := `
+# HELP deadspace_store_busy_seconds_total Time the embedded store's single writer spent in transactions, syncs included; its rate is the share of time it is busy.
+# TYPE deadspace_store_busy_seconds_total counter
+deadspace_store_busy_seconds_total 1.5
+# HELP deadspace_store_transactions_total Read-write transactions of the embedded store, committed or rolled back, one at a time.
+# TYPE deadspace_store_transactions_total counter
+deadspace_store_transactions_total 3
+# HELP deadspace_store_write_calls_total Write calls the embedded store's transactions ran (concurrent calls share a transaction).
+# TYPE deadspace_store_write_calls_total counter
+deadspace_store_write_calls_total 11
+`
+	if err := testutil.GatherAndCompare(m.Registry(), strings.NewReader(want), names...); err != nil {
+		t.Error(err)
+	}
+	st.Transactions = 4 // read again at the next scrape
+	if err := testutil.GatherAndCompare(m.Registry(), strings.NewReader(strings.Replace(want, "transactions_total 3", "transactions_total 4", 1)), names...); err != nil {
+		t.Error(err)
+	}
+	m.SetCommits(nil)
+	if n, err := testutil.GatherAndCount(m.Registry(), names...); err != nil || n != 0 {
+		t.Errorf("committer removed: %d series, %v; want none", n, err)
+	}
+}
+
 func TestInstrumentWebhook(t *testing.T) {
 	tests := []struct {
 		name    string

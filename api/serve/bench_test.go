@@ -207,6 +207,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 			built[k].request = notifyRequest(svc.Addr(), notification("Subscription/bench", k, []json.RawMessage{res}))
 		}
 		b.ResetTimer()
+		writerBefore := storeWriter(b, svc)
 		cpuBefore := processCPU()
 		writtenBefore := processWriteBytes()
 		// -cpuprofile would mostly show the loading of the history; this
@@ -268,6 +269,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		wg.Wait()
 		elapsed := time.Since(start)
 		cpuUsed := processCPU() - cpuBefore
+		writerAfter := storeWriter(b, svc)
 		written := processWriteBytes() - writtenBefore
 		if profiling {
 			pprof.StopCPUProfile()
@@ -310,6 +312,11 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		if written >= 0 {
 			b.ReportMetric(float64(written)/float64(notes), "disk-write-B/notification")
 		}
+		// The embedded store's writer, which every answer waits for: the
+		// share of the load's time it was busy, and the notifications a
+		// transaction carried (the metrics operators read).
+		b.ReportMetric((writerAfter.busy-writerBefore.busy)/elapsed.Seconds(), "store-busy")
+		b.ReportMetric(float64(notes)/(writerAfter.transactions-writerBefore.transactions), "notifications/store-transaction")
 		b.ReportMetric(float64(probe.Microseconds()), "disk-probe-µs")
 		b.ReportMetric(float64(cpuProbe.Microseconds()), "cpu-probe-µs")
 		b.ReportMetric(float64(lat[len(lat)/2].Microseconds())/1000, "p50-ms")
@@ -370,6 +377,30 @@ func (s *rawSender) close() {
 	if s != nil {
 		s.conn.Close()
 	}
+}
+
+// writerCounts are the service's deadspace_store_* counters.
+type writerCounts struct{ busy, transactions float64 }
+
+func storeWriter(b *testing.B, svc *serve.Service) writerCounts {
+	b.Helper()
+	families, err := svc.Metrics.Registry().Gather()
+	if err != nil {
+		b.Fatal(err)
+	}
+	var w writerCounts
+	for _, f := range families {
+		switch f.GetName() {
+		case "deadspace_store_busy_seconds_total":
+			w.busy = f.GetMetric()[0].GetCounter().GetValue()
+		case "deadspace_store_transactions_total":
+			w.transactions = f.GetMetric()[0].GetCounter().GetValue()
+		}
+	}
+	if w.transactions == 0 {
+		b.Fatal("the service reports no store transactions")
+	}
+	return w
 }
 
 func benchObs(subject, id, code, unit string, v float64, at time.Time) json.RawMessage {

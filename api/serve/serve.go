@@ -149,6 +149,9 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	}
 	s.engine = e
 	s.Metrics.SetStats(s.store.Stats)
+	if c, ok := s.store.(store.Committer); ok {
+		s.Metrics.SetCommits(c.CommitStats)
+	}
 	if s.client != nil {
 		s.Metrics.SetFHIRServer(s.up.answering)
 	}

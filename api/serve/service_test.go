@@ -104,6 +104,12 @@ func TestMetricsCountWhatWasSentAndPassPromlint(t *testing.T) {
 	if got := sum("deadspace_webhook_requests_total{", `status="401"`); got != 1 {
 		t.Errorf("webhook 401s = %v, want 1", got)
 	}
+	// The embedded store's writer: the notification's inputs and the
+	// evaluation's results were committed, so it did some work.
+	txs, calls, busy := sum("deadspace_store_transactions_total ", ""), sum("deadspace_store_write_calls_total ", ""), sum("deadspace_store_busy_seconds_total ", "")
+	if txs < 1 || calls < txs || busy <= 0 {
+		t.Errorf("store writer: %v transactions, %v write calls, %v s busy; want some, at least as many calls, and time", txs, calls, busy)
+	}
 	for _, id := range []string{b.subject, b.gasID} {
 		if strings.Contains(raw, strings.TrimPrefix(id, "Patient/")) {
 			t.Errorf("a metric carries the identifier %s", id)

@@ -243,6 +243,27 @@ type Stats struct {
 	DirtyPatients int
 }
 
+// Committer is implemented by a store whose writes are committed one
+// transaction at a time by one committer (the embedded store: bbolt has a
+// single writer, and concurrent writes are merged into its transactions).
+// Every webhook answer waits for a commit, so the share of time the
+// committer is busy is how near the webhook is to the most it can accept:
+// near 1, notifications queue for the committer and answers slow down.
+type Committer interface {
+	CommitStats() CommitStats
+}
+
+// CommitStats counts a committer's work since the store was opened.
+type CommitStats struct {
+	// Transactions committed or rolled back.
+	Transactions uint64
+	// Calls are the write calls the transactions ran (several callers'
+	// writes share one transaction).
+	Calls uint64
+	// Busy is the time the committer spent in transactions, syncs included.
+	Busy time.Duration
+}
+
 // Exclusive is implemented by a store that one process holds at a time
 // (the embedded store, behind its file lock). The engine over it is then
 // the only one that evaluates its patients, and may keep what one

@@ -387,19 +387,28 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
 	var committed func()
+	var start time.Time
+	s.group.counts.calls.Add(1)
 	err := s.db.Update(func(tx *bolt.Tx) error {
+		start = time.Now() // the writer is this transaction's from here
 		var err error
 		if committed, err = s.clears.begin(tx); err != nil {
 			return err
 		}
 		return fn(tx)
 	})
+	s.group.counts.transaction(start)
 	if err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
 	committed()
 	return nil
 }
+
+// CommitStats is store.Committer: every read-write transaction after Open
+// counts, the merged ones of the webhook and the evaluations and the
+// store's own (pruning, say), each from when it holds bbolt's writer.
+func (s *Store) CommitStats() store.CommitStats { return s.group.counts.stats() }
 
 // batch is update for transactions that may be merged with concurrent
 // ones into a single commit (see groupCommit): one fsync then covers many

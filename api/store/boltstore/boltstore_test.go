@@ -12,6 +12,7 @@ import (
 	"path/filepath"
 	"slices"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -521,5 +522,41 @@ func TestEmptyCommitClearSurvivesRestart(t *testing.T) {
 	}
 	if st, err := s.Stats(ctx); err != nil || st.DirtyPatients != 0 {
 		t.Errorf("after a restart: Stats = %+v, %v; want no dirty patient", st, err)
+	}
+}
+
+// TestCommitStatsCountTheCommitter: concurrent writes are counted as calls,
+// merged into fewer transactions, with the time the writer was busy; a
+// write the store makes on its own (a prune) counts as a transaction of
+// one call.
+func TestCommitStatsCountTheCommitter(t *testing.T) {
+	ctx := t.Context()
+	s := openAt(t, filepath.Join(t.TempDir(), "deadspace.db"))
+	before := s.CommitStats()
+	const writers = 40
+	var wg sync.WaitGroup
+	for i := range writers {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			_, err := s.PutInputs(ctx, []store.Input{{Subject: fmt.Sprintf("Patient/c%d", i%4), Logical: fmt.Sprintf("Observation/c%d", i),
+				VersionID: "1", LastUpdated: t0, EffectiveAt: t0, Payload: []byte{1}}}, t0)
+			if err != nil {
+				t.Error(err)
+			}
+		}()
+	}
+	wg.Wait()
+	after := s.CommitStats()
+	calls, txs := after.Calls-before.Calls, after.Transactions-before.Transactions
+	if calls != writers || txs < 1 || txs > writers || after.Busy <= before.Busy {
+		t.Errorf("%d writes: %d calls in %d transactions, busy %v more; want %d calls in 1 to %d transactions and some time", writers, calls, txs, after.Busy-before.Busy, writers, writers)
+	}
+	if _, err := s.Prune(ctx, t0.Add(-time.Hour)); err != nil {
+		t.Fatal(err)
+	}
+	pruned := s.CommitStats()
+	if pruned.Calls != after.Calls+1 || pruned.Transactions != after.Transactions+1 || pruned.Busy <= after.Busy {
+		t.Errorf("after a prune: %+v, want one call and one transaction more than %+v, and more time", pruned, after)
 	}
 }

@@ -1,8 +1,13 @@
 package boltstore
 
 import (
+	"sync/atomic"
+	"time"
+
 	"fmt"
 	"sync"
+
+	"github.com/deadspace-fhir/deadspace/api/store"
 
 	bolt "go.etcd.io/bbolt"
 )
@@ -22,6 +27,10 @@ type groupCommit struct {
 	// (pendingClears), which a call-by-call start would read again, once
 	// per call.
 	begin func(*bolt.Tx) (committed func(), err error)
+	// counts is the committer's work (store.CommitStats), which the
+	// store's other read-write transactions add to: bbolt runs one at a
+	// time, so they wait for the same writer.
+	counts commitCounts
 
 	mu      sync.Mutex
 	queue   []*groupCall
@@ -63,6 +72,7 @@ func (g *groupCommit) loop() {
 			return
 		}
 		g.mu.Unlock()
+		g.counts.calls.Add(uint64(len(calls)))
 		g.commit(calls)
 	}
 }
@@ -99,7 +109,10 @@ func (g *groupCommit) commit(calls []*groupCall) {
 // update runs fn in a read-write transaction that begin starts.
 func (g *groupCommit) update(fn func(*bolt.Tx) error) error {
 	var committed func()
+	var start time.Time
+	defer func() { g.counts.transaction(start) }()
 	err := g.db.Update(func(tx *bolt.Tx) error {
+		start = time.Now() // the writer is this transaction's from here
 		committed = nil
 		if g.begin != nil {
 			var err error
@@ -113,6 +126,25 @@ func (g *groupCommit) update(fn func(*bolt.Tx) error) error {
 		committed()
 	}
 	return err
+}
+
+// commitCounts are store.CommitStats, counted as the committer works.
+type commitCounts struct {
+	transactions, calls, busy atomic.Uint64
+}
+
+// transaction counts a transaction that began at start and ends now
+// (none when it never began: zero start).
+func (c *commitCounts) transaction(start time.Time) {
+	if start.IsZero() {
+		return
+	}
+	c.transactions.Add(1)
+	c.busy.Add(uint64(time.Since(start)))
+}
+
+func (c *commitCounts) stats() store.CommitStats {
+	return store.CommitStats{Transactions: c.transactions.Load(), Calls: c.calls.Load(), Busy: time.Duration(c.busy.Load())}
 }
 
 // safeCall turns a panic in fn into an error for its caller: fn runs on
