@@ -824,12 +824,14 @@ func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases
 		return inputs, true, time.Time{}, err
 	}
 	readFrom := store.Earliest(gases.GasesFrom, resume.At.Add(-e.cfg.Derive.Window))
+	// No blood gas before gasesFrom is derived, so a scan from there finds
+	// the same earliest one as a scan from readFrom. Readings are timed to
+	// the millisecond, and so is the boundary, so each is on one side of
+	// it only.
+	useKept := kept != nil && !kept.from.After(readFrom) && gases.GasesFrom.After(readFrom) &&
+		wholeMillisecond(gases.GasesFrom) && wholeMillisecond(readFrom)
 	scanFrom := readFrom
-	if kept != nil && !kept.from.After(readFrom) && gases.GasesFrom.After(readFrom) && wholeMillisecond(gases.GasesFrom) && wholeMillisecond(readFrom) {
-		// No blood gas before gasesFrom is derived, so the scan from there
-		// finds the same earliest one as a scan from readFrom. Readings
-		// are timed to the millisecond, and so is the boundary, so each
-		// is on one side of it only.
+	if useKept {
 		scanFrom = gases.GasesFrom
 	}
 	inputs, earliestGas, err := e.loadDetectorInputs(ctx, subject, scanFrom, gases)
@@ -837,7 +839,7 @@ func (e *Engine) loadEvaluationInputs(ctx context.Context, subject string, gases
 		return nil, false, time.Time{}, err
 	}
 	if earliestGas == math.MaxInt64 {
-		if scanFrom != readFrom {
+		if useKept {
 			inputs = append(kept.before(readFrom, scanFrom, len(inputs)), inputs...)
 		}
 		return inputs, false, readFrom, nil

@@ -386,22 +386,12 @@ func (s *Store) update(ctx context.Context, op string, fn func(tx *bolt.Tx) erro
 	if err := ctx.Err(); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	var committed func()
-	var start time.Time
+	// A transaction of its own, not merged with others, but started (held
+	// clears) and counted as the group's are.
 	s.group.counts.calls.Add(1)
-	err := s.db.Update(func(tx *bolt.Tx) error {
-		start = time.Now() // the writer is this transaction's from here
-		var err error
-		if committed, err = s.clears.begin(tx); err != nil {
-			return err
-		}
-		return fn(tx)
-	})
-	s.group.counts.transaction(start)
-	if err != nil {
+	if err := s.group.update(fn); err != nil {
 		return fmt.Errorf("boltstore.%s: %w", op, err)
 	}
-	committed()
 	return nil
 }
 

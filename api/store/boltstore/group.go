@@ -1,15 +1,14 @@
 package boltstore
 
 import (
+	"fmt"
+	"sync"
 	"sync/atomic"
 	"time"
 
-	"fmt"
-	"sync"
+	bolt "go.etcd.io/bbolt"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
-
-	bolt "go.etcd.io/bbolt"
 )
 
 // groupCommit merges concurrent write calls into one bbolt transaction and
