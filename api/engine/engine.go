@@ -173,8 +173,11 @@ type Engine struct {
 	// entries it can change (see ledgerFor).
 	fallSeries sync.Map
 	// evaluatedHere holds the patients evaluated and committed in this
-	// process (subject → struct{}): a patient's first evaluation derives
-	// every blood gas, whatever its dirty mark says (see evaluateLocked).
+	// process, with the time of the last such evaluation (subject →
+	// time.Time): a patient's first evaluation derives every blood gas,
+	// whatever its dirty mark says (see evaluateLocked). A patient with
+	// no evaluation within the retention is forgotten here, with its
+	// fallStates and fallSeries (forgetIdle).
 	evaluatedHere sync.Map
 	// missing holds the subscription events skipped over and not arrived
 	// yet.
@@ -595,6 +598,28 @@ func (e *Engine) Run(ctx context.Context) error {
 	return nil
 }
 
+// forgetIdle drops what the engine keeps in memory of each patient whose
+// last evaluation here committed before horizon (the retention's: their
+// inputs are being pruned), so a process that runs for months does not
+// hold every patient it ever saw. What it drops only saves work: such a
+// patient's next evaluation derives every blood gas, runs the detector
+// whole and reads the whole ledger, as a first one does. An evaluation
+// that commits meanwhile stores its time anew and is not dropped (the
+// compare-and-delete), though its detector states may be. It returns how
+// many patients it forgot.
+func (e *Engine) forgetIdle(horizon time.Time) int {
+	n := 0
+	e.evaluatedHere.Range(func(subject, at any) bool {
+		if at.(time.Time).Before(horizon) && e.evaluatedHere.CompareAndDelete(subject, at) {
+			e.fallStates.Delete(subject)
+			e.fallSeries.Delete(subject)
+			n++
+		}
+		return true
+	})
+	return n
+}
+
 // sleep waits for d or ctx; it reports false when ctx ended.
 func sleep(ctx context.Context, d time.Duration) bool {
 	t := time.NewTimer(d)
@@ -615,6 +640,9 @@ func (e *Engine) pruneLoop(ctx context.Context) {
 			e.log.ErrorContext(ctx, "prune failed", "err", err)
 		} else if n > 0 {
 			e.log.InfoContext(ctx, "pruned inputs past retention", "inputs", n)
+		}
+		if n := e.forgetIdle(now.Add(-e.cfg.Retention)); n > 0 {
+			e.log.InfoContext(ctx, "forgot the detector states of patients not evaluated within the retention", "patients", n)
 		}
 		history := now.Add(-e.cfg.HistoryRetention)
 		p, err := e.cfg.Store.PruneHistory(ctx, history, history, now.Add(-e.cfg.DeadLetterRetention))

@@ -375,7 +375,7 @@ func (e *Engine) evaluateLocked(ctx context.Context, d store.Dirty) error {
 	if err := e.cfg.Store.Commit(ctx, change, e.now()); err != nil {
 		return fmt.Errorf("engine: evaluate: %w", err)
 	}
-	e.evaluatedHere.Store(d.Subject, struct{}{})
+	e.evaluatedHere.Store(d.Subject, e.now())
 	if e.keepsFallState() {
 		e.fallSeries.Store(d.Subject, keptSeries{
 			series:  fallsAfter(ledger, change.Entries),
