@@ -36,10 +36,7 @@ func TestForgetIdleDropsOnlyWork(t *testing.T) {
 	}
 	const subject = "Patient/fi-0"
 	obs := func(id, code, unit string, v float64, at time.Time) json.RawMessage {
-		return json.RawMessage(fmt.Sprintf(`{"resourceType":"Observation","id":"%s","meta":{"versionId":"1","lastUpdated":"%s"},"status":"final",`+
-			`"code":{"coding":[{"system":"http://loinc.org","code":"%s"}]},"subject":{"reference":"%s"},"effectiveDateTime":"%s",`+
-			`"valueQuantity":{"value":%g,"unit":"%s","system":"http://unitsofmeasure.org","code":"%s"}}`,
-			id, at.Add(time.Minute).Format(time.RFC3339), code, subject, at.Format(time.RFC3339), v, unit, unit))
+		return benchReadingOf(subject, id, code, unit, v, at)
 	}
 	first := []json.RawMessage{json.RawMessage(`{"resourceType":"Patient","id":"fi-0","meta":{"versionId":"1","lastUpdated":"2026-01-01T00:00:00Z"},"gender":"male","birthDate":"1961-01-01"}`),
 		obs("ht", "8302-2", "cm", 180, base.Add(-3*time.Hour))}
