@@ -185,7 +185,9 @@ func WriteOne(w io.Writer, v View) {
 	fmt.Fprintf(w, "attempts:   %d\n", v.Attempts)
 	fmt.Fprintf(w, "superseded: %s\n", yesNo(v.Superseded))
 	if v.Superseded {
-		fmt.Fprintln(w, "            (a later derivation of its values was recorded; a retry sends the older one)")
+		fmt.Fprintln(w, "            (the ledger records other values of its series now: a retried revision or withdrawal")
+		fmt.Fprintln(w, "            sends only the values still current; a retried create is sent whole, and the later")
+		fmt.Fprintln(w, "            letters of its series then revise it)")
 	}
 	fmt.Fprintf(w, "server's answer (identifiers redacted):\n  %s\n", strings.ReplaceAll(v.Reason, "\n", "\n  "))
 	if v.LastError != "" {

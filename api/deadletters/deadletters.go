@@ -10,12 +10,14 @@ package deadletters
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // Limits of a list.
@@ -30,14 +32,17 @@ var ErrNotFound = errors.New("no dead letter with that id")
 // View is a dead letter as an operator sees it. It names no patient; the
 // series identify the derivations it carried (Explain takes them).
 type View struct {
-	ID         uint64
-	BuriedAt   time.Time
-	QueuedAt   time.Time
-	Attempts   int
-	Reason     string // the server's answer, identifiers redacted
-	LastError  string // the attempt before, identifiers redacted
-	Series     []string
-	Superseded bool // a later derivation of one of its series was recorded after it was queued
+	ID        uint64
+	BuriedAt  time.Time
+	QueuedAt  time.Time
+	Attempts  int
+	Reason    string // the server's answer, identifiers redacted
+	LastError string // the attempt before, identifiers redacted
+	Series    []string
+	// Superseded: the ledger records another value of one of its series
+	// than the letter carries (a later derivation, or a withdrawal). A
+	// retry sends only the values that are still current.
+	Superseded bool
 }
 
 // Source is what the views are read from: the store.
@@ -131,6 +136,13 @@ func (l local) view(ctx context.Context, dl store.DeadLetter) (View, error) {
 		Reason: logredact.Text(dl.Reason), LastError: logredact.Text(dl.LastError),
 		Series: append([]string(nil), dl.Series...),
 	}
+	// Superseded is decided by the values, as the writer decides what to
+	// send: a letter whose write cannot be read is judged by time.
+	var w encode.Write
+	keys, kerr := map[string]string(nil), json.Unmarshal(dl.Body, &w)
+	if kerr == nil {
+		keys, kerr = w.Keys()
+	}
 	for _, s := range dl.Series {
 		en, err := l.src.Entry(ctx, s)
 		if errors.Is(err, store.ErrNotFound) {
@@ -139,7 +151,7 @@ func (l local) view(ctx context.Context, dl store.DeadLetter) (View, error) {
 		if err != nil {
 			return View{}, fmt.Errorf("dead letter %d: %w", dl.ID, err)
 		}
-		if en.UpdatedAt.After(dl.CreatedAt) {
+		if (kerr != nil && en.UpdatedAt.After(dl.CreatedAt)) || (kerr == nil && !w.Current(keys, s, en.Key, en.Status)) {
 			v.Superseded = true
 		}
 	}

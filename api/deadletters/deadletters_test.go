@@ -81,7 +81,8 @@ func TestLocalShowsRedactedAndRetries(t *testing.T) {
 			t.Errorf("identifier %q shown: %+v", id, v)
 		}
 	}
-	if v.Attempts != 1 || !v.BuriedAt.Equal(t0.Add(time.Minute)) || !v.QueuedAt.Equal(t0) || len(v.Series) != 1 {
+	// One attempt rescheduled, then the refused one.
+	if v.Attempts != 2 || !v.BuriedAt.Equal(t0.Add(time.Minute)) || !v.QueuedAt.Equal(t0) || len(v.Series) != 1 {
 		t.Errorf("view %+v", v)
 	}
 	if _, err := op.Show(ctx, 999); !errors.Is(err, deadletters.ErrNotFound) {

@@ -52,6 +52,9 @@ func (e *Engine) FlushNow(ctx context.Context) { e.drain(ctx) }
 // outbox (not yet due, or failed in this pass). Otherwise a revision
 // retried after an outage could overtake, and undo, a later withdrawal.
 func (e *Engine) drain(ctx context.Context) time.Duration {
+	// unsettled are the writes whose outcome the store could not record in
+	// this drain: not sent again before the next.
+	unsettled := make(map[uint64]bool)
 	for ctx.Err() == nil {
 		pending, err := e.cfg.Store.DueWrites(ctx, farFuture, outboxScan)
 		if err != nil {
@@ -66,20 +69,24 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 		}
 		now := e.now()
 		blocked := make(map[string]bool)
-		progressed := false
+		progressed, unrecorded := false, false
 		for _, w := range pending {
 			if ctx.Err() != nil {
 				return 0
 			}
-			waits := w.NotBefore.After(now)
+			waits := w.NotBefore.After(now) || unsettled[w.ID]
 			for _, s := range w.Series {
 				waits = waits || blocked[s]
 			}
 			if !waits {
 				ok, err := e.attempt(ctx, w)
 				if err != nil {
-					e.log.ErrorContext(ctx, "recording a write's outcome failed; backing off", "write", w.ID, "err", err)
-					return time.Second
+					// The write stays, and so do the later writes of its
+					// series; other series' writes still go, so that one
+					// write the store cannot settle does not hold up every
+					// patient's.
+					e.log.ErrorContext(ctx, "recording a write's outcome failed; it is tried again later", "write", w.ID, "err", err)
+					unsettled[w.ID], unrecorded = true, true
 				}
 				if ok {
 					progressed = true
@@ -90,7 +97,10 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 				blocked[s] = true
 			}
 		}
-		if !progressed {
+		switch {
+		case !progressed && unrecorded:
+			return time.Second
+		case !progressed:
 			return 250 * time.Millisecond
 		}
 	}
@@ -245,6 +255,9 @@ var errNewerOnServer = errors.New("the server holds a revision of the derived Ob
 
 // send encodes the typed write with the server's ids as known now, posts
 // it, and returns the server's id and version of each series it carried.
+// A revision or withdrawal carries only the series whose ledger entry
+// still records its value ([encode.Write.Current]); one with none left is
+// settled without a request.
 //
 // A server may cap the entries of a transaction that needs strict isolation
 // (conditional creates do): Medplum's cap is 8. When a write fits, it is one
@@ -273,17 +286,37 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 	if tw.Kind == encode.WriteCreate {
 		return e.create(ctx, tw, deviceRef)
 	}
+	keys, err := tw.Keys()
+	if err != nil {
+		return nil, &client.Error{Op: "decode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
+	}
 	server := make(map[string]encode.ServerRef, len(tw.Series))
+	current := tw.Series[:0:0]
 	for _, s := range tw.Series {
 		en, err := e.cfg.Store.Entry(ctx, s)
 		if err != nil {
 			return nil, fmt.Errorf("engine: %w", err)
 		}
+		if !tw.Current(keys, s, en.Key, en.Status) {
+			// A later write carries the series' current value; this one,
+			// sent after it (a dead letter retried, say), would put an
+			// older value back over it, If-Match and all, since the
+			// ledger holds the server's version of the later one.
+			continue
+		}
 		if en.ServerID == "" {
 			return nil, errOrphan
 		}
 		server[s] = encode.ServerRef{ID: en.ServerID, Version: en.ServerVersion}
+		current = append(current, s)
 	}
+	if len(current) < len(tw.Series) {
+		e.log.InfoContext(ctx, "a write carried values that later writes replaced; only the current ones are sent", "write", w.ID, "series", len(tw.Series), "current", len(current))
+	}
+	if len(current) == 0 {
+		return map[string][2]string{}, nil
+	}
+	tw.Series = current
 	return e.update(ctx, tw, deviceRef, server, true)
 }
 

@@ -395,14 +395,7 @@ func TestDeadLettersOverGRPC(t *testing.T) {
 	if n := len(derivedOn(f, b.subject)); n != 0 {
 		t.Fatalf("%d derived values on the server before the retry", n)
 	}
-	cmd := func(args ...string) string {
-		t.Helper()
-		var out, errOut bytes.Buffer
-		if code := deadletters.Main(context.Background(), append([]string{"--grpc", s.svc.GRPCAddr()}, args...), func(string) string { return "" }, &out, &errOut); code != 0 {
-			t.Fatalf("deadletters %v: exit %d: %s", args, code, errOut.String())
-		}
-		return out.String()
-	}
+	cmd := deadLettersCommand(t, s)
 	list := cmd("list")
 	if !strings.Contains(list, "1 dead letters") {
 		t.Fatalf("list:\n%s", list)
@@ -426,5 +419,18 @@ func TestDeadLettersOverGRPC(t *testing.T) {
 	var errOut bytes.Buffer
 	if code := deadletters.Main(context.Background(), []string{"--grpc", s.svc.GRPCAddr(), "show", id}, func(string) string { return "" }, io.Discard, &errOut); code != 1 || !strings.Contains(errOut.String(), "no dead letter") {
 		t.Errorf("show after retry: exit %d %s", code, errOut.String())
+	}
+}
+
+// deadLettersCommand runs `deadspace deadletters` against the service's
+// gRPC API and returns what it printed; a non-zero exit fails the test.
+func deadLettersCommand(t *testing.T, s *service) func(args ...string) string {
+	return func(args ...string) string {
+		t.Helper()
+		var out, errOut bytes.Buffer
+		if code := deadletters.Main(context.Background(), append([]string{"--grpc", s.svc.GRPCAddr()}, args...), func(string) string { return "" }, &out, &errOut); code != 0 {
+			t.Fatalf("deadletters %v: exit %d: %s", args, code, errOut.String())
+		}
+		return out.String()
 	}
 }

@@ -404,8 +404,9 @@ type Store interface {
 	// PruneHistory removes what the service keeps of its own past once it
 	// is older than the horizons: ledger entries with EffectiveAt before
 	// ledger (with their earlier versions and their results) unless a
-	// write for their series is still in the outbox, feed events recorded
-	// before feed, and dead letters buried before dead.
+	// write for their series is still in the outbox or in a dead letter
+	// buried at or after dead, feed events recorded before feed, and dead
+	// letters buried before dead.
 	PruneHistory(ctx context.Context, ledger, feed, dead time.Time) (Pruned, error)
 	Close() error
 }

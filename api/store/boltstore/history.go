@@ -18,6 +18,9 @@ func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) 
 	var n store.Pruned
 	err := s.update(ctx, "PruneHistory", func(tx *bolt.Tx) error {
 		n = store.Pruned{}
+		// The ledger entries of writes still to send, or that an operator
+		// may retry (dead letters outlive the history), stay: sending a
+		// write reads them and records the server's ids in them.
 		pending := map[string]bool{}
 		if err := tx.Bucket(bOutbox).ForEach(func(k, v []byte) error {
 			w, err := decodeWrite(0, v)
@@ -25,6 +28,23 @@ func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) 
 				return err
 			}
 			for _, s := range w.Series {
+				pending[s] = true
+			}
+			return nil
+		}); err != nil {
+			return err
+		}
+		if err := tx.Bucket(bDead).ForEach(func(_, v []byte) error {
+			dl, err := decodeDead(v)
+			if err != nil {
+				return err
+			}
+			// Dead letters older than their horizon go below, and their
+			// entries with the next prune.
+			if dl.At.Before(dead) {
+				return nil
+			}
+			for _, s := range dl.Series {
 				pending[s] = true
 			}
 			return nil

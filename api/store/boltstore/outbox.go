@@ -102,13 +102,15 @@ func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.T
 	})
 }
 
-// Bury moves a write to the dead letters, keyed by burial order.
+// Bury moves a write to the dead letters, keyed by burial order; the
+// attempt that was refused counts among its attempts.
 func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
 	return s.batch(ctx, "Bury", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)
 		if err != nil {
 			return err
 		}
+		w.Attempts++
 		if err := deleteWrite(tx, writeID); err != nil {
 			return err
 		}

@@ -52,8 +52,9 @@ func (s *Store) Result(ctx context.Context, id, version string) (store.Result, e
 
 // PruneHistory removes, in one transaction, ledger entries (with their
 // keys and earlier versions) and results whose EffectiveAt is before
-// ledger, except entries whose series still has a write in the outbox;
-// feed events recorded before feed; dead letters buried before dead. The
+// ledger, except entries whose series still has a write in the outbox or
+// a dead letter that stays (an operator may retry it, and sending it
+// reads the entry); feed events recorded before feed; dead letters buried before dead. The
 // feed head stays, so resume tokens are never reused.
 func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) (store.Pruned, error) {
 	var n store.Pruned
@@ -64,13 +65,14 @@ func (s *Store) PruneHistory(ctx context.Context, ledger, feed, dead time.Time) 
 				DELETE FROM ledger l
 				 WHERE l.effective_ns < $1
 				   AND NOT EXISTS (SELECT 1 FROM outbox o WHERE l.series = ANY(o.series))
+				   AND NOT EXISTS (SELECT 1 FROM dead_letters d WHERE d.at_ns >= $2 AND l.series = ANY(d.series))
 				RETURNING l.series, l.key, l.revisions),
 			keys AS (
 				DELETE FROM ledger_keys k USING gone
 				 WHERE k.series = gone.series AND (k.key = gone.key OR k.key = ANY(gone.revisions))),
 			versions AS (
 				DELETE FROM ledger_versions v USING gone WHERE v.series = gone.series)
-			SELECT count(*) FROM gone`, nanos(ledger)).Scan(&n.Entries)
+			SELECT count(*) FROM gone`, nanos(ledger), nanos(dead)).Scan(&n.Entries)
 		if err != nil {
 			return err
 		}

@@ -141,13 +141,14 @@ func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.T
 	})
 }
 
-// Bury moves a write to the dead letters, in burial order.
+// Bury moves a write to the dead letters, in burial order; the attempt
+// that was refused counts among its attempts.
 func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
 	return s.run(ctx, "Bury", func(q querier) error {
 		tag, err := q.Exec(ctx, `
 			WITH gone AS (DELETE FROM outbox WHERE id = $1 RETURNING *)
 			INSERT INTO dead_letters (write_id, subject, series, body, attempts, not_before_ns, created_ns, last_error, reason, at_ns)
-			SELECT id, subject, series, body, attempts, not_before_ns, created_ns, last_error, $2, $3 FROM gone`,
+			SELECT id, subject, series, body, attempts + 1, not_before_ns, created_ns, last_error, $2, $3 FROM gone`,
 			int64(writeID), reason, nanos(now))
 		if err != nil {
 			return err

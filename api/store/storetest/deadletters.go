@@ -83,8 +83,12 @@ func testDeadLetterRetry(t *testing.T, open func(t *testing.T) DeadLetterStore) 
 		!slices.Equal(dl.Series, []string{"s2"}) || !bytes.Equal(dl.Body, w2.Body) {
 		t.Errorf("DeadLetter(%d) = %+v", w2.ID, dl)
 	}
-	if dl, _ := s.DeadLetter(ctx, w1.ID); dl.Attempts != 1 || dl.LastError != "HTTP 503" {
-		t.Errorf("DeadLetter(%d) lost the attempts: %+v", w1.ID, dl)
+	// One failed attempt rescheduled, then the refused one.
+	if dl, _ := s.DeadLetter(ctx, w1.ID); dl.Attempts != 2 || dl.LastError != "HTTP 503" {
+		t.Errorf("DeadLetter(%d) = %+v, want 2 attempts (the refused one counts) and the error before", w1.ID, dl)
+	}
+	if dl, _ := s.DeadLetter(ctx, w2.ID); dl.Attempts != 1 {
+		t.Errorf("DeadLetter(%d) = %+v, want 1 attempt: refused at the first", w2.ID, dl)
 	}
 
 	now := t0.Add(3 * time.Hour)

@@ -72,7 +72,8 @@ func testEntryVersion(t *testing.T, open func(t *testing.T) store.Store) {
 }
 
 // PruneHistory removes what is older than each horizon, except an entry
-// whose series still has a write in the outbox.
+// whose series still has a write in the outbox or in a dead letter that
+// stays.
 func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
 	ctx := t.Context()
@@ -82,10 +83,12 @@ func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
 		Results: []store.Result{{ID: "g-old", Version: "1", EffectiveAt: old, Payload: []byte("x")}, {ID: "g-new", Version: "1", EffectiveAt: recent, Payload: []byte("y")}},
 		Entries: []store.Entry{entry(subj, "s-old", "k-old", old), entry(subj, "s-pending", "k-p", old), entry(subj, "s-new", "k-new", recent)},
 		Writes:  []store.Write{writeFor("s-pending")}}, old))
+	// A dead letter buried long ago and one buried lately, both of values
+	// derived long ago: the entry of the one that stays stays with it.
+	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{entry(subj, "s-x", "k-x", old), entry(subj, "s-y", "k-y", old)},
+		Writes: []store.Write{writeFor("s-x"), writeFor("s-y")}}, old))
 	replaced := entry(subj, "s-old", "k-old2", old)
 	must(t, s.Commit(ctx, store.Change{Subject: subj, Entries: []store.Entry{replaced}}, recent))
-	// A dead letter buried long ago and one buried lately.
-	must(t, s.Commit(ctx, store.Change{Subject: subj, Writes: []store.Write{writeFor("s-x"), writeFor("s-y")}}, old))
 	ws, err := s.DueWrites(ctx, recent, 10)
 	must(t, err)
 	var buried int
@@ -108,8 +111,8 @@ func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
 	horizon := t0.Add(24 * time.Hour)
 	n, err := s.PruneHistory(ctx, horizon, horizon, horizon)
 	must(t, err)
-	if n.Entries != 1 || n.Results != 1 || n.DeadLetters != 1 || n.Events != 3 {
-		t.Errorf("pruned %+v, want 1 entry, 1 result, 1 dead letter, 3 events (those recorded before the horizon)", n)
+	if n.Entries != 2 || n.Results != 1 || n.DeadLetters != 1 || n.Events != 5 {
+		t.Errorf("pruned %+v, want 2 entries, 1 result, 1 dead letter, 5 events (those recorded before the horizon)", n)
 	}
 	for _, k := range []string{"k-old", "k-old2"} {
 		if _, err := s.EntryByKey(ctx, k); !errors.Is(err, store.ErrNotFound) {
@@ -119,7 +122,10 @@ func testPruneHistory(t *testing.T, open func(t *testing.T) store.Store) {
 			t.Errorf("EntryVersion(%s) after pruning: %v, want ErrNotFound", k, err)
 		}
 	}
-	for _, series := range []string{"s-pending", "s-new"} {
+	if _, err := s.Entry(ctx, "s-x"); !errors.Is(err, store.ErrNotFound) {
+		t.Errorf("the entry of a pruned dead letter's series: %v, want ErrNotFound", err)
+	}
+	for _, series := range []string{"s-pending", "s-new", "s-y"} {
 		if _, err := s.Entry(ctx, series); err != nil {
 			t.Errorf("entry %s was pruned: %v", series, err)
 		}

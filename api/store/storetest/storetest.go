@@ -807,8 +807,8 @@ func testOutboxLifecycle(t *testing.T, open func(t *testing.T) store.Store) {
 	dls, err := s.DeadLetters(ctx, 10)
 	must(t, err)
 	if len(dls) != 1 || dls[0].ID != w1.ID || dls[0].Reason != "422: rejected by the server" || !dls[0].At.Equal(t0.Add(4*time.Hour)) ||
-		dls[0].Attempts != 2 || !bytes.Equal(dls[0].Body, w1.Body) || dls[0].Subject != subj {
-		t.Errorf("dead letters = %+v", dls)
+		dls[0].Attempts != 3 || !bytes.Equal(dls[0].Body, w1.Body) || dls[0].Subject != subj {
+		t.Errorf("dead letters = %+v, want 3 attempts: two rescheduled and the refused one", dls)
 	}
 	wantStats(t, s, store.Stats{OutboxDepth: 1, OldestWrite: t0.Add(30 * time.Minute), DeadLetters: 1})
 	due, err = s.DueWrites(ctx, t0.Add(24*time.Hour), 10)

@@ -2460,9 +2460,10 @@ type DeadLetter struct {
 	// The series identifiers ("sha256:" and 64 hex digits) of the
 	// derivations it carried.
 	Series []string `protobuf:"bytes,7,rep,name=series,proto3" json:"series,omitempty"`
-	// A later derivation of one of its series was recorded after this write
-	// was queued; the later write carries the current value, and a retry of
-	// this one sends an older one.
+	// The ledger now records another value of one of its series (a later
+	// derivation, or a withdrawal). A retried revision or withdrawal sends
+	// only the values still current; a retried create is sent whole, and the
+	// later writes of its series bring it up to date.
 	Superseded    bool `protobuf:"varint,8,opt,name=superseded,proto3" json:"superseded,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
