@@ -27,12 +27,16 @@ func submitCommand(ctx context.Context, args []string, stdout, stderr io.Writer)
 	fs.StringVar(&opts.KeyFile, "key", "", "PEM private key of --cert")
 	fs.IntVar(&opts.ChunkBytes, "chunk-bytes", submit.DefaultChunkBytes, "NDJSON bytes sent per call")
 	quiet := fs.Bool("quiet", false, "no progress lines")
-	files, status, ok := settings.ParseCommand(fs, args)
-	if !ok {
-		return status
+	files, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return settings.ExitOK
 	}
+	errs := []error{err}
 	if len(files) == 0 {
-		fmt.Fprintln(stderr, "deadspace submit: no input files")
+		errs = append(errs, errors.New("no input files"))
+	}
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace submit: %v\n", err)
 		return settings.ExitUsage
 	}
 	if !*quiet {

@@ -3,7 +3,6 @@ package deadletters
 import (
 	"context"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -45,29 +44,18 @@ Flags:`
 
 // Main runs `deadspace deadletters`.
 func Main(ctx context.Context, args []string, getenv func(string) string, stdout, stderr io.Writer) int {
-	fs := flag.NewFlagSet("deadletters", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, usage)
-		fs.PrintDefaults()
-	}
+	fs := settings.NewCommand("deadletters", usage, stderr)
 	dataDir := fs.String("data-dir", "deadspace-data", "serve's data directory (serve must be stopped)")
 	addr := fs.String("grpc", "", "gRPC address of a running serve, e.g. 127.0.0.1:9090, instead of the data directory")
 	ca := fs.String("grpc-ca", "", "PEM CA bundle to verify serve's TLS certificate (TLS is off without it)")
 	cert := fs.String("grpc-cert", "", "PEM client certificate, when serve requires mutual TLS")
 	key := fs.String("grpc-key", "", "PEM private key of --grpc-cert")
 	limit := fs.Int("limit", DefaultLimit, fmt.Sprintf("list at most this many (1 to %d)", MaxLimit))
-	pos, err := settings.ParseInterspersed(fs, args)
-	if err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	pos, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return exitOK
 	}
-	var errs []error
-	if err := settings.ApplyEnv(fs, getenv); err != nil {
-		errs = append(errs, err)
-	}
+	errs := []error{err, settings.ApplyEnv(fs, getenv)}
 	var id uint64
 	switch {
 	case len(pos) == 1 && pos[0] == "list":
@@ -88,8 +76,8 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	if *addr == "" && (*ca != "" || *cert != "") {
 		errs = append(errs, errors.New("--grpc-ca, --grpc-cert and --grpc-key need --grpc"))
 	}
-	if len(errs) > 0 {
-		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", errors.Join(errs...))
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", err)
 		return exitUsage
 	}
 
