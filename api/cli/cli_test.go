@@ -104,3 +104,35 @@ func TestCommandsReportEveryBadFlag(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) { tc.run(t) })
 	}
 }
+
+// TestGRPCCommandsShareOneTLSRule checks that the commands that call
+// serve's gRPC API follow one rule: a client certificate needs its key and
+// the CA bundle (it is never dropped for plaintext), and a missing file is
+// a configuration error, exit 2, before anything connects.
+func TestGRPCCommandsShareOneTLSRule(t *testing.T) {
+	cases := []configCase{
+		{name: "deadletters: a certificate without the CA bundle",
+			args: []string{"deadletters", "--grpc", "127.0.0.1:19090", "--grpc-cert", "/nonexistent/a", "--grpc-key", "/nonexistent/b", "list"},
+			code: settings.ExitUsage,
+			want: []string{"--grpc-cert and --grpc-key need --grpc-ca", "--grpc-cert and --grpc-key: reading certificate: open /nonexistent/a"}},
+		{name: "submit: a certificate without the CA bundle",
+			args: []string{"submit", "--cert", "/nonexistent/a", "--key", "/nonexistent/b", "x.ndjson"},
+			code: settings.ExitUsage,
+			want: []string{"--cert and --key need --ca", "--cert and --key: reading certificate: open /nonexistent/a"}},
+		{name: "deadletters: a certificate without its key",
+			args: []string{"deadletters", "--grpc", "127.0.0.1:19090", "--grpc-ca", "/nonexistent/ca", "--grpc-cert", "/nonexistent/a", "list"},
+			code: settings.ExitUsage,
+			want: []string{"--grpc-cert and --grpc-key go together", "--grpc-cert: stat /nonexistent/a", "--grpc-ca: reading CA file"}},
+		{name: "submit: a certificate without its key",
+			args: []string{"submit", "--ca", "/nonexistent/ca", "--cert", "/nonexistent/a", "x.ndjson"},
+			code: settings.ExitUsage,
+			want: []string{"--cert and --key go together", "--cert: stat /nonexistent/a", "--ca: reading CA file"}},
+		{name: "submit: a missing CA bundle with the other problems",
+			args: []string{"submit", "--ca", "/nonexistent/ca", "--chunk-bytes", "x"},
+			code: settings.ExitUsage,
+			want: []string{"--ca: reading CA file: open /nonexistent/ca", `--chunk-bytes "x"`, "no input files"}},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) { tc.run(t) })
+	}
+}

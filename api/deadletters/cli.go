@@ -14,7 +14,6 @@ import (
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials"
-	"google.golang.org/grpc/credentials/insecure"
 
 	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
@@ -48,7 +47,7 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	dataDir := fs.String("data-dir", "deadspace-data", "serve's data directory (serve must be stopped)")
 	addr := fs.String("grpc", "", "gRPC address of a running serve, e.g. 127.0.0.1:9090, instead of the data directory")
 	ca := fs.String("grpc-ca", "", "PEM CA bundle to verify serve's TLS certificate (TLS is off without it)")
-	cert := fs.String("grpc-cert", "", "PEM client certificate, when serve requires mutual TLS")
+	cert := fs.String("grpc-cert", "", "PEM client certificate, when serve requires mutual TLS (with --grpc-key and --grpc-ca)")
 	key := fs.String("grpc-key", "", "PEM private key of --grpc-cert")
 	limit := fs.Int("limit", DefaultLimit, fmt.Sprintf("list at most this many (1 to %d)", MaxLimit))
 	pos, help, err := settings.ParseCommand(fs, args)
@@ -70,10 +69,12 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	default:
 		errs = append(errs, fmt.Errorf("expected list, show ID or retry ID, got %q", strings.Join(pos, " ")))
 	}
-	if (*cert == "") != (*key == "") {
-		errs = append(errs, errors.New("--grpc-cert and --grpc-key go together"))
-	}
-	if *addr == "" && (*ca != "" || *cert != "") {
+	var creds credentials.TransportCredentials
+	switch {
+	case *addr != "":
+		creds, err = tlsconf.GRPCClient(tlsconf.ClientFlags{CA: "--grpc-ca", Cert: "--grpc-cert", Key: "--grpc-key"}, *ca, *cert, *key)
+		errs = append(errs, err)
+	case *ca != "" || *cert != "" || *key != "":
 		errs = append(errs, errors.New("--grpc-ca, --grpc-cert and --grpc-key need --grpc"))
 	}
 	if err := errors.Join(errs...); err != nil {
@@ -81,7 +82,7 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 		return exitUsage
 	}
 
-	op, closeOp, err := open(*dataDir, *addr, *ca, *cert, *key)
+	op, closeOp, err := open(*dataDir, *addr, creds)
 	if err != nil {
 		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", err)
 		return exitFailed
@@ -115,17 +116,10 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	return exitOK
 }
 
-// open returns the operator for the data directory or the gRPC address.
-func open(dataDir, addr, ca, cert, key string) (Operator, func(), error) {
+// open returns the operator for the data directory or the gRPC address,
+// reached with creds.
+func open(dataDir, addr string, creds credentials.TransportCredentials) (Operator, func(), error) {
 	if addr != "" {
-		creds := insecure.NewCredentials()
-		if ca != "" {
-			c, err := tlsconf.ClientConfig(ca, cert, key)
-			if err != nil {
-				return nil, nil, fmt.Errorf("--grpc-ca: %w", err)
-			}
-			creds = credentials.NewTLS(c)
-		}
 		conn, err := grpc.NewClient(addr, grpc.WithTransportCredentials(creds))
 		if err != nil {
 			return nil, nil, fmt.Errorf("--grpc %s: %w", addr, err)
