@@ -69,6 +69,13 @@ func TestServeReportsEveryProblemOnce(t *testing.T) {
 			want: []string{"unknown flag --nope", `--register-subscription "sometimes": not true or false`,
 				`--max-body-bytes "big": not a whole number`, "--poll-interval needs a value"},
 			not: []string{"--max-body-bytes must"}},
+		{name: "missing files with the other problems",
+			args: []string{"serve", "--webhook-secret", secret, "--tls-cert", "/nonexistent/tls.crt", "--tls-key", "/nonexistent/tls.key",
+				"--grpc-client-ca", "/nonexistent/ca.pem", "--fhir-base", "https://fhir.example/r4", "--fhir-token-url", "https://fhir.example/token",
+				"--fhir-client-id", "deadspace", "--fhir-private-key-file", "/nonexistent/key.pem", "--retention", "1h"},
+			code: settings.ExitUsage,
+			want: []string{"--tls-cert and --tls-key: reading certificate: open /nonexistent/tls.crt", "--grpc-client-ca: reading CA file: open /nonexistent/ca.pem",
+				"--fhir-private-key-file: ", "--retention must be at least 2h"}},
 		{name: "help despite bad flags", args: []string{"serve", "--window", "5x", "-h"}, code: settings.ExitOK,
 			want: []string{"usage: deadspace serve"}, not: []string{`"5x"`}},
 	}
