@@ -42,11 +42,11 @@ func backfillCommand(ctx context.Context, args []string, getenv func(string) str
 	stateDir := fs.String("state-dir", "deadspace-backfill", "directory of the resumable state (an embedded store) and the downloads")
 	dryRun := fs.Bool("dry-run", false, "derive and report counts without writing to the FHIR server")
 	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
-	files, status, ok := settings.ParseCommand(fs, args)
-	if !ok {
-		return status
+	files, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return settings.ExitOK
 	}
-	errs := []error{conn.ApplyEnv(fs, getenv), conn.ValidateFHIR()}
+	errs := []error{err, conn.ApplyEnv(fs, getenv), conn.ValidateFHIR()}
 	resolved, err := derivation.Resolve(version)
 	errs = append(errs, err)
 	opts := backfill.Options{

@@ -33,18 +33,13 @@ func replayCommand(ctx context.Context, args []string, getenv func(string) strin
 	codeSystemPath := fs.String("codesystem", "", "also write the project's CodeSystem (every derived code with its definition and unit, FHIR R4 JSON) to this file")
 	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
 	htmlPath := fs.String("html", "", "also write a self-contained HTML report (overview, timelines, explanations) to this file")
-	files, status, ok := settings.ParseCommand(fs, args)
-	if !ok {
-		return status
+	files, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return settings.ExitOK
 	}
-	var errs []error
-	if err := settings.ApplyEnv(fs, getenv); err != nil {
-		errs = append(errs, err)
-	}
+	errs := []error{err, settings.ApplyEnv(fs, getenv)}
 	resolved, err := derivation.Resolve(version)
-	if err != nil {
-		errs = append(errs, err)
-	}
+	errs = append(errs, err)
 	cfg, decOpts, encOpts := resolved.Derive, resolved.Decode, resolved.Encode
 	if *format != "ndjson" && *format != "table" {
 		errs = append(errs, fmt.Errorf("--format must be ndjson or table, got %q", *format))
@@ -60,8 +55,8 @@ func replayCommand(ctx context.Context, args []string, getenv func(string) strin
 	if len(files) == 0 {
 		errs = append(errs, errors.New("no input files"))
 	}
-	if len(errs) > 0 {
-		fmt.Fprintf(stderr, "deadspace replay: %v\n", errors.Join(errs...))
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace replay: %v\n", err)
 		return settings.ExitUsage
 	}
 	failed := func(what string, err error) int {

@@ -23,11 +23,11 @@ func serveCommand(ctx context.Context, args []string, getenv func(string) string
 	fs := settings.NewCommand("serve", serveUsage, stderr)
 	var cfg serve.Config
 	cfg.Bind(fs)
-	rest, status, ok := settings.ParseCommand(fs, args)
-	if !ok {
-		return status
+	rest, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return settings.ExitOK
 	}
-	var errs []error
+	errs := []error{err}
 	if len(rest) > 0 {
 		errs = append(errs, fmt.Errorf("unexpected arguments %q", rest))
 	}

@@ -8,6 +8,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/submit"
+	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 )
 
 const submitUsage = `usage: deadspace submit [flags] FILE...
@@ -22,17 +23,23 @@ func submitCommand(ctx context.Context, args []string, stdout, stderr io.Writer)
 	fs := settings.NewCommand("submit", submitUsage, stderr)
 	var opts submit.Options
 	fs.StringVar(&opts.Addr, "addr", "127.0.0.1:9090", "gRPC address of the running service (its --grpc-listen)")
-	fs.StringVar(&opts.CAFile, "ca", "", "PEM CA bundle that signed the service's certificate (TLS); without it, plaintext")
-	fs.StringVar(&opts.CertFile, "cert", "", "PEM client certificate, for a service with --grpc-client-ca")
-	fs.StringVar(&opts.KeyFile, "key", "", "PEM private key of --cert")
+	ca := fs.String("ca", "", "PEM CA bundle that signed the service's certificate (TLS); without it, plaintext")
+	cert := fs.String("cert", "", "PEM client certificate, for a service with --grpc-client-ca (with --key and --ca)")
+	key := fs.String("key", "", "PEM private key of --cert")
 	fs.IntVar(&opts.ChunkBytes, "chunk-bytes", submit.DefaultChunkBytes, "NDJSON bytes sent per call")
 	quiet := fs.Bool("quiet", false, "no progress lines")
-	files, status, ok := settings.ParseCommand(fs, args)
-	if !ok {
-		return status
+	files, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return settings.ExitOK
 	}
+	errs := []error{err}
 	if len(files) == 0 {
-		fmt.Fprintln(stderr, "deadspace submit: no input files")
+		errs = append(errs, errors.New("no input files"))
+	}
+	opts.Credentials, err = tlsconf.GRPCClient(tlsconf.ClientFlags{CA: "--ca", Cert: "--cert", Key: "--key"}, *ca, *cert, *key)
+	errs = append(errs, err)
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace submit: %v\n", err)
 		return settings.ExitUsage
 	}
 	if !*quiet {

@@ -3,7 +3,6 @@ package deadletters
 import (
 	"context"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -15,7 +14,6 @@ import (
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials"
-	"google.golang.org/grpc/credentials/insecure"
 
 	"github.com/deadspace-fhir/deadspace/api/settings"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
@@ -45,29 +43,18 @@ Flags:`
 
 // Main runs `deadspace deadletters`.
 func Main(ctx context.Context, args []string, getenv func(string) string, stdout, stderr io.Writer) int {
-	fs := flag.NewFlagSet("deadletters", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, usage)
-		fs.PrintDefaults()
-	}
+	fs := settings.NewCommand("deadletters", usage, stderr)
 	dataDir := fs.String("data-dir", "deadspace-data", "serve's data directory (serve must be stopped)")
 	addr := fs.String("grpc", "", "gRPC address of a running serve, e.g. 127.0.0.1:9090, instead of the data directory")
 	ca := fs.String("grpc-ca", "", "PEM CA bundle to verify serve's TLS certificate (TLS is off without it)")
-	cert := fs.String("grpc-cert", "", "PEM client certificate, when serve requires mutual TLS")
+	cert := fs.String("grpc-cert", "", "PEM client certificate, when serve requires mutual TLS (with --grpc-key and --grpc-ca)")
 	key := fs.String("grpc-key", "", "PEM private key of --grpc-cert")
 	limit := fs.Int("limit", DefaultLimit, fmt.Sprintf("list at most this many (1 to %d)", MaxLimit))
-	pos, err := settings.ParseInterspersed(fs, args)
-	if err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	pos, help, err := settings.ParseCommand(fs, args)
+	if help {
+		return exitOK
 	}
-	var errs []error
-	if err := settings.ApplyEnv(fs, getenv); err != nil {
-		errs = append(errs, err)
-	}
+	errs := []error{err, settings.ApplyEnv(fs, getenv)}
 	var id uint64
 	switch {
 	case len(pos) == 1 && pos[0] == "list":
@@ -82,18 +69,20 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	default:
 		errs = append(errs, fmt.Errorf("expected list, show ID or retry ID, got %q", strings.Join(pos, " ")))
 	}
-	if (*cert == "") != (*key == "") {
-		errs = append(errs, errors.New("--grpc-cert and --grpc-key go together"))
-	}
-	if *addr == "" && (*ca != "" || *cert != "") {
+	var creds credentials.TransportCredentials
+	switch {
+	case *addr != "":
+		creds, err = tlsconf.GRPCClient(tlsconf.ClientFlags{CA: "--grpc-ca", Cert: "--grpc-cert", Key: "--grpc-key"}, *ca, *cert, *key)
+		errs = append(errs, err)
+	case *ca != "" || *cert != "" || *key != "":
 		errs = append(errs, errors.New("--grpc-ca, --grpc-cert and --grpc-key need --grpc"))
 	}
-	if len(errs) > 0 {
-		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", errors.Join(errs...))
+	if err := errors.Join(errs...); err != nil {
+		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", err)
 		return exitUsage
 	}
 
-	op, closeOp, err := open(*dataDir, *addr, *ca, *cert, *key)
+	op, closeOp, err := open(*dataDir, *addr, creds)
 	if err != nil {
 		fmt.Fprintf(stderr, "deadspace deadletters: %v\n", err)
 		return exitFailed
@@ -127,17 +116,10 @@ func Main(ctx context.Context, args []string, getenv func(string) string, stdout
 	return exitOK
 }
 
-// open returns the operator for the data directory or the gRPC address.
-func open(dataDir, addr, ca, cert, key string) (Operator, func(), error) {
+// open returns the operator for the data directory or the gRPC address,
+// reached with creds.
+func open(dataDir, addr string, creds credentials.TransportCredentials) (Operator, func(), error) {
 	if addr != "" {
-		creds := insecure.NewCredentials()
-		if ca != "" {
-			c, err := tlsconf.ClientConfig(ca, cert, key)
-			if err != nil {
-				return nil, nil, fmt.Errorf("--grpc-ca: %w", err)
-			}
-			creds = credentials.NewTLS(c)
-		}
 		conn, err := grpc.NewClient(addr, grpc.WithTransportCredentials(creds))
 		if err != nil {
 			return nil, nil, fmt.Errorf("--grpc %s: %w", addr, err)

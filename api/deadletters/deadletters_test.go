@@ -162,6 +162,14 @@ func TestCommandUsage(t *testing.T) {
 		{"limit too large", []string{"list", "--limit", "5000"}, "--limit: limit must be 1 to 1000, got 5000"},
 		{"half a client certificate", []string{"list", "--grpc", "127.0.0.1:1", "--grpc-cert", "c.pem"}, "--grpc-cert and --grpc-key go together"},
 		{"TLS without gRPC", []string{"list", "--grpc-ca", "ca.pem"}, "need --grpc"},
+		{"a key without gRPC", []string{"list", "--grpc-key", "k.pem"}, "need --grpc"},
+		// Never plaintext with the certificate dropped.
+		{"a client certificate without the CA bundle", []string{"list", "--grpc", "127.0.0.1:1", "--grpc-cert", "c.pem", "--grpc-key", "k.pem"},
+			"--grpc-cert and --grpc-key need --grpc-ca"},
+		{"missing certificate files", []string{"list", "--grpc", "127.0.0.1:1", "--grpc-cert", "/nonexistent/c.pem", "--grpc-key", "/nonexistent/k.pem"},
+			"--grpc-cert and --grpc-key: reading certificate: open /nonexistent/c.pem"},
+		{"a missing CA bundle", []string{"list", "--grpc", "127.0.0.1:1", "--grpc-ca", "/nonexistent/ca.pem"}, "--grpc-ca: reading CA file: open /nonexistent/ca.pem"},
+		{"a limit that is not a number", []string{"list", "--limit", "ten"}, `--limit "ten": not a whole number`},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {

@@ -1,6 +1,7 @@
 package metrics
 
 import (
+	"slices"
 	"strconv"
 
 	"github.com/deadspace-fhir/deadspace/derive"
@@ -14,7 +15,9 @@ import (
 const other = "other"
 
 // The known label values. A value the engine starts to pass that is not
-// listed here is counted under "other" until it is added.
+// listed here is counted under "other" until it is added. Every value a
+// label can take, "other" included ([produced]), exists at zero from the
+// start.
 var (
 	// modes are the engine's input modes (webhook.Mode* and the engine's
 	// own polling and id-only notification fetches).
@@ -73,6 +76,13 @@ func (s set) of(v string) string {
 		return v
 	}
 	return other
+}
+
+// produced is every value a set of values gives a label through [set.of]:
+// each of them, and "other" for the rest. The series of all of them are
+// declared at the start, so the fallback too has a 0 to rise from.
+func produced(values []string) []string {
+	return append(slices.Clip(values), other)
 }
 
 // fhirStatus is the class of a FHIR server's answer (fhirStatuses).

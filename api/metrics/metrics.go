@@ -183,34 +183,36 @@ func New(version string) *Metrics {
 	return m
 }
 
-// predeclare creates the series whose label values are known, so a rate
-// or an alert on them has a 0 to start from instead of no data.
+// predeclare creates every series a label can take, "other" included
+// wherever a value goes through a closed set, so a rate or an alert on them
+// has a 0 to start from instead of no data. The FHIR status classes have no
+// fallback: fhirStatus maps every answer to one of them.
 func (m *Metrics) predeclare() {
-	for _, mode := range modes {
-		for _, rt := range resourceTypes {
+	for _, mode := range produced(modes) {
+		for _, rt := range produced(resourceTypes) {
 			m.received.WithLabelValues(mode, rt)
 		}
 	}
-	for _, r := range reasons() {
+	for _, r := range produced(reasons()) {
 		m.leftOut.WithLabelValues(r)
 	}
-	for _, c := range codes() {
-		for _, s := range entryStatuses {
+	for _, c := range produced(codes()) {
+		for _, s := range produced(entryStatuses) {
 			m.derived.WithLabelValues(c, s)
 		}
 	}
-	for _, o := range outcomes {
+	for _, o := range produced(outcomes) {
 		m.attempts.WithLabelValues(o)
 	}
-	for _, t := range triggers {
+	for _, t := range produced(triggers) {
 		m.catchUps.WithLabelValues(t)
 	}
-	for _, op := range operations {
+	for _, op := range produced(operations) {
 		for _, st := range fhirStatuses {
 			m.fhirDuration.WithLabelValues(op, st)
 		}
 	}
-	for _, st := range webhookStatuses {
+	for _, st := range produced(webhookStatuses) {
 		m.webhookCount.WithLabelValues(st)
 	}
 }

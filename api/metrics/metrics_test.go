@@ -9,6 +9,7 @@ import (
 	"regexp"
 	"runtime"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -22,7 +23,6 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // scrape fetches the handler's page the way Prometheus does, asking for
@@ -222,40 +222,158 @@ func TestEngineHooksCount(t *testing.T) {
 	}
 }
 
-// Series with a known label set exist at 0 before anything happens, so
-// increase() has a starting point; the sets are derive.AllReasons() and
-// encode.Codes().
+// Every series a label can take exists at 0 before anything happens, so
+// increase() and the alerts have a starting point: each known value (the
+// sets in labels.go, derive.AllReasons() and encode.Codes()) and "other",
+// which stands for anything outside them. Each case then feeds its metric
+// every known value and one from outside the sets: no series may appear on
+// first use.
 func TestKnownSeriesStartAtZero(t *testing.T) {
-	m := New("test")
+	const unknown = "not-in-any-set"
+	plusOther := func(values []string) int { return len(values) + 1 }
+	// every is each value of a set and one outside it.
+	every := func(values []string) []string { return append(slices.Clone(values), unknown) }
 	tests := []struct {
 		name   string
 		metric string
 		want   int
+		// fallback is the labels of one series that only "other" can fill.
+		fallback map[string]string
+		use      func(m *Metrics)
 	}{
-		{"every reason", "deadspace_inputs_left_out_total", len(derive.AllReasons())},
-		{"every code and status", "deadspace_derived_values_total", len(encode.Codes()) * len(entryStatuses)},
-		{"every trigger", "deadspace_catchups_total", len(triggers)},
-		{"every outcome", "deadspace_outbox_attempts_total", len(outcomes)},
-		{"every mode and type", "deadspace_resources_received_total", len(modes) * len(resourceTypes)},
-		{"every operation and status class", "deadspace_fhir_request_duration_seconds", len(operations) * len(fhirStatuses)},
-		{"every webhook status", "deadspace_webhook_requests_total", len(webhookStatuses)},
-		{"inputs left out, every reason", "deadspace_inputs_left_out", len(derive.AllReasons())},
-		{"values not emitted, every reason", "deadspace_values_not_emitted", len(derive.AllReasons())},
+		{"every reason", "deadspace_inputs_left_out_total", plusOther(reasons()), map[string]string{"reason": other}, func(m *Metrics) {
+			for _, r := range every(reasons()) {
+				m.EngineHooks().LeftOut(derive.Reason(r))
+			}
+		}},
+		{"every code and status", "deadspace_derived_values_total", plusOther(codes()) * plusOther(entryStatuses), map[string]string{"code": other, "status": other}, func(m *Metrics) {
+			for _, c := range every(codes()) {
+				for _, st := range every(entryStatuses) {
+					m.EngineHooks().Emitted(c, st)
+				}
+			}
+		}},
+		{"every trigger", "deadspace_catchups_total", plusOther(triggers), map[string]string{"trigger": other}, func(m *Metrics) {
+			for _, tr := range every(triggers) {
+				m.EngineHooks().CatchUp(tr)
+			}
+		}},
+		{"every outcome", "deadspace_outbox_attempts_total", plusOther(outcomes), map[string]string{"outcome": other}, func(m *Metrics) {
+			for _, o := range every(outcomes) {
+				m.EngineHooks().WriteResult(o)
+			}
+		}},
+		{"every mode and type", "deadspace_resources_received_total", plusOther(modes) * plusOther(resourceTypes), map[string]string{"mode": other, "resource_type": other}, func(m *Metrics) {
+			for _, mode := range every(modes) {
+				for _, rt := range every(resourceTypes) {
+					m.EngineHooks().Received(mode, rt)
+				}
+			}
+		}},
+		// fhirStatus maps every answer to a class: no fallback there.
+		{"every operation and status class", "deadspace_fhir_request_duration_seconds", plusOther(operations) * len(fhirStatuses), map[string]string{"operation": other, "status": "error"}, func(m *Metrics) {
+			for _, op := range every(operations) {
+				for _, code := range []int{0, -1, 101, 200, 204, 304, 404, 418, 429, 500, 503, 1000} {
+					m.ClientObserver()(op, code, time.Millisecond)
+				}
+			}
+		}},
+		{"every webhook status", "deadspace_webhook_requests_total", plusOther(webhookStatuses), map[string]string{"status": other}, func(m *Metrics) {
+			codes := []int{http.StatusTeapot, http.StatusNotImplemented, 299}
+			for _, st := range webhookStatuses {
+				n, err := strconv.Atoi(st)
+				if err != nil {
+					t.Fatal(err)
+				}
+				codes = append(codes, n)
+			}
+			for _, code := range codes {
+				h := m.InstrumentWebhook(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) { w.WriteHeader(code) }))
+				h.ServeHTTP(httptest.NewRecorder(), httptest.NewRequest(http.MethodPost, "/notify", nil))
+			}
+		}},
+		{"inputs left out, every reason", "deadspace_inputs_left_out", plusOther(reasons()), map[string]string{"reason": other}, func(m *Metrics) {
+			var omitted []derive.Omission
+			for _, r := range every(reasons()) {
+				omitted = append(omitted, derive.Omission{Ref: "Observation/o1", Reason: derive.Reason(r)})
+				m.EngineHooks().LeftOut(derive.Reason(r))
+			}
+			m.EngineHooks().Evaluated("Patient/p1", omitted)
+		}},
+		{"values not emitted, every reason", "deadspace_values_not_emitted", plusOther(reasons()), map[string]string{"reason": other}, func(m *Metrics) {
+			var omitted []derive.Omission
+			for _, r := range every(reasons()) {
+				omitted = append(omitted, derive.Omission{Code: derive.CodePhysiologic, Reason: derive.Reason(r)})
+			}
+			m.EngineHooks().Evaluated("Patient/p1", omitted)
+		}},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			n, err := testutil.GatherAndCount(m.Registry(), tt.metric)
-			if err != nil {
-				t.Fatal(err)
+			m := New("test")
+			if n := seriesOf(t, m, tt.metric); n != tt.want {
+				t.Errorf("%s has %d series at the start, want %d", tt.metric, n, tt.want)
 			}
-			if n != tt.want {
-				t.Errorf("%s has %d series, want %d", tt.metric, n, tt.want)
+			if v, ok := valueOf(t, m, tt.metric, tt.fallback); !ok || v != 0 {
+				t.Errorf("%s%v at the start: %v (present %v), want 0", tt.metric, tt.fallback, v, ok)
+			}
+			tt.use(m)
+			if n := seriesOf(t, m, tt.metric); n != tt.want {
+				t.Errorf("%s has %d series after every value was used, want the %d it started with", tt.metric, n, tt.want)
+			}
+			if v, ok := valueOf(t, m, tt.metric, tt.fallback); !ok || v == 0 {
+				t.Errorf("%s%v after a value outside the sets: %v (present %v), want it counted", tt.metric, tt.fallback, v, ok)
 			}
 		})
 	}
-	if got := testutil.ToFloat64(m.leftOut.WithLabelValues(string(derive.ReasonUnpaired))); got != 0 {
+	if got := testutil.ToFloat64(New("test").leftOut.WithLabelValues(string(derive.ReasonUnpaired))); got != 0 {
 		t.Errorf("a fresh counter reads %v", got)
 	}
+}
+
+// seriesOf counts the series of one metric in a scrape.
+func seriesOf(t *testing.T, m *Metrics, metric string) int {
+	t.Helper()
+	n, err := testutil.GatherAndCount(m.Registry(), metric)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return n
+}
+
+// valueOf is the value of the series of metric with exactly these labels
+// (a histogram's sample count), and whether the scrape has it.
+func valueOf(t *testing.T, m *Metrics, metric string, labels map[string]string) (float64, bool) {
+	t.Helper()
+	fams, err := m.Registry().Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, fam := range fams {
+		if fam.GetName() != metric {
+			continue
+		}
+	series:
+		for _, s := range fam.GetMetric() {
+			if len(s.GetLabel()) != len(labels) {
+				continue
+			}
+			for _, l := range s.GetLabel() {
+				if labels[l.GetName()] != l.GetValue() {
+					continue series
+				}
+			}
+			switch {
+			case s.GetCounter() != nil:
+				return s.GetCounter().GetValue(), true
+			case s.GetGauge() != nil:
+				return s.GetGauge().GetValue(), true
+			case s.GetHistogram() != nil:
+				return float64(s.GetHistogram().GetSampleCount()), true
+			}
+		}
+	}
+	return 0, false
 }
 
 func TestClientObserver(t *testing.T) {
@@ -440,8 +558,8 @@ func TestInstrumentWebhook(t *testing.T) {
 			if got := testutil.ToFloat64(m.webhookCount.WithLabelValues(tt.status)); got != 1 {
 				t.Errorf("requests{status=%s} = %v, want 1", tt.status, got)
 			}
-			if n := testutil.CollectAndCount(m.webhookCount); n != len(webhookStatuses)+boolInt(tt.status == other) {
-				t.Errorf("%d status series, want the %d known ones (and other when used)", n, len(webhookStatuses))
+			if n := testutil.CollectAndCount(m.webhookCount); n != len(webhookStatuses)+1 {
+				t.Errorf("%d status series, want the %d known ones and other", n, len(webhookStatuses))
 			}
 			if inFlight != 1 || testutil.ToFloat64(m.webhookActive) != 0 {
 				t.Errorf("in flight during %v, after %v; want 1, 0", inFlight, testutil.ToFloat64(m.webhookActive))
@@ -564,11 +682,4 @@ func FuzzLabelsStayBounded(f *testing.F) {
 			}
 		}
 	})
-}
-
-func boolInt(b bool) int {
-	if b {
-		return 1
-	}
-	return 0
 }

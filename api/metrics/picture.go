@@ -100,15 +100,11 @@ func (p *picture) of(subject string) (inputs, values map[string]int) {
 	return maps.Clone(ev.inputs), maps.Clone(ev.values)
 }
 
-// Collect reports every known reason, 0 included, so the series exist from
-// the start.
+// Collect reports every known reason and "other", 0 included, so the
+// series exist from the start.
 func (p *picture) Collect(ch chan<- prometheus.Metric) {
 	inputs, values := p.totals()
-	all := reasons()
-	if inputs[other] > 0 || values[other] > 0 {
-		all = append(all, other)
-	}
-	for _, r := range all {
+	for _, r := range produced(reasons()) {
 		ch <- prometheus.MustNewConstMetric(descInputsLeftOut, prometheus.GaugeValue, float64(inputs[r]), r)
 		ch <- prometheus.MustNewConstMetric(descValuesNotEmitted, prometheus.GaugeValue, float64(values[r]), r)
 	}

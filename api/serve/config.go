@@ -208,6 +208,9 @@ func (u *UIConfig) validate(tls bool) []error {
 	if u.SessionKey != "" && len(u.SessionKey) < ui.MinSessionKeyBytes {
 		errs = append(errs, fmt.Errorf("the session key (--ui-session-key-file or DEADSPACE_UI_SESSION_KEY) has %d bytes, fewer than %d", len(u.SessionKey), ui.MinSessionKeyBytes))
 	}
+	if _, err := u.oidcCAs(); err != nil {
+		errs = append(errs, err)
+	}
 	if u.SessionTTL < time.Minute || u.SessionTTL > 7*24*time.Hour {
 		errs = append(errs, fmt.Errorf("--ui-session-ttl must be between 1m and 168h, got %v", u.SessionTTL))
 	}
@@ -260,7 +263,9 @@ func readSecret(path string) (string, error) {
 }
 
 // Validate checks every setting and reports all problems at once. It also
-// loads secrets from their files.
+// loads secrets from their files, and reads every other file a setting
+// names (certificates, keys, CA bundles, the site code table), so that a
+// missing or unreadable one is reported here, before anything is created.
 func (c *Config) Validate() error {
 	var errs []error
 	errs = append(errs, c.validateFHIR()...)
@@ -299,6 +304,8 @@ func (c *Config) Validate() error {
 		}
 	} else if c.DataDir == "" {
 		errs = append(errs, errors.New("--data-dir is required for the embedded store"))
+	} else if err := c.checkDataDir(); err != nil {
+		errs = append(errs, err)
 	}
 	if c.WebhookHeader == "" || strings.ContainsAny(c.WebhookHeader, " :\r\n") {
 		errs = append(errs, fmt.Errorf("--webhook-header must be a header name, got %q", c.WebhookHeader))
@@ -338,6 +345,8 @@ func (c *Config) Validate() error {
 	if c.GRPCClientCA != "" && c.TLSCert == "" {
 		errs = append(errs, errors.New("--grpc-client-ca needs --tls-cert and --tls-key"))
 	}
+	_, _, tlsErrs := c.serverTLS()
+	errs = append(errs, tlsErrs...)
 	if c.GRPCListen != "" {
 		if _, _, err := net.SplitHostPort(c.GRPCListen); err != nil {
 			errs = append(errs, fmt.Errorf("--grpc-listen: %w", err))
@@ -353,6 +362,11 @@ func (c *Config) Validate() error {
 		errs = append(errs, err)
 	}
 	errs = append(errs, c.UI.validate(c.TLSCert != "")...)
+	if c.UI.Listen != "" {
+		if err := c.checkAccessLog(); err != nil {
+			errs = append(errs, err)
+		}
+	}
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":
 	default:
@@ -362,7 +376,7 @@ func (c *Config) Validate() error {
 }
 
 // ValidateFHIR checks the FHIR connection settings only, reporting every
-// problem at once, and reads the token file.
+// problem at once, reads the token file and checks the private key file.
 func (c *Config) ValidateFHIR() error { return errors.Join(c.validateFHIR()...) }
 
 func (c *Config) validateFHIR() []error {
@@ -390,6 +404,9 @@ func (c *Config) validateFHIR() []error {
 		if c.FHIRToken != "" {
 			errs = append(errs, errors.New("use either a static FHIR token or --fhir-token-url, not both"))
 		}
+	}
+	if _, err := c.fhirKey(); err != nil {
+		errs = append(errs, err)
 	}
 	if c.MaxTxEntries < 2 {
 		errs = append(errs, fmt.Errorf("--fhir-max-transaction-entries must be at least 2, got %d", c.MaxTxEntries))

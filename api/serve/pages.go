@@ -3,12 +3,10 @@ package serve
 import (
 	"context"
 	"crypto/tls"
-	"crypto/x509"
 	"fmt"
 	"net"
 	"net/http"
 	"os"
-	"path/filepath"
 	"strings"
 	"time"
 
@@ -49,11 +47,7 @@ func (s *Service) newPages(evs *ui.OpEvents) (*pages, error) {
 	if err != nil {
 		return nil, err
 	}
-	path := cfg.AccessLog
-	if path == "" {
-		path = filepath.Join(s.cfg.DataDir, "access.log")
-	}
-	f, err := os.OpenFile(path, os.O_CREATE|os.O_APPEND|os.O_WRONLY, 0o600)
+	f, err := os.OpenFile(s.cfg.accessLogPath(), os.O_CREATE|os.O_APPEND|os.O_WRONLY, 0o600)
 	if err != nil {
 		return nil, fmt.Errorf("--ui-access-log: %w", err)
 	}
@@ -90,15 +84,11 @@ func (s *Service) pagesAuth() (ui.Authenticator, error) {
 		return ui.ProxyAuth{Header: cfg.UserHeader, Trusted: trusted}, nil
 	}
 	var client *http.Client
-	if cfg.OIDCCA != "" {
-		pem, err := os.ReadFile(cfg.OIDCCA)
-		if err != nil {
-			return nil, fmt.Errorf("--ui-oidc-ca: %w", err)
-		}
-		pool := x509.NewCertPool()
-		if !pool.AppendCertsFromPEM(pem) {
-			return nil, fmt.Errorf("--ui-oidc-ca: no certificates in %s", cfg.OIDCCA)
-		}
+	pool, err := cfg.oidcCAs()
+	if err != nil {
+		return nil, err
+	}
+	if pool != nil {
 		client = &http.Client{Timeout: 30 * time.Second, Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: pool, MinVersion: tls.VersionTLS12}}}
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)

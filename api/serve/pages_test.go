@@ -30,6 +30,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/api/submit"
+	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/ui/browsertest"
@@ -93,7 +94,11 @@ func startPages(t *testing.T) *pagesEnv {
 	// facts, as the README's submit command orders them.
 	files := []string{"../../testdata/demo/Patient.ndjson", "../../testdata/demo/Encounter.ndjson",
 		"../../testdata/demo/Observation.bloodgas.ndjson", "../../testdata/demo/Observation.devices.ndjson"}
-	sum, err := submit.Run(context.Background(), submit.Options{Addr: s.svc.GRPCAddr(), CAFile: ca.CertFile, ChunkBytes: 512 << 10}, files)
+	creds, err := tlsconf.GRPCClient(tlsconf.ClientFlags{CA: "--ca", Cert: "--cert", Key: "--key"}, ca.CertFile, "", "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	sum, err := submit.Run(context.Background(), submit.Options{Addr: s.svc.GRPCAddr(), Credentials: creds, ChunkBytes: 512 << 10}, files)
 	// The demo holds a venous, a preliminary and a mislabelled-unit blood
 	// gas, which the service must refuse, each with its reason and line.
 	refused := map[string]bool{"specimen-not-arterial": true, "status-not-usable": true, "value-in-another-unit": true}

@@ -24,7 +24,6 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/api/store/pgstore"
-	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/ui"
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/derive"
@@ -47,7 +46,11 @@ type Service struct {
 	Metrics *metrics.Metrics
 	grpc    *grpcapi.Server
 	grpcLn  net.Listener
-	tls     *tls.Config
+	// tls serves HTTP and the pages; nil without TLS.
+	tls *tls.Config
+	// grpcTLS serves gRPC, requiring client certificates with
+	// --grpc-client-ca; nil without TLS.
+	grpcTLS *tls.Config
 	up      upstream
 	// codeSystem is the project's CodeSystem resource, published once at
 	// start so consumers can resolve the derived codes.
@@ -130,6 +133,11 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 			return nil, err
 		}
 	}
+	// Files before the store: a bad one leaves nothing created.
+	var tlsErrs []error
+	if s.tls, s.grpcTLS, tlsErrs = cfg.serverTLS(); len(tlsErrs) > 0 {
+		return nil, errors.Join(tlsErrs...)
+	}
 	s.store, err = openStore(cfg)
 	if err != nil {
 		return nil, err
@@ -172,13 +180,6 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		fmt.Fprintln(w, "ok")
 	})
 	mux.HandleFunc("GET /readyz", s.ready)
-	if cfg.TLSCert != "" {
-		s.tls, err = tlsconf.ServerConfig(cfg.TLSCert, cfg.TLSKey, "")
-		if err != nil {
-			s.store.Close()
-			return nil, fmt.Errorf("--tls-cert: %w", err)
-		}
-	}
 	s.ln, err = net.Listen("tcp", cfg.Listen)
 	if err != nil {
 		s.store.Close()
@@ -231,9 +232,9 @@ func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Obs
 	var auth client.Authorizer
 	switch {
 	case cfg.FHIRTokenURL != "":
-		key, err := client.LoadPrivateKeyPEM(cfg.FHIRKeyFile)
+		key, err := cfg.fhirKey()
 		if err != nil {
-			return nil, fmt.Errorf("--fhir-private-key-file: %w", err)
+			return nil, err
 		}
 		ba, err := client.NewBackendAuth(client.BackendConfig{
 			TokenURL: cfg.FHIRTokenURL, ClientID: cfg.FHIRClientID, Scope: cfg.FHIRScope,
@@ -352,15 +353,11 @@ func (s *Service) GRPCAddr() string {
 
 // grpcCredentials are TLS, with client certificates required when a client
 // CA is configured, or nil for plaintext on a loopback address.
-func (s *Service) grpcCredentials() (credentials.TransportCredentials, error) {
-	if s.cfg.TLSCert == "" {
-		return nil, nil
+func (s *Service) grpcCredentials() credentials.TransportCredentials {
+	if s.grpcTLS == nil {
+		return nil
 	}
-	c, err := tlsconf.ServerConfig(s.cfg.TLSCert, s.cfg.TLSKey, s.cfg.GRPCClientCA)
-	if err != nil {
-		return nil, err
-	}
-	return credentials.NewTLS(c), nil
+	return credentials.NewTLS(s.grpcTLS)
 }
 
 // Engine is the service's engine, for the gRPC API and tests.
@@ -389,18 +386,7 @@ func (s *Service) Run(ctx context.Context) error {
 	defer stopGRPC()
 	var grpcDone chan struct{}
 	if s.grpc != nil {
-		creds, err := s.grpcCredentials()
-		if err != nil {
-			stopEngine()
-			wg.Wait()
-			_ = s.http.Close()
-			if s.pages != nil {
-				_ = s.pages.srv.Close()
-				_ = s.pages.access.Close()
-			}
-			_ = s.store.Close()
-			return fmt.Errorf("gRPC TLS: %w", err)
-		}
+		creds := s.grpcCredentials()
 		grpcDone = make(chan struct{})
 		go s.followReadiness(grpcCtx)
 		go func() {

@@ -21,6 +21,7 @@ import (
 	"google.golang.org/grpc/credentials"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
 
+	"github.com/deadspace-fhir/deadspace/api/deadletters"
 	"github.com/deadspace-fhir/deadspace/api/replay"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	"github.com/deadspace-fhir/deadspace/api/tlsconf/tlstest"
@@ -289,6 +290,25 @@ func TestTLSForHTTPAndMutualTLSForGRPC(t *testing.T) {
 	}
 	if err := health(withoutCert); err == nil {
 		t.Error("gRPC answered a client without a certificate under mutual TLS")
+	}
+
+	// The commands that call gRPC present the certificate their flags name.
+	for _, tc := range []struct {
+		name string
+		args []string
+		code int
+	}{
+		{"with the client certificate", []string{"--grpc-ca", ca.CertFile, "--grpc-cert", clientCert.CertFile, "--grpc-key", clientCert.KeyFile}, 0},
+		{"without it", []string{"--grpc-ca", ca.CertFile}, 1},
+	} {
+		t.Run("deadletters "+tc.name, func(t *testing.T) {
+			var out, errOut strings.Builder
+			args := append([]string{"--grpc", s.svc.GRPCAddr()}, append(tc.args, "list")...)
+			code := deadletters.Main(context.Background(), args, func(string) string { return "" }, &out, &errOut)
+			if code != tc.code || (code == 0) != strings.Contains(out.String(), "0 dead letters") {
+				t.Errorf("exit %d, want %d; stdout %q, stderr %q", code, tc.code, out.String(), errOut.String())
+			}
+		})
 	}
 }
 

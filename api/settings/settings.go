@@ -165,7 +165,8 @@ func EnvName(flagName string) string {
 
 // ApplyEnv sets every flag of fs not given on the command line from its
 // environment variable. It reports every bad value at once, naming the
-// variable, its flag and the value.
+// variable, its flag and the value. A flag whose variable does not parse
+// keeps its default, so that no check reports a value nobody gave.
 func ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
 	set := make(map[string]bool)
 	fs.Visit(func(f *flag.Flag) { set[f.Name] = true })
@@ -175,7 +176,11 @@ func ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
 			return
 		}
 		if v := getenv(EnvName(f.Name)); v != "" {
+			before := f.Value.String()
 			if err := f.Value.Set(v); err != nil {
+				// The flag package's values set their zero on a failed
+				// parse: put back what the flag held.
+				_ = f.Value.Set(before)
 				errs = append(errs, fmt.Errorf("%s (--%s) = %q: %s", EnvName(f.Name), f.Name, v, expected(f, err)))
 			}
 		}
@@ -206,22 +211,83 @@ func expected(f *flag.Flag, err error) string {
 // ParseInterspersed parses flags that may come before, between or after the
 // positional arguments, as in "replay a.ndjson b.ndjson --format table", and
 // returns the positional arguments. "--" ends the flags.
+//
+// It reads every argument whatever goes wrong, so that a command reports
+// every bad flag together with its other problems: the error joins one
+// line per unknown flag, flag without its value and value its flag cannot
+// take (naming the flag, the value and what the flag takes). A flag whose
+// value does not parse keeps the value it had and counts as given (fs.Visit
+// lists it), so neither a range check nor its environment variable reports
+// a value nobody gave. An argument that follows an unknown flag is taken as
+// positional. After -h or -help it prints the usage and returns
+// flag.ErrHelp.
+//
+// The syntax is the flag package's: -name or --name, then =value or the
+// next argument as the value; a boolean flag takes only =value.
 func ParseInterspersed(fs *flag.FlagSet, args []string) ([]string, error) {
 	var positional []string
-	for {
-		if err := fs.Parse(args); err != nil {
-			return nil, err
+	var errs []error
+	for i := 0; i < len(args); i++ {
+		arg := args[i]
+		if arg == "--" {
+			positional = append(positional, args[i+1:]...)
+			break
 		}
-		rest := fs.Args()
-		if len(rest) == 0 {
-			return positional, nil
+		if len(arg) < 2 || arg[0] != '-' {
+			positional = append(positional, arg)
+			continue
 		}
-		if len(args) > len(rest) && args[len(args)-len(rest)-1] == "--" {
-			return append(positional, rest...), nil
+		name, value, hasValue := strings.Cut(strings.TrimPrefix(arg[1:], "-"), "=")
+		if name == "" || name[0] == '-' {
+			errs = append(errs, fmt.Errorf("bad flag syntax: %s", arg))
+			continue
 		}
-		positional = append(positional, rest[0])
-		args = rest[1:]
+		f := fs.Lookup(name)
+		if f == nil {
+			if name == "h" || name == "help" {
+				usage(fs)
+				return nil, flag.ErrHelp
+			}
+			errs = append(errs, fmt.Errorf("unknown flag --%s (-h lists the flags)", name))
+			continue
+		}
+		if !hasValue {
+			switch {
+			case isBool(f):
+				value = "true"
+			case i+1 < len(args):
+				i++
+				value = args[i]
+			default:
+				errs = append(errs, fmt.Errorf("--%s needs a value", name))
+				continue
+			}
+		}
+		before := f.Value.String()
+		if err := fs.Set(name, value); err != nil {
+			// The flag package's values set their zero on a failed parse:
+			// put back what the flag held, which also marks it as given.
+			_ = fs.Set(name, before)
+			errs = append(errs, fmt.Errorf("--%s %q: %s", name, value, expected(f, err)))
+		}
 	}
+	return positional, errors.Join(errs...)
+}
+
+// isBool reports whether f is a boolean flag, which takes no separate value.
+func isBool(f *flag.Flag) bool {
+	b, ok := f.Value.(interface{ IsBoolFlag() bool })
+	return ok && b.IsBoolFlag()
+}
+
+// usage prints fs's usage, as the flag package does after -h.
+func usage(fs *flag.FlagSet) {
+	if fs.Usage != nil {
+		fs.Usage()
+		return
+	}
+	fmt.Fprintf(fs.Output(), "Usage of %s:\n", fs.Name())
+	fs.PrintDefaults()
 }
 
 // Exit statuses every command shares: 0 all well, 1 the run failed, 2 bad
@@ -247,16 +313,14 @@ func NewCommand(name, usage string, stderr io.Writer) *flag.FlagSet {
 }
 
 // ParseCommand parses a command's arguments (flags anywhere, see
-// [ParseInterspersed]). When the command must stop here it returns ok
-// false and the exit status: ExitOK after -h, ExitUsage after a bad flag
-// (the flag package has already said why on the command's output).
-func ParseCommand(fs *flag.FlagSet, args []string) (positional []string, status int, ok bool) {
-	positional, err := ParseInterspersed(fs, args)
-	switch {
-	case errors.Is(err, flag.ErrHelp):
-		return nil, ExitOK, false
-	case err != nil:
-		return nil, ExitUsage, false
+// [ParseInterspersed]). help is true after -h, once the usage is printed:
+// the command stops there with ExitOK. err joins every bad flag: the
+// command reports it with the rest of its configuration's problems and
+// exits with ExitUsage.
+func ParseCommand(fs *flag.FlagSet, args []string) (positional []string, help bool, err error) {
+	positional, err = ParseInterspersed(fs, args)
+	if errors.Is(err, flag.ErrHelp) {
+		return nil, true, nil
 	}
-	return positional, ExitOK, true
+	return positional, false, err
 }

@@ -3,6 +3,7 @@ package settings_test
 import (
 	"errors"
 	"flag"
+	"fmt"
 	"io"
 	"math"
 	"os"
@@ -179,5 +180,180 @@ func TestServeRegistersTheSameDerivationFlags(t *testing.T) {
 	}
 	if !reflect.DeepEqual(cfg.Derivation, settings.Defaults()) {
 		t.Errorf("serve's derivation defaults %+v, want %+v", cfg.Derivation, settings.Defaults())
+	}
+}
+
+// commandFlags is a command's flag set as the commands build it: the
+// derivation flags and a boolean of the command's own.
+func commandFlags(t *testing.T) (*flag.FlagSet, *settings.Derivation, *bool, *strings.Builder) {
+	t.Helper()
+	var out strings.Builder
+	fs := settings.NewCommand("x", "usage: x [flags] FILE...", &out)
+	d := new(settings.Derivation)
+	d.Register(fs)
+	dry := fs.Bool("dry-run", false, "derive without writing")
+	return fs, d, dry, &out
+}
+
+// TestParseReportsEveryBadFlag checks that parsing goes on past a bad flag,
+// so a command reports every one with its other problems, and that a flag
+// whose value does not parse keeps its value: no range check then reports
+// a value nobody gave.
+func TestParseReportsEveryBadFlag(t *testing.T) {
+	cases := []struct {
+		name       string
+		args       []string
+		want       []string // in the parse error, in order
+		positional []string
+		check      func(t *testing.T, d settings.Derivation, dry bool)
+	}{
+		{"every bad value at once", []string{"--window", "5x", "--barometric-pressure", "0", "--fall-drop", "ten", "a.ndjson"},
+			[]string{`--window "5x": not a duration such as 90s, 5m or 2h`, `--fall-drop "ten": not a number`}, []string{"a.ndjson"},
+			func(t *testing.T, d settings.Derivation, _ bool) {
+				_, err := d.Resolve("t")
+				if err == nil || !strings.Contains(err.Error(), "--barometric-pressure must be 250 to 2300 mm[Hg], got 0") {
+					t.Errorf("the range check of a value given lacks: %v", err)
+				}
+				for _, f := range []string{"--window must", "--fall-drop must"} {
+					if err != nil && strings.Contains(err.Error(), f) {
+						t.Errorf("a value that did not parse was range-checked: %v", err)
+					}
+				}
+			}},
+		{"a bad value keeps the one given before", []string{"--window", "10m", "--window=zz"}, []string{`--window "zz": not a duration`}, nil,
+			func(t *testing.T, d settings.Derivation, _ bool) {
+				if d.Window != 10*time.Minute {
+					t.Errorf("window %v, want the 10m given first", d.Window)
+				}
+			}},
+		{"a bad value keeps the default", []string{"--barometric-pressure", "abc"}, []string{`--barometric-pressure "abc": not a number`}, nil,
+			func(t *testing.T, d settings.Derivation, _ bool) {
+				if d.Barometric != settings.Defaults().Barometric {
+					t.Errorf("barometric %v, want the default", d.Barometric)
+				}
+			}},
+		{"unknown flags between good ones", []string{"--nope", "--window", "7m", "-also-nope=1", "a.ndjson"},
+			[]string{"unknown flag --nope", "unknown flag --also-nope"}, []string{"a.ndjson"},
+			func(t *testing.T, d settings.Derivation, _ bool) {
+				if d.Window != 7*time.Minute {
+					t.Errorf("window %v, want 7m", d.Window)
+				}
+			}},
+		{"a flag without its value", []string{"a.ndjson", "--window"}, []string{"--window needs a value"}, []string{"a.ndjson"}, nil},
+		{"bad syntax", []string{"---window", "5m", "--=x"}, []string{"bad flag syntax: ---window", "bad flag syntax: --=x"}, []string{"5m"}, nil},
+		{"a boolean takes no separate value", []string{"--dry-run", "a.ndjson", "-dry-run=maybe"}, []string{`--dry-run "maybe": not true or false`}, []string{"a.ndjson"},
+			func(t *testing.T, _ settings.Derivation, dry bool) {
+				if !dry {
+					t.Error("--dry-run before the bad one was lost")
+				}
+			}},
+		{"flags anywhere, -- ends them", []string{"a.ndjson", "--window", "2m", "-", "--", "--fall-drop", "x"}, nil, []string{"a.ndjson", "-", "--fall-drop", "x"},
+			func(t *testing.T, d settings.Derivation, _ bool) {
+				if d.Window != 2*time.Minute || d.FallDrop != settings.Defaults().FallDrop {
+					t.Errorf("window %v, fall drop %v", d.Window, d.FallDrop)
+				}
+			}},
+		{"nothing", nil, nil, nil, nil},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			fs, d, dry, out := commandFlags(t)
+			positional, help, err := settings.ParseCommand(fs, tc.args)
+			if help {
+				t.Fatal("help without -h")
+			}
+			if !reflect.DeepEqual(positional, tc.positional) {
+				t.Errorf("positional %q, want %q", positional, tc.positional)
+			}
+			if len(tc.want) == 0 && err != nil {
+				t.Errorf("error %v, want none", err)
+			}
+			msg := fmt.Sprint(err)
+			at := 0
+			for _, w := range tc.want {
+				i := strings.Index(msg[at:], w)
+				if i < 0 {
+					t.Errorf("error %q lacks %q (after what came before it)", msg, w)
+					continue
+				}
+				at += i + len(w)
+			}
+			if n := strings.Count(msg, "\n") + 1; err != nil && n != len(tc.want) {
+				t.Errorf("%d problems reported, want %d: %q", n, len(tc.want), msg)
+			}
+			if out.Len() > 0 {
+				t.Errorf("parsing printed %q: the command reports the errors with its others", out)
+			}
+			checkNoGoFields(t, msg)
+			if tc.check != nil {
+				tc.check(t, *d, *dry)
+			}
+		})
+	}
+}
+
+// TestParseHelp checks that -h prints the usage and stops the command
+// (ExitOK), whatever else is wrong.
+func TestParseHelp(t *testing.T) {
+	for _, args := range [][]string{{"-h"}, {"--help"}, {"--window", "5x", "-help", "--nope"}} {
+		t.Run(strings.Join(args, " "), func(t *testing.T) {
+			fs, _, _, out := commandFlags(t)
+			_, help, err := settings.ParseCommand(fs, args)
+			if !help || err != nil {
+				t.Errorf("help %v, error %v; want help and no error", help, err)
+			}
+			if !strings.Contains(out.String(), "usage: x [flags] FILE...") || !strings.Contains(out.String(), "-fall-baseline") {
+				t.Errorf("usage printed: %q", out)
+			}
+		})
+	}
+}
+
+// TestBadValueIsReportedOnce checks that a value that does not parse,
+// from the command line or the environment, is reported once, by its parse
+// error: the flag keeps the value it had, so no range check reports a
+// value nobody gave, and a bad flag on the command line still wins over
+// its variable.
+func TestBadValueIsReportedOnce(t *testing.T) {
+	cases := []struct {
+		name string
+		args []string
+		env  map[string]string
+		want []string
+	}{
+		{"bad variables", nil, map[string]string{"DEADSPACE_BAROMETRIC_PRESSURE": "abc", "DEADSPACE_WINDOW": "zz"},
+			[]string{`DEADSPACE_BAROMETRIC_PRESSURE (--barometric-pressure) = "abc": not a number`, `DEADSPACE_WINDOW (--window) = "zz": not a duration`}},
+		{"a bad flag over a variable", []string{"--window", "5x"}, map[string]string{"DEADSPACE_WINDOW": "10s"},
+			[]string{`--window "5x": not a duration`}},
+		{"bad flag and bad variable of other flags", []string{"--fall-sustain", "long"}, map[string]string{"DEADSPACE_FALL_BASELINE": "short"},
+			[]string{`--fall-sustain "long"`, `DEADSPACE_FALL_BASELINE (--fall-baseline) = "short"`}},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			fs, d, _, _ := commandFlags(t)
+			_, _, err := settings.ParseCommand(fs, tc.args)
+			_, rerr := d.Resolve("t")
+			err = errors.Join(err, settings.ApplyEnv(fs, func(k string) string { return tc.env[k] }))
+			if rerr != nil {
+				t.Errorf("before the environment: %v", rerr)
+			}
+			_, rerr = d.Resolve("t")
+			all := errors.Join(err, rerr)
+			if all == nil {
+				t.Fatal("accepted")
+			}
+			msg := all.Error()
+			for _, w := range tc.want {
+				if strings.Count(msg, w) != 1 {
+					t.Errorf("%q is not reported once in %q", w, msg)
+				}
+			}
+			if n := strings.Count(msg, "\n") + 1; n != len(tc.want) {
+				t.Errorf("%d problems, want only the %d parse errors: %q", n, len(tc.want), msg)
+			}
+			if *d != settings.Defaults() {
+				t.Errorf("settings %+v, want the defaults kept", *d)
+			}
+		})
 	}
 }

@@ -23,7 +23,6 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/grpc/status"
 
-	"github.com/deadspace-fhir/deadspace/api/tlsconf"
 	pb "github.com/deadspace-fhir/deadspace/proto/deadspace/v1"
 )
 
@@ -37,11 +36,11 @@ const MaxLineBytes = 16 << 20
 // Options configures a submission.
 type Options struct {
 	Addr string
-	// CAFile, CertFile and KeyFile configure TLS (and mutual TLS) to the
-	// service; without CAFile the connection is plaintext, for a service
-	// on a loopback address.
-	CAFile, CertFile, KeyFile string
-	ChunkBytes                int
+	// Credentials secure the connection to the service (TLS, mutual TLS:
+	// tlsconf.GRPCClient builds them from the command's flags); nil is
+	// plaintext, for a service on a loopback address.
+	Credentials credentials.TransportCredentials
+	ChunkBytes  int
 	// Progress receives one line per chunk; nil discards it.
 	Progress io.Writer
 	// Timeout bounds each call.
@@ -96,9 +95,9 @@ func Run(ctx context.Context, opts Options, files []string) (Summary, error) {
 	if opts.Progress == nil {
 		opts.Progress = io.Discard
 	}
-	creds, err := credentialsFor(opts)
-	if err != nil {
-		return Summary{}, err
+	creds := opts.Credentials
+	if creds == nil {
+		creds = insecure.NewCredentials()
 	}
 	conn, err := grpc.NewClient(opts.Addr, grpc.WithTransportCredentials(creds),
 		grpc.WithDefaultCallOptions(grpc.MaxCallSendMsgSize(opts.ChunkBytes+MaxLineBytes+1024)))
@@ -116,20 +115,6 @@ func Run(ctx context.Context, opts Options, files []string) (Summary, error) {
 		return s.sum, fmt.Errorf("submit: %d problems: %w", len(s.sum.Problems), ErrNotAllAccepted)
 	}
 	return s.sum, nil
-}
-
-func credentialsFor(o Options) (credentials.TransportCredentials, error) {
-	if o.CAFile == "" {
-		if o.CertFile != "" || o.KeyFile != "" {
-			return nil, errors.New("submit: a client certificate needs --ca")
-		}
-		return insecure.NewCredentials(), nil
-	}
-	c, err := tlsconf.ClientConfig(o.CAFile, o.CertFile, o.KeyFile)
-	if err != nil {
-		return nil, fmt.Errorf("submit: %w", err)
-	}
-	return credentials.NewTLS(c), nil
 }
 
 type sender struct {

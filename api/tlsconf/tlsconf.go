@@ -1,6 +1,10 @@
 // Package tlsconf builds the service's TLS configurations from PEM files: the listener's
-// (optionally demanding client certificates, i.e. mutual TLS) and the outbound client's, for
-// the FHIR server and the token endpoint.
+// (optionally demanding client certificates, i.e. mutual TLS), the outbound client's, for
+// the FHIR server and the token endpoint, and the credentials of the commands that call
+// serve's gRPC API ([GRPCClient]).
+//
+// Errors name the files and what went wrong with them, not this package: callers put the
+// flag's name in front.
 //
 // Both refuse anything older than TLS 1.2, which RFC 8996 (Moriarty and Farrell, 2021)
 // deprecates TLS 1.0 and 1.1 in favour of; cipher suites are Go's defaults.
@@ -24,6 +28,9 @@ import (
 	"os"
 	"sync"
 	"time"
+
+	"google.golang.org/grpc/credentials"
+	"google.golang.org/grpc/credentials/insecure"
 )
 
 // reloadInterval bounds how often a handshake may re-read the key pair files: often enough that a
@@ -35,11 +42,17 @@ const reloadInterval = 10 * time.Second
 // set, every client must present a certificate that chains to one of its CAs
 // (tls.RequireAndVerifyClientCert).
 func ServerConfig(certFile, keyFile, clientCAFile string) (*tls.Config, error) {
-	cfg, err := serverConfig(certFile, keyFile, clientCAFile, time.Now)
-	if err != nil {
-		return nil, fmt.Errorf("tlsconf.ServerConfig: %w", err)
-	}
-	return cfg, nil
+	return serverConfig(certFile, keyFile, clientCAFile, time.Now)
+}
+
+// RequireClientCerts returns a copy of the listener configuration cfg (from ServerConfig,
+// serving the same certificate and reloading it as cfg does) on which every client must
+// present a certificate that chains to one of the CAs in pool (tls.RequireAndVerifyClientCert).
+func RequireClientCerts(cfg *tls.Config, pool *x509.CertPool) *tls.Config {
+	c := cfg.Clone()
+	c.ClientCAs = pool
+	c.ClientAuth = tls.RequireAndVerifyClientCert
+	return c
 }
 
 func serverConfig(certFile, keyFile, clientCAFile string, now func() time.Time) (*tls.Config, error) {
@@ -57,12 +70,11 @@ func serverConfig(certFile, keyFile, clientCAFile string, now func() time.Time) 
 		},
 	}
 	if clientCAFile != "" {
-		pool, err := loadPool(clientCAFile)
+		pool, err := LoadPool(clientCAFile)
 		if err != nil {
 			return nil, err
 		}
-		cfg.ClientCAs = pool
-		cfg.ClientAuth = tls.RequireAndVerifyClientCert
+		cfg = RequireClientCerts(cfg, pool)
 	}
 	return cfg, nil
 }
@@ -71,17 +83,13 @@ func serverConfig(certFile, keyFile, clientCAFile string, now func() time.Time) 
 // (for a FHIR server behind a private CA); certFile and keyFile, if set, are the client
 // certificate presented to servers that ask for one. Either both or neither must be given.
 func ClientConfig(caFile, certFile, keyFile string) (*tls.Config, error) {
-	cfg, err := clientConfig(caFile, certFile, keyFile, time.Now)
-	if err != nil {
-		return nil, fmt.Errorf("tlsconf.ClientConfig: %w", err)
-	}
-	return cfg, nil
+	return clientConfig(caFile, certFile, keyFile, time.Now)
 }
 
 func clientConfig(caFile, certFile, keyFile string, now func() time.Time) (*tls.Config, error) {
 	cfg := &tls.Config{MinVersion: tls.VersionTLS12}
 	if caFile != "" {
-		pool, err := loadPool(caFile)
+		pool, err := LoadPool(caFile)
 		if err != nil {
 			return nil, err
 		}
@@ -92,20 +100,81 @@ func clientConfig(caFile, certFile, keyFile string, now func() time.Time) (*tls.
 	case certFile == "" || keyFile == "":
 		return nil, errors.New("a client certificate needs both a certificate file and a key file")
 	default:
-		kp, err := newKeyPair(certFile, keyFile, now)
-		if err != nil {
+		if err := presentClientCert(cfg, certFile, keyFile, now); err != nil {
 			return nil, err
-		}
-		// Sent whatever CAs the server lists: a server that asks and gets nothing fails the
-		// handshake with a less helpful error than one that gets the wrong certificate.
-		cfg.GetClientCertificate = func(*tls.CertificateRequestInfo) (*tls.Certificate, error) {
-			return kp.get(), nil
 		}
 	}
 	return cfg, nil
 }
 
-func loadPool(path string) (*x509.CertPool, error) {
+// presentClientCert makes cfg present the certificate in certFile and keyFile, reloaded as
+// the listener's is.
+func presentClientCert(cfg *tls.Config, certFile, keyFile string, now func() time.Time) error {
+	kp, err := newKeyPair(certFile, keyFile, now)
+	if err != nil {
+		return err
+	}
+	// Sent whatever CAs the server lists: a server that asks and gets nothing fails the
+	// handshake with a less helpful error than one that gets the wrong certificate.
+	cfg.GetClientCertificate = func(*tls.CertificateRequestInfo) (*tls.Certificate, error) {
+		return kp.get(), nil
+	}
+	return nil
+}
+
+// ClientFlags are the names a command gives the flags of [GRPCClient]'s three files, as
+// its messages should show them ("--grpc-ca" and so on).
+type ClientFlags struct{ CA, Cert, Key string }
+
+// GRPCClient returns the transport credentials of a command that calls serve's gRPC API,
+// from the files its flags name: plaintext when none is given (a service on a loopback
+// address); otherwise TLS, verifying the service against the CA bundle caFile only, and
+// presenting certFile and keyFile when given (for a service with --grpc-client-ca).
+//
+// A certificate without its key, or either without the CA bundle, is refused rather than
+// dropped for a plaintext connection; every file is read here, so a missing or unreadable one is a
+// configuration error before anything connects. Every problem is reported at once, each
+// naming its flag.
+func GRPCClient(flags ClientFlags, caFile, certFile, keyFile string) (credentials.TransportCredentials, error) {
+	if caFile == "" && certFile == "" && keyFile == "" {
+		return insecure.NewCredentials(), nil
+	}
+	var errs []error
+	if (certFile == "") != (keyFile == "") {
+		errs = append(errs, fmt.Errorf("%s and %s go together", flags.Cert, flags.Key))
+		// The one given is still checked, so a mistyped path shows now.
+		for _, f := range [][2]string{{flags.Cert, certFile}, {flags.Key, keyFile}} {
+			if f[1] != "" {
+				if _, err := os.Stat(f[1]); err != nil {
+					errs = append(errs, fmt.Errorf("%s: %w", f[0], err))
+				}
+			}
+		}
+	}
+	if caFile == "" {
+		errs = append(errs, fmt.Errorf("%s and %s need %s, the CA bundle that signed the service's certificate: a client certificate is only sent over TLS", flags.Cert, flags.Key, flags.CA))
+	}
+	cfg := &tls.Config{MinVersion: tls.VersionTLS12}
+	if caFile != "" {
+		pool, err := LoadPool(caFile)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("%s: %w", flags.CA, err))
+		}
+		cfg.RootCAs = pool
+	}
+	if certFile != "" && keyFile != "" {
+		if err := presentClientCert(cfg, certFile, keyFile, time.Now); err != nil {
+			errs = append(errs, fmt.Errorf("%s and %s: %w", flags.Cert, flags.Key, err))
+		}
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+	return credentials.NewTLS(cfg), nil
+}
+
+// LoadPool reads a PEM CA bundle; a file without a certificate is an error.
+func LoadPool(path string) (*x509.CertPool, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
 		return nil, fmt.Errorf("reading CA file: %w", err)

@@ -304,3 +304,58 @@ func FuzzParsePool(f *testing.F) {
 		}
 	})
 }
+
+// TestGRPCClient checks the one rule of the commands that call serve's
+// gRPC API: no file is plaintext; a CA bundle is TLS; a client certificate
+// needs its key and the CA bundle, never silently dropped for plaintext;
+// every file is read at once, and every problem named by its flag.
+func TestGRPCClient(t *testing.T) {
+	ca := tlstest.NewCA(t)
+	client := ca.Client(t, "early-warning-score")
+	missing := filepath.Join(t.TempDir(), "missing.pem")
+	flags := ClientFlags{CA: "--ca", Cert: "--cert", Key: "--key"}
+	cases := []struct {
+		name          string
+		ca, cert, key string
+		protocol      string   // when accepted
+		wantErr       []string // when refused
+	}{
+		{"no files: plaintext", "", "", "", "insecure", nil},
+		{"a CA bundle: TLS", ca.CertFile, "", "", "tls", nil},
+		{"a CA bundle and a client certificate: mutual TLS", ca.CertFile, client.CertFile, client.KeyFile, "tls", nil},
+		{"a client certificate without the CA bundle", "", client.CertFile, client.KeyFile, "", []string{"--cert and --key need --ca"}},
+		{"a certificate alone", "", client.CertFile, "", "", []string{"--cert and --key go together", "--cert and --key need --ca"}},
+		{"a key without its certificate", ca.CertFile, "", client.KeyFile, "", []string{"--cert and --key go together"}},
+		{"a missing CA bundle", missing, "", "", "", []string{"--ca: reading CA file"}},
+		{"a CA bundle without certificates", client.KeyFile, "", "", "", []string{"--ca: CA file " + client.KeyFile + ": no PEM certificates found"}},
+		{"a missing certificate", ca.CertFile, missing, client.KeyFile, "", []string{"--cert and --key: reading certificate"}},
+		{"a missing key", ca.CertFile, client.CertFile, missing, "", []string{"--cert and --key: reading key"}},
+		{"a certificate with another's key", ca.CertFile, client.CertFile, ca.Client(t, "other").KeyFile, "", []string{"--cert and --key: key pair"}},
+		{"everything wrong at once", missing, missing, "", "", []string{"--cert and --key go together", "--cert: stat " + missing, "--ca: reading CA file"}},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			creds, err := GRPCClient(flags, tc.ca, tc.cert, tc.key)
+			if len(tc.wantErr) == 0 {
+				if err != nil {
+					t.Fatal(err)
+				}
+				if got := creds.Info().SecurityProtocol; got != tc.protocol {
+					t.Errorf("security protocol %q, want %q", got, tc.protocol)
+				}
+				return
+			}
+			if err == nil {
+				t.Fatalf("accepted, as %s", creds.Info().SecurityProtocol)
+			}
+			for _, w := range tc.wantErr {
+				if !strings.Contains(err.Error(), w) {
+					t.Errorf("error %q lacks %q", err, w)
+				}
+			}
+			if n := strings.Count(err.Error(), "\n") + 1; n != len(tc.wantErr) {
+				t.Errorf("%d problems, want %d: %q", n, len(tc.wantErr), err)
+			}
+		})
+	}
+}
