@@ -1,10 +1,13 @@
 package engine_test
 
 import (
+	"encoding/json"
 	"net/http"
+	"strings"
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/fhirtest/fakefhir"
 )
 
@@ -23,6 +26,60 @@ func TestCreateProvenanceIsWrittenAfterItsObservationsLanded(t *testing.T) {
 	r.wantCurrent(2)
 	if got := r.activities(); got["CREATE"] != 1 || len(r.provenances()) != 1 {
 		t.Errorf("the server holds Provenances %v, want one CREATE", got)
+	}
+}
+
+// A request made only of conditional creates that the server refuses with
+// 412 (its condition matched more than one resource, R4 http.html#ccreate)
+// goes to the dead letters with the server's answer at once: no retry can
+// change it, and in the outbox it would block its series for ever, out of
+// an operator's reach.
+func TestConditionalCreateMatchingSeveralIsBuried(t *testing.T) {
+	for _, tc := range []struct {
+		name       string
+		maxEntries int
+		setup      func(r *writeRig)
+		wantReason string
+	}{
+		{"two Observations of a series on the server", 0, func(r *writeRig) {
+			// Say two backfills against a server that did not honour the
+			// condition; the series identifier is the ledger's.
+			ws := r.outbox()
+			if len(ws) != 1 {
+				r.t.Fatalf("%d writes in the outbox, want the create", len(ws))
+			}
+			for range 2 {
+				dup, _ := json.Marshal(map[string]any{"resourceType": "Observation", "status": "final",
+					"code":       map[string]any{"text": "x"},
+					"identifier": []any{map[string]any{"system": encode.DefaultOptions().SeriesSystem, "value": ws[0].Series[0]}}})
+				if _, err := r.fake.Put(dup); err != nil {
+					r.t.Fatal(err)
+				}
+			}
+		}, "If-None-Exist matches more than one resource"},
+		{"two Provenances with the write's tag", 2, func(r *writeRig) {
+			r.fake.Inject(fakefhir.Fault{Method: http.MethodPost, Path: "Provenance", Status: http.StatusPreconditionFailed, Text: "tag matches 2 Provenances", Times: 1})
+		}, "tag matches 2 Provenances"},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			r := newWriteRig(t, tc.maxEntries)
+			r.open()
+			r.ingest(append(r.inputs, r.gas(1, 44))...)
+			tc.setup(r)
+			r.eng.FlushNow(t.Context())
+			h := r.health()
+			if h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != 1 {
+				var last string
+				if ws := r.outbox(); len(ws) > 0 {
+					last = ws[0].LastError
+				}
+				t.Fatalf("after one attempt: %d writes in the outbox (last error %q), %d dead letters; want the write buried", h.Stats.OutboxDepth, last, h.Stats.DeadLetters)
+			}
+			reasons := r.deadLetters()
+			if len(reasons) != 1 || !strings.Contains(reasons[0], tc.wantReason) || !strings.Contains(reasons[0], "matched more than one resource") {
+				t.Errorf("dead letter reasons %q, want the server's answer %q and what to do", reasons, tc.wantReason)
+			}
+		})
 	}
 }
 

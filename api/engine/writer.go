@@ -211,12 +211,14 @@ func (e *Engine) writeResult(outcome string) {
 
 // permanent reports whether the server refused the write for a reason a
 // retry cannot change: the content (400, 422), the resource (404, 405,
-// 410), or a create this write depends on that was itself refused.
-// Authentication (401, 403) and conflicts (409, 412) are retried: a
-// rotated credential or a concurrent edit must not send a whole backlog
-// to the dead letters.
+// 410), a create this write depends on that was itself refused, a
+// revision on the server this service did not write, or a conditional
+// create whose condition matched several resources (412 on a request of
+// conditional creates only). Authentication (401, 403) and conflicts (409,
+// and 412 on an update) are retried: a rotated credential or a concurrent
+// edit must not send a whole backlog to the dead letters.
 func permanent(err error) bool {
-	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) {
+	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) || errors.Is(err, errCreateMatchesMany) {
 		return true
 	}
 	var ce *client.Error
@@ -242,6 +244,21 @@ func backoff(attempts int) time.Duration {
 // errNewerOnServer means an update met a revision on the server that this
 // service did not write (or does not know): it is never overwritten.
 var errNewerOnServer = errors.New("the server holds a revision of the derived Observation that this service did not write; it is left as it is")
+
+// errCreateMatchesMany means a request made only of conditional creates was
+// refused with 412: its condition (a series identifier, or a Provenance's
+// tag) matched more than one resource on the server (R4 http.html#ccreate),
+// which no retry changes; an operator must remove the duplicates.
+var errCreateMatchesMany = errors.New("a conditional create matched more than one resource on the server; remove the duplicates, then retry the write")
+
+// onlyCreates marks a 412 answer to a request made only of conditional
+// creates as [errCreateMatchesMany], keeping the server's answer.
+func onlyCreates(err error) error {
+	if errors.Is(err, client.ErrPreconditionFailed) {
+		return fmt.Errorf("%w: %w", errCreateMatchesMany, err)
+	}
+	return err
+}
 
 // send encodes the typed write with the server's ids as known now, posts
 // it, and returns the server's id and version of each series it carried.
@@ -353,7 +370,7 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 			return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		ids, _, err := e.sendPlan(ctx, tw.Kind, plan, withProvenance)
-		if err == nil || !errors.Is(err, client.ErrPreconditionFailed) {
+		if err == nil || !errors.Is(err, client.ErrPreconditionFailed) || errors.Is(err, errCreateMatchesMany) {
 			return ids, err
 		}
 		landed, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
@@ -372,7 +389,8 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 // sendPlan posts a plan's transactions. It returns the server's id and
 // version of each series, and the series whose conditional create matched
 // an Observation already on the server (answered 200, not 201). Without
-// withProvenance it posts the Observations only.
+// withProvenance it posts the Observations only. A 412 to a request made
+// only of conditional creates is [errCreateMatchesMany].
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
@@ -383,6 +401,9 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		}
 		resp, err := e.transaction(ctx, tx, plan.Len()+1)
 		if err != nil {
+			if kind == encode.WriteCreate {
+				err = onlyCreates(err)
+			}
 			return nil, nil, err
 		}
 		for i := range plan.Len() {
@@ -402,6 +423,9 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		}
 		resp, err := e.transaction(ctx, tx, to-from)
 		if err != nil {
+			if kind == encode.WriteCreate {
+				err = onlyCreates(err)
+			}
 			return nil, nil, err
 		}
 		for i := from; i < to; i++ {
@@ -424,7 +448,7 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
-		return nil, nil, err
+		return nil, nil, onlyCreates(err)
 	}
 	return server, matched, nil
 }
