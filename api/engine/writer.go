@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"maps"
 	"math/rand/v2"
 	"net/http"
 	"slices"
@@ -363,38 +364,67 @@ func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) 
 // update sends a revision or withdrawal against the server's versions,
 // resolving a failed If-Match as [Engine.send] describes; withProvenance
 // says whether its Provenance goes too.
+//
+// After a failed If-Match, the values the server already holds as this
+// write writes them (a split write that partly landed, a late copy, an
+// answer lost) are not sent again: the rest is sent against the versions
+// read, and the Provenance still cites every value, with the versions the
+// write was made to replace as the revised ones (server's versions when
+// update was called). When every value landed, the Provenance is still
+// sent: it may be what failed, and its create is conditional on its tag,
+// so the server keeps one.
 func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, server map[string]encode.ServerRef, withProvenance bool) (map[string][2]string, error) {
+	server = maps.Clone(server)
+	landed := make(map[string][2]string, len(tw.Series))
 	for attempt := 0; ; attempt++ {
 		plan, err := e.cfg.Encoder.Plan(tw, server, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
+		if err == nil && len(landed) > 0 {
+			done := make(map[string]string, len(landed))
+			for s, id := range landed {
+				done[s] = id[0]
+			}
+			plan, err = plan.Remaining(done)
+		}
 		if err != nil {
 			return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		ids, _, err := e.sendPlan(ctx, tw.Kind, plan, withProvenance)
-		if err == nil || !errors.Is(err, client.ErrPreconditionFailed) || errors.Is(err, errCreateMatchesMany) {
-			return ids, err
+		if err == nil {
+			maps.Copy(ids, landed)
+			return ids, nil
 		}
-		landed, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
-		switch {
-		case rerr != nil:
+		if !errors.Is(err, client.ErrPreconditionFailed) || errors.Is(err, errCreateMatchesMany) {
+			return nil, err
+		}
+		now, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
+		if rerr != nil {
 			return nil, rerr
-		case landed != nil:
-			return landed, nil
-		case attempt >= 2:
+		}
+		maps.Copy(landed, now)
+		if len(again) > 0 && attempt >= 2 {
 			return nil, err // retried later from the outbox
 		}
-		server = again
+		for s, v := range again {
+			sr := server[s]
+			if sr.Revises == "" {
+				sr.Revises = sr.Version
+			}
+			sr.Version = v
+			server[s] = sr
+		}
 	}
 }
 
 // sendPlan posts a plan's transactions. It returns the server's id and
 // version of each series, and the series whose conditional create matched
 // an Observation already on the server (answered 200, not 201). Without
-// withProvenance it posts the Observations only. A 412 to a request made
-// only of conditional creates is [errCreateMatchesMany].
+// withProvenance it posts the Observations only; a plan without
+// Observations (every value landed) posts its Provenance only. A 412 to a
+// request made only of conditional creates is [errCreateMatchesMany].
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
-	if withProvenance && plan.Len()+1 <= e.maxEntries() {
+	if withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries() {
 		tx, err := plan.Transaction(0, plan.Len(), true)
 		if err != nil {
 			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
@@ -454,12 +484,13 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 }
 
 // afterPrecondition reads what the server holds of each series of an
-// update that failed its If-Match. It returns the server ids when this
-// write's values are already there, or the versions to try again against
-// when the server holds earlier values of this service's.
-func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]encode.ServerRef, error) {
+// update that failed its If-Match. It returns the server's id and version
+// of the series that already hold this write's values, and the versions to
+// send the others again against, which hold earlier values of this
+// service's. Anything else is [errNewerOnServer].
+func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]string, error) {
 	landed := make(map[string][2]string, plan.Len())
-	again := make(map[string]encode.ServerRef, plan.Len())
+	again := make(map[string]string, plan.Len())
 	for i := range plan.Len() {
 		series := plan.Series(i)
 		sr := server[series]
@@ -479,15 +510,12 @@ func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encod
 			landed[series] = [2]string{sr.ID, held.version}
 		case key == plan.Key(i) || key == en.Key || slices.Contains(en.Revisions, key):
 			// An earlier value of this service's: update it once more.
+			again[series] = held.version
 		default:
 			return nil, nil, errNewerOnServer
 		}
-		again[series] = encode.ServerRef{ID: sr.ID, Version: held.version}
 	}
-	if len(landed) == plan.Len() {
-		return landed, nil, nil
-	}
-	return nil, again, nil
+	return landed, again, nil
 }
 
 // heldValue is what the server holds of one derived Observation: this
