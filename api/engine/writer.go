@@ -9,6 +9,7 @@ import (
 	"math/rand/v2"
 	"net/http"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
@@ -261,6 +262,11 @@ func onlyCreates(err error) error {
 	return err
 }
 
+// foreign is [errNewerOnServer] with what set the server's value apart.
+func foreign(why string) error {
+	return fmt.Errorf("%w (%s)", errNewerOnServer, why)
+}
+
 // send encodes the typed write with the server's ids as known now, posts
 // it, and returns the server's id and version of each series it carried.
 //
@@ -311,7 +317,11 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 // derived before (by serve from fewer readings, before a backfill). Unless
 // it already holds this write's value, it is updated to this write's value
 // against the version read, as a revision is; a value this service did
-// not write is never overwritten.
+// not write is never overwritten (see [Engine.ownValue]). A matched value
+// whose key this service's ledger does not know (written from another
+// store) cannot be compared with what was written: it is updated when it
+// holds a live status this service writes (final or amended), and
+// otherwise left to an operator.
 func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) (map[string][2]string, error) {
 	plan, err := e.cfg.Encoder.Plan(tw, nil, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
 	if err != nil {
@@ -332,15 +342,21 @@ func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) 
 		if err != nil {
 			return nil, err
 		}
+		own, err := e.ownValue(ctx, series, held, plan.Key(i), plan.Observation(i))
+		if err != nil {
+			return nil, err
+		}
 		switch {
-		case held.series != series:
-			return nil, errNewerOnServer
+		case own.unknown && (held.status == statusFinal || held.status == statusAmended):
+			// Another store's value of the series: updated below.
+		case !own.ok:
+			return nil, foreign(own.why)
 		case held.key == plan.Key(i) && !held.withdrawn:
 			ids[series] = [2]string{ids[series][0], held.version}
-		default:
-			stale[series] = encode.ServerRef{ID: ids[series][0], Version: held.version}
-			revise = append(revise, series)
+			continue
 		}
+		stale[series] = encode.ServerRef{ID: ids[series][0], Version: held.version}
+		revise = append(revise, series)
 	}
 	if len(revise) == 0 {
 		return ids, nil
@@ -498,32 +514,39 @@ func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encod
 		if err != nil {
 			return nil, nil, err
 		}
-		key, heldSeries, withdrawn := held.key, held.series, held.withdrawn
 		en, err := e.cfg.Store.Entry(ctx, series)
 		if err != nil {
 			return nil, nil, fmt.Errorf("engine: %w", err)
 		}
 		switch {
-		case heldSeries != series:
-			return nil, nil, errNewerOnServer
-		case key == plan.Key(i) && withdrawn == (kind == encode.WriteWithdraw):
+		case held.series != series:
+			return nil, nil, foreign("it carries another series identifier")
+		case held.key != plan.Key(i) && held.key != en.Key && !slices.Contains(en.Revisions, held.key):
+			return nil, nil, foreign("it carries a key this service never gave the series")
+		}
+		own, err := e.ownValue(ctx, series, held, plan.Key(i), plan.Observation(i))
+		switch {
+		case err != nil:
+			return nil, nil, err
+		case !own.ok:
+			return nil, nil, foreign(own.why)
+		case held.key == plan.Key(i) && held.withdrawn == (kind == encode.WriteWithdraw):
 			landed[series] = [2]string{sr.ID, held.version}
-		case key == plan.Key(i) || key == en.Key || slices.Contains(en.Revisions, key):
+		default:
 			// An earlier value of this service's: update it once more.
 			again[series] = held.version
-		default:
-			return nil, nil, errNewerOnServer
 		}
 	}
 	return landed, again, nil
 }
 
 // heldValue is what the server holds of one derived Observation: this
-// service's key and series identifiers, whether it is withdrawn, and the
-// version read.
+// service's key and series identifiers, its status, whether it is
+// withdrawn, the version read, and the resource.
 type heldValue struct {
-	key, series, version string
-	withdrawn            bool
+	key, series, version, status string
+	withdrawn                    bool
+	body                         json.RawMessage
 }
 
 // readHeld reads a derived Observation from the server.
@@ -543,7 +566,7 @@ func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
 	if err := json.Unmarshal(body, &held); err != nil {
 		return heldValue{}, fmt.Errorf("engine: reading the server's derived Observation: %w", err)
 	}
-	h := heldValue{version: meta.VersionID, withdrawn: held.Status == statusWithdrawn}
+	h := heldValue{version: meta.VersionID, status: held.Status, withdrawn: held.Status == statusWithdrawn, body: body}
 	for _, id := range held.Identifier {
 		switch id.System {
 		case opts.IdentifierSystem:
@@ -553,6 +576,88 @@ func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
 		}
 	}
 	return h, nil
+}
+
+// ownership says whether a value the server holds is this service's own:
+// ok when it is; else why not, and unknown when the ledger keeps no
+// record of its key for the series to compare it with.
+type ownership struct {
+	ok, unknown bool
+	why         string
+}
+
+// ownValue decides whether held, read from the server for series, is a
+// value this service wrote: it must carry the series, and say (in status,
+// value, unit, interpretation, notes, effective time, subject and code,
+// [encode.ValueDiff]) what this service wrote for its key and status. That
+// is wrote, this write's own Observation (of key planKey), when held has
+// its key and status; otherwise the Observation the ledger's version of
+// held's key encodes with held's status. Identifiers alone do not make a
+// value this service's: an edit on the server keeps them.
+func (e *Engine) ownValue(ctx context.Context, series string, held heldValue, planKey string, wrote json.RawMessage) (ownership, error) {
+	if held.series != series {
+		return ownership{why: "it carries another series identifier"}, nil
+	}
+	var status struct {
+		Status string `json:"status"`
+	}
+	if err := json.Unmarshal(wrote, &status); err != nil {
+		return ownership{}, fmt.Errorf("engine: the written Observation: %w", err)
+	}
+	if held.key != planKey || held.status != status.Status {
+		own, raw, err := e.wroteFor(ctx, series, held.key, held.status)
+		if err != nil || !own.ok {
+			return own, err
+		}
+		wrote = raw
+	}
+	diff, err := encode.ValueDiff(held.body, wrote)
+	if err != nil {
+		return ownership{}, fmt.Errorf("engine: %w", err)
+	}
+	switch len(diff) {
+	case 0:
+		return ownership{ok: true}, nil
+	case 1:
+		return ownership{why: "its " + diff[0] + " differs from what this service wrote"}, nil
+	}
+	return ownership{why: "its " + strings.Join(diff, ", ") + " differ from what this service wrote"}, nil
+}
+
+// wroteFor returns the Observation this service wrote for key in series
+// with status, encoded again from the ledger's version of key.
+func (e *Engine) wroteFor(ctx context.Context, series, key, status string) (ownership, json.RawMessage, error) {
+	switch status {
+	case statusFinal, statusAmended, statusWithdrawn:
+	default:
+		return ownership{why: fmt.Sprintf("its status %q is not one this service writes", status)}, nil, nil
+	}
+	unknown := ownership{unknown: true, why: "this service keeps no record of the value it carries"}
+	en, err := e.cfg.Store.EntryVersion(ctx, key)
+	switch {
+	case errors.Is(err, store.ErrNotFound):
+		return unknown, nil, nil
+	case err != nil:
+		return ownership{}, nil, fmt.Errorf("engine: %w", err)
+	case en.Series != series:
+		return ownership{why: "it carries the key of another series"}, nil, nil
+	case status == statusWithdrawn && en.Status != statusWithdrawn:
+		return ownership{why: "this service never withdrew the value it carries"}, nil, nil
+	}
+	var p EntryPayload
+	if err := json.Unmarshal(en.Payload, &p); err != nil {
+		return ownership{}, nil, fmt.Errorf("engine: ledger entry payload: %w", err)
+	}
+	if err := e.loadResult(ctx, &p); errors.Is(err, store.ErrNotFound) {
+		return unknown, nil, nil
+	} else if err != nil {
+		return ownership{}, nil, err
+	}
+	raw, err := e.cfg.Encoder.ValueJSON(encode.Write{Subject: en.Subject, Derivation: p.Derivation, Fall: p.Fall, Why: p.Why}, series, status)
+	if err != nil {
+		return ownership{}, nil, fmt.Errorf("engine: ledger entry: %w", err)
+	}
+	return ownership{ok: true}, raw, nil
 }
 
 // checkIDs refuses an acknowledgement without a server id: every later
