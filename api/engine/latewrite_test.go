@@ -68,22 +68,12 @@ func newLateEngine(t *testing.T, baseURL string) (*engine.Engine, *boltstore.Sto
 
 // gas is version v of the blood gas, with PaCO2 value.
 func (r *lateRig) gas(v int, value float64) json.RawMessage {
-	status := "final"
-	if v > 1 {
-		status = "amended"
-	}
-	return obs("gas", fmt.Sprint(v), status, "2019-8", "mm[Hg]", value, r.at, r.updated.Add(time.Duration(v)*time.Minute))
+	return gasVersion(v, value, r.at, r.updated)
 }
 
 func (r *lateRig) ingest(raws ...json.RawMessage) {
 	r.t.Helper()
-	ctx := context.Background()
-	if _, err := r.eng.Ingest(ctx, "test", raws); err != nil {
-		r.t.Fatal(err)
-	}
-	if err := r.eng.EvaluateNow(ctx); err != nil {
-		r.t.Fatal(err)
-	}
+	ingestNow(r.t, r.eng, raws...)
 }
 
 // flush sends due writes until the outbox is empty.
@@ -126,36 +116,44 @@ func (r *lateRig) flushHeld() {
 	}
 }
 
+// serverValue is one derived Observation on the server.
 type serverValue struct {
 	id, version, key, status string
+	raw                      json.RawMessage
+}
+
+// parseServerValue reads a derived Observation from the server; series
+// is empty for any other Observation.
+func parseServerValue(t testing.TB, raw json.RawMessage) (series string, v serverValue) {
+	t.Helper()
+	opts := encode.DefaultOptions()
+	var o struct {
+		ID         string
+		Status     string
+		Meta       struct{ VersionID string }
+		Identifier []struct{ System, Value string }
+	}
+	if err := json.Unmarshal(raw, &o); err != nil {
+		t.Fatal(err)
+	}
+	v = serverValue{id: o.ID, version: o.Meta.VersionID, status: o.Status, raw: raw}
+	for _, id := range o.Identifier {
+		switch id.System {
+		case opts.IdentifierSystem:
+			v.key = id.Value
+		case opts.SeriesSystem:
+			series = id.Value
+		}
+	}
+	return series, v
 }
 
 // values returns the derived Observations on the server by series.
 func (r *lateRig) values() map[string][]serverValue {
 	r.t.Helper()
-	opts := encode.DefaultOptions()
 	out := map[string][]serverValue{}
 	for _, raw := range r.peer.Search(r.t, "Observation?_count=100") {
-		var o struct {
-			ID         string
-			Status     string
-			Meta       struct{ VersionID string }
-			Identifier []struct{ System, Value string }
-		}
-		if err := json.Unmarshal(raw, &o); err != nil {
-			r.t.Fatal(err)
-		}
-		v := serverValue{id: o.ID, version: o.Meta.VersionID, status: o.Status}
-		series := ""
-		for _, id := range o.Identifier {
-			switch id.System {
-			case opts.IdentifierSystem:
-				v.key = id.Value
-			case opts.SeriesSystem:
-				series = id.Value
-			}
-		}
-		if series != "" {
+		if series, v := parseServerValue(r.t, raw); series != "" {
 			out[series] = append(out[series], v)
 		}
 	}

@@ -5,9 +5,11 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"maps"
 	"math/rand/v2"
 	"net/http"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
@@ -221,12 +223,14 @@ func (e *Engine) writeResult(outcome string) {
 
 // permanent reports whether the server refused the write for a reason a
 // retry cannot change: the content (400, 422), the resource (404, 405,
-// 410), or a create this write depends on that was itself refused.
-// Authentication (401, 403) and conflicts (409, 412) are retried: a
-// rotated credential or a concurrent edit must not send a whole backlog
-// to the dead letters.
+// 410), a create this write depends on that was itself refused, a
+// revision on the server this service did not write, or a conditional
+// create whose condition matched several resources (412 on a request of
+// conditional creates only). Authentication (401, 403) and conflicts (409,
+// and 412 on an update) are retried: a rotated credential or a concurrent
+// edit must not send a whole backlog to the dead letters.
 func permanent(err error) bool {
-	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) {
+	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) || errors.Is(err, errCreateMatchesMany) {
 		return true
 	}
 	var ce *client.Error
@@ -252,6 +256,26 @@ func backoff(attempts int) time.Duration {
 // errNewerOnServer means an update met a revision on the server that this
 // service did not write (or does not know): it is never overwritten.
 var errNewerOnServer = errors.New("the server holds a revision of the derived Observation that this service did not write; it is left as it is")
+
+// errCreateMatchesMany means a request made only of conditional creates was
+// refused with 412: its condition (a series identifier, or a Provenance's
+// tag) matched more than one resource on the server (R4 http.html#ccreate),
+// which no retry changes; an operator must remove the duplicates.
+var errCreateMatchesMany = errors.New("a conditional create matched more than one resource on the server; remove the duplicates, then retry the write")
+
+// onlyCreates marks a 412 answer to a request made only of conditional
+// creates as [errCreateMatchesMany], keeping the server's answer.
+func onlyCreates(err error) error {
+	if errors.Is(err, client.ErrPreconditionFailed) {
+		return fmt.Errorf("%w: %w", errCreateMatchesMany, err)
+	}
+	return err
+}
+
+// foreign is [errNewerOnServer] with what set the server's value apart.
+func foreign(why string) error {
+	return fmt.Errorf("%w (%s)", errNewerOnServer, why)
+}
 
 // send encodes the typed write with the server's ids as known now, posts
 // it, and returns the server's id and version of each series it carried.
@@ -326,7 +350,11 @@ func (e *Engine) send(ctx context.Context, w store.Write) (map[string][2]string,
 // derived before (by serve from fewer readings, before a backfill). Unless
 // it already holds this write's value, it is updated to this write's value
 // against the version read, as a revision is; a value this service did
-// not write is never overwritten.
+// not write is never overwritten (see [Engine.ownValue]). A matched value
+// whose key this service's ledger does not know (written from another
+// store) cannot be compared with what was written: it is updated when it
+// holds a live status this service writes (final or amended), and
+// otherwise left to an operator.
 func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) (map[string][2]string, error) {
 	plan, err := e.cfg.Encoder.Plan(tw, nil, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
 	if err != nil {
@@ -347,15 +375,21 @@ func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) 
 		if err != nil {
 			return nil, err
 		}
+		own, err := e.ownValue(ctx, series, held, plan.Key(i), plan.Observation(i))
+		if err != nil {
+			return nil, err
+		}
 		switch {
-		case held.series != series:
-			return nil, errNewerOnServer
+		case own.unknown && (held.status == statusFinal || held.status == statusAmended):
+			// Another store's value of the series: updated below.
+		case !own.ok:
+			return nil, foreign(own.why)
 		case held.key == plan.Key(i) && !held.withdrawn:
 			ids[series] = [2]string{ids[series][0], held.version}
-		default:
-			stale[series] = encode.ServerRef{ID: ids[series][0], Version: held.version}
-			revise = append(revise, series)
+			continue
 		}
+		stale[series] = encode.ServerRef{ID: ids[series][0], Version: held.version}
+		revise = append(revise, series)
 	}
 	if len(revise) == 0 {
 		return ids, nil
@@ -379,43 +413,76 @@ func (e *Engine) create(ctx context.Context, tw encode.Write, deviceRef string) 
 // update sends a revision or withdrawal against the server's versions,
 // resolving a failed If-Match as [Engine.send] describes; withProvenance
 // says whether its Provenance goes too.
+//
+// After a failed If-Match, the values the server already holds as this
+// write writes them (a split write that partly landed, a late copy, an
+// answer lost) are not sent again: the rest is sent against the versions
+// read, and the Provenance still cites every value, with the versions the
+// write was made to replace as the revised ones (server's versions when
+// update was called). When every value landed, the Provenance is still
+// sent: it may be what failed, and its create is conditional on its tag,
+// so the server keeps one.
 func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, server map[string]encode.ServerRef, withProvenance bool) (map[string][2]string, error) {
+	server = maps.Clone(server)
+	landed := make(map[string][2]string, len(tw.Series))
 	for attempt := 0; ; attempt++ {
 		plan, err := e.cfg.Encoder.Plan(tw, server, encode.TxConfig{DeviceRef: deviceRef, ProvenanceTagSystem: e.cfg.ProvenanceTagSystem})
+		if err == nil && len(landed) > 0 {
+			done := make(map[string]string, len(landed))
+			for s, id := range landed {
+				done[s] = id[0]
+			}
+			plan, err = plan.Remaining(done)
+		}
 		if err != nil {
 			return nil, &client.Error{Op: "encode outbox write", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		ids, _, err := e.sendPlan(ctx, tw.Kind, plan, withProvenance)
-		if err == nil || !errors.Is(err, client.ErrPreconditionFailed) {
-			return ids, err
+		if err == nil {
+			maps.Copy(ids, landed)
+			return ids, nil
 		}
-		landed, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
-		switch {
-		case rerr != nil:
+		if !errors.Is(err, client.ErrPreconditionFailed) || errors.Is(err, errCreateMatchesMany) {
+			return nil, err
+		}
+		now, again, rerr := e.afterPrecondition(ctx, tw.Kind, plan, server)
+		if rerr != nil {
 			return nil, rerr
-		case landed != nil:
-			return landed, nil
-		case attempt >= 2:
+		}
+		maps.Copy(landed, now)
+		if len(again) > 0 && attempt >= 2 {
 			return nil, err // retried later from the outbox
 		}
-		server = again
+		for s, v := range again {
+			sr := server[s]
+			if sr.Revises == "" {
+				sr.Revises = sr.Version
+			}
+			sr.Version = v
+			server[s] = sr
+		}
 	}
 }
 
 // sendPlan posts a plan's transactions. It returns the server's id and
 // version of each series, and the series whose conditional create matched
 // an Observation already on the server (answered 200, not 201). Without
-// withProvenance it posts the Observations only.
+// withProvenance it posts the Observations only; a plan without
+// Observations (every value landed) posts its Provenance only. A 412 to a
+// request made only of conditional creates is [errCreateMatchesMany].
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
-	if withProvenance && plan.Len()+1 <= e.maxEntries() {
+	if withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries() {
 		tx, err := plan.Transaction(0, plan.Len(), true)
 		if err != nil {
 			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
 		}
 		resp, err := e.transaction(ctx, tx, plan.Len()+1)
 		if err != nil {
+			if kind == encode.WriteCreate {
+				err = onlyCreates(err)
+			}
 			return nil, nil, err
 		}
 		for i := range plan.Len() {
@@ -435,6 +502,9 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		}
 		resp, err := e.transaction(ctx, tx, to-from)
 		if err != nil {
+			if kind == encode.WriteCreate {
+				err = onlyCreates(err)
+			}
 			return nil, nil, err
 		}
 		for i := from; i < to; i++ {
@@ -457,18 +527,19 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
-		return nil, nil, err
+		return nil, nil, onlyCreates(err)
 	}
 	return server, matched, nil
 }
 
 // afterPrecondition reads what the server holds of each series of an
-// update that failed its If-Match. It returns the server ids when this
-// write's values are already there, or the versions to try again against
-// when the server holds earlier values of this service's.
-func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]encode.ServerRef, error) {
+// update that failed its If-Match. It returns the server's id and version
+// of the series that already hold this write's values, and the versions to
+// send the others again against, which hold earlier values of this
+// service's. Anything else is [errNewerOnServer].
+func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encode.Plan, server map[string]encode.ServerRef) (map[string][2]string, map[string]string, error) {
 	landed := make(map[string][2]string, plan.Len())
-	again := make(map[string]encode.ServerRef, plan.Len())
+	again := make(map[string]string, plan.Len())
 	for i := range plan.Len() {
 		series := plan.Series(i)
 		sr := server[series]
@@ -476,35 +547,39 @@ func (e *Engine) afterPrecondition(ctx context.Context, kind string, plan *encod
 		if err != nil {
 			return nil, nil, err
 		}
-		key, heldSeries, withdrawn := held.key, held.series, held.withdrawn
 		en, err := e.cfg.Store.Entry(ctx, series)
 		if err != nil {
 			return nil, nil, fmt.Errorf("engine: %w", err)
 		}
 		switch {
-		case heldSeries != series:
-			return nil, nil, errNewerOnServer
-		case key == plan.Key(i) && withdrawn == (kind == encode.WriteWithdraw):
-			landed[series] = [2]string{sr.ID, held.version}
-		case key == plan.Key(i) || key == en.Key || slices.Contains(en.Revisions, key):
-			// An earlier value of this service's: update it once more.
-		default:
-			return nil, nil, errNewerOnServer
+		case held.series != series:
+			return nil, nil, foreign("it carries another series identifier")
+		case held.key != plan.Key(i) && held.key != en.Key && !slices.Contains(en.Revisions, held.key):
+			return nil, nil, foreign("it carries a key this service never gave the series")
 		}
-		again[series] = encode.ServerRef{ID: sr.ID, Version: held.version}
+		own, err := e.ownValue(ctx, series, held, plan.Key(i), plan.Observation(i))
+		switch {
+		case err != nil:
+			return nil, nil, err
+		case !own.ok:
+			return nil, nil, foreign(own.why)
+		case held.key == plan.Key(i) && held.withdrawn == (kind == encode.WriteWithdraw):
+			landed[series] = [2]string{sr.ID, held.version}
+		default:
+			// An earlier value of this service's: update it once more.
+			again[series] = held.version
+		}
 	}
-	if len(landed) == plan.Len() {
-		return landed, nil, nil
-	}
-	return nil, again, nil
+	return landed, again, nil
 }
 
 // heldValue is what the server holds of one derived Observation: this
-// service's key and series identifiers, whether it is withdrawn, and the
-// version read.
+// service's key and series identifiers, its status, whether it is
+// withdrawn, the version read, and the resource.
 type heldValue struct {
-	key, series, version string
-	withdrawn            bool
+	key, series, version, status string
+	withdrawn                    bool
+	body                         json.RawMessage
 }
 
 // readHeld reads a derived Observation from the server.
@@ -524,7 +599,7 @@ func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
 	if err := json.Unmarshal(body, &held); err != nil {
 		return heldValue{}, fmt.Errorf("engine: reading the server's derived Observation: %w", err)
 	}
-	h := heldValue{version: meta.VersionID, withdrawn: held.Status == statusWithdrawn}
+	h := heldValue{version: meta.VersionID, status: held.Status, withdrawn: held.Status == statusWithdrawn, body: body}
 	for _, id := range held.Identifier {
 		switch id.System {
 		case opts.IdentifierSystem:
@@ -534,6 +609,88 @@ func (e *Engine) readHeld(ctx context.Context, id string) (heldValue, error) {
 		}
 	}
 	return h, nil
+}
+
+// ownership says whether a value the server holds is this service's own:
+// ok when it is; else why not, and unknown when the ledger keeps no
+// record of its key for the series to compare it with.
+type ownership struct {
+	ok, unknown bool
+	why         string
+}
+
+// ownValue decides whether held, read from the server for series, is a
+// value this service wrote: it must carry the series, and say (in status,
+// value, unit, interpretation, notes, effective time, subject and code,
+// [encode.ValueDiff]) what this service wrote for its key and status. That
+// is wrote, this write's own Observation (of key planKey), when held has
+// its key and status; otherwise the Observation the ledger's version of
+// held's key encodes with held's status. Identifiers alone do not make a
+// value this service's: an edit on the server keeps them.
+func (e *Engine) ownValue(ctx context.Context, series string, held heldValue, planKey string, wrote json.RawMessage) (ownership, error) {
+	if held.series != series {
+		return ownership{why: "it carries another series identifier"}, nil
+	}
+	var status struct {
+		Status string `json:"status"`
+	}
+	if err := json.Unmarshal(wrote, &status); err != nil {
+		return ownership{}, fmt.Errorf("engine: the written Observation: %w", err)
+	}
+	if held.key != planKey || held.status != status.Status {
+		own, raw, err := e.wroteFor(ctx, series, held.key, held.status)
+		if err != nil || !own.ok {
+			return own, err
+		}
+		wrote = raw
+	}
+	diff, err := encode.ValueDiff(held.body, wrote)
+	if err != nil {
+		return ownership{}, fmt.Errorf("engine: %w", err)
+	}
+	switch len(diff) {
+	case 0:
+		return ownership{ok: true}, nil
+	case 1:
+		return ownership{why: "its " + diff[0] + " differs from what this service wrote"}, nil
+	}
+	return ownership{why: "its " + strings.Join(diff, ", ") + " differ from what this service wrote"}, nil
+}
+
+// wroteFor returns the Observation this service wrote for key in series
+// with status, encoded again from the ledger's version of key.
+func (e *Engine) wroteFor(ctx context.Context, series, key, status string) (ownership, json.RawMessage, error) {
+	switch status {
+	case statusFinal, statusAmended, statusWithdrawn:
+	default:
+		return ownership{why: fmt.Sprintf("its status %q is not one this service writes", status)}, nil, nil
+	}
+	unknown := ownership{unknown: true, why: "this service keeps no record of the value it carries"}
+	en, err := e.cfg.Store.EntryVersion(ctx, key)
+	switch {
+	case errors.Is(err, store.ErrNotFound):
+		return unknown, nil, nil
+	case err != nil:
+		return ownership{}, nil, fmt.Errorf("engine: %w", err)
+	case en.Series != series:
+		return ownership{why: "it carries the key of another series"}, nil, nil
+	case status == statusWithdrawn && en.Status != statusWithdrawn:
+		return ownership{why: "this service never withdrew the value it carries"}, nil, nil
+	}
+	var p EntryPayload
+	if err := json.Unmarshal(en.Payload, &p); err != nil {
+		return ownership{}, nil, fmt.Errorf("engine: ledger entry payload: %w", err)
+	}
+	if err := e.loadResult(ctx, &p); errors.Is(err, store.ErrNotFound) {
+		return unknown, nil, nil
+	} else if err != nil {
+		return ownership{}, nil, err
+	}
+	raw, err := e.cfg.Encoder.ValueJSON(encode.Write{Subject: en.Subject, Derivation: p.Derivation, Fall: p.Fall, Why: p.Why}, series, status)
+	if err != nil {
+		return ownership{}, nil, fmt.Errorf("engine: ledger entry: %w", err)
+	}
+	return ownership{ok: true}, raw, nil
 }
 
 // checkIDs refuses an acknowledgement without a server id: every later

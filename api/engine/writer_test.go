@@ -194,7 +194,9 @@ func TestWritesOfOneSeriesKeepTheirOrder(t *testing.T) {
 
 // TestRefusalsThatRetryAndRefusalsThatBury: a refused content goes to the
 // dead letters; a refused credential or a conflict waits and is retried,
-// so a rotated token during an outage does not bury a whole backlog.
+// so a rotated token during an outage does not bury a whole backlog. A
+// create refused with 412 (its condition matched several resources) is
+// buried: no retry changes that.
 func TestRefusalsThatRetryAndRefusalsThatBury(t *testing.T) {
 	cases := []struct {
 		name   string
@@ -206,7 +208,7 @@ func TestRefusalsThatRetryAndRefusalsThatBury(t *testing.T) {
 		{"unauthorized is retried", http.StatusUnauthorized, false},
 		{"forbidden is retried", http.StatusForbidden, false},
 		{"conflict is retried", http.StatusConflict, false},
-		{"precondition failed is retried", http.StatusPreconditionFailed, false},
+		{"precondition failed on a create is buried", http.StatusPreconditionFailed, true},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {

@@ -6,6 +6,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"maps"
 	"net/url"
 	"slices"
 
@@ -40,8 +41,20 @@ type Write struct {
 }
 
 // ServerRef is the server's id and versionId of one series' Observation,
-// as the service last saw them.
-type ServerRef struct{ ID, Version string }
+// as the service last saw them: an update carries If-Match on Version.
+// Revises, when set, is the version the write's Provenance cites as the one
+// it revises, when that is not Version: a write sent again against the
+// versions read after a failed If-Match still revises the versions it was
+// made to replace, and keeps the Provenance it was given then.
+type ServerRef struct{ ID, Version, Revises string }
+
+// revised is the version a write revises: Revises, or else Version.
+func (r ServerRef) revised() string {
+	if r.Revises != "" {
+		return r.Revises
+	}
+	return r.Version
+}
 
 // TxConfig says how writes address the server.
 type TxConfig struct {
@@ -69,6 +82,11 @@ type Plan struct {
 	prov    fhir.Provenance
 	tag     string
 	cfg     TxConfig
+	// targets are the series the Provenance cites, in order: those of the
+	// entries, and those of entries left out by [Plan.Remaining], whose
+	// references are held in done.
+	targets []string
+	done    map[string]string
 }
 
 type txEntry struct {
@@ -91,6 +109,8 @@ type txRequest struct {
 // PUT with If-Match on the version the service last saw, so a write the
 // server commits late can never overwrite a newer revision; server must
 // hold every written series' ServerRef, else the error is ErrNotOnServer.
+// Its Provenance cites, with role revision, each series' revised version
+// ([ServerRef] Revises, else Version).
 func (e *Encoder) Plan(w Write, server map[string]ServerRef, cfg TxConfig) (*Plan, error) {
 	if cfg.DeviceRef == "" || cfg.ProvenanceTagSystem == "" {
 		return nil, errors.New("encode write: a device reference and a provenance tag system are required")
@@ -130,8 +150,8 @@ func (e *Encoder) Plan(w Write, server map[string]ServerRef, cfg TxConfig) (*Pla
 			}
 			obs[i].Id = &sr.ID
 			obs[i].Meta = nil
-			if sr.Version != "" {
-				previous = append(previous, fhirref.Versioned("Observation/"+sr.ID, sr.Version))
+			if v := sr.revised(); v != "" {
+				previous = append(previous, fhirref.Versioned("Observation/"+sr.ID, v))
 			}
 		}
 		if w.Kind == WriteWithdraw {
@@ -139,7 +159,7 @@ func (e *Encoder) Plan(w Write, server map[string]ServerRef, cfg TxConfig) (*Pla
 				return nil, errors.New("encode write: a withdrawal carries one value")
 			}
 			o := obs[0]
-			if v := server[w.Series[0]].Version; v != "" {
+			if v := server[w.Series[0]].revised(); v != "" {
 				o.Meta = &fhir.Meta{VersionId: &v}
 			}
 			if b, err = e.Withdrawal(o, w.Why); err != nil {
@@ -198,6 +218,7 @@ func (e *Encoder) Plan(w Write, server map[string]ServerRef, cfg TxConfig) (*Pla
 		prov.Agent[i].Who = fhir.Reference{Reference: &cfg.DeviceRef}
 	}
 	p.prov = prov
+	p.targets = slices.Clone(p.series)
 	return p, nil
 }
 
@@ -230,6 +251,42 @@ func (e *Encoder) identifier(o fhir.Observation, system string) string {
 
 // Len is the number of Observations the plan writes.
 func (p *Plan) Len() int { return len(p.entries) }
+
+// Observation returns the i-th Observation as the plan writes it.
+func (p *Plan) Observation(i int) json.RawMessage { return slices.Clone(p.entries[i].Resource) }
+
+// Remaining returns the plan without the Observations of the series in done
+// (series → the server's id of its Observation), which the server already
+// holds as this plan writes them: a write that partly landed sends the
+// rest. The Provenance is unchanged: it still cites every value, those in
+// done by their ids. A plan with every series done has no Observations
+// left, only its Provenance.
+func (p *Plan) Remaining(done map[string]string) (*Plan, error) {
+	out := *p
+	out.series, out.keys, out.entries = nil, nil, nil
+	out.done = maps.Clone(p.done)
+	if out.done == nil {
+		out.done = make(map[string]string, len(done))
+	}
+	for s, id := range done {
+		if !slices.Contains(p.series, s) {
+			return nil, fmt.Errorf("encode plan: series %s is not one this plan writes", s)
+		}
+		if id == "" {
+			return nil, fmt.Errorf("encode plan: no server id for the value of series %s", s)
+		}
+		out.done[s] = "Observation/" + id
+	}
+	for i, s := range p.series {
+		if _, ok := done[s]; ok {
+			continue
+		}
+		out.series = append(out.series, s)
+		out.keys = append(out.keys, p.keys[i])
+		out.entries = append(out.entries, p.entries[i])
+	}
+	return &out, nil
+}
 
 // Series returns the series of the i-th Observation.
 func (p *Plan) Series(i int) string { return p.series[i] }
@@ -291,15 +348,19 @@ func (p *Plan) provenanceQuery() url.Values {
 }
 
 // provenance encodes the Provenance with target i set to the reference of
-// series i: the targets are in the order of the Observations.
+// the i-th series it cites (the order of the Observations): from targets,
+// or for a series already done (see [Plan.Remaining]) its id.
 func (p *Plan) provenance(targets map[string]string) ([]byte, error) {
 	prov := p.prov
-	if len(prov.Target) != len(p.series) {
-		return nil, fmt.Errorf("encode provenance: %d targets for %d values", len(prov.Target), len(p.series))
+	if len(prov.Target) != len(p.targets) {
+		return nil, fmt.Errorf("encode provenance: %d targets for %d values", len(prov.Target), len(p.targets))
 	}
 	prov.Target = slices.Clone(prov.Target)
-	for i, s := range p.series {
+	for i, s := range p.targets {
 		t, ok := targets[s]
+		if !ok {
+			t, ok = p.done[s]
+		}
 		if !ok {
 			return nil, fmt.Errorf("encode provenance: no reference for the value of series %s", s)
 		}
