@@ -63,7 +63,7 @@ func TestInternalErrorsAreLoggedWithoutIdentifiers(t *testing.T) {
 	if strings.Contains(out, "bed3-kpa") {
 		t.Errorf("log carries a patient identifier: %s", out)
 	}
-	for _, want := range []string{"Observation/[redacted]", "Patient/[redacted]", "bad payload", "request_id="} {
+	for _, want := range []string{"Observation/[redacted]", "Patient/[redacted]", "bad payload", "request_id=", "method=/deadspace.v1.DeadSpace/Explain"} {
 		if !strings.Contains(out, want) {
 			t.Errorf("log lacks %q: %s", want, out)
 		}

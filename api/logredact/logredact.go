@@ -4,21 +4,38 @@
 // attribute, an error wrapped five times over) is rewritten before it is
 // written:
 //
-//   - FHIR references lose their id and version: "Patient/[redacted]",
-//     also inside URLs ("…/Observation/[redacted]");
-//   - urn:uuid values: "urn:uuid:[redacted]";
+//   - FHIR references lose their id and version, whatever the id's length
+//     or characters: "Patient/[redacted]", also inside URLs
+//     ("…/Observation/[redacted]"), with the type in any case, glued to
+//     what precedes it, or after an encoded slash ("Patient%2F[redacted]").
+//     Only FHIR resource type names count ("/deadspace.v1.DeadSpace/Submit"
+//     stays);
+//   - urn:uuid values, UUIDs anywhere, and contained references ("#p1");
 //   - search parameters that carry identifiers (identifier=, subject=,
-//     patient=, _id=, _tag=, encounter=) lose their value;
+//     patient=, _id=, …, with modifiers and chains, also percent-encoded)
+//     lose their whole value, OR-lists included, and so does every
+//     parameter of a query string but a few that never identify anyone
+//     (_count=, code=, date=, …);
+//   - what follows a word naming an id when it is quoted, in brackets, after
+//     "=" or ":", or looks like an id: `invalid id "[redacted]"`,
+//     "ID[redacted]";
 //   - JSON members and attributes with a key that holds an identifier
-//     ("id", "reference", "patient", "subject", …) lose their value;
-//   - a FHIR server's answer quoted in an error (the OperationOutcome text
-//     after "HTTP 422 Unprocessable Entity: ") is withheld whole, since
-//     servers write identifiers in free text ("resource 123 not found").
+//     ("id", "reference", "family", "birthDate", …) lose their value, in
+//     JSON quoted to any depth; objects and arrays that hold one (a name, a
+//     subject with its display, an identifier) lose every value in them;
+//   - a server's answer quoted in an error (the text after "HTTP 422
+//     Unprocessable Entity: ", "HTTP 400 invalid_client: " or "response
+//     body: ") is withheld whole, since servers write identifiers in free
+//     text ("resource 123 not found").
 //
 // [Text] applies the same rules except the last, with one more for free
-// text: any token that looks like an id (six or more letters, digits, dots
-// and dashes with a digit among them). The dead-letter view uses it to
-// show an operator the server's answer without the identifiers in it.
+// text: any word with a digit in it, however short ("48213", "ab12c"),
+// except error codes ("HAPI-0989") and numbers that count (after "HTTP",
+// "page", "line", …). The dead-letter view uses it to show an operator the
+// server's answer without the identifiers in it.
+//
+// Attributes that name the call rather than a patient, a gRPC method and a
+// request id, are left as they are.
 package logredact
 
 import (
@@ -35,25 +52,11 @@ const Redacted = "[redacted]"
 // withheld replaces a server's answer in a log line.
 const withheld = "[server text withheld]"
 
-var (
-	// references: a capitalised resource type, a slash and an R4 id
-	// (https://hl7.org/fhir/R4/datatypes.html#id), optionally a version.
-	references = regexp.MustCompile(`\b([A-Z][A-Za-z]{1,63})/[A-Za-z0-9\-.]{1,64}(?:/_history/[A-Za-z0-9\-.]{1,64})?`)
-	uuids      = regexp.MustCompile(`(?i)\burn:uuid:[0-9a-f\-]{1,64}`)
-	params     = regexp.MustCompile(`\b(identifier|subject|patient|_id|_tag|encounter|focus)(=|%3D)[^&\s"',;)]+`)
-	// jsonMembers: "key":"value" inside quoted JSON, also when escaped.
-	jsonMembers = regexp.MustCompile(`(\\?"(?:id|reference|patient|subject|encounter|focus|fullUrl|value|birthDate|versionId)\\?"\s*:\s*\\?")[^"\\]*(\\?")`)
-	// serverText: the tail of a fhir/client error after the status.
-	serverText = regexp.MustCompile(`(?m)(HTTP \d{3}(?: [A-Za-z][A-Za-z' -]*)?): [^\n]*?( \(after \d+ attempts\))?$`)
-	// idTokens: free-text words that look like identifiers.
-	idTokens = regexp.MustCompile(`\b[A-Za-z0-9][A-Za-z0-9\-.]{5,63}\b`)
-)
-
 // identifierKeys are attribute keys whose value is an identifier whole.
 var identifierKeys = map[string]bool{
 	"id": true, "patient": true, "subject": true, "encounter": true, "reference": true, "ref": true,
 	"focus": true, "identifier": true, "resource_id": true, "observation": true, "full_url": true,
-	"birth_date": true, "version_id": true,
+	"birth_date": true, "version_id": true, "patient_id": true, "subject_id": true, "mrn": true,
 }
 
 // String removes identifiers from s with the rules of a log line.
@@ -61,28 +64,21 @@ func String(s string) string {
 	if s == "" {
 		return s
 	}
-	s = serverText.ReplaceAllString(s, "$1: "+withheld+"$2")
-	return common(s)
-}
-
-func common(s string) string {
-	s = uuids.ReplaceAllString(s, "urn:uuid:"+Redacted)
-	s = references.ReplaceAllString(s, "$1/"+Redacted)
-	s = params.ReplaceAllString(s, "$1$2"+Redacted)
-	s = jsonMembers.ReplaceAllString(s, "${1}"+Redacted+"${2}")
-	return s
+	var r ranges
+	markWithheld(&r, s)
+	mark(&r, s)
+	return r.apply(s)
 }
 
 // Text removes identifiers from a server's answer or other free text while
 // keeping its wording, for showing to an operator.
 func Text(s string) string {
-	s = common(s)
-	return idTokens.ReplaceAllStringFunc(s, func(tok string) string {
-		if tok == Redacted || !strings.ContainsAny(tok, "0123456789") {
-			return tok
-		}
-		return Redacted
-	})
+	var r ranges
+	mark(&r, s)
+	s = r.apply(s)
+	r = r[:0]
+	markWords(&r, s)
+	return r.apply(s)
 }
 
 // Handler rewrites every record's message and attributes, then passes it on.
@@ -126,9 +122,35 @@ func (h *Handler) WithGroup(name string) slog.Handler {
 	return &Handler{inner: h.inner.WithGroup(name)}
 }
 
+// grpcMethod is a gRPC method's full name, its service named with its
+// package ("/deadspace.v1.DeadSpace/Submit"), which a FHIR path is not.
+var grpcMethod = regexp.MustCompile(`^/[A-Za-z_]\w*(?:\.\w+)+/[A-Za-z_]\w*$`)
+
+// requestID is a request id as the webhook and the gRPC server accept one.
+var requestID = regexp.MustCompile(`^[\w.:\-]{1,128}$`)
+
+// kept tells whether an attribute names the call rather than a patient: a
+// gRPC method, or a request id (often a UUID, which is needed whole to find
+// the call's other lines).
+func kept(key string, v slog.Value) bool {
+	if v.Kind() != slog.KindString {
+		return false
+	}
+	switch key {
+	case "method":
+		return grpcMethod.MatchString(v.String())
+	case "request_id":
+		return requestID.MatchString(v.String())
+	}
+	return false
+}
+
 // Attr redacts one attribute, groups included.
 func Attr(a slog.Attr) slog.Attr {
 	v := a.Value.Resolve()
+	if kept(a.Key, v) {
+		return slog.Attr{Key: a.Key, Value: v}
+	}
 	if identifierKeys[strings.ToLower(a.Key)] && v.Kind() != slog.KindGroup {
 		if v.Kind() == slog.KindString && v.String() == "" {
 			return slog.Attr{Key: a.Key, Value: v}

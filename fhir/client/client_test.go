@@ -607,6 +607,9 @@ func TestRequestHeaders(t *testing.T) {
 	}
 }
 
+// TestBadArgumentsSendNothing: a call with bad arguments fails before any
+// request, and its error does not quote the id (it may be a patient's, and
+// errors are logged).
 func TestBadArgumentsSendNothing(t *testing.T) {
 	sc, srv := newScript(t, reply{status: 200, body: obsBody})
 	c, _ := newClient(t, srv.URL, nil)
@@ -614,31 +617,44 @@ func TestBadArgumentsSendNothing(t *testing.T) {
 	cases := []struct {
 		name string
 		call func() error
+		want string // the error says
+		id   string // and does not quote
 	}{
-		{"id with a slash", func() error { _, _, err := c.Read(ctx, "Observation", "a/../b"); return err }},
-		{"lower-case type", func() error { _, _, err := c.Read(ctx, "observation", "a"); return err }},
-		{"id longer than 64", func() error { _, _, err := c.Read(ctx, "Observation", strings.Repeat("a", 65)); return err }},
+		{"id with a slash", func() error { _, _, err := c.Read(ctx, "Observation", "a/../b"); return err }, "invalid id: a character", "a/../b"},
+		{"id with a space", func() error { _, _, err := c.Read(ctx, "Observation", "obs 3355"); return err }, "invalid id: a character", "3355"},
+		{"empty id", func() error { _, _, err := c.Read(ctx, "Observation", ""); return err }, "invalid id: empty", ""},
+		{"lower-case type", func() error { _, _, err := c.Read(ctx, "observation", "a"); return err }, "invalid resource type", ""},
+		{"id longer than 64", func() error { _, _, err := c.Read(ctx, "Observation", strings.Repeat("a", 60)+"TAIL9988"); return err }, "68 bytes, more than 64", "TAIL9988"},
+		{"version id with a space", func() error { _, _, err := c.VRead(ctx, "Observation", "o-1", "v 7788"); return err }, "invalid version id", "7788"},
+		{"update id with a space", func() error {
+			_, _, err := c.Update(ctx, "Observation", "obs 4455", []byte(`{"resourceType":"Observation","id":"obs 4455"}`), "")
+			return err
+		}, "invalid id", "4455"},
 		{"body of another type", func() error {
 			_, _, err := c.Create(ctx, "Observation", []byte(`{"resourceType":"Patient"}`))
 			return err
-		}},
+		}, "body resourceType", ""},
 		{"update body id differs", func() error {
-			_, _, err := c.Update(ctx, "Observation", "a", []byte(`{"resourceType":"Observation","id":"b"}`), "")
+			_, _, err := c.Update(ctx, "Observation", "obs-1122", []byte(`{"resourceType":"Observation","id":"obs-3344"}`), "")
 			return err
-		}},
+		}, "body id does not match the request id", "obs-"},
 		{"empty If-None-Exist", func() error {
 			_, _, err := c.ConditionalCreate(ctx, "Observation", []byte(`{"resourceType":"Observation"}`), nil)
 			return err
-		}},
+		}, "empty If-None-Exist", ""},
 		{"transaction of a searchset", func() error {
 			_, err := c.Transaction(ctx, []byte(`{"resourceType":"Bundle","type":"searchset"}`))
 			return err
-		}},
+		}, "searchset", ""},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			if err := tc.call(); err == nil {
+			err := tc.call()
+			if err == nil {
 				t.Fatal("want an error")
+			}
+			if !strings.Contains(err.Error(), tc.want) || tc.id != "" && strings.Contains(err.Error(), tc.id) {
+				t.Errorf("error %q: want %q in it and not %q", err, tc.want, tc.id)
 			}
 		})
 	}

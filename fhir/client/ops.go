@@ -28,11 +28,18 @@ func checkType(typ string) error {
 	return nil
 }
 
+// checkID says what is wrong with an id without quoting it: the error may be
+// logged, and the id may be a patient's.
 func checkID(what, id string) error {
-	if !idRE.MatchString(id) {
-		return fmt.Errorf("invalid %s %q", what, cleanPrefix([]byte(id), 80))
+	switch {
+	case idRE.MatchString(id):
+		return nil
+	case id == "":
+		return fmt.Errorf("invalid %s: empty", what)
+	case len(id) > 64:
+		return fmt.Errorf("invalid %s: %d bytes, more than 64", what, len(id))
 	}
-	return nil
+	return fmt.Errorf("invalid %s: a character other than A-Z, a-z, 0-9, '-' and '.'", what)
 }
 
 func (c *Client) resourceURL(parts ...string) string {
@@ -185,7 +192,7 @@ func checkBodyType(typ, id string, body []byte) error {
 		return fmt.Errorf("body resourceType is %q", cleanPrefix([]byte(got), 64))
 	}
 	if id != "" && gotID != id {
-		return fmt.Errorf("body id %q does not match the request id", cleanPrefix([]byte(gotID), 80))
+		return errors.New("body id does not match the request id") // neither quoted: they may be a patient's
 	}
 	return nil
 }

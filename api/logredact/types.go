@@ -1,0 +1,50 @@
+package logredact
+
+// resourceTypes are the FHIR resource type names a reference can start
+// with: R4 (4.0.1) and the types R4B and R5 added, since a server of either
+// may answer. They are matched without regard to case.
+var resourceTypes = []string{
+	// R4
+	"Account", "ActivityDefinition", "AdverseEvent", "AllergyIntolerance", "Appointment",
+	"AppointmentResponse", "AuditEvent", "Basic", "Binary", "BiologicallyDerivedProduct",
+	"BodyStructure", "Bundle", "CapabilityStatement", "CarePlan", "CareTeam", "CatalogEntry",
+	"ChargeItem", "ChargeItemDefinition", "Claim", "ClaimResponse", "ClinicalImpression",
+	"CodeSystem", "Communication", "CommunicationRequest", "CompartmentDefinition", "Composition",
+	"ConceptMap", "Condition", "Consent", "Contract", "Coverage", "CoverageEligibilityRequest",
+	"CoverageEligibilityResponse", "DetectedIssue", "Device", "DeviceDefinition", "DeviceMetric",
+	"DeviceRequest", "DeviceUseStatement", "DiagnosticReport", "DocumentManifest",
+	"DocumentReference", "EffectEvidenceSynthesis", "Encounter", "Endpoint", "EnrollmentRequest",
+	"EnrollmentResponse", "EpisodeOfCare", "EventDefinition", "Evidence", "EvidenceVariable",
+	"ExampleScenario", "ExplanationOfBenefit", "FamilyMemberHistory", "Flag", "Goal",
+	"GraphDefinition", "Group", "GuidanceResponse", "HealthcareService", "ImagingStudy",
+	"Immunization", "ImmunizationEvaluation", "ImmunizationRecommendation", "ImplementationGuide",
+	"InsurancePlan", "Invoice", "Library", "Linkage", "List", "Location", "Measure",
+	"MeasureReport", "Media", "Medication", "MedicationAdministration", "MedicationDispense",
+	"MedicationKnowledge", "MedicationRequest", "MedicationStatement", "MedicinalProduct",
+	"MedicinalProductAuthorization", "MedicinalProductContraindication",
+	"MedicinalProductIndication", "MedicinalProductIngredient", "MedicinalProductInteraction",
+	"MedicinalProductManufactured", "MedicinalProductPackaged", "MedicinalProductPharmaceutical",
+	"MedicinalProductUndesirableEffect", "MessageDefinition", "MessageHeader",
+	"MolecularSequence", "NamingSystem", "NutritionOrder", "Observation", "ObservationDefinition",
+	"OperationDefinition", "OperationOutcome", "Organization", "OrganizationAffiliation",
+	"Parameters", "Patient", "PaymentNotice", "PaymentReconciliation", "Person", "PlanDefinition",
+	"Practitioner", "PractitionerRole", "Procedure", "Provenance", "Questionnaire",
+	"QuestionnaireResponse", "RelatedPerson", "RequestGroup", "ResearchDefinition",
+	"ResearchElementDefinition", "ResearchStudy", "ResearchSubject", "RiskAssessment",
+	"RiskEvidenceSynthesis", "Schedule", "SearchParameter", "ServiceRequest", "Slot", "Specimen",
+	"SpecimenDefinition", "StructureDefinition", "StructureMap", "Subscription", "Substance",
+	"SubstanceNucleicAcid", "SubstancePolymer", "SubstanceProtein",
+	"SubstanceReferenceInformation", "SubstanceSourceMaterial", "SubstanceSpecification",
+	"SupplyDelivery", "SupplyRequest", "Task", "TerminologyCapabilities", "TestReport",
+	"TestScript", "ValueSet", "VerificationResult", "VisionPrescription",
+	// R4B and R5
+	"ActorDefinition", "AdministrableProductDefinition", "ArtifactAssessment",
+	"BiologicallyDerivedProductDispense", "Citation", "ClinicalUseDefinition",
+	"ConditionDefinition", "DeviceAssociation", "DeviceDispense", "DeviceUsage",
+	"EncounterHistory", "EvidenceReport", "FormularyItem", "GenomicStudy", "ImagingSelection",
+	"Ingredient", "InventoryItem", "InventoryReport", "ManufacturedItemDefinition",
+	"MedicinalProductDefinition", "NutritionIntake", "NutritionProduct",
+	"PackagedProductDefinition", "Permission", "RegulatedAuthorization", "RequestOrchestration",
+	"Requirements", "SubscriptionStatus", "SubscriptionTopic", "SubstanceDefinition", "TestPlan",
+	"Transport",
+}
