@@ -9,12 +9,12 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"regexp"
 	"slices"
 	"sync"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
 )
@@ -447,28 +447,11 @@ func (l *Live) Operations(ctx context.Context) (Operations, error) {
 		}
 		for _, d := range dls {
 			op.DeadLetters = append(op.DeadLetters, DeadLetter{
-				At: d.At, Attempts: d.Attempts, Reason: Redact(d.Reason), Answer: Redact(d.LastError), Values: len(d.Series),
+				At: d.At, Attempts: d.Attempts, Reason: logredact.Text(d.Reason), Answer: logredact.Text(d.LastError), Values: len(d.Series),
 			})
 		}
 	}
 	return op, nil
-}
-
-// identifierPatterns match what may identify a patient or a resource in a
-// server's answer: references, ids in URLs, derivation identifiers.
-var identifierPatterns = []*regexp.Regexp{
-	regexp.MustCompile(`\b[A-Z][A-Za-z]+/[A-Za-z0-9\-.]{1,64}(/_history/[A-Za-z0-9\-.]{1,64})?`),
-	regexp.MustCompile(`sha256:[0-9a-f]{8,64}`),
-	regexp.MustCompile(`"(id|reference|value|subject|patient)"\s*:\s*"[^"]*"`),
-	regexp.MustCompile(`[?&][A-Za-z_\-:.]+=[^&\s"]+`),
-}
-
-// Redact replaces what may identify a patient or resource with "[redacted]".
-func Redact(s string) string {
-	for _, re := range identifierPatterns {
-		s = re.ReplaceAllString(s, "[redacted]")
-	}
-	return s
 }
 
 // OpEvents keeps the latest gaps and catch-ups, for the operations page.

@@ -15,7 +15,11 @@ import (
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine"
+	"github.com/deadspace-fhir/deadspace/api/engine/enginetest"
 	"github.com/deadspace-fhir/deadspace/api/replay"
+	"github.com/deadspace-fhir/deadspace/api/store"
+	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
@@ -299,18 +303,48 @@ func TestUnknownAndMalformedAreNotFound(t *testing.T) {
 	}
 }
 
-func TestRedact(t *testing.T) {
-	for _, tc := range []struct{ name, in, want string }{
-		{"reference", "422 Unprocessable: Observation/abc-1/_history/2 is invalid", "422 Unprocessable: [redacted] is invalid"},
-		{"patient in a search", "GET /Observation?subject=Patient/p1 failed", "GET /Observation[redacted] failed"},
-		{"identifier", "duplicate key sha256:0123456789abcdef", "duplicate key [redacted]"},
-		{"json field", `{"reference":"Patient/9"}`, `{[redacted]}`},
-		{"nothing to hide", "timeout after 30s", "timeout after 30s"},
-	} {
-		t.Run(tc.name, func(t *testing.T) {
-			if got := Redact(tc.in); got != tc.want {
-				t.Errorf("Redact(%q) = %q, want %q", tc.in, got, tc.want)
-			}
-		})
+// The operations page shows a dead letter's answers as the logs and
+// `deadspace deadletters show` do: through the one redaction.
+func TestOperationsPageRedactsDeadLetters(t *testing.T) {
+	st := enginetest.OpenStore(t, boltstore.Options{NoSync: true})
+	eng, err := engine.New(engine.Config{Store: st, Decoder: decode.New(decode.Options{}), Encoder: enginetest.Encoder(t), Derive: derive.DefaultConfig()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx := context.Background()
+	now := time.Now()
+	const subject = "Patient/bed7-quiet"
+	series := "sha256:" + strings.Repeat("c", 64)
+	if err := st.Commit(ctx, store.Change{Subject: subject,
+		Entries: []store.Entry{{Series: series, Subject: subject, Key: "k", Status: "final", EffectiveAt: now, UpdatedAt: now}},
+		Writes:  []store.Write{{Series: []string{series}, Body: []byte("{}")}}}, now); err != nil {
+		t.Fatal(err)
+	}
+	ws, err := st.DueWrites(ctx, now, 10)
+	if err != nil || len(ws) != 1 {
+		t.Fatalf("due writes %v %v", ws, err)
+	}
+	secrets := []string{"bed7-quiet", "obs-3344", "0f0e0d0c-1234-4abc-8def-000000000042", "MRN998877", "48213"}
+	if err := st.Reschedule(ctx, ws[0].ID, now, `fhir transaction: HTTP 503 Service Unavailable: {"id":"obs-3344","subject":{"reference":"Patient/bed7-quiet"}}`); err != nil {
+		t.Fatal(err)
+	}
+	if err := st.Bury(ctx, ws[0].ID, "fhir transaction: HTTP 422 Unprocessable Entity: urn:uuid:0f0e0d0c-1234-4abc-8def-000000000042 rejected; identifier=MRN998877; resource 48213", now); err != nil {
+		t.Fatal(err)
+	}
+	op, err := NewLive(LiveConfig{Engine: eng, Outbox: st}).Operations(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(op.DeadLetters) != 1 {
+		t.Fatalf("%d dead letters on the page, want 1", len(op.DeadLetters))
+	}
+	dl := op.DeadLetters[0]
+	if !strings.Contains(dl.Reason, "HTTP 422 Unprocessable Entity") || !strings.Contains(dl.Answer, "HTTP 503") {
+		t.Errorf("the answers lost their wording: %q, %q", dl.Reason, dl.Answer)
+	}
+	for _, id := range secrets {
+		if strings.Contains(dl.Reason+dl.Answer, id) {
+			t.Errorf("the page shows %q: %q / %q", id, dl.Reason, dl.Answer)
+		}
 	}
 }
