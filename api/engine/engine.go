@@ -383,7 +383,7 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 				e.leftOut(derive.ReasonPastRetention)
 				continue
 			}
-			in, err := e.toStored(it)
+			in, err := e.toStored(it, now)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
@@ -404,7 +404,7 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 			// never bring it back. Any other unusable version is kept only
 			// when it replaces a stored one; the store checks that in the
 			// same transaction as the write.
-			in, err := e.toStored(it)
+			in, err := e.toStored(it, now)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
@@ -449,7 +449,9 @@ func withdrawal(it decode.Item) ([]byte, error) {
 	})
 }
 
-func (e *Engine) toStored(it decode.Item) (store.Input, error) {
+// toStored is the stored input of a decoded item, kept by its retention
+// time as of now, the engine's clock (Config.Now).
+func (e *Engine) toStored(it decode.Item, now time.Time) (store.Input, error) {
 	payload, err := encodeStored(it)
 	if err != nil {
 		return store.Input{}, err
@@ -460,7 +462,7 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	}
 	in := store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
-		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
+		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, now), Payload: payload,
 		Withdrawal: moved,
 	}
 	// A reading changes the results of blood gases sampled from its own
