@@ -25,6 +25,7 @@ import (
 	"sync"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -481,7 +482,30 @@ func (e *Engine) toStored(it decode.Item, now time.Time) (store.Input, error) {
 	// The version it replaces may have been of another kind: its own
 	// stored head says which (a height's effective time is a year on).
 	in.Replaced = e.replacedSpan
+	in.Tie = tieWith(it)
 	return in, nil
+}
+
+// tieWith is store.Input.Tie for a decoded item: at a tie of time and id
+// with a stored version, the one version order (ref.Compare) goes on to
+// what each says, as replay's does (pipeline.VersionContent). A stored
+// payload this build cannot read is the same version.
+func tieWith(it decode.Item) func(subject string, payload []byte) int {
+	return func(subject string, payload []byte) int {
+		si, err := decodeStored(payload, it.ResourceType+"/"+it.ID, it.VersionID)
+		if err != nil {
+			return 0
+		}
+		return fhirref.Compare(versionOf(it.Subject, it), versionOf(subject, si.Item))
+	}
+}
+
+// versionOf is the order of a version of an input filed under subject,
+// its time and id left out: they are equal at a tie.
+func versionOf(subject string, it decode.Item) fhirref.Version {
+	usable := it.Type == decode.ItemReading
+	return fhirref.Version{Unusable: !usable,
+		Content: pipeline.VersionContent(subject, usable, it.Reading, it.Priority, it.Also, it.Omission)}
 }
 
 // readingSpan is the blood gas sample times a reading taken at at, of
@@ -546,7 +570,7 @@ func retentionTime(it decode.Item, now time.Time) time.Time {
 }
 
 func (e *Engine) putPatient(ctx context.Context, it decode.Item, now, fetched time.Time) error {
-	payload, err := json.Marshal(it.Patient)
+	payload, err := pipeline.PatientFacts(it.Patient)
 	if err != nil {
 		return fmt.Errorf("engine: encode patient: %w", err)
 	}

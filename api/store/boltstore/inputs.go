@@ -12,14 +12,7 @@ import (
 	bolt "go.etcd.io/bbolt"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
-	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
-
-// compareVersions orders two versions of one resource by the one rule,
-// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
-func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
-}
 
 // appendFill is the page fill for buckets whose keys mostly grow (time or
 // sequence first); bbolt's default of one half suits random keys.
@@ -134,9 +127,13 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		return 0, nil, err
 	}
 	owner := pl.owner()
-	// The latest version under the owner decides across patients; the copy
-	// under this subject (if the owner's copy was pruned) decides too.
-	exists := false
+	// The version to beat is the latest stored: the owner's copy, under any
+	// patient, or without one (pruned) the copy under this subject. A copy
+	// under this subject that is not the owner's is a withdrawal, which
+	// carries the version that moved the input away, never newer than the
+	// owner's: it refuses only a strictly older version, and is read for
+	// what it changed.
+	exists, decided := false, false
 	span := store.SpanOf(in)
 	for i, subject := range []string{owner, in.Subject} {
 		if subject == "" || (i == 1 && subject == owner) {
@@ -150,8 +147,13 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 			continue
 		}
 		exists = true
-		if c := compareVersions(in.LastUpdated, in.VersionID, old.LastUpdated, old.VersionID); c <= 0 {
-			return store.ResultOf(true, c), nil, nil
+		if !decided {
+			decided = true
+			if c := store.CompareStored(in, old); c <= 0 {
+				return store.ResultOf(true, c), nil, nil
+			}
+		} else if store.CompareVersions(in, old) < 0 {
+			return store.PutOlder, nil, nil
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
@@ -404,7 +406,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			if err != nil {
 				return err
 			}
-			c = compareVersions(p.LastUpdated, p.VersionID, old.LastUpdated, old.VersionID)
+			c = store.ComparePatients(p, old)
 			if c <= 0 {
 				res = store.ResultOf(true, c)
 				if !p.FetchedAt.After(old.FetchedAt) {

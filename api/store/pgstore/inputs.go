@@ -9,16 +9,9 @@ import (
 	"github.com/jackc/pgx/v5"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
-	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 var _ store.Store = (*Store)(nil)
-
-// compareVersions orders two versions of one resource by the one rule,
-// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
-func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
-}
 
 // lockKeys takes a transaction-scoped advisory lock on each name, in the
 // order of their lock keys so that two transactions locking overlapping
@@ -104,35 +97,43 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	if err != nil && !errors.Is(err, pgx.ErrNoRows) {
 		return 0, nil, err
 	}
-	// The latest version under the owner decides across patients; the copy
-	// under this subject (if the owner row went with a prune) decides too.
-	exists, ownerHasCopy := false, false
+	// The version to beat is the latest stored: the owner's copy, under any
+	// patient, or without one (pruned) the copy under this subject. A copy
+	// under this subject that is not the owner's is a withdrawal, never
+	// newer than the owner's: it refuses only a strictly older version, and
+	// is read for what it changed (the embedded store's rule).
+	exists, ownerHasCopy, decided := false, false, false
 	sp := store.SpanOf(in)
 	for i, subject := range []string{owner, in.Subject} {
 		if subject == "" || (i == 1 && subject == owner) {
 			continue // no copy there, or the owner's, read already
 		}
-		var id string
+		old := store.Input{Subject: subject, Logical: in.Logical}
 		var lu, eff int64
-		var payload []byte
 		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, effective_ns, payload FROM inputs WHERE subject = $1 AND logical = $2`,
-			subject, in.Logical).Scan(&id, &lu, &eff, &payload)
+			subject, in.Logical).Scan(&old.VersionID, &lu, &eff, &old.Payload)
 		if errors.Is(err, pgx.ErrNoRows) {
 			continue
 		}
 		if err != nil {
 			return 0, nil, err
 		}
+		old.LastUpdated, old.EffectiveAt = fromNanos(lu), fromNanos(eff)
 		exists = true
 		if subject == owner {
 			ownerHasCopy = true
 		}
-		if c := compareVersions(in.LastUpdated, in.VersionID, fromNanos(lu), id); c <= 0 {
-			return store.ResultOf(true, c), nil, nil
+		if !decided {
+			decided = true
+			if c := store.CompareStored(in, old); c <= 0 {
+				return store.ResultOf(true, c), nil, nil
+			}
+		} else if store.CompareVersions(in, old) < 0 {
+			return store.PutOlder, nil, nil
 		}
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp = sp.Replacing(in, fromNanos(eff), payload)
+			sp = sp.Replacing(in, old.EffectiveAt, old.Payload)
 		}
 	}
 	if in.OnlyReplaces && !exists {
@@ -259,17 +260,18 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		if err := lockKeys(ctx, tx, []string{"patient " + p.Subject}); err != nil {
 			return err
 		}
-		var oldID string
+		old := store.Patient{Subject: p.Subject}
 		var oldUpdated, oldFetched int64
-		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns FROM patients WHERE subject = $1`, p.Subject).
-			Scan(&oldID, &oldUpdated, &oldFetched)
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns, payload FROM patients WHERE subject = $1`, p.Subject).
+			Scan(&old.VersionID, &oldUpdated, &oldFetched, &old.Payload)
 		exists := err == nil
 		if err != nil && !errors.Is(err, pgx.ErrNoRows) {
 			return err
 		}
 		c := 0
 		if exists {
-			c = compareVersions(p.LastUpdated, p.VersionID, fromNanos(oldUpdated), oldID)
+			old.LastUpdated = fromNanos(oldUpdated)
+			c = store.ComparePatients(p, old)
 		}
 		res = store.ResultOf(exists, c)
 		if exists && c <= 0 {

@@ -1,6 +1,7 @@
 package storetest
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"sync"
@@ -59,6 +60,88 @@ func testVersionOrderAcrossPatients(t *testing.T, open func(t *testing.T) store.
 	if _, err := s2.Input(t.Context(), "Patient/a", logical); !errors.Is(err, store.ErrNotFound) {
 		t.Fatalf("the first version was stored under a after its correction: %v", err)
 	}
+}
+
+// tieCases: two versions with the same meta.lastUpdated and versionId
+// (copies without meta) are ordered by Input.Tie, which the store asks
+// with the stored version's subject and payload (it cannot read a
+// payload itself); without Tie they are the same version.
+var tieCases = []struct {
+	name string
+	tie  int // what Tie answers about the stored version
+	want store.PutResult
+}{
+	{"TieSaysNewer", 1, store.PutNewer},
+	{"TieSaysOlder", -1, store.PutOlder},
+	{"TieSaysSame", 0, store.PutSame},
+}
+
+func testVersionTies(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range tieCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			old := input("Patient/a", "Observation/t", "", time.Time{}, t0, "first copy")
+			put(t, s, t0, old)
+			var asked []string
+			nw := input("Patient/a", "Observation/t", "", time.Time{}, t0, "second copy")
+			nw.Tie = func(subject string, payload []byte) int {
+				asked = append(asked, subject+" "+string(payload))
+				return tc.tie
+			}
+			if got := put(t, s, t0, nw); got[0] != tc.want {
+				t.Fatalf("second copy: %v, want %v", got[0], tc.want)
+			}
+			if want := []string{"Patient/a first copy"}; fmt.Sprint(asked) != fmt.Sprint(want) {
+				t.Errorf("Tie asked about %q, want %q", asked, want)
+			}
+			in, err := s.Input(t.Context(), "Patient/a", "Observation/t")
+			must(t, err)
+			if want := map[bool]string{true: "second copy", false: "first copy"}[tc.want == store.PutNewer]; string(in.Payload) != want {
+				t.Errorf("stored %q, want %q", in.Payload, want)
+			}
+		})
+	}
+	// Across patients: the copy under b wins the tie and moves the input;
+	// the copy under a, again, loses to it; a third copy under a that
+	// wins the tie against b's moves it back, though a's withdrawal
+	// carries the same version and would win a tie itself (an unusable
+	// version does): a withdrawal is not the version to beat while the
+	// owner's copy is there.
+	t.Run("AcrossPatients", func(t *testing.T) {
+		s := open(t)
+		ranked := func(subject, payload string, rank int) store.Input {
+			in := input(subject, "Observation/t", "", time.Time{}, t0, payload)
+			in.Withdrawal = []byte("moved to " + subject)
+			in.Tie = func(_ string, old []byte) int {
+				oldRank, ok := map[string]int{"a1": 1, "b2": 2, "a3": 3}[string(old)]
+				if !ok {
+					oldRank = 10 // a withdrawal
+				}
+				return cmp.Compare(rank, oldRank)
+			}
+			return in
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a1", 1)); got[0] != store.PutNew {
+			t.Fatalf("a1: %v, want PutNew", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/b", "b2", 2)); got[0] != store.PutMoved {
+			t.Fatalf("b2: %v, want PutMoved", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a1", 1)); got[0] != store.PutOlder {
+			t.Fatalf("a1 again: %v, want PutOlder", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a3", 3)); got[0] != store.PutMoved {
+			t.Fatalf("a3: %v, want PutMoved (a's withdrawal of the same version must not refuse it)", got[0])
+		}
+		if owner, err := s.Owner(t.Context(), "Observation/t"); err != nil || owner != "Patient/a" {
+			t.Errorf("owner %q, %v; want Patient/a", owner, err)
+		}
+		b, err := s.Input(t.Context(), "Patient/b", "Observation/t")
+		must(t, err)
+		if string(b.Payload) != "moved to Patient/a" {
+			t.Errorf("copy under b = %q, want the withdrawal", b.Payload)
+		}
+	})
 }
 
 // An unusable version is kept only when it hides a stored one, and the

@@ -56,6 +56,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Concurrent", testConcurrent},
 		{"PutInputs/VersionOrderAcrossPatients", testVersionOrderAcrossPatients},
 		{"PutInputs/OnlyReplaces", testOnlyReplaces},
+		{"PutInputs/VersionTies", testVersionTies},
 		{"Commit/ConflictAppliesNothing", testCommitConflict},
 		{"Commit/OverlappingWritersOneWins", testOverlappingWriters},
 		{"Result/OnePerVersion", testResults},
@@ -305,11 +306,53 @@ func testInputsOrder(t *testing.T, open func(t *testing.T) store.Store) {
 	mustNotFound(t, "Input under another subject", err)
 }
 
+// patientTieCases add to versionCases what breaks a tie of a Patient's
+// versions: its facts (the payload), compared as bytes, so that which of
+// two copies without meta is kept does not depend on the order they
+// arrive in (ref.Compare's Content, as replay orders them). A same
+// version with the same facts is the same version.
+var patientTieCases = []struct {
+	name                   string
+	oldPayload, newPayload string
+	want                   store.PutResult
+}{
+	{name: "TieGreaterFactsWin", oldPayload: "a", newPayload: "b", want: store.PutNewer},
+	{name: "TieSmallerFactsLose", oldPayload: "b", newPayload: "a", want: store.PutOlder},
+}
+
 func testPatientVersionOrder(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range patientTieCases {
+		t.Run(tc.name, func(t *testing.T) {
+			for _, meta := range []struct {
+				version string
+				updated time.Time
+			}{{"", time.Time{}}, {"3", t0}} {
+				s := open(t)
+				put := func(payload string) store.PutResult {
+					res, err := s.PutPatient(t.Context(), store.Patient{Subject: "Patient/p", VersionID: meta.version, LastUpdated: meta.updated, Payload: []byte(payload)}, t0)
+					must(t, err)
+					return res
+				}
+				put(tc.oldPayload)
+				if got := put(tc.newPayload); got != tc.want {
+					t.Fatalf("version %q: second put = %v, want %v", meta.version, got, tc.want)
+				}
+				got, err := s.Patient(t.Context(), "Patient/p")
+				must(t, err)
+				if want := max(tc.oldPayload, tc.newPayload); string(got.Payload) != want {
+					t.Errorf("version %q: stored %q, want %q", meta.version, got.Payload, want)
+				}
+			}
+		})
+	}
 	for _, tc := range versionCases {
 		t.Run(tc.name, func(t *testing.T) {
 			s := open(t)
 			subj := "Patient/p"
+			newPayload := "new"
+			if tc.want == store.PutSame {
+				newPayload = "old" // the same version, read again: the same facts
+			}
 			old := store.Patient{Subject: subj, VersionID: tc.oldVersion, LastUpdated: tc.oldUpdated, Payload: []byte("old"), FetchedAt: t0}
 			res, err := s.PutPatient(t.Context(), old, t0)
 			must(t, err)
@@ -320,7 +363,7 @@ func testPatientVersionOrder(t *testing.T, open func(t *testing.T) store.Store) 
 			if !ok {
 				t.Fatal("patient not dirty after new facts")
 			}
-			nw := store.Patient{Subject: subj, VersionID: tc.newVersion, LastUpdated: tc.newUpdated, Payload: []byte("new"), FetchedAt: t0.Add(time.Hour)}
+			nw := store.Patient{Subject: subj, VersionID: tc.newVersion, LastUpdated: tc.newUpdated, Payload: []byte(newPayload), FetchedAt: t0.Add(time.Hour)}
 			res, err = s.PutPatient(t.Context(), nw, t0.Add(time.Hour))
 			must(t, err)
 			if res != tc.want {
