@@ -301,9 +301,11 @@ type Receipt struct {
 	Rejected []Rejection
 }
 
-// Ingest decodes resources, stores the usable ones and the versions that
-// withdraw earlier usable ones, and marks their patients for evaluation.
-// It returns after the store has made them durable.
+// Ingest decodes resources, stores the usable ones and every unusable
+// version that names its resource and patient (it hides the versions it
+// supersedes, whenever they arrive), and marks the patients whose results
+// can change for evaluation. It returns after the store has made them
+// durable.
 func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMessage) (Receipt, error) {
 	rec, inputs, err := e.decodeInputs(ctx, mode, resources)
 	if err != nil || len(inputs) == 0 {
@@ -392,26 +394,21 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 			rec.Accepted++
 		case decode.ItemOmitted:
 			e.leftOut(it.Omission.Reason)
-			// An unusable version is kept only when it replaces a usable
-			// one: an amended result that fails a check, or a withdrawal,
-			// must hide the version it supersedes. A venous gas that was
-			// never usable leaves nothing behind.
+			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+			// An unusable version is kept whenever it names its resource
+			// and patient, as replay keeps it: a withdrawal, an amended
+			// result that fails a check or a cancelled one must hide the
+			// versions it supersedes, including those that arrive after
+			// it. It changes no result of its own (store.Input.Inert).
 			if it.ID == "" || it.Subject == "" {
-				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 				continue
 			}
-			// A withdrawal is always kept, even before the version it
-			// withdraws arrives, so a late or repeated earlier version can
-			// never bring it back. Any other unusable version is kept only
-			// when it replaces a stored one; the store checks that in the
-			// same transaction as the write.
 			in, err := e.toStored(it, now)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
-			in.OnlyReplaces = it.Omission.Reason != derive.ReasonEnteredInError
+			in.Inert = true
 			inputs = append(inputs, in)
-			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 		}
 	}
 	return rec, inputs, nil

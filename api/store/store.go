@@ -37,9 +37,15 @@ type Input struct {
 	EffectiveAt time.Time
 	Payload     []byte
 	// OnlyReplaces keeps the input only when a version of the same
-	// resource is stored (under any patient): an unusable version matters
-	// only when it hides a usable one. Otherwise it is PutSkipped.
+	// resource is stored (under any patient). Otherwise it is PutSkipped.
 	OnlyReplaces bool
+	// Inert marks a version no result can use (a withdrawal, a refused
+	// status, specimen or code): it is stored like any other, so that an
+	// older version arriving after it compares against it and is
+	// PutOlder, but it marks its patient dirty only when it replaces a
+	// version stored under that patient (the patient a version moves the
+	// input away from is marked as for any version).
+	Inert bool
 	// ChangedAt is the earliest blood gas sample time whose results may
 	// change because of this input (the reading's time less how far its
 	// kind reaches back); zero means any time, and the patient is

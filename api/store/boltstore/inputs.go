@@ -133,7 +133,7 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 	// carries the version that moved the input away, never newer than the
 	// owner's: it refuses only a strictly older version, and is read for
 	// what it changed.
-	exists, decided := false, false
+	exists, decided, replacedHere := false, false, false
 	span := store.SpanOf(in)
 	for i, subject := range []string{owner, in.Subject} {
 		if subject == "" || (i == 1 && subject == owner) {
@@ -158,12 +158,18 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		if subject == in.Subject {
 			// The replaced version's results change too.
 			span = span.Replacing(in, old.EffectiveAt, old.Payload)
+			replacedHere = true
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	touched := map[string]store.Span{in.Subject: span}
+	// An inert version changes no result of its own: its patient changes
+	// only when it replaces a version there.
+	touched := map[string]store.Span{}
+	if !in.Inert || replacedHere {
+		touched[in.Subject] = span
+	}
 	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
 		if _, ok, err := inputHeadAt(tx, owner, in.Logical, pl.timeOf(owner)); err != nil {

@@ -102,7 +102,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 	// under this subject that is not the owner's is a withdrawal, never
 	// newer than the owner's: it refuses only a strictly older version, and
 	// is read for what it changed (the embedded store's rule).
-	exists, ownerHasCopy, decided := false, false, false
+	exists, ownerHasCopy, decided, replacedHere := false, false, false, false
 	sp := store.SpanOf(in)
 	for i, subject := range []string{owner, in.Subject} {
 		if subject == "" || (i == 1 && subject == owner) {
@@ -134,12 +134,18 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, 
 		if subject == in.Subject {
 			// The replaced version's results change too.
 			sp = sp.Replacing(in, old.EffectiveAt, old.Payload)
+			replacedHere = true
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	changed := []touched{{in.Subject, sp}}
+	// An inert version changes no result of its own: its patient changes
+	// only when it replaces a version there.
+	var changed []touched
+	if !in.Inert || replacedHere {
+		changed = append(changed, touched{in.Subject, sp})
+	}
 	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
 		moved := in

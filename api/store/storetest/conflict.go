@@ -144,8 +144,89 @@ func testVersionTies(t *testing.T, open func(t *testing.T) store.Store) {
 	})
 }
 
-// An unusable version is kept only when it hides a stored one, and the
-// check is made in the same transaction as the write.
+// inertCases: a version no result can use (Input.Inert) is stored
+// whatever came before it, so that an older version arriving after it is
+// refused; its patient is marked dirty only when it replaces a version
+// stored there, and the patient it moves the input away from always is.
+var inertCases = []struct {
+	name        string
+	before      []store.Input // stored first, then the marks cleared
+	inert       store.Input
+	want        store.PutResult
+	wantDirty   []string
+	wantClean   []string
+	thenOlder   store.Input // arrives after the inert version
+	olderResult store.PutResult
+}{
+	{name: "FirstOfItsResource",
+		inert:     input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "cancelled"),
+		want:      store.PutNew,
+		wantClean: []string{"Patient/a"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+	{name: "ReplacesAReading",
+		before:    []store.Input{input("Patient/a", "Observation/x", "1", t0, t0, "final")},
+		inert:     input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "entered-in-error"),
+		want:      store.PutNewer,
+		wantDirty: []string{"Patient/a"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+	{name: "NamesAnotherPatient",
+		before:    []store.Input{input("Patient/a", "Observation/x", "1", t0, t0, "final")},
+		inert:     withWithdrawal(input("Patient/b", "Observation/x", "2", t0.Add(time.Minute), t0, "venous")),
+		want:      store.PutMoved,
+		wantDirty: []string{"Patient/a"},
+		wantClean: []string{"Patient/b"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+}
+
+func withWithdrawal(in store.Input) store.Input {
+	in.Withdrawal = []byte("withdrawn")
+	return in
+}
+
+func testInert(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range inertCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			ctx := t.Context()
+			if len(tc.before) > 0 {
+				put(t, s, t0, tc.before...)
+				for _, in := range tc.before {
+					if d, ok := dirtyOf(t, s, in.Subject); ok {
+						must(t, s.Commit(ctx, store.Change{Subject: in.Subject, Generation: d.Generation}, t0))
+					}
+				}
+			}
+			in := tc.inert
+			in.Inert = true
+			if got := put(t, s, t0, in); got[0] != tc.want {
+				t.Fatalf("inert version: %v, want %v", got[0], tc.want)
+			}
+			stored, err := s.Input(ctx, in.Subject, in.Logical)
+			must(t, err)
+			if string(stored.Payload) != string(in.Payload) {
+				t.Errorf("stored %q, want the inert version", stored.Payload)
+			}
+			for _, subj := range tc.wantDirty {
+				if d, ok := dirtyOf(t, s, subj); !ok {
+					t.Errorf("%s not dirty", subj)
+				} else if !d.From.IsZero() {
+					t.Errorf("%s dirty from %v, want the whole patient", subj, d.From)
+				}
+			}
+			for _, subj := range tc.wantClean {
+				if _, ok := dirtyOf(t, s, subj); ok {
+					t.Errorf("%s dirty: an inert version replaced nothing there", subj)
+				}
+			}
+			if got := put(t, s, t0, tc.thenOlder); got[0] != tc.olderResult {
+				t.Errorf("older version after it: %v, want %v", got[0], tc.olderResult)
+			}
+		})
+	}
+}
+
+// OnlyReplaces keeps a version only when a version of its resource is
+// stored, and the check is made in the same transaction as the write.
 func testOnlyReplaces(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
 	bad := input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "unusable")

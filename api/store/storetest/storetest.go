@@ -57,6 +57,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PutInputs/VersionOrderAcrossPatients", testVersionOrderAcrossPatients},
 		{"PutInputs/OnlyReplaces", testOnlyReplaces},
 		{"PutInputs/VersionTies", testVersionTies},
+		{"PutInputs/Inert", testInert},
 		{"Commit/ConflictAppliesNothing", testCommitConflict},
 		{"Commit/OverlappingWritersOneWins", testOverlappingWriters},
 		{"Result/OnePerVersion", testResults},
