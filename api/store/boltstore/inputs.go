@@ -96,7 +96,7 @@ func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store
 		if in.Logical == "" {
 			return fmt.Errorf("input %d: empty logical reference", i)
 		}
-		res, touched, err := putInput(tx, in)
+		res, touched, err := putInput(tx, in, now)
 		if err != nil {
 			return fmt.Errorf("input %d: %w", i, err)
 		}
@@ -120,7 +120,7 @@ func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store
 
 // putInput applies one input and returns the subjects whose inputs
 // changed, with the span of each change.
-func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Span, error) {
+func putInput(tx *bolt.Tx, in store.Input, now time.Time) (store.PutResult, map[string]store.Span, error) {
 	logical := []byte(in.Logical)
 	pl, err := getPlaces(tx, logical)
 	if err != nil {
@@ -128,33 +128,40 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 	}
 	owner := pl.owner()
 	// The version to beat is the latest stored: the owner's copy, under any
-	// patient, or without one (pruned) the copy under this subject. A copy
-	// under this subject that is not the owner's is a withdrawal, which
-	// carries the version that moved the input away, never newer than the
-	// owner's: it refuses only a strictly older version, and is read for
-	// what it changed.
+	// patient; without one (pruned), the version kept of it (keptSubject),
+	// or the copy under this subject. A copy under this subject that is
+	// not the owner's is a withdrawal, which carries the version that
+	// moved the input away, never newer than the owner's: it refuses only
+	// a strictly older version, and is read for what it changed.
 	exists, decided, replacedHere := false, false, false
 	span := store.SpanOf(in)
-	for i, subject := range []string{owner, in.Subject} {
-		if subject == "" || (i == 1 && subject == owner) {
+	replaces, keep := false, time.Time{} // the latest row time of what this version replaces
+	for i, subject := range []string{owner, keptSubject, in.Subject} {
+		if subject == "" || (i > 0 && subject == owner) {
 			continue // no copy there, or the owner's, read already
 		}
-		old, ok, err := inputHeadAt(tx, subject, in.Logical, pl.timeOf(subject))
+		t := pl.timeOf(subject)
+		old, ok, err := inputHeadAt(tx, subject, in.Logical, t)
 		if err != nil {
 			return 0, nil, err
 		}
 		if !ok {
 			continue
 		}
-		exists = true
-		if !decided {
+		c := store.CompareVersions(in, old)
+		if subject != keptSubject {
+			exists = true
+			if !decided {
+				c = store.CompareStored(in, old)
+			}
+		}
+		if !decided || c < 0 {
 			decided = true
-			if c := store.CompareStored(in, old); c <= 0 {
+			if c <= 0 {
 				return store.ResultOf(true, c), nil, nil
 			}
-		} else if store.CompareVersions(in, old) < 0 {
-			return store.PutOlder, nil, nil
 		}
+		replaces, keep = true, latestTime(keep, parseTimeKey(t))
 		if subject == in.Subject {
 			// The replaced version's results change too.
 			span = span.Replacing(in, old.EffectiveAt, old.Payload)
@@ -188,10 +195,55 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		return 0, nil, err
 	}
 	pl.own(in.Subject)
+	if replaces {
+		if err := keepVersion(tx, &pl, in, latestTime(keep, now)); err != nil {
+			return 0, nil, err
+		}
+	}
 	if err := putPlaces(tx, logical, pl); err != nil {
 		return 0, nil, err
 	}
 	return res, touched, nil
+}
+
+// keptSubject files, in input_rows and in an input's places, the version
+// kept of an input whose rows may be pruned before an older version of it
+// can no longer arrive: a row with the newest version's id and
+// last-updated time and no payload, at the time until which it is kept.
+// No patient has this subject (checkSubject refuses it), so no patient's
+// inputs list it; Prune removes it like any row once its time is past the
+// horizon.
+//
+// A version that replaces others is kept until the latest of the row
+// times of the versions it replaced and the time it arrived (now): a late
+// copy of a version it superseded is refused for a retention after the
+// newest version arrived, and for as long as that copy's own effective
+// time is within the retention (the engine refuses it by its time after
+// that), even when the newest version's row goes first (a correction
+// that moves the sample time earlier, or to another patient). When its
+// own row outlives both, nothing more is kept.
+const keptSubject = "\x01kept"
+
+// keepVersion records in's version as the one kept of its input until
+// until, or drops what was kept when in's own row lasts as long.
+func keepVersion(tx *bolt.Tx, pl *places, in store.Input, until time.Time) error {
+	if !until.After(in.EffectiveAt) {
+		if t := pl.timeOf(keptSubject); t != nil {
+			if err := tx.Bucket(bInputRows).Delete(rowKey(subjectPrefix(keptSubject), t, []byte(in.Logical))); err != nil {
+				return err
+			}
+			pl.remove(keptSubject)
+		}
+		return nil
+	}
+	return writeInput(tx, pl, store.Input{Subject: keptSubject, Logical: in.Logical, VersionID: in.VersionID, LastUpdated: in.LastUpdated, EffectiveAt: until})
+}
+
+func latestTime(a, b time.Time) time.Time {
+	if a.After(b) {
+		return a
+	}
+	return b
 }
 
 // inputHeadAt reads the version of subject's stored input, whose row is
@@ -544,7 +596,9 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 			if err := putPlaces(tx, logical, pl); err != nil {
 				return err
 			}
-			n++
+			if subject != keptSubject {
+				n++
+			}
 		}
 		return nil
 	})

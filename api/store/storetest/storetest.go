@@ -52,6 +52,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PutNotified", testPutNotified},
 		{"Events/OrderAndResume", testEvents},
 		{"Prune", testPrune},
+		{"Prune/KeepsTheNewestVersion", testPruneKeepsNewestVersion},
 		{"Context/Canceled", testCanceled},
 		{"Concurrent", testConcurrent},
 		{"PutInputs/VersionOrderAcrossPatients", testVersionOrderAcrossPatients},
@@ -1020,6 +1021,94 @@ func testPrune(t *testing.T, open func(t *testing.T) store.Store) {
 	if ins, _ := s.Inputs(ctx, "Patient/a"); len(ins) != 1 {
 		t.Errorf("Patient/a has %d inputs after Prune, want 1", len(ins))
 	}
+}
+
+// pruneKeptCases: a version that superseded others is remembered after
+// its row is pruned, for as long as a late copy of what it superseded
+// could still be within the retention: until the latest of the times of
+// the rows it replaced and the time it arrived (the now of its put), so
+// a correction that moved the sample time earlier, or the input to
+// another patient, is not undone by a late copy of the first version
+// once the correction's row is gone.
+var pruneKeptCases = []struct {
+	name     string
+	versions []store.Input // put in order at t0 (the horizon below is after every one's row but the first's)
+	late     store.Input   // a copy of the first version, after the prune
+	horizon  time.Time
+	want     store.PutResult
+}{
+	{name: "CorrectedToAnEarlierTime",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2, sampled a day earlier"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutOlder},
+	{name: "RefiledToAnotherPatientAtAnEarlierTime",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			withWithdrawal(input("Patient/b", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2 under b")),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutOlder},
+	{name: "WithdrawnAndPruned",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-30*time.Minute), "v1"),
+			input("Patient/a", "Observation/g", "2", t0.Add(-40*time.Minute), t0.Add(-40*time.Minute), "withdrawal kept by its last-updated time"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-30*time.Minute), "v1"),
+		horizon: t0.Add(-35 * time.Minute), want: store.PutOlder},
+	{name: "ForgottenOnceItsTimeIsPast",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(time.Nanosecond), want: store.PutNew},
+	{name: "ANewerVersionAfterThePrune",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2"),
+		},
+		late:    input("Patient/a", "Observation/g", "3", t0.Add(time.Minute), t0.Add(-time.Hour), "v3"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutNew},
+}
+
+func testPruneKeepsNewestVersion(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range pruneKeptCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			ctx := t.Context()
+			for _, in := range tc.versions {
+				put(t, s, t0, in)
+			}
+			if _, err := s.Prune(ctx, tc.horizon); err != nil {
+				t.Fatal(err)
+			}
+			if got := put(t, s, t0, tc.late); got[0] != tc.want {
+				t.Fatalf("late version %s: %v, want %v", tc.late.VersionID, got[0], tc.want)
+			}
+			_, err := s.Input(ctx, tc.late.Subject, tc.late.Logical)
+			if stored := err == nil; stored != (tc.want == store.PutNew) {
+				t.Errorf("late version stored = %v (%v), want %v", stored, err, tc.want == store.PutNew)
+			}
+			// Nothing kept counts as an input pruned, and every row kept
+			// goes once its time is past.
+			if n, err := s.Prune(ctx, t0.Add(48*time.Hour)); err != nil || n != btoi(tc.want == store.PutNew) {
+				t.Errorf("final Prune = %d, %v; want %d", n, err, btoi(tc.want == store.PutNew))
+			}
+			if got := put(t, s, t0.Add(49*time.Hour), tc.versions[0]); got[0] != store.PutNew {
+				t.Errorf("the first version after everything was pruned: %v, want PutNew", got[0])
+			}
+		})
+	}
+}
+
+func btoi(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
 }
 
 // Every method checks its context before it starts.
