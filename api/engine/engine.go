@@ -315,7 +315,7 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 	if err != nil {
 		return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
 	}
-	e.stored(res)
+	e.stored(inputs, res)
 	return rec, nil
 }
 
@@ -343,7 +343,7 @@ func (e *Engine) IngestNotified(ctx context.Context, mode string, resources []js
 	if err != nil {
 		return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
 	}
-	e.stored(res)
+	e.stored(inputs, res)
 	e.notifiedAt()
 	e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
 	return rec, nil
@@ -355,6 +355,10 @@ func (e *Engine) IngestNotified(ctx context.Context, mode string, resources []js
 func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json.RawMessage) (Receipt, []store.Input, error) {
 	var rec Receipt
 	var inputs []store.Input
+	// The logical references of inputs, for re-coded versions of resources
+	// this call holds (batch are those in inBatch, in order).
+	var batch []string
+	inBatch := map[string]bool{}
 	now := e.now()
 	for i, raw := range resources {
 		it, err := e.cfg.Decoder.Decode(raw)
@@ -366,6 +370,21 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 		e.received(mode, it.ResourceType)
 		switch it.Type {
 		case decode.ItemUnrelated:
+			if it.ResourceType == "Observation" && it.ID != "" {
+				for _, in := range inputs[len(batch):] {
+					batch = append(batch, in.Logical)
+					inBatch[in.Logical] = true
+				}
+				in, ok, err := e.recoded(ctx, raw, it, now, inBatch["Observation/"+it.ID])
+				if err != nil {
+					return Receipt{}, nil, err
+				}
+				if ok {
+					rec.Rejected = append(rec.Rejected, Rejection{i, derive.ReasonRecoded, "a newer version has a code this service has no use for"})
+					inputs = append(inputs, in)
+					continue
+				}
+			}
 			rec.Ignored++
 			if it.ResourceType == "Observation" {
 				e.leftOut(derive.ReasonUnrecognised)
@@ -414,17 +433,53 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 	return rec, inputs, nil
 }
 
+// recoded is the stored input of an Observation with no code this service
+// uses (it), when the store holds a version of its resource or one is
+// among the inputs of the same call before it (before): the resource was re-coded
+// (a blood gas corrected to glucose, say), and this version supersedes the
+// held one, so nothing derived from it stays. ok is false when there is
+// none (the store checks again as it writes: Input.OnlyReplaces), or when
+// the resource names no Patient to file it under.
+func (e *Engine) recoded(ctx context.Context, raw []byte, it decode.Item, now time.Time, before bool) (store.Input, bool, error) {
+	if !before {
+		switch _, err := e.cfg.Store.Owner(ctx, "Observation/"+it.ID); {
+		case errors.Is(err, store.ErrNotFound):
+			return store.Input{}, false, nil
+		case err != nil:
+			return store.Input{}, false, fmt.Errorf("engine: ingest: %w", err)
+		}
+	}
+	rc, ok := e.cfg.Decoder.Recoded(raw)
+	if !ok {
+		return store.Input{}, false, nil
+	}
+	in, err := e.toStored(rc, now)
+	if err != nil {
+		return store.Input{}, false, err
+	}
+	in.Inert, in.OnlyReplaces = true, true
+	return in, true, nil
+}
+
 // stored counts what the store did with the inputs and wakes the
 // evaluator. Two versions of one resource: one of them is superseded, as
 // replay counts it; a version that moves the input to another patient is
-// counted as re-filed.
-func (e *Engine) stored(res []store.PutResult) {
-	for _, r := range res {
+// counted as re-filed. A re-coded version is counted as such when it was
+// stored, and as not recognised when it had nothing to replace.
+func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
+	for i, r := range res {
 		switch r {
 		case store.PutNewer, store.PutOlder:
 			e.leftOut(derive.ReasonSuperseded)
 		case store.PutMoved:
 			e.leftOut(derive.ReasonRefiled)
+		}
+		if inputs[i].OnlyReplaces {
+			if r == store.PutSkipped {
+				e.leftOut(derive.ReasonUnrecognised)
+			} else {
+				e.leftOut(derive.ReasonRecoded)
+			}
 		}
 	}
 	signal(e.wake)

@@ -348,6 +348,15 @@ type Collector struct {
 	// are only counted: a bulk export is mostly such lines, and keeping a
 	// record of each would cost memory for no audit value.
 	unrecognised int
+	// seen holds a hash of the logical reference of every resource read so
+	// far that the live store would hold a version of (a reading, or an
+	// unusable version with a subject): an Observation with no code this
+	// service uses whose id is among them was re-coded, and is kept as a
+	// version of its own (AddLine), as the live engine keeps it. A hash
+	// costs a tenth of a string key; a collision only makes AddLine read a
+	// line in full, and Finish sets aside a re-coded version of a resource
+	// read nowhere else.
+	seen map[uint64]struct{}
 }
 
 // record is one buffered reading, flattened so that it packs into 64 bytes
@@ -373,7 +382,41 @@ type omittedRecord struct {
 
 // NewCollector returns an empty collector.
 func NewCollector() *Collector {
-	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item)}
+	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item), seen: make(map[uint64]struct{})}
+}
+
+// AddLine decodes one line and adds it, and returns what it added. An
+// Observation with no code this service uses, whose logical id was read
+// before (a version of it was a reading, or an unusable version filed
+// under a patient), is added as a re-coded version of that resource
+// (decode.Decoder.Recoded), which supersedes the earlier versions, as the
+// live engine stores it when it holds one of them.
+func (c *Collector) AddLine(dec *decode.Decoder, line []byte) (decode.Item, error) {
+	it, err := dec.Decode(line)
+	if err != nil {
+		return it, err
+	}
+	if it.Type == decode.ItemUnrelated && it.ResourceType == "Observation" && it.ID != "" {
+		if _, ok := c.seen[logicalHash("Observation/", it.ID)]; ok {
+			if rc, ok := dec.Recoded(line); ok {
+				it = rc
+			}
+		}
+	}
+	c.Add(it)
+	return it, nil
+}
+
+// logicalHash is FNV-1a of prefix+id, computed without joining them.
+func logicalHash(prefix, id string) uint64 {
+	h := uint64(14695981039346656037)
+	for _, s := range [2]string{prefix, id} {
+		for i := range len(s) {
+			h ^= uint64(s[i])
+			h *= 1099511628211
+		}
+	}
+	return h
 }
 
 // Add takes one decoded item. Unrelated items are only counted.
@@ -390,6 +433,8 @@ func (c *Collector) Add(it decode.Item) {
 		}
 	case decode.ItemReading:
 		r := it.Reading
+		l, _ := splitRef(r.Ref)
+		c.seen[logicalHash(l, "")] = struct{}{}
 		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
 			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
 			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority), also: it.Also,
@@ -398,6 +443,9 @@ func (c *Collector) Add(it decode.Item) {
 		ref := it.Ref
 		if ref == "" {
 			ref = it.Omission.Ref
+		}
+		if l := splitRefOK(ref); it.Subject != "" && l != "" {
+			c.seen[logicalHash(l, "")] = struct{}{}
 		}
 		c.omitted = append(c.omitted, omittedRecord{subject: it.Subject, ref: ref, lastUpdated: nanos(it.LastUpdated), omission: it.Omission})
 	}
@@ -588,9 +636,14 @@ type Report struct {
 // of their reference, so the output is deterministic.
 func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, error) {
 	rep := Report{Unrecognised: c.unrecognised}
+	alone := c.recodedAlone()
 	omittedBySubject := make(map[string][]*omittedRecord)
 	for i := range c.omitted {
 		o := &c.omitted[i]
+		if alone[splitRefOK(o.ref)] && o.omission.Reason == derive.ReasonRecoded {
+			rep.Unrecognised++ // no other version of it was read: only unrelated
+			continue
+		}
 		if o.subject == "" || splitRefOK(o.ref) == "" {
 			rep.Inputs = append(rep.Inputs, o.omission)
 			continue
@@ -645,6 +698,34 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 		return strings.Compare(string(a.Reason), string(b.Reason))
 	})
 	return rep, nil
+}
+
+// recodedAlone returns the logical references of re-coded versions of
+// which no other version was read (AddLine took one for re-coded because
+// of a hash collision): they are only unrelated Observations.
+func (c *Collector) recodedAlone() map[string]bool {
+	alone := make(map[string]bool)
+	for _, o := range c.omitted {
+		if o.omission.Reason == derive.ReasonRecoded {
+			alone[splitRefOK(o.ref)] = true
+		}
+	}
+	if len(alone) == 0 {
+		return nil
+	}
+	for _, recs := range c.bySubject {
+		for _, r := range recs {
+			if l := splitRefOK(r.ref); alone[l] {
+				alone[l] = false
+			}
+		}
+	}
+	for _, o := range c.omitted {
+		if l := splitRefOK(o.ref); o.omission.Reason != derive.ReasonRecoded && o.subject != "" && alone[l] {
+			alone[l] = false
+		}
+	}
+	return alone
 }
 
 // newestAcrossSubjects returns, for every logical reference seen under

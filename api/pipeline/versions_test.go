@@ -166,3 +166,62 @@ func TestTiedPatientsOrderedByTheirFacts(t *testing.T) {
 		t.Error("a Patient is not the same version as itself")
 	}
 }
+
+// TestRecodedVersionSupersedesWhatWasReadBefore: a blood gas corrected to
+// a code this service has no use for (glucose) is a version of its own
+// once an earlier version of the resource was read, as the live engine
+// stores it once it holds an earlier one: nothing is derived from the
+// gas, and the re-coded version is listed with its reason. Read before
+// any version of its resource, it is only an unrelated Observation, as
+// in the live engine, which holds nothing to replace.
+func TestRecodedVersionSupersedesWhatWasReadBefore(t *testing.T) {
+	const at = "2026-03-01T01:00:00Z"
+	gas := versionLine("z", "1", "2026-03-01T01:20:00Z", "Patient/a", "final", "2019-8", 45, at)
+	glucose := strings.Replace(versionLine("z", "2", "2026-03-01T01:21:00Z", "Patient/a", "amended", "2345-7", 100, at), `"unit":"mm[Hg]"`, `"unit":"mg/dL"`, 1)
+	et := versionLine("et", "1", "2026-03-01T01:02:00Z", "Patient/a", "final", "19891-1", 35, "2026-03-01T01:01:00Z")
+	for _, tc := range []struct {
+		name             string
+		lines            []string
+		wantDerived      int
+		wantRecoded      bool
+		wantUnrecognised int
+	}{
+		{"gas, then re-coded", []string{et, gas, glucose}, 0, true, 0},
+		{"re-coded, then gas", []string{et, glucose, gas}, 1, false, 1},
+		{"re-coded alone", []string{et, glucose}, 0, false, 1},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			dec := decode.New(decode.Options{})
+			col := pipeline.NewCollector()
+			for _, l := range tc.lines {
+				if _, err := col.AddLine(dec, []byte(l)); err != nil {
+					t.Fatal(err)
+				}
+			}
+			enc, err := encode.New(encode.DefaultOptions())
+			if err != nil {
+				t.Fatal(err)
+			}
+			rep, err := col.Finish(derive.DefaultConfig(), enc)
+			if err != nil {
+				t.Fatal(err)
+			}
+			derived := 0
+			for _, r := range rep.Results {
+				if r.Derivation != nil {
+					derived++
+				}
+			}
+			recoded := false
+			for _, o := range rep.Inputs {
+				if o.Reason == derive.ReasonRecoded && o.Ref == "Observation/z/_history/2" {
+					recoded = true
+				}
+			}
+			if derived != tc.wantDerived || recoded != tc.wantRecoded || rep.Unrecognised != tc.wantUnrecognised {
+				t.Errorf("derived %d, re-coded listed %v, unrecognised %d; want %d, %v, %d (inputs left out: %+v)",
+					derived, recoded, rep.Unrecognised, tc.wantDerived, tc.wantRecoded, tc.wantUnrecognised, rep.Inputs)
+			}
+		})
+	}
+}
