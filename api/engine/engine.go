@@ -464,8 +464,10 @@ func (e *Engine) recoded(ctx context.Context, raw []byte, it decode.Item, now ti
 // stored counts what the store did with the inputs and wakes the
 // evaluator. Two versions of one resource: one of them is superseded, as
 // replay counts it; a version that moves the input to another patient is
-// counted as re-filed. A re-coded version is counted as such when it was
-// stored, and as not recognised when it had nothing to replace.
+// counted as re-filed. A version stored only when it replaces one (a
+// re-coded or deleted resource, Input.OnlyReplaces) is counted by its own
+// reason when it was stored; a re-coded one that had nothing to replace
+// is an Observation this service does not recognise.
 func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
 	for i, r := range res {
 		switch r {
@@ -474,12 +476,18 @@ func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
 		case store.PutMoved:
 			e.leftOut(derive.ReasonRefiled)
 		}
-		if inputs[i].OnlyReplaces {
-			if r == store.PutSkipped {
-				e.leftOut(derive.ReasonUnrecognised)
-			} else {
-				e.leftOut(derive.ReasonRecoded)
-			}
+		if !inputs[i].OnlyReplaces {
+			continue
+		}
+		reason := derive.ReasonRecoded
+		if si, err := decodeStored(inputs[i].Payload, inputs[i].Logical, inputs[i].VersionID); err == nil {
+			reason = si.Item.Omission.Reason
+		}
+		switch {
+		case r != store.PutSkipped:
+			e.leftOut(reason)
+		case reason == derive.ReasonRecoded:
+			e.leftOut(derive.ReasonUnrecognised)
 		}
 	}
 	signal(e.wake)
