@@ -359,6 +359,16 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 	// this call holds (batch are those in inBatch, in order).
 	var batch []string
 	inBatch := map[string]bool{}
+	// Observations with no code this service uses, each perhaps a re-coded
+	// version of a resource this call or the store holds: decided after
+	// the loop, with one question to the store for them all.
+	type unrelated struct {
+		index  int
+		raw    []byte
+		id     string
+		before bool // a version of its resource is among the inputs before it
+	}
+	var maybeRecoded []unrelated
 	now := e.now()
 	for i, raw := range resources {
 		it, err := e.cfg.Decoder.Decode(raw)
@@ -375,15 +385,8 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 					batch = append(batch, in.Logical)
 					inBatch[in.Logical] = true
 				}
-				in, ok, err := e.recoded(ctx, raw, it, now, inBatch["Observation/"+it.ID])
-				if err != nil {
-					return Receipt{}, nil, err
-				}
-				if ok {
-					rec.Rejected = append(rec.Rejected, Rejection{i, derive.ReasonRecoded, "a newer version has a code this service has no use for"})
-					inputs = append(inputs, in)
-					continue
-				}
+				maybeRecoded = append(maybeRecoded, unrelated{i, raw, it.ID, inBatch["Observation/"+it.ID]})
+				continue
 			}
 			rec.Ignored++
 			if it.ResourceType == "Observation" {
@@ -430,35 +433,71 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 			inputs = append(inputs, in)
 		}
 	}
+	if len(maybeRecoded) > 0 {
+		var ask []string
+		for _, u := range maybeRecoded {
+			if !u.before {
+				ask = append(ask, "Observation/"+u.id)
+			}
+		}
+		held, err := e.held(ctx, ask)
+		if err != nil {
+			return Receipt{}, nil, err
+		}
+		for _, u := range maybeRecoded {
+			if !u.before && !held["Observation/"+u.id] {
+				rec.Ignored++
+				e.leftOut(derive.ReasonUnrecognised)
+				continue
+			}
+			// A re-coded version (a blood gas corrected to glucose, say)
+			// supersedes the version held, so nothing derived from it
+			// stays. The store checks again as it writes (OnlyReplaces).
+			rc, ok := e.cfg.Decoder.Recoded(u.raw)
+			if !ok {
+				rec.Ignored++
+				e.leftOut(derive.ReasonUnrecognised)
+				continue
+			}
+			in, err := e.toStored(rc, now)
+			if err != nil {
+				return Receipt{}, nil, err
+			}
+			in.Inert, in.OnlyReplaces = true, true
+			inputs = append(inputs, in)
+			rec.Rejected = append(rec.Rejected, Rejection{u.index, derive.ReasonRecoded, rc.Omission.Detail})
+		}
+		slices.SortStableFunc(rec.Rejected, func(a, b Rejection) int { return a.Index - b.Index })
+	}
 	return rec, inputs, nil
 }
 
-// recoded is the stored input of an Observation with no code this service
-// uses (it), when the store holds a version of its resource or one is
-// among the inputs of the same call before it (before): the resource was re-coded
-// (a blood gas corrected to glucose, say), and this version supersedes the
-// held one, so nothing derived from it stays. ok is false when there is
-// none (the store checks again as it writes: Input.OnlyReplaces), or when
-// the resource names no Patient to file it under.
-func (e *Engine) recoded(ctx context.Context, raw []byte, it decode.Item, now time.Time, before bool) (store.Input, bool, error) {
-	if !before {
-		switch _, err := e.cfg.Store.Owner(ctx, "Observation/"+it.ID); {
-		case errors.Is(err, store.ErrNotFound):
-			return store.Input{}, false, nil
-		case err != nil:
-			return store.Input{}, false, fmt.Errorf("engine: ingest: %w", err)
+// held reports which of logicals the store holds a version of (Owner
+// finds one), in one read where the store can (store.Holder).
+func (e *Engine) held(ctx context.Context, logicals []string) (map[string]bool, error) {
+	out := make(map[string]bool, len(logicals))
+	if len(logicals) == 0 {
+		return out, nil
+	}
+	if h, ok := e.cfg.Store.(store.Holder); ok {
+		got, err := h.Held(ctx, logicals)
+		if err != nil {
+			return nil, fmt.Errorf("engine: ingest: %w", err)
+		}
+		for i, l := range logicals {
+			out[l] = got[i]
+		}
+		return out, nil
+	}
+	for _, l := range logicals {
+		switch _, err := e.cfg.Store.Owner(ctx, l); {
+		case err == nil:
+			out[l] = true
+		case !errors.Is(err, store.ErrNotFound):
+			return nil, fmt.Errorf("engine: ingest: %w", err)
 		}
 	}
-	rc, ok := e.cfg.Decoder.Recoded(raw)
-	if !ok {
-		return store.Input{}, false, nil
-	}
-	in, err := e.toStored(rc, now)
-	if err != nil {
-		return store.Input{}, false, err
-	}
-	in.Inert, in.OnlyReplaces = true, true
-	return in, true, nil
+	return out, nil
 }
 
 // stored counts what the store did with the inputs and wakes the

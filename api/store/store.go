@@ -301,6 +301,18 @@ type InputScanner interface {
 	ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(InputRow) error) error
 }
 
+// Holder is implemented by a store that can say in one read, for many
+// inputs at once, whether it holds a version of each (what
+// [Store.Owner] finds). The engine asks it about the Observations an
+// ingest finds no use for, most of what an unfiltered export holds, to
+// tell a re-coded version of a held resource from the others; a store
+// without it is asked with Owner, one at a time.
+type Holder interface {
+	// Held reports, for each logical reference in order, whether Owner
+	// would find a subject for it.
+	Held(ctx context.Context, logicals []string) ([]bool, error)
+}
+
 // InputRow is a stored input as [InputScanner] shows it: the fields an
 // evaluation reads, as slices of the store's own bytes.
 type InputRow struct {

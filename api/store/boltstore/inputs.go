@@ -627,3 +627,25 @@ func (s *Store) Owner(ctx context.Context, logical string) (string, error) {
 	}
 	return subject, nil
 }
+
+var _ store.Holder = (*Store)(nil)
+
+// Held reads, in one transaction, whether each input has an owner, as
+// Owner would.
+func (s *Store) Held(ctx context.Context, logicals []string) ([]bool, error) {
+	out := make([]bool, len(logicals))
+	err := s.view(ctx, "Held", func(tx *bolt.Tx) error {
+		for i, l := range logicals {
+			pl, err := getPlaces(tx, []byte(l))
+			if err != nil {
+				return err
+			}
+			out[i] = pl.owner() != ""
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
