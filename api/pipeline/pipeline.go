@@ -348,15 +348,15 @@ type Collector struct {
 	// are only counted: a bulk export is mostly such lines, and keeping a
 	// record of each would cost memory for no audit value.
 	unrecognised int
-	// seen holds a hash of the logical reference of every resource read so
-	// far that the live store would hold a version of (a reading, or an
-	// unusable version with a subject): an Observation with no code this
-	// service uses whose id is among them was re-coded, and is kept as a
-	// version of its own (AddLine), as the live engine keeps it. A hash
-	// costs a tenth of a string key; a collision only makes AddLine read a
-	// line in full, and Finish sets aside a re-coded version of a resource
-	// read nowhere else.
-	seen map[uint64]struct{}
+	// seen holds a 32-bit hash of the logical reference of every resource
+	// read so far that the live store would hold a version of (a reading,
+	// or an unusable version with a subject): an Observation with no code
+	// this service uses whose id is among them was re-coded, and is kept as
+	// a version of its own (AddLine), as the live engine keeps it. A hash
+	// costs a few bytes a reading where a string key would cost tens; a
+	// collision only makes AddLine read a line in full, and Finish sets
+	// aside a re-coded version of a resource read nowhere else.
+	seen map[uint32]struct{}
 }
 
 // record is one buffered reading, flattened so that it packs into 64 bytes
@@ -382,7 +382,7 @@ type omittedRecord struct {
 
 // NewCollector returns an empty collector.
 func NewCollector() *Collector {
-	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item), seen: make(map[uint64]struct{})}
+	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item), seen: make(map[uint32]struct{})}
 }
 
 // AddLine decodes one line and adds it, and returns what it added. An
@@ -407,8 +407,9 @@ func (c *Collector) AddLine(dec *decode.Decoder, line []byte) (decode.Item, erro
 	return it, nil
 }
 
-// logicalHash is FNV-1a of prefix+id, computed without joining them.
-func logicalHash(prefix, id string) uint64 {
+// logicalHash is 64-bit FNV-1a of prefix+id, computed without joining
+// them, folded to 32 bits.
+func logicalHash(prefix, id string) uint32 {
 	h := uint64(14695981039346656037)
 	for _, s := range [2]string{prefix, id} {
 		for i := range len(s) {
@@ -416,7 +417,7 @@ func logicalHash(prefix, id string) uint64 {
 			h *= 1099511628211
 		}
 	}
-	return h
+	return uint32(h>>32) ^ uint32(h)
 }
 
 // Add takes one decoded item. Unrelated items are only counted.
