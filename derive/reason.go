@@ -28,6 +28,8 @@ const (
 	ReasonArtefact       Reason = "etco2-artefact"              // an end-tidal reading that cannot be the patient's end-tidal value then (near zero, or far below its window)
 	ReasonTooSparse      Reason = "series-too-sparse"           // an end-tidal series too sparse or gappy for the fall and rise detector to judge
 	ReasonPastRetention  Reason = "older-than-retention"        // the live service's retention is over for it: never derived
+	ReasonRecoded        Reason = "re-coded"                    // a newer version has a code this service has no use for
+	ReasonDeleted        Reason = "deleted"                     // the live service learned that the resource was deleted on the server
 )
 
 // Reasons a derived value is not emitted.
@@ -50,6 +52,7 @@ func AllReasons() []Reason {
 		ReasonUnitMismatch, ReasonNoTime, ReasonNoSubject, ReasonImplausible,
 		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority, ReasonRefiled,
 		ReasonWrongUnit, ReasonArtefact, ReasonTooSparse, ReasonPastRetention,
+		ReasonRecoded, ReasonDeleted,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
 		ReasonInconsistent, ReasonNotApplicable, ReasonNotAdult, ReasonTooFewUsable,
 	}

@@ -379,12 +379,16 @@ func (e *Engine) gapFound(ctx context.Context, events uint64) {
 
 // Fetch reads resources named by an id-only notification from the server
 // and ingests them. It returns only after they are stored, so the sender is
-// answered 2xx only when nothing can be lost.
+// answered 2xx only when nothing can be lost. A resource the server no
+// longer has (404 Not Found, 410 Gone: deleted) is applied as a deletion
+// (Deleted), learned now; it is not an error, or the sender would send the
+// notification again for ever.
 func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 	if e.cfg.Client == nil {
 		return Receipt{}, fmt.Errorf("%w: id-only notifications need a FHIR server to read from (--fhir-base)", ErrInvalid)
 	}
 	var resources []json.RawMessage
+	var gone []Deletion
 	for _, ref := range refs {
 		typ, id, ok := notify.RelativeRef(ref, "")
 		if !ok {
@@ -394,12 +398,107 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 			continue
 		}
 		body, _, err := e.cfg.Client.Read(ctx, typ, id)
+		if errors.Is(err, client.ErrNotFound) || errors.Is(err, client.ErrGone) {
+			e.log.InfoContext(ctx, "a resource a notification named is not on the server; taken as deleted", "type", typ, "err", err)
+			gone = append(gone, Deletion{Ref: typ + "/" + id, How: "a read of it answered " + readStatus(err)})
+			continue
+		}
 		if err != nil {
 			return Receipt{}, fmt.Errorf("engine: fetch focus: %w", err)
 		}
 		resources = append(resources, body)
 	}
-	return e.Ingest(ctx, "notification-id-only", resources)
+	var rec Receipt
+	if len(resources) > 0 {
+		var err error
+		if rec, err = e.Ingest(ctx, "notification-id-only", resources); err != nil {
+			return Receipt{}, err
+		}
+	}
+	if len(gone) > 0 {
+		if err := e.Deleted(ctx, gone); err != nil {
+			return Receipt{}, err
+		}
+	}
+	return rec, nil
+}
+
+func readStatus(err error) string {
+	if errors.Is(err, client.ErrGone) {
+		return "410 Gone"
+	}
+	return "404 Not Found"
+}
+
+// Deletion is a resource the FHIR server deleted.
+type Deletion struct {
+	// Ref names it: "Type/id", relative or absolute, possibly versioned.
+	Ref string
+	// At is when it was deleted, when the server said so (a history
+	// entry's response.lastModified). Zero: learned now, from the
+	// server's current state, so the deletion comes after every version
+	// the store holds.
+	At time.Time
+	// How says how it was learned, for the stored record.
+	How string
+}
+
+// Deleted applies deletions: each Observation the store holds gets a
+// version that withdraws it (reason deleted) under the patient its latest
+// version names, last updated when it was deleted, or now, or just after
+// the version held when the server's clock is behind this one's. A later
+// version (the resource written again) still wins; an older one arriving
+// late is refused. An Observation the store never held, or no longer
+// holds, and any Patient, are left as they are. It returns after the
+// store has made the withdrawals durable.
+func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) error {
+	now := e.now()
+	var inputs []store.Input
+	for _, d := range deletions {
+		typ, id, ok := notify.RelativeRef(d.Ref, "")
+		if !ok || typ != "Observation" {
+			continue
+		}
+		logical := typ + "/" + id
+		owner, err := e.cfg.Store.Owner(ctx, logical)
+		if errors.Is(err, store.ErrNotFound) {
+			continue
+		}
+		if err != nil {
+			return fmt.Errorf("engine: deletion: %w", err)
+		}
+		at := d.At
+		if at.IsZero() {
+			at = now
+			held, err := e.cfg.Store.Input(ctx, owner, logical)
+			switch {
+			case errors.Is(err, store.ErrNotFound):
+			case err != nil:
+				return fmt.Errorf("engine: deletion: %w", err)
+			case !at.After(held.LastUpdated):
+				at = held.LastUpdated.Add(time.Nanosecond)
+			}
+		}
+		in, err := e.toStored(decode.Item{
+			Type: decode.ItemOmitted, ResourceType: typ, ID: id, Ref: logical, Subject: owner, LastUpdated: at,
+			Reading:  derive.Reading{Ref: logical},
+			Omission: derive.Omission{Ref: logical, Reason: derive.ReasonDeleted, Detail: "deleted on the server: " + d.How},
+		}, now)
+		if err != nil {
+			return err
+		}
+		in.Inert, in.OnlyReplaces = true, true
+		inputs = append(inputs, in)
+	}
+	if len(inputs) == 0 {
+		return nil
+	}
+	res, err := e.cfg.Store.PutInputs(ctx, inputs, now)
+	if err != nil {
+		return fmt.Errorf("engine: deletion: %w", err)
+	}
+	e.stored(inputs, res)
+	return nil
 }
 
 // fetchPatient reads a patient's demographics from the server when the

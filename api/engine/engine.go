@@ -25,6 +25,7 @@ import (
 	"sync"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -300,9 +301,11 @@ type Receipt struct {
 	Rejected []Rejection
 }
 
-// Ingest decodes resources, stores the usable ones and the versions that
-// withdraw earlier usable ones, and marks their patients for evaluation.
-// It returns after the store has made them durable.
+// Ingest decodes resources, stores the usable ones and every unusable
+// version that names its resource and patient (it hides the versions it
+// supersedes, whenever they arrive), and marks the patients whose results
+// can change for evaluation. It returns after the store has made them
+// durable.
 func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMessage) (Receipt, error) {
 	rec, inputs, err := e.decodeInputs(ctx, mode, resources)
 	if err != nil || len(inputs) == 0 {
@@ -312,7 +315,7 @@ func (e *Engine) Ingest(ctx context.Context, mode string, resources []json.RawMe
 	if err != nil {
 		return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
 	}
-	e.stored(res)
+	e.stored(inputs, res)
 	return rec, nil
 }
 
@@ -340,7 +343,7 @@ func (e *Engine) IngestNotified(ctx context.Context, mode string, resources []js
 	if err != nil {
 		return Receipt{}, fmt.Errorf("engine: ingest: %w", err)
 	}
-	e.stored(res)
+	e.stored(inputs, res)
 	e.notifiedAt()
 	e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
 	return rec, nil
@@ -352,6 +355,20 @@ func (e *Engine) IngestNotified(ctx context.Context, mode string, resources []js
 func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json.RawMessage) (Receipt, []store.Input, error) {
 	var rec Receipt
 	var inputs []store.Input
+	// The logical references of inputs, for re-coded versions of resources
+	// this call holds (batch are those in inBatch, in order).
+	var batch []string
+	inBatch := map[string]bool{}
+	// Observations with no code this service uses, each perhaps a re-coded
+	// version of a resource this call or the store holds: decided after
+	// the loop, with one question to the store for them all.
+	type unrelated struct {
+		index  int
+		raw    []byte
+		id     string
+		before bool // a version of its resource is among the inputs before it
+	}
+	var maybeRecoded []unrelated
 	now := e.now()
 	for i, raw := range resources {
 		it, err := e.cfg.Decoder.Decode(raw)
@@ -363,6 +380,14 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 		e.received(mode, it.ResourceType)
 		switch it.Type {
 		case decode.ItemUnrelated:
+			if it.ResourceType == "Observation" && it.ID != "" {
+				for _, in := range inputs[len(batch):] {
+					batch = append(batch, in.Logical)
+					inBatch[in.Logical] = true
+				}
+				maybeRecoded = append(maybeRecoded, unrelated{i, raw, it.ID, inBatch["Observation/"+it.ID]})
+				continue
+			}
 			rec.Ignored++
 			if it.ResourceType == "Observation" {
 				e.leftOut(derive.ReasonUnrecognised)
@@ -383,7 +408,7 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 				e.leftOut(derive.ReasonPastRetention)
 				continue
 			}
-			in, err := e.toStored(it)
+			in, err := e.toStored(it, now)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
@@ -391,42 +416,117 @@ func (e *Engine) decodeInputs(ctx context.Context, mode string, resources []json
 			rec.Accepted++
 		case decode.ItemOmitted:
 			e.leftOut(it.Omission.Reason)
-			// An unusable version is kept only when it replaces a usable
-			// one: an amended result that fails a check, or a withdrawal,
-			// must hide the version it supersedes. A venous gas that was
-			// never usable leaves nothing behind.
+			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
+			// An unusable version is kept whenever it names its resource
+			// and patient, as replay keeps it: a withdrawal, an amended
+			// result that fails a check or a cancelled one must hide the
+			// versions it supersedes, including those that arrive after
+			// it. It changes no result of its own (store.Input.Inert).
 			if it.ID == "" || it.Subject == "" {
-				rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 				continue
 			}
-			// A withdrawal is always kept, even before the version it
-			// withdraws arrives, so a late or repeated earlier version can
-			// never bring it back. Any other unusable version is kept only
-			// when it replaces a stored one; the store checks that in the
-			// same transaction as the write.
-			in, err := e.toStored(it)
+			in, err := e.toStored(it, now)
 			if err != nil {
 				return Receipt{}, nil, err
 			}
-			in.OnlyReplaces = it.Omission.Reason != derive.ReasonEnteredInError
+			in.Inert = true
 			inputs = append(inputs, in)
-			rec.Rejected = append(rec.Rejected, Rejection{i, it.Omission.Reason, it.Omission.Detail})
 		}
 	}
+	if len(maybeRecoded) > 0 {
+		var ask []string
+		for _, u := range maybeRecoded {
+			if !u.before {
+				ask = append(ask, "Observation/"+u.id)
+			}
+		}
+		held, err := e.held(ctx, ask)
+		if err != nil {
+			return Receipt{}, nil, err
+		}
+		for _, u := range maybeRecoded {
+			if !u.before && !held["Observation/"+u.id] {
+				rec.Ignored++
+				e.leftOut(derive.ReasonUnrecognised)
+				continue
+			}
+			// A re-coded version (a blood gas corrected to glucose, say)
+			// supersedes the version held, so nothing derived from it
+			// stays. The store checks again as it writes (OnlyReplaces).
+			rc, ok := e.cfg.Decoder.Recoded(u.raw)
+			if !ok {
+				rec.Ignored++
+				e.leftOut(derive.ReasonUnrecognised)
+				continue
+			}
+			in, err := e.toStored(rc, now)
+			if err != nil {
+				return Receipt{}, nil, err
+			}
+			in.Inert, in.OnlyReplaces = true, true
+			inputs = append(inputs, in)
+			rec.Rejected = append(rec.Rejected, Rejection{u.index, derive.ReasonRecoded, rc.Omission.Detail})
+		}
+		slices.SortStableFunc(rec.Rejected, func(a, b Rejection) int { return a.Index - b.Index })
+	}
 	return rec, inputs, nil
+}
+
+// held reports which of logicals the store holds a version of (Owner
+// finds one), in one read where the store can (store.Holder).
+func (e *Engine) held(ctx context.Context, logicals []string) (map[string]bool, error) {
+	out := make(map[string]bool, len(logicals))
+	if len(logicals) == 0 {
+		return out, nil
+	}
+	if h, ok := e.cfg.Store.(store.Holder); ok {
+		got, err := h.Held(ctx, logicals)
+		if err != nil {
+			return nil, fmt.Errorf("engine: ingest: %w", err)
+		}
+		for i, l := range logicals {
+			out[l] = got[i]
+		}
+		return out, nil
+	}
+	for _, l := range logicals {
+		switch _, err := e.cfg.Store.Owner(ctx, l); {
+		case err == nil:
+			out[l] = true
+		case !errors.Is(err, store.ErrNotFound):
+			return nil, fmt.Errorf("engine: ingest: %w", err)
+		}
+	}
+	return out, nil
 }
 
 // stored counts what the store did with the inputs and wakes the
 // evaluator. Two versions of one resource: one of them is superseded, as
 // replay counts it; a version that moves the input to another patient is
-// counted as re-filed.
-func (e *Engine) stored(res []store.PutResult) {
-	for _, r := range res {
+// counted as re-filed. A version stored only when it replaces one (a
+// re-coded or deleted resource, Input.OnlyReplaces) is counted by its own
+// reason when it was stored; a re-coded one that had nothing to replace
+// is an Observation this service does not recognise.
+func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
+	for i, r := range res {
 		switch r {
 		case store.PutNewer, store.PutOlder:
 			e.leftOut(derive.ReasonSuperseded)
 		case store.PutMoved:
 			e.leftOut(derive.ReasonRefiled)
+		}
+		if !inputs[i].OnlyReplaces {
+			continue
+		}
+		reason := derive.ReasonRecoded
+		if si, err := decodeStored(inputs[i].Payload, inputs[i].Logical, inputs[i].VersionID); err == nil {
+			reason = si.Item.Omission.Reason
+		}
+		switch {
+		case r != store.PutSkipped:
+			e.leftOut(reason)
+		case reason == derive.ReasonRecoded:
+			e.leftOut(derive.ReasonUnrecognised)
 		}
 	}
 	signal(e.wake)
@@ -449,7 +549,9 @@ func withdrawal(it decode.Item) ([]byte, error) {
 	})
 }
 
-func (e *Engine) toStored(it decode.Item) (store.Input, error) {
+// toStored is the stored input of a decoded item, kept by its retention
+// time as of now, the engine's clock (Config.Now).
+func (e *Engine) toStored(it decode.Item, now time.Time) (store.Input, error) {
 	payload, err := encodeStored(it)
 	if err != nil {
 		return store.Input{}, err
@@ -460,7 +562,7 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	}
 	in := store.Input{
 		Subject: it.Subject, Logical: it.ResourceType + "/" + it.ID, VersionID: it.VersionID,
-		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, time.Now()), Payload: payload,
+		LastUpdated: it.LastUpdated, EffectiveAt: retentionTime(it, now), Payload: payload,
 		Withdrawal: moved,
 	}
 	// A reading changes the results of blood gases sampled from its own
@@ -479,7 +581,30 @@ func (e *Engine) toStored(it decode.Item) (store.Input, error) {
 	// The version it replaces may have been of another kind: its own
 	// stored head says which (a height's effective time is a year on).
 	in.Replaced = e.replacedSpan
+	in.Tie = tieWith(it)
 	return in, nil
+}
+
+// tieWith is store.Input.Tie for a decoded item: at a tie of time and id
+// with a stored version, the one version order (ref.Compare) goes on to
+// what each says, as replay's does (pipeline.VersionContent). A stored
+// payload this build cannot read is the same version.
+func tieWith(it decode.Item) func(subject string, payload []byte) int {
+	return func(subject string, payload []byte) int {
+		si, err := decodeStored(payload, it.ResourceType+"/"+it.ID, it.VersionID)
+		if err != nil {
+			return 0
+		}
+		return fhirref.Compare(versionOf(it.Subject, it), versionOf(subject, si.Item))
+	}
+}
+
+// versionOf is the order of a version of an input filed under subject,
+// its time and id left out: they are equal at a tie.
+func versionOf(subject string, it decode.Item) fhirref.Version {
+	usable := it.Type == decode.ItemReading
+	return fhirref.Version{Unusable: !usable,
+		Content: pipeline.VersionContent(subject, usable, it.Reading, it.Priority, it.Also, it.Omission)}
 }
 
 // readingSpan is the blood gas sample times a reading taken at at, of
@@ -544,7 +669,7 @@ func retentionTime(it decode.Item, now time.Time) time.Time {
 }
 
 func (e *Engine) putPatient(ctx context.Context, it decode.Item, now, fetched time.Time) error {
-	payload, err := json.Marshal(it.Patient)
+	payload, err := pipeline.PatientFacts(it.Patient)
 	if err != nil {
 		return fmt.Errorf("engine: encode patient: %w", err)
 	}

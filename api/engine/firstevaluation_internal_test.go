@@ -71,7 +71,7 @@ func TestFirstEvaluationDerivesEveryBloodGas(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	in, err := first.toStored(it)
+	in, err := first.toStored(it, time.Now())
 	if err != nil {
 		t.Fatal(err)
 	}

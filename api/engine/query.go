@@ -76,11 +76,9 @@ func (e *Engine) Compute(ctx context.Context, resources []json.RawMessage) (pipe
 		if i%4096 == 0 && ctx.Err() != nil {
 			return pipeline.Report{}, fmt.Errorf("engine: compute: %w", ctx.Err())
 		}
-		it, err := e.cfg.Decoder.Decode(raw)
-		if err != nil {
+		if _, err := col.AddLine(e.cfg.Decoder, raw); err != nil {
 			return pipeline.Report{}, &ResourceError{Index: i, Err: err}
 		}
-		col.Add(it)
 	}
 	rep, err := col.Finish(e.cfg.Derive, e.cfg.Encoder)
 	if err != nil {

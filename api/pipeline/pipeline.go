@@ -13,6 +13,8 @@
 package pipeline
 
 import (
+	"encoding/binary"
+	"encoding/json"
 	"fmt"
 	"math"
 	"slices"
@@ -346,6 +348,15 @@ type Collector struct {
 	// are only counted: a bulk export is mostly such lines, and keeping a
 	// record of each would cost memory for no audit value.
 	unrecognised int
+	// seen holds a 32-bit hash of the logical reference of every resource
+	// read so far that the live store would hold a version of (a reading,
+	// or an unusable version with a subject): an Observation with no code
+	// this service uses whose id is among them was re-coded, and is kept as
+	// a version of its own (AddLine), as the live engine keeps it. A hash
+	// costs a few bytes a reading where a string key would cost tens; a
+	// collision only makes AddLine read a line in full, and Finish sets
+	// aside a re-coded version of a resource read nowhere else.
+	seen map[uint32]struct{}
 }
 
 // record is one buffered reading, flattened so that it packs into 64 bytes
@@ -371,7 +382,42 @@ type omittedRecord struct {
 
 // NewCollector returns an empty collector.
 func NewCollector() *Collector {
-	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item)}
+	return &Collector{bySubject: make(map[string][]record), patients: make(map[string]decode.Item), seen: make(map[uint32]struct{})}
+}
+
+// AddLine decodes one line and adds it, and returns what it added. An
+// Observation with no code this service uses, whose logical id was read
+// before (a version of it was a reading, or an unusable version filed
+// under a patient), is added as a re-coded version of that resource
+// (decode.Decoder.Recoded), which supersedes the earlier versions, as the
+// live engine stores it when it holds one of them.
+func (c *Collector) AddLine(dec *decode.Decoder, line []byte) (decode.Item, error) {
+	it, err := dec.Decode(line)
+	if err != nil {
+		return it, err
+	}
+	if it.Type == decode.ItemUnrelated && it.ResourceType == "Observation" && it.ID != "" {
+		if _, ok := c.seen[logicalHash("Observation/", it.ID)]; ok {
+			if rc, ok := dec.Recoded(line); ok {
+				it = rc
+			}
+		}
+	}
+	c.Add(it)
+	return it, nil
+}
+
+// logicalHash is 64-bit FNV-1a of prefix+id, computed without joining
+// them, folded to 32 bits.
+func logicalHash(prefix, id string) uint32 {
+	h := uint64(14695981039346656037)
+	for _, s := range [2]string{prefix, id} {
+		for i := range len(s) {
+			h ^= uint64(s[i])
+			h *= 1099511628211
+		}
+	}
+	return uint32(h>>32) ^ uint32(h)
 }
 
 // Add takes one decoded item. Unrelated items are only counted.
@@ -383,11 +429,13 @@ func (c *Collector) Add(it decode.Item) {
 		}
 	case decode.ItemPatient:
 		key := "Patient/" + it.ID
-		if prev, ok := c.patients[key]; !ok || ref.Compare(ref.Version{LastUpdated: it.LastUpdated, ID: it.VersionID}, ref.Version{LastUpdated: prev.LastUpdated, ID: prev.VersionID}) > 0 {
+		if prev, ok := c.patients[key]; !ok || ComparePatients(it, prev) > 0 {
 			c.patients[key] = it
 		}
 	case decode.ItemReading:
 		r := it.Reading
+		l, _ := splitRef(r.Ref)
+		c.seen[logicalHash(l, "")] = struct{}{}
 		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
 			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
 			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority), also: it.Also,
@@ -397,13 +445,36 @@ func (c *Collector) Add(it decode.Item) {
 		if ref == "" {
 			ref = it.Omission.Ref
 		}
+		if l := splitRefOK(ref); it.Subject != "" && l != "" {
+			c.seen[logicalHash(l, "")] = struct{}{}
+		}
 		c.omitted = append(c.omitted, omittedRecord{subject: it.Subject, ref: ref, lastUpdated: nanos(it.LastUpdated), omission: it.Omission})
 	}
 }
 
+// ComparePatients orders two versions of one Patient by ref.Compare, a
+// tie broken by the facts as the live store keeps them (PatientFacts):
+// +1 when a is newer.
+func ComparePatients(a, b decode.Item) int {
+	va := ref.Version{LastUpdated: a.LastUpdated, ID: a.VersionID}
+	vb := ref.Version{LastUpdated: b.LastUpdated, ID: b.VersionID}
+	if c := ref.Compare(va, vb); c != 0 {
+		return c
+	}
+	fa, _ := PatientFacts(a.Patient)
+	fb, _ := PatientFacts(b.Patient)
+	va.Content, vb.Content = string(fa), string(fb)
+	return ref.Compare(va, vb)
+}
+
+// PatientFacts is the encoding of a Patient's facts the live store keeps
+// (store.Patient.Payload), whose bytes break a tie of two versions.
+func PatientFacts(p derive.Patient) ([]byte, error) { return json.Marshal(p) }
+
 // version is one version of one resource during selection.
 type version struct {
 	logical, versionID string
+	subject            string
 	lastUpdated        int64
 	rec                *record        // nil for an omitted version
 	omitted            *omittedRecord // nil for a reading
@@ -414,6 +485,63 @@ func (v version) ref() string {
 		return v.rec.ref
 	}
 	return v.omitted.ref
+}
+
+// order is the version as the one version order (ref.Compare) takes it,
+// without its content, which compare adds only at a tie.
+func (v version) order() ref.Version {
+	return ref.Version{LastUpdated: fromNanos(v.lastUpdated), ID: v.versionID, Unusable: v.rec == nil}
+}
+
+// content is ref.Version.Content of the version.
+func (v version) content() string {
+	if r := v.rec; r != nil {
+		return VersionContent(v.subject, true,
+			derive.Reading{Encounter: r.encounter, AtMillis: r.atMillis, Value: r.value, Kind: r.kind}, int(r.priority), r.also, derive.Omission{})
+	}
+	return VersionContent(v.subject, false, derive.Reading{}, 0, nil, v.omitted.omission)
+}
+
+// compare orders two versions of one resource by ref.Compare, as the live
+// store does: +1 when a is newer.
+func compare(a, b version) int {
+	va, vb := a.order(), b.order()
+	if c := ref.Compare(va, vb); c != 0 {
+		return c
+	}
+	va.Content, vb.Content = a.content(), b.content()
+	return ref.Compare(va, vb)
+}
+
+// VersionContent is ref.Version.Content of one version of an input filed
+// under subject, which breaks a tie of meta.lastUpdated and versionId:
+// for a usable version (a reading) what it gives, the readings it carries
+// besides included; for an unusable one why it cannot be used (the
+// omission's reason and detail). Replay builds it from what it keeps of
+// each version and the live engine from the stored payload, from the same
+// decoded fields, so both order tied versions alike.
+func VersionContent(subject string, usable bool, r derive.Reading, priority int, also []derive.Reading, om derive.Omission) string {
+	b := make([]byte, 0, len(subject)+64)
+	b = append(b, subject...)
+	b = append(b, 0)
+	if !usable {
+		b = append(b, om.Reason...)
+		b = append(b, 0)
+		return string(append(b, om.Detail...))
+	}
+	reading := func(k derive.Kind, priority int16, v float64) {
+		b = append(b, byte(k))
+		b = binary.BigEndian.AppendUint16(b, uint16(priority))
+		b = binary.BigEndian.AppendUint64(b, math.Float64bits(v))
+	}
+	reading(r.Kind, int16(max(min(priority, 1<<15-1), -1<<15)), r.Value)
+	b = binary.BigEndian.AppendUint64(b, uint64(r.AtMillis))
+	b = append(b, r.Encounter...)
+	b = append(b, 0)
+	for _, a := range also {
+		reading(a.Kind, a.Priority, a.Value)
+	}
+	return string(b)
 }
 
 // splitRef turns "Observation/x/_history/2" into ("Observation/x", "2").
@@ -437,54 +565,42 @@ func fromNanos(n int64) time.Time {
 	return time.Unix(0, n)
 }
 
-// newer reports whether version (atA, vidA) is later than (atB, vidB), by
-// the one version order the live store uses too (ref.Compare).
-func newer(atA int64, vidA string, atB int64, vidB string) bool {
-	return ref.Compare(ref.Version{LastUpdated: fromNanos(atA), ID: vidA}, ref.Version{LastUpdated: fromNanos(atB), ID: vidB}) > 0
-}
-
 // latest keeps the newest version of each resource among a subject's
 // readings and omitted versions. It returns the readings kept and an
 // omission for every version set aside: superseded ones, and the newest
 // version when it is itself an omission.
 //
-// elsewhere, when set, returns the newest version of a logical reference
-// filed under another patient, if one is newer than every version under
-// this one: the input was re-filed, and this patient keeps nothing of it,
-// as in the live store, which orders versions across patients.
-func latest(recs []record, omitted []*omittedRecord, elsewhere func(logical string, at int64, vid string) bool) ([]Input, []derive.Omission) {
+// elsewhere, when set, reports whether the newest version of a logical
+// reference is filed under another patient: the input was re-filed, and
+// this patient keeps nothing of it, as in the live store, which orders
+// versions across patients.
+func latest(subject string, recs []record, omitted []*omittedRecord, elsewhere func(logical string) bool) ([]Input, []derive.Omission) {
 	vs := make([]version, 0, len(recs)+len(omitted))
 	for i := range recs {
 		l, vid := splitRef(recs[i].ref)
-		vs = append(vs, version{logical: l, versionID: vid, lastUpdated: recs[i].lastUpdated, rec: &recs[i]})
+		vs = append(vs, version{logical: l, versionID: vid, subject: subject, lastUpdated: recs[i].lastUpdated, rec: &recs[i]})
 	}
 	for _, o := range omitted {
 		l, vid := splitRef(o.ref)
-		vs = append(vs, version{logical: l, versionID: vid, lastUpdated: o.lastUpdated, omitted: o})
+		vs = append(vs, version{logical: l, versionID: vid, subject: subject, lastUpdated: o.lastUpdated, omitted: o})
 	}
 	slices.SortStableFunc(vs, func(a, b version) int {
 		if c := strings.Compare(a.logical, b.logical); c != 0 {
 			return c
 		}
-		switch {
-		case newer(a.lastUpdated, a.versionID, b.lastUpdated, b.versionID):
-			return -1
-		case newer(b.lastUpdated, b.versionID, a.lastUpdated, a.versionID):
-			return 1
-		}
-		return 0
+		return compare(b, a) // newest first
 	})
 	var inputs []Input
 	var om []derive.Omission
 	for i, v := range vs {
 		if i > 0 && vs[i-1].logical == v.logical {
-			if vs[i-1].versionID == v.versionID && vs[i-1].ref() == v.ref() {
+			if compare(vs[i-1], v) == 0 {
 				continue // the same version twice, from overlapping files
 			}
 			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + vs[i-1].versionID})
 			continue
 		}
-		if elsewhere != nil && elsewhere(v.logical, v.lastUpdated, v.versionID) {
+		if elsewhere != nil && elsewhere(v.logical) {
 			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonRefiled, Detail: "a newer version names another patient"})
 			continue
 		}
@@ -521,9 +637,14 @@ type Report struct {
 // of their reference, so the output is deterministic.
 func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, error) {
 	rep := Report{Unrecognised: c.unrecognised}
+	alone := c.recodedAlone()
 	omittedBySubject := make(map[string][]*omittedRecord)
 	for i := range c.omitted {
 		o := &c.omitted[i]
+		if alone[splitRefOK(o.ref)] && o.omission.Reason == derive.ReasonRecoded {
+			rep.Unrecognised++ // no other version of it was read: only unrelated
+			continue
+		}
 		if o.subject == "" || splitRefOK(o.ref) == "" {
 			rep.Inputs = append(rep.Inputs, o.omission)
 			continue
@@ -542,11 +663,14 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 	sort.Strings(subjects)
 	newest := c.newestAcrossSubjects(omittedBySubject)
 	for _, s := range subjects {
-		elsewhere := func(logical string, at int64, vid string) bool {
+		// The newest version across patients is newer than every version
+		// under another patient: the order is total (ref.Compare with the
+		// content, which names the patient).
+		elsewhere := func(logical string) bool {
 			n, ok := newest[logical]
-			return ok && n.subject != s && newer(n.at, n.vid, at, vid)
+			return ok && n.subject != s
 		}
-		inputs, om := latest(c.bySubject[s], omittedBySubject[s], elsewhere)
+		inputs, om := latest(s, c.bySubject[s], omittedBySubject[s], elsewhere)
 		rep.Inputs = append(rep.Inputs, om...)
 		if len(inputs) == 0 {
 			continue
@@ -577,43 +701,70 @@ func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, erro
 	return rep, nil
 }
 
-type newestVersion struct {
-	subject, vid string
-	at           int64
+// recodedAlone returns the logical references of re-coded versions of
+// which no other version was read (AddLine took one for re-coded because
+// of a hash collision): they are only unrelated Observations.
+func (c *Collector) recodedAlone() map[string]bool {
+	alone := make(map[string]bool)
+	for _, o := range c.omitted {
+		if o.omission.Reason == derive.ReasonRecoded {
+			alone[splitRefOK(o.ref)] = true
+		}
+	}
+	if len(alone) == 0 {
+		return nil
+	}
+	for _, recs := range c.bySubject {
+		for _, r := range recs {
+			if l := splitRefOK(r.ref); alone[l] {
+				alone[l] = false
+			}
+		}
+	}
+	for _, o := range c.omitted {
+		if l := splitRefOK(o.ref); o.omission.Reason != derive.ReasonRecoded && o.subject != "" && alone[l] {
+			alone[l] = false
+		}
+	}
+	return alone
 }
 
 // newestAcrossSubjects returns, for every logical reference seen under
-// more than one patient, its newest version and the patient it names.
-func (c *Collector) newestAcrossSubjects(omittedBySubject map[string][]*omittedRecord) map[string]newestVersion {
+// more than one patient, its newest version, which names the patient it
+// is filed under. The order is the live store's (ref.Compare, a tie
+// broken by the content), so the answer depends neither on the order the
+// versions were read in nor on the order maps are walked in.
+func (c *Collector) newestAcrossSubjects(omittedBySubject map[string][]*omittedRecord) map[string]version {
 	first := make(map[string]string)
 	moved := make(map[string]bool)
-	out := make(map[string]newestVersion)
+	out := make(map[string]version)
 	for pass := range 2 {
-		see := func(subject, r string, at int64) {
-			l, vid := splitRef(r)
+		see := func(v version) {
 			if pass == 0 {
-				if f, ok := first[l]; !ok {
-					first[l] = subject
-				} else if f != subject {
-					moved[l] = true
+				if f, ok := first[v.logical]; !ok {
+					first[v.logical] = v.subject
+				} else if f != v.subject {
+					moved[v.logical] = true
 				}
 				return
 			}
-			if !moved[l] {
+			if !moved[v.logical] {
 				return
 			}
-			if n, ok := out[l]; !ok || newer(at, vid, n.at, n.vid) {
-				out[l] = newestVersion{subject: subject, vid: vid, at: at}
+			if n, ok := out[v.logical]; !ok || compare(v, n) > 0 {
+				out[v.logical] = v
 			}
 		}
 		for s, recs := range c.bySubject {
-			for _, r := range recs {
-				see(s, r.ref, r.lastUpdated)
+			for i := range recs {
+				l, vid := splitRef(recs[i].ref)
+				see(version{logical: l, versionID: vid, subject: s, lastUpdated: recs[i].lastUpdated, rec: &recs[i]})
 			}
 		}
 		for s, oms := range omittedBySubject {
 			for _, o := range oms {
-				see(s, o.ref, o.lastUpdated)
+				l, vid := splitRef(o.ref)
+				see(version{logical: l, versionID: vid, subject: s, lastUpdated: o.lastUpdated, omitted: o})
 			}
 		}
 		if len(moved) == 0 {

@@ -111,7 +111,7 @@ func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, observe
 		case len(bytes.TrimSpace(line)) == 0:
 			out.Lines-- // blank lines are not resources, nor errors
 		default:
-			it, derr := dec.Decode(line)
+			it, derr := col.AddLine(dec, line)
 			if derr != nil {
 				out.Skipped = append(out.Skipped, Skipped{name, n, derr})
 				break
@@ -120,7 +120,6 @@ func readFile(name string, dec *decode.Decoder, col *pipeline.Collector, observe
 			if observe != nil {
 				observe(it)
 			}
-			col.Add(it)
 		}
 		if errors.Is(err, io.EOF) {
 			return nil

@@ -526,6 +526,14 @@ func (k sink) Changed(ctx context.Context, src webhook.Source) error {
 	return nil
 }
 
+func (k sink) Deleted(ctx context.Context, src webhook.Source, deleted []webhook.Deletion) error {
+	ds := make([]engine.Deletion, len(deleted))
+	for i, d := range deleted {
+		ds[i] = engine.Deletion{Ref: d.Ref, At: d.At, How: "a Bundle sent to the webhook (" + src.Mode + ") has a DELETE entry for it"}
+	}
+	return invalid(k.e.Deleted(ctx, ds))
+}
+
 func receipt(r engine.Receipt) webhook.Receipt {
 	out := webhook.Receipt{Accepted: r.Accepted}
 	for _, x := range r.Rejected {

@@ -362,10 +362,17 @@ func TestHostileWebhookInput(t *testing.T) {
 	}
 	waitIdle(t, s)
 	// The huge-number and wrong-type Observations are refused as values,
-	// the snowman id fails the id rules: nothing is kept for the patient.
-	n, err := s.svc.Engine().InputCount(context.Background(), "Patient/hostile")
-	if err != nil || n != 0 {
-		t.Errorf("stored %d inputs from hostile requests (%v)", n, err)
+	// the snowman id fails the id rules: nothing usable is kept for the
+	// patient (an unusable version with an id is kept, inert, so that an
+	// older version of its resource arriving later is refused).
+	stored, err := s.svc.Engine().StoredReadings(context.Background(), "Patient/hostile")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, r := range stored {
+		if r.Usable {
+			t.Errorf("stored a usable reading from hostile requests: %+v", r.Reading)
+		}
 	}
 	if resp, err := http.Get(s.url + "/healthz"); err != nil || resp.StatusCode != http.StatusOK {
 		t.Fatalf("the service stopped serving: %v", err)

@@ -1,6 +1,10 @@
 package store
 
-import "time"
+import (
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/fhir/ref"
+)
 
 // The rules below are part of the contract, and every implementation
 // applies them the same way; they live here so that the stores cannot
@@ -20,6 +24,32 @@ func ResultOf(exists bool, c int) PutResult {
 	default:
 		return PutOlder
 	}
+}
+
+// CompareStored orders in against a stored version of the same resource
+// (old, filed under old.Subject, its payload read from the store): by
+// ref.Compare of their versions, and at a tie of time and id by in.Tie,
+// which reads what the stored version says; without Tie the two are the
+// same version. +1: in is newer; 0: the same; -1: older.
+func CompareStored(in Input, old Input) int {
+	if c := CompareVersions(in, old); c != 0 || in.Tie == nil {
+		return c
+	}
+	return in.Tie(old.Subject, old.Payload)
+}
+
+// CompareVersions is ref.Compare of two inputs' versions alone (time and
+// id), without the tie-break.
+func CompareVersions(in Input, old Input) int {
+	return ref.Compare(ref.Version{LastUpdated: in.LastUpdated, ID: in.VersionID}, ref.Version{LastUpdated: old.LastUpdated, ID: old.VersionID})
+}
+
+// ComparePatients orders two versions of a patient's facts by ref.Compare,
+// a tie of time and id broken by the greater payload (the facts in the
+// engine's encoding, which replay orders its Patients by too).
+func ComparePatients(p, old Patient) int {
+	return ref.Compare(ref.Version{LastUpdated: p.LastUpdated, ID: p.VersionID, Content: string(p.Payload)},
+		ref.Version{LastUpdated: old.LastUpdated, ID: old.VersionID, Content: string(old.Payload)})
 }
 
 // Span is what one transaction changed of one patient: results may change

@@ -37,9 +37,15 @@ type Input struct {
 	EffectiveAt time.Time
 	Payload     []byte
 	// OnlyReplaces keeps the input only when a version of the same
-	// resource is stored (under any patient): an unusable version matters
-	// only when it hides a usable one. Otherwise it is PutSkipped.
+	// resource is stored (under any patient). Otherwise it is PutSkipped.
 	OnlyReplaces bool
+	// Inert marks a version no result can use (a withdrawal, a refused
+	// status, specimen or code): it is stored like any other, so that an
+	// older version arriving after it compares against it and is
+	// PutOlder, but it marks its patient dirty only when it replaces a
+	// version stored under that patient (the patient a version moves the
+	// input away from is marked as for any version).
+	Inert bool
 	// ChangedAt is the earliest blood gas sample time whose results may
 	// change because of this input (the reading's time less how far its
 	// kind reaches back); zero means any time, and the patient is
@@ -58,6 +64,14 @@ type Input struct {
 	// whose effective time is not its own). Nil: every replaced version
 	// changed the whole patient.
 	Replaced func(effectiveAt time.Time, payload []byte) (sp Span, ok bool)
+	// Tie orders this version against a stored version of the same
+	// resource with the same meta.lastUpdated and versionId (two copies
+	// without meta, under one patient or two), from the stored version's
+	// subject and payload: +1 when this one is newer, 0 when they are the
+	// same, -1 when older (ref.Compare with Version.Unusable and Content,
+	// which the store cannot fill: it does not look inside a payload).
+	// Nil: a tie is the same version (PutSame).
+	Tie func(subject string, payload []byte) int
 	// Urgent marks a blood gas: its patient is evaluated before patients
 	// with device readings only.
 	Urgent bool
@@ -287,6 +301,18 @@ type InputScanner interface {
 	ScanInputsFrom(ctx context.Context, subject string, from time.Time, fn func(InputRow) error) error
 }
 
+// Holder is implemented by a store that can say in one read, for many
+// inputs at once, whether it holds a version of each (what
+// [Store.Owner] finds). The engine asks it about the Observations an
+// ingest finds no use for, most of what an unfiltered export holds, to
+// tell a re-coded version of a held resource from the others; a store
+// without it is asked with Owner, one at a time.
+type Holder interface {
+	// Held reports, for each logical reference in order, whether Owner
+	// would find a subject for it.
+	Held(ctx context.Context, logicals []string) ([]bool, error)
+}
+
 // InputRow is a stored input as [InputScanner] shows it: the fields an
 // evaluation reads, as slices of the store's own bytes.
 type InputRow struct {
@@ -300,10 +326,12 @@ type Store interface {
 	// patient with a new or newer input dirty, in one transaction: the
 	// checks (is there a version to replace, which patient holds the
 	// latest one) and the writes cannot interleave with another call.
-	// Versions are ordered by ref.Compare, across patients: a version older
-	// than the latest stored under any patient is PutOlder, so a late
-	// earlier version never revives a state that a correction (even one
-	// that moved the input to another patient) replaced.
+	// Versions are ordered by ref.Compare, across patients, a tie of time
+	// and id broken by Input.Tie (CompareStored): a version older than the
+	// latest stored under any patient is PutOlder, so a late earlier
+	// version never revives a state that a correction (even one that moved
+	// the input to another patient) replaced, and which of two tied
+	// versions is kept does not depend on the order they arrive in.
 	PutInputs(ctx context.Context, inputs []Input, now time.Time) ([]PutResult, error)
 	// Inputs returns a patient's stored inputs in EffectiveAt order, those
 	// of one instant in Logical order: the order pairing reads them in.
@@ -321,8 +349,9 @@ type Store interface {
 	// input to another patient can withdraw the copy under the first.
 	Owner(ctx context.Context, logical string) (string, error)
 
-	// PutPatient stores patient facts (the newer version wins as for inputs)
-	// and marks the patient dirty when they changed.
+	// PutPatient stores patient facts (the newer version wins as for
+	// inputs, a tie broken by the payload: ComparePatients) and marks the
+	// patient dirty when they changed.
 	PutPatient(ctx context.Context, p Patient, now time.Time) (PutResult, error)
 	// Patient returns stored facts, or ErrNotFound.
 	Patient(ctx context.Context, subject string) (Patient, error)

@@ -29,6 +29,9 @@ func (acceptSink) Notification(_ context.Context, _ webhook.Source, rs []json.Ra
 	return webhook.Receipt{Accepted: len(rs)}, nil
 }
 func (acceptSink) Changed(context.Context, webhook.Source) error { return nil }
+func (acceptSink) Deleted(context.Context, webhook.Source, []webhook.Deletion) error {
+	return nil
+}
 
 // discardWriter is a ResponseWriter that reuses its header map, so the
 // allocations counted are the handler's own.

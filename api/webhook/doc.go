@@ -26,7 +26,11 @@
 //     notification reveals the gap.
 //   - any other Bundle (batch, transaction, searchset, collection, a history
 //     that is not a notification): the entries' resources go to
-//     [Sink.Resources]; a Bundle with no resources at all to [Sink.Changed].
+//     [Sink.Resources], and the resources its DELETE entries name (by
+//     request.url, or the fullUrl of a conditional delete), with the
+//     entry's response.lastModified when it has one, to [Sink.Deleted];
+//     a Bundle with neither, or with a DELETE that names no resource, to
+//     [Sink.Changed].
 //   - any single resource: [Sink.Resources], since some servers POST the
 //     changed resource itself.
 //

@@ -22,6 +22,7 @@ type fakeSink struct {
 	// answers as ResourcesFn would.
 	NotificationFn func(ctx context.Context, src webhook.Source, rs []json.RawMessage, n notify.Notification) (webhook.Receipt, error)
 	ChangedFn      func(ctx context.Context, src webhook.Source) error
+	DeletedFn      func(ctx context.Context, src webhook.Source, deleted []webhook.Deletion) error
 
 	mu    sync.Mutex
 	calls []call
@@ -35,6 +36,7 @@ type call struct {
 	resources []json.RawMessage
 	refs      []string
 	n         notify.Notification
+	deleted   []webhook.Deletion
 }
 
 // record keeps a copy of the resources, which the webhook reuses after
@@ -105,6 +107,14 @@ func (f *fakeSink) Changed(ctx context.Context, src webhook.Source) error {
 	f.record(call{method: "Changed", src: src})
 	if f.ChangedFn != nil {
 		return f.ChangedFn(ctx, src)
+	}
+	return nil
+}
+
+func (f *fakeSink) Deleted(ctx context.Context, src webhook.Source, deleted []webhook.Deletion) error {
+	f.record(call{method: "Deleted", src: src, deleted: slices.Clone(deleted)})
+	if f.DeletedFn != nil {
+		return f.DeletedFn(ctx, src, deleted)
 	}
 	return nil
 }

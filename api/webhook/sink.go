@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"time"
 
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
 )
@@ -39,6 +40,18 @@ type Sink interface {
 	// Changed records that something changed without saying what (classic
 	// empty rest-hook POST).
 	Changed(ctx context.Context, src Source) error
+	// Deleted records resources the server deleted (the DELETE entries of
+	// a Bundle it forwarded).
+	Deleted(ctx context.Context, src Source, deleted []Deletion) error
+}
+
+// Deletion is a resource the server deleted.
+type Deletion struct {
+	// Ref is "Type/id".
+	Ref string
+	// At is when it was deleted, when the Bundle said so
+	// (entry.response.lastModified); zero otherwise.
+	At time.Time
 }
 
 // Source says how a request arrived.

@@ -126,7 +126,8 @@ type result struct {
 	offered  int // resources given to the sink
 	receipt  Receipt
 	fetch    int
-	unusable int // focus references that name no readable resource
+	deleted  int // resources a Bundle's DELETE entries name
+	unusable int // focus references, or DELETE entries, that name no readable resource
 	status   bool
 	changed  bool
 }
@@ -194,6 +195,9 @@ func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	}
 	if res.fetch > 0 {
 		attrs = append(attrs, slog.Int("fetch", res.fetch))
+	}
+	if res.deleted > 0 {
+		attrs = append(attrs, slog.Int("deleted", res.deleted))
 	}
 	if code >= 500 {
 		// Sink errors are the engine's own text, which by project rule holds
@@ -621,21 +625,43 @@ func (h *Handler) notification(ctx context.Context, id string, n notify.Notifica
 
 type rawBundle struct {
 	Entry []struct {
+		FullURL  string          `json:"fullUrl"`
 		Resource json.RawMessage `json:"resource"`
+		Request  struct {
+			Method string `json:"method"`
+			URL    string `json:"url"`
+		} `json:"request"`
+		Response struct {
+			LastModified string `json:"lastModified"`
+		} `json:"response"`
 	} `json:"entry"`
 }
 
 // bundle takes the resources of a Bundle that is not a notification
 // (batch, transaction, searchset, collection, plain history): some servers
-// forward what they stored that way. Entries without a resource (deletes,
-// id-only history entries) say only that something changed.
+// forward what they stored that way. An entry whose request is a DELETE
+// names a resource the server deleted (by request.url, or failing that
+// its fullUrl), which goes to the sink as a deletion, with the entry's
+// response.lastModified as its time when it has one: a search never
+// returns a deleted resource. Other entries without a resource (id-only
+// history entries), and deletes that name no resource (a conditional
+// delete), say only that something changed.
 func (h *Handler) bundle(ctx context.Context, src Source, res *result, body []byte) error {
 	var b rawBundle
 	if err := json.Unmarshal(body, &b); err != nil {
 		return &requestError{status: http.StatusBadRequest, code: "structure", msg: "Bundle.entry is not a list of entries"}
 	}
 	var rs []json.RawMessage
+	var deleted []Deletion
 	for i, e := range b.Entry {
+		if strings.EqualFold(e.Request.Method, http.MethodDelete) {
+			if d, ok := deletion(e.Request.URL, e.FullURL, e.Response.LastModified); ok {
+				deleted = append(deleted, d)
+			} else {
+				res.unusable++
+			}
+			continue
+		}
 		t := bytes.TrimSpace(e.Resource)
 		if len(t) == 0 || bytes.Equal(t, []byte("null")) {
 			continue
@@ -647,11 +673,38 @@ func (h *Handler) bundle(ctx context.Context, src Source, res *result, body []by
 		}
 		rs = append(rs, t)
 	}
-	if len(rs) == 0 {
+	if len(rs) > 0 {
+		if err := h.resources(ctx, src, res, rs); err != nil {
+			return err
+		}
+	}
+	if len(deleted) > 0 {
+		res.deleted = len(deleted)
+		if err := h.sink.Deleted(ctx, src, deleted); err != nil {
+			return fmt.Errorf("webhook: deleted: %w", err)
+		}
+	}
+	if len(rs) == 0 && len(deleted) == 0 || res.unusable > 0 {
 		res.changed = true
 		return h.sink.Changed(ctx, src)
 	}
-	return h.resources(ctx, src, res, rs)
+	return nil
+}
+
+// deletion reads a Bundle entry whose request is a DELETE: the resource
+// its request.url names, or its fullUrl when the url does not name one
+// (a conditional delete), and when the deletion happened.
+func deletion(requestURL, fullURL, lastModified string) (Deletion, bool) {
+	for _, r := range []string{requestURL, fullURL} {
+		if typ, id, ok := notify.RelativeRef(r, ""); ok {
+			d := Deletion{Ref: typ + "/" + id}
+			if t, err := time.Parse(time.RFC3339Nano, lastModified); err == nil {
+				d.At = t
+			}
+			return d, true
+		}
+	}
+	return Deletion{}, false
 }
 
 func (h *Handler) resources(ctx context.Context, src Source, res *result, rs []json.RawMessage) error {

@@ -16,6 +16,7 @@ import (
 	"regexp"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/webhook"
 	"github.com/deadspace-fhir/deadspace/fhir/notify"
@@ -104,6 +105,16 @@ func summary(calls []call) []string {
 			out = append(out, fmt.Sprintf("Status %s %s %d", c.src.Mode, c.n.Type, c.n.EventsSinceStart))
 		case "Changed":
 			out = append(out, "Changed "+c.src.Mode)
+		case "Deleted":
+			var refs []string
+			for _, d := range c.deleted {
+				r := d.Ref
+				if !d.At.IsZero() {
+					r += "@" + d.At.UTC().Format(time.RFC3339)
+				}
+				refs = append(refs, r)
+			}
+			out = append(out, fmt.Sprintf("Deleted %s %s", c.src.Mode, strings.Join(refs, ",")))
 		}
 	}
 	return out
@@ -235,11 +246,22 @@ func TestHandler(t *testing.T) {
 		{name: "single Observation POSTed", method: "POST", path: "/notify", headers: fhirJSON, body: obs, status: 200,
 			calls: []string{"Resources rest-hook Observation"}, diag: "1 of 1 resources accepted, 0 rejected"},
 		{name: "transaction Bundle", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
-			calls: []string{"Resources rest-hook Observation,Patient"},
+			calls: []string{"Resources rest-hook Observation,Patient", "Deleted rest-hook Observation/old"},
 			body: `{"resourceType":"Bundle","type":"transaction","entry":[{"resource":` + obs + `,"request":{"method":"PUT","url":"Observation/abg-1"}},
 				{"request":{"method":"DELETE","url":"Observation/old"}},{"resource":` + patient + `}]}`},
-		{name: "Bundle of deletes", method: "POST", path: "/notify", headers: fhirJSON, status: 200, calls: []string{"Changed rest-hook"},
+		{name: "Bundle of deletes", method: "POST", path: "/notify", headers: fhirJSON, status: 200, calls: []string{"Deleted rest-hook Observation/old"},
 			body: `{"resourceType":"Bundle","type":"batch","entry":[{"request":{"method":"DELETE","url":"Observation/old"}}]}`},
+		{name: "history Bundle: a delete with its time, named by an absolute url", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
+			calls: []string{"Deleted rest-hook Observation/old@2026-03-01T01:00:00Z"},
+			body: `{"resourceType":"Bundle","type":"history","entry":[{"fullUrl":"https://ehr.example/fhir/Observation/old",` +
+				`"request":{"method":"DELETE","url":"https://ehr.example/fhir/Observation/old"},"response":{"status":"204","lastModified":"2026-03-01T01:00:00Z"}}]}`},
+		{name: "conditional delete named by its fullUrl", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
+			calls: []string{"Deleted rest-hook Observation/old"},
+			body:  `{"resourceType":"Bundle","type":"batch","entry":[{"fullUrl":"https://ehr.example/fhir/Observation/old","request":{"method":"DELETE","url":"Observation?identifier=x|1"}}]}`},
+		{name: "conditional delete naming nothing: a change", method: "POST", path: "/notify", headers: fhirJSON, status: 200,
+			calls: []string{"Deleted rest-hook Observation/gone", "Changed rest-hook"},
+			body: `{"resourceType":"Bundle","type":"batch","entry":[{"request":{"method":"DELETE","url":"Observation?identifier=x|1"}},` +
+				`{"request":{"method":"delete","url":"Observation/gone"}}]}`},
 		{name: "Bundle entry not a resource", method: "POST", path: "/notify", headers: fhirJSON, status: 400,
 			body: `{"resourceType":"Bundle","type":"collection","entry":[{"resource":{"id":"x"}}]}`},
 

@@ -89,6 +89,7 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/codes"
+	"github.com/deadspace-fhir/deadspace/fhir/jsonscan"
 	"github.com/deadspace-fhir/deadspace/fhir/ref"
 	"github.com/deadspace-fhir/deadspace/fhir/units"
 )
@@ -126,7 +127,9 @@ func (t ItemType) String() string {
 }
 
 // Item is the result of decoding one resource. For [ItemUnrelated] only
-// Type and ResourceType are set.
+// Type and ResourceType are set, and for an Observation its ID when it is
+// a FHIR id: a caller that holds an earlier version of the resource reads
+// the rest with [Decoder.Recoded].
 type Item struct {
 	Type         ItemType
 	ResourceType string
@@ -221,7 +224,18 @@ func (d *Decoder) Decode(line []byte) (Item, error) {
 	switch string(sr.rt) {
 	case "Observation":
 		if !sr.candidate && !d.noPrefilter {
-			return Item{Type: ItemUnrelated, ResourceType: "Observation"}, nil
+			if !sr.idSeen {
+				return Item{Type: ItemUnrelated, ResourceType: "Observation"}, nil
+			}
+			if sr.idPlain {
+				return Item{Type: ItemUnrelated, ResourceType: "Observation", ID: fhirID(jsonscan.Unquote(sr.id, sr.idRaw))}, nil
+			}
+			// An id encoding/json might read otherwise: as it reads it.
+			var o struct {
+				ID string `json:"id"`
+			}
+			_ = json.Unmarshal(line, &o)
+			return Item{Type: ItemUnrelated, ResourceType: "Observation", ID: fhirID(o.ID)}, nil
 		}
 		return d.observation(line), nil
 	case "Patient":
@@ -357,7 +371,7 @@ func (d *Decoder) observation(line []byte) Item {
 	}
 	row, ok := d.lookup(o.Code)
 	if !ok {
-		return Item{Type: ItemUnrelated, ResourceType: "Observation"}
+		return Item{Type: ItemUnrelated, ResourceType: "Observation", ID: fhirID(o.ID)}
 	}
 	// A panel's value is one of its components, recognised by its own row;
 	// a panel without one groups its results some other way (hasMember),
@@ -365,7 +379,7 @@ func (d *Decoder) observation(line []byte) Item {
 	var comp *componentJSON
 	if row.Panel {
 		if comp, row, ok = d.panelComponent(&o, row.Kind); !ok {
-			return Item{Type: ItemUnrelated, ResourceType: "Observation"}
+			return Item{Type: ItemUnrelated, ResourceType: "Observation", ID: fhirID(o.ID)}
 		}
 	}
 	it := Item{Type: ItemOmitted, ResourceType: "Observation", Status: o.Status, Priority: row.Priority}
@@ -531,6 +545,49 @@ func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) [
 			Kind: derive.KindBodyTemperature, Priority: int16(row.Priority)}}
 	}
 	return nil
+}
+
+// fhirID is id when it is a FHIR id, else "".
+func fhirID(id string) string {
+	if !ref.IsID(id) {
+		return ""
+	}
+	return id
+}
+
+// Recoded reads an Observation that [Decoder.Decode] found unrelated (no
+// code this service uses) as the version of a resource that may have
+// been one this service uses: an [ItemOmitted] with its id, version,
+// last-updated time and subject and the reason [derive.ReasonRecoded]. A
+// caller that holds an earlier version of the same resource stores it,
+// so that what was derived from that version is withdrawn. ok is false
+// when it has no FHIR id or no Patient subject to file it under.
+func (d *Decoder) Recoded(line []byte) (Item, bool) {
+	var o observationJSON
+	if !fillObservation(line, &o) {
+		o = observationJSON{}
+		if err := json.Unmarshal(line, &o); err != nil && o.ID == "" {
+			return Item{}, false
+		}
+	}
+	it := Item{Type: ItemOmitted, ResourceType: "Observation", Status: o.Status}
+	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
+		return Item{}, false
+	}
+	subject, problem := patientSubject(o.Subject)
+	if problem != "" {
+		return Item{}, false
+	}
+	it.Subject = subject
+	code := "no coding"
+	if len(o.Code.Coding) > 0 {
+		c := o.Code.Coding[0]
+		code = "code " + clip(c.System) + "|" + clip(c.Code)
+	}
+	it.Reading.Ref = it.Ref
+	it.Omission = derive.Omission{Ref: it.Ref, Reason: derive.ReasonRecoded,
+		Detail: code + " is not one this service uses; an earlier version of the resource was"}
+	return it, true
 }
 
 // identify fills ID, VersionID, Ref and LastUpdated, or says what is wrong.

@@ -245,8 +245,26 @@ func fixtures(t testing.TB) []fixture {
 		// Unrelated.
 		{name: "heart rate is unrelated", line: etco2(set("code", coding("http://loinc.org", "8867-4", "Heart rate"))), typ: ItemUnrelated,
 			check: func(t *testing.T, it Item) {
-				if !reflect.DeepEqual(it, Item{Type: ItemUnrelated, ResourceType: "Observation"}) {
-					t.Errorf("unrelated item carries more than its type: %+v", it)
+				if !reflect.DeepEqual(it, Item{Type: ItemUnrelated, ResourceType: "Observation", ID: "etco2-77"}) {
+					t.Errorf("unrelated item carries more than its type and id: %+v", it)
+				}
+			}},
+		{name: "unrelated: an id that is not a FHIR id is left out", line: etco2(set("code", coding("http://loinc.org", "8867-4", "Heart rate")), set("id", "no spaces allowed")),
+			typ: ItemUnrelated, check: func(t *testing.T, it Item) {
+				if it.ID != "" {
+					t.Errorf("ID %q, want none", it.ID)
+				}
+			}},
+		{name: "unrelated: an id spelled otherwise is read as encoding/json reads it", line: []byte(`{"resourceType":"Observation","id":"a","ID":"b","status":"final","code":{"coding":[{"system":"http://loinc.org","code":"8867-4"}]}}`),
+			typ: ItemUnrelated, check: func(t *testing.T, it Item) {
+				if it.ID != "b" {
+					t.Errorf("ID %q, want the last member encoding/json matches, b", it.ID)
+				}
+			}},
+		{name: "unrelated: an id that is not a string", line: []byte(`{"resourceType":"Observation","id":7,"status":"final","code":{"coding":[{"system":"http://loinc.org","code":"8867-4"}]}}`),
+			typ: ItemUnrelated, check: func(t *testing.T, it Item) {
+				if it.ID != "" {
+					t.Errorf("ID %q, want none", it.ID)
 				}
 			}},
 		{name: "PaCO2 code under another system is unrelated", line: abg(set("code", coding("http://snomed.info/sct", "2019-8", ""))), typ: ItemUnrelated},
@@ -427,6 +445,47 @@ func TestScanMaxDepth(t *testing.T) {
 			_, err := scan(line, nil)
 			if (err == nil) != tc.ok || (err == nil) != jsonValid(line) {
 				t.Errorf("scan err = %v, json.Valid = %v", err, jsonValid(line))
+			}
+		})
+	}
+}
+
+// TestRecoded: an Observation with no code this service uses is read, on
+// request, as a version of a resource that may have been one (a blood gas
+// re-coded as glucose): its id, version, time and subject, and the reason.
+func TestRecoded(t *testing.T) {
+	d := New(Options{})
+	glucose := func(extra string) []byte {
+		return []byte(`{"resourceType":"Observation","id":"g1","meta":{"versionId":"2","lastUpdated":"2026-03-01T01:21:00Z"},"status":"amended",` +
+			`"code":{"coding":[{"system":"http://loinc.org","code":"2345-7"}]}` + extra + `,"effectiveDateTime":"2026-03-01T01:00:00Z",` +
+			`"valueQuantity":{"value":100,"unit":"mg/dL","system":"http://unitsofmeasure.org","code":"mg/dL"}}`)
+	}
+	for _, tc := range []struct {
+		name string
+		line []byte
+		ok   bool
+	}{
+		{"glucose with a patient", glucose(`,"subject":{"reference":"Patient/p1"}`), true},
+		{"no subject", glucose(``), false},
+		{"a group", glucose(`,"subject":{"reference":"Group/g"}`), false},
+		{"no id", []byte(`{"resourceType":"Observation","status":"final","code":{"coding":[{"system":"http://loinc.org","code":"2345-7"}]},"subject":{"reference":"Patient/p1"}}`), false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			if it, err := d.Decode(tc.line); err != nil || it.Type != ItemUnrelated {
+				t.Fatalf("Decode: %v, %v; want unrelated", it.Type, err)
+			}
+			it, ok := d.Recoded(tc.line)
+			if ok != tc.ok {
+				t.Fatalf("ok = %v, want %v (%+v)", ok, tc.ok, it)
+			}
+			if !ok {
+				return
+			}
+			want := "Observation/g1/_history/2"
+			if it.Type != ItemOmitted || it.Ref != want || it.ID != "g1" || it.VersionID != "2" || it.Subject != "Patient/p1" ||
+				!it.LastUpdated.Equal(time.Date(2026, 3, 1, 1, 21, 0, 0, time.UTC)) ||
+				it.Omission.Reason != derive.ReasonRecoded || it.Omission.Ref != want || !strings.Contains(it.Omission.Detail, "2345-7") {
+				t.Errorf("Recoded = %+v", it)
 			}
 		})
 	}

@@ -8,10 +8,12 @@ import (
 
 // The prefilter: one pass over the raw bytes that validates the JSON exactly
 // as encoding/json does (json.Valid, including its nesting limit; the pass
-// is jsonscan's), finds the top-level resourceType, and notes whether any
-// string value of a member named "code" (at any depth) is one of the
-// table's codes. It decodes only the few strings it must compare, so a line
-// of an unrelated Observation costs one scan and no allocation.
+// is jsonscan's), finds the top-level resourceType and id, and notes
+// whether any string value of a member named "code" (at any depth) is one
+// of the table's codes. It decodes only the few strings it must compare,
+// so a line of an unrelated Observation costs one scan and one allocation,
+// its id (which lets a caller see that it holds an earlier version of the
+// resource: Decoder.Recoded).
 //
 // It never drops a relevant line: the full decode finds codings through
 // encoding/json, which matches member names case-insensitively, so member
@@ -33,6 +35,15 @@ type scanResult struct {
 	// candidate is true when some "code" member's string value is in the
 	// code set.
 	candidate bool
+	// id is the text of the one top-level member spelled "id", a string
+	// (idRaw: as written, without escapes), when idPlain; idPlain is
+	// false when encoding/json could read the id otherwise (no such
+	// member, another spelling it matches ignoring case, a repeat, a
+	// value that is not a string).
+	id      []byte
+	idRaw   bool
+	idPlain bool
+	idSeen  bool
 }
 
 type scanner struct {
@@ -46,6 +57,7 @@ const (
 	roleNone = iota
 	roleCode
 	roleResourceType
+	roleID
 )
 
 // scan checks line and gathers what the decoder needs to choose a path.
@@ -71,6 +83,9 @@ func (s *scanner) value(role int) error {
 	if role == roleResourceType && k != jsonscan.String {
 		s.res.rtBad = true
 	}
+	if role == roleID && k != jsonscan.String {
+		s.res.idPlain = false
+	}
 	switch k {
 	case jsonscan.Object:
 		return s.object(false)
@@ -89,6 +104,8 @@ func (s *scanner) value(role int) error {
 			if !raw {
 				s.res.rt = []byte(jsonscan.Unquote(text, raw))
 			}
+		case roleID:
+			s.res.id, s.res.idRaw = text, raw
 		}
 		return nil
 	}
@@ -108,7 +125,10 @@ func (s *scanner) checkCode(text []byte, raw bool) {
 	}
 }
 
-var codeName = []byte("code")
+var (
+	codeName = []byte("code")
+	idName   = []byte("id")
+)
 
 func (s *scanner) object(top bool) error {
 	if err := s.s.Object(); err != nil {
@@ -123,6 +143,12 @@ func (s *scanner) object(top bool) error {
 		switch {
 		case top && string(name) == "resourceType":
 			role = roleResourceType
+		case top && len(name) <= 8 && bytes.EqualFold(name, idName):
+			// encoding/json takes the last member it matches ignoring
+			// case; only one spelled exactly so is read here.
+			role = roleID
+			s.res.idPlain = !s.res.idSeen && string(name) == "id"
+			s.res.idSeen = true
 		case len(name) <= 16 && bytes.EqualFold(name, codeName):
 			role = roleCode
 		}

@@ -657,3 +657,54 @@ func TestUnversionedInputsAreCitedWithANote(t *testing.T) {
 		t.Errorf("fall notes %+v lack the unversioned note", n)
 	}
 }
+
+// TestUnversionedInputIsCitedByWhatItSaid: an input without a version
+// (no meta.versionId) is cited by its reference alone, so two versions of
+// it cannot be told apart by reference: the key names what the value
+// used of it instead (its kind, time and value; the Patient's facts), so
+// a value derived from the version that replaced the other gets a key of
+// its own. A versioned input is cited by its version alone, as before.
+func TestUnversionedInputIsCitedByWhatItSaid(t *testing.T) {
+	unversioned := func(d *derive.Derivation) {
+		d.Used[0].Readings[1].Ref = "Observation/etco2-2"
+		d.Patient.Ref = "Patient/p1"
+	}
+	etco2 := map[derive.Code]bool{derive.CodeGradient: true, derive.CodeAlveolarFraction: true, derive.CodeAirwayFraction: true, derive.CodeEstimatedFraction: true}
+	patient := map[derive.Code]bool{derive.CodeVentilatoryRatio: true, derive.CodeEstimatedFraction: true}
+	for _, tc := range []struct {
+		name       string
+		before     func(*derive.Derivation)
+		change     func(*derive.Derivation)
+		keyChanged map[derive.Code]bool
+	}{
+		{"unversioned reading, another value", unversioned, func(d *derive.Derivation) { d.Used[0].Readings[1].Value = 33 }, etco2},
+		{"unversioned reading, another time", unversioned, func(d *derive.Derivation) { d.Used[0].Readings[1].AtMillis += 1000 }, etco2},
+		{"unversioned reading, the same", unversioned, func(d *derive.Derivation) {}, nil},
+		{"unversioned patient, another birth date", unversioned, func(d *derive.Derivation) { d.Patient.BirthDate = d.Patient.BirthDate.AddDate(-1, 0, 0) }, patient},
+		{"unversioned patient, another sex", unversioned, func(d *derive.Derivation) { d.Patient.Sex = derive.SexFemale }, patient},
+		{"versioned reading, another value", func(*derive.Derivation) {}, func(d *derive.Derivation) { d.Used[0].Readings[1].Value = 33 }, nil},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			a, b := fullDerivation(), fullDerivation()
+			tc.before(&a)
+			tc.before(&b)
+			tc.change(&b)
+			for _, v := range a.Values {
+				ka, err := encode.ValueIdentity(a, v)
+				if err != nil {
+					t.Fatal(err)
+				}
+				kb, err := encode.ValueIdentity(b, valueOf(b, v.Code))
+				if err != nil {
+					t.Fatal(err)
+				}
+				if changed := ka.Key != kb.Key; changed != tc.keyChanged[v.Code] {
+					t.Errorf("%s: key changed = %v, want %v", v.Code, changed, tc.keyChanged[v.Code])
+				}
+				if ka.Series != kb.Series {
+					t.Errorf("%s: series changed", v.Code)
+				}
+			}
+		})
+	}
+}

@@ -5,6 +5,7 @@ import (
 	"encoding/hex"
 	"fmt"
 	"slices"
+	"strconv"
 	"strings"
 	"time"
 
@@ -16,8 +17,10 @@ type Identity struct {
 	// Key is identifier[0].value: "sha256:" and the hex digest of the
 	// algorithm version, the output code and the sorted versioned references
 	// of every input used (the blood gas, every reading cited, and the
-	// Patient when the value used the patient's sex or age). It changes
-	// whenever any input version or the rules change.
+	// Patient when the value used the patient's sex or age). An input
+	// without a version (no meta.versionId) is cited by its reference and
+	// what the value used of it (citation). It changes whenever any input
+	// version or the rules change.
 	Key string
 	// Series is identifier[1].value: "sha256:" and the hex digest of the
 	// output code and the unversioned blood gas reference (for a fall, the
@@ -120,7 +123,7 @@ func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 	}
 	var buf [48]string
 	refs := buf[:0]
-	if err := eachValueReading(d, v, func(r derive.Reading) { refs = append(refs, r.Ref) }); err != nil {
+	if err := eachValueReading(d, v, func(r derive.Reading) { refs = append(refs, citation(r)) }); err != nil {
 		return Identity{}, err
 	}
 	if v.UsesPatient {
@@ -128,7 +131,7 @@ func ValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 		if err != nil {
 			return Identity{}, fmt.Errorf("%s uses the patient: %w", v.Code, err)
 		}
-		refs = append(refs, p.String())
+		refs = append(refs, patientCitation(p, d.Patient))
 	}
 	key, err := valueKey(v.Code, refs)
 	if err != nil {
@@ -196,6 +199,33 @@ func valueKey(code derive.Code, refs []string) (string, error) {
 	return h.sum()
 }
 
+// citation is how a cited reading enters a key: its versioned reference,
+// or, for a reading of a resource without a version, its reference and
+// what it said (kind, time and value). Two versions of such a resource
+// share one reference, and the key must still tell them apart: the live
+// service and replay keep the same one of two such versions in whatever
+// order they arrive (fhir/ref's Compare), and the key says which, so a
+// value derived from the other is replaced and not taken as recorded.
+func citation(r derive.Reading) string {
+	if strings.Contains(r.Ref, "/_history/") {
+		return r.Ref
+	}
+	return r.Ref + "#" + r.Kind.String() + "@" + strconv.FormatInt(r.AtMillis, 10) + "=" + strconv.FormatFloat(r.Value, 'g', -1, 64)
+}
+
+// patientCitation is citation for the Patient a value used: its versioned
+// reference, or without a version its reference and the facts used.
+func patientCitation(r ref, p derive.Patient) string {
+	if r.Version != "" {
+		return r.String()
+	}
+	birth := ""
+	if !p.BirthDate.IsZero() {
+		birth = p.BirthDate.UTC().Format(time.DateOnly)
+	}
+	return r.String() + "#" + strconv.Itoa(int(p.Sex)) + "@" + birth
+}
+
 // FallIdentity computes both identifiers of the Observation that encodes f
 // for the patient subject ("Patient/id").
 func FallIdentity(subject string, f derive.Fall) (Identity, error) {
@@ -209,7 +239,7 @@ func FallIdentity(subject string, f derive.Fall) (Identity, error) {
 	}
 	refs := make([]string, 0, len(used))
 	for _, r := range used {
-		refs = append(refs, r.Ref)
+		refs = append(refs, citation(r))
 	}
 	key, err := valueKey(EpisodeCode(f), refs)
 	if err != nil {

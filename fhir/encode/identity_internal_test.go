@@ -12,9 +12,9 @@ import (
 )
 
 // The identifiers as they were computed before hashInput, a string per
-// field and a slice of readings per value: the identifiers are stored and
-// written to the server, so the faster code must give the same ones and
-// the same errors.
+// field and a slice of readings per value (with each input cited as
+// citation cites it): the identifiers are stored and written to the
+// server, so the faster code must give the same ones and the same errors.
 
 func oldDigest(scheme string, fields ...string) (string, error) {
 	h := sha256.New()
@@ -79,14 +79,14 @@ func oldValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 	}
 	refs := make([]string, 0, len(used)+1)
 	for _, r := range used {
-		refs = append(refs, r.Ref)
+		refs = append(refs, citation(r))
 	}
 	if v.UsesPatient {
 		p, err := cited(d.Patient.Ref, "Patient")
 		if err != nil {
 			return Identity{}, fmt.Errorf("%s uses the patient: %w", v.Code, err)
 		}
-		refs = append(refs, p.String())
+		refs = append(refs, patientCitation(p, d.Patient))
 	}
 	key, err := oldValueKey(v.Code, refs)
 	if err != nil {
@@ -113,7 +113,7 @@ func oldFallIdentity(subject string, f derive.Fall) (Identity, error) {
 	}
 	refs := make([]string, 0, len(used))
 	for _, r := range used {
-		refs = append(refs, r.Ref)
+		refs = append(refs, citation(r))
 	}
 	key, err := oldValueKey(EpisodeCode(f), refs)
 	if err != nil {

@@ -136,6 +136,16 @@ func IsType(s string) bool {
 type Version struct {
 	LastUpdated time.Time
 	ID          string
+	// Unusable and Content break a tie of LastUpdated and ID (two copies
+	// without meta, say). Unusable says that no result can use the
+	// version: a withdrawal, a refused status, specimen or code. Content
+	// is what the version says in a canonical form that every caller
+	// builds the same way for the same version (api/pipeline's
+	// VersionContent for inputs, the stored facts for a Patient); it is
+	// compared only at a tie, so a caller may leave it empty until
+	// Compare without it answers 0.
+	Unusable bool
+	Content  string
 }
 
 // Compare orders versions of one resource: the later meta.lastUpdated is
@@ -143,20 +153,36 @@ type Version struct {
 // decimal numbers compare as numbers of any length (servers that count
 // versions write "9" before "10", and some ids exceed 64 bits), any others
 // as strings. FHIR fixes no order for version ids, so the time decides
-// first. It returns +1 when a is newer than b, -1 when older, 0 when
-// neither is.
+// first. Two versions with the same time and id are still told apart, so
+// that the order does not depend on which arrived first: an unusable
+// version is newer than a usable one (a tie never brings back what one
+// copy withdraws), then the greater Content is newer. It returns +1 when a
+// is newer than b, -1 when older, 0 when neither is.
 func Compare(a, b Version) int {
 	if c := a.LastUpdated.Compare(b.LastUpdated); c != 0 {
 		return c
 	}
-	if isDecimal(a.ID) && isDecimal(b.ID) {
-		x, y := strings.TrimLeft(a.ID, "0"), strings.TrimLeft(b.ID, "0")
+	if c := compareIDs(a.ID, b.ID); c != 0 {
+		return c
+	}
+	switch {
+	case a.Unusable && !b.Unusable:
+		return 1
+	case b.Unusable && !a.Unusable:
+		return -1
+	}
+	return strings.Compare(a.Content, b.Content)
+}
+
+func compareIDs(a, b string) int {
+	if isDecimal(a) && isDecimal(b) {
+		x, y := strings.TrimLeft(a, "0"), strings.TrimLeft(b, "0")
 		if c := cmp.Compare(len(x), len(y)); c != 0 {
 			return c
 		}
 		return strings.Compare(x, y)
 	}
-	return strings.Compare(a.ID, b.ID)
+	return strings.Compare(a, b)
 }
 
 func isDecimal(s string) bool {

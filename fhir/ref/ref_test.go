@@ -83,18 +83,28 @@ func TestParseAny(t *testing.T) {
 
 func TestCompare(t *testing.T) {
 	t0 := time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
+	v := func(at time.Time, id string) Version { return Version{LastUpdated: at, ID: id} }
 	for _, tc := range []struct {
 		name string
 		a, b Version
 		want int
 	}{
-		{"later time wins", Version{t0.Add(time.Nanosecond), "1"}, Version{t0, "2"}, 1},
-		{"nanoseconds count", Version{t0, "9"}, Version{t0.Add(time.Nanosecond), "1"}, -1},
-		{"numbers as numbers", Version{t0, "10"}, Version{t0, "9"}, 1},
-		{"numbers past 64 bits", Version{t0, "100000000000000000000"}, Version{t0, "99999999999999999999"}, 1},
-		{"leading zeros", Version{t0, "007"}, Version{t0, "7"}, 0},
-		{"strings as strings", Version{t0, "b"}, Version{t0, "a"}, 1},
-		{"same", Version{t0, "x"}, Version{t0, "x"}, 0},
+		{"later time wins", v(t0.Add(time.Nanosecond), "1"), v(t0, "2"), 1},
+		{"nanoseconds count", v(t0, "9"), v(t0.Add(time.Nanosecond), "1"), -1},
+		{"numbers as numbers", v(t0, "10"), v(t0, "9"), 1},
+		{"numbers past 64 bits", v(t0, "100000000000000000000"), v(t0, "99999999999999999999"), 1},
+		{"leading zeros", v(t0, "007"), v(t0, "7"), 0},
+		{"strings as strings", v(t0, "b"), v(t0, "a"), 1},
+		{"same", v(t0, "x"), v(t0, "x"), 0},
+		// Ties of time and id: copies without meta, or a server that
+		// reuses a version id.
+		{"unusable wins a tie", Version{ID: "", Unusable: true, Content: "a"}, Version{ID: "", Content: "b"}, 1},
+		{"unusable does not beat a later time", Version{LastUpdated: t0, Unusable: true}, v(t0.Add(time.Nanosecond), ""), -1},
+		{"unusable does not beat a larger id", Version{LastUpdated: t0, ID: "1", Unusable: true}, v(t0, "2"), -1},
+		{"then the greater content", Version{LastUpdated: t0, Content: "b"}, Version{LastUpdated: t0, Content: "a"}, 1},
+		{"both unusable: the greater content", Version{Unusable: true, Content: "deleted"}, Version{Unusable: true, Content: "cancelled"}, 1},
+		{"same content", Version{Content: "a"}, Version{Content: "a"}, 0},
+		{"content does not beat a larger id", Version{LastUpdated: t0, ID: "1", Content: "z"}, v(t0, "2"), -1},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			if got := Compare(tc.a, tc.b); got != tc.want {

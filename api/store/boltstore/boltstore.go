@@ -449,6 +449,9 @@ func checkSubject(subject string) error {
 	if subject == "" {
 		return errors.New("empty subject")
 	}
+	if subject == keptSubject {
+		return errors.New("subject reserved for kept versions")
+	}
 	for i := range len(subject) {
 		if subject[i] == sep {
 			return errors.New("subject contains a NUL byte")

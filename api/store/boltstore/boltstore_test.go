@@ -306,7 +306,7 @@ func TestPutPatientSameAdvancesFetchedAt(t *testing.T) {
 	must(t, err)
 	ds, err := s.DirtyPatients(ctx)
 	must(t, err)
-	p.FetchedAt, p.Payload = t0.Add(time.Hour), []byte("other bytes")
+	p.FetchedAt = t0.Add(time.Hour)
 	res, err := s.PutPatient(ctx, p, t0.Add(time.Hour))
 	must(t, err)
 	if res != store.PutSame {
@@ -558,5 +558,34 @@ func TestCommitStatsCountTheCommitter(t *testing.T) {
 	pruned := s.CommitStats()
 	if pruned.Calls != after.Calls+1 || pruned.Transactions != after.Transactions+1 || pruned.Busy <= after.Busy {
 		t.Errorf("after a prune: %+v, want one call and one transaction more than %+v, and more time", pruned, after)
+	}
+}
+
+// Held answers as Owner does, for many inputs in one read.
+func TestHeldAnswersAsOwner(t *testing.T) {
+	s, _ := openTemp(t)
+	ctx := t.Context()
+	if _, err := s.PutInputs(ctx, []store.Input{
+		{Subject: "Patient/a", Logical: "Observation/held", VersionID: "1", LastUpdated: t0, EffectiveAt: t0, Payload: []byte("x")},
+		{Subject: "Patient/a", Logical: "Observation/pruned", VersionID: "1", LastUpdated: t0, EffectiveAt: t0.Add(-time.Hour), Payload: []byte("x")},
+	}, t0); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := s.Prune(ctx, t0.Add(-time.Minute)); err != nil {
+		t.Fatal(err)
+	}
+	logicals := []string{"Observation/held", "Observation/never", "Observation/pruned"}
+	got, err := s.Held(ctx, logicals)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, l := range logicals {
+		_, oerr := s.Owner(ctx, l)
+		if got[i] != (oerr == nil) {
+			t.Errorf("%s: Held %v, Owner %v", l, got[i], oerr)
+		}
+	}
+	if !got[0] || got[1] || got[2] {
+		t.Errorf("Held = %v, want [true false false]", got)
 	}
 }

@@ -12,14 +12,7 @@ import (
 	bolt "go.etcd.io/bbolt"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
-	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
-
-// compareVersions orders two versions of one resource by the one rule,
-// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
-func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
-}
 
 // appendFill is the page fill for buckets whose keys mostly grow (time or
 // sequence first); bbolt's default of one half suits random keys.
@@ -103,7 +96,7 @@ func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store
 		if in.Logical == "" {
 			return fmt.Errorf("input %d: empty logical reference", i)
 		}
-		res, touched, err := putInput(tx, in)
+		res, touched, err := putInput(tx, in, now)
 		if err != nil {
 			return fmt.Errorf("input %d: %w", i, err)
 		}
@@ -127,41 +120,63 @@ func putInputs(tx *bolt.Tx, inputs []store.Input, now time.Time, results []store
 
 // putInput applies one input and returns the subjects whose inputs
 // changed, with the span of each change.
-func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Span, error) {
+func putInput(tx *bolt.Tx, in store.Input, now time.Time) (store.PutResult, map[string]store.Span, error) {
 	logical := []byte(in.Logical)
 	pl, err := getPlaces(tx, logical)
 	if err != nil {
 		return 0, nil, err
 	}
 	owner := pl.owner()
-	// The latest version under the owner decides across patients; the copy
-	// under this subject (if the owner's copy was pruned) decides too.
-	exists := false
+	// The version to beat is the latest stored: the owner's copy, under any
+	// patient; without one (pruned), the version kept of it (keptSubject),
+	// or the copy under this subject. A copy under this subject that is
+	// not the owner's is a withdrawal, which carries the version that
+	// moved the input away, never newer than the owner's: it refuses only
+	// a strictly older version, and is read for what it changed.
+	exists, decided, replacedHere := false, false, false
 	span := store.SpanOf(in)
-	for i, subject := range []string{owner, in.Subject} {
-		if subject == "" || (i == 1 && subject == owner) {
+	replaces, keep := false, time.Time{} // the latest row time of what this version replaces
+	for i, subject := range []string{owner, keptSubject, in.Subject} {
+		if subject == "" || (i > 0 && subject == owner) {
 			continue // no copy there, or the owner's, read already
 		}
-		old, ok, err := inputHeadAt(tx, subject, in.Logical, pl.timeOf(subject))
+		t := pl.timeOf(subject)
+		old, ok, err := inputHeadAt(tx, subject, in.Logical, t)
 		if err != nil {
 			return 0, nil, err
 		}
 		if !ok {
 			continue
 		}
-		exists = true
-		if c := compareVersions(in.LastUpdated, in.VersionID, old.LastUpdated, old.VersionID); c <= 0 {
-			return store.ResultOf(true, c), nil, nil
+		c := store.CompareVersions(in, old)
+		if subject != keptSubject {
+			exists = true
+			if !decided {
+				c = store.CompareStored(in, old)
+			}
 		}
+		if !decided || c < 0 {
+			decided = true
+			if c <= 0 {
+				return store.ResultOf(true, c), nil, nil
+			}
+		}
+		replaces, keep = true, latestTime(keep, parseTimeKey(t))
 		if subject == in.Subject {
 			// The replaced version's results change too.
 			span = span.Replacing(in, old.EffectiveAt, old.Payload)
+			replacedHere = true
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	touched := map[string]store.Span{in.Subject: span}
+	// An inert version changes no result of its own: its patient changes
+	// only when it replaces a version there.
+	touched := map[string]store.Span{}
+	if !in.Inert || replacedHere {
+		touched[in.Subject] = span
+	}
 	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
 		if _, ok, err := inputHeadAt(tx, owner, in.Logical, pl.timeOf(owner)); err != nil {
@@ -180,10 +195,55 @@ func putInput(tx *bolt.Tx, in store.Input) (store.PutResult, map[string]store.Sp
 		return 0, nil, err
 	}
 	pl.own(in.Subject)
+	if replaces {
+		if err := keepVersion(tx, &pl, in, latestTime(keep, now)); err != nil {
+			return 0, nil, err
+		}
+	}
 	if err := putPlaces(tx, logical, pl); err != nil {
 		return 0, nil, err
 	}
 	return res, touched, nil
+}
+
+// keptSubject files, in input_rows and in an input's places, the version
+// kept of an input whose rows may be pruned before an older version of it
+// can no longer arrive: a row with the newest version's id and
+// last-updated time and no payload, at the time until which it is kept.
+// No patient has this subject (checkSubject refuses it), so no patient's
+// inputs list it; Prune removes it like any row once its time is past the
+// horizon.
+//
+// A version that replaces others is kept until the latest of the row
+// times of the versions it replaced and the time it arrived (now): a late
+// copy of a version it superseded is refused for a retention after the
+// newest version arrived, and for as long as that copy's own effective
+// time is within the retention (the engine refuses it by its time after
+// that), even when the newest version's row goes first (a correction
+// that moves the sample time earlier, or to another patient). When its
+// own row outlives both, nothing more is kept.
+const keptSubject = "\x01kept"
+
+// keepVersion records in's version as the one kept of its input until
+// until, or drops what was kept when in's own row lasts as long.
+func keepVersion(tx *bolt.Tx, pl *places, in store.Input, until time.Time) error {
+	if !until.After(in.EffectiveAt) {
+		if t := pl.timeOf(keptSubject); t != nil {
+			if err := tx.Bucket(bInputRows).Delete(rowKey(subjectPrefix(keptSubject), t, []byte(in.Logical))); err != nil {
+				return err
+			}
+			pl.remove(keptSubject)
+		}
+		return nil
+	}
+	return writeInput(tx, pl, store.Input{Subject: keptSubject, Logical: in.Logical, VersionID: in.VersionID, LastUpdated: in.LastUpdated, EffectiveAt: until})
+}
+
+func latestTime(a, b time.Time) time.Time {
+	if a.After(b) {
+		return a
+	}
+	return b
 }
 
 // inputHeadAt reads the version of subject's stored input, whose row is
@@ -404,7 +464,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			if err != nil {
 				return err
 			}
-			c = compareVersions(p.LastUpdated, p.VersionID, old.LastUpdated, old.VersionID)
+			c = store.ComparePatients(p, old)
 			if c <= 0 {
 				res = store.ResultOf(true, c)
 				if !p.FetchedAt.After(old.FetchedAt) {
@@ -536,7 +596,9 @@ func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 			if err := putPlaces(tx, logical, pl); err != nil {
 				return err
 			}
-			n++
+			if subject != keptSubject {
+				n++
+			}
 		}
 		return nil
 	})
@@ -564,4 +626,26 @@ func (s *Store) Owner(ctx context.Context, logical string) (string, error) {
 		return "", err
 	}
 	return subject, nil
+}
+
+var _ store.Holder = (*Store)(nil)
+
+// Held reads, in one transaction, whether each input has an owner, as
+// Owner would.
+func (s *Store) Held(ctx context.Context, logicals []string) ([]bool, error) {
+	out := make([]bool, len(logicals))
+	err := s.view(ctx, "Held", func(tx *bolt.Tx) error {
+		for i, l := range logicals {
+			pl, err := getPlaces(tx, []byte(l))
+			if err != nil {
+				return err
+			}
+			out[i] = pl.owner() != ""
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
 }

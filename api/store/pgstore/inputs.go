@@ -9,16 +9,9 @@ import (
 	"github.com/jackc/pgx/v5"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
-	"github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 var _ store.Store = (*Store)(nil)
-
-// compareVersions orders two versions of one resource by the one rule,
-// ref.Compare: +1 when a is newer than b, -1 when older, 0 when neither is.
-func compareVersions(aTime time.Time, aID string, bTime time.Time, bID string) int {
-	return ref.Compare(ref.Version{LastUpdated: aTime, ID: aID}, ref.Version{LastUpdated: bTime, ID: bID})
-}
 
 // lockKeys takes a transaction-scoped advisory lock on each name, in the
 // order of their lock keys so that two transactions locking overlapping
@@ -62,7 +55,7 @@ func (s *Store) PutInputs(ctx context.Context, inputs []store.Input, now time.Ti
 		var changed []string
 		spans := map[string]store.Span{}
 		for i, in := range inputs {
-			res, touched, err := putInput(ctx, tx, in)
+			res, touched, err := putInput(ctx, tx, in, now)
 			if err != nil {
 				return fmt.Errorf("input %d: %w", i, err)
 			}
@@ -98,62 +91,122 @@ type touched struct {
 // putInput applies one input under the resource's lock and returns the
 // patients whose inputs changed (the embedded store's rule, step for
 // step).
-func putInput(ctx context.Context, tx pgx.Tx, in store.Input) (store.PutResult, []touched, error) {
-	var owner string
-	err := tx.QueryRow(ctx, `SELECT subject FROM input_owner WHERE logical = $1`, in.Logical).Scan(&owner)
-	if err != nil && !errors.Is(err, pgx.ErrNoRows) {
+func putInput(ctx context.Context, tx pgx.Tx, in store.Input, now time.Time) (store.PutResult, []touched, error) {
+	var owner, keptID *string
+	var keptUpdated, keptUntil *int64
+	err := tx.QueryRow(ctx, `
+		SELECT o.subject, k.version_id, k.last_updated_ns, k.until_ns
+		  FROM (SELECT $1::text AS logical) q
+		  LEFT JOIN input_owner o ON o.logical = q.logical
+		  LEFT JOIN input_kept k ON k.logical = q.logical`, in.Logical).Scan(&owner, &keptID, &keptUpdated, &keptUntil)
+	if err != nil {
 		return 0, nil, err
 	}
-	// The latest version under the owner decides across patients; the copy
-	// under this subject (if the owner row went with a prune) decides too.
-	exists, ownerHasCopy := false, false
+	ownerSubject := ""
+	if owner != nil {
+		ownerSubject = *owner
+	}
+	// The version to beat is the latest stored: the owner's copy, under any
+	// patient; without one (pruned), the version kept of it (input_kept),
+	// or the copy under this subject. A copy under this subject that is
+	// not the owner's is a withdrawal, never newer than the owner's: it
+	// refuses only a strictly older version, and is read for what it
+	// changed.
+	exists, ownerHasCopy, decided, replacedHere := false, false, false, false
 	sp := store.SpanOf(in)
-	for i, subject := range []string{owner, in.Subject} {
-		if subject == "" || (i == 1 && subject == owner) {
+	var keep int64 // the latest effective time of what this version replaces
+	decide := func(old store.Input, kept bool) (store.PutResult, bool) {
+		c := store.CompareVersions(in, old)
+		if !kept && !decided {
+			c = store.CompareStored(in, old)
+		}
+		if !decided || c < 0 {
+			decided = true
+			if c <= 0 {
+				return store.ResultOf(true, c), true
+			}
+		}
+		return 0, false
+	}
+	for i, subject := range []string{ownerSubject, "", in.Subject} {
+		if i == 1 {
+			if keptID == nil {
+				continue
+			}
+			if res, done := decide(store.Input{VersionID: *keptID, LastUpdated: fromNanos(*keptUpdated)}, true); done {
+				return res, nil, nil
+			}
+			keep = max(keep, *keptUntil)
+			continue
+		}
+		if subject == "" || (i == 2 && subject == ownerSubject) {
 			continue // no copy there, or the owner's, read already
 		}
-		var id string
+		old := store.Input{Subject: subject, Logical: in.Logical}
 		var lu, eff int64
-		var payload []byte
 		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, effective_ns, payload FROM inputs WHERE subject = $1 AND logical = $2`,
-			subject, in.Logical).Scan(&id, &lu, &eff, &payload)
+			subject, in.Logical).Scan(&old.VersionID, &lu, &eff, &old.Payload)
 		if errors.Is(err, pgx.ErrNoRows) {
 			continue
 		}
 		if err != nil {
 			return 0, nil, err
 		}
+		old.LastUpdated, old.EffectiveAt = fromNanos(lu), fromNanos(eff)
 		exists = true
-		if subject == owner {
+		if subject == ownerSubject {
 			ownerHasCopy = true
 		}
-		if c := compareVersions(in.LastUpdated, in.VersionID, fromNanos(lu), id); c <= 0 {
-			return store.ResultOf(true, c), nil, nil
+		if res, done := decide(old, false); done {
+			return res, nil, nil
 		}
+		keep = max(keep, eff)
 		if subject == in.Subject {
 			// The replaced version's results change too.
-			sp = sp.Replacing(in, fromNanos(eff), payload)
+			sp = sp.Replacing(in, old.EffectiveAt, old.Payload)
+			replacedHere = true
 		}
 	}
 	if in.OnlyReplaces && !exists {
 		return store.PutSkipped, nil, nil
 	}
-	changed := []touched{{in.Subject, sp}}
+	// An inert version changes no result of its own: its patient changes
+	// only when it replaces a version there.
+	var changed []touched
+	if !in.Inert || replacedHere {
+		changed = append(changed, touched{in.Subject, sp})
+	}
 	res := store.ResultOf(exists, 1)
-	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
+	if ownerSubject != "" && ownerSubject != in.Subject && len(in.Withdrawal) > 0 && ownerHasCopy {
 		moved := in
-		moved.Subject, moved.Payload = owner, in.Withdrawal
+		moved.Subject, moved.Payload = ownerSubject, in.Withdrawal
 		if err := writeInput(ctx, tx, moved); err != nil {
 			return 0, nil, err
 		}
-		changed = append(changed, touched{owner, store.Span{}}) // the whole first patient
+		changed = append(changed, touched{ownerSubject, store.Span{}}) // the whole first patient
 		res = store.PutMoved
 	}
 	if err := writeInput(ctx, tx, in); err != nil {
 		return 0, nil, err
 	}
-	_, err = tx.Exec(ctx, `INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
-		ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject)
+	if _, err := tx.Exec(ctx, `INSERT INTO input_owner (logical, subject) VALUES ($1, $2)
+		ON CONFLICT (logical) DO UPDATE SET subject = EXCLUDED.subject`, in.Logical, in.Subject); err != nil {
+		return 0, nil, err
+	}
+	if keptID != nil || exists {
+		// A version that replaced others is kept until the latest of their
+		// effective times and its arrival, unless its own row lasts as long
+		// (the embedded store's keptSubject).
+		until := max(keep, nanos(now))
+		if until > nanos(in.EffectiveAt) {
+			_, err = tx.Exec(ctx, `INSERT INTO input_kept (logical, version_id, last_updated_ns, until_ns) VALUES ($1, $2, $3, $4)
+				ON CONFLICT (logical) DO UPDATE SET version_id = EXCLUDED.version_id,
+				   last_updated_ns = EXCLUDED.last_updated_ns, until_ns = EXCLUDED.until_ns`,
+				in.Logical, in.VersionID, nanos(in.LastUpdated), until)
+		} else if keptID != nil {
+			_, err = tx.Exec(ctx, `DELETE FROM input_kept WHERE logical = $1`, in.Logical)
+		}
+	}
 	return res, changed, err
 }
 
@@ -259,17 +312,18 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		if err := lockKeys(ctx, tx, []string{"patient " + p.Subject}); err != nil {
 			return err
 		}
-		var oldID string
+		old := store.Patient{Subject: p.Subject}
 		var oldUpdated, oldFetched int64
-		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns FROM patients WHERE subject = $1`, p.Subject).
-			Scan(&oldID, &oldUpdated, &oldFetched)
+		err := tx.QueryRow(ctx, `SELECT version_id, last_updated_ns, fetched_at_ns, payload FROM patients WHERE subject = $1`, p.Subject).
+			Scan(&old.VersionID, &oldUpdated, &oldFetched, &old.Payload)
 		exists := err == nil
 		if err != nil && !errors.Is(err, pgx.ErrNoRows) {
 			return err
 		}
 		c := 0
 		if exists {
-			c = compareVersions(p.LastUpdated, p.VersionID, fromNanos(oldUpdated), oldID)
+			old.LastUpdated = fromNanos(oldUpdated)
+			c = store.ComparePatients(p, old)
 		}
 		res = store.ResultOf(exists, c)
 		if exists && c <= 0 {
@@ -315,11 +369,15 @@ func (s *Store) Patient(ctx context.Context, subject string) (store.Patient, err
 	return p, err
 }
 
-// Prune deletes inputs whose EffectiveAt is before the horizon, and the
-// owner rows that pointed at exactly those copies.
+// Prune deletes inputs whose EffectiveAt is before the horizon, the
+// owner rows that pointed at exactly those copies, and the versions kept
+// until before the horizon.
 func (s *Store) Prune(ctx context.Context, horizon time.Time) (int, error) {
 	var n int
 	err := s.inTx(ctx, "Prune", func(tx pgx.Tx) error {
+		if _, err := tx.Exec(ctx, `DELETE FROM input_kept WHERE until_ns < $1`, nanos(horizon)); err != nil {
+			return err
+		}
 		return tx.QueryRow(ctx, `
 			WITH gone AS (
 				DELETE FROM inputs WHERE effective_ns < $1 RETURNING subject, logical),

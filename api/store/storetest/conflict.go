@@ -1,6 +1,7 @@
 package storetest
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"sync"
@@ -61,8 +62,171 @@ func testVersionOrderAcrossPatients(t *testing.T, open func(t *testing.T) store.
 	}
 }
 
-// An unusable version is kept only when it hides a stored one, and the
-// check is made in the same transaction as the write.
+// tieCases: two versions with the same meta.lastUpdated and versionId
+// (copies without meta) are ordered by Input.Tie, which the store asks
+// with the stored version's subject and payload (it cannot read a
+// payload itself); without Tie they are the same version.
+var tieCases = []struct {
+	name string
+	tie  int // what Tie answers about the stored version
+	want store.PutResult
+}{
+	{"TieSaysNewer", 1, store.PutNewer},
+	{"TieSaysOlder", -1, store.PutOlder},
+	{"TieSaysSame", 0, store.PutSame},
+}
+
+func testVersionTies(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range tieCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			old := input("Patient/a", "Observation/t", "", time.Time{}, t0, "first copy")
+			put(t, s, t0, old)
+			var asked []string
+			nw := input("Patient/a", "Observation/t", "", time.Time{}, t0, "second copy")
+			nw.Tie = func(subject string, payload []byte) int {
+				asked = append(asked, subject+" "+string(payload))
+				return tc.tie
+			}
+			if got := put(t, s, t0, nw); got[0] != tc.want {
+				t.Fatalf("second copy: %v, want %v", got[0], tc.want)
+			}
+			if want := []string{"Patient/a first copy"}; fmt.Sprint(asked) != fmt.Sprint(want) {
+				t.Errorf("Tie asked about %q, want %q", asked, want)
+			}
+			in, err := s.Input(t.Context(), "Patient/a", "Observation/t")
+			must(t, err)
+			if want := map[bool]string{true: "second copy", false: "first copy"}[tc.want == store.PutNewer]; string(in.Payload) != want {
+				t.Errorf("stored %q, want %q", in.Payload, want)
+			}
+		})
+	}
+	// Across patients: the copy under b wins the tie and moves the input;
+	// the copy under a, again, loses to it; a third copy under a that
+	// wins the tie against b's moves it back, though a's withdrawal
+	// carries the same version and would win a tie itself (an unusable
+	// version does): a withdrawal is not the version to beat while the
+	// owner's copy is there.
+	t.Run("AcrossPatients", func(t *testing.T) {
+		s := open(t)
+		ranked := func(subject, payload string, rank int) store.Input {
+			in := input(subject, "Observation/t", "", time.Time{}, t0, payload)
+			in.Withdrawal = []byte("moved to " + subject)
+			in.Tie = func(_ string, old []byte) int {
+				oldRank, ok := map[string]int{"a1": 1, "b2": 2, "a3": 3}[string(old)]
+				if !ok {
+					oldRank = 10 // a withdrawal
+				}
+				return cmp.Compare(rank, oldRank)
+			}
+			return in
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a1", 1)); got[0] != store.PutNew {
+			t.Fatalf("a1: %v, want PutNew", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/b", "b2", 2)); got[0] != store.PutMoved {
+			t.Fatalf("b2: %v, want PutMoved", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a1", 1)); got[0] != store.PutOlder {
+			t.Fatalf("a1 again: %v, want PutOlder", got[0])
+		}
+		if got := put(t, s, t0, ranked("Patient/a", "a3", 3)); got[0] != store.PutMoved {
+			t.Fatalf("a3: %v, want PutMoved (a's withdrawal of the same version must not refuse it)", got[0])
+		}
+		if owner, err := s.Owner(t.Context(), "Observation/t"); err != nil || owner != "Patient/a" {
+			t.Errorf("owner %q, %v; want Patient/a", owner, err)
+		}
+		b, err := s.Input(t.Context(), "Patient/b", "Observation/t")
+		must(t, err)
+		if string(b.Payload) != "moved to Patient/a" {
+			t.Errorf("copy under b = %q, want the withdrawal", b.Payload)
+		}
+	})
+}
+
+// inertCases: a version no result can use (Input.Inert) is stored
+// whatever came before it, so that an older version arriving after it is
+// refused; its patient is marked dirty only when it replaces a version
+// stored there, and the patient it moves the input away from always is.
+var inertCases = []struct {
+	name        string
+	before      []store.Input // stored first, then the marks cleared
+	inert       store.Input
+	want        store.PutResult
+	wantDirty   []string
+	wantClean   []string
+	thenOlder   store.Input // arrives after the inert version
+	olderResult store.PutResult
+}{
+	{name: "FirstOfItsResource",
+		inert:     input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "cancelled"),
+		want:      store.PutNew,
+		wantClean: []string{"Patient/a"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+	{name: "ReplacesAReading",
+		before:    []store.Input{input("Patient/a", "Observation/x", "1", t0, t0, "final")},
+		inert:     input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "entered-in-error"),
+		want:      store.PutNewer,
+		wantDirty: []string{"Patient/a"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+	{name: "NamesAnotherPatient",
+		before:    []store.Input{input("Patient/a", "Observation/x", "1", t0, t0, "final")},
+		inert:     withWithdrawal(input("Patient/b", "Observation/x", "2", t0.Add(time.Minute), t0, "venous")),
+		want:      store.PutMoved,
+		wantDirty: []string{"Patient/a"},
+		wantClean: []string{"Patient/b"},
+		thenOlder: input("Patient/a", "Observation/x", "1", t0, t0, "final"), olderResult: store.PutOlder},
+}
+
+func withWithdrawal(in store.Input) store.Input {
+	in.Withdrawal = []byte("withdrawn")
+	return in
+}
+
+func testInert(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range inertCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			ctx := t.Context()
+			if len(tc.before) > 0 {
+				put(t, s, t0, tc.before...)
+				for _, in := range tc.before {
+					if d, ok := dirtyOf(t, s, in.Subject); ok {
+						must(t, s.Commit(ctx, store.Change{Subject: in.Subject, Generation: d.Generation}, t0))
+					}
+				}
+			}
+			in := tc.inert
+			in.Inert = true
+			if got := put(t, s, t0, in); got[0] != tc.want {
+				t.Fatalf("inert version: %v, want %v", got[0], tc.want)
+			}
+			stored, err := s.Input(ctx, in.Subject, in.Logical)
+			must(t, err)
+			if string(stored.Payload) != string(in.Payload) {
+				t.Errorf("stored %q, want the inert version", stored.Payload)
+			}
+			for _, subj := range tc.wantDirty {
+				if d, ok := dirtyOf(t, s, subj); !ok {
+					t.Errorf("%s not dirty", subj)
+				} else if !d.From.IsZero() {
+					t.Errorf("%s dirty from %v, want the whole patient", subj, d.From)
+				}
+			}
+			for _, subj := range tc.wantClean {
+				if _, ok := dirtyOf(t, s, subj); ok {
+					t.Errorf("%s dirty: an inert version replaced nothing there", subj)
+				}
+			}
+			if got := put(t, s, t0, tc.thenOlder); got[0] != tc.olderResult {
+				t.Errorf("older version after it: %v, want %v", got[0], tc.olderResult)
+			}
+		})
+	}
+}
+
+// OnlyReplaces keeps a version only when a version of its resource is
+// stored, and the check is made in the same transaction as the write.
 func testOnlyReplaces(t *testing.T, open func(t *testing.T) store.Store) {
 	s := open(t)
 	bad := input("Patient/a", "Observation/x", "2", t0.Add(time.Minute), t0, "unusable")

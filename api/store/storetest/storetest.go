@@ -52,10 +52,13 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"PutNotified", testPutNotified},
 		{"Events/OrderAndResume", testEvents},
 		{"Prune", testPrune},
+		{"Prune/KeepsTheNewestVersion", testPruneKeepsNewestVersion},
 		{"Context/Canceled", testCanceled},
 		{"Concurrent", testConcurrent},
 		{"PutInputs/VersionOrderAcrossPatients", testVersionOrderAcrossPatients},
 		{"PutInputs/OnlyReplaces", testOnlyReplaces},
+		{"PutInputs/VersionTies", testVersionTies},
+		{"PutInputs/Inert", testInert},
 		{"Commit/ConflictAppliesNothing", testCommitConflict},
 		{"Commit/OverlappingWritersOneWins", testOverlappingWriters},
 		{"Result/OnePerVersion", testResults},
@@ -305,11 +308,53 @@ func testInputsOrder(t *testing.T, open func(t *testing.T) store.Store) {
 	mustNotFound(t, "Input under another subject", err)
 }
 
+// patientTieCases add to versionCases what breaks a tie of a Patient's
+// versions: its facts (the payload), compared as bytes, so that which of
+// two copies without meta is kept does not depend on the order they
+// arrive in (ref.Compare's Content, as replay orders them). A same
+// version with the same facts is the same version.
+var patientTieCases = []struct {
+	name                   string
+	oldPayload, newPayload string
+	want                   store.PutResult
+}{
+	{name: "TieGreaterFactsWin", oldPayload: "a", newPayload: "b", want: store.PutNewer},
+	{name: "TieSmallerFactsLose", oldPayload: "b", newPayload: "a", want: store.PutOlder},
+}
+
 func testPatientVersionOrder(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range patientTieCases {
+		t.Run(tc.name, func(t *testing.T) {
+			for _, meta := range []struct {
+				version string
+				updated time.Time
+			}{{"", time.Time{}}, {"3", t0}} {
+				s := open(t)
+				put := func(payload string) store.PutResult {
+					res, err := s.PutPatient(t.Context(), store.Patient{Subject: "Patient/p", VersionID: meta.version, LastUpdated: meta.updated, Payload: []byte(payload)}, t0)
+					must(t, err)
+					return res
+				}
+				put(tc.oldPayload)
+				if got := put(tc.newPayload); got != tc.want {
+					t.Fatalf("version %q: second put = %v, want %v", meta.version, got, tc.want)
+				}
+				got, err := s.Patient(t.Context(), "Patient/p")
+				must(t, err)
+				if want := max(tc.oldPayload, tc.newPayload); string(got.Payload) != want {
+					t.Errorf("version %q: stored %q, want %q", meta.version, got.Payload, want)
+				}
+			}
+		})
+	}
 	for _, tc := range versionCases {
 		t.Run(tc.name, func(t *testing.T) {
 			s := open(t)
 			subj := "Patient/p"
+			newPayload := "new"
+			if tc.want == store.PutSame {
+				newPayload = "old" // the same version, read again: the same facts
+			}
 			old := store.Patient{Subject: subj, VersionID: tc.oldVersion, LastUpdated: tc.oldUpdated, Payload: []byte("old"), FetchedAt: t0}
 			res, err := s.PutPatient(t.Context(), old, t0)
 			must(t, err)
@@ -320,7 +365,7 @@ func testPatientVersionOrder(t *testing.T, open func(t *testing.T) store.Store) 
 			if !ok {
 				t.Fatal("patient not dirty after new facts")
 			}
-			nw := store.Patient{Subject: subj, VersionID: tc.newVersion, LastUpdated: tc.newUpdated, Payload: []byte("new"), FetchedAt: t0.Add(time.Hour)}
+			nw := store.Patient{Subject: subj, VersionID: tc.newVersion, LastUpdated: tc.newUpdated, Payload: []byte(newPayload), FetchedAt: t0.Add(time.Hour)}
 			res, err = s.PutPatient(t.Context(), nw, t0.Add(time.Hour))
 			must(t, err)
 			if res != tc.want {
@@ -976,6 +1021,94 @@ func testPrune(t *testing.T, open func(t *testing.T) store.Store) {
 	if ins, _ := s.Inputs(ctx, "Patient/a"); len(ins) != 1 {
 		t.Errorf("Patient/a has %d inputs after Prune, want 1", len(ins))
 	}
+}
+
+// pruneKeptCases: a version that superseded others is remembered after
+// its row is pruned, for as long as a late copy of what it superseded
+// could still be within the retention: until the latest of the times of
+// the rows it replaced and the time it arrived (the now of its put), so
+// a correction that moved the sample time earlier, or the input to
+// another patient, is not undone by a late copy of the first version
+// once the correction's row is gone.
+var pruneKeptCases = []struct {
+	name     string
+	versions []store.Input // put in order at t0 (the horizon below is after every one's row but the first's)
+	late     store.Input   // a copy of the first version, after the prune
+	horizon  time.Time
+	want     store.PutResult
+}{
+	{name: "CorrectedToAnEarlierTime",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2, sampled a day earlier"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutOlder},
+	{name: "RefiledToAnotherPatientAtAnEarlierTime",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			withWithdrawal(input("Patient/b", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2 under b")),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutOlder},
+	{name: "WithdrawnAndPruned",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-30*time.Minute), "v1"),
+			input("Patient/a", "Observation/g", "2", t0.Add(-40*time.Minute), t0.Add(-40*time.Minute), "withdrawal kept by its last-updated time"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-30*time.Minute), "v1"),
+		horizon: t0.Add(-35 * time.Minute), want: store.PutOlder},
+	{name: "ForgottenOnceItsTimeIsPast",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2"),
+		},
+		late:    input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+		horizon: t0.Add(time.Nanosecond), want: store.PutNew},
+	{name: "ANewerVersionAfterThePrune",
+		versions: []store.Input{
+			input("Patient/a", "Observation/g", "1", t0.Add(-time.Hour), t0.Add(-time.Hour), "v1"),
+			input("Patient/a", "Observation/g", "2", t0, t0.Add(-24*time.Hour), "v2"),
+		},
+		late:    input("Patient/a", "Observation/g", "3", t0.Add(time.Minute), t0.Add(-time.Hour), "v3"),
+		horizon: t0.Add(-2 * time.Hour), want: store.PutNew},
+}
+
+func testPruneKeepsNewestVersion(t *testing.T, open func(t *testing.T) store.Store) {
+	for _, tc := range pruneKeptCases {
+		t.Run(tc.name, func(t *testing.T) {
+			s := open(t)
+			ctx := t.Context()
+			for _, in := range tc.versions {
+				put(t, s, t0, in)
+			}
+			if _, err := s.Prune(ctx, tc.horizon); err != nil {
+				t.Fatal(err)
+			}
+			if got := put(t, s, t0, tc.late); got[0] != tc.want {
+				t.Fatalf("late version %s: %v, want %v", tc.late.VersionID, got[0], tc.want)
+			}
+			_, err := s.Input(ctx, tc.late.Subject, tc.late.Logical)
+			if stored := err == nil; stored != (tc.want == store.PutNew) {
+				t.Errorf("late version stored = %v (%v), want %v", stored, err, tc.want == store.PutNew)
+			}
+			// Nothing kept counts as an input pruned, and every row kept
+			// goes once its time is past.
+			if n, err := s.Prune(ctx, t0.Add(48*time.Hour)); err != nil || n != btoi(tc.want == store.PutNew) {
+				t.Errorf("final Prune = %d, %v; want %d", n, err, btoi(tc.want == store.PutNew))
+			}
+			if got := put(t, s, t0.Add(49*time.Hour), tc.versions[0]); got[0] != store.PutNew {
+				t.Errorf("the first version after everything was pruned: %v, want PutNew", got[0])
+			}
+		})
+	}
+}
+
+func btoi(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
 }
 
 // Every method checks its context before it starts.

@@ -5,7 +5,10 @@
 // It keeps every version of every resource in memory and implements the part
 // of the RESTful API deadspace uses (https://hl7.org/fhir/R4/http.html):
 //   - read, vread, create (POST, with If-None-Exist for conditional create),
-//     update (PUT, with If-Match on W/"vid": 412 when the version moved);
+//     update (PUT, with If-Match on W/"vid": 412 when the version moved),
+//     delete (DELETE: a version that marks the resource deleted; a read of
+//     it then answers 410 Gone, searches leave it out, and a PUT brings it
+//     back with the next version);
 //   - search with code, identifier, _tag, subject, url, _lastUpdated
 //     (eq, gt, ge, lt, le), _count, sorted by _lastUpdated, with real
 //     searchset next links; an unknown parameter under Prefer:
@@ -43,7 +46,8 @@ const DefaultPageSize = 50
 type version struct {
 	vid     string
 	updated time.Time
-	body    []byte // with id and meta set
+	body    []byte // with id and meta set; nil for a deletion
+	deleted bool
 }
 
 // Fault is a misbehaviour for requests whose method and path match.
@@ -178,8 +182,25 @@ func (s *Server) Put(resource []byte) (json.RawMessage, error) {
 	return v.body, err
 }
 
+// Delete deletes typ/id, as a server-side change would: a version that
+// marks it deleted. It reports whether there was a resource to delete.
+func (s *Server) Delete(typ, id string) bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.delete(typ, id)
+}
+
+func (s *Server) delete(typ, id string) bool {
+	hist := s.res[typ][id]
+	if len(hist) == 0 || hist[len(hist)-1].deleted {
+		return false
+	}
+	s.res[typ][id] = append(hist, version{vid: strconv.Itoa(len(hist) + 1), updated: s.tick(), deleted: true})
+	return true
+}
+
 // Current returns the current version of every resource of typ, in the
-// order they were last updated.
+// order they were last updated (deleted resources left out).
 func (s *Server) Current(typ string) []json.RawMessage {
 	s.mu.Lock()
 	defer s.mu.Unlock()
@@ -190,13 +211,16 @@ func (s *Server) Current(typ string) []json.RawMessage {
 	return out
 }
 
-// History returns every version of typ/id, oldest first.
+// History returns every version of typ/id, oldest first, deletions left
+// out.
 func (s *Server) History(typ, id string) []json.RawMessage {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	var out []json.RawMessage
 	for _, v := range s.res[typ][id] {
-		out = append(out, v.body)
+		if !v.deleted {
+			out = append(out, v.body)
+		}
 	}
 	return out
 }
@@ -312,6 +336,9 @@ func (s *Server) handle(r *http.Request, path string, body []byte) answer {
 		return s.read(typ, parts[1], "")
 	case len(parts) == 2 && r.Method == http.MethodPut:
 		return s.update(typ, parts[1], body, r.Header.Get("If-Match"))
+	case len(parts) == 2 && r.Method == http.MethodDelete:
+		s.delete(typ, parts[1])
+		return answer{status: http.StatusNoContent}
 	case len(parts) == 4 && parts[2] == "_history" && r.Method == http.MethodGet:
 		return s.read(typ, parts[1], parts[3])
 	}
@@ -385,6 +412,9 @@ func (s *Server) read(typ, id, vid string) answer {
 		}
 		v = hist[n-1]
 	}
+	if v.deleted {
+		return outcome(http.StatusGone, "deleted", fmt.Sprintf("Resource %s/%s was deleted", typ, id))
+	}
 	return s.resourceAnswer(http.StatusOK, typ, id, v)
 }
 
@@ -456,7 +486,9 @@ func idOf(body []byte) string {
 func (s *Server) sorted(typ string) []version {
 	var out []version
 	for _, hist := range s.res[typ] {
-		out = append(out, hist[len(hist)-1])
+		if v := hist[len(hist)-1]; !v.deleted {
+			out = append(out, v)
+		}
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].updated.Before(out[j].updated) })
 	return out

@@ -74,6 +74,50 @@ func TestCreateReadVReadUpdateWithIfMatch(t *testing.T) {
 	}
 }
 
+// A deleted resource answers 410 Gone to a read, is left out of searches,
+// keeps its earlier versions for vread, and comes back with the next
+// version when it is written again.
+func TestDeleteThenReadSearchAndWriteAgain(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	_, m, err := c.Create(ctx, "Observation", obs("2019-8", "Patient/p1", 44))
+	if err != nil {
+		t.Fatal(err)
+	}
+	req, err := http.NewRequest(http.MethodDelete, s.BaseURL+"/Observation/"+m.ID, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil || resp.StatusCode != http.StatusNoContent {
+		t.Fatalf("DELETE: %v %v", err, resp)
+	}
+	resp.Body.Close()
+	if _, _, err := c.Read(ctx, "Observation", m.ID); !errors.Is(err, client.ErrGone) {
+		t.Fatalf("read after the delete: %v, want 410 Gone", err)
+	}
+	if _, _, err := c.VRead(ctx, "Observation", m.ID, "1"); err != nil {
+		t.Fatalf("vread of the version before the delete: %v", err)
+	}
+	if n := len(s.Current("Observation")); n != 0 {
+		t.Fatalf("%d current Observations after the delete, want none", n)
+	}
+	if s.Delete("Observation", m.ID) {
+		t.Error("a second delete found something to delete")
+	}
+	again, err := s.Put(append([]byte(`{"id":"`+m.ID+`",`), obs("2019-8", "Patient/p1", 46)[1:]...))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(string(again), `"versionId":"3"`) {
+		t.Errorf("written again as %s, want version 3 (after the deletion's version 2)", again)
+	}
+	if _, _, err := c.Read(ctx, "Observation", m.ID); err != nil {
+		t.Errorf("read after it was written again: %v", err)
+	}
+}
+
 func TestConditionalCreateFindsTheExistingResource(t *testing.T) {
 	s := fakefhir.Start(t)
 	c := newClient(t, s, nil)
