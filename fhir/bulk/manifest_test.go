@@ -112,7 +112,8 @@ func FuzzParseManifest(f *testing.F) {
 			t.Fatalf("accepted without a transactionTime")
 		}
 		for _, f := range append(append(m.Output, m.Deleted...), m.Error...) {
-			if !isResourceType(f.Type) || !strings.HasPrefix(f.URL, "http") || f.Count < -1 {
+			// A URL's scheme is case-insensitive (RFC 3986, 3.1).
+			if !isResourceType(f.Type) || !strings.HasPrefix(strings.ToLower(f.URL), "http") || f.Count < -1 {
 				t.Fatalf("accepted file %+v", f)
 			}
 		}
