@@ -8,7 +8,6 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
-	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // Issue 8 rule 3, end to end from FHIR JSON: a blood gas that carries the
@@ -34,14 +33,7 @@ func TestBloodGasCarriesThePatientsTemperatureAsAComponent(t *testing.T) {
 		}
 		col.Add(it)
 	}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	rep, err := col.Finish(derive.DefaultConfig(), enc)
-	if err != nil {
-		t.Fatal(err)
-	}
+	rep := finish(t, col)
 	if len(rep.Results) != 1 || rep.Results[0].Derivation == nil {
 		t.Fatalf("results %+v, want one derivation", rep.Results)
 	}
@@ -96,14 +88,7 @@ func TestBloodGasPanelComponents(t *testing.T) {
 		}
 		col.Add(it)
 	}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	rep, err := col.Finish(derive.DefaultConfig(), enc)
-	if err != nil {
-		t.Fatal(err)
-	}
+	rep := finish(t, col)
 	if len(rep.Results) != 1 || rep.Results[0].Derivation == nil {
 		t.Fatalf("results %+v, want one derivation", rep.Results)
 	}

@@ -45,14 +45,7 @@ func replayed(t *testing.T, lines []string) (derived []string, omitted []string)
 		}
 		col.Add(it)
 	}
-	enc, err := encode.New(encode.DefaultOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	rep, err := col.Finish(derive.DefaultConfig(), enc)
-	if err != nil {
-		t.Fatal(err)
-	}
+	rep := finish(t, col)
 	for _, r := range rep.Results {
 		if r.Derivation != nil {
 			derived = append(derived, fmt.Sprintf("%s %s %g", r.Subject, r.Derivation.Gas.Ref, r.Derivation.Gas.Value))
@@ -198,14 +191,7 @@ func TestRecodedVersionSupersedesWhatWasReadBefore(t *testing.T) {
 					t.Fatal(err)
 				}
 			}
-			enc, err := encode.New(encode.DefaultOptions())
-			if err != nil {
-				t.Fatal(err)
-			}
-			rep, err := col.Finish(derive.DefaultConfig(), enc)
-			if err != nil {
-				t.Fatal(err)
-			}
+			rep := finish(t, col)
 			derived := 0
 			for _, r := range rep.Results {
 				if r.Derivation != nil {
@@ -224,4 +210,18 @@ func TestRecodedVersionSupersedesWhatWasReadBefore(t *testing.T) {
 			}
 		})
 	}
+}
+
+// finish is col.Finish with the default derivation settings and encoder.
+func finish(t *testing.T, col *pipeline.Collector) pipeline.Report {
+	t.Helper()
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	rep, err := col.Finish(derive.DefaultConfig(), enc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return rep
 }
