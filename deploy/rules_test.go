@@ -53,6 +53,7 @@ var exportedMetrics = map[string]bool{
 	"deadspace_store_busy_seconds_total":         true,
 	"deadspace_subscription_gaps_total":          true,
 	"deadspace_catchups_total":                   true,
+	"deadspace_evaluations_total":                true,
 	"deadspace_watch_subscribers":                true,
 	"deadspace_webhook_requests_total":           true,
 	"deadspace_webhook_request_duration_seconds": true,

@@ -53,7 +53,11 @@ type Hooks struct {
 	// tells it, off the evaluation path and at most once per patient per
 	// refresh round ([Engine.EvaluateNow] returns only after it). Together
 	// with LeftOut it is replay's summary.
-	Evaluated   func(subject string, omitted []derive.Omission)
+	Evaluated func(subject string, omitted []derive.Omission)
+	// Evaluation is told of every patient evaluation begun, and whether
+	// the new data it evaluates holds a blood gas (or only device readings
+	// and patient facts, which the device pace holds back).
+	Evaluation  func(bloodGas bool)
 	Emitted     func(code string, status string)
 	Gap         func()
 	CatchUp     func(trigger string)
@@ -73,6 +77,13 @@ type Config struct {
 	// Settle is how long a patient's new data waits before it is derived,
 	// so readings that arrive just after a blood gas are included.
 	Settle time.Duration
+	// DevicePace is the shortest time between two evaluations of one
+	// patient whose new data holds no blood gas (device readings only):
+	// a patient monitored reading by reading is evaluated once for all the
+	// readings of a pace, not once per reading, and a flood of them leaves
+	// the cores to ingest and to blood gases, which are evaluated at once.
+	// Zero evaluates every change as soon as it settled.
+	DevicePace time.Duration
 	// Retention is how long inputs are kept, measured back from now by
 	// their effective time. Results older than Retention minus Freeze are
 	// never re-derived or withdrawn, so pruning cannot rewrite history.
@@ -149,14 +160,27 @@ const DefaultProvenanceTagSystem = "https://deadspace-fhir.github.io/fhir/sid/pr
 // servers allow more, and --fhir-max-transaction-entries raises it.
 const DefaultMaxTransactionEntries = 8
 
+// DefaultDevicePace is the device pace (Config.DevicePace) of deadspace
+// serve: a fall in end-tidal CO2 is warned of at most about a second
+// later than at once, and a patient monitored at one reading a second or
+// faster is evaluated about once a second.
+const DefaultDevicePace = time.Second
+
+// MaxDevicePace is the longest device pace accepted: a longer one would
+// hold back the warnings of a falling end-tidal CO2.
+const MaxDevicePace = time.Minute
+
 // Engine is safe for concurrent use.
 type Engine struct {
-	cfg   Config
-	log   *slog.Logger
-	now   func() time.Time
-	wake  chan struct{} // evaluation wanted
-	flush chan struct{} // outbox has writes
-	catch chan string   // catch-up wanted, with the trigger
+	cfg  Config
+	log  *slog.Logger
+	now  func() time.Time
+	wake chan struct{} // evaluation wanted
+	// wakeDevice: new device readings only, which the evaluation loop
+	// lists at most every tenth of the device pace.
+	wakeDevice chan struct{}
+	flush      chan struct{} // outbox has writes
+	catch      chan string   // catch-up wanted, with the trigger
 
 	// evaluating holds one lock per patient being evaluated: evaluations
 	// of one patient never overlap in this process (the claim on a shared
@@ -211,6 +235,9 @@ func New(cfg Config) (*Engine, error) {
 	if cfg.Settle < 0 {
 		errs = append(errs, fmt.Errorf("engine: settle delay must not be negative, got %v", cfg.Settle))
 	}
+	if cfg.DevicePace < 0 || cfg.DevicePace > MaxDevicePace {
+		errs = append(errs, fmt.Errorf("engine: device pace must be between 0s and %v, got %v", MaxDevicePace, cfg.DevicePace))
+	}
 	if cfg.Retention <= 0 {
 		cfg.Retention = 24 * time.Hour
 	}
@@ -262,7 +289,7 @@ func New(cfg Config) (*Engine, error) {
 	}
 	return &Engine{
 		cfg: cfg, log: cfg.Logger, now: cfg.Now, evaluators: defaultEvaluators,
-		wake: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
+		wake: make(chan struct{}, 1), wakeDevice: make(chan struct{}, 1), flush: make(chan struct{}, 1), catch: make(chan string, 1),
 		pictures: newPictures(),
 	}, nil
 }
@@ -506,9 +533,14 @@ func (e *Engine) held(ctx context.Context, logicals []string) (map[string]bool, 
 // counted as re-filed. A version stored only when it replaces one (a
 // re-coded or deleted resource, Input.OnlyReplaces) is counted by its own
 // reason when it was stored; a re-coded one that had nothing to replace
-// is an Observation this service does not recognise.
+// is an Observation this service does not recognise. Device readings
+// alone wake the evaluator's device listing (wakeDevice).
 func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
+	wake := e.wakeDevice
 	for i, r := range res {
+		if inputs[i].Urgent || inputs[i].OnlyReplaces {
+			wake = e.wake
+		}
 		switch r {
 		case store.PutNewer, store.PutOlder:
 			e.leftOut(derive.ReasonSuperseded)
@@ -529,7 +561,7 @@ func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
 			e.leftOut(derive.ReasonUnrecognised)
 		}
 	}
-	signal(e.wake)
+	signal(wake)
 }
 
 // withdrawal is the stored payload that replaces the copy of an input

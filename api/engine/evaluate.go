@@ -106,6 +106,10 @@ func (e *Engine) loadResult(ctx context.Context, p *EntryPayload) error {
 	return nil
 }
 
+// maxRelistDelay is the longest a device reading of a patient not held
+// back by the device pace waits for the evaluation loop's next listing.
+const maxRelistDelay = 100 * time.Millisecond
+
 // evaluateLoop hands dirty patients to up to evaluators concurrent
 // evaluations. It lists the dirty patients again before each hand-out
 // when anything changed since the last listing (an ingest woke it, an
@@ -129,15 +133,41 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 	routine := make(map[string]bool)
 	// held are patients whose evaluation failed, not retried before then.
 	held := make(map[string]time.Time)
+	// paced holds when each patient's last evaluation began, for the
+	// device pace.
+	paced := make(map[string]time.Time)
 	var queue []store.Dirty
-	relist := true
+	// listNow asks for a listing before the next hand-out; listSoon for
+	// one at most relistEvery after the last. A device reading, or an
+	// evaluation ending, asks for a listing soon: listing every dirty
+	// patient once per reading would cost more than the evaluations it
+	// paces (with the pace, nearly every patient is dirty at any time).
+	// The queue of the last listing keeps being handed out meanwhile; it
+	// leaves out the patients that were being evaluated, so an entry is
+	// at most as old as the listing.
+	listNow, listSoon := true, false
+	relistEvery := min(e.cfg.DevicePace/10, maxRelistDelay)
+	var listed time.Time
 	timer := time.NewTimer(0)
 	defer timer.Stop()
+	soon := time.NewTimer(time.Hour)
+	soon.Stop()
+	defer soon.Stop()
+	soonArmed := false
 	for {
-		if len(running) < evaluators && relist {
+		if listSoon && !listNow {
+			if since := time.Since(listed); since >= relistEvery {
+				listNow = true
+			} else if !soonArmed {
+				soon.Reset(relistEvery - since)
+				soonArmed = true
+			}
+		}
+		if len(running) < evaluators && listNow {
 			var wait time.Duration
-			queue, wait = e.due(ctx, running, held)
-			relist = false
+			queue, wait = e.due(ctx, running, held, paced)
+			listed = time.Now()
+			listNow, listSoon = false, false
 			timer.Reset(wait)
 		}
 		// The queue lists blood gases first, so a routine mark at its head
@@ -148,6 +178,9 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			running[d.Subject] = true
 			if !d.Urgent {
 				routine[d.Subject] = true
+			}
+			if e.cfg.DevicePace > 0 {
+				paced[d.Subject] = time.Now()
 			}
 			go func() {
 				err := e.evaluatePatient(ctx, d)
@@ -171,15 +204,20 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			delete(routine, o.subject)
 			if o.failed {
 				held[o.subject] = e.now().Add(5 * time.Second)
+				listNow = true
 			}
 			// The patient may be dirty again (changes that arrived during
-			// its evaluation), and a blood gas may have arrived since the
-			// listing: list again before the next hand-out.
-			relist = true
+			// its evaluation): list again. A blood gas that arrived since
+			// the listing has asked for a listing now.
+			listSoon = true
 		case <-e.wake:
-			relist = true
+			listNow = true
+		case <-e.wakeDevice:
+			listSoon = true
+		case <-soon.C:
+			soonArmed = false
 		case <-timer.C:
-			relist = true
+			listNow = true
 		}
 	}
 }
@@ -188,7 +226,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 // order (blood gases first), leaving out those being evaluated and those
 // left to the replica that evaluated them last (leftToOwner), and returns
 // how long to wait before the next listing is worth making.
-func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]time.Time) ([]store.Dirty, time.Duration) {
+func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced map[string]time.Time) ([]store.Dirty, time.Duration) {
 	const idle = time.Minute
 	dirty, err := e.cfg.Store.DirtyPatients(ctx)
 	if err != nil {
@@ -210,8 +248,20 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 			delete(held, subject)
 		}
 	}
+	// The pace is kept by the monotonic clock: it spreads work over real
+	// time, whatever clock the engine was given.
+	paceNow := time.Now()
+	for subject, at := range paced {
+		if paceNow.Sub(at) >= e.cfg.DevicePace {
+			delete(paced, subject)
+		}
+	}
 	var due []store.Dirty
 	for _, d := range dirty {
+		if at, ok := paced[d.Subject]; ok && !d.Urgent {
+			wait = min(wait, e.cfg.DevicePace-paceNow.Sub(at))
+			continue
+		}
 		if until, ok := held[d.Subject]; ok {
 			wait = min(wait, until.Sub(now))
 			continue
@@ -290,6 +340,9 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	d, claimed, err := e.claimPatient(ctx, d)
 	if err != nil || !claimed {
 		return err
+	}
+	if e.cfg.Hooks.Evaluation != nil {
+		e.cfg.Hooks.Evaluation(d.Urgent)
 	}
 	err = e.evaluateLocked(ctx, d)
 	if err != nil {

@@ -30,6 +30,9 @@ var (
 	entryStatuses = []string{"final", "amended", "entered-in-error"}
 	// triggers are the reasons the engine searches the server.
 	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "retry", "rest-hook"}
+	// evaluationData are what an evaluation's new data held: a blood gas,
+	// or device readings and patient facts only.
+	evaluationData = []string{"blood-gas", "device"}
 	// outcomes are what happened to one outbox write attempt.
 	outcomes = []string{"acknowledged", "retry", "dead-letter"}
 	// operations are the client.Observer operations.

@@ -87,6 +87,7 @@ type Metrics struct {
 	deadLettered  prometheus.Counter
 	gaps          prometheus.Counter
 	catchUps      *prometheus.CounterVec
+	evaluations   *prometheus.CounterVec
 	watchers      prometheus.Gauge
 	webhookCount  *prometheus.CounterVec
 	webhookDur    prometheus.Histogram
@@ -147,6 +148,8 @@ func New(version string) *Metrics {
 		"Gaps in subscription event numbers: skipped events that did not arrive within the gap grace.")
 	m.catchUps = counterVec("catchups_total",
 		"Catch-up searches started, by trigger.", "trigger")
+	m.evaluations = counterVec("evaluations_total",
+		"Patient evaluations begun, by what their new data held: a blood gas, or device readings and patient facts only (held back by --device-pace).", "data")
 	m.watchers = gauge("watch_subscribers",
 		"Clients currently watching the derivation feed.")
 	m.webhookCount = counterVec("webhook_requests_total",
@@ -176,7 +179,7 @@ func New(version string) *Metrics {
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 		buildInfo,
 		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
-		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
+		m.gaps, m.catchUps, m.evaluations, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
 		statsCollector{m}, commitCollector{m}, m.picture,
 	)
 	m.predeclare()
@@ -206,6 +209,9 @@ func (m *Metrics) predeclare() {
 	}
 	for _, t := range produced(triggers) {
 		m.catchUps.WithLabelValues(t)
+	}
+	for _, d := range evaluationData {
+		m.evaluations.WithLabelValues(d)
 	}
 	for _, op := range produced(operations) {
 		for _, st := range fhirStatuses {
@@ -251,6 +257,13 @@ func (m *Metrics) EngineHooks() engine.Hooks {
 		Gap:        m.gaps.Inc,
 		CatchUp:    func(trigger string) { m.catchUps.WithLabelValues(m.triggers.of(trigger)).Inc() },
 		DeadLetter: m.deadLettered.Inc,
+		Evaluation: func(bloodGas bool) {
+			data := evaluationData[1]
+			if bloodGas {
+				data = evaluationData[0]
+			}
+			m.evaluations.WithLabelValues(data).Inc()
+		},
 		WriteResult: func(outcome string) {
 			m.attempts.WithLabelValues(m.outcomes.of(outcome)).Inc()
 		},

@@ -108,7 +108,7 @@ func TestHandlerServesTextFormat(t *testing.T) {
 		"deadspace_outbox_attempts_total", "deadspace_outbox_writes", "deadspace_outbox_oldest_age_seconds",
 		"deadspace_dead_letters", "deadspace_dead_lettered_total", "deadspace_pending_patients",
 		"deadspace_stats_errors_total", "deadspace_subscription_gaps_total", "deadspace_catchups_total",
-		"deadspace_watch_subscribers", "deadspace_webhook_requests_total",
+		"deadspace_evaluations_total", "deadspace_watch_subscribers", "deadspace_webhook_requests_total",
 		"deadspace_webhook_request_duration_seconds", "deadspace_webhook_requests_in_flight",
 		"go_goroutines", "process_start_time_seconds",
 	} {
@@ -328,6 +328,30 @@ func TestKnownSeriesStartAtZero(t *testing.T) {
 	}
 	if got := testutil.ToFloat64(New("test").leftOut.WithLabelValues(string(derive.ReasonUnpaired))); got != 0 {
 		t.Errorf("a fresh counter reads %v", got)
+	}
+}
+
+// Evaluations are counted by what their new data held, both series from
+// zero at the start.
+func TestEvaluationsByData(t *testing.T) {
+	m := New("test")
+	const metric = "deadspace_evaluations_total"
+	for _, d := range []string{"blood-gas", "device"} {
+		if v, ok := valueOf(t, m, metric, map[string]string{"data": d}); !ok || v != 0 {
+			t.Errorf("%s{data=%q} at the start: %v (present %v), want 0", metric, d, v, ok)
+		}
+	}
+	hooks := m.EngineHooks()
+	hooks.Evaluation(true)
+	hooks.Evaluation(true)
+	hooks.Evaluation(false)
+	for d, want := range map[string]float64{"blood-gas": 2, "device": 1} {
+		if v, _ := valueOf(t, m, metric, map[string]string{"data": d}); v != want {
+			t.Errorf("%s{data=%q} = %v, want %v", metric, d, v, want)
+		}
+	}
+	if n := seriesOf(t, m, metric); n != 2 {
+		t.Errorf("%s has %d series, want 2", metric, n)
 	}
 }
 
@@ -642,10 +666,12 @@ func FuzzLabelsStayBounded(f *testing.F) {
 		h.Emitted(code, status)
 		h.CatchUp(trigger)
 		h.WriteResult(outcome)
+		h.Evaluation(httpCode%2 == 0)
 		m.ClientObserver()(op, httpCode, time.Millisecond)
 		allowed := map[string]set{
 			"mode": m.modes, "resource_type": m.resourceTypes, "reason": m.reasons, "code": m.codes,
 			"trigger": m.triggers, "outcome": m.outcomes, "operation": m.operations,
+			"data": newSet(evaluationData),
 		}
 		fams, err := m.Registry().Gather()
 		if err != nil {

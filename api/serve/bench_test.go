@@ -29,6 +29,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 )
 
@@ -103,6 +104,9 @@ func BenchmarkWebhookToOutbox(b *testing.B) {
 		// The same with the Kubernetes manifests' collector setting (GOGC
 		// 400 beside GOMEMLIMIT), to show what the deployment gains.
 		{name: "goal/patients=500/senders=16/settle=0s/gogc=400", patients: 500, senders: 16, history: 60, notes: 10000, gcPercent: 400},
+		// The goal's load evaluating every reading at once (--device-pace
+		// 0), as the service did before the pace.
+		{name: "goal/patients=500/senders=16/settle=0s/device-pace=0", patients: 500, senders: 16, history: 60, notes: 10000, devicePace: -1},
 		// The goal's load with one blood gas in 5,000 notifications instead
 		// of one in 50: beside the goal case in the same run, it shows what
 		// the blood gases' evaluations, writes and acknowledgements cost.
@@ -120,6 +124,9 @@ type webhookBench struct {
 	settle                            time.Duration
 	// gcPercent, when set, is the collector's GOGC for the run.
 	gcPercent int
+	// devicePace is the service's --device-pace: its default when zero,
+	// none when negative.
+	devicePace time.Duration
 	// gasEvery: every gasEvery-th notification is a blood gas (50 when
 	// zero).
 	gasEvery int
@@ -137,6 +144,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		srv := httptest.NewServer(fake)
 		cfg := testConfig(srv.URL+"/fhir", dir)
 		cfg.Settle = settle
+		cfg.DevicePace = max(0, cmp.Or(c.devicePace, engine.DefaultDevicePace))
 		svc, err := serve.New(cfg, "bench", slog.New(slog.DiscardHandler))
 		if err != nil {
 			b.Fatal(err)
@@ -317,6 +325,9 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		// transaction carried (the metrics operators read).
 		b.ReportMetric((writerAfter.busy-writerBefore.busy)/elapsed.Seconds(), "store-busy")
 		b.ReportMetric(float64(notes)/(writerAfter.transactions-writerBefore.transactions), "notifications/store-transaction")
+		// Patient evaluations begun during the load, per notification: one
+		// per reading without the device pace.
+		b.ReportMetric((writerAfter.evaluations-writerBefore.evaluations)/float64(notes), "evaluations/notification")
 		b.ReportMetric(float64(probe.Microseconds()), "disk-probe-µs")
 		b.ReportMetric(float64(cpuProbe.Microseconds()), "cpu-probe-µs")
 		b.ReportMetric(float64(lat[len(lat)/2].Microseconds())/1000, "p50-ms")
@@ -379,8 +390,9 @@ func (s *rawSender) close() {
 	}
 }
 
-// writerCounts are the service's deadspace_store_* counters.
-type writerCounts struct{ busy, transactions float64 }
+// writerCounts are the service's deadspace_store_* counters and its
+// evaluations.
+type writerCounts struct{ busy, transactions, evaluations float64 }
 
 func storeWriter(b *testing.B, svc *serve.Service) writerCounts {
 	b.Helper()
@@ -395,6 +407,10 @@ func storeWriter(b *testing.B, svc *serve.Service) writerCounts {
 			w.busy = f.GetMetric()[0].GetCounter().GetValue()
 		case "deadspace_store_transactions_total":
 			w.transactions = f.GetMetric()[0].GetCounter().GetValue()
+		case "deadspace_evaluations_total":
+			for _, m := range f.GetMetric() {
+				w.evaluations += m.GetCounter().GetValue()
+			}
 		}
 	}
 	if w.transactions == 0 {

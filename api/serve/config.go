@@ -41,6 +41,7 @@ type Config struct {
 	MaxBodyBytes   int64
 	PollInterval   time.Duration
 	Settle         time.Duration
+	DevicePace     time.Duration
 	Retention      time.Duration
 	Heartbeat      time.Duration
 	GapGrace       time.Duration
@@ -104,6 +105,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	c.Derivation.Register(fs)
 	fs.DurationVar(&c.PollInterval, "poll-interval", 0, "search the FHIR server for changes this often (0: only at start, on gaps and on empty rest-hooks)")
 	fs.DurationVar(&c.Settle, "settle", 30*time.Second, "how long new data waits before it is derived, so late readings are included")
+	fs.DurationVar(&c.DevicePace, "device-pace", engine.DefaultDevicePace, "shortest time between two evaluations of one patient for device readings alone (blood gases are evaluated at once; 0: every reading)")
 	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
 	fs.DurationVar(&c.Heartbeat, "heartbeat-timeout", 0, "catch up by search when no notification arrived for this long (0: off)")
 	fs.DurationVar(&c.GapGrace, "gap-grace", engine.DefaultGapGrace, "how long subscription events a notification skipped over may take to arrive before a catch-up search looks for them (0: the default)")
@@ -321,6 +323,9 @@ func (c *Config) Validate() error {
 	}
 	if c.Settle < 0 {
 		errs = append(errs, fmt.Errorf("--settle must not be negative, got %v", c.Settle))
+	}
+	if c.DevicePace < 0 || c.DevicePace > engine.MaxDevicePace {
+		errs = append(errs, fmt.Errorf("--device-pace must be between 0s and %v, got %v", engine.MaxDevicePace, c.DevicePace))
 	}
 	if c.Retention < 2*time.Hour {
 		errs = append(errs, fmt.Errorf("--retention must be at least 2h, got %v", c.Retention))

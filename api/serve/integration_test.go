@@ -27,6 +27,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/serve"
 	"github.com/deadspace-fhir/deadspace/api/settings"
@@ -79,7 +80,7 @@ func runChild() int {
 func testConfig(base, dir string) serve.Config {
 	return serve.Config{
 		FHIRBase: base, Listen: "127.0.0.1:0", DataDir: dir, WebhookSecret: secret, WebhookHeader: "Authorization",
-		MaxBodyBytes: 4 << 20, Settle: 0, Retention: 24 * time.Hour, LogLevel: "info",
+		MaxBodyBytes: 4 << 20, Settle: 0, DevicePace: engine.DefaultDevicePace, Retention: 24 * time.Hour, LogLevel: "info",
 		GRPCListen: "127.0.0.1:0", MaxTxEntries: 8, MaxConcurrent: 256, StoreLease: 2 * time.Minute,
 		Derivation: settings.Defaults(),
 	}

@@ -146,7 +146,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	opEvents := ui.NewOpEvents(0)
 	e, err := engine.New(engine.Config{
 		Store: s.store, Decoder: decode.New(opts.Decode), Encoder: enc,
-		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, Retention: cfg.Retention,
+		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, DevicePace: cfg.DevicePace, Retention: cfg.Retention,
 		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, GapGrace: cfg.GapGrace, SearchCodes: search, Logger: log,
 		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
 		JobLease: cfg.JobLease, OwnerGrace: cfg.OwnerGrace, Register: s.registerHook(),
