@@ -11,6 +11,11 @@
 // Provenance and software Device: a second run, or a run after serve wrote
 // some of the same values, leaves one of each on the server.
 //
+// The deletions the input lists (an export's deleted files, Bundles of
+// DELETE entries among local files) are applied after the resources are
+// stored, through Engine.Deleted as serve applies them; deleted.go says
+// where in the version order each is placed.
+//
 // The state directory makes a run resumable. The store keeps what was
 // ingested, which patients are still to evaluate and which writes the
 // server has not acknowledged; a run interrupted and started again with the
