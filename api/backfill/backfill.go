@@ -11,6 +11,11 @@
 // Provenance and software Device: a second run, or a run after serve wrote
 // some of the same values, leaves one of each on the server.
 //
+// The deletions the input lists (an export's deleted files, Bundles of
+// DELETE entries among local files) are applied after the resources are
+// stored, through Engine.Deleted as serve applies them; deleted.go says
+// where in the version order each is placed.
+//
 // The state directory makes a run resumable. The store keeps what was
 // ingested, which patients are still to evaluate and which writes the
 // server has not acknowledged; a run interrupted and started again with the
@@ -128,6 +133,9 @@ type Summary struct {
 	Writes      int
 	DeadLetters int
 	Pending     int
+	// Deletions are the resources the input lists as deleted, and what
+	// became of them.
+	Deletions Deletions
 	// TransactionTime of the export: the _since of the next incremental
 	// backfill.
 	TransactionTime time.Time
@@ -355,10 +363,13 @@ func (o Options) exportClient() *client.Client {
 	return o.Client
 }
 
-// readInput runs the export (or takes the local files) and stores every
-// resource through the engine.
+// readInput runs the export (or takes the local files), stores every
+// resource through the engine, and then applies the deletions the input
+// lists (an export's deleted files, Bundles of DELETE entries in local
+// files) through the engine.
 func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *codes.Table, dir string, p *progress, sum *Summary, log *slog.Logger) error {
 	files := opts.Files
+	dels := newDeletions()
 	if opts.Export != nil {
 		p.setPhase("export")
 		req := *opts.Export
@@ -387,7 +398,7 @@ func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *cod
 					log.InfoContext(ctx, "the server asked to wait", "wait", wait)
 				},
 				Manifest: func(m bulk.Manifest) {
-					p.filesTotal.Store(int64(len(m.Output)))
+					p.filesTotal.Store(int64(len(m.Output) + len(m.Deleted)))
 					log.InfoContext(ctx, "export complete", "files", len(m.Output), "error_files", len(m.Error), "deleted_files", len(m.Deleted))
 				},
 				Bytes:    func(n int64) { p.bytes.Add(n) },
@@ -404,15 +415,21 @@ func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *cod
 		defer os.RemoveAll(downloads)
 		sum.TransactionTime = res.Manifest.TransactionTime
 		sum.ExportIssues = res.Issues
-		if len(res.Manifest.Deleted) > 0 {
-			log.WarnContext(ctx, "the export lists deleted resources; backfill does not apply deletions", "files", len(res.Manifest.Deleted))
-		}
 		for _, is := range res.Issues {
 			log.WarnContext(ctx, "the export reported a problem", "severity", is.Severity, "code", is.Code)
 		}
 		files = nil
 		for _, f := range res.Files {
 			files = append(files, f.Path)
+		}
+		p.setPhase("read")
+		for _, f := range res.Deleted {
+			if err := readDeletions(ctx, f.Path, -1, true, dels, sum, log); err != nil {
+				return err
+			}
+			sum.Files++
+			sum.Bytes += f.Bytes
+			sum.Deletions.Files++
 		}
 	} else {
 		var total int64
@@ -423,10 +440,19 @@ func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *cod
 		}
 		p.filesTotal.Store(int64(len(files)))
 		p.bytesTotal.Store(total)
+		p.setPhase("read")
+		// A first pass finds the Bundles of DELETE entries among the
+		// lines, so that the second can note the versions the input
+		// carries of the resources they name.
+		for i, name := range files {
+			if err := readDeletions(ctx, name, i, false, dels, sum, log); err != nil {
+				return err
+			}
+		}
 	}
 	p.setPhase("read")
-	for _, name := range files {
-		if err := ingestFile(ctx, eng, name, opts.BatchSize, opts.Export == nil, p, sum); err != nil {
+	for i, name := range files {
+		if err := ingestFile(ctx, eng, name, i, opts.BatchSize, opts.Export == nil, dels, p, sum); err != nil {
 			return err
 		}
 		sum.Files++
@@ -434,12 +460,20 @@ func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *cod
 			p.files.Add(1)
 		}
 	}
+	if len(dels.list) > 0 {
+		p.setPhase("delete")
+		log.InfoContext(ctx, "applying the deletions the input lists", "deletions", len(dels.list))
+		if err := applyDeletions(ctx, eng, dels, sum.TransactionTime, opts.BatchSize, p, sum); err != nil {
+			return err
+		}
+	}
 	return nil
 }
 
 // ingestFile stores one NDJSON file's resources through the engine in
-// batches.
-func ingestFile(ctx context.Context, eng *engine.Engine, name string, batchSize int, countBytes bool, p *progress, sum *Summary) error {
+// batches, leaving out the lines read as deletions and noting the versions
+// of the resources they name.
+func ingestFile(ctx context.Context, eng *engine.Engine, name string, index, batchSize int, countBytes bool, dels *deletions, p *progress, sum *Summary) error {
 	f, err := os.Open(name)
 	if err != nil {
 		return fmt.Errorf("backfill: %w", err)
@@ -483,12 +517,22 @@ func ingestFile(ctx context.Context, eng *engine.Engine, name string, batchSize 
 			sum.skip(fmt.Sprintf("%s:%d: %v", filepath.Base(name), n, tooLong))
 			return nil
 		}
+		if dels.lines[[2]int{index, n}] {
+			return nil
+		}
 		var head struct {
 			ResourceType string `json:"resourceType"`
+			ID           string `json:"id"`
+			Meta         struct {
+				LastUpdated string `json:"lastUpdated"`
+			} `json:"meta"`
 		}
 		if err := json.Unmarshal(line, &head); err != nil || head.ResourceType == "" {
 			sum.skip(fmt.Sprintf("%s:%d: not a FHIR resource", filepath.Base(name), n))
 			return nil
+		}
+		if dels.wanted(head.ResourceType) {
+			dels.carries(head.ResourceType+"/"+head.ID, head.Meta.LastUpdated)
 		}
 		sum.Resources[head.ResourceType]++
 		batch = append(batch, append(json.RawMessage(nil), line...))
@@ -604,6 +648,14 @@ func WriteSummary(w io.Writer, s Summary) error {
 		fmt.Fprintf(&b, "read %d files, %s (%s); %d used, %d not needed, %d lines skipped\n",
 			s.Files, humanBytes(s.Bytes), strings.Join(parts, ", "), s.Accepted, s.Ignored, s.SkippedLines)
 	}
+	if d := s.Deletions; d.Files > 0 || d.Listed > 0 {
+		from := "in Bundles of DELETE entries"
+		if d.Files > 0 {
+			from = fmt.Sprintf("in %d deleted %s of the export", d.Files, plural(d.Files, "file", "files"))
+		}
+		fmt.Fprintf(&b, "deleted: %d listed %s; %d applied to what was held, %d older than a version read (kept), %d never held (nothing to do)\n",
+			d.Listed, from, d.Applied, d.Older, d.NotHeld)
+	}
 	fmt.Fprintf(&b, "derived: %d patients evaluated; %d new values, %d revised, %d withdrawn\n",
 		s.Patients, s.Derived["final"], s.Derived["amended"], s.Derived["entered-in-error"])
 	if s.DryRun {
@@ -625,6 +677,13 @@ func WriteSummary(w io.Writer, s Summary) error {
 	}
 	_, err := io.WriteString(w, b.String())
 	return err
+}
+
+func plural(n int, one, many string) string {
+	if n == 1 {
+		return one
+	}
+	return many
 }
 
 func humanBytes(n int64) string {

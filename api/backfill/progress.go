@@ -27,6 +27,7 @@ type progress struct {
 	files, filesTotal   atomic.Int64
 	bytes, bytesTotal   atomic.Int64
 	resources           atomic.Int64
+	deletions           atomic.Int64
 	patients            atomic.Int64
 	patientsTotal       atomic.Int64
 	writes, writesTotal atomic.Int64
@@ -58,6 +59,8 @@ func (p *progress) counter(phase string) int64 {
 		return p.bytes.Load()
 	case "read":
 		return p.resources.Load()
+	case "delete":
+		return p.deletions.Load()
 	case "derive":
 		return p.patients.Load()
 	case "write":
@@ -103,7 +106,7 @@ type snapshot struct {
 	phase, export             string
 	files, filesTotal         int64
 	bytes, bytesTotal         int64
-	resources                 int64
+	resources, deletions      int64
 	patients, patientsTotal   int64
 	writes, writesTotal, dead int64
 	rate                      float64 // of the phase's counter, per second
@@ -114,7 +117,7 @@ func (p *progress) snapshot(ctx context.Context) snapshot {
 	s := snapshot{
 		phase: p.phase.Load(), export: p.export.Load(),
 		files: p.files.Load(), filesTotal: p.filesTotal.Load(),
-		bytes: p.bytes.Load(), bytesTotal: p.bytesTotal.Load(), resources: p.resources.Load(),
+		bytes: p.bytes.Load(), bytesTotal: p.bytesTotal.Load(), resources: p.resources.Load(), deletions: p.deletions.Load(),
 		patients: p.patients.Load(), patientsTotal: p.patientsTotal.Load(),
 		writes: p.writes.Load(), writesTotal: p.writesTotal.Load(), dead: p.dead.Load(),
 	}
@@ -159,7 +162,7 @@ func (p *progress) show(ctx context.Context, log *slog.Logger) {
 	if !p.terminal {
 		log.InfoContext(ctx, "backfill progress", "phase", s.phase, "export", s.export,
 			"files", s.files, "files_total", s.filesTotal, "bytes", s.bytes,
-			"resources", s.resources, "patients", s.patients, "patients_total", s.patientsTotal,
+			"resources", s.resources, "deletions", s.deletions, "patients", s.patients, "patients_total", s.patientsTotal,
 			"writes_acknowledged", s.writes, "writes_total", s.writesTotal, "dead_letters", s.dead,
 			"rate_per_second", fmt.Sprintf("%.1f", s.rate), "time_left", s.left.Round(time.Second).String())
 		return
@@ -189,6 +192,9 @@ func (s snapshot) line() string {
 	if s.resources > 0 {
 		parts = append(parts, fmt.Sprintf("%d resources", s.resources))
 	}
+	if s.deletions > 0 {
+		parts = append(parts, fmt.Sprintf("%d deletions", s.deletions))
+	}
 	if s.patientsTotal > 0 {
 		parts = append(parts, fmt.Sprintf("patients %d/%d", s.patients, s.patientsTotal))
 	}
@@ -198,7 +204,7 @@ func (s snapshot) line() string {
 	if s.dead > 0 {
 		parts = append(parts, fmt.Sprintf("%d refused", s.dead))
 	}
-	unit := map[string]string{"export": "B/s", "read": "resources/s", "derive": "patients/s", "write": "writes/s"}[s.phase]
+	unit := map[string]string{"export": "B/s", "read": "resources/s", "delete": "deletions/s", "derive": "patients/s", "write": "writes/s"}[s.phase]
 	if unit != "" && s.rate > 0 {
 		parts = append(parts, fmt.Sprintf("%.1f %s", s.rate, unit))
 	}

@@ -22,7 +22,8 @@ func TestProgressDisplay(t *testing.T) {
 	}{
 		{"terminal while deriving", true, "derive", []string{"\rderive", "files 2/4", "1.5 KiB", "patients 3/5", "patients/s", "left"}, []string{"msg="}},
 		{"terminal while writing", true, "write", []string{"\rwrite", "writes 7/10 acknowledged", "writes/s"}, nil},
-		{"log lines when not a terminal", false, "write", []string{"msg=\"backfill progress\"", "phase=write", "writes_acknowledged=7", "writes_total=10", "patients=1", "time_left="}, []string{"\r"}},
+		{"terminal while applying deletions", true, "delete", []string{"\rdelete", "4 deletions", "deletions/s"}, nil},
+		{"log lines when not a terminal", false, "write", []string{"msg=\"backfill progress\"", "phase=write", "writes_acknowledged=7", "writes_total=10", "patients=1", "deletions=4", "time_left="}, []string{"\r"}},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -37,6 +38,7 @@ func TestProgressDisplay(t *testing.T) {
 			p.setPhase(tc.phase)
 			p.phaseStart.Store(time.Now().Add(-2 * time.Second).UnixNano())
 			p.writes.Store(7)
+			p.deletions.Store(4)
 			p.show(context.Background(), slog.New(slog.NewTextHandler(&logs, nil)))
 			got := out.String() + logs.String()
 			for _, w := range tc.want {

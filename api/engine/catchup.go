@@ -416,7 +416,7 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 		}
 	}
 	if len(gone) > 0 {
-		if err := e.Deleted(ctx, gone); err != nil {
+		if _, err := e.Deleted(ctx, gone); err != nil {
 			return Receipt{}, err
 		}
 	}
@@ -443,6 +443,21 @@ type Deletion struct {
 	How string
 }
 
+// DeletionReceipt says what Deleted did with each deletion it was given.
+type DeletionReceipt struct {
+	// Applied: the deletion is now the latest version of an Observation
+	// the store holds (values derived from it are withdrawn when its
+	// patient is evaluated), or already was.
+	Applied int
+	// Older: the store holds a newer version (the resource was written
+	// again after it was deleted), which stands.
+	Older int
+	// NotHeld: an Observation the store never held or no longer holds,
+	// any other resource type, or a reference that names no resource:
+	// nothing to do.
+	NotHeld int
+}
+
 // Deleted applies deletions: each Observation the store holds gets a
 // version that withdraws it (reason deleted) under the patient its latest
 // version names, last updated when it was deleted, or now, or just after
@@ -450,22 +465,25 @@ type Deletion struct {
 // version (the resource written again) still wins; an older one arriving
 // late is refused. An Observation the store never held, or no longer
 // holds, and any Patient, are left as they are. It returns after the
-// store has made the withdrawals durable.
-func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) error {
+// store has made the withdrawals durable, with what became of each.
+func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) (DeletionReceipt, error) {
 	now := e.now()
+	var rec DeletionReceipt
 	var inputs []store.Input
 	for _, d := range deletions {
 		typ, id, ok := notify.RelativeRef(d.Ref, "")
 		if !ok || typ != "Observation" {
+			rec.NotHeld++
 			continue
 		}
 		logical := typ + "/" + id
 		owner, err := e.cfg.Store.Owner(ctx, logical)
 		if errors.Is(err, store.ErrNotFound) {
+			rec.NotHeld++
 			continue
 		}
 		if err != nil {
-			return fmt.Errorf("engine: deletion: %w", err)
+			return DeletionReceipt{}, fmt.Errorf("engine: deletion: %w", err)
 		}
 		at := d.At
 		if at.IsZero() {
@@ -474,7 +492,7 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) error {
 			switch {
 			case errors.Is(err, store.ErrNotFound):
 			case err != nil:
-				return fmt.Errorf("engine: deletion: %w", err)
+				return DeletionReceipt{}, fmt.Errorf("engine: deletion: %w", err)
 			case !at.After(held.LastUpdated):
 				at = held.LastUpdated.Add(time.Nanosecond)
 			}
@@ -485,20 +503,30 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) error {
 			Omission: derive.Omission{Ref: logical, Reason: derive.ReasonDeleted, Detail: "deleted on the server: " + d.How},
 		}, now)
 		if err != nil {
-			return err
+			return DeletionReceipt{}, err
 		}
 		in.Inert, in.OnlyReplaces = true, true
 		inputs = append(inputs, in)
 	}
 	if len(inputs) == 0 {
-		return nil
+		return rec, nil
 	}
 	res, err := e.cfg.Store.PutInputs(ctx, inputs, now)
 	if err != nil {
-		return fmt.Errorf("engine: deletion: %w", err)
+		return DeletionReceipt{}, fmt.Errorf("engine: deletion: %w", err)
 	}
 	e.stored(inputs, res)
-	return nil
+	for _, r := range res {
+		switch r {
+		case store.PutOlder:
+			rec.Older++
+		case store.PutSkipped:
+			rec.NotHeld++
+		default:
+			rec.Applied++
+		}
+	}
+	return rec, nil
 }
 
 // fetchPatient reads a patient's demographics from the server when the

@@ -3,6 +3,7 @@ package engine_test
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"net/http"
 	"testing"
 	"time"
@@ -44,13 +45,13 @@ func TestDeletedObservationIsWithdrawn(t *testing.T) {
 			return err
 		}, false},
 		{"Bundle DELETE entry, no time", func(t *testing.T, eng *engine.Engine, f *fakefhir.Server) error {
-			return eng.Deleted(context.Background(), []engine.Deletion{{Ref: "Observation/gasdel"}})
+			return deletedOnce(eng, engine.Deletion{Ref: "Observation/gasdel"}, engine.DeletionReceipt{Applied: 1})
 		}, false},
 		{"Bundle DELETE entry after the version held", func(t *testing.T, eng *engine.Engine, f *fakefhir.Server) error {
-			return eng.Deleted(context.Background(), []engine.Deletion{{Ref: "https://ehr.example/fhir/Observation/gasdel", At: gasUpdated.Add(time.Minute)}})
+			return deletedOnce(eng, engine.Deletion{Ref: "https://ehr.example/fhir/Observation/gasdel", At: gasUpdated.Add(time.Minute)}, engine.DeletionReceipt{Applied: 1})
 		}, false},
 		{"Bundle DELETE entry before the version held", func(t *testing.T, eng *engine.Engine, f *fakefhir.Server) error {
-			return eng.Deleted(context.Background(), []engine.Deletion{{Ref: "Observation/gasdel", At: gasUpdated.Add(-time.Minute)}})
+			return deletedOnce(eng, engine.Deletion{Ref: "Observation/gasdel", At: gasUpdated.Add(-time.Minute)}, engine.DeletionReceipt{Older: 1})
 		}, true},
 		{"deleted, then written again", func(t *testing.T, eng *engine.Engine, f *fakefhir.Server) error {
 			f.Delete("Observation", "gasdel")
@@ -113,8 +114,12 @@ func TestDeletedObservationIsWithdrawn(t *testing.T) {
 		if _, err := eng.Fetch(context.Background(), []string{"Observation/never", "Patient/never"}); err != nil {
 			t.Fatalf("Fetch of resources the server and the engine never had: %v, want none", err)
 		}
-		if err := eng.Deleted(context.Background(), []engine.Deletion{{Ref: "Observation/never"}}); err != nil {
+		rec, err := eng.Deleted(context.Background(), []engine.Deletion{{Ref: "Observation/never"}, {Ref: "Patient/never"}, {Ref: "Observation?identifier=x"}})
+		if err != nil {
 			t.Fatal(err)
+		}
+		if want := (engine.DeletionReceipt{NotHeld: 3}); rec != want {
+			t.Errorf("receipt %+v, want %+v", rec, want)
 		}
 		if ds, err := st.DirtyPatients(context.Background()); err != nil || len(ds) != 0 {
 			t.Errorf("dirty patients %v, %v; want none", ds, err)
@@ -123,4 +128,17 @@ func TestDeletedObservationIsWithdrawn(t *testing.T) {
 			t.Error("an Observation never held was stored")
 		}
 	})
+}
+
+// deletedOnce applies one deletion and checks what the engine says became
+// of it.
+func deletedOnce(eng *engine.Engine, d engine.Deletion, want engine.DeletionReceipt) error {
+	rec, err := eng.Deleted(context.Background(), []engine.Deletion{d})
+	if err != nil {
+		return err
+	}
+	if rec != want {
+		return fmt.Errorf("receipt %+v, want %+v", rec, want)
+	}
+	return nil
 }

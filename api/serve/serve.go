@@ -531,7 +531,8 @@ func (k sink) Deleted(ctx context.Context, src webhook.Source, deleted []webhook
 	for i, d := range deleted {
 		ds[i] = engine.Deletion{Ref: d.Ref, At: d.At, How: "a Bundle sent to the webhook (" + src.Mode + ") has a DELETE entry for it"}
 	}
-	return invalid(k.e.Deleted(ctx, ds))
+	_, err := k.e.Deleted(ctx, ds)
+	return invalid(err)
 }
 
 func receipt(r engine.Receipt) webhook.Receipt {

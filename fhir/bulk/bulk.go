@@ -526,6 +526,9 @@ type Result struct {
 	// files first (so patient facts are stored before readings), then in
 	// manifest order.
 	Files []LocalFile
+	// Deleted are the downloaded deleted files (only with _since): NDJSON
+	// of Bundles naming deleted resources, read with [ParseDeletions].
+	Deleted []LocalFile
 	// Issues are the OperationOutcome issues of the manifest's error files
 	// (a partial success).
 	Issues []Issue
@@ -533,8 +536,8 @@ type Result struct {
 }
 
 // Export runs a whole export: kick-off, polling, and download of the
-// output files whose type is in want (all when want is empty) and of the
-// error files. The job is deleted when done, and also when ctx ends or a
+// output files whose type is in want (all when want is empty), of the
+// deleted files and of the error files. The job is deleted when done, and also when ctx ends or a
 // step fails after the kick-off, so the server does not keep working for a
 // client that left (the DELETE gets its own short deadline).
 func (x *Exporter) Export(ctx context.Context, r Request, want []string) (res Result, err error) {
@@ -589,6 +592,14 @@ func (x *Exporter) Export(ctx context.Context, r Request, want []string) (res Re
 			return Result{}, err
 		}
 		res.Files = append(res.Files, lf)
+		res.Bytes += lf.Bytes
+	}
+	for i, f := range m.Deleted {
+		lf, err := x.Download(ctx, m, f, filepath.Join(x.dir, fmt.Sprintf("deleted-%04d.ndjson", i+1)))
+		if err != nil {
+			return Result{}, err
+		}
+		res.Deleted = append(res.Deleted, lf)
 		res.Bytes += lf.Bytes
 	}
 	for i, f := range m.Error {

@@ -245,6 +245,49 @@ func TestExport(t *testing.T) {
 			wantText: "HTTP 401",
 		},
 		{
+			name: "with _since, the deleted file is downloaded and its lines read",
+			opts: bulkfake.Options{Resources: resources(), Token: token, Deleted: []bulkfake.Deletion{
+				{Ref: "Observation/o9"},
+				{Ref: "Observation/o8", At: time.Date(2026, 3, 15, 1, 0, 0, 0, time.UTC), Stamp: true},
+				{Ref: "Observation/o7", At: time.Date(2026, 3, 13, 1, 0, 0, 0, time.UTC)}, // before _since
+			}},
+			req: bulk.Request{Level: bulk.System, Types: []string{"Observation"}, Since: time.Date(2026, 3, 14, 0, 0, 0, 0, time.UTC)},
+			check: func(t *testing.T, srv *bulkfake.Server, res bulk.Result, rec *recorder, ev *events) {
+				if len(res.Manifest.Deleted) != 1 || len(res.Deleted) != 1 || res.Deleted[0].Type != "Bundle" {
+					t.Fatalf("deleted files: manifest %+v, downloaded %+v", res.Manifest.Deleted, res.Deleted)
+				}
+				f, err := os.Open(res.Deleted[0].Path)
+				if err != nil {
+					t.Fatal(err)
+				}
+				defer f.Close()
+				var got []bulk.Deletion
+				if err := bulk.EachLine(f, func(_ int, line []byte, _ error) error {
+					ds, err := bulk.ParseDeletions(line)
+					got = append(got, ds...)
+					return err
+				}); err != nil {
+					t.Fatal(err)
+				}
+				if len(got) != 2 || got[0].Ref() != "Observation/o9" || !got[0].At.IsZero() || got[1].Ref() != "Observation/o8" || got[1].At.IsZero() {
+					t.Errorf("deletions %+v", got)
+				}
+				if ev.files != 2 {
+					t.Errorf("files reported done %d, want 2 (output and deleted)", ev.files)
+				}
+			},
+		},
+		{
+			name: "without _since there is no deleted file",
+			opts: bulkfake.Options{Resources: resources(), Token: token, Deleted: []bulkfake.Deletion{{Ref: "Observation/o9"}}},
+			req:  request,
+			check: func(t *testing.T, srv *bulkfake.Server, res bulk.Result, rec *recorder, ev *events) {
+				if len(res.Manifest.Deleted) != 0 || len(res.Deleted) != 0 {
+					t.Errorf("deleted files %+v", res.Deleted)
+				}
+			},
+		},
+		{
 			name: "error file issues are returned",
 			opts: bulkfake.Options{Resources: resources(), Token: token, ErrorFile: "12 resources could not be read"},
 			req:  request,

@@ -23,7 +23,8 @@ type Manifest struct {
 	RequiresAccessToken bool
 	Output              []File
 	// Deleted lists files of transaction Bundles naming deleted resources
-	// (only with _since); this client counts them and does not apply them.
+	// (only with _since); Export downloads them and ParseDeletions reads
+	// their lines.
 	Deleted []File
 	// Error lists NDJSON files of OperationOutcomes: a partial success.
 	Error []File

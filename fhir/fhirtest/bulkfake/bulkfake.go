@@ -7,7 +7,8 @@
 // report: a 429 on kick-off or on a poll, an expired file URL, a job that
 // fails with an OperationOutcome, a refused _typeFilter. It serves the
 // resources it is given, filtered by _type, _since and (unless refused) a
-// _typeFilter of Observation?code=... queries.
+// _typeFilter of Observation?code=... queries, and with _since a deleted
+// file naming the resources it was told were deleted since.
 //
 // It is for tests only: nothing shipped may import it.
 package bulkfake
@@ -59,10 +60,32 @@ type Options struct {
 	RefuseTypeFilter bool
 	// ErrorFile adds an error file with one OperationOutcome of this text.
 	ErrorFile string
+	// Deleted are resources deleted on the server. An export with _since
+	// lists, in one deleted file, those of the exported types deleted after
+	// it (or at an unknown time), each as a Bundle of type transaction
+	// with one DELETE entry, as the IG shows it; without _since there is no
+	// deleted file.
+	Deleted []Deletion
+	// DeletedLines are written to the deleted file as they are, after the
+	// Deleted ones (an export with _since only): lines a server may get
+	// wrong.
+	DeletedLines []string
 	// TransactionTime is the manifest's instant (default: now).
 	TransactionTime time.Time
 	// Hold, when set, keeps every job in progress until it is closed.
 	Hold chan struct{}
+}
+
+// Deletion is a resource deleted on the server.
+type Deletion struct {
+	// Ref is "Type/id".
+	Ref string
+	// At is when it was deleted: zero for an unknown time (listed by
+	// every export with _since).
+	At time.Time
+	// Stamp puts At in the entry as response.lastModified; the IG's
+	// example entry carries only the request.
+	Stamp bool
 }
 
 // Request is one request the endpoint received.
@@ -295,6 +318,34 @@ func (s *Server) kickOff(w http.ResponseWriter, r *http.Request) {
 			output = append(output, map[string]any{"type": t, "url": s.srv.URL + "/files/" + id + "/" + name, "count": len(chunk)})
 		}
 	}
+	deletedFiles := []map[string]any{}
+	if !since.IsZero() {
+		var b strings.Builder
+		n := 0
+		for _, d := range s.opts.Deleted {
+			typ, _, _ := strings.Cut(d.Ref, "/")
+			if (len(types) > 0 && !types[typ]) || (!d.At.IsZero() && !d.At.After(since)) {
+				continue
+			}
+			entry := map[string]any{"request": map[string]any{"method": "DELETE", "url": d.Ref}}
+			if d.Stamp {
+				entry["response"] = map[string]any{"status": "204", "lastModified": d.At.UTC().Format(time.RFC3339Nano)}
+			}
+			line, _ := json.Marshal(map[string]any{"resourceType": "Bundle", "type": "transaction", "entry": []any{entry}})
+			b.Write(line)
+			b.WriteByte('\n')
+			n++
+		}
+		for _, l := range s.opts.DeletedLines {
+			b.WriteString(l)
+			b.WriteByte('\n')
+			n++
+		}
+		if n > 0 {
+			j.files["deleted.ndjson"] = []byte(b.String())
+			deletedFiles = append(deletedFiles, map[string]any{"type": "Bundle", "url": s.srv.URL + "/files/" + id + "/deleted.ndjson", "count": n})
+		}
+	}
 	errorFiles := []map[string]any{}
 	if s.opts.ErrorFile != "" {
 		b, _ := json.Marshal(map[string]any{"resourceType": "OperationOutcome", "issue": []any{map[string]any{"severity": "warning", "code": "processing", "diagnostics": s.opts.ErrorFile}}})
@@ -310,7 +361,7 @@ func (s *Server) kickOff(w http.ResponseWriter, r *http.Request) {
 	}
 	j.manifest, _ = json.Marshal(map[string]any{
 		"transactionTime": tt.Format(time.RFC3339), "request": j.request,
-		"requiresAccessToken": s.opts.RequiresAccessToken, "output": output, "error": errorFiles,
+		"requiresAccessToken": s.opts.RequiresAccessToken, "output": output, "deleted": deletedFiles, "error": errorFiles,
 		"extension": map[string]any{"https://deadspace.invalid/test": true},
 	})
 	w.Header().Set("Content-Location", s.srv.URL+"/jobs/"+id)
