@@ -1,0 +1,191 @@
+package pipeline_test
+
+import (
+	"encoding/json"
+	"fmt"
+	"math"
+	"slices"
+	"strings"
+	"testing"
+
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
+	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/decode"
+)
+
+// The tests in this file feed invented FHIR JSON through the decoder and
+// the collector, as replay and the live service do, and check the values
+// derived, so that they hold whatever step a rule is applied in.
+
+const (
+	loinc = "http://loinc.org"
+	mdc   = "urn:iso:std:iso:11073:10101"
+	ucum  = "http://unitsofmeasure.org"
+)
+
+// qty is a UCUM valueQuantity.
+func qty(v float64, code string) map[string]any {
+	return map[string]any{"value": v, "unit": code, "system": ucum, "code": code}
+}
+
+// shapeObs is one Observation as a JSON object, before its line is made.
+func shapeObs(id, system, code string, at string, q map[string]any) map[string]any {
+	o := map[string]any{
+		"resourceType": "Observation", "id": id, "meta": map[string]any{"versionId": "1"}, "status": "final",
+		"code":              map[string]any{"coding": []any{map[string]any{"system": system, "code": code}}},
+		"subject":           map[string]any{"reference": "Patient/p1"},
+		"effectiveDateTime": at,
+	}
+	if q != nil {
+		o["valueQuantity"] = q
+	}
+	return o
+}
+
+// component is one Observation.component with a Quantity.
+func component(system, code string, q map[string]any) map[string]any {
+	return map[string]any{"code": map[string]any{"coding": []any{map[string]any{"system": system, "code": code}}}, "valueQuantity": q}
+}
+
+// minuteSeries is one reading a minute from 10:10 to 10:20, around a
+// blood gas sampled at 10:15.
+func minuteSeries(prefix, system, code string, q map[string]any) []map[string]any {
+	var out []map[string]any
+	for m := 10; m <= 20; m++ {
+		out = append(out, shapeObs(fmt.Sprintf("%s-%d", prefix, m), system, code, fmt.Sprintf("2025-03-01T10:%02d:00Z", m), q))
+	}
+	return out
+}
+
+// male50 is a 50-year-old man, 175 cm tall (height charted the day before).
+func male50() []map[string]any {
+	return []map[string]any{
+		{"resourceType": "Patient", "id": "p1", "meta": map[string]any{"versionId": "1"}, "gender": "male", "birthDate": "1975-01-01"},
+		shapeObs("height-1", loinc, "8302-2", "2025-02-28T10:00:00Z", qty(175, "cm")),
+	}
+}
+
+// ventilator is EtCO2 35 mm[Hg], VT 500 mL, RR 14 /min, expired VE 7 L/min
+// and VCO2 200 mL/min, every minute around 10:15.
+func ventilator() []map[string]any {
+	return slices.Concat(
+		minuteSeries("et", loinc, "19891-1", qty(35, "mm[Hg]")),
+		minuteSeries("vt", loinc, "76222-9", qty(500, "mL")),
+		minuteSeries("rr", loinc, "9279-1", qty(14, "/min")),
+		minuteSeries("ve", loinc, "76008-2", qty(7, "L/min")),
+		minuteSeries("vco2", loinc, "60825-7", qty(200, "mL/min")),
+	)
+}
+
+// replayShapes decodes and collects every resource and derives.
+func replayShapes(t *testing.T, resources []map[string]any) pipeline.Report {
+	t.Helper()
+	dec := decode.New(decode.Options{})
+	col := pipeline.NewCollector()
+	for _, r := range resources {
+		line, err := json.Marshal(r)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if _, err := col.AddLine(dec, line); err != nil {
+			t.Fatalf("decode %s: %v", line, err)
+		}
+	}
+	return finish(t, col)
+}
+
+// onlyDerivation returns the one blood gas derivation of rep.
+func onlyDerivation(t *testing.T, rep pipeline.Report) *derive.Derivation {
+	t.Helper()
+	var ds []*derive.Derivation
+	for _, r := range rep.Results {
+		if r.Derivation != nil {
+			ds = append(ds, r.Derivation)
+		}
+	}
+	if len(ds) != 1 {
+		var why []derive.Omission
+		for _, o := range rep.Inputs {
+			if o.Reason != derive.ReasonUnpaired {
+				why = append(why, o)
+			}
+		}
+		t.Fatalf("%d derivations, want 1; inputs left out other than unpaired: %+v", len(ds), why)
+	}
+	return ds[0]
+}
+
+func derivedValue(d *derive.Derivation, c derive.Code) (derive.Value, bool) {
+	for _, v := range d.Values {
+		if v.Code == c {
+			return v, true
+		}
+	}
+	return derive.Value{}, false
+}
+
+func noteWith(v derive.Value, words ...string) bool {
+	return slices.ContainsFunc(v.Notes, func(n string) bool {
+		n = strings.ToLower(n)
+		for _, w := range words {
+			if strings.Contains(n, w) {
+				return true
+			}
+		}
+		return false
+	})
+}
+
+// A FHIR reference may be absolute (FHIR R4 references.html: "a literal
+// reference ... an absolute URL"), and the decoder accepts a subject
+// written so (package decode, rule 6). A patient whose Observations all
+// name it by an absolute URL must get derived values like any other; the
+// blood gas must not be left out as resource-malformed because the
+// encoder only takes "Patient/{id}". The expected values are the ones this
+// input gives with relative references: PĒCO2 = 0.863 × 200 / 7 = 24.66
+// mm[Hg] and Enghoff VD/VT = (40 − 24.66)/40 = 0.384 (REFERENCE E3/E2,
+// Anderson & Breen 2000; own arithmetic as in W3).
+func TestAbsoluteSubjectReferencesStillDerive(t *testing.T) {
+	t.Parallel()
+	cases := []struct {
+		name    string
+		subject string
+	}{
+		{"relative reference, as control", "Patient/p1"},
+		{"absolute https reference of the export's server", "https://ehr.example/fhir/Patient/p1"},
+		{"absolute versioned reference", "https://ehr.example/fhir/Patient/p1/_history/3"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			rs := slices.Concat(
+				[]map[string]any{shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))},
+				ventilator())
+			for _, r := range rs {
+				r["subject"] = map[string]any{"reference": tc.subject}
+			}
+			rep := replayShapes(t, rs)
+			for _, o := range rep.Inputs {
+				if o.Reason == derive.ReasonMalformed {
+					t.Errorf("input left out as malformed: %+v", o)
+				}
+			}
+			d := onlyDerivation(t, rep)
+			phys, ok := derivedValue(d, derive.CodePhysiologic)
+			want := (40 - 0.863*200/7) / 40
+			if !ok || math.Abs(phys.Value-want) > 1e-9 {
+				t.Errorf("physiologic VD/VT %+v (emitted %v), want %.4f", phys, ok, want)
+			}
+			var bundles int
+			for _, r := range rep.Results {
+				if r.Derivation != nil {
+					bundles += len(r.Bundle.Observations)
+				}
+			}
+			if bundles == 0 {
+				t.Errorf("no derived Observation written for the blood gas")
+			}
+		})
+	}
+}
+
