@@ -189,3 +189,52 @@ func TestAbsoluteSubjectReferencesStillDerive(t *testing.T) {
 	}
 }
 
+// README rule 3: "a temperature-adjusted PaCO2 reported for the same sample
+// (LOINC 32771-8, within a minute) is preferred" to adjusting the 37 °C
+// value by formula. An analyser that reports both values on one resource
+// (the arterial blood gas panel 24336-0 with components 2019-8 and
+// 32771-8, or a 2019-8 Observation with a 32771-8 component) reports the
+// same pair, so the value at the patient's temperature must be used: the
+// gradient compares like with like in a cooled patient (REFERENCE 1.6:
+// "Analysers that are told the patient's temperature report the adjusted
+// value as well (LOINC 32771-8)"). Invented numbers: 40 mm[Hg] at 37 °C,
+// 33.2 reported at the patient's temperature, EtCO2 30.
+func TestTemperatureAdjustedPaCO2OnTheSameResourceIsPreferred(t *testing.T) {
+	t.Parallel()
+	panel := shapeObs("abg-panel-1", loinc, "24336-0", "2025-03-01T10:15:00Z", nil)
+	panel["component"] = []any{
+		component(loinc, "2019-8", qty(40, "mm[Hg]")),
+		component(loinc, "32771-8", qty(33.2, "mm[Hg]")),
+	}
+	lone := shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))
+	lone["component"] = []any{component(loinc, "32771-8", qty(33.2, "mm[Hg]"))}
+	panelWithTemp := shapeObs("abg-panel-2", loinc, "24336-0", "2025-03-01T10:15:00Z", nil)
+	panelWithTemp["component"] = []any{
+		component(loinc, "2019-8", qty(40, "mm[Hg]")),
+		component(loinc, "32771-8", qty(33.2, "mm[Hg]")),
+		component(loinc, "8310-5", qty(33, "Cel")),
+	}
+	cases := []struct {
+		name string
+		gas  map[string]any
+	}{
+		{"cooled patient, panel with the 37 °C and the adjusted PCO2", panel},
+		{"cooled patient, lone PaCO2 carrying the adjusted value as a component", lone},
+		{"cooled patient, panel with both values and the temperature entered", panelWithTemp},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			rep := replayShapes(t, slices.Concat([]map[string]any{tc.gas},
+				minuteSeries("et", loinc, "19891-1", qty(30, "mm[Hg]"))))
+			d := onlyDerivation(t, rep)
+			if math.Abs(d.PaCO2-33.2) > 1e-9 {
+				t.Errorf("PaCO2 used %v, want the reported value at the patient's temperature, 33.2", d.PaCO2)
+			}
+			if g, ok := derivedValue(d, derive.CodeGradient); !ok || math.Abs(g.Value-3.2) > 1e-9 {
+				t.Errorf("gradient %+v, want 33.2 − 30 = 3.2 mm[Hg]", g)
+			}
+		})
+	}
+}
+
