@@ -238,3 +238,46 @@ func TestTemperatureAdjustedPaCO2OnTheSameResourceIsPreferred(t *testing.T) {
 	}
 }
 
+// REFERENCE E3: PĒCO2 = 0.863 × VCO2 / VE is "Valid only for VCO2 STPD and
+// VE BTPS". A Quantity whose UCUM annotation says the volume is at other
+// conditions ({BTPS} on VCO2, {ATPS} or {STPD} on VE) must not be put into
+// it as if it were at the right ones: the value is either refused or
+// converted, never computed silently with 0.863. At 760 mm[Hg] and 37 °C a
+// gas volume at BTPS is (760 − 47)/760 × 273/310 = 0.826 of itself at
+// STPD (the gas laws; own arithmetic), so 200 mL/min BTPS is 165 mL/min
+// STPD and PĒCO2 is 20.4, not 24.7 mm[Hg]: VD/VT 0.49 instead of 0.38.
+func TestGasConditionsOfVCO2AndMinuteVolume(t *testing.T) {
+	t.Parallel()
+	btpsToStpd := (760.0 - 47) / 760 * 273 / 310
+	cases := []struct {
+		name    string
+		vco2    map[string]any
+		ve      map[string]any
+		correct float64 // PĒCO2 when converted
+	}{
+		{"VCO2 reported at BTPS", qty(200, "mL/min{BTPS}"), qty(7, "L/min"), 0.863 * 200 * btpsToStpd / 7},
+		{"expired minute volume reported at STPD", qty(200, "mL/min"), qty(7, "L/min{STPD}"), 0.863 * 200 / (7 / btpsToStpd)},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			rs := slices.Concat(
+				[]map[string]any{shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))},
+				minuteSeries("et", loinc, "19891-1", qty(35, "mm[Hg]")),
+				minuteSeries("vco2", loinc, "60825-7", tc.vco2),
+				minuteSeries("ve", loinc, "76008-2", tc.ve),
+			)
+			d := onlyDerivation(t, replayShapes(t, rs))
+			pe, ok := derivedValue(d, derive.CodeMixedExpiredCO2)
+			if !ok {
+				return // refused: acceptable
+			}
+			if naive := 0.863 * 200 / 7; math.Abs(pe.Value-naive) < 1e-6 {
+				t.Errorf("PĒCO2 %.2f mm[Hg] computed as if the inputs were VCO2 STPD and VE BTPS; converted it is %.2f", pe.Value, tc.correct)
+			} else if math.Abs(pe.Value-tc.correct) > 0.05 {
+				t.Errorf("PĒCO2 %.2f, want %.2f after converting to STPD/BTPS", pe.Value, tc.correct)
+			}
+		})
+	}
+}
+
