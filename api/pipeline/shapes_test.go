@@ -281,3 +281,43 @@ func TestGasConditionsOfVCO2AndMinuteVolume(t *testing.T) {
 	}
 }
 
+// README rule 5: a source that is "a converted percentage" is a substitute,
+// named in the value's note with why; the code table gives the end-tidal
+// fraction code (19889-5) a low priority because "that conversion assumes
+// a pressure and a basis". The same conversion applies whatever code the
+// percentage comes under: a capnograph that sends EtCO2 in % under the
+// partial-pressure codes (LOINC 19891-1, MDC 151708) has its value
+// converted with an assumed barometric pressure (760 mm[Hg] here: 4.6 % is
+// 35.0 mm[Hg] dry, REFERENCE E17), and that must be disclosed, and a
+// measured partial pressure in the same window preferred.
+func TestEndTidalPercentUnderAPressureCodeIsDisclosed(t *testing.T) {
+	t.Parallel()
+	gas := shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))
+	cases := []struct {
+		name   string
+		etco2  []map[string]any
+		wantEt float64
+	}{
+		{"ventilator sends EtCO2 in % under MDC 151708", minuteSeries("et", mdc, "151708", qty(4.6, "%")), 4.6 * 7.6},
+		{"monitor sends EtCO2 in % under LOINC 19891-1", minuteSeries("et", loinc, "19891-1", qty(4.6, "%")), 4.6 * 7.6},
+		{"measured mm[Hg] and % of two devices in one window", slices.Concat(
+			minuteSeries("etp", mdc, "151708", qty(4.0, "%")),
+			minuteSeries("et", loinc, "19891-1", qty(36, "mm[Hg]"))), 36},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			d := onlyDerivation(t, replayShapes(t, slices.Concat([]map[string]any{gas}, tc.etco2)))
+			g, ok := derivedValue(d, derive.CodeGradient)
+			if !ok {
+				t.Fatalf("no gradient: %+v", d.Omitted)
+			}
+			if math.Abs(g.Value-(40-tc.wantEt)) > 1e-6 {
+				t.Errorf("gradient %v, want %v (EtCO2 %v)", g.Value, 40-tc.wantEt, tc.wantEt)
+			}
+			if tc.wantEt != 36 && !noteWith(g, "percentage", "barometric", "%") {
+				t.Errorf("gradient from a converted percentage has no note saying so: %q", g.Notes)
+			}
+		})
+	}
+}
