@@ -1,0 +1,54 @@
+package derive_test
+
+import (
+	"math"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/derive"
+)
+
+// The validity rules of REFERENCE 1.3 ("rules the service should
+// enforce"), one table each, cases named after the clinical situation.
+
+// REFERENCE 1.3, EtCO2 > PaCO2: "Occasionally, PetCO2 may actually be
+// higher than PaCO2 ... low V/Q units with long time constants" (Malley
+// WJ, Clinical Blood Gases, 2005), and the rule: "Do not clamp silently:
+// report AVDSF < 0 with a warning and suspect a timing or specimen
+// error." The alveolar dead-space fraction is therefore written, negative,
+// with a note saying so, not left out as out of bounds.
+func TestRuleNegativeGradientReportsTheAlveolarFraction(t *testing.T) {
+	t.Parallel()
+	cases := []struct {
+		name       string
+		paco2, et  float64
+		wantAVDSF  float64
+		wantSigned bool
+	}{
+		// (38 − 41)/38 = −0.0789 (own arithmetic, E5).
+		{"end-tidal 3 above arterial in a patient with slow-emptying lung units", 38, 41, (38.0 - 41) / 38, true},
+		// (40 − 42)/40 = −0.05.
+		{"end-tidal 2 above arterial, blood gas drawn as ventilation was raised", 40, 42, -0.05, true},
+		// Control: (40 − 35)/40 = 0.125.
+		{"usual positive gradient", 40, 35, 0.125, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			rs := []derive.Reading{rd(derive.KindEtCO2, -time.Minute, tc.et), rd(derive.KindEtCO2, 0, tc.et), rd(derive.KindEtCO2, time.Minute, tc.et)}
+			d := derive.Derive(derive.DefaultConfig(), gasOf(tc.paco2), man60, rs)
+			checkAccounts(t, d)
+			v := value(d, derive.CodeAlveolarFraction)
+			if v.Code == "" {
+				t.Fatalf("alveolar dead-space fraction not reported: %+v; REFERENCE 1.3 says report AVDSF < 0 with a warning", omission(d, derive.CodeAlveolarFraction))
+			}
+			if math.Abs(v.Value-tc.wantAVDSF) > 1e-9 {
+				t.Errorf("AVDSF %v, want %v", v.Value, tc.wantAVDSF)
+			}
+			if warned := hasNote(v, "timing") || hasNote(v, "sampl") || hasNote(v, "specimen"); warned != tc.wantSigned {
+				t.Errorf("timing or specimen warning %v, want %v: %q", warned, tc.wantSigned, v.Notes)
+			}
+		})
+	}
+}
+
