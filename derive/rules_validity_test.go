@@ -52,3 +52,37 @@ func TestRuleNegativeGradientReportsTheAlveolarFraction(t *testing.T) {
 	}
 }
 
+// REFERENCE 1.3, range checks: "0 < PĒCO2 < PaCO2; VD/VT in [0, 1); ≥ 0.9
+// implausible" (from memory there). A physiologic VD/VT of 0.9 or more is
+// not a value to write as a measurement: with VD/VT 0.925 at VE 7 L/min,
+// alveolar ventilation would be 0.5 L/min. It is left out with a reason
+// (the inputs are suspect: VCO2, VE or a mislabelled PaCO2), not written
+// and flagged as a markedly raised dead space.
+func TestRulePhysiologicFractionOfNinetyPercentIsImplausible(t *testing.T) {
+	t.Parallel()
+	cases := []struct {
+		name      string
+		paco2, pe float64
+		emitted   bool
+	}{
+		// (80 − 6)/80 = 0.925 (own arithmetic, E2).
+		{"PĒCO2 of 6 against PaCO2 80: VD/VT 0.925", 80, 6, false},
+		// (60 − 5.4)/60 = 0.91.
+		{"PĒCO2 of 5.4 against PaCO2 60: VD/VT 0.91", 60, 5.4, false},
+		// (60 − 9)/60 = 0.85: very high, still within the range checks.
+		{"severe ARDS, VD/VT 0.85, still written", 60, 9, true},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			rs := []derive.Reading{rd(derive.KindEtCO2, 0, 30), rd(derive.KindMixedExpiredCO2, 0, tc.pe), rd(derive.KindTidalVolume, 0, 500), rd(derive.KindMinuteVolume, 0, 7)}
+			d := derive.Derive(derive.DefaultConfig(), gasOf(tc.paco2), man60, rs)
+			checkAccounts(t, d)
+			v := value(d, derive.CodePhysiologic)
+			if got := v.Code != ""; got != tc.emitted {
+				t.Errorf("physiologic VD/VT emitted %v (value %v, omission %+v), want %v", got, v.Value, omission(d, derive.CodePhysiologic), tc.emitted)
+			}
+		})
+	}
+}
+
