@@ -86,3 +86,51 @@ func TestRulePhysiologicFractionOfNinetyPercentIsImplausible(t *testing.T) {
 	}
 }
 
+// REFERENCE 1.3, leaks: "Expired VE/VT and PetCO2 read low, so VD/VT and
+// VR are wrong. Flag leak > ~10%" (from memory there). When the same
+// window holds the inspired and the expired minute volume (or tidal
+// volume) and the expired is more than 10 % below the inspired, the values
+// computed from the expired volume carry a note naming the leak. The code
+// table's priorities are those of the default table: expired 20 (30 for
+// tidal volume), inspired or delivered 10.
+func TestRuleLeakBetweenInspiredAndExpiredVolumeIsFlagged(t *testing.T) {
+	t.Parallel()
+	prio := func(r derive.Reading, p int16) derive.Reading { r.Priority = p; return r }
+	common := []derive.Reading{
+		rd(derive.KindEtCO2, 0, 35), rd(derive.KindVCO2, 0, 200), rd(derive.KindHeight, -time.Hour, 175),
+	}
+	cases := []struct {
+		name string
+		vols []derive.Reading
+		leak bool
+	}{
+		// (10 − 7)/10 = 30 % of the inspired volume lost.
+		{"cuff leak: inspired 10, expired 7 L/min", []derive.Reading{
+			prio(rd(derive.KindMinuteVolume, 0, 10), 10), prio(rd(derive.KindMinuteVolume, 0, 7), 20),
+			prio(rd(derive.KindTidalVolume, 0, 500), 30)}, true},
+		// (600 − 450)/600 = 25 %.
+		{"bronchopleural fistula: delivered 600, expired 450 mL", []derive.Reading{
+			prio(rd(derive.KindMinuteVolume, 0, 7), 20),
+			prio(rd(derive.KindTidalVolume, 0, 600), 10), prio(rd(derive.KindTidalVolume, 0, 450), 30)}, true},
+		// (7.2 − 7)/7.2 = 2.8 %: no leak to speak of.
+		{"sealed circuit: inspired 7.2, expired 7 L/min", []derive.Reading{
+			prio(rd(derive.KindMinuteVolume, 0, 7.2), 10), prio(rd(derive.KindMinuteVolume, 0, 7), 20),
+			prio(rd(derive.KindTidalVolume, 0, 500), 30)}, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			d := derive.Derive(derive.DefaultConfig(), gasOf(40), man60, sortByTime(append(append([]derive.Reading{}, common...), tc.vols...)))
+			checkAccounts(t, d)
+			for _, c := range []derive.Code{derive.CodePhysiologic, derive.CodeDeadSpaceVolume, derive.CodeAlveolarVent} {
+				v := value(d, c)
+				if v.Code == "" {
+					t.Fatalf("%s not emitted: %+v", c, omission(d, c))
+				}
+				if got := hasNote(v, "leak"); got != tc.leak {
+					t.Errorf("%s leak note %v, want %v: %q", c, got, tc.leak, v.Notes)
+				}
+			}
+		})
+	}
+}
