@@ -321,3 +321,51 @@ func TestEndTidalPercentUnderAPressureCodeIsDisclosed(t *testing.T) {
 		})
 	}
 }
+
+// README rule 5 and REFERENCE 1.6 ("Enghoff uses the expired volume; a set
+// tidal volume or an inspired minute volume overstates it when there is a
+// leak"): an inspired volume is a substitute for the expired one, named in
+// the value's note, and never pooled with a measured expired volume. The
+// code table says MDC 151980 is the "Volume of gas delivered through the
+// patient-connection port during a respiratory cycle", an inspired
+// (delivered) tidal volume, yet gives it the priority of a measured one, so
+// a dead-space volume computed from it carries no note, and a window with
+// it and a ventilator-measured volume (LOINC 76222-9) takes the median of
+// both. VD = 0.384 × VT (Enghoff with PĒCO2 0.863 × 200 / 7, as above).
+func TestDeliveredTidalVolumeIsASubstitute(t *testing.T) {
+	t.Parallel()
+	gas := shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))
+	rest := slices.Concat(
+		minuteSeries("et", loinc, "19891-1", qty(35, "mm[Hg]")),
+		minuteSeries("ve", loinc, "76008-2", qty(7, "L/min")),
+		minuteSeries("vco2", loinc, "60825-7", qty(200, "mL/min")),
+	)
+	phys := (40 - 0.863*200/7) / 40
+	cases := []struct {
+		name   string
+		vt     []map[string]any
+		wantVT float64
+		note   bool
+	}{
+		{"only the delivered tidal volume is charted", minuteSeries("vtd", mdc, "151980", qty(600, "mL")), 600, true},
+		{"delivered 600 and ventilator-measured 450 mL in one window", slices.Concat(
+			minuteSeries("vtd", mdc, "151980", qty(600, "mL")),
+			minuteSeries("vt", loinc, "76222-9", qty(450, "mL"))), 450, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			d := onlyDerivation(t, replayShapes(t, slices.Concat([]map[string]any{gas}, rest, tc.vt)))
+			v, ok := derivedValue(d, derive.CodeDeadSpaceVolume)
+			if !ok {
+				t.Fatalf("no dead-space volume: %+v", d.Omitted)
+			}
+			if math.Abs(v.Value-phys*tc.wantVT) > 1e-6 {
+				t.Errorf("VD %v mL, want %v × %v = %v", v.Value, phys, tc.wantVT, phys*tc.wantVT)
+			}
+			if tc.note && !noteWith(v, "leak", "lower-priority") {
+				t.Errorf("VD from a delivered (inspired) tidal volume has no substitute note: %q", v.Notes)
+			}
+		})
+	}
+}
