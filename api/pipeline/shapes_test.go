@@ -80,7 +80,13 @@ func ventilator() []map[string]any {
 // replayShapes decodes and collects every resource and derives.
 func replayShapes(t *testing.T, resources []map[string]any) pipeline.Report {
 	t.Helper()
-	dec := decode.New(decode.Options{})
+	return replayShapesWith(t, decode.Options{}, resources)
+}
+
+// replayShapesWith is replayShapes with decoder options.
+func replayShapesWith(t *testing.T, opts decode.Options, resources []map[string]any) pipeline.Report {
+	t.Helper()
+	dec := decode.New(opts)
 	col := pipeline.NewCollector()
 	for _, r := range resources {
 		line, err := json.Marshal(r)
@@ -184,6 +190,59 @@ func TestAbsoluteSubjectReferencesStillDerive(t *testing.T) {
 			}
 			if bundles == 0 {
 				t.Errorf("no derived Observation written for the blood gas")
+			}
+		})
+	}
+}
+
+// An absolute reference under the service's own FHIR server (decode's
+// Options.Base, serve's --fhir-base) is the same patient as the relative
+// one: the Patient resource's facts (sex, birth date) join the
+// Observations, the ventilatory ratio is computed, and the written subject
+// is relative. Under another server the absolute reference is another
+// patient, whose id only happens to match: its facts are not taken from
+// the local Patient p1, and the written subject keeps its base.
+// VR = (7000 × 40)/(PBW × 100 × 37.5) with PBW = 50 + 0.91 × (175 − 152.4)
+// = 70.566 kg (REFERENCE E9, Sinha 2009; E10 and W5, ARDS Network): 1.058.
+func TestAbsoluteSubjectOfTheOwnServerIsOnePatient(t *testing.T) {
+	t.Parallel()
+	const own = "https://ehr.example/fhir"
+	cases := []struct {
+		name, subject, written string
+		facts                  bool
+	}{
+		{"own server, versioned", own + "/Patient/p1/_history/3", "Patient/p1", true},
+		{"own server, host in capitals and the default port", "https://EHR.example:443/fhir/Patient/p1", "Patient/p1", true},
+		{"another server, same id", "https://other.example/fhir/Patient/p1", "https://other.example/fhir/Patient/p1", false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			obs := slices.Concat(
+				[]map[string]any{shapeObs("abg-1", loinc, "2019-8", "2025-03-01T10:15:00Z", qty(40, "mm[Hg]"))},
+				male50()[1:], ventilator())
+			for _, r := range obs {
+				r["subject"] = map[string]any{"reference": tc.subject}
+			}
+			rep := replayShapesWith(t, decode.Options{Base: own + "/"}, slices.Concat(male50()[:1], obs))
+			d := onlyDerivation(t, rep)
+			vr, ok := derivedValue(d, derive.CodeVentilatoryRatio)
+			pbw := 50 + 0.91*(175-152.4)
+			if want := 7000 * 40 / (pbw * 100 * 37.5); ok != tc.facts || (ok && math.Abs(vr.Value-want) > 1e-9) {
+				t.Errorf("ventilatory ratio %v (emitted %v), want %v (emitted %v)", vr.Value, ok, want, tc.facts)
+			}
+			if joined := d.Patient.Ref != ""; joined != tc.facts {
+				t.Errorf("patient facts joined %v (%+v), want %v", joined, d.Patient, tc.facts)
+			}
+			for _, r := range rep.Results {
+				if r.Derivation == nil {
+					continue
+				}
+				for _, o := range r.Bundle.Observations {
+					if o.Subject == nil || o.Subject.Reference == nil || *o.Subject.Reference != tc.written {
+						t.Fatalf("written subject %v, want %q", o.Subject, tc.written)
+					}
+				}
 			}
 		})
 	}

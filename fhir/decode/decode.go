@@ -18,7 +18,9 @@
 //  4. A member of the wrong JSON type: [derive.ReasonMalformed].
 //  5. status other than final, amended or corrected: [derive.ReasonStatus].
 //  6. subject must be a literal Patient reference ("Patient/{id}" or an
-//     absolute URL ending so): [derive.ReasonNoSubject].
+//     absolute URL ending so): [derive.ReasonNoSubject]. An absolute
+//     reference under [Options.Base] becomes relative; one under another
+//     base stays absolute, without its version, and is another patient.
 //  7. Value: valueQuantity with a numeric value is required
 //     ([derive.ReasonNoValue], with the dataAbsentReason or the value[x]
 //     type in the detail); a comparator makes it [derive.ReasonCensored].
@@ -138,8 +140,10 @@ type Item struct {
 	// Ref is "Observation/{id}/_history/{vid}", or "Observation/{id}" when
 	// meta.versionId is absent (likewise for Patients).
 	Ref string
-	// Subject is the unversioned patient reference as written, for grouping:
-	// "Patient/123". For a Patient item it is "Patient/{id}".
+	// Subject is the unversioned patient reference, for grouping and for the
+	// derived values' subject: "Patient/123", or an absolute URL when the
+	// reference names a server other than [Options.Base]. For a Patient
+	// item it is "Patient/{id}".
 	Subject     string
 	Status      string
 	LastUpdated time.Time
@@ -174,10 +178,18 @@ type Options struct {
 	Table *codes.Table
 	// Units are the site's unit settings; the zero value means the defaults.
 	Units units.Options
+	// Base is the FHIR server this service reads and writes (serve's and
+	// backfill's --fhir-base, replay's --fhir-base for an export of it), or
+	// "" when none is known. A subject or encounter written as an absolute
+	// URL under it is the same resource as the relative reference, so it is
+	// keyed and written relative; an absolute reference under any other
+	// base keeps its base (fhir/ref's Key).
+	Base string
 }
 
 // Decoder decodes resources. It is safe for concurrent use.
 type Decoder struct {
+	base    string
 	table   *codes.Table
 	units   units.Options
 	codeSet map[string]struct{}
@@ -203,7 +215,7 @@ func New(opts Options) *Decoder {
 	for _, c := range t.Codes() {
 		set[c] = struct{}{}
 	}
-	return &Decoder{table: t, units: opts.Units, codeSet: set}
+	return &Decoder{base: opts.Base, table: t, units: opts.Units, codeSet: set}
 }
 
 // Decode decodes one resource. The error is non-nil only when line is not
@@ -393,7 +405,7 @@ func (d *Decoder) observation(line []byte) Item {
 	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
 		return omit(derive.ReasonMalformed, problem)
 	}
-	subject, subjectProblem := patientSubject(o.Subject)
+	subject, subjectProblem := d.patientSubject(o.Subject)
 	it.Subject = subject
 	if o.Status == "entered-in-error" {
 		return omit(derive.ReasonEnteredInError, "status entered-in-error")
@@ -419,7 +431,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(derive.ReasonNoSubject, subjectProblem)
 	}
 	if o.Encounter != nil && o.Encounter.Reference != "" {
-		it.Reading.Encounter = intern(o.Encounter.Reference)
+		enc := o.Encounter.Reference
+		if r, key, err := ref.Key(enc, d.base); err == nil && r.Type == "Encounter" {
+			enc = key
+		}
+		it.Reading.Encounter = intern(enc)
 	}
 
 	// Value: the Observation's own, or a panel's component's.
@@ -574,7 +590,7 @@ func (d *Decoder) Recoded(line []byte) (Item, bool) {
 	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
 		return Item{}, false
 	}
-	subject, problem := patientSubject(o.Subject)
+	subject, problem := d.patientSubject(o.Subject)
 	if problem != "" {
 		return Item{}, false
 	}
@@ -617,10 +633,11 @@ func (d *Decoder) identify(it *Item, resourceType, id string, meta *metaJSON) st
 	return ""
 }
 
-// patientSubject returns the unversioned Patient reference as written
-// (relative, or absolute with its server base), or a problem. fhir/ref
-// parses it.
-func patientSubject(r *referenceJSON) (string, string) {
+// patientSubject returns the unversioned Patient reference the patient is
+// keyed by, or a problem: relative when written so or under the service's
+// own server base, else absolute with its base (fhir/ref's Key, which
+// parses it).
+func (d *Decoder) patientSubject(r *referenceJSON) (string, string) {
 	if r == nil {
 		return "", "no subject"
 	}
@@ -630,14 +647,14 @@ func patientSubject(r *referenceJSON) (string, string) {
 		}
 		return "", "subject has no reference"
 	}
-	p, base, err := ref.ParseAny(r.Reference)
+	p, key, err := ref.Key(r.Reference, d.base)
 	switch {
 	case err != nil:
 		return "", "subject is not a Patient/{id} reference"
 	case p.Type != "Patient":
 		return "", fmt.Sprintf("subject is a %q reference, not a Patient", clip(p.Type))
 	}
-	return intern(base + p.Logical()), ""
+	return intern(key), ""
 }
 
 // effectiveTime applies rule 9 of the package documentation. Two
