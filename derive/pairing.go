@@ -275,8 +275,13 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	temp, haveTemp := nearest(KindBodyTemperature, cfg.Temperature.Search)
 	if adj, ok := nearest(KindPaCO2Adjusted, sameSample); ok {
 		b.pa, b.paAdjusted = adj.Value, true
-		b.paUsed = append(b.paUsed, Summary{Kind: KindPaCO2Adjusted, Median: adj.Value, Readings: []Reading{adj},
-			Rule: fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%v), preferred to the 37 °C value", sameSample)})
+		rule := fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%v), preferred to the 37 °C value", sameSample)
+		if adj.Ref == b.d.Gas.Ref {
+			// The decoder gives an adjusted value reported on the blood
+			// gas itself (a component) the gas's own reference and time.
+			rule = "temperature-adjusted PaCO2 reported on the blood gas itself, preferred to the 37 °C value"
+		}
+		b.paUsed = append(b.paUsed, Summary{Kind: KindPaCO2Adjusted, Median: adj.Value, Readings: []Reading{adj}, Rule: rule})
 		b.paTerms = []Term{{"PaCO2 at 37 °C", b.d.Gas.Value, "mm[Hg]"}, {"PaCO2 at patient temperature (reported)", adj.Value, "mm[Hg]"}}
 		b.paNote = fmt.Sprintf("PaCO2 at the patient's temperature as reported by the analyser (%v mm[Hg]; %v mm[Hg] at 37 °C)", adj.Value, b.d.Gas.Value)
 		return

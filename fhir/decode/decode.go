@@ -42,14 +42,16 @@
 // panel's version (a component has no id of its own). A panel with no such
 // component (one that lists its results by hasMember) is [ItemUnrelated]:
 // its members are read on their own. Other components are not read, with
-// one exception: a PaCO2 (alone or in a panel) that carries the patient's
-// temperature as a component
-// (a component whose code has a body-temperature row, 8310-5) gives that
-// temperature too, in [Item.Also], at the blood gas's effective time and
-// citing the blood gas's own reference: the temperature was entered on the
-// sample, so it is the one the analyser would adjust to. A component
-// temperature that cannot be used (no Quantity, an unknown unit, an
-// implausible value) is dropped; the PaCO2 itself stays usable.
+// two exceptions: a PaCO2 (alone or in a panel) that carries the patient's
+// temperature as a component (a component whose code has a
+// body-temperature row, 8310-5), or the PaCO2 adjusted to the patient's
+// temperature (a paco2-temperature-adjusted row, 32771-8), gives that
+// value too, in [Item.Also], at the blood gas's effective time and citing
+// the blood gas's own reference: the temperature was entered on the
+// sample, so it is the one the analyser would adjust to, and the adjusted
+// value is the analyser's own for the same sample. A component that cannot
+// be used (no Quantity, an unknown unit, an implausible value) is dropped;
+// the PaCO2 itself stays usable.
 //
 // Patients give Sex from gender (male, female; anything else unknown) and
 // BirthDate from birthDate. A partial birth date is taken at the middle of
@@ -83,6 +85,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -155,7 +158,8 @@ type Item struct {
 	// the highest among readings of one kind (see package codes).
 	Priority int
 	// Also holds readings the resource carries besides Reading: the
-	// patient's temperature on a blood gas (see the package documentation),
+	// patient's temperature and the temperature-adjusted PaCO2 on a blood
+	// gas (see the package documentation),
 	// with Ref and AtMillis of Reading and the row's priority in Priority.
 	Also       []derive.Reading
 	Original   Original
@@ -507,7 +511,7 @@ func (d *Decoder) observation(line []byte) Item {
 	it.Reading.AtMillis = at.UnixMilli()
 	it.Reading.Value = conv.ToValue
 	if row.Kind == derive.KindPaCO2 {
-		it.Also = d.componentTemperature(&o, it.Reading)
+		it.Also = d.componentsAlso(&o, it.Reading)
 	}
 	return it
 }
@@ -534,16 +538,21 @@ func (d *Decoder) panelComponent(o *observationJSON, kind derive.Kind) (*compone
 	return rejected, rejectedRow, rejected != nil
 }
 
-// componentTemperature returns the patient's temperature carried as a
-// component of blood gas gas, or nil; see the package documentation.
-func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) []derive.Reading {
+// componentsAlso returns what blood gas gas carries besides its PaCO2 as
+// components: the patient's temperature (a body-temperature row, 8310-5)
+// and the PaCO2 adjusted to it (a paco2-temperature-adjusted row,
+// 32771-8), the first usable component of each kind, at the gas's time and
+// citing the gas's own reference; see the package documentation.
+func (d *Decoder) componentsAlso(o *observationJSON, gas derive.Reading) []derive.Reading {
+	var out []derive.Reading
 	for _, c := range o.Component {
 		row, ok := d.lookup(c.Code)
-		if !ok || row.Action != codes.ActionAccept || row.Kind != derive.KindBodyTemperature {
+		if !ok || row.Action != codes.ActionAccept || (row.Kind != derive.KindBodyTemperature && row.Kind != derive.KindPaCO2Adjusted) ||
+			slices.ContainsFunc(out, func(r derive.Reading) bool { return r.Kind == row.Kind }) {
 			continue
 		}
 		q := c.ValueQuantity
-		if q == nil || !present(q.Value) || q.Comparator != "" {
+		if q == nil || !present(q.Value) || q.Comparator != "" || c.DataAbsentReason != nil {
 			continue
 		}
 		v, err := strconv.ParseFloat(string(q.Value), 64)
@@ -557,10 +566,10 @@ func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) [
 		if reason, _ := derive.CheckValue(row.Kind, conv.ToValue); reason != "" {
 			continue
 		}
-		return []derive.Reading{{Ref: gas.Ref, Encounter: gas.Encounter, AtMillis: gas.AtMillis, Value: conv.ToValue,
-			Kind: derive.KindBodyTemperature, Priority: int16(row.Priority)}}
+		out = append(out, derive.Reading{Ref: gas.Ref, Encounter: gas.Encounter, AtMillis: gas.AtMillis, Value: conv.ToValue,
+			Kind: row.Kind, Priority: int16(row.Priority)})
 	}
-	return nil
+	return out
 }
 
 // fhirID is id when it is a FHIR id, else "".
