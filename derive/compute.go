@@ -526,6 +526,18 @@ const GradientHigh = 5.0
 // 0.63 ± 0.10 vs survivors 0.54 ± 0.09).
 const PhysiologicHigh = 0.60
 
+// AlveolarFractionFloor is the lowest end-tidal alveolar dead-space
+// fraction reported: end-tidal CO2 up to 25 % above arterial (10 mm[Hg] at
+// a PaCO2 of 40). A negative fraction is reported with a warning (Malley
+// WJ, Clinical Blood Gases, 2005: "Occasionally, PetCO2 may actually be
+// higher than PaCO2", low V/Q units with long time constants; do not clamp
+// it silently), but the negative gradients described with low V/Q units
+// are a few mm[Hg]; one beyond this bound is not a physiological reading
+// of one moment (a blood gas and an end-tidal value of different times, a
+// venous sample) and the value is left out as [ReasonInconsistent]. The
+// bound itself is a design choice.
+const AlveolarFractionFloor = -0.25
+
 // VentilatoryRatioHigh is the ventilatory ratio above which the value is
 // flagged high: in adults with ARDS, a ratio above 2 (the cohort median) on
 // day 1 was associated with higher mortality (ROSE trial secondary
@@ -562,20 +574,30 @@ func (b *builder) values() {
 	}
 
 	// 2. End-tidal alveolar dead-space fraction.
+	// A negative fraction (end-tidal above arterial) is reported with a
+	// warning, not clamped or dropped: Malley WJ, Clinical Blood Gases,
+	// 2005, "Occasionally, PetCO2 may actually be higher than PaCO2", with
+	// the advice to suspect a timing or specimen error. Below
+	// AlveolarFractionFloor the inputs cannot both be right.
 	if b.need(CodeAlveolarFraction, true, KindEtCO2) {
 		f := AlveolarFraction(pa, et)
 		switch {
-		case f < 0:
-			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v above PaCO2 %v mm[Hg] gives %v; see the gradient's note", et, pa, f)
-		case !inFraction(f):
-			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v mm[Hg] gives %v, outside [0, 1)", et, f)
+		case f < AlveolarFractionFloor:
+			b.omit(CodeAlveolarFraction, ReasonInconsistent, "PetCO2 %v mm[Hg] is more than %v × PaCO2 %v mm[Hg] (fraction %.3f, below %v): suspect timing, sampling or units",
+				et, 1-AlveolarFractionFloor, pa, f, AlveolarFractionFloor)
+		case f >= 1:
+			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v mm[Hg] gives %v, outside [%v, 1)", et, f, AlveolarFractionFloor)
 		default:
-			b.emit(Value{
+			v := Value{
 				Code: CodeAlveolarFraction, Value: f, Unit: "1",
 				Inputs:   b.paInputs(KindEtCO2),
 				Equation: "(PaCO2 − PetCO2)/PaCO2, end-tidal alveolar dead-space fraction (name: Bhalla AK et al., Respir Care 2015;60:1548)",
 				Terms:    b.paTermsWith(Term{"PetCO2", et, "mm[Hg]"}),
-			})
+			}
+			if f < 0 {
+				v.Notes = append(v.Notes, "negative: end-tidal above arterial PCO2; this occurs with low V/Q units (Malley 2005), but suspect a timing or specimen error (blood gas and end-tidal not simultaneous, a venous or air-contaminated sample)")
+			}
+			b.emit(v)
 		}
 	}
 
