@@ -264,6 +264,9 @@ type builder struct {
 	phys       float64
 	physOK     bool
 	physInputs []Kind
+	// physImplausible is set when the physiologic VD/VT was computed but
+	// left out as implausible: the estimate must not stand in for it.
+	physImplausible bool
 }
 
 func (b *builder) collect(cfg Config, readings []Reading) {
@@ -477,6 +480,29 @@ func (b *builder) need(c Code, pa bool, kinds ...Kind) bool {
 	}
 	b.omit(c, reason, "%s", strings.Join(why, "; and "))
 	return false
+}
+
+// ImplausibleVDVT is the dead-space fraction (VD/VT: Enghoff, Bohr or the
+// regression estimate) at and above which a value is not written: with
+// VD/VT 0.9 only a tenth of each breath would reach perfused alveoli, so
+// alveolar ventilation at a minute volume of 7 L/min would be 0.7 L/min.
+// Such a number comes from a wrong input (VCO2, VE, PĒCO2, a PaCO2 in
+// another unit), and writing it flagged as a markedly raised dead space
+// would present an artefact as a finding. The range check (0 < PĒCO2 <
+// PaCO2, VD/VT in [0, 1), 0.9 or more implausible) is from memory
+// (REFERENCE 1.3); the most severe ARDS cohorts average about 0.6–0.7
+// (Nuckton 2002: non-survivors 0.63 ± 0.10), so 0.9 is far in the tail.
+const ImplausibleVDVT = 0.9
+
+// implausibleVDVT records the omission of c when f is at or above
+// [ImplausibleVDVT], judged on the value as written, and reports whether
+// it did.
+func (b *builder) implausibleVDVT(c Code, f float64, suspect string) bool {
+	if asWritten(f, 3) < ImplausibleVDVT {
+		return false
+	}
+	b.omit(c, ReasonImplausibleVDVT, "VD/VT %.3f is %v or more, not a plausible dead-space fraction of a ventilated patient: %s", f, ImplausibleVDVT, suspect)
+	return true
 }
 
 // inFraction is the bound every dead-space fraction must meet.
@@ -695,6 +721,10 @@ func (b *builder) physiologic(pa float64) {
 		b.omit(c, ReasonFractionBounds, "(PaCO2 − PĒCO2)/PaCO2 gives %v, outside [0, 1)", f)
 		return
 	}
+	if b.implausibleVDVT(c, f, "suspect VCO2, VE or PĒCO2, or a PaCO2 in another unit") {
+		b.physImplausible = true
+		return
+	}
 	inputs := b.paInputs(b.peInputs...)
 	v := Value{
 		Code: c, Value: f, Unit: "1",
@@ -739,6 +769,9 @@ func (b *builder) airway(et float64) {
 	f := BohrAirwayFraction(et, b.pe)
 	if !inFraction(f) {
 		b.omit(c, ReasonFractionBounds, "(PetCO2 − PĒCO2)/PetCO2 gives %v, outside [0, 1)", f)
+		return
+	}
+	if b.implausibleVDVT(c, f, "suspect VCO2, VE or PĒCO2, or the end-tidal reading") {
 		return
 	}
 	v := Value{
@@ -850,6 +883,10 @@ func (b *builder) estimated(pa, et float64) {
 		b.omit(c, ReasonNotApplicable, "the physiologic VD/VT was computed from expired CO2")
 		return
 	}
+	if b.physImplausible {
+		b.omit(c, ReasonInconsistent, "the physiologic VD/VT computed from expired CO2 was implausible (see its omission): the inputs contradict each other, and an estimate would hide that")
+		return
+	}
 	if b.child() {
 		b.omit(c, ReasonNotAdult, "the regression estimate was derived in ventilated adults; the patient is %d", b.age)
 		return
@@ -879,6 +916,9 @@ func (b *builder) estimated(pa, et float64) {
 	f := EstimatedFraction(g, rr, age)
 	if !inFraction(f) {
 		b.omit(c, ReasonFractionBounds, "the regression gives %v, outside [0, 1)", f)
+		return
+	}
+	if b.implausibleVDVT(c, f, "suspect the gradient or the rate") {
 		return
 	}
 	b.emit(Value{

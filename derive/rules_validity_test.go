@@ -134,3 +134,26 @@ func TestRuleLeakBetweenInspiredAndExpiredVolumeIsFlagged(t *testing.T) {
 		})
 	}
 }
+
+// The implausible VD/VT (REFERENCE 1.3 range checks, from memory) is left
+// out with its own reason, and neither the values computed from it nor the
+// regression estimate stand in for it: (80 − 6)/80 = 0.925.
+func TestRuleImplausibleFractionHasItsReasonAndNoStandIn(t *testing.T) {
+	t.Parallel()
+	rs := []derive.Reading{rd(derive.KindEtCO2, 0, 70), rd(derive.KindMixedExpiredCO2, 0, 6), rd(derive.KindTidalVolume, 0, 500),
+		rd(derive.KindMinuteVolume, 0, 7), rd(derive.KindRespRate, 0, 14)}
+	d := derive.Derive(derive.DefaultConfig(), gasOf(80), man60, rs)
+	checkAccounts(t, d)
+	want := map[derive.Code]derive.Reason{
+		derive.CodePhysiologic:       derive.ReasonImplausibleVDVT,
+		derive.CodeAirwayFraction:    derive.ReasonImplausibleVDVT, // (70 − 6)/70 = 0.914
+		derive.CodeDeadSpaceVolume:   derive.ReasonMissingInput,
+		derive.CodeAlveolarVent:      derive.ReasonMissingInput,
+		derive.CodeEstimatedFraction: derive.ReasonInconsistent,
+	}
+	for c, r := range want {
+		if o := omission(d, c); o.Reason != r {
+			t.Errorf("%s: omission %+v, want reason %s", c, o, r)
+		}
+	}
+}
