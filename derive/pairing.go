@@ -98,14 +98,22 @@ func (b *builder) preferred(k Kind, rs []Reading) ([]Reading, string) {
 		return kept, ""
 	}
 	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within ±%v of the sample time%s",
-		k, substituteName(k), best, k, b.window, substituteRisk(k))
+		k, substituteName(k, best), best, k, b.window, substituteRisk(k))
 }
 
-// substituteName says what a low-priority source of kind k is, by the
-// default code table's rows.
-func substituteName(k Kind) string {
+// deliveredPriority is the default code table's priority of a delivered
+// (inspired) tidal volume (MDC 151980), between a setting (10) and a
+// measured volume (20 or more): a measurement, but of the inspired side.
+const deliveredPriority = 15
+
+// substituteName says what a low-priority source of kind k and priority p
+// is, by the default code table's rows.
+func substituteName(k Kind, p int16) string {
 	switch k {
 	case KindTidalVolume:
+		if p >= deliveredPriority {
+			return "a delivered (inspired) tidal volume"
+		}
 		return "a set tidal volume"
 	case KindMinuteVolume:
 		return "an inspired minute volume"

@@ -45,7 +45,9 @@
 // readings of the highest priority present, reporting the others with
 // [derive.ReasonLowerPriority].
 // Default priorities: measured expired values 30 (tidal volume) or 20,
-// other measurements 20, settings, inspired volumes and partial rates 10–15.
+// other measurements 20, settings, inspired volumes and partial rates 10–15
+// (a delivered, inspired tidal volume 15, above the set one at 10: the
+// pairing names it as delivered from that priority).
 // The pairing chooses per window, and a priority below
 // [derive.SubstitutePriority] (20) is disclosed in the derived value's note
 // as a substitute; a site row keeps to this scale.
