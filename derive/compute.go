@@ -32,6 +32,11 @@ import (
 //     PCO2(T) = PCO2(37) × 10^(0.019 × (T − 37)), the coefficient published
 //     for PCO2 of blood in vitro (J Appl Physiol 1965; Bradley, Severinghaus
 //     and Stupfel 1956 give 0.0185).
+//   - LeakFraction 0.10: a measured (expired) minute or tidal volume more
+//     than 10 % below the inspired or delivered one in the same window is
+//     a leak (cuff, circuit, bronchopleural fistula); the expired volumes
+//     and end-tidal CO2 then read low (the ~10 % figure is from memory,
+//     REFERENCE 1.3).
 //   - Fall: a 30 min trailing baseline of at least 5 readings; a reading is
 //     fallen when it is 8 mm[Hg] or 25 % below baseline, whichever is
 //     smaller (so a low baseline still gives a proportionate threshold); the
@@ -62,6 +67,7 @@ func DefaultConfig() Config {
 			Tolerance:   0.5,
 			Coefficient: 0.019,
 		},
+		LeakFraction: 0.10,
 		Fall: FallConfig{
 			Baseline:            30 * time.Minute,
 			MinBaselineReadings: 5,
@@ -150,6 +156,7 @@ func (c Config) Validate() error {
 	if !(c.Temperature.Coefficient > 0 && c.Temperature.Coefficient < 0.1) {
 		errs = append(errs, fmt.Errorf("Temperature.Coefficient must be above 0 and below 0.1 per °C, got %v", c.Temperature.Coefficient))
 	}
+	fraction("LeakFraction", c.LeakFraction)
 	if err := errors.Join(errs...); err != nil {
 		return fmt.Errorf("derive config: %w", err)
 	}
@@ -253,6 +260,11 @@ type builder struct {
 	steadyNote  string
 	steadyTerms []Term
 
+	// leakNote goes on every value computed from a minute or tidal volume
+	// when the window shows a leak; leakTerms are its figures.
+	leakNote  string
+	leakTerms []Term
+
 	// The mixed-expired PCO2 used by the fractions, measured or computed.
 	pe       float64
 	peOK     bool
@@ -318,6 +330,9 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		rs := byKind[k]
 		if len(rs) == 0 {
 			continue
+		}
+		if k == KindMinuteVolume || k == KindTidalVolume {
+			b.leak(cfg, k, rs)
 		}
 		rs, substitute := b.preferred(k, rs)
 		b.priority[k] = rs[0].Priority
@@ -434,6 +449,10 @@ func (b *builder) emit(v Value) bool {
 	var notes []string
 	for _, k := range v.Inputs {
 		notes = append(notes, b.kindNotes[k]...)
+	}
+	if b.leakNote != "" && (slices.Contains(v.Inputs, KindMinuteVolume) || slices.Contains(v.Inputs, KindTidalVolume)) {
+		notes = append(notes, b.leakNote)
+		v.Terms = append(v.Terms, b.leakTerms...)
 	}
 	v.Notes = append(notes, v.Notes...)
 	b.d.Values = append(b.d.Values, v)

@@ -137,6 +137,66 @@ func substituteRisk(k Kind) string {
 	return ""
 }
 
+// leak compares, in one window, the inspired or delivered volume of kind k
+// (the highest priority below [SubstitutePriority]) with the measured one
+// (the highest priority present, at or above it). When the measured is
+// below the inspired by more than cfg.LeakFraction of it, gas is lost
+// between the two (a cuff or circuit leak, a bronchopleural fistula): the
+// expired volumes and end-tidal CO2 read low, so every value computed
+// from a volume carries a note (REFERENCE 1.3, leaks). A leak seen on
+// either volume concerns the whole circuit, so the note goes on values
+// from the other volume too. A set tidal volume counts as the inspired
+// one, as it is in a volume-controlled mode.
+func (b *builder) leak(cfg Config, k Kind, rs []Reading) {
+	var best, sub int16
+	for _, r := range rs {
+		best = max(best, r.Priority)
+		if r.Priority > 0 && r.Priority < SubstitutePriority {
+			sub = max(sub, r.Priority)
+		}
+	}
+	if best < SubstitutePriority || sub == 0 {
+		return
+	}
+	var measured, inspired []float64
+	for _, r := range rs {
+		switch r.Priority {
+		case best:
+			measured = append(measured, r.Value)
+		case sub:
+			inspired = append(inspired, r.Value)
+		}
+	}
+	in, out := Median(inspired), Median(measured)
+	lost := (in - out) / in
+	if !(lost > cfg.LeakFraction) {
+		return
+	}
+	unit, name := "L/min", "minute volume"
+	if k == KindTidalVolume {
+		unit, name = "mL", "tidal volume"
+	}
+	what := fmt.Sprintf("the measured %s %.3g %s is %.0f %% below the %s one (%.3g %s)", name, out, unit, 100*lost, substituteSide(k, sub), in, unit)
+	if b.leakNote == "" {
+		b.leakNote = "possible leak (cuff, circuit or bronchopleural): " + what +
+			" in the pairing window; expired volumes and end-tidal CO2 then read low, so this value is unreliable"
+	} else {
+		b.leakNote += "; also " + what
+	}
+	b.leakTerms = append(b.leakTerms, Term{"inspired " + name, in, unit}, Term{"measured " + name, out, unit})
+}
+
+// substituteSide names the inspired side of kind k at priority p.
+func substituteSide(k Kind, p int16) string {
+	if k == KindTidalVolume && p < deliveredPriority {
+		return "set"
+	}
+	if k == KindTidalVolume {
+		return "delivered"
+	}
+	return "inspired"
+}
+
 // artefacts leaves out end-tidal readings that cannot be the patient's
 // end-tidal value at that moment, records each, and returns the usable
 // readings. ok is false when too few are left; why then says so.

@@ -92,7 +92,7 @@ func TestRulePhysiologicFractionOfNinetyPercentIsImplausible(t *testing.T) {
 // volume) and the expired is more than 10 % below the inspired, the values
 // computed from the expired volume carry a note naming the leak. The code
 // table's priorities are those of the default table: expired 20 (30 for
-// tidal volume), inspired or delivered 10.
+// tidal volume), inspired minute volume 10, delivered tidal volume 15.
 func TestRuleLeakBetweenInspiredAndExpiredVolumeIsFlagged(t *testing.T) {
 	t.Parallel()
 	prio := func(r derive.Reading, p int16) derive.Reading { r.Priority = p; return r }
@@ -111,7 +111,11 @@ func TestRuleLeakBetweenInspiredAndExpiredVolumeIsFlagged(t *testing.T) {
 		// (600 − 450)/600 = 25 %.
 		{"bronchopleural fistula: delivered 600, expired 450 mL", []derive.Reading{
 			prio(rd(derive.KindMinuteVolume, 0, 7), 20),
-			prio(rd(derive.KindTidalVolume, 0, 600), 10), prio(rd(derive.KindTidalVolume, 0, 450), 30)}, true},
+			prio(rd(derive.KindTidalVolume, 0, 600), 15), prio(rd(derive.KindTidalVolume, 0, 450), 30)}, true},
+		// (500 − 480)/500 = 4 %, set against expired: no leak to speak of.
+		{"volume control, set 500, expired 480 mL", []derive.Reading{
+			prio(rd(derive.KindMinuteVolume, 0, 7), 20),
+			prio(rd(derive.KindTidalVolume, 0, 500), 10), prio(rd(derive.KindTidalVolume, 0, 480), 30)}, false},
 		// (7.2 − 7)/7.2 = 2.8 %: no leak to speak of.
 		{"sealed circuit: inspired 7.2, expired 7 L/min", []derive.Reading{
 			prio(rd(derive.KindMinuteVolume, 0, 7.2), 10), prio(rd(derive.KindMinuteVolume, 0, 7), 20),
