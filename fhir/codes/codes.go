@@ -68,6 +68,15 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
+// ConvertedPercentPriority is the highest priority an end-tidal or
+// mixed-expired CO2 reading sent as a percentage keeps, whatever its row
+// says: turned into a partial pressure with an assumed barometric pressure
+// and basis, it is a substitute for a measured partial pressure (the
+// priority of the fraction code 19889-5), so it is disclosed and a
+// measured pressure in the same window is preferred to it. The decoder
+// applies it.
+const ConvertedPercentPriority = 10
+
 // Code system URIs.
 const (
 	LOINC = "http://loinc.org"

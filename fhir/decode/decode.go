@@ -25,7 +25,8 @@
 //     ([derive.ReasonNoValue], with the dataAbsentReason or the value[x]
 //     type in the detail); a comparator makes it [derive.ReasonCensored].
 //  8. Unit: see package units ([derive.ReasonUnitUnknown],
-//     [derive.ReasonUnitMismatch]).
+//     [derive.ReasonUnitMismatch]). A CO2 percentage, under whatever code,
+//     keeps at most [codes.ConvertedPercentPriority]: it is a substitute.
 //  9. Time: effectiveDateTime, effectiveInstant or effectivePeriod.start,
 //     which must carry a time of day and a timezone; `issued` (when the
 //     result was reported) is never used, because pairing needs the sample
@@ -492,6 +493,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(derive.ReasonUnitUnknown, clip(err.Error()))
 	}
 	it.Conversion = conv
+	if conv.Percent {
+		// A percentage under any code, a partial-pressure one included, is
+		// converted with an assumed pressure: a substitute.
+		it.Priority = min(it.Priority, codes.ConvertedPercentPriority)
+	}
 
 	// Time.
 	at, reason, problem := effectiveTime(&o)
