@@ -35,8 +35,7 @@ import (
 //   - LeakFraction 0.10: a measured (expired) minute or tidal volume more
 //     than 10 % below the inspired or delivered one in the same window is
 //     a leak (cuff, circuit, bronchopleural fistula); the expired volumes
-//     and end-tidal CO2 then read low (the ~10 % figure is from memory,
-//     REFERENCE 1.3).
+//     and end-tidal CO2 then read low (the ~10 % figure is from memory).
 //   - Fall: a 30 min trailing baseline of at least 5 readings; a reading is
 //     fallen when it is 8 mm[Hg] or 25 % below baseline, whichever is
 //     smaller (so a low baseline still gives a proportionate threshold); the
@@ -508,8 +507,8 @@ func (b *builder) need(c Code, pa bool, kinds ...Kind) bool {
 // Such a number comes from a wrong input (VCO2, VE, PĒCO2, a PaCO2 in
 // another unit), and writing it flagged as a markedly raised dead space
 // would present an artefact as a finding. The range check (0 < PĒCO2 <
-// PaCO2, VD/VT in [0, 1), 0.9 or more implausible) is from memory
-// (REFERENCE 1.3); the most severe ARDS cohorts average about 0.6–0.7
+// PaCO2, VD/VT in [0, 1), 0.9 or more implausible) is from memory; the
+// most severe ARDS cohorts average about 0.6–0.7
 // (Nuckton 2002: non-survivors 0.63 ± 0.10), so 0.9 is far in the tail.
 const ImplausibleVDVT = 0.9
 
@@ -640,7 +639,7 @@ func (b *builder) values() {
 				Terms:    b.paTermsWith(Term{"PetCO2", et, "mm[Hg]"}),
 			}
 			if f < 0 {
-				v.Notes = append(v.Notes, "negative: end-tidal above arterial PCO2; this occurs with low V/Q units (Malley 2005), but suspect a timing or specimen error (blood gas and end-tidal not simultaneous, a venous or air-contaminated sample)")
+				v.Notes = append(v.Notes, "negative: end-tidal above arterial PCO2; this occurs with low V/Q units, but suspect a timing or specimen error (blood gas and end-tidal not simultaneous, a venous or air-contaminated sample)")
 			}
 			b.emit(v)
 		}

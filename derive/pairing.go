@@ -143,7 +143,7 @@ func substituteRisk(k Kind) string {
 // below the inspired by more than cfg.LeakFraction of it, gas is lost
 // between the two (a cuff or circuit leak, a bronchopleural fistula): the
 // expired volumes and end-tidal CO2 read low, so every value computed
-// from a volume carries a note (REFERENCE 1.3, leaks). A leak seen on
+// from a volume carries a note (a leak above about 10 %, from memory). A leak seen on
 // either volume concerns the whole circuit, so the note goes on values
 // from the other volume too. A set tidal volume counts as the inspired
 // one, as it is in a volume-controlled mode.

@@ -42,7 +42,8 @@
 // A gas volume depends on the conditions it is reported at, and the
 // mixed-expired equation PĒCO2 = 0.863 × VCO2 / VE is valid only for VCO2
 // at STPD (0 °C, 760 mm[Hg], dry) and VE at BTPS (body temperature,
-// ambient pressure, saturated with water vapour) (REFERENCE 1.1, E3). So
+// ambient pressure, saturated with water vapour): its 0.863 is
+// 760 × (310/273)/1000, from memory. So
 // VCO2's canonical unit is mL/min STPD, and minute and tidal volume's are
 // at BTPS; an unannotated unit is taken to be so. A UCUM annotation naming
 // other conditions ({STPD}, {BTPS}, {ATPS}, {ATPD}; any case) is not
