@@ -32,6 +32,10 @@ import (
 //     PCO2(T) = PCO2(37) × 10^(0.019 × (T − 37)), the coefficient published
 //     for PCO2 of blood in vitro (J Appl Physiol 1965; Bradley, Severinghaus
 //     and Stupfel 1956 give 0.0185).
+//   - LeakFraction 0.10: a measured (expired) minute or tidal volume more
+//     than 10 % below the inspired or delivered one in the same window is
+//     a leak (cuff, circuit, bronchopleural fistula); the expired volumes
+//     and end-tidal CO2 then read low (the ~10 % figure is from memory).
 //   - Fall: a 30 min trailing baseline of at least 5 readings; a reading is
 //     fallen when it is 8 mm[Hg] or 25 % below baseline, whichever is
 //     smaller (so a low baseline still gives a proportionate threshold); the
@@ -62,6 +66,7 @@ func DefaultConfig() Config {
 			Tolerance:   0.5,
 			Coefficient: 0.019,
 		},
+		LeakFraction: 0.10,
 		Fall: FallConfig{
 			Baseline:            30 * time.Minute,
 			MinBaselineReadings: 5,
@@ -150,6 +155,7 @@ func (c Config) Validate() error {
 	if !(c.Temperature.Coefficient > 0 && c.Temperature.Coefficient < 0.1) {
 		errs = append(errs, fmt.Errorf("Temperature.Coefficient must be above 0 and below 0.1 per °C, got %v", c.Temperature.Coefficient))
 	}
+	fraction("LeakFraction", c.LeakFraction)
 	if err := errors.Join(errs...); err != nil {
 		return fmt.Errorf("derive config: %w", err)
 	}
@@ -253,6 +259,11 @@ type builder struct {
 	steadyNote  string
 	steadyTerms []Term
 
+	// leakNote goes on every value computed from a minute or tidal volume
+	// when the window shows a leak; leakTerms are its figures.
+	leakNote  string
+	leakTerms []Term
+
 	// The mixed-expired PCO2 used by the fractions, measured or computed.
 	pe       float64
 	peOK     bool
@@ -264,6 +275,9 @@ type builder struct {
 	phys       float64
 	physOK     bool
 	physInputs []Kind
+	// physImplausible is set when the physiologic VD/VT was computed but
+	// left out as implausible: the estimate must not stand in for it.
+	physImplausible bool
 }
 
 func (b *builder) collect(cfg Config, readings []Reading) {
@@ -315,6 +329,9 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		rs := byKind[k]
 		if len(rs) == 0 {
 			continue
+		}
+		if k == KindMinuteVolume || k == KindTidalVolume {
+			b.leak(cfg, k, rs)
 		}
 		rs, substitute := b.preferred(k, rs)
 		b.priority[k] = rs[0].Priority
@@ -432,6 +449,10 @@ func (b *builder) emit(v Value) bool {
 	for _, k := range v.Inputs {
 		notes = append(notes, b.kindNotes[k]...)
 	}
+	if b.leakNote != "" && (slices.Contains(v.Inputs, KindMinuteVolume) || slices.Contains(v.Inputs, KindTidalVolume)) {
+		notes = append(notes, b.leakNote)
+		v.Terms = append(v.Terms, b.leakTerms...)
+	}
 	v.Notes = append(notes, v.Notes...)
 	b.d.Values = append(b.d.Values, v)
 	return true
@@ -477,6 +498,29 @@ func (b *builder) need(c Code, pa bool, kinds ...Kind) bool {
 	}
 	b.omit(c, reason, "%s", strings.Join(why, "; and "))
 	return false
+}
+
+// ImplausibleVDVT is the dead-space fraction (VD/VT: Enghoff, Bohr or the
+// regression estimate) at and above which a value is not written: with
+// VD/VT 0.9 only a tenth of each breath would reach perfused alveoli, so
+// alveolar ventilation at a minute volume of 7 L/min would be 0.7 L/min.
+// Such a number comes from a wrong input (VCO2, VE, PĒCO2, a PaCO2 in
+// another unit), and writing it flagged as a markedly raised dead space
+// would present an artefact as a finding. The range check (0 < PĒCO2 <
+// PaCO2, VD/VT in [0, 1), 0.9 or more implausible) is from memory; the
+// most severe ARDS cohorts average about 0.6–0.7
+// (Nuckton 2002: non-survivors 0.63 ± 0.10), so 0.9 is far in the tail.
+const ImplausibleVDVT = 0.9
+
+// implausibleVDVT records the omission of c when f is at or above
+// [ImplausibleVDVT], judged on the value as written, and reports whether
+// it did.
+func (b *builder) implausibleVDVT(c Code, f float64, suspect string) bool {
+	if asWritten(f, 3) < ImplausibleVDVT {
+		return false
+	}
+	b.omit(c, ReasonImplausibleVDVT, "VD/VT %.3f is %v or more, not a plausible dead-space fraction of a ventilated patient: %s", f, ImplausibleVDVT, suspect)
+	return true
 }
 
 // inFraction is the bound every dead-space fraction must meet.
@@ -526,6 +570,18 @@ const GradientHigh = 5.0
 // 0.63 ± 0.10 vs survivors 0.54 ± 0.09).
 const PhysiologicHigh = 0.60
 
+// AlveolarFractionFloor is the lowest end-tidal alveolar dead-space
+// fraction reported: end-tidal CO2 up to 25 % above arterial (10 mm[Hg] at
+// a PaCO2 of 40). A negative fraction is reported with a warning (Malley
+// WJ, Clinical Blood Gases, 2005: "Occasionally, PetCO2 may actually be
+// higher than PaCO2", low V/Q units with long time constants; do not clamp
+// it silently), but the negative gradients described with low V/Q units
+// are a few mm[Hg]; one beyond this bound is not a physiological reading
+// of one moment (a blood gas and an end-tidal value of different times, a
+// venous sample) and the value is left out as [ReasonInconsistent]. The
+// bound itself is a design choice.
+const AlveolarFractionFloor = -0.25
+
 // VentilatoryRatioHigh is the ventilatory ratio above which the value is
 // flagged high: in adults with ARDS, a ratio above 2 (the cohort median) on
 // day 1 was associated with higher mortality (ROSE trial secondary
@@ -562,20 +618,30 @@ func (b *builder) values() {
 	}
 
 	// 2. End-tidal alveolar dead-space fraction.
+	// A negative fraction (end-tidal above arterial) is reported with a
+	// warning, not clamped or dropped: Malley WJ, Clinical Blood Gases,
+	// 2005, "Occasionally, PetCO2 may actually be higher than PaCO2", with
+	// the advice to suspect a timing or specimen error. Below
+	// AlveolarFractionFloor the inputs cannot both be right.
 	if b.need(CodeAlveolarFraction, true, KindEtCO2) {
 		f := AlveolarFraction(pa, et)
 		switch {
-		case f < 0:
-			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v above PaCO2 %v mm[Hg] gives %v; see the gradient's note", et, pa, f)
-		case !inFraction(f):
-			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v mm[Hg] gives %v, outside [0, 1)", et, f)
+		case f < AlveolarFractionFloor:
+			b.omit(CodeAlveolarFraction, ReasonInconsistent, "PetCO2 %v mm[Hg] is more than %v × PaCO2 %v mm[Hg] (fraction %.3f, below %v): suspect timing, sampling or units",
+				et, 1-AlveolarFractionFloor, pa, f, AlveolarFractionFloor)
+		case f >= 1:
+			b.omit(CodeAlveolarFraction, ReasonFractionBounds, "PetCO2 %v mm[Hg] gives %v, outside [%v, 1)", et, f, AlveolarFractionFloor)
 		default:
-			b.emit(Value{
+			v := Value{
 				Code: CodeAlveolarFraction, Value: f, Unit: "1",
 				Inputs:   b.paInputs(KindEtCO2),
 				Equation: "(PaCO2 − PetCO2)/PaCO2, end-tidal alveolar dead-space fraction (name: Bhalla AK et al., Respir Care 2015;60:1548)",
 				Terms:    b.paTermsWith(Term{"PetCO2", et, "mm[Hg]"}),
-			})
+			}
+			if f < 0 {
+				v.Notes = append(v.Notes, "negative: end-tidal above arterial PCO2; this occurs with low V/Q units, but suspect a timing or specimen error (blood gas and end-tidal not simultaneous, a venous or air-contaminated sample)")
+			}
+			b.emit(v)
 		}
 	}
 
@@ -673,6 +739,10 @@ func (b *builder) physiologic(pa float64) {
 		b.omit(c, ReasonFractionBounds, "(PaCO2 − PĒCO2)/PaCO2 gives %v, outside [0, 1)", f)
 		return
 	}
+	if b.implausibleVDVT(c, f, "suspect VCO2, VE or PĒCO2, or a PaCO2 in another unit") {
+		b.physImplausible = true
+		return
+	}
 	inputs := b.paInputs(b.peInputs...)
 	v := Value{
 		Code: c, Value: f, Unit: "1",
@@ -717,6 +787,9 @@ func (b *builder) airway(et float64) {
 	f := BohrAirwayFraction(et, b.pe)
 	if !inFraction(f) {
 		b.omit(c, ReasonFractionBounds, "(PetCO2 − PĒCO2)/PetCO2 gives %v, outside [0, 1)", f)
+		return
+	}
+	if b.implausibleVDVT(c, f, "suspect VCO2, VE or PĒCO2, or the end-tidal reading") {
 		return
 	}
 	v := Value{
@@ -828,6 +901,10 @@ func (b *builder) estimated(pa, et float64) {
 		b.omit(c, ReasonNotApplicable, "the physiologic VD/VT was computed from expired CO2")
 		return
 	}
+	if b.physImplausible {
+		b.omit(c, ReasonInconsistent, "the physiologic VD/VT computed from expired CO2 was implausible (see its omission): the inputs contradict each other, and an estimate would hide that")
+		return
+	}
 	if b.child() {
 		b.omit(c, ReasonNotAdult, "the regression estimate was derived in ventilated adults; the patient is %d", b.age)
 		return
@@ -857,6 +934,9 @@ func (b *builder) estimated(pa, et float64) {
 	f := EstimatedFraction(g, rr, age)
 	if !inFraction(f) {
 		b.omit(c, ReasonFractionBounds, "the regression gives %v, outside [0, 1)", f)
+		return
+	}
+	if b.implausibleVDVT(c, f, "suspect the gradient or the rate") {
 		return
 	}
 	b.emit(Value{

@@ -62,7 +62,7 @@ func TestValidate(t *testing.T) {
 			"Fall.Drop", "Fall.DropFraction", "Fall.Recover", "Fall.MaxGap", "Fall.MinEpisodeReadings",
 			"Artefact.Floor", "Artefact.Fraction", "Artefact.MinUsableFraction",
 			"Steady.Lookback", "Steady.MinuteVolumeChange", "Steady.EtCO2Change",
-			"Temperature.Search", "Temperature.Coefficient",
+			"Temperature.Search", "Temperature.Coefficient", "LeakFraction",
 		}},
 		{"baseline reach shorter than the baseline", func(c *derive.Config) { c.Fall.BaselineMax = time.Minute }, []string{"Fall.BaselineMax"}},
 		{"temperature coefficient of 1", func(c *derive.Config) { c.Temperature.Coefficient = 1 }, []string{"Temperature.Coefficient"}},

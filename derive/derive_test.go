@@ -305,15 +305,30 @@ func TestDerive(t *testing.T) {
 			},
 		},
 		{
+			// End-tidal 12 mm[Hg] above arterial: (40 − 52)/40 = −0.3,
+			// beyond the negative gradients of low V/Q units; the bound
+			// (derive.AlveolarFractionFloor, −0.25) is a design choice.
+			name: "end-tidal far above arterial", gas: 40, patient: man60,
+			readings: []derive.Reading{rd(derive.KindEtCO2, 0, 52)},
+			values:   map[derive.Code]float64{derive.CodeGradient: -12},
+			omitted: map[derive.Code]derive.Reason{
+				derive.CodeAlveolarFraction: derive.ReasonInconsistent,
+				derive.CodeMixedExpiredCO2:  derive.ReasonMissingInput, derive.CodePhysiologic: derive.ReasonMissingInput,
+				derive.CodeAirwayFraction: derive.ReasonMissingInput, derive.CodeDeadSpaceVolume: derive.ReasonMissingInput,
+				derive.CodeAlveolarVent: derive.ReasonMissingInput, derive.CodeVentilatoryRatio: derive.ReasonMissingInput,
+				derive.CodeEstimatedFraction: derive.ReasonMissingInput,
+			},
+		},
+		{
 			// Malley 2005: "Occasionally, PetCO2 may actually be higher
 			// than PaCO2": emitted with a note, never clamped; the AVDSF
-			// would be negative and is omitted.
+			// is reported negative with its warning, (40 − 44)/40 = −0.1
+			// (REFERENCE 1.3: "report AVDSF < 0 with a warning").
 			name: "negative gradient", gas: 40, patient: man60,
 			readings: []derive.Reading{rd(derive.KindEtCO2, 0, 44)},
-			values:   map[derive.Code]float64{derive.CodeGradient: -4},
+			values:   map[derive.Code]float64{derive.CodeGradient: -4, derive.CodeAlveolarFraction: -0.1},
 			omitted: map[derive.Code]derive.Reason{
-				derive.CodeAlveolarFraction: derive.ReasonFractionBounds,
-				derive.CodeMixedExpiredCO2:  derive.ReasonMissingInput, derive.CodePhysiologic: derive.ReasonMissingInput,
+				derive.CodeMixedExpiredCO2: derive.ReasonMissingInput, derive.CodePhysiologic: derive.ReasonMissingInput,
 				derive.CodeAirwayFraction: derive.ReasonMissingInput, derive.CodeDeadSpaceVolume: derive.ReasonMissingInput,
 				derive.CodeAlveolarVent: derive.ReasonMissingInput, derive.CodeVentilatoryRatio: derive.ReasonMissingInput,
 				derive.CodeEstimatedFraction: derive.ReasonMissingInput,

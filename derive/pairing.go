@@ -98,14 +98,22 @@ func (b *builder) preferred(k Kind, rs []Reading) ([]Reading, string) {
 		return kept, ""
 	}
 	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within ±%v of the sample time%s",
-		k, substituteName(k), best, k, b.window, substituteRisk(k))
+		k, substituteName(k, best), best, k, b.window, substituteRisk(k))
 }
 
-// substituteName says what a low-priority source of kind k is, by the
-// default code table's rows.
-func substituteName(k Kind) string {
+// deliveredPriority is the default code table's priority of a delivered
+// (inspired) tidal volume (MDC 151980), between a setting (10) and a
+// measured volume (20 or more): a measurement, but of the inspired side.
+const deliveredPriority = 15
+
+// substituteName says what a low-priority source of kind k and priority p
+// is, by the default code table's rows.
+func substituteName(k Kind, p int16) string {
 	switch k {
 	case KindTidalVolume:
+		if p >= deliveredPriority {
+			return "a delivered (inspired) tidal volume"
+		}
 		return "a set tidal volume"
 	case KindMinuteVolume:
 		return "an inspired minute volume"
@@ -127,6 +135,66 @@ func substituteRisk(k Kind) string {
 		return "; it misses the other breaths"
 	}
 	return ""
+}
+
+// leak compares, in one window, the inspired or delivered volume of kind k
+// (the highest priority below [SubstitutePriority]) with the measured one
+// (the highest priority present, at or above it). When the measured is
+// below the inspired by more than cfg.LeakFraction of it, gas is lost
+// between the two (a cuff or circuit leak, a bronchopleural fistula): the
+// expired volumes and end-tidal CO2 read low, so every value computed
+// from a volume carries a note (a leak above about 10 %, from memory). A leak seen on
+// either volume concerns the whole circuit, so the note goes on values
+// from the other volume too. A set tidal volume counts as the inspired
+// one, as it is in a volume-controlled mode.
+func (b *builder) leak(cfg Config, k Kind, rs []Reading) {
+	var best, sub int16
+	for _, r := range rs {
+		best = max(best, r.Priority)
+		if r.Priority > 0 && r.Priority < SubstitutePriority {
+			sub = max(sub, r.Priority)
+		}
+	}
+	if best < SubstitutePriority || sub == 0 {
+		return
+	}
+	var measured, inspired []float64
+	for _, r := range rs {
+		switch r.Priority {
+		case best:
+			measured = append(measured, r.Value)
+		case sub:
+			inspired = append(inspired, r.Value)
+		}
+	}
+	in, out := Median(inspired), Median(measured)
+	lost := (in - out) / in
+	if !(lost > cfg.LeakFraction) {
+		return
+	}
+	unit, name := "L/min", "minute volume"
+	if k == KindTidalVolume {
+		unit, name = "mL", "tidal volume"
+	}
+	what := fmt.Sprintf("the measured %s %.3g %s is %.0f %% below the %s one (%.3g %s)", name, out, unit, 100*lost, substituteSide(k, sub), in, unit)
+	if b.leakNote == "" {
+		b.leakNote = "possible leak (cuff, circuit or bronchopleural): " + what +
+			" in the pairing window; expired volumes and end-tidal CO2 then read low, so this value is unreliable"
+	} else {
+		b.leakNote += "; also " + what
+	}
+	b.leakTerms = append(b.leakTerms, Term{"inspired " + name, in, unit}, Term{"measured " + name, out, unit})
+}
+
+// substituteSide names the inspired side of kind k at priority p.
+func substituteSide(k Kind, p int16) string {
+	if k == KindTidalVolume && p < deliveredPriority {
+		return "set"
+	}
+	if k == KindTidalVolume {
+		return "delivered"
+	}
+	return "inspired"
 }
 
 // artefacts leaves out end-tidal readings that cannot be the patient's
@@ -275,8 +343,13 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	temp, haveTemp := nearest(KindBodyTemperature, cfg.Temperature.Search)
 	if adj, ok := nearest(KindPaCO2Adjusted, sameSample); ok {
 		b.pa, b.paAdjusted = adj.Value, true
-		b.paUsed = append(b.paUsed, Summary{Kind: KindPaCO2Adjusted, Median: adj.Value, Readings: []Reading{adj},
-			Rule: fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%v), preferred to the 37 °C value", sameSample)})
+		rule := fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%v), preferred to the 37 °C value", sameSample)
+		if adj.Ref == b.d.Gas.Ref {
+			// The decoder gives an adjusted value reported on the blood
+			// gas itself (a component) the gas's own reference and time.
+			rule = "temperature-adjusted PaCO2 reported on the blood gas itself, preferred to the 37 °C value"
+		}
+		b.paUsed = append(b.paUsed, Summary{Kind: KindPaCO2Adjusted, Median: adj.Value, Readings: []Reading{adj}, Rule: rule})
 		b.paTerms = []Term{{"PaCO2 at 37 °C", b.d.Gas.Value, "mm[Hg]"}, {"PaCO2 at patient temperature (reported)", adj.Value, "mm[Hg]"}}
 		b.paNote = fmt.Sprintf("PaCO2 at the patient's temperature as reported by the analyser (%v mm[Hg]; %v mm[Hg] at 37 °C)", adj.Value, b.d.Gas.Value)
 		return

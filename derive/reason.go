@@ -34,13 +34,14 @@ const (
 
 // Reasons a derived value is not emitted.
 const (
-	ReasonMissingInput   Reason = "input-missing"           // a reading the equation needs was not in the window
-	ReasonFractionBounds Reason = "fraction-out-of-bounds"  // a fraction outside [0, 1)
-	ReasonPatientFacts   Reason = "patient-facts-missing"   // sex, height or age unknown
-	ReasonInconsistent   Reason = "inputs-inconsistent"     // inputs that cannot both be right, such as PĒCO2 above PaCO2
-	ReasonNotApplicable  Reason = "not-applicable"          // a measured value made the estimate unnecessary
-	ReasonNotAdult       Reason = "patient-not-adult"       // an index defined for adults, for a patient under 18
-	ReasonTooFewUsable   Reason = "too-few-usable-readings" // too few readings of the window were usable after artefacts were left out
+	ReasonMissingInput    Reason = "input-missing"           // a reading the equation needs was not in the window
+	ReasonFractionBounds  Reason = "fraction-out-of-bounds"  // a fraction outside [0, 1)
+	ReasonPatientFacts    Reason = "patient-facts-missing"   // sex, height or age unknown
+	ReasonInconsistent    Reason = "inputs-inconsistent"     // inputs that cannot both be right, such as PĒCO2 above PaCO2
+	ReasonNotApplicable   Reason = "not-applicable"          // a measured value made the estimate unnecessary
+	ReasonNotAdult        Reason = "patient-not-adult"       // an index defined for adults, for a patient under 18
+	ReasonTooFewUsable    Reason = "too-few-usable-readings" // too few readings of the window were usable after artefacts were left out
+	ReasonImplausibleVDVT Reason = "fraction-implausible"    // a dead-space fraction (VD/VT) of 0.9 or more: suspect the inputs
 )
 
 // AllReasons lists every reason, inputs first, for documentation and for
@@ -55,5 +56,6 @@ func AllReasons() []Reason {
 		ReasonRecoded, ReasonDeleted,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
 		ReasonInconsistent, ReasonNotApplicable, ReasonNotAdult, ReasonTooFewUsable,
+		ReasonImplausibleVDVT,
 	}
 }

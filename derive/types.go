@@ -8,7 +8,7 @@ import (
 // derived value's identity: a change to an equation, a default or a pairing
 // rule must change it, so that results computed under different rules are
 // never mistaken for one another.
-const AlgorithmVersion = "2.0.0"
+const AlgorithmVersion = "2.1.0"
 
 // Kind is what a reading measures. Each kind has one canonical unit, and
 // every [Reading] value is in it; unit conversion is the adapter's job.
@@ -275,7 +275,13 @@ type Config struct {
 	// Temperature decides how a PaCO2 is brought to the patient's
 	// temperature.
 	Temperature TemperatureConfig
-	Fall        FallConfig
+	// LeakFraction: when an inspired or delivered volume (a lower-priority
+	// source of minute or tidal volume) and the measured one are in the
+	// same pairing window, and the measured is below the inspired by more
+	// than this fraction of it, the values computed from the volumes carry
+	// a leak note.
+	LeakFraction float64
+	Fall         FallConfig
 }
 
 // ArtefactConfig tunes which end-tidal CO2 readings of a pairing window are

@@ -53,6 +53,9 @@ func backfillCommand(ctx context.Context, args []string, getenv func(string) str
 		Derive: resolved.Derive, Decode: resolved.Decode, Encode: resolved.Encode, Files: files,
 		TypeFilter: *typeFilter, StateDir: *stateDir, DryRun: *dryRun, MaxTransactionEntries: conn.MaxTxEntries,
 	}
+	// The server written to is the service's own: an absolute reference to
+	// it is the same resource as the relative one (fhir/ref's Key).
+	opts.Decode.Base = conn.FHIRBase
 	if len(files) > 0 {
 		fs.Visit(func(f *flag.Flag) {
 			if exportOnlyFlags[f.Name] {

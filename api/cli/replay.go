@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"net/url"
 	"os"
 	"time"
 
@@ -32,6 +33,7 @@ func replayCommand(ctx context.Context, args []string, getenv func(string) strin
 	issued := fs.String("issued", "", "RFC 3339 time to stamp as issued and recorded (default: now); fix it for reproducible output")
 	codeSystemPath := fs.String("codesystem", "", "also write the project's CodeSystem (every derived code with its definition and unit, FHIR R4 JSON) to this file")
 	omissionsPath := fs.String("omissions", "", "also write every input left out and every value not emitted to this file, one JSON object a line (reference, reason, detail)")
+	fhirBase := fs.String("fhir-base", "", "base URL of the FHIR server the files come from and the output is for: a subject or encounter written as an absolute URL under it is read as the relative reference (one patient); under any other base it stays absolute and is another patient")
 	htmlPath := fs.String("html", "", "also write a self-contained HTML report (overview, timelines, explanations) to this file")
 	files, help, err := settings.ParseCommand(fs, args)
 	if help {
@@ -41,6 +43,12 @@ func replayCommand(ctx context.Context, args []string, getenv func(string) strin
 	resolved, err := derivation.Resolve(version)
 	errs = append(errs, err)
 	cfg, decOpts, encOpts := resolved.Derive, resolved.Decode, resolved.Encode
+	if *fhirBase != "" {
+		if u, err := url.Parse(*fhirBase); err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" {
+			errs = append(errs, fmt.Errorf("--fhir-base must be an http or https URL, got %q", *fhirBase))
+		}
+		decOpts.Base = *fhirBase
+	}
 	if *format != "ndjson" && *format != "table" {
 		errs = append(errs, fmt.Errorf("--format must be ndjson or table, got %q", *format))
 	}

@@ -123,6 +123,9 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 		return nil, err
 	}
 	table := opts.Decode.Table
+	// An absolute reference to this server is the same resource as the
+	// relative one (fhir/ref's Key): one patient, one key in the store.
+	opts.Decode.Base = cfg.FHIRBase
 	s := &Service{cfg: cfg, log: log, Metrics: metrics.New(version), fall: opts.Derive.Fall}
 	if s.codeSystem, err = enc.CodeSystem(); err != nil {
 		return nil, err

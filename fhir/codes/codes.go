@@ -45,7 +45,9 @@
 // readings of the highest priority present, reporting the others with
 // [derive.ReasonLowerPriority].
 // Default priorities: measured expired values 30 (tidal volume) or 20,
-// other measurements 20, settings, inspired volumes and partial rates 10–15.
+// other measurements 20, settings, inspired volumes and partial rates 10–15
+// (a delivered, inspired tidal volume 15, above the set one at 10: the
+// pairing names it as delivered from that priority).
 // The pairing chooses per window, and a priority below
 // [derive.SubstitutePriority] (20) is disclosed in the derived value's note
 // as a substitute; a site row keeps to this scale.
@@ -65,6 +67,15 @@ import (
 
 	"github.com/deadspace-fhir/deadspace/derive"
 )
+
+// ConvertedPercentPriority is the highest priority an end-tidal or
+// mixed-expired CO2 reading sent as a percentage keeps, whatever its row
+// says: turned into a partial pressure with an assumed barometric pressure
+// and basis, it is a substitute for a measured partial pressure (the
+// priority of the fraction code 19889-5), so it is disclosed and a
+// measured pressure in the same window is preferred to it. The decoder
+// applies it.
+const ConvertedPercentPriority = 10
 
 // Code system URIs.
 const (

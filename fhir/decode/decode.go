@@ -18,12 +18,15 @@
 //  4. A member of the wrong JSON type: [derive.ReasonMalformed].
 //  5. status other than final, amended or corrected: [derive.ReasonStatus].
 //  6. subject must be a literal Patient reference ("Patient/{id}" or an
-//     absolute URL ending so): [derive.ReasonNoSubject].
+//     absolute URL ending so): [derive.ReasonNoSubject]. An absolute
+//     reference under [Options.Base] becomes relative; one under another
+//     base stays absolute, without its version, and is another patient.
 //  7. Value: valueQuantity with a numeric value is required
 //     ([derive.ReasonNoValue], with the dataAbsentReason or the value[x]
 //     type in the detail); a comparator makes it [derive.ReasonCensored].
 //  8. Unit: see package units ([derive.ReasonUnitUnknown],
-//     [derive.ReasonUnitMismatch]).
+//     [derive.ReasonUnitMismatch]). A CO2 percentage, under whatever code,
+//     keeps at most [codes.ConvertedPercentPriority]: it is a substitute.
 //  9. Time: effectiveDateTime, effectiveInstant or effectivePeriod.start,
 //     which must carry a time of day and a timezone; `issued` (when the
 //     result was reported) is never used, because pairing needs the sample
@@ -40,14 +43,16 @@
 // panel's version (a component has no id of its own). A panel with no such
 // component (one that lists its results by hasMember) is [ItemUnrelated]:
 // its members are read on their own. Other components are not read, with
-// one exception: a PaCO2 (alone or in a panel) that carries the patient's
-// temperature as a component
-// (a component whose code has a body-temperature row, 8310-5) gives that
-// temperature too, in [Item.Also], at the blood gas's effective time and
-// citing the blood gas's own reference: the temperature was entered on the
-// sample, so it is the one the analyser would adjust to. A component
-// temperature that cannot be used (no Quantity, an unknown unit, an
-// implausible value) is dropped; the PaCO2 itself stays usable.
+// two exceptions: a PaCO2 (alone or in a panel) that carries the patient's
+// temperature as a component (a component whose code has a
+// body-temperature row, 8310-5), or the PaCO2 adjusted to the patient's
+// temperature (a paco2-temperature-adjusted row, 32771-8), gives that
+// value too, in [Item.Also], at the blood gas's effective time and citing
+// the blood gas's own reference: the temperature was entered on the
+// sample, so it is the one the analyser would adjust to, and the adjusted
+// value is the analyser's own for the same sample. A component that cannot
+// be used (no Quantity, an unknown unit, an implausible value) is dropped;
+// the PaCO2 itself stays usable.
 //
 // Patients give Sex from gender (male, female; anything else unknown) and
 // BirthDate from birthDate. A partial birth date is taken at the middle of
@@ -81,6 +86,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -138,8 +144,10 @@ type Item struct {
 	// Ref is "Observation/{id}/_history/{vid}", or "Observation/{id}" when
 	// meta.versionId is absent (likewise for Patients).
 	Ref string
-	// Subject is the unversioned patient reference as written, for grouping:
-	// "Patient/123". For a Patient item it is "Patient/{id}".
+	// Subject is the unversioned patient reference, for grouping and for the
+	// derived values' subject: "Patient/123", or an absolute URL when the
+	// reference names a server other than [Options.Base]. For a Patient
+	// item it is "Patient/{id}".
 	Subject     string
 	Status      string
 	LastUpdated time.Time
@@ -151,7 +159,8 @@ type Item struct {
 	// the highest among readings of one kind (see package codes).
 	Priority int
 	// Also holds readings the resource carries besides Reading: the
-	// patient's temperature on a blood gas (see the package documentation),
+	// patient's temperature and the temperature-adjusted PaCO2 on a blood
+	// gas (see the package documentation),
 	// with Ref and AtMillis of Reading and the row's priority in Priority.
 	Also       []derive.Reading
 	Original   Original
@@ -174,10 +183,18 @@ type Options struct {
 	Table *codes.Table
 	// Units are the site's unit settings; the zero value means the defaults.
 	Units units.Options
+	// Base is the FHIR server this service reads and writes (serve's and
+	// backfill's --fhir-base, replay's --fhir-base for an export of it), or
+	// "" when none is known. A subject or encounter written as an absolute
+	// URL under it is the same resource as the relative reference, so it is
+	// keyed and written relative; an absolute reference under any other
+	// base keeps its base (fhir/ref's Key).
+	Base string
 }
 
 // Decoder decodes resources. It is safe for concurrent use.
 type Decoder struct {
+	base    string
 	table   *codes.Table
 	units   units.Options
 	codeSet map[string]struct{}
@@ -203,7 +220,7 @@ func New(opts Options) *Decoder {
 	for _, c := range t.Codes() {
 		set[c] = struct{}{}
 	}
-	return &Decoder{table: t, units: opts.Units, codeSet: set}
+	return &Decoder{base: opts.Base, table: t, units: opts.Units, codeSet: set}
 }
 
 // Decode decodes one resource. The error is non-nil only when line is not
@@ -393,7 +410,7 @@ func (d *Decoder) observation(line []byte) Item {
 	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
 		return omit(derive.ReasonMalformed, problem)
 	}
-	subject, subjectProblem := patientSubject(o.Subject)
+	subject, subjectProblem := d.patientSubject(o.Subject)
 	it.Subject = subject
 	if o.Status == "entered-in-error" {
 		return omit(derive.ReasonEnteredInError, "status entered-in-error")
@@ -419,7 +436,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(derive.ReasonNoSubject, subjectProblem)
 	}
 	if o.Encounter != nil && o.Encounter.Reference != "" {
-		it.Reading.Encounter = intern(o.Encounter.Reference)
+		enc := o.Encounter.Reference
+		if r, key, err := ref.Key(enc, d.base); err == nil && r.Type == "Encounter" {
+			enc = key
+		}
+		it.Reading.Encounter = intern(enc)
 	}
 
 	// Value: the Observation's own, or a panel's component's.
@@ -472,6 +493,11 @@ func (d *Decoder) observation(line []byte) Item {
 		return omit(derive.ReasonUnitUnknown, clip(err.Error()))
 	}
 	it.Conversion = conv
+	if conv.Percent {
+		// A percentage under any code, a partial-pressure one included, is
+		// converted with an assumed pressure: a substitute.
+		it.Priority = min(it.Priority, codes.ConvertedPercentPriority)
+	}
 
 	// Time.
 	at, reason, problem := effectiveTime(&o)
@@ -491,7 +517,7 @@ func (d *Decoder) observation(line []byte) Item {
 	it.Reading.AtMillis = at.UnixMilli()
 	it.Reading.Value = conv.ToValue
 	if row.Kind == derive.KindPaCO2 {
-		it.Also = d.componentTemperature(&o, it.Reading)
+		it.Also = d.componentsAlso(&o, it.Reading)
 	}
 	return it
 }
@@ -518,16 +544,21 @@ func (d *Decoder) panelComponent(o *observationJSON, kind derive.Kind) (*compone
 	return rejected, rejectedRow, rejected != nil
 }
 
-// componentTemperature returns the patient's temperature carried as a
-// component of blood gas gas, or nil; see the package documentation.
-func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) []derive.Reading {
+// componentsAlso returns what blood gas gas carries besides its PaCO2 as
+// components: the patient's temperature (a body-temperature row, 8310-5)
+// and the PaCO2 adjusted to it (a paco2-temperature-adjusted row,
+// 32771-8), the first usable component of each kind, at the gas's time and
+// citing the gas's own reference; see the package documentation.
+func (d *Decoder) componentsAlso(o *observationJSON, gas derive.Reading) []derive.Reading {
+	var out []derive.Reading
 	for _, c := range o.Component {
 		row, ok := d.lookup(c.Code)
-		if !ok || row.Action != codes.ActionAccept || row.Kind != derive.KindBodyTemperature {
+		if !ok || row.Action != codes.ActionAccept || (row.Kind != derive.KindBodyTemperature && row.Kind != derive.KindPaCO2Adjusted) ||
+			slices.ContainsFunc(out, func(r derive.Reading) bool { return r.Kind == row.Kind }) {
 			continue
 		}
 		q := c.ValueQuantity
-		if q == nil || !present(q.Value) || q.Comparator != "" {
+		if q == nil || !present(q.Value) || q.Comparator != "" || c.DataAbsentReason != nil {
 			continue
 		}
 		v, err := strconv.ParseFloat(string(q.Value), 64)
@@ -541,10 +572,10 @@ func (d *Decoder) componentTemperature(o *observationJSON, gas derive.Reading) [
 		if reason, _ := derive.CheckValue(row.Kind, conv.ToValue); reason != "" {
 			continue
 		}
-		return []derive.Reading{{Ref: gas.Ref, Encounter: gas.Encounter, AtMillis: gas.AtMillis, Value: conv.ToValue,
-			Kind: derive.KindBodyTemperature, Priority: int16(row.Priority)}}
+		out = append(out, derive.Reading{Ref: gas.Ref, Encounter: gas.Encounter, AtMillis: gas.AtMillis, Value: conv.ToValue,
+			Kind: row.Kind, Priority: int16(row.Priority)})
 	}
-	return nil
+	return out
 }
 
 // fhirID is id when it is a FHIR id, else "".
@@ -574,7 +605,7 @@ func (d *Decoder) Recoded(line []byte) (Item, bool) {
 	if problem := d.identify(&it, "Observation", o.ID, o.Meta); problem != "" {
 		return Item{}, false
 	}
-	subject, problem := patientSubject(o.Subject)
+	subject, problem := d.patientSubject(o.Subject)
 	if problem != "" {
 		return Item{}, false
 	}
@@ -617,10 +648,11 @@ func (d *Decoder) identify(it *Item, resourceType, id string, meta *metaJSON) st
 	return ""
 }
 
-// patientSubject returns the unversioned Patient reference as written
-// (relative, or absolute with its server base), or a problem. fhir/ref
-// parses it.
-func patientSubject(r *referenceJSON) (string, string) {
+// patientSubject returns the unversioned Patient reference the patient is
+// keyed by, or a problem: relative when written so or under the service's
+// own server base, else absolute with its base (fhir/ref's Key, which
+// parses it).
+func (d *Decoder) patientSubject(r *referenceJSON) (string, string) {
 	if r == nil {
 		return "", "no subject"
 	}
@@ -630,14 +662,14 @@ func patientSubject(r *referenceJSON) (string, string) {
 		}
 		return "", "subject has no reference"
 	}
-	p, base, err := ref.ParseAny(r.Reference)
+	p, key, err := ref.Key(r.Reference, d.base)
 	switch {
 	case err != nil:
 		return "", "subject is not a Patient/{id} reference"
 	case p.Type != "Patient":
 		return "", fmt.Sprintf("subject is a %q reference, not a Patient", clip(p.Type))
 	}
-	return intern(base + p.Logical()), ""
+	return intern(key), ""
 }
 
 // effectiveTime applies rule 9 of the package documentation. Two

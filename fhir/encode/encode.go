@@ -164,7 +164,8 @@ func (e *Encoder) issued() string {
 func instant(t time.Time) string { return t.UTC().Format(time.RFC3339Nano) }
 
 // Derivation encodes every value of d for the patient subject
-// ("Patient/id", the blood gas's subject) as one Observation each, in the
+// ("Patient/id", or the absolute URL of a patient of another server: the
+// blood gas's subject as the decoder keyed it) as one Observation each, in the
 // order of d.Values, and one Provenance for them all.
 //
 // The Provenance targets are unversioned ("Observation/<id>"): the version
@@ -172,7 +173,7 @@ func instant(t time.Time) string { return t.UTC().Format(time.RFC3339Nano) }
 // them; a caller that needs versioned targets rewrites them after the
 // write.
 func (e *Encoder) Derivation(subject string, d derive.Derivation) (Bundle, error) {
-	subj, err := logical(subject, "Patient")
+	subj, err := subjectRef(subject, "Patient")
 	if err != nil {
 		return Bundle{}, fmt.Errorf("encode derivation: subject: %w", err)
 	}
@@ -181,7 +182,7 @@ func (e *Encoder) Derivation(subject string, d derive.Derivation) (Bundle, error
 		if err != nil {
 			return Bundle{}, fmt.Errorf("encode derivation: patient: %w", err)
 		}
-		if p.Logical() != subj.String() {
+		if p.Logical() != subj {
 			return Bundle{}, fmt.Errorf("encode derivation: patient facts are for %s, not the subject %s", p.Logical(), subj)
 		}
 	}
@@ -197,7 +198,7 @@ func (e *Encoder) Derivation(subject string, d derive.Derivation) (Bundle, error
 			return Bundle{}, fmt.Errorf("encode derivation: %s appears twice", v.Code)
 		}
 		seen[v.Code] = true
-		obs, used, err := e.value(subj.String(), d, v, issued)
+		obs, used, err := e.value(subj, d, v, issued)
 		if err != nil {
 			return Bundle{}, fmt.Errorf("encode derivation: %w", err)
 		}
@@ -347,11 +348,11 @@ func encounterOf(cited []derive.Reading) (string, error) {
 			return "", nil
 		}
 	}
-	r, err := parseRef(first)
+	r, base, err := fhirref.ParseAny(first)
 	if err != nil || r.Type != "Encounter" {
 		return "", fmt.Errorf("encounter %q: want Encounter/id", first)
 	}
-	return r.Logical(), nil
+	return base + r.Logical(), nil
 }
 
 func methodText(equation string) string {

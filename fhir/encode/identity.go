@@ -229,7 +229,7 @@ func patientCitation(r ref, p derive.Patient) string {
 // FallIdentity computes both identifiers of the Observation that encodes f
 // for the patient subject ("Patient/id").
 func FallIdentity(subject string, f derive.Fall) (Identity, error) {
-	s, err := logical(subject, "Patient")
+	s, err := subjectRef(subject, "Patient")
 	if err != nil {
 		return Identity{}, fmt.Errorf("subject: %w", err)
 	}
@@ -245,7 +245,7 @@ func FallIdentity(subject string, f derive.Fall) (Identity, error) {
 	if err != nil {
 		return Identity{}, err
 	}
-	series, err := episodeSeries(s.String(), EpisodeCode(f), f.Onset)
+	series, err := episodeSeries(s, EpisodeCode(f), f.Onset)
 	if err != nil {
 		return Identity{}, err
 	}
@@ -269,7 +269,7 @@ func EpisodeCode(f derive.Fall) derive.Code {
 // episodeSeries is the series of a fall (code etco2-drop-from-baseline, the
 // same digest as before rises existed) or a rise.
 func episodeSeries(subject string, code derive.Code, onset time.Time) (string, error) {
-	s, err := logical(subject, "Patient")
+	s, err := subjectRef(subject, "Patient")
 	if err != nil {
 		return "", fmt.Errorf("subject: %w", err)
 	}
@@ -277,7 +277,7 @@ func episodeSeries(subject string, code derive.Code, onset time.Time) (string, e
 		return "", fmt.Errorf("fall has no onset time")
 	}
 	return digest("deadspace fall series 1", "code="+string(code),
-		"subject="+s.String(), "onset="+onset.UTC().Format(time.RFC3339Nano))
+		"subject="+s, "onset="+onset.UTC().Format(time.RFC3339Nano))
 }
 
 // valueReadings returns the blood gas and every reading in the summaries

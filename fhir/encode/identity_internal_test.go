@@ -102,6 +102,19 @@ func oldValueIdentity(d derive.Derivation, v derive.Value) (Identity, error) {
 	return Identity{Key: key, Series: series}, nil
 }
 
+// logical parses s and requires an unversioned relative reference of type
+// typ, as the encoder did before it took absolute subjects.
+func logical(s, typ string) (ref, error) {
+	r, err := parseRef(s)
+	if err != nil {
+		return ref{}, err
+	}
+	if r.Type != typ || r.Version != "" {
+		return ref{}, fmt.Errorf("reference %q: want an unversioned %s/id", s, typ)
+	}
+	return r, nil
+}
+
 func oldFallIdentity(subject string, f derive.Fall) (Identity, error) {
 	s, err := logical(subject, "Patient")
 	if err != nil {

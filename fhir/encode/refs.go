@@ -48,16 +48,21 @@ func cited(s, typ string) (ref, error) {
 // exact content used.
 const UnversionedNote = "Cites %d input(s) that carried no version (meta.versionId): the reference names the resource, not the exact version used, so a later change to it is not visible from this record."
 
-// logical parses s and requires an unversioned reference of type typ.
-func logical(s, typ string) (ref, error) {
-	r, err := parseRef(s)
+// subjectRef checks a subject the decoder keyed (fhir/ref's Key): an
+// unversioned reference to a typ, relative ("Patient/p1") or, for a
+// resource of a server other than the service's own, absolute
+// ("https://other.example/fhir/Patient/p1"). It returns the reference to
+// write, which is the subject as given: a FHIR reference may be absolute
+// (R4 references.html, literal references).
+func subjectRef(s, typ string) (string, error) {
+	r, base, err := fhirref.ParseAny(s)
 	if err != nil {
-		return ref{}, err
+		return "", err
 	}
 	if r.Type != typ || r.Version != "" {
-		return ref{}, fmt.Errorf("reference %q: want an unversioned %s/id", s, typ)
+		return "", fmt.Errorf("reference %q: want an unversioned %s/id", s, typ)
 	}
-	return r, nil
+	return base + r.Logical(), nil
 }
 
 // sortedUnique sorts refs and drops repeats; a reading in two summaries is

@@ -78,6 +78,52 @@ func ParseAny(s string) (r Ref, base string, err error) {
 	return r, s[:len(s)-len(t)], nil
 }
 
+// SameBase reports whether two FHIR server bases name the same server:
+// scheme and host compared without regard to case (RFC 3986 §6.2.2.1), a
+// default port (80 for http, 443 for https) dropped, and a trailing slash
+// ignored; the path is compared exactly. An empty base names no server.
+func SameBase(a, b string) bool {
+	ca, oka := canonicalBase(a)
+	cb, okb := canonicalBase(b)
+	return oka && okb && ca == cb
+}
+
+func canonicalBase(s string) (string, bool) {
+	u, err := url.Parse(strings.TrimSpace(s))
+	if err != nil || u.Host == "" || (u.Scheme != "http" && u.Scheme != "https") {
+		return "", false
+	}
+	scheme := strings.ToLower(u.Scheme)
+	host := strings.ToLower(u.Hostname())
+	port := u.Port()
+	if (scheme == "http" && port == "80") || (scheme == "https" && port == "443") {
+		port = ""
+	}
+	if port != "" {
+		host += ":" + port
+	}
+	return scheme + "://" + host + strings.TrimSuffix(u.EscapedPath(), "/"), true
+}
+
+// Key reads a literal reference that may be absolute (see [ParseAny]) and
+// returns it with the unversioned form this service keys the resource by:
+// the relative "Type/id" when the reference is relative or its base is
+// own, the FHIR server this service reads and writes ([SameBase]); else the
+// absolute URL without its version ("https://other.example/fhir/Type/id"),
+// so that a resource of another server is never taken for the local one
+// that happens to have the same id. own may be empty (no server known):
+// then every absolute reference keeps its base.
+func Key(s, own string) (r Ref, key string, err error) {
+	r, base, err := ParseAny(s)
+	if err != nil {
+		return Ref{}, "", err
+	}
+	if base == "" || SameBase(base, own) {
+		return r, r.Logical(), nil
+	}
+	return r, base + r.Logical(), nil
+}
+
 // Split turns "Observation/x/_history/2" into ("Observation/x", "2") and
 // leaves an unversioned reference whole. It does not validate: it is for
 // references this service built itself.

@@ -81,6 +81,55 @@ func TestParseAny(t *testing.T) {
 	}
 }
 
+// An absolute literal reference is allowed (FHIR R4 references.html,
+// literal references: "a relative URL ... or an absolute URL"). Under the
+// service's own server it is the same resource as the relative one; under
+// another server it is another resource, whatever its id.
+func TestKey(t *testing.T) {
+	const own = "https://ehr.example/fhir"
+	for _, tc := range []struct {
+		name, in, own, key string
+		bad                bool
+	}{
+		{name: "relative", in: "Patient/p1", own: own, key: "Patient/p1"},
+		{name: "relative versioned", in: "Patient/p1/_history/3", own: own, key: "Patient/p1"},
+		{name: "own server", in: "https://ehr.example/fhir/Patient/p1", own: own, key: "Patient/p1"},
+		{name: "own server, versioned", in: "https://ehr.example/fhir/Patient/p1/_history/3", own: own, key: "Patient/p1"},
+		{name: "own server, host in capitals and default port", in: "https://EHR.example:443/fhir/Patient/p1", own: own + "/", key: "Patient/p1"},
+		{name: "another server", in: "https://other.example/fhir/Patient/p1", own: own, key: "https://other.example/fhir/Patient/p1"},
+		{name: "another path on the same host", in: "https://ehr.example/fhir2/Patient/p1", own: own, key: "https://ehr.example/fhir2/Patient/p1"},
+		{name: "http is not https", in: "http://ehr.example/fhir/Patient/p1", own: own, key: "http://ehr.example/fhir/Patient/p1"},
+		{name: "no server known: absolute kept", in: "https://ehr.example/fhir/Patient/p1/_history/2", key: "https://ehr.example/fhir/Patient/p1"},
+		{name: "not a literal reference", in: "#p1", own: own, bad: true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			_, key, err := Key(tc.in, tc.own)
+			if tc.bad != (err != nil) || key != tc.key {
+				t.Fatalf("Key(%q, %q) = %q, %v; want %q (error %v)", tc.in, tc.own, key, err, tc.key, tc.bad)
+			}
+		})
+	}
+}
+
+func TestSameBase(t *testing.T) {
+	for _, tc := range []struct {
+		a, b string
+		same bool
+	}{
+		{"https://h/fhir/", "https://h/fhir", true},
+		{"https://H:443/fhir", "https://h/fhir/", true},
+		{"http://h:80/fhir", "http://h/fhir", true},
+		{"http://h:8080/fhir", "http://h/fhir", false},
+		{"https://h/fhir", "https://h/FHIR", false},
+		{"", "", false},
+		{"https://h/fhir", "", false},
+	} {
+		if got := SameBase(tc.a, tc.b); got != tc.same {
+			t.Errorf("SameBase(%q, %q) = %v, want %v", tc.a, tc.b, got, tc.same)
+		}
+	}
+}
+
 func TestCompare(t *testing.T) {
 	t0 := time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
 	v := func(at time.Time, id string) Version { return Version{LastUpdated: at, ID: id} }
@@ -149,6 +198,14 @@ func FuzzParseAny(f *testing.F) {
 		}
 		if back, err := Parse(r.String()); err != nil || back != r {
 			t.Fatalf("the reference part of %q does not parse on its own: %+v, %v", s, back, err)
+		}
+		// Key agrees with ParseAny: relative under the reference's own
+		// base, absolute and unversioned under any other.
+		if _, k, err := Key(s, base); err != nil || (base != "" && SameBase(base, base) && k != r.Logical()) {
+			t.Fatalf("Key(%q, its own base %q) = %q, %v; want %q", s, base, k, err, r.Logical())
+		}
+		if _, k, err := Key(s, ""); err != nil || k != base+r.Logical() {
+			t.Fatalf("Key(%q, \"\") = %q, %v; want %q", s, k, err, base+r.Logical())
 		}
 	})
 }

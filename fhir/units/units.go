@@ -36,6 +36,27 @@
 // per site ([Options.PercentBasis]) and per code (the code table's co2Basis).
 // A PaCO2 in % is a unit mismatch: blood PCO2 is a tension measured by an
 // electrode and has no gas fraction.
+//
+// # Gas conditions
+//
+// A gas volume depends on the conditions it is reported at, and the
+// mixed-expired equation PĒCO2 = 0.863 × VCO2 / VE is valid only for VCO2
+// at STPD (0 °C, 760 mm[Hg], dry) and VE at BTPS (body temperature,
+// ambient pressure, saturated with water vapour): its 0.863 is
+// 760 × (310/273)/1000, from memory. So
+// VCO2's canonical unit is mL/min STPD, and minute and tidal volume's are
+// at BTPS; an unannotated unit is taken to be so. A UCUM annotation naming
+// other conditions ({STPD}, {BTPS}, {ATPS}, {ATPD}; any case) is not
+// dropped: by the gas laws (Boyle and Charles),
+//
+//	V(STPD) = V(BTPS) × (PB − 47)/760 × 273.15/310.15
+//
+// with PB the site's barometric pressure ([Options.BarometricPressure]),
+// 47 mm[Hg] the water vapour pressure at 37 °C and 37 °C (310.15 K) the
+// body temperature BTPS names, so a BTPS volume is converted to STPD and
+// back ([Conversion.Conditions] is the factor). Ambient conditions (ATPS,
+// ATPD) need the ambient temperature, which is not known here, and are
+// refused ([derive.ReasonUnitUnknown]) rather than guessed.
 package units
 
 import (
@@ -337,6 +358,97 @@ type Conversion struct {
 	// Text is a one-line human account, e.g.
 	// "5.3 kPa × 7.50064 = 39.7534 mm[Hg]".
 	Text string
+	// Conditions is the factor that brought a gas volume from the
+	// conditions its annotation names to the kind's own (see the package
+	// documentation); 1 when none was applied. It is part of Factor.
+	Conditions float64
+	// Percent is set when a CO2 percentage was turned into a partial
+	// pressure with an assumed barometric pressure and basis: the value is
+	// a substitute for a measured partial pressure.
+	Percent bool
+}
+
+// BodyTemperatureK is the body temperature BTPS names, 37 °C, in kelvin.
+const BodyTemperatureK = 310.15
+
+// StandardTemperatureK is the temperature STPD names, 0 °C, in kelvin.
+const StandardTemperatureK = 273.15
+
+// StandardPressureMMHg is the pressure STPD names.
+const StandardPressureMMHg = 760.0
+
+// gasBTPS and gasSTPD are the conditions of a kind's canonical unit.
+const (
+	gasNone = ""
+	gasBTPS = "BTPS"
+	gasSTPD = "STPD"
+)
+
+// canonicalConditions says at which conditions kind k's canonical unit is,
+// or gasNone for a kind that is not a gas volume.
+func canonicalConditions(k derive.Kind) string {
+	switch k {
+	case derive.KindVCO2:
+		return gasSTPD
+	case derive.KindMinuteVolume, derive.KindTidalVolume:
+		return gasBTPS
+	}
+	return gasNone
+}
+
+// annotatedConditions returns the gas conditions a UCUM code's annotations
+// name ("BTPS", "STPD", "ATPS", "ATPD"), "" when none does, or an error
+// when two name different conditions.
+func annotatedConditions(code string) (string, error) {
+	var found string
+	for rest := code; ; {
+		i := strings.IndexByte(rest, '{')
+		if i < 0 {
+			return found, nil
+		}
+		j := strings.IndexByte(rest[i:], '}')
+		if j < 0 {
+			return found, nil
+		}
+		a := strings.ToUpper(strings.TrimSpace(rest[i+1 : i+j]))
+		rest = rest[i+j+1:]
+		switch a {
+		case "BTPS", "STPD", "ATPS", "ATPD":
+			if found != "" && found != a {
+				return "", fmt.Errorf("annotations name two gas conditions, %s and %s", found, a)
+			}
+			found = a
+		}
+	}
+}
+
+// conditions returns the factor that brings a gas volume of kind k from
+// the conditions named by code's annotations to the kind's own, with a
+// text, or an error for conditions that cannot be converted here.
+func conditions(k derive.Kind, code string, o Options) (float64, string, error) {
+	want := canonicalConditions(k)
+	if want == gasNone {
+		return 1, "", nil
+	}
+	got, err := annotatedConditions(code)
+	if err != nil {
+		return 0, "", &Error{Reason: derive.ReasonUnitUnknown, Unit: code, Kind: k, Detail: err.Error()}
+	}
+	switch got {
+	case "", want:
+		return 1, "", nil
+	case "ATPS", "ATPD":
+		return 0, "", &Error{Reason: derive.ReasonUnitUnknown, Unit: code, Kind: k,
+			Detail: fmt.Sprintf("a volume at ambient conditions (%s) needs the ambient temperature to be brought to %s, and it is not known", got, want)}
+	}
+	pb := o.pb()
+	btpsToStpd := (pb - WaterVapourMMHg) / StandardPressureMMHg * StandardTemperatureK / BodyTemperatureK
+	if got == gasBTPS { // to STPD
+		return btpsToStpd, fmt.Sprintf("BTPS to STPD × (%s − %s)/%s × %s/%s = × %s", num(pb), num(WaterVapourMMHg), num(StandardPressureMMHg),
+			num(StandardTemperatureK), num(BodyTemperatureK), num6(btpsToStpd)), nil
+	}
+	return 1 / btpsToStpd, fmt.Sprintf("STPD to BTPS × %s/(%s − %s) × %s/%s = × %s", num(StandardPressureMMHg), num(pb), num(WaterVapourMMHg),
+		num(BodyTemperatureK), num(StandardTemperatureK), num6(1/btpsToStpd)), nil
 }
 
 // Convert brings v, in the UCUM unit code, to kind k's canonical unit.
@@ -350,7 +462,22 @@ func Convert(k derive.Kind, v float64, code string, o Options) (Conversion, erro
 		}
 		return Conversion{}, err
 	}
-	return convert(k, v, u, o)
+	f, text, err := conditions(k, code, o)
+	if err != nil {
+		return Conversion{}, err
+	}
+	c, err := convert(k, v, u, o)
+	if err != nil || f == 1 {
+		if err == nil {
+			c.Conditions = 1
+		}
+		return c, err
+	}
+	c.ToValue *= f
+	c.Factor *= f
+	c.Conditions = f
+	c.Text += "; " + text + " = " + num6(c.ToValue) + " " + c.ToUnit + " " + canonicalConditions(k)
+	return c, nil
 }
 
 func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
@@ -361,6 +488,7 @@ func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
 	c := Conversion{FromValue: v, FromUnit: u.Code, ToUnit: k.Unit(), Source: "code"}
 	switch {
 	case u.dim == dimFraction && (k == derive.KindEtCO2 || k == derive.KindMixedExpiredCO2):
+		c.Percent = true
 		pb := o.pb()
 		switch o.PercentBasis {
 		case BasisWet:

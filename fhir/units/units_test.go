@@ -117,7 +117,9 @@ func TestConversionsAgainstUcumLhc(t *testing.T) {
 		case c.Status == "succeeded":
 			if err != nil {
 				t.Errorf("%v %q → %q: ucum-lhc gives %v, we fail: %v", c.Value, c.From, c.To, *c.ToVal, err)
-			} else if d := relDiff(got.ToValue, *c.ToVal); d > 1e-9 {
+			} else if d := relDiff(got.ToValue/got.Conditions, *c.ToVal); d > 1e-9 {
+				// UCUM gives annotations no meaning; the gas-condition
+				// factor (TestGasConditions) is physics on top of it.
 				t.Errorf("%v %q → %q = %v, ucum-lhc gives %v (rel diff %.2g)", c.Value, c.From, c.To, got.ToValue, *c.ToVal, d)
 			}
 		default:
@@ -202,6 +204,56 @@ func TestConvert(t *testing.T) {
 			}
 			if tc.wantText != "" && got.Text != tc.wantText {
 				t.Errorf("Text = %q, want %q", got.Text, tc.wantText)
+			}
+		})
+	}
+}
+
+// REFERENCE 1.1, E3: PĒCO2 = 0.863 × VCO2 / VE is "Valid only for VCO2
+// STPD and VE BTPS". By the gas laws (Boyle and Charles; own arithmetic),
+// V(STPD) = V(BTPS) × (PB − 47)/760 × 273.15/310.15, with 47 mm[Hg] the
+// water vapour pressure at 37 °C (REFERENCE E17) and 37 °C the body
+// temperature of BTPS: at 760 mm[Hg] the factor is 713/760 × 0.880703 =
+// 0.826238, so 200 mL/min BTPS is 165.25 mL/min STPD; at 600 mm[Hg] (an
+// altitude of about 2000 m) it is 553/760 × 0.880703 = 0.640833.
+func TestGasConditions(t *testing.T) {
+	t.Parallel()
+	f760 := (760.0 - 47) / 760 * 273.15 / 310.15
+	f600 := (600.0 - 47) / 760 * 273.15 / 310.15
+	cases := []struct {
+		name string
+		kind derive.Kind
+		v    float64
+		code string
+		pb   float64
+		want float64
+		bad  bool
+	}{
+		{"VCO2 at BTPS to STPD", derive.KindVCO2, 200, "mL/min{BTPS}", 0, 200 * f760, false},
+		{"VCO2 at BTPS, lower-case annotation, at altitude", derive.KindVCO2, 0.2, "L/min{btps}", 600, 200 * f600, false},
+		{"VCO2 already at STPD", derive.KindVCO2, 200, "mL/min{STPD}", 0, 200, false},
+		{"VCO2 without annotation keeps the STPD assumption", derive.KindVCO2, 200, "mL/min", 0, 200, false},
+		{"minute volume at STPD to BTPS", derive.KindMinuteVolume, 7, "L/min{STPD}", 0, 7 / f760, false},
+		{"minute volume at BTPS", derive.KindMinuteVolume, 7, "L/min{BTPS}", 0, 7, false},
+		{"tidal volume at STPD to BTPS", derive.KindTidalVolume, 413.1, "mL{STPD}", 0, 413.1 / f760, false},
+		{"minute volume at ambient conditions needs the room temperature", derive.KindMinuteVolume, 7, "L/min{ATPS}", 0, 0, true},
+		{"VCO2 at ATPD", derive.KindVCO2, 200, "mL/min{ATPD}", 0, 0, true},
+		{"two conditions at once", derive.KindVCO2, 200, "mL{BTPS}/min{STPD}", 0, 0, true},
+		{"an annotation that names no conditions", derive.KindVCO2, 200, "mL/min{measured}", 0, 200, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			got, err := units.Convert(tc.kind, tc.v, tc.code, units.Options{BarometricPressure: tc.pb})
+			if tc.bad {
+				var ue *units.Error
+				if !errors.As(err, &ue) || ue.Reason != derive.ReasonUnitUnknown {
+					t.Fatalf("Convert = %+v, %v; want a refusal with %s", got, err, derive.ReasonUnitUnknown)
+				}
+				return
+			}
+			if err != nil || relDiff(got.ToValue, tc.want) > 1e-12 {
+				t.Fatalf("Convert = %+v, %v; want %v", got, err, tc.want)
 			}
 		})
 	}
