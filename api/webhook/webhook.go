@@ -695,16 +695,15 @@ func (h *Handler) bundle(ctx context.Context, src Source, res *result, body []by
 // its request.url names, or its fullUrl when the url does not name one
 // (a conditional delete), and when the deletion happened.
 func deletion(requestURL, fullURL, lastModified string) (Deletion, bool) {
-	for _, r := range []string{requestURL, fullURL} {
-		if typ, id, ok := notify.RelativeRef(r, ""); ok {
-			d := Deletion{Ref: typ + "/" + id}
-			if t, err := time.Parse(time.RFC3339Nano, lastModified); err == nil {
-				d.At = t
-			}
-			return d, true
-		}
+	target, ok := ref.DeleteTarget(requestURL, fullURL)
+	if !ok {
+		return Deletion{}, false
 	}
-	return Deletion{}, false
+	d := Deletion{Ref: target.String()}
+	if t, err := time.Parse(time.RFC3339Nano, lastModified); err == nil {
+		d.At = t
+	}
+	return d, true
 }
 
 func (h *Handler) resources(ctx context.Context, src Source, res *result, rs []json.RawMessage) error {

@@ -96,7 +96,8 @@ func ParseDeletions(line []byte) ([]Deletion, error) {
 			errs = append(errs, &EntryError{Entry: i, Problem: fmt.Sprintf("request.method is %q, not DELETE", clip(e.Request.Method))})
 			continue
 		}
-		d, ok := deleted(e.Request.URL, e.FullURL)
+		target, ok := ref.DeleteTarget(e.Request.URL, e.FullURL)
+		d := Deletion{Type: target.Type, ID: target.ID}
 		if !ok {
 			errs = append(errs, &EntryError{Entry: i, Problem: "neither request.url nor fullUrl names a resource (Type/id)"})
 			continue
@@ -112,15 +113,4 @@ func ParseDeletions(line []byte) ([]Deletion, error) {
 		out = append(out, d)
 	}
 	return out, errors.Join(errs...)
-}
-
-// deleted names the resource of a DELETE entry: its request.url, or
-// failing that its fullUrl.
-func deleted(requestURL, fullURL string) (Deletion, bool) {
-	for _, s := range []string{requestURL, fullURL} {
-		if r, _, err := ref.ParseAny(s); err == nil {
-			return Deletion{Type: r.Type, ID: r.ID}, true
-		}
-	}
-	return Deletion{}, false
 }

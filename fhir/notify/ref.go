@@ -1,7 +1,6 @@
 package notify
 
 import (
-	"net/url"
 	"strings"
 
 	"github.com/deadspace-fhir/deadspace/fhir/ref"
@@ -25,40 +24,8 @@ import (
 // "Type/id/_history/version", is read by the one reference parser,
 // [ref.Parse].
 func RelativeRef(s, base string) (typ, id string, ok bool) {
-	if s == "" || strings.ContainsAny(s, "?# \t\r\n") {
-		return "", "", false
-	}
-	rel := s
-	switch {
-	case strings.HasPrefix(s, "http://") || strings.HasPrefix(s, "https://"):
-		if base != "" {
-			b := strings.TrimRight(base, "/") + "/"
-			if !strings.HasPrefix(s, b) {
-				return "", "", false
-			}
-			rel = s[len(b):]
-			break
-		}
-		u, err := url.Parse(s)
-		if err != nil || u.Host == "" {
-			return "", "", false
-		}
-		// The server base may have any number of segments: the reference
-		// is the last two, or the last four when they end in a version.
-		segs := strings.Split(strings.TrimPrefix(u.Path, "/"), "/")
-		n := len(segs)
-		switch {
-		case n >= 4 && segs[n-2] == "_history":
-			segs = segs[n-4:]
-		case n >= 2:
-			segs = segs[n-2:]
-		}
-		rel = strings.Join(segs, "/")
-	case strings.Contains(s, ":"):
-		return "", "", false // urn:uuid, urn:oid, other schemes
-	}
-	r, err := ref.Parse(rel)
-	if err != nil {
+	r, b, err := ref.ParseAny(s)
+	if err != nil || (base != "" && b != "" && strings.TrimRight(b, "/") != strings.TrimRight(base, "/")) {
 		return "", "", false
 	}
 	return r.Type, r.ID, true

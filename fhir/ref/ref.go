@@ -242,3 +242,17 @@ func isDecimal(s string) bool {
 	}
 	return true
 }
+
+// DeleteTarget names the resource a Bundle entry whose request is a DELETE
+// deletes (FHIR R4 http.html#delete, in a transaction or batch, a history
+// Bundle, or a Bulk Data export's deleted file): the resource its
+// request.url names, relative or absolute, or failing that its fullUrl (a
+// conditional delete's url names none). The version, if any, is dropped.
+func DeleteTarget(requestURL, fullURL string) (Ref, bool) {
+	for _, s := range []string{requestURL, fullURL} {
+		if r, _, err := ParseAny(s); err == nil {
+			return Ref{Type: r.Type, ID: r.ID}, true
+		}
+	}
+	return Ref{}, false
+}

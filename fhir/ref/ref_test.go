@@ -209,3 +209,29 @@ func FuzzParseAny(f *testing.F) {
 		}
 	})
 }
+
+// A DELETE entry names its resource by request.url, relative or absolute,
+// or, for a conditional delete (FHIR R4 http.html#3.1.0.7.1), by its
+// fullUrl; a version is dropped, and an entry naming none gives nothing.
+func TestDeleteTarget(t *testing.T) {
+	for _, tc := range []struct {
+		name, url, fullURL string
+		want               Ref
+		ok                 bool
+	}{
+		{"relative url", "Observation/o1", "", Ref{Type: "Observation", ID: "o1"}, true},
+		{"absolute url", "https://ehr.example/fhir/Patient/p1", "", Ref{Type: "Patient", ID: "p1"}, true},
+		{"versioned url", "Observation/o1/_history/3", "", Ref{Type: "Observation", ID: "o1"}, true},
+		{"conditional url, fullUrl names it", "Observation?identifier=a|b", "https://ehr.example/fhir/Observation/o2", Ref{Type: "Observation", ID: "o2"}, true},
+		{"url wins over fullUrl", "Observation/o1", "https://ehr.example/fhir/Observation/o2", Ref{Type: "Observation", ID: "o1"}, true},
+		{"conditional, urn fullUrl", "Observation?identifier=a|b", "urn:uuid:0f8a11aa-0000-4000-8000-000000000000", Ref{}, false},
+		{"nothing", "", "", Ref{}, false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			got, ok := DeleteTarget(tc.url, tc.fullURL)
+			if got != tc.want || ok != tc.ok {
+				t.Errorf("DeleteTarget(%q, %q) = %+v, %v; want %+v, %v", tc.url, tc.fullURL, got, ok, tc.want, tc.ok)
+			}
+		})
+	}
+}
