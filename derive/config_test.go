@@ -32,7 +32,8 @@ func TestDefaultConfig(t *testing.T) {
 		t.Errorf("Fall = %+v, want %+v", c.Fall, want)
 	}
 	// The temperature coefficient of PCO2 of blood in vitro, 0.019 per °C
-	// (J Appl Physiol 1965, REFERENCE 1.6); the rest are design choices.
+	// (temperature coefficients for PCO2 of blood in vitro, J Appl Physiol
+	// 1965); the rest are design choices.
 	if c.Temperature != (derive.TemperatureConfig{Search: time.Hour, Tolerance: 0.5, Coefficient: 0.019}) {
 		t.Errorf("Temperature = %+v", c.Temperature)
 	}

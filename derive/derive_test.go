@@ -323,7 +323,8 @@ func TestDerive(t *testing.T) {
 			// Malley 2005: "Occasionally, PetCO2 may actually be higher
 			// than PaCO2": emitted with a note, never clamped; the AVDSF
 			// is reported negative with its warning, (40 − 44)/40 = −0.1
-			// (REFERENCE 1.3: "report AVDSF < 0 with a warning").
+			// (Malley 2005: end-tidal above arterial occurs with low V/Q units,
+			// so it is reported, not clamped).
 			name: "negative gradient", gas: 40, patient: man60,
 			readings: []derive.Reading{rd(derive.KindEtCO2, 0, 44)},
 			values:   map[derive.Code]float64{derive.CodeGradient: -4, derive.CodeAlveolarFraction: -0.1},
@@ -344,7 +345,7 @@ func TestDerive(t *testing.T) {
 		},
 		{
 			// A disconnected capnograph reads 0 (disconnection the commonest
-			// cause of a fall to zero: ANZCA study notes, REFERENCE 1.6): it is
+			// cause of a fall to zero: ANZCA study notes): it is
 			// an artefact, not an end-tidal value, so nothing is paired with
 			// it and the values that need EtCO2 say why.
 			name: "EtCO2 zero", gas: 40, patient: man60,

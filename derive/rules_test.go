@@ -57,8 +57,8 @@ func TestRuleArtefactsLeaveThePairing(t *testing.T) {
 		gradient  float64 // NaN: not emitted
 		reason    derive.Reason
 	}{
-		// Disconnection or suctioning reads zero (ANZCA study notes,
-		// REFERENCE 1.6); the rule that it leaves the pairing is a design
+		// Disconnection or suctioning reads zero (ANZCA study notes);
+		// the rule that it leaves the pairing is a design
 		// choice. Without the rule, the median of 11 readings still holds,
 		// but the mean-like picture of a PE would appear with more zeros.
 		{"suctioning gives one zero reading", replaceAt(base, time.Minute, 0), 1, 4, ""},
@@ -121,14 +121,14 @@ func TestRuleWrongUnitIsRefused(t *testing.T) {
 		v    float64
 		want derive.Reason
 	}{
-		// 5.3 kPa is 40 mm[Hg] (E16 conversion); no living patient has a
-		// PaCO2 of 5.3 mm[Hg] (REFERENCE 1.6, from memory).
+		// 5.3 kPa is 40 mm[Hg] (1 mm[Hg] = 133.322 Pa); no living patient has a
+		// PaCO2 of 5.3 mm[Hg] (from memory).
 		{"normal PaCO2 in kPa labelled mm[Hg]", derive.KindPaCO2, 5.3, derive.ReasonWrongUnit},
 		{"hypercapnic PaCO2 in kPa labelled mm[Hg]", derive.KindPaCO2, 9.5, derive.ReasonWrongUnit},
 		// Extreme hypocapnia at altitude, about 13 mm[Hg] (from memory):
 		// accepted.
 		{"extreme hyperventilation", derive.KindPaCO2, 13, ""},
-		// PaCO2 above 150 mm[Hg] has been survived (REFERENCE 1.6, from
+		// PaCO2 above 150 mm[Hg] has been survived (from
 		// memory): the upper limit stays wide.
 		{"extreme hypercapnia", derive.KindPaCO2, 180, ""},
 		{"not a number a patient could have", derive.KindPaCO2, 0.3, derive.ReasonImplausible},
@@ -229,11 +229,11 @@ func TestRuleSourcePriorityPerWindow(t *testing.T) {
 // Rule 3: the PaCO2 used is the value at the patient's temperature.
 func TestRuleTemperature(t *testing.T) {
 	t.Parallel()
-	// REFERENCE 1.6 (J Appl Physiol 1965 coefficient 0.019): at 33 °C a
+	// J Appl Physiol 1965 (temperature coefficient 0.019): at 33 °C a
 	// PaCO2 of 40 at 37 °C becomes 40 × 10^(−0.076) = 33.6 mm[Hg].
 	at33 := 40 * math.Pow(10, 0.019*(33-37))
 	if math.Abs(at33-33.6) > 0.05 {
-		t.Fatalf("own arithmetic %v, REFERENCE 1.6 says about 33.6", at33)
+		t.Fatalf("own arithmetic %v, the 1965 coefficient gives about 33.6", at33)
 	}
 	cases := []struct {
 		name     string
@@ -298,7 +298,7 @@ func TestRuleAdultIndices(t *testing.T) {
 		physiologicOK bool
 	}{
 		// Sinha 2009 studied "adult mechanically ventilated ICU patients";
-		// ARDS Network PBW is for adults (REFERENCE 1.6).
+		// ARDS Network PBW is for adults (NEJM 2000;342:1301).
 		{"nine-year-old after scoliosis surgery", child, gasOnly, derive.ReasonNotAdult, derive.ReasonNotAdult, "", false},
 		// Issue 8 rule 4: an unknown age blocks the estimate (it needs age)
 		// but not the ventilatory ratio, which says the age was unknown.
@@ -424,7 +424,7 @@ func TestRuleEstimateStaysHonest(t *testing.T) {
 		readings []derive.Reading
 		want     derive.Reason
 	}{
-		// From memory: 0 < PĒCO2 < PaCO2 (REFERENCE 1.3).
+		// From memory: 0 < PĒCO2 < PaCO2.
 		{"measured mixed-expired CO2 above arterial", []derive.Reading{rd(derive.KindEtCO2, 0, 30), rd(derive.KindRespRate, 0, 20), rd(derive.KindMixedExpiredCO2, 0, 41)}, derive.ReasonInconsistent},
 		// Malley 2005: a negative gradient suggests a timing or sampling
 		// error; the regression was derived on non-negative gradients.
@@ -480,8 +480,9 @@ func TestRuleSteadyState(t *testing.T) {
 		note    bool
 		term    string
 	}{
-		// Enghoff needs steady ventilation, no setting change (REFERENCE
-		// 1.3); the 20 % and 5 mm[Hg] thresholds are design choices.
+		// Enghoff needs PaCO2 and PĒCO2 measured together at steady
+		// ventilation, no setting change; the 20 % and 5 mm[Hg]
+		// thresholds are design choices.
 		{"minute volume raised from 7 to 10 L/min ten minutes before", before(derive.KindMinuteVolume, 7), true, "VE before the window"},
 		{"end-tidal CO2 fell from 42 to 35 after a rate change", before(derive.KindEtCO2, 42), true, "PetCO2 before the window"},
 		{"steady ventilation", slices.Concat(before(derive.KindMinuteVolume, 9.5), before(derive.KindEtCO2, 36)), false, ""},
@@ -636,8 +637,8 @@ func TestRuleSparseChartingFallsAndRises(t *testing.T) {
 		rises  int
 		sparse bool
 	}{
-		// Many EHRs keep a validated value every 5 to 60 min (REFERENCE
-		// 1.6, common practice); the detector's rules are design choices.
+		// Many EHRs keep a validated value every 5 to 60 min (common
+		// practice); the detector's rules are design choices.
 		{"validated charting every 5 min, kinked tube", every(5*time.Minute, cat(rep(38, 10), rep(24, 4), rep(38, 4))...), 1, 0, false},
 		{"charting every 15 min, pulmonary embolism", every(15*time.Minute, cat(rep(38, 8), rep(24, 3))...), 1, 0, false},
 		{"charting every second, disconnection", every(time.Second, cat(rep(38, 1800), rep(0, 240))...), 1, 0, false},

@@ -8,10 +8,9 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 )
 
-// The validity rules of REFERENCE 1.3 ("rules the service should
-// enforce"), one table each, cases named after the clinical situation.
+// Validity rules, one table each, cases named after the clinical situation.
 
-// REFERENCE 1.3, EtCO2 > PaCO2: "Occasionally, PetCO2 may actually be
+// EtCO2 > PaCO2: "Occasionally, PetCO2 may actually be
 // higher than PaCO2 ... low V/Q units with long time constants" (Malley
 // WJ, Clinical Blood Gases, 2005), and the rule: "Do not clamp silently:
 // report AVDSF < 0 with a warning and suspect a timing or specimen
@@ -25,7 +24,7 @@ func TestRuleNegativeGradientReportsTheAlveolarFraction(t *testing.T) {
 		wantAVDSF  float64
 		wantSigned bool
 	}{
-		// (38 − 41)/38 = −0.0789 (own arithmetic, E5).
+		// (38 − 41)/38 = −0.0789 (own arithmetic).
 		{"end-tidal 3 above arterial in a patient with slow-emptying lung units", 38, 41, (38.0 - 41) / 38, true},
 		// (40 − 42)/40 = −0.05.
 		{"end-tidal 2 above arterial, blood gas drawn as ventilation was raised", 40, 42, -0.05, true},
@@ -40,7 +39,7 @@ func TestRuleNegativeGradientReportsTheAlveolarFraction(t *testing.T) {
 			checkAccounts(t, d)
 			v := value(d, derive.CodeAlveolarFraction)
 			if v.Code == "" {
-				t.Fatalf("alveolar dead-space fraction not reported: %+v; REFERENCE 1.3 says report AVDSF < 0 with a warning", omission(d, derive.CodeAlveolarFraction))
+				t.Fatalf("alveolar dead-space fraction not reported: %+v; Malley 2005: report it with a warning, do not clamp", omission(d, derive.CodeAlveolarFraction))
 			}
 			if math.Abs(v.Value-tc.wantAVDSF) > 1e-9 {
 				t.Errorf("AVDSF %v, want %v", v.Value, tc.wantAVDSF)
@@ -52,8 +51,8 @@ func TestRuleNegativeGradientReportsTheAlveolarFraction(t *testing.T) {
 	}
 }
 
-// REFERENCE 1.3, range checks: "0 < PĒCO2 < PaCO2; VD/VT in [0, 1); ≥ 0.9
-// implausible" (from memory there). A physiologic VD/VT of 0.9 or more is
+// Range checks, from memory: 0 < PĒCO2 < PaCO2; VD/VT in [0, 1); 0.9 or
+// more implausible. A physiologic VD/VT of 0.9 or more is
 // not a value to write as a measurement: with VD/VT 0.925 at VE 7 L/min,
 // alveolar ventilation would be 0.5 L/min. It is left out with a reason
 // (the inputs are suspect: VCO2, VE or a mislabelled PaCO2), not written
@@ -65,7 +64,7 @@ func TestRulePhysiologicFractionOfNinetyPercentIsImplausible(t *testing.T) {
 		paco2, pe float64
 		emitted   bool
 	}{
-		// (80 − 6)/80 = 0.925 (own arithmetic, E2).
+		// (80 − 6)/80 = 0.925 (own arithmetic, Anderson & Breen 2000).
 		{"PĒCO2 of 6 against PaCO2 80: VD/VT 0.925", 80, 6, false},
 		// (60 − 5.4)/60 = 0.91.
 		{"PĒCO2 of 5.4 against PaCO2 60: VD/VT 0.91", 60, 5.4, false},
@@ -86,8 +85,8 @@ func TestRulePhysiologicFractionOfNinetyPercentIsImplausible(t *testing.T) {
 	}
 }
 
-// REFERENCE 1.3, leaks: "Expired VE/VT and PetCO2 read low, so VD/VT and
-// VR are wrong. Flag leak > ~10%" (from memory there). When the same
+// Leaks, from memory: expired VE and VT and PetCO2 read low, so VD/VT and
+// VR are wrong; flag a leak above about 10 %. When the same
 // window holds the inspired and the expired minute volume (or tidal
 // volume) and the expired is more than 10 % below the inspired, the values
 // computed from the expired volume carry a note naming the leak. The code
@@ -139,7 +138,7 @@ func TestRuleLeakBetweenInspiredAndExpiredVolumeIsFlagged(t *testing.T) {
 	}
 }
 
-// The implausible VD/VT (REFERENCE 1.3 range checks, from memory) is left
+// The implausible VD/VT (range checks, from memory) is left
 // out with its own reason, and neither the values computed from it nor the
 // regression estimate stand in for it: (80 − 6)/80 = 0.925.
 func TestRuleImplausibleFractionHasItsReasonAndNoStandIn(t *testing.T) {

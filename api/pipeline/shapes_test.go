@@ -149,8 +149,8 @@ func noteWith(v derive.Value, words ...string) bool {
 // blood gas must not be left out as resource-malformed because the
 // encoder only takes "Patient/{id}". The expected values are the ones this
 // input gives with relative references: PĒCO2 = 0.863 × 200 / 7 = 24.66
-// mm[Hg] and Enghoff VD/VT = (40 − 24.66)/40 = 0.384 (REFERENCE E3/E2,
-// Anderson & Breen 2000; own arithmetic as in W3).
+// mm[Hg] and Enghoff VD/VT = (40 − 24.66)/40 = 0.384 (Anderson &
+// Breen, Crit Care 2000;4:207; own arithmetic).
 func TestAbsoluteSubjectReferencesStillDerive(t *testing.T) {
 	t.Parallel()
 	cases := []struct {
@@ -203,7 +203,8 @@ func TestAbsoluteSubjectReferencesStillDerive(t *testing.T) {
 // patient, whose id only happens to match: its facts are not taken from
 // the local Patient p1, and the written subject keeps its base.
 // VR = (7000 × 40)/(PBW × 100 × 37.5) with PBW = 50 + 0.91 × (175 − 152.4)
-// = 70.566 kg (REFERENCE E9, Sinha 2009; E10 and W5, ARDS Network): 1.058.
+// = 70.566 kg (Sinha et al., Br J Anaesth 2009;102:692; ARDS Network, NEJM
+// 2000;342:1301; own arithmetic): 1.058.
 func TestAbsoluteSubjectOfTheOwnServerIsOnePatient(t *testing.T) {
 	t.Parallel()
 	const own = "https://ehr.example/fhir"
@@ -254,9 +255,9 @@ func TestAbsoluteSubjectOfTheOwnServerIsOnePatient(t *testing.T) {
 // (the arterial blood gas panel 24336-0 with components 2019-8 and
 // 32771-8, or a 2019-8 Observation with a 32771-8 component) reports the
 // same pair, so the value at the patient's temperature must be used: the
-// gradient compares like with like in a cooled patient (REFERENCE 1.6:
-// "Analysers that are told the patient's temperature report the adjusted
-// value as well (LOINC 32771-8)"). Invented numbers: 40 mm[Hg] at 37 °C,
+// gradient compares like with like in a cooled patient (common practice:
+// an analyser told the patient's temperature reports the adjusted value
+// as well, LOINC 32771-8). Invented numbers: 40 mm[Hg] at 37 °C,
 // 33.2 reported at the patient's temperature, EtCO2 30.
 func TestTemperatureAdjustedPaCO2OnTheSameResourceIsPreferred(t *testing.T) {
 	t.Parallel()
@@ -297,9 +298,9 @@ func TestTemperatureAdjustedPaCO2OnTheSameResourceIsPreferred(t *testing.T) {
 	}
 }
 
-// REFERENCE E3: PĒCO2 = 0.863 × VCO2 / VE is "Valid only for VCO2 STPD and
-// VE BTPS". A Quantity whose UCUM annotation says the volume is at other
-// conditions ({BTPS} on VCO2, {ATPS} or {STPD} on VE) must not be put into
+// PĒCO2 = 0.863 × VCO2 / VE holds only for VCO2 at STPD and VE at BTPS
+// (the constant is 760 × (310/273)/1000; from memory). A Quantity whose
+// UCUM annotation says the volume is at other conditions ({BTPS} on VCO2, {ATPS} or {STPD} on VE) must not be put into
 // it as if it were at the right ones: the value is either refused or
 // converted, never computed silently with 0.863. At 760 mm[Hg] and 37 °C a
 // gas volume at BTPS is (760 − 47)/760 × 273/310 = 0.826 of itself at
@@ -347,7 +348,8 @@ func TestGasConditionsOfVCO2AndMinuteVolume(t *testing.T) {
 // percentage comes under: a capnograph that sends EtCO2 in % under the
 // partial-pressure codes (LOINC 19891-1, MDC 151708) has its value
 // converted with an assumed barometric pressure (760 mm[Hg] here: 4.6 % is
-// 35.0 mm[Hg] dry, REFERENCE E17), and that must be disclosed, and a
+// 35.0 mm[Hg] dry: PCO2 = FCO2 × PB, Intensive Care Med 2004 dead-space
+// review, doi 10.1007/s00134-004-2194-8), and that must be disclosed, and a
 // measured partial pressure in the same window preferred.
 func TestEndTidalPercentUnderAPressureCodeIsDisclosed(t *testing.T) {
 	t.Parallel()
@@ -381,9 +383,9 @@ func TestEndTidalPercentUnderAPressureCodeIsDisclosed(t *testing.T) {
 	}
 }
 
-// README rule 5 and REFERENCE 1.6 ("Enghoff uses the expired volume; a set
-// tidal volume or an inspired minute volume overstates it when there is a
-// leak"): an inspired volume is a substitute for the expired one, named in
+// README rule 5 and, from memory: Enghoff uses the expired volume, and a
+// set tidal volume or an inspired minute volume overstates it when there
+// is a leak, so an inspired volume is a substitute for the expired one, named in
 // the value's note, and never pooled with a measured expired volume. The
 // code table says MDC 151980 is the "Volume of gas delivered through the
 // patient-connection port during a respiratory cycle", an inspired

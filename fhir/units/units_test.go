@@ -209,10 +209,10 @@ func TestConvert(t *testing.T) {
 	}
 }
 
-// REFERENCE 1.1, E3: PĒCO2 = 0.863 × VCO2 / VE is "Valid only for VCO2
-// STPD and VE BTPS". By the gas laws (Boyle and Charles; own arithmetic),
+// PĒCO2 = 0.863 × VCO2 / VE holds only for VCO2 at STPD and VE at BTPS
+// (from memory). By the gas laws (Boyle and Charles; own arithmetic),
 // V(STPD) = V(BTPS) × (PB − 47)/760 × 273.15/310.15, with 47 mm[Hg] the
-// water vapour pressure at 37 °C (REFERENCE E17) and 37 °C the body
+// water vapour pressure at 37 °C (alveolar gas tables: 47 mmHg, 6.25 kPa) and 37 °C the body
 // temperature of BTPS: at 760 mm[Hg] the factor is 713/760 × 0.880703 =
 // 0.826238, so 200 mL/min BTPS is 165.25 mL/min STPD; at 600 mm[Hg] (an
 // altitude of about 2000 m) it is 553/760 × 0.880703 = 0.640833.
