@@ -226,7 +226,9 @@ func (e *Engine) writeResult(outcome string) {
 // 410), a create this write depends on that was itself refused, a
 // revision on the server this service did not write, or a conditional
 // create whose condition matched several resources (412 on a request of
-// conditional creates only). Authentication (401, 403) and conflicts (409,
+// conditional creates only, or on a transaction of updates whose every
+// If-Match still holds, where only its Provenance's condition can have
+// failed). Authentication (401, 403) and conflicts (409,
 // and 412 on an update) are retried: a rotated credential or a concurrent
 // edit must not send a whole backlog to the dead letters.
 func permanent(err error) bool {
@@ -270,6 +272,24 @@ func onlyCreates(err error) error {
 		return fmt.Errorf("%w: %w", errCreateMatchesMany, err)
 	}
 	return err
+}
+
+// provenanceMatchesMany marks a 412 that answered a write's Provenance,
+// whose create is conditional on its tag, as [errCreateMatchesMany], saying
+// whether the values were written (the Provenance was sent on its own,
+// after them) or not (one transaction, refused whole), and keeping the
+// server's answer. A server that ignores _tag in a condition matches every
+// Provenance it holds, so the cause may be the server rather than
+// duplicates.
+func provenanceMatchesMany(err error, valuesWritten bool) error {
+	if !errors.Is(err, client.ErrPreconditionFailed) {
+		return err
+	}
+	what := "the transaction was refused whole and nothing of this write was written"
+	if valuesWritten {
+		what = "the values were written without their Provenance, which a retry writes"
+	}
+	return fmt.Errorf("%w: it was the write's Provenance, conditional on its tag (_tag): several Provenances carry the tag, or the server ignores _tag in a condition; %s: %w", errCreateMatchesMany, what, err)
 }
 
 // foreign is [errNewerOnServer] with what set the server's value apart.
@@ -449,6 +469,13 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 		if rerr != nil {
 			return nil, rerr
 		}
+		if e.oneTransaction(plan, withProvenance) && ifMatchHeld(plan, server, again) {
+			// Every update's If-Match names the version the server still
+			// holds, so none of them failed: the 412 answered the only other
+			// condition in the transaction, the Provenance's. Sending it
+			// again meets the same answer.
+			return nil, provenanceMatchesMany(err, false)
+		}
 		maps.Copy(landed, now)
 		if len(again) > 0 && attempt >= 2 {
 			return nil, err // retried later from the outbox
@@ -469,11 +496,12 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 // an Observation already on the server (answered 200, not 201). Without
 // withProvenance it posts the Observations only; a plan without
 // Observations (every value landed) posts its Provenance only. A 412 to a
-// request made only of conditional creates is [errCreateMatchesMany].
+// request made only of conditional creates is [errCreateMatchesMany]; so is
+// a 412 to the Provenance sent on its own, whose values were written.
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
-	if withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries() {
+	if e.oneTransaction(plan, withProvenance) {
 		tx, err := plan.Transaction(0, plan.Len(), true)
 		if err != nil {
 			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
@@ -527,9 +555,31 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
-		return nil, nil, onlyCreates(err)
+		return nil, nil, provenanceMatchesMany(err, true)
 	}
 	return server, matched, nil
+}
+
+// oneTransaction reports whether [Engine.sendPlan] sends plan as one
+// transaction of its Observations and its Provenance.
+func (e *Engine) oneTransaction(plan *encode.Plan, withProvenance bool) bool {
+	return withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries()
+}
+
+// ifMatchHeld reports whether every update of plan was sent with If-Match
+// on the version the server holds now (again, from
+// [Engine.afterPrecondition]): then no If-Match failed. Versions only move
+// forward, so a version read after the refusal that equals the one sent
+// was current when the server refused.
+func ifMatchHeld(plan *encode.Plan, server map[string]encode.ServerRef, again map[string]string) bool {
+	for i := range plan.Len() {
+		s := plan.Series(i)
+		v, ok := again[s]
+		if !ok || server[s].Version == "" || v != server[s].Version {
+			return false
+		}
+	}
+	return plan.Len() > 0
 }
 
 // afterPrecondition reads what the server holds of each series of an

@@ -160,11 +160,12 @@ func (s *Server) addFault(f *Fault) {
 	s.faults = append(s.faults, f)
 }
 
-// ClearFaults removes every fault.
+// ClearFaults removes every fault and every ignored parameter.
 func (s *Server) ClearFaults() {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	s.faults = nil
+	s.ignored = nil
 }
 
 // Requests returns the requests received so far, oldest first.
