@@ -3,11 +3,14 @@ package engine_test
 import (
 	"context"
 	"encoding/json"
+	"net/http"
+	"slices"
 	"strings"
 	"testing"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/deadletters"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
 )
 
 // A revision or withdrawal whose Provenance's create, conditional on its
@@ -96,6 +99,130 @@ func TestProvenanceMatchingSeveralIsBuried(t *testing.T) {
 				if got[act] != n {
 					t.Errorf("after the retry the server holds Provenances %v, want %v (and the other system's)", got, tc.wantAfter)
 					break
+				}
+			}
+		})
+	}
+}
+
+// The software Device's create, conditional on its identifier, refused with
+// 412: several resources match. Copies of this build's Device (two
+// replicas' first writes on a server that did not keep their conditional
+// creates apart) are alike, so every write cites the one with the lowest
+// id, with or without a server that honours the parameter. When no Device
+// carries the identifier (the server ignores the parameter and holds other
+// Devices), nothing can be cited: the writes stay in the outbox, neither
+// buried nor counted as attempts, one check is made per pass, and the
+// engine says why in its health and hook until the server is fixed; then
+// they go.
+func TestDeviceMatchingSeveral(t *testing.T) {
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	ours, _, err := enc.DeviceCreate()
+	if err != nil {
+		t.Fatal(err)
+	}
+	other := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:example:devices","value":"pump-1"}]}`)
+	for _, tc := range []struct {
+		name string
+		// server holds these Devices, in this order, before the first write.
+		server  [][]byte
+		ignore  bool // the server ignores Device's identifier parameter
+		wantDev int  // index in server of the Device cited; -1: none, writes stop
+	}{
+		{"two copies of this build's Device", [][]byte{other, ours, ours}, false, 1},
+		{"the server ignores identifier, one copy among other Devices", [][]byte{other, ours, other}, true, 1},
+		{"the server ignores identifier, two copies among other Devices", [][]byte{other, ours, ours}, true, 1},
+		{"the server ignores identifier, no copy among other Devices", [][]byte{other, other}, true, -1},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ctx := context.Background()
+			r := newWriteRig(t, 0)
+			var stops []bool
+			r.hooks.WritesStopped = func(stopped bool) { stops = append(stops, stopped) }
+			var ids []string
+			for _, d := range tc.server {
+				stored, err := r.fake.Put(d)
+				if err != nil {
+					t.Fatal(err)
+				}
+				var m struct{ ID string }
+				_ = json.Unmarshal(stored, &m)
+				ids = append(ids, m.ID)
+			}
+			if tc.ignore {
+				r.fake.Ignore("Device", "identifier")
+			}
+			r.open()
+			r.ingest(append(r.inputs, r.gas(1, 44))...)
+			r.eng.FlushNow(ctx)
+
+			h := r.health()
+			if tc.wantDev < 0 {
+				if h.Stats.OutboxDepth != 1 || h.Stats.DeadLetters != 0 || !strings.Contains(h.WritesStopped, "cannot be resolved") {
+					t.Fatalf("outbox %d, dead letters %d, writes stopped %q; want the write kept, none buried, and why", h.Stats.OutboxDepth, h.Stats.DeadLetters, h.WritesStopped)
+				}
+				if ws := r.outbox(); len(ws) != 1 || ws[0].Attempts != 0 {
+					t.Errorf("the kept write: %+v, want it untouched", ws)
+				}
+				if n := r.fake.Count(http.MethodPost, "Device"); n != 1 {
+					t.Errorf("%d Device creates in one pass, want 1", n)
+				}
+				for _, rq := range r.fake.Requests() {
+					if rq.Method == http.MethodPost && rq.Path != "Device" {
+						t.Errorf("POST %q sent while writes are stopped, want only the Device's create", rq.Path)
+					}
+				}
+				r.eng.FlushNow(ctx)
+				if got := r.health(); got.Stats.OutboxDepth != 1 || got.WritesStopped == "" {
+					t.Fatalf("second pass: outbox %d, writes stopped %q", got.Stats.OutboxDepth, got.WritesStopped)
+				}
+				r.fake.ClearFaults() // the server is fixed
+				r.mustDrain(3)
+				if got := r.health(); got.WritesStopped != "" {
+					t.Errorf("after the fix, writes stopped %q, want empty", got.WritesStopped)
+				}
+				if want := []bool{true, false}; !slices.Equal(stops, want) {
+					t.Errorf("WritesStopped hook told %v, want %v", stops, want)
+				}
+				ids = append(ids, "")
+				for _, raw := range r.fake.Current("Device") {
+					var m struct {
+						ID         string
+						Identifier []struct{ Value string }
+					}
+					_ = json.Unmarshal(raw, &m)
+					if len(m.Identifier) > 0 && strings.HasPrefix(m.Identifier[0].Value, "deadspace@") {
+						ids[len(ids)-1] = m.ID
+					}
+				}
+				tc.wantDev = len(ids) - 1
+			} else {
+				if h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != 0 || h.WritesStopped != "" {
+					t.Fatalf("outbox %d, dead letters %d, writes stopped %q; want the write sent", h.Stats.OutboxDepth, h.Stats.DeadLetters, h.WritesStopped)
+				}
+				if len(stops) != 0 {
+					t.Errorf("WritesStopped hook told %v, want nothing", stops)
+				}
+				if n := len(r.fake.Current("Device")); n != len(tc.server) {
+					t.Errorf("the server holds %d Devices, want the %d it had", n, len(tc.server))
+				}
+			}
+			want := "Device/" + ids[tc.wantDev]
+			r.wantCurrent(2)
+			for _, o := range r.fake.Current("Observation") {
+				var m struct{ Device struct{ Reference string } }
+				_ = json.Unmarshal(o, &m)
+				if m.Device.Reference != "" && m.Device.Reference != want {
+					t.Errorf("a value cites %s, want %s", m.Device.Reference, want)
+				}
+			}
+			for _, p := range r.provenances() {
+				agents, _ := json.Marshal(p["agent"])
+				if !strings.Contains(string(agents), `"`+want+`"`) {
+					t.Errorf("a Provenance's agents %s do not cite %s", agents, want)
 				}
 			}
 		})

@@ -91,6 +91,7 @@ type Metrics struct {
 	webhookCount  *prometheus.CounterVec
 	webhookDur    prometheus.Histogram
 	webhookActive prometheus.Gauge
+	writesStopped prometheus.Gauge
 	// statsErrors is reported by statsCollector itself, so a failure shows
 	// in the very scrape it happened in.
 	statsErrors atomic.Uint64
@@ -158,6 +159,8 @@ func New(version string) *Metrics {
 	})
 	m.webhookActive = gauge("webhook_requests_in_flight",
 		"Webhook requests being handled now.")
+	m.writesStopped = gauge("writes_stopped",
+		"1 while the writer sends nothing because the software Device cannot be resolved on the FHIR server, else 0.")
 
 	if version == "" {
 		version = "unknown"
@@ -176,7 +179,7 @@ func New(version string) *Metrics {
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 		buildInfo,
 		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
-		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
+		m.gaps, m.catchUps, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive, m.writesStopped,
 		statsCollector{m}, commitCollector{m}, m.picture,
 	)
 	m.predeclare()
@@ -253,6 +256,13 @@ func (m *Metrics) EngineHooks() engine.Hooks {
 		DeadLetter: m.deadLettered.Inc,
 		WriteResult: func(outcome string) {
 			m.attempts.WithLabelValues(m.outcomes.of(outcome)).Inc()
+		},
+		WritesStopped: func(stopped bool) {
+			if stopped {
+				m.writesStopped.Set(1)
+			} else {
+				m.writesStopped.Set(0)
+			}
 		},
 	}
 }
