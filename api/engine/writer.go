@@ -72,12 +72,6 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			e.mu.Unlock()
 			return 30 * time.Second
 		}
-		if !deviceChecked {
-			deviceChecked = true
-			if !e.writesCanGo(ctx) {
-				return backoffMax
-			}
-		}
 		now := e.now()
 		blocked := make(map[string]bool)
 		progressed, unrecorded := false, false
@@ -88,6 +82,14 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			waits := w.NotBefore.After(now) || unsettled[w.ID]
 			for _, s := range w.Series {
 				waits = waits || blocked[s]
+			}
+			if !waits && !deviceChecked {
+				// Before the first write sent in this drain: the Device
+				// every write cites.
+				deviceChecked = true
+				if !e.writesCanGo(ctx) {
+					return backoffMax
+				}
 			}
 			if !waits {
 				ok, err := e.attempt(ctx, w)
@@ -802,6 +804,13 @@ var errDeviceScanEnd = errors.New("too many Devices")
 // through Hooks.WritesStopped, and tries again after backoffMax. Any other
 // failure is left to each write's attempt, which retries as usual.
 func (e *Engine) writesCanGo(ctx context.Context) bool {
+	e.mu.Lock()
+	wait := e.writesStopped != "" && e.now().Before(e.deviceCheckAt)
+	e.mu.Unlock()
+	if wait {
+		// New writes wake the writer early; the next check still waits.
+		return false
+	}
 	_, err := e.serverDevice(ctx)
 	if err != nil && !errors.Is(err, errDeviceUnresolved) {
 		return true
@@ -810,6 +819,7 @@ func (e *Engine) writesCanGo(ctx context.Context) bool {
 	was := e.writesStopped
 	if err != nil {
 		e.writesStopped = err.Error()
+		e.deviceCheckAt = e.now().Add(backoffMax)
 		if e.outboxBlocked.IsZero() {
 			e.outboxBlocked = e.now()
 		}

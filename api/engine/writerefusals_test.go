@@ -112,9 +112,9 @@ func TestProvenanceMatchingSeveralIsBuried(t *testing.T) {
 // id, with or without a server that honours the parameter. When no Device
 // carries the identifier (the server ignores the parameter and holds other
 // Devices), nothing can be cited: the writes stay in the outbox, neither
-// buried nor counted as attempts, one check is made per pass, and the
-// engine says why in its health and hook until the server is fixed; then
-// they go.
+// buried nor counted as attempts, the Device is looked for again only
+// after two minutes however many writes arrive, and the engine says why in
+// its health and hook until the server is fixed; then they go, in order.
 func TestDeviceMatchingSeveral(t *testing.T) {
 	enc, err := encode.New(encode.DefaultOptions())
 	if err != nil {
@@ -175,9 +175,13 @@ func TestDeviceMatchingSeveral(t *testing.T) {
 						t.Errorf("POST %q sent while writes are stopped, want only the Device's create", rq.Path)
 					}
 				}
+				r.ingest(r.gas(2, 47)) // new writes wake the writer; the next check still waits
 				r.eng.FlushNow(ctx)
-				if got := r.health(); got.Stats.OutboxDepth != 1 || got.WritesStopped == "" {
-					t.Fatalf("second pass: outbox %d, writes stopped %q", got.Stats.OutboxDepth, got.WritesStopped)
+				if got := r.health(); got.Stats.OutboxDepth != 2 || got.WritesStopped == "" {
+					t.Fatalf("second pass: outbox %d, writes stopped %q; want both writes kept", got.Stats.OutboxDepth, got.WritesStopped)
+				}
+				if n := r.fake.Count(http.MethodPost, "Device"); n != 1 {
+					t.Errorf("%d Device creates after a second pass within two minutes, want still 1", n)
 				}
 				r.fake.ClearFaults() // the server is fixed
 				r.mustDrain(3)
