@@ -58,6 +58,7 @@ var exportedMetrics = map[string]bool{
 	"deadspace_webhook_requests_total":           true,
 	"deadspace_webhook_request_duration_seconds": true,
 	"deadspace_webhook_requests_in_flight":       true,
+	"deadspace_writes_stopped":                   true,
 }
 
 var histograms = []string{"deadspace_fhir_request_duration_seconds", "deadspace_webhook_request_duration_seconds"}
@@ -175,6 +176,7 @@ func TestRulesCoverTheService(t *testing.T) {
 		"deadspace_resources_received_total",            // no input
 		"deadspace_fhir_request_duration_seconds_count", // FHIR server errors
 		"deadspace_store_busy_seconds_total",            // the embedded store at its limit
+		"deadspace_writes_stopped",                      // no software Device to cite
 	} {
 		if !used[m] {
 			t.Errorf("no rule reads %s", m)

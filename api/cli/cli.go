@@ -57,7 +57,7 @@ func Run(ctx context.Context, args []string, getenv func(string) string, version
 	case "backfill":
 		return backfillCommand(ctx, args[1:], getenv, version, stderr)
 	case "submit":
-		return submitCommand(ctx, args[1:], stdout, stderr)
+		return submitCommand(ctx, args[1:], getenv, stdout, stderr)
 	case "deadletters":
 		return deadletters.Main(ctx, args[1:], getenv, stdout, stderr)
 	case "version", "-version", "--version":

@@ -3,6 +3,7 @@ package cli_test
 import (
 	"bytes"
 	"context"
+	"net"
 	"os"
 	"path/filepath"
 	"strings"
@@ -143,4 +144,75 @@ func TestGRPCCommandsShareOneTLSRule(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) { tc.run(t) })
 	}
+}
+
+// TestSubmitReadsTheEnvironment checks that submit reads its DEADSPACE_*
+// variables as the other commands do: a flag given wins over its variable,
+// a bad variable is reported with every other problem (exit 2), and TLS
+// files named by variables follow the one TLS rule.
+func TestSubmitReadsTheEnvironment(t *testing.T) {
+	file := filepath.Join(t.TempDir(), "x.ndjson")
+	if err := os.WriteFile(file, []byte(`{"resourceType":"Patient","id":"p1"}`+"\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	envAddr, flagAddr := closedAddr(t), closedAddr(t)
+	cases := []configCase{
+		{name: "bad variables with the other problems",
+			args: []string{"submit", "--cert", "/nonexistent/a"},
+			env:  map[string]string{"DEADSPACE_CHUNK_BYTES": "1MB", "DEADSPACE_QUIET": "loud"},
+			code: settings.ExitUsage,
+			want: []string{`DEADSPACE_CHUNK_BYTES (--chunk-bytes) = "1MB": not a whole number`, `DEADSPACE_QUIET (--quiet) = "loud": not true or false`,
+				"no input files", "--cert and --key go together"}},
+		{name: "a bad flag and a bad variable together",
+			args: []string{"submit", "--chunk-bytes", "x", file},
+			env:  map[string]string{"DEADSPACE_QUIET": "loud"},
+			code: settings.ExitUsage,
+			want: []string{`--chunk-bytes "x": not a whole number`, `DEADSPACE_QUIET (--quiet) = "loud"`}},
+		{name: "a flag wins over its bad variable",
+			args: []string{"submit", "--chunk-bytes", "100"},
+			env:  map[string]string{"DEADSPACE_CHUNK_BYTES": "lots"},
+			code: settings.ExitUsage,
+			want: []string{"no input files"},
+			not:  []string{"DEADSPACE_CHUNK_BYTES", "lots"}},
+		{name: "TLS files from variables follow the one rule",
+			args: []string{"submit", file},
+			env:  map[string]string{"DEADSPACE_CERT": "/nonexistent/a", "DEADSPACE_KEY": "/nonexistent/b"},
+			code: settings.ExitUsage,
+			want: []string{"--cert and --key need --ca", "--cert and --key: reading certificate: open /nonexistent/a"}},
+		{name: "a CA flag wins over its variable",
+			args: []string{"submit", "--ca", "/nonexistent/flag-ca", file},
+			env:  map[string]string{"DEADSPACE_CA": "/nonexistent/env-ca"},
+			code: settings.ExitUsage,
+			want: []string{"--ca: reading CA file: open /nonexistent/flag-ca"},
+			not:  []string{"env-ca"}},
+		{name: "the address from its variable",
+			args: []string{"submit", "--quiet", file},
+			env:  map[string]string{"DEADSPACE_ADDR": envAddr},
+			code: settings.ExitFailed,
+			want: []string{envAddr}},
+		{name: "an address flag wins over its variable",
+			args: []string{"submit", "--addr", flagAddr, file},
+			env:  map[string]string{"DEADSPACE_ADDR": envAddr},
+			code: settings.ExitFailed,
+			want: []string{flagAddr},
+			not:  []string{envAddr}},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) { tc.run(t) })
+	}
+}
+
+// closedAddr is a loopback address nothing listens on: a port the system
+// gave and took back.
+func closedAddr(t *testing.T) string {
+	t.Helper()
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	addr := ln.Addr().String()
+	if err := ln.Close(); err != nil {
+		t.Fatal(err)
+	}
+	return addr
 }

@@ -16,10 +16,12 @@ const submitUsage = `usage: deadspace submit [flags] FILE...
 Sends NDJSON files of FHIR R4 resources to a running deadspace serve over gRPC
 (the Submit call), in chunks, with progress on stderr, and reports what was
 accepted and why anything was not. Exit status 3 means some lines were not accepted.
+Every flag can also be set by an environment variable (--addr is
+DEADSPACE_ADDR); a flag given wins over its variable.
 
 Flags:`
 
-func submitCommand(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+func submitCommand(ctx context.Context, args []string, getenv func(string) string, stdout, stderr io.Writer) int {
 	fs := settings.NewCommand("submit", submitUsage, stderr)
 	var opts submit.Options
 	fs.StringVar(&opts.Addr, "addr", "127.0.0.1:9090", "gRPC address of the running service (its --grpc-listen)")
@@ -32,7 +34,7 @@ func submitCommand(ctx context.Context, args []string, stdout, stderr io.Writer)
 	if help {
 		return settings.ExitOK
 	}
-	errs := []error{err}
+	errs := []error{err, settings.ApplyEnv(fs, getenv)}
 	if len(files) == 0 {
 		errs = append(errs, errors.New("no input files"))
 	}

@@ -63,6 +63,10 @@ type Hooks struct {
 	CatchUp     func(trigger string)
 	DeadLetter  func()
 	WriteResult func(outcome string)
+	// WritesStopped is told when the writer stops sending (true: the
+	// software Device cannot be resolved on the server) and when it
+	// resumes (false).
+	WritesStopped func(stopped bool)
 }
 
 // Config configures an Engine.
@@ -214,6 +218,8 @@ type Engine struct {
 	lastNotified  time.Time
 	outboxBlocked time.Time // when the head write last failed, for readiness
 	deviceRef     string    // the server's "Device/<id>" of the software Device
+	writesStopped string    // why no write is sent, empty while they are
+	deviceCheckAt time.Time // while writes are stopped, when the Device is looked for again
 }
 
 // New checks the configuration and returns an Engine. Nothing runs until
@@ -824,6 +830,9 @@ type Health struct {
 	// StalePictures counts the patients whose report of what their data
 	// leaves out (Hooks.Evaluated) waits for a refresh.
 	StalePictures int
+	// WritesStopped says why the writer sends nothing (the software Device
+	// cannot be resolved on the server); empty while it sends.
+	WritesStopped string
 	Stats         store.Stats
 }
 
@@ -835,7 +844,7 @@ func (e *Engine) Health(ctx context.Context) (Health, error) {
 	}
 	e.mu.Lock()
 	defer e.mu.Unlock()
-	return Health{OutboxBlockedSince: e.outboxBlocked, StalePictures: e.stalePictures(), Stats: st}, nil
+	return Health{OutboxBlockedSince: e.outboxBlocked, StalePictures: e.stalePictures(), WritesStopped: e.writesStopped, Stats: st}, nil
 }
 
 // Standalone reports whether the engine writes to no server.

@@ -1,6 +1,7 @@
 package engine
 
 import (
+	"cmp"
 	"context"
 	"encoding/json"
 	"errors"
@@ -8,6 +9,7 @@ import (
 	"maps"
 	"math/rand/v2"
 	"net/http"
+	"net/url"
 	"slices"
 	"strings"
 	"time"
@@ -57,6 +59,7 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 	// unsettled are the writes whose outcome the store could not record in
 	// this drain: not sent again before the next.
 	unsettled := make(map[uint64]bool)
+	deviceChecked := false
 	for ctx.Err() == nil {
 		pending, err := e.cfg.Store.DueWrites(ctx, farFuture, outboxScan)
 		if err != nil {
@@ -79,6 +82,14 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			waits := w.NotBefore.After(now) || unsettled[w.ID]
 			for _, s := range w.Series {
 				waits = waits || blocked[s]
+			}
+			if !waits && !deviceChecked {
+				// Before the first write sent in this drain: the Device
+				// every write cites.
+				deviceChecked = true
+				if !e.writesCanGo(ctx) {
+					return backoffMax
+				}
 			}
 			if !waits {
 				ok, err := e.attempt(ctx, w)
@@ -226,7 +237,9 @@ func (e *Engine) writeResult(outcome string) {
 // 410), a create this write depends on that was itself refused, a
 // revision on the server this service did not write, or a conditional
 // create whose condition matched several resources (412 on a request of
-// conditional creates only). Authentication (401, 403) and conflicts (409,
+// conditional creates only, or on a transaction of updates whose every
+// If-Match still holds, where only its Provenance's condition can have
+// failed). Authentication (401, 403) and conflicts (409,
 // and 412 on an update) are retried: a rotated credential or a concurrent
 // edit must not send a whole backlog to the dead letters.
 func permanent(err error) bool {
@@ -270,6 +283,24 @@ func onlyCreates(err error) error {
 		return fmt.Errorf("%w: %w", errCreateMatchesMany, err)
 	}
 	return err
+}
+
+// provenanceMatchesMany marks a 412 that answered a write's Provenance,
+// whose create is conditional on its tag, as [errCreateMatchesMany], saying
+// whether the values were written (the Provenance was sent on its own,
+// after them) or not (one transaction, refused whole), and keeping the
+// server's answer. A server that ignores _tag in a condition matches every
+// Provenance it holds, so the cause may be the server rather than
+// duplicates.
+func provenanceMatchesMany(err error, valuesWritten bool) error {
+	if !errors.Is(err, client.ErrPreconditionFailed) {
+		return err
+	}
+	what := "the transaction was refused whole and nothing of this write was written"
+	if valuesWritten {
+		what = "the values were written without their Provenance, which a retry writes"
+	}
+	return fmt.Errorf("%w: it was the write's Provenance, conditional on its tag (_tag): several Provenances carry the tag, or the server ignores _tag in a condition; %s: %w", errCreateMatchesMany, what, err)
 }
 
 // foreign is [errNewerOnServer] with what set the server's value apart.
@@ -449,6 +480,13 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 		if rerr != nil {
 			return nil, rerr
 		}
+		if e.oneTransaction(plan, withProvenance) && ifMatchHeld(plan, server, again) {
+			// Every update's If-Match names the version the server still
+			// holds, so none of them failed: the 412 answered the only other
+			// condition in the transaction, the Provenance's. Sending it
+			// again meets the same answer.
+			return nil, provenanceMatchesMany(err, false)
+		}
 		maps.Copy(landed, now)
 		if len(again) > 0 && attempt >= 2 {
 			return nil, err // retried later from the outbox
@@ -469,11 +507,12 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 // an Observation already on the server (answered 200, not 201). Without
 // withProvenance it posts the Observations only; a plan without
 // Observations (every value landed) posts its Provenance only. A 412 to a
-// request made only of conditional creates is [errCreateMatchesMany].
+// request made only of conditional creates is [errCreateMatchesMany]; so is
+// a 412 to the Provenance sent on its own, whose values were written.
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
-	if withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries() {
+	if e.oneTransaction(plan, withProvenance) {
 		tx, err := plan.Transaction(0, plan.Len(), true)
 		if err != nil {
 			return nil, nil, &client.Error{Op: "encode transaction", Status: http.StatusBadRequest, Outcome: err.Error()}
@@ -527,9 +566,31 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
 	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
-		return nil, nil, onlyCreates(err)
+		return nil, nil, provenanceMatchesMany(err, true)
 	}
 	return server, matched, nil
+}
+
+// oneTransaction reports whether [Engine.sendPlan] sends plan as one
+// transaction of its Observations and its Provenance.
+func (e *Engine) oneTransaction(plan *encode.Plan, withProvenance bool) bool {
+	return withProvenance && plan.Len() > 0 && plan.Len()+1 <= e.maxEntries()
+}
+
+// ifMatchHeld reports whether every update of plan was sent with If-Match
+// on the version the server holds now (again, from
+// [Engine.afterPrecondition]): then no If-Match failed. Versions only move
+// forward, so a version read after the refusal that equals the one sent
+// was current when the server refused.
+func ifMatchHeld(plan *encode.Plan, server map[string]encode.ServerRef, again map[string]string) bool {
+	for i := range plan.Len() {
+		s := plan.Series(i)
+		v, ok := again[s]
+		if !ok || server[s].Version == "" || v != server[s].Version {
+			return false
+		}
+	}
+	return plan.Len() > 0
 }
 
 // afterPrecondition reads what the server holds of each series of an
@@ -724,8 +785,131 @@ func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.Tran
 	return resp, nil
 }
 
+// errDeviceUnresolved means the software Device, which every write cites,
+// can be neither created nor found: writes stop, and stay in the outbox,
+// until it can (see [Engine.writesCanGo]).
+var errDeviceUnresolved = errors.New("the software Device cannot be resolved on the FHIR server")
+
+// deviceScan bounds the Devices read to resolve the software Device after
+// its conditional create matched several: a server that ignores the
+// identifier parameter returns them all.
+const deviceScan = 1000
+
+var errDeviceScanEnd = errors.New("too many Devices")
+
+// writesCanGo resolves the software Device before a pass over the outbox.
+// When it cannot be resolved ([errDeviceUnresolved]) no write is sent: each
+// would be refused for a reason of the server's, not its own, so none is
+// buried or counted as an attempt; the engine says why in [Health] and
+// through Hooks.WritesStopped, and tries again after backoffMax. Any other
+// failure is left to each write's attempt, which retries as usual.
+func (e *Engine) writesCanGo(ctx context.Context) bool {
+	e.mu.Lock()
+	wait := e.writesStopped != "" && e.now().Before(e.deviceCheckAt)
+	e.mu.Unlock()
+	if wait {
+		// New writes wake the writer early; the next check still waits.
+		return false
+	}
+	_, err := e.serverDevice(ctx)
+	if err != nil && !errors.Is(err, errDeviceUnresolved) {
+		return true
+	}
+	e.mu.Lock()
+	was := e.writesStopped
+	if err != nil {
+		e.writesStopped = err.Error()
+		e.deviceCheckAt = e.now().Add(backoffMax)
+		if e.outboxBlocked.IsZero() {
+			e.outboxBlocked = e.now()
+		}
+	} else {
+		e.writesStopped = ""
+	}
+	e.mu.Unlock()
+	if err == nil {
+		if was != "" {
+			e.writesStoppedHook(false)
+			e.log.InfoContext(ctx, "the software Device is resolved on the FHIR server; writes resume")
+		}
+		return true
+	}
+	if was == "" {
+		e.writesStoppedHook(true)
+	}
+	e.log.ErrorContext(ctx, "writes are stopped; they stay in the outbox and go once the software Device can be resolved", "err", err, "next_check", backoffMax)
+	return false
+}
+
+func (e *Engine) writesStoppedHook(stopped bool) {
+	if e.cfg.Hooks.WritesStopped != nil {
+		e.cfg.Hooks.WritesStopped(stopped)
+	}
+}
+
+// deviceAmongMany resolves the software Device after its create,
+// conditional on q (its identifier), was refused with 412 (refused):
+// several resources matched. It searches Devices by the same condition and
+// keeps those that carry the identifier, since a server that ignores the
+// parameter returns Devices of every kind. Copies of this build's Device
+// (two replicas' first writes on a server that does not keep simultaneous
+// conditional creates apart) are alike, so it returns the lowest id, the
+// same for every replica and restart, and how many carry the identifier.
+// None carrying it, too many Devices to read, or a search refused for good
+// is [errDeviceUnresolved].
+func (e *Engine) deviceAmongMany(ctx context.Context, q url.Values, refused error) (string, int, error) {
+	system, value, _ := strings.Cut(q.Get("identifier"), "|")
+	var ids []string
+	seen := 0
+	err := e.cfg.Client.Search(ctx, "Device", q, func(entry json.RawMessage) error {
+		if seen++; seen > deviceScan {
+			return errDeviceScanEnd
+		}
+		var en struct {
+			Search struct {
+				Mode string `json:"mode"`
+			} `json:"search"`
+			Resource struct {
+				ResourceType string `json:"resourceType"`
+				ID           string `json:"id"`
+				Identifier   []struct {
+					System string `json:"system"`
+					Value  string `json:"value"`
+				} `json:"identifier"`
+			} `json:"resource"`
+		}
+		if json.Unmarshal(entry, &en) != nil || en.Resource.ResourceType != "Device" || en.Resource.ID == "" ||
+			(en.Search.Mode != "" && en.Search.Mode != "match") {
+			return nil
+		}
+		for _, id := range en.Resource.Identifier {
+			if id.System == system && id.Value == value {
+				ids = append(ids, en.Resource.ID)
+				break
+			}
+		}
+		return nil
+	})
+	switch {
+	case errors.Is(err, errDeviceScanEnd):
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources, and the search by that identifier returned more than %d Devices: %w", errDeviceUnresolved, deviceScan, refused)
+	case err != nil && client.IsRetryable(err):
+		return "", 0, fmt.Errorf("engine: searching the software Device by its identifier: %w", err)
+	case err != nil:
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources (%w), and searching Devices by that identifier failed: %w", errDeviceUnresolved, refused, err)
+	case len(ids) == 0:
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources, and none of the Devices a search by that identifier returned carries it (the server ignores the identifier parameter of Device); create one Device carrying it on the server, or fix the server's search: %w", errDeviceUnresolved, refused)
+	}
+	slices.SortFunc(ids, func(a, b string) int { return cmp.Or(cmp.Compare(len(a), len(b)), strings.Compare(a, b)) })
+	ids = slices.Compact(ids)
+	return ids[0], len(ids), nil
+}
+
 // serverDevice returns the server's reference to the software Device,
-// creating it (conditionally on its identifier) the first time.
+// creating it (conditionally on its identifier) the first time. When
+// several resources match the condition (412), it uses the lowest id among
+// the Devices that carry the identifier, or fails with
+// [errDeviceUnresolved] ([Engine.deviceAmongMany]).
 func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 	e.mu.Lock()
 	ref := e.deviceRef
@@ -742,13 +926,21 @@ func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 			return "", fmt.Errorf("engine: %w", err)
 		}
 		_, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Device", raw, q)
-		if err != nil {
+		id := meta.ID
+		switch {
+		case errors.Is(err, client.ErrPreconditionFailed):
+			var n int
+			if id, n, err = e.deviceAmongMany(ctx, q, err); err != nil {
+				return "", err
+			}
+			e.log.WarnContext(ctx, "several Devices on the FHIR server carry the software Device's identifier; every result cites the one with the lowest id", "devices", n)
+		case err != nil:
 			return "", err
 		}
-		if meta.ID == "" {
+		if id == "" {
 			return "", fmt.Errorf("engine: the server gave no id for the software Device")
 		}
-		ref = "Device/" + meta.ID
+		ref = "Device/" + id
 		if err := e.cfg.Store.SetCursor(ctx, cursor, ref); err != nil {
 			return "", fmt.Errorf("engine: %w", err)
 		}

@@ -55,6 +55,7 @@ type writeRig struct {
 	eng         *engine.Engine
 	clock       *stepClock
 	maxEntries  int
+	hooks       engine.Hooks // the engine's hooks, from the next open
 	at, updated time.Time
 	inputs      []json.RawMessage // the end-tidal readings
 }
@@ -95,7 +96,7 @@ func (r *writeRig) open() {
 	}
 	eng, err := engine.New(engine.Config{
 		Store: st, Decoder: decode.New(decode.Options{}), Encoder: enc, Derive: derive.DefaultConfig(), Client: cl,
-		MaxTransactionEntries: r.maxEntries, Now: r.clock.Now,
+		MaxTransactionEntries: r.maxEntries, Now: r.clock.Now, Hooks: r.hooks,
 	})
 	if err != nil {
 		r.t.Fatal(err)

@@ -92,6 +92,7 @@ type Metrics struct {
 	webhookCount  *prometheus.CounterVec
 	webhookDur    prometheus.Histogram
 	webhookActive prometheus.Gauge
+	writesStopped prometheus.Gauge
 	// statsErrors is reported by statsCollector itself, so a failure shows
 	// in the very scrape it happened in.
 	statsErrors atomic.Uint64
@@ -161,6 +162,8 @@ func New(version string) *Metrics {
 	})
 	m.webhookActive = gauge("webhook_requests_in_flight",
 		"Webhook requests being handled now.")
+	m.writesStopped = gauge("writes_stopped",
+		"1 while the writer sends nothing because the software Device cannot be resolved on the FHIR server, else 0.")
 
 	if version == "" {
 		version = "unknown"
@@ -179,7 +182,7 @@ func New(version string) *Metrics {
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 		buildInfo,
 		m.received, m.leftOut, m.derived, m.fhirDuration, m.attempts, m.deadLettered,
-		m.gaps, m.catchUps, m.evaluations, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive,
+		m.gaps, m.catchUps, m.evaluations, m.watchers, m.webhookCount, m.webhookDur, m.webhookActive, m.writesStopped,
 		statsCollector{m}, commitCollector{m}, m.picture,
 	)
 	m.predeclare()
@@ -266,6 +269,13 @@ func (m *Metrics) EngineHooks() engine.Hooks {
 		},
 		WriteResult: func(outcome string) {
 			m.attempts.WithLabelValues(m.outcomes.of(outcome)).Inc()
+		},
+		WritesStopped: func(stopped bool) {
+			if stopped {
+				m.writesStopped.Set(1)
+			} else {
+				m.writesStopped.Set(0)
+			}
 		},
 	}
 }

@@ -110,7 +110,7 @@ func TestHandlerServesTextFormat(t *testing.T) {
 		"deadspace_stats_errors_total", "deadspace_subscription_gaps_total", "deadspace_catchups_total",
 		"deadspace_evaluations_total", "deadspace_watch_subscribers", "deadspace_webhook_requests_total",
 		"deadspace_webhook_request_duration_seconds", "deadspace_webhook_requests_in_flight",
-		"go_goroutines", "process_start_time_seconds",
+		"deadspace_writes_stopped", "go_goroutines", "process_start_time_seconds",
 	} {
 		if _, ok := fams[want]; !ok {
 			t.Errorf("scrape lacks %s", want)

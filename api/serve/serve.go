@@ -20,6 +20,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/deadletters"
 	"github.com/deadspace-fhir/deadspace/api/engine"
 	"github.com/deadspace-fhir/deadspace/api/grpcapi"
+	"github.com/deadspace-fhir/deadspace/api/logredact"
 	"github.com/deadspace-fhir/deadspace/api/metrics"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/api/store/boltstore"
@@ -437,8 +438,9 @@ func (s *Service) Run(ctx context.Context) error {
 
 // readiness lists what keeps the service from being ready: the store does
 // not answer, the FHIR server (when one is configured) has not answered or
-// has been failing for longer than the ready grace, or the outbox has been
-// stuck for five minutes. /readyz and gRPC health both use it.
+// has been failing for longer than the ready grace, the outbox has been
+// stuck for five minutes, or the writer stopped (the software Device cannot
+// be resolved on the server). /readyz and gRPC health both use it.
 func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
 	h, err := s.engine.Health(ctx)
 	var problems []string
@@ -452,6 +454,12 @@ func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
 		}
 		if !h.OutboxBlockedSince.IsZero() && now.Sub(h.OutboxBlockedSince) > 5*time.Minute {
 			problems = append(problems, "outbox is not draining")
+		}
+		if h.WritesStopped != "" {
+			// Not transient: the server's answers leave the writer nothing
+			// to cite, so this is said at once. The text carries the
+			// server's wording, identifiers removed.
+			problems = append(problems, "writes stopped: "+logredact.Text(h.WritesStopped))
 		}
 	}
 	return h, problems

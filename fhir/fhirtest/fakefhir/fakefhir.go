@@ -17,7 +17,11 @@
 //     references resolved; a transaction is all or nothing);
 //   - fault injection ([Server.Fail], [Server.Drop]): answer a matching
 //     request with a status and Retry-After without doing it, or do it and
-//     drop the connection before answering (the answer is lost).
+//     drop the connection before answering (the answer is lost);
+//   - ignored search parameters ([Server.Ignore]): a parameter of a type
+//     that the server leaves out of searches and of the conditions of
+//     conditional creates, as servers do with parameters they do not
+//     support, so a condition on it matches every resource of the type.
 //
 // ids are "f" and a seven-digit counter; versionIds count from 1; lastUpdated strictly
 // increases, in milliseconds, so a _lastUpdated cursor is exact.
@@ -90,6 +94,7 @@ type Server struct {
 	faults   []*Fault
 	requests []Request
 	pageSize int
+	ignored  map[string]bool // "type?name" of ignored search parameters
 }
 
 // Start runs a server until tb's cleanup.
@@ -137,17 +142,30 @@ func (s *Server) Drop(method, path string, times int) {
 // Inject adds any fault.
 func (s *Server) Inject(f Fault) { s.addFault(&f) }
 
+// Ignore makes the server leave the search parameter name of typ out of
+// searches and conditional creates from now on, even under Prefer:
+// handling=strict: a condition on it alone matches every resource of typ.
+func (s *Server) Ignore(typ, name string) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.ignored == nil {
+		s.ignored = map[string]bool{}
+	}
+	s.ignored[typ+"?"+name] = true
+}
+
 func (s *Server) addFault(f *Fault) {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	s.faults = append(s.faults, f)
 }
 
-// ClearFaults removes every fault.
+// ClearFaults removes every fault and every ignored parameter.
 func (s *Server) ClearFaults() {
 	s.mu.Lock()
 	defer s.mu.Unlock()
 	s.faults = nil
+	s.ignored = nil
 }
 
 // Requests returns the requests received so far, oldest first.
@@ -498,6 +516,9 @@ func (s *Server) sorted(typ string) []version {
 func (s *Server) match(typ string, q url.Values, strict bool) ([]version, error) {
 	var tests []func(map[string]any, version) bool
 	for name, values := range q {
+		if s.ignored[typ+"?"+name] {
+			continue
+		}
 		switch name {
 		case "_count", "_offset":
 			continue

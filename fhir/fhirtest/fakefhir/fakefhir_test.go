@@ -140,6 +140,47 @@ func TestConditionalCreateFindsTheExistingResource(t *testing.T) {
 	}
 }
 
+// A server that ignores a search parameter matches every resource of the
+// type on a condition made of it alone: one other resource answers the
+// conditional create 200 with that resource, two answer 412.
+func TestIgnoredParameterMatchesEveryResource(t *testing.T) {
+	dev := func(v string) []byte {
+		return []byte(`{"resourceType":"Device","identifier":[{"system":"urn:x","value":"` + v + `"}]}`)
+	}
+	for _, tc := range []struct {
+		name       string
+		others     int
+		wantStatus int
+		wantErr    error
+	}{
+		{"no other Device: created", 0, http.StatusCreated, nil},
+		{"one other Device: found instead", 1, http.StatusOK, nil},
+		{"two other Devices: several match", 2, 0, client.ErrPreconditionFailed},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			s := fakefhir.Start(t)
+			c := newClient(t, s, nil)
+			for i := range tc.others {
+				if _, err := s.Put(dev(fmt.Sprintf("other%d", i))); err != nil {
+					t.Fatal(err)
+				}
+			}
+			s.Ignore("Device", "identifier")
+			_, m, err := c.ConditionalCreate(context.Background(), "Device", dev("mine"), url.Values{"identifier": {"urn:x|mine"}})
+			if !errors.Is(err, tc.wantErr) || (tc.wantErr == nil && m.Status != tc.wantStatus) {
+				t.Fatalf("conditional create: %v, status %d; want %v, status %d", err, m.Status, tc.wantErr, tc.wantStatus)
+			}
+			n := 0
+			if err := c.Search(context.Background(), "Device", url.Values{"identifier": {"urn:x|nothing"}}, func(json.RawMessage) error { n++; return nil }); err != nil {
+				t.Fatal(err)
+			}
+			if want := len(s.Current("Device")); n != want {
+				t.Errorf("a search on the ignored parameter found %d Devices, want all %d", n, want)
+			}
+		})
+	}
+}
+
 func TestSearchPagesByLastUpdatedAndCode(t *testing.T) {
 	s := fakefhir.Start(t)
 	c := newClient(t, s, nil)

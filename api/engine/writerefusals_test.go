@@ -1,0 +1,234 @@
+package engine_test
+
+import (
+	"context"
+	"encoding/json"
+	"net/http"
+	"slices"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/deadspace-fhir/deadspace/api/deadletters"
+	"github.com/deadspace-fhir/deadspace/fhir/encode"
+)
+
+// A revision or withdrawal whose Provenance's create, conditional on its
+// tag, matches more than one resource is refused with 412 however often it
+// is sent: the server ignores _tag in the condition (R4 http.html#ccreate;
+// two Provenances of any tag are then "several matches"). In one
+// transaction, with every If-Match still current, the 412 can only be the
+// Provenance's, and nothing of the write was written; sent on its own after
+// the values, the values are on the server without it. Either way the write
+// goes to the dead letters at once with the server's answer and says which
+// it was; once the server is fixed, the dead letter retried writes the
+// Provenance, and the server ends with this service's values and one
+// Provenance per write.
+func TestProvenanceMatchingSeveralIsBuried(t *testing.T) {
+	for _, tc := range []struct {
+		name        string
+		maxEntries  int
+		change      func(r *writeRig) []json.RawMessage
+		wantLetters int
+		wantReason  string
+		// valuesMoved: the values reached the server before the refusal.
+		valuesMoved bool
+		wantAfter   map[string]int // Provenances by activity after the retry
+	}{
+		{"revision in one transaction", 0, func(r *writeRig) []json.RawMessage { return []json.RawMessage{r.gas(2, 47)} },
+			1, "nothing of this write was written", false, map[string]int{"CREATE": 1, "UPDATE": 1}},
+		{"withdrawal in one transaction", 0, func(r *writeRig) []json.RawMessage {
+			return []json.RawMessage{obs("gas", "2", "entered-in-error", "2019-8", "mm[Hg]", 44, r.at, r.updated.Add(2*time.Minute))}
+		}, 2, "nothing of this write was written", false, map[string]int{"CREATE": 1, "NULLIFY": 2}},
+		{"revision split, the Provenance on its own", 2, func(r *writeRig) []json.RawMessage { return []json.RawMessage{r.gas(2, 47)} },
+			1, "the values were written without their Provenance", true, map[string]int{"CREATE": 1, "UPDATE": 1}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ctx := context.Background()
+			r := newWriteRig(t, tc.maxEntries)
+			r.openAndCreate()
+			before := r.values()
+			// A Provenance another system wrote: with the create's, two
+			// Provenances match a condition the server does not read.
+			if _, err := r.fake.Put([]byte(`{"resourceType":"Provenance","recorded":"2020-01-01T00:00:00Z","target":[{"reference":"Observation/other"}],"agent":[{"who":{"display":"another system"}}]}`)); err != nil {
+				t.Fatal(err)
+			}
+			r.fake.Ignore("Provenance", "_tag")
+			r.ingest(tc.change(r)...)
+			r.eng.FlushNow(ctx)
+
+			h := r.health()
+			if h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != tc.wantLetters {
+				var last string
+				if ws := r.outbox(); len(ws) > 0 {
+					last = ws[0].LastError
+				}
+				t.Fatalf("after one attempt: %d writes in the outbox (last error %q), %d dead letters; want %d buried", h.Stats.OutboxDepth, last, h.Stats.DeadLetters, tc.wantLetters)
+			}
+			for _, reason := range r.deadLetters() {
+				for _, want := range []string{"Provenance", "matched more than one resource", tc.wantReason, "If-None-Exist matches more than one resource"} {
+					if !strings.Contains(reason, want) {
+						t.Errorf("dead letter reason %q does not say %q", reason, want)
+					}
+				}
+			}
+			moved := false
+			for series, vs := range r.values() {
+				if vs[0].version != before[series][0].version {
+					moved = true
+				}
+			}
+			if moved != tc.valuesMoved {
+				t.Errorf("values on the server moved: %v, want %v", moved, tc.valuesMoved)
+			}
+
+			r.fake.ClearFaults() // the operator fixes the server
+			dls, err := r.st.DeadLetters(ctx, 10)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, dl := range dls {
+				if _, err := deadletters.Local(r.st).Retry(ctx, dl.ID); err != nil {
+					t.Fatal(err)
+				}
+			}
+			r.mustDrain(5)
+			r.wantCurrent(2)
+			got := r.activities()
+			for act, n := range tc.wantAfter {
+				if got[act] != n {
+					t.Errorf("after the retry the server holds Provenances %v, want %v (and the other system's)", got, tc.wantAfter)
+					break
+				}
+			}
+		})
+	}
+}
+
+// The software Device's create, conditional on its identifier, refused with
+// 412: several resources match. Copies of this build's Device (two
+// replicas' first writes on a server that did not keep their conditional
+// creates apart) are alike, so every write cites the one with the lowest
+// id, with or without a server that honours the parameter. When no Device
+// carries the identifier (the server ignores the parameter and holds other
+// Devices), nothing can be cited: the writes stay in the outbox, neither
+// buried nor counted as attempts, the Device is looked for again only
+// after two minutes however many writes arrive, and the engine says why in
+// its health and hook until the server is fixed; then they go, in order.
+func TestDeviceMatchingSeveral(t *testing.T) {
+	enc, err := encode.New(encode.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	ours, _, err := enc.DeviceCreate()
+	if err != nil {
+		t.Fatal(err)
+	}
+	other := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:example:devices","value":"pump-1"}]}`)
+	for _, tc := range []struct {
+		name string
+		// server holds these Devices, in this order, before the first write.
+		server  [][]byte
+		ignore  bool // the server ignores Device's identifier parameter
+		wantDev int  // index in server of the Device cited; -1: none, writes stop
+	}{
+		{"two copies of this build's Device", [][]byte{other, ours, ours}, false, 1},
+		{"the server ignores identifier, one copy among other Devices", [][]byte{other, ours, other}, true, 1},
+		{"the server ignores identifier, two copies among other Devices", [][]byte{other, ours, ours}, true, 1},
+		{"the server ignores identifier, no copy among other Devices", [][]byte{other, other}, true, -1},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ctx := context.Background()
+			r := newWriteRig(t, 0)
+			var stops []bool
+			r.hooks.WritesStopped = func(stopped bool) { stops = append(stops, stopped) }
+			var ids []string
+			for _, d := range tc.server {
+				stored, err := r.fake.Put(d)
+				if err != nil {
+					t.Fatal(err)
+				}
+				var m struct{ ID string }
+				_ = json.Unmarshal(stored, &m)
+				ids = append(ids, m.ID)
+			}
+			if tc.ignore {
+				r.fake.Ignore("Device", "identifier")
+			}
+			r.open()
+			r.ingest(append(r.inputs, r.gas(1, 44))...)
+			r.eng.FlushNow(ctx)
+
+			h := r.health()
+			if tc.wantDev < 0 {
+				if h.Stats.OutboxDepth != 1 || h.Stats.DeadLetters != 0 || !strings.Contains(h.WritesStopped, "cannot be resolved") {
+					t.Fatalf("outbox %d, dead letters %d, writes stopped %q; want the write kept, none buried, and why", h.Stats.OutboxDepth, h.Stats.DeadLetters, h.WritesStopped)
+				}
+				if ws := r.outbox(); len(ws) != 1 || ws[0].Attempts != 0 {
+					t.Errorf("the kept write: %+v, want it untouched", ws)
+				}
+				if n := r.fake.Count(http.MethodPost, "Device"); n != 1 {
+					t.Errorf("%d Device creates in one pass, want 1", n)
+				}
+				for _, rq := range r.fake.Requests() {
+					if rq.Method == http.MethodPost && rq.Path != "Device" {
+						t.Errorf("POST %q sent while writes are stopped, want only the Device's create", rq.Path)
+					}
+				}
+				r.ingest(r.gas(2, 47)) // new writes wake the writer; the next check still waits
+				r.eng.FlushNow(ctx)
+				if got := r.health(); got.Stats.OutboxDepth != 2 || got.WritesStopped == "" {
+					t.Fatalf("second pass: outbox %d, writes stopped %q; want both writes kept", got.Stats.OutboxDepth, got.WritesStopped)
+				}
+				if n := r.fake.Count(http.MethodPost, "Device"); n != 1 {
+					t.Errorf("%d Device creates after a second pass within two minutes, want still 1", n)
+				}
+				r.fake.ClearFaults() // the server is fixed
+				r.mustDrain(3)
+				if got := r.health(); got.WritesStopped != "" {
+					t.Errorf("after the fix, writes stopped %q, want empty", got.WritesStopped)
+				}
+				if want := []bool{true, false}; !slices.Equal(stops, want) {
+					t.Errorf("WritesStopped hook told %v, want %v", stops, want)
+				}
+				ids = append(ids, "")
+				for _, raw := range r.fake.Current("Device") {
+					var m struct {
+						ID         string
+						Identifier []struct{ Value string }
+					}
+					_ = json.Unmarshal(raw, &m)
+					if len(m.Identifier) > 0 && strings.HasPrefix(m.Identifier[0].Value, "deadspace@") {
+						ids[len(ids)-1] = m.ID
+					}
+				}
+				tc.wantDev = len(ids) - 1
+			} else {
+				if h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != 0 || h.WritesStopped != "" {
+					t.Fatalf("outbox %d, dead letters %d, writes stopped %q; want the write sent", h.Stats.OutboxDepth, h.Stats.DeadLetters, h.WritesStopped)
+				}
+				if len(stops) != 0 {
+					t.Errorf("WritesStopped hook told %v, want nothing", stops)
+				}
+				if n := len(r.fake.Current("Device")); n != len(tc.server) {
+					t.Errorf("the server holds %d Devices, want the %d it had", n, len(tc.server))
+				}
+			}
+			want := "Device/" + ids[tc.wantDev]
+			r.wantCurrent(2)
+			for _, o := range r.fake.Current("Observation") {
+				var m struct{ Device struct{ Reference string } }
+				_ = json.Unmarshal(o, &m)
+				if m.Device.Reference != "" && m.Device.Reference != want {
+					t.Errorf("a value cites %s, want %s", m.Device.Reference, want)
+				}
+			}
+			for _, p := range r.provenances() {
+				agents, _ := json.Marshal(p["agent"])
+				if !strings.Contains(string(agents), `"`+want+`"`) {
+					t.Errorf("a Provenance's agents %s do not cite %s", agents, want)
+				}
+			}
+		})
+	}
+}
