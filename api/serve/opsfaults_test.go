@@ -1,9 +1,15 @@
 package serve_test
 
 import (
+	"bytes"
+	"context"
 	"encoding/json"
 	"fmt"
+	"io"
 	"net/http"
+	"net/http/httptest"
+	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -79,4 +85,100 @@ func TestFakeRestartedSubscriptionGapCatchesUp(t *testing.T) {
 		return f.Count(http.MethodGet, "Observation") > searches
 	})
 	waitUpTo(t, 20*time.Second, "the skipped blood gas's values", func() bool { return len(derivedOn(f, b.subject)) == wantValues })
+}
+
+// entryFaultProxy stands in front of a FHIR base. The first transaction
+// that carries a Provenance is sent on without it, and the server's answer
+// gets, in the Provenance's place, an entry that failed: the answer of a
+// server that does not keep a transaction all or nothing and reports a
+// failed entry inside a 200 transaction-response.
+type entryFaultProxy struct {
+	target string
+	mu     sync.Mutex
+	done   bool
+}
+
+func (p *entryFaultProxy) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	body, _ := io.ReadAll(r.Body)
+	var bundle struct {
+		ResourceType string            `json:"resourceType"`
+		Type         string            `json:"type"`
+		Entry        []json.RawMessage `json:"entry"`
+	}
+	failAt := -1
+	p.mu.Lock()
+	if !p.done && r.Method == http.MethodPost && strings.TrimSuffix(r.URL.Path, "/") == "/fhir" && json.Unmarshal(body, &bundle) == nil && bundle.Type == "transaction" {
+		for i, e := range bundle.Entry {
+			var en struct {
+				Resource struct{ ResourceType string } `json:"resource"`
+			}
+			if json.Unmarshal(e, &en) == nil && en.Resource.ResourceType == "Provenance" {
+				failAt = i
+			}
+		}
+		if failAt >= 0 {
+			p.done = true
+			bundle.Entry = append(bundle.Entry[:failAt:failAt], bundle.Entry[failAt+1:]...)
+			body, _ = json.Marshal(map[string]any{"resourceType": "Bundle", "type": "transaction", "entry": bundle.Entry})
+		}
+	}
+	p.mu.Unlock()
+	req, _ := http.NewRequest(r.Method, p.target+r.URL.RequestURI(), bytes.NewReader(body))
+	req.Header = r.Header.Clone()
+	resp, err := http.DefaultTransport.RoundTrip(req)
+	if err != nil {
+		http.Error(w, err.Error(), http.StatusBadGateway)
+		return
+	}
+	defer resp.Body.Close()
+	out, _ := io.ReadAll(resp.Body)
+	if failAt >= 0 && resp.StatusCode == http.StatusOK {
+		var answer map[string]any
+		if json.Unmarshal(out, &answer) == nil {
+			entries, _ := answer["entry"].([]any)
+			failed := map[string]any{"response": map[string]any{"status": "400 Bad Request",
+				"outcome": map[string]any{"resourceType": "OperationOutcome", "issue": []any{map[string]any{"severity": "error", "code": "invalid", "diagnostics": "Provenance.agent is invalid"}}}}}
+			entries = append(entries[:failAt:failAt], append([]any{failed}, entries[failAt:]...)...)
+			answer["entry"] = entries
+			out, _ = json.Marshal(answer)
+		}
+	}
+	for k, vs := range resp.Header {
+		if k != "Content-Length" {
+			w.Header()[k] = vs
+		}
+	}
+	w.WriteHeader(resp.StatusCode)
+	_, _ = w.Write(out)
+}
+
+// A transaction answered 200 whose Provenance entry failed (a server that
+// reports entry-level errors in a transaction-response instead of failing
+// the whole transaction) is not an acknowledged write: the Provenance is
+// not on the server, and the write must be sent again (or go to the dead
+// letters), never counted as done with its Provenance lost.
+func TestFakeTransactionEntryErrorIsNotAcknowledged(t *testing.T) {
+	f := fakefhir.Start(t)
+	proxy := &entryFaultProxy{target: strings.TrimSuffix(f.BaseURL, "/fhir")}
+	ps := httptest.NewServer(proxy)
+	t.Cleanup(ps.Close)
+	cfg := testConfig(ps.URL+"/fhir", t.TempDir())
+	cfg.MaxTxEntries = 16 // the values and their Provenance in one transaction
+	s := start(t, cfg)
+	waitUpTo(t, 20*time.Second, "the start-up catch-up", func() bool { return f.Count(http.MethodGet, "Observation") > 0 })
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/entryfault", 1, b.resources), secret)
+	waitUpTo(t, 30*time.Second, "the derived values", func() bool { return len(derivedOn(f, b.subject)) == wantValues })
+	waitIdle(t, s)
+	if !proxy.done {
+		t.Fatal("no transaction carried a Provenance: the test did not inject its fault")
+	}
+	h, err := s.svc.Engine().Health(context.Background())
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n := len(f.Current("Provenance")); n != 1 {
+		t.Fatalf("%d Provenance on the server after its entry failed inside a 200 transaction-response, want 1 (outbox %d, dead letters %d: the write was counted as done)",
+			n, h.Stats.OutboxDepth, h.Stats.DeadLetters)
+	}
 }
