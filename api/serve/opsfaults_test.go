@@ -182,3 +182,19 @@ func TestFakeTransactionEntryErrorIsNotAcknowledged(t *testing.T) {
 			n, h.Stats.OutboxDepth, h.Stats.DeadLetters)
 	}
 }
+
+// --heartbeat-timeout is there to notice a subscription that stopped
+// delivering. After a restart, a subscription the server turned off while
+// the service was down sends nothing at all: the silence must count from
+// the start, so the service catches up once the timeout passes, as it does
+// after a silence that follows a notification
+// (TestFakeHeartbeatSilenceCatchesUp).
+func TestFakeSilenceFromStartCatchesUp(t *testing.T) {
+	f := fakefhir.Start(t)
+	startOnFake(t, f, func(c *serve.Config) { c.Heartbeat = 2 * time.Second })
+	// No notification ever arrives; data does reach the server.
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	waitUpTo(t, 20*time.Second, "the values of data the silent subscription never announced", func() bool {
+		return len(derivedOn(f, b.subject)) == wantValues
+	})
+}
