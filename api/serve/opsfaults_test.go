@@ -198,3 +198,23 @@ func TestFakeSilenceFromStartCatchesUp(t *testing.T) {
 		return len(derivedOn(f, b.subject)) == wantValues
 	})
 }
+
+// A Patient deleted on the server (merged into another record, say) answers
+// 410 Gone to a read, as one that never existed answers 404. Either way the
+// service cannot learn the patient's facts: the blood gas must still be
+// derived (the values that need the facts left out with
+// patient-facts-missing), not kept pending and evaluated again for ever.
+func TestFakePatientGoneStillDerives(t *testing.T) {
+	f := fakefhir.Start(t)
+	s := startOnFake(t, f, nil)
+	b := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	if !f.Delete("Patient", strings.TrimPrefix(b.subject, "Patient/")) {
+		t.Fatal("the fake did not delete the Patient")
+	}
+	// The notification carries the Observations only: the facts must be read.
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/gone", 1, b.resources[1:]), secret)
+	waitUpTo(t, 20*time.Second, "the blood gas of a patient whose Patient resource is gone to be evaluated", func() bool {
+		h, err := s.svc.Engine().Health(context.Background())
+		return err == nil && h.Stats.DirtyPatients == 0 && len(derivedOn(f, b.subject)) > 0
+	})
+}
