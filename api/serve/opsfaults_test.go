@@ -8,6 +8,8 @@ import (
 	"io"
 	"net/http"
 	"net/http/httptest"
+	"os"
+	"path/filepath"
 	"strings"
 	"sync"
 	"testing"
@@ -217,4 +219,81 @@ func TestFakePatientGoneStillDerives(t *testing.T) {
 		h, err := s.svc.Engine().Health(context.Background())
 		return err == nil && h.Stats.DirtyPatients == 0 && len(derivedOn(f, b.subject)) > 0
 	})
+}
+
+// tokenProxy passes requests to a FHIR base only with the bearer token it
+// currently accepts, and answers 401 otherwise, as a server does once a
+// short-lived token has expired.
+type tokenProxy struct {
+	target string
+	mu     sync.Mutex
+	token  string
+}
+
+func (p *tokenProxy) accept(token string) {
+	p.mu.Lock()
+	p.token = token
+	p.mu.Unlock()
+}
+
+func (p *tokenProxy) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	p.mu.Lock()
+	want := "Bearer " + p.token
+	p.mu.Unlock()
+	if r.Header.Get("Authorization") != want {
+		w.Header().Set("Content-Type", "application/fhir+json")
+		w.Header().Set("WWW-Authenticate", `Bearer error="invalid_token"`)
+		w.WriteHeader(http.StatusUnauthorized)
+		_, _ = io.WriteString(w, `{"resourceType":"OperationOutcome","issue":[{"severity":"error","code":"login","diagnostics":"token expired"}]}`)
+		return
+	}
+	body, _ := io.ReadAll(r.Body)
+	req, _ := http.NewRequest(r.Method, p.target+r.URL.RequestURI(), bytes.NewReader(body))
+	req.Header = r.Header.Clone()
+	resp, err := http.DefaultTransport.RoundTrip(req)
+	if err != nil {
+		http.Error(w, err.Error(), http.StatusBadGateway)
+		return
+	}
+	defer resp.Body.Close()
+	for k, vs := range resp.Header {
+		w.Header()[k] = vs
+	}
+	w.WriteHeader(resp.StatusCode)
+	_, _ = io.Copy(w, resp.Body)
+}
+
+// --fhir-token-file is how a short-lived token is handed to the service by
+// whatever renews it (a mounted secret, a token agent): the file is
+// replaced before the old token expires. Once the server refuses the old
+// token (401), the service must use the token the file now holds, not
+// retry the expired one until it is restarted.
+func TestFakeRotatedTokenFileIsUsedAfter401(t *testing.T) {
+	f := fakefhir.Start(t)
+	proxy := &tokenProxy{target: strings.TrimSuffix(f.BaseURL, "/fhir"), token: "first-token-0123456789"}
+	ps := httptest.NewServer(proxy)
+	t.Cleanup(ps.Close)
+	tokenFile := filepath.Join(t.TempDir(), "fhir-token")
+	if err := os.WriteFile(tokenFile, []byte("first-token-0123456789\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	cfg := testConfig(ps.URL+"/fhir", t.TempDir())
+	cfg.FHIRTokenFile = tokenFile
+	if err := cfg.ValidateFHIR(); err != nil { // as the command line does
+		t.Fatal(err)
+	}
+	s := start(t, cfg)
+	first := fakeBed(t, f, time.Now().Add(-90*time.Minute), true)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/token", 1, first.resources), secret)
+	waitUpTo(t, 20*time.Second, "the values written with the first token", func() bool { return len(derivedOn(f, first.subject)) == wantValues })
+
+	// The token is renewed: the file holds the new one, and the server
+	// refuses the old one from now on.
+	if err := os.WriteFile(tokenFile, []byte("second-token-0123456789\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	proxy.accept("second-token-0123456789")
+	second := fakeBed(t, f, time.Now().Add(-30*time.Minute), true)
+	post(t, s.url, http.MethodPost, "/notify", notification("Subscription/token", len(first.resources)+1, second.resources), secret)
+	waitUpTo(t, 30*time.Second, "the values written after the token file was renewed", func() bool { return len(derivedOn(f, second.subject)) == wantValues })
 }
