@@ -150,7 +150,7 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 	case ctx.Err() != nil:
 		// Shutting down: the write stays in the outbox as it was.
 		return false, nil
-	case permanent(err):
+	case permanent(err) && !resendFailedEntries(err, w.Attempts):
 		reason := err.Error()
 		if berr := e.cfg.Store.Bury(ctx, w.ID, reason, now); berr != nil {
 			return false, berr
@@ -720,6 +720,9 @@ func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.Tran
 	}
 	if len(resp.Entries) != n {
 		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), n)
+	}
+	if err := failedEntries(resp); err != nil {
+		return client.TransactionResponse{}, err
 	}
 	return resp, nil
 }
