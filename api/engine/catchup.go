@@ -315,11 +315,30 @@ func (e *Engine) catchUp(ctx context.Context, trigger string, jl *jobLease) erro
 // Notified records a notification's counters and asks for a catch-up when
 // events are missing: an event number that skips ahead of the last one
 // seen, or a count of events since the subscription started that is ahead
-// of it (a heartbeat after lost events).
+// of it (a heartbeat after lost events). A handshake restarts the
+// subscription's numbering at its count (0 when it has none), and so does
+// a number far below the highest seen (store.EventsRestarted); a restart
+// that lowered the numbering asks for a catch-up at once, since events may
+// have been lost across it.
 func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 	e.notifiedAt()
 	lowest, highest := eventRange(n)
-	if n.Subscription == "" || highest == 0 {
+	if n.Subscription == "" {
+		return nil
+	}
+	if n.Type == notify.TypeHandshake {
+		previous, err := e.cfg.Store.RestartEvents(ctx, n.Subscription, highest)
+		if err != nil {
+			return fmt.Errorf("engine: handshake: %w", err)
+		}
+		if previous > highest {
+			e.restarted(ctx, n.Subscription)
+			return nil
+		}
+		e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
+		return nil
+	}
+	if highest == 0 {
 		return nil
 	}
 	previous, err := e.cfg.Store.SeenEvent(ctx, n.Subscription, highest)
@@ -332,13 +351,29 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 
 // noteEvents notes which events of subscription a notification carried
 // (lowest to highest) after the highest seen before (previous): events it
-// skipped over are searched for if they miss their grace.
+// skipped over are searched for if they miss their grace. A numbering that
+// started again (the store took highest as the new highest) is a restart.
 func (e *Engine) noteEvents(ctx context.Context, subscription string, lowest, highest, previous uint64) {
+	if store.EventsRestarted(previous, highest) {
+		e.restarted(ctx, subscription)
+		return
+	}
 	// The grace is the time a delivery takes, on the wall clock, whatever
 	// clock the engine dates its work by (Config.Now).
 	if e.missing.note(subscription, lowest, highest, previous, time.Now()) {
 		e.gapFound(ctx, 0)
 	}
+}
+
+// restarted handles a subscription whose event numbering the server
+// started again: the events noted missing in the old numbering mean
+// nothing in the new one, and events sent between the last one received
+// and the restart may be lost, so a catch-up search runs now. The new
+// numbering is tracked from the restart on.
+func (e *Engine) restarted(ctx context.Context, subscription string) {
+	e.missing.forget(subscription)
+	e.log.WarnContext(ctx, "a subscription's event numbering started again on the server; catching up by search")
+	e.RequestCatchUp("subscription-restart")
 }
 
 // notifiedAt notes that a notification arrived, for the heartbeat timeout.

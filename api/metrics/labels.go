@@ -29,7 +29,7 @@ var (
 	// Observation.
 	entryStatuses = []string{"final", "amended", "entered-in-error"}
 	// triggers are the reasons the engine searches the server.
-	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "retry", "rest-hook"}
+	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "subscription-restart", "retry", "rest-hook"}
 	// outcomes are what happened to one outbox write attempt.
 	outcomes = []string{"acknowledged", "retry", "dead-letter"}
 	// operations are the client.Observer operations.
