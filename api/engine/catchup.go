@@ -537,14 +537,22 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) error {
 }
 
 // fetchPatient reads a patient's demographics from the server when the
-// stream never carried them. A patient the server does not have gives
-// empty facts: the values that need them are omitted with a reason and
-// derived when they arrive. Any other failure is an error, so the patient
-// stays pending and is evaluated again, rather than committed without facts.
+// stream never carried them. A patient the server does not give (404, 410,
+// another refusal no retry changes: factsReadRefused) gives empty facts:
+// the values that need them are omitted with a reason and derived when
+// they arrive; the refusal is remembered for factsUnavailableFor, so the
+// patient's next evaluations do not read it again. Any other failure (the
+// server down, throttling) is an error, so the patient stays pending and
+// is evaluated again, rather than committed without facts.
 func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patient, error) {
+	if e.noFacts.known(subject, time.Now()) {
+		return derive.Patient{}, nil
+	}
 	id := strings.TrimPrefix(subject, "Patient/")
 	body, _, err := e.cfg.Client.Read(ctx, "Patient", id)
-	if errors.Is(err, client.ErrNotFound) {
+	if err != nil && factsReadRefused(err) {
+		e.log.WarnContext(ctx, "the server does not give a patient's Patient resource; evaluated with its facts unknown", "err", err)
+		e.noFacts.remember(subject, time.Now())
 		return derive.Patient{}, nil
 	}
 	if err != nil {

@@ -183,6 +183,9 @@ type Engine struct {
 	// missing holds the subscription events skipped over and not arrived
 	// yet.
 	missing missingEvents
+	// noFacts holds the patients whose Patient read the server refused
+	// for good, for a while (fetchPatient).
+	noFacts factsUnavailable
 
 	pictures *pictures // what the derivations leave out, kept complete
 
