@@ -186,11 +186,15 @@ type Engine struct {
 	// noFacts holds the patients whose Patient read the server refused
 	// for good, for a while (fetchPatient).
 	noFacts factsUnavailable
+	// retries and marks keep the outbox's and the dirty marks' waits by
+	// the monotonic clock too (clocksteps.go).
+	retries retryDue
+	marks   marksSeen
 
 	pictures *pictures // what the derivations leave out, kept complete
 
 	mu            sync.Mutex
-	lastNotified  time.Time
+	lastNotified  time.Time // by the monotonic clock (notifiedAt)
 	outboxBlocked time.Time // when the head write last failed, for readiness
 	deviceRef     string    // the server's "Device/<id>" of the software Device
 }

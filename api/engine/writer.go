@@ -69,6 +69,9 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			e.mu.Unlock()
 			return 30 * time.Second
 		}
+		if len(pending) < outboxScan {
+			e.retries.keep(pending)
+		}
 		now := e.now()
 		blocked := make(map[string]bool)
 		progressed, unrecorded := false, false
@@ -76,7 +79,7 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			if ctx.Err() != nil {
 				return 0
 			}
-			waits := w.NotBefore.After(now) || unsettled[w.ID]
+			waits := e.retries.waits(w, now) || unsettled[w.ID]
 			for _, s := range w.Series {
 				waits = waits || blocked[s]
 			}
@@ -165,11 +168,12 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		wait := backoff(w.Attempts)
 		var ce *client.Error
 		if errors.As(err, &ce) && ce.RetryAfter > wait {
-			wait = ce.RetryAfter
+			wait = min(ce.RetryAfter, maxRetryAfter)
 		}
 		if rerr := e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error()); rerr != nil {
 			return false, rerr
 		}
+		e.retries.scheduled(w.ID, w.Attempts+1, wait)
 		e.writeResult("retry")
 		e.mu.Lock()
 		if e.outboxBlocked.IsZero() {
