@@ -55,6 +55,9 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 		defer t.Stop()
 		poll = t.C
 	}
+	// Silence counts from the start: a subscription the server stopped
+	// (or never started) while this process was down sends nothing at all.
+	started := time.Now()
 	var heartbeat <-chan time.Time
 	if e.cfg.HeartbeatTimeout > 0 {
 		t := time.NewTicker(e.cfg.HeartbeatTimeout / 2)
@@ -96,8 +99,12 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			trigger = "poll"
 		case <-heartbeat:
 			e.mu.Lock()
-			silent := !e.lastNotified.IsZero() && e.now().Sub(e.lastNotified) > e.cfg.HeartbeatTimeout
+			last := e.lastNotified
 			e.mu.Unlock()
+			if last.IsZero() {
+				last = started
+			}
+			silent := time.Since(last) > e.cfg.HeartbeatTimeout
 			if !silent {
 				continue
 			}
@@ -376,10 +383,12 @@ func (e *Engine) restarted(ctx context.Context, subscription string) {
 	e.RequestCatchUp("subscription-restart")
 }
 
-// notifiedAt notes that a notification arrived, for the heartbeat timeout.
+// notifiedAt notes that a notification arrived, for the heartbeat timeout,
+// by the monotonic clock: a silence is a duration, which a wall clock
+// stepped back must not lengthen.
 func (e *Engine) notifiedAt() {
 	e.mu.Lock()
-	e.lastNotified = e.now()
+	e.lastNotified = time.Now()
 	e.mu.Unlock()
 }
 
