@@ -389,8 +389,11 @@ func (c *Config) validateFHIR() []error {
 	}
 	if c.FHIRTokenFile != "" {
 		tok, err := readSecret(c.FHIRTokenFile)
-		if err != nil {
+		switch {
+		case err != nil:
 			errs = append(errs, fmt.Errorf("--fhir-token-file: %w", err))
+		case tok == "":
+			errs = append(errs, fmt.Errorf("--fhir-token-file: %s is empty", c.FHIRTokenFile))
 		}
 		c.FHIRToken = tok
 	}

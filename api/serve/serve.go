@@ -244,6 +244,14 @@ func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Obs
 			return nil, err
 		}
 		auth = ba
+	case cfg.FHIRTokenFile != "":
+		// Read again whenever the server refuses the token (401), so a
+		// renewed file needs no restart.
+		tf, err := client.NewTokenFile(cfg.FHIRTokenFile, log)
+		if err != nil {
+			return nil, fmt.Errorf("--fhir-token-file: %w", err)
+		}
+		auth = tf
 	case cfg.FHIRToken != "":
 		auth = client.BearerToken(cfg.FHIRToken)
 	}
