@@ -190,6 +190,8 @@ type Engine struct {
 	// the monotonic clock too (clocksteps.go).
 	retries retryDue
 	marks   marksSeen
+	// probe is readiness's last write to the store (StoreWrites).
+	probe writeProbe
 
 	pictures *pictures // what the derivations leave out, kept complete
 

@@ -441,13 +441,15 @@ func (s *Service) Run(ctx context.Context) error {
 }
 
 // readiness lists what keeps the service from being ready: the store does
-// not answer, the FHIR server (when one is configured) has not answered or
+// not answer or does not take writes, the FHIR server (when one is configured) has not answered or
 // has been failing for longer than the ready grace, or the outbox has been
 // stuck for five minutes. /readyz and gRPC health both use it.
 func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
 	h, err := s.engine.Health(ctx)
 	var problems []string
 	if err != nil {
+		problems = append(problems, "store: "+err.Error())
+	} else if err := s.engine.StoreWrites(ctx); err != nil {
 		problems = append(problems, "store: "+err.Error())
 	}
 	now := time.Now()
