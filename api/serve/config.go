@@ -389,11 +389,8 @@ func (c *Config) validateFHIR() []error {
 	}
 	if c.FHIRTokenFile != "" {
 		tok, err := readSecret(c.FHIRTokenFile)
-		switch {
-		case err != nil:
+		if err != nil {
 			errs = append(errs, fmt.Errorf("--fhir-token-file: %w", err))
-		case tok == "":
-			errs = append(errs, fmt.Errorf("--fhir-token-file: %s is empty", c.FHIRTokenFile))
 		}
 		c.FHIRToken = tok
 	}

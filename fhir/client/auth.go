@@ -39,7 +39,9 @@ func (BearerToken) LogValue() slog.Value { return slog.StringValue("[redacted]")
 // TokenFile is a bearer token kept in a file that whatever renews the token (a mounted secret,
 // a token agent) replaces before the old token expires. The file is read when the TokenFile is
 // made and again whenever the FHIR server refuses the token (401, through [Invalidator]), so a
-// renewed token is used without a restart. Its String and LogValue hide the token.
+// renewed token is used without a restart. An empty file means no token: requests go without
+// an Authorization header (a credential laid out for every deployment, filled in for those
+// whose server wants one). Its String and LogValue hide the token.
 type TokenFile struct {
 	path string
 	log  *slog.Logger
@@ -67,24 +69,22 @@ func readTokenFile(path string) (string, error) {
 	if err != nil {
 		return "", fmt.Errorf("client: token file: %w", err)
 	}
-	tok := strings.TrimRight(string(b), "\r\n")
-	if tok == "" {
-		return "", errors.New("client: token file is empty")
-	}
-	return tok, nil
+	return strings.TrimRight(string(b), "\r\n"), nil
 }
 
-// Authorize sets the Authorization header with the token read last.
+// Authorize sets the Authorization header with the token read last, none when it is empty.
 func (t *TokenFile) Authorize(req *http.Request) error {
 	t.mu.Lock()
 	tok := t.token
 	t.mu.Unlock()
-	req.Header.Set("Authorization", "Bearer "+tok)
+	if tok != "" {
+		req.Header.Set("Authorization", "Bearer "+tok)
+	}
 	return nil
 }
 
 // Invalidate reads the file again: the server refused the token it held. A file that cannot be
-// read, or is empty, leaves the token as it was (the file may be being replaced).
+// read leaves the token as it was (the file may be being replaced).
 func (t *TokenFile) Invalidate() {
 	tok, err := readTokenFile(t.path)
 	if err != nil {

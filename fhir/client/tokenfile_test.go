@@ -101,11 +101,28 @@ func TestTokenFileIsReadAgainAfter401(t *testing.T) {
 	if _, err := client.NewTokenFile(filepath.Join(t.TempDir(), "none"), nil); err == nil {
 		t.Error("a missing token file was taken")
 	}
-	empty := filepath.Join(t.TempDir(), "empty")
-	if err := os.WriteFile(empty, []byte("\n"), 0o600); err != nil {
+}
+
+// An empty token file means no token: no Authorization header, until the
+// file holds one and the server refused a request without it.
+func TestEmptyTokenFileSendsNoToken(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "token")
+	if err := os.WriteFile(path, []byte("\n"), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	if _, err := client.NewTokenFile(empty, nil); err == nil {
-		t.Error("an empty token file was taken")
+	tf, err := client.NewTokenFile(path, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	req := httptest.NewRequest(http.MethodGet, "http://fhir.example/fhir/Observation", nil)
+	if err := tf.Authorize(req); err != nil || req.Header.Get("Authorization") != "" {
+		t.Fatalf("empty file: Authorization %q, %v; want none", req.Header.Get("Authorization"), err)
+	}
+	if err := os.WriteFile(path, []byte("later-token-0004"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	tf.Invalidate()
+	if err := tf.Authorize(req); err != nil || req.Header.Get("Authorization") != "Bearer later-token-0004" {
+		t.Fatalf("after the file was filled in: Authorization %q, %v", req.Header.Get("Authorization"), err)
 	}
 }
