@@ -441,7 +441,7 @@ func (s *Service) Run(ctx context.Context) error {
 }
 
 // readiness lists what keeps the service from being ready: the store does
-// not answer or does not take writes, the FHIR server (when one is configured) has not answered or
+// not answer, the FHIR server (when one is configured) has not answered or
 // has been failing for longer than the ready grace, or the outbox has been
 // stuck for five minutes. /readyz and gRPC health both use it.
 func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
@@ -450,6 +450,7 @@ func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
 	if err != nil {
 		problems = append(problems, "store: "+err.Error())
 	} else if err := s.engine.StoreWrites(ctx); err != nil {
+		// A store that reads but cannot write would refuse every input.
 		problems = append(problems, "store: "+err.Error())
 	}
 	now := time.Now()
