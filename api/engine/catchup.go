@@ -55,6 +55,9 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 		defer t.Stop()
 		poll = t.C
 	}
+	// Silence counts from the start: a subscription the server stopped
+	// (or never started) while this process was down sends nothing at all.
+	started := time.Now()
 	var heartbeat <-chan time.Time
 	if e.cfg.HeartbeatTimeout > 0 {
 		t := time.NewTicker(e.cfg.HeartbeatTimeout / 2)
@@ -96,8 +99,12 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			trigger = "poll"
 		case <-heartbeat:
 			e.mu.Lock()
-			silent := !e.lastNotified.IsZero() && e.now().Sub(e.lastNotified) > e.cfg.HeartbeatTimeout
+			last := e.lastNotified
 			e.mu.Unlock()
+			if last.IsZero() {
+				last = started
+			}
+			silent := time.Since(last) > e.cfg.HeartbeatTimeout
 			if !silent {
 				continue
 			}
@@ -315,11 +322,30 @@ func (e *Engine) catchUp(ctx context.Context, trigger string, jl *jobLease) erro
 // Notified records a notification's counters and asks for a catch-up when
 // events are missing: an event number that skips ahead of the last one
 // seen, or a count of events since the subscription started that is ahead
-// of it (a heartbeat after lost events).
+// of it (a heartbeat after lost events). A handshake restarts the
+// subscription's numbering at its count (0 when it has none), and so does
+// a number far below the highest seen (store.EventsRestarted); a restart
+// that lowered the numbering asks for a catch-up at once, since events may
+// have been lost across it.
 func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 	e.notifiedAt()
 	lowest, highest := eventRange(n)
-	if n.Subscription == "" || highest == 0 {
+	if n.Subscription == "" {
+		return nil
+	}
+	if n.Type == notify.TypeHandshake {
+		previous, err := e.cfg.Store.RestartEvents(ctx, n.Subscription, highest)
+		if err != nil {
+			return fmt.Errorf("engine: handshake: %w", err)
+		}
+		if previous > highest {
+			e.restarted(ctx, n.Subscription)
+			return nil
+		}
+		e.noteEvents(ctx, n.Subscription, lowest, highest, previous)
+		return nil
+	}
+	if highest == 0 {
 		return nil
 	}
 	previous, err := e.cfg.Store.SeenEvent(ctx, n.Subscription, highest)
@@ -332,8 +358,13 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 
 // noteEvents notes which events of subscription a notification carried
 // (lowest to highest) after the highest seen before (previous): events it
-// skipped over are searched for if they miss their grace.
+// skipped over are searched for if they miss their grace. A numbering that
+// started again (the store took highest as the new highest) is a restart.
 func (e *Engine) noteEvents(ctx context.Context, subscription string, lowest, highest, previous uint64) {
+	if store.EventsRestarted(previous, highest) {
+		e.restarted(ctx, subscription)
+		return
+	}
 	// The grace is the time a delivery takes, on the wall clock, whatever
 	// clock the engine dates its work by (Config.Now).
 	if e.missing.note(subscription, lowest, highest, previous, time.Now()) {
@@ -341,10 +372,23 @@ func (e *Engine) noteEvents(ctx context.Context, subscription string, lowest, hi
 	}
 }
 
-// notifiedAt notes that a notification arrived, for the heartbeat timeout.
+// restarted handles a subscription whose event numbering the server
+// started again: the events noted missing in the old numbering mean
+// nothing in the new one, and events sent between the last one received
+// and the restart may be lost, so a catch-up search runs now. The new
+// numbering is tracked from the restart on.
+func (e *Engine) restarted(ctx context.Context, subscription string) {
+	e.missing.forget(subscription)
+	e.log.WarnContext(ctx, "a subscription's event numbering started again on the server; catching up by search")
+	e.RequestCatchUp("subscription-restart")
+}
+
+// notifiedAt notes that a notification arrived, for the heartbeat timeout,
+// by the monotonic clock: a silence is a duration, which a wall clock
+// stepped back must not lengthen.
 func (e *Engine) notifiedAt() {
 	e.mu.Lock()
-	e.lastNotified = e.now()
+	e.lastNotified = time.Now()
 	e.mu.Unlock()
 }
 
@@ -530,14 +574,22 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) (DeletionRec
 }
 
 // fetchPatient reads a patient's demographics from the server when the
-// stream never carried them. A patient the server does not have gives
-// empty facts: the values that need them are omitted with a reason and
-// derived when they arrive. Any other failure is an error, so the patient
-// stays pending and is evaluated again, rather than committed without facts.
+// stream never carried them. A patient the server does not give (404, 410,
+// another refusal no retry changes: factsReadRefused) gives empty facts:
+// the values that need them are omitted with a reason and derived when
+// they arrive; the refusal is remembered for factsUnavailableFor, so the
+// patient's next evaluations do not read it again. Any other failure (the
+// server down, throttling) is an error, so the patient stays pending and
+// is evaluated again, rather than committed without facts.
 func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patient, error) {
+	if e.noFacts.known(subject, time.Now()) {
+		return derive.Patient{}, nil
+	}
 	id := strings.TrimPrefix(subject, "Patient/")
 	body, _, err := e.cfg.Client.Read(ctx, "Patient", id)
-	if errors.Is(err, client.ErrNotFound) {
+	if err != nil && factsReadRefused(err) {
+		e.log.WarnContext(ctx, "the server does not give a patient's Patient resource; evaluated with its facts unknown", "err", err)
+		e.noFacts.remember(subject, time.Now())
 		return derive.Patient{}, nil
 	}
 	if err != nil {

@@ -49,7 +49,7 @@ func (e *Engine) leftToOwner(d store.Dirty, now time.Time) (bool, time.Duration)
 	if !d.EvaluatedElsewhere {
 		return false, 0
 	}
-	left := d.Since.Add(e.cfg.OwnerGrace).Sub(now)
+	left := e.cfg.OwnerGrace - e.marks.age(d, now)
 	return left > 0, left
 }
 

@@ -211,11 +211,20 @@ type Engine struct {
 	// missing holds the subscription events skipped over and not arrived
 	// yet.
 	missing missingEvents
+	// noFacts holds the patients whose Patient read the server refused
+	// for good, for a while (fetchPatient).
+	noFacts factsUnavailable
+	// retries and marks keep the outbox's and the dirty marks' waits by
+	// the monotonic clock too (clocksteps.go).
+	retries retryDue
+	marks   marksSeen
+	// probe is readiness's last write to the store (StoreWrites).
+	probe writeProbe
 
 	pictures *pictures // what the derivations leave out, kept complete
 
 	mu            sync.Mutex
-	lastNotified  time.Time
+	lastNotified  time.Time // by the monotonic clock (notifiedAt)
 	outboxBlocked time.Time // when the head write last failed, for readiness
 	deviceRef     string    // the server's "Device/<id>" of the software Device
 	writesStopped string    // why no write is sent, empty while they are

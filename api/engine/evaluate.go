@@ -246,6 +246,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced m
 		}
 		return nil, time.Second
 	}
+	e.marks.keep(dirty)
 	wait := idle
 	if e.sharedStore() {
 		// Marks written by other replicas wake no loop here: a listing
@@ -280,8 +281,8 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced m
 		if running[d.Subject] {
 			continue
 		}
-		if at := d.Since.Add(e.cfg.Settle); at.After(now) {
-			wait = min(wait, at.Sub(now))
+		if left := e.cfg.Settle - e.marks.age(d, now); left > 0 {
+			wait = min(wait, left)
 			continue
 		}
 		if left, after := e.leftToOwner(d, now); left {
@@ -307,7 +308,7 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) {
 		return
 	}
 	for _, d := range dirty {
-		if d.Since.Add(settle).After(e.now()) {
+		if e.marks.age(d, e.now()) < settle {
 			continue
 		}
 		if err := e.evaluatePatient(ctx, d); err != nil {

@@ -130,3 +130,11 @@ func (m *missingEvents) expire(now time.Time, grace time.Duration) (events uint6
 	}
 	return events
 }
+
+// forget drops what is held of a subscription: its numbering started
+// again.
+func (m *missingEvents) forget(subscription string) {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	delete(m.subs, subscription)
+}

@@ -72,6 +72,9 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			e.mu.Unlock()
 			return 30 * time.Second
 		}
+		if len(pending) < outboxScan {
+			e.retries.keep(pending)
+		}
 		now := e.now()
 		blocked := make(map[string]bool)
 		progressed, unrecorded := false, false
@@ -79,7 +82,7 @@ func (e *Engine) drain(ctx context.Context) time.Duration {
 			if ctx.Err() != nil {
 				return 0
 			}
-			waits := w.NotBefore.After(now) || unsettled[w.ID]
+			waits := e.retries.waits(w, now) || unsettled[w.ID]
 			for _, s := range w.Series {
 				waits = waits || blocked[s]
 			}
@@ -161,7 +164,7 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 	case ctx.Err() != nil:
 		// Shutting down: the write stays in the outbox as it was.
 		return false, nil
-	case permanent(err):
+	case permanent(err) && !resendFailedEntries(err, w.Attempts):
 		reason := err.Error()
 		if berr := e.cfg.Store.Bury(ctx, w.ID, reason, now); berr != nil {
 			return false, berr
@@ -176,11 +179,12 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		wait := backoff(w.Attempts)
 		var ce *client.Error
 		if errors.As(err, &ce) && ce.RetryAfter > wait {
-			wait = ce.RetryAfter
+			wait = min(ce.RetryAfter, maxRetryAfter)
 		}
 		if rerr := e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error()); rerr != nil {
 			return false, rerr
 		}
+		e.retries.scheduled(w.ID, w.Attempts+1, wait)
 		e.writeResult("retry")
 		e.mu.Lock()
 		if e.outboxBlocked.IsZero() {
@@ -781,6 +785,9 @@ func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.Tran
 	}
 	if len(resp.Entries) != n {
 		return client.TransactionResponse{}, fmt.Errorf("engine: transaction response has %d entries for %d requests", len(resp.Entries), n)
+	}
+	if err := failedEntries(resp); err != nil {
+		return client.TransactionResponse{}, err
 	}
 	return resp, nil
 }

@@ -248,6 +248,14 @@ func FHIRClient(cfg Config, version string, log *slog.Logger, observe client.Obs
 			return nil, err
 		}
 		auth = ba
+	case cfg.FHIRTokenFile != "":
+		// Read again whenever the server refuses the token (401), so a
+		// renewed file needs no restart.
+		tf, err := client.NewTokenFile(cfg.FHIRTokenFile, log)
+		if err != nil {
+			return nil, fmt.Errorf("--fhir-token-file: %w", err)
+		}
+		auth = tf
 	case cfg.FHIRToken != "":
 		auth = client.BearerToken(cfg.FHIRToken)
 	}
@@ -445,6 +453,9 @@ func (s *Service) readiness(ctx context.Context) (engine.Health, []string) {
 	h, err := s.engine.Health(ctx)
 	var problems []string
 	if err != nil {
+		problems = append(problems, "store: "+err.Error())
+	} else if err := s.engine.StoreWrites(ctx); err != nil {
+		// A store that reads but cannot write would refuse every input.
 		problems = append(problems, "store: "+err.Error())
 	}
 	now := time.Now()

@@ -133,3 +133,28 @@ func MergeRevisions(old, en Entry) []string {
 	}
 	return out
 }
+
+// EventsReorderSpan is how far below the highest event number seen a
+// subscription's notification may be numbered and still be taken for a
+// late delivery (a sender with several connections, a delivery retried)
+// rather than a restarted numbering: see [EventsRestarted].
+const EventsReorderSpan = 100
+
+// EventsRestarted says whether a notification numbered number (its highest
+// event number, or its count of events since the subscription started),
+// arriving when the highest seen was highest, shows that the server
+// started the subscription's numbering again (its counters lost, or the
+// subscription re-created under the same id): number is below highest by
+// more than [EventsReorderSpan] and by more than half of highest. A late
+// delivery falls behind by the few notifications in flight or retried
+// meanwhile; a restarted numbering starts again from 1. A drop that is
+// neither (a restart noticed only after the new numbers came close to
+// the old ones) is taken for a late delivery, as before; a handshake says
+// so at once.
+func EventsRestarted(highest, number uint64) bool {
+	if number >= highest {
+		return false
+	}
+	drop := highest - number
+	return drop > EventsReorderSpan && drop > highest/2
+}

@@ -412,8 +412,15 @@ type Store interface {
 	Cursor(ctx context.Context, name string) (string, error)
 	SetCursor(ctx context.Context, name, value string) error
 	// SeenEvent records the highest event number seen for a subscription
-	// and returns the previous highest (0 when none).
+	// and returns the previous highest (0 when none). A lower number leaves
+	// the highest as it is (a late delivery), unless [EventsRestarted] says
+	// the numbering started again: then number becomes the highest.
 	SeenEvent(ctx context.Context, subscription string, number uint64) (previous uint64, err error)
+	// RestartEvents sets the highest event number seen for a subscription
+	// to number, lower or not, and returns the previous highest (0 when
+	// none): the server said it started the subscription again (a
+	// handshake, with its count of events since the start).
+	RestartEvents(ctx context.Context, subscription string, number uint64) (previous uint64, err error)
 	// PutNotified is PutInputs followed by SeenEvent, for a notification
 	// that carries its inputs, with both answers. The event number is
 	// never durable before the inputs: when the call fails the counter

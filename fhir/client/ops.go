@@ -21,6 +21,17 @@ var (
 // ErrPagingLoop is returned when a server's next link points at a page already fetched.
 var ErrPagingLoop = errors.New("fhir: search next link repeats an earlier page")
 
+// ErrEmptyPages is returned when a search keeps giving pages without entries, each with a new
+// next link: [MaxEmptyPages] in a row. A server that pages this way (a cursor that never
+// moves, a link that only changes a counter) would otherwise be read for ever.
+var ErrEmptyPages = errors.New("fhir: search gives page after page without entries")
+
+// MaxEmptyPages is how many pages in a row without entries, each with a next link, a search
+// reads before it ends with [ErrEmptyPages]. Servers may return fewer entries than asked for,
+// and some return an empty page or two (entries filtered out after the page was cut); a run
+// this long is a server paging without end.
+const MaxEmptyPages = 50
+
 func checkType(typ string) error {
 	if !typeRE.MatchString(typ) {
 		return fmt.Errorf("invalid resource type %q", cleanPrefix([]byte(typ), 64))
@@ -202,8 +213,9 @@ func checkBodyType(typ, id string, body []byte) error {
 // "outcome" are passed too; the caller decides what to do with them.
 //
 // It follows Bundle.link[relation=next] verbatim and ends only when a page has none. A next
-// link to another scheme or host, or one that repeats an earlier page ([ErrPagingLoop]), ends
-// the search with an error. An error from fn ends the search and is returned wrapped.
+// link to another scheme or host, one that repeats an earlier page ([ErrPagingLoop]), or
+// [MaxEmptyPages] pages in a row without entries, each with a new next link ([ErrEmptyPages]),
+// ends the search with an error. An error from fn ends the search and is returned wrapped.
 func (c *Client) Search(ctx context.Context, typ string, query url.Values, fn func(entry json.RawMessage) error) error {
 	if err := checkType(typ); err != nil {
 		return fmt.Errorf("fhir search: %w", err)
@@ -212,6 +224,7 @@ func (c *Client) Search(ctx context.Context, typ string, query url.Values, fn fu
 	first.RawQuery = query.Encode()
 	next := first.String()
 	seen := map[string]bool{}
+	empty := 0
 	for page := 0; next != ""; page++ {
 		seen[next] = true
 		resp, err := c.do(ctx, request{
@@ -232,6 +245,14 @@ func (c *Client) Search(ctx context.Context, typ string, query url.Values, fn fu
 		}
 		if p.Next == "" {
 			return nil
+		}
+		if len(p.Entries) == 0 {
+			empty++
+		} else {
+			empty = 0
+		}
+		if empty >= MaxEmptyPages {
+			return fmt.Errorf("fhir search %s: page %d: %d pages in a row without entries: %w", typ, page, empty, ErrEmptyPages)
 		}
 		n, err := c.nextURL(next, p.Next)
 		if err != nil {

@@ -203,7 +203,8 @@ func (s *Store) SetCursor(ctx context.Context, name, value string) error {
 }
 
 // SeenEvent keeps the highest number seen; a lower or repeated number
-// (a redelivery) leaves it alone.
+// (a redelivery) leaves it alone, unless the numbering started again
+// (store.EventsRestarted).
 func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
 	var prev uint64
 	err := s.batch(ctx, "SeenEvent", func(tx *bolt.Tx) error {
@@ -217,15 +218,33 @@ func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint6
 	return prev, nil
 }
 
-// seenEvent raises the subscription's highest event number to number and
-// returns the one it replaces.
+// RestartEvents sets the subscription's highest event number to number.
+func (s *Store) RestartEvents(ctx context.Context, subscription string, number uint64) (uint64, error) {
+	var prev uint64
+	err := s.batch(ctx, "RestartEvents", func(tx *bolt.Tx) error {
+		if subscription == "" {
+			return errors.New("empty subscription")
+		}
+		b := tx.Bucket(bSubs)
+		prev = getU64(b, []byte(subscription))
+		return b.Put([]byte(subscription), u64(number))
+	})
+	if err != nil {
+		return 0, err
+	}
+	return prev, nil
+}
+
+// seenEvent raises the subscription's highest event number to number, or
+// lowers it to number when the numbering started again, and returns the
+// one it replaces.
 func seenEvent(tx *bolt.Tx, subscription string, number uint64) (uint64, error) {
 	if subscription == "" {
 		return 0, errors.New("empty subscription")
 	}
 	b := tx.Bucket(bSubs)
 	prev := getU64(b, []byte(subscription))
-	if number <= prev {
+	if number <= prev && !store.EventsRestarted(prev, number) {
 		return prev, nil
 	}
 	return prev, b.Put([]byte(subscription), u64(number))

@@ -226,15 +226,28 @@ func (s *Store) SetCursor(ctx context.Context, name, value string) error {
 }
 
 // SeenEvent keeps the highest number seen; a lower or repeated number (a
-// redelivery, possibly to another replica) leaves it alone. The row lock
-// makes two replicas receiving the same event agree on which saw it
-// first.
+// redelivery, possibly to another replica) leaves it alone, unless the
+// numbering started again (store.EventsRestarted). The row lock makes two
+// replicas receiving the same event agree on which saw it first.
 func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint64) (uint64, error) {
+	return s.setEvents(ctx, "SeenEvent", subscription, number, func(prev uint64) bool {
+		return number > prev || store.EventsRestarted(prev, number)
+	})
+}
+
+// RestartEvents sets the subscription's highest event number to number.
+func (s *Store) RestartEvents(ctx context.Context, subscription string, number uint64) (uint64, error) {
+	return s.setEvents(ctx, "RestartEvents", subscription, number, func(uint64) bool { return true })
+}
+
+// setEvents sets the subscription's highest event number to number when
+// set says so of the one it replaces, which it returns.
+func (s *Store) setEvents(ctx context.Context, op, subscription string, number uint64, set func(prev uint64) bool) (uint64, error) {
 	if subscription == "" {
-		return 0, errors.New("pgstore.SeenEvent: empty subscription")
+		return 0, fmt.Errorf("pgstore.%s: empty subscription", op)
 	}
 	var prev uint64
-	err := s.inTx(ctx, "SeenEvent", func(tx pgx.Tx) error {
+	err := s.inTx(ctx, op, func(tx pgx.Tx) error {
 		if _, err := tx.Exec(ctx, `INSERT INTO subscription_events (subscription, highest) VALUES ($1, 0) ON CONFLICT DO NOTHING`,
 			subscription); err != nil {
 			return err
@@ -248,7 +261,7 @@ func (s *Store) SeenEvent(ctx context.Context, subscription string, number uint6
 		if prev, err = strconv.ParseUint(highest, 10, 64); err != nil {
 			return fmt.Errorf("stored event number %q: %w", highest, err)
 		}
-		if number <= prev {
+		if number == prev || !set(prev) {
 			return nil
 		}
 		_, err = tx.Exec(ctx, `UPDATE subscription_events SET highest = $2::numeric WHERE subscription = $1`,

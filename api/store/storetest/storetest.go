@@ -49,6 +49,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Outbox/UnknownWrite", testOutboxUnknown},
 		{"Cursor", testCursor},
 		{"SeenEvent", testSeenEvent},
+		{"RestartEvents", testRestartEvents},
 		{"PutNotified", testPutNotified},
 		{"Events/OrderAndResume", testEvents},
 		{"Prune", testPrune},
@@ -921,6 +922,15 @@ func testSeenEvent(t *testing.T, open func(t *testing.T) store.Store) {
 		{"sub-a", 6, 7}, // a late redelivery does not lower the highest
 		{"sub-a", 7, 7},
 		{"sub-a", 8, 7},
+		// A drop within what reordering explains stays a late delivery.
+		{"sub-c", 150, 0},
+		{"sub-c", 90, 150},
+		{"sub-c", 151, 150},
+		// A numbering that started again from 1 (store.EventsRestarted):
+		// the highest follows it.
+		{"sub-c", 1, 151},
+		{"sub-c", 2, 1},
+		{"sub-c", 1, 2},
 	}
 	for i, st := range steps {
 		prev, err := s.SeenEvent(t.Context(), st.sub, st.number)
@@ -928,6 +938,44 @@ func testSeenEvent(t *testing.T, open func(t *testing.T) store.Store) {
 		if prev != st.prev {
 			t.Errorf("step %d: SeenEvent(%s, %d) = %d, want %d", i, st.sub, st.number, prev, st.prev)
 		}
+	}
+}
+
+// testRestartEvents checks that a restart (a handshake) sets the highest
+// event number whatever it was, per subscription, and that the numbering
+// goes on from there.
+func testRestartEvents(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	must(t, func() error { _, err := s.SeenEvent(ctx, "sub-a", 40); return err }())
+	must(t, func() error { _, err := s.SeenEvent(ctx, "sub-b", 9); return err }())
+	steps := []struct {
+		name         string
+		restart      bool
+		sub          string
+		number, prev uint64
+	}{
+		{"a restart to 0 lowers the highest", true, "sub-a", 0, 40},
+		{"the new numbering is new", false, "sub-a", 1, 0},
+		{"and goes on", false, "sub-a", 3, 1},
+		{"a restart with a count sets it", true, "sub-a", 2, 3},
+		{"a restart may raise it", true, "sub-a", 5, 2},
+		{"a restart of a subscription never seen", true, "sub-c", 0, 0},
+		{"other subscriptions keep theirs", false, "sub-b", 9, 9},
+	}
+	for _, st := range steps {
+		call := s.SeenEvent
+		if st.restart {
+			call = s.RestartEvents
+		}
+		prev, err := call(ctx, st.sub, st.number)
+		must(t, err)
+		if prev != st.prev {
+			t.Errorf("%s: previous %d, want %d", st.name, prev, st.prev)
+		}
+	}
+	if _, err := s.RestartEvents(ctx, "", 0); err == nil {
+		t.Error("RestartEvents took an empty subscription")
 	}
 }
 
