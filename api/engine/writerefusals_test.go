@@ -232,3 +232,34 @@ func TestDeviceMatchingSeveral(t *testing.T) {
 		})
 	}
 }
+
+// While writes are stopped (no software Device to cite), the Device is
+// looked for again every two minutes. That wait is a wait like the
+// outbox's retries: a wall clock stepped back meanwhile must not hold the
+// next check back by the step. A check time further ahead than the
+// longest wait the writer sets can only come from a step, as a stored
+// retry time beyond every wait is due at once (TestRetryDue).
+func TestWritesStoppedCheckIsNotHeldBackByAClockSteppedBack(t *testing.T) {
+	ctx := context.Background()
+	r := newWriteRig(t, 0)
+	other := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:example:devices","value":"pump-1"}]}`)
+	for range 2 {
+		if _, err := r.fake.Put(other); err != nil {
+			t.Fatal(err)
+		}
+	}
+	r.fake.Ignore("Device", "identifier")
+	r.open()
+	r.ingest(append(r.inputs, r.gas(1, 44))...)
+	r.eng.FlushNow(ctx)
+	if h := r.health(); h.WritesStopped == "" {
+		t.Fatalf("writes stopped %q; want them stopped (the setup)", h.WritesStopped)
+	}
+	r.fake.ClearFaults() // the server is fixed
+	r.clock.Advance(-time.Hour)
+	r.clock.Advance(3 * time.Minute) // more than the two minutes between checks
+	r.eng.FlushNow(ctx)
+	if h := r.health(); h.WritesStopped != "" || h.Stats.OutboxDepth != 0 {
+		t.Fatalf("after the clock was stepped back an hour and three minutes passed: writes stopped %q, outbox %d; want the Device looked for again and the write sent", h.WritesStopped, h.Stats.OutboxDepth)
+	}
+}
