@@ -8,6 +8,7 @@ import (
 	"net/url"
 	"strconv"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
@@ -70,6 +71,9 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 	// them takes over soon after the holder dies. With a store of its own
 	// the replica runs them all, as the only one.
 	var jl *jobLease
+	// published is the last notification time this replica wrote to the
+	// shared store (sharedLastNotified).
+	var published time.Time
 	var renew <-chan time.Time
 	if rep, shared := e.cfg.Store.(store.Replicated); shared {
 		jl = &jobLease{rep: rep}
@@ -101,6 +105,9 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			e.mu.Lock()
 			last := e.lastNotified
 			e.mu.Unlock()
+			if jl != nil {
+				last = e.sharedLastNotified(ctx, last, &published)
+			}
 			if last.IsZero() {
 				last = started
 			}
@@ -334,6 +341,11 @@ func (e *Engine) Notified(ctx context.Context, n notify.Notification) error {
 		return nil
 	}
 	if n.Type == notify.TypeHandshake {
+		if e.handshakes.repeated(n.Subscription, highest, time.Now()) {
+			// The same handshake delivered again (the server retried it):
+			// the events seen since it are of its numbering, not lost.
+			return nil
+		}
 		previous, err := e.cfg.Store.RestartEvents(ctx, n.Subscription, highest)
 		if err != nil {
 			return fmt.Errorf("engine: handshake: %w", err)
@@ -381,6 +393,35 @@ func (e *Engine) restarted(ctx context.Context, subscription string) {
 	e.missing.forget(subscription)
 	e.log.WarnContext(ctx, "a subscription's event numbering started again on the server; catching up by search")
 	e.RequestCatchUp("subscription-restart")
+}
+
+// lastNotifiedCursor is the store cursor that holds, on a store shared by
+// replicas, when any replica last received a notification.
+const lastNotifiedCursor = "heartbeat: last notification"
+
+// sharedLastNotified returns when any replica sharing the store last
+// received a notification, given this replica's own last one (zero when
+// none): a load balancer may send every notification to one replica, and
+// the others must not take that for a silent subscription. This replica's
+// own time is written to the store when it is newer than the one it
+// wrote before (*published), at most once per heartbeat tick. Times from
+// the store are wall-clock times; a failure to read or write them leaves
+// this replica's own.
+func (e *Engine) sharedLastNotified(ctx context.Context, own time.Time, published *time.Time) time.Time {
+	if !own.IsZero() && own.After(*published) {
+		if err := e.cfg.Store.SetCursor(ctx, lastNotifiedCursor, own.UTC().Format(time.RFC3339Nano)); err == nil {
+			*published = own
+		}
+	}
+	v, err := e.cfg.Store.Cursor(ctx, lastNotifiedCursor)
+	if err != nil || v == "" {
+		return own
+	}
+	at, err := time.Parse(time.RFC3339Nano, v)
+	if err != nil || !at.After(own) {
+		return own
+	}
+	return at
 }
 
 // notifiedAt notes that a notification arrived, for the heartbeat timeout,
@@ -604,4 +645,44 @@ func (e *Engine) fetchPatient(ctx context.Context, subject string) (derive.Patie
 		return derive.Patient{}, err
 	}
 	return it.Patient, nil
+}
+
+// handshakeRepeat is how long after a subscription's handshake one with
+// the same count of events is taken for the same handshake delivered
+// again, not a second restart of the numbering.
+const handshakeRepeat = 10 * time.Minute
+
+// handshakesSeen remembers each subscription's last handshake in this
+// process: its count of events since the subscription started, and when
+// it came (monotonic clock).
+type handshakesSeen struct {
+	mu   sync.Mutex
+	last map[string]handshakeSeen
+}
+
+type handshakeSeen struct {
+	count uint64
+	at    time.Time
+}
+
+// repeated reports whether a handshake of subscription counting count
+// events is a repeat of the last one (same count, within handshakeRepeat),
+// and otherwise remembers it. A repeat delivered to another replica is
+// taken there for a restart: it costs a catch-up search, nothing is lost.
+func (h *handshakesSeen) repeated(subscription string, count uint64, now time.Time) bool {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	if prev, ok := h.last[subscription]; ok && prev.count == count && now.Sub(prev.at) < handshakeRepeat {
+		return true
+	}
+	if h.last == nil {
+		h.last = make(map[string]handshakeSeen)
+	}
+	for s, seen := range h.last {
+		if now.Sub(seen.at) >= handshakeRepeat {
+			delete(h.last, s)
+		}
+	}
+	h.last[subscription] = handshakeSeen{count: count, at: now}
+	return false
 }

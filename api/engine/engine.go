@@ -225,6 +225,7 @@ type Engine struct {
 
 	mu            sync.Mutex
 	lastNotified  time.Time // by the monotonic clock (notifiedAt)
+	handshakes    handshakesSeen
 	outboxBlocked time.Time // when the head write last failed, for readiness
 	deviceRef     string    // the server's "Device/<id>" of the software Device
 	writesStopped string    // why no write is sent, empty while they are

@@ -106,6 +106,23 @@ func (e *Engine) loadResult(ctx context.Context, p *EntryPayload) error {
 	return nil
 }
 
+// failedHold is how long a patient whose evaluation failed waits before
+// it is tried again.
+const failedHold = 5 * time.Second
+
+// heldUntil is when a failed patient's hold ends, by the engine's clock
+// and by the monotonic one: it is over when either says so, so a wall
+// clock stepped back does not prolong it by the step.
+type heldUntil struct{ wall, mono time.Time }
+
+func (h heldUntil) over(now time.Time) bool {
+	return !h.wall.After(now) || !h.mono.After(time.Now())
+}
+
+func (h heldUntil) left(now time.Time) time.Duration {
+	return max(0, min(h.wall.Sub(now), time.Until(h.mono)))
+}
+
 // maxRelistDelay is the longest a device reading of a patient not held
 // back by the device pace waits for the evaluation loop's next listing.
 const maxRelistDelay = 100 * time.Millisecond
@@ -149,7 +166,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 	// gas (not Urgent).
 	routine := make(map[string]bool)
 	// held are patients whose evaluation failed, not retried before then.
-	held := make(map[string]time.Time)
+	held := make(map[string]heldUntil)
 	// paced holds when each patient's last evaluation began, for the
 	// device pace.
 	paced := make(map[string]time.Time)
@@ -214,7 +231,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			delete(running, o.subject)
 			delete(routine, o.subject)
 			if o.failed {
-				held[o.subject] = e.now().Add(5 * time.Second)
+				held[o.subject] = heldUntil{wall: e.now().Add(failedHold), mono: time.Now().Add(failedHold)}
 				listNow = true
 			}
 			// The patient may be dirty again (changes that arrived during
@@ -237,7 +254,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 // order (blood gases first), leaving out those being evaluated and those
 // left to the replica that evaluated them last (leftToOwner), and returns
 // how long to wait before the next listing is worth making.
-func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced map[string]time.Time) ([]store.Dirty, time.Duration) {
+func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]heldUntil, paced map[string]time.Time) ([]store.Dirty, time.Duration) {
 	const idle = time.Minute
 	dirty, err := e.cfg.Store.DirtyPatients(ctx)
 	if err != nil {
@@ -256,7 +273,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced m
 	}
 	now := e.now()
 	for subject, until := range held {
-		if !until.After(now) {
+		if until.over(now) {
 			delete(held, subject)
 		}
 	}
@@ -275,7 +292,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held, paced m
 			continue
 		}
 		if until, ok := held[d.Subject]; ok {
-			wait = min(wait, until.Sub(now))
+			wait = min(wait, until.left(now))
 			continue
 		}
 		if running[d.Subject] {

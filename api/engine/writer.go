@@ -812,7 +812,10 @@ var errDeviceScanEnd = errors.New("too many Devices")
 // failure is left to each write's attempt, which retries as usual.
 func (e *Engine) writesCanGo(ctx context.Context) bool {
 	e.mu.Lock()
-	wait := e.writesStopped != "" && e.now().Before(e.deviceCheckAt)
+	// A check time further ahead than the longest wait can only come from
+	// a wall clock stepped back: it is over.
+	now := e.now()
+	wait := e.writesStopped != "" && now.Before(e.deviceCheckAt) && e.deviceCheckAt.Sub(now) <= backoffMax
 	e.mu.Unlock()
 	if wait {
 		// New writes wake the writer early; the next check still waits.
