@@ -61,3 +61,55 @@ func TestRuleAlveolarFractionFloorIsInclusive(t *testing.T) {
 		})
 	}
 }
+
+// Leaks, from memory: "flag a leak above about 10 %"; the rule as
+// documented (derive.Config.LeakFraction) is "more than 10 % below the
+// inspired, delivered or set one". An expired volume exactly 10 % below
+// the inspired one is not a leak by that rule, whether the figures are
+// whole millilitres or litres a minute with one or two decimals; the note
+// would otherwise read "10 % below", contradicting its own rule. Own
+// arithmetic: 7.7 × 0.9 = 6.93, 8.8 × 0.9 = 7.92, 10.5 × 0.9 = 9.45,
+// 550 × 0.9 = 495.
+func TestRuleLeakOfExactlyTenPercentIsNotFlagged(t *testing.T) {
+	t.Parallel()
+	common := []derive.Reading{
+		rd(derive.KindEtCO2, 0, 35), rd(derive.KindVCO2, 0, 200), rd(derive.KindHeight, -time.Hour, 175),
+	}
+	mv := func(inspired, expired float64) []derive.Reading {
+		return []derive.Reading{
+			sourced(rd(derive.KindMinuteVolume, 0, inspired), 10, "ve-inspired"),
+			sourced(rd(derive.KindMinuteVolume, 0, expired), 20, "ve-expired"),
+			sourced(rd(derive.KindTidalVolume, 0, 500), 30, "vt-expired"),
+		}
+	}
+	cases := []struct {
+		name string
+		vols []derive.Reading
+		leak bool
+	}{
+		{"inspired 7.7, expired 6.93 L/min: exactly 10 %", mv(7.7, 6.93), false},
+		{"inspired 8.8, expired 7.92 L/min: exactly 10 %", mv(8.8, 7.92), false},
+		{"inspired 10.5, expired 9.45 L/min: exactly 10 %", mv(10.5, 9.45), false},
+		{"set 550, expired 495 mL: exactly 10 %", []derive.Reading{
+			sourced(rd(derive.KindMinuteVolume, 0, 7), 20, "ve-expired"),
+			sourced(rd(derive.KindTidalVolume, 0, 550), 10, "vt-set"),
+			sourced(rd(derive.KindTidalVolume, 0, 495), 30, "vt-expired")}, false},
+		// (7.7 − 6.9)/7.7 = 10.4 %: a leak.
+		{"inspired 7.7, expired 6.9 L/min: 10.4 %", mv(7.7, 6.9), true},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			d := derive.Derive(derive.DefaultConfig(), gasOf(40), man60, sortByTime(append(append([]derive.Reading{}, common...), tc.vols...)))
+			checkAccounts(t, d)
+			v := value(d, derive.CodePhysiologic)
+			if v.Code == "" {
+				t.Fatalf("physiologic VD/VT not emitted: %+v", omission(d, derive.CodePhysiologic))
+			}
+			if got := hasNote(v, "leak"); got != tc.leak {
+				t.Errorf("leak note %v, want %v (more than 10 %% below is a leak, exactly 10 %% is not): %q", got, tc.leak, v.Notes)
+			}
+		})
+	}
+}
+
