@@ -44,3 +44,39 @@ func TestGasConditionsOfACO2Percentage(t *testing.T) {
 		})
 	}
 }
+
+// The other gas conditions on a percentage, with the same formulas: dry
+// gas (STPD, ATPD) is the dry basis, 5 × 760 / 100 = 38.0 mm[Hg] even where
+// the site's basis is wet; gas saturated at the room's temperature (ATPS)
+// needs a water vapour pressure the service does not have and is refused;
+// an annotation naming no conditions is a label and keeps the site's basis
+// (wet here: 35.65 mm[Hg]). Own arithmetic.
+func TestGasConditionsOfACO2PercentageOtherAnnotations(t *testing.T) {
+	t.Parallel()
+	cases := []struct {
+		name, code string
+		want       float64 // 0: refused
+	}{
+		{"fraction of dry gas at STPD", "%{STPD}", 38},
+		{"fraction of dry gas at ATPD, lower case", "%{atpd}", 38},
+		{"fraction of gas saturated at room temperature", "%{ATPS}", 0},
+		{"a label naming the gas", "%{CO2}", 35.65},
+		{"BTPS on a wet site", "%{BTPS}", 35.65},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			got, err := units.Convert(derive.KindEtCO2, 5, tc.code, units.Options{PercentBasis: units.BasisWet})
+			var ue *units.Error
+			if tc.want == 0 {
+				if !errors.As(err, &ue) || ue.Reason != derive.ReasonUnitUnknown {
+					t.Errorf("Convert(5 %s) = %v, %v; want a refusal with unit-not-recognised", tc.code, got.ToValue, err)
+				}
+				return
+			}
+			if err != nil || math.Abs(got.ToValue-tc.want) > 1e-9 {
+				t.Errorf("Convert(5 %s) = %v (%q), %v; want %v mm[Hg]", tc.code, got.ToValue, got.Text, err, tc.want)
+			}
+		})
+	}
+}
