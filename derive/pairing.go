@@ -97,7 +97,7 @@ func (b *builder) preferred(k Kind, rs []Reading) ([]Reading, string) {
 	if best >= SubstitutePriority || best <= 0 { // 0: no priority given, as for a caller without a code table
 		return kept, ""
 	}
-	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within %s of the sample time%s",
+	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within ±%s of the sample time%s",
 		k, substituteName(k, sourceOf(kept)), best, k, ClinicalDuration(b.window), substituteRisk(k))
 }
 
