@@ -200,8 +200,11 @@ func Plausible(k Kind, v float64) (ok bool, lo, hi float64) {
 }
 
 // Derive computes every value it can for one blood gas. readings are the
-// same patient's accepted readings of any kind, sorted by AtMillis; readings
-// of KindPaCO2 are ignored. The pairing uses only AtMillis, which the adapter
+// same patient's accepted readings of any kind, sorted by AtMillis. Readings
+// of KindPaCO2 (the patient's blood gases) are not paired; they tell a
+// temperature-adjusted PaCO2 reported on another blood gas (a component,
+// which carries that gas's reference and time) from one of this sample, so
+// a caller passes them. The pairing uses only AtMillis, which the adapter
 // sets from the physiological (sample) time, never from when a result was
 // reported.
 //
@@ -338,8 +341,8 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		var artefacts int
 		if k == KindEtCO2 {
 			if b.paOK && etco2InKPa(rs, b.d.Gas.Value) {
-				why := fmt.Sprintf("every etco2 reading within ±%v of the sample time is between %v and %v, as end-tidal CO2 in kPa would be, while PaCO2 is %v mm[Hg]",
-					cfg.Window, etco2KPaBand[0], etco2KPaBand[1], b.d.Gas.Value)
+				why := fmt.Sprintf("every etco2 reading within ±%s of the sample time is between %v and %v, as end-tidal CO2 in kPa would be, while PaCO2 is %v mm[Hg]",
+					ClinicalDuration(cfg.Window), etco2KPaBand[0], etco2KPaBand[1], b.d.Gas.Value)
 				for _, r := range rs {
 					b.d.Omitted = append(b.d.Omitted, Omission{Ref: r.Ref, Reason: ReasonWrongUnit, Detail: why})
 				}
@@ -359,9 +362,9 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 		}
 		m := Median(vals)
 		b.med[k], b.have[k] = m, true
-		rule := fmt.Sprintf("median of %d readings within ±%v of sample time", len(rs), cfg.Window)
+		rule := fmt.Sprintf("median of %d readings within ±%s of sample time", len(rs), ClinicalDuration(cfg.Window))
 		if len(rs) == 1 {
-			rule = fmt.Sprintf("the only reading within ±%v of sample time", cfg.Window)
+			rule = fmt.Sprintf("the only reading within ±%s of sample time", ClinicalDuration(cfg.Window))
 		}
 		if artefacts > 0 {
 			note := fmt.Sprintf("%d end-tidal reading(s) in the pairing window left out as artefacts (near zero or far below the rest of the window: disconnection, suctioning, an occluded sampling line)", artefacts)
@@ -427,10 +430,10 @@ func (b *builder) findHeight(cfg Config, readings []Reading) (Reading, string, b
 	to := addSat(t, cfg.Window.Milliseconds())
 	for i := next; i < len(readings) && readings[i].AtMillis <= to; i++ {
 		if r := readings[i]; r.Kind == KindHeight && b.plausible(r) {
-			return r, fmt.Sprintf("first body height within %v after sample time (none in the %s before)", cfg.Window, days(cfg.HeightMaxAge)), true
+			return r, fmt.Sprintf("first body height within %s after sample time (none in the %s before)", ClinicalDuration(cfg.Window), days(cfg.HeightMaxAge)), true
 		}
 	}
-	b.heightWhy = fmt.Sprintf("no body height in the %s before the sample time or within %v after", days(cfg.HeightMaxAge), cfg.Window)
+	b.heightWhy = fmt.Sprintf("no body height in the %s before the sample time or within %s after", days(cfg.HeightMaxAge), ClinicalDuration(cfg.Window))
 	return Reading{}, "", false
 }
 
@@ -491,7 +494,7 @@ func (b *builder) need(c Code, pa bool, kinds ...Kind) bool {
 		}
 	}
 	if len(missing) > 0 {
-		why = append(why, fmt.Sprintf("no %s reading within ±%v of the sample time", strings.Join(missing, ", "), b.window))
+		why = append(why, fmt.Sprintf("no %s reading within ±%s of the sample time", strings.Join(missing, ", "), ClinicalDuration(b.window)))
 	}
 	if len(why) == 0 {
 		return true
@@ -579,7 +582,9 @@ const PhysiologicHigh = 0.60
 // are a few mm[Hg]; one beyond this bound is not a physiological reading
 // of one moment (a blood gas and an end-tidal value of different times, a
 // venous sample) and the value is left out as [ReasonInconsistent]. The
-// bound itself is a design choice.
+// bound is inclusive and judged on the value as written (3 decimals), as
+// [ImplausibleVDVT] is: end-tidal exactly 25 % above arterial is −0.250
+// and is written. The bound itself is a design choice.
 const AlveolarFractionFloor = -0.25
 
 // VentilatoryRatioHigh is the ventilatory ratio above which the value is
@@ -626,7 +631,7 @@ func (b *builder) values() {
 	if b.need(CodeAlveolarFraction, true, KindEtCO2) {
 		f := AlveolarFraction(pa, et)
 		switch {
-		case f < AlveolarFractionFloor:
+		case asWritten(f, 3) < AlveolarFractionFloor: // inclusive, judged as written
 			b.omit(CodeAlveolarFraction, ReasonInconsistent, "PetCO2 %v mm[Hg] is more than %v × PaCO2 %v mm[Hg] (fraction %.3f, below %v): suspect timing, sampling or units",
 				et, 1-AlveolarFractionFloor, pa, f, AlveolarFractionFloor)
 		case f >= 1:
@@ -670,7 +675,7 @@ func (b *builder) mixedExpired() {
 		b.pe, b.peOK = b.med[KindMixedExpiredCO2], true
 		b.peInputs = []Kind{KindMixedExpiredCO2}
 		b.peTerms = []Term{{"PĒCO2", b.pe, "mm[Hg]"}}
-		b.omit(CodeMixedExpiredCO2, ReasonNotApplicable, "PĒCO2 was measured within ±%v of the sample time", b.window)
+		b.omit(CodeMixedExpiredCO2, ReasonNotApplicable, "PĒCO2 was measured within ±%s of the sample time", ClinicalDuration(b.window))
 		return
 	}
 	if !b.have[KindVCO2] || !b.have[KindMinuteVolume] {
@@ -680,7 +685,7 @@ func (b *builder) mixedExpired() {
 				missing = append(missing, k.String())
 			}
 		}
-		b.omit(CodeMixedExpiredCO2, ReasonMissingInput, "no measured PĒCO2, and no %s reading within ±%v of the sample time", strings.Join(missing, ", "), b.window)
+		b.omit(CodeMixedExpiredCO2, ReasonMissingInput, "no measured PĒCO2, and no %s reading within ±%s of the sample time", strings.Join(missing, ", "), ClinicalDuration(b.window))
 		return
 	}
 	vco2, ve := b.med[KindVCO2], b.med[KindMinuteVolume]
@@ -711,7 +716,7 @@ func (b *builder) peMissing(c Code) {
 		b.omit(c, ReasonInconsistent, "%s", b.peBad)
 		return
 	}
-	b.omit(c, ReasonMissingInput, "no mixed-expired-co2 reading, nor vco2 and minute-volume, within ±%v of the sample time", b.window)
+	b.omit(c, ReasonMissingInput, "no mixed-expired-co2 reading, nor vco2 and minute-volume, within ±%s of the sample time", ClinicalDuration(b.window))
 }
 
 func (b *builder) peEquation(base string) string {
@@ -806,6 +811,12 @@ func (b *builder) airway(et float64) {
 // one more windowed kind: dead-space volume from tidal volume, alveolar
 // ventilation from minute volume.
 func (b *builder) fromPhysiologic(c Code, k Kind) {
+	if b.physImplausible {
+		// Not missing: computed and refused, and a value computed from an
+		// implausible fraction would carry the same wrong input.
+		b.omit(c, ReasonImplausibleVDVT, "needs the physiologic VD/VT, which was left out as implausible (see its omission)")
+		return
+	}
 	if !b.physOK {
 		b.omit(c, ReasonMissingInput, "needs the physiologic VD/VT, which was not computed (see its omission)")
 		return
@@ -985,6 +996,27 @@ func addSat(a, b int64) int64 {
 		return math.MinInt64
 	}
 	return s
+}
+
+// ClinicalDuration writes a duration as clinicians read it, in the largest
+// unit that holds it whole: "5 min", "90 s", "250 ms" (a pairing window,
+// a look-back, a search), where Go's own form is "5m0s".
+func ClinicalDuration(d time.Duration) string {
+	sign := ""
+	if d < 0 {
+		sign, d = "−", -d
+	}
+	switch {
+	case d == 0:
+		return "0 s"
+	case d%time.Minute == 0:
+		return fmt.Sprintf("%s%d min", sign, d/time.Minute)
+	case d%time.Second == 0:
+		return fmt.Sprintf("%s%d s", sign, d/time.Second)
+	case d%time.Millisecond == 0:
+		return fmt.Sprintf("%s%d ms", sign, d/time.Millisecond)
+	}
+	return sign + d.String()
 }
 
 // days formats whole-day durations as days, which is how people state a

@@ -513,7 +513,7 @@ func TestDeriveHeight(t *testing.T) {
 		{"latest before wins", man60, []derive.Reading{rd(derive.KindHeight, -300*day, 170), rd(derive.KindHeight, -10*day, 175), rd(derive.KindHeight, 2*time.Minute, 180)}, "", 175, "latest body height at or before sample time, not older than 365 days"},
 		{"exactly 365 days old", man60, []derive.Reading{rd(derive.KindHeight, -365*day, 175)}, "", 175, "latest"},
 		{"older than 365 days", man60, []derive.Reading{rd(derive.KindHeight, -365*day-time.Millisecond, 175)}, derive.ReasonPatientFacts, 0, ""},
-		{"none before, one just after", man60, []derive.Reading{rd(derive.KindHeight, 5*time.Minute, 175)}, "", 175, "first body height within 5m0s after sample time"},
+		{"none before, one just after", man60, []derive.Reading{rd(derive.KindHeight, 5*time.Minute, 175)}, "", 175, "first body height within 5 min after sample time"},
 		{"none before, one too late", man60, []derive.Reading{rd(derive.KindHeight, 6*time.Minute, 175)}, derive.ReasonPatientFacts, 0, ""},
 		// Design choice: the ARDS Network equation is for adults.
 		{"below 120 cm", man60, []derive.Reading{rd(derive.KindHeight, -day, 110)}, derive.ReasonPatientFacts, 110, "latest"},
@@ -609,9 +609,9 @@ func TestDeriveWindow(t *testing.T) {
 			if g := value(d, derive.CodeGradient).Value; g != 40-tc.median {
 				t.Errorf("gradient %v not from the median", g)
 			}
-			wantRule := fmt.Sprintf("median of %d readings within ±5m0s of sample time", len(tc.want))
+			wantRule := fmt.Sprintf("median of %d readings within ±5 min of sample time", len(tc.want))
 			if len(tc.want) == 1 {
-				wantRule = "the only reading within ±5m0s of sample time"
+				wantRule = "the only reading within ±5 min of sample time"
 			}
 			if s.Rule != wantRule {
 				t.Errorf("rule %q, want %q", s.Rule, wantRule)

@@ -36,10 +36,10 @@ func ExampleDerive() {
 		fmt.Printf("%-32s not emitted: %s\n", o.Code, o.Reason)
 	}
 	// Output:
-	// etco2                35.0  median of 3 readings within ±5m0s of sample time
-	// mixed-expired-co2    28.0  the only reading within ±5m0s of sample time
-	// tidal-volume        500.0  the only reading within ±5m0s of sample time
-	// minute-volume         7.0  the only reading within ±5m0s of sample time
+	// etco2                35.0  median of 3 readings within ±5 min of sample time
+	// mixed-expired-co2    28.0  the only reading within ±5 min of sample time
+	// tidal-volume        500.0  the only reading within ±5 min of sample time
+	// minute-volume         7.0  the only reading within ±5 min of sample time
 	// body-height         165.0  latest body height at or before sample time, not older than 365 days
 	// paco2-etco2-gradient                5.000 mm[Hg]
 	// alveolar-dead-space-fraction        0.125 1

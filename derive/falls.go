@@ -203,13 +203,13 @@ func (s *FallScan) sparseness(t int64) string {
 		return ""
 	}
 	if gap := t - s.seen[len(s.seen)-1]; gap > s.maxGap {
-		return fmt.Sprintf("no end-tidal reading in the %v before this one: the series is too gappy to judge a fall or rise",
-			time.Duration(s.maxGap)*time.Millisecond)
+		return fmt.Sprintf("no end-tidal reading in the %s before this one: the series is too gappy to judge a fall or rise",
+			ClinicalDuration(time.Duration(s.maxGap)*time.Millisecond))
 	}
 	need := max(s.cfg.MinBaselineReadings, 1)
 	if n := len(s.seen) - s.seenHead; n < need && s.first <= t-s.spanMax {
-		return fmt.Sprintf("%d end-tidal readings in the %v before this one, fewer than the %d a baseline needs: the series is too sparse to judge a fall or rise",
-			n, time.Duration(s.spanMax)*time.Millisecond, need)
+		return fmt.Sprintf("%d end-tidal readings in the %s before this one, fewer than the %d a baseline needs: the series is too sparse to judge a fall or rise",
+			n, ClinicalDuration(time.Duration(s.spanMax)*time.Millisecond), need)
 	}
 	return ""
 }

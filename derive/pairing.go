@@ -97,32 +97,54 @@ func (b *builder) preferred(k Kind, rs []Reading) ([]Reading, string) {
 	if best >= SubstitutePriority || best <= 0 { // 0: no priority given, as for a caller without a code table
 		return kept, ""
 	}
-	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within ±%v of the sample time%s",
-		k, substituteName(k, best), best, k, b.window, substituteRisk(k))
+	return kept, fmt.Sprintf("%s is from a lower-priority source (%s, code-table priority %d), used because no measured %s was within ±%s of the sample time%s",
+		k, substituteName(k, sourceOf(kept)), best, k, ClinicalDuration(b.window), substituteRisk(k))
 }
 
-// deliveredPriority is the default code table's priority of a delivered
-// (inspired) tidal volume (MDC 151980), between a setting (10) and a
-// measured volume (20 or more): a measurement, but of the inspired side.
-const deliveredPriority = 15
-
-// substituteName says what a low-priority source of kind k and priority p
-// is, by the default code table's rows.
-func substituteName(k Kind, p int16) string {
-	switch k {
-	case KindTidalVolume:
-		if p >= deliveredPriority {
-			return "a delivered (inspired) tidal volume"
+// sourceOf is the source of readings of one kind and priority: the one
+// they share, else (rows of one priority that name different sources)
+// [SourceUnspecified].
+func sourceOf(rs []Reading) Source {
+	s := rs[0].SourceKind()
+	for _, r := range rs[1:] {
+		if r.SourceKind() != s {
+			return SourceUnspecified
 		}
-		return "a set tidal volume"
-	case KindMinuteVolume:
-		return "an inspired minute volume"
-	case KindRespRate:
-		return "a mechanical-only or spontaneous-only rate"
-	case KindEtCO2, KindMixedExpiredCO2:
-		return "a CO2 percentage converted with an assumed barometric pressure"
 	}
-	return "a substitute source"
+	return s
+}
+
+// substituteName says what a low-priority source of kind k is, by the
+// source its code-table row names (see [Reading.SourceKind]), never by its
+// priority number.
+func substituteName(k Kind, s Source) string {
+	switch s {
+	case SourceSet:
+		switch k {
+		case KindTidalVolume:
+			return "a set tidal volume"
+		case KindMinuteVolume:
+			return "a set minute volume"
+		case KindRespRate:
+			return "a set rate"
+		}
+		return "a ventilator setting"
+	case SourceInspired:
+		switch k {
+		case KindTidalVolume:
+			return "a delivered (inspired) tidal volume"
+		case KindMinuteVolume:
+			return "an inspired minute volume"
+		}
+		return "an inspired value"
+	case SourcePartialRate:
+		return "a mechanical-only or spontaneous-only rate"
+	case SourceConvertedPercent:
+		return "a CO2 percentage converted with an assumed barometric pressure"
+	case SourceMeasured:
+		return "another measured " + k.String()
+	}
+	return "sources of this priority that differ in kind"
 }
 
 // substituteRisk says what the substitute does to the values; from the
@@ -137,61 +159,106 @@ func substituteRisk(k Kind) string {
 	return ""
 }
 
-// leak compares, in one window, the inspired or delivered volume of kind k
-// (the highest priority below [SubstitutePriority]) with the measured one
-// (the highest priority present, at or above it). When the measured is
-// below the inspired by more than cfg.LeakFraction of it, gas is lost
-// between the two (a cuff or circuit leak, a bronchopleural fistula): the
-// expired volumes and end-tidal CO2 read low, so every value computed
-// from a volume carries a note (a leak above about 10 %, from memory). A leak seen on
-// either volume concerns the whole circuit, so the note goes on values
-// from the other volume too. A set tidal volume counts as the inspired
-// one, as it is in a volume-controlled mode.
+// inspiredSide reports whether s is a source a leak is judged against: a
+// delivered or inspired volume, or a setting.
+func inspiredSide(s Source) bool { return s == SourceInspired || s == SourceSet }
+
+// leak compares, in one window, the measured volume of kind k (the
+// readings of the highest priority present, at or above
+// [SubstitutePriority]) with the inspired side: the delivered, inspired or
+// set readings (their source, [Reading.SourceKind]) of the highest
+// priority among them. Each measured reading is compared with the
+// inspired-side reading in effect at its time: the latest one at or before
+// it in the window (settings are charted when they change, so a setting
+// holds until the next one; a measured reading before the window's first
+// one is not compared). The loss is the median of the relative
+// differences (inspired − measured)/inspired, judged as the note writes
+// it, in per cent to one decimal. When it is more than cfg.LeakFraction,
+// gas is lost between the two (a cuff or circuit leak, a bronchopleural
+// fistula): the expired volumes and end-tidal CO2 read low, so every value
+// computed from a volume carries a note (a leak above about 10 %, from
+// memory). A leak seen on either volume concerns the whole circuit, so the
+// note goes on values from the other volume too. A set tidal volume counts
+// as the inspired one, as it is in a volume-controlled mode.
 func (b *builder) leak(cfg Config, k Kind, rs []Reading) {
 	var best, sub int16
 	for _, r := range rs {
 		best = max(best, r.Priority)
-		if r.Priority > 0 && r.Priority < SubstitutePriority {
+		if r.Priority > 0 && r.Priority < SubstitutePriority && inspiredSide(r.SourceKind()) {
 			sub = max(sub, r.Priority)
 		}
 	}
 	if best < SubstitutePriority || sub == 0 {
 		return
 	}
-	var measured, inspired []float64
+	// rs is in time order: the inspired-side reading in effect at a
+	// measured one is the last of insp at or before it.
+	var insp []Reading
 	for _, r := range rs {
-		switch r.Priority {
-		case best:
-			measured = append(measured, r.Value)
-		case sub:
-			inspired = append(inspired, r.Value)
+		if r.Priority == sub && inspiredSide(r.SourceKind()) {
+			insp = append(insp, r)
 		}
 	}
-	in, out := Median(inspired), Median(measured)
-	lost := (in - out) / in
-	if !(lost > cfg.LeakFraction) {
+	var (
+		inEffect          Reading
+		sources           [sourceCount]bool
+		losses, ins, outs []float64
+	)
+	j := 0
+	for _, r := range rs {
+		if r.Priority != best {
+			continue
+		}
+		for ; j < len(insp) && insp[j].AtMillis <= r.AtMillis; j++ {
+			inEffect = insp[j]
+		}
+		if j == 0 || !(inEffect.Value > 0) {
+			continue // no inspired-side reading yet in the window
+		}
+		losses = append(losses, (inEffect.Value-r.Value)/inEffect.Value)
+		ins, outs = append(ins, inEffect.Value), append(outs, r.Value)
+		sources[inEffect.SourceKind()] = true
+	}
+	if len(losses) == 0 {
 		return
 	}
+	lost := Median(losses)
+	if !(asWritten(100*lost, 1) > 100*cfg.LeakFraction) {
+		return
+	}
+	in, out := Median(ins), Median(outs)
 	unit, name := "L/min", "minute volume"
 	if k == KindTidalVolume {
 		unit, name = "mL", "tidal volume"
 	}
-	what := fmt.Sprintf("the measured %s %.3g %s is %.0f %% below the %s one (%.3g %s)", name, out, unit, 100*lost, substituteSide(k, sub), in, unit)
+	side := substituteSide(k, sources)
+	what := fmt.Sprintf("the measured %s %.3g %s is %.1f %% below the %s one in effect at its time (%.3g %s)", name, out, unit, 100*lost, side, in, unit)
+	if len(losses) > 1 {
+		what = fmt.Sprintf("the measured %s (median %.3g %s) is %.1f %% below the %s one in effect at each reading (median %.3g %s; median of %d comparisons)",
+			name, out, unit, 100*lost, side, in, unit, len(losses))
+	}
 	if b.leakNote == "" {
 		b.leakNote = "possible leak (cuff, circuit or bronchopleural): " + what +
 			" in the pairing window; expired volumes and end-tidal CO2 then read low, so this value is unreliable"
 	} else {
 		b.leakNote += "; also " + what
 	}
-	b.leakTerms = append(b.leakTerms, Term{"inspired " + name, in, unit}, Term{"measured " + name, out, unit})
+	b.leakTerms = append(b.leakTerms, Term{"inspired " + name, in, unit}, Term{"measured " + name, out, unit},
+		Term{"measured below inspired " + name, asWritten(100*lost, 1), "%"})
 }
 
-// substituteSide names the inspired side of kind k at priority p.
-func substituteSide(k Kind, p int16) string {
-	if k == KindTidalVolume && p < deliveredPriority {
+// substituteSide names the inspired side of kind k by the sources
+// compared with.
+func substituteSide(k Kind, sources [sourceCount]bool) string {
+	switch {
+	case sources[SourceSet] && sources[SourceInspired]:
+		if k == KindTidalVolume {
+			return "delivered or set"
+		}
+		return "inspired or set"
+	case sources[SourceSet]:
 		return "set"
-	}
-	if k == KindTidalVolume {
+	case k == KindTidalVolume:
 		return "delivered"
 	}
 	return "inspired"
@@ -223,8 +290,8 @@ func (b *builder) artefacts(cfg ArtefactConfig, rs []Reading) (usable []Reading,
 		b.d.Omitted = append(b.d.Omitted, Omission{Ref: r.Ref, Reason: ReasonArtefact, Detail: detail})
 	}
 	if n > 0 && float64(len(usable)) < cfg.MinUsableFraction*float64(len(rs)) {
-		why = fmt.Sprintf("%d of %d etco2 readings within ±%v of the sample time were artefacts; at least %v of them must be usable",
-			n, len(rs), b.window, cfg.MinUsableFraction)
+		why = fmt.Sprintf("%d of %d etco2 readings within ±%s of the sample time were artefacts; at least %v of them must be usable",
+			n, len(rs), ClinicalDuration(b.window), cfg.MinUsableFraction)
 		return nil, n, why
 	}
 	return usable, n, ""
@@ -288,8 +355,8 @@ func (b *builder) steady(cfg Config, readings []Reading) (string, []Term) {
 	if len(changes) == 0 {
 		return "", nil
 	}
-	note := fmt.Sprintf("not at steady state: %s in the %v before the pairing window; the Enghoff and Bohr equations assume steady ventilation, so read this value with care",
-		join(changes), cfg.Steady.Lookback)
+	note := fmt.Sprintf("not at steady state: %s in the %s before the pairing window; the Enghoff and Bohr equations assume steady ventilation, so read this value with care",
+		join(changes), ClinicalDuration(cfg.Steady.Lookback))
 	return note, terms
 }
 
@@ -317,7 +384,9 @@ func TemperatureAdjusted(pco2at37, tempC, coefficient float64) float64 {
 }
 
 // temperature decides the PaCO2 the equations use: a reported
-// temperature-adjusted PaCO2 of the same sample when there is one, else the
+// temperature-adjusted PaCO2 of the same sample when there is one (one
+// reported on this blood gas itself, or a separate one within
+// [sameSample]; never one reported on another blood gas), else the
 // 37 °C value adjusted to the nearest body temperature within Search, else
 // the value as reported. It records the readings it used in Used.
 func (b *builder) temperature(cfg Config, readings []Reading) {
@@ -333,6 +402,9 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 			if r.Kind != k || !b.plausible(r) {
 				continue
 			}
+			if k == KindPaCO2Adjusted && r.Ref != b.d.Gas.Ref && onAnotherGas(readings, r) {
+				continue // another sample's own value
+			}
 			if !found || absInt(r.AtMillis-t) < absInt(best.AtMillis-t) ||
 				(absInt(r.AtMillis-t) == absInt(best.AtMillis-t) && r.Priority > best.Priority) {
 				best, found = r, true
@@ -343,7 +415,7 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	temp, haveTemp := nearest(KindBodyTemperature, cfg.Temperature.Search)
 	if adj, ok := nearest(KindPaCO2Adjusted, sameSample); ok {
 		b.pa, b.paAdjusted = adj.Value, true
-		rule := fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%v), preferred to the 37 °C value", sameSample)
+		rule := fmt.Sprintf("temperature-adjusted PaCO2 reported for the same sample (within ±%s), preferred to the 37 °C value", ClinicalDuration(sameSample))
 		if adj.Ref == b.d.Gas.Ref {
 			// The decoder gives an adjusted value reported on the blood
 			// gas itself (a component) the gas's own reference and time.
@@ -357,7 +429,7 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	if !haveTemp {
 		return
 	}
-	rule := fmt.Sprintf("body temperature nearest the sample time, within ±%v", cfg.Temperature.Search)
+	rule := fmt.Sprintf("body temperature nearest the sample time, within ±%s", ClinicalDuration(cfg.Temperature.Search))
 	if temp.Ref == b.d.Gas.Ref {
 		// The decoder gives a temperature entered on the blood gas itself
 		// the gas's own reference and time.
@@ -373,6 +445,20 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 	b.paTerms = []Term{{"PaCO2 at 37 °C", b.d.Gas.Value, "mm[Hg]"}, {"body temperature", temp.Value, "Cel"}, {"PaCO2 at patient temperature", b.pa, "mm[Hg]"}}
 	b.paNote = fmt.Sprintf("PaCO2 adjusted from 37 °C to the patient's %v °C: PCO2(T) = PCO2(37) × 10^(%v × (T − 37)) (temperature coefficient of PCO2 of blood in vitro, J Appl Physiol 1965), %v → %.1f mm[Hg]",
 		temp.Value, cfg.Temperature.Coefficient, b.d.Gas.Value, b.pa)
+}
+
+// onAnotherGas reports whether r was reported on a blood gas of readings
+// (a component: the decoder gives it the gas's reference and time). Such
+// a value belongs to that sample only, and another blood gas, however
+// close in time, never takes it as its own.
+func onAnotherGas(readings []Reading, r Reading) bool {
+	i := sort.Search(len(readings), func(i int) bool { return readings[i].AtMillis >= r.AtMillis })
+	for ; i < len(readings) && readings[i].AtMillis == r.AtMillis; i++ {
+		if readings[i].Kind == KindPaCO2 && readings[i].Ref == r.Ref {
+			return true
+		}
+	}
+	return false
 }
 
 func absInt(v int64) int64 {
@@ -490,7 +576,7 @@ func PreferredSeries(window time.Duration, series []Reading) ([]Reading, []Omiss
 		}
 		if better {
 			omitted = append(omitted, Omission{Ref: r.Ref, Reason: ReasonLowerPriority,
-				Detail: fmt.Sprintf("%s of priority %d; a higher-priority reading was within ±%v", r.Kind, r.Priority, window)})
+				Detail: fmt.Sprintf("%s of priority %d; a higher-priority reading was within ±%s", r.Kind, r.Priority, ClinicalDuration(window))})
 			continue
 		}
 		kept = append(kept, r)

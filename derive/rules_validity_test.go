@@ -148,10 +148,13 @@ func TestRuleImplausibleFractionHasItsReasonAndNoStandIn(t *testing.T) {
 	d := derive.Derive(derive.DefaultConfig(), gasOf(80), man60, rs)
 	checkAccounts(t, d)
 	want := map[derive.Code]derive.Reason{
-		derive.CodePhysiologic:       derive.ReasonImplausibleVDVT,
-		derive.CodeAirwayFraction:    derive.ReasonImplausibleVDVT, // (70 − 6)/70 = 0.914
-		derive.CodeDeadSpaceVolume:   derive.ReasonMissingInput,
-		derive.CodeAlveolarVent:      derive.ReasonMissingInput,
+		derive.CodePhysiologic:    derive.ReasonImplausibleVDVT,
+		derive.CodeAirwayFraction: derive.ReasonImplausibleVDVT, // (70 − 6)/70 = 0.914
+		// Not input-missing: the fraction they need was computed and
+		// refused, so they carry its reason, and an auditor counting
+		// omissions by reason sees one implausible input, not missing data.
+		derive.CodeDeadSpaceVolume:   derive.ReasonImplausibleVDVT,
+		derive.CodeAlveolarVent:      derive.ReasonImplausibleVDVT,
 		derive.CodeEstimatedFraction: derive.ReasonInconsistent,
 	}
 	for c, r := range want {

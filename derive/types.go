@@ -8,7 +8,7 @@ import (
 // derived value's identity: a change to an equation, a default or a pairing
 // rule must change it, so that results computed under different rules are
 // never mistaken for one another.
-const AlgorithmVersion = "2.1.0"
+const AlgorithmVersion = "2.2.0"
 
 // Kind is what a reading measures. Each kind has one canonical unit, and
 // every [Reading] value is in it; unit conversion is the adapter's job.
@@ -103,6 +103,95 @@ type Reading struct {
 	// readings of the highest priority present, and discloses a priority
 	// below [SubstitutePriority].
 	Priority int16
+	// Source says what the reading's source measures of its kind (a
+	// measured value, a delivered or inspired volume, a setting, a partial
+	// rate, a converted percentage). It names a substitute in notes and
+	// decides which readings a leak is judged on; the priority alone
+	// decides which source is used. Zero ([SourceUnspecified]) is read as
+	// [DefaultSource] of the kind and priority.
+	Source Source `json:",omitempty"`
+}
+
+// Source is what a reading's source measures of its kind, from its code
+// table row ("source"), or set by the adapter for a CO2 percentage it
+// converted. Stores persist it as its number: values never change meaning.
+type Source uint8
+
+// The sources.
+const (
+	SourceUnspecified      Source = iota // not given: see [DefaultSource]
+	SourceMeasured                       // a measurement of the quantity itself (an expired volume, an end-tidal pressure)
+	SourceInspired                       // a delivered or inspired volume: measured on the inspired side
+	SourceSet                            // a ventilator setting
+	SourcePartialRate                    // a mechanical-only or spontaneous-only rate
+	SourceConvertedPercent               // a CO2 percentage converted with an assumed barometric pressure and basis
+	sourceCount
+)
+
+var sourceNames = [sourceCount]string{
+	SourceUnspecified:      "",
+	SourceMeasured:         "measured",
+	SourceInspired:         "inspired",
+	SourceSet:              "set",
+	SourcePartialRate:      "partial-rate",
+	SourceConvertedPercent: "converted-percentage",
+}
+
+// String returns the source's name as code tables write it ("" when
+// unspecified).
+func (s Source) String() string {
+	if s >= sourceCount {
+		return "unknown"
+	}
+	return sourceNames[s]
+}
+
+// ParseSource is the inverse of [Source.String]; "delivered" is read as
+// [SourceInspired] (a delivered tidal volume is measured on the inspired
+// side).
+func ParseSource(name string) (Source, bool) {
+	if name == "delivered" {
+		return SourceInspired, true
+	}
+	for s := SourceMeasured; s < sourceCount; s++ {
+		if sourceNames[s] == name {
+			return s, true
+		}
+	}
+	return SourceUnspecified, false
+}
+
+// DefaultSource is the source of a reading of kind k and priority p whose
+// source was not given (a site code-table row without "source", a caller
+// without a code table): at or above [SubstitutePriority], or without a
+// priority, a measurement; below it, the common substitute of the kind: a
+// set tidal volume (a delivered volume is named so only when its row says
+// "delivered"), an inspired minute volume, a partial rate. Any other kind
+// below it is a lower-priority measurement: a CO2 percentage is marked
+// [SourceConvertedPercent] by the adapter that converted it, whatever its
+// row says.
+func DefaultSource(k Kind, p int16) Source {
+	if p >= SubstitutePriority || p <= 0 {
+		return SourceMeasured
+	}
+	switch k {
+	case KindTidalVolume:
+		return SourceSet
+	case KindMinuteVolume:
+		return SourceInspired
+	case KindRespRate:
+		return SourcePartialRate
+	}
+	return SourceMeasured
+}
+
+// SourceKind returns r's source: [Reading.Source], or [DefaultSource] when
+// it is unspecified.
+func (r Reading) SourceKind() Source {
+	if r.Source != SourceUnspecified && r.Source < sourceCount {
+		return r.Source
+	}
+	return DefaultSource(r.Kind, r.Priority)
 }
 
 // At returns the effective time.

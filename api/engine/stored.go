@@ -33,7 +33,13 @@ import (
 // blood gas): a 1-byte count, then per reading its kind (1), priority (2,
 // signed) and value (8); they share the head's reference, encounter and
 // time. Version 2 payloads are still read, with none.
-const storedVersion = 3
+//
+// Version 4 adds each reading's source kind (derive.Reading.Source, one
+// byte): the head's own after the encounter, before the count, and each
+// other reading's after its value (12 bytes a reading). Earlier payloads
+// are still read, with the source the pairing gave such a reading before
+// code tables named it (legacySource).
+const storedVersion = 4
 
 var errStoredPayload = errors.New("stored input payload is damaged")
 
@@ -61,11 +67,13 @@ func encodeStored(it decode.Item) ([]byte, error) {
 	b = append(b, r.Ref...)
 	b = binary.LittleEndian.AppendUint16(b, uint16(len(r.Encounter)))
 	b = append(b, r.Encounter...)
+	b = append(b, byte(r.Source))
 	b = append(b, byte(len(it.Also)))
 	for _, a := range it.Also {
 		b = append(b, byte(a.Kind))
 		b = binary.LittleEndian.AppendUint16(b, uint16(a.Priority))
 		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(a.Value))
+		b = append(b, byte(a.Source))
 	}
 	for _, s := range []string{it.Status, o.Value, o.Unit, o.System, o.Code, c.FromUnit, c.ToUnit, c.Source, c.Text, string(om.Code), om.Ref, string(om.Reason), om.Detail} {
 		b = binary.AppendUvarint(b, uint64(len(s)))
@@ -103,8 +111,10 @@ func decodeHead(p []byte, logical, version string) (storedHead, int, error) {
 // headLayout is where the parts of a stored input's head lie.
 type headLayout struct {
 	ref, encounter [2]int // start and end offsets
+	source         int    // offset of the own reading's source; 0 before version 4
 	also           int    // offset of the first other reading
 	nAlso          int
+	stride         int // bytes an other reading takes
 	end            int // offset of what follows the head
 }
 
@@ -128,18 +138,27 @@ func parseHead(p []byte) (headLayout, error) {
 		*part = [2]int{off, off + n}
 		off += n
 	}
+	l.stride = 11
+	if p[0] >= 4 {
+		if len(p) < off+1 {
+			return headLayout{}, errStoredPayload
+		}
+		l.source = off
+		l.stride = 12
+		off++
+	}
 	if p[0] >= 3 {
 		if len(p) < off+1 {
 			return headLayout{}, errStoredPayload
 		}
 		l.nAlso = int(p[off])
 		off++
-		if len(p) < off+11*l.nAlso {
+		if len(p) < off+l.stride*l.nAlso {
 			return headLayout{}, errStoredPayload
 		}
 	}
 	l.also = off
-	l.end = off + 11*l.nAlso
+	l.end = off + l.stride*l.nAlso
 	return l, nil
 }
 
@@ -153,7 +172,7 @@ func headItemType(p []byte) decode.ItemType { return decode.ItemType(p[1]) }
 func headAtMillis(p []byte) int64 { return int64(binary.LittleEndian.Uint64(p[5:13])) }
 
 // alsoKind is the kind of the i-th other reading of a head laid out as l.
-func (l headLayout) alsoKind(p []byte, i int) derive.Kind { return derive.Kind(p[l.also+11*i]) }
+func (l headLayout) alsoKind(p []byte, i int) derive.Kind { return derive.Kind(p[l.also+l.stride*i]) }
 
 // headReader decodes stored inputs' heads. Consecutive inputs of one
 // encounter share its string.
@@ -182,16 +201,54 @@ func (hr *headReader) decode(p []byte, ownRef func() string) (storedHead, int, e
 	if h.Reading.Ref == "" {
 		h.Reading.Ref = ownRef()
 	}
+	if l.source > 0 {
+		h.Reading.Source = derive.Source(p[l.source])
+	} else {
+		h.Reading.Source = legacySource(h.Reading.Kind, h.Priority)
+	}
 	if l.nAlso > 0 {
 		h.Also = make([]derive.Reading, 0, l.nAlso)
 	}
 	for i := range l.nAlso {
-		off := l.also + 11*i
-		h.Also = append(h.Also, derive.Reading{Ref: h.Reading.Ref, Encounter: h.Reading.Encounter, AtMillis: h.Reading.AtMillis,
+		off := l.also + l.stride*i
+		a := derive.Reading{Ref: h.Reading.Ref, Encounter: h.Reading.Encounter, AtMillis: h.Reading.AtMillis,
 			Kind: derive.Kind(p[off]), Priority: int16(binary.LittleEndian.Uint16(p[off+1 : off+3])),
-			Value: math.Float64frombits(binary.LittleEndian.Uint64(p[off+3 : off+11]))})
+			Value: math.Float64frombits(binary.LittleEndian.Uint64(p[off+3 : off+11]))}
+		if l.stride == 12 {
+			a.Source = derive.Source(p[off+11])
+		} else {
+			a.Source = legacySource(a.Kind, int(a.Priority))
+		}
+		h.Also = append(h.Also, a)
 	}
 	return h, l.end, nil
+}
+
+// legacySource is the source of a reading stored before payloads kept it
+// (version 3 and earlier), decided from its kind and priority as the
+// pairing decided it then: a tidal volume ranked 15 to 19 delivered and
+// one below 15 set, a minute volume below 20 inspired, a rate below 20
+// partial, an end-tidal or mixed-expired CO2 below 20 a converted
+// percentage; 20 or more, or no priority, measured. The default code
+// table gives exactly these rows those priorities.
+func legacySource(k derive.Kind, priority int) derive.Source {
+	if priority >= derive.SubstitutePriority || priority <= 0 {
+		return derive.SourceMeasured
+	}
+	switch k {
+	case derive.KindTidalVolume:
+		if priority >= 15 {
+			return derive.SourceInspired
+		}
+		return derive.SourceSet
+	case derive.KindMinuteVolume:
+		return derive.SourceInspired
+	case derive.KindRespRate:
+		return derive.SourcePartialRate
+	case derive.KindEtCO2, derive.KindMixedExpiredCO2:
+		return derive.SourceConvertedPercent
+	}
+	return derive.SourceMeasured
 }
 
 // decodeStored reads a whole stored input, for explanations.

@@ -30,6 +30,10 @@ func TestStoredRoundTrip(t *testing.T) {
 			Reading: derive.Reading{Ref: "Observation/g/_history/2", Encounter: "Encounter/e", AtMillis: 5, Value: 40, Kind: derive.KindPaCO2},
 			Also:    []derive.Reading{{Ref: "Observation/g/_history/2", Encounter: "Encounter/e", AtMillis: 5, Value: 33, Kind: derive.KindBodyTemperature, Priority: 20}},
 		}},
+		{"set tidal volume whose row names its source", decode.Item{
+			Type: decode.ItemReading, ResourceType: "Observation", ID: "s", VersionID: "1", Ref: "Observation/s/_history/1", Status: "final", Priority: 15,
+			Reading: derive.Reading{Ref: "Observation/s/_history/1", AtMillis: 9, Value: 500, Kind: derive.KindTidalVolume, Source: derive.SourceSet},
+		}},
 		{"withdrawal", decode.Item{
 			Type: decode.ItemOmitted, Ref: "Observation/b/_history/2",
 			Reading:  derive.Reading{Ref: "Observation/b/_history/2"},
@@ -81,4 +85,53 @@ func FuzzDecodeStored(f *testing.F) {
 			t.Fatalf("encoding is not stable: %x then %x", again, twice)
 		}
 	})
+}
+
+// A payload stored before version 4 has no source kind: it is read with
+// the source the pairing gave such a reading then, from its kind and
+// priority (a tidal volume ranked 15 delivered, 10 set; an end-tidal CO2
+// below 20 a converted percentage).
+func TestStoredBeforeSourcesKeepsTheOldNames(t *testing.T) {
+	for _, tc := range []struct {
+		name     string
+		kind     derive.Kind
+		priority int
+		want     derive.Source
+	}{
+		{"delivered tidal volume", derive.KindTidalVolume, 15, derive.SourceInspired},
+		{"set tidal volume", derive.KindTidalVolume, 10, derive.SourceSet},
+		{"inspired minute volume", derive.KindMinuteVolume, 10, derive.SourceInspired},
+		{"end-tidal percentage", derive.KindEtCO2, 10, derive.SourceConvertedPercent},
+		{"expired tidal volume", derive.KindTidalVolume, 30, derive.SourceMeasured},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			it := decode.Item{Type: decode.ItemReading, ResourceType: "Observation", ID: "v", VersionID: "1", Ref: "Observation/v/_history/1", Status: "final",
+				Priority: tc.priority, Reading: derive.Reading{Ref: "Observation/v/_history/1", AtMillis: 3, Value: 30, Kind: tc.kind, Source: derive.SourceMeasured},
+				Also: []derive.Reading{{Ref: "Observation/v/_history/1", AtMillis: 3, Value: 20, Kind: tc.kind, Priority: int16(tc.priority)}}}
+			p, err := encodeStored(it)
+			if err != nil {
+				t.Fatal(err)
+			}
+			l, err := parseHead(p)
+			if err != nil {
+				t.Fatal(err)
+			}
+			// The version 3 layout: no source byte after the encounter,
+			// 11 bytes an other reading.
+			old := append([]byte{3}, p[1:l.source]...)
+			old = append(old, p[l.source+1:l.also]...)
+			old = append(old, p[l.also:l.also+11]...)
+			old = append(old, p[l.end:]...)
+			got, err := decodeStored(old, "Observation/v", "1")
+			if err != nil {
+				t.Fatal(err)
+			}
+			if got.Item.Reading.Source != tc.want || len(got.Item.Also) != 1 || got.Item.Also[0].Source != tc.want {
+				t.Errorf("sources %v and %+v, want %v", got.Item.Reading.Source, got.Item.Also, tc.want)
+			}
+			if got.Item.Status != "final" || got.Item.Reading.Value != 30 || got.Item.Also[0].Value != 20 {
+				t.Errorf("the rest of the version 3 payload was misread: %+v", got.Item)
+			}
+		})
+	}
 }

@@ -147,7 +147,10 @@ func EvaluateIncremental(cfg derive.Config, enc *encode.Encoder, subject string,
 		r.Priority = int16(max(min(in.Priority, 1<<15-1), -1<<15))
 		switch r.Kind {
 		case derive.KindPaCO2:
+			// Derive reads the other gases too: a temperature-adjusted
+			// PaCO2 reported on one belongs to that sample only.
 			gases = append(gases, r)
+			readings = append(readings, r)
 		case DetectorKind:
 			etco2 = append(etco2, r)
 			readings = append(readings, r)
@@ -283,7 +286,8 @@ func (l *leftOut) use(rs []derive.Reading) {
 // used.
 func (l *leftOut) finish(readings []derive.Reading) []derive.Omission {
 	for _, r := range readings {
-		if l.used[r.Ref] {
+		if r.Kind == derive.KindPaCO2 || l.used[r.Ref] {
+			// A blood gas is accounted for by its own derivation.
 			continue
 		}
 		if o, ok := l.why[r.Ref]; ok {
@@ -368,6 +372,7 @@ type record struct {
 	lastUpdated    int64 // Unix nanoseconds, as the live store orders them
 	kind           derive.Kind
 	priority       int16
+	source         derive.Source
 	// also are the readings the same resource version carries besides this
 	// one (a temperature on a blood gas); they stand or fall with it.
 	also []derive.Reading
@@ -438,7 +443,7 @@ func (c *Collector) Add(it decode.Item) {
 		c.seen[logicalHash(l, "")] = struct{}{}
 		c.bySubject[it.Subject] = append(c.bySubject[it.Subject], record{
 			ref: r.Ref, encounter: r.Encounter, atMillis: r.AtMillis, value: r.Value,
-			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority), also: it.Also,
+			lastUpdated: nanos(it.LastUpdated), kind: r.Kind, priority: int16(it.Priority), source: r.Source, also: it.Also,
 		})
 	default:
 		ref := it.Ref
@@ -610,7 +615,7 @@ func latest(subject string, recs []record, omitted []*omittedRecord, elsewhere f
 		}
 		r := v.rec
 		inputs = append(inputs, Input{
-			Reading:  derive.Reading{Ref: r.ref, Encounter: r.encounter, AtMillis: r.atMillis, Value: r.value, Kind: r.kind},
+			Reading:  derive.Reading{Ref: r.ref, Encounter: r.encounter, AtMillis: r.atMillis, Value: r.value, Kind: r.kind, Source: r.source},
 			Priority: int(r.priority),
 		})
 		for _, a := range r.also {

@@ -29,7 +29,8 @@
 // [derive.Reason]); Observations with its code are reported as omitted with
 // that reason. An "ignore" row in a site file removes the default row with
 // the same system and code, so such Observations are unrelated to this
-// service. "co2Basis" ("wet" or "dry") is allowed on expired-gas CO2 rows
+// service. "source" says what an accepted row's code measures (see
+// Source below). "co2Basis" ("wet" or "dry") is allowed on expired-gas CO2 rows
 // only and overrides the site's default basis for converting a percent to a
 // partial pressure (see package units). "panel": true marks the code of a
 // panel (an arterial blood gas panel, 24336-0) whose PaCO2 is one of its
@@ -46,11 +47,24 @@
 // [derive.ReasonLowerPriority].
 // Default priorities: measured expired values 30 (tidal volume) or 20,
 // other measurements 20, settings, inspired volumes and partial rates 10–15
-// (a delivered, inspired tidal volume 15, above the set one at 10: the
-// pairing names it as delivered from that priority).
+// (a delivered, inspired tidal volume 15, above the set one at 10).
 // The pairing chooses per window, and a priority below
 // [derive.SubstitutePriority] (20) is disclosed in the derived value's note
 // as a substitute; a site row keeps to this scale.
+//
+// # Source
+//
+// "source" says what a code measures of its kind: "measured",
+// "delivered" (or "inspired": a volume measured on the inspired side),
+// "set" (a ventilator setting) or "partial-rate" (mechanical-only or
+// spontaneous-only breaths). The note on a value computed from a
+// substitute names it by its source, never by its priority, and a leak is
+// judged between the measured volume and the delivered, inspired or set
+// one. A site row without it takes the default row's source for the same
+// system and code, else [derive.DefaultSource]: below 20 a tidal volume is
+// taken as set, a minute volume as inspired, a rate as partial; anything
+// else is measured. A CO2 percentage is marked converted by the decoder,
+// whatever its row says.
 package codes
 
 import (
@@ -121,6 +135,14 @@ type Row struct {
 	CO2Basis string
 	// Priority ranks rows of the same kind; higher is preferred.
 	Priority int
+	// Source says what the code measures of its kind ("source": measured,
+	// delivered or inspired, set, partial-rate); it names a substitute in
+	// a value's note and decides what a leak is judged against. Unspecified
+	// in a site row, it is the default row's for the same code (a site that
+	// re-ranks a default code keeps what the code measures), else
+	// [derive.DefaultSource] of the kind and priority. A CO2 percentage is
+	// marked converted by the decoder whatever the row says.
+	Source derive.Source
 	// Panel marks a panel's code (an arterial blood gas panel): the value
 	// of Kind is read from the panel's components, each recognised by its
 	// own row, and the reading cites the panel. Only paco2 rows may be
@@ -199,6 +221,9 @@ func (t *Table) Merge(site *Table) *Table {
 		if r.Action == ActionIgnore {
 			delete(out.rows, k)
 			continue
+		}
+		if def, ok := t.rows[k]; ok && r.Source == derive.SourceUnspecified && def.Kind == r.Kind {
+			r.Source = def.Source
 		}
 		out.rows[k] = r
 	}
@@ -281,6 +306,7 @@ type rowJSON struct {
 	CO2Basis string `json:"co2Basis"`
 	Priority int    `json:"priority"`
 	Panel    bool   `json:"panel"`
+	Source   string `json:"source"`
 	Note     string `json:"note"`
 }
 
@@ -409,10 +435,39 @@ func (rj rowJSON) row() (Row, []error) {
 	if rj.Panel && (r.Action != ActionAccept || r.Kind != derive.KindPaCO2) {
 		errs = append(errs, errors.New(`"panel" applies only to accepted paco2 rows: a blood gas panel whose PaCO2 is a component`))
 	}
+	if rj.Source != "" {
+		src, ok := derive.ParseSource(rj.Source)
+		switch {
+		case !ok || src == derive.SourceConvertedPercent:
+			errs = append(errs, fmt.Errorf(`"source" must be measured, delivered, inspired, set or partial-rate, got %q (a CO2 percentage is marked converted from its unit)`, rj.Source))
+		case r.Action != ActionAccept:
+			errs = append(errs, errors.New(`"source" applies only to accepted rows`))
+		case !sourceFits(src, r.Kind):
+			errs = append(errs, fmt.Errorf(`"source" %q does not apply to kind %q`, rj.Source, rj.Kind))
+		}
+		r.Source = src
+	}
 	if rj.Priority < 0 {
 		errs = append(errs, fmt.Errorf(`"priority" must not be negative, got %d`, rj.Priority))
 	}
 	return r, errs
+}
+
+// sourceFits reports whether a row of kind k can name source s: delivered
+// or inspired for a volume, a setting for a volume or a rate, a partial
+// rate for a rate; any kind can be measured.
+func sourceFits(s derive.Source, k derive.Kind) bool {
+	switch s {
+	case derive.SourceMeasured:
+		return true
+	case derive.SourceInspired:
+		return k == derive.KindTidalVolume || k == derive.KindMinuteVolume
+	case derive.SourceSet:
+		return k == derive.KindTidalVolume || k == derive.KindMinuteVolume || k == derive.KindRespRate
+	case derive.SourcePartialRate:
+		return k == derive.KindRespRate
+	}
+	return false
 }
 
 // describe adds the line (and, for unknown members, the member's own line)

@@ -26,7 +26,9 @@
 //     type in the detail); a comparator makes it [derive.ReasonCensored].
 //  8. Unit: see package units ([derive.ReasonUnitUnknown],
 //     [derive.ReasonUnitMismatch]). A CO2 percentage, under whatever code,
-//     keeps at most [codes.ConvertedPercentPriority]: it is a substitute.
+//     keeps at most [codes.ConvertedPercentPriority]: it is a substitute,
+//     with [derive.SourceConvertedPercent]. Otherwise the reading's Source
+//     is its row's (see package codes).
 //  9. Time: effectiveDateTime, effectiveInstant or effectivePeriod.start,
 //     which must carry a time of day and a timezone; `issued` (when the
 //     result was reported) is never used, because pairing needs the sample
@@ -401,6 +403,7 @@ func (d *Decoder) observation(line []byte) Item {
 	}
 	it := Item{Type: ItemOmitted, ResourceType: "Observation", Status: o.Status, Priority: row.Priority}
 	it.Reading.Kind = row.Kind
+	it.Reading.Source = row.Source
 	omit := func(reason derive.Reason, detail string) Item {
 		it.Type = ItemOmitted
 		it.Reading.Ref = it.Ref
@@ -497,6 +500,7 @@ func (d *Decoder) observation(line []byte) Item {
 		// A percentage under any code, a partial-pressure one included, is
 		// converted with an assumed pressure: a substitute.
 		it.Priority = min(it.Priority, codes.ConvertedPercentPriority)
+		it.Reading.Source = derive.SourceConvertedPercent
 	}
 
 	// Time.

@@ -78,10 +78,13 @@ func ParseAny(s string) (r Ref, base string, err error) {
 	return r, s[:len(s)-len(t)], nil
 }
 
-// SameBase reports whether two FHIR server bases name the same server:
-// scheme and host compared without regard to case (RFC 3986 §6.2.2.1), a
-// default port (80 for http, 443 for https) dropped, and a trailing slash
-// ignored; the path is compared exactly. An empty base names no server.
+// SameBase reports whether two FHIR server bases name the same server,
+// compared after the normalisations of RFC 3986 §6.2.2 and §6.2.3: scheme
+// and host without regard to case, the hex digits of a percent-encoding
+// upper-cased, a percent-encoded unreserved character (ALPHA, DIGIT, "-",
+// ".", "_", "~"; §2.3) decoded, a default port (80 for http, 443 for
+// https) dropped, and a trailing slash ignored. An empty base names no
+// server.
 func SameBase(a, b string) bool {
 	ca, oka := canonicalBase(a)
 	cb, okb := canonicalBase(b)
@@ -102,7 +105,52 @@ func canonicalBase(s string) (string, bool) {
 	if port != "" {
 		host += ":" + port
 	}
-	return scheme + "://" + host + strings.TrimSuffix(u.EscapedPath(), "/"), true
+	return scheme + "://" + normalisePercent(host) + strings.TrimSuffix(normalisePercent(u.EscapedPath()), "/"), true
+}
+
+// normalisePercent decodes the percent-encodings of unreserved characters
+// and upper-cases the hex digits of the others (RFC 3986 §6.2.2.1 and
+// §6.2.2.2).
+func normalisePercent(s string) string {
+	if !strings.Contains(s, "%") {
+		return s
+	}
+	var b strings.Builder
+	b.Grow(len(s))
+	for i := 0; i < len(s); i++ {
+		if s[i] == '%' && i+2 < len(s) && isHex(s[i+1]) && isHex(s[i+2]) {
+			c := unhex(s[i+1])<<4 | unhex(s[i+2])
+			if isUnreserved(c) {
+				b.WriteByte(c)
+			} else {
+				b.WriteByte('%')
+				b.WriteString(strings.ToUpper(s[i+1 : i+3]))
+			}
+			i += 2
+			continue
+		}
+		b.WriteByte(s[i])
+	}
+	return b.String()
+}
+
+func isHex(c byte) bool {
+	return '0' <= c && c <= '9' || 'a' <= c && c <= 'f' || 'A' <= c && c <= 'F'
+}
+
+func unhex(c byte) byte {
+	switch {
+	case c <= '9':
+		return c - '0'
+	case c >= 'a':
+		return c - 'a' + 10
+	}
+	return c - 'A' + 10
+}
+
+// isUnreserved: RFC 3986 §2.3, ALPHA / DIGIT / "-" / "." / "_" / "~".
+func isUnreserved(c byte) bool {
+	return 'a' <= c && c <= 'z' || 'A' <= c && c <= 'Z' || '0' <= c && c <= '9' || c == '-' || c == '.' || c == '_' || c == '~'
 }
 
 // Key reads a literal reference that may be absolute (see [ParseAny]) and

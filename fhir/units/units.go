@@ -34,6 +34,11 @@
 // referred to saturated alveolar gas. Choosing dry for a wet-basis device
 // overstates PCO2 by PB/(PB − 47), about 6.6 % at sea level. The basis is set
 // per site ([Options.PercentBasis]) and per code (the code table's co2Basis).
+// A percentage whose annotation names its gas conditions is converted on
+// the basis they name, whatever the site's: {BTPS} (any case) on the wet
+// basis, {STPD} and {ATPD} (dry gas) on the dry one; {ATPS} (saturated at
+// the room's temperature, whose water vapour pressure is not known here)
+// is refused ([derive.ReasonUnitUnknown]).
 // A PaCO2 in % is a unit mismatch: blood PCO2 is a tension measured by an
 // electrode and has no gas fraction.
 //
@@ -490,7 +495,12 @@ func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
 	case u.dim == dimFraction && (k == derive.KindEtCO2 || k == derive.KindMixedExpiredCO2):
 		c.Percent = true
 		pb := o.pb()
-		switch o.PercentBasis {
+		basis, named, err := percentBasis(k, u.Code, o.PercentBasis)
+		if err != nil {
+			return Conversion{}, err
+		}
+
+		switch basis {
 		case BasisWet:
 			c.Factor = (pb - WaterVapourMMHg) / 100
 			c.ToValue = v / 100 * (pb - WaterVapourMMHg)
@@ -501,6 +511,9 @@ func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
 			c.ToValue = v / 100 * pb
 			c.Text = fmt.Sprintf("%s %s × %s mm[Hg] / 100 = %s mm[Hg] (dry basis, ambient pressure)",
 				num(v), u.Code, num(pb), num6(c.ToValue))
+		}
+		if named {
+			c.Text += "; the basis its annotation names"
 		}
 		return c, nil
 	case u.dim == dimFraction:
@@ -531,6 +544,31 @@ func convert(k derive.Kind, v float64, u Unit, o Options) (Conversion, error) {
 	c.Factor = u.def.factor / target.factor
 	c.Text = fmt.Sprintf("%s %s × %s = %s %s", num(v), u.Code, num6(c.Factor), num6(c.ToValue), c.ToUnit)
 	return c, nil
+}
+
+// percentBasis is the basis a CO2 percentage in unit code is converted on:
+// the one its annotation names, else site (the site's or the code's). A
+// percentage at BTPS ({BTPS}, any case) is a fraction of saturated gas at
+// body temperature: the wet basis. At STPD or ATPD it is a fraction of dry
+// gas: the dry basis (a fraction of a dry gas is the same at any
+// temperature). At ATPS it is a fraction of gas saturated at the room's
+// temperature, whose water vapour pressure is not known here: refused.
+// An annotation that names no conditions ({CO2}) is a label.
+func percentBasis(k derive.Kind, code string, site Basis) (b Basis, named bool, err error) {
+	got, err := annotatedConditions(code)
+	if err != nil {
+		return 0, false, &Error{Reason: derive.ReasonUnitUnknown, Unit: code, Kind: k, Detail: err.Error()}
+	}
+	switch got {
+	case gasBTPS:
+		return BasisWet, true, nil
+	case gasSTPD, "ATPD":
+		return BasisDry, true, nil
+	case "ATPS":
+		return 0, false, &Error{Reason: derive.ReasonUnitUnknown, Unit: code, Kind: k,
+			Detail: "a CO2 percentage at ambient conditions, saturated (ATPS), needs the water vapour pressure at the room's temperature, which is not known"}
+	}
+	return site, false, nil
 }
 
 // Quantity is the unit part of a FHIR Quantity.
