@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"strings"
 
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
@@ -37,8 +38,8 @@ import (
 // Version 4 adds each reading's source kind (derive.Reading.Source, one
 // byte): the head's own after the encounter, before the count, and each
 // other reading's after its value (12 bytes a reading). Earlier payloads
-// are still read, with the source the pairing gave such a reading before
-// code tables named it (legacySource).
+// are still read, with the source the decoder gives such a reading now
+// (legacySource).
 const storedVersion = 4
 
 var errStoredPayload = errors.New("stored input payload is damaged")
@@ -204,7 +205,7 @@ func (hr *headReader) decode(p []byte, ownRef func() string) (storedHead, int, e
 	if l.source > 0 {
 		h.Reading.Source = derive.Source(p[l.source])
 	} else {
-		h.Reading.Source = legacySource(h.Reading.Kind, h.Priority)
+		h.Reading.Source = legacySource(h.Reading.Kind, h.Priority, p, l.end)
 	}
 	if l.nAlso > 0 {
 		h.Also = make([]derive.Reading, 0, l.nAlso)
@@ -217,7 +218,7 @@ func (hr *headReader) decode(p []byte, ownRef func() string) (storedHead, int, e
 		if l.stride == 12 {
 			a.Source = derive.Source(p[off+11])
 		} else {
-			a.Source = legacySource(a.Kind, int(a.Priority))
+			a.Source = derive.DefaultSource(a.Kind, a.Priority)
 		}
 		h.Also = append(h.Also, a)
 	}
@@ -225,30 +226,33 @@ func (hr *headReader) decode(p []byte, ownRef func() string) (storedHead, int, e
 }
 
 // legacySource is the source of a reading stored before payloads kept it
-// (version 3 and earlier), decided from its kind and priority as the
-// pairing decided it then: a tidal volume ranked 15 to 19 delivered and
-// one below 15 set, a minute volume below 20 inspired, a rate below 20
-// partial, an end-tidal or mixed-expired CO2 below 20 a converted
-// percentage; 20 or more, or no priority, measured. The default code
-// table gives exactly these rows those priorities.
-func legacySource(k derive.Kind, priority int) derive.Source {
-	if priority >= derive.SubstitutePriority || priority <= 0 {
-		return derive.SourceMeasured
-	}
-	switch k {
-	case derive.KindTidalVolume:
-		if priority >= 15 {
-			return derive.SourceInspired
+// (version 3 and earlier): what the decoder names the same reading now,
+// so a reading stored before an upgrade and one stored after it, and
+// replay, agree. A CO2 value converted from a percentage (its original
+// unit, which payloads keep from version 2 on) is a converted percentage;
+// anything else takes the code table's default for its kind and priority
+// (derive.DefaultSource), as a row that names no source does.
+func legacySource(k derive.Kind, priority int, p []byte, tail int) derive.Source {
+	if (k == derive.KindEtCO2 || k == derive.KindMixedExpiredCO2) && len(p) > 0 && p[0] >= 2 && tail <= len(p) {
+		if unit, ok := originalUnit(p[tail:]); ok && strings.HasPrefix(strings.TrimSpace(unit), "%") {
+			return derive.SourceConvertedPercent
 		}
-		return derive.SourceSet
-	case derive.KindMinuteVolume:
-		return derive.SourceInspired
-	case derive.KindRespRate:
-		return derive.SourcePartialRate
-	case derive.KindEtCO2, derive.KindMixedExpiredCO2:
-		return derive.SourceConvertedPercent
 	}
-	return derive.SourceMeasured
+	return derive.DefaultSource(k, int16(priority))
+}
+
+// originalUnit reads the original unit from a version 2 or 3 payload's
+// tail: the third of its length-prefixed strings (status, value, unit).
+func originalUnit(tail []byte) (string, bool) {
+	var s string
+	for range 3 {
+		n, w := binary.Uvarint(tail)
+		if w <= 0 || uint64(len(tail)-w) < n {
+			return "", false
+		}
+		s, tail = string(tail[w:w+int(n)]), tail[w+int(n):]
+	}
+	return s, true
 }
 
 // decodeStored reads a whole stored input, for explanations.

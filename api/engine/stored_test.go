@@ -88,26 +88,33 @@ func FuzzDecodeStored(f *testing.F) {
 }
 
 // A payload stored before version 4 has no source kind: it is read with
-// the source the pairing gave such a reading then, from its kind and
-// priority (a tidal volume ranked 15 delivered, 10 set; an end-tidal CO2
-// below 20 a converted percentage).
+// the source the decoder gives such a reading now, so it agrees with a
+// copy stored after the upgrade and with replay: a CO2 value whose
+// original unit is a percentage is a converted percentage, anything else
+// takes the default for its kind and priority (derive.DefaultSource: a
+// tidal volume below 20 set, a minute volume below 20 inspired, an
+// end-tidal CO2 in mm[Hg] measured).
 func TestStoredBeforeSourcesKeepsTheOldNames(t *testing.T) {
 	for _, tc := range []struct {
 		name     string
 		kind     derive.Kind
 		priority int
+		unit     string
 		want     derive.Source
+		wantAlso derive.Source
 	}{
-		{"delivered tidal volume", derive.KindTidalVolume, 15, derive.SourceInspired},
-		{"set tidal volume", derive.KindTidalVolume, 10, derive.SourceSet},
-		{"inspired minute volume", derive.KindMinuteVolume, 10, derive.SourceInspired},
-		{"end-tidal percentage", derive.KindEtCO2, 10, derive.SourceConvertedPercent},
-		{"expired tidal volume", derive.KindTidalVolume, 30, derive.SourceMeasured},
+		{"tidal volume ranked 15", derive.KindTidalVolume, 15, "mL", derive.SourceSet, derive.SourceSet},
+		{"set tidal volume", derive.KindTidalVolume, 10, "mL", derive.SourceSet, derive.SourceSet},
+		{"inspired minute volume", derive.KindMinuteVolume, 10, "L/min", derive.SourceInspired, derive.SourceInspired},
+		{"end-tidal percentage", derive.KindEtCO2, 10, "%", derive.SourceConvertedPercent, derive.SourceMeasured},
+		{"end-tidal pressure ranked 10", derive.KindEtCO2, 10, "mm[Hg]", derive.SourceMeasured, derive.SourceMeasured},
+		{"expired tidal volume", derive.KindTidalVolume, 30, "mL", derive.SourceMeasured, derive.SourceMeasured},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			it := decode.Item{Type: decode.ItemReading, ResourceType: "Observation", ID: "v", VersionID: "1", Ref: "Observation/v/_history/1", Status: "final",
 				Priority: tc.priority, Reading: derive.Reading{Ref: "Observation/v/_history/1", AtMillis: 3, Value: 30, Kind: tc.kind, Source: derive.SourceMeasured},
-				Also: []derive.Reading{{Ref: "Observation/v/_history/1", AtMillis: 3, Value: 20, Kind: tc.kind, Priority: int16(tc.priority)}}}
+				Original: decode.Original{Value: "30", Unit: tc.unit},
+				Also:     []derive.Reading{{Ref: "Observation/v/_history/1", AtMillis: 3, Value: 20, Kind: tc.kind, Priority: int16(tc.priority)}}}
 			p, err := encodeStored(it)
 			if err != nil {
 				t.Fatal(err)
@@ -126,8 +133,8 @@ func TestStoredBeforeSourcesKeepsTheOldNames(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			if got.Item.Reading.Source != tc.want || len(got.Item.Also) != 1 || got.Item.Also[0].Source != tc.want {
-				t.Errorf("sources %v and %+v, want %v", got.Item.Reading.Source, got.Item.Also, tc.want)
+			if got.Item.Reading.Source != tc.want || len(got.Item.Also) != 1 || got.Item.Also[0].Source != tc.wantAlso {
+				t.Errorf("sources %v and %+v, want %v and %v", got.Item.Reading.Source, got.Item.Also, tc.want, tc.wantAlso)
 			}
 			if got.Item.Status != "final" || got.Item.Reading.Value != 30 || got.Item.Also[0].Value != 20 {
 				t.Errorf("the rest of the version 3 payload was misread: %+v", got.Item)

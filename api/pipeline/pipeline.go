@@ -534,17 +534,24 @@ func VersionContent(subject string, usable bool, r derive.Reading, priority int,
 		b = append(b, 0)
 		return string(append(b, om.Detail...))
 	}
-	reading := func(k derive.Kind, priority int16, v float64) {
+	// Each reading's source kind follows its value: two versions that
+	// differ only in what their code-table row says of the source (a site
+	// table corrected between deliveries) are not the same version. For
+	// versions of the same source the bytes compare as they did before
+	// the source was kept.
+	reading := func(k derive.Kind, priority int16, v float64, src derive.Source) {
 		b = append(b, byte(k))
 		b = binary.BigEndian.AppendUint16(b, uint16(priority))
 		b = binary.BigEndian.AppendUint64(b, math.Float64bits(v))
+		b = append(b, byte(src))
 	}
-	reading(r.Kind, int16(max(min(priority, 1<<15-1), -1<<15)), r.Value)
+	p16 := int16(max(min(priority, 1<<15-1), -1<<15))
+	reading(r.Kind, p16, r.Value, derive.Reading{Kind: r.Kind, Priority: p16, Source: r.Source}.SourceKind())
 	b = binary.BigEndian.AppendUint64(b, uint64(r.AtMillis))
 	b = append(b, r.Encounter...)
 	b = append(b, 0)
 	for _, a := range also {
-		reading(a.Kind, a.Priority, a.Value)
+		reading(a.Kind, a.Priority, a.Value, a.SourceKind())
 	}
 	return string(b)
 }

@@ -247,6 +247,11 @@ func FuzzLoad(f *testing.F) {
 		merged := codes.Default().Merge(site)
 		for _, r := range site.Rows() {
 			got, ok := merged.Lookup(r.System, r.Code)
+			// A site row that names no source takes the default row's for
+			// the same code and kind.
+			if def, dok := codes.Default().Lookup(r.System, r.Code); dok && r.Source == derive.SourceUnspecified && def.Kind == r.Kind {
+				r.Source = def.Source
+			}
 			switch {
 			case r.Action == codes.ActionIgnore && ok:
 				t.Fatalf("ignored row %s present after merge", r.Token())
