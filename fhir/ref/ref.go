@@ -157,7 +157,8 @@ func isUnreserved(c byte) bool {
 // returns it with the unversioned form this service keys the resource by:
 // the relative "Type/id" when the reference is relative or its base is
 // own, the FHIR server this service reads and writes ([SameBase]); else the
-// absolute URL without its version ("https://other.example/fhir/Type/id"),
+// absolute URL without its version, its base normalised as [SameBase]
+// compares bases ("https://other.example/fhir/Type/id"),
 // so that a resource of another server is never taken for the local one
 // that happens to have the same id. own may be empty (no server known):
 // then every absolute reference keeps its base.
@@ -168,6 +169,12 @@ func Key(s, own string) (r Ref, key string, err error) {
 	}
 	if base == "" || SameBase(base, own) {
 		return r, r.Logical(), nil
+	}
+	// Another server's resource is keyed by its normalised base, so two
+	// spellings of one server (host case, default port, percent-encoding)
+	// give one key.
+	if cb, ok := canonicalBase(base); ok {
+		return r, cb + "/" + r.Logical(), nil
 	}
 	return r, base + r.Logical(), nil
 }

@@ -97,6 +97,7 @@ func TestKey(t *testing.T) {
 		{name: "own server, versioned", in: "https://ehr.example/fhir/Patient/p1/_history/3", own: own, key: "Patient/p1"},
 		{name: "own server, host in capitals and default port", in: "https://EHR.example:443/fhir/Patient/p1", own: own + "/", key: "Patient/p1"},
 		{name: "another server", in: "https://other.example/fhir/Patient/p1", own: own, key: "https://other.example/fhir/Patient/p1"},
+		{name: "another server spelt otherwise", in: "https://OTHER.example:443/%66hir/Patient/p1/_history/4", own: own, key: "https://other.example/fhir/Patient/p1"},
 		{name: "another path on the same host", in: "https://ehr.example/fhir2/Patient/p1", own: own, key: "https://ehr.example/fhir2/Patient/p1"},
 		{name: "http is not https", in: "http://ehr.example/fhir/Patient/p1", own: own, key: "http://ehr.example/fhir/Patient/p1"},
 		{name: "no server known: absolute kept", in: "https://ehr.example/fhir/Patient/p1/_history/2", key: "https://ehr.example/fhir/Patient/p1"},
