@@ -64,9 +64,33 @@ func FuzzDecodeStored(f *testing.F) {
 		Reading: derive.Reading{Ref: "Observation/a/_history/1", Value: 1, Kind: derive.KindPaCO2}})
 	f.Add(p)
 	f.Add([]byte{1, 1, 1})
+	old, err := encodeStored(decode.Item{Type: decode.ItemReading, Ref: "Observation/a/_history/1", Status: "final", Priority: 10,
+		Original: decode.Original{Value: "5", Unit: "%"},
+		Reading:  derive.Reading{Ref: "Observation/a/_history/1", Value: 38, Kind: derive.KindEtCO2, Source: derive.SourceConvertedPercent},
+		Also:     []derive.Reading{{Kind: derive.KindBodyTemperature, Priority: 20, Value: 36.5}}})
+	if err != nil {
+		f.Fatal(err)
+	}
+	f.Add(version3(f, old))
 	f.Fuzz(func(t *testing.T, p []byte) {
 		si, err := decodeStored(p, "Observation/a", "1")
-		if err != nil || p[0] != storedVersion {
+		if err != nil {
+			return
+		}
+		if p[0] != storedVersion {
+			// An older payload is read as this build stores it: stored
+			// again, it reads back with the same readings and sources.
+			again, err := encodeStored(si.Item)
+			if err != nil {
+				return
+			}
+			back, err := decodeStored(again, "Observation/a", "1")
+			if err != nil {
+				t.Fatalf("an older payload stored again does not decode: %v", err)
+			}
+			if back.Item.Reading != si.Item.Reading || len(back.Item.Also) != len(si.Item.Also) {
+				t.Fatalf("an older payload stored again reads otherwise: %+v then %+v", si.Item.Reading, back.Item.Reading)
+			}
 			return
 		}
 		again, err := encodeStored(si.Item)
@@ -119,17 +143,7 @@ func TestStoredBeforeSourcesKeepsTheOldNames(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			l, err := parseHead(p)
-			if err != nil {
-				t.Fatal(err)
-			}
-			// The version 3 layout: no source byte after the encounter,
-			// 11 bytes an other reading.
-			old := append([]byte{3}, p[1:l.source]...)
-			old = append(old, p[l.source+1:l.also]...)
-			old = append(old, p[l.also:l.also+11]...)
-			old = append(old, p[l.end:]...)
-			got, err := decodeStored(old, "Observation/v", "1")
+			got, err := decodeStored(version3(t, p), "Observation/v", "1")
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -141,4 +155,21 @@ func TestStoredBeforeSourcesKeepsTheOldNames(t *testing.T) {
 			}
 		})
 	}
+}
+
+// version3 rewrites a current payload with at most one other reading into
+// the version 3 layout: no source byte after the encounter, 11 bytes an
+// other reading.
+func version3(tb testing.TB, p []byte) []byte {
+	tb.Helper()
+	l, err := parseHead(p)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	old := append([]byte{3}, p[1:l.source]...)
+	old = append(old, p[l.source+1:l.also]...)
+	if l.nAlso > 0 {
+		old = append(old, p[l.also:l.also+11]...)
+	}
+	return append(old, p[l.end:]...)
 }
