@@ -57,7 +57,7 @@ func ParseAny(s string) (r Ref, base string, err error) {
 	if !ok || host == "" {
 		return Ref{}, "", fmt.Errorf("reference %q has no host and path", s)
 	}
-	if u, perr := url.Parse(s); perr != nil || u.Host == "" {
+	if u, perr := url.Parse(s); perr != nil || u.Hostname() == "" {
 		return Ref{}, "", fmt.Errorf("reference %q is not a URL", s)
 	}
 	segs := strings.Split(path, "/")
@@ -93,7 +93,7 @@ func SameBase(a, b string) bool {
 
 func canonicalBase(s string) (string, bool) {
 	u, err := url.Parse(strings.TrimSpace(s))
-	if err != nil || u.Host == "" || (u.Scheme != "http" && u.Scheme != "https") {
+	if err != nil || u.Hostname() == "" || (u.Scheme != "http" && u.Scheme != "https") {
 		return "", false
 	}
 	scheme := strings.ToLower(u.Scheme)
