@@ -28,6 +28,33 @@ const maxRetryAfter = 15 * time.Minute
 // clock was stepped back, and is due now.
 const maxRetryWait = max(backoffMax, maxRetryAfter)
 
+// inMemoryWait is a wait that lives in memory only (a failed patient's
+// hold, the writer's next look for its Device), kept by the engine's clock
+// and by the monotonic one: it is over when either says so, or when the
+// engine's clock puts its end further ahead than the wait's whole length
+// (that clock was stepped back), so no step prolongs it.
+type inMemoryWait struct {
+	wall, mono time.Time
+	length     time.Duration
+}
+
+// waitFrom is a wait of d from now (the engine's clock).
+func waitFrom(now time.Time, d time.Duration) inMemoryWait {
+	return inMemoryWait{wall: now.Add(d), mono: time.Now().Add(d), length: d}
+}
+
+func (w inMemoryWait) over(now time.Time) bool {
+	ahead := w.wall.Sub(now)
+	return ahead <= 0 || ahead > w.length || !w.mono.After(time.Now())
+}
+
+func (w inMemoryWait) left(now time.Time) time.Duration {
+	if w.over(now) {
+		return 0
+	}
+	return min(w.wall.Sub(now), time.Until(w.mono))
+}
+
 // retryDue holds, for the writes this process rescheduled, when their next
 // attempt is due by the monotonic clock.
 type retryDue struct {

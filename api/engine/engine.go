@@ -226,10 +226,10 @@ type Engine struct {
 	mu            sync.Mutex
 	lastNotified  time.Time // by the monotonic clock (notifiedAt)
 	handshakes    handshakesSeen
-	outboxBlocked time.Time // when the head write last failed, for readiness
-	deviceRef     string    // the server's "Device/<id>" of the software Device
-	writesStopped string    // why no write is sent, empty while they are
-	deviceCheckAt time.Time // while writes are stopped, when the Device is looked for again
+	outboxBlocked time.Time    // when the head write last failed, for readiness
+	deviceRef     string       // the server's "Device/<id>" of the software Device
+	writesStopped string       // why no write is sent, empty while they are
+	deviceCheckAt inMemoryWait // while writes are stopped, when the Device is looked for again
 }
 
 // New checks the configuration and returns an Engine. Nothing runs until

@@ -110,19 +110,6 @@ func (e *Engine) loadResult(ctx context.Context, p *EntryPayload) error {
 // it is tried again.
 const failedHold = 5 * time.Second
 
-// heldUntil is when a failed patient's hold ends, by the engine's clock
-// and by the monotonic one: it is over when either says so, so a wall
-// clock stepped back does not prolong it by the step.
-type heldUntil struct{ wall, mono time.Time }
-
-func (h heldUntil) over(now time.Time) bool {
-	return !h.wall.After(now) || !h.mono.After(time.Now())
-}
-
-func (h heldUntil) left(now time.Time) time.Duration {
-	return max(0, min(h.wall.Sub(now), time.Until(h.mono)))
-}
-
 // maxRelistDelay is the longest a device reading of a patient not held
 // back by the device pace waits for the evaluation loop's next listing.
 const maxRelistDelay = 100 * time.Millisecond
@@ -166,7 +153,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 	// gas (not Urgent).
 	routine := make(map[string]bool)
 	// held are patients whose evaluation failed, not retried before then.
-	held := make(map[string]heldUntil)
+	held := make(map[string]inMemoryWait)
 	// paced holds when each patient's last evaluation began, for the
 	// device pace.
 	paced := make(map[string]time.Time)
@@ -231,7 +218,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			delete(running, o.subject)
 			delete(routine, o.subject)
 			if o.failed {
-				held[o.subject] = heldUntil{wall: e.now().Add(failedHold), mono: time.Now().Add(failedHold)}
+				held[o.subject] = waitFrom(e.now(), failedHold)
 				listNow = true
 			}
 			// The patient may be dirty again (changes that arrived during
@@ -254,7 +241,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 // order (blood gases first), leaving out those being evaluated and those
 // left to the replica that evaluated them last (leftToOwner), and returns
 // how long to wait before the next listing is worth making.
-func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]heldUntil, paced map[string]time.Time) ([]store.Dirty, time.Duration) {
+func (e *Engine) due(ctx context.Context, running map[string]bool, held map[string]inMemoryWait, paced map[string]time.Time) ([]store.Dirty, time.Duration) {
 	const idle = time.Minute
 	dirty, err := e.cfg.Store.DirtyPatients(ctx)
 	if err != nil {

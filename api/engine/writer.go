@@ -812,10 +812,7 @@ var errDeviceScanEnd = errors.New("too many Devices")
 // failure is left to each write's attempt, which retries as usual.
 func (e *Engine) writesCanGo(ctx context.Context) bool {
 	e.mu.Lock()
-	// A check time further ahead than the longest wait can only come from
-	// a wall clock stepped back: it is over.
-	now := e.now()
-	wait := e.writesStopped != "" && now.Before(e.deviceCheckAt) && e.deviceCheckAt.Sub(now) <= backoffMax
+	wait := e.writesStopped != "" && !e.deviceCheckAt.over(e.now())
 	e.mu.Unlock()
 	if wait {
 		// New writes wake the writer early; the next check still waits.
@@ -829,7 +826,7 @@ func (e *Engine) writesCanGo(ctx context.Context) bool {
 	was := e.writesStopped
 	if err != nil {
 		e.writesStopped = err.Error()
-		e.deviceCheckAt = e.now().Add(backoffMax)
+		e.deviceCheckAt = waitFrom(e.now(), backoffMax)
 		if e.outboxBlocked.IsZero() {
 			e.outboxBlocked = e.now()
 		}
