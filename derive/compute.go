@@ -204,20 +204,44 @@ func Plausible(k Kind, v float64) (ok bool, lo, hi float64) {
 // of KindPaCO2 (the patient's blood gases) are not paired; they tell a
 // temperature-adjusted PaCO2 reported on another blood gas (a component,
 // which carries that gas's reference and time) from one of this sample, so
-// a caller passes them. The pairing uses only AtMillis, which the adapter
-// sets from the physiological (sample) time, never from when a result was
-// reported.
+// a caller passes them. They also decide two rules of what a sample is:
+//
+//   - Blood gases of other resources at exactly gas's sample time are the
+//     same sample reported again (a laboratory that sends the panel with
+//     its components and each result as its own Observation too). When
+//     their values agree within [SameValue], the preferred one (see
+//     [preferGas]) is derived, citing the others (a summary of kind
+//     [KindPaCO2] in Used, and a note on every value computed from the
+//     PaCO2); the others give no values and are left out with
+//     [ReasonSameSample]. When they disagree, none is derived: each is
+//     left out with [ReasonSampleDisagrees], and so is every value.
+//   - A separate temperature-adjusted PaCO2 (its own resource) belongs to
+//     the blood gas nearest in time within [sameSample]; as near to
+//     another blood gas as to this one, it is used by neither (left out
+//     with [ReasonSampleAmbiguous], and the values say so in a note).
+//
+// The pairing uses only AtMillis, which the adapter sets from the
+// physiological (sample) time, never from when a result was reported.
 //
 // A reading outside [Plausible] is not used and is listed in Omitted with
 // [ReasonImplausible]; the adapters should already have removed such
 // readings, this is a second line of defence. Every value that is not
 // emitted is listed in Omitted with its reason, so the output always
 // accounts for every [Code] except [CodeEtCO2Drop], which [DetectFalls]
-// produces.
+// produces, and a blood gas left out with [ReasonSameSample], whose values
+// the preferred blood gas of its sample accounts for.
 func Derive(cfg Config, gas Reading, patient Patient, readings []Reading) Derivation {
+	g := sameInstant(gas, readings)
+	if len(g.others) > 0 && (g.disagree || g.primary.Ref != gas.Ref) {
+		return sameSampleOnly(gas, patient, g)
+	}
 	b := builder{
 		d:      Derivation{Gas: gas, Patient: patient},
 		window: cfg.Window,
+	}
+	if len(g.others) > 0 {
+		b.d.Used = append(b.d.Used, sameSampleSummary(gas, g))
+		b.kindNotes[KindPaCO2] = append(b.kindNotes[KindPaCO2], sameSampleNote(gas, g))
 	}
 	b.collect(cfg, readings)
 	b.d.PaCO2 = b.pa
@@ -252,6 +276,9 @@ type builder struct {
 	paNote     string
 	paOK       bool
 	paWhy      string
+	// paAmbiguous says that a separate temperature-adjusted PaCO2 was as
+	// near another blood gas and was not used.
+	paAmbiguous string
 
 	// age is the age in completed years at the sample time; ageWhy says why
 	// it is unknown.
@@ -376,6 +403,9 @@ func (b *builder) collect(cfg Config, readings []Reading) {
 			b.kindNotes[k] = append(b.kindNotes[k], substitute)
 		}
 		b.d.Used = append(b.d.Used, Summary{Kind: k, Median: m, Readings: rs, Rule: rule, Substitute: substitute, Artefacts: artefacts})
+	}
+	if b.paAmbiguous != "" {
+		b.kindNotes[KindPaCO2] = append(b.kindNotes[KindPaCO2], b.paAmbiguous)
 	}
 	if b.paNote != "" {
 		b.kindNotes[KindPaCO2] = append(b.kindNotes[KindPaCO2], b.paNote)

@@ -402,8 +402,18 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 			if r.Kind != k || !b.plausible(r) {
 				continue
 			}
-			if k == KindPaCO2Adjusted && r.Ref != b.d.Gas.Ref && onAnotherGas(readings, r) {
-				continue // another sample's own value
+			if k == KindPaCO2Adjusted && r.Ref != b.d.Gas.Ref {
+				if onAnotherGas(readings, r) {
+					continue // another sample's own value
+				}
+				nearer, tie := otherSampleNearer(b.d.Gas, readings, r)
+				if nearer {
+					continue // nearer another blood gas: that sample's
+				}
+				if tie {
+					b.ambiguous(r)
+					continue
+				}
 			}
 			if !found || absInt(r.AtMillis-t) < absInt(best.AtMillis-t) ||
 				(absInt(r.AtMillis-t) == absInt(best.AtMillis-t) && r.Priority > best.Priority) {
@@ -447,6 +457,18 @@ func (b *builder) temperature(cfg Config, readings []Reading) {
 		temp.Value, cfg.Temperature.Coefficient, b.d.Gas.Value, b.pa)
 }
 
+// ambiguous records that the separate temperature-adjusted PaCO2 r was
+// as near another blood gas's sample time as this one's, so it was not
+// used: an omission of r, and a note on every value computed from the
+// PaCO2.
+func (b *builder) ambiguous(r Reading) {
+	off := ClinicalDuration(time.Duration(absInt(r.AtMillis-b.d.Gas.AtMillis)) * time.Millisecond)
+	b.d.Omitted = append(b.d.Omitted, Omission{Ref: r.Ref, Reason: ReasonSampleAmbiguous,
+		Detail: fmt.Sprintf("a temperature-adjusted PaCO2 %v mm[Hg] %s from two blood gases: it belongs to one sample, and which cannot be told, so neither uses it", r.Value, off)})
+	b.paAmbiguous = fmt.Sprintf("a temperature-adjusted PaCO2 reported separately (%v mm[Hg]) was %s from this blood gas and from another one, within ±%s of both: which sample it belongs to cannot be told, so it was not used",
+		r.Value, off, ClinicalDuration(sameSample))
+}
+
 // onAnotherGas reports whether r was reported on a blood gas of readings
 // (a component: the decoder gives it the gas's reference and time). Such
 // a value belongs to that sample only, and another blood gas, however
@@ -471,15 +493,16 @@ func absInt(v int64) int64 {
 // DependencySpan returns the span of input time a blood gas sampled at
 // sample depends on: a reading outside [from, to] cannot change its
 // derivation. It covers the pairing window (±Window), the steady-state
-// look-back (Window + Steady.Lookback before the sample) and the
-// temperature search (±Temperature.Search). Two kinds of input are outside
+// look-back (Window + Steady.Lookback before the sample), the
+// temperature search (±Temperature.Search) and the blood gases that may
+// take a separate temperature-adjusted PaCO2 instead (±2 min). Two kinds of input are outside
 // it on purpose: body height, which is looked for up to HeightMaxAge back,
 // and the Patient's facts; a caller re-derives every blood gas of a patient
 // when either changes. Fall and rise findings depend on the whole series
 // before their confirmation, not on this span.
 func (c Config) DependencySpan(sample time.Time) (from, to time.Time) {
-	back := max(c.Window+c.Steady.Lookback, c.Temperature.Search, c.Window)
-	ahead := max(c.Window, c.Temperature.Search)
+	back := max(c.Window+c.Steady.Lookback, c.Temperature.Search, c.Window, 2*sameSample)
+	ahead := max(c.Window, c.Temperature.Search, 2*sameSample)
 	return sample.Add(-back), sample.Add(ahead)
 }
 
@@ -491,7 +514,10 @@ func (c Config) DependencySpan(sample time.Time) (from, to time.Time) {
 // does not drag in the hour a body temperature can reach. Readings after
 // a blood gas reach it through the pairing window; body temperature
 // through its wider search; a temperature-adjusted PaCO2 only the sample
-// it belongs to. A blood gas changes its own derivation. Body height is
+// it belongs to. A blood gas changes its own derivation, that of another
+// report of its sample (the same time), and that of a blood gas up to two
+// same-sample spans away, which a separate temperature-adjusted PaCO2
+// between them may belong to instead. Body height is
 // looked for a year back and the caller treats it as a change to the
 // whole patient; so is a kind this package does not know.
 func (c Config) Reach(k Kind) time.Duration {
@@ -509,9 +535,8 @@ func (c Config) Reach(k Kind) time.Duration {
 // pairing window; minute volume and end-tidal CO2 also through the
 // steady-state look-back before the window; body temperature through its
 // search; a temperature-adjusted PaCO2 only the sample it belongs to. A
-// blood gas changes its own derivation only: no derivation reads another
-// blood gas. Body height and a kind this package does not know are as in
-// Reach.
+// blood gas reaches as far as in Reach. Body height and a kind this
+// package does not know are as in Reach.
 func (c Config) ReachLater(k Kind) time.Duration {
 	_, later := c.reaches(k)
 	return later
@@ -522,7 +547,10 @@ func (c Config) ReachLater(k Kind) time.Duration {
 func (c Config) reaches(k Kind) (earlier, later time.Duration) {
 	switch {
 	case k == KindPaCO2:
-		return 0, 0
+		// Another blood gas at the same time is the same sample; one
+		// within twice sameSample can take (or tie for) a separate
+		// temperature-adjusted PaCO2 between the two.
+		return 2 * sameSample, 2 * sameSample
 	case k == KindEtCO2 || k == KindMinuteVolume:
 		return c.Window, c.Window + c.Steady.Lookback
 	case isWindowed(k):

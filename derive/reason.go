@@ -30,6 +30,16 @@ const (
 	ReasonPastRetention  Reason = "older-than-retention"        // the live service's retention is over for it: never derived
 	ReasonRecoded        Reason = "re-coded"                    // a newer version has a code this service has no use for
 	ReasonDeleted        Reason = "deleted"                     // the live service learned that the resource was deleted on the server
+	// A blood gas reported twice for one sample (a panel's component and a
+	// separate Observation at the same time, the same value): derived once,
+	// from the other, which cites it too.
+	ReasonSameSample Reason = "same-sample"
+	// Blood gases at the same sample time whose values disagree: none is
+	// used (inputs and values).
+	ReasonSampleDisagrees Reason = "same-sample-disagrees"
+	// A separate temperature-adjusted PaCO2 as near to two blood gases:
+	// which sample it belongs to cannot be told, so neither uses it.
+	ReasonSampleAmbiguous Reason = "sample-ambiguous"
 )
 
 // Reasons a derived value is not emitted.
@@ -53,7 +63,7 @@ func AllReasons() []Reason {
 		ReasonUnitMismatch, ReasonNoTime, ReasonNoSubject, ReasonImplausible,
 		ReasonSuperseded, ReasonUnpaired, ReasonLowerPriority, ReasonRefiled,
 		ReasonWrongUnit, ReasonArtefact, ReasonTooSparse, ReasonPastRetention,
-		ReasonRecoded, ReasonDeleted,
+		ReasonRecoded, ReasonDeleted, ReasonSameSample, ReasonSampleDisagrees, ReasonSampleAmbiguous,
 		ReasonMissingInput, ReasonFractionBounds, ReasonPatientFacts,
 		ReasonInconsistent, ReasonNotApplicable, ReasonNotAdult, ReasonTooFewUsable,
 		ReasonImplausibleVDVT,

@@ -596,13 +596,15 @@ func TestReach(t *testing.T) {
 			}
 		})
 	}
-	// A blood gas reaches only itself; a kind of unknown reach reaches as
-	// far as any, which is the span's part on that side.
+	// A blood gas reaches the blood gases that may share a separate
+	// temperature-adjusted PaCO2 with it (TestReachOfABloodGas); a kind of
+	// unknown reach reaches as far as any, which is the span's part on
+	// that side.
 	from, to := cfg.DependencySpan(sampleTime)
-	if cfg.Reach(derive.KindPaCO2) != 0 || cfg.Reach(derive.KindUnknown) != time.Hour || cfg.MaxReach() != to.Sub(sampleTime) {
+	if cfg.Reach(derive.KindPaCO2) != 2*time.Minute || cfg.Reach(derive.KindUnknown) != time.Hour || cfg.MaxReach() != to.Sub(sampleTime) {
 		t.Errorf("Reach(PaCO2) %v, Reach(unknown) %v, MaxReach %v", cfg.Reach(derive.KindPaCO2), cfg.Reach(derive.KindUnknown), cfg.MaxReach())
 	}
-	if cfg.ReachLater(derive.KindPaCO2) != 0 || cfg.ReachLater(derive.KindUnknown) != sampleTime.Sub(from) || cfg.MaxReachLater() != sampleTime.Sub(from) {
+	if cfg.ReachLater(derive.KindPaCO2) != 2*time.Minute || cfg.ReachLater(derive.KindUnknown) != sampleTime.Sub(from) || cfg.MaxReachLater() != sampleTime.Sub(from) {
 		t.Errorf("ReachLater(PaCO2) %v, ReachLater(unknown) %v, MaxReachLater %v, span back %v",
 			cfg.ReachLater(derive.KindPaCO2), cfg.ReachLater(derive.KindUnknown), cfg.MaxReachLater(), sampleTime.Sub(from))
 	}

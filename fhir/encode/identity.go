@@ -281,7 +281,8 @@ func episodeSeries(subject string, code derive.Code, onset time.Time) (string, e
 }
 
 // valueReadings returns the blood gas and every reading in the summaries
-// of the kinds v used, each checked to be a versioned Observation reference.
+// of the kinds v used (for PaCO2, the other reports of the same sample),
+// each checked to be a versioned Observation reference.
 func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
 	var out []derive.Reading
 	if err := eachValueReading(d, v, func(r derive.Reading) { out = append(out, r) }); err != nil {
@@ -298,10 +299,12 @@ func eachValueReading(d derive.Derivation, v derive.Value, use func(derive.Readi
 	}
 	use(d.Gas)
 	for _, k := range v.Inputs {
-		if k == derive.KindPaCO2 {
-			continue // the blood gas itself, never summarised
-		}
 		found := false
+		if k == derive.KindPaCO2 {
+			// The blood gas itself, cited above; a summary of this kind
+			// holds the other reports of the same sample, if any.
+			found = true
+		}
 		for _, s := range d.Used {
 			if s.Kind != k {
 				continue
