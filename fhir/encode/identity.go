@@ -281,8 +281,8 @@ func episodeSeries(subject string, code derive.Code, onset time.Time) (string, e
 }
 
 // valueReadings returns the blood gas and every reading in the summaries
-// of the kinds v used (for PaCO2, the other reports of the same sample),
-// each checked to be a versioned Observation reference.
+// of the kinds v used, with the other reports of the blood gas's sample
+// (a summary of kind PaCO2), each checked to be a versioned Observation reference.
 func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
 	var out []derive.Reading
 	if err := eachValueReading(d, v, func(r derive.Reading) { out = append(out, r) }); err != nil {
@@ -298,13 +298,24 @@ func eachValueReading(d derive.Derivation, v derive.Value, use func(derive.Readi
 		return fmt.Errorf("blood gas: %w", err)
 	}
 	use(d.Gas)
-	for _, k := range v.Inputs {
-		found := false
-		if k == derive.KindPaCO2 {
-			// The blood gas itself, cited above; a summary of this kind
-			// holds the other reports of the same sample, if any.
-			found = true
+	// Every value cites the blood gas, and so every report of its sample:
+	// a summary of kind PaCO2 holds the others, if any.
+	for _, s := range d.Used {
+		if s.Kind != derive.KindPaCO2 {
+			continue
 		}
+		for _, r := range s.Readings {
+			if _, err := cited(r.Ref, "Observation"); err != nil {
+				return fmt.Errorf("%s: another report of the blood gas: %w", v.Code, err)
+			}
+			use(r)
+		}
+	}
+	for _, k := range v.Inputs {
+		if k == derive.KindPaCO2 {
+			continue // the blood gas itself, cited above
+		}
+		found := false
 		for _, s := range d.Used {
 			if s.Kind != k {
 				continue
