@@ -321,7 +321,9 @@ type Derivation struct {
 	PaCO2   float64
 	Patient Patient
 	// Used holds one summary per kind that was found, in Kind order. The
-	// blood gas itself is not repeated here.
+	// blood gas itself is not repeated here; a summary of [KindPaCO2]
+	// holds the other reports of its sample (the same time and value),
+	// which every value cites too.
 	Used    []Summary
 	Values  []Value
 	Omitted []Omission
