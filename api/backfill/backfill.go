@@ -460,9 +460,9 @@ func readInput(ctx context.Context, opts Options, eng *engine.Engine, table *cod
 			p.files.Add(1)
 		}
 	}
-	if len(dels.list) > 0 {
+	if dels.Len() > 0 {
 		p.setPhase("delete")
-		log.InfoContext(ctx, "applying the deletions the input lists", "deletions", len(dels.list))
+		log.InfoContext(ctx, "applying the deletions the input lists", "deletions", dels.Len())
 		if err := applyDeletions(ctx, eng, dels, sum.TransactionTime, opts.BatchSize, p, sum); err != nil {
 			return err
 		}
@@ -531,7 +531,7 @@ func ingestFile(ctx context.Context, eng *engine.Engine, name string, index, bat
 			sum.skip(fmt.Sprintf("%s:%d: not a FHIR resource", filepath.Base(name), n))
 			return nil
 		}
-		if dels.wanted(head.ResourceType) {
+		if dels.Wanted(head.ResourceType) {
 			dels.carries(head.ResourceType+"/"+head.ID, head.Meta.LastUpdated)
 		}
 		sum.Resources[head.ResourceType]++

@@ -32,57 +32,27 @@ type Deletions struct {
 // so that reading the resources can note the versions the input carries
 // of each deleted resource (for a deletion that gives no time); after,
 // because the engine applies a deletion only to what the store holds.
-// They are kept in memory: one small record per DELETE entry.
+// They are kept in memory (bulk.Listed: one small record per DELETE
+// entry), with the rule that places them in time.
 type deletions struct {
-	list  []pendingDeletion
-	byRef map[string][]int
+	*bulk.Listed
 	// lines are the lines of local files read as deletions, which are
 	// not resources to store (file index, line number).
 	lines map[[2]int]bool
 }
 
-type pendingDeletion struct {
-	bulk.Deletion
-	// carried is the latest meta.lastUpdated of a version of the resource
-	// the input carries; inInput says there is one.
-	carried time.Time
-	inInput bool
-}
-
 func newDeletions() *deletions {
-	return &deletions{byRef: map[string][]int{}, lines: map[[2]int]bool{}}
+	return &deletions{Listed: bulk.NewListed(), lines: map[[2]int]bool{}}
 }
 
-func (d *deletions) add(ds []bulk.Deletion) {
-	for _, x := range ds {
-		d.byRef[x.Ref()] = append(d.byRef[x.Ref()], len(d.list))
-		d.list = append(d.list, pendingDeletion{Deletion: x})
-	}
-}
-
-// wanted reports whether a resource read is one the input lists as
-// deleted.
-func (d *deletions) wanted(resourceType string) bool {
-	return len(d.byRef) > 0 && resourceType != "" && resourceType != "Bundle"
-}
-
-// carries notes a version of a resource the input carries.
+// carries notes a version of a resource the input carries, with its
+// meta.lastUpdated as written (one that is not an instant counts as none).
 func (d *deletions) carries(logical string, lastUpdated string) {
-	idx, ok := d.byRef[logical]
-	if !ok {
-		return
-	}
 	t, err := time.Parse(time.RFC3339Nano, lastUpdated)
 	if err != nil {
 		t = time.Time{}
 	}
-	for _, i := range idx {
-		p := &d.list[i]
-		if !p.inInput || t.After(p.carried) {
-			p.carried = t
-		}
-		p.inInput = true
-	}
+	d.Carries(logical, t)
 }
 
 // readDeletions reads one file's Bundles of DELETE entries. In an export's
@@ -121,7 +91,7 @@ func readDeletions(ctx context.Context, name string, fileIndex int, exportFile b
 		if !exportFile {
 			d.lines[[2]int{fileIndex, n}] = true
 		}
-		d.add(ds)
+		d.Add(ds...)
 		if err != nil {
 			msg := strings.ReplaceAll(err.Error(), "\n", "; ")
 			sum.skip(fmt.Sprintf("%s:%d: %s", base, n, msg))
@@ -140,19 +110,12 @@ func readDeletions(ctx context.Context, name string, fileIndex int, exportFile b
 }
 
 // applyDeletions hands the deletions to the engine (Engine.Deleted, the
-// live service's path), in batches. A deletion placed in time by its
-// entry keeps that time, and the engine's version order decides between
-// it and the versions held. One without a time is placed by what the
-// input says:
-//   - the input also carries the resource: just before the latest version
-//     it carries (an export shows each resource as of its transactionTime,
-//     so one it carries was written again after it was deleted), so that
-//     version stands;
-//   - an export that does not carry it: at the export's transactionTime,
-//     the latest instant the deletion can have happened, so it comes after
-//     every version known up to that export and before any written since;
-//   - local files that do not carry it: when it is applied, as the live
-//     service applies a deletion it learns of without a time.
+// live service's path), in batches, each placed in time by bulk.Listed's
+// rule: a deletion placed in time by its entry keeps that time, and the
+// engine's version order decides between it and the versions held; one
+// without a time goes just before the latest version the input carries
+// (which stands), or at an export's transactionTime, or, for local files
+// that do not carry it, when it is applied.
 func applyDeletions(ctx context.Context, eng *engine.Engine, d *deletions, transactionTime time.Time, batchSize int, p *progress, sum *Summary) error {
 	batch := make([]engine.Deletion, 0, batchSize)
 	flush := func() error {
@@ -175,30 +138,19 @@ func applyDeletions(ctx context.Context, eng *engine.Engine, d *deletions, trans
 	if !transactionTime.IsZero() {
 		from = "a Bulk Data export's deleted file lists it"
 	}
-	for _, pd := range d.list {
+	for _, pd := range d.Placed(transactionTime) {
 		if err := ctx.Err(); err != nil {
 			return fmt.Errorf("backfill: deletions: %w", err)
 		}
-		del := engine.Deletion{Ref: pd.Ref(), At: pd.At, How: from + ", at the time its entry gives"}
-		switch {
-		case !pd.At.IsZero():
-		case pd.inInput && pd.carried.IsZero():
+		if pd.Placement == bulk.CarriedStands {
 			// The version the input carries has no time to place the
 			// deletion before: it stands, as a newer one would.
 			sum.Deletions.Listed++
 			sum.Deletions.Older++
 			p.deletions.Add(1)
 			continue
-		case pd.inInput:
-			del.At = pd.carried.Add(-time.Nanosecond)
-			del.How = from + " without a time, and the input also carries it: taken as before the version carried"
-		case !transactionTime.IsZero():
-			del.At = transactionTime
-			del.How = from + " without a time: taken as at the export's transactionTime"
-		default:
-			del.How = from + " without a time: taken as when the backfill read it"
 		}
-		batch = append(batch, del)
+		batch = append(batch, engine.Deletion{Ref: pd.Ref(), At: pd.At, How: pd.Placement.How(from)})
 		if len(batch) >= batchSize {
 			if err := flush(); err != nil {
 				return err

@@ -18,6 +18,8 @@ const replayUsage = `usage: deadspace replay [flags] FILE...
 
 Reads NDJSON files of FHIR R4 resources (Observation and Patient, any order),
 derives, and writes the derived resources as NDJSON, or a table with --format table.
+A line that is a transaction or batch Bundle of DELETE entries (a bulk export's
+deleted file) lists deletions, applied as the live service and backfill apply them.
 A summary of counts goes to stderr. Exit status 3 means some lines were skipped.
 Every flag can also be set by an environment variable, as for serve
 (--barometric-pressure is DEADSPACE_BAROMETRIC_PRESSURE).

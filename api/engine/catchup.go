@@ -11,6 +11,7 @@ import (
 	"sync"
 	"time"
 
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
@@ -585,7 +586,7 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) (DeletionRec
 		in, err := e.toStored(decode.Item{
 			Type: decode.ItemOmitted, ResourceType: typ, ID: id, Ref: logical, Subject: owner, LastUpdated: at,
 			Reading:  derive.Reading{Ref: logical},
-			Omission: derive.Omission{Ref: logical, Reason: derive.ReasonDeleted, Detail: "deleted on the server: " + d.How},
+			Omission: pipeline.DeletedOmission(logical, d.How),
 		}, now)
 		if err != nil {
 			return DeletionReceipt{}, err

@@ -23,6 +23,7 @@ import (
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/derive"
+	"github.com/deadspace-fhir/deadspace/fhir/bulk"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
 	"github.com/deadspace-fhir/deadspace/fhir/ref"
@@ -361,6 +362,9 @@ type Collector struct {
 	// collision only makes AddLine read a line in full, and Finish sets
 	// aside a re-coded version of a resource read nowhere else.
 	seen map[uint32]struct{}
+	// deleted are the deletions the lines list (Bundles of DELETE
+	// entries), applied in Finish (deleted.go); nil until one is read.
+	deleted *bulk.Listed
 }
 
 // record is one buffered reading, flattened so that it packs into 64 bytes
@@ -396,7 +400,15 @@ func NewCollector() *Collector {
 // under a patient), is added as a re-coded version of that resource
 // (decode.Decoder.Recoded), which supersedes the earlier versions, as the
 // live engine stores it when it holds one of them.
+//
+// A line that is a transaction or batch Bundle of DELETE entries lists
+// deletions (AddDeletions); it returns an unrelated Bundle item then, and
+// a *[DeletionsError] for the entries that cannot be applied (the others
+// are still added).
 func (c *Collector) AddLine(dec *decode.Decoder, line []byte) (decode.Item, error) {
+	if it, ok, err := c.addDeletionLine(line); ok {
+		return it, err
+	}
 	it, err := dec.Decode(line)
 	if err != nil {
 		return it, err
@@ -643,6 +655,11 @@ type Report struct {
 	// Unrecognised counts Observations with no code this service uses
 	// (reason code-not-recognised); they are not listed one by one.
 	Unrecognised int
+	// Deletions counts the deletions the input listed and what became of
+	// them. A deletion applied is also among Inputs (reason deleted), and
+	// the versions it replaced, or it when a version is newer, are
+	// superseded.
+	Deletions Deletions
 }
 
 // Finish derives every patient's results. Patients are processed in order
@@ -650,6 +667,7 @@ type Report struct {
 func (c *Collector) Finish(cfg derive.Config, enc *encode.Encoder) (Report, error) {
 	rep := Report{Unrecognised: c.unrecognised}
 	alone := c.recodedAlone()
+	rep.Deletions = c.applyDeletions(alone)
 	omittedBySubject := make(map[string][]*omittedRecord)
 	for i := range c.omitted {
 		o := &c.omitted[i]

@@ -229,6 +229,10 @@ func WriteSummary(w io.Writer, out Outcome) error {
 	if gases == 0 && len(out.Report.Values) == 0 {
 		fmt.Fprintln(w, "nothing to derive: the input holds no usable arterial blood gas")
 	}
+	if d := out.Report.Deletions; d.Listed > 0 {
+		fmt.Fprintf(w, "deleted: %d listed in Bundles of DELETE entries; %d applied (the resource is left out), %d older than a version read (kept), %d never read (nothing to do)\n",
+			d.Listed, d.Applied, d.Older, d.NotHeld)
+	}
 	rc := ReasonCounts(out.Report.Inputs)
 	if n := out.Report.Unrecognised; n > 0 {
 		rc = append([]ReasonCount{{derive.ReasonUnrecognised, n}}, rc...)

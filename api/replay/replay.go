@@ -60,6 +60,14 @@ var ErrSkipped = errors.New("some lines were skipped")
 
 // Run reads every file, derives, and returns the outcome. A line that is
 // not a FHIR resource is recorded in Outcome.Skipped and the run goes on.
+//
+// A line that is a transaction or batch Bundle of DELETE entries lists
+// resources deleted on the server, wherever it is among the files: they
+// are applied after every file is read, by the rules backfill and the
+// live service apply them by (pipeline.Collector.AddDeletions), and
+// counted in Outcome.Report.Deletions. An entry that cannot be applied is
+// recorded in Outcome.Skipped with its line and position; the line's other
+// entries are still applied.
 func Run(ctx context.Context, opts Options, files []string) (Outcome, error) {
 	if err := opts.Derive.Validate(); err != nil {
 		return Outcome{}, fmt.Errorf("replay: %w", err)

@@ -428,26 +428,44 @@ func TestMetricsAgreeWithReplay(t *testing.T) {
 		t.Fatalf("the README's order sends %d lines of %d: a demo file is not named", len(readme), len(all))
 	}
 
+	// A transaction Bundle of DELETE entries, as a server forwards it: a
+	// blood gas deleted after its version, and a resource never sent.
+	deletions := `{"resourceType":"Bundle","type":"transaction","entry":[` +
+		`{"request":{"method":"DELETE","url":"Observation/bed1-stable-abg-1"},"response":{"lastModified":"2026-03-15T07:00:00Z"}},` +
+		`{"request":{"method":"DELETE","url":"Observation/never-sent"},"response":{"lastModified":"2026-03-15T07:00:00Z"}}]}`
+	deletionFile := filepath.Join(t.TempDir(), "deleted.ndjson")
+	if err := os.WriteFile(deletionFile, []byte(deletions+"\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
 	cfg := testConfig("", t.TempDir())
 	opts, err := cfg.Derivation.Resolve("test")
 	if err != nil {
 		t.Fatal(err)
 	}
-	out, err := replay.Run(context.Background(), replay.Options{Derive: opts.Derive, Decode: opts.Decode, Encode: opts.Encode}, files)
-	if err != nil {
-		t.Fatal(err)
+	// summary is what replay's summary counts of files, by reason.
+	summary := func(t *testing.T, files []string) (inputs, values map[string]int) {
+		t.Helper()
+		out, err := replay.Run(context.Background(), replay.Options{Derive: opts.Derive, Decode: opts.Decode, Encode: opts.Encode}, files)
+		if err != nil {
+			t.Fatal(err)
+		}
+		inputs, values = map[string]int{}, map[string]int{}
+		for _, c := range replay.ReasonCounts(out.Report.Inputs) {
+			inputs[string(c.Reason)] = c.N
+		}
+		inputs[string(derive.ReasonUnrecognised)] += out.Report.Unrecognised
+		for _, c := range replay.ReasonCounts(out.Report.Values) {
+			values[string(c.Reason)] = c.N
+		}
+		return inputs, values
 	}
-	wantInputs := map[string]int{}
-	for _, c := range replay.ReasonCounts(out.Report.Inputs) {
-		wantInputs[string(c.Reason)] = c.N
-	}
-	wantInputs[string(derive.ReasonUnrecognised)] += out.Report.Unrecognised
-	wantValues := map[string]int{}
-	for _, c := range replay.ReasonCounts(out.Report.Values) {
-		wantValues[string(c.Reason)] = c.N
-	}
+	wantInputs, wantValues := summary(t, files)
 	if wantInputs[string(derive.ReasonUnpaired)]+wantValues[string(derive.ReasonMissingInput)] == 0 {
 		t.Fatal("replay left nothing out: the comparison checks nothing")
+	}
+	deletedInputs, deletedValues := summary(t, append(slices.Clone(files), deletionFile))
+	if deletedInputs[string(derive.ReasonDeleted)] != 1 {
+		t.Fatalf("replay counts %d inputs deleted, want 1", deletedInputs[string(derive.ReasonDeleted)])
 	}
 
 	for _, tc := range []struct {
@@ -455,8 +473,12 @@ func TestMetricsAgreeWithReplay(t *testing.T) {
 		lines []string
 		// byFile posts each file apart, as sendDemo does.
 		byFile bool
+		// deleted: the Bundle of DELETE entries is posted last, and
+		// replay reads it as a file of its own.
+		deleted bool
 	}{
 		{name: "files in alphabetical order, the Patient file last", byFile: true},
+		{name: "files in alphabetical order, then a Bundle of DELETE entries", byFile: true, deleted: true},
 		{name: "the README's order: patients, then blood gases, then device readings", lines: readme},
 		{name: fmt.Sprintf("every line shuffled (seed %d)", seed), lines: shuffled},
 	} {
@@ -474,6 +496,13 @@ func TestMetricsAgreeWithReplay(t *testing.T) {
 				sendDemo(t, s)
 			} else {
 				sendLines(t, s, tc.lines)
+			}
+			wantInputs, wantValues := wantInputs, wantValues
+			if tc.deleted {
+				if code, out := post(t, s.url, http.MethodPost, "/notify", []byte(deletions), secret); code != http.StatusOK {
+					t.Fatalf("HTTP %d: %.300s", code, out)
+				}
+				wantInputs, wantValues = deletedInputs, deletedValues
 			}
 			waitIdle(t, s)
 			for _, m := range []struct {
