@@ -17,6 +17,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/api/store"
 	"github.com/deadspace-fhir/deadspace/fhir/client"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // errOrphan means a write updates a derived Observation the server never
@@ -239,15 +240,18 @@ func (e *Engine) writeResult(outcome string) {
 // permanent reports whether the server refused the write for a reason a
 // retry cannot change: the content (400, 422), the resource (404, 405,
 // 410), a create this write depends on that was itself refused, a
-// revision on the server this service did not write, or a conditional
+// revision on the server this service did not write, a conditional
 // create whose condition matched several resources (412 on a request of
 // conditional creates only, or on a transaction of updates whose every
 // If-Match still holds, where only its Provenance's condition can have
-// failed). Authentication (401, 403) and conflicts (409,
+// failed), or a Provenance create whose condition matched a resource that
+// is not the write's Provenance, or one that cannot be checked (see
+// [Engine.provenanceLanded]). Authentication (401, 403) and conflicts (409,
 // and 412 on an update) are retried: a rotated credential or a concurrent
 // edit must not send a whole backlog to the dead letters.
 func permanent(err error) bool {
-	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) || errors.Is(err, errCreateMatchesMany) {
+	if errors.Is(err, errOrphan) || errors.Is(err, errNewerOnServer) || errors.Is(err, errCreateMatchesMany) ||
+		errors.Is(err, errProvenanceMatchedAnother) || errors.Is(err, errProvenanceUnchecked) {
 		return true
 	}
 	var ce *client.Error
@@ -512,7 +516,8 @@ func (e *Engine) update(ctx context.Context, tw encode.Write, deviceRef string, 
 // withProvenance it posts the Observations only; a plan without
 // Observations (every value landed) posts its Provenance only. A 412 to a
 // request made only of conditional creates is [errCreateMatchesMany]; so is
-// a 412 to the Provenance sent on its own, whose values were written.
+// a 412 to the Provenance sent on its own, whose values were written. A
+// Provenance answered 200 must be this write's ([Engine.provenanceLanded]).
 func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, withProvenance bool) (map[string][2]string, map[string]bool, error) {
 	server := make(map[string][2]string, plan.Len())
 	matched := make(map[string]bool)
@@ -526,6 +531,10 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 			if kind == encode.WriteCreate {
 				err = onlyCreates(err)
 			}
+			return nil, nil, err
+		}
+		pe := resp.Entries[plan.Len()]
+		if err := e.provenanceLanded(ctx, plan, pe.Status, pe.Resource, pe.Location); err != nil {
 			return nil, nil, err
 		}
 		for i := range plan.Len() {
@@ -569,10 +578,80 @@ func (e *Engine) sendPlan(ctx context.Context, kind string, plan *encode.Plan, w
 	if err != nil {
 		return nil, nil, &client.Error{Op: "encode provenance", Status: http.StatusBadRequest, Outcome: err.Error()}
 	}
-	if _, _, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q); err != nil {
+	body, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Provenance", prov, q)
+	if err != nil {
 		return nil, nil, provenanceMatchesMany(err, true)
 	}
+	if err := e.provenanceLanded(ctx, plan, meta.Status, body, meta.Location); err != nil {
+		return nil, nil, err
+	}
 	return server, matched, nil
+}
+
+// errProvenanceMatchedAnother means the server answered a write's
+// Provenance create, conditional on its tag, with 200 and a Provenance
+// that does not carry the tag: the condition matched another resource, so
+// the server ignores _tag in conditions (or treats it in a way of its
+// own), and this write's Provenance was never written. Retrying changes
+// nothing until the server is fixed.
+var errProvenanceMatchedAnother = errors.New("the write's Provenance was not written: its create, conditional on its tag (_tag), matched a Provenance that does not carry the tag, so the server seems to ignore _tag in conditions")
+
+// errProvenanceUnchecked means the server answered a write's Provenance
+// create, conditional on its tag, with 200 (an existing match) but gave
+// neither the resource nor a location naming a Provenance, or something
+// that is not a Provenance: whether this write's Provenance is on the
+// server cannot be told.
+var errProvenanceUnchecked = errors.New("the server answered the write's Provenance create, conditional on its tag (_tag), with 200 (an existing match), and what matched cannot be checked to be this write's Provenance")
+
+// afterProvenance says what a buried Provenance leaves, and what to do.
+const afterProvenance = "the values were written without their Provenance; fix the server, then retry the write, which writes the Provenance and finds the values already written"
+
+// provenanceLanded checks the answer to a write's Provenance create,
+// conditional on its tag: status, the resource the server returned (nil
+// when none) and the location it named. 201 is this write's Provenance,
+// created. 200 is an existing match, which is this write's Provenance (a
+// repeated write) only when it carries the write's tag: a server that
+// ignores _tag in a condition and holds exactly one Provenance answers
+// with that one, whatever it is. The resource returned is checked when it
+// is a Provenance; otherwise the Provenance the location names is read.
+// Another Provenance is [errProvenanceMatchedAnother], and nothing to
+// check [errProvenanceUnchecked]: either leaves the write unacknowledged,
+// in the dead letters.
+func (e *Engine) provenanceLanded(ctx context.Context, plan *encode.Plan, status int, resource json.RawMessage, location string) error {
+	if status != http.StatusOK {
+		return nil
+	}
+	own, err := plan.OwnProvenance(resource)
+	if len(resource) == 0 || errors.Is(err, encode.ErrNotAProvenance) {
+		id := provenanceAt(location)
+		if id == "" {
+			return fmt.Errorf("%w: it gave neither the resource nor its location; %s", errProvenanceUnchecked, afterProvenance)
+		}
+		body, _, rerr := e.cfg.Client.Read(ctx, "Provenance", id)
+		if rerr != nil {
+			return fmt.Errorf("engine: reading the Provenance the server matched to the write's Provenance create, conditional on its tag: %w", rerr)
+		}
+		if own, err = plan.OwnProvenance(body); err != nil {
+			return fmt.Errorf("%w: its location names something else: %w; %s", errProvenanceUnchecked, err, afterProvenance)
+		}
+	}
+	if !own {
+		return fmt.Errorf("%w; %s", errProvenanceMatchedAnother, afterProvenance)
+	}
+	return nil
+}
+
+// provenanceAt returns the id of the Provenance a location names
+// (relative or absolute, versioned or not), or "" when it names none.
+func provenanceAt(location string) string {
+	if i := strings.IndexAny(location, "?#"); i >= 0 {
+		location = location[:i]
+	}
+	r, _, err := fhirref.ParseAny(strings.TrimSuffix(location, "/"))
+	if err != nil || r.Type != "Provenance" {
+		return ""
+	}
+	return r.ID
 }
 
 // oneTransaction reports whether [Engine.sendPlan] sends plan as one

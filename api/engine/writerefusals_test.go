@@ -1,11 +1,18 @@
 package engine_test
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
+	"io"
 	"net/http"
+	"net/http/httptest"
+	"net/http/httputil"
+	"net/url"
 	"slices"
+	"strconv"
 	"strings"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -261,5 +268,325 @@ func TestWritesStoppedCheckIsNotHeldBackByAClockSteppedBack(t *testing.T) {
 	r.eng.FlushNow(ctx)
 	if h := r.health(); h.WritesStopped != "" || h.Stats.OutboxDepth != 0 {
 		t.Fatalf("after the clock was stepped back an hour and three minutes passed: writes stopped %q, outbox %d; want the Device looked for again and the write sent", h.WritesStopped, h.Stats.OutboxDepth)
+	}
+}
+
+// A server that ignores _tag in a condition and holds exactly one
+// Provenance answers the write's Provenance create, conditional on its
+// tag, 200 with that Provenance (R4 http.html#ccreate: a single match is
+// returned, not created again), so the write's own Provenance is never
+// written. The one it holds may be another system's, or this service's
+// Provenance of an earlier write (the create's, when a revision follows).
+// What matched does not carry the write's tag, whether the server returns
+// it or only names it by its location (then it is read): the write goes to
+// the dead letters at once, counted as every buried write is, saying what
+// the server seems to do and that the values were written without their
+// Provenance. Once the server is fixed, the retried letter writes the
+// Provenance, and the values stay as they landed: one Observation per
+// series, not written again.
+func TestProvenanceMatchingAnotherIsBuried(t *testing.T) {
+	other := []byte(`{"resourceType":"Provenance","recorded":"2020-01-01T00:00:00Z","target":[{"reference":"Observation/other"}],"agent":[{"who":{"display":"another system"}}]}`)
+	for _, tc := range []struct {
+		name       string
+		maxEntries int
+		omit       bool // the server answers without resources
+		revision   bool // the buried write is a revision, after the create
+		// wantAfter are the Provenances by activity after the retry, the
+		// other system's left out.
+		wantAfter map[string]int
+	}{
+		{"create in one transaction, another system's Provenance", 0, false, false, map[string]int{"CREATE": 1}},
+		{"create in one transaction, answered without resources", 0, true, false, map[string]int{"CREATE": 1}},
+		{"create split, the Provenance on its own", 2, false, false, map[string]int{"CREATE": 1}},
+		{"create split, answered without resources", 2, true, false, map[string]int{"CREATE": 1}},
+		{"revision in one transaction, the create's Provenance the only one", 0, false, true, map[string]int{"CREATE": 1, "UPDATE": 1}},
+		{"revision split, the create's Provenance the only one", 2, false, true, map[string]int{"CREATE": 1, "UPDATE": 1}},
+		{"revision in one transaction, answered without resources", 0, true, true, map[string]int{"CREATE": 1, "UPDATE": 1}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ctx := context.Background()
+			r := newWriteRig(t, tc.maxEntries)
+			buried, results := 0, map[string]int{}
+			r.hooks.DeadLetter = func() { buried++ }
+			r.hooks.WriteResult = func(outcome string) { results[outcome]++ }
+			if tc.omit {
+				r.fake.OmitResources()
+			}
+			var before map[string][]serverValue
+			if tc.revision {
+				r.openAndCreate()
+				before = r.values()
+				r.fake.Ignore("Provenance", "_tag")
+				r.ingest(r.gas(2, 47))
+			} else {
+				if _, err := r.fake.Put(other); err != nil {
+					t.Fatal(err)
+				}
+				r.fake.Ignore("Provenance", "_tag")
+				r.open()
+				r.ingest(append(r.inputs, r.gas(1, 44))...)
+			}
+			provsBefore := len(r.provenances())
+			r.eng.FlushNow(ctx)
+
+			h := r.health()
+			if h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != 1 {
+				var last string
+				if ws := r.outbox(); len(ws) > 0 {
+					last = ws[0].LastError
+				}
+				t.Fatalf("after one attempt: %d writes in the outbox (last error %q), %d dead letters; want the write buried", h.Stats.OutboxDepth, last, h.Stats.DeadLetters)
+			}
+			if buried != 1 || results["dead-letter"] != 1 {
+				t.Errorf("dead-letter hook called %d times, write results %v; want the burial counted once", buried, results)
+			}
+			var ids []string
+			for _, typ := range []string{"Observation", "Provenance", "Device"} {
+				for _, raw := range r.fake.Current(typ) {
+					var m struct{ ID string }
+					_ = json.Unmarshal(raw, &m)
+					ids = append(ids, m.ID)
+				}
+			}
+			for _, reason := range r.deadLetters() {
+				for _, want := range []string{"Provenance was not written", "ignore _tag in conditions", "the values were written without their Provenance", "retry the write"} {
+					if !strings.Contains(reason, want) {
+						t.Errorf("dead letter reason %q does not say %q", reason, want)
+					}
+				}
+				for _, id := range ids {
+					if strings.Contains(reason, id) {
+						t.Errorf("dead letter reason %q names the server's resource %s", reason, id)
+					}
+				}
+			}
+			if n := len(r.provenances()); n != provsBefore {
+				t.Errorf("the server holds %d Provenances, want the %d it held (none written)", n, provsBefore)
+			}
+			landed := r.values()
+			if len(landed) != 2 {
+				t.Fatalf("%d series on the server, want the 2 written", len(landed))
+			}
+			for series, vs := range landed {
+				if len(vs) != 1 {
+					t.Errorf("series %s has %d Observations on the server, want 1", series, len(vs))
+				}
+				if tc.revision && vs[0].version == before[series][0].version {
+					t.Errorf("series %s: the revision's value did not land (version %s)", series, vs[0].version)
+				}
+			}
+
+			r.fake.ClearFaults() // the operator fixes the server
+			dls, err := r.st.DeadLetters(ctx, 10)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, dl := range dls {
+				if _, err := deadletters.Local(r.st).Retry(ctx, dl.ID); err != nil {
+					t.Fatal(err)
+				}
+			}
+			r.mustDrain(5)
+			r.wantCurrent(2)
+			for series, vs := range r.values() {
+				if vs[0].version != landed[series][0].version {
+					t.Errorf("series %s: version %s after the retry, want %s, as it landed (not written again)", series, vs[0].version, landed[series][0].version)
+				}
+			}
+			got := r.activities()
+			for act, n := range tc.wantAfter {
+				if got[act] != n {
+					t.Errorf("after the retry the server holds Provenances %v, want %v (and the other system's)", got, tc.wantAfter)
+					break
+				}
+			}
+			if tc.revision {
+				r.wantOneRevisionProvenance(before)
+			}
+		})
+	}
+}
+
+// A write sent again after its answer was lost meets its own Provenance on
+// the server: the Provenance's create, conditional on its tag, is answered
+// 200 with it, or with its location only (then it is read). That is a
+// repeat, and the write is acknowledged, also on a server that ignores _tag
+// in a condition while this write's Provenance is the only one it holds.
+func TestRepeatedProvenanceIsAcknowledged(t *testing.T) {
+	for _, tc := range []struct {
+		name       string
+		maxEntries int
+		ignoreTag  bool
+		omit       bool
+	}{
+		{"one transaction, the server honours _tag", 0, false, false},
+		{"one transaction, the server honours _tag, answered without resources", 0, false, true},
+		{"one transaction, the server ignores _tag", 0, true, false},
+		{"one transaction, the server ignores _tag, answered without resources", 0, true, true},
+		{"split, the server honours _tag", 2, false, false},
+		{"split, the server ignores _tag", 2, true, false},
+		{"split, the server ignores _tag, answered without resources", 2, true, true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			r := newWriteRig(t, tc.maxEntries)
+			if tc.ignoreTag {
+				r.fake.Ignore("Provenance", "_tag")
+			}
+			if tc.omit {
+				r.fake.OmitResources()
+			}
+			// The Provenance lands, its answer is lost: in the one
+			// transaction, or sent on its own after the values.
+			lost := ""
+			if tc.maxEntries > 0 {
+				lost = "Provenance"
+			}
+			r.fake.Drop(http.MethodPost, lost, 1)
+			r.open()
+			r.ingest(append(r.inputs, r.gas(1, 44))...)
+			r.eng.FlushNow(t.Context())
+			if got := r.activities(); got["CREATE"] != 1 || r.health().Stats.OutboxDepth != 1 {
+				t.Fatalf("after the lost answer: Provenances %v, outbox %d; want the Provenance on the server and the write still to send", got, r.health().Stats.OutboxDepth)
+			}
+			r.mustDrain(5)
+			r.wantCurrent(2)
+			if got := r.activities(); got["CREATE"] != 1 || len(r.provenances()) != 1 {
+				t.Errorf("the server holds Provenances %v, want one CREATE", got)
+			}
+			posts := 0
+			for _, rq := range r.fake.Requests() {
+				if rq.Method == http.MethodPost && rq.Path == lost {
+					posts++
+				}
+			}
+			if posts != 2 {
+				t.Errorf("%d POSTs carrying the Provenance, want 2 (the lost one and the repeat)", posts)
+			}
+			reads := r.fake.Count(http.MethodGet, "Provenance/")
+			if tc.omit && reads != 1 {
+				t.Errorf("%d reads of the matched Provenance, want 1 (the server named it by location only)", reads)
+			}
+			if !tc.omit && reads != 0 {
+				t.Errorf("%d reads of the matched Provenance, want none (the server returned it)", reads)
+			}
+		})
+	}
+}
+
+// unnamedProvenances stands in front of the rig's fake and, while on,
+// answers the Provenance's create, alone or in a transaction, with its
+// status only: neither the resource nor its location. Call it before open.
+func unnamedProvenances(r *writeRig) *atomic.Bool {
+	u, err := url.Parse(r.fake.BaseURL)
+	if err != nil {
+		r.t.Fatal(err)
+	}
+	on := &atomic.Bool{}
+	on.Store(true)
+	proxy := httputil.NewSingleHostReverseProxy(&url.URL{Scheme: u.Scheme, Host: u.Host})
+	proxy.ModifyResponse = func(resp *http.Response) error {
+		path := strings.Trim(strings.TrimPrefix(resp.Request.URL.Path, u.Path), "/")
+		if !on.Load() || resp.Request.Method != http.MethodPost || (path != "" && path != "Provenance") {
+			return nil
+		}
+		body, err := io.ReadAll(resp.Body)
+		if err != nil {
+			return err
+		}
+		resp.Body.Close()
+		switch {
+		case path == "Provenance":
+			resp.Header.Del("Location")
+			body = nil
+		case resp.StatusCode < 300:
+			var b map[string]any
+			if err := json.Unmarshal(body, &b); err != nil {
+				return err
+			}
+			entries, _ := b["entry"].([]any)
+			for _, e := range entries {
+				em, _ := e.(map[string]any)
+				rm, _ := em["response"].(map[string]any)
+				if loc, _ := rm["location"].(string); strings.HasPrefix(loc, "Provenance/") {
+					delete(rm, "location")
+					delete(em, "resource")
+				}
+			}
+			if body, err = json.Marshal(b); err != nil {
+				return err
+			}
+		}
+		resp.Body = io.NopCloser(bytes.NewReader(body))
+		resp.ContentLength = int64(len(body))
+		resp.Header.Set("Content-Length", strconv.Itoa(len(body)))
+		return nil
+	}
+	srv := httptest.NewServer(proxy)
+	r.t.Cleanup(srv.Close)
+	r.base = srv.URL + u.Path
+	return on
+}
+
+// A server that answers the Provenance's create, conditional on its tag,
+// 200 (an existing match) without the resource or its location gives
+// nothing to check that the match is this write's Provenance: on a server
+// that ignores _tag it may be any other. The write is not counted as done:
+// it goes to the dead letters saying so, and once the server answers as
+// R4 has it, the retried letter writes the Provenance, the values as they
+// landed.
+func TestProvenanceMatchThatCannotBeCheckedIsBuried(t *testing.T) {
+	other := []byte(`{"resourceType":"Provenance","recorded":"2020-01-01T00:00:00Z","target":[{"reference":"Observation/other"}],"agent":[{"who":{"display":"another system"}}]}`)
+	for _, tc := range []struct {
+		name       string
+		maxEntries int
+	}{
+		{"one transaction", 0},
+		{"split, the Provenance on its own", 2},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			ctx := context.Background()
+			r := newWriteRig(t, tc.maxEntries)
+			unnamed := unnamedProvenances(r)
+			if _, err := r.fake.Put(other); err != nil {
+				t.Fatal(err)
+			}
+			r.fake.Ignore("Provenance", "_tag")
+			r.open()
+			r.ingest(append(r.inputs, r.gas(1, 44))...)
+			r.eng.FlushNow(ctx)
+			if h := r.health(); h.Stats.OutboxDepth != 0 || h.Stats.DeadLetters != 1 {
+				t.Fatalf("after one attempt: %d writes in the outbox, %d dead letters; want the write buried", h.Stats.OutboxDepth, h.Stats.DeadLetters)
+			}
+			for _, reason := range r.deadLetters() {
+				for _, want := range []string{"cannot be checked to be this write's Provenance", "neither the resource nor its location", "the values were written without their Provenance"} {
+					if !strings.Contains(reason, want) {
+						t.Errorf("dead letter reason %q does not say %q", reason, want)
+					}
+				}
+			}
+			landed := r.values()
+
+			r.fake.ClearFaults() // the operator fixes the server
+			unnamed.Store(false)
+			dls, err := r.st.DeadLetters(ctx, 10)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, dl := range dls {
+				if _, err := deadletters.Local(r.st).Retry(ctx, dl.ID); err != nil {
+					t.Fatal(err)
+				}
+			}
+			r.mustDrain(5)
+			r.wantCurrent(2)
+			for series, vs := range r.values() {
+				if vs[0].version != landed[series][0].version {
+					t.Errorf("series %s: version %s after the retry, want %s, as it landed", series, vs[0].version, landed[series][0].version)
+				}
+			}
+			if got := r.activities(); got["CREATE"] != 1 || len(r.provenances()) != 2 {
+				t.Errorf("after the retry the server holds Provenances %v, want one CREATE and the other system's", got)
+			}
+		})
 	}
 }

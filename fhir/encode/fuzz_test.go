@@ -1,6 +1,7 @@
 package encode
 
 import (
+	"encoding/json"
 	"math"
 	"regexp"
 	"strconv"
@@ -100,4 +101,70 @@ func FuzzParseRef(f *testing.F) {
 			t.Fatalf("parseRef(%q) accepted a line break", s)
 		}
 	})
+}
+
+// FuzzOwnProvenance: whatever a server returns for the Provenance's
+// conditional create, the check answers without panicking; it finds the
+// plan's Provenance only in a JSON object, and it finds it in any JSON
+// object that is a Provenance once the plan's tag is added to its tags,
+// whatever else the object carries.
+func FuzzOwnProvenance(f *testing.F) {
+	p := &Plan{tag: "dsp-0123", cfg: TxConfig{ProvenanceTagSystem: "https://example.org/tag"}}
+	for _, s := range []string{
+		`{"resourceType":"Provenance","meta":{"tag":[{"system":"https://example.org/tag","code":"dsp-0123"}]}}`,
+		`{"resourceType":"Provenance","meta":{"tag":[{"system":"https://example.org/tag","code":"dsp-9"},{"code":1}]}}`,
+		`{"resourceType":"Provenance","recorded":"2020-01-01T00:00:00Z"}`,
+		`{"resourceType":"Provenance","meta":{"tag":{}}}`,
+		`{"resourceType":"Provenance","META":{"tag":[]},"meta":null}`,
+		`{"resourceType":"OperationOutcome"}`,
+		`[]`, `null`, ``, `{`,
+	} {
+		f.Add([]byte(s))
+	}
+	f.Fuzz(func(t *testing.T, resource []byte) {
+		own, err := p.OwnProvenance(resource)
+		if own && err != nil {
+			t.Fatalf("own and an error: %v", err)
+		}
+		if err == nil && !json.Valid(resource) {
+			t.Fatalf("%q is not JSON, yet no error", resource)
+		}
+		var m map[string]any
+		if own && json.Unmarshal(resource, &m) != nil {
+			t.Fatalf("%q found own, yet it is not a JSON object", resource)
+		}
+		if json.Unmarshal(resource, &m) != nil || m == nil || m["resourceType"] != "Provenance" {
+			return
+		}
+		// Keys that differ from the ones read only in case would stand in
+		// for them (encoding/json matches names without case).
+		dropFolded(m, "resourceType", "meta")
+		meta, ok := m["meta"].(map[string]any)
+		if !ok {
+			meta = map[string]any{}
+		}
+		dropFolded(meta, "tag")
+		tags, _ := meta["tag"].([]any)
+		meta["tag"] = append(tags, map[string]any{"system": p.cfg.ProvenanceTagSystem, "code": p.tag})
+		m["meta"] = meta
+		tagged, err := json.Marshal(m)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if own, err := p.OwnProvenance(tagged); !own || err != nil {
+			t.Fatalf("%s, carrying the plan's tag, is not found own: %v", tagged, err)
+		}
+	})
+}
+
+// dropFolded removes the keys of m that equal one of names without case
+// but not exactly.
+func dropFolded(m map[string]any, names ...string) {
+	for k := range m {
+		for _, n := range names {
+			if k != n && strings.EqualFold(k, n) {
+				delete(m, k)
+			}
+		}
+	}
 }

@@ -347,6 +347,44 @@ func (p *Plan) provenanceQuery() url.Values {
 	return url.Values{"_tag": {p.cfg.ProvenanceTagSystem + "|" + p.tag}}
 }
 
+// ErrNotAProvenance is returned by [Plan.OwnProvenance] for a resource that
+// is not a Provenance (or not JSON): it says nothing about the tag.
+var ErrNotAProvenance = errors.New("not a Provenance")
+
+// OwnProvenance reports whether resource, the resource a server gave for
+// the plan's Provenance create, is this plan's Provenance: a Provenance
+// whose meta.tag carries the plan's tag (system and code). A create
+// conditional on the tag that matched one resource is answered 200 with
+// that resource (R4 http.html#ccreate), so a 200 says the Provenance is on
+// the server only when what matched carries the tag: a server that ignores
+// _tag in the condition matches any Provenance it holds. An error
+// (wrapping [ErrNotAProvenance]) means resource is not a Provenance.
+func (p *Plan) OwnProvenance(resource []byte) (bool, error) {
+	var r struct {
+		ResourceType string `json:"resourceType"`
+		Meta         struct {
+			Tag []json.RawMessage `json:"tag"`
+		} `json:"meta"`
+	}
+	if err := json.Unmarshal(resource, &r); err != nil {
+		return false, fmt.Errorf("encode provenance: the server's resource: %w: %w", ErrNotAProvenance, err)
+	}
+	if r.ResourceType != "Provenance" {
+		return false, fmt.Errorf("encode provenance: the server's resource: %w", ErrNotAProvenance)
+	}
+	for _, raw := range r.Meta.Tag {
+		// A tag of another shape is another system's, not this plan's.
+		var c struct {
+			System string `json:"system"`
+			Code   string `json:"code"`
+		}
+		if json.Unmarshal(raw, &c) == nil && c.System == p.cfg.ProvenanceTagSystem && c.Code == p.tag {
+			return true, nil
+		}
+	}
+	return false, nil
+}
+
 // provenance encodes the Provenance with target i set to the reference of
 // the i-th series it cites (the order of the Observations): from targets,
 // or for a series already done (see [Plan.Remaining]) its id.

@@ -228,3 +228,81 @@ func BenchmarkWriteEncode(b *testing.B) {
 		})
 	}
 }
+
+// TestOwnProvenance: what a server returns for the Provenance's create,
+// conditional on its tag, is the plan's Provenance only when it is a
+// Provenance carrying the plan's tag (system and code); a server that
+// ignores _tag in the condition returns whatever single Provenance it
+// holds.
+func TestOwnProvenance(t *testing.T) {
+	enc := newEncoder(t)
+	d := fullDerivation()
+	b, err := enc.Derivation("Patient/p1", d)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg := encode.TxConfig{DeviceRef: "Device/server-device", ProvenanceTagSystem: "https://example.org/tag"}
+	p, err := enc.Plan(encode.Write{Kind: encode.WriteCreate, Subject: "Patient/p1", Derivation: &d, Series: []string{series(b.Observations[0])}}, nil, cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	raw, err := p.Transaction(0, p.Len(), true)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var tx txBundle
+	if err := json.Unmarshal(raw, &tx); err != nil {
+		t.Fatal(err)
+	}
+	// As the server stores it: with an id and a version of its own.
+	var sent map[string]any
+	if err := json.Unmarshal(tx.Entry[len(tx.Entry)-1].Resource, &sent); err != nil {
+		t.Fatal(err)
+	}
+	sent["id"] = "f0000009"
+	sent["meta"].(map[string]any)["versionId"] = "1"
+	stored, err := json.Marshal(sent)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, q, err := p.Provenance(map[string]string{p.Series(0): "f0000001"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	system, code, _ := strings.Cut(q.Get("_tag"), "|")
+	if system != cfg.ProvenanceTagSystem || code == "" {
+		t.Fatalf("the plan's condition %v does not carry its tag", q)
+	}
+	withTags := func(tags string) []byte {
+		return []byte(`{"resourceType":"Provenance","id":"f0000002","meta":{"versionId":"1","tag":[` + tags + `]},"recorded":"2020-01-01T00:00:00Z"}`)
+	}
+	tag := func(system, code string) string { return `{"system":"` + system + `","code":"` + code + `"}` }
+	for _, tc := range []struct {
+		name     string
+		resource []byte
+		want     bool
+		wantErr  bool
+	}{
+		{"the plan's Provenance as the server stores it", stored, true, false},
+		{"its tag among other tags", withTags(tag("urn:example:audit", "checked") + "," + tag(system, code)), true, false},
+		{"another write's tag", withTags(tag(system, code+"x")), false, false},
+		{"the tag's code under another system", withTags(tag("urn:example:audit", code)), false, false},
+		{"the tag's code without a system", withTags(`{"code":"` + code + `"}`), false, false},
+		{"a tag of another shape beside it", withTags(`{"system":1},` + tag(system, code)), true, false},
+		{"no tag at all (another system's Provenance)", []byte(`{"resourceType":"Provenance","recorded":"2020-01-01T00:00:00Z"}`), false, false},
+		{"an Observation carrying the tag", []byte(`{"resourceType":"Observation","meta":{"tag":[` + tag(system, code) + `]}}`), false, true},
+		{"an OperationOutcome", []byte(`{"resourceType":"OperationOutcome","issue":[]}`), false, true},
+		{"not JSON", []byte(`<html>`), false, true},
+		{"nothing", nil, false, true},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			got, err := p.OwnProvenance(tc.resource)
+			if got != tc.want || (err != nil) != tc.wantErr {
+				t.Fatalf("OwnProvenance = %v, %v; want %v, error %v", got, err, tc.want, tc.wantErr)
+			}
+			if err != nil && !errors.Is(err, encode.ErrNotAProvenance) {
+				t.Errorf("error %v does not match ErrNotAProvenance", err)
+			}
+		})
+	}
+}

@@ -21,7 +21,10 @@
 //   - ignored search parameters ([Server.Ignore]): a parameter of a type
 //     that the server leaves out of searches and of the conditions of
 //     conditional creates, as servers do with parameters they do not
-//     support, so a condition on it matches every resource of the type.
+//     support, so a condition on it matches every resource of the type;
+//   - answers without resources ([Server.OmitResources]): creates and
+//     updates, alone or in a Bundle, answered with the location and ETag
+//     only, as a server that ignores Prefer: return=representation does.
 //
 // ids are "f" and a seven-digit counter; versionIds count from 1; lastUpdated strictly
 // increases, in milliseconds, so a _lastUpdated cursor is exact.
@@ -95,6 +98,7 @@ type Server struct {
 	requests []Request
 	pageSize int
 	ignored  map[string]bool // "type?name" of ignored search parameters
+	minimal  bool            // creates and updates answered without the resource
 }
 
 // Start runs a server until tb's cleanup.
@@ -152,6 +156,16 @@ func (s *Server) Ignore(typ, name string) {
 		s.ignored = map[string]bool{}
 	}
 	s.ignored[typ+"?"+name] = true
+}
+
+// OmitResources makes the server answer creates and updates from now on,
+// alone or as entries of a Bundle, without the resource, whatever the
+// client prefers: the Location (response.location) and ETag still name it.
+// ClearFaults leaves it.
+func (s *Server) OmitResources() {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	s.minimal = true
 }
 
 func (s *Server) addFault(f *Fault) {
@@ -310,6 +324,11 @@ func (s *Server) serve(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	a := s.handle(r, path, body)
+	s.mu.Lock()
+	if s.minimal && path != "" && (r.Method == http.MethodPost || r.Method == http.MethodPut) && a.status < 300 {
+		a.body = nil
+	}
+	s.mu.Unlock()
 	if f != nil && f.Drop {
 		if hj, ok := w.(http.Hijacker); ok {
 			if conn, _, err := hj.Hijack(); err == nil {
@@ -764,7 +783,7 @@ func (s *Server) bundle(body []byte) answer {
 		}
 	}
 	var entries []any
-	for _, a := range answers {
+	for i, a := range answers {
 		resp := map[string]any{"status": strconv.Itoa(a.status) + " " + http.StatusText(a.status)}
 		if loc := a.header.Get("Location"); loc != "" {
 			resp["location"] = strings.TrimPrefix(loc, s.BaseURL+"/")
@@ -773,9 +792,11 @@ func (s *Server) bundle(body []byte) answer {
 			resp["etag"] = et
 		}
 		entry := map[string]any{"response": resp}
-		if a.status < 300 {
+		switch {
+		case a.status < 300 && s.minimal && b.Entry[i].Request.Method != http.MethodGet:
+		case a.status < 300:
 			entry["resource"] = json.RawMessage(a.body)
-		} else {
+		default:
 			resp["outcome"] = json.RawMessage(a.body)
 		}
 		entries = append(entries, entry)

@@ -181,6 +181,61 @@ func TestIgnoredParameterMatchesEveryResource(t *testing.T) {
 	}
 }
 
+// A server that answers without resources still names what it created or
+// matched: by Location and ETag for a create or update on its own, by
+// response.location and etag for a Bundle's entries, whose references to
+// urn:uuid fullUrls it still resolves; reads still return the resource.
+func TestOmitResourcesAnswersWithLocationsOnly(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	ctx := context.Background()
+	s.OmitResources()
+	dev := []byte(`{"resourceType":"Device","identifier":[{"system":"urn:x","value":"d1"}]}`)
+	q := url.Values{"identifier": {"urn:x|d1"}}
+	for _, tc := range []struct {
+		name       string
+		wantStatus int
+	}{
+		{"created", http.StatusCreated},
+		{"matched", http.StatusOK},
+	} {
+		t.Run("conditional create, "+tc.name, func(t *testing.T) {
+			body, m, err := c.ConditionalCreate(ctx, "Device", dev, q)
+			if err != nil || m.Status != tc.wantStatus || len(body) != 0 || m.ID == "" || m.VersionID != "1" || !strings.Contains(m.Location, "/Device/"+m.ID) {
+				t.Fatalf("%v, %+v, body %q; want %d with no body, and the id and version from Location and ETag", err, m, body, tc.wantStatus)
+			}
+		})
+	}
+	_, m, err := c.Create(ctx, "Observation", obs("2019-8", "Patient/p1", 44))
+	if err != nil {
+		t.Fatal(err)
+	}
+	tx := fmt.Sprintf(`{"resourceType":"Bundle","type":"transaction","entry":[
+	 {"fullUrl":"urn:uuid:0f0e0d0c-0000-4000-8000-000000000002","resource":{"resourceType":"Observation","status":"final"},"request":{"method":"POST","url":"Observation"}},
+	 {"resource":{"resourceType":"Provenance","target":[{"reference":"urn:uuid:0f0e0d0c-0000-4000-8000-000000000002"}]},"request":{"method":"POST","url":"Provenance"}},
+	 {"resource":{"resourceType":"Observation","id":"%s","status":"amended"},"request":{"method":"PUT","url":"Observation/%s"}},
+	 {"request":{"method":"GET","url":"Observation/%s"}}]}`, m.ID, m.ID, m.ID)
+	resp, err := c.Transaction(ctx, []byte(tx))
+	if err != nil || len(resp.Entries) != 4 {
+		t.Fatalf("transaction: %v %+v", err, resp)
+	}
+	for i, en := range resp.Entries[:3] {
+		if en.Resource != nil || en.ID == "" || en.VersionID == "" {
+			t.Errorf("entry %d: resource %s, id %q, version %q; want no resource, and the id and version from location and etag", i, en.Resource, en.ID, en.VersionID)
+		}
+	}
+	if resp.Entries[3].Resource == nil {
+		t.Error("the GET entry came back without its resource")
+	}
+	prov := s.Current("Provenance")
+	if len(prov) != 1 || !strings.Contains(string(prov[0]), `"Observation/`+resp.Entries[0].ID+`"`) {
+		t.Fatalf("the Provenance does not cite the created Observation: %s", prov)
+	}
+	if body, _, err := c.Read(ctx, "Provenance", resp.Entries[1].ID); err != nil || len(body) == 0 {
+		t.Fatalf("read of the Provenance: %v, body %q", err, body)
+	}
+}
+
 func TestSearchPagesByLastUpdatedAndCode(t *testing.T) {
 	s := fakefhir.Start(t)
 	c := newClient(t, s, nil)
