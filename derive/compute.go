@@ -290,7 +290,8 @@ type builder struct {
 	steadyTerms []Term
 
 	// leakNote goes on every value computed from a minute or tidal volume
-	// when the window shows a leak; leakTerms are its figures.
+	// or from end-tidal CO2 (leakAffected) when the window shows a leak;
+	// leakTerms are its figures.
 	leakNote  string
 	leakTerms []Term
 
@@ -427,6 +428,11 @@ func (b *builder) patientAge() {
 	}
 }
 
+// WestmostZone is how far behind UTC the westmost local time is
+// (UTC−12:00, the earliest zone in use; from memory), which ageYears
+// counts a birthday by.
+const WestmostZone = 12 * time.Hour
+
 // AdultAge is the age, in completed years, from which the adult indices
 // (predicted body weight, the ventilatory ratio, the regression estimate)
 // are computed: they were derived in adults (Sinha 2009 studied "adult
@@ -482,7 +488,7 @@ func (b *builder) emit(v Value) bool {
 	for _, k := range v.Inputs {
 		notes = append(notes, b.kindNotes[k]...)
 	}
-	if b.leakNote != "" && (slices.Contains(v.Inputs, KindMinuteVolume) || slices.Contains(v.Inputs, KindTidalVolume)) {
+	if b.leakNote != "" && slices.ContainsFunc(v.Inputs, leakAffected) {
 		notes = append(notes, b.leakNote)
 		v.Terms = append(v.Terms, b.leakTerms...)
 	}
@@ -700,6 +706,12 @@ func (b *builder) values() {
 	b.estimated(pa, et)
 }
 
+// leakAffected reports whether a leak makes readings of kind k read low:
+// the expired volumes, and the end-tidal CO2 sampled from expired gas.
+func leakAffected(k Kind) bool {
+	return k == KindMinuteVolume || k == KindTidalVolume || k == KindEtCO2
+}
+
 func (b *builder) mixedExpired() {
 	if b.have[KindMixedExpiredCO2] {
 		b.pe, b.peOK = b.med[KindMixedExpiredCO2], true
@@ -722,6 +734,15 @@ func (b *builder) mixedExpired() {
 	pe := MixedExpiredFromVCO2(vco2, ve)
 	if ok, lo, hi := Plausible(KindMixedExpiredCO2, pe); !ok {
 		b.peBad = fmt.Sprintf("0.863 × VCO2 %v / VE %v gives PĒCO2 %v mm[Hg], outside %v–%v; suspect VCO2 or VE", vco2, ve, pe, lo, hi)
+		b.omit(CodeMixedExpiredCO2, ReasonInconsistent, "%s", b.peBad)
+		return
+	}
+	// Expired gas is alveolar gas diluted by dead-space gas, so its PCO2
+	// is below the arterial: one at or above it means the VCO2 or the VE
+	// is wrong (their gas conditions, a leak), and neither it nor anything
+	// built on it (the fractions, or an estimate beside it) is written.
+	if pe >= b.pa {
+		b.peBad = fmt.Sprintf("0.863 × VCO2 %v / VE %v gives PĒCO2 %v mm[Hg], not below PaCO2 %v mm[Hg]; suspect VCO2 or VE (their gas conditions, a leak)", vco2, ve, pe, b.pa)
 		b.omit(CodeMixedExpiredCO2, ReasonInconsistent, "%s", b.peBad)
 		return
 	}
@@ -994,10 +1015,16 @@ func (b *builder) estimated(pa, et float64) {
 	})
 }
 
-// ageYears is the age in completed years, on the UTC calendar: birth dates
-// carry no zone, and the adapter builds them at UTC midnight.
+// ageYears is the age in completed years at the instant at, on the
+// calendar furthest west (UTC−12, [WestmostZone]): a birth date is a date
+// where the patient lives, the sample's own zone is not kept, and on the
+// westmost calendar the date is the earliest any local calendar shows. So
+// the age is never older than at the bedside, and the adult indices are
+// never computed for a patient who is 17 there; the price is an age one
+// year younger for up to half a day after a birthday. Birth dates carry no
+// zone; the adapter builds them at UTC midnight.
 func ageYears(birth, at time.Time) int {
-	b, a := birth.UTC(), at.UTC()
+	b, a := birth.UTC(), at.UTC().Add(-WestmostZone)
 	y := a.Year() - b.Year()
 	if a.Month() < b.Month() || (a.Month() == b.Month() && a.Day() < b.Day()) {
 		y--

@@ -54,7 +54,7 @@ func sortByTime(rs []derive.Reading) []derive.Reading {
 var man60 = derive.Patient{
 	Ref:       "Patient/p1/_history/1",
 	Sex:       derive.SexMale,
-	BirthDate: time.Date(1964, 3, 1, 0, 0, 0, 0, time.UTC),
+	BirthDate: time.Date(1964, 2, 1, 0, 0, 0, 0, time.UTC),
 }
 
 // measured is a full set of readings around the gas: PetCO2 35, PĒCO2 28,

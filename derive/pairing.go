@@ -176,8 +176,8 @@ func inspiredSide(s Source) bool { return s == SourceInspired || s == SourceSet 
 // it, in per cent to one decimal. When it is more than cfg.LeakFraction,
 // gas is lost between the two (a cuff or circuit leak, a bronchopleural
 // fistula): the expired volumes and end-tidal CO2 read low, so every value
-// computed from a volume carries a note (a leak above about 10 %, from
-// memory). A leak seen on either volume concerns the whole circuit, so the
+// computed from a volume or from end-tidal CO2 carries a note (a leak above
+// about 10 %, from memory). A leak seen on either volume concerns the whole circuit, so the
 // note goes on values from the other volume too. A set tidal volume counts
 // as the inspired one, as it is in a volume-controlled mode.
 func (b *builder) leak(cfg Config, k Kind, rs []Reading) {
@@ -299,19 +299,32 @@ func (b *builder) artefacts(cfg ArtefactConfig, rs []Reading) (usable []Reading,
 
 // etco2InKPa reports whether a window of end-tidal readings looks like kPa
 // labelled mm[Hg]: every reading inside [etco2KPaBand] while the arterial
-// PCO2 is a plausible mm[Hg] value far above them. A disconnection reads
-// near zero, below the band.
+// PCO2 is a plausible mm[Hg] value far above them, at least
+// etco2KPaRatio times the highest. The test is relative, not a fixed
+// PaCO2: a normal PaCO2 of 5.3 kPa (39.75 mm[Hg]) beside end-tidal
+// readings of 5 in kPa is the same mix-up as at 40 mm[Hg]. A
+// disconnection reads near zero, below the band.
 func etco2InKPa(rs []Reading, pa float64) bool {
-	if len(rs) == 0 || pa < 4*etco2KPaBand[1] {
+	if len(rs) == 0 {
 		return false
 	}
+	highest := 0.0
 	for _, r := range rs {
 		if r.Value < etco2KPaBand[0] || r.Value > etco2KPaBand[1] {
 			return false
 		}
+		highest = max(highest, r.Value)
 	}
-	return true
+	return pa >= etco2KPaRatio*highest
 }
+
+// etco2KPaRatio is how far above every end-tidal reading in the kPa band
+// the arterial PCO2 must be for the window to be taken as kPa: PaCO2 four
+// times the end-tidal CO2 would be an alveolar dead-space fraction of 0.75
+// or more if both were mm[Hg], while kPa read as mm[Hg] gives about 7.5
+// times. A design choice; with the band's top (10) it asks for a PaCO2 of
+// 40, the fixed cut-off it replaces.
+const etco2KPaRatio = 4
 
 // steady compares minute volume and end-tidal CO2 in the pairing window
 // with their level in the Lookback before it. It returns a note and the

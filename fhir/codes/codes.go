@@ -148,6 +148,13 @@ type Row struct {
 	// own row, and the reading cites the panel. Only paco2 rows may be
 	// panels.
 	Panel bool
+	// Broader marks a rejected row whose code is a broader concept than an
+	// accepted one (a PCO2 in blood of an unspecified specimen beside an
+	// arterial PCO2): a coding of it beside an accepted coding of the same
+	// Observation narrows it, and the accepted one decides. Any other
+	// rejected coding beside an accepted one contradicts it (a venous PCO2
+	// beside an arterial one) and the rejection decides, in any order.
+	Broader bool
 	// Note records where the code comes from and how sure we are of it.
 	Note string
 }
@@ -306,6 +313,7 @@ type rowJSON struct {
 	CO2Basis string `json:"co2Basis"`
 	Priority int    `json:"priority"`
 	Panel    bool   `json:"panel"`
+	Broader  bool   `json:"broader"`
 	Source   string `json:"source"`
 	Note     string `json:"note"`
 }
@@ -380,7 +388,7 @@ func parseRows(data []byte, base int, raw json.RawMessage) (*Table, error) {
 // row converts and checks one decoded row, returning every problem.
 func (rj rowJSON) row() (Row, []error) {
 	var errs []error
-	r := Row{System: rj.System, Code: rj.Code, Display: rj.Display, CO2Basis: rj.CO2Basis, Priority: rj.Priority, Panel: rj.Panel, Note: rj.Note}
+	r := Row{System: rj.System, Code: rj.Code, Display: rj.Display, CO2Basis: rj.CO2Basis, Priority: rj.Priority, Panel: rj.Panel, Broader: rj.Broader, Note: rj.Note}
 	if rj.System == "" {
 		errs = append(errs, errors.New(`"system" is required`))
 	}
@@ -422,6 +430,9 @@ func (rj rowJSON) row() (Row, []error) {
 		if rj.Reason == "" {
 			errs = append(errs, errors.New(`a rejected row needs a "reason"`))
 		}
+	}
+	if rj.Broader && r.Action != ActionReject {
+		errs = append(errs, errors.New(`"broader" is for rejected rows only`))
 	}
 	switch rj.CO2Basis {
 	case "":

@@ -202,6 +202,7 @@ func TestLoadErrors(t *testing.T) {
 			[]string{"duplicate of the row on line 2"}},
 		{"accept without kind", `{"rows": [{"system": "s", "code": "c"}]}`, []string{`needs a "kind"`}},
 		{"reason on accepted row", `{"rows": [{"system": "s", "code": "c", "kind": "paco2", "reason": "specimen-not-arterial"}]}`, []string{`"reason" is for rejected rows only`}},
+		{"broader on accepted row", `{"rows": [{"system": "s", "code": "c", "kind": "paco2", "broader": true}]}`, []string{`"broader" is for rejected rows only`}},
 		{"unknown reason", `{"rows": [{"system": "s", "code": "c", "action": "reject", "reason": "bad-vibes"}]}`, []string{`unknown "reason"`}},
 		{"co2Basis on tidal volume", `{"rows": [{"system": "s", "code": "c", "kind": "tidal-volume", "co2Basis": "wet"}]}`, []string{`"co2Basis" applies only`}},
 		{"a panel of tidal volumes", `{"rows": [{"system": "s", "code": "c", "kind": "tidal-volume", "panel": true}]}`, []string{`"panel" applies only`}},

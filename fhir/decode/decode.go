@@ -369,10 +369,32 @@ type patientJSON struct {
 	BirthDate string    `json:"birthDate"`
 }
 
+// lookup finds the row that decides what an Observation's code is. The
+// codings of one concept are meant to translate each other, so when one is
+// accepted and another rejected they contradict each other (an arterial
+// and a venous PCO2): the rejection decides, whatever their order, unless
+// the rejected code is a broader concept the accepted one narrows
+// (codes.Row.Broader). Otherwise the first accepted coding decides, and
+// without one the first rejected.
 func (d *Decoder) lookup(c conceptJSON) (codes.Row, bool) {
+	var accepted, rejected, broader *codes.Row
 	for _, cd := range c.Coding {
-		if r, ok := d.table.Lookup(cd.System, cd.Code); ok && r.Action != codes.ActionIgnore {
-			return r, true
+		r, ok := d.table.Lookup(cd.System, cd.Code)
+		if !ok {
+			continue
+		}
+		switch {
+		case r.Action == codes.ActionAccept && accepted == nil:
+			accepted = &r
+		case r.Action == codes.ActionReject && !r.Broader && rejected == nil:
+			rejected = &r
+		case r.Action == codes.ActionReject && r.Broader && broader == nil:
+			broader = &r
+		}
+	}
+	for _, r := range []*codes.Row{rejected, accepted, broader} {
+		if r != nil {
+			return *r, true
 		}
 	}
 	return codes.Row{}, false

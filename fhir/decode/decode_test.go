@@ -193,10 +193,15 @@ func fixtures(t testing.TB) []fixture {
 					t.Errorf("AtMillis = %d, want %d", it.Reading.AtMillis, want)
 				}
 			}},
-		{name: "first coding in the table wins", line: abg(set("code", map[string]any{"coding": []any{
+		{name: "an arterial and a venous coding contradict each other: refused", line: abg(set("code", map[string]any{"coding": []any{
 			map[string]any{"system": "http://lab.example/codes", "code": "PCO2A"},
 			map[string]any{"system": "http://loinc.org", "code": "2019-8"},
-			map[string]any{"system": "http://loinc.org", "code": "2021-4"}}})), typ: ItemReading},
+			map[string]any{"system": "http://loinc.org", "code": "2021-4"}}})), typ: ItemOmitted, reason: derive.ReasonNotArterial},
+		{name: "a blood PCO2 of unspecified specimen beside an arterial coding: arterial", line: abg(set("code", map[string]any{"coding": []any{
+			map[string]any{"system": "http://loinc.org", "code": "11557-6"},
+			map[string]any{"system": "http://loinc.org", "code": "2019-8"}}})), typ: ItemReading},
+		{name: "a blood PCO2 of unspecified specimen alone: refused", line: abg(set("code", map[string]any{"coding": []any{
+			map[string]any{"system": "http://loinc.org", "code": "11557-6"}}})), typ: ItemOmitted, reason: derive.ReasonNotArterial},
 		{name: "unit from Quantity.unit when no code", line: abg(set("valueQuantity", map[string]any{"value": 40, "unit": "mm[Hg]"})), typ: ItemReading,
 			check: func(t *testing.T, it Item) {
 				if it.Conversion.Source != "unit" {
