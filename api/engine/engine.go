@@ -218,6 +218,9 @@ type Engine struct {
 	// the monotonic clock too (clocksteps.go).
 	retries retryDue
 	marks   marksSeen
+	// withdrawn are the patients whose next evaluation does not wait
+	// for the settle delay (withdrawals.go).
+	withdrawn withdrawals
 	// probe is readiness's last write to the store (StoreWrites).
 	probe writeProbe
 
@@ -552,6 +555,7 @@ func (e *Engine) held(ctx context.Context, logicals []string) (map[string]bool, 
 // is an Observation this service does not recognise. Device readings
 // alone wake the evaluator's device listing (wakeDevice).
 func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
+	e.withdrawn.note(inputs, res)
 	wake := e.wakeDevice
 	for i, r := range res {
 		// A withdrawal or deletion may retract a blood gas's values: the
