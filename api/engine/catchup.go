@@ -486,7 +486,11 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 		body, _, err := e.cfg.Client.Read(ctx, typ, id)
 		if errors.Is(err, client.ErrNotFound) || errors.Is(err, client.ErrGone) {
 			e.log.InfoContext(ctx, "a resource a notification named is not on the server; taken as deleted", "type", typ, "err", err)
-			gone = append(gone, Deletion{Ref: typ + "/" + id, How: "a read of it answered " + readStatus(err)})
+			d := Deletion{Ref: typ + "/" + id, How: "a read of it answered " + readStatus(err)}
+			if fe, ok := errors.AsType[*client.Error](err); ok {
+				d.ServerNow = fe.Date
+			}
+			gone = append(gone, d)
 			continue
 		}
 		if err != nil {
@@ -527,6 +531,13 @@ type Deletion struct {
 	At time.Time
 	// How says how it was learned, for the stored record.
 	How string
+	// ServerNow, for a deletion learned from the server's current state
+	// (At zero), is the server's clock when it said so (the Date of its
+	// answer); zero when unknown. The deletion is dated by it, never by
+	// the service's clock: a service clock ahead of the server's would
+	// date the deletion after a re-creation the server made later, and
+	// hide it.
+	ServerNow time.Time
 }
 
 // DeletionReceipt says what Deleted did with each deletion it was given.
@@ -573,7 +584,12 @@ func (e *Engine) Deleted(ctx context.Context, deletions []Deletion) (DeletionRec
 		}
 		at := d.At
 		if at.IsZero() {
-			at = now
+			// By the server's clock when it is known; after every version
+			// held in any case (a Date has whole seconds only).
+			at = d.ServerNow
+			if at.IsZero() {
+				at = now
+			}
 			held, err := e.cfg.Store.Input(ctx, owner, logical)
 			switch {
 			case errors.Is(err, store.ErrNotFound):

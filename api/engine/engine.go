@@ -218,6 +218,9 @@ type Engine struct {
 	// the monotonic clock too (clocksteps.go).
 	retries retryDue
 	marks   marksSeen
+	// withdrawn are the patients whose next evaluation does not wait
+	// for the settle delay (withdrawals.go).
+	withdrawn withdrawals
 	// probe is readiness's last write to the store (StoreWrites).
 	probe writeProbe
 
@@ -552,9 +555,13 @@ func (e *Engine) held(ctx context.Context, logicals []string) (map[string]bool, 
 // is an Observation this service does not recognise. Device readings
 // alone wake the evaluator's device listing (wakeDevice).
 func (e *Engine) stored(inputs []store.Input, res []store.PutResult) {
+	e.withdrawn.note(inputs, res)
 	wake := e.wakeDevice
 	for i, r := range res {
-		if inputs[i].Urgent || inputs[i].OnlyReplaces {
+		// A withdrawal or deletion may retract a blood gas's values: the
+		// store's mark says whether it does (urgent), and the listing it
+		// asks for is made at once.
+		if inputs[i].Urgent || inputs[i].OnlyReplaces || inputs[i].Inert {
 			wake = e.wake
 		}
 		switch r {
@@ -617,14 +624,16 @@ func (e *Engine) toStored(it decode.Item, now time.Time) (store.Input, error) {
 	// time less its kind's reach until its time plus its kind's reach the
 	// other way (a height, which serves a year, and a withdrawal change
 	// them at any time: zero).
-	if it.Type == decode.ItemReading && it.Reading.Kind != derive.KindHeight {
+	if it.Type == decode.ItemReading {
 		kinds := []derive.Kind{it.Reading.Kind}
 		for _, a := range it.Also {
 			kinds = append(kinds, a.Kind)
 		}
-		sp := e.readingSpan(it.Reading.At(), kinds)
-		in.ChangedAt, in.ChangedUntil = sp.From, sp.Until
-		in.Urgent = it.Reading.Kind == derive.KindPaCO2
+		in.Urgent = slices.ContainsFunc(kinds, urgentKind)
+		if it.Reading.Kind != derive.KindHeight {
+			sp := e.readingSpan(it.Reading.At(), kinds)
+			in.ChangedAt, in.ChangedUntil = sp.From, sp.Until
+		}
 	}
 	// The version it replaces may have been of another kind: its own
 	// stored head says which (a height's effective time is a year on).
@@ -679,7 +688,8 @@ func (e *Engine) readingSpan(at time.Time, kinds []derive.Kind) store.Span {
 func (e *Engine) replacedSpan(_ time.Time, payload []byte) (store.Span, bool) {
 	l, err := parseHead(payload)
 	if err != nil {
-		return store.Span{}, true
+		// Unreadable: the whole patient, at once, to be safe.
+		return store.Span{Urgent: true}, true
 	}
 	if headItemType(payload) != decode.ItemReading {
 		return store.Span{}, false
@@ -688,10 +698,23 @@ func (e *Engine) replacedSpan(_ time.Time, payload []byte) (store.Span, bool) {
 	for i := range l.nAlso {
 		kinds = append(kinds, l.alsoKind(payload, i))
 	}
+	urgent := slices.ContainsFunc(kinds, urgentKind)
 	if slices.Contains(kinds, derive.KindHeight) {
-		return store.Span{}, true
+		return store.Span{Urgent: urgent}, true
 	}
-	return e.readingSpan(time.UnixMilli(headAtMillis(payload)).UTC(), kinds), true
+	sp := e.readingSpan(time.UnixMilli(headAtMillis(payload)).UTC(), kinds)
+	sp.Urgent = urgent
+	return sp, true
+}
+
+// urgentKind reports whether a change to a reading of kind k alters a
+// blood gas's values directly: the blood gas itself (its PaCO2, as
+// measured or at the patient's temperature) and the height, a patient
+// fact. Such a change, a deletion or withdrawal of one included, is
+// evaluated at once (store.Input.Urgent); the device pace holds back
+// only the readings that arrive in floods.
+func urgentKind(k derive.Kind) bool {
+	return k == derive.KindPaCO2 || k == derive.KindPaCO2Adjusted || k == derive.KindHeight
 }
 
 // retentionTime is the time the store prunes an input by. A body height is

@@ -197,6 +197,7 @@ func (e *Engine) evaluateLoop(ctx context.Context) {
 			d := queue[0]
 			queue = queue[1:]
 			running[d.Subject] = true
+			e.withdrawn.taken(d.Subject)
 			if !d.Urgent {
 				routine[d.Subject] = true
 			}
@@ -285,7 +286,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 		if running[d.Subject] {
 			continue
 		}
-		if left := e.cfg.Settle - e.marks.age(d, now); left > 0 {
+		if left := e.cfg.Settle - e.marks.age(d, now); left > 0 && !e.withdrawn.pending(d.Subject) {
 			wait = min(wait, left)
 			continue
 		}

@@ -1,6 +1,7 @@
 package store
 
 import (
+	"bytes"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/fhir/ref"
@@ -89,7 +90,30 @@ func (sp Span) Replacing(in Input, effectiveAt time.Time, payload []byte) Span {
 	if !ok {
 		return sp
 	}
-	return Span{From: Earliest(sp.From, old.From), Until: Latest(sp.Until, old.Until), Urgent: sp.Urgent}
+	return Span{From: Earliest(sp.From, old.From), Until: Latest(sp.Until, old.Until), Urgent: sp.Urgent || old.Urgent}
+}
+
+// MovedAway is the change to the patient a newer version moves an input
+// away from (Input.Withdrawal), whose stored version was effective at
+// effectiveAt with payload: the whole patient, urgent when either version
+// is (what in.Replaced says of the one moved away; a blood gas filed to
+// the wrong patient must leave that patient's record at once).
+func MovedAway(in Input, effectiveAt time.Time, payload []byte) Span {
+	urgent := in.Urgent
+	if in.Replaced != nil {
+		if old, ok := in.Replaced(effectiveAt, payload); ok {
+			urgent = urgent || old.Urgent
+		}
+	}
+	return Span{Urgent: urgent}
+}
+
+// PatientChange is the change a newer version of a patient's facts makes:
+// the whole patient, urgent when the facts differ from those stored
+// (stored nil: none were), since every blood gas's values may change with
+// them; a new version with the same facts changes nothing at once.
+func PatientChange(p Patient, stored []byte, had bool) Span {
+	return Span{Urgent: !had || !bytes.Equal(p.Payload, stored)}
 }
 
 // Latest is the later time, where zero (no end) is the latest.

@@ -72,8 +72,12 @@ type Input struct {
 	// which the store cannot fill: it does not look inside a payload).
 	// Nil: a tie is the same version (PutSame).
 	Tie func(subject string, payload []byte) int
-	// Urgent marks a blood gas: its patient is evaluated before patients
-	// with device readings only.
+	// Urgent marks a change that alters a blood gas's values directly (a
+	// blood gas, a patient fact): its patient is evaluated before patients
+	// with device readings only, and the device pace does not hold it
+	// back. The version it replaces makes the change urgent too when
+	// Replaced says so of it (a blood gas corrected, withdrawn or
+	// deleted).
 	Urgent bool
 	// Withdrawal is the payload stored, with this input's version, under
 	// the patient the latest stored version names when this newer version
@@ -129,7 +133,8 @@ type Dirty struct {
 	// A store may always leave it zero: the evaluation then derives every
 	// blood gas from From on, as before marks had an end.
 	Until time.Time
-	// Urgent is set when a change was a blood gas.
+	// Urgent is set when a change altered a blood gas's values directly
+	// (Input.Urgent, Span.Urgent, a patient's facts).
 	Urgent bool
 	// Cleared, from a store shared by replicas ([Replicated]), is the
 	// Generation of the mark that the patient's last committed evaluation

@@ -313,6 +313,9 @@ func (c *Client) attempt(ctx context.Context, rq request, attempt int) (*respons
 	if d, ok := parseRetryAfter(resp.header.Get("Retry-After"), c.now()); ok {
 		fe.RetryAfter, fe.hasRetryAfter = d, true
 	}
+	if d, err := http.ParseTime(resp.header.Get("Date")); err == nil {
+		fe.Date = d.UTC()
+	}
 	return resp, fe, nil
 }
 

@@ -64,6 +64,11 @@ type Error struct {
 	Retryable bool
 	// RetryAfter is the wait the server asked for, 0 if it did not ask.
 	RetryAfter time.Duration
+	// Date is the server's clock when it answered (its Date header, RFC
+	// 9110), zero when it sent none or an unreadable one: what a caller
+	// dates by the server's clock (a deletion learned from a 404 or 410)
+	// must not use its own, which may be ahead.
+	Date time.Time
 	// Attempts is how many requests were made.
 	Attempts int
 	// Err is the transport error when Status is 0. It never contains the request URL.

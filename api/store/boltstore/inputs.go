@@ -179,7 +179,7 @@ func putInput(tx *bolt.Tx, in store.Input, now time.Time) (store.PutResult, map[
 	}
 	res := store.ResultOf(exists, 1)
 	if owner != "" && owner != in.Subject && len(in.Withdrawal) > 0 {
-		if _, ok, err := inputHeadAt(tx, owner, in.Logical, pl.timeOf(owner)); err != nil {
+		if old, ok, err := inputHeadAt(tx, owner, in.Logical, pl.timeOf(owner)); err != nil {
 			return 0, nil, err
 		} else if ok {
 			moved := in
@@ -187,7 +187,7 @@ func putInput(tx *bolt.Tx, in store.Input, now time.Time) (store.PutResult, map[
 			if err := writeInput(tx, &pl, moved); err != nil {
 				return 0, nil, err
 			}
-			touched[owner] = store.Span{} // the whole first patient
+			touched[owner] = store.MovedAway(in, old.EffectiveAt, old.Payload)
 			res = store.PutMoved
 		}
 	}
@@ -459,11 +459,13 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		key := []byte(p.Subject)
 		v := b.Get(key)
 		var c int
+		var stored []byte
 		if v != nil {
 			old, err := decodePatient(p.Subject, v)
 			if err != nil {
 				return err
 			}
+			stored = old.Payload
 			c = store.ComparePatients(p, old)
 			if c <= 0 {
 				res = store.ResultOf(true, c)
@@ -478,7 +480,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 		if err := b.Put(key, encodePatient(p)); err != nil {
 			return err
 		}
-		return markDirty(tx, p.Subject, now, store.Span{})
+		return markDirty(tx, p.Subject, now, store.PatientChange(p, stored, v != nil))
 	})
 	if err != nil {
 		return 0, err

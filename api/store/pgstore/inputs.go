@@ -113,6 +113,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input, now time.Time) (st
 	// refuses only a strictly older version, and is read for what it
 	// changed.
 	exists, ownerHasCopy, decided, replacedHere := false, false, false, false
+	var ownerCopy store.Input // the owner's stored copy, when it has one
 	sp := store.SpanOf(in)
 	var keep int64 // the latest effective time of what this version replaces
 	decide := func(old store.Input, kept bool) (store.PutResult, bool) {
@@ -155,7 +156,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input, now time.Time) (st
 		old.LastUpdated, old.EffectiveAt = fromNanos(lu), fromNanos(eff)
 		exists = true
 		if subject == ownerSubject {
-			ownerHasCopy = true
+			ownerHasCopy, ownerCopy = true, old
 		}
 		if res, done := decide(old, false); done {
 			return res, nil, nil
@@ -183,7 +184,7 @@ func putInput(ctx context.Context, tx pgx.Tx, in store.Input, now time.Time) (st
 		if err := writeInput(ctx, tx, moved); err != nil {
 			return 0, nil, err
 		}
-		changed = append(changed, touched{ownerSubject, store.Span{}}) // the whole first patient
+		changed = append(changed, touched{ownerSubject, store.MovedAway(in, ownerCopy.EffectiveAt, ownerCopy.Payload)})
 		res = store.PutMoved
 	}
 	if err := writeInput(ctx, tx, in); err != nil {
@@ -345,7 +346,7 @@ func (s *Store) PutPatient(ctx context.Context, p store.Patient, now time.Time) 
 			p.Subject, p.VersionID, nanos(p.LastUpdated), nanos(p.FetchedAt), payload); err != nil {
 			return err
 		}
-		return markDirty(ctx, tx, p.Subject, now, store.Span{})
+		return markDirty(ctx, tx, p.Subject, now, store.PatientChange(p, old.Payload, exists))
 	})
 	if err != nil {
 		return 0, err

@@ -551,3 +551,72 @@ func testInputsFromExactly(t *testing.T, open func(t *testing.T) store.Store) {
 func describe(in store.Input) string {
 	return fmt.Sprintf("%s v%s %s %q", in.Logical, in.VersionID, in.EffectiveAt.UTC().Format(time.RFC3339Nano), in.Payload)
 }
+
+// A change that retracts or alters a blood gas is urgent whatever the
+// new version is: a withdrawal (inert, not urgent itself) of a version
+// that Replaced calls urgent marks its patient urgent, and so does a
+// newer version that moves such an input to another patient, for the
+// patient it leaves. A patient's new facts are urgent; a newer version
+// with the same facts is not. A device reading's correction is not.
+func testUrgentChanges(t *testing.T, open func(t *testing.T) store.Store) {
+	s := open(t)
+	ctx := t.Context()
+	urgentIfGas := func(_ time.Time, payload []byte) (store.Span, bool) {
+		return store.Span{Urgent: string(payload) == "gas"}, true
+	}
+	clear := func(subject string) {
+		t.Helper()
+		must(t, s.Commit(ctx, store.Change{Subject: subject, Generation: mustDirty(t, s, subject).Generation}, t0))
+	}
+	urgent := func(what, subject string, want bool) {
+		t.Helper()
+		if d := mustDirty(t, s, subject); d.Urgent != want {
+			t.Errorf("%s: Urgent = %v, want %v", what, d.Urgent, want)
+		}
+	}
+	gas := input("Patient/a", "Observation/g", "1", t0, t0, "gas")
+	gas.Urgent = true
+	etco2 := input("Patient/a", "Observation/e", "1", t0, t0, "etco2")
+	put(t, s, t0, gas, etco2)
+	clear("Patient/a")
+
+	withdrawn := input("Patient/a", "Observation/g", "2", t0.Add(time.Minute), t0, "withdrawn")
+	withdrawn.Inert, withdrawn.Replaced = true, urgentIfGas
+	put(t, s, t0, withdrawn)
+	urgent("a withdrawal of a blood gas", "Patient/a", true)
+	clear("Patient/a")
+
+	corrected := input("Patient/a", "Observation/e", "2", t0.Add(time.Minute), t0, "etco2")
+	corrected.Replaced = urgentIfGas
+	put(t, s, t0, corrected)
+	urgent("a device reading's correction", "Patient/a", false)
+	clear("Patient/a")
+
+	gas2 := input("Patient/a", "Observation/g2", "1", t0, t0, "gas")
+	gas2.Urgent = true
+	put(t, s, t0, gas2)
+	clear("Patient/a")
+	moved := input("Patient/b", "Observation/g2", "2", t0.Add(time.Minute), t0, "reading")
+	moved.Replaced, moved.Withdrawal = urgentIfGas, []byte("withdrawn")
+	if res := put(t, s, t0, moved); res[0] != store.PutMoved {
+		t.Fatalf("re-filed blood gas: %v, want PutMoved", res[0])
+	}
+	urgent("the patient a blood gas was moved away from", "Patient/a", true)
+	clear("Patient/a")
+	clear("Patient/b")
+
+	p := store.Patient{Subject: "Patient/c", VersionID: "1", LastUpdated: t0, Payload: []byte("male 1960")}
+	_, err := s.PutPatient(ctx, p, t0)
+	must(t, err)
+	urgent("a patient's first facts", "Patient/c", true)
+	clear("Patient/c")
+	p.VersionID, p.LastUpdated = "2", t0.Add(time.Minute)
+	_, err = s.PutPatient(ctx, p, t0)
+	must(t, err)
+	urgent("a patient's newer version with the same facts", "Patient/c", false)
+	clear("Patient/c")
+	p.VersionID, p.LastUpdated, p.Payload = "3", t0.Add(2*time.Minute), []byte("female 1960")
+	_, err = s.PutPatient(ctx, p, t0)
+	must(t, err)
+	urgent("a patient's changed facts", "Patient/c", true)
+}

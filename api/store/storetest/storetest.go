@@ -68,6 +68,7 @@ func Run(t *testing.T, open func(t *testing.T) store.Store) {
 		{"Dirty/SpanAndUrgency", testDirtySpan},
 		{"Dirty/End", testDirtyEnd},
 		{"Dirty/ReplacedSpan", testReplacedSpan},
+		{"Dirty/UrgentChanges", testUrgentChanges},
 		{"Commit/EmptyClearsMark", testEmptyCommit},
 		{"InputsFrom/Range", testInputsFrom},
 		{"InputsFrom/Exactly", testInputsFromExactly},
