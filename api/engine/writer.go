@@ -871,6 +871,57 @@ func (e *Engine) transaction(ctx context.Context, tx []byte, n int) (client.Tran
 	return resp, nil
 }
 
+// errDeviceMatchedAnother: the software Device's conditional create
+// answered 200 with a Device that does not carry its identifier (the
+// server ignores identifier in the condition).
+var errDeviceMatchedAnother = errors.New("the software Device's create, conditional on its identifier, matched a Device that does not carry it (the server seems to ignore identifier in conditions)")
+
+// deviceIsOurs reports whether the Device a conditional create matched
+// carries the identifier of q: the resource the server returned, or the
+// one read by its id when it returned none.
+func (e *Engine) deviceIsOurs(ctx context.Context, body []byte, id string, q url.Values) (bool, error) {
+	if !isResourceOf(body, "Device") {
+		if id == "" {
+			return false, nil
+		}
+		var err error
+		if body, _, err = e.cfg.Client.Read(ctx, "Device", id); err != nil {
+			return false, fmt.Errorf("engine: reading the Device the software Device's conditional create matched: %w", err)
+		}
+	}
+	system, value, _ := strings.Cut(q.Get("identifier"), "|")
+	return deviceCarries(body, system, value), nil
+}
+
+// isResourceOf reports whether body is a resource of type typ.
+func isResourceOf(body []byte, typ string) bool {
+	var m struct {
+		ResourceType string `json:"resourceType"`
+	}
+	return json.Unmarshal(body, &m) == nil && m.ResourceType == typ
+}
+
+// deviceCarries reports whether the Device in body carries the identifier
+// system|value.
+func deviceCarries(body []byte, system, value string) bool {
+	var d struct {
+		ResourceType string `json:"resourceType"`
+		Identifier   []struct {
+			System string `json:"system"`
+			Value  string `json:"value"`
+		} `json:"identifier"`
+	}
+	if json.Unmarshal(body, &d) != nil || d.ResourceType != "Device" {
+		return false
+	}
+	for _, id := range d.Identifier {
+		if id.System == system && id.Value == value {
+			return true
+		}
+	}
+	return false
+}
+
 // errDeviceUnresolved means the software Device, which every write cites,
 // can be neither created nor found: writes stop, and stay in the outbox,
 // until it can (see [Engine.writesCanGo]).
@@ -978,13 +1029,13 @@ func (e *Engine) deviceAmongMany(ctx context.Context, q url.Values, refused erro
 	})
 	switch {
 	case errors.Is(err, errDeviceScanEnd):
-		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources, and the search by that identifier returned more than %d Devices: %w", errDeviceUnresolved, deviceScan, refused)
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, did not resolve (%w), and the search by that identifier returned more than %d Devices", errDeviceUnresolved, refused, deviceScan)
 	case err != nil && client.IsRetryable(err):
 		return "", 0, fmt.Errorf("engine: searching the software Device by its identifier: %w", err)
 	case err != nil:
-		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources (%w), and searching Devices by that identifier failed: %w", errDeviceUnresolved, refused, err)
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, did not resolve (%w), and searching Devices by that identifier failed: %w", errDeviceUnresolved, refused, err)
 	case len(ids) == 0:
-		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, matched several resources, and none of the Devices a search by that identifier returned carries it (the server ignores the identifier parameter of Device); create one Device carrying it on the server, or fix the server's search: %w", errDeviceUnresolved, refused)
+		return "", 0, fmt.Errorf("%w: its create, conditional on its identifier, did not resolve (%w), and none of the Devices a search by that identifier returned carries it (the server ignores the identifier parameter of Device); create one Device carrying it on the server, or fix the server's search", errDeviceUnresolved, refused)
 	}
 	slices.SortFunc(ids, func(a, b string) int { return cmp.Or(cmp.Compare(len(a), len(b)), strings.Compare(a, b)) })
 	ids = slices.Compact(ids)
@@ -993,9 +1044,10 @@ func (e *Engine) deviceAmongMany(ctx context.Context, q url.Values, refused erro
 
 // serverDevice returns the server's reference to the software Device,
 // creating it (conditionally on its identifier) the first time. When
-// several resources match the condition (412), it uses the lowest id among
-// the Devices that carry the identifier, or fails with
-// [errDeviceUnresolved] ([Engine.deviceAmongMany]).
+// several resources match the condition (412), or the one matched (200)
+// does not carry the identifier (a server that ignores it in conditions),
+// it uses the lowest id among the Devices that carry the identifier, or
+// fails with [errDeviceUnresolved] ([Engine.deviceAmongMany]).
 func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 	e.mu.Lock()
 	ref := e.deviceRef
@@ -1011,15 +1063,26 @@ func (e *Engine) serverDevice(ctx context.Context) (string, error) {
 		if err != nil {
 			return "", fmt.Errorf("engine: %w", err)
 		}
-		_, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Device", raw, q)
+		body, meta, err := e.cfg.Client.ConditionalCreate(ctx, "Device", raw, q)
 		id := meta.ID
+		if err == nil && meta.Status == http.StatusOK {
+			// A match, not a create: a server that ignores identifier in
+			// the condition answers so with any one Device it holds.
+			var own bool
+			if own, err = e.deviceIsOurs(ctx, body, id, q); err != nil {
+				return "", err
+			}
+			if !own {
+				err = errDeviceMatchedAnother
+			}
+		}
 		switch {
-		case errors.Is(err, client.ErrPreconditionFailed):
+		case errors.Is(err, client.ErrPreconditionFailed), errors.Is(err, errDeviceMatchedAnother):
 			var n int
 			if id, n, err = e.deviceAmongMany(ctx, q, err); err != nil {
 				return "", err
 			}
-			e.log.WarnContext(ctx, "several Devices on the FHIR server carry the software Device's identifier; every result cites the one with the lowest id", "devices", n)
+			e.log.WarnContext(ctx, "the software Device's create, conditional on its identifier, did not resolve to one Device carrying it; every result cites the one with the lowest id among those that do", "devices", n)
 		case err != nil:
 			return "", err
 		}

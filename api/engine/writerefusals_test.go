@@ -143,6 +143,10 @@ func TestDeviceMatchingSeveral(t *testing.T) {
 		{"the server ignores identifier, one copy among other Devices", [][]byte{other, ours, other}, true, 1},
 		{"the server ignores identifier, two copies among other Devices", [][]byte{other, ours, ours}, true, 1},
 		{"the server ignores identifier, no copy among other Devices", [][]byte{other, other}, true, -1},
+		// One resource matches the ignored condition: the create answers
+		// 200 with it, and it must not be cited unless it is this build's.
+		{"the server ignores identifier and holds one other Device", [][]byte{other}, true, -1},
+		{"the server ignores identifier and holds only this build's Device", [][]byte{ours}, true, 0},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			ctx := context.Background()
