@@ -11,6 +11,7 @@ import (
 	"net"
 	"net/url"
 	"os"
+	"strconv"
 	"strings"
 	"time"
 
@@ -61,7 +62,22 @@ type Config struct {
 	ReadyGrace     time.Duration
 	MaxConcurrent  int
 	UI             UIConfig
+
+	// given names the flags the user set, on the command line or by their
+	// environment variables (ApplyEnv), so that a rule between settings
+	// refuses what the user asked for and never a default left alone. Bind
+	// makes it empty; a Config written in code (nil) counts a setting as
+	// given when it holds neither zero nor its default.
+	given map[string]bool
 }
+
+// Defaults of the settings whose default is not zero and which a rule
+// between settings refuses only when given (Config.given).
+const (
+	DefaultFHIRScope    = "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru"
+	DefaultMaxTxEntries = 8
+	DefaultReadyGrace   = 30 * time.Second
+)
 
 // UIConfig is the settings of the auditor's pages (--ui-*): off unless
 // --ui-listen is set, and then signed in by OpenID Connect or by a
@@ -91,6 +107,7 @@ type UIConfig struct {
 
 // Bind registers every flag on fs with its default.
 func (c *Config) Bind(fs *flag.FlagSet) {
+	c.given = map[string]bool{}
 	c.BindFHIR(fs)
 	fs.StringVar(&c.Listen, "listen", "127.0.0.1:8080", "HTTP address for the webhook, /healthz and /readyz")
 	fs.StringVar(&c.DataDir, "data-dir", "deadspace-data", "directory of the embedded store")
@@ -117,21 +134,24 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.StringVar(&c.TLSKey, "tls-key", "", "PEM private key for --tls-cert")
 	fs.StringVar(&c.GRPCClientCA, "grpc-client-ca", "", "PEM CA bundle: gRPC clients must present a certificate it signed (mutual TLS)")
 	fs.IntVar(&c.MaxConcurrent, "max-concurrent-requests", 256, "webhook requests handled at once; more are answered 503 with Retry-After")
-	fs.DurationVar(&c.ReadyGrace, "ready-grace", 30*time.Second, "how long the FHIR server may fail before /readyz reports not ready")
+	fs.DurationVar(&c.ReadyGrace, "ready-grace", DefaultReadyGrace, "how long the FHIR server may fail before /readyz reports not ready")
 }
 
 // BindFHIR registers the flags of the FHIR server connection: its base,
 // the bearer token or SMART Backend Services credentials, and the
 // transaction size. deadspace backfill takes the same ones.
 func (c *Config) BindFHIR(fs *flag.FlagSet) {
+	if c.given == nil {
+		c.given = map[string]bool{}
+	}
 	fs.StringVar(&c.FHIRBase, "fhir-base", "", "FHIR server base URL; without it the service runs standalone and keeps results in its store")
 	fs.StringVar(&c.FHIRTokenFile, "fhir-token-file", "", "file holding a bearer token for the FHIR server (or set DEADSPACE_FHIR_TOKEN)")
 	fs.StringVar(&c.FHIRTokenURL, "fhir-token-url", "", "OAuth 2.0 token endpoint for SMART Backend Services (client credentials with a signed JWT)")
 	fs.StringVar(&c.FHIRClientID, "fhir-client-id", "", "registered client_id for --fhir-token-url")
-	fs.StringVar(&c.FHIRScope, "fhir-scope", "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru", "scopes to request from --fhir-token-url")
+	fs.StringVar(&c.FHIRScope, "fhir-scope", DefaultFHIRScope, "scopes to request from --fhir-token-url")
 	fs.StringVar(&c.FHIRKeyFile, "fhir-private-key-file", "", "PEM private key (RSA for RS384, P-384 for ES384) that signs the client assertion")
 	fs.StringVar(&c.FHIRKeyID, "fhir-key-id", "", "kid of the matching public key registered with the authorization server")
-	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", 8, "largest transaction sent to the FHIR server; larger writes are split")
+	fs.IntVar(&c.MaxTxEntries, "fhir-max-transaction-entries", DefaultMaxTxEntries, "largest transaction sent to the FHIR server; larger writes are split")
 	c.UI.bind(fs)
 }
 
@@ -159,7 +179,7 @@ func (u *UIConfig) validate(tls bool) []error {
 		return nil
 	}
 	var errs []error
-	host, _, err := net.SplitHostPort(u.Listen)
+	host, _, err := listenAddr(u.Listen)
 	if err != nil {
 		errs = append(errs, fmt.Errorf("--ui-listen: %w", err))
 	} else if !tls && !loopback(host) {
@@ -243,6 +263,15 @@ func splitList(s string) []string {
 // reads the secrets that come only from the environment.
 func (c *Config) ApplyEnv(fs *flag.FlagSet, getenv func(string) string) error {
 	err := settings.ApplyEnv(fs, getenv)
+	if c.given == nil {
+		c.given = map[string]bool{}
+	}
+	fs.Visit(func(f *flag.Flag) { c.given[f.Name] = true })
+	fs.VisitAll(func(f *flag.Flag) {
+		if getenv(settings.EnvName(f.Name)) != "" {
+			c.given[f.Name] = true
+		}
+	})
 	if c.FHIRToken == "" {
 		c.FHIRToken = getenv("DEADSPACE_FHIR_TOKEN")
 	}
@@ -283,9 +312,7 @@ func (c *Config) Validate() error {
 	} else if len(c.WebhookSecret) < 16 {
 		errs = append(errs, errors.New("the webhook secret must be at least 16 characters"))
 	}
-	if _, _, err := net.SplitHostPort(c.Listen); err != nil {
-		errs = append(errs, fmt.Errorf("--listen: %w", err))
-	}
+	errs = append(errs, c.checkListeners()...)
 	if c.Store != "" {
 		// The URL may carry a password: name its scheme only.
 		u, err := url.Parse(c.Store)
@@ -336,10 +363,8 @@ func (c *Config) Validate() error {
 	if c.Heartbeat < 0 {
 		errs = append(errs, fmt.Errorf("--heartbeat-timeout must not be negative, got %v", c.Heartbeat))
 	}
+	errs = append(errs, c.checkNeedsFHIRBase()...)
 	if c.Register {
-		if c.FHIRBase == "" {
-			errs = append(errs, errors.New("--register-subscription needs --fhir-base"))
-		}
 		if u, err := url.Parse(c.PublicURL); c.PublicURL == "" || err != nil || u.Host == "" {
 			errs = append(errs, errors.New("--register-subscription needs --public-url, the URL the FHIR server reaches this service at"))
 		}
@@ -352,11 +377,6 @@ func (c *Config) Validate() error {
 	}
 	_, _, tlsErrs := c.serverTLS()
 	errs = append(errs, tlsErrs...)
-	if c.GRPCListen != "" {
-		if _, _, err := net.SplitHostPort(c.GRPCListen); err != nil {
-			errs = append(errs, fmt.Errorf("--grpc-listen: %w", err))
-		}
-	}
 	if c.MaxConcurrent < 1 {
 		errs = append(errs, fmt.Errorf("--max-concurrent-requests must be at least 1, got %d", c.MaxConcurrent))
 	}
@@ -399,6 +419,7 @@ func (c *Config) validateFHIR() []error {
 		}
 		c.FHIRToken = tok
 	}
+	errs = append(errs, c.checkNeedsTokenURL()...)
 	if c.FHIRTokenURL != "" {
 		if c.FHIRBase == "" {
 			errs = append(errs, errors.New("--fhir-token-url needs --fhir-base"))
@@ -417,4 +438,191 @@ func (c *Config) validateFHIR() []error {
 		errs = append(errs, fmt.Errorf("--fhir-max-transaction-entries must be at least 2, got %d", c.MaxTxEntries))
 	}
 	return errs
+}
+
+// gave reports whether the user set the flag name: on the command line or
+// by its environment variable when the Config came from Bind and ApplyEnv;
+// otherwise (a Config written in code) whether its value is neither zero
+// nor the flag's default, which is what isDefault says.
+func (c *Config) gave(name string, isDefault bool) bool {
+	if c.given != nil {
+		return c.given[name]
+	}
+	return !isDefault
+}
+
+// checkNeedsFHIRBase refuses the settings that only act on a FHIR server
+// when there is none (standalone): each would be silently ignored, so a
+// site that believes it polls, catches up, registers its Subscription or
+// authenticates would not. Those whose default is zero (off) are refused
+// when they are on; the others only when the user gave them, so that a
+// default never needs --fhir-base. --fhir-token-url is refused in
+// validateFHIR, which backfill shares.
+func (c *Config) checkNeedsFHIRBase() []error {
+	if c.FHIRBase != "" {
+		return nil
+	}
+	var errs []error
+	need := func(setting, why string) {
+		errs = append(errs, fmt.Errorf("%s needs --fhir-base: %s, and without a FHIR server there is none", setting, why))
+	}
+	if c.PollInterval > 0 {
+		need(fmt.Sprintf("--poll-interval %v", c.PollInterval), "it searches the FHIR server for changes")
+	}
+	if c.Heartbeat > 0 {
+		need(fmt.Sprintf("--heartbeat-timeout %v", c.Heartbeat), "it catches up by searching the FHIR server")
+	}
+	if c.gave("gap-grace", c.GapGrace == 0 || c.GapGrace == engine.DefaultGapGrace) {
+		need(fmt.Sprintf("--gap-grace %v", c.GapGrace), "it delays a catch-up search of the FHIR server")
+	}
+	if c.Register {
+		need("--register-subscription", "it creates the Subscription on the FHIR server")
+	}
+	if c.PublicURL != "" {
+		need(fmt.Sprintf("--public-url %q", c.PublicURL), "it is where the FHIR server sends notifications (for --register-subscription)")
+	}
+	if c.gave("ready-grace", c.ReadyGrace == 0 || c.ReadyGrace == DefaultReadyGrace) {
+		need(fmt.Sprintf("--ready-grace %v", c.ReadyGrace), "it is how long the FHIR server may fail before /readyz reports not ready")
+	}
+	if c.gave("fhir-max-transaction-entries", c.MaxTxEntries == 0 || c.MaxTxEntries == DefaultMaxTxEntries) {
+		need(fmt.Sprintf("--fhir-max-transaction-entries %d", c.MaxTxEntries), "it sizes the writes to the FHIR server")
+	}
+	switch {
+	case c.FHIRTokenFile != "":
+		need("--fhir-token-file", "the token is sent to the FHIR server")
+	case c.FHIRToken != "":
+		need("DEADSPACE_FHIR_TOKEN", "the token is sent to the FHIR server")
+	}
+	return errs
+}
+
+// checkNeedsTokenURL refuses SMART Backend Services settings given without
+// the token endpoint they are sent to: without --fhir-token-url none of
+// them is used, and the service would reach the FHIR server without the
+// authentication the site believes it configured.
+func (c *Config) checkNeedsTokenURL() []error {
+	if c.FHIRTokenURL != "" {
+		return nil
+	}
+	var errs []error
+	need := func(setting string) {
+		errs = append(errs, fmt.Errorf("%s needs --fhir-token-url: SMART Backend Services credentials are used only with a token endpoint", setting))
+	}
+	if c.FHIRClientID != "" {
+		need(fmt.Sprintf("--fhir-client-id %q", c.FHIRClientID))
+	}
+	if c.FHIRKeyFile != "" {
+		need("--fhir-private-key-file")
+	}
+	if c.FHIRKeyID != "" {
+		need(fmt.Sprintf("--fhir-key-id %q", c.FHIRKeyID))
+	}
+	if c.gave("fhir-scope", c.FHIRScope == "" || c.FHIRScope == DefaultFHIRScope) {
+		need(fmt.Sprintf("--fhir-scope %q", c.FHIRScope))
+	}
+	return errs
+}
+
+// listenAddr splits a listen address and checks its port: a number from 0
+// (any free port) to 65535. A service name such as "http", or no port at
+// all, is refused: the address is then not the one the operator reads.
+func listenAddr(addr string) (host string, port int, err error) {
+	host, p, err := net.SplitHostPort(addr)
+	if err != nil {
+		return "", 0, err
+	}
+	n, err := strconv.ParseUint(p, 10, 64)
+	if err != nil || n > 65535 {
+		return "", 0, fmt.Errorf("port %q of %q is not a number from 0 to 65535 (0: any free port)", p, addr)
+	}
+	return host, int(n), nil
+}
+
+// listener is one address the service listens on, with its flag.
+type listener struct {
+	flag, addr string
+	host       string
+	port       int
+}
+
+// checkListeners checks every listener's address (--listen, which also
+// serves /metrics, /healthz and /readyz; --grpc-listen; --ui-listen, whose
+// address UIConfig.validate checks), and refuses two that would bind one
+// host and port: the second would fail at start-up, after the store was
+// opened. Port 0 (any free port) never clashes.
+func (c *Config) checkListeners() []error {
+	var errs []error
+	var ls []listener
+	for _, l := range []struct {
+		flag, addr string
+		on         bool
+	}{
+		{"--listen", c.Listen, true},
+		{"--grpc-listen", c.GRPCListen, c.GRPCListen != ""},
+		{"--ui-listen", c.UI.Listen, c.UI.Listen != ""},
+	} {
+		if !l.on {
+			continue
+		}
+		host, port, err := listenAddr(l.addr)
+		if err != nil {
+			if l.flag != "--ui-listen" { // reported by UIConfig.validate
+				errs = append(errs, fmt.Errorf("%s: %w", l.flag, err))
+			}
+			continue
+		}
+		this := listener{flag: l.flag, addr: l.addr, host: host, port: port}
+		for _, other := range ls {
+			if overlap(this, other) {
+				errs = append(errs, fmt.Errorf("%s %s and %s %s are one address: each listener needs a port of its own", l.flag, l.addr, other.flag, other.addr))
+				break
+			}
+		}
+		ls = append(ls, this)
+	}
+	return errs
+}
+
+// overlap reports whether two listeners would bind the same host and port.
+// An empty host, 0.0.0.0 and :: listen on every address, so they overlap
+// every host of their port; localhost is the loopback addresses.
+func overlap(a, b listener) bool {
+	if a.port == 0 || b.port == 0 || a.port != b.port {
+		return false
+	}
+	if wildcard(a.host) || wildcard(b.host) {
+		return true
+	}
+	if strings.EqualFold(a.host, b.host) {
+		return true
+	}
+	ia, ib := hostIP(a.host), hostIP(b.host)
+	for _, x := range ia {
+		for _, y := range ib {
+			if x.Equal(y) {
+				return true
+			}
+		}
+	}
+	return false
+}
+
+// hostIP is the addresses a listener's host names, as far as they are
+// known without a resolver: its IP, or localhost's two.
+func hostIP(host string) []net.IP {
+	if strings.EqualFold(host, "localhost") {
+		return []net.IP{net.IPv4(127, 0, 0, 1), net.IPv6loopback}
+	}
+	if ip := net.ParseIP(host); ip != nil {
+		return []net.IP{ip}
+	}
+	return nil
+}
+
+func wildcard(host string) bool {
+	if host == "" {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsUnspecified()
 }
