@@ -285,7 +285,7 @@ func (s *Service) publishCodeSystem(ctx context.Context) {
 	pause := time.Second
 	for {
 		attempt, cancel := context.WithTimeout(ctx, 30*time.Second)
-		_, _, err := s.client.ConditionalCreate(attempt, "CodeSystem", s.codeSystem, q)
+		err := s.ensureCodeSystem(attempt, q)
 		cancel()
 		if err == nil || ctx.Err() != nil {
 			return
@@ -303,6 +303,63 @@ func (s *Service) publishCodeSystem(ctx context.Context) {
 		}
 		pause = min(2*pause, 5*time.Minute)
 	}
+}
+
+// ensureCodeSystem creates the CodeSystem conditionally on its url and
+// version, and makes sure what the server answered is it: a server that
+// ignores url or version in conditions answers 200 with any one
+// CodeSystem it holds, or 412 when it holds several. Then a search by url
+// and version, kept to the CodeSystems that really carry both, finds it,
+// or it is created without a condition (a restart finds it by the same
+// search).
+func (s *Service) ensureCodeSystem(ctx context.Context, q url.Values) error {
+	body, meta, err := s.client.ConditionalCreate(ctx, "CodeSystem", s.codeSystem, q)
+	switch {
+	case errors.Is(err, client.ErrPreconditionFailed):
+	case err != nil:
+		return err
+	case meta.Status != http.StatusOK:
+		return nil // created
+	default:
+		if !isCodeSystem(body) && meta.ID != "" {
+			if body, _, err = s.client.Read(ctx, "CodeSystem", meta.ID); err != nil {
+				return err
+			}
+		}
+		if carriesURLVersion(body, q.Get("url"), q.Get("version")) {
+			return nil
+		}
+	}
+	found := false
+	err = s.client.Search(ctx, "CodeSystem", q, func(entry json.RawMessage) error {
+		var en struct{ Resource json.RawMessage }
+		if json.Unmarshal(entry, &en) == nil && carriesURLVersion(en.Resource, q.Get("url"), q.Get("version")) {
+			found = true
+		}
+		return nil
+	})
+	if err != nil || found {
+		return err
+	}
+	s.log.WarnContext(ctx, "the FHIR server seems to ignore url or version in a CodeSystem's conditional create; creating the CodeSystem of the derived codes without a condition")
+	_, _, err = s.client.Create(ctx, "CodeSystem", s.codeSystem)
+	return err
+}
+
+func isCodeSystem(body []byte) bool {
+	var m struct {
+		ResourceType string `json:"resourceType"`
+	}
+	return json.Unmarshal(body, &m) == nil && m.ResourceType == "CodeSystem"
+}
+
+// carriesURLVersion reports whether body is a CodeSystem with this url
+// and version.
+func carriesURLVersion(body []byte, u, version string) bool {
+	var m struct {
+		ResourceType, URL, Version string
+	}
+	return json.Unmarshal(body, &m) == nil && m.ResourceType == "CodeSystem" && m.URL == u && m.Version == version
 }
 
 // storeOpenTimeout bounds connecting to PostgreSQL and migrating its

@@ -555,6 +555,11 @@ func (s *Server) match(typ string, q url.Values, strict bool) ([]version, error)
 				field := name
 				tests = append(tests, func(m map[string]any, _ version) bool { return tokenMatch(m, field, tokens) })
 			}
+		case "version":
+			for _, v := range values {
+				want := v
+				tests = append(tests, func(m map[string]any, _ version) bool { s, _ := m["version"].(string); return s == want })
+			}
 		case "subject", "patient", "url":
 			for _, v := range values {
 				field, want := name, v
