@@ -8,7 +8,7 @@ import (
 // derived value's identity: a change to an equation, a default or a pairing
 // rule must change it, so that results computed under different rules are
 // never mistaken for one another.
-const AlgorithmVersion = "2.2.0"
+const AlgorithmVersion = "2.3.0"
 
 // Kind is what a reading measures. Each kind has one canonical unit, and
 // every [Reading] value is in it; unit conversion is the adapter's job.
