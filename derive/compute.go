@@ -1097,7 +1097,7 @@ func days(d time.Duration) string {
 //     more than MaxGap from the next; a series that fails this is too
 //     sparse or gappy to judge ([DetectEpisodes] lists such readings).
 //     Readings that belonged to an episode, confirmed or cancelled, never
-//     enter a baseline, so an episode does not drag its own reference. A
+//     enter the baseline, so an episode does not drag its own reference. A
 //     baseline below 10 mm[Hg] is not an end-tidal baseline and is not
 //     judged against.
 //   - A reading is low when it is below baseline − threshold, and high when
@@ -1113,9 +1113,26 @@ func days(d time.Duration) string {
 //     silent monitor. After a cancellation the same reading is judged
 //     afresh, so it may open a new candidate.
 //   - A confirmed episode ends at the first reading back within
-//     Recover × threshold of the baseline. That reading joins the baseline
-//     but cannot open a new episode; the next can. One episode gives one
-//     finding however long it lasts.
+//     Recover × threshold of the baseline, on either side of it. That
+//     reading joins the baseline but cannot open a new episode; the next
+//     can. One episode gives one finding however long it lasts, unless a
+//     change of its own takes its place (next).
+//   - While a confirmed episode is open its readings form its level: the
+//     median of them by the baseline's rules (the Baseline window, else the
+//     last MinBaselineReadings within BaselineMax, else, right after the
+//     confirmation, those that confirmed it). A reading past the threshold
+//     of the level, min(Drop, DropFraction × level), opens a candidate
+//     against it, as against a baseline: a further fall during a fall (a
+//     further rise during a rise), or a crossing to the far side of the
+//     episode's baseline past its recovery band (a fall below it during a
+//     rise, a rise above it during a fall), whose readings must all stay
+//     past that band too. A move back towards the baseline that stops
+//     short of that is a partial recovery. Once confirmed, the candidate
+//     is a finding with the level as its baseline, and takes the place of
+//     the episode it opened in; cancelled, its readings join neither the
+//     level nor the baseline. A reading that could not be judged (the
+//     series too sparse or gappy) or that opens nothing joins the level.
+//     A level below 10 mm[Hg] is not judged against.
 //   - After a long episode the baseline may hold too few readings; no new
 //     episode opens until it has MinBaselineReadings again.
 //

@@ -71,3 +71,42 @@ func checkEpisodeEnds(t *testing.T, cfg derive.FallConfig, series []derive.Readi
 		}
 	}
 }
+
+// An episode whose place a further change took ends at that change's
+// onset, and a reading past the band on the far side of the baseline does
+// not end a rise (the detector's rules, design choices: see DetectFalls).
+func TestEpisodeEndWhenAnotherTakesItsPlace(t *testing.T) {
+	t.Parallel()
+	cases := []struct {
+		name    string
+		series  []derive.Reading
+		finding int // which finding
+		end     int // minutes
+		ongoing bool
+	}{
+		{"a lower level ends at the fall to near zero", minutes(cat(rep(38, 30), rep(29, 120), rep(2, 10))...), 0, 150, false},
+		{"the fall to near zero is ongoing", minutes(cat(rep(38, 30), rep(29, 120), rep(2, 10))...), 1, 159, true},
+		{"a rise ends at a fall below the baseline", minutes(cat(rep(38, 30), rep(50, 30), rep(26, 10))...), 0, 60, false},
+		// 33 for a minute is a candidate cancelled by the next reading: it
+		// neither recovers the rise (below 34) nor replaces it.
+		{"one reading below the baseline does not end a rise", minutes(cat(rep(38, 30), rep(50, 10), rep(33, 1), rep(50, 5))...), 0, 45, true},
+		// Within the band on the far side (34 < 36 < 38) is a recovery.
+		{"a rise recovers within the band below the baseline", minutes(cat(rep(38, 30), rep(50, 10), rep(36, 5))...), 0, 40, false},
+	}
+	cfg := derive.DefaultConfig().Fall
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			falls := derive.DetectFalls(cfg, tc.series)
+			if len(falls) <= tc.finding {
+				t.Fatalf("%d findings, want finding %d", len(falls), tc.finding)
+			}
+			end, ongoing := derive.EpisodeEnd(cfg, falls[tc.finding], tc.series)
+			if !end.Equal(at(tc.end)) || ongoing != tc.ongoing {
+				t.Fatalf("EpisodeEnd = %v (minute %v), ongoing %v; want minute %d, ongoing %v",
+					end, end.Sub(sampleTime).Minutes(), ongoing, tc.end, tc.ongoing)
+			}
+			checkEpisodeEnds(t, cfg, tc.series, falls)
+		})
+	}
+}

@@ -39,13 +39,11 @@ type FallScan struct {
 	minEp                          int
 	falls                          []Fall
 	sparse                         []Omission
-	// eligible are baseline-eligible readings in time order;
-	// eligible[head:inEnd] are in the Baseline window, and their values
-	// are in window, sorted; eligible[far:inEnd] are within BaselineMax.
-	eligible         []Reading
-	head, inEnd, far int
-	window           []float64
-	ep               *episode
+	// base holds the baseline-eligible readings: those of no episode.
+	base trail
+	// ep is the open episode, candidate or confirmed; next is a candidate
+	// opened against the level of ep while ep is confirmed.
+	ep, next *episode
 	// seen are the times of judged readings, episode or not, and
 	// seen[seenHead:] those within BaselineMax: sparseness is a property
 	// of the charting, not of which readings may form a baseline. first is
@@ -54,6 +52,75 @@ type FallScan struct {
 	seenHead int
 	first    int64
 	judged   bool
+}
+
+// trail is a trailing series a baseline or a level is the median of:
+// readings in time order; readings[head:inEnd] are in the Baseline window
+// before the reading being judged, and their values are in window,
+// sorted; readings[far:inEnd] are within BaselineMax.
+type trail struct {
+	readings         []Reading
+	head, inEnd, far int
+	window           []float64
+}
+
+// advance moves the windows to a reading at t (readings at t itself are
+// not in them).
+func (w *trail) advance(t, span, spanMax int64) {
+	for w.inEnd < len(w.readings) && w.readings[w.inEnd].AtMillis < t {
+		v := w.readings[w.inEnd].Value
+		i, _ := slices.BinarySearch(w.window, v)
+		w.window = slices.Insert(w.window, i, v)
+		w.inEnd++
+	}
+	from := addSat(t, -span)
+	for w.head < w.inEnd && w.readings[w.head].AtMillis < from {
+		i, _ := slices.BinarySearch(w.window, w.readings[w.head].Value)
+		w.window = slices.Delete(w.window, i, i+1)
+		w.head++
+	}
+	fromMax := addSat(t, -spanMax)
+	for w.far < w.inEnd && w.readings[w.far].AtMillis < fromMax {
+		w.far++
+	}
+}
+
+// median returns the median of the Baseline window when it holds need
+// readings, otherwise (sparse charting) of the last need readings within
+// BaselineMax, or of all of them when there are fewer but at least least;
+// from is the first of the readings it is the median of
+// (readings[from:inEnd]). ok is false when there are too few. It
+// allocates only in the sparse case, which holds a handful of readings:
+// it runs for every reading of a series.
+func (w *trail) median(need, least int) (m float64, from int, ok bool) {
+	if w.inEnd-w.head >= need {
+		return median(w.window), w.head, true
+	}
+	n := min(w.inEnd-w.far, need)
+	if n < max(least, 1) {
+		return 0, 0, false
+	}
+	from = w.inEnd - n
+	vals := make([]float64, 0, n)
+	for _, r := range w.readings[from:w.inEnd] {
+		vals = append(vals, r.Value)
+	}
+	return Median(vals), from, true
+}
+
+// cited returns a copy of readings[from:inEnd], for a finding to cite.
+func (w *trail) cited(from int) []Reading { return slices.Clone(w.readings[from:w.inEnd]) }
+
+// clone copies w with room for n more readings, without the readings
+// before far and head, which are never looked at again (far and head only
+// move forward).
+func (w *trail) clone(n int) trail {
+	drop := min(w.far, w.head)
+	return trail{
+		readings: cloneWithRoom(w.readings[drop:], n),
+		head:     w.head - drop, inEnd: w.inEnd - drop, far: w.far - drop,
+		window: cloneWithRoom(w.window, n),
+	}
 }
 
 // NewFallScan returns a scan that has seen no reading.
@@ -87,22 +154,13 @@ func (s *FallScan) CloneWithRoom(n int) *FallScan {
 	c := *s
 	c.falls = slices.Clone(s.falls)
 	c.sparse = nil
-	// Readings before far and times before seenHead are never looked at
-	// again: far and seenHead only move forward.
-	drop := min(s.far, s.head)
-	c.eligible = cloneWithRoom(s.eligible[drop:], n)
-	c.head, c.inEnd, c.far = s.head-drop, s.inEnd-drop, s.far-drop
-	c.window = cloneWithRoom(s.window, n)
+	c.base = s.base.clone(n)
 	// The last time is kept even when it is older than BaselineMax: the
 	// gap to the next reading is measured from it.
 	keep := min(s.seenHead, max(len(s.seen)-1, 0))
 	c.seen = cloneWithRoom(s.seen[keep:], n)
 	c.seenHead = s.seenHead - keep
-	if s.ep != nil {
-		ep := *s.ep
-		ep.readings = slices.Clone(s.ep.readings)
-		c.ep = &ep
-	}
+	c.ep, c.next = s.ep.clone(n), s.next.clone(n)
 	return &c
 }
 
@@ -126,23 +184,8 @@ func (s *FallScan) Add(r Reading) {
 		return
 	}
 	t := r.AtMillis
-	cfg := s.cfg
-	for s.inEnd < len(s.eligible) && s.eligible[s.inEnd].AtMillis < t {
-		v := s.eligible[s.inEnd].Value
-		i, _ := slices.BinarySearch(s.window, v)
-		s.window = slices.Insert(s.window, i, v)
-		s.inEnd++
-	}
-	from := addSat(t, -s.span)
-	for s.head < s.inEnd && s.eligible[s.head].AtMillis < from {
-		i, _ := slices.BinarySearch(s.window, s.eligible[s.head].Value)
-		s.window = slices.Delete(s.window, i, i+1)
-		s.head++
-	}
+	s.base.advance(t, s.span, s.spanMax)
 	fromMax := addSat(t, -s.spanMax)
-	for s.far < s.inEnd && s.eligible[s.far].AtMillis < fromMax {
-		s.far++
-	}
 	for s.seenHead < len(s.seen) && s.seen[s.seenHead] < fromMax {
 		s.seenHead++
 	}
@@ -154,44 +197,105 @@ func (s *FallScan) Add(r Reading) {
 
 	if ep := s.ep; ep != nil {
 		if ep.confirmed {
-			if ep.recovered(r.Value, cfg.Recover) {
-				s.ep = nil
-				s.eligible = append(s.eligible, r)
-			}
+			s.addToOpen(r, why)
 			return
 		}
-		last := ep.readings[len(ep.readings)-1].AtMillis
-		if t-last <= s.maxGap && ep.beyond(r.Value) {
-			ep.readings = append(ep.readings, r)
-			if t-ep.readings[0].AtMillis >= s.sustain && len(ep.readings) >= s.minEp {
-				s.falls = append(s.falls, ep.confirm())
-			}
+		if s.extend(ep, r) {
 			return
 		}
 		s.ep = nil // cancelled; judge r afresh below
 	}
 
-	base, baseFrom, ok := baseline(cfg, s.eligible, s.head, s.inEnd, s.far, s.window)
+	need := max(s.cfg.MinBaselineReadings, 1)
+	base, baseFrom, ok := s.base.median(need, need)
 	if why != "" {
 		s.sparse = append(s.sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
 	} else if ok && base >= minBaselineEtCO2 {
-		thr := threshold(cfg, base)
-		rise := r.Value > base+thr
-		if rise || r.Value < base-thr {
-			s.ep = &episode{
-				baseline:     base,
-				threshold:    thr,
-				rise:         rise,
-				baseReadings: slices.Clone(s.eligible[baseFrom:s.inEnd]),
-				readings:     []Reading{r},
+		thr := threshold(s.cfg, base)
+		if rise := r.Value > base+thr; rise || r.Value < base-thr {
+			s.ep = s.open(r, base, thr, rise, s.base.cited(baseFrom))
+			return
+		}
+	}
+	s.base.readings = append(s.base.readings, r)
+}
+
+// addToOpen judges r while the episode s.ep is confirmed: it may extend or
+// cancel the candidate s.next, end the episode by recovery, open a
+// candidate against the episode's level, or join that level.
+func (s *FallScan) addToOpen(r Reading, why string) {
+	ep := s.ep
+	ep.level.advance(r.AtMillis, s.span, s.spanMax)
+	if c := s.next; c != nil {
+		if s.extend(c, r) {
+			if c.confirmed { // it takes the place of the episode it opened in
+				s.ep, s.next = c, nil
 			}
-			if s.sustain <= 0 && s.minEp <= 1 {
-				s.falls = append(s.falls, s.ep.confirm())
+			return
+		}
+		s.next = nil // cancelled; judge r afresh below
+	}
+	if ep.recovered(r.Value, s.cfg.Recover) {
+		s.ep = nil
+		s.base.readings = append(s.base.readings, r)
+		return
+	}
+	if why != "" {
+		s.sparse = append(s.sparse, Omission{Ref: r.Ref, Reason: ReasonTooSparse, Detail: why})
+	} else if level, from, ok := ep.level.median(max(s.cfg.MinBaselineReadings, 1), s.minEp); ok && level >= minBaselineEtCO2 {
+		thr := threshold(s.cfg, level)
+		rise := r.Value > level+thr
+		// A change towards the episode's baseline that stops short of the
+		// far side of its recovery band is a partial recovery, not a
+		// change of its own.
+		across := rise != ep.rise
+		if (rise || r.Value < level-thr) && (!across || ep.beyondBand(r.Value, rise, s.cfg.Recover)) {
+			c := s.open(r, level, thr, rise, ep.level.cited(from))
+			if across {
+				c.across, c.edge = true, ep.bandEdge(rise, s.cfg.Recover)
+			}
+			if c.confirmed { // it takes the place of the episode it opened in
+				s.ep = c
+			} else {
+				s.next = c
 			}
 			return
 		}
 	}
-	s.eligible = append(s.eligible, r)
+	ep.level.readings = append(ep.level.readings, r)
+}
+
+// open returns the candidate episode r opens, a rise or a fall past thr
+// from ref (a baseline, or an episode's level, the median of cited),
+// confirmed at once when the configuration confirms at onset.
+func (s *FallScan) open(r Reading, ref, thr float64, rise bool, cited []Reading) *episode {
+	ep := &episode{
+		baseline:     ref,
+		threshold:    thr,
+		rise:         rise,
+		baseReadings: cited,
+		readings:     []Reading{r},
+	}
+	if s.sustain <= 0 && s.minEp <= 1 {
+		s.falls = append(s.falls, ep.confirm())
+	}
+	return ep
+}
+
+// extend adds r to the candidate ep when r is past its threshold and
+// within MaxGap of the last reading, confirming it once it has lasted
+// Sustain with MinEpisodeReadings readings; it reports false when r
+// cancels the candidate instead.
+func (s *FallScan) extend(ep *episode, r Reading) bool {
+	last := ep.readings[len(ep.readings)-1].AtMillis
+	if r.AtMillis-last > s.maxGap || !ep.beyond(r.Value) {
+		return false
+	}
+	ep.readings = append(ep.readings, r)
+	if r.AtMillis-ep.readings[0].AtMillis >= s.sustain && len(ep.readings) >= s.minEp {
+		s.falls = append(s.falls, ep.confirm())
+	}
+	return true
 }
 
 // sparseness says why the charting before time t is too sparse or gappy to
@@ -214,29 +318,6 @@ func (s *FallScan) sparseness(t int64) string {
 	return ""
 }
 
-// baseline returns the baseline and the first of the readings it is the
-// median of (eligible[from:inEnd]): the Baseline window when it holds
-// MinBaselineReadings, otherwise (sparse charting) the last
-// MinBaselineReadings eligible readings within BaselineMax. ok is false
-// when neither has enough readings: a baseline still forming, or emptied
-// by a long episode. It allocates only in the sparse case, which holds a
-// handful of readings: it runs for every reading of a series.
-func baseline(cfg FallConfig, eligible []Reading, head, inEnd, far int, window []float64) (base float64, from int, ok bool) {
-	need := max(cfg.MinBaselineReadings, 1)
-	if inEnd-head >= need {
-		return median(window), head, true
-	}
-	if inEnd-far < need {
-		return 0, 0, false
-	}
-	from = inEnd - need
-	vals := make([]float64, 0, need)
-	for _, r := range eligible[from:inEnd] {
-		vals = append(vals, r.Value)
-	}
-	return Median(vals), from, true
-}
-
 // threshold is how far from the baseline a reading must be to be low or
 // high: min(Drop, DropFraction × baseline).
 func threshold(cfg FallConfig, base float64) float64 {
@@ -247,29 +328,72 @@ func threshold(cfg FallConfig, base float64) float64 {
 type episode struct {
 	baseline, threshold float64
 	rise                bool
-	baseReadings        []Reading
-	readings            []Reading // onset to the latest reading, while a candidate
-	confirmed           bool
+	// across marks a candidate that crosses the baseline of the confirmed
+	// episode it opened in (a fall during a rise, a rise during a fall):
+	// a reading is past it only when it is also at or past edge, the far
+	// side of that baseline's recovery band.
+	across       bool
+	edge         float64
+	baseReadings []Reading
+	readings     []Reading // onset to the latest reading, while a candidate
+	confirmed    bool
+	// level holds, once confirmed, the episode's readings from onset on
+	// that neither ended it nor belonged to a candidate opened in it: the
+	// level it settled at, which a further change is judged against.
+	level trail
+}
+
+// clone copies e (nil stays nil) with room for n more readings.
+func (e *episode) clone(n int) *episode {
+	if e == nil {
+		return nil
+	}
+	c := *e
+	c.readings = slices.Clone(e.readings)
+	if e.confirmed {
+		c.level = e.level.clone(n)
+	}
+	return &c
 }
 
 // beyond reports whether v is past the threshold in the episode's direction.
 func (e *episode) beyond(v float64) bool {
 	if e.rise {
-		return v > e.baseline+e.threshold
+		return v > e.baseline+e.threshold && (!e.across || v >= e.edge)
 	}
-	return v < e.baseline-e.threshold
+	return v < e.baseline-e.threshold && (!e.across || v <= e.edge)
 }
 
 // recovered reports whether v is back within recover × threshold of the
-// baseline, which ends a confirmed episode.
+// baseline, on either side, which ends a confirmed episode. A reading past
+// that band on the far side of the baseline (a fall below it during a
+// rise, a rise above it during a fall) has not recovered: it is a change
+// of its own.
 func (e *episode) recovered(v, recover float64) bool {
-	if e.rise {
-		return v < e.baseline+recover*e.threshold
-	}
-	return v > e.baseline-recover*e.threshold
+	band := recover * e.threshold
+	return v > e.baseline-band && v < e.baseline+band
 }
 
-// confirm fixes the finding from the readings so far.
+// bandEdge is the edge of the recovery band on the side of the baseline a
+// rise (up) or a fall (!up) reaches beyond.
+func (e *episode) bandEdge(up bool, recover float64) float64 {
+	if up {
+		return e.baseline + recover*e.threshold
+	}
+	return e.baseline - recover*e.threshold
+}
+
+// beyondBand reports whether v, not recovered, is at or past the recovery
+// band on the side a rise (up) or a fall (!up) reaches.
+func (e *episode) beyondBand(v float64, up bool, recover float64) bool {
+	if up {
+		return v >= e.bandEdge(true, recover)
+	}
+	return v <= e.bandEdge(false, recover)
+}
+
+// confirm fixes the finding from the readings so far, and starts the
+// episode's level from them.
 func (e *episode) confirm() Fall {
 	e.confirmed = true
 	vals := make([]float64, len(e.readings))
@@ -281,7 +405,7 @@ func (e *episode) confirm() Fall {
 	if e.rise {
 		notes = riseNotes()
 	}
-	return Fall{
+	f := Fall{
 		Onset:            e.readings[0].At(),
 		Confirmed:        e.readings[len(e.readings)-1].At(),
 		Baseline:         e.baseline,
@@ -292,6 +416,9 @@ func (e *episode) confirm() Fall {
 		EpisodeReadings:  slices.Clone(e.readings),
 		Notes:            notes,
 	}
+	e.level = trail{readings: e.readings}
+	e.readings, e.baseReadings = nil, nil
+	return f
 }
 
 // riseNotes names the usual causes of a sustained rise of end-tidal CO2,

@@ -33,7 +33,8 @@ func resumed(cfg derive.FallConfig, series []derive.Reading, at func(i int) bool
 
 // fallSeries are series that exercise every state the scan keeps: a
 // baseline forming, candidates cancelled and confirmed, episodes open
-// across a save, recovery, gaps, sparse charting and implausible values.
+// across a save, candidates opened in them, recovery, gaps, sparse
+// charting and implausible values.
 func fallSeries() map[string][]derive.Reading {
 	series := map[string][]derive.Reading{
 		"two episodes": minutes(cat(rep(38, 20), rep(25, 10), rep(38, 15), rep(26, 10), rep(38, 5))...),
@@ -42,6 +43,11 @@ func fallSeries() map[string][]derive.Reading {
 			slices.Repeat([]float64{37, 38}, 10), rep(0, 6), rep(38, 8),
 		)...),
 		"rise then a long fall": minutes(cat(rep(30, 40), rep(45, 20), rep(30, 30), rep(12, 200), rep(30, 40))...),
+		// Candidates opened against an open episode's level, cancelled
+		// and confirmed: a rise, an outlier below the baseline, a fall to
+		// near zero, a level of 30, a further fall.
+		"changes during open episodes": minutes(cat(rep(38, 30), rep(52, 60), rep(33, 2), rep(52, 10), rep(1, 10),
+			rep(30, 40), rep(14, 10), rep(12, 100), rep(30, 20))...),
 	}
 	// Sparse and gappy: every 20 minutes, then a gap, then every minute.
 	var sparse []derive.Reading
@@ -109,23 +115,40 @@ func TestFallScanResumedEqualsFull(t *testing.T) {
 }
 
 // A saved scan holds what the rest of the series can need, not the series:
-// after 12 hours of minute readings it keeps about BaselineMax of them.
+// after 12 hours of minute readings it keeps about BaselineMax of them,
+// whether the series was steady or one episode was open all along (its
+// level keeps only the readings it can still need, as the baseline does).
 func TestFallScanCloneIsBounded(t *testing.T) {
 	t.Parallel()
 	cfg := derive.DefaultConfig().Fall
-	s := derive.NewFallScan(cfg)
-	for _, r := range minutes(rep(38, 12*60)...) {
-		s.Add(r)
-	}
-	c := s.Clone()
-	// The copy goes on as the original does, and neither disturbs the other.
-	next := rd(derive.KindEtCO2, 12*time.Hour, 20)
-	s.Add(next)
-	c.Add(next)
-	if !reflect.DeepEqual(s.Falls(), c.Falls()) {
-		t.Errorf("original and copy differ after the same reading")
-	}
-	if n := derive.HeldReadings(c); n > 2*(int(cfg.BaselineMax/time.Minute)+2) {
-		t.Errorf("the copy holds %d readings, want at most about %v of minute readings", n, cfg.BaselineMax)
+	for _, tc := range []struct {
+		name   string
+		series []derive.Reading
+		falls  int // after five readings of 2 at the end
+	}{
+		{"steady", minutes(rep(38, 12*60)...), 1},
+		{"an episode open for 12 hours", minutes(cat(rep(38, 30), rep(25, 12*60-30))...), 2},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
+			s := derive.NewFallScan(cfg)
+			for _, r := range tc.series {
+				s.Add(r)
+			}
+			c := s.Clone()
+			if n := derive.HeldReadings(c); n > 2*(int(cfg.BaselineMax/time.Minute)+2) {
+				t.Errorf("the copy holds %d readings, want at most about %v of minute readings", n, cfg.BaselineMax)
+			}
+			// The copy goes on as the original does, and neither disturbs
+			// the other.
+			for i := range 5 {
+				next := rd(derive.KindEtCO2, 12*time.Hour+time.Duration(i)*time.Minute, 2)
+				s.Add(next)
+				c.Add(next)
+			}
+			if !reflect.DeepEqual(s.Falls(), c.Falls()) || len(c.Falls()) != tc.falls {
+				t.Errorf("original and copy differ after the same readings, or found other than %d: %+v", tc.falls, c.Falls())
+			}
+		})
 	}
 }

@@ -107,13 +107,34 @@ func FuzzDetectFalls(f *testing.F) {
 		rise = append(rise, encodeReading(derive.KindEtCO2, int16(i*300), v)...)
 	}
 	f.Add(rise)
+	var further []byte // a rise never recovered, then a fall to near zero
+	for i := range 60 {
+		v := 38.0
+		switch {
+		case i >= 40:
+			v = 1
+		case i >= 20:
+			v = 52
+		}
+		further = append(further, encodeReading(derive.KindEtCO2, int16(i*60), v)...)
+	}
+	f.Add(further)
 	f.Fuzz(func(t *testing.T, data []byte) {
 		series := decodeReadings(data)
 		cfg := derive.DefaultConfig().Fall
 		full := derive.DetectFalls(cfg, series)
-		for _, x := range full {
+		for i, x := range full {
 			wrongSign := (x.Rise && !(x.Change > 0)) || (!x.Rise && !(x.Change < 0))
-			if wrongSign || x.Confirmed.Sub(x.Onset) < cfg.Sustain || len(x.BaselineReadings) < cfg.MinBaselineReadings ||
+			// A finding that took the place of an open episode is judged
+			// against that episode's level, which may hold only the
+			// readings that confirmed it.
+			least := cfg.MinBaselineReadings
+			if i > 0 {
+				if end, ongoing := derive.EpisodeEnd(cfg, full[i-1], series); !ongoing && end.Equal(x.Onset) {
+					least = min(least, cfg.MinEpisodeReadings)
+				}
+			}
+			if wrongSign || x.Confirmed.Sub(x.Onset) < cfg.Sustain || len(x.BaselineReadings) < least ||
 				len(x.EpisodeReadings) < cfg.MinEpisodeReadings {
 				t.Errorf("finding %+v", x)
 			}

@@ -337,7 +337,9 @@ type Fall struct {
 	// Confirmed is when the fall had lasted the sustain time; the finding is
 	// fixed from this moment, so a streaming caller and a batch caller agree.
 	Confirmed time.Time
-	// Baseline is the median of the baseline readings, mm[Hg].
+	// Baseline is the median of the baseline readings, mm[Hg]: for a
+	// finding that took the place of an open episode, that episode's
+	// level, and its readings are the baseline readings.
 	Baseline float64
 	// Level is the median of the readings from onset to confirmation, mm[Hg].
 	Level float64
@@ -440,7 +442,8 @@ type FallConfig struct {
 	// needs, however long it lasted.
 	MinEpisodeReadings int
 	// Recover ends an episode: a reading back within this fraction of the
-	// drop threshold from the baseline closes it, so one episode gives one
-	// finding however long it lasts.
+	// drop threshold from the baseline, on either side, closes it, so one
+	// episode gives one finding however long it lasts (unless a further
+	// change from the level it settled at takes its place).
 	Recover float64
 }

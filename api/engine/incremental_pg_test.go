@@ -47,8 +47,9 @@ func (r sharedRangeCounting) Commit(ctx context.Context, c store.Change, now tim
 }
 
 // TestReplicasAgreeWithReplay: two replicas share PostgreSQL; each batch
-// of the streams of TestIncrementalAgreesWithReplay and
-// TestIncrementalAgreesWithReplayForEveryKind reaches one of them, drawn at
+// of the streams of TestIncrementalAgreesWithReplay,
+// TestIncrementalAgreesWithReplayForEveryKind and
+// TestIncrementalAgreesWithReplayDuringOpenEpisodes reaches one of them, drawn at
 // random, and one or both evaluate after it. A replica resumes its fall
 // detector from the state it kept only while no other replica evaluated
 // the patient since (store.Dirty.Cleared): whatever the interleaving, the
@@ -62,6 +63,7 @@ func TestReplicasAgreeWithReplay(t *testing.T) {
 	}{
 		{"falls and rises", fallsAndRises, 4},
 		{"every kind", everyKind, 2},
+		{"changes during open episodes", changesDuringOpenEpisodes, 4},
 	} {
 		for seed := range uint64(5) {
 			t.Run(fmt.Sprintf("%s/order %d", c.name, seed), func(t *testing.T) {

@@ -113,6 +113,51 @@ func fallsAndRises() (items []arrival, base time.Time, subjects []string) {
 	return items, base, subjects
 }
 
+// TestIncrementalAgreesWithReplayDuringOpenEpisodes: the detector's saved
+// state holds an open episode, its level and a candidate opened against
+// that level; resumed from it, the live engine must find the further fall,
+// the rise and the fall below the baseline that replay finds.
+func TestIncrementalAgreesWithReplayDuringOpenEpisodes(t *testing.T) {
+	t.Parallel()
+	items, base, subjects := changesDuringOpenEpisodes()
+	agreesWithReplay(t, items, base, subjects, 4, 3)
+}
+
+// changesDuringOpenEpisodes is one patient's six hours of end-tidal
+// readings: 38, a fall to a level of 29 that never recovers, a fall to 2
+// from it (a disconnection), back to 29, a rise to 45 that never recovers,
+// a single reading of 20, then a fall to 20, below the baseline of the
+// rise; and three blood gases 20 minutes late. The values are invented.
+func changesDuringOpenEpisodes() (items []arrival, base time.Time, subjects []string) {
+	base = time.Date(2026, 1, 11, 0, 0, 0, 0, time.UTC)
+	add := func(raw json.RawMessage, at time.Duration) { items = append(items, arrival{raw, at}) }
+	const subj = "Patient/open1"
+	for m := range 6 * 60 {
+		at := base.Add(time.Duration(m) * time.Minute)
+		v := 37.5 + float64(m%3)/2
+		switch {
+		case m >= 60 && m < 210:
+			v = 29 + float64(m%2)/2
+		case m >= 210 && m < 225:
+			v = 2
+		case m >= 225 && m < 285:
+			v = 29
+		case m == 300:
+			v = 20
+		case m >= 285 && m < 330:
+			v = 45 + float64(m%2)
+		case m >= 330:
+			v = 20
+		}
+		add(obsOf(subj, fmt.Sprintf("open1-et%d", m), "1", "final", "19891-1", "mm[Hg]", v, at, at.Add(time.Minute)), time.Duration(m)*time.Minute)
+	}
+	for g, m := range []int{90, 240, 310} {
+		at := base.Add(time.Duration(m) * time.Minute)
+		add(obsOf(subj, fmt.Sprintf("open1-gas%d", g), "1", "final", "2019-8", "mm[Hg]", 42+float64(g), at, at.Add(20*time.Minute)), time.Duration(m+20)*time.Minute)
+	}
+	return items, base, []string{subj}
+}
+
 // arrival is one resource and when it reaches the service.
 type arrival struct {
 	raw     json.RawMessage

@@ -79,7 +79,8 @@ type Value struct {
 
 // Finding is one end-tidal CO2 fall, or rise above the baseline. End is
 // when its episode ended ([derive.EpisodeEnd]): the first end-tidal reading
-// back within the recovery band, or, when Ongoing, the last reading so far.
+// back within the recovery band, the onset of a finding that took its place,
+// or, when Ongoing, the last reading so far.
 // It is the page's: the written finding covers onset to confirmation.
 type Finding struct {
 	Rise                  bool
