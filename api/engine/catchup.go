@@ -98,7 +98,10 @@ func (e *Engine) catchUpLoop(ctx context.Context) {
 			if n := e.missing.expire(time.Now(), e.cfg.GapGrace); n > 0 {
 				e.gapFound(ctx, n)
 			}
-			continue
+			if !e.readsDeferred.due(e.now()) {
+				continue
+			}
+			trigger = "read-deferred"
 		case trigger = <-e.catch:
 		case <-poll:
 			trigger = "poll"
@@ -468,13 +471,18 @@ func (e *Engine) gapFound(ctx context.Context, events uint64) {
 // answered 2xx only when nothing can be lost. A resource the server no
 // longer has (404 Not Found, 410 Gone: deleted) is applied as a deletion
 // (Deleted), learned now; it is not an error, or the sender would send the
-// notification again for ever.
+// notification again for ever. The reads together take at most the fetch
+// budget (Config.FetchBudget); one that does not fit in it, or fails
+// transiently, is deferred: Fetch returns a [*ReadDeferred] at once and a
+// catch-up search runs after its RetryAfter (fetchbudget.go).
 func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 	if e.cfg.Client == nil {
 		return Receipt{}, fmt.Errorf("%w: id-only notifications need a FHIR server to read from (--fhir-base)", ErrInvalid)
 	}
 	var resources []json.RawMessage
 	var gone []Deletion
+	readCtx, cancel := context.WithTimeout(ctx, e.cfg.FetchBudget)
+	defer cancel()
 	for _, ref := range refs {
 		typ, id, ok := notify.RelativeRef(ref, "")
 		if !ok {
@@ -483,7 +491,7 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 		if typ != "Observation" && typ != "Patient" {
 			continue
 		}
-		body, _, err := e.cfg.Client.Read(ctx, typ, id)
+		body, _, err := e.cfg.Client.Read(readCtx, typ, id)
 		if errors.Is(err, client.ErrNotFound) || errors.Is(err, client.ErrGone) {
 			e.log.InfoContext(ctx, "a resource a notification named is not on the server; taken as deleted", "type", typ, "err", err)
 			d := Deletion{Ref: typ + "/" + id, How: "a read of it answered " + readStatus(err)}
@@ -494,7 +502,7 @@ func (e *Engine) Fetch(ctx context.Context, refs []string) (Receipt, error) {
 			continue
 		}
 		if err != nil {
-			return Receipt{}, fmt.Errorf("engine: fetch focus: %w", err)
+			return Receipt{}, e.readFailed(ctx, readCtx, err)
 		}
 		resources = append(resources, body)
 	}

@@ -110,6 +110,11 @@ type Config struct {
 	// HeartbeatTimeout triggers a catch-up when no notification arrived for
 	// that long; zero disables it.
 	HeartbeatTimeout time.Duration
+	// FetchBudget is how long the reads of an id-only notification
+	// (Fetch) may take while its sender waits for the answer, retries and
+	// Retry-After waits included; a read that does not fit is deferred
+	// (ReadDeferred). DefaultFetchBudget when zero, at most MaxFetchBudget.
+	FetchBudget time.Duration
 	// GapGrace is how long events that a notification skipped over may take
 	// to arrive before a catch-up search looks for them (notifications sent
 	// at once over several connections arrive out of order).
@@ -211,6 +216,9 @@ type Engine struct {
 	// missing holds the subscription events skipped over and not arrived
 	// yet.
 	missing missingEvents
+	// readsDeferred is the catch-up search owed to reads given up within
+	// the fetch budget (fetchbudget.go).
+	readsDeferred deferredCatchUp
 	// noFacts holds the patients whose Patient read the server refused
 	// for good, for a while (fetchPatient).
 	noFacts factsUnavailable
@@ -287,6 +295,12 @@ func New(cfg Config) (*Engine, error) {
 	}
 	if cfg.OwnerGrace == 0 {
 		cfg.OwnerGrace = DefaultOwnerGrace
+	}
+	if cfg.FetchBudget < 0 || cfg.FetchBudget > MaxFetchBudget {
+		errs = append(errs, fmt.Errorf("engine: fetch budget must be between 0s and %v, got %v", MaxFetchBudget, cfg.FetchBudget))
+	}
+	if cfg.FetchBudget == 0 {
+		cfg.FetchBudget = DefaultFetchBudget
 	}
 	if cfg.GapGrace < 0 {
 		errs = append(errs, fmt.Errorf("engine: gap grace must not be negative, got %v", cfg.GapGrace))

@@ -29,7 +29,7 @@ var (
 	// Observation.
 	entryStatuses = []string{"final", "amended", "entered-in-error"}
 	// triggers are the reasons the engine searches the server.
-	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "subscription-restart", "retry", "rest-hook"}
+	triggers = []string{"start", "poll", "heartbeat-missed", "gap", "subscription-restart", "retry", "rest-hook", "read-deferred"}
 	// evaluationData are what an evaluation's new data held: a blood gas,
 	// or device readings and patient facts only.
 	evaluationData = []string{"blood-gas", "device"}

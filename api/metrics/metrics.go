@@ -32,7 +32,7 @@
 //	| deadspace_store_write_calls_total          | counter   |                    | Embedded store only: write calls those transactions ran (concurrent ones share one).       |
 //	| deadspace_store_busy_seconds_total         | counter   |                    | Embedded store only: time its writer spent in transactions, syncs included. Its rate is the share of time the writer is busy: near 1, the webhook is at the most it can accept. |
 //	| deadspace_subscription_gaps_total          | counter   |                    | Gaps in subscription event numbers, i.e. notifications that never arrived.                |
-//	| deadspace_catchups_total                   | counter   | trigger            | Catch-up searches started: start, poll, heartbeat-missed, gap, subscription-restart, retry, rest-hook. |
+//	| deadspace_catchups_total                   | counter   | trigger            | Catch-up searches started: start, poll, heartbeat-missed, gap, subscription-restart, retry, rest-hook, read-deferred. |
 //	| deadspace_watch_subscribers                | gauge     |                    | Clients currently watching the derivation feed.                                           |
 //	| deadspace_webhook_requests_total           | counter   | status             | Webhook requests answered, by HTTP status code.                                           |
 //	| deadspace_webhook_request_duration_seconds | histogram |                    | Time to answer a webhook request.                                                         |

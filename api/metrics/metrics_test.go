@@ -203,6 +203,8 @@ func TestEngineHooksCount(t *testing.T) {
 			func(m *Metrics) float64 { return testutil.ToFloat64(m.gaps) }, 2},
 		{"catch-ups by trigger", func(h engine.Hooks) { h.CatchUp("heartbeat-missed"); h.CatchUp("start") },
 			func(m *Metrics) float64 { return testutil.ToFloat64(m.catchUps.WithLabelValues("heartbeat-missed")) }, 1},
+		{"catch-ups owed to reads deferred for the fetch budget", func(h engine.Hooks) { h.CatchUp("read-deferred"); h.CatchUp("gap") },
+			func(m *Metrics) float64 { return testutil.ToFloat64(m.catchUps.WithLabelValues("read-deferred")) }, 1},
 		{"dead letters", func(h engine.Hooks) { h.DeadLetter() },
 			func(m *Metrics) float64 { return testutil.ToFloat64(m.deadLettered) }, 1},
 		{"write outcomes", func(h engine.Hooks) {

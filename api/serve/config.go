@@ -46,6 +46,7 @@ type Config struct {
 	Retention      time.Duration
 	Heartbeat      time.Duration
 	GapGrace       time.Duration
+	FetchBudget    time.Duration
 	Register       bool
 	PublicURL      string
 	LogLevel       string
@@ -126,6 +127,7 @@ func (c *Config) Bind(fs *flag.FlagSet) {
 	fs.DurationVar(&c.Retention, "retention", 24*time.Hour, "how long inputs are kept, by their effective time")
 	fs.DurationVar(&c.Heartbeat, "heartbeat-timeout", 0, "catch up by search when no notification arrived for this long (0: off)")
 	fs.DurationVar(&c.GapGrace, "gap-grace", engine.DefaultGapGrace, "how long subscription events a notification skipped over may take to arrive before a catch-up search looks for them (0: the default)")
+	fs.DurationVar(&c.FetchBudget, "fetch-budget", engine.DefaultFetchBudget, "how long the reads of an id-only notification may take while its sender waits, retries and Retry-After waits included; a read that does not fit is answered 503 with Retry-After and caught up later (at most "+engine.MaxFetchBudget.String()+"; 0: the default)")
 	fs.BoolVar(&c.Register, "register-subscription", false, "create or re-activate the rest-hook Subscription on the FHIR server at start-up")
 	fs.StringVar(&c.PublicURL, "public-url", "", "URL the FHIR server reaches this service at (for --register-subscription), e.g. https://deadspace.example/")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
@@ -359,6 +361,9 @@ func (c *Config) Validate() error {
 	}
 	if c.GapGrace < 0 {
 		errs = append(errs, fmt.Errorf("--gap-grace must not be negative, got %v", c.GapGrace))
+	}
+	if c.FetchBudget != 0 && (c.FetchBudget < 100*time.Millisecond || c.FetchBudget > engine.MaxFetchBudget) {
+		errs = append(errs, fmt.Errorf("--fetch-budget must be between 100ms and %v (well within a sender's patience and the HTTP server's 60s write timeout), or 0 for the default, got %v", engine.MaxFetchBudget, c.FetchBudget))
 	}
 	if c.Heartbeat < 0 {
 		errs = append(errs, fmt.Errorf("--heartbeat-timeout must not be negative, got %v", c.Heartbeat))

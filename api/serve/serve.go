@@ -151,7 +151,7 @@ func New(cfg Config, version string, log *slog.Logger) (*Service, error) {
 	e, err := engine.New(engine.Config{
 		Store: s.store, Decoder: decode.New(opts.Decode), Encoder: enc,
 		Derive: opts.Derive, Client: s.client, Settle: cfg.Settle, DevicePace: cfg.DevicePace, Retention: cfg.Retention,
-		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, GapGrace: cfg.GapGrace, SearchCodes: search, Logger: log,
+		PollInterval: cfg.PollInterval, HeartbeatTimeout: cfg.Heartbeat, GapGrace: cfg.GapGrace, FetchBudget: cfg.FetchBudget, SearchCodes: search, Logger: log,
 		Hooks: withOpEvents(s.Metrics.EngineHooks(), opEvents), MaxTransactionEntries: cfg.MaxTxEntries,
 		JobLease: cfg.JobLease, OwnerGrace: cfg.OwnerGrace, Register: s.registerHook(),
 	})
@@ -583,21 +583,21 @@ type sink struct{ e *engine.Engine }
 
 func (k sink) Resources(ctx context.Context, src webhook.Source, resources []json.RawMessage) (webhook.Receipt, error) {
 	r, err := k.e.Ingest(ctx, src.Mode, resources)
-	return receipt(r), invalid(err)
+	return receipt(r), forWebhook(err)
 }
 
 func (k sink) Fetch(ctx context.Context, src webhook.Source, refs []string) error {
 	_, err := k.e.Fetch(ctx, refs)
-	return invalid(err)
+	return forWebhook(err)
 }
 
 func (k sink) Status(ctx context.Context, src webhook.Source, n notify.Notification) error {
-	return invalid(k.e.Notified(ctx, n))
+	return forWebhook(k.e.Notified(ctx, n))
 }
 
 func (k sink) Notification(ctx context.Context, src webhook.Source, resources []json.RawMessage, n notify.Notification) (webhook.Receipt, error) {
 	r, err := k.e.IngestNotified(ctx, src.Mode, resources, n)
-	return receipt(r), invalid(err)
+	return receipt(r), forWebhook(err)
 }
 
 func (k sink) Changed(ctx context.Context, src webhook.Source) error {
@@ -611,7 +611,7 @@ func (k sink) Deleted(ctx context.Context, src webhook.Source, deleted []webhook
 		ds[i] = engine.Deletion{Ref: d.Ref, At: d.At, How: "a Bundle sent to the webhook (" + src.Mode + ") has a DELETE entry for it"}
 	}
 	_, err := k.e.Deleted(ctx, ds)
-	return invalid(err)
+	return forWebhook(err)
 }
 
 func receipt(r engine.Receipt) webhook.Receipt {
@@ -622,9 +622,17 @@ func receipt(r engine.Receipt) webhook.Receipt {
 	return out
 }
 
-func invalid(err error) error {
-	if errors.Is(err, engine.ErrInvalid) {
+// forWebhook says an engine error in the webhook's terms: input the
+// engine refuses is the sender's fault (400), and a read deferred for the
+// fetch budget asks the sender to deliver again after its wait (503 with
+// Retry-After).
+func forWebhook(err error) error {
+	var deferred *engine.ReadDeferred
+	switch {
+	case errors.Is(err, engine.ErrInvalid):
 		return fmt.Errorf("%w: %w", webhook.ErrInvalid, err)
+	case errors.As(err, &deferred):
+		return &webhook.RetryLater{After: deferred.RetryAfter, Err: err}
 	}
 	return err
 }

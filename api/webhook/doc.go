@@ -71,7 +71,10 @@
 //	     UTF-8, or a Content-Encoding; an empty body is accepted with any
 //	     Content-Type
 //	503  any other sink error: the sender keeps the notification and
-//	     retries, so nothing unstored is acknowledged
+//	     retries, so nothing unstored is acknowledged; with Retry-After
+//	     when the sink says when to retry ([RetryLater]: a resource the
+//	     notification names could not be read from the FHIR server in
+//	     time)
 //
 // # Logging
 //

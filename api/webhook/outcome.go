@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"net/http"
 	"strconv"
+	"time"
 )
 
 // requestError is a request the webhook itself refuses.
@@ -36,9 +37,11 @@ type outcome struct {
 // Only two outcomes exist for sink errors: 400 when the sink blames the
 // content (ErrInvalid), and 503 for everything else, because a 503 makes
 // the sender keep the notification and retry, and nothing that was not
-// stored may be acknowledged.
+// stored may be acknowledged. A sink error that says when to retry
+// ([RetryLater]) gives the 503 that Retry-After.
 func answer(err error) (int, outcome) {
 	var re *requestError
+	var later *RetryLater
 	switch {
 	case errors.As(err, &re):
 		out := outcome{issues: []issue{{Severity: "error", Code: re.code, Diagnostics: re.msg}}}
@@ -51,6 +54,13 @@ func answer(err error) (int, outcome) {
 		return re.status, out
 	case errors.Is(err, ErrInvalid):
 		return http.StatusBadRequest, outcome{issues: []issue{{Severity: "error", Code: "invalid", Diagnostics: err.Error()}}}
+	case errors.As(err, &later):
+		secs := max(1, int64((later.After+time.Second-1)/time.Second))
+		return http.StatusServiceUnavailable, outcome{
+			issues: []issue{{Severity: "error", Code: "transient",
+				Diagnostics: "a resource the notification names could not be read from the FHIR server in time; send the notification again after Retry-After"}},
+			headers: map[string]string{"Retry-After": strconv.FormatInt(secs, 10)},
+		}
 	default:
 		return http.StatusServiceUnavailable, outcome{issues: []issue{{Severity: "error", Code: "transient",
 			Diagnostics: "the notification could not be stored; send it again later"}}}

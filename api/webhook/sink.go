@@ -98,3 +98,17 @@ type Rejection struct {
 // webhook answers 400 with the error's text, and the sender should not
 // retry. Any other Sink error is taken as transient and answered 503.
 var ErrInvalid = errors.New("invalid content")
+
+// RetryLater is a Sink error that says when the content can be taken: a
+// resource the notification names could not be read from the FHIR server
+// in time (it throttled, or did not answer). The webhook answers 503 with
+// Retry-After: After, in whole seconds rounded up (at least 1), so the
+// sender delivers the notification again then.
+type RetryLater struct {
+	After time.Duration
+	Err   error
+}
+
+func (e *RetryLater) Error() string { return e.Err.Error() }
+
+func (e *RetryLater) Unwrap() error { return e.Err }

@@ -168,7 +168,12 @@ func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	}
 
 	level, msg := slog.LevelInfo, "webhook request"
+	var later *RetryLater
 	switch {
+	case errors.As(err, &later):
+		// The FHIR server's load, not a fault here: the sender was told
+		// when to deliver again.
+		level, msg = slog.LevelWarn, "webhook request deferred"
 	case code >= 500:
 		level, msg = slog.LevelError, "webhook request failed"
 	case code >= 400:

@@ -341,7 +341,30 @@ func TestHandler(t *testing.T) {
 			sink: func(f *fakeSink) {
 				f.FetchFn = func(context.Context, webhook.Source, []string) error { return errDisk }
 			},
-			calls: []string{"Fetch notification https://example.org/fhir/Encounter/86009987-eabe-42bf-8c02-b112b18cb616"}},
+			// No Retry-After: the sender's own schedule.
+			calls: []string{"Fetch notification https://example.org/fhir/Encounter/86009987-eabe-42bf-8c02-b112b18cb616"}, header: map[string]string{"Retry-After": ""}},
+		{name: "sink defers a fetch: the server's Retry-After", method: "POST", path: "/notify", headers: fhirJSON, body: igFixture(t, "r4-id-only.json"), status: 503,
+			sink: func(f *fakeSink) {
+				f.FetchFn = func(context.Context, webhook.Source, []string) error {
+					return fmt.Errorf("fetch: %w", &webhook.RetryLater{After: time.Minute, Err: errDisk})
+				}
+			},
+			// The status is not recorded either: the counters still reveal
+			// the notification if the sender never delivers it again.
+			calls:  []string{"Fetch notification https://example.org/fhir/Encounter/86009987-eabe-42bf-8c02-b112b18cb616"},
+			header: map[string]string{"Retry-After": "60"}, diag: "send the notification again after Retry-After"},
+		{name: "sink defers a fetch: whole seconds, rounded up", method: "PUT", path: "/notify/Observation/abg-1", headers: bearer, status: 503,
+			sink: func(f *fakeSink) {
+				f.FetchFn = func(context.Context, webhook.Source, []string) error {
+					return &webhook.RetryLater{After: 9*time.Minute + 59500*time.Millisecond, Err: errDisk}
+				}
+			},
+			calls: []string{"Fetch rest-hook-put Observation/abg-1"}, header: map[string]string{"Retry-After": "600"}},
+		{name: "sink defers a fetch: at least a second", method: "PUT", path: "/notify/Observation/abg-1", headers: bearer, status: 503,
+			sink: func(f *fakeSink) {
+				f.FetchFn = func(context.Context, webhook.Source, []string) error { return &webhook.RetryLater{Err: errDisk} }
+			},
+			calls: []string{"Fetch rest-hook-put Observation/abg-1"}, header: map[string]string{"Retry-After": "1"}},
 		{name: "sink fails on status", method: "POST", path: "/notify", headers: fhirJSON, body: igFixture(t, "r4-heartbeat.json"), status: 503,
 			sink: func(f *fakeSink) {
 				f.StatusFn = func(context.Context, webhook.Source, notify.Notification) error { return context.DeadlineExceeded }

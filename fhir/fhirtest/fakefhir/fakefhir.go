@@ -15,9 +15,10 @@
 //     handling=strict is refused with 400;
 //   - transaction and batch Bundles (POST then PUT then GET, urn:uuid
 //     references resolved; a transaction is all or nothing);
-//   - fault injection ([Server.Fail], [Server.Drop]): answer a matching
-//     request with a status and Retry-After without doing it, or do it and
-//     drop the connection before answering (the answer is lost);
+//   - fault injection ([Server.Fail], [Server.Drop], [Server.Stall]): answer
+//     a matching request with a status and Retry-After without doing it, do
+//     it and drop the connection before answering (the answer is lost), or
+//     hold the answer back (a slow server, or one that never answers);
 //   - ignored search parameters ([Server.Ignore]): a parameter of a type
 //     that the server leaves out of searches and of the conditions of
 //     conditional creates, as servers do with parameters they do not
@@ -70,6 +71,11 @@ type Fault struct {
 	RetryAfter string
 	// Drop does the request, then closes the connection without answering.
 	Drop bool
+	// Delay holds the request this long before anything else (Status, Drop
+	// or the request done as usual): a slow server, or with a long Delay one
+	// that never answers. The wait ends early when the client gives up (the
+	// request is then not done) or the server is closed.
+	Delay time.Duration
 	// Times is how many requests the fault applies to; 0 means every one.
 	Times int
 	// Text is the OperationOutcome diagnostics sent with Status; tests put
@@ -99,6 +105,9 @@ type Server struct {
 	pageSize int
 	ignored  map[string]bool // "type?name" of ignored search parameters
 	minimal  bool            // creates and updates answered without the resource
+
+	closing   chan struct{} // closed by Close: requests held by a Delay end
+	closeOnce sync.Once
 }
 
 // Start runs a server until tb's cleanup.
@@ -114,14 +123,20 @@ func Start(tb interface {
 
 // New runs a server; Close stops it.
 func New() *Server {
-	s := &Server{res: map[string]map[string][]version{}, pageSize: DefaultPageSize}
+	s := &Server{res: map[string]map[string][]version{}, pageSize: DefaultPageSize, closing: make(chan struct{})}
 	s.ts = httptest.NewServer(http.HandlerFunc(s.serve))
 	s.BaseURL = s.ts.URL + "/fhir"
 	return s
 }
 
-// Close stops the server.
-func (s *Server) Close() { s.ts.Close() }
+// Close stops the server. Requests held by a Delay end at once,
+// unanswered.
+func (s *Server) Close() {
+	s.closeOnce.Do(func() {
+		close(s.closing)
+		s.ts.Close()
+	})
+}
 
 // SetPageSize sets the page size of searches without _count.
 func (s *Server) SetPageSize(n int) {
@@ -141,6 +156,13 @@ func (s *Server) Fail(method, path string, status int, retryAfter string, times 
 // connection, so the client never sees the answer.
 func (s *Server) Drop(method, path string, times int) {
 	s.addFault(&Fault{Method: method, Path: path, Drop: true, Times: times})
+}
+
+// Stall adds a fault that holds matching requests for d before doing
+// them (times times; 0: until ClearFaults): a slow server, or with a d
+// longer than the client waits, one that never answers.
+func (s *Server) Stall(method, path string, d time.Duration, times int) {
+	s.addFault(&Fault{Method: method, Path: path, Delay: d, Times: times})
 }
 
 // Inject adds any fault.
@@ -309,7 +331,19 @@ func (s *Server) serve(w http.ResponseWriter, r *http.Request) {
 	s.mu.Unlock()
 
 	f := s.fault(r, path)
-	if f != nil && !f.Drop {
+	if f != nil && f.Delay > 0 {
+		t := time.NewTimer(f.Delay)
+		select {
+		case <-t.C:
+		case <-r.Context().Done():
+			t.Stop()
+			return
+		case <-s.closing:
+			t.Stop()
+			return
+		}
+	}
+	if f != nil && f.Status != 0 && !f.Drop {
 		if f.RetryAfter != "" {
 			w.Header().Set("Retry-After", f.RetryAfter)
 		}

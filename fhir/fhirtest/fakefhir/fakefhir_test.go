@@ -349,3 +349,48 @@ func TestFaultsAreRetriedAndDroppedAnswersRecovered(t *testing.T) {
 		t.Fatalf("%d POSTs, want 2 (the dropped one and its retry)", n)
 	}
 }
+
+// TestStalledAnswers: a Stall holds the request back. A client that waits
+// longer gets the answer (a slow server); one whose deadline comes first
+// gets none, and Close does not wait for the held request (a server that
+// never answers).
+func TestStalledAnswers(t *testing.T) {
+	s := fakefhir.Start(t)
+	c := newClient(t, s, nil)
+	created, err := s.Put(obs("2019-8", "Patient/p", 44))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var id struct{ ID string }
+	_ = json.Unmarshal(created, &id)
+
+	s.Stall(http.MethodGet, "Observation/"+id.ID, 200*time.Millisecond, 1)
+	start := time.Now()
+	if _, _, err := c.Read(context.Background(), "Observation", id.ID); err != nil {
+		t.Fatalf("read of a slow answer: %v", err)
+	}
+	if d := time.Since(start); d < 200*time.Millisecond {
+		t.Errorf("answered after %v, before the stall ended", d)
+	}
+
+	s.Stall(http.MethodGet, "Observation/"+id.ID, time.Hour, 0)
+	ctx, cancel := context.WithTimeout(context.Background(), 300*time.Millisecond)
+	defer cancel()
+	_, _, err = c.Read(ctx, "Observation", id.ID)
+	if !errors.Is(err, context.DeadlineExceeded) {
+		t.Fatalf("read of a server that never answers: %v, want the deadline", err)
+	}
+	// A request held when the server closes ends unanswered, and Close
+	// returns.
+	go func() { _, _, _ = c.Read(context.Background(), "Observation", id.ID) }()
+	for s.Count(http.MethodGet, "Observation/"+id.ID) < 3 {
+		time.Sleep(5 * time.Millisecond)
+	}
+	closed := make(chan struct{})
+	go func() { s.Close(); close(closed) }()
+	select {
+	case <-closed:
+	case <-time.After(10 * time.Second):
+		t.Fatal("Close waited for a held request")
+	}
+}
