@@ -78,6 +78,11 @@ const (
 	DefaultFHIRScope    = "system/Observation.rs system/Observation.cu system/Patient.rs system/Provenance.c system/Device.c system/Subscription.cru"
 	DefaultMaxTxEntries = 8
 	DefaultReadyGrace   = 30 * time.Second
+
+	DefaultUIOIDCScopes = "openid profile groups"
+	DefaultUIOIDCClaim  = "groups"
+	DefaultUIUserClaim  = "preferred_username"
+	DefaultUISessionTTL = 8 * time.Hour
 )
 
 // UIConfig is the settings of the auditor's pages (--ui-*): off unless
@@ -163,14 +168,14 @@ func (u *UIConfig) bind(fs *flag.FlagSet) {
 	fs.StringVar(&u.OIDCClientID, "ui-oidc-client-id", "", "client_id registered with the OpenID Connect provider")
 	fs.StringVar(&u.OIDCSecretFile, "ui-oidc-client-secret-file", "", "file holding the OpenID Connect client secret (or set DEADSPACE_UI_OIDC_CLIENT_SECRET)")
 	fs.StringVar(&u.OIDCRedirectURL, "ui-oidc-redirect-url", "", "this service's sign-in callback as the provider knows it, https://host:port/signin/callback")
-	fs.StringVar(&u.OIDCScopes, "ui-oidc-scopes", "openid profile groups", "scopes to request, space-separated")
-	fs.StringVar(&u.OIDCClaim, "ui-oidc-claim", "groups", "ID token claim that lists the user's groups or roles")
+	fs.StringVar(&u.OIDCScopes, "ui-oidc-scopes", DefaultUIOIDCScopes, "scopes to request, space-separated")
+	fs.StringVar(&u.OIDCClaim, "ui-oidc-claim", DefaultUIOIDCClaim, "ID token claim that lists the user's groups or roles")
 	fs.StringVar(&u.OIDCAllowed, "ui-oidc-allowed", "", "comma-separated groups or roles allowed to see the pages")
-	fs.StringVar(&u.OIDCUserClaim, "ui-oidc-user-claim", "preferred_username", "ID token claim written to the access log as the user")
+	fs.StringVar(&u.OIDCUserClaim, "ui-oidc-user-claim", DefaultUIUserClaim, "ID token claim written to the access log as the user")
 	fs.StringVar(&u.OIDCCA, "ui-oidc-ca", "", "PEM CA bundle for reaching the OpenID Connect provider (default: the system's)")
 	fs.StringVar(&u.UserHeader, "ui-user-header", "", "instead of OpenID Connect: request header naming the user, set by an authenticating proxy")
 	fs.StringVar(&u.TrustedProxies, "ui-trusted-proxies", "", "comma-separated addresses or CIDR prefixes whose --ui-user-header is trusted")
-	fs.DurationVar(&u.SessionTTL, "ui-session-ttl", 8*time.Hour, "how long a sign-in lasts")
+	fs.DurationVar(&u.SessionTTL, "ui-session-ttl", DefaultUISessionTTL, "how long a sign-in lasts")
 	fs.StringVar(&u.SessionKeyFile, "ui-session-key-file", "", "file holding the key that signs sign-in sessions (at least 32 bytes; or set DEADSPACE_UI_SESSION_KEY); replicas share it so a session works on all and survives restarts")
 	fs.StringVar(&u.AccessLog, "ui-access-log", "", "file the page views that show patients are appended to (default: access.log in --data-dir)")
 }
@@ -369,6 +374,7 @@ func (c *Config) Validate() error {
 		errs = append(errs, fmt.Errorf("--heartbeat-timeout must not be negative, got %v", c.Heartbeat))
 	}
 	errs = append(errs, c.checkNeedsFHIRBase()...)
+	errs = append(errs, c.checkNeedsUIListen()...)
 	if c.Register {
 		if u, err := url.Parse(c.PublicURL); c.PublicURL == "" || err != nil || u.Host == "" {
 			errs = append(errs, errors.New("--register-subscription needs --public-url, the URL the FHIR server reaches this service at"))
@@ -497,6 +503,43 @@ func (c *Config) checkNeedsFHIRBase() []error {
 		need("--fhir-token-file", "the token is sent to the FHIR server")
 	case c.FHIRToken != "":
 		need("DEADSPACE_FHIR_TOKEN", "the token is sent to the FHIR server")
+	}
+	return errs
+}
+
+// checkNeedsUIListen refuses the pages' settings given without
+// --ui-listen: the pages are off without it, so a site that believes it
+// set who may sign in, or where page views are logged, would have none of
+// it. The session key's environment variable is left alone: deployments
+// keep it in a Secret whether the pages are on or not.
+func (c *Config) checkNeedsUIListen() []error {
+	u := c.UI
+	if u.Listen != "" {
+		return nil
+	}
+	var errs []error
+	for _, f := range []struct {
+		name string
+		set  bool
+	}{
+		{"--ui-oidc-issuer", u.OIDCIssuer != ""},
+		{"--ui-oidc-client-id", u.OIDCClientID != ""},
+		{"--ui-oidc-client-secret-file", u.OIDCSecretFile != ""},
+		{"--ui-oidc-redirect-url", u.OIDCRedirectURL != ""},
+		{"--ui-oidc-allowed", u.OIDCAllowed != ""},
+		{"--ui-oidc-ca", u.OIDCCA != ""},
+		{"--ui-user-header", u.UserHeader != ""},
+		{"--ui-trusted-proxies", u.TrustedProxies != ""},
+		{"--ui-session-key-file", u.SessionKeyFile != ""},
+		{"--ui-access-log", u.AccessLog != ""},
+		{"--ui-oidc-scopes", c.gave("ui-oidc-scopes", u.OIDCScopes == "" || u.OIDCScopes == DefaultUIOIDCScopes)},
+		{"--ui-oidc-claim", c.gave("ui-oidc-claim", u.OIDCClaim == "" || u.OIDCClaim == DefaultUIOIDCClaim)},
+		{"--ui-oidc-user-claim", c.gave("ui-oidc-user-claim", u.OIDCUserClaim == "" || u.OIDCUserClaim == DefaultUIUserClaim)},
+		{"--ui-session-ttl", c.gave("ui-session-ttl", u.SessionTTL == 0 || u.SessionTTL == DefaultUISessionTTL)},
+	} {
+		if f.set {
+			errs = append(errs, fmt.Errorf("%s needs --ui-listen: the auditor's pages are off without it", f.name))
+		}
 	}
 	return errs
 }

@@ -94,6 +94,11 @@ func TestSettingsThatNeedAServer(t *testing.T) {
 		{"every one with a server", []string{"--fhir-base", base, "--poll-interval", "5m", "--heartbeat-timeout", "10m", "--gap-grace", "5s",
 			"--ready-grace", "1m", "--fhir-max-transaction-entries", "20", "--register-subscription", "--public-url", "https://deadspace.example/"},
 			map[string]string{"DEADSPACE_FHIR_TOKEN": "t0k3n"}, nil},
+		{"the pages' sign-in settings without the pages", []string{"--ui-oidc-issuer", "https://idp.example", "--ui-session-ttl", "1h"}, nil,
+			[]string{"--ui-oidc-issuer needs --ui-listen", "--ui-session-ttl needs --ui-listen"}},
+		{"the pages' access log by environment without the pages", nil, map[string]string{"DEADSPACE_UI_ACCESS_LOG": "/var/log/pages.log"},
+			[]string{"--ui-access-log needs --ui-listen"}},
+		{"the pages' session key in the environment without the pages", nil, map[string]string{"DEADSPACE_UI_SESSION_KEY": "0123456789abcdef0123456789abcdef"}, nil},
 		{"all at once, with another mistake", []string{"--poll-interval", "5m", "--heartbeat-timeout", "10m", "--fhir-client-id", "x", "--retention", "1h"}, nil,
 			[]string{"--poll-interval", "--heartbeat-timeout", "--fhir-client-id", "--retention must be at least 2h"}},
 	} {
