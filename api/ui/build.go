@@ -169,11 +169,11 @@ func explainValue(patientID string, d *derive.Derivation, code derive.Code, id, 
 		if v.Range != nil {
 			ex.Range = rangeText(*v.Range)
 		}
-		sums = nil
-		for _, s := range d.Used {
-			if slices.Contains(v.Inputs, s.Kind) {
-				sums = append(sums, s)
-			}
+		// The inputs the Observation cites in derivedFrom, by the
+		// encoder's own rule.
+		var err error
+		if sums, err = d.CitedSummaries(v); err != nil {
+			ex.Notes = append(ex.Notes, "the recorded derivation is incomplete: "+err.Error())
 		}
 		if v.UsesPatient {
 			ex.Patient = patientText(d.Patient)
