@@ -208,19 +208,30 @@ func (e *Engine) omissions(ctx context.Context, subject string) ([]derive.Omissi
 	if err != nil {
 		return nil, fmt.Errorf("engine: left-out picture: %w", err)
 	}
+	omitted, err := e.omissionsOf(ctx, subject, inputs)
+	if err != nil {
+		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+	}
+	return omitted, nil
+}
+
+// omissionsOf is what a complete evaluation of inputs, the patient's
+// usable stored readings, leaves out, with the patient's facts from the
+// store.
+func (e *Engine) omissionsOf(ctx context.Context, subject string, inputs []pipeline.Input) ([]derive.Omission, error) {
 	var facts derive.Patient
 	switch stored, err := e.cfg.Store.Patient(ctx, subject); {
 	case errors.Is(err, store.ErrNotFound):
 	case err != nil:
-		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+		return nil, err
 	default:
 		if err := json.Unmarshal(stored.Payload, &facts); err != nil {
-			return nil, fmt.Errorf("engine: left-out picture: stored patient: %w", err)
+			return nil, fmt.Errorf("stored patient: %w", err)
 		}
 	}
 	_, omitted, err := pipeline.EvaluateFrom(e.cfg.Derive, e.cfg.Encoder, subject, facts, inputs, time.Time{})
 	if err != nil {
-		return nil, fmt.Errorf("engine: left-out picture: %w", err)
+		return nil, err
 	}
 	return omitted, nil
 }

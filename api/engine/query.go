@@ -360,7 +360,9 @@ type Explanation struct {
 	Values     []ExplainedValue
 	// Inputs are what the values cite, the blood gas first.
 	Inputs []ExplainedInput
-	// Pairings are the summaries of the kinds the values use.
+	// Pairings are the summaries the values cite: the other reports of the
+	// blood gas's sample, then the kinds the values use
+	// ([derive.Derivation.CitedSummaries], the encoder's rule).
 	Pairings []derive.Summary
 	// ValuesNotEmitted are the blood gas's omitted values, Ref set to it.
 	ValuesNotEmitted []derive.Omission
@@ -410,7 +412,7 @@ func (e *Engine) Explain(ctx context.Context, rec Record) (Explanation, error) {
 		} else {
 			v := d.Values[i]
 			ex.Values = []ExplainedValue{{Observation: p.Observation, Value: &v}}
-			ex.Pairings = summariesOf(*d, v.Inputs)
+			ex.Pairings = citedSummaries(&ex, *d, v)
 			if v.UsesPatient {
 				ex.Patient = &d.Patient
 			}
@@ -542,15 +544,17 @@ func (e *Engine) recompute(ctx context.Context, subject string) ([]pipeline.Resu
 	return results, omitted, facts, nil
 }
 
-// summariesOf returns the derivation's summaries of the given kinds.
-func summariesOf(d derive.Derivation, kinds []derive.Kind) []derive.Summary {
-	var out []derive.Summary
-	for _, s := range d.Used {
-		if slices.Contains(kinds, s.Kind) {
-			out = append(out, s)
-		}
+// citedSummaries returns the summaries whose readings the value's
+// Observation cites in derivedFrom, by the encoder's own rule
+// ([derive.Derivation.CitedSummaries]), so Explain lists exactly the inputs
+// the written record cites. A derivation the rule refuses (which the encoder
+// would not have written) is noted, and what it found is listed.
+func citedSummaries(ex *Explanation, d derive.Derivation, v derive.Value) []derive.Summary {
+	sums, err := d.CitedSummaries(v)
+	if err != nil {
+		ex.Notes = append(ex.Notes, "the recorded derivation is incomplete: "+err.Error())
 	}
-	return out
+	return sums
 }
 
 func valueOmissions(d derive.Derivation) []derive.Omission {

@@ -621,7 +621,7 @@ func latest(subject string, recs []record, omitted []*omittedRecord, elsewhere f
 			if compare(vs[i-1], v) == 0 {
 				continue // the same version twice, from overlapping files
 			}
-			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonSuperseded, Detail: "superseded by version " + vs[i-1].versionID})
+			om = append(om, derive.Omission{Ref: v.ref(), Reason: derive.ReasonSuperseded, Detail: supersededBy(vs[i-1])})
 			continue
 		}
 		if elsewhere != nil && elsewhere(v.logical) {
@@ -644,6 +644,27 @@ func latest(subject string, recs []record, omitted []*omittedRecord, elsewhere f
 		}
 	}
 	return inputs, om
+}
+
+// supersededBy says what replaced a version: the newer version by its
+// versionId, and when that version withdraws the resource (entered in
+// error, deleted on the server, re-coded, not usable), that it does and
+// why. A deletion has no versionId, nor has a version whose source gave
+// none; neither is named by an empty number.
+func supersededBy(newer version) string {
+	var d string
+	switch {
+	case newer.omitted != nil && newer.omitted.omission.Reason == derive.ReasonDeleted && newer.versionID == "":
+		return "superseded by its deletion on the server, which withdraws it"
+	case newer.versionID == "":
+		d = "superseded by a later version (without a versionId)"
+	default:
+		d = "superseded by version " + newer.versionID
+	}
+	if newer.omitted != nil {
+		d += ", which withdraws it (" + string(newer.omitted.omission.Reason) + ")"
+	}
+	return d
 }
 
 // Report is what a whole export produced.

@@ -169,11 +169,11 @@ func explainValue(patientID string, d *derive.Derivation, code derive.Code, id, 
 		if v.Range != nil {
 			ex.Range = rangeText(*v.Range)
 		}
-		sums = nil
-		for _, s := range d.Used {
-			if slices.Contains(v.Inputs, s.Kind) {
-				sums = append(sums, s)
-			}
+		// The inputs the Observation cites in derivedFrom, by the
+		// encoder's own rule.
+		var err error
+		if sums, err = d.CitedSummaries(v); err != nil {
+			ex.Notes = append(ex.Notes, "the recorded derivation is incomplete: "+err.Error())
 		}
 		if v.UsesPatient {
 			ex.Patient = patientText(d.Patient)
@@ -202,7 +202,9 @@ func explainValue(patientID string, d *derive.Derivation, code derive.Code, id, 
 		ex.NotEmitted = append(ex.NotEmitted, Omission{What: Label(o.Code), Reason: o.Reason, Detail: o.Detail})
 	}
 	for _, o := range nearby {
-		if o.At.IsZero() || absDuration(o.At.Sub(d.Gas.At())) > window {
+		// A reading near no blood gas is not near this one; one without a
+		// time cannot be placed.
+		if o.Reason == derive.ReasonUnpaired || o.At.IsZero() || absDuration(o.At.Sub(d.Gas.At())) > window {
 			continue
 		}
 		ex.LeftOut = append(ex.LeftOut, Omission{What: o.Ref + " (" + o.Kind + ", " + o.At.Format("15:04") + ")", Reason: o.Reason, Detail: o.Detail})
@@ -217,6 +219,34 @@ type OmittedInput struct {
 	At     time.Time
 	Reason derive.Reason
 	Detail string
+}
+
+// leftOutText is why an input version was left out, as a plot's title
+// says it.
+func leftOutText(reason derive.Reason, detail string) string {
+	if detail == "" {
+		return string(reason)
+	}
+	return string(reason) + ": " + detail
+}
+
+// markLeftOut applies to a timeline's blood gases what the derivations
+// left out of them: a blood gas usable at its source but left out (another
+// report of a sample the values were derived from once, same-sample; or
+// reports of one sample that disagree) is no current blood gas, so it is
+// plotted as left out, with why, and takes no row of the table. why gives
+// the omission of a versioned reference, if any. Both adapters call it, so
+// a live timeline and a report plot one sample reported twice alike.
+func markLeftOut(gases []Point, why func(ref string) (derive.Omission, bool)) {
+	for i := range gases {
+		p := &gases[i]
+		if p.Status != StatusFinal {
+			continue
+		}
+		if o, ok := why(p.Ref); ok && o.Reason != derive.ReasonSuperseded {
+			p.Status, p.Why = StatusLeftOut, leftOutText(o.Reason, o.Detail)
+		}
+	}
 }
 
 func absDuration(d time.Duration) time.Duration {

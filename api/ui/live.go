@@ -105,6 +105,31 @@ func (l *Live) knownSubjects(ctx context.Context) ([]string, error) {
 type patient struct {
 	records  []engine.Record
 	readings []engine.StoredReading
+	// leftOut is what the derivations leave out, by versioned reference
+	// (the engine's re-derivation, [engine.Engine.LeftOutInputs]); nil
+	// when not read (the overview, which plots nothing).
+	leftOut map[string]engine.LeftOutInput
+}
+
+// readLeftOut reads what the derivations of the patient's stored data
+// leave out, by versioned reference, and in the store's order.
+func (l *Live) readLeftOut(ctx context.Context, subject string) (map[string]engine.LeftOutInput, []engine.LeftOutInput, error) {
+	los, err := l.cfg.Engine.LeftOutInputs(ctx, subject)
+	if err != nil && !errors.Is(err, store.ErrNotFound) {
+		return nil, nil, err
+	}
+	byRef := make(map[string]engine.LeftOutInput, len(los))
+	for _, o := range los {
+		if _, ok := byRef[o.Reading.Ref]; !ok {
+			byRef[o.Reading.Ref] = o
+		}
+	}
+	return byRef, los, nil
+}
+
+// omissionOf is the left-out input as derive's omission.
+func omissionOf(o engine.LeftOutInput) derive.Omission {
+	return derive.Omission{Ref: o.Reading.Ref, Reason: o.Reason, Detail: o.Detail}
 }
 
 func (l *Live) read(ctx context.Context, subject string) (patient, error) {
@@ -177,6 +202,9 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 		pt := Point{At: r.At(), Value: r.Value, Ref: r.Ref, Status: StatusFinal}
 		if !sr.Usable {
 			pt.Status, pt.Why = StatusWithdrawn, "withdrawn or not usable at its source"
+			if o, ok := p.leftOut[r.Ref]; ok {
+				pt.Why = leftOutText(o.Reason, o.Detail)
+			}
 		}
 		switch r.Kind {
 		case derive.KindEtCO2:
@@ -187,6 +215,10 @@ func (l *Live) timeline(ctx context.Context, id string, p patient) Timeline {
 			tl.PaCO2 = append(tl.PaCO2, pt)
 		}
 	}
+	markLeftOut(tl.PaCO2, func(ref string) (derive.Omission, bool) {
+		o, ok := p.leftOut[ref]
+		return omissionOf(o), ok
+	})
 	sortValues(tl.Values)
 	sortPoints(tl.EtCO2)
 	sortPoints(tl.PaCO2)
@@ -235,6 +267,9 @@ func (l *Live) Timeline(ctx context.Context, id string) (Timeline, error) {
 	}
 	if len(p.records) == 0 && len(p.readings) == 0 {
 		return Timeline{}, ErrNotFound
+	}
+	if p.leftOut, _, err = l.readLeftOut(ctx, subject); err != nil {
+		return Timeline{}, fmt.Errorf("ui: timeline: %w", err)
 	}
 	tl := l.timeline(ctx, id, p)
 	if len(p.records) >= maxLedger {
@@ -349,9 +384,9 @@ func (l *Live) explain(ctx context.Context, id string, rec engine.Record) (Expla
 	status := statusOf(rec.Status)
 	var out Explanation
 	id = rec.Key
-	rs, rerr := l.cfg.Engine.StoredReadings(ctx, rec.Subject)
 	switch {
 	case ex.Fall != nil:
+		rs, rerr := l.cfg.Engine.StoredReadings(ctx, rec.Subject)
 		if rerr != nil && !errors.Is(rerr, store.ErrNotFound) {
 			return Explanation{}, fmt.Errorf("ui: explain: the end-tidal series: %w", rerr)
 		}
@@ -363,13 +398,16 @@ func (l *Live) explain(ctx context.Context, id string, rec engine.Record) (Expla
 		}
 		out = explainFall(PatientID(rec.Subject), *ex.Fall, id, status, lookup, l.cfg.Fall, etco2Series(etco2))
 	case ex.Derivation != nil:
-		var nearby []OmittedInput
-		if rerr == nil {
-			for _, sr := range rs {
-				if !sr.Usable && sr.Reading.Ref != "" {
-					nearby = append(nearby, OmittedInput{Ref: sr.Reading.Ref, Kind: sr.Reading.Kind.String(), At: atOf(sr.Reading), Reason: derive.ReasonEnteredInError, Detail: "withdrawn or not usable at its source"})
-				}
-			}
+		// The readings left out, each with its own reason and time: the
+		// engine's re-derivation of the patient's stored data, as the
+		// report lists what the replay left out.
+		_, los, err := l.readLeftOut(ctx, rec.Subject)
+		if err != nil {
+			return Explanation{}, fmt.Errorf("ui: explain: the readings left out: %w", err)
+		}
+		nearby := make([]OmittedInput, 0, len(los))
+		for _, o := range los {
+			nearby = append(nearby, OmittedInput{Ref: o.Reading.Ref, Kind: o.Reading.Kind.String(), At: atOf(o.Reading), Reason: o.Reason, Detail: o.Detail})
 		}
 		out = explainValue(PatientID(rec.Subject), ex.Derivation, rec.Code, id, status, lookup, l.cfg.Window, nearby)
 	default:

@@ -15,12 +15,16 @@ import (
 
 // Value statuses, as a page shows them. Final and amended are FHIR
 // Observation statuses; superseded marks an earlier version of a value a
-// later one replaced; withdrawn is FHIR's entered-in-error.
+// later one replaced; withdrawn is FHIR's entered-in-error (for an input,
+// also a version deleted on the server or not usable at its source).
+// Left out marks an input usable at its source that the derivations left
+// out as no blood gas of its own (another report of one sample).
 const (
 	StatusFinal      = "final"
 	StatusAmended    = "amended"
 	StatusSuperseded = "superseded"
 	StatusWithdrawn  = "withdrawn"
+	StatusLeftOut    = "left-out"
 )
 
 // Overview is the unit overview: every patient with data.
@@ -97,8 +101,9 @@ type Point struct {
 	At    time.Time
 	Value float64
 	Ref   string
-	// Status is final, superseded or withdrawn (an input withdrawn at its
-	// source, or not usable).
+	// Status is final, superseded, withdrawn (an input withdrawn at its
+	// source, deleted, or not usable) or left out (a blood gas the
+	// derivations left out: another report of one sample).
 	Status string
 	Why    string
 	// ExplainID links a blood gas to its first value's explanation.
@@ -245,4 +250,15 @@ type DeadLetter struct {
 type OpEvent struct {
 	At   time.Time
 	What string
+}
+
+// HasLeftOut reports whether the timeline plots a blood gas left out (the
+// legend then explains its open marker).
+func (t Timeline) HasLeftOut() bool {
+	for _, p := range t.PaCO2 {
+		if p.Status == StatusLeftOut {
+			return true
+		}
+	}
+	return false
 }

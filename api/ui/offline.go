@@ -11,6 +11,7 @@ import (
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	"github.com/deadspace-fhir/deadspace/fhir/encode"
+	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
 )
 
 // Recorder keeps what a report needs beyond a replay's outcome: every
@@ -28,6 +29,9 @@ type recorded struct {
 	reading derive.Reading
 	ok      bool // a usable reading (not an omitted item)
 	status  string
+	// updated is the version's meta.lastUpdated, which orders the
+	// versions of one resource for the plot.
+	updated time.Time
 }
 
 // NewRecorder returns an empty recorder.
@@ -40,7 +44,7 @@ func (r *Recorder) Add(it decode.Item) {
 	switch it.Type {
 	case decode.ItemReading:
 		r.detail[it.Reading.Ref] = InputDetail{Available: true, Original: it.Original, Conversion: it.Conversion}
-		r.put(it.Reading.Ref, recorded{subject: it.Subject, reading: it.Reading, ok: true, status: StatusFinal})
+		r.put(it.Reading.Ref, recorded{subject: it.Subject, reading: it.Reading, ok: true, status: StatusFinal, updated: it.LastUpdated})
 	case decode.ItemOmitted:
 		ref := it.Ref
 		if ref == "" {
@@ -51,7 +55,7 @@ func (r *Recorder) Add(it decode.Item) {
 		}
 		rd := it.Reading
 		rd.Ref = ref
-		r.put(ref, recorded{subject: it.Subject, reading: rd, status: StatusWithdrawn})
+		r.put(ref, recorded{subject: it.Subject, reading: rd, status: StatusWithdrawn, updated: it.LastUpdated})
 	}
 }
 
@@ -74,6 +78,7 @@ func FromReplay(out replay.Outcome, rec *Recorder, cfg derive.Config, generated 
 	for _, o := range out.Report.Inputs {
 		why[o.Ref] = o
 	}
+	withdrawing := withdrawals(out.Report.Inputs, rec)
 	notEmitted := make([]derive.Reason, 0, len(out.Report.Values))
 	for _, o := range out.Report.Values {
 		notEmitted = append(notEmitted, o.Reason)
@@ -108,19 +113,17 @@ func FromReplay(out replay.Outcome, rec *Recorder, cfg derive.Config, generated 
 		tl := Timeline{ID: id}
 		row := PatientRow{ID: id, PendingWrites: -1}
 		var leftOut []derive.Reason
-		var nearby []OmittedInput
+		var nearby, untimed []OmittedInput
 		for _, ref := range rec.subject[s] {
 			in := rec.inputs[ref]
 			o, omitted := why[ref]
 			if omitted {
 				leftOut = append(leftOut, o.Reason)
-				if o.Reason != derive.ReasonUnpaired {
-					nearby = append(nearby, OmittedInput{Ref: ref, Kind: in.reading.Kind.String(), At: atOf(in.reading), Reason: o.Reason, Detail: o.Detail})
-				}
+				nearby = append(nearby, OmittedInput{Ref: ref, Kind: in.reading.Kind.String(), At: atOf(in.reading), Reason: o.Reason, Detail: o.Detail})
 			}
 			if in.reading.AtMillis == 0 {
 				if in.reading.Kind == derive.KindPaCO2 {
-					tl.Notes = append(tl.Notes, fmt.Sprintf("%s: a blood gas left out (%s) without a usable time, not plotted", ref, o.Reason))
+					untimed = append(untimed, OmittedInput{Ref: ref, Reason: o.Reason})
 				}
 				continue
 			}
@@ -128,13 +131,24 @@ func FromReplay(out replay.Outcome, rec *Recorder, cfg derive.Config, generated 
 			if omitted && (o.Reason == derive.ReasonSuperseded) {
 				pt.Status, pt.Why = StatusSuperseded, o.Detail
 			} else if !in.ok {
-				pt.Why = string(o.Reason)
+				pt.Why = leftOutText(o.Reason, o.Detail)
 			}
 			switch in.reading.Kind {
 			case derive.KindEtCO2:
 				tl.EtCO2 = append(tl.EtCO2, pt)
 			case derive.KindPaCO2:
 				tl.PaCO2 = append(tl.PaCO2, pt)
+			}
+		}
+		showWithdrawn(tl.EtCO2, withdrawing, rec)
+		showWithdrawn(tl.PaCO2, withdrawing, rec)
+		markLeftOut(tl.PaCO2, func(ref string) (derive.Omission, bool) { o, ok := why[ref]; return o, ok })
+		for _, u := range untimed {
+			// A version without a time that withdraws a blood gas plotted
+			// (drawn withdrawn above) needs no note of its own.
+			l, _ := fhirref.Split(u.Ref)
+			if !slices.ContainsFunc(tl.PaCO2, func(p Point) bool { q, _ := fhirref.Split(p.Ref); return q == l }) {
+				tl.Notes = append(tl.Notes, fmt.Sprintf("%s: a blood gas left out (%s) without a usable time, not plotted", u.Ref, u.Reason))
 			}
 		}
 		row.LeftOut = countReasons(leftOut)
@@ -200,6 +214,62 @@ func FromReplay(out replay.Outcome, rec *Recorder, cfg derive.Config, generated 
 		rep.Overview.Patients = append(rep.Overview.Patients, row)
 	}
 	return rep
+}
+
+// withdrawals returns, by logical reference, the resources whose newest
+// version withdraws them at their source: a version entered-in-error,
+// deleted on the server, re-coded, re-filed under another patient or
+// otherwise not usable. The replay leaves out every older version as
+// superseded and gives the newest its own reason; a reason other than
+// superseded on a version that is not a usable reading (a usable one is
+// one the derivations left out, an artefact say) is such a withdrawal. A
+// deletion is never read as a version, so the recorder does not hold it.
+func withdrawals(inputs []derive.Omission, rec *Recorder) map[string]derive.Omission {
+	out := make(map[string]derive.Omission)
+	for _, o := range inputs {
+		if o.Reason == derive.ReasonSuperseded {
+			continue
+		}
+		if in, ok := rec.inputs[o.Ref]; ok && in.ok {
+			continue
+		}
+		if l, _ := fhirref.Split(o.Ref); l != "" {
+			out[l] = o
+		}
+	}
+	return out
+}
+
+// showWithdrawn shows a resource withdrawn at its source as the live pages
+// do: when its withdrawing version is not on the plot itself (it has no
+// usable time, or is a deletion), the newest version plotted is drawn
+// withdrawn, with the withdrawal's reason, rather than superseded as a
+// correction would be.
+func showWithdrawn(points []Point, withdrawing map[string]derive.Omission, rec *Recorder) {
+	newest := make(map[string]int) // logical → index of its newest point
+	for i, p := range points {
+		l, _ := fhirref.Split(p.Ref)
+		if _, ok := withdrawing[l]; !ok {
+			continue
+		}
+		j, seen := newest[l]
+		switch {
+		case !seen:
+			newest[l] = i
+		case points[j].Status != StatusSuperseded:
+			// the withdrawing version is plotted itself
+		case p.Status != StatusSuperseded || rec.inputs[p.Ref].updated.After(rec.inputs[points[j].Ref].updated):
+			newest[l] = i
+		}
+	}
+	for l, i := range newest {
+		p := &points[i]
+		if p.Status != StatusSuperseded {
+			continue // the withdrawing version is plotted itself
+		}
+		o := withdrawing[l]
+		p.Status, p.Why = StatusWithdrawn, leftOutText(o.Reason, o.Detail)
+	}
 }
 
 func atOf(r derive.Reading) time.Time {

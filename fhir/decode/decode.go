@@ -14,7 +14,9 @@
 //     present, makes the reference versioned: "Observation/{id}/_history/{vid}".
 //  3. status entered-in-error: [derive.ReasonEnteredInError], with ID,
 //     VersionID, Ref and Subject filled so the caller can withdraw what was
-//     derived from the resource.
+//     derived from the resource, and the Reading's time and value (both or
+//     neither) when the version still carries them readably, so what was
+//     withdrawn can be placed in time.
 //  4. A member of the wrong JSON type: [derive.ReasonMalformed].
 //  5. status other than final, amended or corrected: [derive.ReasonStatus].
 //  6. subject must be a literal Patient reference ("Patient/{id}" or an
@@ -438,6 +440,9 @@ func (d *Decoder) observation(line []byte) Item {
 	subject, subjectProblem := d.patientSubject(o.Subject)
 	it.Subject = subject
 	if o.Status == "entered-in-error" {
+		if typeErr == nil {
+			d.withdrawnAt(&it, &o, comp, row)
+		}
 		return omit(derive.ReasonEnteredInError, "status entered-in-error")
 	}
 	if typeErr != nil {
@@ -546,6 +551,40 @@ func (d *Decoder) observation(line []byte) Item {
 		it.Also = d.componentsAlso(&o, it.Reading)
 	}
 	return it
+}
+
+// withdrawnAt keeps where a reading withdrawn at its source (status
+// entered-in-error) stood: its effective time and its value in its kind's
+// unit, both or neither, when the withdrawing version still carries them
+// readably. The item stays an omission; the time lets an auditor's page
+// place what was withdrawn among the readings near a blood gas.
+func (d *Decoder) withdrawnAt(it *Item, o *observationJSON, comp *componentJSON, row codes.Row) {
+	q := o.ValueQuantity
+	if comp != nil {
+		q = comp.ValueQuantity
+	}
+	if q == nil || !present(q.Value) || q.Comparator != "" {
+		return
+	}
+	v, err := strconv.ParseFloat(string(q.Value), 64)
+	if err != nil {
+		return
+	}
+	at, _, problem := effectiveTime(o)
+	if problem != "" {
+		return
+	}
+	uopts := d.units
+	if row.CO2Basis != "" {
+		if b, err := units.ParseBasis(row.CO2Basis); err == nil {
+			uopts.PercentBasis = b
+		}
+	}
+	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, uopts)
+	if err != nil {
+		return
+	}
+	it.Reading.AtMillis, it.Reading.Value = at.UnixMilli(), conv.ToValue
 }
 
 // panelComponent returns the component of a panel that carries its value

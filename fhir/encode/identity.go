@@ -280,9 +280,10 @@ func episodeSeries(subject string, code derive.Code, onset time.Time) (string, e
 		"subject="+s, "onset="+onset.UTC().Format(time.RFC3339Nano))
 }
 
-// valueReadings returns the blood gas and every reading in the summaries
-// of the kinds v used, with the other reports of the blood gas's sample
-// (a summary of kind PaCO2), each checked to be a versioned Observation reference.
+// valueReadings returns the blood gas and every reading of the summaries v
+// cites ([derive.Derivation.EachCitedSummary]: the other reports of the blood
+// gas's sample, then the kinds v used), each checked to be a versioned
+// Observation reference.
 func valueReadings(d derive.Derivation, v derive.Value) ([]derive.Reading, error) {
 	var out []derive.Reading
 	if err := eachValueReading(d, v, func(r derive.Reading) { out = append(out, r) }); err != nil {
@@ -298,41 +299,18 @@ func eachValueReading(d derive.Derivation, v derive.Value, use func(derive.Readi
 		return fmt.Errorf("blood gas: %w", err)
 	}
 	use(d.Gas)
-	// Every value cites the blood gas, and so every report of its sample:
-	// a summary of kind PaCO2 holds the others, if any.
-	for _, s := range d.Used {
-		if s.Kind != derive.KindPaCO2 {
-			continue
-		}
+	return d.EachCitedSummary(v, func(s derive.Summary) error {
 		for _, r := range s.Readings {
 			if _, err := cited(r.Ref, "Observation"); err != nil {
-				return fmt.Errorf("%s: another report of the blood gas: %w", v.Code, err)
+				if s.Kind == derive.KindPaCO2 {
+					return fmt.Errorf("%s: another report of the blood gas: %w", v.Code, err)
+				}
+				return fmt.Errorf("%s input %s: %w", v.Code, s.Kind, err)
 			}
 			use(r)
 		}
-	}
-	for _, k := range v.Inputs {
-		if k == derive.KindPaCO2 {
-			continue // the blood gas itself, cited above
-		}
-		found := false
-		for _, s := range d.Used {
-			if s.Kind != k {
-				continue
-			}
-			found = true
-			for _, r := range s.Readings {
-				if _, err := cited(r.Ref, "Observation"); err != nil {
-					return fmt.Errorf("%s input %s: %w", v.Code, k, err)
-				}
-				use(r)
-			}
-		}
-		if !found {
-			return fmt.Errorf("%s cites input %s, but the derivation has no summary of it", v.Code, k)
-		}
-	}
-	return nil
+		return nil
+	})
 }
 
 // fallReadings returns every reading a fall cites, each checked.
