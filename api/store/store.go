@@ -25,6 +25,13 @@ var ErrNotFound = errors.New("store: not found")
 // another replica) committed first. Nothing of the change was applied.
 var ErrConflict = errors.New("store: conflict: the ledger changed since it was read")
 
+// ErrClaimedElsewhere is returned, wrapped, by [Store.Reschedule] and
+// [Store.Bury] when another replica holds an unexpired claim on the write
+// (see [Replicated]): this replica's claim lapsed and the other took the
+// write over. Nothing changed; the outcome of the write is the other
+// replica's to record. A store of one replica never returns it.
+var ErrClaimedElsewhere = errors.New("store: the write is claimed by another replica")
+
 // Input is the latest known version of one input resource. Payload is the
 // engine's own encoding of everything it needs (the decoded reading, the
 // original value and unit, the conversion); the store does not look inside.
@@ -406,8 +413,15 @@ type Store interface {
 	// of its entries (series → id, version), in one transaction.
 	Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error
 	// Reschedule records a failed attempt and the time of the next one.
+	// On a store shared by replicas it changes the write only while the
+	// caller holds its claim, or no replica holds an unexpired one;
+	// otherwise nothing changes and the answer wraps ErrClaimedElsewhere
+	// (a replica that stalled past its claim must not release the claim
+	// of the replica that took the write over). A write no longer in the
+	// outbox is ErrNotFound.
 	Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error
-	// Bury moves a write to the dead letters.
+	// Bury moves a write to the dead letters, under the same rule as
+	// Reschedule: ErrClaimedElsewhere while another replica holds it.
 	Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error
 	// DeadLetters lists dead letters, oldest first, at most limit.
 	DeadLetters(ctx context.Context, limit int) ([]DeadLetter, error)
