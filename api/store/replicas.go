@@ -49,6 +49,14 @@ type Replicated interface {
 	// patient's mark as it stands now, with [Dirty.Cleared] set.
 	// [Store.Commit] ends the claim.
 	ClaimPatient(ctx context.Context, subject string, ttl time.Duration) (d Dirty, ok bool, err error)
+	// RenewClaim extends this replica's claim on a dirty patient by ttl,
+	// from now. ok is false when the claim is no longer this replica's:
+	// it lapsed and another replica took the patient, or the patient's
+	// evaluation was committed or its claim given up meanwhile. A
+	// replica renews its claim while an evaluation runs, so that a slow
+	// one (a slow read of the patient's facts) keeps the patient, and
+	// abandons an evaluation whose claim it finds lost.
+	RenewClaim(ctx context.Context, subject string, ttl time.Duration) (ok bool, err error)
 	// ReleaseClaim ends this replica's claim on a patient that stays
 	// dirty (an evaluation that failed or was abandoned), so that any
 	// replica may take it at once.

@@ -208,6 +208,22 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 	return out[0], true, nil
 }
 
+// RenewClaim extends this replica's claim on a dirty patient by ttl from
+// now, by the database's clock. A claim that lapsed is still renewed when
+// no other replica took the patient meanwhile; one Commit or ReleaseClaim
+// ended is not taken again.
+func (s *Store) RenewClaim(ctx context.Context, subject string, ttl time.Duration) (bool, error) {
+	if ttl <= 0 {
+		return false, fmt.Errorf("pgstore.RenewClaim: ttl %v must be positive", ttl)
+	}
+	tag, err := s.pool.Exec(ctx, `UPDATE dirty SET claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
+		WHERE subject = $1 AND claimed_by = $2`, subject, s.holder, ttl.Microseconds())
+	if err != nil {
+		return false, wrap("RenewClaim", err)
+	}
+	return tag.RowsAffected() == 1, nil
+}
+
 // ReleaseClaim gives up this replica's claim on a patient that stays dirty
 // (an evaluation that failed or was put off), so that any replica may take
 // it at once. Commit releases the claim itself.
