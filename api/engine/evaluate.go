@@ -253,7 +253,8 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 	}
 	e.marks.keep(dirty)
 	wait := idle
-	if e.sharedStore() {
+	shared := e.sharedStore()
+	if shared {
 		// Marks written by other replicas wake no loop here: a listing
 		// this often finds them, among them those of the patients this
 		// replica evaluated last, which the others leave to it.
@@ -286,7 +287,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 		if running[d.Subject] {
 			continue
 		}
-		if left := e.cfg.Settle - e.marks.age(d, now); left > 0 && !e.withdrawn.pending(d.Subject) {
+		if left := e.cfg.Settle - e.marks.settled(d, now, shared); left > 0 && !e.withdrawn.pending(d.Subject) {
 			wait = min(wait, left)
 			continue
 		}
@@ -313,7 +314,7 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) {
 		return
 	}
 	for _, d := range dirty {
-		if e.marks.age(d, e.now()) < settle {
+		if e.marks.settled(d, e.now(), e.sharedStore()) < settle {
 			continue
 		}
 		if err := e.evaluatePatient(ctx, d); err != nil {

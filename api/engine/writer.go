@@ -190,7 +190,15 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		if errors.As(err, &ce) && ce.RetryAfter > wait {
 			wait = min(ce.RetryAfter, maxRetryAfter)
 		}
-		if rerr := e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error()); rerr != nil {
+		var rerr error
+		if shared {
+			// The wait runs on the store's clock, so a replica whose
+			// clock disagrees with this one's still waits it out.
+			rerr = rep.RescheduleIn(ctx, w.ID, wait, now.Add(wait), err.Error())
+		} else {
+			rerr = e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error())
+		}
+		if rerr != nil {
 			if lost(shared, rerr) {
 				return e.takenOver(ctx, w, rerr), nil
 			}

@@ -69,6 +69,12 @@ type Replicated interface {
 	// that stalls for a whole lease can lose a write it is sending, and
 	// one that finds its claim lost does not send the write a second time.
 	RenewWriteClaim(ctx context.Context, writeID uint64) (ok bool, err error)
+	// RescheduleIn is Store.Reschedule with the next attempt due wait
+	// from now by the store's clock (Write.Wait), so that a replica whose
+	// clock disagrees with this one's still waits as long; notBefore is
+	// recorded as Write.NotBefore. The same claim rule holds:
+	// ErrClaimedElsewhere while another replica holds the write.
+	RescheduleIn(ctx context.Context, writeID uint64, wait time.Duration, notBefore time.Time, lastErr string) error
 	// WriteLease is how long a claim on an outbox write lasts.
 	WriteLease() time.Duration
 	// KeepAlive says this replica is running, for ttl from now: while it

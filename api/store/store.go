@@ -123,8 +123,15 @@ type Patient struct {
 type Dirty struct {
 	Subject string
 	// Since is when the patient first became dirty after the last
-	// evaluation; the engine waits a settle delay from it.
+	// evaluation, by the clock of the replica that marked it; the engine
+	// waits a settle delay from it.
 	Since time.Time
+	// Waited, from a store shared by replicas ([Replicated]), is how long
+	// the mark has waited at the listing by the store's own clock, from
+	// when the store recorded Since: the engine measures the settle delay
+	// with it, since another replica's clock may not agree with its own.
+	// A store of one replica leaves it zero.
+	Waited time.Duration
 	// Generation increases with every change; [Store.Commit] clears the
 	// dirty mark only if no change arrived after the generation it read.
 	Generation uint64
@@ -206,8 +213,16 @@ type Write struct {
 	Subject  string
 	Body     []byte // the engine's encoding of the write
 	Attempts int
-	// NotBefore is the earliest time of the next attempt.
+	// NotBefore is the earliest time of the next attempt, by the clock of
+	// the replica that set it.
 	NotBefore time.Time
+	// Wait and StoreClock: from a store shared by replicas, when the
+	// write was rescheduled with Replicated.RescheduleIn, StoreClock is set
+	// and Wait is how much longer the next attempt waits at the listing by
+	// the store's own clock (zero when due), which the engine trusts over
+	// NotBefore: another replica's clock may not agree with its own.
+	Wait       time.Duration
+	StoreClock bool
 	CreatedAt time.Time
 	LastError string
 }

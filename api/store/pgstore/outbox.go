@@ -17,8 +17,12 @@ import (
 func scanWrite(row pgx.CollectableRow) (store.Write, error) {
 	var w store.Write
 	var id, nb, created int64
-	err := row.Scan(&id, &w.Subject, &w.Series, &w.Body, &w.Attempts, &nb, &created, &w.LastError)
+	var wait *int64
+	err := row.Scan(&id, &w.Subject, &w.Series, &w.Body, &w.Attempts, &nb, &created, &w.LastError, &wait)
 	w.ID, w.NotBefore, w.CreatedAt = uint64(id), fromNanos(nb), fromNanos(created)
+	if wait != nil {
+		w.StoreClock, w.Wait = true, max(time.Duration(*wait)*time.Microsecond, 0)
+	}
 	if len(w.Series) == 0 {
 		w.Series = nil
 	}
@@ -64,7 +68,8 @@ func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]stor
 			   SET claimed_by = $2, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 			  FROM picked
 			 WHERE o.id = picked.id
-			RETURNING o.id, o.subject, o.series, o.body, o.attempts, o.not_before_ns, o.created_ns, o.last_error`,
+			RETURNING o.id, o.subject, o.series, o.body, o.attempts, o.not_before_ns, o.created_ns, o.last_error,
+			          (EXTRACT(EPOCH FROM o.due_at - clock_timestamp()) * 1e6)::bigint`,
 			nanos(now), s.holder, limit, s.writeLease.Microseconds())
 		if err != nil {
 			return err
@@ -133,12 +138,26 @@ func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[stri
 // store.ErrClaimedElsewhere and changes nothing (as its late Acknowledge
 // of a write the other already acknowledged is ErrNotFound).
 func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
-	return s.inTx(ctx, "Reschedule", func(tx pgx.Tx) error {
+	return s.reschedule(ctx, "Reschedule", writeID, nil, notBefore, lastErr)
+}
+
+// RescheduleIn is Reschedule with the next attempt due wait from now by
+// the database's clock (due_at; store.Write.Wait).
+func (s *Store) RescheduleIn(ctx context.Context, writeID uint64, wait time.Duration, notBefore time.Time, lastErr string) error {
+	us := max(wait, 0).Microseconds()
+	return s.reschedule(ctx, "RescheduleIn", writeID, &us, notBefore, lastErr)
+}
+
+// reschedule records a failed attempt, with the wait on the database's
+// clock when waitUS (microseconds) is set.
+func (s *Store) reschedule(ctx context.Context, op string, writeID uint64, waitUS *int64, notBefore time.Time, lastErr string) error {
+	return s.inTx(ctx, op, func(tx pgx.Tx) error {
 		if err := s.holdsWrite(ctx, tx, writeID); err != nil {
 			return err
 		}
 		_, err := tx.Exec(ctx, `UPDATE outbox SET attempts = attempts + 1, not_before_ns = $2, last_error = $3,
-			claimed_by = NULL, claim_expires = NULL WHERE id = $1`, int64(writeID), nanos(notBefore), lastErr)
+			due_at = clock_timestamp() + $4::bigint * interval '1 microsecond',
+			claimed_by = NULL, claim_expires = NULL WHERE id = $1`, int64(writeID), nanos(notBefore), lastErr, waitUS)
 		return err
 	})
 }
