@@ -223,8 +223,8 @@ type Write struct {
 	// NotBefore: another replica's clock may not agree with its own.
 	Wait       time.Duration
 	StoreClock bool
-	CreatedAt time.Time
-	LastError string
+	CreatedAt  time.Time
+	LastError  string
 }
 
 // DeadLetter is a write the server refused for good.
