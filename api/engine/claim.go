@@ -2,7 +2,9 @@ package engine
 
 import (
 	"context"
+	"errors"
 	"fmt"
+	"sync/atomic"
 	"time"
 
 	"github.com/deadspace-fhir/deadspace/api/store"
@@ -70,6 +72,58 @@ func (e *Engine) claimPatient(ctx context.Context, d store.Dirty) (store.Dirty, 
 		return d, false, fmt.Errorf("engine: claim the patient for evaluation: %w", err)
 	}
 	return now, ok, nil
+}
+
+// errClaimLost ends an evaluation whose claim on the patient another
+// replica took (this replica stalled past the job lease).
+var errClaimLost = errors.New("engine: another replica took the claim on the patient")
+
+// holdClaim keeps this replica's claim on subject, when the store is
+// shared by replicas, while an evaluation runs: it renews the claim every
+// third of the job lease, as sendHoldingClaim does a write's, so a slow
+// evaluation (a slow read of the patient's facts, a loaded database) keeps
+// the patient and no other replica evaluates it at the same time. When a
+// renewal finds the claim taken (the replica stalled for a whole lease and
+// another took the patient, or evaluated it and committed), it cancels the
+// returned context, so the evaluation is abandoned before its commit. stop
+// ends the renewals and reports whether the claim was lost. A renewal that
+// fails for another reason (the database unreachable) is tried again at
+// the next tick; the commit's compare-and-swap still keeps the ledger
+// right.
+func (e *Engine) holdClaim(ctx context.Context, subject string) (evalCtx context.Context, stop func() (lost bool)) {
+	rep, shared := e.cfg.Store.(store.Replicated)
+	if !shared {
+		return ctx, func() bool { return false }
+	}
+	evalCtx, cancel := context.WithCancelCause(ctx)
+	renewing, done := make(chan struct{}), make(chan struct{})
+	var lost atomic.Bool
+	go func() {
+		defer close(done)
+		t := time.NewTicker(max(e.cfg.JobLease/3, 10*time.Millisecond))
+		defer t.Stop()
+		for {
+			select {
+			case <-renewing:
+				return
+			case <-evalCtx.Done():
+				return
+			case <-t.C:
+				ok, err := rep.RenewClaim(evalCtx, subject, e.cfg.JobLease)
+				if err == nil && !ok {
+					lost.Store(true)
+					cancel(errClaimLost)
+					return
+				}
+			}
+		}
+	}()
+	return evalCtx, func() bool {
+		close(renewing)
+		<-done
+		cancel(nil)
+		return lost.Load()
+	}
 }
 
 // unclaimPatient gives up this replica's claim on a patient whose

@@ -18,6 +18,9 @@ import (
 // further ahead than any wait the engine sets is over at once. A clock
 // stepped forward only ends waits early: a retry sent sooner, a patient
 // evaluated before its settle, whose late readings are derived again.
+// With replicas sharing a store the clocks of two hosts may disagree
+// whatever their steps: the settle delay is then measured by the store's
+// clock (marksSeen.settled), as the leases are.
 
 // maxRetryAfter is the longest Retry-After the writer honours; a server
 // asking for more is asked again after this long.
@@ -81,9 +84,14 @@ func (r *retryDue) scheduled(id uint64, attempts int, wait time.Duration) {
 // waits says whether w still waits for its next attempt at now (the
 // engine's clock): its stored time is ahead of now, by no more than the
 // longest wait the writer sets, and, when this process scheduled it, its
-// wait by the monotonic clock is not over.
+// wait by the monotonic clock is not over. A write a replica rescheduled on
+// a shared store's clock (store.Write.StoreClock) waits what that clock
+// says is left instead, whatever this replica's clock reads.
 func (r *retryDue) waits(w store.Write, now time.Time) bool {
 	ahead := w.NotBefore.Sub(now)
+	if w.StoreClock {
+		ahead = w.Wait
+	}
 	if ahead <= 0 || ahead > maxRetryWait {
 		return false
 	}
@@ -131,6 +139,27 @@ type markSeen struct {
 // process first listed the mark, so a clock stepped back does not hold
 // the patient back by the step.
 func (m *marksSeen) age(d store.Dirty, now time.Time) time.Duration {
+	return max(now.Sub(d.Since), m.sinceFirst(d))
+}
+
+// settled returns how long d's data has waited, for the settle delay. On
+// a store shared by replicas, Since was stamped by whichever replica's
+// clock took the data in, and this replica's clock may run ahead of it (a
+// broken NTP, a virtual machine resumed): the wait is measured instead by
+// the store's clock (store.Dirty.Waited, which outlives a restart, so a
+// mark that settled before it is not held again), or by the time since
+// this process first listed the mark when that is longer (the store's
+// clock stepped back). A store of one replica has one clock: age.
+func (m *marksSeen) settled(d store.Dirty, now time.Time, shared bool) time.Duration {
+	if !shared {
+		return m.age(d, now)
+	}
+	return max(d.Waited, m.sinceFirst(d))
+}
+
+// sinceFirst returns how long ago, by the monotonic clock, this process
+// first listed d's mark with its Since.
+func (m *marksSeen) sinceFirst(d store.Dirty) time.Duration {
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	if m.seen == nil {
@@ -141,7 +170,7 @@ func (m *marksSeen) age(d store.Dirty, now time.Time) time.Duration {
 		s = markSeen{since: d.Since, first: time.Now()}
 		m.seen[d.Subject] = s
 	}
-	return max(now.Sub(d.Since), time.Since(s.first))
+	return time.Since(s.first)
 }
 
 // keep forgets the patients that are not dirty any more: dirty is every

@@ -253,7 +253,8 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 	}
 	e.marks.keep(dirty)
 	wait := idle
-	if e.sharedStore() {
+	shared := e.sharedStore()
+	if shared {
 		// Marks written by other replicas wake no loop here: a listing
 		// this often finds them, among them those of the patients this
 		// replica evaluated last, which the others leave to it.
@@ -286,7 +287,7 @@ func (e *Engine) due(ctx context.Context, running map[string]bool, held map[stri
 		if running[d.Subject] {
 			continue
 		}
-		if left := e.cfg.Settle - e.marks.age(d, now); left > 0 && !e.withdrawn.pending(d.Subject) {
+		if left := e.cfg.Settle - e.marks.settled(d, now, shared); left > 0 && !e.withdrawn.pending(d.Subject) {
 			wait = min(wait, left)
 			continue
 		}
@@ -313,7 +314,7 @@ func (e *Engine) evaluateDue(ctx context.Context, all bool) {
 		return
 	}
 	for _, d := range dirty {
-		if e.marks.age(d, e.now()) < settle {
+		if e.marks.settled(d, e.now(), e.sharedStore()) < settle {
 			continue
 		}
 		if err := e.evaluatePatient(ctx, d); err != nil {
@@ -346,7 +347,8 @@ func (e *Engine) EvaluateNow(ctx context.Context) error {
 // evaluatePatient re-derives one patient and commits what changed. It
 // holds the patient's lock, so evaluations of one patient never overlap in
 // this process, and on a store shared by replicas its claim on the patient
-// (claimPatient), so they do not overlap across replicas either; the commit states what it read of every series it writes,
+// (claimPatient), renewed while the evaluation runs (holdClaim), so they
+// do not overlap across replicas either; the commit states what it read of every series it writes,
 // so an evaluation by another process that committed first makes this one
 // fail with a conflict, and the patient is evaluated again from what is
 // stored now.
@@ -361,7 +363,15 @@ func (e *Engine) evaluatePatient(ctx context.Context, d store.Dirty) error {
 	if e.cfg.Hooks.Evaluation != nil {
 		e.cfg.Hooks.Evaluation(d.Urgent)
 	}
-	err = e.evaluateLocked(ctx, d)
+	evalCtx, stopHolding := e.holdClaim(ctx, d.Subject)
+	err = e.evaluateLocked(evalCtx, d)
+	if lost := stopHolding(); lost && err != nil && ctx.Err() == nil {
+		// Another replica took the patient while this evaluation ran:
+		// it was abandoned before its commit, and the patient is that
+		// replica's now.
+		e.log.InfoContext(ctx, "the claim on the patient was lost during its evaluation; another replica evaluates it", "err", err)
+		return nil
+	}
 	if err != nil {
 		e.unclaimPatient(ctx, d.Subject)
 	}

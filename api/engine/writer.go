@@ -153,6 +153,11 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 	switch {
 	case err == nil:
 		if aerr := e.cfg.Store.Acknowledge(ctx, w.ID, server); aerr != nil {
+			if shared && errors.Is(aerr, store.ErrNotFound) {
+				// This replica stalled past its claim and the replica
+				// that took the write over settled it first.
+				return e.takenOver(ctx, w, aerr), nil
+			}
 			// The server has it; the next attempt's conditional creates
 			// will find it again rather than write it twice.
 			return false, aerr
@@ -168,6 +173,9 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 	case permanent(err) && !resendFailedEntries(err, w.Attempts):
 		reason := err.Error()
 		if berr := e.cfg.Store.Bury(ctx, w.ID, reason, now); berr != nil {
+			if lost(shared, berr) {
+				return e.takenOver(ctx, w, berr), nil
+			}
 			return false, berr
 		}
 		e.writeResult("dead-letter")
@@ -182,7 +190,18 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		if errors.As(err, &ce) && ce.RetryAfter > wait {
 			wait = min(ce.RetryAfter, maxRetryAfter)
 		}
-		if rerr := e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error()); rerr != nil {
+		var rerr error
+		if shared {
+			// The wait runs on the store's clock, so a replica whose
+			// clock disagrees with this one's still waits it out.
+			rerr = rep.RescheduleIn(ctx, w.ID, wait, now.Add(wait), err.Error())
+		} else {
+			rerr = e.cfg.Store.Reschedule(ctx, w.ID, now.Add(wait), err.Error())
+		}
+		if rerr != nil {
+			if lost(shared, rerr) {
+				return e.takenOver(ctx, w, rerr), nil
+			}
 			return false, rerr
 		}
 		e.retries.scheduled(w.ID, w.Attempts+1, wait)
@@ -195,6 +214,27 @@ func (e *Engine) attempt(ctx context.Context, w store.Write) (bool, error) {
 		e.log.WarnContext(ctx, "write failed; will retry", "write", w.ID, "attempt", w.Attempts+1, "wait", wait, "err", err)
 		return false, nil
 	}
+}
+
+// lost reports whether a store's refusal to record a write's outcome
+// means that the write is no longer this replica's: another replica holds
+// its claim (store.ErrClaimedElsewhere), or, on a store shared by
+// replicas, the write left the outbox (the replica that took it over
+// acknowledged or buried it).
+func lost(shared bool, err error) bool {
+	return errors.Is(err, store.ErrClaimedElsewhere) || (shared && errors.Is(err, store.ErrNotFound))
+}
+
+// takenOver notes an attempt whose outcome the store did not record
+// because this replica's claim on the write lapsed (it stalled past the
+// write lease) and another replica took the write over: that replica
+// sends it and records its outcome, so this is no failure of the store,
+// and the write is not tried again from here in this drain. It reports
+// whether the write left the outbox.
+func (e *Engine) takenOver(ctx context.Context, w store.Write, err error) bool {
+	e.writeResult("taken-over")
+	e.log.InfoContext(ctx, "a write's claim lapsed during its attempt and another replica took it over; its outcome is that replica's", "write", w.ID)
+	return errors.Is(err, store.ErrNotFound)
 }
 
 // sendHoldingClaim sends a write and, when the store is shared by

@@ -33,8 +33,10 @@ var (
 	// evaluationData are what an evaluation's new data held: a blood gas,
 	// or device readings and patient facts only.
 	evaluationData = []string{"blood-gas", "device"}
-	// outcomes are what happened to one outbox write attempt.
-	outcomes = []string{"acknowledged", "retry", "dead-letter"}
+	// outcomes are what happened to one outbox write attempt; taken-over
+	// is an attempt whose replica stalled past its claim on the write, so
+	// that another replica took it over and records its outcome.
+	outcomes = []string{"acknowledged", "retry", "dead-letter", "taken-over"}
 	// operations are the client.Observer operations.
 	operations = []string{"read", "vread", "search", "create", "conditional-create", "update", "transaction", "batch"}
 	// fhirStatuses are the classes of the FHIR server's answers: 429 on its

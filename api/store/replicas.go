@@ -49,6 +49,14 @@ type Replicated interface {
 	// patient's mark as it stands now, with [Dirty.Cleared] set.
 	// [Store.Commit] ends the claim.
 	ClaimPatient(ctx context.Context, subject string, ttl time.Duration) (d Dirty, ok bool, err error)
+	// RenewClaim extends this replica's claim on a dirty patient by ttl,
+	// from now. ok is false when the claim is no longer this replica's:
+	// it lapsed and another replica took the patient, or the patient's
+	// evaluation was committed or its claim given up meanwhile. A
+	// replica renews its claim while an evaluation runs, so that a slow
+	// one (a slow read of the patient's facts) keeps the patient, and
+	// abandons an evaluation whose claim it finds lost.
+	RenewClaim(ctx context.Context, subject string, ttl time.Duration) (ok bool, err error)
 	// ReleaseClaim ends this replica's claim on a patient that stays
 	// dirty (an evaluation that failed or was abandoned), so that any
 	// replica may take it at once.
@@ -61,6 +69,12 @@ type Replicated interface {
 	// that stalls for a whole lease can lose a write it is sending, and
 	// one that finds its claim lost does not send the write a second time.
 	RenewWriteClaim(ctx context.Context, writeID uint64) (ok bool, err error)
+	// RescheduleIn is Store.Reschedule with the next attempt due wait
+	// from now by the store's clock (Write.Wait), so that a replica whose
+	// clock disagrees with this one's still waits as long; notBefore is
+	// recorded as Write.NotBefore. The same claim rule holds:
+	// ErrClaimedElsewhere while another replica holds the write.
+	RescheduleIn(ctx context.Context, writeID uint64, wait time.Duration, notBefore time.Time, lastErr string) error
 	// WriteLease is how long a claim on an outbox write lasts.
 	WriteLease() time.Duration
 	// KeepAlive says this replica is running, for ttl from now: while it

@@ -25,6 +25,13 @@ var ErrNotFound = errors.New("store: not found")
 // another replica) committed first. Nothing of the change was applied.
 var ErrConflict = errors.New("store: conflict: the ledger changed since it was read")
 
+// ErrClaimedElsewhere is returned, wrapped, by [Store.Reschedule] and
+// [Store.Bury] when another replica holds an unexpired claim on the write
+// (see [Replicated]): this replica's claim lapsed and the other took the
+// write over. Nothing changed; the outcome of the write is the other
+// replica's to record. A store of one replica never returns it.
+var ErrClaimedElsewhere = errors.New("store: the write is claimed by another replica")
+
 // Input is the latest known version of one input resource. Payload is the
 // engine's own encoding of everything it needs (the decoded reading, the
 // original value and unit, the conversion); the store does not look inside.
@@ -116,8 +123,15 @@ type Patient struct {
 type Dirty struct {
 	Subject string
 	// Since is when the patient first became dirty after the last
-	// evaluation; the engine waits a settle delay from it.
+	// evaluation, by the clock of the replica that marked it; the engine
+	// waits a settle delay from it.
 	Since time.Time
+	// Waited, from a store shared by replicas ([Replicated]), is how long
+	// the mark has waited at the listing by the store's own clock, from
+	// when the store recorded Since: the engine measures the settle delay
+	// with it, since another replica's clock may not agree with its own.
+	// A store of one replica leaves it zero.
+	Waited time.Duration
 	// Generation increases with every change; [Store.Commit] clears the
 	// dirty mark only if no change arrived after the generation it read.
 	Generation uint64
@@ -199,10 +213,18 @@ type Write struct {
 	Subject  string
 	Body     []byte // the engine's encoding of the write
 	Attempts int
-	// NotBefore is the earliest time of the next attempt.
+	// NotBefore is the earliest time of the next attempt, by the clock of
+	// the replica that set it.
 	NotBefore time.Time
-	CreatedAt time.Time
-	LastError string
+	// Wait and StoreClock: from a store shared by replicas, when the
+	// write was rescheduled with Replicated.RescheduleIn, StoreClock is set
+	// and Wait is how much longer the next attempt waits at the listing by
+	// the store's own clock (zero when due), which the engine trusts over
+	// NotBefore: another replica's clock may not agree with its own.
+	Wait       time.Duration
+	StoreClock bool
+	CreatedAt  time.Time
+	LastError  string
 }
 
 // DeadLetter is a write the server refused for good.
@@ -406,8 +428,15 @@ type Store interface {
 	// of its entries (series → id, version), in one transaction.
 	Acknowledge(ctx context.Context, writeID uint64, server map[string][2]string) error
 	// Reschedule records a failed attempt and the time of the next one.
+	// On a store shared by replicas it changes the write only while the
+	// caller holds its claim, or no replica holds an unexpired one;
+	// otherwise nothing changes and the answer wraps ErrClaimedElsewhere
+	// (a replica that stalled past its claim must not release the claim
+	// of the replica that took the write over). A write no longer in the
+	// outbox is ErrNotFound.
 	Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error
-	// Bury moves a write to the dead letters.
+	// Bury moves a write to the dead letters, under the same rule as
+	// Reschedule: ErrClaimedElsewhere while another replica holds it.
 	Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error
 	// DeadLetters lists dead letters, oldest first, at most limit.
 	DeadLetters(ctx context.Context, limit int) ([]DeadLetter, error)

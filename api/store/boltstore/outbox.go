@@ -89,7 +89,9 @@ func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[stri
 	})
 }
 
-// Reschedule records a failed attempt.
+// Reschedule records a failed attempt. One replica owns the embedded
+// store and so holds the claim on every write: it never answers
+// store.ErrClaimedElsewhere (nor does Bury).
 func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
 	return s.batch(ctx, "Reschedule", func(tx *bolt.Tx) error {
 		w, err := getWrite(tx, writeID)

@@ -34,11 +34,13 @@ type querier interface {
 // The end (until_ns, 0: none) grows the same way, and end_generation
 // follows the generation as reach_generation does: a mark an earlier build
 // wrote into (migration 0007) has no end, and one this build writes into
-// it afterwards keeps none.
+// it afterwards keeps none. since_at (migration 0011) is stamped by the
+// database's clock when the mark is made and stays, as the earliest
+// Since does.
 const markDirtySQL = `
 	WITH g AS (SELECT nextval('dirty_generation') AS gen)
-	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation, until_ns, end_generation)
-	SELECT $1, $2, g.gen, $3, $4, g.gen, $5, g.gen FROM g
+	INSERT INTO dirty (subject, since_ns, generation, from_ns, urgent, reach_generation, until_ns, end_generation, since_at)
+	SELECT $1, $2, g.gen, $3, $4, g.gen, $5, g.gen, clock_timestamp() FROM g
 	ON CONFLICT (subject) DO UPDATE
 	   SET since_ns = LEAST(dirty.since_ns, EXCLUDED.since_ns), generation = EXCLUDED.generation,
 	       from_ns = CASE WHEN dirty.from_ns = 0 OR EXCLUDED.from_ns = 0 THEN 0 ELSE LEAST(dirty.from_ns, EXCLUDED.from_ns) END,
@@ -64,7 +66,7 @@ func (s *Store) MarkDirty(ctx context.Context, subject string, now time.Time) er
 // DirtyPatients lists every dirty patient, claimed or not: urgent ones
 // first, then by Since and Subject.
 func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
-	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty")+` FROM dirty ORDER BY urgent DESC, since_ns, subject`)
+	rows, err := s.pool.Query(ctx, `SELECT subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty")+`, `+waitedOf("dirty")+` FROM dirty ORDER BY urgent DESC, since_ns, subject`)
 	if err != nil {
 		return nil, wrap("DirtyPatients", err)
 	}
@@ -83,6 +85,14 @@ func (s *Store) DirtyPatients(ctx context.Context) ([]store.Dirty, error) {
 func spanOf(table string) string {
 	return `CASE WHEN ` + table + `.reach_generation = ` + table + `.generation THEN ` + table + `.from_ns ELSE 0 END, ` +
 		`CASE WHEN ` + table + `.end_generation = ` + table + `.generation THEN ` + table + `.until_ns ELSE 0 END`
+}
+
+// waitedOf is how long the mark named table has waited, in microseconds,
+// by the database's clock (store.Dirty.Waited): from since_at, or, for a
+// mark written before migration 0011 or by an earlier build, from since_ns.
+func waitedOf(table string) string {
+	return `(EXTRACT(EPOCH FROM clock_timestamp() - COALESCE(` + table + `.since_at, to_timestamp(` + table +
+		`.since_ns / 1e9))) * 1e6)::bigint`
 }
 
 // clearedOf is the columns every listing of marks ends with: the
@@ -125,10 +135,11 @@ func (s *Store) Depart(ctx context.Context) error {
 // scanDirty reads a mark as every listing gives it.
 func (s *Store) scanDirty(row pgx.CollectableRow) (store.Dirty, error) {
 	var d store.Dirty
-	var since, gen, from, until, cleared int64
+	var since, gen, from, until, cleared, waited int64
 	var clearedBy string
-	err := row.Scan(&d.Subject, &since, &gen, &from, &until, &d.Urgent, &cleared, &clearedBy)
+	err := row.Scan(&d.Subject, &since, &gen, &from, &until, &d.Urgent, &cleared, &clearedBy, &waited)
 	d.Since, d.Generation, d.From, d.Until, d.Cleared = fromNanos(since), uint64(gen), fromNanos(from), fromNanos(until), uint64(cleared)
+	d.Waited = time.Duration(waited) * time.Microsecond
 	d.EvaluatedElsewhere = clearedBy != "" && clearedBy != s.holder
 	return d, err
 }
@@ -158,7 +169,7 @@ func (s *Store) ClaimDirty(ctx context.Context, settledBefore time.Time, limit i
 		   SET claimed_by = $3, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 		  FROM picked
 		 WHERE d.subject = picked.subject
-		RETURNING d.subject, d.since_ns, d.generation, `+spanOf("d")+`, d.urgent, `+clearedOf("d"),
+		RETURNING d.subject, d.since_ns, d.generation, `+spanOf("d")+`, d.urgent, `+clearedOf("d")+`, `+waitedOf("d"),
 		nanos(settledBefore), limit, s.holder, ttl.Microseconds())
 	if err != nil {
 		return nil, wrap("ClaimDirty", err)
@@ -193,7 +204,7 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 		UPDATE dirty
 		   SET claimed_by = $2, claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
 		 WHERE subject = $1 AND (claimed_by IS NULL OR claimed_by = $2 OR claim_expires <= clock_timestamp())
-		RETURNING subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty"),
+		RETURNING subject, since_ns, generation, `+spanOf("dirty")+`, urgent, `+clearedOf("dirty")+`, `+waitedOf("dirty"),
 		subject, s.holder, ttl.Microseconds())
 	if err != nil {
 		return store.Dirty{}, false, wrap("ClaimPatient", err)
@@ -206,6 +217,22 @@ func (s *Store) ClaimPatient(ctx context.Context, subject string, ttl time.Durat
 		return store.Dirty{}, false, nil
 	}
 	return out[0], true, nil
+}
+
+// RenewClaim extends this replica's claim on a dirty patient by ttl from
+// now, by the database's clock. A claim that lapsed is still renewed when
+// no other replica took the patient meanwhile; one Commit or ReleaseClaim
+// ended is not taken again.
+func (s *Store) RenewClaim(ctx context.Context, subject string, ttl time.Duration) (bool, error) {
+	if ttl <= 0 {
+		return false, fmt.Errorf("pgstore.RenewClaim: ttl %v must be positive", ttl)
+	}
+	tag, err := s.pool.Exec(ctx, `UPDATE dirty SET claim_expires = clock_timestamp() + $3 * interval '1 microsecond'
+		WHERE subject = $1 AND claimed_by = $2`, subject, s.holder, ttl.Microseconds())
+	if err != nil {
+		return false, wrap("RenewClaim", err)
+	}
+	return tag.RowsAffected() == 1, nil
 }
 
 // ReleaseClaim gives up this replica's claim on a patient that stays dirty

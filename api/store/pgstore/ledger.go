@@ -255,7 +255,7 @@ func settleDirty(ctx context.Context, tx pgx.Tx, change store.Change, now time.T
 		return err
 	}
 	if uint64(gen) != change.Generation {
-		_, err = tx.Exec(ctx, `UPDATE dirty SET since_ns = $2, claimed_by = NULL, claim_expires = NULL WHERE subject = $1`,
+		_, err = tx.Exec(ctx, `UPDATE dirty SET since_ns = $2, since_at = clock_timestamp(), claimed_by = NULL, claim_expires = NULL WHERE subject = $1`,
 			change.Subject, nanos(now))
 		return err
 	}

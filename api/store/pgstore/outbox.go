@@ -17,8 +17,12 @@ import (
 func scanWrite(row pgx.CollectableRow) (store.Write, error) {
 	var w store.Write
 	var id, nb, created int64
-	err := row.Scan(&id, &w.Subject, &w.Series, &w.Body, &w.Attempts, &nb, &created, &w.LastError)
+	var wait *int64
+	err := row.Scan(&id, &w.Subject, &w.Series, &w.Body, &w.Attempts, &nb, &created, &w.LastError, &wait)
 	w.ID, w.NotBefore, w.CreatedAt = uint64(id), fromNanos(nb), fromNanos(created)
+	if wait != nil {
+		w.StoreClock, w.Wait = true, max(time.Duration(*wait)*time.Microsecond, 0)
+	}
 	if len(w.Series) == 0 {
 		w.Series = nil
 	}
@@ -64,7 +68,8 @@ func (s *Store) DueWrites(ctx context.Context, now time.Time, limit int) ([]stor
 			   SET claimed_by = $2, claim_expires = clock_timestamp() + $4 * interval '1 microsecond'
 			  FROM picked
 			 WHERE o.id = picked.id
-			RETURNING o.id, o.subject, o.series, o.body, o.attempts, o.not_before_ns, o.created_ns, o.last_error`,
+			RETURNING o.id, o.subject, o.series, o.body, o.attempts, o.not_before_ns, o.created_ns, o.last_error,
+			          (EXTRACT(EPOCH FROM o.due_at - clock_timestamp()) * 1e6)::bigint`,
 			nanos(now), s.holder, limit, s.writeLease.Microseconds())
 		if err != nil {
 			return err
@@ -126,37 +131,73 @@ func (s *Store) Acknowledge(ctx context.Context, writeID uint64, server map[stri
 }
 
 // Reschedule records a failed attempt and gives the claim up, so the
-// retry goes to whichever replica is free when it is due.
+// retry goes to whichever replica is free when it is due. It changes the
+// write only while this replica holds its claim, or no replica holds an
+// unexpired one: a replica that stalled past its write lease, and whose
+// write another replica took over and is sending, gets
+// store.ErrClaimedElsewhere and changes nothing (as its late Acknowledge
+// of a write the other already acknowledged is ErrNotFound).
 func (s *Store) Reschedule(ctx context.Context, writeID uint64, notBefore time.Time, lastErr string) error {
-	return s.run(ctx, "Reschedule", func(q querier) error {
-		tag, err := q.Exec(ctx, `UPDATE outbox SET attempts = attempts + 1, not_before_ns = $2, last_error = $3,
-			claimed_by = NULL, claim_expires = NULL WHERE id = $1`, int64(writeID), nanos(notBefore), lastErr)
-		if err != nil {
+	return s.reschedule(ctx, "Reschedule", writeID, nil, notBefore, lastErr)
+}
+
+// RescheduleIn is Reschedule with the next attempt due wait from now by
+// the database's clock (due_at; store.Write.Wait).
+func (s *Store) RescheduleIn(ctx context.Context, writeID uint64, wait time.Duration, notBefore time.Time, lastErr string) error {
+	us := max(wait, 0).Microseconds()
+	return s.reschedule(ctx, "RescheduleIn", writeID, &us, notBefore, lastErr)
+}
+
+// reschedule records a failed attempt, with the wait on the database's
+// clock when waitUS (microseconds) is set.
+func (s *Store) reschedule(ctx context.Context, op string, writeID uint64, waitUS *int64, notBefore time.Time, lastErr string) error {
+	return s.inTx(ctx, op, func(tx pgx.Tx) error {
+		if err := s.holdsWrite(ctx, tx, writeID); err != nil {
 			return err
 		}
-		if tag.RowsAffected() == 0 {
-			return writeNotFound(writeID)
-		}
-		return nil
+		_, err := tx.Exec(ctx, `UPDATE outbox SET attempts = attempts + 1, not_before_ns = $2, last_error = $3,
+			due_at = clock_timestamp() + $4::bigint * interval '1 microsecond',
+			claimed_by = NULL, claim_expires = NULL WHERE id = $1`, int64(writeID), nanos(notBefore), lastErr, waitUS)
+		return err
 	})
 }
 
+// holdsWrite locks the write's row for the transaction and checks that no
+// other replica holds an unexpired claim on it (by the database's clock,
+// as DueWrites hands it out): store.ErrClaimedElsewhere when one does,
+// ErrNotFound when the write left the outbox.
+func (s *Store) holdsWrite(ctx context.Context, tx pgx.Tx, writeID uint64) error {
+	var elsewhere bool
+	err := tx.QueryRow(ctx, `SELECT claimed_by IS NOT NULL AND claimed_by <> $2 AND claim_expires > clock_timestamp()
+		FROM outbox WHERE id = $1 FOR UPDATE`, int64(writeID), s.holder).Scan(&elsewhere)
+	if errors.Is(err, pgx.ErrNoRows) {
+		return writeNotFound(writeID)
+	}
+	if err != nil {
+		return err
+	}
+	if elsewhere {
+		return fmt.Errorf("write %d: %w", writeID, store.ErrClaimedElsewhere)
+	}
+	return nil
+}
+
 // Bury moves a write to the dead letters, in burial order; the attempt
-// that was refused counts among its attempts.
+// that was refused counts among its attempts. Like Reschedule, it leaves
+// a write another replica holds an unexpired claim on as it is
+// (store.ErrClaimedElsewhere): that replica may be sending it, and the
+// send may well land.
 func (s *Store) Bury(ctx context.Context, writeID uint64, reason string, now time.Time) error {
-	return s.run(ctx, "Bury", func(q querier) error {
-		tag, err := q.Exec(ctx, `
+	return s.inTx(ctx, "Bury", func(tx pgx.Tx) error {
+		if err := s.holdsWrite(ctx, tx, writeID); err != nil {
+			return err
+		}
+		_, err := tx.Exec(ctx, `
 			WITH gone AS (DELETE FROM outbox WHERE id = $1 RETURNING *)
 			INSERT INTO dead_letters (write_id, subject, series, body, attempts, not_before_ns, created_ns, last_error, reason, at_ns)
 			SELECT id, subject, series, body, attempts + 1, not_before_ns, created_ns, last_error, $2, $3 FROM gone`,
 			int64(writeID), reason, nanos(now))
-		if err != nil {
-			return err
-		}
-		if tag.RowsAffected() == 0 {
-			return writeNotFound(writeID)
-		}
-		return nil
+		return err
 	})
 }
 

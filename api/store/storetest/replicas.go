@@ -1,6 +1,7 @@
 package storetest
 
 import (
+	"errors"
 	"fmt"
 	"slices"
 	"sync"
@@ -24,6 +25,7 @@ func RunReplicas(t *testing.T, open func(t *testing.T) (store.Store, store.Store
 		{"Replicas/FeedResumesWithoutGaps", testReplicasFeed},
 		{"Replicas/InputsOneWinner", testReplicasInputs},
 		{"Replicas/SeenEventOnce", testReplicasSeenEvent},
+		{"Replicas/LateOutcomeLeavesAClaimedWrite", testReplicasLateOutcome},
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
@@ -173,5 +175,57 @@ func testReplicasSeenEvent(t *testing.T, a, b store.Store) {
 	}
 	if prev, err := a.SeenEvent(t.Context(), "sub", 1); err != nil || prev != events {
 		t.Errorf("highest = %d, %v; want %d", prev, err, events)
+	}
+}
+
+// A write one replica claimed (DueWrites) and is sending: the other
+// replica's Reschedule or Bury of it (a late outcome of an attempt whose
+// claim lapsed) changes nothing and says so (store.ErrClaimedElsewhere),
+// so it cannot release the claim and have the write sent twice at once, nor
+// bury a write that may land. The holder's own outcome is recorded. An
+// embedded store, whose one handle holds every claim, records both.
+func testReplicasLateOutcome(t *testing.T, a, b store.Store) {
+	ctx := t.Context()
+	must(t, a.Commit(ctx, store.Change{Subject: "Patient/late",
+		Entries: []store.Entry{entry("Patient/late", "late-1", "k-late-1", t0), entry("Patient/late", "late-2", "k-late-2", t0)},
+		Writes:  []store.Write{writeFor("late-1"), writeFor("late-2")},
+	}, t0))
+	claimed, err := a.DueWrites(ctx, t0, 10)
+	must(t, err)
+	if len(claimed) != 2 {
+		t.Fatalf("DueWrites = %d writes, want 2", len(claimed))
+	}
+	if a == b {
+		must(t, b.Reschedule(ctx, claimed[0].ID, t0, "HTTP 503"))
+		must(t, b.Bury(ctx, claimed[1].ID, "HTTP 422", t0))
+		return
+	}
+	if err := b.Reschedule(ctx, claimed[0].ID, t0.Add(time.Hour), "late"); !errors.Is(err, store.ErrClaimedElsewhere) {
+		t.Errorf("Reschedule of a write another replica holds = %v, want ErrClaimedElsewhere", err)
+	}
+	if err := b.Bury(ctx, claimed[1].ID, "late", t0); !errors.Is(err, store.ErrClaimedElsewhere) {
+		t.Errorf("Bury of a write another replica holds = %v, want ErrClaimedElsewhere", err)
+	}
+	dead, err := b.DeadLetters(ctx, 10)
+	must(t, err)
+	if len(dead) != 0 {
+		t.Errorf("dead letters after a refused Bury: %d, want none", len(dead))
+	}
+	// Still a's, unchanged: a lists both again, b neither.
+	again, err := a.DueWrites(ctx, t0, 10)
+	must(t, err)
+	if len(again) != 2 || again[0].Attempts != 0 || again[0].LastError != "" || !again[0].NotBefore.Equal(claimed[0].NotBefore) {
+		t.Errorf("a's writes after b's late outcomes: %+v, want both unchanged", again)
+	}
+	if other, err := b.DueWrites(ctx, t0.Add(2*time.Hour), 10); err != nil || len(other) != 0 {
+		t.Errorf("b is handed %d writes (%v) while a holds them, want none", len(other), err)
+	}
+	// The holder records its own outcomes; a write nobody holds any more
+	// may be recorded by any replica.
+	must(t, a.Reschedule(ctx, claimed[0].ID, t0, "HTTP 503"))
+	must(t, b.Reschedule(ctx, claimed[0].ID, t0, "HTTP 503 again"))
+	must(t, a.Bury(ctx, claimed[1].ID, "HTTP 422", t0))
+	if err := b.Bury(ctx, claimed[1].ID, "late", t0); !errors.Is(err, store.ErrNotFound) {
+		t.Errorf("Bury of a write already buried = %v, want ErrNotFound", err)
 	}
 }
