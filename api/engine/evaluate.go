@@ -1012,12 +1012,7 @@ func (e *Engine) loadInputsFrom(ctx context.Context, subject string, from time.T
 		if h.Type != decode.ItemReading {
 			return nil // a version that withdraws or invalidates an earlier one
 		}
-		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
-		for _, a := range h.Also {
-			p := a.Priority
-			a.Priority = 0
-			inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
-		}
+		inputs = h.appendInputs(inputs)
 		return nil
 	})
 	if err != nil {

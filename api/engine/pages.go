@@ -77,13 +77,8 @@ func (e *Engine) LeftOutInputs(ctx context.Context, subject string) ([]LeftOutIn
 			out = append(out, LeftOutInput{Reading: h.Reading, Reason: si.Item.Omission.Reason, Detail: si.Item.Omission.Detail})
 			return nil
 		}
-		inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+		inputs = h.appendInputs(inputs)
 		byRef[h.Reading.Ref] = h.Reading
-		for _, a := range h.Also {
-			p := a.Priority
-			a.Priority = 0
-			inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
-		}
 		return nil
 	})
 	if err != nil {

@@ -8,6 +8,7 @@ import (
 	"math"
 	"strings"
 
+	"github.com/deadspace-fhir/deadspace/api/pipeline"
 	"github.com/deadspace-fhir/deadspace/derive"
 	"github.com/deadspace-fhir/deadspace/fhir/decode"
 	fhirref "github.com/deadspace-fhir/deadspace/fhir/ref"
@@ -99,6 +100,19 @@ type storedHead struct {
 	// Also are the other readings of the resource, each with its priority
 	// in Reading.Priority.
 	Also []derive.Reading
+}
+
+// appendInputs appends the head's readings to inputs as the pipeline takes
+// them: its own, then the others of its resource, each with its priority
+// moved out of the reading.
+func (h storedHead) appendInputs(inputs []pipeline.Input) []pipeline.Input {
+	inputs = append(inputs, pipeline.Input{Reading: h.Reading, Priority: h.Priority})
+	for _, a := range h.Also {
+		p := a.Priority
+		a.Priority = 0
+		inputs = append(inputs, pipeline.Input{Reading: a, Priority: int(p)})
+	}
+	return inputs
 }
 
 // decodeHead reads the binary head and returns it with the offset of what

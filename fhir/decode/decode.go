@@ -508,13 +508,7 @@ func (d *Decoder) observation(line []byte) Item {
 	}
 
 	// Unit.
-	uopts := d.units
-	if row.CO2Basis != "" {
-		if b, err := units.ParseBasis(row.CO2Basis); err == nil {
-			uopts.PercentBasis = b
-		}
-	}
-	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, uopts)
+	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, d.unitOptions(row))
 	if err != nil {
 		var ue *units.Error
 		if errors.As(err, &ue) {
@@ -553,6 +547,18 @@ func (d *Decoder) observation(line []byte) Item {
 	return it
 }
 
+// unitOptions are the conversion options for a value of row: the
+// decoder's, with the row's CO2 basis when it names one.
+func (d *Decoder) unitOptions(row codes.Row) units.Options {
+	uopts := d.units
+	if row.CO2Basis != "" {
+		if b, err := units.ParseBasis(row.CO2Basis); err == nil {
+			uopts.PercentBasis = b
+		}
+	}
+	return uopts
+}
+
 // withdrawnAt keeps where a reading withdrawn at its source (status
 // entered-in-error) stood: its effective time and its value in its kind's
 // unit, both or neither, when the withdrawing version still carries them
@@ -574,13 +580,7 @@ func (d *Decoder) withdrawnAt(it *Item, o *observationJSON, comp *componentJSON,
 	if problem != "" {
 		return
 	}
-	uopts := d.units
-	if row.CO2Basis != "" {
-		if b, err := units.ParseBasis(row.CO2Basis); err == nil {
-			uopts.PercentBasis = b
-		}
-	}
-	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, uopts)
+	conv, err := units.FromQuantity(row.Kind, v, units.Quantity{System: q.System, Code: q.Code, Unit: q.Unit}, d.unitOptions(row))
 	if err != nil {
 		return
 	}
