@@ -133,7 +133,7 @@ func benchByStore(b *testing.B, load storeBenchLoad, dbURL string, replicas int)
 					res := benchObs(subject, id, "19891-1", "mm[Hg]", 36, now.Add(time.Duration(k)*time.Millisecond))
 					if isGas {
 						id = fmt.Sprintf("g-%d", k)
-						res = benchObs(subject, id, "2019-8", "mm[Hg]", 42, now.Add(-time.Duration(k%(load.history-20)+10)*time.Minute))
+						res = benchObs(subject, id, "2019-8", "mm[Hg]", 42, benchGasTime(now, k, load.patients, load.history))
 					}
 					body := notification("Subscription/bench", k, []json.RawMessage{res})
 					t0 := time.Now()

@@ -207,7 +207,7 @@ func benchWebhook(b *testing.B, c webhookBench) {
 			subject := fmt.Sprintf("Patient/bench-%d", p)
 			var res json.RawMessage
 			if k%gasEvery == 0 {
-				res = benchObs(subject, fmt.Sprintf("g-%d", k), "2019-8", "mm[Hg]", 42, now.Add(-time.Duration(k%(readingsPer-20)+10)*time.Minute))
+				res = benchObs(subject, fmt.Sprintf("g-%d", k), "2019-8", "mm[Hg]", 42, benchGasTime(now, k, patients, readingsPer))
 				built[k].subject = fmt.Sprintf("g-%d", k)
 			} else {
 				res = benchObs(subject, fmt.Sprintf("n-%d", k), "19891-1", "mm[Hg]", 36, now.Add(time.Duration(k)*time.Millisecond))
@@ -337,6 +337,16 @@ func benchWebhook(b *testing.B, c webhookBench) {
 		b.ReportMetric(float64(int64(heapAfter.HeapAlloc)-int64(heapBefore.HeapAlloc))/float64(patients), "heap-B/patient")
 		b.ReportMetric(float64(diskBytes)/float64(patients), "disk-B/patient")
 	}
+}
+
+// benchGasTime is the sample time of the benchmark's k-th notification,
+// a blood gas, for patients patients with history minutes of readings:
+// somewhere in the history, and a second apart from the patient's other
+// blood gases, since two of one patient at one instant with one value are
+// one sample reported twice (derive's same-sample rule), which a load of
+// separate blood gases must not be.
+func benchGasTime(now time.Time, k, patients, history int) time.Time {
+	return now.Add(-time.Duration(k%(history-20)+10)*time.Minute - time.Duration(k/patients)*time.Second)
 }
 
 // notifyRequest is an HTTP/1.1 request of a notification to the webhook,
